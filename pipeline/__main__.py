@@ -1,0 +1,7 @@
+"""``python -m pipeline`` runs the ``grainhabit`` command line."""
+
+import sys
+
+from .cli import main
+
+sys.exit(main())

@@ -1,0 +1,1 @@
+"""Built-in grainhabit plugins: each module is one capability behind a hook."""
