@@ -228,25 +228,28 @@ def grainhabit_thickness(frame: FrameData, params: dict) -> FrameData:
 
 
 @hookspec(firstresult=True)
-def grainhabit_summarise(grains, frames, summary, params: dict):
-    """Compute per-sample statistics from the consolidated tables.
+def grainhabit_summarise(grains, frames, summary: dict, params: dict) -> dict:
+    """Compute per-sample (and per-group) statistics from the consolidated tables.
 
     Parameters
     ----------
     grains : xarray.Dataset
-        The ``grains`` group (dim ``grain``).
+        The ``grains`` group (dim ``grain``), failed frames already absent.
     frames : xarray.Dataset
-        The ``frames`` group (dim ``frame``).
-    summary : xarray.Dataset or None
-        What earlier summarise steps produced, or ``None`` for the first.
+        The ``frames`` group (dim ``frame``), with any extra text fields the
+        workflow derives per frame (``input.fields``, sidecar CSV).
+    summary : dict of str -> xarray.Dataset
+        What earlier summarise steps produced (empty for the first).
     params : dict
         This step's resolved parameters.
 
     Returns
     -------
-    xarray.Dataset
-        The ``summary`` group (dims ``sample`` and ``habit``), every
-        variable with ``units`` and ``long_name``.
+    dict of str -> xarray.Dataset
+        Group name to dataset. ``"summary"`` (dims ``sample`` and
+        ``habit``) is required; further groups such as
+        ``"summary_by_batch"`` are written as they are. Every variable has
+        ``units`` and ``long_name``.
     """
 
 
