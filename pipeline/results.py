@@ -1,0 +1,177 @@
+"""Reading and writing results stores (zarr, one xarray dataset per group).
+
+Format decisions (see DEVELOPERS.md, "Results store"):
+
+- zarr format 3; every group is written unconsolidated, then the store's
+  metadata is consolidated once at the end, so that a plain
+  ``xarray.open_zarr(path, group="grains")`` opens fast and without warnings.
+  zarr warns that consolidated metadata is not yet part of the v3
+  specification; we silence exactly that warning at the one place we
+  consolidate. A reader that ignores consolidated metadata still finds every
+  array through the ordinary ``zarr.json`` files.
+- text variables are variable-length strings (numpy ``StringDType`` or
+  object), never fixed-width unicode.
+- a store is replaced atomically: written in full under a temporary name
+  beside the target, then swapped in with two renames. Until the swap, the
+  previous results stay readable; a crash between the two renames leaves
+  ``<path>.previous``, which :func:`recover` restores.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import uuid
+import warnings
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+import zarr
+
+
+def text_array(values) -> np.ndarray:
+    """Return ``values`` as a variable-length string array (StringDType)."""
+    return np.array([("" if v is None else str(v)) for v in values], dtype=np.dtypes.StringDType())
+
+
+def _prepare(ds: xr.Dataset) -> xr.Dataset:
+    """Convert fixed-width or object text variables to variable-length strings."""
+    out = ds.copy()
+    for name, var in list(out.variables.items()):
+        if var.dtype.kind in ("U", "S", "O"):
+            out[name] = var.copy(data=text_array(np.asarray(var.values).ravel()).reshape(var.shape))
+    return out
+
+
+def consolidate(path: str | os.PathLike) -> None:
+    """Consolidate the store's metadata (once, after all groups are written)."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part")
+        zarr.consolidate_metadata(str(path))
+
+
+def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:
+    """Write datasets as groups of a new zarr store at ``path`` (not atomic).
+
+    Parameters
+    ----------
+    path : path-like
+        Store to create; must not exist yet.
+    groups : dict of str -> xarray.Dataset
+        Group name to dataset.
+    root_attrs : dict, optional
+        Attributes of the root group; values must be JSON-serialisable.
+    """
+    path = str(path)
+    root = zarr.open_group(path, mode="w-", zarr_format=3)
+    root.attrs.update(root_attrs or {})
+    for name, ds in groups.items():
+        _prepare(ds).to_zarr(path, group=name, mode="a", zarr_format=3, consolidated=False)
+    consolidate(path)
+
+
+def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:
+    """Write a results store atomically, replacing any store at ``path``.
+
+    The new store is written completely under a temporary name in the same
+    folder, then swapped in. Readers of the old store are never shown a half
+    written one.
+
+    Parameters
+    ----------
+    path : path-like
+        Results store (a folder ending in ``.zarr`` by convention).
+    groups : dict of str -> xarray.Dataset
+        Group name to dataset (``grains``, ``frames``, ``summary``, ...).
+    root_attrs : dict, optional
+        Root attributes (workflow text and hash, versions, run records).
+    """
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    recover(target)
+    tmp = target.with_name(f".{target.name}.writing-{uuid.uuid4().hex[:8]}")
+    try:
+        write_groups(tmp, groups, root_attrs)
+        swap_in(tmp, target)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+def swap_in(new: Path, target: Path) -> None:
+    """Replace ``target`` by the complete store ``new`` with two renames."""
+    previous = target.with_name(target.name + ".previous")
+    if previous.exists():
+        shutil.rmtree(previous)
+    if target.exists():
+        os.replace(target, previous)
+    os.replace(new, target)
+    if previous.exists():
+        shutil.rmtree(previous, ignore_errors=True)
+
+
+def recover(path: str | os.PathLike) -> bool:
+    """Restore ``<path>.previous`` if a crash happened between the two renames.
+
+    Returns
+    -------
+    bool
+        True if a previous store was restored.
+    """
+    target = Path(path)
+    previous = target.with_name(target.name + ".previous")
+    if previous.exists() and not target.exists():
+        os.replace(previous, target)
+        return True
+    if previous.exists():
+        shutil.rmtree(previous, ignore_errors=True)
+    return False
+
+
+def list_groups(path: str | os.PathLike) -> list[str]:
+    """Names of the groups in a results store."""
+    return sorted(zarr.open_group(str(path), mode="r").group_keys())
+
+
+def open_results(path: str | os.PathLike, load: bool = True) -> dict[str, xr.Dataset]:
+    """Open every group of a results store.
+
+    Parameters
+    ----------
+    path : path-like
+        Results store.
+    load : bool
+        Load the data into memory (default) rather than keep it lazy.
+
+    Returns
+    -------
+    dict of str -> xarray.Dataset
+        Group name to dataset; the root attributes are under the key
+        ``"/"`` as an empty dataset with the attrs.
+
+    Raises
+    ------
+    ValueError
+        If ``path`` is not a results store.
+    """
+    path = str(path)
+    try:
+        root = zarr.open_group(path, mode="r")
+    except Exception as exc:  # zarr raises several kinds here
+        raise ValueError(f"{path}: not a grainhabit results store ({exc.__class__.__name__})") from None
+    out = {"/": xr.Dataset(attrs=dict(root.attrs))}
+    for name in sorted(root.group_keys()):
+        ds = xr.open_zarr(path, group=name)
+        out[name] = ds.load() if load else ds
+    return out
+
+
+def root_attrs(path: str | os.PathLike) -> dict:
+    """Root attributes of a results store (JSON text attributes decoded)."""
+    attrs = dict(zarr.open_group(str(path), mode="r").attrs)
+    for key in ("versions", "runs"):
+        if isinstance(attrs.get(key), str):
+            attrs[key] = json.loads(attrs[key])
+    return attrs
