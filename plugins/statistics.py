@@ -26,6 +26,7 @@ References
 
 from __future__ import annotations
 
+import warnings
 from typing import Callable, NamedTuple
 
 import numpy as np
@@ -654,7 +655,10 @@ def bootstrap_ci(statistic: Callable, data, *, n_resamples: int = 1000, confiden
     if n < 1 or any(d.shape != (n,) for d in data):
         raise ValueError(f"data must be 1-D arrays of equal non-zero length, got shapes {[d.shape for d in data]}")
     rng = np.random.default_rng() if rng is None else rng
-    theta = np.asarray(statistic(*(d[None, :] for d in data)), dtype=float)[0]
+    with warnings.catch_warnings():
+        if n < 2:  # e.g. a sd of one value: NaN is the answer, not a warning
+            warnings.simplefilter("ignore", RuntimeWarning)
+        theta = np.asarray(statistic(*(d[None, :] for d in data)), dtype=float)[0]
     if n < 2:
         nan = np.full(theta.shape, np.nan)
         return BootstrapCI(theta, nan, nan.copy())
