@@ -143,6 +143,19 @@ class Param:
 
 
 @dataclass(frozen=True)
+class Column:
+    """A per-grain output column: name, unit and long name.
+
+    ``units`` follows the results convention: ``"nm"``, ``"nm^2"``,
+    ``"deg"``, ``"1"`` for dimensionless numbers, ``""`` for text and flags.
+    """
+
+    name: str
+    units: str
+    long_name: str
+
+
+@dataclass(frozen=True)
 class StepInfo:
     """What a step plugin is: its name, stage, version and parameters.
 
@@ -160,6 +173,9 @@ class StepInfo:
         One line for listings.
     params : tuple of Param
         Declared parameters.
+    outputs : tuple of Column
+        Per-grain columns the step adds beyond those the results layout
+        already defines, with their units and long names.
     """
 
     name: str
@@ -167,6 +183,7 @@ class StepInfo:
     version: str = "1.0"
     summary: str = ""
     params: tuple[Param, ...] = field(default_factory=tuple)
+    outputs: tuple["Column", ...] = field(default_factory=tuple)
 
     def __post_init__(self):
         if self.stage not in STAGES:

@@ -1,0 +1,170 @@
+"""Build the results datasets from staged per-frame results.
+
+Frames are numbered in the order they were listed (sorted paths, then
+pages), so the consolidated tables of a resumed run are identical, row for
+row, to those of an uninterrupted run.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import xarray as xr
+
+from .columns import FRAME_COLUMNS, GRAIN_COLUMNS, GRAIN_FILL, describe
+from .results import text_array
+
+TEXT_KINDS = ("U", "S", "O", "T")
+
+
+def _as_var(dim: str, values, column) -> xr.Variable:
+    arr = np.asarray(values)
+    if arr.dtype.kind in TEXT_KINDS or (column is not None and column.units == "" and arr.dtype.kind not in "b"):
+        if arr.dtype.kind in TEXT_KINDS:
+            arr = text_array(arr)
+    attrs = {"units": column.units if column else "1", "long_name": column.long_name if column else dim}
+    return xr.Variable((dim,), arr, attrs)
+
+
+def _fill_for(name: str, n: int, like: np.ndarray | None):
+    if name in GRAIN_FILL:
+        return np.full(n, GRAIN_FILL[name], dtype=object if isinstance(GRAIN_FILL[name], str) else None)
+    if like is not None and like.dtype.kind in TEXT_KINDS:
+        return np.full(n, "", dtype=object)
+    if like is not None and like.dtype.kind == "b":
+        return np.zeros(n, dtype=bool)
+    return np.full(n, np.nan)
+
+
+def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[str, xr.Dataset]:
+    """Assemble ``grains``, ``frames``, ``outlines`` and ``thumbnails``.
+
+    Parameters
+    ----------
+    entries : list of (frame_info, staged)
+        In frame order. ``frame_info`` holds the listing's view of the frame
+        (``source``, ``sample``, ``content_hash``, ``stage_key`` and extra
+        text fields); ``staged`` is a result from
+        :func:`pipeline.staging.read_staged`.
+    extra_columns : iterable of Column
+        Units and long names of further per-grain columns (from the steps'
+        ``StepInfo.outputs``).
+
+    Returns
+    -------
+    dict of str -> xarray.Dataset
+    """
+    known = describe(GRAIN_COLUMNS)
+    known.update(describe(extra_columns))
+    frame_known = describe(FRAME_COLUMNS)
+
+    # column names over all frames, contract columns first
+    names = [c.name for c in GRAIN_COLUMNS]
+    examples: dict[str, np.ndarray] = {}
+    for _, staged in entries:
+        for k, v in staged["columns"].items():
+            examples.setdefault(k, v)
+            if k not in names:
+                names.append(k)
+
+    per_col: dict[str, list] = {k: [] for k in names}
+    frame_rows: dict[str, list] = {}
+    field_names: list[str] = []
+    outl_grain, outl_xy = [], []
+    thumbs, thumb_meta = [], []
+    grain_offset = 0
+    for index, (info, staged) in enumerate(entries):
+        rec = dict(staged["record"])
+        rec.update({k: info[k] for k in ("source", "sample", "content_hash", "stage_key") if k in info})
+        for k in info:
+            if k not in rec:
+                rec[k] = info[k]
+                if k not in field_names:
+                    field_names.append(k)
+        cols = staged["columns"] if rec.get("status") == "ok" else {}
+        n = len(next(iter(cols.values()))) if cols else 0
+        rec["grain_count"] = n
+        for k in [c.name for c in FRAME_COLUMNS] + field_names:
+            frame_rows.setdefault(k, []).append(rec.get(k, ""))
+        if n:
+            for k in names:
+                if k == "frame":
+                    per_col[k].append(np.full(n, index, dtype=np.int64))
+                elif k == "source":
+                    per_col[k].append(np.full(n, rec["source"], dtype=object))
+                elif k == "sample":
+                    per_col[k].append(np.full(n, rec["sample"], dtype=object))
+                elif k in cols:
+                    per_col[k].append(np.asarray(cols[k]))
+                else:
+                    per_col[k].append(_fill_for(k, n, examples.get(k)))
+            offs = staged["outline_offsets"]
+            if len(offs) == n + 1 and offs[-1] == len(staged["outline_xy"]):
+                counts = np.diff(offs)
+                outl_grain.append(np.repeat(np.arange(grain_offset, grain_offset + n), counts))
+                outl_xy.append(staged["outline_xy"])
+            grain_offset += n
+        thumbs.append(staged["thumb"])
+        px = float(rec.get("pixel_size_nm") or np.nan)
+        thumb_meta.append((px * staged.get("thumb_factor", 1.0), *staged["thumb"].shape))
+
+    grains = xr.Dataset()
+    for k in names:
+        parts = per_col[k]
+        if parts:
+            values = np.concatenate([np.asarray(p) for p in parts])
+            if values.dtype.kind == "O" and k not in ("source", "sample"):
+                try:
+                    values = values.astype(float) if all(isinstance(x, (int, float)) for x in values[:50]) else values
+                except (TypeError, ValueError):
+                    pass
+        else:
+            ex = examples.get(k)
+            values = np.zeros(0, dtype=(ex.dtype if ex is not None and ex.dtype.kind not in TEXT_KINDS else
+                                        (object if (ex is not None or k in ("source", "sample", "habit")) else float)))
+            if k == "frame" or k == "label" or k == "n_corners":
+                values = np.zeros(0, dtype=np.int64)
+            if k in ("edge_cut", "split"):
+                values = np.zeros(0, dtype=bool)
+        grains[k] = _as_var("grain", values, known.get(k))
+
+    frames = xr.Dataset()
+    for k, values in frame_rows.items():
+        col = frame_known.get(k)
+        arr = np.asarray(values, dtype=object)
+        if col is not None and col.units not in ("",):
+            arr = np.asarray([np.nan if v in ("", None) else v for v in values], dtype=float)
+            if k in ("grain_count", "rows", "cols"):
+                arr = arr.astype(np.int64)
+        else:
+            arr = np.asarray(["" if v is None else str(v) for v in values], dtype=object)
+        frames[k] = _as_var("frame", arr, col or FRAME_COLUMNS[0].__class__(k, "", f"frame field {k}"))
+
+    outlines = xr.Dataset(
+        {
+            "grain": xr.Variable(("vertex",), np.concatenate(outl_grain) if outl_grain else np.zeros(0, np.int64),
+                                 {"units": "1", "long_name": "index into the grains group"}),
+            "x_nm": xr.Variable(("vertex",), np.concatenate(outl_xy)[:, 0] if outl_xy else np.zeros(0),
+                                {"units": "nm", "long_name": "outline vertex x"}),
+            "y_nm": xr.Variable(("vertex",), np.concatenate(outl_xy)[:, 1] if outl_xy else np.zeros(0),
+                                {"units": "nm", "long_name": "outline vertex y"}),
+        }
+    )
+
+    side = max([max(t.shape) for t in thumbs if t.size] or [1])
+    stack = np.zeros((len(thumbs), side, side), dtype=np.uint8)
+    for i, t in enumerate(thumbs):
+        if t.size:
+            stack[i, : t.shape[0], : t.shape[1]] = t
+    meta = np.array(thumb_meta, dtype=float).reshape(-1, 3)
+    thumbnails = xr.Dataset(
+        {
+            "image": xr.Variable(("frame", "thumb_y", "thumb_x"), stack,
+                                 {"units": "1", "long_name": "frame thumbnail (8-bit, padded with 0)"}),
+            "scale_nm": xr.Variable(("frame",), meta[:, 0], {"units": "nm", "long_name": "nm per thumbnail pixel"}),
+            "thumb_rows": xr.Variable(("frame",), meta[:, 1].astype(np.int64),
+                                      {"units": "1", "long_name": "valid thumbnail rows"}),
+            "thumb_cols": xr.Variable(("frame",), meta[:, 2].astype(np.int64),
+                                      {"units": "1", "long_name": "valid thumbnail columns"}),
+        }
+    )
+    return {"grains": grains, "frames": frames, "outlines": outlines, "thumbnails": thumbnails}

@@ -1,0 +1,163 @@
+"""Where frame tasks run: a dask.distributed cluster, or serially in-process.
+
+- ``local`` (default): a process-based ``LocalCluster`` with one worker per
+  core and one thread per worker (the kernels hold the GIL part of the
+  time), started and stopped by the run.
+- ``tcp://HOST:PORT``: an existing cluster, e.g. started with
+  ``dask scheduler`` and ``dask worker``. Plugin files named in the
+  workflow's ``plugins:`` list are shipped with ``Client.upload_file``;
+  installed plugins must be installed on the workers too.
+- ``serial``: no dask at all, frames one after another in this process
+  (for debugging a plugin with a debugger or print statements).
+
+Results are yielded as frames finish, with at most ``max_in_flight`` tasks
+submitted at a time, so memory does not grow with the number of frames.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from typing import Callable, Iterable, Iterator
+
+
+class WorkerDied(Exception):
+    """The worker process running a frame died (twice: it was retried once)."""
+
+
+class SerialExecutor:
+    """Run tasks one after another in this process."""
+
+    n_workers = 1
+    description = "serial (in-process)"
+
+    def start(self) -> None:
+        pass
+
+    def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
+        for key, args in items:
+            try:
+                yield key, func(*args)
+            except Exception as exc:  # func itself never raises for frame problems
+                yield key, exc
+
+    def close(self) -> None:
+        pass
+
+
+class DaskExecutor:
+    """Run tasks on a dask.distributed cluster (local or remote).
+
+    Parameters
+    ----------
+    address : str or None
+        Scheduler address, or ``None`` for a new local cluster.
+    workers : int or "auto"
+        Local worker processes (ignored for a remote cluster).
+    threads_per_worker : int
+        Threads per local worker.
+    memory_limit : str
+        Per-worker memory limit of a local cluster (dask syntax, "auto").
+    upload : list of str
+        Plugin ``.py`` files to ship to every worker.
+    max_in_flight : int
+        Tasks submitted at once; 0 means four per worker thread.
+    """
+
+    def __init__(self, address=None, workers="auto", threads_per_worker=1, memory_limit="auto",
+                 upload=(), max_in_flight=0):
+        self.address = address
+        self.workers = workers
+        self.threads = threads_per_worker
+        self.memory_limit = memory_limit
+        self.upload = list(upload)
+        self.max_in_flight = max_in_flight
+        self.client = None
+        self.cluster = None
+        self.n_workers = 0
+        self.description = ""
+
+    def start(self) -> None:
+        import dask
+        from distributed import Client, LocalCluster
+
+        if self.address:
+            self.client = Client(self.address, timeout="20s")
+            info = self.client.scheduler_info()
+            self.n_workers = max(1, len(info.get("workers", {})))
+            self.description = f"cluster {self.address} ({self.n_workers} workers)"
+        else:
+            n = (os.cpu_count() or 1) if self.workers == "auto" else int(self.workers)
+            # a frame whose worker dies is retried once, then reported failed
+            dask.config.set({"distributed.scheduler.allowed-failures": 1,
+                             "distributed.worker.daemon": False})
+            self.cluster = LocalCluster(n_workers=n, threads_per_worker=self.threads, processes=True,
+                                        memory_limit=self.memory_limit, dashboard_address=None,
+                                        silence_logs=logging.ERROR)
+            self.client = Client(self.cluster)
+            self.n_workers = n
+            self.description = f"local cluster ({n} worker processes x {self.threads} thread)"
+        for path in self.upload:
+            self.client.upload_file(path)
+
+    def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
+        from distributed import as_completed
+        from distributed.scheduler import KilledWorker
+
+        limit = self.max_in_flight or max(2, 4 * self.n_workers * self.threads)
+        it = iter(items)
+        keys = {}
+        ac = as_completed()
+
+        def submit_next() -> bool:
+            try:
+                key, args = next(it)
+            except StopIteration:
+                return False
+            fut = self.client.submit(func, *args, pure=False)
+            keys[fut.key] = key
+            ac.add(fut)
+            return True
+
+        for _ in range(limit):
+            if not submit_next():
+                break
+        for fut in ac:
+            key = keys.pop(fut.key)
+            try:
+                res = fut.result()
+            except KilledWorker as exc:
+                res = WorkerDied(f"worker process died while processing the frame, twice ({exc.__class__.__name__})")
+            except Exception as exc:
+                res = exc
+            fut.release()
+            yield key, res
+            submit_next()
+
+    def close(self) -> None:
+        if self.client is not None:
+            try:
+                self.client.close(timeout=10)
+            except Exception:
+                pass
+        if self.cluster is not None:
+            try:
+                self.cluster.close(timeout=10)
+            except Exception:
+                pass
+        self.client = self.cluster = None
+
+
+def make_executor(execution: dict, upload=()) -> SerialExecutor | DaskExecutor:
+    """Executor for a workflow's validated ``execution`` section."""
+    sch = execution.get("scheduler", "local")
+    if sch == "serial":
+        return SerialExecutor()
+    return DaskExecutor(
+        address=None if sch == "local" else sch,
+        workers=execution.get("workers", "auto"),
+        threads_per_worker=execution.get("threads_per_worker", 1),
+        memory_limit=execution.get("memory_limit", "auto"),
+        upload=upload,
+        max_in_flight=execution.get("max_in_flight", 0),
+    )

@@ -1,0 +1,161 @@
+"""The per-frame task: read one frame and run the chain on it.
+
+:func:`process_frame` is what the scheduler runs, one call per frame (all
+stages of a frame fused into one task). It is pure: same frame and job,
+same result; it never raises for a problem of the frame or of a plugin but
+returns a failed record naming the step, so one bad frame or plugin never
+takes down the run.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+import traceback
+from dataclasses import dataclass
+
+import numpy as np
+
+from .frame import FrameData, FrameRef
+from .manager import worker_host
+
+THUMB_SIDE = 256
+
+
+@dataclass(frozen=True)
+class FrameJob:
+    """What a worker needs besides the frame reference (picklable).
+
+    Attributes
+    ----------
+    steps : tuple of (name, params)
+        Per-frame steps in order.
+    input_options : dict
+        The workflow's validated ``input`` section.
+    plugins : tuple of str
+        Extra plugin modules / files of the workflow.
+    """
+
+    steps: tuple
+    input_options: dict
+    plugins: tuple = ()
+
+
+def thumbnail(image: np.ndarray, side: int = THUMB_SIDE) -> tuple[np.ndarray, float]:
+    """Block-mean downsample so the longest side is at most ``side`` px.
+
+    Returns
+    -------
+    thumb : ndarray of uint8, shape (r, c)
+        Scaled between the 0.5 and 99.5 percentiles.
+    factor : float
+        Frame pixels per thumbnail pixel.
+    """
+    img = np.asarray(image, dtype=np.float32)
+    f = max(1, math.ceil(max(img.shape) / side))
+    r, c = (img.shape[0] // f) * f, (img.shape[1] // f) * f
+    if r == 0 or c == 0:
+        small = img
+        f = 1
+    else:
+        small = img[:r, :c].reshape(r // f, f, c // f, f).mean(axis=(1, 3))
+    finite = small[np.isfinite(small)]
+    lo, hi = (np.percentile(finite, [0.5, 99.5]) if finite.size else (0.0, 1.0))
+    scaled = np.clip((small - lo) / max(hi - lo, 1e-12), 0, 1)
+    return (np.nan_to_num(scaled) * 255 + 0.5).astype(np.uint8), float(f)
+
+
+def _fail(record: dict, where: str, exc: BaseException) -> dict:
+    record["status"] = "failed"
+    record["error"] = f"{where}: {exc.__class__.__name__}: {exc}".replace("\n", " ")[:500]
+    record["traceback"] = traceback.format_exc()
+    return record
+
+
+def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
+    """Read a frame and run every per-frame step on it.
+
+    Parameters
+    ----------
+    ref : FrameRef
+        Frame to process.
+    sample : str
+        Its sample name.
+    job : FrameJob
+        Chain and options.
+
+    Returns
+    -------
+    dict
+        ``record`` (frame record: status, error, pixel size, timings ...),
+        ``columns`` (per-grain arrays), ``outline_xy`` (V, 2) float64 nm
+        and ``outline_offsets`` (n + 1,) int64, ``thumb`` uint8 image and
+        ``traceback`` (text, empty if ok).
+    """
+    host = worker_host(tuple(job.plugins))
+    record = {
+        "source": ref.source, "sample": sample, "status": "ok", "error": "", "grain_count": 0,
+        "pixel_size_nm": float("nan"), "calibration": "", "content_hash": ref.content_hash,
+        "rows": 0, "cols": 0, "polarity": "", "notes": "", "seconds": 0.0, "timings": {},
+        "worker_pid": os.getpid(),
+    }
+    result = {"record": record, "columns": {}, "outline_xy": np.zeros((0, 2)),
+              "outline_offsets": np.zeros(1, dtype=np.int64), "thumb": np.zeros((0, 0), np.uint8),
+              "thumb_factor": 1.0, "traceback": ""}
+    t_start = time.perf_counter()
+    timings = record["timings"]
+    try:
+        t0 = time.perf_counter()
+        frame = host.pm.hook.grainhabit_read_frame(ref=ref, options=job.input_options)
+        if frame is None:
+            raise ValueError(f"no reader plugin for {ref.source} (listed by {ref.reader or '?'})")
+        if not isinstance(frame, FrameData):
+            raise TypeError(f"reader returned {type(frame).__name__}, expected FrameData")
+        fallback = job.input_options.get("pixel_size_nm")
+        if not (frame.pixel_size_nm and np.isfinite(frame.pixel_size_nm)):
+            if fallback is None:
+                raise ValueError(f"{ref.source}: the file carries no pixel size and input.pixel_size_nm is not set")
+            frame = frame.replace(pixel_size_nm=float(fallback), calibration="workflow")
+        frame = frame.replace(sample=sample)
+        record.update(pixel_size_nm=float(frame.pixel_size_nm), calibration=frame.calibration,
+                      rows=int(frame.raw.shape[0]), cols=int(frame.raw.shape[1]))
+        result["thumb"], result["thumb_factor"] = thumbnail(frame.raw)
+        timings["read"] = time.perf_counter() - t0
+    except Exception as exc:
+        _fail(record, "read", exc)
+        result["traceback"] = record.pop("traceback")
+        record["seconds"] = time.perf_counter() - t_start
+        return result
+
+    for name, params in job.steps:
+        t0 = time.perf_counter()
+        try:
+            out = host.call_step(name, frame=frame, params=params)
+            if not isinstance(out, FrameData):
+                raise TypeError(f"returned {type(out).__name__}, expected FrameData")
+            frame = out
+        except Exception as exc:
+            _fail(record, name, exc)
+            result["traceback"] = record.pop("traceback")
+            break
+        stage = host.steps()[name].stage
+        timings[stage] = timings.get(stage, 0.0) + time.perf_counter() - t0
+
+    record["notes"] = "; ".join(frame.notes)
+    record["polarity"] = frame.polarity
+    if record["status"] == "ok":
+        cols = {k: np.asarray(v) for k, v in frame.grains.items()}
+        n = frame.n_grains
+        bad = [k for k, v in cols.items() if v.ndim != 1 or len(v) != n]
+        if bad:
+            record.update(status="failed", error=f"columns {bad} do not have one row per grain")
+        else:
+            result["columns"] = cols
+            record["grain_count"] = n
+            polys = [np.asarray(p, dtype=np.float64).reshape(-1, 2) for p in frame.outlines]
+            if len(polys) == n and n:
+                result["outline_xy"] = np.concatenate(polys)
+                result["outline_offsets"] = np.concatenate([[0], np.cumsum([len(p) for p in polys])]).astype(np.int64)
+    record["seconds"] = time.perf_counter() - t_start
+    return result
