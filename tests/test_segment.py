@@ -1,0 +1,233 @@
+"""Tests of the segment-grains step on small drawn frames with known truth.
+
+The frames are drawn here (skimage.draw polygons and discs with inner facet
+lines, facet shading, an illumination ramp, blur and noise); they are
+invented test data.
+"""
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+from skimage.draw import disk, line_aa, polygon
+from skimage.measure import label as sk_label
+
+from pipeline.frame import FrameData
+from plugins import preprocess, segment
+
+
+def regular_polygon(cy, cx, r, n=6, rot_deg=0.0):
+    """Vertices (rows, cols) of a regular n-gon of circumradius r."""
+    t = np.deg2rad(rot_deg) + np.arange(n) * 2 * np.pi / n
+    return cy + r * np.sin(t), cx + r * np.cos(t)
+
+
+def draw_frame(shape=(256, 256), grains=((128, 128, 40, 6, 0.0),), contrast="bright", seed=0,
+               gradient=0.3, noise=0.03, facets=True, blur=1.0):
+    """Draw faceted polygon grains; returns (raw float32 image, truth labels int32).
+
+    ``grains`` holds (row, col, circumradius px, n corners, rotation deg);
+    n = 0 draws a disc. Later grains lie on top of earlier ones.
+    """
+    rng = np.random.default_rng(seed)
+    truth = np.zeros(shape, np.int32)
+    signal = np.zeros(shape)
+    for k, (cy, cx, r, n, rot) in enumerate(grains, 1):
+        if n == 0:
+            rr, cc = disk((cy, cx), r, shape=shape)
+        else:
+            rr, cc = polygon(*regular_polygon(cy, cx, r, n, rot), shape)
+        truth[rr, cc] = k
+        signal[rr, cc] = 0.7
+        yy, xx = rr, cc
+        signal[yy, xx] += 0.15 * np.cos(3 * np.arctan2(yy - cy, xx - cx))  # facet shading
+        if facets and n:
+            vy, vx = regular_polygon(cy, cx, r * 0.97, n, rot)
+            for i in range(n):  # strong inner facet edges from the centre to each corner
+                lr, lc, _ = line_aa(int(cy), int(cx), int(round(vy[i])), int(round(vx[i])))
+                ok = (lr >= 0) & (lr < shape[0]) & (lc >= 0) & (lc < shape[1])
+                signal[lr[ok], lc[ok]] = 0.05 if i % 2 else 1.1
+    signal = ndi.gaussian_filter(signal, blur)
+    xx = np.mgrid[0:shape[0], 0:shape[1]][1]
+    background = 0.15 + gradient * xx / shape[1]
+    img = background + (signal if contrast == "bright" else 0.9 - signal)
+    img = img + rng.normal(0.0, noise, shape)
+    return img.astype(np.float32), truth
+
+
+def run_chain(raw, pixel_size_nm=5.0, seg_params=None, pre_params=None):
+    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=pixel_size_nm)
+    frame = preprocess.grainhabit_preprocess(frame=frame, params=pre_params or {})
+    return segment.grainhabit_segment(frame=frame, params=seg_params or {})
+
+
+def best_iou(labels, truth_mask):
+    ids, counts = np.unique(labels[truth_mask], return_counts=True)
+    counts, ids = counts[ids > 0], ids[ids > 0]
+    if ids.size == 0:
+        return 0, 0.0
+    j = ids[np.argmax(counts)]
+    pred = labels == j
+    return j, (pred & truth_mask).sum() / (pred | truth_mask).sum()
+
+
+def test_disc_area_matches_pi_r_squared():
+    # handbook geometry: area of a disc = pi r^2
+    r = 30.0
+    raw, _ = draw_frame((200, 200), grains=((100, 100, r, 0, 0.0),), facets=False)
+    out = run_chain(raw)
+    assert out.n_grains == 1
+    area = (out.labels == 1).sum()
+    assert area == pytest.approx(np.pi * r * r, rel=0.03)
+
+
+def test_clean_masks_match_skimage_label():
+    # reference library: scikit-image connected-component labelling of a clean mask
+    mask = np.zeros((160, 200), bool)
+    for cy, cx, r, n, rot in [(40, 40, 25, 4, 10), (40, 130, 20, 6, 0), (115, 60, 30, 3, 5),
+                              (120, 160, 22, 0, 0), (10, 190, 12, 4, 0)]:
+        if n == 0:
+            rr, cc = disk((cy, cx), r, shape=mask.shape)
+        else:
+            rr, cc = polygon(*regular_polygon(cy, cx, r, n, rot), mask.shape)
+        mask[rr, cc] = True
+    labels, split, _ = segment.segment_image(mask.astype(np.float32), 5.0, {"close_nm": 0.0})
+    ref = sk_label(mask, connectivity=2)
+    np.testing.assert_array_equal(labels, ref)
+    assert not split.any()
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_strong_facet_lines_keep_one_grain(contrast):
+    grains = ((80, 80, 45, 6, 0.0), (80, 190, 40, 4, 20.0), (180, 120, 45, 3, 10.0))
+    raw, truth = draw_frame((260, 260), grains=grains, contrast=contrast, seed=1)
+    out = run_chain(raw)
+    assert out.polarity == contrast
+    assert out.n_grains == 3
+    assert not out.grains["split"].any()
+    for k in range(1, 4):
+        _, iou = best_iou(out.labels, truth == k)
+        assert iou > 0.93
+
+
+def test_touching_pair_splits():
+    grains = ((100, 80, 40, 6, 0.0), (100, 150, 38, 6, 30.0))
+    raw, truth = draw_frame((200, 240), grains=grains, seed=2)
+    assert ndi.label(truth > 0)[1] == 1  # the two drawn grains do touch
+    out = run_chain(raw)
+    assert out.n_grains == 2
+    assert out.grains["split"].all()
+    for k in (1, 2):
+        _, iou = best_iou(out.labels, truth == k)
+        assert iou > 0.85
+
+
+def test_overlapping_pair_of_different_sizes_splits_at_the_neck():
+    # two overlapping discs, radii 45 and 22 px; the neck is where the circles cross
+    big, small = (110, 90, 45.0), (110, 150, 22.0)
+    raw, truth = draw_frame((220, 220), grains=((*big, 0, 0.0), (*small, 0, 0.0)), facets=False, seed=3)
+    out = run_chain(raw)
+    assert out.n_grains == 2 and out.grains["split"].all()
+    # chord through the crossing points of the two circles (handbook geometry)
+    d = small[1] - big[1]
+    x_chord = big[1] + (d ** 2 + big[2] ** 2 - small[2] ** 2) / (2 * d)
+    lab_small = out.labels[110, 160]
+    lab_big = out.labels[110, 70]
+    assert lab_small != lab_big and lab_small > 0 and lab_big > 0
+    cols_small = np.nonzero(out.labels == lab_small)[1]
+    cols_big = np.nonzero(out.labels == lab_big)[1]
+    # the dividing line lies within 3 px of the chord
+    assert abs(cols_small.min() - x_chord) <= 3
+    assert abs(cols_big.max() - x_chord) <= 3
+
+
+@pytest.mark.parametrize("n,r,rot", [(0, 35, 0), (3, 45, 0), (4, 40, 15), (6, 12, 0), (8, 40, 5), (3, 14, 30)])
+def test_single_convex_grain_never_split(n, r, rot):
+    raw, truth = draw_frame((140, 140), grains=((70, 70, r, n, rot),), seed=4)
+    out = run_chain(raw)
+    assert out.n_grains == 1
+    assert not out.grains["split"].any()
+
+
+def test_rod_never_split():
+    # an elongated prism (aspect 5) with a facet ridge along its length
+    raw, _ = draw_frame((120, 260), grains=(), seed=5)
+    mask = np.zeros(raw.shape, bool)
+    rr, cc = polygon(np.array([45, 45, 75, 75]), np.array([55, 205, 205, 55]), raw.shape)
+    mask[rr, cc] = True
+    raw = raw + ndi.gaussian_filter(np.where(mask, 0.7, 0.0), 1.0).astype(np.float32)
+    raw[60, 60:200] -= 0.5
+    out = run_chain(raw)
+    assert out.n_grains == 1 and not out.grains["split"].any()
+
+
+def test_columns_and_edge_cut():
+    grains = ((100, 100, 30, 6, 0.0), (10, 180, 25, 4, 0.0))
+    raw, _ = draw_frame((200, 220), grains=grains, seed=6)
+    out = run_chain(raw)
+    assert out.labels.dtype == np.int32
+    np.testing.assert_array_equal(out.grains["label"], [1, 2])
+    np.testing.assert_array_equal(np.unique(out.labels), [0, 1, 2])
+    # label 1 is first in row-major order: the grain cut by the top border
+    np.testing.assert_array_equal(out.grains["edge_cut"], [True, False])
+
+
+def test_empty_frame_gives_zero_grains_with_note():
+    raw, _ = draw_frame((128, 128), grains=(), seed=7)
+    out = run_chain(raw)
+    assert out.n_grains == 0
+    assert out.labels.shape == raw.shape and out.labels.max() == 0
+    assert any("no grains" in note for note in out.notes)
+
+
+def test_constant_frame_gives_zero_grains():
+    out = run_chain(np.full((64, 64), 3.0, np.float32))
+    assert out.n_grains == 0 and any("no grains" in note for note in out.notes)
+
+
+def test_all_foreground_frame_is_a_clear_error():
+    image = np.ones((100, 100), np.float32)
+    image[:3, :3] = 0.0
+    frame = FrameData(source="t.tif", sample="s", raw=image, pixel_size_nm=5.0, image=image)
+    with pytest.raises(ValueError, match="foreground covers"):
+        segment.grainhabit_segment(frame=frame, params={})
+
+
+def test_missing_image_is_a_clear_error():
+    frame = FrameData(source="t.tif", sample="s", raw=np.zeros((10, 10), np.float32), pixel_size_nm=5.0)
+    with pytest.raises(ValueError, match="preprocess"):
+        segment.grainhabit_segment(frame=frame, params={})
+
+
+def test_min_ecd_scales_with_pixel_size():
+    # one disc of radius 20 px: ECD 40 px = 200 nm at 5 nm/px, 400 nm at 10 nm/px
+    raw, _ = draw_frame((120, 120), grains=((60, 60, 20, 0, 0.0),), facets=False, seed=8)
+    params = {"min_ecd_nm": 300.0}
+    assert run_chain(raw, 5.0, params).n_grains == 0
+    assert run_chain(raw, 10.0, params).n_grains == 1
+
+
+def test_split_tuning_params_in_nm_scale():
+    # the same touching pair at two pixel sizes with min_ecd in nm scaled alike: same result
+    grains = ((100, 80, 40, 6, 0.0), (100, 150, 38, 6, 30.0))
+    raw, _ = draw_frame((200, 240), grains=grains, seed=2)
+    a = run_chain(raw, 5.0, {"min_ecd_nm": 40.0}, {"background_nm": 4000.0})
+    b = run_chain(raw, 10.0, {"min_ecd_nm": 80.0}, {"background_nm": 8000.0})
+    np.testing.assert_array_equal(a.labels, b.labels)
+
+
+@pytest.mark.parametrize("method", ["local", "sauvola"])
+def test_local_thresholds_on_uneven_frame(method):
+    grains = ((70, 70, 35, 6, 0.0), (70, 200, 35, 4, 10.0), (180, 130, 40, 3, 0.0))
+    raw, truth = draw_frame((260, 260), grains=grains, gradient=0.6, seed=9)
+    out = run_chain(raw, 5.0, {"threshold": method, "local_block_nm": 800.0})
+    assert out.n_grains == 3
+    for k in range(1, 4):
+        assert best_iou(out.labels, truth == k)[1] > 0.9
+
+
+def test_bad_threshold_name_is_refused():
+    from pipeline.params import ParamError
+
+    raw, _ = draw_frame((64, 64), grains=())
+    with pytest.raises(ParamError):
+        run_chain(raw, 5.0, {"threshold": "magic"})
