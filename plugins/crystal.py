@@ -190,11 +190,13 @@ def polygon_area(poly: np.ndarray) -> float:
 
 def _dedupe(points: np.ndarray, tol: float) -> np.ndarray:
     """Merge points closer than ``tol`` (keeps the first of each cluster)."""
-    keep: list[np.ndarray] = []
-    for p in points:
-        if not keep or np.min(np.linalg.norm(np.asarray(keep) - p, axis=1)) > tol:
-            keep.append(p)
-    return np.asarray(keep)
+    dist = np.linalg.norm(points[:, None, :] - points[None, :, :], axis=-1)
+    close = np.triu(dist <= tol, k=1)
+    keep = np.ones(len(points), dtype=bool)
+    for i in range(len(points)):
+        if keep[i]:
+            keep[close[i]] = False
+    return points[keep]
 
 
 def polyhedron_from_halfspaces(normals, offsets, miller=None, kind: str = "polyhedron"
@@ -237,24 +239,26 @@ def polyhedron_from_halfspaces(normals, offsets, miller=None, kind: str = "polyh
     verts = _dedupe(hs.intersections, _VERTEX_TOL * scale)
 
     faces, fnormals, foffsets, fmiller, fareas = [], [], [], [], []
+    on_plane = np.abs(verts @ n.T - d) <= _PLANE_TOL * scale        # (n_vertices, m)
     for i in range(n.shape[0]):
-        on = np.flatnonzero(np.abs(verts @ n[i] - d[i]) <= _PLANE_TOL * scale)
+        on = np.flatnonzero(on_plane[:, i])
         if on.size < 3:
             continue
-        # order around the face centroid, counter-clockwise about the outward normal
-        c = verts[on].mean(axis=0)
-        u = verts[on[0]] - c
-        u /= np.linalg.norm(u)
-        w = np.cross(n[i], u)
-        rel = verts[on] - c
-        ang = np.arctan2(rel @ w, rel @ u)
-        order = on[np.argsort(ang)]
-        p = verts[order]
-        area = 0.5 * float(np.dot(np.sum(np.cross(p, np.roll(p, -1, axis=0)), axis=0), n[i]))
+        # order around the face centroid, counter-clockwise about the outward
+        # normal, in an in-plane basis (u, w = n x u)
+        rel = verts[on] - verts[on].mean(axis=0)
+        u = rel[0] / np.linalg.norm(rel[0])
+        ni = n[i]
+        w = np.array([ni[1] * u[2] - ni[2] * u[1], ni[2] * u[0] - ni[0] * u[2],
+                      ni[0] * u[1] - ni[1] * u[0]])
+        a2, b2 = rel @ u, rel @ w
+        o = np.argsort(np.arctan2(b2, a2))
+        a2, b2 = a2[o], b2[o]
+        area = 0.5 * float(np.dot(a2, np.roll(b2, -1)) - np.dot(b2, np.roll(a2, -1)))
         if area <= _AREA_TOL * scale * scale:
             continue
-        faces.append(order.astype(int))
-        fnormals.append(n[i])
+        faces.append(on[o].astype(int))
+        fnormals.append(ni)
         foffsets.append(d[i])
         fmiller.append(tuple(miller[i]))
         fareas.append(area)
