@@ -43,7 +43,7 @@ def _outline(habit: str, ecd: float, cx: float, cy: float, rng) -> np.ndarray:
 
 
 def make_groups(samples: dict, frames_per_sample: int = 3, grains_per_frame: int = 25, seed: int = 0,
-                px_nm: float = 2.0, size_px: int = 600, fail_one: bool = True, run_time: str = "2031-05-04T02:00:00"):
+                px_nm: float = 8.0, size_px: int = 1000, fail_one: bool = True, run_time: str = "2031-05-04T02:00:00"):
     """Build the groups and root attrs of a small invented results store.
 
     ``samples`` maps sample name -> dict(gm=nm, gsd=, habits={name: prob},
@@ -83,7 +83,10 @@ def make_groups(samples: dict, frames_per_sample: int = 3, grains_per_frame: int
             probs = np.array([spec["habits"][h] for h in habits], float)
             for lab in range(1, n + 1):
                 ecd = rng.lognormal(np.log(spec["gm"]), np.log(spec["gsd"]))
-                cx, cy = rng.uniform(0, field_nm, 2)
+                # jittered grid, so grains rarely overlap; the outer ring can touch the border
+                side = int(np.ceil(np.sqrt(grains_per_frame)))
+                cell = field_nm / side
+                cx, cy = (np.array([(lab - 1) % side, (lab - 1) // side]) + 0.5) * cell + rng.uniform(-0.2, 0.2, 2) * cell
                 h = habits[rng.choice(len(habits), p=probs / probs.sum())]
                 poly = _outline(h, ecd, cx, cy, rng)
                 edge = bool((poly.min() < 0) or (poly.max() > field_nm))
