@@ -169,10 +169,10 @@ def test_dark_contrast_thin_plates_pale_thick_grains_dark():
     # source: Beer-Lambert attenuation I = I0 exp(-mu t) (mass-thickness contrast)
     cube = GrainSpec("cube", 300.0, 250.0, 250.0, alpha=1.0)
     plate = GrainSpec("tabular_hexagon", 300.0, 750.0, 250.0, edge_ratio=1.0, aspect=10.0)
-    mu = 1 / 150.0
+    mu, loss = 1 / 150.0, 0.2
     f = sy.render_field([cube, plate], (100, 200), PX, "dark", noise=0.0, gradient=0.0,
-                        blur_px=0.0, mu_per_nm=mu)
-    bg = 0.88
+                        blur_px=0.0, mu_per_nm=mu, bragg_loss=loss)
+    bg = 0.88 * (1 - loss)
     ic, ip = interior(f.labels, 1, 2), interior(f.labels, 2, 2)
     # cube thickness = its edge = ECD * sqrt(pi)/2; plate thickness = ECD / 10
     assert f.image[ic].mean() == pytest.approx(bg * np.exp(-mu * 300 * np.sqrt(np.pi) / 2), rel=1e-3)
