@@ -193,7 +193,7 @@ def _dedupe(points: np.ndarray, tol: float) -> np.ndarray:
     dist = np.linalg.norm(points[:, None, :] - points[None, :, :], axis=-1)
     close = np.triu(dist <= tol, k=1)
     keep = np.ones(len(points), dtype=bool)
-    for i in range(len(points)):
+    for i in np.flatnonzero(close.any(axis=1)):
         if keep[i]:
             keep[close[i]] = False
     return points[keep]
@@ -239,26 +239,30 @@ def polyhedron_from_halfspaces(normals, offsets, miller=None, kind: str = "polyh
     verts = _dedupe(hs.intersections, _VERTEX_TOL * scale)
 
     faces, fnormals, foffsets, fmiller, fareas = [], [], [], [], []
-    on_plane = np.abs(verts @ n.T - d) <= _PLANE_TOL * scale        # (n_vertices, m)
-    for i in range(n.shape[0]):
-        on = np.flatnonzero(on_plane[:, i])
-        if on.size < 3:
-            continue
-        # order around the face centroid, counter-clockwise about the outward
-        # normal, in an in-plane basis (u, w = n x u)
-        rel = verts[on] - verts[on].mean(axis=0)
-        u = rel[0] / np.linalg.norm(rel[0])
-        ni = n[i]
-        w = np.array([ni[1] * u[2] - ni[2] * u[1], ni[2] * u[0] - ni[0] * u[2],
-                      ni[0] * u[1] - ni[1] * u[0]])
-        a2, b2 = rel @ u, rel @ w
-        o = np.argsort(np.arctan2(b2, a2))
-        a2, b2 = a2[o], b2[o]
-        area = 0.5 * float(np.dot(a2, np.roll(b2, -1)) - np.dot(b2, np.roll(a2, -1)))
+    on_plane = (np.abs(verts @ n.T - d) <= _PLANE_TOL * scale).T     # (m, n_vertices)
+    count = on_plane.sum(axis=1)
+    # in-plane basis (u, w = n x u) of every plane, from the coordinate axis
+    # least aligned with its normal
+    axis = np.eye(3)[np.argmin(np.abs(n), axis=1)]
+    u = np.cross(n, axis)
+    u /= np.linalg.norm(u, axis=1, keepdims=True)
+    w = np.cross(n, u)
+    cen = (on_plane @ verts) / np.maximum(count, 1)[:, None]
+    rel = verts[None, :, :] - cen[:, None, :]                           # (m, n_v, 3)
+    ca = np.einsum("mvk,mk->mv", rel, u)
+    cb = np.einsum("mvk,mk->mv", rel, w)
+    # counter-clockwise about the outward normal; vertices off the plane last
+    ang = np.where(on_plane, np.arctan2(cb, ca), np.inf)
+    order = np.argsort(ang, axis=1)
+    for i in np.flatnonzero(count >= 3):
+        idx = order[i, :count[i]]
+        a2, b2 = ca[i, idx].tolist(), cb[i, idx].tolist()
+        k = len(a2)
+        area = 0.5 * sum(a2[j] * b2[(j + 1) % k] - a2[(j + 1) % k] * b2[j] for j in range(k))
         if area <= _AREA_TOL * scale * scale:
             continue
-        faces.append(on[o].astype(int))
-        fnormals.append(ni)
+        faces.append(idx.astype(int))
+        fnormals.append(n[i])
         foffsets.append(d[i])
         fmiller.append(tuple(miller[i]))
         fareas.append(area)

@@ -207,16 +207,3 @@ def test_bad_inputs_raise():
         sy.random_grains(5, (100, 100), PX, {"sphere": 1.0}, 50.0)
     with pytest.raises(ValueError, match="could not place"):
         sy.random_grains(200, (100, 100), PX, {"cube": 1.0}, 100.0)
-
-
-def bench_render_1024_150_grains():
-    """Speed target (not a timed test): 1024 x 1024, 150 grains, both contrasts."""
-    import time
-    t0 = time.perf_counter()
-    grains, _ = sy.random_grains(150, (1024, 1024), PX, ALL_HABITS, 250.0, seed=1)
-    t1 = time.perf_counter()
-    sy.render_field(grains, (1024, 1024), PX, "bright", seed=1)
-    t2 = time.perf_counter()
-    sy.render_field(grains, (1024, 1024), PX, "dark", seed=1)
-    t3 = time.perf_counter()
-    return {"place_s": t1 - t0, "bright_s": t2 - t1, "dark_s": t3 - t2}
