@@ -225,3 +225,13 @@ def test_two_sample_tests():
     d = st.median_difference_ci(a, b, n_resamples=1000, rng=np.random.default_rng(0))
     # true difference of medians is 440 - 400 = 40; the interval excludes 0
     assert 0 < float(d.low) < 40 < float(d.high)
+
+
+def test_ks_false_alarm_rate_under_null():
+    # under the null hypothesis the KS p-value is uniform (scipy.stats.ks_2samp, exact
+    # for these sizes): about 5 % of 400 same-population pairs fall below 0.05
+    # (binomial SE 1.1 %; accept 2-9 %)
+    rng = np.random.default_rng(7)
+    p = np.array([st.ks_test(rng.lognormal(6, 0.15, 140), rng.lognormal(6, 0.15, 140))[1] for _ in range(400)])
+    rate = float(np.mean(p < 0.05))
+    assert 0.02 <= rate <= 0.09, rate

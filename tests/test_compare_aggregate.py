@@ -1,0 +1,110 @@
+"""Tests of the compare and aggregate commands (invented test data)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+import numpy as np
+import pytest
+
+from pipeline.results import open_results, write_results
+from plugins import aggregate, compare, report
+from test_summary import SAMPLES, make_groups, make_store
+
+
+def _parse(module, argv):
+    parser = argparse.ArgumentParser(prog="grainhabit")
+    module.grainhabit_add_commands(subparsers=parser.add_subparsers())
+    return parser.parse_args(argv)
+
+
+@pytest.fixture(scope="module")
+def stores(tmp_path_factory):
+    base = tmp_path_factory.mktemp("cmp")
+    lognormals = {
+        "s400": dict(gm=400.0, gsd=1.15, habits={"cube": 0.7, "octahedron": 0.3}, alpha=(1.0, 0.2), batch="L1"),
+        "s400b": dict(gm=400.0, gsd=1.15, habits={"cube": 0.7, "octahedron": 0.3}, alpha=(1.0, 0.2), batch="L2"),
+        "s480": dict(gm=480.0, gsd=1.15, habits={"cube": 0.3, "octahedron": 0.7}, alpha=(2.0, 0.2), batch="L3"),
+    }
+    # seed 1: under the null hypothesis p is uniform, so any one draw can fall below 0.05
+    # (seed 0 gives p = 0.0085 for s400 vs s400b); the false-alarm rate itself is
+    # checked over many draws in test_statistics.py
+    one = make_store(base / "one.zarr", lognormals, frames_per_sample=4, grains_per_frame=36, fail_one=False,
+                     seed=1)
+    return base, one
+
+
+def test_compare_different_and_same_lognormals(stores, capsys):
+    base, one = stores
+    # scipy.stats.ks_2samp / chi2_contingency as reference tests: a 20 % shift of the
+    # median size with ~140 grains each is detected, two draws of the same lognormal are not
+    args = _parse(compare, ["compare", one, "--a", "s400", "--b", "s480", "--json", "--bootstrap", "500"])
+    assert args.handler(args) == 0
+    diff = json.loads(capsys.readouterr().out)
+    assert diff["ks"]["pvalue"] < 1e-6 and diff["chi2"]["pvalue"] < 1e-4
+    am = diff["alpha_median_difference"]
+    # drawn alpha medians 1.0 and 2.0 (sd 0.2, ~140 grains: SE of the difference ~0.03);
+    # the interval brackets its estimate and lies near the true difference 1.0
+    assert am["ci_lo"] < am["estimate"] < am["ci_hi"]
+    assert 0.85 < am["ci_lo"] and am["ci_hi"] < 1.15
+    args = _parse(compare, ["compare", one, "--a", "s400", "--b", "s400b", "--json", "--bootstrap", "500"])
+    assert args.handler(args) == 0
+    same = json.loads(capsys.readouterr().out)
+    assert same["ks"]["pvalue"] > 0.05 and same["chi2"]["pvalue"] > 0.05
+    sa = same["alpha_median_difference"]
+    assert abs(sa["estimate"]) < 0.15 and sa["ci_hi"] - sa["ci_lo"] < 0.3
+    args = _parse(compare, ["compare", one, "--a", "s400", "--b", "s480"])
+    assert args.handler(args) == 0
+    assert "Kolmogorov-Smirnov" in capsys.readouterr().out
+
+
+def test_compare_unknown_sample_is_one_line_exit_2(stores, capsys):
+    _, one = stores
+    args = _parse(compare, ["compare", one, "--a", "s400", "--b", "nope"])
+    assert args.handler(args) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "no grains of sample 'nope'" in err
+
+
+def test_aggregate_drops_duplicated_frame_and_report_works(tmp_path, capsys):
+    # store 1 (older run) and store 2 (newer run) share sample batch_A's frames:
+    # same content hashes -> the newer copies are kept, the older ones dropped
+    s1 = make_store(tmp_path / "a.zarr", {"batch_A": SAMPLES["batch_A"], "batch_B": SAMPLES["batch_B"]},
+                    frames_per_sample=2, grains_per_frame=16, seed=1, fail_one=False,
+                    run_time="2031-05-04T02:00:00")
+    groups_b, attrs_b = make_groups({"batch_A": SAMPLES["batch_A"], "batch_C": SAMPLES["batch_C"]},
+                                    frames_per_sample=2, grains_per_frame=16, seed=1, fail_one=False,
+                                    run_time="2031-05-05T02:00:00")
+    s2 = str(tmp_path / "b.zarr")
+    write_results(s2, groups_b, attrs_b)
+    assert str(groups_b["frames"].content_hash.values[0]) == "1-batch_A-0"
+    into = str(tmp_path / "all.zarr")
+    args = _parse(aggregate, ["aggregate", s1, s2, "--into", into])
+    assert args.handler(args) == 0
+    out = capsys.readouterr().out
+    assert "2 duplicate frame(s) dropped" in out  # batch_A frames 0 and 1 are in both
+    res = open_results(into)
+    fr, gr, ol = res["frames"], res["grains"], res["outlines"]
+    assert fr.sizes["frame"] == 6
+    hashes = [str(h) for h in fr.content_hash.values]
+    assert len(set(hashes)) == 6
+    # the kept batch_A frames come from the newer store b
+    assert gr.sizes["grain"] == 6 * 16
+    gf = np.asarray(gr.frame.values)
+    assert gf.min() == 0 and gf.max() == 5
+    assert np.array_equal(np.unique(np.asarray(ol.grain.values)), np.arange(gr.sizes["grain"]))
+    # re-indexing kept each grain's outline: its centroid matches the mean of its vertices
+    g = np.asarray(ol.grain.values)
+    cx = np.bincount(g, weights=np.asarray(ol.x_nm.values)) / np.bincount(g)
+    np.testing.assert_allclose(cx, gr.centroid_x_nm.values)
+    assert res["thumbnails"].sizes["frame"] == 6
+    summ = res["summary"]
+    assert set(summ.sample.values) == {"batch_A", "batch_B", "batch_C"}
+    assert int(summ.grain_count.sum()) + int(summ.edge_cut_count.sum()) == gr.sizes["grain"]
+    a_new = groups_b["summary"].sel(sample="batch_A")
+    assert float(summ.sel(sample="batch_A").ecd_mean_nm) == pytest.approx(float(a_new.ecd_mean_nm))
+    runs = json.loads(res["/"].attrs["runs"])
+    assert runs[-1]["kind"] == "aggregate" and runs[-1]["duplicate_frames_dropped"] == 2
+    files = report.write_report(into, tmp_path / "rep", {"gallery_frames": 2})
+    assert files[0].endswith("index.html")
