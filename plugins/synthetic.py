@@ -611,8 +611,8 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
     seed : int
     margin_nm : float, optional
         Minimum distance of each grain's circumscribed circle from the frame
-        border (nm; negative lets grains be cut by the border). Default: 3
-        pixels.
+        border (nm). Negative lets grains be cut by the border (their centres
+        stay inside the field). Default: 3 pixels.
 
     Returns
     -------
@@ -685,7 +685,7 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
     def free(xy, r):
         """Which candidate centres (B, 2) keep radius r clear of the border and of
         everything placed so far."""
-        lo = margin + r
+        lo = max(margin + r, 0.0)          # centres stay inside the field
         ok = (xy[:, 0] >= lo) & (xy[:, 0] <= width - lo) & (xy[:, 1] >= lo) & (xy[:, 1] <= height - lo)
         if placed_r.size:
             dist = np.hypot(xy[:, None, 0] - placed_xy[None, :, 0], xy[:, None, 1] - placed_xy[None, :, 1])
@@ -695,7 +695,7 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
     for unit in units:
         a = unit[0]
         ra = radius[a]
-        lo = margin + ra
+        lo = max(margin + ra, 0.0)
         offset = np.zeros(2)
         if len(unit) == 2:
             b = unit[1]

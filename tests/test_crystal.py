@@ -259,3 +259,32 @@ def test_tabular_prism_outline(e, n_sides):
 def test_rod_prism_outline():
     out = cr.project(cr.rod_prism(5.0), cr.resting_rotation("100"))
     assert sorted(np.round(edge_lengths(out), 12)) == [1, 1, 5, 5]
+
+
+@pytest.mark.parametrize("alpha,face", [(1.0, "111"), (2.0, "100"), (2.4, "111"), (3.0, "111")])
+def test_visible_faces_tile_the_outline(alpha, face):
+    # source: closed-form geometry: the upper surface of a convex body projects
+    # one-to-one onto its silhouette, so the visible faces' projected areas sum
+    # to the outline area, and each is A_i * n_z (area projection)
+    p = cr.wulff_polyhedron(alpha)
+    r = cr.in_plane_rotation(23.0) @ cr.resting_rotation(face)
+    vis = cr.visible_faces(p, r)
+    areas = [cr.polygon_area(f.polygon) for f in vis]
+    assert all(a > 0 for a in areas)                       # CCW from above
+    assert sum(areas) == pytest.approx(cr.polygon_area(cr.project(p, r)), rel=1e-9)
+    for f, a in zip(vis, areas):
+        assert a == pytest.approx(p.face_areas[f.index] * f.normal[2], rel=1e-9)
+
+
+def test_in_plane_rotation_is_counter_clockwise():
+    assert np.allclose(cr.in_plane_rotation(90.0) @ [1, 0, 0], [0, 1, 0])
+    out0 = cr.project(cr.rod_prism(4.0), cr.resting_rotation("100"))
+    out30 = cr.project(cr.rod_prism(4.0), cr.in_plane_rotation(30.0) @ cr.resting_rotation("100"))
+    # the long axis turns from 0 to 30 degrees
+    def long_axis_deg(o):
+        e = np.roll(o, -1, axis=0) - o
+        k = np.argmax(np.linalg.norm(e, axis=1))
+        return np.degrees(np.arctan2(e[k, 1], e[k, 0])) % 180
+    assert long_axis_deg(out0) == pytest.approx(0.0, abs=1e-9) or \
+        long_axis_deg(out0) == pytest.approx(180.0, abs=1e-9)
+    assert long_axis_deg(out30) == pytest.approx(30.0, abs=1e-9)

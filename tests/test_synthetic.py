@@ -207,3 +207,13 @@ def test_bad_inputs_raise():
         sy.random_grains(5, (100, 100), PX, {"sphere": 1.0}, 50.0)
     with pytest.raises(ValueError, match="could not place"):
         sy.random_grains(200, (100, 100), PX, {"cube": 1.0}, 100.0)
+
+
+def test_negative_margin_allows_edge_cut_grains():
+    grains, _ = sy.random_grains(15, (200, 200), PX, {"cube": 1.0}, 120.0, touching_fraction=0.0,
+                                 margin_nm=-1e6, seed=4)
+    f = sy.render_field(grains, (200, 200), PX, noise=0.0)
+    border = np.concatenate([f.labels[0], f.labels[-1], f.labels[:, 0], f.labels[:, -1]])
+    assert np.count_nonzero(np.unique(border)) >= 3
+    # every grain is still seen (its centre lies inside the field)
+    assert set(np.unique(f.labels)) == set(range(len(grains) + 1))
