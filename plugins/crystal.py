@@ -26,6 +26,8 @@ edge midpoints), alpha >= 3 an octahedron; between are truncated cubes
 
 References
 ----------
+(Cited from memory.)
+
 .. [1] G. Wulff, "Zur Frage der Geschwindigkeit des Wachsthums und der
    Auflösung der Krystallflächen", Z. Kristallogr. 34, 449-530, 1901.
 .. [2] A. L. Cauchy, "Mémoire sur la rectification des courbes et la
@@ -79,7 +81,7 @@ MILLER_110: tuple[tuple[int, int, int], ...] = tuple(
 
 _VERTEX_TOL = 1e-7   # relative, for merging repeated vertices
 _PLANE_TOL = 1e-7    # relative, for a vertex lying on a plane
-_AREA_TOL = 1e-9     # relative (to the squared scale), for a face to count
+_AREA_TOL = 1e-12    # relative (to the squared scale), for a face to count
 
 
 # --------------------------------------------------------------------------- data

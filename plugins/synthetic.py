@@ -27,6 +27,8 @@ lab frame of :mod:`plugins.crystal` is used with lab y pointing up the image
 
 References
 ----------
+(Cited from memory.)
+
 .. [1] L. Reimer, "Scanning Electron Microscopy", 2nd ed., Springer, 1998,
    doi:10.1007/978-3-540-38967-5 (secondary-electron yield ~ 1/cos(tilt);
    edge effect).
