@@ -21,7 +21,7 @@ from . import __version__
 from .lock import LockHeld
 from .logs import setup
 from .manager import Host, make_host
-from .workflow import WorkflowError, find_inputs, validate
+from .workflow import WorkflowError, find_inputs, plugin_specs, validate
 
 EXIT_OK, EXIT_FAILED_FRAMES, EXIT_USAGE, EXIT_LOCKED, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
@@ -53,7 +53,20 @@ def _overrides(args) -> dict:
     return {"execution": {"scheduler": getattr(args, "scheduler", None), "workers": getattr(args, "workers", None)}}
 
 
+def _host_for(workflow: str, host: Host) -> Host:
+    """The host with the workflow's own ``plugins:`` loaded (they must load)."""
+    specs = plugin_specs(workflow)
+    if not specs:
+        return host
+    extra = make_host(tuple(specs))
+    bad = [p for p in extra.problems if p.origin == "workflow"]
+    if bad:
+        raise WorkflowError(workflow, "plugins", bad[0].message)
+    return extra
+
+
 def cmd_check(args, host: Host) -> int:
+    host = _host_for(args.workflow, host)
     plan = validate(args.workflow, host, _overrides(args))
     files, unmatched = find_inputs(plan)
     from .runner import list_frames
@@ -84,6 +97,7 @@ def cmd_check(args, host: Host) -> int:
 def cmd_run(args, host: Host) -> int:
     from .runner import run
 
+    host = _host_for(args.workflow, host)
     plan = validate(args.workflow, host, _overrides(args))
     out = plan.config["output"]
     log_file = out["log"] or (out["results"].rstrip("/") + ".log")
@@ -91,13 +105,6 @@ def cmd_run(args, host: Host) -> int:
 
     os.makedirs(os.path.dirname(os.path.abspath(log_file)), exist_ok=True)
     log = setup(json_lines=args.log_json, log_file=log_file, debug=args.debug)
-    if plan.config["plugins"]:
-        extra = make_host(tuple(plan.config["plugins"]))
-        bad = [p for p in extra.problems if p.origin == "workflow"]
-        if bad:
-            raise WorkflowError(plan.file, "plugins", bad[0].message)
-        host = extra
-        plan = validate(args.workflow, host, _overrides(args))
     outcome = run(plan, host, fresh=args.fresh)
     for source, error in outcome.failures:
         log.error("failed frame: %s: %s", source, error)

@@ -134,7 +134,7 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
         if col is not None and col.units not in ("",):
             arr = np.asarray([np.nan if v in ("", None) else v for v in values], dtype=float)
             if k in ("grain_count", "rows", "cols"):
-                arr = arr.astype(np.int64)
+                arr = np.nan_to_num(arr, nan=0).astype(np.int64)
         else:
             arr = np.asarray(["" if v is None else str(v) for v in values], dtype=object)
         frames[k] = _as_var("frame", arr, col or FRAME_COLUMNS[0].__class__(k, "", f"frame field {k}"))

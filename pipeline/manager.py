@@ -8,6 +8,7 @@ variable ``GRAINHABIT_NO_AUTOLOAD=1`` to skip entry points (handy in tests).
 
 from __future__ import annotations
 
+import hashlib
 import importlib
 import importlib.metadata
 import importlib.util
@@ -178,8 +179,12 @@ def _load_module(spec: str) -> ModuleType:
     if spec.endswith(".py"):
         path = Path(spec)
         if not path.is_file():
+            # on a remote worker the file arrives by Client.upload_file, importable by its stem
+            if importlib.util.find_spec(path.stem) is not None:
+                return importlib.import_module(path.stem)
             raise FileNotFoundError(f"no such plugin file: {spec}")
-        mod_name = "grainhabit_local_" + path.stem
+        digest = hashlib.sha1(str(path.resolve()).encode()).hexdigest()[:8]
+        mod_name = f"grainhabit_local_{path.stem}_{digest}"
         if mod_name in sys.modules:
             return sys.modules[mod_name]
         module_spec = importlib.util.spec_from_file_location(mod_name, path)

@@ -223,6 +223,30 @@ def _resolve_path(base: Path, p: str) -> str:
     return p if os.path.isabs(p) else str((base / p))
 
 
+def plugin_specs(path: str) -> list[str]:
+    """The workflow's extra ``plugins:`` (module names, or ``.py`` paths made absolute).
+
+    Read before full validation, so that the steps those plugins provide
+    are known when the ``steps:`` list is checked.
+
+    Raises
+    ------
+    WorkflowError
+        If the file or its ``plugins`` key is invalid.
+    """
+    _, data = load_yaml(path)
+    specs = data.get("plugins") or []
+    if not isinstance(specs, list):
+        raise WorkflowError(path, "plugins", f"expected a list, got {specs!r}")
+    base = Path(path).resolve().parent
+    out = []
+    for i, p in enumerate(specs):
+        if not isinstance(p, str):
+            raise WorkflowError(path, f"plugins[{i}]", f"expected a module name or .py path, got {p!r}")
+        out.append(_resolve_path(base, p) if p.endswith(".py") else p)
+    return out
+
+
 def validate(path: str, host: Host, overrides: dict | None = None) -> Plan:
     """Load and validate a workflow file against the schema and the plugins.
 
