@@ -93,6 +93,8 @@ STEP = StepInfo(
               doc="Pixels per independent interior sample, inverse (blur makes neighbours correlated)."),
         Param("erode_px", int, 2, unit="px", low=0,
               doc="Pixels left out along the outline before reading the interior (rim, blur)."),
+        Param("facet_edge_px", float, 2.0, unit="px", low=0.0,
+              doc="SEM: pixels this close to a predicted facet edge (bright edge lines) are left out."),
         Param("fit_edge_cut", bool, False,
               doc="Also fit grains that touch the frame border (their outline is cut)."),
     ),
@@ -340,12 +342,15 @@ class Interior:
     mode : str
         'facets' (uniform brightness per facet) or 'thickness' (linear in
         projected thickness).
+    pixel : float
+        One pixel in the same units (1 / ECD in pixels).
     """
 
     x: np.ndarray
     y: np.ndarray
     value: np.ndarray
     mode: str
+    pixel: float = 0.0
 
 
 def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2, max_pixels=2500):
@@ -386,21 +391,46 @@ def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2, max_p
     x = (cc + 0.5 - centroid_xy_px[0]) / ecd_px
     y = -(rr + 0.5 - centroid_xy_px[1]) / ecd_px
     v = np.asarray(signal, float)[rr, cc]
-    return Interior(x, y, v, mode)
+    return Interior(x, y, v, mode, 1.0 / ecd_px)
 
 
-def _interior_rss(interior: Interior, body, rotation) -> float:
+def _interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0) -> float:
     """Residual sum of squares of the interior under one placed model.
 
     'facets': one free level per visible facet plus a plane a x + b y (an
     illumination or detector gradient across the grain); 'thickness': an
     affine function of the model's projected thickness plus the same plane.
+    The facet seen at (x, y) is the upward plane of lowest height there
+    (convex body), the thickness z_top - z_bottom as in
+    :func:`plugins.crystal.thickness_map`; samples just outside the model
+    outline take the nearest facet. In 'facets' mode samples closer than
+    ``edge_px`` pixels to a predicted facet edge are left out (secondary
+    electrons make edges bright lines, which would otherwise pull every
+    boundary towards the brighter facet) and the RSS is scaled back to all
+    samples, RSS * p / p_kept, so models stay comparable.
     """
     x, y, v = interior.x, interior.y, interior.value
+    nl = body.face_normals @ np.asarray(rotation).T
+    up = nl[:, 2] > 1e-9
+    # height of every upward plane at (x, y): z = (d - n_x x - n_y y) / n_z
+    coef_up = np.vstack([-nl[up, 0], -nl[up, 1], body.face_offsets[up]]) / nl[up, 2]
+    pts = np.column_stack([x, y, np.ones_like(x)])
+    zup = pts @ coef_up
+    scale = 1.0
     if interior.mode == "facets":
-        idx = cr.top_face_map(body, rotation, x, y)
-        idx = np.where(idx < 0, body.n_faces, idx)          # just outside: one extra group
-        m = body.n_faces + 1
+        idx = np.argmin(zup, axis=1)
+        m = int(up.sum())
+        if m > 1 and edge_px > 0:
+            g = coef_up[:2].T                                   # (m, 2) height gradients
+            gd = np.linalg.norm(g[:, None, :] - g[None, :, :], axis=-1)
+            ztop = zup[np.arange(v.size), idx]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dist = (zup - ztop[:, None]) / gd[idx]
+            dist[np.arange(v.size), idx] = np.inf
+            far = np.nanmin(np.where(np.isfinite(dist), dist, np.inf), axis=1) >= edge_px * interior.pixel
+            if far.sum() >= 30 and not far.all():
+                scale = v.size / far.sum()
+                x, y, v, idx = x[far], y[far], v[far], idx[far]
         cnt = np.bincount(idx, minlength=m).astype(float)
         keep = np.flatnonzero(cnt > 0)
         k = keep.size
@@ -417,13 +447,15 @@ def _interior_rss(interior: Interior, body, rotation) -> float:
         rhs[:k] = np.bincount(idx, v, minlength=m)[keep]
         rhs[k], rhs[k + 1] = x @ v, y @ v
     else:
-        t = cr.thickness_map(body, rotation, x, y)
+        dn = nl[:, 2] < -1e-9
+        coef_dn = np.vstack([-nl[dn, 0], -nl[dn, 1], body.face_offsets[dn]]) / nl[dn, 2]
+        t = np.maximum(zup.min(axis=1) - (pts @ coef_dn).max(axis=1), 0.0)
         a = np.column_stack([t, np.ones_like(t), x, y])
         nm = a.T @ a
         rhs = a.T @ v
     nm = nm + np.eye(len(rhs)) * 1e-12 * np.trace(nm)
     coef = np.linalg.solve(nm, rhs)
-    return float(max(v @ v - coef @ rhs, 0.0))
+    return float(max(v @ v - coef @ rhs, 0.0)) * scale
 
 
 # ------------------------------------------------------------------------ fit
@@ -510,7 +542,8 @@ def fit_alpha_cached(contour_xy, interior=None, **kw) -> AlphaFit:
 def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: float = 1.0,
               library: ModelLibrary | None = None, tolerance: float = 4.0,
               outline_noise_px: float = 0.25, outline_noise_floor: float = 0.003,
-              interior_weight: float = 0.05, faces=("100", "111")) -> AlphaFit:
+              interior_weight: float = 0.05, facet_edge_px: float = 2.0,
+              faces=("100", "111")) -> AlphaFit:
     """Fit alpha (and the resting face) of one grain.
 
     Parameters
@@ -531,6 +564,8 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
         outline_noise_floor)``.
     interior_weight : float
         Independent samples per interior pixel.
+    facet_edge_px : float
+        See :func:`_interior_rss` (``edge_px``).
     faces : tuple of str
         Resting faces allowed.
 
@@ -549,6 +584,9 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     the rotations tried are the best outline rotation and that plus half the
     body symmetry angle (the dual-looking octagon / hexagon); the interior is
     evaluated only for models whose outline score is below 25 + tolerance.
+    The score is profiled over faces (minimum); ``alpha_lo``/``alpha_hi`` are
+    the outer edges of the grid cells (half a step either side of a grid
+    alpha, clipped to the grid) whose score is within ``tolerance``.
     """
     lib = model_library() if library is None else library
     c = _check_poly(contour_xy, "contour_xy")
@@ -595,7 +633,7 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
                     rss[s].append(np.inf)
                     continue
                 rot = cr.in_plane_rotation(360.0 * k / n) @ lib.rotations[i]
-                rss[s].append(_interior_rss(interior, lib.bodies[i], rot))
+                rss[s].append(_interior_rss(interior, lib.bodies[i], rot, facet_edge_px))
         rmin = min(r for v in rss.values() for r in v)
         q = 8
         s2 = rmin / max(interior.value.size - q, 1) if np.isfinite(rmin) else np.inf
@@ -631,7 +669,10 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     alpha = float(grid[ib])
     mbest = int(np.flatnonzero((np.abs(lib.alphas - alpha) < 1e-9) & (score <= best_val + 1e-9))[0])
     _, kbest, dbest = best_per_shape[int(lib.shape_id[mbest])]
-    lo, hi = float(grid[inside.min()]), float(grid[inside.max()])
+    # each grid alpha stands for the cell of half a step either side
+    half = 0.5 * (grid[1] - grid[0]) if grid.size > 1 else 0.0
+    lo = float(max(grid[inside.min()] - half, grid[0]))
+    hi = float(min(grid[inside.max()] + half, grid[-1]))
     notes = []
     if inside.min() == 0:
         notes.append(f"alpha_lo at grid minimum {grid[0]:g}: only an upper bound")
@@ -719,7 +760,7 @@ def fit_kwargs(params=None) -> dict:
                         p["min_face_share"])
     return dict(pixel_scale=1.0, library=lib, tolerance=p["tolerance"],
                 outline_noise_px=p["outline_noise_px"], outline_noise_floor=p["outline_noise_floor"],
-                interior_weight=p["interior_weight"])
+                interior_weight=p["interior_weight"], facet_edge_px=p["facet_edge_px"])
 
 
 def fit_frame(frame, params=None) -> dict:
