@@ -574,15 +574,25 @@ def _habit_params(habit: str, rng: np.random.Generator) -> dict:
     return {"shape_seed": int(rng.integers(0, 2 ** 31 - 1))}
 
 
-def _convex_overlap(a: np.ndarray, b: np.ndarray) -> bool:
-    """Separating-axis test for two convex polygons (k, 2); True if they overlap."""
+def _convex_separated(a: np.ndarray, b: np.ndarray, gap: float) -> bool:
+    """True if convex polygons a, b (k, 2) are at least ``gap`` apart along one of
+    their edge normals (separating-axis test; conservative for ``gap > 0``)."""
     for poly in (a, b):
         e = np.roll(poly, -1, axis=0) - poly
         axes = np.column_stack([-e[:, 1], e[:, 0]])
+        axes /= np.linalg.norm(axes, axis=1, keepdims=True)
         pa, pb = a @ axes.T, b @ axes.T
-        if np.any((pa.max(axis=0) < pb.min(axis=0)) | (pb.max(axis=0) < pa.min(axis=0))):
-            return False
-    return True
+        if np.any((pa.max(axis=0) + gap <= pb.min(axis=0)) | (pb.max(axis=0) + gap <= pa.min(axis=0))):
+            return True
+    return False
+
+
+def _inradius(poly: np.ndarray) -> float:
+    """Distance from the origin to the nearest edge line of a convex polygon around it."""
+    e = np.roll(poly, -1, axis=0) - poly
+    m = np.column_stack([e[:, 1], -e[:, 0]])
+    m /= np.linalg.norm(m, axis=1, keepdims=True)
+    return float(np.abs(np.sum(m * poly, axis=1)).min())
 
 
 def _hull(points: np.ndarray) -> np.ndarray:
@@ -612,9 +622,9 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
         overlapping pairs, in [0, 1].
     seed : int
     margin_nm : float, optional
-        Minimum distance of each grain's circumscribed circle from the frame
-        border (nm). Negative lets grains be cut by the border (their centres
-        stay inside the field). Default: 3 pixels.
+        Minimum distance of each grain's outline from the frame border (nm).
+        Negative lets grains be cut by the border (their centres stay inside
+        the field). Default: 3 pixels.
 
     Returns
     -------
@@ -624,8 +634,9 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
 
     Notes
     -----
-    Isolated grains keep a gap of at least 3 pixels between circumscribed
-    circles. The second grain of a pair sits at ``f (r1 + r2)``, ``f`` uniform
+    Grains are placed one by one at random free spots (random sequential
+    addition, largest first); isolated grains keep a gap of at least 3 pixels
+    between the convex hulls of their outlines. The second grain of a pair sits at ``f (r1 + r2)``, ``f`` uniform
     in [0.7, 0.95] and ``r = ECD / 2``, along a random direction; where the
     outlines would not meet there, the distance is cut to ``f'`` in
     [0.85, 0.95] of the contact distance. The smaller grain of a pair is in
@@ -670,74 +681,98 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
         h = names[hab[i]]
         specs.append(GrainSpec(habit=h, ecd_nm=float(ecd[i]), x_nm=0.0, y_nm=0.0,
                                rotation_deg=float(rng.uniform(0, 360)), **_habit_params(h, rng)))
-    outlines = [_make_body(s).outline for s in specs]               # lab, about the centre
-    radius = np.array([np.linalg.norm(o, axis=1).max() for o in outlines])
+    # convex hulls of the outlines about each centre, in frame orientation (y down)
+    hulls = []
+    for sp in specs:
+        o = _make_body(sp).outline
+        hulls.append(_hull(np.column_stack([o[:, 0], -o[:, 1]])))
+    radius = np.array([np.linalg.norm(h, axis=1).max() for h in hulls])     # circumscribed
+    inradius = np.array([_inradius(h) for h in hulls])                      # inscribed
+    lo_xy = np.array([h.min(axis=0) for h in hulls])
+    hi_xy = np.array([h.max(axis=0) for h in hulls])
 
     n_pairs = min(int(round(touching_fraction * n / 2)), n // 2)
     idx = rng.permutation(n)
     units = [tuple(idx[2 * k:2 * k + 2]) for k in range(n_pairs)] + [(i,) for i in idx[2 * n_pairs:]]
     units.sort(key=lambda u: -sum(radius[list(u)]))                 # big first packs better
 
-    placed_xy = np.zeros((0, 2))
-    placed_r = np.zeros(0)
+    placed: list[int] = []
     centre = np.zeros((n, 2))
     pairs = []
-    batch = 256
+    batch = 128
 
-    def free(xy, r):
-        """Which candidate centres (B, 2) keep radius r clear of the border and of
-        everything placed so far."""
-        lo = max(margin + r, 0.0)          # centres stay inside the field
-        ok = (xy[:, 0] >= lo) & (xy[:, 0] <= width - lo) & (xy[:, 1] >= lo) & (xy[:, 1] <= height - lo)
-        if placed_r.size:
-            dist = np.hypot(xy[:, None, 0] - placed_xy[None, :, 0], xy[:, None, 1] - placed_xy[None, :, 1])
-            ok &= np.all(dist >= placed_r + r + gap, axis=1)
-        return ok
+    def in_bounds(xy, k):
+        """Candidate centres (B, 2) whose grain k keeps the margin (centres inside)."""
+        lo = np.maximum(margin - lo_xy[k], 0.0)
+        hi = np.minimum(np.array([width, height]) - margin - hi_xy[k], [width, height])
+        return np.all((xy >= lo) & (xy <= hi), axis=1)
+
+    def screen(xy, k, pxy, pk):
+        """Vectorised pre-test of candidate centres (B, 2) of grain k against the
+        placed grains: (certainly too close, neighbours to test exactly)."""
+        if not len(pk):
+            return np.zeros(len(xy), bool), np.zeros((len(xy), 0), bool)
+        dist = np.hypot(xy[:, None, 0] - pxy[None, :, 0], xy[:, None, 1] - pxy[None, :, 1])
+        hit = (dist < inradius[pk] + inradius[k] + gap).any(axis=1)
+        near = dist < radius[pk] + radius[k] + gap
+        return hit, near
+
+    def exact_clear(c, k, near_row, pxy, pk):
+        return all(_convex_separated(hulls[k] + c, hulls[pk[j]] + pxy[j], gap)
+                   for j in np.flatnonzero(near_row))
 
     for unit in units:
         a = unit[0]
-        ra = radius[a]
-        lo = max(margin + ra, 0.0)
         offset = np.zeros(2)
         if len(unit) == 2:
             b = unit[1]
             ang = rng.uniform(0, 2 * np.pi)
             u = np.array([math.cos(ang), math.sin(ang)])
             dist = rng.uniform(0.7, 0.95) * 0.5 * (specs[a].ecd_nm + specs[b].ecd_nm)
-            pa = _hull(np.column_stack([outlines[a][:, 0], -outlines[a][:, 1]]))
-            pb = _hull(np.column_stack([outlines[b][:, 0], -outlines[b][:, 1]]))
             lo_d, hi_d = 0.0, radius[a] + radius[b]
             for _ in range(30):                       # contact distance along u
                 mid = 0.5 * (lo_d + hi_d)
-                if _convex_overlap(pa, pb + mid * u):
-                    lo_d = mid
-                else:
+                if _convex_separated(hulls[a], hulls[b] + mid * u, 0.0):
                     hi_d = mid
+                else:
+                    lo_d = mid
             if dist > 0.95 * lo_d:
                 dist = rng.uniform(0.85, 0.95) * lo_d
             offset = dist * u
+        pk = np.array(placed, dtype=int)
+        pxy = centre[pk]
         found = None
-        if lo <= width - lo and lo <= height - lo:
-            for _ in range(20):
-                cand = np.column_stack([rng.uniform(lo, width - lo, batch),
-                                        rng.uniform(lo, height - lo, batch)])
-                ok = free(cand, ra)
+        lo = np.maximum(margin - lo_xy[a], 0.0)
+        hi = np.minimum(np.array([width, height]) - margin - hi_xy[a], [width, height])
+        if np.all(lo <= hi):
+            for _ in range(40):
+                cand = rng.uniform(lo, hi, size=(batch, 2))
+                ok = in_bounds(cand, a)
                 if len(unit) == 2:
-                    ok &= free(cand + offset, radius[unit[1]])
-                hit = np.flatnonzero(ok)
-                if hit.size:
-                    found = cand[hit[0]]
+                    ok &= in_bounds(cand + offset, unit[1])
+                cand = cand[ok]
+                hit_a, near_a = screen(cand, a, pxy, pk)
+                if len(unit) == 2:
+                    hit_b, near_b = screen(cand + offset, unit[1], pxy, pk)
+                    hit_a = hit_a | hit_b
+                for c in np.flatnonzero(~hit_a):          # first candidate that is clear
+                    if not exact_clear(cand[c], a, near_a[c], pxy, pk):
+                        continue
+                    if len(unit) == 2 and not exact_clear(cand[c] + offset, unit[1], near_b[c],
+                                                          pxy, pk):
+                        continue
+                    found = cand[c]
+                    break
+                if found is not None:
                     break
         if found is None:
             raise ValueError(f"could not place {n} grains of median ECD {ecd_median_nm} nm in a "
                              f"{rows}x{cols} field at {px} nm/px; use fewer or smaller grains")
         centre[a] = found
+        placed.append(a)
         if len(unit) == 2:
             centre[unit[1]] = found + offset
-        for k in unit:
-            placed_xy = np.vstack([placed_xy, centre[k]])
-            placed_r = np.append(placed_r, radius[k])
-        if len(unit) == 2:
+            placed.append(unit[1])
             pairs.append(unit)
 
     perm = rng.permutation(n)                 # label order independent of placement order
