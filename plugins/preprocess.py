@@ -61,6 +61,8 @@ LOW_CONFIDENCE = 0.5
 CLIP_SIGMAS = 3.0
 #: The grain level is at least this many background sigmas (a frame without grains stays dark).
 NOISE_FLOOR_SIGMAS = 10.0
+#: Lower clip of the output: background noise stays visible around 0.
+LOW_CLIP = -0.25
 
 
 def _check_image(image) -> np.ndarray:
@@ -266,6 +268,24 @@ def denoise(image: np.ndarray, method: str = "gaussian", sigma_px: float = 1.0) 
     return out, sigma
 
 
+def background_level(values: np.ndarray) -> tuple[float, float]:
+    """Level and noise of the background: main histogram mode and clipped sigma.
+
+    Parameters
+    ----------
+    values : ndarray
+        Pixel values; the background must be the most common level.
+
+    Returns
+    -------
+    mode, sigma : float
+        See :func:`_mode` and :func:`_clipped_sigma`.
+    """
+    v = np.asarray(values, float).ravel()
+    m = _mode(v)
+    return m, _clipped_sigma(v, m)
+
+
 def _clipped_sigma(r: np.ndarray, centre: float) -> float:
     """Standard deviation of the central core of ``r`` around ``centre`` (iterative 3-sigma clip)."""
     dev = np.abs(r - centre)
@@ -449,14 +469,15 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     Returns
     -------
     out : ndarray of float32, shape (rows, cols)
-        In [0, 1]; background 0, the 95th percentile of grain pixels 1.
+        In [-0.25, 1]; background 0, the 95th percentile of grain pixels 1.
     polarity : {"bright", "dark"}
     confidence : float
         Of the detection (1.0 when forced).
 
     Notes
     -----
-    ``out = clip(s * (I - B) / L, 0, 1)`` with ``s = +1`` for bright and
+    ``out = clip(s * (I - B) / L, -0.25, 1)`` (the background noise is kept on
+    both sides of 0 so that later steps can measure it) with ``s = +1`` for bright and
     ``-1`` for dark grains, background ``B`` and ``L`` the 95th percentile of
     ``s (I - B)`` over pixels more than 3 sigma on the grain side, but at
     least 10 sigma, so that a frame without grains is not stretched.
@@ -477,7 +498,7 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
     # never stretch pure noise up to grain level
     level = max(level, NOISE_FLOOR_SIGMAS * s)
-    out = np.clip(r / level, 0.0, 1.0).astype(np.float32)
+    out = np.clip(r / level, LOW_CLIP, 1.0).astype(np.float32)
     return out, pol, conf
 
 

@@ -20,7 +20,7 @@ def test_polarity_detected_and_grains_bright(contrast):
     out = preprocess.grainhabit_preprocess(frame=frame_of(raw), params={})
     assert out.polarity == contrast
     assert out.image.dtype == np.float32 and out.image.shape == raw.shape
-    assert 0.0 <= out.image.min() and out.image.max() <= 1.0
+    assert -0.25 <= out.image.min() and out.image.max() <= 1.0
     assert not any("low confidence" in n for n in out.notes)
     # flat background near 0 across the illumination ramp, grains near 1
     bg = out.image[truth == 0]

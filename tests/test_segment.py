@@ -90,7 +90,7 @@ def test_clean_masks_match_skimage_label():
         else:
             rr, cc = polygon(*regular_polygon(cy, cx, r, n, rot), mask.shape)
         mask[rr, cc] = True
-    labels, split, _ = segment.segment_image(mask.astype(np.float32), 5.0, {"close_nm": 0.0})
+    labels, split, _ = segment.segment_image(mask.astype(np.float32), 5.0, {"close_nm": 0.0, "refine_nm": 0.0})
     ref = sk_label(mask, connectivity=2)
     np.testing.assert_array_equal(labels, ref)
     assert not split.any()
