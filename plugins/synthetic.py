@@ -439,7 +439,8 @@ def render_field(grains, shape, pixel_size_nm, contrast="bright", *, gradient=0.
     value is used). ``'bright'``: the
     facet seen from above at a sub-sample has brightness
     ``b0 sec(tilt)^p + c (n_xy . s)`` plus Gaussian ridges along facet edges
-    and the rim; grains are composited front over back (``z_order``).
+    and the rim; grains are composited front over back (``z_order``; on a
+    tie the later grain in the list is in front).
     ``'dark'``: sub-sample transmittances ``(1 - b) exp(-mu t)`` are averaged per pixel
     and multiplied in, so overlapping grains attenuate together. Labels are
     the grain seen at each pixel centre, the front one where grains overlap.
