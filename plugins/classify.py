@@ -33,12 +33,13 @@ Decision
    and three short edges is not): ``tabular_triangle`` where the fitted edge
    ratio is below ``triangle_edge_ratio``, else ``tabular_hexagon``.
 4. Otherwise the outline is a square, octagon, hexagon or 12-gon. A flat
-   interior (``facet_chi2 < facet_chi2_min``) that is semi-transparent in TEM
-   is a plate: ``tabular_hexagon`` for a hexagon, ``irregular`` for a square
-   plate (the fixed vocabulary has no {100} plate class). A flat hexagon in
-   SEM is ``tabular_hexagon`` as well (an octahedron on {111} always shows
-   inclined facets). A flat square in SEM or an opaque one in TEM is a cube
-   (a perfect cube shows only its top face). Everything else is polyhedral
+   interior (``facet_chi2 < facet_chi2_min``) with a hexagonal outline that
+   the plate family fits is ``tabular_hexagon`` (in TEM only if
+   semi-transparent; an octahedron on {111} always shows inclined facets or a
+   thickness peak). A flat square is a cube in SEM or when opaque in TEM (a
+   perfect cube shows only its top face), but ``irregular`` when
+   semi-transparent in TEM (a thin {100} plate: the fixed vocabulary has no
+   class for it). A flat octagon, 12-gon or disc fits no model: ``irregular``. Everything else is polyhedral
    and named by alpha (design contract): ``cube`` alpha <= 1.5,
    ``cuboctahedron`` 1.5 < alpha < 3, ``octahedron`` alpha >= 3, taking the
    class with the largest share of exp(-score / 2) over the alpha grid (a
@@ -266,13 +267,18 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, transmission=
         if pe[ip] < p["triangle_edge_ratio"]:
             return {**out, "habit": "tabular_triangle", "habit_score": s}
         return {**out, "habit": "tabular_hexagon", "habit_score": s}
-    hexagonal = fit.face == "111"
     thin = np.isfinite(transmission) and transmission > p["plate_transmission"]
     flat_score = 1.0 - _margin(fchi, p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
     if not faceted and interior is not None:
-        if hexagonal and (thin or not np.isfinite(transmission)):
-            return {**out, "habit": "tabular_hexagon", "habit_score": flat_score}
-        if not hexagonal and thin:
+        # a featureless interior: a flat plate, or a cube seen on its top face;
+        # a flat octagon or 12-gon (or a disc) fits neither
+        if ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"]:
+            if thin or not np.isfinite(transmission):
+                return {**out, "habit": "tabular_hexagon", "habit_score": flat_score}
+        square = fit.face == "100" and fit.alpha <= 1.5
+        if not square:
+            return {**out, "habit": "irregular", "habit_score": flat_score}
+        if thin:
             return {**out, "habit": "irregular",
                     "habit_score": flat_score * _margin(transmission, p["plate_transmission"], 0.05)}
     habit, share = polyhedral_class(fit, lib)

@@ -1,0 +1,221 @@
+"""Tests of classify-habit on shapes drawn with skimage.draw (invented test data).
+
+Each grain is drawn from the crystal model (:mod:`plugins.crystal`) or as a
+plain polygon, with either secondary-electron-like facet shading (bright
+polarity) or transmission thickness contrast (dark polarity).
+"""
+import numpy as np
+import pytest
+from skimage.draw import ellipse
+
+from plugins import classify as cl
+from plugins import crystal as cr
+from plugins import outline as ol
+
+# --------------------------------------------------------------- drawing helpers
+from skimage.draw import polygon
+
+from pipeline.frame import FrameData
+
+from pipeline.frame import FrameData
+
+
+def body_and_rotation(alpha, face, rotation_deg):
+    return cr.wulff_polyhedron(alpha), cr.in_plane_rotation(rotation_deg) @ cr.resting_rotation(face)
+
+
+def draw_frame(body, rot, ecd_px=70.0, size=128, contrast="bright", facets=True, mu_per_ecd=4.0,
+               noise=0.0, seed=0):
+    """Frame with one grain: SEM facet shading or TEM thickness contrast.
+
+    ``facets=False`` draws a uniform interior (a flat plate look) in either contrast;
+    ``mu_per_ecd`` is the attenuation per grain ECD of thickness (TEM).
+    """
+    k = ecd_px * np.sqrt((np.pi / 4) / cr.projected_area(body, rot))
+    c = size / 2.0
+    outline = cr.project(body, rot) * k
+    rows, cols = c - outline[:, 1], c + outline[:, 0]          # lab y up -> rows down
+    rr, cc = polygon(rows - 0.5, cols - 0.5, (size, size))     # pixel centres at index + 0.5
+    labels = np.zeros((size, size), np.int32)
+    labels[rr, cc] = 1
+    if contrast == "bright":
+        img = np.full((size, size), 0.1)
+        if facets:
+            for f in cr.visible_faces(body, rot):
+                p = f.polygon * k
+                fr, fc = polygon(c - p[:, 1] - 0.5, c + p[:, 0] - 0.5, (size, size))
+                n = f.normal
+                img[fr, fc] = 0.4 + 0.35 * (1 - n[2]) + 0.12 * n[0] - 0.08 * n[1]
+        else:
+            img[rr, cc] = 0.45
+    else:
+        x = (cc + 0.5 - c) / k
+        y = (c - (rr + 0.5)) / k
+        t = cr.thickness_map(body, rot, x, y) * k / ecd_px     # thickness in ECD units
+        if not facets:
+            t = np.full_like(t, np.mean(t))
+        img = np.ones((size, size))
+        img[rr, cc] = np.exp(-mu_per_ecd * t)
+    if noise:
+        img = img + np.random.default_rng(seed).normal(0, noise, img.shape)
+    raw = img.astype(np.float32)
+    image = raw if contrast == "bright" else (1.0 - raw)
+    return FrameData(source="drawn", sample="invented", raw=raw, pixel_size_nm=10.0,
+                     image=image.astype(np.float32), polarity=contrast, labels=labels,
+                     grains={"label": np.array([1]), "edge_cut": np.array([False]),
+                             "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
+
+
+def draw_polygon_frame(poly_xy, size=128, contrast="bright", level=0.45, transmission=0.6):
+    """Frame with one uniform grain of the given outline (lab axes, pixels about the centre)."""
+    c = size / 2.0
+    rr, cc = polygon(c - poly_xy[:, 1] - 0.5, c + poly_xy[:, 0] - 0.5, (size, size))
+    labels = np.zeros((size, size), np.int32)
+    labels[rr, cc] = 1
+    if contrast == "bright":
+        img = np.full((size, size), 0.1)
+        img[rr, cc] = level
+        image = img
+    else:
+        img = np.ones((size, size))
+        img[rr, cc] = transmission
+        image = 1.0 - img
+    return FrameData(source="drawn", sample="invented", raw=img.astype(np.float32), pixel_size_nm=10.0,
+                     image=image.astype(np.float32), polarity=contrast, labels=labels,
+                     grains={"label": np.array([1]), "edge_cut": np.array([False]),
+                             "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
+
+
+def habit_of(frame):
+    cols = cl.classify_frame(frame)
+    return cols["habit"][0], cols
+
+
+def regular_polygon(n, radius, start_deg=0.0):
+    t = np.deg2rad(start_deg + 360.0 * np.arange(n) / n)
+    return np.column_stack([radius * np.cos(t), radius * np.sin(t)])
+
+
+# ------------------------------------------------------------------------ tests
+
+def test_square_with_shaded_corner_facets_is_cube():
+    # truncated cube (alpha = 1.3 on {100}): square outline, four small {111}
+    # corner facets shaded differently from the top face (Wulff construction)
+    body, rot = body_and_rotation(1.3, "100", 20.0)
+    habit, cols = habit_of(draw_frame(body, rot, contrast="bright"))
+    assert habit == "cube"
+    assert cols["facet_chi2"][0] > cl.STEP.defaults()["facet_chi2_min"]
+
+
+def test_opaque_uniform_square_is_cube_but_pale_thin_square_plate_is_not():
+    # TEM: a cube is thick (nearly opaque), a thin square plate of the same
+    # outline is semi-transparent; both have a uniform interior
+    body, rot = body_and_rotation(1.0, "100", 10.0)
+    thick = draw_frame(body, rot, contrast="dark", mu_per_ecd=4.0)
+    habit, cols = habit_of(thick)
+    assert habit == "cube"
+    thin = draw_frame(body, rot, contrast="dark", mu_per_ecd=0.4)
+    habit, cols = habit_of(thin)
+    assert habit != "cube"
+    assert cols["interior_transmission"][0] > 0.5
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_hexagon_with_inclined_facets_is_octahedron(contrast):
+    # octahedron on a {111} face: hexagonal outline; SEM shows the top
+    # triangle and three inclined facets, TEM a thickness peaking in the middle
+    body, rot = body_and_rotation(3.0, "111", 5.0)
+    habit, cols = habit_of(draw_frame(body, rot, contrast=contrast))
+    assert habit == "octahedron"
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_uniform_hexagon_is_tabular_hexagon(contrast):
+    # the same hexagonal outline with a flat, uniform interior: a plate
+    body, rot = body_and_rotation(3.0, "111", 5.0)
+    habit, _ = habit_of(draw_frame(body, rot, contrast=contrast, facets=False, mu_per_ecd=0.5))
+    assert habit == "tabular_hexagon"
+
+
+def test_truncated_triangle_is_tabular_triangle():
+    # short/long edge 0.05 < 0.1 (design contract rule for tabular_triangle)
+    plate = cr.tabular_prism(0.05, 0.1)
+    rot = cr.in_plane_rotation(33.0) @ cr.resting_rotation("111")
+    poly = cr.project(plate, rot) * 70
+    habit, cols = habit_of(draw_polygon_frame(poly))
+    assert habit == "tabular_triangle"
+    assert cols["plate_edge_ratio"][0] < 0.1
+
+
+def test_tabular_hexagon_three_long_three_short_edges():
+    # common practice: a hexagonal tabular grain has three long and three
+    # short edges, alternating; edge ratio 0.5 here
+    plate = cr.tabular_prism(0.5, 0.1)
+    rot = cr.in_plane_rotation(12.0) @ cr.resting_rotation("111")
+    poly = cr.project(plate, rot)
+    e = ol.polygon_edges(poly)
+    assert len(e) == 6
+    assert np.allclose(e[0::2], e[0]) and np.allclose(e[1::2], e[1])
+    assert min(e[0], e[1]) / max(e[0], e[1]) == pytest.approx(0.5, abs=1e-9)
+    habit, cols = habit_of(draw_polygon_frame(poly * 70))
+    assert habit == "tabular_hexagon"
+    assert cols["plate_edge_ratio"][0] == pytest.approx(0.5, abs=0.08)
+
+
+def test_elongated_prism_is_rod():
+    rect = np.array([[-60, -12], [60, -12], [60, 12], [-60, 12]], float)
+    t = np.deg2rad(25)
+    r = np.array([[np.cos(t), -np.sin(t)], [np.sin(t), np.cos(t)]])
+    habit, cols = habit_of(draw_polygon_frame(rect @ r.T, size=160))
+    assert habit == "rod"
+    assert cols["rod_aspect"][0] == pytest.approx(5.0, rel=0.15)
+
+
+def test_rounded_blob_is_irregular():
+    # a lumpy rounded grain: ellipse with two bumps (ripened / aggregated look)
+    size = 128
+    lab = np.zeros((size, size), np.int32)
+    for (r, c, a, b) in ((64, 64, 30, 24), (44, 80, 12, 12), (86, 50, 10, 10)):
+        rr, cc = ellipse(r, c, a, b, (size, size))
+        lab[rr, cc] = 1
+    img = np.where(lab > 0, 0.45, 0.1).astype(np.float32)
+    frame = draw_polygon_frame(regular_polygon(6, 30)).replace(raw=img, image=img, labels=lab)
+    habit, cols = habit_of(frame)
+    assert habit == "irregular"
+
+
+def test_disc_is_irregular():
+    size = 128
+    lab = np.zeros((size, size), np.int32)
+    rr, cc = ellipse(64, 64, 35, 35, (size, size))
+    lab[rr, cc] = 1
+    img = np.where(lab > 0, 0.45, 0.1).astype(np.float32)
+    frame = draw_polygon_frame(regular_polygon(6, 30)).replace(raw=img, image=img, labels=lab)
+    assert habit_of(frame)[0] == "irregular"
+
+
+def test_hull_shape_square_feret_and_solidity():
+    # ISO 9276-6 / handbook geometry: Feret of a square are side and side*sqrt(2)
+    sq = np.array([[0, 0], [10, 0], [10, 10], [0, 10]], float)
+    sol, fmin, fmax = cl.hull_shape(sq)
+    assert sol == pytest.approx(1.0)
+    assert fmin == pytest.approx(10.0)
+    assert fmax == pytest.approx(10 * np.sqrt(2))
+    ell = np.array([[0, 0], [10, 0], [10, 4], [4, 4], [4, 10], [0, 10]], float)
+    assert cl.hull_shape(ell)[0] == pytest.approx(64 / 82)   # area 64, hull area 100 - 18
+
+
+def test_hook_returns_columns_for_every_grain():
+    body, rot = body_and_rotation(2.0, "100", 0.0)
+    frame = draw_frame(body, rot)
+    out = cl.grainhabit_classify(frame, cl.STEP.resolve({}))
+    assert set(cl.HABITS) >= set(out.grains["habit"])
+    assert 0.0 <= out.grains["habit_score"][0] <= 1.0
+    for c in cl.STEP.outputs:
+        assert c.name in out.grains
+    assert out.grains["habit"][0] == "cuboctahedron"
+
+
+def test_bad_parameter_is_refused():
+    with pytest.raises(ValueError):
+        cl.STEP.resolve({"min_solidity": 1.5})
