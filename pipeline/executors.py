@@ -35,11 +35,16 @@ class SerialExecutor:
         pass
 
     def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
-        for key, args in items:
-            try:
-                yield key, func(*args)
-            except Exception as exc:  # func itself never raises for frame problems
-                yield key, exc
+        from threadpoolctl import threadpool_limits
+
+        # one BLAS/OpenMP thread, as dask's worker processes have (OMP_NUM_THREADS=1), so that a serial
+        # run gives bit-for-bit the results of a cluster run
+        with threadpool_limits(limits=1):
+            for key, args in items:
+                try:
+                    yield key, func(*args)
+                except Exception as exc:  # func itself never raises for frame problems
+                    yield key, exc
 
     def close(self) -> None:
         pass
