@@ -1,0 +1,132 @@
+"""Tests of the alpha fit (fit-growth-ratio) against closed-form geometry and drawn model grains.
+
+Drawn grains (skimage.draw) are invented test data.
+"""
+import math
+
+import numpy as np
+import pytest
+
+from plugins import crystal as cr
+from plugins import growth as gr
+from test_classify import body_and_rotation, draw_frame, draw_polygon_frame
+
+
+def fit_drawn(frame, interior=True):
+    contours = gr._contours_for(frame)
+    contour, inner = gr.grain_evidence(frame, contours, 0)
+    return gr.fit_alpha(contour, inner if interior else None)
+
+
+# ------------------------------------------------------------- closed form
+
+def test_growth_parameter_limits_cube_and_octahedron():
+    # kinetic Wulff construction as commonly stated in crystal-growth texts
+    # (from memory): alpha = sqrt(3) v100 / v111 <= 1 gives a cube, >= 3 an
+    # octahedron, cuboctahedra between
+    fam = lambda p: sorted({cr.face_family(m) for m in p.face_miller})
+    assert fam(cr.wulff_polyhedron(1.0)) == ["100"] and cr.wulff_polyhedron(1.0).n_faces == 6
+    assert fam(cr.wulff_polyhedron(3.0)) == ["111"] and cr.wulff_polyhedron(3.0).n_faces == 8
+    assert fam(cr.wulff_polyhedron(1.02)) == ["100", "111"]
+    assert fam(cr.wulff_polyhedron(2.98)) == ["100", "111"]
+
+
+def test_outline_on_100_is_square_up_to_alpha_1_5():
+    # closed form: the {111} planes x + y + z = 3 d100 / alpha reach the
+    # equator (z = 0) inside the square |x|, |y| <= d100 only for alpha > 3/2
+    assert len(cr.outline_model(1.5, "100")) == 4
+    assert len(cr.outline_model(1.55, "100")) == 8
+
+
+def test_radial_signature_closed_forms():
+    # handbook geometry: a square of side s has r(0) = s/2 and r(45 deg) =
+    # s/sqrt(2) about its centre, area s^2; a disc r = R, area pi R^2
+    sq = np.array([[-1, -1], [1, -1], [1, 1], [-1, 1]], float) * 3.0
+    sig = gr.radial_signature(sq, 8)
+    assert sig[0] == pytest.approx(3.0 / 6.0)
+    assert sig[1] == pytest.approx(3.0 * math.sqrt(2) / 6.0)
+    t = np.linspace(0, 2 * np.pi, 2000, endpoint=False)
+    disc = np.column_stack([np.cos(t), np.sin(t)]) * 5
+    assert np.allclose(gr.radial_signature(disc, 64), 1 / math.sqrt(math.pi), rtol=1e-5)
+
+
+def test_shift_distances_find_rotation_against_numpy_roll():
+    # reference: numpy.roll; a polygon turned by 2 pi s / n has zero distance at s
+    poly = cr.outline_model(2.0, "100", 0.0)
+    a = gr.radial_signature(poly, 128)
+    b = gr.radial_signature(cr.outline_model(2.0, "100", 360.0 * 5 / 128), 128)
+    d = gr.shift_distances(b, a)
+    # the FFT route leaves sqrt(rounding) ~ 1e-8 at an exact match
+    assert d[5] == pytest.approx(0.0, abs=1e-6)
+    assert int(np.argmin(d)) % 32 == 5          # the octagon repeats every 90 deg = 32 samples
+    brute = [np.sqrt(np.mean((np.roll(b, -s) - a) ** 2)) for s in range(128)]
+    assert np.allclose(d, brute, atol=1e-6)
+
+
+# ------------------------------------------------------------ drawn grains
+
+@pytest.mark.parametrize("alpha", [1.7, 2.0, 2.4])
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_fit_recovers_alpha_of_cuboctahedron_on_100(alpha, contrast):
+    # noiseless model grain drawn at ~70 px ECD (e.g. 700 nm at 10 nm/px)
+    body, rot = body_and_rotation(alpha, "100", 17.0)
+    fit = fit_drawn(draw_frame(body, rot, contrast=contrast))
+    assert fit.face == "100"
+    assert abs(fit.alpha - alpha) <= 0.1
+    assert fit.alpha_lo <= alpha <= fit.alpha_hi
+
+
+def test_outline_alone_keeps_both_look_alike_octagons():
+    # alpha = 1.8 and its twin octagon (straight and diagonal edges swapped)
+    # look the same in outline: the range must hold the true alpha
+    body, rot = body_and_rotation(1.8, "100", 17.0)
+    fit = fit_drawn(draw_frame(body, rot), interior=False)
+    assert fit.alpha_lo <= 1.8 <= fit.alpha_hi
+    assert "outline only" in fit.note
+
+
+def test_square_outline_gives_upper_bound_1_5():
+    # square outline on {100}, no facets seen: alpha <= 1.5, nothing more
+    lib = gr.model_library()
+    sq = np.array([[-35, -35], [35, -35], [35, 35], [-35, 35]], float)
+    fit = fit_drawn(draw_polygon_frame(sq), interior=False)
+    assert fit.alpha_lo == pytest.approx(lib.grid[0])
+    # ~1.5: at 70 px a corner cut of alpha = 1.6 is ~4 px along the side,
+    # about what one pixel of outline rounding hides, so up to ~1.6 is allowed
+    assert 1.5 <= fit.alpha_hi <= 1.65
+    assert "upper bound" in fit.note
+
+
+def test_octahedron_on_111_gives_lower_bound_near_3():
+    lib = gr.model_library()
+    body, rot = body_and_rotation(3.0, "111", 8.0)
+    fit = fit_drawn(draw_frame(body, rot, contrast="bright"))
+    assert fit.face == "111"
+    assert fit.alpha_hi == pytest.approx(lib.grid[-1])
+    assert 2.6 <= fit.alpha_lo <= 3.0
+    assert "lower bound" in fit.note
+
+
+def test_hook_writes_nan_with_reason_for_non_polyhedral():
+    body, rot = body_and_rotation(2.0, "100", 0.0)
+    frame = draw_frame(body, rot)
+    for habit, word in (("tabular_hexagon", "edge_ratio"), ("rod", "rod"), ("irregular", "irregular")):
+        f = frame.with_columns(habit=np.array([habit], object))
+        out = gr.grainhabit_fit_growth(f, gr.STEP.resolve({}))
+        assert np.isnan(out.grains["alpha"][0]) and np.isnan(out.grains["alpha_lo"][0])
+        assert word in out.grains["alpha_note"][0]
+    f = frame.with_columns(habit=np.array(["cuboctahedron"], object))
+    out = gr.grainhabit_fit_growth(f, gr.STEP.resolve({}))
+    assert out.grains["alpha"][0] == pytest.approx(2.0, abs=0.1)
+    cut = frame.with_columns(habit=np.array(["cube"], object), edge_cut=np.array([True]))
+    out = gr.grainhabit_fit_growth(cut, gr.STEP.resolve({}))
+    assert np.isnan(out.grains["alpha"][0]) and "border" in out.grains["alpha_note"][0]
+
+
+def test_bad_inputs_are_refused():
+    with pytest.raises(ValueError):
+        gr.radial_signature(np.zeros((2, 2)))
+    with pytest.raises(ValueError):
+        gr.shift_distances(np.ones(8), np.ones(9))
+    with pytest.raises(ValueError):
+        gr.model_library(1.2, 4.0)
