@@ -261,6 +261,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
         attrs = {"title": f"grainhabit results of workflow {plan.name}", "workflow": plan.text,
                  "workflow_hash": plan.hash, "workflow_file": plan.file, "processing_key": pkey,
                  "versions": json.dumps(versions(host)), "runs": json.dumps(previous_runs + [record]),
+                 "data_note": plan.config.get("note") or "",
                  "conventions": "origin at the top-left corner of the top-left pixel; x along columns, y along rows; nm"}
         write_results(results, groups, attrs)
         log.info("results written to %s", results)

@@ -42,6 +42,7 @@ _ANY_NUMBER = (int, float)
 SCHEMA: dict[str, Any] = {
     "version": (int, True, None),
     "name": (str, False, None),
+    "note": (str, False, None),
     "plugins": (list, False, []),
     "input": {
         "paths": ((list, str), False, []),

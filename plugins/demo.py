@@ -48,6 +48,7 @@ WORKFLOW_TEMPLATE = """\
 # pilot coating line, rendered from 3-D crystal shapes. Not real data.
 version: 1
 name: kestrel-demo
+note: "Invented demo data: trial batches of an invented pilot coating line, rendered from 3-D crystal shapes."
 input:
   paths: ["{data}/**/*.tif"]
   sample: "{{parent}}"        # the batch folder names the sample
