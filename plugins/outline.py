@@ -502,7 +502,7 @@ def _first_argmax(values, offsets):
 def fit_polygon(
     contour_xy,
     size,
-    rel_tolerance=0.025,
+    rel_tolerance=0.02,
     merge_angle_deg=20.0,
     min_edge_fraction=0.06,
     min_tolerance=0.5,
@@ -581,7 +581,7 @@ def fit_polygon(
 def fit_polygons(
     contours,
     sizes,
-    rel_tolerance=0.025,
+    rel_tolerance=0.02,
     merge_angle_deg=20.0,
     min_edge_fraction=0.06,
     min_tolerance=0.5,
