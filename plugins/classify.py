@@ -42,11 +42,11 @@ Decision
    class for it). A flat octagon, 12-gon or disc fits no model: ``irregular``. Everything else is polyhedral
    and named by alpha (design contract): ``cube`` alpha <= 1.5,
    ``cuboctahedron`` 1.5 < alpha < 3, ``octahedron`` alpha >= 3, taking the
-   class with the largest share of exp(-score / 2) over the alpha grid (a
-   flat prior on the grid), so an outline that cannot tell 2.95 from 3.3 goes
-   to the class most of the compatible range lies in.
+   class whose best alpha scores lowest, with the octahedron preferred within
+   ``octahedron_margin`` (:func:`polyhedral_class`).
 
-``habit_score`` is that class share for polyhedral grains, and for the other
+``habit_score`` is the relative likelihood of that class for polyhedral
+grains (0.7 times it when the interior is flat), and for the other
 classes a product of logistic margins of the deciding quantities (documented
 in :func:`_margin`); it is a confidence in [0, 1], not a calibrated
 probability.
@@ -82,7 +82,7 @@ STEP = StepInfo(
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
               doc="Outlines less convex than this (area / convex-hull area) are irregular."),
-        Param("irregular_misfit", float, 4.0, low=0.0,
+        Param("irregular_misfit", float, 6.0, low=0.0,
               doc="Outline misfit (in outline-noise units) above which no model family fits."),
         Param("rod_feret_ratio", float, 0.6, low=0.0, high=1.0,
               doc="Rods have a Feret ratio (min/max) below this."),
@@ -94,6 +94,8 @@ STEP = StepInfo(
               doc="Interior facet evidence (chi-square units) above which a grain counts as faceted."),
         Param("plate_transmission", float, 0.3, low=0.0, high=1.0,
               doc="TEM: a flat grain transmitting more than this fraction of the background is a thin plate."),
+        Param("octahedron_margin", float, 0.5, low=0.0,
+              doc="Score margin within which the octahedron is preferred to an alpha just under 3."),
         Param("erode_px", int, 2, unit="px", low=0,
               doc="Pixels left out along the outline before reading the interior."),
     ),
@@ -177,31 +179,59 @@ def _margin(value, threshold, width):
     return float(1.0 / (1.0 + math.exp(-max(min(z, 50.0), -50.0))))
 
 
-def polyhedral_class(fit: gr.AlphaFit, library: gr.ModelLibrary) -> tuple[str, float]:
-    """Name a Wulff fit by alpha (design contract) with the class share of exp(-score/2).
+def class_scores(fit: gr.AlphaFit, library: gr.ModelLibrary, face: str | None = None) -> np.ndarray:
+    """Best score of the fit within each alpha class: cube, cuboctahedron, octahedron.
 
     Parameters
     ----------
     fit : AlphaFit
     library : ModelLibrary
+    face : str, optional
+        Only models resting on this face ('100' or '111'); default both.
+
+    Returns
+    -------
+    ndarray, shape (3,)
+        min of S(alpha) (profiled over faces) over alpha <= 1.5, 1.5 < alpha < 3
+        and alpha >= 3 (design contract); inf where the class has no model.
+    """
+    grid = library.grid
+    prof = np.full(grid.size, np.inf)
+    gi = np.searchsorted(grid, library.alphas - 1e-9)
+    sc = fit.score if face is None else np.where(np.asarray(library.faces) == face, fit.score, np.inf)
+    np.minimum.at(prof, gi, sc)
+    cls = np.where(grid <= 1.5, 0, np.where(grid < 3.0, 1, 2))
+    return np.array([prof[cls == k].min() if np.any(cls == k) else np.inf for k in range(3)])
+
+
+def polyhedral_class(fit: gr.AlphaFit, library: gr.ModelLibrary, octahedron_margin: float = 0.5
+                     ) -> tuple[str, float]:
+    """Name a Wulff fit by alpha (design contract) with a relative-likelihood score.
+
+    Parameters
+    ----------
+    fit : AlphaFit
+    library : ModelLibrary
+    octahedron_margin : float
+        The octahedron (alpha >= 3, one body) is taken when its score is within
+        this of the best: outline blur rounds the six corners of an
+        octahedron's hexagon, which a barely truncated (alpha just under 3)
+        model then fits marginally better.
 
     Returns
     -------
     habit : str
         'cube' (alpha <= 1.5), 'cuboctahedron' (1.5 < alpha < 3) or 'octahedron'.
-    share : float
-        sum over grid alphas of the class of exp(-S(alpha) / 2), S profiled over
-        faces, divided by the sum over the whole grid.
+    score : float
+        exp(-S_c / 2) / sum_k exp(-S_k / 2) of the chosen class, S_k the class
+        scores of :func:`class_scores`.
     """
-    grid = library.grid
-    prof = np.full(grid.size, np.inf)
-    gi = np.searchsorted(grid, library.alphas - 1e-9)
-    np.minimum.at(prof, gi, fit.score)
-    w = np.exp(-0.5 * np.where(np.isfinite(prof), prof, np.inf))
-    cls = np.where(grid <= 1.5, 0, np.where(grid < 3.0, 1, 2))
-    mass = np.array([w[cls == k].sum() for k in range(3)])
-    k = int(np.argmax(mass))
-    return ("cube", "cuboctahedron", "octahedron")[k], float(mass[k] / mass.sum())
+    s = class_scores(fit, library)
+    k = int(np.argmin(s))
+    if k == 1 and s[2] <= s[1] + octahedron_margin:
+        k = 2
+    w = np.exp(-0.5 * (s - s.min()))
+    return ("cube", "cuboctahedron", "octahedron")[k], float(w[k] / w.sum())
 
 
 # ------------------------------------------------------------------ per grain
@@ -275,13 +305,16 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, transmission=
         if ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"]:
             if thin or not np.isfinite(transmission):
                 return {**out, "habit": "tabular_hexagon", "habit_score": flat_score}
-        square = fit.face == "100" and fit.alpha <= 1.5
+        cs = class_scores(fit, lib)
+        square = class_scores(fit, lib, "100")[0] <= kw["tolerance"]     # square outline
         if not square:
             return {**out, "habit": "irregular", "habit_score": flat_score}
         if thin:
             return {**out, "habit": "irregular",
                     "habit_score": flat_score * _margin(transmission, p["plate_transmission"], 0.05)}
-    habit, share = polyhedral_class(fit, lib)
+        w = np.exp(-0.5 * (cs - cs.min()))
+        return {**out, "habit": "cube", "habit_score": 0.7 * float(w[0] / w.sum())}
+    habit, share = polyhedral_class(fit, lib, p["octahedron_margin"])
     if not faceted:
         share *= 0.7          # a flat top face: a cube, but the plate cannot be ruled out
     return {**out, "habit": habit, "habit_score": share}
