@@ -653,12 +653,23 @@ def convex_hulls(xy, offsets, max_passes=200):
     n = len(offsets) - 1
     counts = np.diff(offsets)
     gid0 = np.repeat(np.arange(n), counts)
+    scale = float(np.abs(xy).max()) if len(xy) else 1.0
+    eps = 1e-12 * max(scale, 1.0) ** 2
     cur, cur_gid = xy, gid0
     cur_off = offsets.copy()
-    scale = np.abs(xy).max() if len(xy) else 1.0
-    eps = 1e-12 * max(scale, 1.0) ** 2
     settled = False
     for _ in range(max_passes):
+        # drop vertices that repeat their (cyclic) predecessor: a zero-length
+        # edge hides the turn; a polygon of one repeated point keeps one
+        _, prv, _ = _cyclic_neighbours(cur_off)
+        distinct = np.any(cur != cur[prv], axis=1)
+        lone = np.bincount(cur_gid[distinct], minlength=n) == 0
+        starts = cur_off[:-1][lone & (np.diff(cur_off) > 0)]
+        distinct[starts] = True
+        if not np.all(distinct):
+            cur, cur_gid = cur[distinct], cur_gid[distinct]
+            cur_off = np.zeros(n + 1, dtype=np.intp)
+            np.cumsum(np.bincount(cur_gid, minlength=n), out=cur_off[1:])
         _, prv, nxt = _cyclic_neighbours(cur_off)
         a = cur - cur[prv]
         b = cur[nxt] - cur
@@ -733,7 +744,7 @@ def _contains_all(hull, h_off, pts, p_off, eps):
     j = np.searchsorted(key, pg * 8.0 + pth + 4.0, side="left") - 1
     lo = h_off[:-1][pg] + 1
     hi = last[pg] - 1
-    j = np.clip(j, lo, np.maximum(hi, lo))
+    j = np.clip(np.clip(j, lo, np.maximum(hi, lo)), 0, len(hull) - 1)
     va, vb = hull[j], hull[np.minimum(j + 1, len(hull) - 1)]
     e = vb - va
     q = pts - va
