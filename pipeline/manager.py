@@ -34,6 +34,7 @@ DEFAULT_PLUGINS = (
     "plugins.classify",
     "plugins.growth",
     "plugins.thickness",
+    "plugins.shadow_thickness",
     "plugins.summary",
     "plugins.report",
     "plugins.compare",
