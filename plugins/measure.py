@@ -200,7 +200,7 @@ def label_moments(labels, image=None, n_labels=None):
     n = int(lab.max()) if n_labels is None else int(n_labels)
     flat = lab.ravel()
     fg = np.flatnonzero(flat)
-    ids = flat[fg]
+    ids = flat[fg].astype(np.intp)
     rows, cols = np.divmod(fg, lab.shape[1])
     x = cols.astype(np.float64)
     y = rows.astype(np.float64)
@@ -461,24 +461,38 @@ def trace_outlines(labels, n_labels=None, window=9):
 
 
 def _smooth_all(xy, offsets, window, order=2):
-    """Cyclic Savitzky-Golay smoothing of every outline at once."""
+    """Cyclic Savitzky-Golay smoothing of every outline at once.
+
+    Each outline is extended by ``window // 2`` vertices wrapped from its
+    other end, the whole end-to-end array is convolved once per
+    coordinate, and the valid part of each outline is taken back; outlines
+    with no more vertices than the window are left as they are.
+    """
     if window % 2 == 0 or window <= order:
         raise ValueError(f"contour window must be odd and greater than {order}, got {window}")
     from scipy.signal import savgol_coeffs
 
     coef = savgol_coeffs(window, order)
-    counts = np.diff(offsets)
-    gid = np.repeat(np.arange(len(counts)), counts)
-    start = offsets[:-1][gid]
-    size = counts[gid]
-    pos = np.arange(len(xy)) - start
-    smooth = size > window
-    out = np.zeros_like(xy)
     h = window // 2
-    for j, w in enumerate(coef):
-        nb = start + (pos + (j - h)) % np.maximum(size, 1)
-        out += w * xy[nb]
-    return np.where(smooth[:, None], out, xy)
+    counts = np.diff(offsets)
+    n = len(counts)
+    ext_counts = counts + 2 * h
+    ext_off = np.zeros(n + 1, dtype=np.intp)
+    np.cumsum(ext_counts, out=ext_off[1:])
+    gid = np.repeat(np.arange(n), ext_counts)
+    local = np.arange(int(ext_off[-1])) - ext_off[:-1][gid] - h
+    src = offsets[:-1][gid] + local % np.maximum(counts[gid], 1)
+    ext = xy[np.minimum(src, max(len(xy) - 1, 0))]
+    out = xy.copy()
+    if len(ext) < window:
+        return out
+    conv = np.stack([np.convolve(ext[:, j], coef[::-1], mode="valid") for j in range(2)], axis=1)
+    # conv[i] is the window centred on ext[i + h]
+    centre = np.arange(len(xy)) - offsets[:-1][np.repeat(np.arange(n), counts)]
+    pos = ext_off[:-1][np.repeat(np.arange(n), counts)] + centre
+    smooth = np.repeat(counts > window, counts)
+    out[smooth] = conv[pos[smooth]]
+    return out
 
 
 def grain_contours(labels, n_labels=None, window=9):
