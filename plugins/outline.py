@@ -19,6 +19,8 @@ axes, y down, that looks clockwise on screen).
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from scipy.signal import savgol_coeffs
 
@@ -266,94 +268,6 @@ def _check_fit_args(size, rel_tolerance, merge_angle_deg, min_edge_fraction, min
         raise ValueError(f"min_tolerance must be >= 0, got {min_tolerance!r}")
     if corner_rounding < 0:
         raise ValueError(f"corner_rounding must be >= 0, got {corner_rounding!r}")
-
-
-def _shift(a, k):
-    """Cyclic shift along axis 0 like ``np.roll(a, k, 0)``, without its overhead."""
-    k %= len(a)
-    return a if k == 0 else np.concatenate((a[-k:], a[:-k]))
-
-
-class _Sums:
-    """Cumulative moments of a closed contour, for O(1) line fits on any span."""
-
-    def __init__(self, c):
-        self.c = c
-        self.m = len(c)
-        self.off = c.mean(axis=0)
-        cc = np.concatenate([c, c]) - self.off
-        x, y = cc[:, 0], cc[:, 1]
-        z = np.zeros((1, 5))
-        self.s = np.concatenate([z, np.cumsum(np.stack([x, y, x * x, y * y, x * y], 1), 0)])
-
-    def lines(self, a, span):
-        """TLS lines through vertices a..a+span (cyclic, inclusive), vectorised.
-
-        Returns centres (k, 2) and unit directions (k, 2).
-        """
-        n = (span + 1).astype(np.float64)
-        s = (self.s[a + span + 1] - self.s[a]) / n[:, None]
-        mx, my = s[:, 0], s[:, 1]
-        sxx, syy, sxy = s[:, 2] - mx * mx, s[:, 3] - my * my, s[:, 4] - mx * my
-        t = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
-        return np.stack([mx, my], 1) + self.off, np.stack([np.cos(t), np.sin(t)], 1)
-
-
-def _edge_lines(sums, idx):
-    """A line for each edge idx[j] -> idx[j+1], fitted to its middle part.
-
-    Returns centres (k, 2), unit directions (k, 2) and a validity mask (k,).
-    Edges with fewer than 4 contour vertices get the chord of their end
-    vertices.
-    """
-    m = sums.m
-    a = np.asarray(idx, dtype=np.intp)
-    b = _shift(a, -1)
-    span = (b - a) % m
-    trim = span // 5
-    fit = span - 2 * trim >= 3
-    cen, dirs = sums.lines((a + trim) % m, span - 2 * trim)
-    chord = sums.c[b] - sums.c[a]
-    clen = np.hypot(chord[:, 0], chord[:, 1])
-    with np.errstate(invalid="ignore", divide="ignore"):
-        cdir = chord / clen[:, None]
-    cen = np.where(fit[:, None], cen, sums.c[a])
-    dirs = np.where(fit[:, None], dirs, cdir)
-    valid = fit | (clen > 0)
-    return cen, dirs, valid
-
-
-def _intersect_next(cen, dirs, valid, shift):
-    """Intersections of line j - shift with line j (vectorised); NaN if none."""
-    p1, d1 = _shift(cen, shift), _shift(dirs, shift)
-    den = d1[:, 0] * dirs[:, 1] - d1[:, 1] * dirs[:, 0]
-    diff = cen - p1
-    ok = valid & _shift(valid, shift) & (np.abs(den) > 1e-6)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        t = (diff[:, 0] * dirs[:, 1] - diff[:, 1] * dirs[:, 0]) / den
-    p = p1 + t[:, None] * d1
-    p[~ok] = np.nan
-    return p
-
-
-def _corners(sums, idx, lines, reach):
-    """Vertices at intersections of neighbouring edge lines (else on the contour)."""
-    cen, dirs, valid = lines
-    out = sums.c[idx].copy()
-    p = _intersect_next(cen, dirs, valid, 1)
-    dist = np.hypot(p[:, 0] - out[:, 0], p[:, 1] - out[:, 1])
-    use = np.isfinite(dist) & (dist <= reach)
-    out[use] = p[use]
-    return out
-
-
-def _turns_edges(poly):
-    """Absolute turning angles (deg) and edge lengths of a closed polygon."""
-    d_out = _shift(poly, -1) - poly
-    d_in = _shift(d_out, 1)
-    cross = d_in[:, 0] * d_out[:, 1] - d_in[:, 1] * d_out[:, 0]
-    dot = (d_in * d_out).sum(axis=1)
-    return np.abs(np.degrees(np.arctan2(cross, dot))), np.hypot(d_out[:, 0], d_out[:, 1])
 
 
 def douglas_peucker_closed(contour_xy, tolerance):
@@ -638,6 +552,99 @@ def fit_polygons(
     return out
 
 
+class _Cleaner:
+    """Corner clean-up on one contour with scalar arithmetic.
+
+    Polygons here have about ten vertices, where array calls cost more than
+    they compute; lines fitted to contour spans come from cumulative sums
+    in O(1) and are cached per edge, as each step changes one or two edges.
+    """
+
+    def __init__(self, c):
+        self.c = c
+        self.m = m = len(c)
+        self.cx, self.cy = (float(v) for v in c.mean(axis=0))
+        cc = np.concatenate([c, c]) - (self.cx, self.cy)
+        x, y = cc[:, 0], cc[:, 1]
+        cum = np.zeros((2 * m + 1, 5))
+        np.cumsum(np.stack([x, y, x * x, y * y, x * y], axis=1), axis=0, out=cum[1:])
+        self.cum = cum.tolist()
+        self.pts = c.tolist()
+        self.cache = {}
+
+    def line(self, a, b):
+        """Line (px, py, dx, dy) along edge a -> b, its middle three fifths
+        fitted by total least squares; None for a degenerate edge."""
+        key = (a, b)
+        hit = self.cache.get(key)
+        if hit is not None or key in self.cache:
+            return hit
+        m = self.m
+        span = (b - a) % m
+        trim = span // 5
+        if span - 2 * trim >= 3:
+            s0 = (a + trim) % m
+            n = span - 2 * trim + 1
+            lo, hi = self.cum[s0], self.cum[s0 + n]
+            mx, my = (hi[0] - lo[0]) / n, (hi[1] - lo[1]) / n
+            sxx = (hi[2] - lo[2]) / n - mx * mx
+            syy = (hi[3] - lo[3]) / n - my * my
+            sxy = (hi[4] - lo[4]) / n - mx * my
+            t = 0.5 * math.atan2(2.0 * sxy, sxx - syy)
+            out = (mx + self.cx, my + self.cy, math.cos(t), math.sin(t))
+        else:
+            (ax, ay), (bx, by) = self.pts[a], self.pts[b]
+            ln = math.hypot(bx - ax, by - ay)
+            out = (ax, ay, (bx - ax) / ln, (by - ay) / ln) if ln > 0 else None
+        self.cache[key] = out
+        return out
+
+    @staticmethod
+    def meet(l1, l2):
+        """Intersection of two lines, or None if missing or near parallel."""
+        if l1 is None or l2 is None:
+            return None
+        den = l1[2] * l2[3] - l1[3] * l2[2]
+        if abs(den) < 1e-6:
+            return None
+        t = ((l2[0] - l1[0]) * l2[3] - (l2[1] - l1[1]) * l2[2]) / den
+        return (l1[0] + t * l1[2], l1[1] + t * l1[3])
+
+    def polygon(self, idx, refine, reach):
+        """Vertices for corner indices idx, and the lines of its edges."""
+        k = len(idx)
+        if not refine:
+            return [tuple(self.pts[i]) for i in idx], None
+        lines = [self.line(idx[j], idx[(j + 1) % k]) for j in range(k)]
+        poly = []
+        for j in range(k):
+            vx, vy = self.pts[idx[j]]
+            p = self.meet(lines[j - 1], lines[j])
+            if p is not None and math.hypot(p[0] - vx, p[1] - vy) <= reach:
+                poly.append(p)
+            else:
+                poly.append((vx, vy))
+        return poly, lines
+
+    def distance_to_contour(self, p):
+        d = self.c - p
+        return float(np.sqrt((d * d).sum(axis=1).min()))
+
+
+def _turns_and_edges(poly):
+    """Absolute turning angles (deg) and outgoing edge lengths, scalar."""
+    k = len(poly)
+    turns, edges = [], []
+    for j in range(k):
+        x0, y0 = poly[j - 1]
+        x1, y1 = poly[j]
+        x2, y2 = poly[(j + 1) % k]
+        ax, ay, bx, by = x1 - x0, y1 - y0, x2 - x1, y2 - y1
+        turns.append(abs(math.degrees(math.atan2(ax * by - ay * bx, ax * bx + ay * by))))
+        edges.append(math.hypot(bx, by))
+    return turns, edges
+
+
 def _clean_polygon(c, idx, size, tol, merge_angle_deg, min_edge_fraction, corner_rounding,
                    refine):
     """Merge, collapse and refine the DP vertices ``idx`` of contour ``c``."""
@@ -645,34 +652,30 @@ def _clean_polygon(c, idx, size, tol, merge_angle_deg, min_edge_fraction, corner
     if len(idx) < 3:
         # DP keeps too little of a tiny contour: fall back to all its vertices
         idx = np.arange(m)
-    sums = _Sums(c)
+    cl = _Cleaner(c)
     reach = max(2.0 * tol, corner_rounding)
     min_edge = min_edge_fraction * size
-    idx = list(int(i) for i in idx)
+    idx = [int(i) for i in idx]
     for _ in range(4 * m):
-        if refine:
-            lines = _edge_lines(sums, idx)
-            poly = _corners(sums, idx, lines, 3.0 * reach)
-        else:
-            poly = c[idx]
+        poly, lines = cl.polygon(idx, refine, 3.0 * reach)
         if len(idx) <= 3:
             break
-        turn, e = _turns_edges(poly)
-        j = int(np.argmin(turn))
+        turn, e = _turns_and_edges(poly)
+        j = min(range(len(turn)), key=turn.__getitem__)
         if turn[j] < merge_angle_deg:
             del idx[j]
             continue
-        j = int(np.argmin(e))
+        j = min(range(len(e)), key=e.__getitem__)
         if e[j] < min_edge:
             idx = _collapse(idx, j, m)
             continue
         if refine:
-            j = _bevel(sums, lines, e, 0.25 * size, reach)
+            j = _bevel(cl, lines, e, 0.25 * size, reach)
             if j is not None:
                 idx = _collapse(idx, j, m)
                 continue
         break
-    return poly
+    return np.array(poly, dtype=np.float64).reshape(-1, 2)
 
 
 def _collapse(idx, j, m):
@@ -684,17 +687,13 @@ def _collapse(idx, j, m):
     return sorted(set(rest + [mid]))
 
 
-def _bevel(sums, lines, e, max_len, reach):
+def _bevel(cl, lines, e, max_len, reach):
     """Shortest edge whose neighbours meet within ``reach`` of the contour."""
-    cen, dirs, valid = lines
-    # apex of edge j: where lines j - 1 and j + 1 meet
-    p = _intersect_next(_shift(cen, -1), _shift(dirs, -1), _shift(valid, -1), 2)
-    for j in np.argsort(e, kind="stable"):
+    k = len(e)
+    for j in sorted(range(k), key=e.__getitem__):
         if e[j] >= max_len:
             return None
-        if not np.all(np.isfinite(p[j])):
-            continue
-        d = np.sqrt(((sums.c - p[j]) ** 2).sum(axis=1).min())
-        if d <= reach:
-            return int(j)
+        p = cl.meet(lines[j - 1], lines[(j + 1) % k])
+        if p is not None and cl.distance_to_contour(p) <= reach:
+            return j
     return None
