@@ -1,27 +1,38 @@
 """Step ``segment-grains``: foreground, touching-grain splitting, labels.
 
-1. Foreground: a global Otsu threshold [1]_ (computed once per frame, on a
-   subsample of large frames) or a local one (Gaussian-weighted local mean,
-   or Sauvola [2]_) over ``local_block_nm``; local thresholds never go below
-   half the Otsu value, so flat background does not turn into noise.
+1. Foreground: by default ``noise_k`` background sigmas above the background
+   level (both measured once per frame from the histogram's main mode), so
+   that faint grains (thin plates in bright-field contrast) are found; or
+   the global Otsu threshold [1]_; or a local one (Gaussian-weighted local
+   mean, or Sauvola [2]_) over ``local_block_nm``, never below the noise
+   threshold. Frame-wide levels are computed once and passed to every tile.
 2. Grain extent comes from the outline only: a closing of radius
    ``close_nm`` bridges facet lines that reach the outline, every hole is
    filled, so inner facet edges (bright or dark lines) never split a grain.
-   Components with an ECD under ``min_ecd_nm`` are dropped.
+   The outline is then moved, within a band of ``refine_nm`` on either side,
+   to the ridge of the gradient magnitude by a two-marker watershed (the
+   half-height point of a blurred step edge; close to the foot of a soft,
+   thickness-graded edge), which keeps the ECD unbiased whatever the
+   threshold. Components with an ECD under ``min_ecd_nm`` are dropped.
 3. Touching grains: each connected component is cropped to its bounding box.
    A component whose deepest concavity (largest distance from the shape of
    a pixel of its convex hull) is at most ``max(2 px, split_depth * r_eq)``,
    with ``r_eq`` the equal-area radius, is one convex grain and is never
-   split. Otherwise the distance transform is flooded by a marker-controlled
+   split. Otherwise it is cut along a straight segment between two outline
+   concavities (or from one concavity to the outline point of the shortest
+   cut), trying the shortest cuts relative to the concavity depths first;
+   the first cut whose parts are convex (twice the allowance), or can be cut
+   again into convex parts, is kept. The visible boundary of an overlapping
+   pair is an edge of the front grain, and it runs between these points.
+   If no cut works, the distance transform is flooded by a marker-controlled
    watershed [3]_ from its h-maxima, trying ``h = f * d_max`` for f = 0.5,
-   0.35, 0.25, 0.15, 0.1 (``d_max`` the component's largest inscribed radius, so h
-   follows the local grain size): the first split (fewest markers) whose
-   parts are all convex in the same sense and no smaller than ``min_ecd_nm``
-   is kept, provided that every line between two parts crosses a neck: the
-   distance map's saddle on it is at most 0.75 of the smaller part's peak
-   (ripples along one elongated grain are not necks). A pair of different
-   sizes has one distance maximum per member
-   and the watershed line runs through the saddle at the neck.
+   0.35, 0.25, 0.15, 0.1 (``d_max`` the largest inscribed radius, so h
+   follows the local grain size); the first split (fewest markers) with
+   convex parts no smaller than ``min_ecd_nm`` is kept, provided every line
+   between two parts crosses a neck: the distance map's saddle on it is at
+   most 0.75 of the smaller part's peak (ripples along one elongated grain
+   are not necks). A pair of different sizes has one distance maximum per
+   member and the watershed line runs through the saddle at the neck.
 4. Labels are numbered 1..n in row-major order of their first pixel, so a
    tiled run (see :mod:`plugins.tiling`) numbers them as an untiled one.
 
@@ -52,7 +63,7 @@ STEP = StepInfo(
     name="segment-grains",
     stage="segment",
     version="1.0",
-    summary="Otsu or local threshold, outline-only grain extent, convexity-checked watershed splitting.",
+    summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "noise", choices=("noise", "otsu", "local", "sauvola"),
               doc="Foreground threshold: noise_k background sigmas, global Otsu, Gaussian local mean, or Sauvola."),
@@ -542,6 +553,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     if not np.isfinite(pixel_size_nm) or pixel_size_nm <= 0:
         raise ValueError(f"pixel_size_nm must be positive, got {pixel_size_nm!r}")
     fg = foreground(arr, pixel_size_nm, levels, method, local_block_nm, local_offset, close_nm, refine_nm)
+    above = arr > levels["noise"]
     min_area = np.pi / 4.0 * (min_ecd_nm / pixel_size_nm) ** 2
     comp, n = ndi.label(fg, structure=_EIGHT)
     labels = np.zeros(arr.shape, np.int32)
@@ -558,10 +570,14 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             comp[box][m] = 0
             continue
         parts = split_component(m, max(min_area, 1), split_depth) if split else [m]
+        was_split = len(parts) > 1
+        # closing and hole filling can enclose background between grains: a part
+        # mostly below the threshold is such a pocket, not a grain
+        parts = [q for q in parts if above[box][q].mean() >= 0.5]
         view = labels[box]
         for p in parts:
             view[p] = nxt
-            split_flag.append(len(parts) > 1)
+            split_flag.append(was_split)
             nxt += 1
     labels, old = tiling.renumber_raster(labels)
     flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]])}

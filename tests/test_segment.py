@@ -231,3 +231,57 @@ def test_bad_threshold_name_is_refused():
     raw, _ = draw_frame((64, 64), grains=())
     with pytest.raises(ParamError):
         run_chain(raw, 5.0, {"threshold": "magic"})
+
+
+def test_concavity_depth_of_two_overlapping_discs():
+    # handbook geometry: equal discs (radius R, centres d apart) meet at points
+    # sqrt(R^2 - d^2 / 4) from the line of centres; the hull's tangent lies at R,
+    # and the tangent's midpoint is sqrt(R^2 + d^2 / 4) - R from either disc
+    R, d = 30.0, 40.0
+    mask = np.zeros((100, 140), bool)
+    mask[disk((50, 50), R, shape=mask.shape)] = True
+    mask[disk((50, 50 + d), R, shape=mask.shape)] = True
+    expected = R - np.sqrt(R * R - d * d / 4)
+    gap = np.sqrt(R * R + d * d / 4) - R
+    assert segment.concavity_depth(mask) == pytest.approx(gap, abs=1.0)
+    defects = segment.convexity_defects(mask, 2.0)
+    assert len(defects) == 2
+    for point, depth in defects:
+        assert depth == pytest.approx(expected, abs=1.0)
+        assert point[1] == pytest.approx(50 + d / 2, abs=1.5)
+    assert not segment.is_convex(mask)
+
+
+@pytest.mark.parametrize("n,r", [(0, 25), (3, 30), (4, 8), (6, 40)])
+def test_digital_convex_shapes_count_as_convex(n, r):
+    mask = np.zeros((100, 100), bool)
+    if n == 0:
+        mask[disk((50, 50), r, shape=mask.shape)] = True
+    else:
+        mask[polygon(*regular_polygon(50, 50, r, n, 7.0), mask.shape)] = True
+    assert segment.concavity_depth(mask) <= 1.5
+    assert segment.is_convex(mask)
+
+
+def test_cluster_of_three_splits_into_three():
+    grains = ((90, 70, 35, 4, 0.0), (90, 135, 32, 6, 0.0), (140, 100, 33, 0, 0.0))
+    raw, truth = draw_frame((240, 220), grains=grains, seed=10)
+    assert ndi.label(truth > 0)[1] == 1
+    out = run_chain(raw)
+    assert out.n_grains == 3 and out.grains["split"].all()
+    for k in (1, 2, 3):
+        assert best_iou(out.labels, truth == k)[1] > 0.8
+
+
+def test_faint_grain_found_by_noise_threshold_not_by_otsu():
+    # one strong and one faint grain (a fifth of the contrast), as thin plates look in bright field
+    raw, truth = draw_frame((200, 260), grains=((100, 70, 40, 6, 0.0),), facets=False, seed=11)
+    faint = np.zeros(raw.shape, bool)
+    faint[polygon(*regular_polygon(100, 190, 40, 3, 0.0), raw.shape)] = True
+    raw = raw + ndi.gaussian_filter(np.where(faint, 0.15, 0.0), 1.0).astype(np.float32)
+    default = run_chain(raw)
+    assert default.n_grains == 2
+    _, iou = best_iou(default.labels, faint)
+    assert iou > 0.9
+    otsu = run_chain(raw, seg_params={"threshold": "otsu"})
+    assert best_iou(otsu.labels, faint)[1] < 0.5
