@@ -40,6 +40,8 @@ def _common(p: argparse.ArgumentParser) -> None:
 
 
 def _print_problems(host: Host, debug: bool) -> None:
+    for text in host.warnings:
+        print(f"grainhabit: warning: {text}", file=sys.stderr)
     for prob in host.problems:
         print(f"grainhabit: warning: {prob.message}", file=sys.stderr)
         if debug and prob.traceback:

@@ -290,6 +290,11 @@ def grainhabit_add_commands(subparsers: argparse._SubParsersAction) -> None:
     ----------
     subparsers : argparse._SubParsersAction
         From ``ArgumentParser.add_subparsers``.
+
+    Returns
+    -------
+    None
+        Results are ignored; every plugin's commands are added.
     """
 
 

@@ -95,6 +95,7 @@ class Host:
     pm: pluggy.PluginManager
     records: dict[str, PluginRecord] = field(default_factory=dict)
     problems: list[LoadProblem] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
     _callers: dict = field(default_factory=dict)
 
     # -- steps --------------------------------------------------------------
@@ -126,9 +127,45 @@ class Host:
             self._callers[name] = caller
         return caller(**kwargs)
 
+    def first_answer(self, hook: str, **kwargs):
+        """Call every implementation of a first-result hook, newest first, until one answers.
+
+        Unlike a plain pluggy call, an implementation that raises does not
+        hide the others: its error is kept, and the next implementation is
+        tried. If none answers, the first error is raised again (so a reader
+        that recognises a file but cannot read it still fails the frame).
+
+        Returns
+        -------
+        result
+            The first non-None result, or None if no implementation answered
+            and none raised.
+        """
+        errors = []
+        for impl in reversed(getattr(self.pm.hook, hook).get_hookimpls()):
+            try:
+                result = impl.function(**{k: kwargs[k] for k in impl.argnames})
+            except Exception as exc:
+                errors.append((impl.plugin_name, exc))
+                continue
+            if result is not None:
+                return result
+        if errors:
+            name, exc = errors[0]
+            raise exc.__class__(f"{exc} [plugin {name}]") if _reraisable(exc) else exc
+        return None
+
     def hooks_of(self, plugin) -> list[str]:
         """Names of the hooks a plugin implements."""
         return sorted(h.name for h in (self.pm.get_hookcallers(plugin) or []))
+
+
+def _reraisable(exc: Exception) -> bool:
+    try:
+        exc.__class__(str(exc))
+        return True
+    except Exception:
+        return False
 
 
 def _plugin_version(module: ModuleType) -> str:
@@ -149,6 +186,9 @@ def register(host: Host, module: ModuleType, origin: str) -> None:
     """
     name = getattr(module, "__name__", repr(module))
     api = getattr(module, "GRAINHABIT_API", None)
+    if api is None and origin != "built-in":
+        host.warnings.append(f"plugin {name!r} does not declare GRAINHABIT_API; assuming hook API "
+                             f"{hookspecs.API_VERSION}")
     if api is not None and api != hookspecs.API_VERSION:
         raise PluginError(
             f"plugin {name!r} was written for hook API {api}, this grainhabit has API {hookspecs.API_VERSION}"
@@ -191,7 +231,11 @@ def _load_module(spec: str) -> ModuleType:
         module_spec = importlib.util.spec_from_file_location(mod_name, path)
         module = importlib.util.module_from_spec(module_spec)
         sys.modules[mod_name] = module
-        module_spec.loader.exec_module(module)
+        try:
+            module_spec.loader.exec_module(module)
+        except BaseException:
+            del sys.modules[mod_name]  # a failed import must fail again next time, not register half a module
+            raise
         return module
     return importlib.import_module(spec)
 

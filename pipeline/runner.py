@@ -121,7 +121,7 @@ def list_frames(plan: Plan, host: Host, processing_key: str) -> tuple[list[Liste
     frames = []
     for path in files:
         try:
-            refs = host.pm.hook.grainhabit_list_frames(path=path, options=inp)
+            refs = host.first_answer("grainhabit_list_frames", path=path, options=inp)
         except Exception as exc:
             problems.append((path, f"{exc.__class__.__name__}: {exc}"))
             continue
@@ -242,16 +242,23 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
                                                                   frames_ds["error"].values,
                                                                   frames_ds["status"].values) if str(st) != "ok"]
         summary: dict = {}
+        survey_errors: list[str] = []
         for step in [s for s in plan.survey_steps if s.stage == "summarise"]:
-            out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary, params=step.params)
-            if not isinstance(out, dict) or "summary" not in out:
-                raise TypeError(f"step {step.name!r} returned {type(out).__name__}; expected a dict with 'summary'")
-            summary.update(out)
+            try:
+                out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary, params=step.params)
+                if not isinstance(out, dict) or "summary" not in out:
+                    raise TypeError(f"returned {type(out).__name__}; expected a dict with a 'summary' dataset")
+                summary.update(out)
+            except Exception as exc:
+                survey_errors.append(f"{step.name}: {exc.__class__.__name__}: {exc}")
+                log.error("summarise step %s", survey_errors[-1])
+                log.debug("traceback of %s", step.name, exc_info=True)
         groups.update(summary)
+        outcome.failures.extend(("(survey)", e) for e in survey_errors)
 
         previous_runs = _previous_runs(results)
         outcome.seconds = time.monotonic() - t_start
-        outcome.exit_code = 1 if outcome.frames_failed else 0
+        outcome.exit_code = 1 if (outcome.frames_failed or survey_errors) else 0
         record = {"started": started, "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
                   "host": socket.gethostname(), "pid": os.getpid(), "workflow": plan.file,
                   "workflow_hash": plan.hash, "frames_ok": outcome.frames_ok, "frames_failed": outcome.frames_failed,
@@ -269,7 +276,15 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
         report_dir = plan.config["output"]["report"]
         if report_dir:
             for step in [s for s in plan.survey_steps if s.stage == "report"]:
-                files = host.call_step(step.name, results=results, out_dir=report_dir, params=step.params)
+                try:
+                    files = host.call_step(step.name, results=results, out_dir=report_dir, params=step.params)
+                except Exception as exc:
+                    msg = f"{step.name}: {exc.__class__.__name__}: {exc}"
+                    log.error("report step %s", msg)
+                    log.debug("traceback of %s", step.name, exc_info=True)
+                    outcome.failures.append(("(report)", msg))
+                    outcome.exit_code = 1
+                    continue
                 if files:
                     outcome.report = str(files[0])
             if outcome.report:

@@ -66,6 +66,16 @@ def thumbnail(image: np.ndarray, side: int = THUMB_SIDE) -> tuple[np.ndarray, fl
     return (np.nan_to_num(scaled) * 255 + 0.5).astype(np.uint8), float(f)
 
 
+def _check_columns(frame: FrameData) -> None:
+    """Every per-grain column must have one row per grain (and outlines, if set, one per grain)."""
+    n = frame.n_grains
+    bad = [k for k, v in frame.grains.items() if np.ndim(v) != 1 or len(v) != n]
+    if bad:
+        raise ValueError(f"columns {bad} do not have one row per grain ({n} grains)")
+    if frame.outlines and len(frame.outlines) != n:
+        raise ValueError(f"{len(frame.outlines)} outlines for {n} grains")
+
+
 def _fail(record: dict, where: str, exc: BaseException) -> dict:
     record["status"] = "failed"
     record["error"] = f"{where}: {exc.__class__.__name__}: {exc}".replace("\n", " ")[:500]
@@ -107,7 +117,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
     timings = record["timings"]
     try:
         t0 = time.perf_counter()
-        frame = host.pm.hook.grainhabit_read_frame(ref=ref, options=job.input_options)
+        frame = host.first_answer("grainhabit_read_frame", ref=ref, options=job.input_options)
         if frame is None:
             raise ValueError(f"no reader plugin for {ref.source} (listed by {ref.reader or '?'})")
         if not isinstance(frame, FrameData):
@@ -134,6 +144,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
             out = host.call_step(name, frame=frame, params=params)
             if not isinstance(out, FrameData):
                 raise TypeError(f"returned {type(out).__name__}, expected FrameData")
+            _check_columns(out)
             frame = out
         except Exception as exc:
             _fail(record, name, exc)

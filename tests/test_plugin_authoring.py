@@ -357,8 +357,6 @@ def test_workflow_plugin_whose_import_fails_is_refused_by_name(tmp_path, monkeyp
     assert not (tmp_path / "out" / "results.zarr").exists()
 
 
-@pytest.mark.xfail(strict=True, reason="host: _load_module leaves a plugin file whose import failed in "
-                   "sys.modules, so the next load in the same process registers the half-run module")
 def test_failed_plugin_file_stays_failed_in_the_same_process(tmp_path):
     from pipeline.manager import make_host
 
@@ -392,8 +390,6 @@ def test_step_from_workflow_plugin_file_is_usable(tmp_path, monkeypatch, capsys)
     assert "thickness  faulty-thickness 1.0" in capsys.readouterr().out
 
 
-@pytest.mark.xfail(strict=True, reason="host: reader hooks are one firstresult call, so a reader plugin that "
-                   "raises stops the built-in readers from answering (see DEVELOPERS.md)")
 def test_raising_reader_does_not_hide_the_built_in_readers(tmp_path):
     from pipeline.manager import make_host
     from pipeline.runner import list_frames
