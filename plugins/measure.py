@@ -142,14 +142,29 @@ STEP = StepInfo(
     ),
 )
 
-#: Scalar columns written by this step, with their units.
+#: Columns written by this step: name -> (units, long name).
 COLUMNS = {
-    "centroid_x_nm": "nm", "centroid_y_nm": "nm", "area_nm2": "nm^2", "ecd_nm": "nm",
-    "perimeter_nm": "nm", "convex_area_nm2": "nm^2", "convex_perimeter_nm": "nm",
-    "feret_max_nm": "nm", "feret_min_nm": "nm", "feret_ratio": "1", "circularity": "1",
-    "solidity": "1", "convexity": "1", "orientation_deg": "deg", "ellipse_major_nm": "nm",
-    "ellipse_minor_nm": "nm", "elongation": "1", "intensity_mean": "image units",
-    "intensity_std": "image units", "n_corners": "1", "edge_ratio": "1",
+    "centroid_x_nm": ("nm", "centroid x (along columns, from the frame's left edge)"),
+    "centroid_y_nm": ("nm", "centroid y (along rows, from the frame's top edge)"),
+    "area_nm2": ("nm^2", "projected area (pixel count times pixel area)"),
+    "ecd_nm": ("nm", "equivalent circle diameter sqrt(4 A / pi)"),
+    "perimeter_nm": ("nm", "perimeter of the smoothed sub-pixel outline"),
+    "convex_area_nm2": ("nm^2", "area of the convex hull (pixel centres inside it)"),
+    "convex_perimeter_nm": ("nm", "perimeter of the convex hull of the outline"),
+    "feret_max_nm": ("nm", "maximum Feret diameter"),
+    "feret_min_nm": ("nm", "minimum Feret diameter"),
+    "feret_ratio": ("1", "Feret ratio (min / max)"),
+    "circularity": ("1", "circularity 4 pi A / P^2"),
+    "solidity": ("1", "solidity (area / convex hull area)"),
+    "convexity": ("1", "convexity (convex hull perimeter / perimeter)"),
+    "orientation_deg": ("deg", "major-axis direction from +x towards +y (clockwise on screen)"),
+    "ellipse_major_nm": ("nm", "major axis of the equivalent (same second moments) ellipse"),
+    "ellipse_minor_nm": ("nm", "minor axis of the equivalent ellipse"),
+    "elongation": ("1", "elongation 1 - minor / major axis of the equivalent ellipse"),
+    "intensity_mean": ("1", "mean preprocessed intensity inside the grain"),
+    "intensity_std": ("1", "standard deviation of the preprocessed intensity (ddof 0)"),
+    "n_corners": ("1", "number of corners of the fitted outline polygon"),
+    "edge_ratio": ("1", "short / long edge of the fitted outline polygon"),
 }
 
 

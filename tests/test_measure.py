@@ -372,6 +372,22 @@ def test_single_pixel_and_border_grains():
     assert all(len(o) >= 3 for o in out.outlines)
 
 
+def test_ring_uses_its_outer_outline_and_absent_labels_give_nan():
+    # handbook geometry: a ring's outer perimeter is 2 pi r_out; its area is
+    # the annulus pi (r_out^2 - r_in^2)
+    shape = (110, 110)
+    ring = disc(45.0, (55.3, 54.8), shape) & ~disc(20.0, (55.3, 54.8), shape)
+    lab = np.zeros(shape, np.int32)
+    lab[ring] = 1
+    lab[2:5, 2:5] = 3  # label 2 absent
+    cols, _ = measure_labels(lab, None, 1.0)
+    assert cols["perimeter_nm"][0] == pytest.approx(2 * np.pi * 45, rel=0.01)
+    assert cols["area_nm2"][0] == pytest.approx(np.pi * (45**2 - 20**2), rel=0.01)
+    assert cols["solidity"][0] < 0.85
+    assert np.isnan(cols["perimeter_nm"][1]) and cols["area_nm2"][1] == 0
+    assert cols["area_nm2"][2] == 9
+
+
 def test_hook_rejects_bad_frames():
     fr = frame_of(np.ones((5, 5), np.int32))
     with pytest.raises(ValueError, match="labels"):
