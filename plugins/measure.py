@@ -724,12 +724,18 @@ def convex_hulls(xy, offsets, max_passes=200):
         good &= np.bincount(cur_gid[bad], minlength=n) == 0
     good &= _turns_once(cur, cur_off)
     good &= _contains_all(cur, cur_off, xy, offsets, eps)
-    hulls = [cur[cur_off[i]:cur_off[i + 1]] if good[i] else _hull(xy[offsets[i]:offsets[i + 1]])
-             for i in range(n)]
+    # proven hulls as they are; the rest (usually none or a few) from qhull
+    sel = good[cur_gid]
+    parts, gids = [cur[sel]], [cur_gid[sel]]
+    for i in np.flatnonzero(~good):
+        h = _hull(xy[offsets[i]:offsets[i + 1]])
+        parts.append(h.reshape(-1, 2))
+        gids.append(np.full(len(h), i, dtype=cur_gid.dtype))
+    h_xy, h_gid = np.concatenate(parts), np.concatenate(gids)
+    order = np.argsort(h_gid, kind="stable")
     h_off = np.zeros(n + 1, dtype=np.intp)
-    np.cumsum([len(h) for h in hulls], out=h_off[1:])
-    h_xy = np.concatenate(hulls) if n else np.empty((0, 2))
-    return h_xy.reshape(-1, 2), h_off
+    np.cumsum(np.bincount(h_gid, minlength=n), out=h_off[1:])
+    return h_xy[order].reshape(-1, 2), h_off
 
 
 def _turns_once(poly, off):
