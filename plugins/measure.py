@@ -305,22 +305,20 @@ def _trace_cracks(labels):
     width = lab.shape[1]
     flat = lab.ravel()
     step = np.array([1, width, -1, -width])
-    found = []
-    fg = lab != 0
+    nz = lab != 0
     horiz = lab[:, :-1] != lab[:, 1:]   # pixel (r, c) differs from (r, c + 1)
     vert = lab[:-1, :] != lab[1:, :]    # pixel (r, c) differs from (r + 1, c)
-    for k in range(4):
-        hit = np.zeros(lab.shape, dtype=bool)
-        if k == 0:
-            hit[:, :-1] = horiz
-        elif k == 2:
-            hit[:, 1:] = horiz
-        elif k == 1:
-            hit[:-1, :] = vert
-        else:
-            hit[1:, :] = vert
-        hit &= fg
-        found.append(np.flatnonzero(hit) * 4 + k)
+    i_e = np.flatnonzero(horiz & nz[:, :-1])
+    i_w = np.flatnonzero(horiz & nz[:, 1:])
+    i_s = np.flatnonzero(vert & nz[:-1, :])
+    i_n = np.flatnonzero(vert & nz[1:, :])
+    # back to flat indices of the padded image, times 4 plus the direction
+    found = [
+        (i_e // (width - 1) * width + i_e % (width - 1)) * 4 + 0,
+        i_s * 4 + 1,
+        (i_w // (width - 1) * width + i_w % (width - 1) + 1) * 4 + 2,
+        (i_n + width) * 4 + 3,
+    ]
     crack = np.sort(np.concatenate(found))
     p, k = np.divmod(crack, 4)
     L = flat[p]
