@@ -77,7 +77,6 @@ def make_label_image(n_grains=500, seed=0, ecd_range=(20.0, 80.0)):
                              rotation=rng.uniform(0, np.pi))
         else:
             k = int(rng.integers(3, 9))
-            ang = np.sort(rng.uniform(0, 2 * np.pi, k))
             ang = np.linspace(0, 2 * np.pi, k, endpoint=False) + rng.uniform(0, 2 * np.pi)
             ang += rng.uniform(-0.3, 0.3, k) * np.pi / k
             rad = radius * 1.15 * rng.uniform(0.85, 1.0, k)
