@@ -111,11 +111,13 @@ References
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 from scipy.spatial import ConvexHull, QhullError
 
 from pipeline import hookimpl
-from pipeline.params import Param, StepInfo
+from pipeline.params import Column, Param, StepInfo
 
 from .outline import edge_ratio, fit_polygons
 
@@ -166,6 +168,9 @@ COLUMNS = {
     "n_corners": ("1", "number of corners of the fitted outline polygon"),
     "edge_ratio": ("1", "short / long edge of the fitted outline polygon"),
 }
+
+#: The same, as the step's declared outputs (units and long names in the results store).
+STEP = dataclasses.replace(STEP, outputs=tuple(Column(k, u, ln) for k, (u, ln) in COLUMNS.items()))
 
 
 def _check_labels(labels, image=None, pixel_size_nm=1.0):

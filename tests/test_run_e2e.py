@@ -98,19 +98,22 @@ def test_calibrated_area_and_ecd_of_exact_shapes(local_run):
     (ISO 9276-6 definition); discs of radius r px: area ~ pi (5 r)^2 nm^2 within digitisation error."""
     root, _ = local_run
     g = xr.open_zarr(root / "out" / "survey.zarr", group="grains").load()
-    first = g.where(g["frame"] == 0, drop=True)
-    big_square = first.where(np.abs(first["centroid_y_nm"] - 5 * 170) < 10, drop=True)
-    big_square = big_square.where(np.abs(big_square["centroid_x_nm"] - 5 * 60) < 10, drop=True)
+
+    def near(x_px, y_px):
+        sel = ((g["frame"] == 0) & (np.abs(g["centroid_x_nm"] - 5 * x_px) < 10)
+               & (np.abs(g["centroid_y_nm"] - 5 * y_px) < 10))
+        return g.isel(grain=np.flatnonzero(sel.values))
+
+    big_square = near(60, 170)
     assert big_square.sizes["grain"] == 1
-    assert float(big_square["area_nm2"]) == pytest.approx(200.0 ** 2, rel=0.02)
-    assert float(big_square["ecd_nm"]) == pytest.approx(math.sqrt(4 * 200.0 ** 2 / math.pi), rel=0.01)
+    assert big_square["area_nm2"].item() == pytest.approx(200.0 ** 2, rel=0.02)
+    assert big_square["ecd_nm"].item() == pytest.approx(math.sqrt(4 * 200.0 ** 2 / math.pi), rel=0.01)
     # feret of a square: min = side, max = side * sqrt(2) (handbook geometry), within a pixel
-    assert float(big_square["feret_min_nm"]) == pytest.approx(200.0, abs=7.5)
-    assert float(big_square["feret_max_nm"]) == pytest.approx(200.0 * math.sqrt(2), abs=7.5)
-    disc = first.where((np.abs(first["centroid_y_nm"] - 5 * 60.5) < 10) & (np.abs(first["centroid_x_nm"] - 5 * 60.5) < 10),
-                       drop=True)
+    assert big_square["feret_min_nm"].item() == pytest.approx(200.0, abs=7.5)
+    assert big_square["feret_max_nm"].item() == pytest.approx(200.0 * math.sqrt(2), abs=7.5)
+    disc = near(60.5, 60.5)
     assert disc.sizes["grain"] == 1
-    assert float(disc["area_nm2"]) == pytest.approx(math.pi * (5 * 20) ** 2, rel=0.03)
+    assert disc["area_nm2"].item() == pytest.approx(math.pi * (5 * 20) ** 2, rel=0.03)
 
 
 def test_rerun_reuses_staged_frames(local_run):
