@@ -108,9 +108,11 @@ def test_calibrated_area_and_ecd_of_exact_shapes(local_run):
     assert big_square.sizes["grain"] == 1
     assert big_square["area_nm2"].item() == pytest.approx(200.0 ** 2, rel=0.02)
     assert big_square["ecd_nm"].item() == pytest.approx(math.sqrt(4 * 200.0 ** 2 / math.pi), rel=0.01)
-    # feret of a square: min = side, max = side * sqrt(2) (handbook geometry), within a pixel
+    # feret of a square: min = side, max = side * sqrt(2) (handbook geometry). Through the whole chain on a
+    # noisy frame the segmented corners come out rounded by about a pixel, which shortens the diagonal by
+    # about 2 px; the measure step alone is checked to within 1 px in test_measure.py.
     assert big_square["feret_min_nm"].item() == pytest.approx(200.0, abs=7.5)
-    assert big_square["feret_max_nm"].item() == pytest.approx(200.0 * math.sqrt(2), abs=7.5)
+    assert big_square["feret_max_nm"].item() == pytest.approx(200.0 * math.sqrt(2), abs=12.5)
     disc = near(60.5, 60.5)
     assert disc.sizes["grain"] == 1
     assert disc["area_nm2"].item() == pytest.approx(math.pi * (5 * 20) ** 2, rel=0.03)
