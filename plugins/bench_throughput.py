@@ -1,0 +1,386 @@
+"""Benchmark ``grainhabit bench throughput``: frames per second, and where the time goes.
+
+Synthetic fields (the renderer of ``grainhabit bench accuracy``; invented
+data) are written as TIFF files, then timed in one run, one after another:
+
+(a) a plain serial loop over the same kernels without the pipeline: the
+    file read with tifffile, then the default chain's step functions
+    (``grainhabit_preprocess`` of flatten-background, ... ,
+    ``grainhabit_fit_growth`` of fit-growth-ratio) called directly with their
+    default parameters, one BLAS/OpenMP thread (as a dask worker has); no
+    dask, no staging, no zarr;
+(b) :func:`pipeline.runner.run` on a workflow with ``execution.workers: 1``
+    (local cluster, ``fresh``);
+(c) the same with all workers (default: one per core).
+
+Printed: frames/s and megapixels/s of each; the time per frame of every
+stage (from the staged records' ``timings`` for (b) and (c)); the host's
+own phases (listing, cluster start, staging, consolidation, summarise,
+results writing, cluster close; timed by :class:`plugins.benchutil.RunClock`);
+the pipeline's overhead per worker, ``net(b) / (a) - 1``; the speed-up of
+all workers over the serial loop, ``(a) / net(c)``; and the scaling
+efficiency ``net(b) / net(c) / workers``. ``net`` leaves out the local
+cluster's start and close, which are a fixed cost per run and are printed
+on their own; the figures with them are printed too.
+
+Targets (as ratios within one run, on the 2-core development machine): all
+workers >= 0.9 x workers (1.8 on 2 cores) times the serial loop; overhead
+per worker <= 10 %; median task well over 100 ms; with ``--scaling`` also
+4x frames within 4.4x the time and 4x pixels (2x the side, 4x the grains)
+within 4.4x the time. The machine's load average is printed beside every
+figure: on a shared machine the ratios are only as good as the load was
+steady. ``--check`` makes the exit code 1 when a target is missed.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from pipeline import hookimpl
+from plugins import benchutil as bu
+
+GRAINHABIT_API = 1
+
+#: Per-frame stages in the order of the task's ``timings``.
+FRAME_PHASES = ("read", "preprocess", "segment", "measure", "classify", "fit_growth")
+#: The host's own phases (per run), as :class:`plugins.benchutil.RunClock` names them.
+HOST_PHASES = ("list", "cluster_start", "stage_write", "consolidate", "summarise", "results_write",
+               "cluster_close", "other")
+
+TARGETS = {"speedup_per_worker": 0.9, "overhead_max": 0.10, "task_min_s": 0.1, "scaling_max": 4.4}
+
+
+def default_chain() -> list[tuple[str, object, dict]]:
+    """The default chain's step functions with their default parameters.
+
+    Returns
+    -------
+    list of (stage, function, params)
+        ``function(frame=..., params=...)`` is the plugin's
+        ``grainhabit_<stage>``.
+
+    Raises
+    ------
+    RuntimeError
+        If the host's default chain names another step than these modules
+        provide (the loop would time something else than the pipeline).
+    """
+    from pipeline.manager import DEFAULT_CHAIN
+    from plugins import classify, growth, measure, preprocess, segment
+
+    chain = []
+    for stage, mod in (("preprocess", preprocess), ("segment", segment), ("measure", measure),
+                       ("classify", classify), ("fit_growth", growth)):
+        if DEFAULT_CHAIN.get(stage) != mod.STEP.name:
+            raise RuntimeError(f"default chain has {DEFAULT_CHAIN.get(stage)!r} for {stage}, "
+                               f"the loop would run {mod.STEP.name!r}")
+        chain.append((stage, getattr(mod, f"grainhabit_{stage}"), mod.STEP.resolve({})))
+    return chain
+
+
+def serial_loop(paths, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
+    """Time the kernels alone: read each TIFF, run the default chain, keep nothing.
+
+    Parameters
+    ----------
+    paths : sequence of path-like
+        TIFF files.
+    pixel_size_nm : float
+        Pixel size given to every frame (nm).
+
+    Returns
+    -------
+    dict
+        ``wall``, ``cpu`` and ``cpu_system`` (s, whole loop), ``stages``
+        (stage -> total s), ``frames``, ``grains``, ``pixels``.
+    """
+    import tifffile
+    from threadpoolctl import threadpool_limits
+
+    from pipeline.frame import FrameData
+
+    chain = default_chain()
+    stages = {k: 0.0 for k in FRAME_PHASES}
+    grains = pixels = 0
+    t_start, c_start = time.perf_counter(), time.process_time()
+    sys0 = resource.getrusage(resource.RUSAGE_SELF).ru_stime
+    with threadpool_limits(limits=1):
+        for p in paths:
+            t0 = time.perf_counter()
+            raw = np.asarray(tifffile.imread(p), dtype=np.float32)
+            frame = FrameData(source=str(p), sample="bench", raw=raw, pixel_size_nm=float(pixel_size_nm))
+            stages["read"] += time.perf_counter() - t0
+            for stage, func, params in chain:
+                t0 = time.perf_counter()
+                frame = func(frame=frame, params=params)
+                stages[stage] += time.perf_counter() - t0
+            grains += frame.n_grains
+            pixels += raw.size
+    return {"wall": time.perf_counter() - t_start, "cpu": time.process_time() - c_start,
+            "cpu_system": resource.getrusage(resource.RUSAGE_SELF).ru_stime - sys0, "stages": stages,
+            "frames": len(paths), "grains": grains, "pixels": pixels}
+
+
+def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = None) -> dict:
+    """Run a workflow once (``fresh``) with ``workers`` local workers and collect the figures.
+
+    ``malloc_trim``, if given, is the glibc ``MALLOC_TRIM_THRESHOLD_`` the
+    local cluster's nannies put in their workers' environment (dask's own
+    default is 65536 bytes).
+
+    Returns
+    -------
+    dict
+        ``wall`` (s, the whole :func:`pipeline.runner.run`), ``fixed``
+        (cluster start + close), ``net`` (wall - fixed), ``processing``
+        (cluster up to last frame staged), ``host`` (phase -> s), ``stages``
+        (stage -> total s over the frames, from the staged records),
+        ``task`` (median, min, max, total s of the frame tasks),
+        ``idle_worker_s`` (workers x processing - task total), ``cpu``
+        (``workers``, ``main`` s), ``frames``, ``frames_ok``, ``grains``,
+        ``pixels``, ``exit_code``, ``load`` before and after.
+    """
+    from pipeline.runner import run
+    from pipeline.workflow import validate
+
+    plan = validate(str(workflow), host, {"execution": {"workers": int(workers)}})
+    load0 = bu.load_average()
+    import dask
+
+    env = {} if malloc_trim is None else {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": malloc_trim}
+    t0 = time.perf_counter()
+    with dask.config.set(env), bu.RunClock(host) as clock:
+        outcome = run(plan, host, fresh=True, tty=False)
+    wall = time.perf_counter() - t0
+    records = bu.staged_records(outcome.results)
+    stages = {k: float(sum(r["timings"].get(k, 0.0) for r in records)) for k in FRAME_PHASES}
+    task = [float(r["seconds"]) for r in records]
+    s = clock.seconds
+    fixed = s.get("cluster_start", 0.0) + s.get("cluster_close", 0.0)
+    processing = clock.processing_seconds
+    host_s = {k: float(s.get(k, 0.0)) for k in HOST_PHASES if k != "other"}
+    accounted = (fixed + (processing if processing == processing else 0.0) + host_s["list"]
+                 + host_s["consolidate"] + host_s["summarise"] + host_s["results_write"])
+    host_s["other"] = max(0.0, wall - accounted)
+    n_workers = clock.workers or int(workers)
+    return {
+        "workers": n_workers, "wall": wall, "fixed": fixed, "net": wall - fixed, "processing": processing,
+        "warmup": clock.warmup_seconds,
+        "host": host_s, "stages": stages,
+        "task": {"median": statistics.median(task) if task else float("nan"),
+                 "min": min(task, default=float("nan")), "max": max(task, default=float("nan")),
+                 "total": float(sum(task))},
+        "idle_worker_s": n_workers * processing - float(sum(task)),
+        "cpu": dict(clock.cpu), "frames": len(records), "frames_ok": outcome.frames_ok,
+        "grains": outcome.grains, "pixels": int(sum(r.get("rows", 0) * r.get("cols", 0) for r in records)),
+        "exit_code": outcome.exit_code, "load_before": load0, "load_after": bu.load_average(),
+    }
+
+
+def _rates(frames: int, pixels: int, seconds: float) -> tuple[float, float]:
+    return bu.ratio(frames, seconds), bu.ratio(pixels / 1e6, seconds)
+
+
+def _print_cases(a: dict, cases: list[tuple[str, dict]], out) -> None:
+    print(f"{'':<27}{'wall s':>8}{'net s':>8}{'frames/s':>10}{'Mpx/s':>8}{'cpu s':>8}{'of sys':>8}"
+          f"  load 1-min before/after", file=out)
+    fps, mps = _rates(a["frames"], a["pixels"], a["wall"])
+    print(f"{'(a) serial loop':<27}{a['wall']:>8.1f}{a['wall']:>8.1f}{fps:>10.3f}{mps:>8.3f}{a['cpu']:>8.1f}"
+          f"{a['cpu_system']:>8.1f}  {a['load_before'][0]:.2f}/{a['load_after'][0]:.2f}", file=out)
+    for label, c in cases:
+        fps, mps = _rates(c["frames"], c["pixels"], c["net"])
+        cpu = c["cpu"].get("workers", float("nan")) + c["cpu"].get("main", float("nan"))
+        cpu_sys = c["cpu"].get("workers_system", float("nan")) + c["cpu"].get("main_system", float("nan"))
+        print(f"{label:<27}{c['wall']:>8.1f}{c['net']:>8.1f}{fps:>10.3f}{mps:>8.3f}{cpu:>8.1f}{cpu_sys:>8.1f}"
+              f"  {c['load_before'][0]:.2f}/{c['load_after'][0]:.2f}", file=out)
+    print("(net: without the local cluster's start and close; cpu: main process + all its descendants, "
+          "cluster start to close)", file=out)
+
+
+def _print_stages(a: dict, cases: list[tuple[str, dict]], out) -> None:
+    heads = ["loop"] + [f"{c['workers']}w" for _, c in cases]
+    print("\nper frame, seconds (frame stages run in the worker; 'task' is the whole frame task):", file=out)
+    print(f"  {'stage':<14}" + "".join(f"{h:>9}" for h in heads), file=out)
+    for k in FRAME_PHASES:
+        vals = [a["stages"][k] / a["frames"]] + [c["stages"][k] / max(c["frames"], 1) for _, c in cases]
+        print(f"  {k:<14}" + "".join(f"{v:>9.3f}" for v in vals), file=out)
+    vals = [a["wall"] / a["frames"]] + [c["task"]["total"] / max(c["frames"], 1) for _, c in cases]
+    print(f"  {'task':<14}" + "".join(f"{v:>9.3f}" for v in vals), file=out)
+    print("host phases, seconds per run (stage_write overlaps the workers; 'other' is the rest of the run):",
+          file=out)
+    print(f"  {'phase':<14}" + "".join(f"{h:>9}" for h in heads[1:]), file=out)
+    for k in HOST_PHASES:
+        print(f"  {k:<14}" + "".join(f"{c['host'][k]:>9.3f}" for _, c in cases), file=out)
+    print(f"  {'idle workers':<14}" + "".join(f"{c['idle_worker_s']:>9.3f}" for _, c in cases)
+          + "   (workers x processing span - task time: dispatch, worker start-up, imports)", file=out)
+
+
+def _verdict(ok: bool) -> str:
+    return "met" if ok else "MISSED"
+
+
+def run(argv: list[str]) -> int:
+    """Entry point of ``grainhabit bench throughput``; returns the exit code."""
+    ap = argparse.ArgumentParser(prog="grainhabit bench throughput",
+                                 description="Frames per second of a plain kernel loop, the pipeline with one "
+                                             "worker and with all workers, on synthetic frames (invented "
+                                             "data); time per stage and the host's overheads.")
+    ap.add_argument("--frames", type=int, default=8, help="frames (default 8)")
+    ap.add_argument("--size", type=int, default=512, help="frame side in pixels (default 512)")
+    ap.add_argument("--grains", type=int, default=None,
+                    help=f"grains per frame (default {bu.DENSITY_PER_MPX:g} per megapixel, about 10 at 512 px)")
+    ap.add_argument("--workers", type=int, default=None, help="workers of run (c) (default: one per core)")
+    ap.add_argument("--seed", type=int, default=0, help="first seed of the rendered fields (default 0)")
+    ap.add_argument("--json", metavar="PATH", help="write the figures to this JSON file")
+    ap.add_argument("--scaling", action="store_true",
+                    help="also run 4x the frames and 4x the pixels with all workers and check <= 4.4x the time")
+    ap.add_argument("--workdir", metavar="DIR", help="write frames and results here and keep them "
+                                                     "(default: a temporary folder, removed)")
+    ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
+                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (dask sets 65536, which makes every "
+                         "large array a fresh mmap; e.g. 134217728 to compare)")
+    ap.add_argument("--check", action="store_true", help="exit 1 if a target is missed")
+    args = ap.parse_args(argv)
+    workers = args.workers or os.cpu_count() or 1
+    if args.frames < 1 or args.size < 64 or workers < 1 or (args.grains is not None and args.grains < 1):
+        ap.error("--frames, --workers and --grains must be >= 1, --size >= 64")
+    from pipeline.manager import make_host
+
+    out = sys.stdout
+    grains = args.grains or bu.grains_for(args.size)
+    root = Path(args.workdir).resolve() if args.workdir else Path(tempfile.mkdtemp(prefix="grainhabit-bench-"))
+    figures = {"benchmark": "throughput", "frames": args.frames, "size_px": args.size,
+               "malloc_trim_threshold": args.malloc_trim,
+               "grains_per_frame": grains, "workers": workers, "cores": os.cpu_count(),
+               "load_start": bu.load_average()}
+    try:
+        t0 = time.perf_counter()
+        images = bu.render_frames(args.frames, args.size, grains=grains, seed=args.seed)
+        paths = bu.write_frames(root / "data" / "bench", images)
+        print(f"grainhabit bench throughput: {args.frames} synthetic frames of {args.size}x{args.size} px, "
+              f"{grains} grains each (invented data; rendered in {time.perf_counter() - t0:.1f} s), "
+              f"{bu.load_text()}", file=out)
+        host = make_host()
+
+        l0 = bu.load_average()
+        a = serial_loop(paths)
+        a.update(load_before=l0, load_after=bu.load_average())
+        b = pipeline_case(bu.write_workflow(root / "one.yaml", root / "data", root / "out" / "one.zarr",
+                                            workers=1, name="bench-one"), host, 1, args.malloc_trim)
+        if workers == 1:  # (c) would repeat (b)
+            c = b
+        else:
+            c = pipeline_case(bu.write_workflow(root / "all.yaml", root / "data", root / "out" / "all.zarr",
+                                                workers=workers, name="bench-all"), host, workers,
+                              args.malloc_trim)
+        bad = [(lbl, x) for lbl, x in (("1 worker", b), ("all workers", c)) if x["frames_ok"] != args.frames]
+        cases = [("(b) pipeline, 1 worker", b)] + ([(f"(c) pipeline, {c['workers']} workers", c)]
+                                                    if c is not b else [])
+        _print_cases(a, cases, out)
+        def both(key, sub=None):
+            vals = [(x[key] if sub is None else x[key][sub], lbl) for lbl, x in
+                    (("1 worker", b), (f"{c['workers']} workers", c))][: 1 if c is b else 2]
+            return ", ".join(f"{v:.2f} s ({lbl})" for v, lbl in vals)
+
+        print(f"local cluster start-up (fixed per run, left out of 'net'): {both('host', 'cluster_start')}; "
+              f"close {both('host', 'cluster_close')}", file=out)
+        print(f"worker warm-up (first result's latency beyond its task: imports, plugin host, dispatch): "
+              f"{both('warmup')}", file=out)
+        _print_stages(a, cases, out)
+
+        r = {
+            "overhead_per_worker": b["net"] / a["wall"] - 1,
+            "overhead_per_worker_with_startup": b["wall"] / a["wall"] - 1,
+            "overhead_per_worker_without_warmup": (b["net"] - b["warmup"]) / a["wall"] - 1,
+            "cpu_overhead_per_worker": bu.ratio(b["cpu"].get("workers", np.nan) + b["cpu"].get("main", np.nan),
+                                                a["cpu"]) - 1,
+            "speedup_all_vs_loop": a["wall"] / c["net"],
+            "speedup_all_vs_loop_with_startup": a["wall"] / c["wall"],
+            "speedup_all_vs_loop_without_warmup": a["wall"] / (c["net"] - c["warmup"]),
+            "scaling_efficiency": b["net"] / c["net"] / c["workers"],
+            "scaling_efficiency_processing": b["processing"] / c["processing"] / c["workers"],
+            "task_median_s": c["task"]["median"], "task_min_s": min(b["task"]["min"], c["task"]["min"]),
+        }
+        need = TARGETS["speedup_per_worker"] * c["workers"]
+        checks = {"speedup": r["speedup_all_vs_loop"] >= need,
+                  "overhead": r["overhead_per_worker"] <= TARGETS["overhead_max"],
+                  "task": r["task_median_s"] > TARGETS["task_min_s"]}
+        print(f"\noverhead of the pipeline per worker, net(b)/(a) - 1: {100 * r['overhead_per_worker']:+.1f} % "
+              f"(without worker warm-up {100 * r['overhead_per_worker_without_warmup']:+.1f} %; "
+              f"with cluster start/close {100 * r['overhead_per_worker_with_startup']:+.1f} %; in CPU seconds "
+              f"{100 * r['cpu_overhead_per_worker']:+.1f} %); target <= {100 * TARGETS['overhead_max']:.0f} %: "
+              f"{_verdict(checks['overhead'])}", file=out)
+        print(f"all {c['workers']} workers vs the serial loop, (a)/net(c): {r['speedup_all_vs_loop']:.2f}x "
+              f"(without worker warm-up {r['speedup_all_vs_loop_without_warmup']:.2f}x; "
+              f"with cluster start/close {r['speedup_all_vs_loop_with_startup']:.2f}x); target >= {need:.1f}x: "
+              f"{_verdict(checks['speedup'])}", file=out)
+        print(f"scaling efficiency net(b)/net(c)/{c['workers']}: {r['scaling_efficiency']:.2f} "
+              f"(processing span only {r['scaling_efficiency_processing']:.2f})", file=out)
+        print(f"frame task: median {r['task_median_s']:.2f} s, shortest {r['task_min_s']:.2f} s; "
+              f"target well over {TARGETS['task_min_s']:g} s: {_verdict(checks['task'])}", file=out)
+
+        scaling = {}
+        if args.scaling:
+            scaling = _run_scaling(args, root, host, images, workers, c, out)
+            checks.update({k: v["ok"] for k, v in scaling.items()})
+        for lbl, x in bad:
+            print(f"problem: {lbl}: only {x['frames_ok']} of {args.frames} frames ok (exit code "
+                  f"{x['exit_code']})", file=out)
+        figures.update(serial_loop=a, one_worker=b, all_workers=c, ratios=r, scaling=scaling, checks=checks,
+                       targets=TARGETS, load_end=bu.load_average())
+        print(f"{bu.load_text()} at the end", file=out)
+        if args.json:
+            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+            Path(args.json).write_text(json.dumps(figures, indent=2, default=float))
+            print(f"figures written to {args.json}", file=out)
+    finally:
+        if not args.workdir:
+            shutil.rmtree(root, ignore_errors=True)
+    if bad:
+        return 1
+    return 1 if (args.check and not all(checks.values())) else 0
+
+
+def _run_scaling(args, root: Path, host, images, workers: int, base: dict, out) -> dict:
+    """4x frames (variants of the same fields) and 4x pixels, all workers; ratios to ``base``."""
+    res = {}
+    frames4 = bu.write_frames(root / "data4" / "bench", images, 4 * args.frames)
+    c4 = pipeline_case(bu.write_workflow(root / "frames4.yaml", root / "data4", root / "out" / "frames4.zarr",
+                                         workers=workers, name="bench-frames4"), host, workers,
+                       args.malloc_trim)
+    grains4 = 4 * args.grains if args.grains else bu.grains_for(2 * args.size)
+    big = bu.render_frames(args.frames, 2 * args.size, grains=grains4, seed=args.seed + 1000)
+    bu.write_frames(root / "datapx" / "bench", big)
+    cp = pipeline_case(bu.write_workflow(root / "pixels4.yaml", root / "datapx", root / "out" / "pixels4.zarr",
+                                         workers=workers, name="bench-pixels4"), host, workers,
+                       args.malloc_trim)
+    print("\nscaling (all workers, net of cluster start/close):", file=out)
+    for key, label, case, work in (("frames_x4", f"4x frames ({len(frames4)})", c4, 4.0),
+                                   ("pixels_x4", f"4x pixels ({2 * args.size} px side)", cp, 4.0)):
+        t = case["net"] / base["net"]
+        g = bu.ratio(case["grains"], base["grains"])
+        ok = t <= TARGETS["scaling_max"] and case["frames_ok"] == case["frames"]
+        print(f"  {label:<26} net {case['net']:.1f} s = {t:.2f}x the base run (grains x{g:.2f}); "
+              f"target <= {TARGETS['scaling_max']}x: {_verdict(ok)}; "
+              f"load {case['load_before'][0]:.2f}/{case['load_after'][0]:.2f}", file=out)
+        print(f"  {'':<26} host phases: " + ", ".join(f"{k} {case['host'][k]:.2f} s" for k in HOST_PHASES),
+              file=out)
+        res[key] = {"case": case, "time_ratio": t, "grain_ratio": g, "work_ratio": work, "ok": bool(ok)}
+    return res
+
+
+@hookimpl
+def grainhabit_benchmarks():
+    """Offer ``grainhabit bench throughput``."""
+    return {"throughput": run}
