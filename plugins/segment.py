@@ -22,7 +22,9 @@
    concavities (or from one concavity to the outline point of the shortest
    cut), trying the shortest cuts relative to the concavity depths first;
    the first cut whose parts are convex (twice the allowance), or can be cut
-   again into convex parts, is kept. The visible boundary of an overlapping
+   again into convex parts, and no part smaller than a tenth of the
+   component, is kept (at most 60 cuts are tried per component, over all
+   levels, which bounds the time on large clusters). The visible boundary of an overlapping
    pair is an edge of the front grain, and it runs between these points.
    If no cut works, the distance transform is flooded by a marker-controlled
    watershed [3]_ from its h-maxima, trying ``h = f * d_max`` for f = 0.5,
@@ -101,7 +103,11 @@ H_MIN_PX = 1.5
 MIN_DEPTH_PX = 2.0
 #: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
 NECK_RATIO = 0.75
-#: Extra concavity allowance of the parts of a split.
+#: Cuts tried per component at most, over all recursion levels (bounds the time).
+MAX_CUTS = 60
+#: Smallest part of a split, as a fraction of the whole component's area.
+MIN_PART_FRACTION = 0.1
+#: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
 PART_SLACK = 2.0
 #: A foreground covering more of the frame than this has no background to work with.
 MAX_FOREGROUND = 0.95
@@ -401,8 +407,8 @@ def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> lis
     return [ws == 1, ws == 2]
 
 
-def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, depth: int
-                      ) -> list[np.ndarray] | None:
+def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
+                      budget: list) -> list[np.ndarray] | None:
     """Cut between two concavities so that the parts are convex (or split further)."""
     r_eq = np.sqrt(mask.sum() / np.pi)
     defects, outline = convexity_defects(mask, max(MIN_DEPTH_PX, split_depth * r_eq), outline=True)
@@ -436,6 +442,9 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                 break
         cuts.extend((np.inf, p, t) for t in taken)
     for _, p, q in cuts:
+        if budget[0] <= 0:
+            return None
+        budget[0] -= 1
         parts = _cut(mask, p, q, min_area)
         if parts is None:
             continue
@@ -444,7 +453,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
             if is_convex(part, split_depth, PART_SLACK):
                 out.append(part)
                 continue
-            sub = _split(part, min_area, split_depth, depth + 1)
+            sub = _split(part, min_area, split_depth, depth + 1, budget)
             if sub is None:
                 break
             out.extend(sub)
@@ -483,17 +492,20 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     """
     if mask.sum() < 2 * min_area or is_convex(mask, split_depth):
         return [mask]
-    return _split(mask, min_area, split_depth, 0) or [mask]
+    # no part may be a sliver of the cluster: a tenth of its area at least
+    min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
+    return _split(mask, min_part, split_depth, 0, [MAX_CUTS]) or [mask]
 
 
-def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int) -> list[np.ndarray] | None:
+def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
+           budget: list) -> list[np.ndarray] | None:
     """Convex parts of a concave shape, or None if no acceptable split exists."""
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
     if depth > 5 or mask.sum() < 2 * min_area:
         return None
-    parts = _split_at_defects(mask, min_area, split_depth, depth)
+    parts = _split_at_defects(mask, min_area, split_depth, depth, budget)
     if parts is not None:
         return parts
     dist = ndi.distance_transform_edt(mask)
