@@ -23,7 +23,7 @@
    cut), trying the shortest cuts relative to the concavity depths first;
    the first cut whose parts are convex (twice the allowance), or can be cut
    again into convex parts, and no part smaller than a tenth of the
-   component, is kept (at most 60 cuts are tried per component, over all
+   component, is kept (at most 200 cuts are tried per component, over all
    levels, which bounds the time on large clusters). The visible boundary of an overlapping
    pair is an edge of the front grain, and it runs between these points.
    If no cut works, the distance transform is flooded by a marker-controlled
@@ -104,7 +104,7 @@ MIN_DEPTH_PX = 2.0
 #: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
 NECK_RATIO = 0.75
 #: Cuts tried per component at most, over all recursion levels (bounds the time).
-MAX_CUTS = 60
+MAX_CUTS = 200
 #: Smallest part of a split, as a fraction of the whole component's area.
 MIN_PART_FRACTION = 0.1
 #: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
