@@ -347,10 +347,12 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
     -------
     defects : list of (point, depth)
         ``point`` (row, col) as floats, ``depth`` in pixels: for every hull
-        edge, the outline point farthest from it.
+        edge, the outline points farthest from it (every peak of the
+        distance profile with a prominence of at least ``min_depth / 2``).
     points : ndarray of float, shape (k, 2)
         The outline (row, col), only if ``outline`` is true.
     """
+    from scipy.signal import find_peaks
     from scipy.spatial import ConvexHull, QhullError
     from skimage.measure import find_contours
 
@@ -375,9 +377,9 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
             continue
         seg = pts[idx]
         dist = np.abs(ab[0] * (seg[:, 1] - a[1]) - ab[1] * (seg[:, 0] - a[0])) / norm
-        m = int(np.argmax(dist))
-        if dist[m] > min_depth:
-            out.append((seg[m], float(dist[m])))
+        # one hull edge can span several notches: keep every distinct peak
+        peaks, _ = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)
+        out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
     return (out, pts) if outline else out
 
 
