@@ -45,6 +45,13 @@ Decision
    class whose best alpha scores lowest, with the octahedron preferred within
    ``octahedron_margin`` (:func:`polyhedral_class`).
 
+The Wulff fit with the interior (:func:`plugins.growth.fit_alpha`, coarse
+search) is run only when steps 1-3 do not already decide from the outline
+with the smallest Wulff misfit (:func:`outline_decides`; the habit is then
+provably the same). For grains the outline decides, ``facet_chi2`` comes from
+the eight outline-best Wulff models (``search='quick'``) and the Wulff misfit
+is the smallest one.
+
 ``habit_score`` is the relative likelihood of that class for polyhedral
 grains (0.7 times it when the interior is flat), and for the other
 classes a product of logistic margins of the deciding quantities (documented
@@ -139,9 +146,32 @@ def family_signatures(n_angles: int = 256):
     return e, psig, asp, rsig
 
 
+_SPECTRA: dict = {}
+
+
 def _best_family(sig, fam_sig):
-    """Smallest signature distance over a family and its index."""
-    d = np.array([gr.shift_distances(sig, s).min() for s in fam_sig])
+    """Smallest signature distance over a family and its index.
+
+    Notes
+    -----
+    The minimum over shifts of :func:`plugins.growth.shift_distances` for
+    every family member at once: one inverse FFT of the observed spectrum
+    times the stored conjugate spectra of the family (computed once per
+    family array).
+    """
+    fam_sig = np.asarray(fam_sig, float)
+    key = (id(fam_sig), fam_sig.shape)
+    hit = _SPECTRA.get(key)
+    if hit is None or hit[0] is not fam_sig:
+        hit = (fam_sig, np.conj(np.fft.rfft(fam_sig, axis=1)), np.einsum("ij,ij->i", fam_sig, fam_sig))
+        if len(_SPECTRA) > 16:
+            _SPECTRA.clear()
+        _SPECTRA[key] = hit
+    _, spec, sq = hit
+    a = np.asarray(sig, float)
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
+    d2 = (a @ a + sq[:, None] - 2.0 * cc) / a.size
+    d = np.sqrt(np.maximum(d2.min(axis=1), 0.0))
     i = int(np.argmin(d))
     return float(d[i]), i
 
@@ -236,6 +266,39 @@ def polyhedral_class(fit: gr.AlphaFit, library: gr.ModelLibrary, octahedron_marg
 
 # ------------------------------------------------------------------ per grain
 
+def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
+    """Whether the outline alone fixes the habit as irregular, rod or tabular.
+
+    Parameters
+    ----------
+    ratios : array_like, shape (3,)
+        Outline misfits over the outline noise of the best Wulff outline
+        (the smallest, interior left out), the plate and the rod family.
+    solidity, feret_ratio : float
+    params : dict
+        Resolved parameters of this step.
+
+    Returns
+    -------
+    bool
+
+    Notes
+    -----
+    The interior fit can only move the Wulff misfit up (its best model
+    trades outline fit for interior fit), never down. Each test of
+    :func:`classify_grain` that ends in irregular, rod or a tabular class
+    stays true when the Wulff misfit grows, and the tests before it keep
+    their outcome, so when one passes here the full fit would give the same
+    habit: it is then skipped.
+    """
+    r = np.asarray(ratios, float)
+    p = params
+    best = int(np.argmin(r))
+    return bool(solidity < p["min_solidity"] or r[best] > p["irregular_misfit"]
+                or (best == 2 and feret_ratio < p["rod_feret_ratio"])
+                or r[0] ** 2 - r[1] ** 2 > p["plate_margin"])
+
+
 def classify_grain(contour_lab, interior, params, pixel_scale=1.0, transmission=float("nan")):
     """Habit of one grain.
 
@@ -261,16 +324,20 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, transmission=
     kw = gr.fit_kwargs(None)
     kw["pixel_scale"] = pixel_scale
     lib = kw["library"]
-    fit = gr.fit_alpha_cached(contour_lab, interior, **kw)
+    # outline first: the best Wulff outline (no interior) with facet evidence
+    # from the outline-best models only
+    fit = gr.fit_alpha_cached(contour_lab, interior, **{**kw, "search": "quick"})
     _, area = gr.polygon_centroid(contour_lab)
     tau = max(0.25 * pixel_scale / math.sqrt(area), 0.003)
-    sig = gr.radial_signature(contour_lab, lib.signatures.shape[1])
+    sig = fit.signature
     pe, psig, ra, rsig = family_signatures(lib.signatures.shape[1])
     d_plate, ip = _best_family(sig, psig)
     d_rod, ir = _best_family(sig, rsig)
-    d_wulff = fit.outline_misfit
     solidity, fmin, fmax = hull_shape(contour_lab)
     feret_ratio = fmin / fmax
+    if not outline_decides(np.array([fit.outline_misfit, d_plate, d_rod]) / tau, solidity, feret_ratio, p):
+        fit = gr.fit_alpha_cached(contour_lab, interior, **kw)
+    d_wulff = fit.outline_misfit
     ratios = np.array([d_wulff, d_plate, d_rod]) / tau
     best = int(np.argmin(ratios))
     out = {
@@ -320,17 +387,22 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, transmission=
     return {**out, "habit": habit, "habit_score": share}
 
 
-def _transmission(frame, index):
-    """TEM mean interior transmission I / I_bg of grain ``index`` (NaN for SEM)."""
+def _transmission(frame, index, boxes=None):
+    """TEM mean interior transmission I / I_bg of grain ``index`` (NaN for SEM).
+
+    ``boxes``: ``scipy.ndimage.find_objects(frame.labels)`` when already
+    computed (one pass for the whole frame).
+    """
     if frame.polarity != "dark" or frame.raw is None or np.shape(frame.raw) != np.shape(frame.labels):
         return float("nan")
     from scipy import ndimage as ndi
 
     lab = int(frame.grains["label"][index])
-    sl = ndi.find_objects((frame.labels == lab).astype(np.int32))
-    if not sl or sl[0] is None:
+    if boxes is None:
+        boxes = ndi.find_objects(np.asarray(frame.labels))
+    if not 0 < lab <= len(boxes) or boxes[lab - 1] is None:
         return float("nan")
-    r, c = sl[0]
+    r, c = boxes[lab - 1]
     pad = 6
     r0, r1 = max(r.start - pad, 0), min(r.stop + pad, frame.labels.shape[0])
     c0, c1 = max(c.start - pad, 0), min(c.stop + pad, frame.labels.shape[1])
@@ -360,12 +432,16 @@ def classify_frame(frame, params=None) -> dict:
     if frame.labels is None:
         raise ValueError("classify-habit needs frame.labels: run a segment step first")
     contours = gr._contours_for(frame)
+    boxes = None
+    if frame.polarity == "dark":
+        from scipy import ndimage as ndi
+        boxes = ndi.find_objects(np.asarray(frame.labels))
     for i in range(n):
         contour, interior = gr.grain_evidence(frame, contours, i, p["erode_px"])
         if contour is None or len(contour) < 8:
             cols["habit_score"][i] = 0.0
             continue
-        res = classify_grain(contour, interior, p, 1.0, _transmission(frame, i))
+        res = classify_grain(contour, interior, p, 1.0, _transmission(frame, i, boxes))
         for k in cols:
             cols[k][i] = res[k]
     return cols

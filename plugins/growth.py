@@ -95,6 +95,12 @@ STEP = StepInfo(
               doc="Pixels left out along the outline before reading the interior (rim, blur)."),
         Param("facet_edge_px", float, 2.0, unit="px", low=0.0,
               doc="SEM: pixels this close to a predicted facet edge (bright edge lines) are left out."),
+        Param("interior_samples", int, 2500, low=30, high=100000,
+              doc="Interior samples compared with each model; more pixels are thinned to a lattice, "
+                  "each kept sample counting for those it replaces."),
+        Param("search", str, "coarse", choices=("coarse", "exhaustive"),
+              doc="'coarse': coarse alpha grid, refined around the best fits; "
+                  "'exhaustive': place every candidate model (slow reference)."),
         Param("fit_edge_cut", bool, False,
               doc="Also fit grains that touch the frame border (their outline is cut)."),
     ),
@@ -175,23 +181,40 @@ def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
 
     Notes
     -----
-    Ray-segment intersection: c + t d = a + s e with 0 <= s <= 1, solved for
-    every ray and every edge at once by Cramer's rule.
+    Ray-segment intersection: c + t d = a + s e with 0 <= s <= 1, solved by
+    Cramer's rule. Only the (ray, edge) pairs that can meet are solved: the
+    rays within the angle an edge subtends at the centroid, widened by one
+    ray either side (an edge nearly through the centroid is tried against
+    every ray), so the work grows as n + k rather than n k.
     """
     n = _check_n(n_angles)
     p = _check_poly(poly)
     c, area = polygon_centroid(p)
     q = p - c
     e = np.roll(q, -1, axis=0) - q
-    phi = 2.0 * np.pi * np.arange(n) / n
-    dx, dy = np.cos(phi)[:, None], np.sin(phi)[:, None]
-    det = -dx * e[None, :, 1] + e[None, :, 0] * dy
+    k = len(q)
+    a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))        # vertex angle in ray steps
+    da = np.roll(a0, -1) - a0
+    da = (da + n / 2) % n - n / 2                                    # signed, in [-n/2, n/2)
+    lo = np.floor(np.minimum(a0, a0 + da)).astype(np.int64) - 1
+    cnt = np.floor(np.maximum(a0, a0 + da)).astype(np.int64) + 2 - lo
+    wide = np.abs(da) > n / 2 - 2
+    lo[wide], cnt[wide] = 0, n
+    cnt = np.minimum(cnt, n)
+    edge = np.repeat(np.arange(k), cnt)
+    start = np.cumsum(cnt) - cnt
+    ray = (lo[edge] + np.arange(edge.size) - start[edge]) % n
+    phi = 2.0 * np.pi * ray / n
+    dx, dy = np.cos(phi), np.sin(phi)
+    qe, ee = q[edge], e[edge]
+    det = -dx * ee[:, 1] + ee[:, 0] * dy
     ok = np.abs(det) > 1e-14
     det = np.where(ok, det, 1.0)
-    t = (-q[None, :, 0] * e[None, :, 1] + e[None, :, 0] * q[None, :, 1]) / det
-    s = (dx * q[None, :, 1] - dy * q[None, :, 0]) / det
+    t = (-qe[:, 0] * ee[:, 1] + ee[:, 0] * qe[:, 1]) / det
+    s = (dx * qe[:, 1] - dy * qe[:, 0]) / det
     hit = ok & (s >= -1e-9) & (s <= 1 + 1e-9) & (t > 0)
-    r = np.where(hit, t, 0.0).max(axis=1)
+    r = np.zeros(n)
+    np.maximum.at(r, ray[hit], t[hit])
     return r / math.sqrt(area)
 
 
@@ -268,7 +291,6 @@ def _face_share(alpha: float, face: str) -> float:
     return float(p.face_areas[sel].max() / p.surface_area) if sel.any() else 0.0
 
 
-@functools.lru_cache(maxsize=4)
 def model_library(alpha_min: float = 0.5, alpha_max: float = 4.0, step: float = 0.02,
                   n_angles: int = 256, min_face_share: float = 0.002) -> ModelLibrary:
     """Build (once per process and argument set) the model library.
@@ -295,7 +317,14 @@ def model_library(alpha_min: float = 0.5, alpha_max: float = 4.0, step: float = 
     default ``min_face_share``; an octahedron balanced on a vertex is not
     modelled. Identical bodies share one shape id and one computed body.
     """
-    n = _check_n(n_angles)
+    # one cache entry per argument set, however the arguments were passed
+    return _build_library(float(alpha_min), float(alpha_max), float(step), _check_n(n_angles),
+                          float(min_face_share))
+
+
+@functools.lru_cache(maxsize=4)
+def _build_library(alpha_min, alpha_max, step, n_angles, min_face_share) -> ModelLibrary:
+    n = n_angles
     if not (0 < alpha_min < 1.0 <= 3.0 < alpha_max) or not (0 < step < 1):
         raise ValueError(f"need 0 < alpha_min < 1, alpha_max > 3 and 0 < step < 1, "
                          f"got {alpha_min!r}, {alpha_max!r}, {step!r}")
@@ -344,6 +373,9 @@ class Interior:
         projected thickness).
     pixel : float
         One pixel in the same units (1 / ECD in pixels).
+    weight : float
+        Pixels each sample stands for (1 as collected; more after
+        :func:`subsample_interior`): the interior evidence is multiplied by it.
     """
 
     x: np.ndarray
@@ -351,6 +383,7 @@ class Interior:
     value: np.ndarray
     mode: str
     pixel: float = 0.0
+    weight: float = 1.0
 
 
 def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2, max_pixels=2500):
@@ -392,6 +425,47 @@ def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2, max_p
     y = -(rr + 0.5 - centroid_xy_px[1]) / ecd_px
     v = np.asarray(signal, float)[rr, cc]
     return Interior(x, y, v, mode, 1.0 / ecd_px)
+
+
+def subsample_interior(interior: Interior, max_samples: int) -> Interior:
+    """Keep at most about ``max_samples`` interior samples, on a regular pixel lattice.
+
+    Parameters
+    ----------
+    interior : Interior
+    max_samples : int
+        Sample budget (>= 30).
+
+    Returns
+    -------
+    Interior
+        ``interior`` itself when it is within budget; else the samples on
+        every s-th row and column (s = ceil(sqrt(p / max_samples))), with
+        ``weight`` multiplied by p / p_kept so that sums of squares over the
+        kept samples estimate those over all of them.
+
+    Notes
+    -----
+    A lattice keeps the samples evenly spread in both directions, so every
+    facet keeps its share; a raster stride is used instead when the lattice
+    would keep under a quarter of the budget (an already thinned sample).
+    """
+    if int(max_samples) != max_samples or max_samples < 30:
+        raise ValueError(f"max_samples must be an integer >= 30, got {max_samples!r}")
+    p = interior.value.size
+    if p <= max_samples:
+        return interior
+    if interior.pixel > 0:
+        ix = np.rint((interior.x - interior.x.min()) / interior.pixel).astype(np.int64)
+        iy = np.rint((interior.y - interior.y.min()) / interior.pixel).astype(np.int64)
+        st = int(math.ceil(math.sqrt(p / max_samples)))
+        keep = np.flatnonzero((ix % st == 0) & (iy % st == 0))
+    else:
+        keep = np.zeros(0, int)
+    if keep.size < max_samples / 4 or keep.size > max_samples:
+        keep = np.arange(0, p, int(math.ceil(p / max_samples)))
+    return Interior(interior.x[keep], interior.y[keep], interior.value[keep], interior.mode,
+                    interior.pixel, interior.weight * p / keep.size)
 
 
 def _interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0) -> float:
@@ -458,6 +532,279 @@ def _interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0) -> f
     return float(max(v @ v - coef @ rhs, 0.0)) * scale
 
 
+# ------------------------------------------------------- batched model tables
+
+@dataclass(frozen=True)
+class _Tables:
+    """Per-shape arrays of a library for the batched fit (built once per library).
+
+    ``face`` (u,), ``pos`` (u,) rank of the shape among its face's shapes by
+    alpha, ``sym_deg`` (u,), ``sig_fft`` (u, n // 2 + 1) conjugate spectra of
+    the signatures and ``sig_sq`` (u,) their squared norms; ``g_up`` (u, M, 2)
+    and ``z_up`` (u, M) the height gradient and height at the origin of each
+    upward plane at rest (z = z_up + g . (x, y)), padded with flat planes at
+    height ``_FAR``; ``g_dn``/``z_dn`` the same for the downward planes,
+    padded at ``-_FAR``; ``model_shape`` (m,) the shape row of every library
+    model.
+    """
+
+    face: np.ndarray
+    pos: np.ndarray
+    sym_deg: np.ndarray
+    sig_fft: np.ndarray
+    sig_sq: np.ndarray
+    g_up: np.ndarray
+    z_up: np.ndarray
+    g_dn: np.ndarray
+    z_dn: np.ndarray
+    model_shape: np.ndarray
+
+
+_FAR = 1e6
+_TABLES: list = []
+
+
+def _planes(body, rotation, upward: bool):
+    """Height gradients (k, 2) and origin heights (k,) of the up- or downward face planes."""
+    nl = body.face_normals @ np.asarray(rotation).T
+    sel = nl[:, 2] > 1e-9 if upward else nl[:, 2] < -1e-9
+    nz = nl[sel, 2]
+    return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
+
+
+def _tables(lib: ModelLibrary) -> _Tables:
+    """The :class:`_Tables` of ``lib`` (cached per library object)."""
+    for owner, tab in _TABLES:
+        if owner is lib:
+            return tab
+    uniq = np.unique(lib.shape_id)
+    first = np.array([int(np.flatnonzero(lib.shape_id == u)[0]) for u in uniq])
+    face = np.array([lib.faces[i] for i in first])
+    pos = np.zeros(uniq.size, int)
+    for f in ("100", "111"):
+        sel = np.flatnonzero(face == f)
+        pos[sel[np.argsort(lib.alphas[first[sel]], kind="stable")]] = np.arange(sel.size)
+    sigs = lib.signatures[first]
+    ups = [_planes(lib.bodies[i], lib.rotations[i], True) for i in first]
+    dns = [_planes(lib.bodies[i], lib.rotations[i], False) for i in first]
+
+    def pad(planes, fill):
+        m = max(len(z) for _, z in planes)
+        g = np.zeros((len(planes), m, 2))
+        z = np.full((len(planes), m), fill)
+        for j, (gg, zz) in enumerate(planes):
+            g[j, :len(zz)], z[j, :len(zz)] = gg, zz
+        return g, z
+
+    g_up, z_up = pad(ups, _FAR)
+    g_dn, z_dn = pad(dns, -_FAR)
+    tab = _Tables(face, pos, lib.symmetry_deg[first], np.conj(np.fft.rfft(sigs, axis=1)),
+                  np.einsum("ij,ij->i", sigs, sigs), g_up, z_up, g_dn, z_dn,
+                  np.searchsorted(uniq, lib.shape_id))
+    _TABLES.append((lib, tab))
+    del _TABLES[:-8]
+    return tab
+
+
+def outline_candidates(sig, tab: _Tables):
+    """Signature distance of every library shape at its candidate rotations, in one batch.
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+    tab : _Tables
+        Library tables (:func:`_tables`).
+
+    Returns
+    -------
+    shifts : ndarray of int, shape (u, 4)
+        Candidate cyclic shifts of each shape: the best one, then the best
+        within +-n/32 of each look-alike turn (half the body symmetry on
+        {100}; a quarter, a half and three quarters of it on {111}).
+    dist : ndarray, shape (u, 4)
+        RMS signature distance at those shifts (:func:`shift_distances`).
+    valid : ndarray of bool, shape (u, 4)
+        False for unused slots and repeated shifts.
+
+    Notes
+    -----
+    All cross-correlations are one inverse real FFT of the (u, n/2+1)
+    product of the observed spectrum with the stored conjugate model
+    spectra: d^2[s] = (|a|^2 + |b|^2 - 2 C[s]) / n.
+    """
+    a = np.asarray(sig, float)
+    n = a.size
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft, n, axis=1)
+    d = (a @ a + tab.sig_sq[:, None] - 2.0 * cc) / n            # squared distances
+    u = d.shape[0]
+    rows = np.arange(u)
+    k0 = np.argmin(d, axis=1)
+    half = tab.sym_deg / 2 / 360 * n
+    is100 = tab.face == "100"
+    offs = np.where(is100[:, None], np.column_stack([half, np.full(u, np.nan), np.full(u, np.nan)]),
+                    np.column_stack([half / 2, half, 1.5 * half]))
+    shifts = np.zeros((u, 4), int)
+    valid = np.zeros((u, 4), bool)
+    shifts[:, 0], valid[:, 0] = k0, True
+    w = np.arange(-(n // 32), n // 32 + 1)
+    for j in range(3):
+        ok = np.isfinite(offs[:, j])
+        o = np.round(np.nan_to_num(offs[:, j])).astype(int)
+        win = (k0[:, None] + o[:, None] + w[None, :]) % n
+        best = win[rows, np.argmin(d[rows[:, None], win], axis=1)]
+        dup = np.any((shifts[:, :j + 1] == best[:, None]) & valid[:, :j + 1], axis=1)
+        shifts[:, j + 1] = best
+        valid[:, j + 1] = ok & ~dup
+    return shifts, np.sqrt(np.maximum(d[rows[:, None], shifts], 0.0)), valid
+
+
+def placed_planes(tab: _Tables, shape, shift, n: int):
+    """Plane tables of shapes turned in-plane by ``2 pi shift / n``.
+
+    Parameters
+    ----------
+    tab : _Tables
+    shape, shift : ndarray of int, shape (c,)
+    n : int
+        Signature length.
+
+    Returns
+    -------
+    g_up, z_up, g_dn, z_dn : ndarray
+        As in :class:`_Tables`, for the c placed models.
+
+    Notes
+    -----
+    A turn R about z leaves every plane's height at the origin and its
+    up/down sense alone and turns its height gradient: g' = R g.
+    """
+    t = 2.0 * np.pi * np.asarray(shift, float) / n
+    c, s = np.cos(t)[:, None], np.sin(t)[:, None]
+
+    def turn(g):
+        return np.stack([c * g[..., 0] - s * g[..., 1], s * g[..., 0] + c * g[..., 1]], axis=-1)
+
+    return turn(tab.g_up[shape]), tab.z_up[shape], turn(tab.g_dn[shape]), tab.z_dn[shape]
+
+
+def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
+                       max_elements: int = 1_000_000) -> np.ndarray:
+    """:func:`_interior_rss` of many placed models at once.
+
+    Parameters
+    ----------
+    interior : Interior
+        p samples.
+    g_up, z_up : ndarray, shapes (c, M, 2) and (c, M)
+        Upward planes of each model (:func:`placed_planes`), padded with
+        flat planes at height ``_FAR``.
+    g_dn, z_dn : ndarray, shapes (c, K, 2) and (c, K)
+        Downward planes (needed for 'thickness'), padded at ``-_FAR``.
+    edge_px : float
+        As in :func:`_interior_rss`.
+    max_elements : int
+        Models are processed in chunks of about this many (model, sample,
+        plane) elements (memory bound).
+
+    Returns
+    -------
+    ndarray, shape (c,)
+        Residual sum of squares of each model, as :func:`_interior_rss`.
+
+    Notes
+    -----
+    Same model as :func:`_interior_rss`. The per-facet sums of the normal
+    equations of all models come from one weighted ``bincount`` over
+    (model, facet) bins; a facet that no sample sees gets a unit diagonal and
+    a zero right-hand side (its level is then 0 and it adds nothing), and the
+    c small systems are solved together by ``numpy.linalg.solve``.
+    """
+    g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
+    c, m = z_up.shape
+    if c == 0:
+        return np.zeros(0)
+    p = interior.value.size
+    step = max(1, int(max_elements // max(p * max(m, 1), 1)))
+    if c > step:
+        return np.concatenate([
+            interior_rss_batch(interior, g_up[i:i + step], z_up[i:i + step],
+                               None if g_dn is None else g_dn[i:i + step],
+                               None if z_dn is None else z_dn[i:i + step], edge_px, max_elements)
+            for i in range(0, c, step)])
+    x, y, v = interior.x, interior.y, interior.value
+    # plane heights laid out (plane, model, sample): reductions run over whole
+    # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
+    # the sums of the normal equations float64
+    x32, y32 = x.astype(np.float32), y.astype(np.float32)
+
+    def heights(g, z0):
+        gt = np.asarray(g, np.float32).transpose(2, 1, 0)                  # (2, M, c)
+        return (np.asarray(z0, np.float32).T[:, :, None] + gt[0][:, :, None] * x32
+                + gt[1][:, :, None] * y32)                                  # (M, c, p)
+
+    zup = heights(g_up, z_up)
+    ztop = zup.min(axis=0)                                                   # (c, p)
+    if interior.mode == "facets":
+        idx = np.zeros((c, p), np.intp)
+        for j in range(m - 1, -1, -1):                    # lowest plane, first index on ties
+            idx[zup[j] == ztop] = j
+        wt = np.ones((c, p))
+        scale = np.ones(c)
+        if m > 1 and edge_px > 0:
+            # distance to the line where plane j meets the top plane:
+            # (z_j - z_top) / |g_j - g_top|; the top plane itself gives 0 * inf = NaN, skipped by fmin
+            gd = np.linalg.norm(g_up[:, :, None, :] - g_up[:, None, :, :], axis=-1)   # (c, M, M)
+            with np.errstate(divide="ignore"):
+                inv = (1.0 / gd).astype(np.float32).transpose(2, 0, 1)                # (j, c, top)
+            zup -= ztop
+            with np.errstate(invalid="ignore"):
+                zup *= inv[:, np.arange(c)[:, None], idx]
+            near = np.fmin.reduce(zup, axis=0)
+            far = ~(near < edge_px * interior.pixel)
+            nfar = far.sum(axis=1)
+            use = (nfar >= 30) & (nfar < p)
+            wt = np.where(use[:, None], far, True).astype(float)
+            scale = np.where(use, p / np.maximum(nfar, 1), 1.0)
+        bins = (np.arange(c)[:, None] * m + idx).ravel()
+        cnt = np.bincount(bins, wt.ravel(), minlength=c * m).reshape(c, m)
+        sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
+        sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
+        sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
+        xx, xy, yy = wt @ (x * x), wt @ (x * y), wt @ (y * y)
+        xv, yv, vv = wt @ (x * v), wt @ (y * v), wt @ (v * v)
+        seen = cnt > 0
+        nm = np.zeros((c, m + 2, m + 2))
+        ii = np.arange(m)
+        nm[:, ii, ii] = np.where(seen, cnt, 1.0)
+        nm[:, :m, m], nm[:, m, :m] = sx, sx
+        nm[:, :m, m + 1], nm[:, m + 1, :m] = sy, sy
+        nm[:, m, m], nm[:, m, m + 1], nm[:, m + 1, m], nm[:, m + 1, m + 1] = xx, xy, xy, yy
+        rhs = np.concatenate([sv, xv[:, None], yv[:, None]], axis=1)
+        trace = cnt.sum(axis=1) + xx + yy
+    else:
+        if g_dn is None or z_dn is None:
+            raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
+        t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)   # (c, p)
+        nm = np.empty((c, 4, 4))
+        st, sx_, sy_ = t.sum(axis=1), t @ x, t @ y
+        nm[:, 0, 0] = np.einsum("cp,cp->c", t, t)
+        nm[:, 0, 1], nm[:, 0, 2], nm[:, 0, 3] = st, sx_, sy_
+        nm[:, 1:, 0] = nm[:, 0, 1:]
+        nm[:, 1:, 1:] = np.array([[p, x.sum(), y.sum()], [x.sum(), x @ x, x @ y],
+                                  [y.sum(), x @ y, y @ y]])[None]
+        rhs = np.empty((c, 4))
+        rhs[:, 0] = t @ v
+        rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
+        vv = np.full(c, v @ v)
+        scale = np.ones(c)
+        trace = np.einsum("cii->c", nm)
+    k = nm.shape[1]
+    nm = nm + np.eye(k)[None] * (1e-12 * trace)[:, None, None]
+    coef = np.linalg.solve(nm, rhs[:, :, None])[:, :, 0]
+    return np.maximum(vv - np.einsum("ci,ci->c", coef, rhs), 0.0) * scale
+
+
 # ------------------------------------------------------------------------ fit
 
 @dataclass(frozen=True)
@@ -484,6 +831,8 @@ class AlphaFit:
         (one level plus a plane); NaN without interior samples.
     interior_level : float
         Mean interior value (brightness, or attenuation for TEM); NaN without.
+    signature : ndarray, shape (n_angles,)
+        The grain's radial signature (:func:`radial_signature`).
     """
 
     alpha: float
@@ -496,6 +845,7 @@ class AlphaFit:
     score: np.ndarray
     facet_chi2: float = float("nan")
     interior_level: float = float("nan")
+    signature: np.ndarray | None = None
 
 
 def _flat_rss(interior: Interior) -> float:
@@ -543,7 +893,9 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
               library: ModelLibrary | None = None, tolerance: float = 4.0,
               outline_noise_px: float = 0.25, outline_noise_floor: float = 0.003,
               interior_weight: float = 0.05, facet_edge_px: float = 2.0,
-              faces=("100", "111")) -> AlphaFit:
+              faces=("100", "111"), search: str = "coarse", interior_samples: int = 2500,
+              search_samples: int = 250, coarse_every: int = 4, search_margin: float = 25.0
+              ) -> AlphaFit:
     """Fit alpha (and the resting face) of one grain.
 
     Parameters
@@ -568,6 +920,21 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
         See :func:`_interior_rss` (``edge_px``).
     faces : tuple of str
         Resting faces allowed.
+    search : {'coarse', 'exhaustive', 'quick'}
+        'exhaustive' places the interior of every candidate model (the
+        reference); 'coarse' searches a coarse alpha grid with a sparse
+        sample and refines where it matters (see Notes); 'quick' scores
+        alpha by the outline alone and places only the eight outline-best
+        models, for ``facet_chi2`` (a lower bound on the full search's; used
+        by classify-habit for grains whose outline decides the habit).
+    interior_samples : int
+        At most this many interior samples are compared with each model
+        (:func:`subsample_interior`; each sample then stands for the pixels
+        it replaces, so the evidence keeps its weight).
+    search_samples, coarse_every, search_margin : float
+        'coarse' only: samples of the search stage, spacing of its alpha
+        grid (in shapes of one face) and the score margin above its best
+        within which a coarse grid point is refined.
 
     Returns
     -------
@@ -577,83 +944,85 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     -----
     Score of model m at rotation theta:
     ``S = (d_m(theta)^2 - d_min^2) / tau^2 + w (RSS_m(theta) - RSS_min) / s^2``,
-    with d the signature distance (:func:`shift_distances`), RSS the interior
-    residual sum of squares of the placed model, s^2 = RSS_min / (p - q) the
-    residual variance of the best interior model (it absorbs blur and the
-    shading the model leaves out), w = ``interior_weight``. For each model
-    the rotations tried are the best outline rotation and that plus half the
-    body symmetry angle (the dual-looking octagon / hexagon); the interior is
-    evaluated only for models whose outline score is below 25 + tolerance.
+    with d the signature distance (:func:`outline_candidates`), RSS the
+    interior residual sum of squares of the placed model, s^2 = RSS_min /
+    (p - q) the residual variance of the best interior model (it absorbs blur
+    and the shading the model leaves out), w = ``interior_weight`` times the
+    pixels each sample stands for. For each model the rotations tried are the
+    best outline rotation and those near the look-alike turns; the interior
+    is placed only for models whose outline score is below 25 + tolerance.
     The score is profiled over faces (minimum); ``alpha_lo``/``alpha_hi`` are
     the outer edges of the grid cells (half a step either side of a grid
     alpha, clipped to the grid) whose score is within ``tolerance``.
+
+    'coarse' search: (1) every ``coarse_every``-th candidate shape of each
+    face (and the last) is placed, all its candidate rotations, over a
+    sparse sample of the interior (``search_samples``); (2) the shapes
+    around every coarse point within ``search_margin`` of the stage's best
+    score, and around its least-RSS model, are placed over the full sample
+    at the rotations that won nearby; (3) while a shape within ``tolerance``
+    of the best has an unplaced neighbour, that neighbour is placed too, so
+    the range edges are those of the exhaustive search whenever its minimum
+    lies in a refined region. Shapes never placed over the full sample get
+    their score from stage 1 (offset to the stage-2 best) or, between coarse
+    points, by linear interpolation in alpha, never below their outline
+    score: they lie outside the range and matter only for
+    :func:`plugins.classify.class_scores`.
     """
     lib = model_library() if library is None else library
+    if search not in ("coarse", "exhaustive", "quick"):
+        raise ValueError(f"search must be 'coarse', 'exhaustive' or 'quick', got {search!r}")
+    tab = _tables(lib)
     c = _check_poly(contour_xy, "contour_xy")
     _, area = polygon_centroid(c)
     n = lib.signatures.shape[1]
     sig = radial_signature(c, n)
     tau = max(outline_noise_px * pixel_scale / math.sqrt(area), outline_noise_floor)
-    allowed = np.array([f in faces for f in lib.faces])
-    if not allowed.any():
+    shape_ok = np.array([f in faces for f in tab.face])
+    if not shape_ok.any():
         raise ValueError(f"faces must include '100' or '111', got {faces!r}")
 
-    # outline distance of each unique shape at all shifts
-    uniq = np.unique(lib.shape_id)
-    first = {int(s): int(np.flatnonzero(lib.shape_id == s)[0]) for s in uniq}
-    cand = {}            # shape id -> list of (shift, d)
-    for s, i in first.items():
-        if not allowed[i]:
-            continue
-        d = shift_distances(sig, lib.signatures[i])
-        k0 = int(np.argmin(d))
-        half = lib.symmetry_deg[i] / 2 / 360 * n
-        # the body is 4-fold ({100}) or 3-fold ({111}) but its outline looks
-        # 4-fold / 6-fold and nearly 8-/12-fold: also try the best rotation
-        # near each of those look-alike turns
-        offsets = (half,) if lib.faces[i] == "100" else (half / 2, half, 1.5 * half)
-        shifts = {k0}
-        for off in offsets:
-            win = (k0 + int(round(off)) + np.arange(-(n // 32), n // 32 + 1)) % n
-            shifts.add(int(win[np.argmin(d[win])]))
-        cand[s] = [(k, float(d[k])) for k in sorted(shifts)]
-    dmin = min(dd for v in cand.values() for _, dd in v)
-    out_score = {s: [((dd ** 2 - dmin ** 2) / tau ** 2) for _, dd in v] for s, v in cand.items()}
+    shifts, dist, valid = _outline_memo(sig, tab)
+    valid &= shape_ok[:, None]
+    dmin = dist[valid].min()
+    osc = np.where(valid, (dist ** 2 - dmin ** 2) / tau ** 2, np.inf)      # (u, 4)
 
     use_int = interior is not None and interior.value.size >= 30
-    rss = {}
-    rmin = np.inf
+    tot = np.where(valid, osc, np.inf)
+    shape_best = None
+    rmin, s2, w_eff, full = np.inf, np.inf, 0.0, None
+    evidence = False
     if use_int:
-        limit = 25.0 + tolerance
-        for s, v in cand.items():
-            i = first[s]
-            rss[s] = []
-            for (k, _), so in zip(v, out_score[s]):
-                if so > limit:
-                    rss[s].append(np.inf)
-                    continue
-                rot = cr.in_plane_rotation(360.0 * k / n) @ lib.rotations[i]
-                rss[s].append(_interior_rss(interior, lib.bodies[i], rot, facet_edge_px))
-        rmin = min(r for v in rss.values() for r in v)
-        q = 8
-        s2 = rmin / max(interior.value.size - q, 1) if np.isfinite(rmin) else np.inf
-        if not (s2 > 0 and np.isfinite(s2)):
+        full = subsample_interior(interior, interior_samples)
+        w_eff = interior_weight * full.weight
+        gated = valid & (osc <= 25.0 + tolerance)
+        if search == "quick":
+            # facet evidence from the outline-best models; alpha from the outline alone
+            order = np.argsort(np.where(gated, osc, np.inf), axis=None, kind="stable")[:_QUICK_MODELS]
+            pick = np.zeros(osc.shape, bool)
+            pick.flat[order] = True
+            res = _place_all(tab, shifts, osc, pick & gated, full, n, facet_edge_px, w_eff)
+            if res is not None:
+                rmin, s2 = res[2], res[3]
+                evidence = True
+            res, use_int = None, False
+        elif search == "coarse":
+            res = _coarse_search(tab, shifts, osc, gated, interior, full, n, tolerance, facet_edge_px,
+                                 interior_weight, search_samples, coarse_every, search_margin)
+            if res is None:
+                res = _place_all(tab, shifts, osc, gated, full, n, facet_edge_px, w_eff)
+        else:
+            res = _place_all(tab, shifts, osc, gated, full, n, facet_edge_px, w_eff)
+        if use_int and res is None:
             use_int = False
+        elif use_int:
+            tot, shape_best, rmin, s2 = res
+            evidence = True
+    if shape_best is None:
+        shape_best = tot.min(axis=1)
 
-    best_per_shape = {}
-    for s, v in cand.items():
-        tot = []
-        for j, ((k, dd), so) in enumerate(zip(v, out_score[s])):
-            t = so
-            if use_int:
-                r = rss[s][j]
-                t = t + (interior_weight * (r - rmin) / s2 if np.isfinite(r) else 1e9)
-            tot.append((t, k, dd))
-        best_per_shape[s] = min(tot)
-    score = np.full(len(lib.alphas), np.inf)
-    for i, s in enumerate(lib.shape_id):
-        if allowed[i] and int(s) in best_per_shape:
-            score[i] = best_per_shape[int(s)][0]
+    ms = tab.model_shape
+    score = np.where(shape_ok[ms], shape_best[ms], np.inf)
     score = score - np.min(score)
 
     # profile over faces: score(alpha) = min over faces
@@ -668,7 +1037,11 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     ib = int(ties[len(ties) // 2])
     alpha = float(grid[ib])
     mbest = int(np.flatnonzero((np.abs(lib.alphas - alpha) < 1e-9) & (score <= best_val + 1e-9))[0])
-    _, kbest, dbest = best_per_shape[int(lib.shape_id[mbest])]
+    ub = int(ms[mbest])
+    row = np.where(np.isfinite(tot[ub]), tot[ub], np.inf)
+    # lowest score, then the smallest shift (as the candidates were listed in order)
+    jb = int(np.lexsort((shifts[ub], row))[0])
+    kbest, dbest = int(shifts[ub, jb]), float(dist[ub, jb])
     # each grid alpha stands for the cell of half a step either side
     half = 0.5 * (grid[1] - grid[0]) if grid.size > 1 else 0.0
     lo = float(max(grid[inside.min()] - half, grid[0]))
@@ -683,10 +1056,166 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     fchi, level = float("nan"), float("nan")
     if interior is not None and interior.value.size >= 30:
         level = float(np.mean(interior.value))
-        if use_int:
-            fchi = max(interior_weight * (_flat_rss(interior) - rmin) / s2, 0.0)
+        if evidence:
+            fchi = max(w_eff * (_flat_rss(full) - rmin) / s2, 0.0)
     return AlphaFit(alpha, lo, hi, lib.faces[mbest], 360.0 * kbest / n, dbest, "; ".join(notes), score,
-                    fchi, level)
+                    fchi, level, sig)
+
+
+_QUICK_MODELS = 8
+_OUTLINE_MEMO: list = [None]
+
+
+def _outline_memo(sig, tab):
+    """:func:`outline_candidates`, remembering the last answer (classify asks twice per grain)."""
+    key = (id(tab), sig.tobytes())
+    hit = _OUTLINE_MEMO[0]
+    if hit is None or hit[0] != key:
+        hit = (key, outline_candidates(sig, tab))
+        _OUTLINE_MEMO[0] = hit
+    shifts, dist, valid = hit[1]
+    return shifts, dist, valid.copy()
+
+
+def _rss_of(tab, shifts, pairs, interior, n, edge_px):
+    """Interior RSS of the (shape, slot) ``pairs`` (k, 2) placed over ``interior``."""
+    if len(pairs) == 0:
+        return np.zeros(0)
+    u, j = pairs[:, 0], pairs[:, 1]
+    return interior_rss_batch(interior, *placed_planes(tab, u, shifts[u, j], n), edge_px=edge_px)
+
+
+def _totals(osc, rss, placed, s_count, w):
+    """Scores of placed candidates; None if the residual variance is not usable."""
+    rmin = rss[placed].min()
+    s2 = rmin / max(s_count - 8, 1)
+    if not (s2 > 0 and np.isfinite(s2)):
+        return None
+    return np.where(placed, osc + w * (rss - rmin) / s2, np.inf), rmin, s2
+
+
+def _place_all(tab, shifts, osc, gated, interior, n, edge_px, w):
+    """Exhaustive interior fit: every gated candidate over ``interior``."""
+    pairs = np.argwhere(gated)
+    rss = np.full(osc.shape, np.inf)
+    rss[gated] = _rss_of(tab, shifts, pairs, interior, n, edge_px) if len(pairs) else []
+    if not gated.any():
+        return None
+    r = _totals(osc, rss, gated, interior.value.size, w)
+    if r is None:
+        return None
+    tot, rmin, s2 = r
+    # candidates the outline ruled out keep a prohibitive score, as before
+    tot = np.where(np.isfinite(osc) & ~gated, osc + 1e9, tot)
+    return tot, tot.min(axis=1), rmin, s2
+
+
+def _coarse_search(tab, shifts, osc, gated, interior, full, n, tolerance, edge_px, weight,
+                   search_samples, every, margin):
+    """Coarse-to-fine interior fit (see :func:`fit_alpha`); None falls back to the exhaustive one."""
+    u = osc.shape[0]
+    gshape = gated.any(axis=1)
+    if not gshape.any():
+        return None
+    seqs = []                                   # gated shapes of each face, by alpha
+    for f in ("100", "111"):
+        sel = np.flatnonzero(gshape & (tab.face == f))
+        if sel.size:
+            seqs.append(sel[np.argsort(tab.pos[sel])])
+    coarse = np.zeros(u, bool)
+    for q in seqs:
+        coarse[q[::every]] = True
+        coarse[q[-1]] = True
+    # stage 1: coarse shapes, all gated rotations, sparse sample
+    sparse = subsample_interior(interior, search_samples)
+    m1 = gated & coarse[:, None]
+    rss1 = np.full(osc.shape, np.inf)
+    rss1[m1] = _rss_of(tab, shifts, np.argwhere(m1), sparse, n, edge_px)
+    r1 = _totals(osc, rss1, m1, sparse.value.size, weight * sparse.weight)
+    if r1 is None:
+        return None
+    tot1 = r1[0]
+    sb1 = tot1.min(axis=1)
+    best1 = sb1.min()
+    won1 = tot1 <= sb1[:, None] + margin / 2              # rotations worth refining, per coarse shape
+    # seeds: coarse local minima (one per basin) within the margin, and the least-RSS model
+    seeds = np.zeros(u, bool)
+    for q in seqs:
+        cq = q[coarse[q]]
+        val = sb1[cq]
+        left = np.r_[np.inf, val[:-1]]
+        right = np.r_[val[1:], np.inf]
+        seeds[cq[(val <= left) & (val <= right) & (val <= best1 + margin)]] = True
+    seeds[np.unravel_index(np.argmin(np.where(m1, rss1, np.inf)), rss1.shape)[0]] = True
+    # brackets: runs of shapes from one coarse shape to the next
+    brackets, where = [], {}
+    for q in seqs:
+        cpos = np.flatnonzero(coarse[q])
+        if cpos.size == 1:
+            cpos = np.array([0, 0])
+        for a, b in zip(cpos[:-1], cpos[1:]):
+            for s in q[a:b + 1]:
+                where.setdefault(int(s), []).append(len(brackets))
+            brackets.append(q[a:b + 1])
+    want = np.zeros(osc.shape, bool)
+    taken = np.zeros(len(brackets), bool)
+
+    def take(k, extra=None):
+        run = brackets[k]
+        slots = won1[run[0]] | won1[run[-1]]
+        if extra is not None:
+            slots = slots | extra
+        for s in run:
+            w = slots & gated[s]
+            want[s] |= w if w.any() else gated[s]
+        taken[k] = True
+
+    for s in np.flatnonzero(seeds):
+        for k in where.get(int(s), []):
+            take(k)
+    # stage 2: full sample; grow while a shape within tolerance has an unplaced neighbour
+    rss2 = np.full(osc.shape, np.inf)
+    done = np.zeros(osc.shape, bool)
+    pos_of = {int(s): (q, i) for q in seqs for i, s in enumerate(q)}
+    for _ in range(len(brackets) + 1):
+        new = want & ~done
+        if new.any():
+            rss2[new] = _rss_of(tab, shifts, np.argwhere(new), full, n, edge_px)
+            done |= new
+        res = _totals(osc, rss2, done, full.value.size, weight * full.weight)
+        if res is None:
+            return None
+        tot2 = res[0]
+        sb2 = tot2.min(axis=1)
+        grew = False
+        for s in np.flatnonzero(sb2 <= sb2.min() + tolerance):
+            q, i = pos_of[int(s)]
+            for k in (i - 1, i + 1):
+                if 0 <= k < len(q) and not done[q[k]].any():
+                    for b in where[int(q[k])]:
+                        if not taken[b]:
+                            take(b, tot2[s] <= sb2[s] + tolerance)
+                            grew = True
+        if not grew:
+            break
+    tot2, rmin, s2 = res
+    sb2 = tot2.min(axis=1)
+    best2 = sb2.min()
+    # scores of shapes not placed over the full sample (outside the range)
+    placed = done.any(axis=1)
+    est = np.where(placed, sb2, np.where(coarse & gshape, sb1 - best1 + best2, np.nan))
+    for q in seqs:
+        known = np.isfinite(est[q])
+        if not known.all():
+            idx = np.arange(q.size)
+            est[q[~known]] = np.interp(idx[~known], idx[known], est[q][known])
+    lower = np.where(gated, osc, np.inf).min(axis=1)
+    est = np.where(placed, est, np.maximum(est, lower))
+    # shapes the outline ruled out keep a prohibitive score, as in the exhaustive fit
+    ruled_out = np.where(np.isfinite(osc), osc, np.inf).min(axis=1) + 1e9
+    shape_best = np.where(gshape, est, ruled_out)
+    tot = np.where(done, tot2, np.where(np.isfinite(osc) & ~gated, osc + 1e9, np.inf))
+    return tot, shape_best, rmin, s2
 
 
 # ----------------------------------------------------------------------- frame
@@ -760,7 +1289,8 @@ def fit_kwargs(params=None) -> dict:
                         p["min_face_share"])
     return dict(pixel_scale=1.0, library=lib, tolerance=p["tolerance"],
                 outline_noise_px=p["outline_noise_px"], outline_noise_floor=p["outline_noise_floor"],
-                interior_weight=p["interior_weight"], facet_edge_px=p["facet_edge_px"])
+                interior_weight=p["interior_weight"], facet_edge_px=p["facet_edge_px"],
+                interior_samples=p["interior_samples"], search=p["search"])
 
 
 def fit_frame(frame, params=None) -> dict:
