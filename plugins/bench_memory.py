@@ -48,7 +48,9 @@ def child_main(argv: list[str]) -> int:
     Parameters
     ----------
     argv : list of str
-        ``[WORKFLOW, OUT_JSON]``.
+        ``[WORKFLOW, OUT_JSON]`` or ``[WORKFLOW, OUT_JSON, MALLOC_TRIM_BYTES]``
+        (the glibc ``MALLOC_TRIM_THRESHOLD_`` the local cluster's nannies
+        give their workers; dask's default is 65536).
 
     Returns
     -------
@@ -61,11 +63,14 @@ def child_main(argv: list[str]) -> int:
     from pipeline.runner import run
     from pipeline.workflow import validate
 
-    workflow, out_json = argv
+    import dask
+
+    workflow, out_json, *rest = argv
+    env = {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": int(rest[0])} if rest else {}
     host = make_host()
     plan = validate(workflow, host)
     t0 = time.time()
-    with bu.RunClock(host) as clock:
+    with dask.config.set(env), bu.RunClock(host) as clock:
         outcome = run(plan, host, fresh=True, tty=False)
     ru_self = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     ru_kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
@@ -82,7 +87,8 @@ def child_main(argv: list[str]) -> int:
     return outcome.exit_code
 
 
-def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout: float | None = None) -> dict:
+def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout: float | None = None,
+                 malloc_trim: int | None = None) -> dict:
     """Run :func:`child_main` in a new process and sample its process tree's RSS.
 
     Parameters
@@ -95,6 +101,8 @@ def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout
         Sampling interval (s).
     timeout : float, optional
         Seconds before the child is killed.
+    malloc_trim : int, optional
+        ``MALLOC_TRIM_THRESHOLD_`` for the local workers (see :func:`child_main`).
 
     Returns
     -------
@@ -106,7 +114,8 @@ def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout
     """
     load0 = bu.load_average()
     t0 = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, "-c", _CHILD, str(workflow), str(out_json)],
+    extra = [] if malloc_trim is None else [str(int(malloc_trim))]
+    proc = subprocess.Popen([sys.executable, "-c", _CHILD, str(workflow), str(out_json), *extra],
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     sampler = bu.TreeRssSampler(proc.pid, interval=interval)
     with sampler:
@@ -144,6 +153,8 @@ def run(argv: list[str]) -> int:
     ap.add_argument("--json", metavar="PATH", help="write the figures to this JSON file")
     ap.add_argument("--workdir", metavar="DIR", help="write frames and results here and keep them "
                                                      "(default: a temporary folder, removed)")
+    ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
+                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (dask sets 65536)")
     ap.add_argument("--check", action="store_true", help="exit 1 if the target is missed")
     args = ap.parse_args(argv)
     workers = args.workers or os.cpu_count() or 1
@@ -160,6 +171,8 @@ def run(argv: list[str]) -> int:
             bu.write_frames(root / name / "bench", images, n)
         where = (f"local cluster, {workers} worker processes" if args.scheduler == "local"
                  else "serial, in the run's process")
+        if args.malloc_trim is not None:
+            where += f", MALLOC_TRIM_THRESHOLD_={args.malloc_trim}"
         print(f"grainhabit bench memory: {where}; {len(images)} distinct {args.size}x{args.size} px fields "
               f"({grains} grains), written as variants (invented data; {time.perf_counter() - t0:.1f} s)",
               file=out)
@@ -169,7 +182,7 @@ def run(argv: list[str]) -> int:
         for name, n in (("small", args.small), ("large", args.large)):
             wf = bu.write_workflow(root / f"{name}.yaml", root / name, root / "out" / f"{name}.zarr",
                                    workers=workers, scheduler=args.scheduler, name=f"bench-memory-{name}")
-            c = measure_case(wf, root / f"{name}.json")
+            c = measure_case(wf, root / f"{name}.json", malloc_trim=args.malloc_trim)
             cases[name] = c
             print(f"{name:<7}{n:>7}{bu.mib(c['peak_tree']):>10.0f}{bu.mib(c['peak_main']):>8.0f}"
                   f"{bu.mib(c['peak_processing']):>12.0f}{bu.mib(c['peak_after']):>8.0f}{c['peak_processes']:>7}"
@@ -189,6 +202,7 @@ def run(argv: list[str]) -> int:
         print(f"{bu.load_text()} at the end", file=out)
         if args.json:
             figures = {"benchmark": "memory", "scheduler": args.scheduler, "workers": workers,
+                       "malloc_trim_threshold": args.malloc_trim,
                        "size_px": args.size, "grains_per_frame": grains, "distinct": len(images),
                        "cases": cases, "ratio": r, "target": TARGET_RATIO, "ok": bool(ok)}
             Path(args.json).parent.mkdir(parents=True, exist_ok=True)

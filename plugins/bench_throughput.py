@@ -271,6 +271,9 @@ def run(argv: list[str]) -> int:
         print(f"grainhabit bench throughput: {args.frames} synthetic frames of {args.size}x{args.size} px, "
               f"{grains} grains each (invented data; rendered in {time.perf_counter() - t0:.1f} s), "
               f"{bu.load_text()}", file=out)
+        if args.malloc_trim is not None:
+            print(f"local workers run with MALLOC_TRIM_THRESHOLD_={args.malloc_trim} (dask's default: 65536); "
+                  "the serial loop with glibc's own default", file=out)
         host = make_host()
 
         l0 = bu.load_average()
