@@ -72,21 +72,11 @@ class RunLock:
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
-                try:
-                    holder = json.loads(self.path.read_text() or "{}")
-                except (OSError, ValueError):
-                    holder = {}
-                if holder and _alive(holder):
-                    raise LockHeld(f"{self.path}: another run holds the lock ({describe(holder)})") from None
+                holder = self._check_holder()
                 if not holder:
                     # empty or unreadable: a holder may be writing it this instant
                     time.sleep(0.2)
-                    try:
-                        holder = json.loads(self.path.read_text() or "{}")
-                    except (OSError, ValueError):
-                        holder = {}
-                    if holder and _alive(holder):
-                        raise LockHeld(f"{self.path}: another run holds the lock ({describe(holder)})") from None
+                    holder = self._check_holder()
                 stale = self.path.with_name(self.path.name + f".stale-{os.getpid()}")
                 try:
                     os.replace(self.path, stale)
@@ -102,6 +92,16 @@ class RunLock:
             self._held = True
             return self
         raise LockHeld(f"{self.path}: could not take the lock")
+
+    def _check_holder(self) -> dict:
+        """Read the lock's holder; raise LockHeld if it is alive, else return it ({} if unreadable)."""
+        try:
+            holder = json.loads(self.path.read_text() or "{}")
+        except (OSError, ValueError):
+            holder = {}
+        if holder and _alive(holder):
+            raise LockHeld(f"{self.path}: another run holds the lock ({describe(holder)})") from None
+        return holder
 
     def release(self) -> None:
         if self._held:
