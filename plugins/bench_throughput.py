@@ -157,6 +157,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
     plan = validate(str(workflow), host, {"execution": {"workers": int(workers)}})
     load0 = bu.load_average()
     import dask
+    import distributed  # noqa: F401  (loads its config defaults before we override one key)
 
     env = {} if malloc_trim is None else {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": malloc_trim}
     t0 = time.perf_counter()
