@@ -93,8 +93,10 @@ class DaskExecutor:
             self.description = f"cluster {self.address} ({self.n_workers} workers)"
         else:
             n = (os.cpu_count() or 1) if self.workers == "auto" else int(self.workers)
-            # a frame whose worker dies is retried once, then reported failed
+            # a frame whose worker dies is retried once, then reported failed; with worker-saturation 1.0 a
+            # worker holds only the frames it is running, so a dying worker takes no innocent frame with it
             dask.config.set({"distributed.scheduler.allowed-failures": 1,
+                             "distributed.scheduler.worker-saturation": 1.0,
                              "distributed.worker.daemon": False})
             self.cluster = LocalCluster(n_workers=n, threads_per_worker=self.threads, processes=True,
                                         memory_limit=self.memory_limit, dashboard_address=None,
