@@ -219,3 +219,30 @@ def test_hook_returns_columns_for_every_grain():
 def test_bad_parameter_is_refused():
     with pytest.raises(ValueError):
         cl.STEP.resolve({"min_solidity": 1.5})
+
+
+def test_outline_shortcut_gives_the_same_habit_as_the_full_fit(monkeypatch):
+    # reference: the same grains classified with the interior fit forced on
+    plate = cr.tabular_prism(0.5, 0.1)
+    rot = cr.in_plane_rotation(12.0) @ cr.resting_rotation("111")
+    rect = np.array([[-60, -12], [60, -12], [60, 12], [-60, 12]], float)
+    body, brot = body_and_rotation(3.0, "111", 5.0)
+    frames = [draw_polygon_frame(cr.project(plate, rot) * 70),
+              draw_polygon_frame(cr.project(cr.tabular_prism(0.05, 0.1), rot) * 70),
+              draw_polygon_frame(rect, size=160),
+              draw_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5)]
+    searches = []
+    real = cl.gr.fit_alpha_cached
+
+    def spy(*a, **kw):
+        searches.append(kw.get("search"))
+        return real(*a, **kw)
+
+    monkeypatch.setattr(cl.gr, "fit_alpha_cached", spy)
+    short = [cl.classify_frame(f) for f in frames]
+    assert "coarse" not in searches[:3]          # the plate and rod outlines decided alone
+    monkeypatch.setattr(cl, "outline_decides", lambda *a, **k: False)
+    full = [cl.classify_frame(f) for f in frames]
+    assert [c["habit"][0] for c in short] == [c["habit"][0] for c in full]
+    assert [c["habit"][0] for c in short] == ["tabular_hexagon", "tabular_triangle", "rod",
+                                              "tabular_hexagon"]

@@ -130,3 +130,106 @@ def test_bad_inputs_are_refused():
         gr.shift_distances(np.ones(8), np.ones(9))
     with pytest.raises(ValueError):
         gr.model_library(1.2, 4.0)
+
+
+# ------------------------------------------------ fast paths against references
+
+def _brute_signature(poly, n):
+    # every ray against every edge (Cramer's rule), the farthest crossing
+    p = np.asarray(poly, float)
+    c, area = gr.polygon_centroid(p)
+    q = p - c
+    e = np.roll(q, -1, axis=0) - q
+    phi = 2 * np.pi * np.arange(n) / n
+    dx, dy = np.cos(phi)[:, None], np.sin(phi)[:, None]
+    det = -dx * e[:, 1] + e[:, 0] * dy
+    ok = np.abs(det) > 1e-14
+    det = np.where(ok, det, 1.0)
+    t = (-q[:, 0] * e[:, 1] + e[:, 0] * q[:, 1]) / det
+    s = (dx * q[:, 1] - dy * q[:, 0]) / det
+    hit = ok & (s >= -1e-9) & (s <= 1 + 1e-9) & (t > 0)
+    return np.where(hit, t, 0.0).max(axis=1) / math.sqrt(area)
+
+
+def test_radial_signature_equals_all_pairs_solution():
+    rng = np.random.default_rng(3)
+    # a non-star (re-entrant) outline: the farthest crossing is kept
+    spiral = np.array([[0, 0], [10, 0], [10, 10], [2, 10], [2, 2], [8, 2], [8, 8], [4, 8], [4, 6],
+                       [6, 6], [6, 4], [0, 4]], float)
+    polys = [spiral, spiral[::-1] + 0.3]
+    for _ in range(20):
+        k = int(rng.integers(3, 300))
+        th = np.sort(rng.uniform(0, 2 * np.pi, k))
+        r = rng.uniform(0.4, 1.5, k)
+        polys.append(np.column_stack([r * np.cos(th), r * np.sin(th)]) * 40 + rng.normal(size=2))
+    for i, p in enumerate(polys):
+        n = (64, 100, 256)[i % 3]
+        assert np.allclose(gr.radial_signature(p, n), _brute_signature(p, n), atol=1e-12)
+
+
+def _drawn(alpha, face, rot_deg, contrast, noise=0.02, seed=0):
+    body, rot = body_and_rotation(alpha, face, rot_deg)
+    frame = draw_frame(body, rot, contrast=contrast, noise=noise, seed=seed)
+    return gr.grain_evidence(frame, gr._contours_for(frame), 0)
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
+    # reference: the single-model least-squares fit (_interior_rss)
+    lib = gr.model_library()
+    tab = gr._tables(lib)
+    _, inner = _drawn(2.0, "100", 17.0, contrast)
+    rng = np.random.default_rng(1)
+    uniq = np.unique(lib.shape_id)
+    shapes = rng.integers(0, uniq.size, 12)
+    shifts = rng.integers(0, 256, 12)
+    batch = gr.interior_rss_batch(inner, *gr.placed_planes(tab, shapes, shifts, 256),
+                                  max_elements=20_000)           # several chunks
+    for r, u, k in zip(batch, shapes, shifts):
+        i = int(np.flatnonzero(lib.shape_id == uniq[u])[0])
+        rot = cr.in_plane_rotation(360.0 * k / 256) @ lib.rotations[i]
+        # float32 geometry: a pixel exactly on a facet edge may change side
+        assert r == pytest.approx(gr._interior_rss(inner, lib.bodies[i], rot), rel=1e-5)
+
+
+def test_batched_outline_distances_match_shift_distances():
+    lib = gr.model_library()
+    tab = gr._tables(lib)
+    contour, _ = _drawn(1.8, "100", 9.0, "bright")
+    sig = gr.radial_signature(contour, 256)
+    shifts, dist, valid = gr.outline_candidates(sig, tab)
+    uniq = np.unique(lib.shape_id)
+    for u in (0, 10, 60, uniq.size - 1):
+        i = int(np.flatnonzero(lib.shape_id == uniq[u])[0])
+        d = gr.shift_distances(sig, lib.signatures[i])
+        assert dist[u, 0] == pytest.approx(d.min(), abs=1e-9)
+        assert np.allclose(dist[u][valid[u]], d[shifts[u][valid[u]]], atol=1e-9)
+
+
+@pytest.mark.parametrize("alpha,face,rot_deg,contrast", [
+    (1.7, "100", 17.0, "bright"), (2.3, "100", 31.0, "dark"), (2.2, "111", 8.0, "bright"),
+    (1.5, "111", 40.0, "dark"), (3.0, "111", 8.0, "bright")])
+def test_coarse_search_gives_the_exhaustive_answer(alpha, face, rot_deg, contrast):
+    # reference: every candidate model placed over the interior
+    contour, inner = _drawn(alpha, face, rot_deg, contrast, seed=int(10 * alpha))
+    ref = gr.fit_alpha(contour, inner, search="exhaustive")
+    fast = gr.fit_alpha(contour, inner, search="coarse")
+    assert abs(fast.alpha - ref.alpha) <= 0.02
+    assert fast.alpha_lo == pytest.approx(ref.alpha_lo, abs=0.021)
+    assert fast.alpha_hi == pytest.approx(ref.alpha_hi, abs=0.021)
+    assert fast.face == ref.face
+    assert fast.facet_chi2 == pytest.approx(ref.facet_chi2, rel=0.05)
+
+
+def test_subsampled_interior_keeps_its_weight():
+    _, inner = _drawn(2.0, "100", 0.0, "bright")
+    sub = gr.subsample_interior(inner, 300)
+    assert 300 / 4 <= sub.value.size <= 300
+    assert sub.weight * sub.value.size == pytest.approx(inner.value.size)
+    # sums of squares over the lattice estimate those over all pixels
+    assert sub.weight * np.sum(sub.value ** 2) == pytest.approx(np.sum(inner.value ** 2), rel=0.05)
+    assert gr.subsample_interior(inner, 10 ** 5) is inner
+    with pytest.raises(ValueError):
+        gr.subsample_interior(inner, 5)
+    with pytest.raises(ValueError):
+        gr.fit_alpha(np.array([[0, 0], [1, 0], [0, 1]], float), search="fast")
