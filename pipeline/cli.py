@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import signal
 import sys
 import traceback
@@ -21,7 +22,7 @@ from . import __version__
 from .lock import LockHeld
 from .logs import setup
 from .manager import Host, make_host
-from .workflow import WorkflowError, find_inputs, plugin_specs, validate
+from .workflow import WorkflowError, plugin_specs, validate
 
 EXIT_OK, EXIT_FAILED_FRAMES, EXIT_USAGE, EXIT_LOCKED, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
@@ -70,10 +71,10 @@ def _host_for(workflow: str, host: Host) -> Host:
 def cmd_check(args, host: Host) -> int:
     host = _host_for(args.workflow, host)
     plan = validate(args.workflow, host, _overrides(args))
-    files, unmatched = find_inputs(plan)
     from .runner import list_frames
 
     frames, problems = list_frames(plan, host, plan.processing_key(host))
+    files = {f.ref.path for f in frames}
     cfg = plan.config
     print(f"workflow {plan.name} ({plan.file}) is valid")
     src = cfg["input"]["archive"] or ", ".join(cfg["input"]["paths"])
@@ -89,9 +90,9 @@ def cmd_check(args, host: Host) -> int:
     print("steps:")
     steps = host.steps()
     for s in plan.frame_steps + plan.survey_steps:
-        params = ", ".join(f"{k}={v!r}" for k, v in s.params.items()) or "no parameters"
         unit = {p.name: p.unit for p in steps[s.name].params}
-        params = ", ".join(f"{k}={v!r}" + (f" {unit[k]}" if unit.get(k) else "") for k, v in s.params.items()) or params
+        params = ", ".join(f"{k}={v!r}" + (f" {unit[k]}" if unit.get(k) else "")
+                           for k, v in s.params.items()) or "no parameters"
         print(f"  {s.stage:<10} {s.name} {s.version}: {params}")
     return EXIT_OK
 
@@ -103,8 +104,6 @@ def cmd_run(args, host: Host) -> int:
     plan = validate(args.workflow, host, _overrides(args))
     out = plan.config["output"]
     log_file = out["log"] or (out["results"].rstrip("/") + ".log")
-    import os
-
     os.makedirs(os.path.dirname(os.path.abspath(log_file)), exist_ok=True)
     log = setup(json_lines=args.log_json, log_file=log_file, debug=args.debug)
     outcome = run(plan, host, fresh=args.fresh)

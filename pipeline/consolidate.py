@@ -11,6 +11,7 @@ import numpy as np
 import xarray as xr
 
 from .columns import FRAME_COLUMNS, GRAIN_COLUMNS, GRAIN_FILL, describe
+from .params import Column
 from .results import text_array
 
 TEXT_KINDS = ("U", "S", "O", "T")
@@ -18,11 +19,26 @@ TEXT_KINDS = ("U", "S", "O", "T")
 
 def _as_var(dim: str, values, column) -> xr.Variable:
     arr = np.asarray(values)
-    if arr.dtype.kind in TEXT_KINDS or (column is not None and column.units == "" and arr.dtype.kind not in "b"):
-        if arr.dtype.kind in TEXT_KINDS:
-            arr = text_array(arr)
+    if arr.dtype.kind in TEXT_KINDS:
+        arr = text_array(arr)
     attrs = {"units": column.units if column else "1", "long_name": column.long_name if column else dim}
     return xr.Variable((dim,), arr, attrs)
+
+
+_INT_COLUMNS = ("frame", "label", "n_corners")
+_BOOL_COLUMNS = ("edge_cut", "split")
+_TEXT_COLUMNS = ("source", "sample", "habit")
+
+
+def _empty_dtype(name: str, like: np.ndarray | None):
+    """dtype of a column when no frame has grains."""
+    if name in _INT_COLUMNS:
+        return np.int64
+    if name in _BOOL_COLUMNS:
+        return bool
+    if like is not None:
+        return object if like.dtype.kind in TEXT_KINDS else like.dtype
+    return object if name in _TEXT_COLUMNS else float
 
 
 def _fill_for(name: str, n: int, like: np.ndarray | None):
@@ -118,13 +134,7 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
                 except (TypeError, ValueError):
                     pass
         else:
-            ex = examples.get(k)
-            values = np.zeros(0, dtype=(ex.dtype if ex is not None and ex.dtype.kind not in TEXT_KINDS else
-                                        (object if (ex is not None or k in ("source", "sample", "habit")) else float)))
-            if k == "frame" or k == "label" or k == "n_corners":
-                values = np.zeros(0, dtype=np.int64)
-            if k in ("edge_cut", "split"):
-                values = np.zeros(0, dtype=bool)
+            values = np.zeros(0, dtype=_empty_dtype(k, examples.get(k)))
         grains[k] = _as_var("grain", values, known.get(k))
 
     frames = xr.Dataset()
@@ -137,16 +147,15 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
                 arr = np.nan_to_num(arr, nan=0).astype(np.int64)
         else:
             arr = np.asarray(["" if v is None else str(v) for v in values], dtype=object)
-        frames[k] = _as_var("frame", arr, col or FRAME_COLUMNS[0].__class__(k, "", f"frame field {k}"))
+        frames[k] = _as_var("frame", arr, col or Column(k, "", f"frame field {k}"))
 
+    vertex_grain = np.concatenate(outl_grain) if outl_grain else np.zeros(0, np.int64)
+    vertex_xy = np.concatenate(outl_xy) if outl_xy else np.zeros((0, 2))
     outlines = xr.Dataset(
         {
-            "grain": xr.Variable(("vertex",), np.concatenate(outl_grain) if outl_grain else np.zeros(0, np.int64),
-                                 {"units": "1", "long_name": "index into the grains group"}),
-            "x_nm": xr.Variable(("vertex",), np.concatenate(outl_xy)[:, 0] if outl_xy else np.zeros(0),
-                                {"units": "nm", "long_name": "outline vertex x"}),
-            "y_nm": xr.Variable(("vertex",), np.concatenate(outl_xy)[:, 1] if outl_xy else np.zeros(0),
-                                {"units": "nm", "long_name": "outline vertex y"}),
+            "grain": xr.Variable(("vertex",), vertex_grain, {"units": "1", "long_name": "index into the grains group"}),
+            "x_nm": xr.Variable(("vertex",), vertex_xy[:, 0], {"units": "nm", "long_name": "outline vertex x"}),
+            "y_nm": xr.Variable(("vertex",), vertex_xy[:, 1], {"units": "nm", "long_name": "outline vertex y"}),
         }
     )
 

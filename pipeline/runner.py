@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import xarray as xr
 
 from . import __version__
 from .consolidate import build_datasets
@@ -33,7 +34,7 @@ from .frame import FrameRef
 from .lock import RunLock, describe
 from .logs import Progress
 from .manager import Host
-from .results import open_results, recover, write_results
+from .results import recover, root_attrs, write_results
 from .staging import clean_temporaries, frame_key, is_staged, read_staged, staging_dir, write_staged
 from .task import FrameJob, process_frame
 from .workflow import Plan, expand, find_inputs
@@ -181,7 +182,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
             log.info("%d frames already staged for this workflow: reused (use --fresh to redo)",
                      outcome.frames_reused)
         transient: dict[str, dict] = {}
-        steps = tuple((s.name, s.params) for s in plan.frame_steps)
+        steps = tuple((s.name, s.stage, s.params) for s in plan.frame_steps)
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]))
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
@@ -295,12 +296,14 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
 
 def _previous_runs(results: str) -> list:
     try:
-        from .results import root_attrs
-
         runs = root_attrs(results).get("runs", [])
         return runs if isinstance(runs, list) else []
     except Exception:
         return []
+
+
+#: Text variables of the frames group that come from the frame's own record, not from the listing.
+_RECORD_TEXT = ("status", "error", "calibration", "notes", "polarity")
 
 
 def _missing_frames(results: str, listed: set, stage: Path, on_missing: str) -> list:
@@ -308,7 +311,7 @@ def _missing_frames(results: str, listed: set, stage: Path, on_missing: str) -> 
     if not os.path.exists(results):
         return []
     try:
-        prev = open_results(results)["frames"]
+        prev = xr.open_zarr(results, group="frames").load()
     except Exception:
         return []
     out = []
@@ -326,9 +329,9 @@ def _missing_frames(results: str, listed: set, stage: Path, on_missing: str) -> 
         p = stage / f"{key}.npz"
         if not p.exists():
             continue
-        info = {k: str(prev[k].values[i]) for k in prev.data_vars if prev[k].dtype.kind in ("U", "O", "T")}
-        info = {k: v for k, v in info.items() if k in ("source", "sample", "content_hash", "stage_key")
-                or k not in ("status", "error", "calibration", "notes", "polarity")}
+        # the listing's view of the frame: identity plus the workflow's per-frame text fields
+        info = {k: str(prev[k].values[i]) for k in prev.data_vars
+                if prev[k].dtype.kind in ("U", "O", "T") and k not in _RECORD_TEXT}
         out.append((info, read_staged(p)))
         kept += 1
     log.warning("%d frames of earlier runs are no longer found in the inputs: kept (input.on_missing=keep)", kept)

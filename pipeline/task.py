@@ -29,7 +29,7 @@ class FrameJob:
 
     Attributes
     ----------
-    steps : tuple of (name, params)
+    steps : tuple of (name, stage, params)
         Per-frame steps in order.
     input_options : dict
         The workflow's validated ``input`` section.
@@ -138,7 +138,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         record["seconds"] = time.perf_counter() - t_start
         return result
 
-    for name, params in job.steps:
+    for name, stage, params in job.steps:
         t0 = time.perf_counter()
         try:
             out = host.call_step(name, frame=frame, params=params)
@@ -150,7 +150,6 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
             _fail(record, name, exc)
             result["traceback"] = record.pop("traceback")
             break
-        stage = host.steps()[name].stage
         timings[stage] = timings.get(stage, 0.0) + time.perf_counter() - t0
 
     record["notes"] = "; ".join(frame.notes)
