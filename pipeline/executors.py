@@ -2,7 +2,13 @@
 
 - ``local`` (default): a process-based ``LocalCluster`` with one worker per
   core and one thread per worker (the kernels hold the GIL part of the
-  time), started and stopped by the run.
+  time), started and stopped by the run. Its workers keep glibc's own
+  malloc thresholds: dask's nanny would set ``MALLOC_TRIM_THRESHOLD_=65536``,
+  which also freezes glibc's mmap threshold at 128 KiB, so that every
+  frame-sized array becomes a fresh ``mmap`` whose pages are faulted in and
+  zeroed again; on the development machine the same kernels then ran 25-45 %
+  slower in a worker than in a plain loop (``grainhabit bench throughput``).
+  A ``MALLOC_TRIM_THRESHOLD_`` set in the environment is still passed on.
 - ``tcp://HOST:PORT``: an existing cluster, e.g. started with
   ``dask scheduler`` and ``dask worker``. Plugin files named in the
   workflow's ``plugins:`` list are shipped with ``Client.upload_file``;
@@ -95,6 +101,8 @@ class DaskExecutor:
             n = (os.cpu_count() or 1) if self.workers == "auto" else int(self.workers)
             # a frame whose worker dies is retried once, then reported failed; with worker-saturation 1.0 a
             # worker holds only the frames it is running, so a dying worker takes no innocent frame with it
+            if "MALLOC_TRIM_THRESHOLD_" not in os.environ:
+                dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None})
             dask.config.set({"distributed.scheduler.allowed-failures": 1,
                              "distributed.scheduler.worker-saturation": 1.0,
                              "distributed.worker.daemon": False})

@@ -12,6 +12,7 @@ import hashlib
 import importlib
 import importlib.metadata
 import importlib.util
+import inspect
 import os
 import sys
 import traceback
@@ -270,7 +271,7 @@ def make_host(extra: tuple[str, ...] = (), autoload: bool | None = None) -> Host
         Problems with individual plugins are collected in ``host.problems``
         rather than raised.
     """
-    pm = pluggy.PluginManager("grainhabit")
+    pm = _PluginManager("grainhabit")
     pm.add_hookspecs(hookspecs)
     host = Host(pm)
     for mod in DEFAULT_PLUGINS:
@@ -289,6 +290,20 @@ def make_host(extra: tuple[str, ...] = (), autoload: bool | None = None) -> Host
 
 
 _WORKER_HOSTS: dict[tuple, Host] = {}
+
+
+class _PluginManager(pluggy.PluginManager):
+    """pluggy's manager, not looking inside modules that a plugin binds as attributes.
+
+    pluggy inspects every attribute of a plugin module for the hook marker;
+    for a module bound with :func:`pipeline.lazy.lazy_module` that
+    inspection alone would import it.
+    """
+
+    def parse_hookimpl_opts(self, plugin, name: str):
+        if isinstance(inspect.getattr_static(plugin, name, None), ModuleType):
+            return None  # isinstance on a (lazy) module reads only its type: nothing is imported
+        return super().parse_hookimpl_opts(plugin, name)
 
 
 def worker_host(extra: tuple[str, ...] = ()) -> Host:

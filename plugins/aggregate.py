@@ -15,12 +15,14 @@ import json
 import sys
 
 import numpy as np
-import xarray as xr
 
 from pipeline import hookimpl
+from pipeline.lazy import lazy_module
 
 from . import summary as summary_step
 from .report import _plain, load_results
+
+xr = lazy_module("xarray")  # imported on first use: workers never need it
 
 GRAINHABIT_API = 1
 

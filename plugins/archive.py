@@ -22,10 +22,12 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import zarr
 
 from pipeline import hookimpl
+from pipeline.lazy import lazy_module
 from pipeline.frame import FrameData, FrameRef
+
+zarr = lazy_module("zarr")  # imported on first use: only runs that read or write an archive need it
 
 GRAINHABIT_API = 1
 __version__ = "1.0"

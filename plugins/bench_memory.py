@@ -50,7 +50,7 @@ def child_main(argv: list[str]) -> int:
     argv : list of str
         ``[WORKFLOW, OUT_JSON]`` or ``[WORKFLOW, OUT_JSON, MALLOC_TRIM_BYTES]``
         (the glibc ``MALLOC_TRIM_THRESHOLD_`` the local cluster's nannies
-        give their workers; dask's default is 65536).
+        give their workers; grainhabit leaves it unset, dask's default is 65536).
 
     Returns
     -------
@@ -63,14 +63,11 @@ def child_main(argv: list[str]) -> int:
     from pipeline.runner import run
     from pipeline.workflow import validate
 
-    import dask
-
     workflow, out_json, *rest = argv
-    env = {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": int(rest[0])} if rest else {}
     host = make_host()
     plan = validate(workflow, host)
     t0 = time.time()
-    with dask.config.set(env), bu.RunClock(host) as clock:
+    with bu.worker_malloc_trim(int(rest[0]) if rest else None), bu.RunClock(host) as clock:
         outcome = run(plan, host, fresh=True, tty=False)
     ru_self = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     ru_kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
@@ -154,7 +151,7 @@ def run(argv: list[str]) -> int:
     ap.add_argument("--workdir", metavar="DIR", help="write frames and results here and keep them "
                                                      "(default: a temporary folder, removed)")
     ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
-                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (dask sets 65536)")
+                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (default unset; dask's own is 65536)")
     ap.add_argument("--check", action="store_true", help="exit 1 if the target is missed")
     args = ap.parse_args(argv)
     workers = args.workers or os.cpu_count() or 1

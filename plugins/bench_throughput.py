@@ -156,12 +156,8 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
 
     plan = validate(str(workflow), host, {"execution": {"workers": int(workers)}})
     load0 = bu.load_average()
-    import dask
-    import distributed  # noqa: F401  (loads its config defaults before we override one key)
-
-    env = {} if malloc_trim is None else {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": malloc_trim}
     t0 = time.perf_counter()
-    with dask.config.set(env), bu.RunClock(host) as clock:
+    with bu.worker_malloc_trim(malloc_trim), bu.RunClock(host) as clock:
         outcome = run(plan, host, fresh=True, tty=False)
     wall = time.perf_counter() - t0
     records = bu.staged_records(outcome.results)
@@ -249,8 +245,8 @@ def run(argv: list[str]) -> int:
     ap.add_argument("--workdir", metavar="DIR", help="write frames and results here and keep them "
                                                      "(default: a temporary folder, removed)")
     ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
-                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (dask sets 65536, which makes every "
-                         "large array a fresh mmap; e.g. 134217728 to compare)")
+                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (default: unset, glibc's own "
+                         "thresholds; 65536, dask's own default, makes every large array a fresh mmap)")
     ap.add_argument("--check", action="store_true", help="exit 1 if a target is missed")
     args = ap.parse_args(argv)
     workers = args.workers or os.cpu_count() or 1
@@ -273,7 +269,7 @@ def run(argv: list[str]) -> int:
               f"{grains} grains each (invented data; rendered in {time.perf_counter() - t0:.1f} s), "
               f"{bu.load_text()}", file=out)
         if args.malloc_trim is not None:
-            print(f"local workers run with MALLOC_TRIM_THRESHOLD_={args.malloc_trim} (dask's default: 65536); "
+            print(f"local workers run with MALLOC_TRIM_THRESHOLD_={args.malloc_trim} (grainhabit's default: unset); "
                   "the serial loop with glibc's own default", file=out)
         host = make_host()
 

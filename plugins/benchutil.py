@@ -19,6 +19,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
 import resource
@@ -467,6 +468,29 @@ class TreeRssSampler:
     def peak_between(self, t0: float, t1: float) -> int:
         """Largest tree RSS sampled with ``t0 <= time.time() <= t1`` (0 if none)."""
         return max((s[1] for s in self.samples if t0 <= s[0] <= t1), default=0)
+
+
+@contextlib.contextmanager
+def worker_malloc_trim(value: int | None):
+    """Give local workers started inside the block ``MALLOC_TRIM_THRESHOLD_=value``.
+
+    The local cluster passes on a ``MALLOC_TRIM_THRESHOLD_`` found in the
+    environment (see :mod:`pipeline.executors`); ``None`` leaves the
+    environment as it is (glibc's own thresholds). ``65536`` reproduces
+    dask's default.
+    """
+    if value is None:
+        yield
+        return
+    old = os.environ.get("MALLOC_TRIM_THRESHOLD_")
+    os.environ["MALLOC_TRIM_THRESHOLD_"] = str(int(value))
+    try:
+        yield
+    finally:
+        if old is None:
+            os.environ.pop("MALLOC_TRIM_THRESHOLD_", None)
+        else:
+            os.environ["MALLOC_TRIM_THRESHOLD_"] = old
 
 
 def mib(nbytes: float) -> float:

@@ -22,7 +22,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.signal import savgol_coeffs
 
 __all__ = [
     "closed_length",
@@ -245,13 +244,43 @@ def smooth_closed_contour(contour_xy, window=9, order=2):
         raise ValueError(f"window must be odd and greater than order={order}, got {window}")
     if len(c) <= window:
         return c.copy()
-    coef = savgol_coeffs(window, order)
+    coef = savgol_smoothing_coefficients(window, order)
     h = window // 2
     ext = np.concatenate([c[-h:], c, c[:h]])
     out = np.empty_like(c)
     for j in range(2):
         out[:, j] = np.convolve(ext[:, j], coef, mode="valid")
     return out
+
+
+def savgol_smoothing_coefficients(window: int, order: int) -> np.ndarray:
+    """Savitzky-Golay smoothing weights: the value at the centre of a least-squares polynomial fit.
+
+    Parameters
+    ----------
+    window : int
+        Odd number of samples, greater than ``order``.
+    order : int
+        Degree of the fitted polynomial.
+
+    Returns
+    -------
+    ndarray, shape (window,)
+        Weights ``w`` such that ``sum(w * y[i - h : i + h + 1])`` is the fitted
+        polynomial's value at sample ``i`` (``h = window // 2``); symmetric,
+        summing to 1. Equal to ``scipy.signal.savgol_coeffs(window, order)``
+        (tested), computed here so that a worker need not import
+        ``scipy.signal`` (about 0.5 s).
+
+    References
+    ----------
+    .. [1] A. Savitzky, M. J. E. Golay, Analytical Chemistry 36(8), 1627-1639, 1964.
+    """
+    h = window // 2
+    x = np.arange(-h, h + 1, dtype=float)
+    vander = x[:, None] ** np.arange(order + 1)[None, :]
+    # row 0 of the pseudo-inverse maps the samples to the fitted constant term, i.e. the value at x = 0
+    return np.linalg.pinv(vander)[0]
 
 
 def _check_fit_args(size, rel_tolerance, merge_angle_deg, min_edge_fraction, min_tolerance,

@@ -18,15 +18,16 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import xarray as xr
-from matplotlib import patheffects
-from matplotlib.figure import Figure
 
 from pipeline import __version__, hookimpl
+from pipeline.lazy import lazy_module
 from pipeline.params import Param, StepInfo
 
 from . import statistics as st
 from . import summary as summary_step
+
+# imported on first use: dask workers load this plugin but never draw
+xr = lazy_module("xarray")
 
 GRAINHABIT_API = 1
 
@@ -169,7 +170,14 @@ def _included(grains: xr.Dataset, attrs: dict) -> np.ndarray:
 # --------------------------------------------------------------------------
 
 
-def _save(fig: Figure, out: Path, name: str, written: list, dpi: int = 100) -> str:
+def _figure(**kwargs):
+    """A new matplotlib ``Figure`` on the Agg canvas (pyplot's global state untouched)."""
+    from matplotlib.figure import Figure
+
+    return Figure(**kwargs)
+
+
+def _save(fig, out: Path, name: str, written: list, dpi: int = 100) -> str:
     path = out / name
     fig.savefig(path, dpi=dpi)
     written.append(str(path))
@@ -185,7 +193,7 @@ def _fmt(v, nd=1) -> str:
 
 
 def _size_figure(ecd, row, sample, bins, out, written) -> str:
-    fig = Figure(figsize=(6.0, 3.6))
+    fig = _figure(figsize=(6.0, 3.6))
     ax = fig.subplots()
     if ecd.size:
         lo, hi = np.percentile(ecd, [0.5, 99.5])
@@ -214,7 +222,7 @@ def _size_figure(ecd, row, sample, bins, out, written) -> str:
 def _habit_figure(summ: xr.Dataset, out, written) -> str:
     samples = [str(s) for s in summ["sample"].values]
     habits = [str(h) for h in summ["habit"].values]
-    fig = Figure(figsize=(max(6.0, 1.3 * len(samples) + 3), 6.4), layout="constrained")
+    fig = _figure(figsize=(max(6.0, 1.3 * len(samples) + 3), 6.4), layout="constrained")
     axes = fig.subplots(2, 1, sharex=True)
     width = 0.8 / len(habits)
     x = np.arange(len(samples))
@@ -242,7 +250,7 @@ _SAMPLE_STYLES = [("#1a2a6e", "-"), ("#d9541a", "--"), ("#5a7878", "-."), ("#a66
 
 
 def _alpha_figure(grains, keep, samples, bins, out, written) -> str:
-    fig = Figure(figsize=(6.4, 3.6))
+    fig = _figure(figsize=(6.4, 3.6))
     ax = fig.subplots()
     alpha = np.asarray(grains["alpha"].values, float) if "alpha" in grains else np.full(keep.size, np.nan)
     gs = _text(grains["sample"].values) if "sample" in grains else np.full(keep.size, "", object)
@@ -267,7 +275,7 @@ def _alpha_figure(grains, keep, samples, bins, out, written) -> str:
 
 
 def _scatter_figure(grains, keep, out, written) -> str:
-    fig = Figure(figsize=(6.4, 4.0))
+    fig = _figure(figsize=(6.4, 4.0))
     ax = fig.subplots()
     alpha = np.asarray(grains["alpha"].values, float) if "alpha" in grains else np.full(keep.size, np.nan)
     ecd = np.asarray(grains["ecd_nm"].values, float)
@@ -308,7 +316,7 @@ def _trend_source(groups: dict, grains, frames) -> tuple[str, xr.Dataset] | None
 def _trend_figure(key, ds, out, written) -> str:
     labels = [str(v) for v in ds[key].values]
     x = np.arange(len(labels))
-    fig = Figure(figsize=(max(6.0, 0.8 * len(labels) + 3), 6.4))
+    fig = _figure(figsize=(max(6.0, 0.8 * len(labels) + 3), 6.4))
     axes = fig.subplots(3, 1, sharex=True)
     for ax, var, lab in ((axes[0], "ecd_d50_nm", "number-based D50 (nm)"), (axes[1], "ecd_cov_pct", "size COV (%)")):
         v = np.asarray(ds[var].values, float)
@@ -379,9 +387,11 @@ def _gallery(groups, grains, frames, n, out, written) -> list[tuple[str, int, st
         cols = int(thumbs["thumb_cols"].values[f]) if "thumb_cols" in thumbs else img.shape[1]
         scale = float(thumbs["scale_nm"].values[f])
         img = img[:rows, :cols]
-        fig = Figure(figsize=(2.6, 2.6 * rows / max(cols, 1)))
+        fig = _figure(figsize=(2.6, 2.6 * rows / max(cols, 1)))
         ax = fig.add_axes([0, 0, 1, 1])
         ax.imshow(img, cmap="gray", vmin=0, vmax=255, interpolation="nearest", extent=(0, cols, rows, 0))
+        from matplotlib import patheffects
+
         halo = [patheffects.Stroke(linewidth=2.6, foreground="white"), patheffects.Normal()]
         for g in np.flatnonzero(gf == f):
             if ends[g] - starts[g] < 2:

@@ -264,8 +264,13 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     markers = np.zeros(arr.shape, np.int32)
     markers[outside > w] = 1
     markers[seeds] = 2
-    ws = watershed(sobel(arr), markers)
-    return ndi.binary_fill_holes(ws == 2)
+    # Flood only the undecided band and the marker pixels touching it: a marker pixel with no
+    # undecided neighbour never labels anything, but scikit-image would queue every one of them
+    # (most of the frame). With this mask the result is the same and the queue holds ~10x fewer pixels.
+    band = markers == 0
+    near_band = ndi.binary_dilation(band, structure=ndi.generate_binary_structure(2, 1))
+    ws = watershed(sobel(arr), np.where(near_band, markers, 0), mask=near_band)
+    return ndi.binary_fill_holes(seeds | (ws == 2))
 
 
 def concavity_depth(mask: np.ndarray) -> float:

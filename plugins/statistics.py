@@ -30,7 +30,11 @@ import warnings
 from typing import Callable, NamedTuple
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
+
+from pipeline.lazy import lazy_module
+
+stats = lazy_module("scipy.stats")  # imported on first use (about 0.3 s): dask workers never need it
 
 #: Habit vocabulary in the order of the design contract.
 HABITS = (

@@ -15,12 +15,14 @@ from __future__ import annotations
 import zlib
 
 import numpy as np
-import xarray as xr
 
 from pipeline import hookimpl
+from pipeline.lazy import lazy_module
 from pipeline.params import Param, StepInfo
 
 from . import statistics as st
+
+xr = lazy_module("xarray")  # imported on first use: workers never need it
 
 GRAINHABIT_API = 1
 

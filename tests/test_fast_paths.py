@@ -1,0 +1,131 @@
+"""Speed-ups that must not change results: each fast path against its reference.
+
+References named beside each check: scipy.signal (Savitzky-Golay
+coefficients), scikit-image's watershed without a mask (the band-only
+flood), numpy's per-mask medians (the sorted grouping of the noise model).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+from scipy.signal import savgol_coeffs
+
+from plugins import benchutil as bu
+from plugins import preprocess as pp
+from plugins import segment as sg
+from plugins.outline import savgol_smoothing_coefficients
+
+from conftest import REPO
+
+
+@pytest.mark.parametrize("window,order", [(3, 1), (5, 2), (7, 3), (9, 2), (11, 4), (15, 3)])
+def test_savgol_coefficients_match_scipy(window, order):
+    # reference library: scipy.signal.savgol_coeffs (smoothing, deriv 0, centre position)
+    np.testing.assert_allclose(savgol_smoothing_coefficients(window, order), savgol_coeffs(window, order),
+                               atol=1e-12)
+
+
+def _full_frame_foreground(arr, levels, w=3.0):
+    """The refinement flooded over the whole frame, as scikit-image's watershed does without a mask."""
+    from skimage.filters import sobel
+    from skimage.morphology import disk
+    from skimage.segmentation import watershed
+
+    fg = arr > levels["noise"]
+    pad = ndi.binary_closing(np.pad(fg, 2, mode="edge"), structure=disk(2), border_value=0)
+    fg = ndi.binary_fill_holes(pad[2:-2, 2:-2])
+    inside = ndi.distance_transform_edt(fg)
+    seeds = inside > w
+    comp, n = ndi.label(fg, structure=np.ones((3, 3), bool))
+    deepest = ndi.maximum(inside, comp, index=np.arange(1, n + 1))
+    thin = np.zeros(n + 1, bool)
+    thin[1:] = deepest <= w
+    seeds |= thin[comp] & (inside >= np.concatenate([[np.inf], deepest])[comp])
+    markers = np.zeros(arr.shape, np.int32)
+    markers[ndi.distance_transform_edt(~fg) > w] = 1
+    markers[seeds] = 2
+    return ndi.binary_fill_holes(watershed(sobel(arr), markers) == 2)
+
+
+@pytest.mark.parametrize("seed", [0, 5])
+def test_band_only_refinement_equals_full_frame_watershed(seed):
+    # reference library: skimage.segmentation.watershed over the whole frame (no mask)
+    raw = bu.render_frames(1, 384, grains=12, seed=seed)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    levels = sg.frame_levels(arr)
+    fast = sg.foreground(arr, bu.PIXEL_SIZE_NM, levels)
+    assert fast.any()
+    np.testing.assert_array_equal(fast, _full_frame_foreground(arr, levels))
+
+
+def test_noise_model_recovers_poisson_gaussian_parameters():
+    # worked example: var(I) = a I + b with known a, b on a ramp; the grouped medians must find them
+    rng = np.random.default_rng(3)
+    a, b = 0.002, 0.0004
+    clean = np.tile(np.linspace(0.1, 0.9, 512), (512, 1))
+    noisy = clean + rng.normal(0, 1, clean.shape) * np.sqrt(a * clean + b)
+    est_a, est_b = pp.noise_model(noisy)
+    assert est_a == pytest.approx(a, rel=0.1)
+    assert est_b == pytest.approx(b, rel=0.25)
+
+
+def test_regular_subsample_bounds():
+    img = np.zeros((768, 1000))
+    for n in (1000, 300_000, 10**7):
+        sub = pp.regular_subsample(img, n)
+        assert sub.size <= max(n, 1) * 1.01 or sub.size == img.size
+        assert sub.size >= min(img.size, n) / 4.5
+    assert pp.regular_subsample(img, 10**7) is img or pp.regular_subsample(img, 10**7).base is img
+
+
+def test_worker_host_imports_no_survey_libraries():
+    # a dask worker builds the host but runs only frame steps: xarray, matplotlib and scipy.stats stay unloaded
+    code = ("import sys, json; from pipeline.manager import worker_host; from pipeline.task import process_frame; "
+            "h = worker_host(()); "
+            "loaded = [m for m in ('xarray', 'matplotlib', 'scipy.stats', 'scipy.signal', 'pandas') "
+            "if m in sys.modules and type(sys.modules[m]).__name__ != '_LazyModule']; "
+            "print(json.dumps({'loaded': loaded, 'hooks': len(h.pm.get_plugins())}))")
+    env = dict(os.environ, GRAINHABIT_NO_AUTOLOAD="1")
+    res = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=env, capture_output=True, text=True,
+                         check=True)
+    out = json.loads(res.stdout.strip().splitlines()[-1])
+    assert out["loaded"] == [] and out["hooks"] >= 15
+
+
+def test_lazy_module_loads_on_first_attribute():
+    from pipeline.lazy import lazy_module
+
+    name = "json.tool"
+    sys.modules.pop(name, None)
+    mod = lazy_module(name)
+    assert sys.modules[name] is mod
+    assert callable(mod.main)  # first attribute read imports it
+    with pytest.raises(ModuleNotFoundError):
+        lazy_module("grainhabit_no_such_module_xyz")
+
+
+def _malloc_env():
+    return os.environ.get("MALLOC_TRIM_THRESHOLD_")
+
+
+def test_local_workers_keep_glibc_malloc_thresholds(monkeypatch):
+    # dask's nanny default MALLOC_TRIM_THRESHOLD_=65536 fixes glibc's mmap threshold and slowed the kernels
+    # 25-45 % in workers; the local cluster leaves it unset unless the environment sets it
+    from pipeline.executors import DaskExecutor
+
+    monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_", raising=False)
+    ex = DaskExecutor(workers=1)
+    ex.start()
+    try:
+        seen = list(ex.client.run(_malloc_env).values())
+    finally:
+        ex.close()
+    assert seen == [None]
+    assert "MALLOC_TRIM_THRESHOLD_" not in os.environ  # nor left behind in this process
