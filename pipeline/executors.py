@@ -9,6 +9,9 @@
   zeroed again; on the development machine the same kernels then ran 25-45 %
   slower in a worker than in a plain loop (``grainhabit bench throughput``).
   A ``MALLOC_TRIM_THRESHOLD_`` set in the environment is still passed on.
+  Its workers also run without dask's statistical profiler (a thread that
+  samples the running task's stack 100 times a second for the dashboard,
+  which a headless run has not got).
 - ``tcp://HOST:PORT``: an existing cluster, e.g. started with
   ``dask scheduler`` and ``dask worker``. Plugin files named in the
   workflow's ``plugins:`` list are shipped with ``Client.upload_file``;
@@ -103,7 +106,8 @@ class DaskExecutor:
             # worker holds only the frames it is running, so a dying worker takes no innocent frame with it
             if "MALLOC_TRIM_THRESHOLD_" not in os.environ:
                 dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None})
-            dask.config.set({"distributed.scheduler.allowed-failures": 1,
+            dask.config.set({"distributed.worker.profile.enabled": False,
+                             "distributed.scheduler.allowed-failures": 1,
                              "distributed.scheduler.worker-saturation": 1.0,
                              "distributed.worker.daemon": False})
             self.cluster = LocalCluster(n_workers=n, threads_per_worker=self.threads, processes=True,

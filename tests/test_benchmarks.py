@@ -73,6 +73,15 @@ def test_serial_loop_runs_the_default_chain(tmp_path, tiny_images):
     assert all(v >= 0 for v in a["stages"].values()) and a["wall"] >= sum(a["stages"].values()) * 0.99
 
 
+def test_ceiling_case_runs_disjoint_shares_at_once(tmp_path, tiny_images):
+    paths = bu.write_frames(tmp_path / "d", tiny_images[:1], 3)
+    d = bench_throughput.ceiling_case(paths, 2)
+    assert d["frames"] == 3 and d["copies"] == 2 and len(d["loops"]) == 2
+    assert d["pixels"] == 3 * 160 * 160 and d["grains"] >= 3
+    # the span covers the slower copy, and no more than the two copies one after the other
+    assert max(d["loops"]) * 0.99 <= d["wall"] <= sum(d["loops"]) + 1.0
+
+
 def test_run_clock_times_a_serial_run(tmp_path, tiny_images):
     from pipeline.manager import make_host
     from pipeline.runner import run
