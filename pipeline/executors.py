@@ -39,6 +39,7 @@ class SerialExecutor:
 
     n_workers = 1
     description = "serial (in-process)"
+    advice: tuple = ()
 
     def start(self) -> None:
         pass
@@ -90,6 +91,7 @@ class DaskExecutor:
         self.cluster = None
         self.n_workers = 0
         self.description = ""
+        self.advice: list[str] = []
 
     def start(self) -> None:
         import dask
@@ -118,6 +120,8 @@ class DaskExecutor:
             self.description = f"local cluster ({n} worker processes x {self.threads} thread)"
         for path in self.upload:
             self.client.upload_file(path)
+        if self.address:
+            self.advice = worker_advice(self.client.run(_worker_settings))
 
     def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
         from distributed import as_completed
@@ -165,6 +169,41 @@ class DaskExecutor:
             except Exception:
                 pass
         self.client = self.cluster = None
+
+
+def _worker_settings() -> dict:
+    """Settings of this worker process that slow the kernels down (run on each worker)."""
+    import dask
+
+    return {"malloc_trim": os.environ.get("MALLOC_TRIM_THRESHOLD_"),
+            "profile": bool(dask.config.get("distributed.worker.profile.enabled", False))}
+
+
+def worker_advice(settings: dict) -> list[str]:
+    """One warning line per slowing setting found on the workers of a remote cluster.
+
+    Parameters
+    ----------
+    settings : dict
+        Worker address -> :func:`_worker_settings` of that worker.
+
+    Returns
+    -------
+    list of str
+        Empty when no worker has dask's ``MALLOC_TRIM_THRESHOLD_`` or its
+        statistical profiler on.
+    """
+    trim = sorted(a for a, s in settings.items() if s.get("malloc_trim"))
+    prof = sorted(a for a, s in settings.items() if s.get("profile"))
+    out = []
+    if trim:
+        out.append(f"{len(trim)} of {len(settings)} workers run with MALLOC_TRIM_THRESHOLD_ set (dask's nanny "
+                   "default), which made the kernels 25-45 % slower on our test machine; see DEVELOPERS.md, "
+                   "'Keeping workers fast'")
+    if prof:
+        out.append(f"{len(prof)} of {len(settings)} workers run dask's statistical profiler; "
+                   "distributed.worker.profile.enabled: false saves its sampling (DEVELOPERS.md)")
+    return out
 
 
 def make_executor(execution: dict, upload=()) -> SerialExecutor | DaskExecutor:

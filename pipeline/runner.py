@@ -189,6 +189,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
             executor = make_executor(plan.config["execution"], upload=upload)
             executor.start()
             log.info("processing %d frames on %s", len(todo), executor.description)
+            for line in executor.advice:
+                log.warning("%s", line)
             progress = Progress(len(todo), log, tty=tty)
             by_key = {}
             try:

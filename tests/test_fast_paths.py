@@ -129,3 +129,14 @@ def test_local_workers_keep_glibc_malloc_thresholds(monkeypatch):
         ex.close()
     assert seen == [None]
     assert "MALLOC_TRIM_THRESHOLD_" not in os.environ  # nor left behind in this process
+
+
+def test_worker_advice_names_slowing_settings():
+    from pipeline.executors import worker_advice
+
+    assert worker_advice({"a": {"malloc_trim": None, "profile": False}}) == []
+    lines = worker_advice({"a": {"malloc_trim": "65536", "profile": True}, "b": {"malloc_trim": None,
+                                                                             "profile": True}})
+    assert len(lines) == 2
+    assert lines[0].startswith("1 of 2 workers run with MALLOC_TRIM_THRESHOLD_")
+    assert lines[1].startswith("2 of 2 workers run dask's statistical profiler")

@@ -287,6 +287,8 @@ def test_distributed_run_equals_local_run(tmp_path, dask_cluster):
     res = run_cli("run", wf(tmp_path, "dist.yaml", results="dist/r.zarr"), "--scheduler", dask_cluster)
     assert res.returncode == 0, res.stderr
     assert f"cluster {dask_cluster} (2 workers)" in res.stderr
+    # workers started with dask's defaults get the advice on their slowing settings
+    assert "2 of 2 workers run with MALLOC_TRIM_THRESHOLD_ set" in res.stderr
     xr.testing.assert_identical(grains_of(tmp_path / "serial" / "r.zarr"), grains_of(tmp_path / "dist" / "r.zarr"))
     frames = xr.open_zarr(tmp_path / "dist" / "r.zarr", group="frames").load()
     assert set(frames["status"].values.tolist()) == {"ok"}
