@@ -746,9 +746,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     zup = heights(g_up, z_up)
     ztop = zup.min(axis=0)                                                   # (c, p)
     if interior.mode == "facets":
-        idx = np.zeros((c, p), np.intp)
-        for j in range(m - 1, -1, -1):                    # lowest plane, first index on ties
-            idx[zup[j] == ztop] = j
+        idx = zup.argmin(axis=0)                          # lowest plane, first index on ties
         wt = np.ones((c, p))
         scale = np.ones(c)
         if m > 1 and edge_px > 0:
