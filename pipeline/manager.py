@@ -47,6 +47,7 @@ DEFAULT_PLUGINS = (
     "plugins.bench_habit",
     "plugins.bench_throughput",
     "plugins.bench_memory",
+    "plugins.bench_profile",
 )
 
 #: Step used for a stage when the workflow names none. Stages missing here
