@@ -33,14 +33,23 @@ def test_savgol_coefficients_match_scipy(window, order):
 
 
 def _full_frame_foreground(arr, levels, w=3.0):
-    """The refinement flooded over the whole frame, as scikit-image's watershed does without a mask."""
+    """The refinement flooded over the whole frame, as scikit-image's watershed does without a mask.
+
+    The lines between separate thresholded components (kept open by the closing, background seeds of
+    the flood) are taken from scikit-image: the thick boundaries of the components grown to their
+    nearest-label regions (``expand_labels``, ``find_boundaries``), off the thresholded mask.
+    """
     from skimage.filters import sobel
     from skimage.morphology import disk
-    from skimage.segmentation import watershed
+    from skimage.segmentation import expand_labels, find_boundaries, watershed
 
     fg = arr > levels["noise"]
+    comp, _ = ndi.label(fg, structure=np.ones((3, 3), bool))
+    area = np.bincount(comp.ravel())
+    comp[area[comp] < sg.GAP_MIN_AREA_PX] = 0
+    gaps = find_boundaries(expand_labels(comp, sum(arr.shape)), connectivity=1, mode="thick") & ~fg
     pad = ndi.binary_closing(np.pad(fg, 2, mode="edge"), structure=disk(2), border_value=0)
-    fg = ndi.binary_fill_holes(pad[2:-2, 2:-2])
+    fg = ndi.binary_fill_holes(pad[2:-2, 2:-2] & ~gaps)
     inside = ndi.distance_transform_edt(fg)
     seeds = inside > w
     comp, n = ndi.label(fg, structure=np.ones((3, 3), bool))
@@ -49,7 +58,7 @@ def _full_frame_foreground(arr, levels, w=3.0):
     thin[1:] = deepest <= w
     seeds |= thin[comp] & (inside >= np.concatenate([[np.inf], deepest])[comp])
     markers = np.zeros(arr.shape, np.int32)
-    markers[ndi.distance_transform_edt(~fg) > w] = 1
+    markers[(ndi.distance_transform_edt(~fg) > w) | gaps] = 1
     markers[seeds] = 2
     return ndi.binary_fill_holes(watershed(sobel(arr), markers) == 2)
 

@@ -285,3 +285,63 @@ def test_faint_grain_found_by_noise_threshold_not_by_otsu():
     assert iou > 0.9
     otsu = run_chain(raw, seg_params={"threshold": "otsu"})
     assert best_iou(otsu.labels, faint)[1] < 0.5
+
+
+def squares_apart(gap, half=25, seed=12):
+    """Two axis-aligned squares of side ``2 * half`` px, ``gap`` px apart face to face, on a noisy ramp."""
+    raw, _ = draw_frame((130, 4 * half + gap + 120), grains=(), seed=seed)
+    truth = np.zeros(raw.shape, np.int32)
+    c1 = 60 + half
+    for k, c in enumerate((c1, c1 + 2 * half + gap), 1):
+        truth[65 - half:65 + half, c - half:c + half] = k
+    raw = raw + ndi.gaussian_filter(np.where(truth > 0, 0.7, 0.0), 1.0).astype(np.float32)
+    return raw, truth
+
+
+@pytest.mark.parametrize("gap", [7, 8])
+def test_grains_a_few_pixels_apart_stay_apart(gap):
+    # the thresholded mask keeps a gap of a few px between the squares; the closing must not
+    # bridge it (a bridge makes one rectangle, or a split that keeps the gap pixels)
+    raw, truth = squares_apart(gap)
+    assert np.nonzero(truth == 2)[1].min() - np.nonzero(truth == 1)[1].max() - 1 == gap
+    out = run_chain(raw)
+    assert out.n_grains == 2
+    assert not out.grains["split"].any()  # apart from the start, not merged and cut again
+    for k in (1, 2):
+        assert best_iou(out.labels, truth == k)[1] > 0.97
+
+
+def test_gap_lines_match_skimage_nearest_label_boundaries():
+    # reference library: scikit-image expand_labels (nearest label by Euclidean distance) and
+    # find_boundaries (thick, 4-neighbours), off the mask; specks under GAP_MIN_AREA_PX take no part
+    from skimage.segmentation import expand_labels, find_boundaries
+
+    rng = np.random.default_rng(13)
+    blobs = ndi.binary_dilation(rng.random((200, 240)) > 0.998, iterations=5)
+    specks = rng.random(blobs.shape) > 0.997
+    mask = blobs | specks
+    comp, _ = ndi.label(mask, structure=np.ones((3, 3), bool))
+    area = np.bincount(comp.ravel())
+    comp[area[comp] < segment.GAP_MIN_AREA_PX] = 0
+    ref = find_boundaries(expand_labels(comp, 1000), connectivity=1, mode="thick") & ~mask
+    assert ref.any()
+    np.testing.assert_array_equal(segment.gap_lines(mask), ref)
+
+
+def test_short_neck_is_cut_between_its_concavities():
+    # handbook geometry: equal discs (R = 30 px, centres d = 58 px apart) cross on the chord
+    # x = d / 2, of length 2 sqrt(R^2 - d^2 / 4) = 15.4 px; the cut's end points lie on the
+    # outline, so only the pixels between them must be inside
+    R, d = 30.0, 58.0
+    mask = np.zeros((80, 150), bool)
+    mask[disk((40, 40), R, shape=mask.shape)] = True
+    mask[disk((40, 40 + d), R, shape=mask.shape)] = True
+    (p, _), (q, _) = segment.convexity_defects(mask, 2.0)
+    assert abs(p[0] - q[0]) == pytest.approx(2 * np.sqrt(R * R - d * d / 4), abs=1.0)
+    parts = segment._cut(mask, p, q, 50.0)
+    assert parts is not None and len(parts) == 2
+    lens = 2 * R * R * np.arccos(d / (2 * R)) - d / 2 * np.sqrt(4 * R * R - d * d)
+    for part in parts:
+        assert part.sum() == pytest.approx((2 * np.pi * R * R - lens) / 2, rel=0.02)
+        cols = np.nonzero(part)[1]
+        assert min(abs(cols.max() - (40 + d / 2)), abs(cols.min() - (40 + d / 2))) <= 1.5
