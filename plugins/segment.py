@@ -10,8 +10,11 @@
    ``close_nm`` bridges facet lines that reach the outline, every hole is
    filled, so inner facet edges (bright or dark lines) never split a grain.
    The closing never crosses the lines of the discrete Voronoi diagram of
-   the thresholded components (:func:`gap_lines`): grains a few pixels
-   apart stay apart. The outline is then moved, within a band of
+   the grain cores (connected pixels above ``gap_level``, and thresholded
+   components without such a core; :func:`gap_lines`), which run through
+   the background and, up to 4 px from a core, through the dim pixels that
+   blur and the low noise threshold add between near grains: with a blur
+   of about 1 px, grains 4 px or more apart stay apart. The outline is then moved, within a band of
    ``refine_nm`` on either side, to the ridge of the gradient magnitude by
    a two-marker watershed (the half-height point of a blurred step edge;
    close to the foot of a soft, thickness-graded edge), which keeps the ECD
@@ -74,7 +77,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="1.0",
+    version="1.1",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "noise", choices=("noise", "otsu", "local", "sauvola"),
@@ -91,6 +94,8 @@ STEP = StepInfo(
               doc="Radius of the closing that bridges facet lines at the outline; unset means 2 pixels."),
         Param("refine_nm", float, None, unit="nm", low=0.0,
               doc="Half-width of the band where outlines snap to the largest gradient; unset means 3 pixels, 0 off."),
+        Param("gap_level", float, 0.25, low=0.0,
+              doc="Grains whose cores above this level (image units, grains about 1) are a few pixels apart stay apart."),
         Param("split", bool, True, doc="Split touching grains by watershed."),
         Param("split_depth", float, 0.08, low=0.0, high=1.0,
               doc="Concavity depth, as a fraction of the equal-area radius, above which a component is split."),
@@ -123,6 +128,8 @@ PART_SLACK = 2.0
 MAX_FOREGROUND = 0.95
 #: Components of the thresholded mask smaller than this (pixels) are specks, not grains kept apart.
 GAP_MIN_AREA_PX = 20
+#: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
+GAP_REACH_PX = 4.0
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -197,7 +204,8 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
 
 def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: str = "noise",
                local_block_nm: float = 2000.0, local_offset: float = 0.0,
-               close_nm: float | None = None, refine_nm: float | None = None) -> np.ndarray:
+               close_nm: float | None = None, refine_nm: float | None = None,
+               gap_level: float = 0.25) -> np.ndarray:
     """Foreground mask with grain extent from outlines only.
 
     Parameters
@@ -221,6 +229,9 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     refine_nm : float or None
         Half-width of the band in which outlines are moved to the largest
         intensity gradient; None means 3 pixels, 0 turns refinement off.
+    gap_level : float
+        Level of the grain cores (image units, background 0, grains about
+        1) between which near grains are kept apart (see :func:`gap_lines`).
 
     Returns
     -------
@@ -255,13 +266,13 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
         fg = arr > np.maximum(t, levels["noise"])
     else:
         raise ValueError(f"threshold must be 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
-    gaps = gap_lines(fg)
+    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]))
     r = int(round(2.0 if close_nm is None else close_nm / pixel_size_nm))
     if r >= 1:
         pad = np.pad(fg, r, mode="edge")
         pad = ndi.binary_closing(pad, structure=disk(r), border_value=0)
-        fg = pad[r:-r, r:-r] & ~gaps
-    fg = ndi.binary_fill_holes(fg)
+        fg = pad[r:-r, r:-r]
+    fg = ndi.binary_fill_holes(fg & ~gaps)
     w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
     if w < 1 or not fg.any():
         return fg
@@ -287,13 +298,21 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     return ndi.binary_fill_holes(seeds | (ws == 2))
 
 
-def gap_lines(mask: np.ndarray, min_area_px: int = GAP_MIN_AREA_PX) -> np.ndarray:
-    """Background pixels on the dividing lines between separate components.
+def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_PX,
+              min_area_px: int = GAP_MIN_AREA_PX) -> np.ndarray:
+    """Pixels on the dividing lines between grains that do not touch.
 
     Parameters
     ----------
     mask : ndarray of bool, shape (rows, cols)
         Thresholded frame (before any closing).
+    cores : ndarray of bool, shape (rows, cols)
+        Pixels well above the background (``image > gap_level``), a subset
+        of ``mask``.
+    reach_px : float
+        Inside ``mask`` a line is kept only up to this distance (px) from
+        the nearest core: a gap up to about twice as wide that the noise
+        threshold filled.
     min_area_px : int
         Components smaller than this (pixels; noise specks next to a grain)
         take no part.
@@ -301,33 +320,45 @@ def gap_lines(mask: np.ndarray, min_area_px: int = GAP_MIN_AREA_PX) -> np.ndarra
     Returns
     -------
     ndarray of bool, shape (rows, cols)
-        Pixels outside ``mask`` where the nearest component (Euclidean
+        Pixels outside every core where the nearest body (Euclidean
         distance) changes between 4-neighbours: the lines of the discrete
-        Voronoi diagram of the components, two pixels wide, so they also
-        cut 8-connected paths.
+        Voronoi diagram of the bodies, two pixels wide, so they also cut
+        8-connected paths. The bodies are the connected cores and the
+        components of ``mask`` that hold no core (faint grains).
 
     Notes
     -----
-    Two grains a few pixels apart are separated by background in the
-    thresholded mask, but a closing bridges a gap narrower than its
-    diameter and the outline refinement has no background seed in it. The
-    closing is therefore kept off these lines and the refinement floods the
-    background from them, so grains that do not touch stay apart, while
-    facet lines that notch a grain from its outline are still bridged. The
-    nearest component comes from the Euclidean distance transform with
-    feature indices [4]_.
+    A closing bridges a gap narrower than its diameter, and the outline
+    refinement has no background seed in it; the noise threshold, a few
+    background sigmas up, fills a gap of a few pixels between two blurred
+    grains by itself. The bright cores of two such grains stay apart, and
+    the pixels between them, dimmer than ``gap_level``, are background
+    that the blur lifted. The closing is kept off these lines and the
+    refinement floods the background from them, so grains that do not touch
+    stay apart; facet lines that notch a grain from its outline are still
+    bridged, and a dark facet line across a grain (blurred, it keeps most
+    of the grain level) never drops below ``gap_level``. The nearest body
+    comes from the Euclidean distance transform with feature indices [4]_.
     """
-    comp, n = ndi.label(mask, structure=_EIGHT)
-    if n < 2:
+    cores = cores & mask
+    comp, n = ndi.label(cores, structure=_EIGHT)
+    faint, n_faint = ndi.label(mask, structure=_EIGHT)
+    if n + n_faint < 2:
         return np.zeros(mask.shape, bool)
-    area = np.bincount(comp.ravel())
+    # components of the mask without a core are bodies of their own
+    has_core = np.zeros(n_faint + 1, bool)
+    has_core[np.unique(faint[cores])] = True
+    has_core[0] = True  # the background is no body
+    faint = np.where(has_core[faint], 0, faint + n)
+    bodies = np.where(cores, comp, faint)
+    area = np.bincount(bodies.ravel())
     keep = area >= min_area_px
     keep[0] = False
     if keep.sum() < 2:
         return np.zeros(mask.shape, bool)
-    comp = np.where(keep[comp], comp, 0)
-    _, (ri, ci) = ndi.distance_transform_edt(comp == 0, return_indices=True)
-    nearest = comp[ri, ci]
+    bodies = np.where(keep[bodies], bodies, 0)
+    dist, (ri, ci) = ndi.distance_transform_edt(bodies == 0, return_indices=True)
+    nearest = bodies[ri, ci]
     out = np.zeros(mask.shape, bool)
     down = nearest[1:, :] != nearest[:-1, :]
     right = nearest[:, 1:] != nearest[:, :-1]
@@ -335,7 +366,7 @@ def gap_lines(mask: np.ndarray, min_area_px: int = GAP_MIN_AREA_PX) -> np.ndarra
     out[:-1, :] |= down
     out[:, 1:] |= right
     out[:, :-1] |= right
-    return out & ~mask
+    return out & (dist > 0) & (~mask | (dist <= reach_px))
 
 
 def concavity_depth(mask: np.ndarray) -> float:
@@ -605,7 +636,8 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
 
 def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, method: str = "noise",
                  local_block_nm: float = 2000.0, local_offset: float = 0.0, min_ecd_nm: float = 40.0,
-                 close_nm: float | None = None, refine_nm: float | None = None, split: bool = True,
+                 close_nm: float | None = None, refine_nm: float | None = None, gap_level: float = 0.25,
+                 split: bool = True,
                  split_depth: float = 0.08) -> tuple[np.ndarray, np.ndarray, dict]:
     """Label grains in one image (a whole frame or one tile).
 
@@ -617,7 +649,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         Pixel side in nm.
     levels : dict
         Frame-wide levels (see :func:`frame_levels`).
-    method, local_block_nm, local_offset, close_nm, refine_nm
+    method, local_block_nm, local_offset, close_nm, refine_nm, gap_level
         See :func:`foreground`.
     min_ecd_nm : float
         Minimum equivalent circle diameter ``sqrt(4 A / pi)`` in nm.
@@ -638,7 +670,8 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     arr = _check_image(image)
     if not np.isfinite(pixel_size_nm) or pixel_size_nm <= 0:
         raise ValueError(f"pixel_size_nm must be positive, got {pixel_size_nm!r}")
-    fg = foreground(arr, pixel_size_nm, levels, method, local_block_nm, local_offset, close_nm, refine_nm)
+    fg = foreground(arr, pixel_size_nm, levels, method, local_block_nm, local_offset, close_nm, refine_nm,
+                    gap_level)
     above = arr > levels["noise"]
     min_area = np.pi / 4.0 * (min_ecd_nm / pixel_size_nm) ** 2
     comp, n = ndi.label(fg, structure=_EIGHT)
@@ -734,8 +767,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
                          "common level is not background; no background to separate grains from "
                          "(check polarity and threshold)")
     kw = dict(method=p["threshold"], local_block_nm=p["local_block_nm"], local_offset=p["local_offset"],
-              min_ecd_nm=p["min_ecd_nm"], close_nm=p["close_nm"], refine_nm=p["refine_nm"], split=p["split"],
-              split_depth=p["split_depth"])
+              min_ecd_nm=p["min_ecd_nm"], close_nm=p["close_nm"], refine_nm=p["refine_nm"],
+              gap_level=p["gap_level"], split=p["split"], split_depth=p["split_depth"])
 
     def func(tile):
         return label_grains(tile, pixel_size_nm, levels, **kw)

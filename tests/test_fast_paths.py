@@ -35,19 +35,26 @@ def test_savgol_coefficients_match_scipy(window, order):
 def _full_frame_foreground(arr, levels, w=3.0):
     """The refinement flooded over the whole frame, as scikit-image's watershed does without a mask.
 
-    The lines between separate thresholded components (kept open by the closing, background seeds of
-    the flood) are taken from scikit-image: the thick boundaries of the components grown to their
-    nearest-label regions (``expand_labels``, ``find_boundaries``), off the thresholded mask.
+    The lines between grains that do not touch (kept open by the closing, background seeds of the
+    flood) are taken from scikit-image: the thick boundaries of the bodies (cores above 0.25, and
+    thresholded components without a core) grown to their nearest-label regions (``expand_labels``,
+    ``find_boundaries``), outside the bodies, and inside the thresholded mask only near a body.
     """
     from skimage.filters import sobel
     from skimage.morphology import disk
     from skimage.segmentation import expand_labels, find_boundaries, watershed
 
     fg = arr > levels["noise"]
-    comp, _ = ndi.label(fg, structure=np.ones((3, 3), bool))
-    area = np.bincount(comp.ravel())
-    comp[area[comp] < sg.GAP_MIN_AREA_PX] = 0
-    gaps = find_boundaries(expand_labels(comp, sum(arr.shape)), connectivity=1, mode="thick") & ~fg
+    cores = arr > max(0.25, levels["noise"])
+    comp, n = ndi.label(cores, structure=np.ones((3, 3), bool))
+    whole, _ = ndi.label(fg, structure=np.ones((3, 3), bool))
+    faint = np.isin(whole, np.unique(whole[cores]), invert=True) & fg
+    bodies = np.where(cores, comp, np.where(faint, whole + n, 0))
+    area = np.bincount(bodies.ravel())
+    bodies[area[bodies] < sg.GAP_MIN_AREA_PX] = 0
+    near = ndi.distance_transform_edt(bodies == 0) <= sg.GAP_REACH_PX
+    gaps = find_boundaries(expand_labels(bodies, sum(arr.shape)), connectivity=1, mode="thick")
+    gaps &= (bodies == 0) & (~fg | near)
     pad = ndi.binary_closing(np.pad(fg, 2, mode="edge"), structure=disk(2), border_value=0)
     fg = ndi.binary_fill_holes(pad[2:-2, 2:-2] & ~gaps)
     inside = ndi.distance_transform_edt(fg)
