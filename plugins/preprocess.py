@@ -162,11 +162,42 @@ def noise_model(image: np.ndarray, n_bins: int = 16) -> tuple[float, float]:
         variances.append((1.4826 * mad) ** 2)
     if len(means) < 2:
         return 0.0, float(np.var(d))
-    from scipy.optimize import nnls
+    a, b = nonnegative_line(np.asarray(means), np.asarray(variances))
+    return a, b
 
-    A = np.column_stack([means, np.ones(len(means))])
-    (a, b), _ = nnls(A, np.asarray(variances))
-    return float(a), float(b)
+
+def nonnegative_line(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
+    """Least-squares line ``y = a x + b`` with ``a, b >= 0`` (non-negative least squares, two unknowns).
+
+    Parameters
+    ----------
+    x, y : ndarray, shape (k,)
+
+    Returns
+    -------
+    a, b : float
+
+    Notes
+    -----
+    With two unknowns the solution is the unconstrained fit if both are
+    non-negative, else the better of the two one-parameter fits with the other
+    held at 0 (each clipped at 0): the answer of ``scipy.optimize.nnls`` [1]_
+    (tested against it), without importing ``scipy.optimize`` in every worker
+    (0.2 s).
+
+    References
+    ----------
+    .. [1] C. L. Lawson and R. J. Hanson, "Solving Least Squares Problems",
+       Prentice-Hall, 1974, chapter 23.
+    """
+    x, y = np.asarray(x, float), np.asarray(y, float)
+    A = np.column_stack([x, np.ones_like(x)])
+    (a, b), *_ = np.linalg.lstsq(A, y, rcond=None)
+    if a >= 0 and b >= 0:
+        return float(a), float(b)
+    xx = float(x @ x)
+    cands = [(max(float(x @ y) / xx, 0.0) if xx > 0 else 0.0, 0.0), (0.0, max(float(y.mean()), 0.0))]
+    return min(cands, key=lambda ab: float(np.sum((y - ab[0] * x - ab[1]) ** 2)))
 
 
 def anscombe(image: np.ndarray, a: float, b: float) -> np.ndarray:
@@ -223,8 +254,13 @@ def noise_sigma(image: np.ndarray) -> float:
        wavelet shrinkage", Biometrika 81(3), 425-455, 1994,
        doi:10.1093/biomet/81.3.425
     """
+    import importlib.util
+
     arr = np.asarray(image, float)
     try:
+        # without PyWavelets, skip scikit-image's estimator (its module imports scipy.stats, 0.4 s per worker)
+        if importlib.util.find_spec("pywt") is None:
+            raise ImportError("PyWavelets is not installed")
         from skimage.restoration import estimate_sigma
 
         return float(estimate_sigma(arr))
@@ -253,8 +289,6 @@ def denoise(image: np.ndarray, method: str = "gaussian", sigma_px: float = 1.0) 
     noise_sigma : float
         Noise standard deviation in the stabilised domain (:func:`noise_sigma`).
     """
-    from skimage.restoration import denoise_bilateral, denoise_nl_means
-
     arr = _check_image(image)
     if method not in ("gaussian", "bilateral", "nlmeans", "none"):
         raise ValueError(f"unknown denoise method {method!r}")
@@ -267,11 +301,16 @@ def denoise(image: np.ndarray, method: str = "gaussian", sigma_px: float = 1.0) 
     elif method == "gaussian":
         out = ndi.gaussian_filter(work, sigma_px, mode="nearest")
     elif method == "bilateral":
+        # imported here: scikit-image's denoisers import scipy.stats (0.4 s in a fresh worker)
+        from skimage.restoration import denoise_bilateral
+
         lo, hi = float(work.min()), float(work.max())
         span = hi - lo if hi > lo else 1.0
         out = denoise_bilateral((work - lo) / span, sigma_color=max(2.0 * sigma / span, 1e-3),
                                 sigma_spatial=max(sigma_px, 0.5)) * span + lo
     else:
+        from skimage.restoration import denoise_nl_means
+
         out = denoise_nl_means(work, h=0.8 * sigma, sigma=sigma, patch_size=5,
                                patch_distance=6, fast_mode=True)
     if use_vst:

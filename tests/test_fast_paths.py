@@ -101,11 +101,15 @@ def test_regular_subsample_bounds():
     assert pp.regular_subsample(img, 10**7) is img or pp.regular_subsample(img, 10**7).base is img
 
 
-def test_worker_host_imports_no_survey_libraries():
-    # a dask worker builds the host but runs only frame steps: xarray, matplotlib and scipy.stats stay unloaded
+def test_worker_host_imports_no_survey_libraries(tmp_path):
+    # a dask worker builds the host and runs the default frame chain: xarray, matplotlib, scipy.stats,
+    # scipy.signal and scipy.optimize (about 2 s of imports together) stay unloaded
+    frame = bu.write_frames(tmp_path / "d", bu.render_frames(1, 192, grains=4, seed=2))[0]
     code = ("import sys, json; from pipeline.manager import worker_host; from pipeline.task import process_frame; "
-            "h = worker_host(()); "
-            "loaded = [m for m in ('xarray', 'matplotlib', 'scipy.stats', 'scipy.signal', 'pandas') "
+            "h = worker_host(()); from plugins.bench_throughput import serial_loop; "
+            f"serial_loop([{str(frame)!r}]); "
+            "loaded = [m for m in ('xarray', 'matplotlib', 'scipy.stats', 'scipy.signal', 'scipy.optimize', "
+            "'pandas') "
             "if m in sys.modules and type(sys.modules[m]).__name__ != '_LazyModule']; "
             "print(json.dumps({'loaded': loaded, 'hooks': len(h.pm.get_plugins())}))")
     env = dict(os.environ, GRAINHABIT_NO_AUTOLOAD="1")
@@ -156,3 +160,29 @@ def test_worker_advice_names_slowing_settings():
     assert len(lines) == 2
     assert lines[0].startswith("1 of 2 workers run with MALLOC_TRIM_THRESHOLD_")
     assert lines[1].startswith("2 of 2 workers run dask's statistical profiler")
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_find_peaks_matches_scipy(seed):
+    # reference library: scipy.signal.find_peaks with height and prominence (flat tops included)
+    from scipy.signal import find_peaks as scipy_find_peaks
+
+    rng = np.random.default_rng(seed)
+    x = np.round(rng.random(300) * 6.0) / 2.0 if seed % 2 else np.cumsum(rng.normal(0, 1, 300))
+    x = np.r_[0.0, np.abs(x), 0.0]
+    for h, p in ((0.0, 0.0), (1.0, 0.5), (2.0, 1.0), (0.5, 3.0)):
+        np.testing.assert_array_equal(sg.find_peaks(x, h, p), scipy_find_peaks(x, height=h, prominence=p)[0])
+    assert sg.find_peaks(np.zeros(2), 0.0, 0.0).size == 0
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_nonnegative_line_matches_scipy_nnls(seed):
+    # reference library: scipy.optimize.nnls on the two-column design [x, 1]
+    from scipy.optimize import nnls
+
+    rng = np.random.default_rng(seed)
+    x = rng.random(16)
+    y = rng.normal([0.5, -0.5, 0.0, 1.0][seed % 4], 0.3) * x + rng.normal([0.2, 0.1, -0.4, -0.1][seed % 4], 0.2) \
+        + rng.normal(0, 0.05, 16)
+    ref, _ = nnls(np.column_stack([x, np.ones_like(x)]), y)
+    np.testing.assert_allclose(pp.nonnegative_line(x, y), ref, atol=1e-9)
