@@ -431,6 +431,7 @@ def classify_frame(frame, params=None) -> dict:
         return cols
     if frame.labels is None:
         raise ValueError("classify-habit needs frame.labels: run a segment step first")
+    gr.clear_fit_cache()  # the fits of this frame's grains are remembered for fit-growth-ratio, no older ones
     contours = gr._contours_for(frame)
     boxes = None
     if frame.polarity == "dark":

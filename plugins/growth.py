@@ -860,11 +860,18 @@ _FIT_CACHE: dict = {}
 _FIT_CACHE_MAX = 4096
 
 
+def clear_fit_cache() -> None:
+    """Forget every memoised fit of :func:`fit_alpha_cached`."""
+    _FIT_CACHE.clear()
+
+
 def fit_alpha_cached(contour_xy, interior=None, **kw) -> AlphaFit:
     """:func:`fit_alpha` memoised on the bytes of its inputs (same inputs, same answer).
 
     The classify and fit steps of one frame fit the same grains; this keeps
-    the second call free. The cache is bounded and per process.
+    the second call free. The cache is bounded and per process, and
+    classify-habit empties it (:func:`clear_fit_cache`) when it starts a
+    frame, so a frame's time never depends on the frames before it.
     """
     import hashlib
 
