@@ -302,8 +302,9 @@ def run(argv: list[str]) -> int:
     """Entry point of ``grainhabit bench throughput``; returns the exit code."""
     ap = argparse.ArgumentParser(prog="grainhabit bench throughput",
                                  description="Frames per second of a plain kernel loop, the pipeline with one "
-                                             "worker and with all workers, on synthetic frames (invented "
-                                             "data); time per stage and the host's overheads.")
+                                             "worker and with all workers, and as many plain loops at once "
+                                             "(the machine's ceiling), on synthetic frames (invented data); "
+                                             "time per stage and the host's overheads.")
     ap.add_argument("--frames", type=int, default=32, help="frames (default 32)")
     ap.add_argument("--size", type=int, default=1024, help="frame side in pixels (default 1024)")
     ap.add_argument("--grains", type=int, default=None,
