@@ -154,12 +154,13 @@ def test_local_workers_keep_glibc_malloc_thresholds(monkeypatch):
 def test_worker_advice_names_slowing_settings():
     from pipeline.executors import worker_advice
 
-    assert worker_advice({"a": {"malloc_trim": None, "profile": False}}) == []
-    lines = worker_advice({"a": {"malloc_trim": "65536", "profile": True}, "b": {"malloc_trim": None,
-                                                                             "profile": True}})
-    assert len(lines) == 2
+    assert worker_advice({"a": {"malloc_trim": None, "profile": False, "tick_s": 0.5}}) == []
+    lines = worker_advice({"a": {"malloc_trim": "65536", "profile": True, "tick_s": 0.02},
+                           "b": {"malloc_trim": None, "profile": True, "tick_s": 0.5}})
+    assert len(lines) == 3
     assert lines[0].startswith("1 of 2 workers run with MALLOC_TRIM_THRESHOLD_")
     assert lines[1].startswith("2 of 2 workers run dask's statistical profiler")
+    assert lines[2].startswith("1 of 2 workers check their event loop more often")
 
 
 @pytest.mark.parametrize("seed", range(6))
