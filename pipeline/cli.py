@@ -214,7 +214,7 @@ def build_parser(host: Host) -> argparse.ArgumentParser:
     _common(p)
     p.set_defaults(handler=cmd_plugins)
 
-    p = sub.add_parser("bench", help="run a benchmark (accuracy, measure, habit, throughput, memory)",
+    p = sub.add_parser("bench", help="run a benchmark offered by a plugin (grainhabit bench lists them)",
                        description="Run a benchmark offered by a plugin; 'grainhabit bench' lists them.",
                        add_help=True)
     p.add_argument("name", nargs="?", help="benchmark name")

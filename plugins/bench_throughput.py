@@ -438,7 +438,8 @@ def run(argv: list[str]) -> int:
         for lbl, x in bad:
             print(f"problem: {lbl}: only {x['frames_ok']} of {args.frames} frames ok (exit code "
                   f"{x['exit_code']})", file=out)
-        figures.update(serial_loop=a, one_worker=b, all_workers=c, ceiling=d, rounds=rounds, ratios=r, scaling=scaling, checks=checks,
+        figures.update(serial_loop=a, one_worker=b, all_workers=c, ceiling=d, rounds=rounds, ratios=r,
+                       scaling=scaling, checks=checks,
                        targets=TARGETS, load_end=bu.load_average())
         print(f"{bu.load_text()} at the end", file=out)
         if args.json:

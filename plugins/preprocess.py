@@ -30,6 +30,8 @@ Method, in order:
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from scipy import ndimage as ndi
 
@@ -254,12 +256,10 @@ def noise_sigma(image: np.ndarray) -> float:
        wavelet shrinkage", Biometrika 81(3), 425-455, 1994,
        doi:10.1093/biomet/81.3.425
     """
-    import importlib.util
-
     arr = np.asarray(image, float)
     try:
         # without PyWavelets, skip scikit-image's estimator (its module imports scipy.stats, 0.4 s per worker)
-        if importlib.util.find_spec("pywt") is None:
+        if not _have_pywavelets():
             raise ImportError("PyWavelets is not installed")
         from skimage.restoration import estimate_sigma
 
@@ -269,6 +269,14 @@ def noise_sigma(image: np.ndarray) -> float:
         a = arr[:r, :c]
         hh = (a[0::2, 0::2] - a[0::2, 1::2] - a[1::2, 0::2] + a[1::2, 1::2]) / 2.0
         return float(np.median(np.abs(hh)) / 0.6745)
+
+
+@functools.lru_cache(maxsize=1)
+def _have_pywavelets() -> bool:
+    """Whether PyWavelets can be imported (looked up once per process, not per frame)."""
+    import importlib.util
+
+    return importlib.util.find_spec("pywt") is not None
 
 
 def denoise(image: np.ndarray, method: str = "gaussian", sigma_px: float = 1.0) -> tuple[np.ndarray, float]:

@@ -166,9 +166,9 @@ def otsu_threshold(image: np.ndarray, max_samples: int = 2_000_000) -> float:
     """
     from skimage.filters import threshold_otsu
 
-    arr = _check_image(image)
-    step = max(1, int(np.ceil(np.sqrt(arr.size / max_samples))))
-    sub = arr[::step, ::step]
+    from .preprocess import regular_subsample
+
+    sub = regular_subsample(_check_image(image), max_samples)
     if float(sub.min()) == float(sub.max()):
         return float(sub.min())
     return float(threshold_otsu(sub))
@@ -193,11 +193,9 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
         robust noise sd of the background) and ``noise`` =
         ``background + noise_k * sigma``.
     """
-    from .preprocess import background_level
+    from .preprocess import background_level, regular_subsample
 
-    arr = _check_image(image)
-    step = max(1, int(np.ceil(np.sqrt(arr.size / max_samples))))
-    sub = arr[::step, ::step]
+    sub = regular_subsample(_check_image(image), max_samples)
     bg, sigma = background_level(sub)
     return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
 

@@ -22,7 +22,7 @@ from plugins import preprocess as pp
 from plugins import segment as sg
 from plugins.outline import savgol_smoothing_coefficients
 
-from conftest import REPO
+from conftest import REPO, reference_gap_lines
 
 
 @pytest.mark.parametrize("window,order", [(3, 1), (5, 2), (7, 3), (9, 2), (11, 4), (15, 3)])
@@ -42,19 +42,11 @@ def _full_frame_foreground(arr, levels, w=3.0):
     """
     from skimage.filters import sobel
     from skimage.morphology import disk
-    from skimage.segmentation import expand_labels, find_boundaries, watershed
+    from skimage.segmentation import watershed
 
     fg = arr > levels["noise"]
     cores = arr > max(0.25, levels["noise"])
-    comp, n = ndi.label(cores, structure=np.ones((3, 3), bool))
-    whole, _ = ndi.label(fg, structure=np.ones((3, 3), bool))
-    faint = np.isin(whole, np.unique(whole[cores]), invert=True) & fg
-    bodies = np.where(cores, comp, np.where(faint, whole + n, 0))
-    area = np.bincount(bodies.ravel())
-    bodies[area[bodies] < sg.GAP_MIN_AREA_PX] = 0
-    near = ndi.distance_transform_edt(bodies == 0) <= sg.GAP_REACH_PX
-    gaps = find_boundaries(expand_labels(bodies, sum(arr.shape)), connectivity=1, mode="thick")
-    gaps &= (bodies == 0) & (~fg | near)
+    gaps, *_ = reference_gap_lines(fg, cores, sg.GAP_MIN_AREA_PX, sg.GAP_REACH_PX)
     pad = ndi.binary_closing(np.pad(fg, 2, mode="edge"), structure=disk(2), border_value=0)
     fg = ndi.binary_fill_holes(pad[2:-2, 2:-2] & ~gaps)
     inside = ndi.distance_transform_edt(fg)

@@ -14,6 +14,8 @@ from skimage.measure import label as sk_label
 from pipeline.frame import FrameData
 from plugins import preprocess, segment
 
+from conftest import reference_gap_lines
+
 
 def regular_polygon(cy, cx, r, n=6, rot_deg=0.0):
     """Vertices (rows, cols) of a regular n-gon of circumradius r."""
@@ -317,23 +319,13 @@ def test_gap_lines_match_skimage_nearest_label_boundaries():
     # reference library: scikit-image expand_labels (nearest body by Euclidean distance) and
     # find_boundaries (thick, 4-neighbours) of the bodies: connected cores, and mask components
     # without a core; specks under GAP_MIN_AREA_PX take no part; inside the mask only near a core
-    from skimage.segmentation import expand_labels, find_boundaries
-
     rng = np.random.default_rng(13)
     seeds = rng.random((200, 240)) > 0.998
     cores = ndi.binary_dilation(seeds[:, :150], iterations=4)
     cores = np.pad(cores, ((0, 0), (0, 90)))
     mask = ndi.binary_dilation(seeds, iterations=7) | (rng.random(seeds.shape) > 0.997) | cores
-    comp, n = ndi.label(cores, structure=np.ones((3, 3), bool))
-    whole, _ = ndi.label(mask, structure=np.ones((3, 3), bool))
-    faint = np.isin(whole, np.unique(whole[cores]), invert=True) & mask
-    bodies = np.where(cores, comp, np.where(faint, whole + n, 0))
-    area = np.bincount(bodies.ravel())
-    bodies[area[bodies] < segment.GAP_MIN_AREA_PX] = 0
+    ref, bodies, faint, n = reference_gap_lines(mask, cores, segment.GAP_MIN_AREA_PX, segment.GAP_REACH_PX)
     assert len(np.unique(bodies[faint])) > 2 and n > 2  # both kinds of body are present
-    dist = ndi.distance_transform_edt(bodies == 0)
-    ref = find_boundaries(expand_labels(bodies, 1000), connectivity=1, mode="thick") & (bodies == 0)
-    ref &= ~mask | (dist <= segment.GAP_REACH_PX)
     assert (ref & mask).any()
     np.testing.assert_array_equal(segment.gap_lines(mask, cores), ref)
 
