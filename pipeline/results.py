@@ -2,8 +2,9 @@
 
 Format decisions (see DEVELOPERS.md, "Results store"):
 
-- zarr format 3; every group is written unconsolidated, then the store's
-  metadata is consolidated once at the end, so that a plain
+- zarr format 3; every group is encoded into an in-memory zarr store and
+  its chunk files written out, then the store's metadata is consolidated
+  once at the end, so that a plain
   ``xarray.open_zarr(path, group="grains")`` opens fast and without warnings.
   zarr warns that consolidated metadata is not yet part of the v3
   specification; we silence exactly that warning at the one place we
@@ -45,15 +46,67 @@ def _prepare(ds: xr.Dataset) -> xr.Dataset:
     return out
 
 
-def consolidate(path: str | os.PathLike) -> None:
-    """Consolidate the store's metadata (once, after all groups are written)."""
+def consolidate(store) -> None:
+    """Consolidate the store's metadata (once, after all groups are written).
+
+    Parameters
+    ----------
+    store : path-like or zarr store
+        The store (a folder, or a zarr store object such as a MemoryStore).
+    """
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part")
-        zarr.consolidate_metadata(str(path))
+        zarr.consolidate_metadata(str(store) if isinstance(store, (str, os.PathLike)) else store)
+
+
+#: Name of the metadata document of every zarr 3 group and array.
+METADATA_FILE = "zarr.json"
+
+
+def _spill(held: dict, folder: Path, made: set, metadata_too: bool) -> int:
+    """Write the objects of an in-memory zarr store to files under ``folder`` and drop them from memory.
+
+    Parameters
+    ----------
+    held : dict
+        The ``store_dict`` of a ``zarr.storage.MemoryStore``: key (a
+        '/'-separated path, as a local store names its files) -> buffer.
+    folder : Path
+        Root folder of the store on disk.
+    made : set
+        Folders already created (updated).
+    metadata_too : bool
+        Also write (and drop) the ``zarr.json`` documents; otherwise they
+        stay in memory, so that the metadata can still be consolidated.
+
+    Returns
+    -------
+    int
+        Bytes written.
+    """
+    written = 0
+    for key in [k for k in held if metadata_too or not k.endswith(METADATA_FILE)]:
+        target = folder.joinpath(*key.split("/"))
+        if target.parent not in made:
+            target.parent.mkdir(parents=True, exist_ok=True)
+            made.add(target.parent)
+        data = held.pop(key).to_bytes()
+        target.write_bytes(data)
+        written += len(data)
+    return written
 
 
 def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:
     """Write datasets as groups of a new zarr store at ``path`` (not atomic).
+
+    Each group is encoded into an in-memory zarr store and its chunks are
+    then written out as plain files, named as zarr's local store names them;
+    the metadata documents follow after consolidation. The result is the
+    store ``xarray.Dataset.to_zarr`` writes to a folder (the test suite
+    checks them identical), in about half the time: zarr's per-array cost of
+    going through its event loop to the file system (about 4 ms an array on
+    the development machine, a results store has about 110 arrays) is paid
+    against memory. At most one group's chunks are held in memory at a time.
 
     Parameters
     ----------
@@ -63,13 +116,24 @@ def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_at
         Group name to dataset.
     root_attrs : dict, optional
         Attributes of the root group; values must be JSON-serialisable.
+
+    Raises
+    ------
+    FileExistsError
+        If ``path`` exists.
     """
-    path = str(path)
-    root = zarr.open_group(path, mode="w-", zarr_format=3)
+    folder = Path(path)
+    folder.mkdir(parents=True, exist_ok=False)
+    held: dict = {}
+    store = zarr.storage.MemoryStore(held)
+    root = zarr.open_group(store, mode="w-", zarr_format=3)
     root.attrs.update(root_attrs or {})
+    made = {folder}
     for name, ds in groups.items():
-        _prepare(ds).to_zarr(path, group=name, mode="a", zarr_format=3, consolidated=False)
-    consolidate(path)
+        _prepare(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
+        _spill(held, folder, made, metadata_too=False)
+    consolidate(store)
+    _spill(held, folder, made, metadata_too=True)
 
 
 def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:

@@ -179,3 +179,59 @@ def test_nonnegative_line_matches_scipy_nnls(seed):
         + rng.normal(0, 0.05, 16)
     ref, _ = nnls(np.column_stack([x, np.ones_like(x)]), y)
     np.testing.assert_allclose(pp.nonnegative_line(x, y), ref, atol=1e-9)
+
+
+def _store_files(folder):
+    """Relative path -> bytes of every file of a store folder."""
+    from pathlib import Path
+
+    root = Path(folder)
+    return {p.relative_to(root).as_posix(): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+def test_results_written_through_memory_equal_xarray_to_zarr(tmp_path):
+    # reference library: xarray's Dataset.to_zarr straight into a folder (zarr's LocalStore), the way
+    # results were written before the in-memory path; every file must come out byte for byte the same
+    import warnings
+
+    import xarray as xr
+    import zarr
+
+    from pipeline.results import _prepare, open_results, write_groups
+
+    rng = np.random.default_rng(3)
+    n = 257
+    grains = xr.Dataset({"ecd_nm": ("grain", rng.random(n) * 900), "habit": ("grain", np.array(["cube", "rod"] * 128 + ["octahedron"])),
+                         "frame_index": ("grain", np.arange(n, dtype=np.int64)),
+                         "flag": ("grain", rng.random(n) > 0.5)}, attrs={"units": "nm", "count": n})
+    grains["ecd_nm"].attrs["long_name"] = "equivalent circle diameter"
+    thumbs = xr.Dataset({"thumb": (("frame", "y", "x"), rng.integers(0, 255, (3, 40, 50), dtype=np.uint8))})
+    groups = {"grains": grains, "thumbnails": thumbs, "empty": xr.Dataset(attrs={"note": "no rows"})}
+    attrs = {"title": "invented", "runs": json.dumps([{"n": 1}])}
+
+    write_groups(tmp_path / "fast.zarr", groups, attrs)
+    ref = tmp_path / "ref.zarr"
+    root = zarr.open_group(str(ref), mode="w-", zarr_format=3)
+    root.attrs.update(attrs)
+    for name, ds in groups.items():
+        _prepare(ds).to_zarr(str(ref), group=name, mode="a", zarr_format=3, consolidated=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        zarr.consolidate_metadata(str(ref))
+
+    fast, want = _store_files(tmp_path / "fast.zarr"), _store_files(ref)
+    assert sorted(fast) == sorted(want)
+    assert {k for k in fast if fast[k] != want[k]} == set()
+    back = open_results(tmp_path / "fast.zarr")
+    np.testing.assert_array_equal(back["grains"]["ecd_nm"].values, grains["ecd_nm"].values)
+    assert list(back["grains"]["habit"].values[-2:]) == ["rod", "octahedron"]
+
+
+def test_results_writer_refuses_an_existing_folder(tmp_path):
+    from pipeline.results import write_groups
+
+    (tmp_path / "there.zarr").mkdir()
+    (tmp_path / "there.zarr" / "keep.txt").write_text("x")
+    with pytest.raises(FileExistsError):
+        write_groups(tmp_path / "there.zarr", {}, {})
+    assert (tmp_path / "there.zarr" / "keep.txt").read_text() == "x"
