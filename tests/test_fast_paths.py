@@ -235,3 +235,41 @@ def test_results_writer_refuses_an_existing_folder(tmp_path):
     with pytest.raises(FileExistsError):
         write_groups(tmp_path / "there.zarr", {}, {})
     assert (tmp_path / "there.zarr" / "keep.txt").read_text() == "x"
+
+
+@pytest.mark.parametrize("radius", [1.0, 2.5, 3.0, 4.2])
+def test_disk_erosion_equals_distance_transform_threshold(radius):
+    # reference library: scipy.ndimage.distance_transform_edt; edt(mask) > r, frame edge neutral
+    rng = np.random.default_rng(int(radius * 10))
+    mask = ndi.gaussian_filter(rng.random((300, 280)), 4) > 0.5
+    mask[:, :3] = True  # foreground along the frame's edge
+    for m in (mask, ~mask):
+        fast = ndi.binary_erosion(m, structure=sg.disk_structure(radius), border_value=1)
+        np.testing.assert_array_equal(fast, ndi.distance_transform_edt(m) > radius)
+
+
+def test_deepest_pixels_of_thin_components_equal_full_frame_reference():
+    # reference library: scipy.ndimage.distance_transform_edt over the whole frame and ndimage.maximum
+    rng = np.random.default_rng(11)
+    mask = ndi.gaussian_filter(rng.random((256, 256)), 1.2) > 0.56  # many small specks
+    mask[0:3, 100:140] = True  # a thin strip on the frame's edge
+    comp, n = ndi.label(mask, structure=np.ones((3, 3), bool))
+    depth = ndi.distance_transform_edt(mask)
+    deepest = ndi.maximum(depth, comp, index=np.arange(1, n + 1))
+    thin = np.flatnonzero(deepest <= 3.0) + 1
+    assert 20 < thin.size < n
+    want = np.isin(comp, thin) & (depth >= np.concatenate([[np.inf], deepest])[comp])
+    np.testing.assert_array_equal(sg.deepest_pixels(mask, comp, thin, 3.0), want)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_fill_holes_equals_scipy(seed):
+    # reference library: scipy.ndimage.binary_fill_holes (4-connected background)
+    rng = np.random.default_rng(seed)
+    mask = ndi.gaussian_filter(rng.random((200, 230)), 2) > 0.5 - 0.02 * seed
+    mask[50:60, 50:60] = True
+    mask[54:56, 54:56] = False  # a hole for sure
+    mask[0, :] = seed == 1  # the frame's edge in the foreground
+    np.testing.assert_array_equal(sg.fill_holes(mask), ndi.binary_fill_holes(mask))
+    for m in (np.zeros((5, 6), bool), np.ones((5, 6), bool)):
+        np.testing.assert_array_equal(sg.fill_holes(m), ndi.binary_fill_holes(m))
