@@ -24,6 +24,10 @@
 - ``serial``: no dask at all, frames one after another in this process
   (for debugging a plugin with a debugger or print statements).
 
+Before the first frame, :meth:`prepare` runs a function once on every worker
+(the runner uses it for :func:`pipeline.task.prepare_worker`: imports and
+lookup tables of the plugins, built on all workers at once).
+
 Results are yielded as frames finish, with at most ``max_in_flight`` tasks
 submitted at a time, so memory does not grow with the number of frames.
 """
@@ -48,6 +52,10 @@ class SerialExecutor:
 
     def start(self) -> None:
         pass
+
+    def prepare(self, func: Callable, *args) -> list:
+        """Run ``func(*args)`` once in this process; its result in a list."""
+        return [func(*args)]
 
     def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
         from threadpoolctl import threadpool_limits
@@ -129,6 +137,31 @@ class DaskExecutor:
             self.client.upload_file(path)
         if self.address:
             self.advice = worker_advice(self.client.run(_worker_settings))
+
+    def prepare(self, func: Callable, *args) -> list:
+        """Run ``func(*args)`` once on every worker, all at once, before any frame is submitted.
+
+        Each call is an ordinary task pinned to its worker, so it runs where
+        the frames will run (the worker's task thread). Workers that join the
+        cluster later are not prepared; their first frame pays instead.
+
+        Returns
+        -------
+        list
+            One result per worker; a worker whose call raised gives a dict
+            with ``errors`` naming the exception.
+        """
+        workers = list(self.client.scheduler_info().get("workers", {}))
+        futures = [self.client.submit(func, *args, workers=[w], allow_other_workers=False, pure=False)
+                   for w in workers]
+        out = []
+        for w, fut in zip(workers, futures):
+            try:
+                out.append(fut.result())
+            except Exception as exc:
+                out.append({"pid": w, "seconds": float("nan"), "errors": [f"{exc.__class__.__name__}: {exc}"]})
+            fut.release()
+        return out
 
     def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
         from distributed import as_completed

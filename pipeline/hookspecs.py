@@ -100,6 +100,31 @@ def grainhabit_read_frame(ref: FrameRef, options: dict) -> FrameData | None:
 # --------------------------------------------------------------------------
 
 
+@hookspec
+def grainhabit_prepare_worker(steps: dict) -> None:
+    """Get a worker process ready for frames, once, before its first frame.
+
+    Called in every worker process of a run (and in the main process of a
+    serial run) before any frame task starts there, on every plugin, with
+    the run's per-frame steps. A plugin imports what its steps need and
+    builds its lookup tables here, so that no frame pays for them: the
+    first frame's recorded time is then its own, and the import of a broken
+    plugin fails before frames are dispatched. An implementation that
+    raises is logged as a warning; the run goes on (frames that then fail
+    name the error).
+
+    Parameters
+    ----------
+    steps : dict of str -> dict
+        Name of each per-frame step of the run -> its resolved parameters.
+
+    Returns
+    -------
+    None
+        Results are ignored.
+    """
+
+
 @hookspec(firstresult=True)
 def grainhabit_preprocess(frame: FrameData, params: dict) -> FrameData:
     """Prepare ``frame.raw`` for segmentation.

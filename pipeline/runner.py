@@ -5,8 +5,9 @@ The order of work for ``grainhabit run``:
 1. take the output's lock (another live run: exit 3);
 2. list every frame of every input (readers' ``grainhabit_list_frames``);
 3. skip frames whose result is already staged for this processing key;
-4. run the rest as one task per frame on the executor, staging each
-   result atomically as it arrives;
+4. start the executor and prepare every worker once (plugin imports and
+   tables, ``grainhabit_prepare_worker``), then run the rest as one task
+   per frame, staging each result atomically as it arrives;
 5. consolidate all frames, in listing order, into the results store
    (atomic swap), run the summarise steps, append a run record;
 6. write the report if the workflow asks for one.
@@ -36,7 +37,7 @@ from .logs import Progress
 from .manager import Host
 from .results import recover, root_attrs, write_results
 from .staging import clean_temporaries, frame_key, is_staged, read_staged, staging_dir, write_staged
-from .task import FrameJob, process_frame
+from .task import FrameJob, prepare_worker, process_frame
 from .workflow import Plan, expand, find_inputs
 
 log = logging.getLogger("grainhabit")
@@ -191,6 +192,13 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
             log.info("processing %d frames on %s", len(todo), executor.description)
             for line in executor.advice:
                 log.warning("%s", line)
+            ready = executor.prepare(prepare_worker, job)
+            for res in ready:
+                for err in res.get("errors", ()):
+                    log.warning("preparing worker %s: %s", res.get("pid"), err)
+            took = [r["seconds"] for r in ready if np.isfinite(r.get("seconds", np.nan))]
+            log.info("%d workers ready (imports and plugin tables: %.1f s at most)", len(ready),
+                     max(took, default=0.0))
             progress = Progress(len(todo), log, tty=tty)
             by_key = {}
             try:

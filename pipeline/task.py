@@ -83,6 +83,48 @@ def _fail(record: dict, where: str, exc: BaseException) -> dict:
     return record
 
 
+def prepare_worker(job: FrameJob) -> dict:
+    """Build this process's plugin host and let every plugin get ready (once per process).
+
+    Runs the hook ``grainhabit_prepare_worker`` with the job's per-frame
+    steps. A second call in the same process does nothing.
+
+    Parameters
+    ----------
+    job : FrameJob
+        The run's chain and options.
+
+    Returns
+    -------
+    dict
+        ``pid``, ``seconds`` (wall s this call took, 0 if already done) and
+        ``errors`` (list of "plugin: Error: message" lines; empty if all went
+        well).
+    """
+    t0 = time.perf_counter()
+    key = (tuple(job.plugins), repr(job.steps))
+    if key in _PREPARED:
+        return {"pid": os.getpid(), "seconds": 0.0, "errors": []}
+    errors = []
+    try:
+        host = worker_host(tuple(job.plugins))
+    except Exception as exc:  # the frames will fail with the same error, named per frame
+        return {"pid": os.getpid(), "seconds": time.perf_counter() - t0,
+                "errors": [f"plugin host: {exc.__class__.__name__}: {exc}"]}
+    steps = {name: dict(params) for name, _stage, params in job.steps}
+    for impl in reversed(host.pm.hook.grainhabit_prepare_worker.get_hookimpls()):
+        try:
+            impl.function(steps=steps)
+        except Exception as exc:
+            errors.append(f"{impl.plugin_name}: {exc.__class__.__name__}: {exc}")
+    _PREPARED.add(key)
+    return {"pid": os.getpid(), "seconds": time.perf_counter() - t0, "errors": errors}
+
+
+#: Jobs (plugins, steps) this process is already prepared for.
+_PREPARED: set = set()
+
+
 def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
     """Read a frame and run every per-frame step on it.
 

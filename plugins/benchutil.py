@@ -261,6 +261,18 @@ class _TimedExecutor:
         c.workers = int(getattr(self.inner, "n_workers", 0) or 0)
         c._cpu0 = (descendants_cpu(), _own_cpu())
 
+    def prepare(self, func, *args):
+        t0 = time.perf_counter()
+        try:
+            return self.inner.prepare(func, *args)
+        finally:
+            c = self.clock
+            c.add("worker_prepare", time.perf_counter() - t0)
+            # the frames' span, and the CPU beside it, start once the workers are ready
+            c.marks["processing_start"] = time.perf_counter()
+            c.marks["processing_start_wall"] = time.time()
+            c._cpu0 = (descendants_cpu(), _own_cpu())
+
     def map_unordered(self, func, items):
         for key, res in self.inner.map_unordered(func, items):
             now = time.perf_counter()
@@ -300,17 +312,20 @@ class RunClock:
     Attributes
     ----------
     seconds : dict of str -> float
-        ``list``, ``cluster_start``, ``stage_write`` (staging each result in
+        ``list``, ``cluster_start``, ``worker_prepare`` (the executor's
+        ``prepare`` of every worker: plugin imports and tables), ``stage_write`` (staging each result in
         the main process, overlapped with the workers), ``consolidate``
         (reading the staged frames and building the datasets),
         ``summarise``, ``results_write``, ``cluster_close``.
     marks : dict of str -> float
-        ``perf_counter`` stamps ``processing_start`` (cluster up),
+        ``perf_counter`` stamps ``processing_start`` (cluster up and its
+        workers prepared),
         ``first_result``, ``last_result``, ``processing_end``, wall-clock
         twins ``*_wall``, and ``first_task_seconds`` (the task time of the
         first result).
     cpu : dict of str -> float
-        CPU seconds (user + system) between cluster start and close:
+        CPU seconds (user + system) from the workers being prepared to the
+        cluster's close:
         ``workers`` (all descendant processes: nannies and workers) and
         ``main``; ``workers_system`` and ``main_system`` the system part.
     workers : int
@@ -375,9 +390,10 @@ class RunClock:
     def warmup_seconds(self) -> float:
         """Latency of the first result beyond its own task time (NaN if no frame ran).
 
-        With fresh worker processes this is mostly the worker's start-up on
-        its first task (importing the plugins, building the plugin host),
-        plus one dispatch and one result transfer.
+        The workers are prepared before the first frame (imports, plugin
+        host and tables: ``worker_prepare``), so this is mostly one dispatch
+        and one result transfer, plus whatever a plugin still does on its
+        first call.
         """
         m = self.marks
         if "first_result" not in m:

@@ -452,3 +452,13 @@ def classify_frame(frame, params=None) -> dict:
 def grainhabit_classify(frame, params):
     """Add ``habit``, ``habit_score`` and the evidence columns; see the module docstring."""
     return frame.with_columns(**classify_frame(frame, params))
+
+
+@hookimpl
+def grainhabit_prepare_worker(steps):
+    """Build the Wulff model library, its plane tables and the plate/rod signatures once per worker."""
+    if STEP.name not in steps:
+        return
+    lib = gr.fit_kwargs(None)["library"]
+    gr.prepare_tables(lib)
+    family_signatures(lib.signatures.shape[1])

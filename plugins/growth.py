@@ -572,6 +572,11 @@ def _planes(body, rotation, upward: bool):
     return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
 
 
+def prepare_tables(lib: ModelLibrary) -> None:
+    """Build the plane tables of ``lib`` now (kept for the process, as the first fit would)."""
+    _tables(lib)
+
+
 def _tables(lib: ModelLibrary) -> _Tables:
     """The :class:`_Tables` of ``lib`` (cached per library object)."""
     for owner, tab in _TABLES:
@@ -1356,3 +1361,12 @@ def grainhabit_fit_growth(frame, params):
     """Add ``alpha``, ``alpha_lo``, ``alpha_hi``, ``alpha_note`` (see the module docstring)."""
     cols = fit_frame(frame, params)
     return frame.with_columns(**cols)
+
+
+@hookimpl
+def grainhabit_prepare_worker(steps):
+    """Build the model library of this step's parameters and its plane tables once per worker."""
+    if STEP.name not in steps:
+        return
+    prepare_tables(fit_kwargs(steps[STEP.name])["library"])
+    import plugins.measure  # noqa: F401  (grain contours)

@@ -598,3 +598,14 @@ def grainhabit_preprocess(frame, params):
         new = new.with_note(f"flatten-background: polarity auto-detected as {pol!r} with low confidence "
                             f"({conf:.2f}); set polarity to force it")
     return new
+
+
+@hookimpl
+def grainhabit_prepare_worker(steps):
+    """Import the scikit-image modules this step calls (resampling; restoration if it denoises with it)."""
+    if STEP.name not in steps:
+        return
+    import skimage.transform  # noqa: F401  (background estimate)
+
+    if STEP.resolve(steps[STEP.name])["denoise"] in ("bilateral", "nlmeans"):
+        import skimage.restoration  # noqa: F401

@@ -937,3 +937,15 @@ def grainhabit_segment(frame, params):
     for note in notes:
         new = new.with_note(note)
     return new
+
+
+@hookimpl
+def grainhabit_prepare_worker(steps):
+    """Import the scikit-image modules the segmentation calls, once per worker."""
+    if STEP.name not in steps:
+        return
+    import skimage.draw  # noqa: F401
+    import skimage.filters  # noqa: F401
+    import skimage.measure  # noqa: F401
+    import skimage.morphology  # noqa: F401
+    import skimage.segmentation  # noqa: F401

@@ -292,3 +292,56 @@ def test_distributed_run_equals_local_run(tmp_path, dask_cluster):
     xr.testing.assert_identical(grains_of(tmp_path / "serial" / "r.zarr"), grains_of(tmp_path / "dist" / "r.zarr"))
     frames = xr.open_zarr(tmp_path / "dist" / "r.zarr", group="frames").load()
     assert set(frames["status"].values.tolist()) == {"ok"}
+
+
+READY = '''
+"""Test plugin: a thickness step that refuses to run in a process its prepare hook has not prepared."""
+import os
+from pipeline import hookimpl
+from pipeline.params import Param, StepInfo
+GRAINHABIT_API = 1
+STEP = StepInfo(name="needs-ready", stage="thickness", version="0.1", summary="checks the worker was prepared",
+                params=(Param("marks", str, "", doc="folder for one file per prepared process"),
+                        Param("broken", bool, False, doc="raise in the prepare hook")))
+_READY = []
+
+@hookimpl
+def grainhabit_prepare_worker(steps):
+    if STEP.name not in steps:
+        return
+    if steps[STEP.name]["broken"]:
+        raise RuntimeError("table file missing")
+    _READY.append(os.getpid())
+    with open(os.path.join(steps[STEP.name]["marks"], f"ready-{os.getpid()}"), "a") as fh:
+        fh.write("x")
+
+@hookimpl
+def grainhabit_thickness(frame, params):
+    if not params["broken"] and os.getpid() not in _READY:
+        raise RuntimeError("not prepared")
+    return frame
+'''
+
+
+def test_every_worker_is_prepared_once_before_its_frames(tmp_path):
+    make_frames(tmp_path, 6)
+    (tmp_path / "ready.py").write_text(READY)
+    marks = tmp_path / "marks"
+    marks.mkdir()
+    extra = f"plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {{marks: {marks.as_posix()}}}"
+    res = run_cli("run", wf(tmp_path, scheduler="local", extra=extra))
+    assert res.returncode == 0, res.stderr
+    assert "2 workers ready" in res.stderr
+    files = sorted(marks.iterdir())
+    assert len(files) == 2 and all(f.read_text() == "x" for f in files)  # one per worker process, once
+    frames = xr.open_zarr(tmp_path / "out" / "r.zarr", group="frames").load()
+    assert set(frames["status"].values.tolist()) == {"ok"}  # needs-ready raises in an unprepared process
+
+
+def test_a_failing_prepare_hook_is_a_warning_not_a_failed_run(tmp_path):
+    make_frames(tmp_path, 2)
+    (tmp_path / "ready.py").write_text(READY)
+    extra = "plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {broken: true}"
+    res = run_cli("run", wf(tmp_path, extra=extra))
+    assert res.returncode == 0, res.stderr
+    assert "preparing worker" in res.stderr and "needs-ready" in res.stderr and "table file missing" in res.stderr
