@@ -42,12 +42,13 @@ per worker <= 10 %; median task well over 100 ms; with ``--scaling`` also
 4x frames within 4.4x the time and 4x pixels (2x the side, 4x the grains)
 within 4.4x the time. The machine's load average is printed beside every
 figure: on a shared machine the ratios are only as good as the load was
-steady; ``--repeat N`` runs N interleaved rounds of (a)-(d) and reports the
-fastest of each case (the usual way to time on a noisy machine). The
-default workload, 32 frames of 1024 x 1024 px, takes about two minutes per
-round on the development machine; the fixed costs of a run (worker
-warm-up, results writing, about 1.5 s) weigh less in it than in a short run,
-as they do in a night of thousands of frames. ``--check`` makes the exit
+steady; ``--repeat N`` (default 3) runs N interleaved rounds of (a)-(d)
+and reports the fastest of each case (the usual way to time on a noisy
+machine), and prints the ratios of every round beside them. The default
+workload, 32 frames of 1024 x 1024 px, takes about 80 s per round on the
+development machine; what a run costs beyond its frames (results writing,
+summary, consolidation, about 1 s) weighs less in it than in a short run,
+as it does in a night of thousands of frames. ``--check`` makes the exit
 code 1 when a target is missed.
 """
 
@@ -316,8 +317,8 @@ def run(argv: list[str]) -> int:
                     help=f"grains per frame (default {bu.DENSITY_PER_MPX:g} per megapixel, about 42 at 1024 px)")
     ap.add_argument("--workers", type=int, default=None, help="workers of run (c) (default: one per core)")
     ap.add_argument("--seed", type=int, default=0, help="first seed of the rendered fields (default 0)")
-    ap.add_argument("--repeat", type=int, default=1,
-                    help="interleaved rounds of (a)-(d); the fastest of each case is reported (default 1)")
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="interleaved rounds of (a)-(d); the fastest of each case is reported (default 3)")
     ap.add_argument("--json", metavar="PATH", help="write the figures to this JSON file")
     ap.add_argument("--scaling", action="store_true",
                     help="also run 4x the frames and 4x the pixels with all workers and check <= 4.4x the time")
@@ -382,6 +383,13 @@ def run(argv: list[str]) -> int:
             print(f"best of {args.repeat} interleaved rounds per case; all rounds: "
                   + "; ".join(f"({k}) " + ", ".join(f"{x.get('net', x['wall']):.1f}" for x in v)
                               for k, v in rounds.items() if v) + " s", file=out)
+            print("each round on its own: overhead net(b)/(a) - 1 "
+                  + ", ".join(f"{100 * (b_['net'] / a_['wall'] - 1):+.1f} %" for a_, b_ in zip(rounds["a"], rounds["b"]))
+                  + ("; all workers (a)/net(c) " + ", ".join(f"{a_['wall'] / c_['net']:.2f}x"
+                                                           for a_, c_ in zip(rounds["a"], rounds["c"]))
+                     + "; ceiling (a)/(d) " + ", ".join(f"{a_['wall'] / d_['wall']:.2f}x"
+                                                       for a_, d_ in zip(rounds["a"], rounds["d"]))
+                     if rounds["c"] else ""), file=out)
         bad = [(lbl, x) for lbl, x in (("1 worker", b), ("all workers", c)) if x["frames_ok"] != args.frames]
         cases = [("(b) pipeline, 1 worker", b)] + ([(f"(c) pipeline, {c['workers']} workers", c)]
                                                     if c is not b else [])

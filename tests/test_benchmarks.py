@@ -120,16 +120,18 @@ def test_tree_sampler_counts_a_child_process():
 def test_throughput_cli_prints_and_writes_figures(tmp_path, capsys):
     out = tmp_path / "tp.json"
     code = bench_throughput.run(["--frames", "1", "--size", "128", "--grains", "1", "--workers", "1",
-                                 "--json", str(out)])
+                                 "--repeat", "2", "--json", str(out)])
     text = capsys.readouterr().out
     assert code == 0, text
     for words in ("(a) serial loop", "(b) pipeline, 1 worker", "frames/s", "Mpx/s", "cluster start-up",
                   "classify", "consolidate", "results_write", "overhead of the pipeline per worker",
-                  "scaling efficiency", "frame task: median", "load "):
+                  "scaling efficiency", "frame task: median", "load ", "worker preparation",
+                  "each round on its own: overhead"):
         assert words in text
     fig = json.loads(out.read_text())
     assert fig["one_worker"]["frames_ok"] == 1 and fig["serial_loop"]["frames"] == 1
-    assert fig["one_worker"]["host"]["cluster_start"] > 0
+    assert fig["one_worker"]["host"]["cluster_start"] > 0 and fig["one_worker"]["host"]["worker_prepare"] > 0
+    assert len(fig["rounds"]["a"]) == len(fig["rounds"]["b"]) == 2
     assert set(fig["ratios"]) >= {"overhead_per_worker", "speedup_all_vs_loop", "scaling_efficiency"}
 
 
