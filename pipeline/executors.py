@@ -141,27 +141,31 @@ class DaskExecutor:
     def prepare(self, func: Callable, *args) -> list:
         """Run ``func(*args)`` once on every worker, all at once, before any frame is submitted.
 
-        Each call is an ordinary task pinned to its worker, so it runs where
-        the frames will run (the worker's task thread). Workers that join the
-        cluster later are not prepared; their first frame pays instead.
+        Uses ``Client.run`` (outside dask's task scheduling): the call runs in
+        each worker process directly, so a worker that dies while preparing
+        gives an error entry instead of a task waiting for it (a task bound
+        to a dead worker's address would wait for ever). Workers that join
+        the cluster later, or replace a dead one, are not prepared; their
+        first frame pays instead.
+
+        Parameters
+        ----------
+        func : callable
+            Run as ``func(*args)``; must not raise for expected problems.
 
         Returns
         -------
         list
-            One result per worker; a worker whose call raised gives a dict
+            One result per worker; a worker whose call failed gives a dict
             with ``errors`` naming the exception.
         """
-        workers = list(self.client.scheduler_info().get("workers", {}))
-        futures = [self.client.submit(func, *args, workers=[w], allow_other_workers=False, pure=False)
-                   for w in workers]
-        out = []
-        for w, fut in zip(workers, futures):
-            try:
-                out.append(fut.result())
-            except Exception as exc:
-                out.append({"pid": w, "seconds": float("nan"), "errors": [f"{exc.__class__.__name__}: {exc}"]})
-            fut.release()
-        return out
+        try:
+            answers = self.client.run(func, *args, on_error="return")
+        except Exception as exc:  # the cluster itself failed to answer
+            return [{"pid": "?", "seconds": float("nan"), "errors": [f"{exc.__class__.__name__}: {exc}"]}]
+        return [res if not isinstance(res, BaseException) else
+                {"pid": addr, "seconds": float("nan"), "errors": [f"{res.__class__.__name__}: {res}"]}
+                for addr, res in answers.items()]
 
     def map_unordered(self, func: Callable, items: Iterable[tuple]) -> Iterator[tuple]:
         from distributed import as_completed

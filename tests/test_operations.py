@@ -311,6 +311,8 @@ def grainhabit_prepare_worker(steps):
         return
     if steps[STEP.name]["broken"]:
         raise RuntimeError("table file missing")
+    if os.environ.get("READY_TEST_DIE") == "1":
+        os._exit(13)
     _READY.append(os.getpid())
     with open(os.path.join(steps[STEP.name]["marks"], f"ready-{os.getpid()}"), "a") as fh:
         fh.write("x")
@@ -331,7 +333,7 @@ def test_every_worker_is_prepared_once_before_its_frames(tmp_path):
     extra = f"plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {{marks: {marks.as_posix()}}}"
     res = run_cli("run", wf(tmp_path, scheduler="local", extra=extra))
     assert res.returncode == 0, res.stderr
-    assert "2 workers ready" in res.stderr
+    assert "2 of 2 workers ready" in res.stderr
     files = sorted(marks.iterdir())
     assert len(files) == 2 and all(f.read_text() == "x" for f in files)  # one per worker process, once
     frames = xr.open_zarr(tmp_path / "out" / "r.zarr", group="frames").load()
@@ -345,3 +347,20 @@ def test_a_failing_prepare_hook_is_a_warning_not_a_failed_run(tmp_path):
     res = run_cli("run", wf(tmp_path, extra=extra))
     assert res.returncode == 0, res.stderr
     assert "preparing worker" in res.stderr and "needs-ready" in res.stderr and "table file missing" in res.stderr
+
+
+def test_a_worker_dying_in_prepare_does_not_hold_up_the_run(tmp_path):
+    # dask keeps a task bound to a dead worker's address waiting for ever: the preparation runs
+    # outside the task scheduler, so the run goes on with the restarted workers
+    make_frames(tmp_path, 2)
+    (tmp_path / "ready.py").write_text(READY)
+    marks = tmp_path / "marks"
+    marks.mkdir()
+    extra = f"plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {{marks: {marks.as_posix()}}}"
+    res = run_cli("run", wf(tmp_path, scheduler="local", extra=extra), env={"READY_TEST_DIE": "1"})
+    assert "preparing worker" in res.stderr and "0 of 2 workers ready" in res.stderr
+    # the restarted workers were never prepared, so needs-ready fails their frames: recorded, not hung
+    assert res.returncode == 1
+    frames = xr.open_zarr(tmp_path / "out" / "r.zarr", group="frames").load()
+    assert set(frames["status"].values.tolist()) == {"failed"}
+    assert all("not prepared" in str(e) for e in frames["error"].values)
