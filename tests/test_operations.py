@@ -325,13 +325,19 @@ def grainhabit_thickness(frame, params):
 '''
 
 
-def test_every_worker_is_prepared_once_before_its_frames(tmp_path):
-    make_frames(tmp_path, 6)
-    (tmp_path / "ready.py").write_text(READY)
-    marks = tmp_path / "marks"
+def ready_workflow(root: Path, frames: int, params: str = "") -> tuple[Path, Path]:
+    """Frames, the needs-ready plugin and a 2-worker local workflow using it; (workflow, marks folder)."""
+    make_frames(root, frames)
+    (root / "ready.py").write_text(READY)
+    marks = root / "marks"
     marks.mkdir()
-    extra = f"plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {{marks: {marks.as_posix()}}}"
-    res = run_cli("run", wf(tmp_path, scheduler="local", extra=extra))
+    extra = f"plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {{marks: {marks.as_posix()}{params}}}"
+    return wf(root, scheduler="local", extra=extra), marks
+
+
+def test_every_worker_is_prepared_once_before_its_frames(tmp_path):
+    workflow, marks = ready_workflow(tmp_path, 6)
+    res = run_cli("run", workflow)
     assert res.returncode == 0, res.stderr
     assert "2 of 2 workers ready" in res.stderr
     files = sorted(marks.iterdir())
@@ -341,10 +347,8 @@ def test_every_worker_is_prepared_once_before_its_frames(tmp_path):
 
 
 def test_a_failing_prepare_hook_is_a_warning_not_a_failed_run(tmp_path):
-    make_frames(tmp_path, 2)
-    (tmp_path / "ready.py").write_text(READY)
-    extra = "plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {broken: true}"
-    res = run_cli("run", wf(tmp_path, extra=extra))
+    workflow, _ = ready_workflow(tmp_path, 2, ", broken: true")
+    res = run_cli("run", workflow)
     assert res.returncode == 0, res.stderr
     assert "preparing worker" in res.stderr and "needs-ready" in res.stderr and "table file missing" in res.stderr
 
@@ -352,12 +356,8 @@ def test_a_failing_prepare_hook_is_a_warning_not_a_failed_run(tmp_path):
 def test_a_worker_dying_in_prepare_does_not_hold_up_the_run(tmp_path):
     # dask keeps a task bound to a dead worker's address waiting for ever: the preparation runs
     # outside the task scheduler, so the run goes on with the restarted workers
-    make_frames(tmp_path, 2)
-    (tmp_path / "ready.py").write_text(READY)
-    marks = tmp_path / "marks"
-    marks.mkdir()
-    extra = f"plugins: [ready.py]\nsteps:\n  - plugin: needs-ready\n    params: {{marks: {marks.as_posix()}}}"
-    res = run_cli("run", wf(tmp_path, scheduler="local", extra=extra), env={"READY_TEST_DIE": "1"})
+    workflow, _ = ready_workflow(tmp_path, 2)
+    res = run_cli("run", workflow, env={"READY_TEST_DIE": "1"})
     assert "preparing worker" in res.stderr and "0 of 2 workers ready" in res.stderr
     # the restarted workers were never prepared, so needs-ready fails their frames: recorded, not hung
     assert res.returncode == 1
