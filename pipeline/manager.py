@@ -144,18 +144,38 @@ class Host:
             and none raised.
         """
         errors = []
-        for impl in reversed(getattr(self.pm.hook, hook).get_hookimpls()):
-            try:
-                result = impl.function(**{k: kwargs[k] for k in impl.argnames})
-            except Exception as exc:
-                errors.append((impl.plugin_name, exc))
-                continue
-            if result is not None:
+        for name, result, exc in self._each(hook, kwargs):
+            if exc is not None:
+                errors.append((name, exc))
+            elif result is not None:
                 return result
         if errors:
             name, exc = errors[0]
             raise exc.__class__(f"{exc} [plugin {name}]") if _reraisable(exc) else exc
         return None
+
+    def call_every(self, hook: str, **kwargs) -> list[tuple[str, Exception]]:
+        """Call every implementation of a hook, newest first; one that raises does not stop the others.
+
+        Returns
+        -------
+        list of (plugin name, exception)
+            The implementations that raised; results are ignored.
+        """
+        return [(name, exc) for name, _, exc in self._each(hook, kwargs) if exc is not None]
+
+    def _each(self, hook: str, kwargs: dict):
+        """(plugin name, result, exception) of every implementation of ``hook``, newest first, lazily.
+
+        Each implementation gets only the arguments it names (a hook
+        implementation may leave out parameters it does not need).
+        """
+        for impl in reversed(getattr(self.pm.hook, hook).get_hookimpls()):
+            try:
+                result, exc = impl.function(**{k: kwargs[k] for k in impl.argnames}), None
+            except Exception as err:
+                result, exc = None, err
+            yield impl.plugin_name, result, exc
 
     def hooks_of(self, plugin) -> list[str]:
         """Names of the hooks a plugin implements."""

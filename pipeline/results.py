@@ -51,19 +51,19 @@ def consolidate(store) -> None:
 
     Parameters
     ----------
-    store : path-like or zarr store
-        The store (a folder, or a zarr store object such as a MemoryStore).
+    store : str or zarr store
+        A folder's path, or a zarr store object such as a MemoryStore.
     """
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part")
-        zarr.consolidate_metadata(str(store) if isinstance(store, (str, os.PathLike)) else store)
+        zarr.consolidate_metadata(store)
 
 
 #: Name of the metadata document of every zarr 3 group and array.
 METADATA_FILE = "zarr.json"
 
 
-def _spill(held: dict, folder: Path, made: set, metadata_too: bool) -> int:
+def _spill(held: dict, folder: Path, made: set, metadata_too: bool) -> None:
     """Write the objects of an in-memory zarr store to files under ``folder`` and drop them from memory.
 
     Parameters
@@ -78,22 +78,13 @@ def _spill(held: dict, folder: Path, made: set, metadata_too: bool) -> int:
     metadata_too : bool
         Also write (and drop) the ``zarr.json`` documents; otherwise they
         stay in memory, so that the metadata can still be consolidated.
-
-    Returns
-    -------
-    int
-        Bytes written.
     """
-    written = 0
     for key in [k for k in held if metadata_too or not k.endswith(METADATA_FILE)]:
         target = folder.joinpath(*key.split("/"))
         if target.parent not in made:
             target.parent.mkdir(parents=True, exist_ok=True)
             made.add(target.parent)
-        data = held.pop(key).to_bytes()
-        target.write_bytes(data)
-        written += len(data)
-    return written
+        target.write_bytes(held.pop(key).to_bytes())
 
 
 def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:

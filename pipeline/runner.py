@@ -196,7 +196,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
             for res in ready:
                 for err in res.get("errors", ()):
                     log.warning("preparing worker %s: %s", res.get("pid"), err)
-            took = [r["seconds"] for r in ready if not r.get("errors") and np.isfinite(r.get("seconds", np.nan))]
+            took = [r["seconds"] for r in ready if not r.get("errors")]
             log.info("%d of %d workers ready (imports and plugin tables: %.1f s at most)", len(took), len(ready),
                      max(took, default=0.0))
             progress = Progress(len(todo), log, tty=tty)

@@ -105,18 +105,14 @@ def prepare_worker(job: FrameJob) -> dict:
     key = (tuple(job.plugins), repr(job.steps))
     if key in _PREPARED:
         return {"pid": os.getpid(), "seconds": 0.0, "errors": []}
-    errors = []
     try:
         host = worker_host(tuple(job.plugins))
     except Exception as exc:  # the frames will fail with the same error, named per frame
         return {"pid": os.getpid(), "seconds": time.perf_counter() - t0,
                 "errors": [f"plugin host: {exc.__class__.__name__}: {exc}"]}
     steps = {name: dict(params) for name, _stage, params in job.steps}
-    for impl in reversed(host.pm.hook.grainhabit_prepare_worker.get_hookimpls()):
-        try:
-            impl.function(steps=steps)
-        except Exception as exc:
-            errors.append(f"{impl.plugin_name}: {exc.__class__.__name__}: {exc}")
+    errors = [f"{name}: {exc.__class__.__name__}: {exc}"
+              for name, exc in host.call_every("grainhabit_prepare_worker", steps=steps)]
     _PREPARED.add(key)
     return {"pid": os.getpid(), "seconds": time.perf_counter() - t0, "errors": errors}
 

@@ -459,6 +459,5 @@ def grainhabit_prepare_worker(steps):
     """Build the Wulff model library, its plane tables and the plate/rod signatures once per worker."""
     if STEP.name not in steps:
         return
-    lib = gr.fit_kwargs(None)["library"]
-    gr.prepare_tables(lib)
+    lib = gr.prepare_fit(None)  # the library classify_grain fits with (the fit step's defaults)
     family_signatures(lib.signatures.shape[1])

@@ -572,9 +572,21 @@ def _planes(body, rotation, upward: bool):
     return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
 
 
-def prepare_tables(lib: ModelLibrary) -> None:
-    """Build the plane tables of ``lib`` now (kept for the process, as the first fit would)."""
+def prepare_fit(params=None) -> ModelLibrary:
+    """Build the model library of this step's parameters and its plane tables now, as the first fit would.
+
+    Both are kept for the life of the process (``lru_cache`` and the tables
+    cache), so a worker that calls this before its first frame pays nothing
+    for them in a frame.
+
+    Returns
+    -------
+    ModelLibrary
+        The library :func:`fit_kwargs` gives for ``params``.
+    """
+    lib = fit_kwargs(params)["library"]
     _tables(lib)
+    return lib
 
 
 def _tables(lib: ModelLibrary) -> _Tables:
@@ -1368,5 +1380,4 @@ def grainhabit_prepare_worker(steps):
     """Build the model library of this step's parameters and its plane tables once per worker."""
     if STEP.name not in steps:
         return
-    prepare_tables(fit_kwargs(steps[STEP.name])["library"])
-    import plugins.measure  # noqa: F401  (grain contours)
+    prepare_fit(steps[STEP.name])

@@ -164,8 +164,7 @@ def noise_model(image: np.ndarray, n_bins: int = 16) -> tuple[float, float]:
         variances.append((1.4826 * mad) ** 2)
     if len(means) < 2:
         return 0.0, float(np.var(d))
-    a, b = nonnegative_line(np.asarray(means), np.asarray(variances))
-    return a, b
+    return nonnegative_line(np.asarray(means), np.asarray(variances))
 
 
 def nonnegative_line(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
