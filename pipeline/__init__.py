@@ -1,9 +1,9 @@
 """grainhabit host: runs workflow files over micrograph frames with plugins.
 
-Plugins implement the hooks in :mod:`pipeline.hookspecs` and mark them with
+Plugins implement the hooks in :mod:`grainhabit.hookspecs` and mark them with
 :data:`hookimpl`::
 
-    from pipeline import hookimpl
+    from grainhabit import hookimpl
 
     @hookimpl
     def grainhabit_segment(frame, params):

@@ -1,4 +1,4 @@
-"""``python -m pipeline`` runs the ``grainhabit`` command line."""
+"""``python -m grainhabit`` runs the ``grainhabit`` command line."""
 
 import sys
 

@@ -158,6 +158,9 @@ def _api() -> int:
 
 
 def _benchmarks(host: Host) -> dict:
+    from .manager import load_benchmarks
+
+    load_benchmarks(host)
     out = {}
     for d in host.pm.hook.grainhabit_benchmarks():
         out.update(d or {})

@@ -60,7 +60,7 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
         In frame order. ``frame_info`` holds the listing's view of the frame
         (``source``, ``sample``, ``content_hash``, ``stage_key`` and extra
         text fields); ``staged`` is a result from
-        :func:`pipeline.staging.read_staged`.
+        :func:`grainhabit.staging.read_staged`.
     extra_columns : iterable of Column
         Units and long names of further per-grain columns (from the steps'
         ``StepInfo.outputs``).

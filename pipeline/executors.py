@@ -25,7 +25,7 @@
   (for debugging a plugin with a debugger or print statements).
 
 Before the first frame, :meth:`prepare` runs a function once on every worker
-(the runner uses it for :func:`pipeline.task.prepare_worker`: imports and
+(the runner uses it for :func:`grainhabit.task.prepare_worker`: imports and
 lookup tables of the plugins, built on all workers at once).
 
 Results are yielded as frames finish, with at most ``max_in_flight`` tasks

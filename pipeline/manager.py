@@ -27,27 +27,32 @@ from .params import FRAME_STAGES, STAGES, StepInfo
 
 #: Built-in plugin modules, registered in this order.
 DEFAULT_PLUGINS = (
-    "plugins.read_tiff",
-    "plugins.archive",
-    "plugins.preprocess",
-    "plugins.segment",
-    "plugins.measure",
-    "plugins.classify",
-    "plugins.growth",
-    "plugins.thickness",
-    "plugins.shadow_thickness",
-    "plugins.summary",
-    "plugins.report",
-    "plugins.compare",
-    "plugins.aggregate",
-    "plugins.demo",
-    "plugins.scaffold",
-    "plugins.bench_accuracy",
-    "plugins.bench_measure",
-    "plugins.bench_habit",
-    "plugins.bench_throughput",
-    "plugins.bench_memory",
-    "plugins.bench_profile",
+    "grainhabit.plugins.readers.tiff",
+    "grainhabit.plugins.readers.archive",
+    "grainhabit.plugins.preprocess.flatten_background",
+    "grainhabit.plugins.segment.segment_grains",
+    "grainhabit.plugins.measure.measure_grains",
+    "grainhabit.plugins.habit.classify_habit",
+    "grainhabit.plugins.habit.fit_growth_ratio",
+    "grainhabit.plugins.thickness.known_thickness",
+    "grainhabit.plugins.thickness.shadow_thickness",
+    "grainhabit.plugins.survey.summarise_samples",
+    "grainhabit.plugins.survey.write_report",
+    "grainhabit.plugins.survey.compare",
+    "grainhabit.plugins.survey.aggregate",
+    "grainhabit.plugins.synthetic.demo",
+    "grainhabit.plugins.scaffold.new_plugin",
+)
+
+#: Built-in benchmarks: registered only by ``grainhabit bench`` (:func:`load_benchmarks`),
+#: so neither a run nor a worker imports them.
+BENCHMARK_PLUGINS = (
+    "grainhabit.plugins.bench.accuracy",
+    "grainhabit.plugins.bench.measure",
+    "grainhabit.plugins.bench.habit",
+    "grainhabit.plugins.bench.throughput",
+    "grainhabit.plugins.bench.memory",
+    "grainhabit.plugins.bench.profile",
 )
 
 #: Step used for a stage when the workflow names none. Stages missing here
@@ -216,10 +221,10 @@ def register(host: Host, module: ModuleType, origin: str) -> None:
             f"plugin {name!r} was written for hook API {api}, this grainhabit has API {hookspecs.API_VERSION}"
         )
     info = getattr(module, "STEP", None)
-    reg_name = name
+    reg_name = getattr(module, "NAME", None) if isinstance(getattr(module, "NAME", None), str) else name
     if info is not None:
         if not isinstance(info, StepInfo):
-            raise PluginError(f"plugin {name!r}: STEP must be a pipeline.params.StepInfo")
+            raise PluginError(f"plugin {name!r}: STEP must be a grainhabit.params.StepInfo")
         hook = f"grainhabit_{info.stage}"
         if not callable(getattr(module, hook, None)):
             raise PluginError(f"plugin {name!r}: step {info.name!r} declares stage {info.stage!r} but has no {hook}()")
@@ -295,10 +300,7 @@ def make_host(extra: tuple[str, ...] = (), autoload: bool | None = None) -> Host
     pm = _PluginManager("grainhabit")
     pm.add_hookspecs(hookspecs)
     host = Host(pm)
-    for mod in DEFAULT_PLUGINS:
-        if importlib.util.find_spec(mod) is None:
-            continue  # a built-in left out of this installation (tests check none is)
-        _try(host, mod, "built-in", lambda mod=mod: importlib.import_module(mod))
+    load_builtins(host, DEFAULT_PLUGINS)
     if autoload is None:
         autoload = not os.environ.get("GRAINHABIT_NO_AUTOLOAD")
     if autoload:
@@ -310,6 +312,19 @@ def make_host(extra: tuple[str, ...] = (), autoload: bool | None = None) -> Host
     return host
 
 
+def load_builtins(host: Host, modules: tuple[str, ...]) -> None:
+    """Register built-in plugin modules (problems are collected in ``host.problems``)."""
+    for mod in modules:
+        if importlib.util.find_spec(mod) is None:
+            continue  # a built-in left out of this installation (tests check none is)
+        _try(host, mod, "built-in", lambda mod=mod: importlib.import_module(mod))
+
+
+def load_benchmarks(host: Host) -> None:
+    """Register the built-in benchmarks (:data:`BENCHMARK_PLUGINS`) into ``host``."""
+    load_builtins(host, BENCHMARK_PLUGINS)
+
+
 _WORKER_HOSTS: dict[tuple, Host] = {}
 
 
@@ -317,7 +332,7 @@ class _PluginManager(pluggy.PluginManager):
     """pluggy's manager, not looking inside modules that a plugin binds as attributes.
 
     pluggy inspects every attribute of a plugin module for the hook marker;
-    for a module bound with :func:`pipeline.lazy.lazy_module` that
+    for a module bound with :func:`grainhabit.lazy.lazy_module` that
     inspection alone would import it.
     """
 
@@ -341,6 +356,6 @@ def stage_index(stage: str) -> int:
 
 
 __all__ = [
-    "DEFAULT_PLUGINS", "DEFAULT_CHAIN", "FRAME_STAGES", "Host", "PluginError", "make_host", "worker_host",
+    "BENCHMARK_PLUGINS", "DEFAULT_PLUGINS", "load_benchmarks", "DEFAULT_CHAIN", "FRAME_STAGES", "Host", "PluginError", "make_host", "worker_host",
     "register", "stage_index",
 ]

@@ -7,7 +7,7 @@ this one declaration.
 
 Examples
 --------
->>> from pipeline.params import Param, StepInfo
+>>> from grainhabit.params import Param, StepInfo
 >>> STEP = StepInfo(
 ...     name="segment-grains", stage="segment", version="1.0",
 ...     summary="Otsu threshold and distance-transform watershed.",

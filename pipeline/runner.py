@@ -35,6 +35,7 @@ from .frame import FrameRef
 from .lock import RunLock, describe
 from .logs import Progress
 from .manager import Host
+from .observe import RunObserver
 from .results import recover, root_attrs, write_results
 from .staging import clean_temporaries, frame_key, is_staged, read_staged, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
@@ -117,7 +118,8 @@ def list_frames(plan: Plan, host: Host, processing_key: str) -> tuple[list[Liste
         unreadable files); they become failed frames.
     """
     inp = plan.config["input"]
-    files, unmatched = find_inputs(plan)
+    in_folders: set = set()
+    files, unmatched = find_inputs(plan, in_folders)
     problems = [(p, "no file matches this input pattern") for p in unmatched]
     sidecar = _read_sidecar(inp.get("metadata_csv"))
     frames = []
@@ -128,7 +130,10 @@ def list_frames(plan: Plan, host: Host, processing_key: str) -> tuple[list[Liste
             problems.append((path, f"{exc.__class__.__name__}: {exc}"))
             continue
         if refs is None:
-            problems.append((path, "no reader plugin recognises this file"))
+            if path in in_folders:
+                log.debug("input %s: no reader recognises this file; passed over", path)
+            else:
+                problems.append((path, "no reader plugin recognises this file"))
             continue
         for ref in refs:
             src_path = ref.source.split("#")[0] if "#" in ref.source else ref.source
@@ -148,16 +153,21 @@ def _failed_result(source: str, sample: str, reason: str) -> dict:
             "thumb": np.zeros((0, 0), np.uint8), "thumb_factor": 1.0}
 
 
-def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) -> RunOutcome:
+def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
+        observer: RunObserver | None = None) -> RunOutcome:
     """Run a validated workflow. See the module docstring for the order.
+
+    ``observer`` (a :class:`grainhabit.observe.RunObserver`) is told the
+    run's phases; benchmarks time them through it.
 
     Raises
     ------
-    pipeline.lock.LockHeld
+    grainhabit.lock.LockHeld
         If another live run holds the output's lock (nothing is written).
     KeyboardInterrupt
         On Ctrl-C or SIGTERM; what was staged is kept for the next run.
     """
+    obs = observer or RunObserver()
     t_start = time.monotonic()
     started = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     results = plan.config["output"]["results"]
@@ -171,7 +181,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
         if clean_temporaries(stage):
             log.info("removed half-written staged files left by an interrupted run")
         pkey = plan.processing_key(host)
-        frames, problems = list_frames(plan, host, pkey)
+        with obs.phase("list"):
+            frames, problems = list_frames(plan, host, pkey)
         log.info("workflow %s: %d frames listed from %s", plan.name, len(frames),
                  plan.config["input"]["archive"] or ", ".join(plan.config["input"]["paths"]))
         for path, reason in problems:
@@ -187,7 +198,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]))
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
-            executor = make_executor(plan.config["execution"], upload=upload)
+            executor = obs.executor(make_executor(plan.config["execution"], upload=upload))
             executor.start()
             log.info("processing %d frames on %s", len(todo), executor.description)
             for line in executor.advice:
@@ -216,7 +227,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
                         progress.update(False, 0)
                         continue
                     rec = res["record"]
-                    write_staged(stage, key, res)
+                    with obs.phase("stage_write"):
+                        write_staged(stage, key, res)
                     outcome.frames_processed += 1
                     if rec["status"] != "ok":
                         log.error("frame %s failed: %s", f.ref.source, rec["error"])
@@ -227,23 +239,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
                 progress.close()
                 executor.close()
 
-        # consolidate: every listed frame in order, then kept frames of missing files
-        entries = []
-        for path, reason in problems:
-            entries.append(({"source": path, "sample": "", "content_hash": "", "stage_key": ""},
-                            _failed_result(path, "", reason)))
-        listed_sources = set()
-        for f in frames:
-            listed_sources.add(f.ref.source)
-            staged = transient.get(f.key)
-            if staged is None:
-                staged = read_staged(stage / f"{f.key}.npz")
-            info = {"source": f.ref.source, "sample": f.sample, "content_hash": f.ref.content_hash,
-                    "stage_key": f.key, **f.fields}
-            entries.append((info, staged))
-        entries.extend(_missing_frames(results, listed_sources, stage, plan.config["input"]["on_missing"]))
-
-        groups = build_datasets(entries, extra_columns=_declared_columns(host, plan))
+        with obs.phase("consolidate"):
+            groups = _consolidate(frames, problems, transient, results, stage, plan, host)
         grains, frames_ds = groups["grains"], groups["frames"]
         ok_frames = [i for i, s in enumerate(frames_ds["status"].values) if str(s) == "ok"]
         outcome.frames_ok = len(ok_frames)
@@ -256,7 +253,9 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
         survey_errors: list[str] = []
         for step in [s for s in plan.survey_steps if s.stage == "summarise"]:
             try:
-                out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary, params=step.params)
+                with obs.phase("summarise"):
+                    out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary,
+                                         params=step.params)
                 if not isinstance(out, dict) or "summary" not in out:
                     raise TypeError(f"returned {type(out).__name__}; expected a dict with a 'summary' dataset")
                 summary.update(out)
@@ -281,14 +280,16 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
                  "versions": json.dumps(versions(host)), "runs": json.dumps(previous_runs + [record]),
                  "data_note": plan.config.get("note") or "",
                  "conventions": "origin at the top-left corner of the top-left pixel; x along columns, y along rows; nm"}
-        write_results(results, groups, attrs)
+        with obs.phase("results_write"):
+            write_results(results, groups, attrs)
         log.info("results written to %s", results)
 
         report_dir = plan.config["output"]["report"]
         if report_dir:
             for step in [s for s in plan.survey_steps if s.stage == "report"]:
                 try:
-                    files = host.call_step(step.name, results=results, out_dir=report_dir, params=step.params)
+                    with obs.phase("report"):
+                        files = host.call_step(step.name, results=results, out_dir=report_dir, params=step.params)
                 except Exception as exc:
                     msg = f"{step.name}: {exc.__class__.__name__}: {exc}"
                     log.error("report step %s", msg)
@@ -302,6 +303,25 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None) ->
                 log.info("report written to %s", outcome.report)
     outcome.seconds = time.monotonic() - t_start
     return outcome
+
+
+def _consolidate(frames, problems, transient, results, stage, plan, host) -> dict:
+    """Datasets of the input problems, every listed frame in order, then kept frames of missing files."""
+    entries = []
+    for path, reason in problems:
+        entries.append(({"source": path, "sample": "", "content_hash": "", "stage_key": ""},
+                        _failed_result(path, "", reason)))
+    listed_sources = set()
+    for f in frames:
+        listed_sources.add(f.ref.source)
+        staged = transient.get(f.key)
+        if staged is None:
+            staged = read_staged(stage / f"{f.key}.npz")
+        info = {"source": f.ref.source, "sample": f.sample, "content_hash": f.ref.content_hash,
+                "stage_key": f.key, **f.fields}
+        entries.append((info, staged))
+    entries.extend(_missing_frames(results, listed_sources, stage, plan.config["input"]["on_missing"]))
+    return build_datasets(entries, extra_columns=_declared_columns(host, plan))
 
 
 def _previous_runs(results: str) -> list:

@@ -22,7 +22,6 @@ import yaml
 from .manager import DEFAULT_CHAIN, Host
 from .params import FRAME_STAGES, STAGES, ParamError
 
-TIFF_SUFFIXES = (".tif", ".tiff", ".btf", ".tf8", ".tf2")
 
 #: Placeholders allowed in ``input.sample`` and ``input.fields`` templates.
 TEMPLATE_FIELDS = ("parent", "grandparent", "stem", "name", "page")
@@ -374,8 +373,15 @@ def _resolve_steps(plan: Plan, steps: list, host: Host) -> None:
     plan.survey_steps = [s for s in chain if s.stage not in FRAME_STAGES]
 
 
-def find_inputs(plan: Plan) -> tuple[list[str], list[str]]:
+def find_inputs(plan: Plan, folder_files: set | None = None) -> tuple[list[str], list[str]]:
     """Expand ``input.paths`` (globs, folders) or take ``input.archive``.
+
+    Every file found is offered to the readers, which decide what they can
+    open; the host keeps no list of image suffixes. Files inside a folder
+    input (hidden files left out) are added to ``folder_files`` if given, so
+    that the caller can pass over the ones no reader recognises (a README
+    beside the frames), while a file named or globbed on its own that no
+    reader recognises is an input problem.
 
     Returns
     -------
@@ -395,7 +401,10 @@ def find_inputs(plan: Plan) -> tuple[list[str], list[str]]:
         for hit in hits:
             if os.path.isdir(hit):
                 for root, _, names in os.walk(hit):
-                    found.extend(os.path.join(root, n) for n in sorted(names) if n.lower().endswith(TIFF_SUFFIXES))
+                    inside = [os.path.join(root, n) for n in sorted(names) if not n.startswith(".")]
+                    found.extend(inside)
+                    if folder_files is not None:
+                        folder_files.update(inside)
             else:
                 found.append(hit)
         if not found:
@@ -412,10 +421,12 @@ def template_values(source_path: str, page: int) -> dict:
     p = Path(source_path)
     name = p.name
     stem = name
-    for suffix in (".ome.tiff", ".ome.tif") + TIFF_SUFFIXES:
-        if stem.lower().endswith(suffix):
-            stem = stem[: -len(suffix)]
+    for compound in (".ome.tiff", ".ome.tif"):  # OME-TIFF's two-part suffix
+        if stem.lower().endswith(compound):
+            stem = stem[: -len(compound)]
             break
+    else:
+        stem = p.stem
     return {
         "parent": p.parent.name,
         "grandparent": p.parent.parent.name,

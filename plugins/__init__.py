@@ -1,1 +1,1 @@
-"""Built-in grainhabit plugins: each module is one capability behind a hook."""
+"""Built-in grainhabit plugins, in folders by topic along a frame's path (see DEVELOPERS.md, "Where does X live")."""

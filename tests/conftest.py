@@ -84,7 +84,7 @@ def run_cli(*args, cwd=None, env=None, timeout=300) -> subprocess.CompletedProce
     import contextlib
     import io
 
-    from pipeline.cli import main
+    from grainhabit.cli import main
 
     out, err = io.StringIO(), io.StringIO()
     saved_env = dict(os.environ)
@@ -107,11 +107,11 @@ def run_cli(*args, cwd=None, env=None, timeout=300) -> subprocess.CompletedProce
 
 
 def run_cli_subprocess(*args, cwd=None, env=None, timeout=300) -> subprocess.CompletedProcess:
-    """Run ``python -m pipeline ARGS`` as a separate process; return the completed process (text)."""
+    """Run ``python -m grainhabit ARGS`` as a separate process; return the completed process (text)."""
     e = dict(os.environ)
     e.setdefault("GRAINHABIT_NO_AUTOLOAD", "1")
     e.update(env or {})
-    return subprocess.run([sys.executable, "-m", "pipeline", *map(str, args)], cwd=cwd, env=e,
+    return subprocess.run([sys.executable, "-m", "grainhabit", *map(str, args)], cwd=cwd, env=e,
                           capture_output=True, text=True, timeout=timeout)
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import zarr
 
-from plugins import archive
+from grainhabit.plugins.readers import archive
 
 from conftest import draw_frame, run_cli, write_tiff
 

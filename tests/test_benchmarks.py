@@ -17,8 +17,9 @@ import numpy as np
 import pytest
 import tifffile
 
-from plugins import bench_memory, bench_throughput
-from plugins import benchutil as bu
+from grainhabit.plugins.bench import memory as bench_memory
+from grainhabit.plugins.bench import throughput as bench_throughput
+from grainhabit.plugins.bench import harness as bu
 
 
 @pytest.fixture(scope="module")
@@ -49,9 +50,9 @@ def test_variants_are_distinct_and_keep_the_pixels(tiny_images):
 
 
 def test_write_frames_and_workflow(tmp_path, tiny_images):
-    from pipeline.manager import make_host
-    from pipeline.runner import list_frames
-    from pipeline.workflow import validate
+    from grainhabit.manager import make_host
+    from grainhabit.runner import list_frames
+    from grainhabit.workflow import validate
 
     paths = bu.write_frames(tmp_path / "data" / "s1", tiny_images, 5)
     assert [p.name for p in paths] == [f"field{i:04d}.tif" for i in range(5)]
@@ -83,18 +84,18 @@ def test_ceiling_case_runs_disjoint_shares_at_once(tmp_path, tiny_images):
 
 
 def test_run_clock_times_a_serial_run(tmp_path, tiny_images):
-    from pipeline.manager import make_host
-    from pipeline.runner import run
-    import pipeline.runner as runner
-    from pipeline.workflow import validate
+    from grainhabit.manager import make_host
+    from grainhabit.runner import run
+    import grainhabit.runner as runner
+    from grainhabit.workflow import validate
 
     bu.write_frames(tmp_path / "data" / "s", tiny_images)
     wf = bu.write_workflow(tmp_path / "wf.yaml", tmp_path / "data", tmp_path / "out" / "r.zarr",
                            scheduler="serial")
     host = make_host(autoload=False)
     saved = runner.write_staged
-    with bu.RunClock(host) as clock:
-        outcome = run(validate(str(wf), host), host, fresh=True, tty=False)
+    clock = bu.RunClock()
+    outcome = run(validate(str(wf), host), host, fresh=True, tty=False, observer=clock)
     assert runner.write_staged is saved and "call_step" not in vars(host)  # restored
     assert outcome.frames_ok == 2
     for phase in ("list", "cluster_start", "stage_write", "consolidate", "summarise", "results_write"):
@@ -156,15 +157,15 @@ def test_bad_arguments_exit_2():
 
 
 def test_benchmarks_are_registered():
-    from pipeline.cli import _benchmarks
-    from pipeline.manager import make_host
+    from grainhabit.cli import _benchmarks
+    from grainhabit.manager import make_host
 
     names = _benchmarks(make_host(autoload=False))
     assert names["throughput"] is bench_throughput.run and names["memory"] is bench_memory.run
 
 
 def test_profile_cli_ranks_functions(tmp_path, capsys):
-    from plugins import bench_profile
+    from grainhabit.plugins.bench import profile as bench_profile
 
     raw = tmp_path / "p.prof"
     assert bench_profile.run(["--frames", "1", "--size", "128", "--top", "3", "--save", str(raw)]) == 0

@@ -1,6 +1,6 @@
 """Tests of classify-habit on shapes drawn with skimage.draw (invented test data).
 
-Each grain is drawn from the crystal model (:mod:`plugins.crystal`) or as a
+Each grain is drawn from the crystal model (:mod:`grainhabit.plugins.habit.crystal`) or as a
 plain polygon, with either secondary-electron-like facet shading (bright
 polarity) or transmission thickness contrast (dark polarity).
 """
@@ -8,16 +8,16 @@ import numpy as np
 import pytest
 from skimage.draw import ellipse
 
-from plugins import classify as cl
-from plugins import crystal as cr
-from plugins import outline as ol
+from grainhabit.plugins.habit import classify_habit as cl
+from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.measure import outline as ol
 
 # --------------------------------------------------------------- drawing helpers
 from skimage.draw import polygon
 
-from pipeline.frame import FrameData
+from grainhabit.frame import FrameData
 
-from pipeline.frame import FrameData
+from grainhabit.frame import FrameData
 
 
 def body_and_rotation(alpha, face, rotation_deg):

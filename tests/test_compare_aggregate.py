@@ -8,8 +8,10 @@ import json
 import numpy as np
 import pytest
 
-from pipeline.results import open_results, write_results
-from plugins import aggregate, compare, report
+from grainhabit.results import open_results, write_results
+from grainhabit.plugins.survey import aggregate
+from grainhabit.plugins.survey import compare
+from grainhabit.plugins.survey import write_report as report
 from test_summary import SAMPLES, make_groups, make_store
 
 

@@ -7,7 +7,7 @@ import pytest
 from scipy.spatial import ConvexHull
 from scipy.spatial.transform import Rotation
 
-from plugins import crystal as cr
+from grainhabit.plugins.habit import crystal as cr
 
 SQ2, SQ3 = np.sqrt(2.0), np.sqrt(3.0)
 

@@ -1,7 +1,6 @@
 """Speed-ups that must not change results: each fast path against its reference.
 
-References named beside each check: scipy.signal (Savitzky-Golay
-coefficients), scikit-image's watershed without a mask (the band-only
+References named beside each check: scikit-image's watershed without a mask (the band-only
 flood), numpy's per-mask medians (the sorted grouping of the noise model).
 """
 
@@ -15,21 +14,13 @@ import sys
 import numpy as np
 import pytest
 from scipy import ndimage as ndi
-from scipy.signal import savgol_coeffs
 
-from plugins import benchutil as bu
-from plugins import preprocess as pp
-from plugins import segment as sg
-from plugins.outline import savgol_smoothing_coefficients
+from grainhabit.plugins.bench import harness as bu
+from grainhabit.plugins.common import image_stats as imstats
+from grainhabit.plugins.preprocess import flatten_background as pp
+from grainhabit.plugins.segment import segment_grains as sg
 
 from conftest import REPO, reference_gap_lines
-
-
-@pytest.mark.parametrize("window,order", [(3, 1), (5, 2), (7, 3), (9, 2), (11, 4), (15, 3)])
-def test_savgol_coefficients_match_scipy(window, order):
-    # reference library: scipy.signal.savgol_coeffs (smoothing, deriv 0, centre position)
-    np.testing.assert_allclose(savgol_smoothing_coefficients(window, order), savgol_coeffs(window, order),
-                               atol=1e-12)
 
 
 def _full_frame_foreground(arr, levels, w=3.0):
@@ -87,20 +78,21 @@ def test_noise_model_recovers_poisson_gaussian_parameters():
 def test_regular_subsample_bounds():
     img = np.zeros((768, 1000))
     for n in (1000, 300_000, 10**7):
-        sub = pp.regular_subsample(img, n)
+        sub = imstats.regular_subsample(img, n)
         assert sub.size <= max(n, 1) * 1.01 or sub.size == img.size
         assert sub.size >= min(img.size, n) / 4.5
-    assert pp.regular_subsample(img, 10**7) is img or pp.regular_subsample(img, 10**7).base is img
+    assert imstats.regular_subsample(img, 10**7) is img or imstats.regular_subsample(img, 10**7).base is img
 
 
 def test_worker_host_imports_no_survey_libraries(tmp_path):
-    # a dask worker builds the host and runs the default frame chain: xarray, matplotlib, scipy.stats,
-    # scipy.signal and scipy.optimize (about 2 s of imports together) stay unloaded
+    # a dask worker builds the host and runs the default frame chain: the survey libraries xarray,
+    # matplotlib and pandas stay unloaded (workers are prepared once; frame kernels may use scipy.signal,
+    # which imports scipy.stats, and scipy.optimize)
     frame = bu.write_frames(tmp_path / "d", bu.render_frames(1, 192, grains=4, seed=2))[0]
-    code = ("import sys, json; from pipeline.manager import worker_host; from pipeline.task import process_frame; "
-            "h = worker_host(()); from plugins.bench_throughput import serial_loop; "
+    code = ("import sys, json; from grainhabit.manager import worker_host; from grainhabit.task import process_frame; "
+            "h = worker_host(()); from grainhabit.plugins.bench.throughput import serial_loop; "
             f"serial_loop([{str(frame)!r}]); "
-            "loaded = [m for m in ('xarray', 'matplotlib', 'scipy.stats', 'scipy.signal', 'scipy.optimize', "
+            "loaded = [m for m in ('xarray', 'matplotlib', "
             "'pandas') "
             "if m in sys.modules and type(sys.modules[m]).__name__ != '_LazyModule']; "
             "print(json.dumps({'loaded': loaded, 'hooks': len(h.pm.get_plugins())}))")
@@ -112,7 +104,7 @@ def test_worker_host_imports_no_survey_libraries(tmp_path):
 
 
 def test_lazy_module_loads_on_first_attribute():
-    from pipeline.lazy import lazy_module
+    from grainhabit.lazy import lazy_module
 
     name = "json.tool"
     sys.modules.pop(name, None)
@@ -130,7 +122,7 @@ def _malloc_env():
 def test_local_workers_keep_glibc_malloc_thresholds(monkeypatch):
     # dask's nanny default MALLOC_TRIM_THRESHOLD_=65536 fixes glibc's mmap threshold and slowed the kernels
     # 25-45 % in workers; the local cluster leaves it unset unless the environment sets it
-    from pipeline.executors import DaskExecutor
+    from grainhabit.executors import DaskExecutor
 
     monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_", raising=False)
     ex = DaskExecutor(workers=1)
@@ -144,7 +136,7 @@ def test_local_workers_keep_glibc_malloc_thresholds(monkeypatch):
 
 
 def test_worker_advice_names_slowing_settings():
-    from pipeline.executors import worker_advice
+    from grainhabit.executors import worker_advice
 
     assert worker_advice({"a": {"malloc_trim": None, "profile": False, "tick_s": 0.5}}) == []
     lines = worker_advice({"a": {"malloc_trim": "65536", "profile": True, "tick_s": 0.02},
@@ -197,7 +189,7 @@ def test_results_written_through_memory_equal_xarray_to_zarr(tmp_path):
     import xarray as xr
     import zarr
 
-    from pipeline.results import _prepare, open_results, write_groups
+    from grainhabit.results import _prepare, open_results, write_groups
 
     rng = np.random.default_rng(3)
     n = 257
@@ -228,7 +220,7 @@ def test_results_written_through_memory_equal_xarray_to_zarr(tmp_path):
 
 
 def test_results_writer_refuses_an_existing_folder(tmp_path):
-    from pipeline.results import write_groups
+    from grainhabit.results import write_groups
 
     (tmp_path / "there.zarr").mkdir()
     (tmp_path / "there.zarr" / "keep.txt").write_text("x")

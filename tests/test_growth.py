@@ -7,13 +7,13 @@ import math
 import numpy as np
 import pytest
 
-from plugins import crystal as cr
-from plugins import growth as gr
+from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit import fit_growth_ratio as gr
 from test_classify import body_and_rotation, draw_frame, draw_polygon_frame
 
 
 def fit_drawn(frame, interior=True):
-    contours = gr._contours_for(frame)
+    contours = gr.contours_for(frame)
     contour, inner = gr.grain_evidence(frame, contours, 0)
     return gr.fit_alpha(contour, inner if interior else None)
 
@@ -170,14 +170,14 @@ def test_radial_signature_equals_all_pairs_solution():
 def _drawn(alpha, face, rot_deg, contrast, noise=0.02, seed=0):
     body, rot = body_and_rotation(alpha, face, rot_deg)
     frame = draw_frame(body, rot, contrast=contrast, noise=noise, seed=seed)
-    return gr.grain_evidence(frame, gr._contours_for(frame), 0)
+    return gr.grain_evidence(frame, gr.contours_for(frame), 0)
 
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
 def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
     # reference: the single-model least-squares fit (_interior_rss)
     lib = gr.model_library()
-    tab = gr._tables(lib)
+    tab = gr.library_tables(lib)
     _, inner = _drawn(2.0, "100", 17.0, contrast)
     rng = np.random.default_rng(1)
     uniq = np.unique(lib.shape_id)
@@ -194,7 +194,7 @@ def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
 
 def test_batched_outline_distances_match_shift_distances():
     lib = gr.model_library()
-    tab = gr._tables(lib)
+    tab = gr.library_tables(lib)
     contour, _ = _drawn(1.8, "100", 9.0, "bright")
     sig = gr.radial_signature(contour, 256)
     shifts, dist, valid = gr.outline_candidates(sig, tab)

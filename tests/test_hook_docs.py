@@ -1,6 +1,6 @@
 """Every hook is documented: a docstring in the spec and a section in DEVELOPERS.md.
 
-Fails when a hook in :mod:`pipeline.hookspecs` has no ``### <hookname>``
+Fails when a hook in :mod:`grainhabit.hookspecs` has no ``### <hookname>``
 section in DEVELOPERS.md, when its docstring lacks a numpydoc ``Parameters``
 section (for hooks that take parameters) or ``Returns`` section (for hooks
 that return something), when a section does not mention every parameter or
@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import hookspecs
+from grainhabit import hookspecs
 
 DEVELOPERS = Path(__file__).resolve().parents[1] / "DEVELOPERS.md"
 

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.manager import DEFAULT_CHAIN, DEFAULT_PLUGINS, make_host
-from pipeline.workflow import validate
+from grainhabit.manager import DEFAULT_CHAIN, DEFAULT_PLUGINS, make_host
+from grainhabit.workflow import validate
 
 from conftest import REPO
 
@@ -33,8 +33,8 @@ def test_example_workflows_validate(path):
 def test_step_is_called_on_its_own_plugin_only(tmp_path):
     """Two steps of the same stage: the host calls the one the workflow names (subset_hook_caller)."""
     (tmp_path / "twins.py").write_text('''
-from pipeline import hookimpl
-from pipeline.params import StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import StepInfo
 GRAINHABIT_API = 1
 STEP = StepInfo(name="twin-a", stage="thickness")
 @hookimpl
@@ -42,8 +42,8 @@ def grainhabit_thickness(frame, params):
     return frame.with_note("a ran")
 ''')
     (tmp_path / "twin_b.py").write_text('''
-from pipeline import hookimpl
-from pipeline.params import StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import StepInfo
 GRAINHABIT_API = 1
 STEP = StepInfo(name="twin-b", stage="thickness")
 @hookimpl
@@ -52,7 +52,7 @@ def grainhabit_thickness(frame, params):
 ''')
     import numpy as np
 
-    from pipeline.frame import FrameData
+    from grainhabit.frame import FrameData
 
     host = make_host(extra=(str(tmp_path / "twins.py"), str(tmp_path / "twin_b.py")), autoload=False)
     f = FrameData(source="x", sample="s", raw=np.zeros((4, 4), np.float32), pixel_size_nm=1.0)

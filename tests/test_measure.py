@@ -1,4 +1,4 @@
-"""Tests of the measure-grains step (plugins.measure).
+"""Tests of the measure-grains step (grainhabit.plugins.measure.measure_grains).
 
 Checks against the outside world: ISO 9276-6 shape factors of exact shapes,
 handbook geometry (perimeter, Feret diameters, area, second moments of an
@@ -14,19 +14,12 @@ from scipy.spatial.distance import pdist
 from skimage.draw import ellipse
 from skimage.measure import find_contours, points_in_poly, regionprops, regionprops_table
 
-from pipeline.frame import FrameData
-from plugins import measure
-from plugins.bench_measure import REGIONPROPS_PROPERTIES, _agreement, make_label_image, run
-from plugins.measure import (
-    COLUMNS,
-    STEP,
-    convex_hulls,
-    feret_diameters,
-    grainhabit_measure,
-    label_moments,
-    measure_labels,
-    trace_outlines,
-)
+from grainhabit.frame import FrameData
+from grainhabit.plugins.measure import measure_grains as measure
+from grainhabit.plugins.bench.measure import REGIONPROPS_PROPERTIES, _agreement, make_label_image, run
+from grainhabit.plugins.common.contours import trace_outlines
+from grainhabit.plugins.measure.convex import convex_hulls, feret_diameters
+from grainhabit.plugins.measure.measure_grains import COLUMNS, STEP, grainhabit_measure, label_moments, measure_labels
 
 PX = 2.5  # nm per pixel in the calibrated tests
 

@@ -63,7 +63,7 @@ def test_sigkill_then_resume_gives_identical_table(tmp_path):
 
     w = wf(tmp_path)
     env = dict(os.environ, GRAINHABIT_NO_AUTOLOAD="1")
-    proc = subprocess.Popen([sys.executable, "-m", "pipeline", "run", str(w)], env=env, start_new_session=True,
+    proc = subprocess.Popen([sys.executable, "-m", "grainhabit", "run", str(w)], env=env, start_new_session=True,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + 240
     while staged_count(tmp_path) < 3 and time.monotonic() < deadline and proc.poll() is None:
@@ -94,7 +94,7 @@ def test_fresh_ignores_staged(tmp_path):
 
 def _live_lock(results: Path) -> subprocess.Popen:
     """A process holding the results lock (it sleeps)."""
-    code = ("import sys, time; from pipeline.lock import RunLock; l = RunLock(sys.argv[1]).acquire(); "
+    code = ("import sys, time; from grainhabit.lock import RunLock; l = RunLock(sys.argv[1]).acquire(); "
             "print('held', flush=True); time.sleep(60)")
     p = subprocess.Popen([sys.executable, "-c", code, str(results)], stdout=subprocess.PIPE, text=True, cwd=REPO)
     assert p.stdout.readline().strip() == "held"
@@ -133,8 +133,8 @@ def test_stale_lock_is_taken_over(tmp_path):
 FLAKY = '''
 """Test plugin: fails on one frame, by raising or by killing its worker process."""
 import os
-from pipeline import hookimpl
-from pipeline.params import Param, StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import Param, StepInfo
 GRAINHABIT_API = 1
 STEP = StepInfo(name="flaky-thickness", stage="thickness", version="0.1", summary="fails on purpose",
                 params=(Param("victim", str, "frame01", doc="stem of the frame to fail on"),
@@ -235,7 +235,7 @@ def test_sigint_exits_130_and_keeps_staged(tmp_path):
     make_frames(tmp_path, 10)
     w = wf(tmp_path)
     env = dict(os.environ, GRAINHABIT_NO_AUTOLOAD="1")
-    proc = subprocess.Popen([sys.executable, "-m", "pipeline", "run", str(w)], env=env,
+    proc = subprocess.Popen([sys.executable, "-m", "grainhabit", "run", str(w)], env=env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 240
     while staged_count(tmp_path) < 2 and time.monotonic() < deadline and proc.poll() is None:
@@ -297,8 +297,8 @@ def test_distributed_run_equals_local_run(tmp_path, dask_cluster):
 READY = '''
 """Test plugin: a thickness step that refuses to run in a process its prepare hook has not prepared."""
 import os
-from pipeline import hookimpl
-from pipeline.params import Param, StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import Param, StepInfo
 GRAINHABIT_API = 1
 STEP = StepInfo(name="needs-ready", stage="thickness", version="0.1", summary="checks the worker was prepared",
                 params=(Param("marks", str, "", doc="folder for one file per prepared process"),

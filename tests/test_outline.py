@@ -1,4 +1,4 @@
-"""Tests of plugins.outline: polygon geometry, contour smoothing and corner fitting.
+"""Tests of grainhabit.plugins.measure.outline: polygon geometry, contour smoothing and corner fitting.
 
 Shapes are drawn here (pixel-centre sampling of exact polygons) at realistic
 grain sizes (ECD 30-80 px); their outlines come from scikit-image's
@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from skimage.measure import approximate_polygon, find_contours, points_in_poly
 
-from plugins.outline import (
+from grainhabit.plugins.measure.outline import (
     closed_length,
     douglas_peucker_closed,
     douglas_peucker_packed,

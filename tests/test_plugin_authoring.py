@@ -47,7 +47,7 @@ def _env(extra_path: Path | None = None) -> dict:
 
 
 def _cli(*args, cwd, env=None, timeout=300) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "pipeline", *map(str, args)], cwd=cwd, env=env or _env(),
+    return subprocess.run([sys.executable, "-m", "grainhabit", *map(str, args)], cwd=cwd, env=env or _env(),
                           capture_output=True, text=True, timeout=timeout)
 
 
@@ -73,8 +73,8 @@ FAULTY_STEPS = '''
 """Invented test plugin: a thickness step that misbehaves on chosen frames."""
 import os
 import numpy as np
-from pipeline import hookimpl
-from pipeline.params import StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import StepInfo
 
 GRAINHABIT_API = 1
 STEP = StepInfo(name="faulty-thickness", stage="thickness", version="1.0",
@@ -96,8 +96,8 @@ raise RuntimeError("vendor SDK for the instrument is not installed")
 '''
 
 OLD_API = '''
-from pipeline import hookimpl
-from pipeline.params import StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import StepInfo
 
 GRAINHABIT_API = 99
 STEP = StepInfo(name="future-step", stage="preprocess")
@@ -108,7 +108,7 @@ def grainhabit_preprocess(frame, params):
 '''
 
 RAISING_READER = '''
-from pipeline import hookimpl
+from grainhabit import hookimpl
 
 GRAINHABIT_API = 1
 
@@ -298,7 +298,7 @@ def test_example_plugin_runs_on_dask_workers_and_faults_stay_in_their_frame(auth
 
 
 def test_new_plugin_output_and_all_generated_tests_pass(authoring, tmp_path):
-    from plugins.scaffold import KINDS, write_package
+    from grainhabit.plugins.scaffold.new_plugin import KINDS, write_package
 
     made, scaffold = authoring["made"], authoring["scaffold"]
     assert f"created {scaffold}" in made.stdout and "pip install -e" in made.stdout
@@ -321,7 +321,7 @@ def test_new_plugin_output_and_all_generated_tests_pass(authoring, tmp_path):
 def test_new_plugin_refuses_bad_names_and_existing_folders(tmp_path, capsys):
     import argparse
 
-    from plugins.scaffold import _cmd_new_plugin, write_package
+    from grainhabit.plugins.scaffold.new_plugin import _cmd_new_plugin, write_package
 
     for bad in ("Bad_Name", "9lives", "double--hyphen", "grainhabit-x", "x" * 41, ""):
         with pytest.raises(ValueError, match="bad NAME"):
@@ -342,7 +342,7 @@ def test_new_plugin_refuses_bad_names_and_existing_folders(tmp_path, capsys):
 
 
 def test_workflow_plugin_whose_import_fails_is_refused_by_name(tmp_path, monkeypatch, capsys):
-    from pipeline.cli import main
+    from grainhabit.cli import main
 
     monkeypatch.setenv("GRAINHABIT_NO_AUTOLOAD", "1")
     _write_frame(tmp_path / "data" / "a" / "f0.tif", 0)
@@ -358,7 +358,7 @@ def test_workflow_plugin_whose_import_fails_is_refused_by_name(tmp_path, monkeyp
 
 
 def test_failed_plugin_file_stays_failed_in_the_same_process(tmp_path):
-    from pipeline.manager import make_host
+    from grainhabit.manager import make_host
 
     path = tmp_path / "broken_twice.py"
     path.write_text(BROKEN_IMPORT)
@@ -368,7 +368,7 @@ def test_failed_plugin_file_stays_failed_in_the_same_process(tmp_path):
 
 
 def test_plugin_for_another_api_version_is_refused(tmp_path):
-    from pipeline.manager import make_host
+    from grainhabit.manager import make_host
 
     path = tmp_path / "old_api_local.py"
     path.write_text(OLD_API)
@@ -379,7 +379,7 @@ def test_plugin_for_another_api_version_is_refused(tmp_path):
 
 
 def test_step_from_workflow_plugin_file_is_usable(tmp_path, monkeypatch, capsys):
-    from pipeline.cli import main
+    from grainhabit.cli import main
 
     monkeypatch.setenv("GRAINHABIT_NO_AUTOLOAD", "1")
     (tmp_path / "faulty_local.py").write_text(FAULTY_STEPS)
@@ -391,9 +391,9 @@ def test_step_from_workflow_plugin_file_is_usable(tmp_path, monkeypatch, capsys)
 
 
 def test_raising_reader_does_not_hide_the_built_in_readers(tmp_path):
-    from pipeline.manager import make_host
-    from pipeline.runner import list_frames
-    from pipeline.workflow import validate
+    from grainhabit.manager import make_host
+    from grainhabit.runner import list_frames
+    from grainhabit.workflow import validate
 
     (tmp_path / "raising_reader.py").write_text(RAISING_READER)
     _write_frame(tmp_path / "data" / "a" / "f0.tif", 0)

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from pipeline.frame import FrameData
-from plugins import preprocess
+from grainhabit.frame import FrameData
+from grainhabit.plugins.preprocess import flatten_background as preprocess
 from test_segment import draw_frame
 
 GRAINS = ((80, 80, 40, 6, 0.0), (80, 200, 35, 4, 20.0), (190, 130, 45, 3, 5.0))

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import tifffile
 
-from plugins import read_tiff
+from grainhabit.plugins.readers import tiff as read_tiff
 
 OPTS = {"max_pixels": 10_000_000}
 

@@ -14,8 +14,8 @@ import xarray as xr
 from PIL import Image
 from skimage.color import deltaE_ciede2000, rgb2lab
 
-from plugins import report
-from plugins import statistics as st
+from grainhabit.plugins.survey import write_report as report
+from grainhabit.plugins.survey import statistics as st
 from test_summary import make_store
 
 

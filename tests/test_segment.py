@@ -11,8 +11,9 @@ from scipy import ndimage as ndi
 from skimage.draw import disk, line_aa, polygon
 from skimage.measure import label as sk_label
 
-from pipeline.frame import FrameData
-from plugins import preprocess, segment
+from grainhabit.frame import FrameData
+from grainhabit.plugins.preprocess import flatten_background as preprocess
+from grainhabit.plugins.segment import segment_grains as segment
 
 from conftest import reference_gap_lines
 
@@ -228,7 +229,7 @@ def test_local_thresholds_on_uneven_frame(method):
 
 
 def test_bad_threshold_name_is_refused():
-    from pipeline.params import ParamError
+    from grainhabit.params import ParamError
 
     raw, _ = draw_frame((64, 64), grains=())
     with pytest.raises(ParamError):

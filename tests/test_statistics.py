@@ -1,4 +1,4 @@
-"""Tests of plugins.statistics against published definitions and reference libraries."""
+"""Tests of grainhabit.plugins.survey.statistics against published definitions and reference libraries."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from plugins import statistics as st
+from grainhabit.plugins.survey import statistics as st
 
 # --------------------------------------------------------------------------
 # ISO 9276-2 moment means and ISO 9276-1 distributions on a hand-worked population

@@ -14,9 +14,9 @@ import pytest
 import xarray as xr
 from skimage.draw import polygon as draw_polygon
 
-from pipeline.results import open_results, text_array, write_results
-from plugins import statistics as st
-from plugins import summary
+from grainhabit.results import open_results, text_array, write_results
+from grainhabit.plugins.survey import statistics as st
+from grainhabit.plugins.survey import summarise_samples as summary
 
 # --------------------------------------------------------------------------
 # invented test stores in the results layout of the design contract

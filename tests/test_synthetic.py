@@ -3,8 +3,8 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from plugins import synthetic as sy
-from plugins.synthetic import GrainSpec
+from grainhabit.plugins.synthetic import render as sy
+from grainhabit.plugins.synthetic.render import GrainSpec
 
 PX = 5.0
 ALL_HABITS = {"cube": 0.25, "cuboctahedron": 0.2, "octahedron": 0.2, "tabular_hexagon": 0.1,

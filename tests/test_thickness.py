@@ -5,9 +5,9 @@ import numpy as np
 import pytest
 from skimage.draw import polygon
 
-from pipeline.frame import FrameData
-from plugins import shadow_thickness as st
-from plugins import thickness as th
+from grainhabit.frame import FrameData
+from grainhabit.plugins.thickness import shadow_thickness as st
+from grainhabit.plugins.thickness import known_thickness as th
 
 
 def _frame(habits, ecd, sample="batch-A", raw=None, labels=None):

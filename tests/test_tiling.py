@@ -4,7 +4,9 @@ import numpy as np
 from skimage.measure import label as sk_label
 from skimage.metrics import contingency_table
 
-from plugins import preprocess, segment, tiling
+from grainhabit.plugins.preprocess import flatten_background as preprocess
+from grainhabit.plugins.segment import segment_grains as segment
+from grainhabit.plugins.segment import tiling
 from test_segment import draw_frame
 
 

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from pipeline.manager import make_host
-from pipeline.workflow import WorkflowError, expand, validate
+from grainhabit.manager import make_host
+from grainhabit.workflow import WorkflowError, expand, validate
 
 from conftest import run_cli, write_workflow
 

@@ -9,8 +9,8 @@ from skimage.filters import threshold_li
 from skimage.measure import label, regionprops
 
 from grainhabit_li_threshold import STEP, grainhabit_segment, li_labels
-from pipeline.frame import FrameData
-from pipeline.params import ParamError
+from grainhabit.frame import FrameData
+from grainhabit.params import ParamError
 
 PX = 10.0  # nm per pixel
 

@@ -34,8 +34,8 @@ from skimage.filters import threshold_li
 from skimage.measure import label as label_regions
 from skimage.segmentation import relabel_sequential
 
-from pipeline import hookimpl
-from pipeline.params import Param, StepInfo
+from grainhabit import hookimpl
+from grainhabit.params import Param, StepInfo
 
 #: Hook API this plugin was written for; the host refuses other versions.
 GRAINHABIT_API = 1
@@ -154,7 +154,7 @@ def grainhabit_segment(frame, params):
 
     Parameters
     ----------
-    frame : pipeline.frame.FrameData
+    frame : grainhabit.frame.FrameData
         With ``image`` (float, shape (rows, cols), grains bright) and
         ``pixel_size_nm`` set.
     params : dict
@@ -162,7 +162,7 @@ def grainhabit_segment(frame, params):
 
     Returns
     -------
-    pipeline.frame.FrameData
+    grainhabit.frame.FrameData
         With ``labels`` (int32, shape (rows, cols)) and the columns
         ``label`` (int32, 1..n), ``split`` (bool, all False) and
         ``edge_cut`` (bool), plus a note with the threshold used.

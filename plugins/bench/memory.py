@@ -1,0 +1,219 @@
+"""Benchmark ``grainhabit bench memory``: peak memory of a run does not grow with its frames.
+
+Two runs of the default workflow, on ``--small`` (10) and ``--large`` (100)
+synthetic frames (invented data), each in a fresh Python process started
+by this benchmark, with the local cluster by default (``--scheduler serial``
+runs the frames in that process instead). A thread here sums the resident
+set size (RSS) of that process and all its descendants (dask nannies and
+workers) every 50 ms (:class:`grainhabit.plugins.bench.harness.TreeRssSampler`); printed
+per run: the peak of that sum, the run's main process alone, the peak while
+frames are processed and after (consolidation, results writing), and the
+ratio of the two runs' peaks.
+
+Target: large / small <= 1.3. The runner keeps at most a few tasks in
+flight and stages each result as it finishes, so only the consolidation at
+the end holds all frames' (small) grain tables at once.
+
+To keep it quick, ``--distinct`` (4) fields are rendered and written many
+times as variants (mirror images, quarter turns, reflect-padded shifts:
+:func:`grainhabit.plugins.bench.harness.variant`), so every file has its own content hash
+and its own grain outlines (no per-process cache can answer a variant).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from grainhabit import hookimpl
+from grainhabit.plugins.bench import harness as bu
+
+GRAINHABIT_API = 1
+
+TARGET_RATIO = 1.3
+
+_CHILD = "import sys; from grainhabit.plugins.bench.memory import child_main; sys.exit(child_main(sys.argv[1:]))"
+
+
+def child_main(argv: list[str]) -> int:
+    """Run one workflow (in the measured process) and write its figures as JSON.
+
+    Parameters
+    ----------
+    argv : list of str
+        ``[WORKFLOW, OUT_JSON]`` or ``[WORKFLOW, OUT_JSON, MALLOC_TRIM_BYTES]``
+        (the glibc ``MALLOC_TRIM_THRESHOLD_`` the local cluster's nannies
+        give their workers; grainhabit leaves it unset, dask's default is 65536).
+
+    Returns
+    -------
+    int
+        The run's exit code.
+    """
+    import resource
+
+    from grainhabit.manager import make_host
+    from grainhabit.runner import run
+    from grainhabit.workflow import validate
+
+    workflow, out_json, *rest = argv
+    host = make_host()
+    plan = validate(workflow, host)
+    t0 = time.time()
+    clock = bu.RunClock()
+    with bu.worker_malloc_trim(int(rest[0]) if rest else None):
+        outcome = run(plan, host, fresh=True, tty=False, observer=clock)
+    ru_self = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    ru_kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    figures = {
+        "start_wall": t0, "end_wall": time.time(), "exit_code": outcome.exit_code,
+        "frames_ok": outcome.frames_ok, "frames_failed": outcome.frames_failed, "grains": outcome.grains,
+        "seconds": outcome.seconds, "host": clock.seconds, "workers": clock.workers,
+        "processing_start_wall": clock.marks.get("processing_start_wall"),
+        "processing_end_wall": clock.marks.get("processing_end_wall"),
+        # ru_maxrss is in KiB on Linux: the largest RSS of this process, and of any one waited-for descendant
+        "maxrss_main_kib": ru_self, "maxrss_largest_child_kib": ru_kids,
+    }
+    Path(out_json).write_text(json.dumps(figures))
+    return outcome.exit_code
+
+
+def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout: float | None = None,
+                 malloc_trim: int | None = None) -> dict:
+    """Run :func:`child_main` in a new process and sample its process tree's RSS.
+
+    Parameters
+    ----------
+    workflow : Path
+        Workflow file.
+    out_json : Path
+        Where the child writes its figures.
+    interval : float
+        Sampling interval (s).
+    timeout : float, optional
+        Seconds before the child is killed.
+    malloc_trim : int, optional
+        ``MALLOC_TRIM_THRESHOLD_`` for the local workers (see :func:`child_main`).
+
+    Returns
+    -------
+    dict
+        The child's figures plus ``peak_tree``, ``peak_main``,
+        ``peak_processing``, ``peak_after`` (bytes), ``peak_processes``,
+        ``wall`` (s), ``returncode``, ``stderr`` (last lines),
+        ``load_before``/``load_after``.
+    """
+    load0 = bu.load_average()
+    t0 = time.perf_counter()
+    extra = [] if malloc_trim is None else [str(int(malloc_trim))]
+    proc = subprocess.Popen([sys.executable, "-c", _CHILD, str(workflow), str(out_json), *extra],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    sampler = bu.TreeRssSampler(proc.pid, interval=interval)
+    with sampler:
+        try:
+            _, err = proc.communicate(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            _, err = proc.communicate()
+    figures = json.loads(out_json.read_text()) if out_json.exists() else {}
+    ps, pe = figures.get("processing_start_wall"), figures.get("processing_end_wall")
+    figures.update(
+        peak_tree=sampler.peak, peak_main=sampler.peak_root, peak_processes=sampler.peak_processes,
+        peak_processing=sampler.peak_between(ps, pe) if ps and pe else 0,
+        peak_after=sampler.peak_between(pe, float("inf")) if pe else 0,
+        samples=len(sampler.samples), wall=time.perf_counter() - t0, returncode=proc.returncode,
+        stderr="\n".join((err or "").strip().splitlines()[-5:]), load_before=load0, load_after=bu.load_average())
+    return figures
+
+
+def run(argv: list[str]) -> int:
+    """Entry point of ``grainhabit bench memory``; returns the exit code."""
+    ap = argparse.ArgumentParser(prog="grainhabit bench memory",
+                                 description="Peak RSS (main process + workers) of a run on few and on many "
+                                             "synthetic frames (invented data), and their ratio.")
+    ap.add_argument("--small", type=int, default=10, help="frames of the small run (default 10)")
+    ap.add_argument("--large", type=int, default=100, help="frames of the large run (default 100)")
+    ap.add_argument("--size", type=int, default=384, help="frame side in pixels (default 384)")
+    ap.add_argument("--grains", type=int, default=None,
+                    help=f"grains per frame (default {bu.DENSITY_PER_MPX:g} per megapixel)")
+    ap.add_argument("--distinct", type=int, default=4, help="fields rendered; the rest are variants (default 4)")
+    ap.add_argument("--scheduler", choices=("local", "serial"), default="local",
+                    help="local cluster (default) or serial in the run's process")
+    ap.add_argument("--workers", type=int, default=None, help="local workers (default: one per core)")
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--json", metavar="PATH", help="write the figures to this JSON file")
+    ap.add_argument("--workdir", metavar="DIR", help="write frames and results here and keep them "
+                                                     "(default: a temporary folder, removed)")
+    ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
+                    help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (default unset; dask's own is 65536)")
+    ap.add_argument("--check", action="store_true", help="exit 1 if the target is missed")
+    args = ap.parse_args(argv)
+    workers = args.workers or os.cpu_count() or 1
+    if not (1 <= args.small <= args.large) or args.size < 64 or args.distinct < 1 or workers < 1:
+        ap.error("need 1 <= --small <= --large, --size >= 64, --distinct >= 1, --workers >= 1")
+    grains = args.grains or bu.grains_for(args.size)
+    root = Path(args.workdir).resolve() if args.workdir else Path(tempfile.mkdtemp(prefix="grainhabit-mem-"))
+    out = sys.stdout
+    cases = {}
+    try:
+        t0 = time.perf_counter()
+        images = bu.render_frames(min(args.distinct, args.large), args.size, grains=grains, seed=args.seed)
+        for name, n in (("small", args.small), ("large", args.large)):
+            bu.write_frames(root / name / "bench", images, n)
+        where = (f"local cluster, {workers} worker processes" if args.scheduler == "local"
+                 else "serial, in the run's process")
+        if args.malloc_trim is not None:
+            where += f", MALLOC_TRIM_THRESHOLD_={args.malloc_trim}"
+        print(f"grainhabit bench memory: {where}; {len(images)} distinct {args.size}x{args.size} px fields "
+              f"({grains} grains), written as variants (invented data; {time.perf_counter() - t0:.1f} s)",
+              file=out)
+        print("peak RSS summed over the run's process and all its descendants, sampled every 50 ms", file=out)
+        print(f"{'run':<7}{'frames':>7}{'peak MiB':>10}{'main':>8}{'processing':>12}{'after':>8}{'procs':>7}"
+              f"{'wall s':>8}{'ok':>5}  load 1-min before/after", file=out)
+        for name, n in (("small", args.small), ("large", args.large)):
+            wf = bu.write_workflow(root / f"{name}.yaml", root / name, root / "out" / f"{name}.zarr",
+                                   workers=workers, scheduler=args.scheduler, name=f"bench-memory-{name}")
+            c = measure_case(wf, root / f"{name}.json", malloc_trim=args.malloc_trim)
+            cases[name] = c
+            print(f"{name:<7}{n:>7}{bu.mib(c['peak_tree']):>10.0f}{bu.mib(c['peak_main']):>8.0f}"
+                  f"{bu.mib(c['peak_processing']):>12.0f}{bu.mib(c['peak_after']):>8.0f}{c['peak_processes']:>7}"
+                  f"{c['wall']:>8.1f}{c.get('frames_ok', 0):>5}  {c['load_before'][0]:.2f}/{c['load_after'][0]:.2f}",
+                  file=out)
+            if c["returncode"] != 0:
+                print(f"  problem: the {name} run exited with {c['returncode']}: {c['stderr']}", file=out)
+        r = bu.ratio(cases["large"]["peak_tree"], cases["small"]["peak_tree"])
+        ok = r <= TARGET_RATIO
+        for name in ("small", "large"):
+            c = cases[name]
+            print(f"  {name}: largest single process (getrusage) main {c.get('maxrss_main_kib', 0) / 1024:.0f} MiB, "
+                  f"any one child {c.get('maxrss_largest_child_kib', 0) / 1024:.0f} MiB; consolidate "
+                  f"{c.get('host', {}).get('consolidate', float('nan')):.2f} s, results write "
+                  f"{c.get('host', {}).get('results_write', float('nan')):.2f} s", file=out)
+        print(f"peak RSS ratio large/small: {r:.2f}; target <= {TARGET_RATIO}: {'met' if ok else 'MISSED'}", file=out)
+        print(f"{bu.load_text()} at the end", file=out)
+        if args.json:
+            figures = {"benchmark": "memory", "scheduler": args.scheduler, "workers": workers,
+                       "malloc_trim_threshold": args.malloc_trim,
+                       "size_px": args.size, "grains_per_frame": grains, "distinct": len(images),
+                       "cases": cases, "ratio": r, "target": TARGET_RATIO, "ok": bool(ok)}
+            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+            Path(args.json).write_text(json.dumps(figures, indent=2, default=float))
+            print(f"figures written to {args.json}", file=out)
+    finally:
+        if not args.workdir:
+            shutil.rmtree(root, ignore_errors=True)
+    failed = any(c["returncode"] != 0 for c in cases.values())
+    return 1 if failed or (args.check and not ok) else 0
+
+
+@hookimpl
+def grainhabit_benchmarks():
+    """Offer ``grainhabit bench memory``."""
+    return {"memory": run}

@@ -1,0 +1,1 @@
+"""Helpers shared by several topics (pure functions on arrays, no hooks)."""

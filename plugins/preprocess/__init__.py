@@ -1,0 +1,1 @@
+"""Preprocessing steps: background flattening and denoising before segmentation."""

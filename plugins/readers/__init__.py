@@ -1,0 +1,1 @@
+"""Readers: plugins that list and read the frames of instrument files and archives."""

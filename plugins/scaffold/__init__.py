@@ -1,0 +1,1 @@
+"""The ``new-plugin`` command and the templates it fills in."""

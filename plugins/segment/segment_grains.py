@@ -1,0 +1,951 @@
+"""Step ``segment-grains``: foreground, touching-grain splitting, labels.
+
+1. Foreground: by default ``noise_k`` background sigmas above the background
+   level (both measured once per frame from the histogram's main mode), so
+   that faint grains (thin plates in bright-field contrast) are found; or
+   the global Otsu threshold [1]_; or a local one (Gaussian-weighted local
+   mean, or Sauvola [2]_) over ``local_block_nm``, never below the noise
+   threshold. Frame-wide levels are computed once and passed to every tile.
+2. Grain extent comes from the outline only: a closing of radius
+   ``close_nm`` bridges facet lines that reach the outline, every hole is
+   filled, so inner facet edges (bright or dark lines) never split a grain.
+   The closing never crosses the lines of the discrete Voronoi diagram of
+   the grain cores (connected pixels above ``gap_level``, and thresholded
+   components without such a core; :func:`gap_lines`), which run through
+   the background and, up to 4 px from a core, through the dim pixels that
+   blur and the low noise threshold add between near grains: with a blur
+   of about 1 px, grains 4 px or more apart stay apart. The outline is then moved, within a band of
+   ``refine_nm`` on either side, to the ridge of the gradient magnitude by
+   a two-marker watershed (the half-height point of a blurred step edge;
+   close to the foot of a soft, thickness-graded edge), which keeps the ECD
+   unbiased whatever the threshold; the Voronoi lines seed the background
+   of that flood, so the gap between two near grains is background too.
+   Components with an ECD under ``min_ecd_nm`` are dropped.
+3. Touching grains: each connected component is cropped to its bounding box.
+   A component whose deepest concavity (largest distance from the shape of
+   a pixel of its convex hull) is at most ``max(2 px, split_depth * r_eq)``,
+   with ``r_eq`` the equal-area radius, is one convex grain and is never
+   split. Otherwise it is cut along a straight segment between two outline
+   concavities (or from one concavity to the outline point of the shortest
+   cut; the segment's pixels between its two outline end points must lie in
+   the shape), trying the shortest cuts relative to the concavity depths first;
+   the first cut whose parts are convex (twice the allowance), or can be cut
+   again into convex parts, and no part smaller than a tenth of the
+   component, is kept (at most 200 cuts are tried per component, over all
+   levels, which bounds the time on large clusters). The visible boundary of an overlapping
+   pair is an edge of the front grain, and it runs between these points.
+   If no cut works, the distance transform is flooded by a marker-controlled
+   watershed [3]_ from its h-maxima, trying ``h = f * d_max`` for f = 0.5,
+   0.35, 0.25, 0.15, 0.1 (``d_max`` the largest inscribed radius, so h
+   follows the local grain size); the first split (fewest markers) with
+   convex parts no smaller than ``min_ecd_nm`` is kept, provided every line
+   between two parts crosses a neck: the distance map's saddle on it is at
+   most 0.75 of the smaller part's peak (ripples along one elongated grain
+   are not necks). A pair of different sizes has one distance maximum per
+   member and the watershed line runs through the saddle at the neck.
+4. Labels are numbered 1..n in row-major order of their first pixel, so a
+   tiled run (see :mod:`grainhabit.plugins.segment.tiling`) numbers them as an untiled one.
+
+References
+----------
+.. [1] N. Otsu, "A threshold selection method from gray-level histograms",
+   IEEE Trans. Syst. Man Cybern. 9(1), 62-66, 1979, doi:10.1109/TSMC.1979.4310076
+.. [2] J. Sauvola and M. Pietikainen, "Adaptive document image
+   binarization", Pattern Recognition 33(2), 225-236, 2000,
+   doi:10.1016/S0031-3203(99)00055-2
+.. [3] F. Meyer and S. Beucher, "Morphological segmentation", J. Visual
+   Commun. Image Represent. 1(1), 21-46, 1990, doi:10.1016/1047-3203(90)90014-M
+.. [4] C. R. Maurer, R. Qi and V. Raghavan, "A linear time algorithm for
+   computing exact Euclidean distance transforms of binary images in
+   arbitrary dimensions", IEEE Trans. Pattern Anal. Mach. Intell. 25(2),
+   265-270, 2003, doi:10.1109/TPAMI.2003.1177156 (the algorithm of
+   scipy.ndimage.distance_transform_edt, from memory)
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from grainhabit import hookimpl
+from grainhabit.params import Param, StepInfo
+
+from grainhabit.plugins.segment import tiling
+
+GRAINHABIT_API = 1
+
+STEP = StepInfo(
+    name="segment-grains",
+    stage="segment",
+    version="1.1",
+    summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
+    params=(
+        Param("threshold", str, "noise", choices=("noise", "otsu", "local", "sauvola"),
+              doc="Foreground threshold: noise_k background sigmas, global Otsu, Gaussian local mean, or Sauvola."),
+        Param("noise_k", float, 5.0, low=0.0,
+              doc="Background sigmas above the background level for the noise threshold (and local floor)."),
+        Param("local_block_nm", float, 2000.0, unit="nm", low=0.0,
+              doc="Window side of the local thresholds; should be a few grain diameters."),
+        Param("local_offset", float, 0.0,
+              doc="Subtracted from the local threshold (image units, background 0, grains about 1)."),
+        Param("min_ecd_nm", float, 40.0, unit="nm", low=0.0,
+              doc="Grains (and split parts) with a smaller equivalent circle diameter are dropped."),
+        Param("close_nm", float, None, unit="nm", low=0.0,
+              doc="Radius of the closing that bridges facet lines at the outline; unset means 2 pixels."),
+        Param("refine_nm", float, None, unit="nm", low=0.0,
+              doc="Half-width of the band where outlines snap to the largest gradient; unset means 3 pixels, 0 off."),
+        Param("gap_level", float, 0.25, low=0.0,
+              doc="Grains whose cores above this level (image units, grains about 1) are a few pixels apart stay apart."),
+        Param("split", bool, True, doc="Split touching grains by watershed."),
+        Param("split_depth", float, 0.08, low=0.0, high=1.0,
+              doc="Concavity depth, as a fraction of the equal-area radius, above which a component is split."),
+        Param("min_contrast", float, 0.3, low=0.0,
+              doc="Below this difference of the Otsu class means (image units) the frame holds no grains."),
+        Param("tile_px", int, 4096, unit="px", low=64,
+              doc="Frames with more pixels per side are segmented in overlapping tiles of this core size."),
+        Param("tile_overlap_nm", float, 3000.0, unit="nm", low=0.0,
+              doc="Tile halo; must exceed the largest grain cluster."),
+        Param("tile_workers", int, 0, low=0,
+              doc="Threads for tiles; 0 chooses automatically."),
+    ),
+)
+
+#: Fractions of the component's largest inscribed radius tried as h.
+H_FRACTIONS = (0.5, 0.35, 0.25, 0.15, 0.1)
+#: h is never below this many pixels (pixel-grid ripples of the distance map).
+H_MIN_PX = 1.5
+#: Concavities up to this depth (pixels) are digitisation ripple, not a neck.
+MIN_DEPTH_PX = 2.0
+#: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
+NECK_RATIO = 0.75
+#: Cuts tried per component at most, over all recursion levels (bounds the time).
+MAX_CUTS = 200
+#: Smallest part of a split, as a fraction of the whole component's area.
+MIN_PART_FRACTION = 0.1
+#: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
+PART_SLACK = 2.0
+#: A foreground covering more of the frame than this has no background to work with.
+MAX_FOREGROUND = 0.95
+#: Components of the thresholded mask smaller than this (pixels) are specks, not grains kept apart.
+GAP_MIN_AREA_PX = 20
+#: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
+GAP_REACH_PX = 4.0
+_EIGHT = np.ones((3, 3), bool)
+
+
+def _check_image(image) -> np.ndarray:
+    arr = np.asarray(image)
+    if arr.ndim != 2:
+        raise ValueError(f"image must be 2-D (rows, cols), got shape {arr.shape}")
+    if arr.size == 0:
+        raise ValueError("image is empty")
+    arr = arr.astype(np.float32, copy=False)
+    if not np.all(np.isfinite(arr)):
+        raise ValueError("image contains NaN or infinite values")
+    return arr
+
+
+def _odd(n: float) -> int:
+    n = max(3, int(round(n)))
+    return n if n % 2 else n + 1
+
+
+def otsu_threshold(image: np.ndarray, max_samples: int = 2_000_000) -> float:
+    """Global Otsu threshold, on a regular subsample of large frames.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+    max_samples : int
+        Above this many pixels every k-th row and column is used.
+
+    Returns
+    -------
+    float
+        The threshold; the image's value if it is constant.
+    """
+    from skimage.filters import threshold_otsu
+
+    from grainhabit.plugins.common.image_stats import regular_subsample
+
+    sub = regular_subsample(_check_image(image), max_samples)
+    if float(sub.min()) == float(sub.max()):
+        return float(sub.min())
+    return float(threshold_otsu(sub))
+
+
+def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_000_000) -> dict:
+    """Frame-wide threshold levels, computed once and shared by all tiles.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (background about 0, grains about 1).
+    noise_k : float
+        Background sigmas above the background mode for the noise threshold.
+    max_samples : int
+        Above this many pixels a regular subsample is used.
+
+    Returns
+    -------
+    dict
+        ``otsu`` (Otsu threshold), ``background`` and ``sigma`` (mode and
+        robust noise sd of the background) and ``noise`` =
+        ``background + noise_k * sigma``.
+    """
+    from grainhabit.plugins.common.image_stats import background_level, regular_subsample
+
+    sub = regular_subsample(_check_image(image), max_samples)
+    bg, sigma = background_level(sub)
+    return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
+
+
+def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: str = "noise",
+               local_block_nm: float = 2000.0, local_offset: float = 0.0,
+               close_nm: float | None = None, refine_nm: float | None = None,
+               gap_level: float = 0.25) -> np.ndarray:
+    """Foreground mask with grain extent from outlines only.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (grains bright, background 0).
+    pixel_size_nm : float
+        Pixel side in nm.
+    levels : dict
+        Frame-wide levels from :func:`frame_levels`.
+    method : {"noise", "otsu", "local", "sauvola"}
+        ``noise``: a fixed number of background sigmas above the background
+        (finds faint grains too); ``otsu``: the global Otsu threshold;
+        ``local`` / ``sauvola``: local thresholds, never below ``noise``.
+    local_block_nm : float
+        Window of the local methods, in nm.
+    local_offset : float
+        Subtracted from the local threshold.
+    close_nm : float or None
+        Closing radius in nm; None means 2 pixels.
+    refine_nm : float or None
+        Half-width of the band in which outlines are moved to the largest
+        intensity gradient; None means 3 pixels, 0 turns refinement off.
+    gap_level : float
+        Level of the grain cores (image units, background 0, grains about
+        1) between which near grains are kept apart (see :func:`gap_lines`).
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+
+    Notes
+    -----
+    ``D = fill_holes(close(I > T, disk(r)) & ~V)``, ``V`` the Voronoi lines
+    between the components of ``I > T`` (:func:`gap_lines`). Refinement:
+    pixels of ``D`` deeper than ``w`` (plus the deepest pixel of every thin
+    component) seed the grains, pixels farther than ``w`` outside ``D`` and
+    the pixels of ``V`` seed the background, and a watershed of the Sobel gradient magnitude decides the band in
+    between, so the outline lands on the gradient ridge: the half-height
+    point of a blurred step edge, the foot of a soft (thickness-graded)
+    edge. Holes are filled again afterwards.
+    """
+    from skimage.filters import sobel, threshold_local, threshold_sauvola
+    from skimage.morphology import disk
+    from skimage.segmentation import watershed
+
+    arr = _check_image(image)
+    if method == "noise":
+        fg = arr > levels["noise"]
+    elif method == "otsu":
+        fg = arr > levels["otsu"]
+    elif method in ("local", "sauvola"):
+        block = _odd(local_block_nm / pixel_size_nm)
+        if method == "local":
+            t = threshold_local(arr, block, method="gaussian", offset=local_offset, mode="reflect")
+        else:
+            t = threshold_sauvola(arr, window_size=block, k=0.2) - local_offset
+        fg = arr > np.maximum(t, levels["noise"])
+    else:
+        raise ValueError(f"threshold must be 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
+    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]))
+    r = int(round(2.0 if close_nm is None else close_nm / pixel_size_nm))
+    if r >= 1:
+        pad = np.pad(fg, r, mode="edge")
+        pad = ndi.binary_closing(pad, structure=disk(r), border_value=0)
+        fg = pad[r:-r, r:-r]
+    fg = fill_holes(fg & ~gaps)
+    w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
+    if w < 1 or not fg.any():
+        return fg
+    # deeper than w inside (or outside): the Euclidean distance to the nearest pixel of the other kind
+    # exceeds w, i.e. the pixel survives an erosion by the disk of radius w (the frame's edge counts as
+    # neither kind, as in scipy's distance transform); 8x cheaper than the distance transform itself
+    ball = disk_structure(w)
+    seeds = ndi.binary_erosion(fg, structure=ball, border_value=1)
+    comp, n = ndi.label(fg, structure=_EIGHT)
+    if n:
+        # components too thin to hold a deep pixel keep their deepest pixels as seeds
+        has_seed = np.zeros(n + 1, bool)
+        has_seed[comp[seeds]] = True
+        thin = np.flatnonzero(~has_seed[1:]) + 1
+        if thin.size:
+            seeds |= deepest_pixels(fg, comp, thin, w)
+    markers = np.zeros(arr.shape, np.int32)
+    markers[ndi.binary_erosion(~fg, structure=ball, border_value=1) | gaps] = 1
+    markers[seeds] = 2
+    # Flood only the undecided band and the marker pixels touching it: a marker pixel with no
+    # undecided neighbour never labels anything, but scikit-image would queue every one of them
+    # (most of the frame). With this mask the result is the same and the queue holds ~10x fewer pixels.
+    band = markers == 0
+    near_band = ndi.binary_dilation(band, structure=ndi.generate_binary_structure(2, 1))
+    ws = watershed(sobel(arr), np.where(near_band, markers, 0), mask=near_band)
+    return fill_holes(seeds | (ws == 2))
+
+
+def fill_holes(mask: np.ndarray) -> np.ndarray:
+    """Fill the holes of a mask: background not 4-connected to the frame's edge.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (rows, cols)
+
+    Returns
+    -------
+    ndarray of bool
+        ``scipy.ndimage.binary_fill_holes(mask)`` (same default
+        connectivity), found with one labelling of the background instead
+        of scipy's repeated dilations (about 3x faster on a 1024^2 frame).
+    """
+    back, n = ndi.label(~mask)
+    if n == 0:
+        return mask.copy()
+    edge = np.zeros(n + 1, bool)
+    for side in (back[0], back[-1], back[:, 0], back[:, -1]):
+        edge[side] = True
+    edge[0] = False
+    return ~edge[back]
+
+
+def disk_structure(radius: float) -> np.ndarray:
+    """Structuring element of the offsets within ``radius`` (px) of the centre (Euclidean).
+
+    Returns
+    -------
+    ndarray of bool, shape (2k + 1, 2k + 1), k = floor(radius)
+        True where ``dy**2 + dx**2 <= radius**2``. An erosion by it keeps
+        exactly the pixels whose Euclidean distance transform exceeds
+        ``radius`` (with ``border_value=1``).
+    """
+    k = int(np.floor(radius))
+    dy, dx = np.mgrid[-k:k + 1, -k:k + 1]
+    return dy * dy + dx * dx <= radius * radius
+
+
+def deepest_pixels(mask: np.ndarray, labels: np.ndarray, which: np.ndarray, reach: float) -> np.ndarray:
+    """Pixels of the given components at their largest distance from the background.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (rows, cols)
+        Foreground.
+    labels : ndarray of int, shape (rows, cols)
+        Connected components of ``mask``.
+    which : ndarray of int
+        Labels to take; none of their pixels may lie farther than ``reach``
+        from the background.
+    reach : float
+        Bound on the components' depth (px).
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+        For each listed component, its pixels whose Euclidean distance
+        transform (``scipy.ndimage.distance_transform_edt(mask)``) equals the
+        component's maximum.
+
+    Notes
+    -----
+    Every pixel of such a component has its nearest background pixel within
+    ``reach``, so the distance transform of the component's bounding box
+    grown by ``ceil(reach) + 1`` (clipped to the frame) is exact there.
+    """
+    out = np.zeros(mask.shape, bool)
+    m = int(np.ceil(reach)) + 1
+    boxes = ndi.find_objects(labels)
+    for lab in which:
+        box = boxes[lab - 1]
+        if box is None:
+            continue
+        crop = tuple(slice(max(0, s.start - m), min(size, s.stop + m)) for s, size in zip(box, mask.shape))
+        depth = ndi.distance_transform_edt(mask[crop])
+        own = labels[crop] == lab
+        out[crop] |= own & (depth >= depth[own].max())
+    return out
+
+
+def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_PX,
+              min_area_px: int = GAP_MIN_AREA_PX) -> np.ndarray:
+    """Pixels on the dividing lines between grains that do not touch.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (rows, cols)
+        Thresholded frame (before any closing).
+    cores : ndarray of bool, shape (rows, cols)
+        Pixels well above the background (``image > gap_level``), a subset
+        of ``mask``.
+    reach_px : float
+        Inside ``mask`` a line is kept only up to this distance (px) from
+        the nearest core: a gap up to about twice as wide that the noise
+        threshold filled.
+    min_area_px : int
+        Components smaller than this (pixels; noise specks next to a grain)
+        take no part.
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+        Pixels outside every core where the nearest body (Euclidean
+        distance) changes between 4-neighbours: the lines of the discrete
+        Voronoi diagram of the bodies, two pixels wide, so they also cut
+        8-connected paths. The bodies are the connected cores and the
+        components of ``mask`` that hold no core (faint grains).
+
+    Notes
+    -----
+    A closing bridges a gap narrower than its diameter, and the outline
+    refinement has no background seed in it; the noise threshold, a few
+    background sigmas up, fills a gap of a few pixels between two blurred
+    grains by itself. The bright cores of two such grains stay apart, and
+    the pixels between them, dimmer than ``gap_level``, are background
+    that the blur lifted. The closing is kept off these lines and the
+    refinement floods the background from them, so grains that do not touch
+    stay apart; facet lines that notch a grain from its outline are still
+    bridged, and a dark facet line across a grain (blurred, it keeps most
+    of the grain level) never drops below ``gap_level``. The nearest body
+    comes from the Euclidean distance transform with feature indices [4]_.
+    """
+    cores = cores & mask
+    comp, n = ndi.label(cores, structure=_EIGHT)
+    faint, n_faint = ndi.label(mask, structure=_EIGHT)
+    if n + n_faint < 2:
+        return np.zeros(mask.shape, bool)
+    # components of the mask without a core are bodies of their own
+    has_core = np.zeros(n_faint + 1, bool)
+    has_core[np.unique(faint[cores])] = True
+    has_core[0] = True  # the background is no body
+    faint = np.where(has_core[faint], 0, faint + n)
+    bodies = np.where(cores, comp, faint)
+    area = np.bincount(bodies.ravel())
+    keep = area >= min_area_px
+    keep[0] = False
+    if keep.sum() < 2:
+        return np.zeros(mask.shape, bool)
+    bodies = np.where(keep[bodies], bodies, 0)
+    dist, (ri, ci) = ndi.distance_transform_edt(bodies == 0, return_indices=True)
+    nearest = bodies[ri, ci]
+    out = np.zeros(mask.shape, bool)
+    down = nearest[1:, :] != nearest[:-1, :]
+    right = nearest[:, 1:] != nearest[:, :-1]
+    out[1:, :] |= down
+    out[:-1, :] |= down
+    out[:, 1:] |= right
+    out[:, :-1] |= right
+    return out & (dist > 0) & (~mask | (dist <= reach_px))
+
+
+def concavity_depth(mask: np.ndarray) -> float:
+    """Depth of the deepest concavity of a shape, in pixels.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        One connected shape.
+
+    Returns
+    -------
+    float
+        ``max over (hull - shape) of the distance to the shape``; about 1
+        pixel or less for a digitised convex shape.
+    """
+    from skimage.morphology import convex_hull_image
+
+    if mask.sum() < 3:
+        return 0.0
+    pocket = convex_hull_image(mask) & ~mask
+    if not pocket.any():
+        return 0.0
+    return float(ndi.distance_transform_edt(~mask)[pocket].max())
+
+
+def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -> bool:
+    """Whether a shape counts as one convex grain.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+    split_depth : float
+        Allowed concavity depth as a fraction of the equal-area radius.
+    slack : float
+        Multiplies the allowance (parts cut by a watershed line get 2).
+
+    Notes
+    -----
+    Convex when ``concavity_depth <= slack * max(MIN_DEPTH_PX, split_depth * sqrt(A / pi))``:
+    the allowance follows the grain size (``sqrt(A / pi)`` is the radius of
+    the equal-area circle) and never drops below the digitisation ripple.
+    """
+    r_eq = np.sqrt(mask.sum() / np.pi)
+    return concavity_depth(mask) <= slack * max(MIN_DEPTH_PX, split_depth * r_eq)
+
+
+def _necks_are_narrow(ws: np.ndarray, dist: np.ndarray, n: int) -> bool:
+    """Whether every watershed line between two parts runs through a real neck.
+
+    The saddle of the distance map on the line between parts i and j must
+    be at most ``NECK_RATIO * min(peak_i, peak_j)``: two touching grains
+    meet at a neck narrower than either, while ripples along the ridge of
+    one elongated grain leave saddles almost as high as the peaks.
+    """
+    peaks = ndi.maximum(dist, ws, index=np.arange(1, n + 1))
+    for i in range(1, n + 1):
+        ring = ndi.binary_dilation(ws == i, structure=_EIGHT) & (ws > i)
+        for j in np.unique(ws[ring]):
+            saddle = float(dist[ring & (ws == j)].max())
+            if saddle > NECK_RATIO * min(peaks[i - 1], peaks[j - 1]):
+                return False
+    return True
+
+
+def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False):
+    """Deepest points of the concavities of a shape's outline.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        One connected shape without holes.
+    min_depth : float
+        Concavities shallower than this (pixels) are ignored.
+    outline : bool
+        Also return the outline points.
+
+    Returns
+    -------
+    defects : list of (point, depth)
+        ``point`` (row, col) as floats, ``depth`` in pixels: for every hull
+        edge, the outline points farthest from it (every peak of the
+        distance profile with a prominence of at least ``min_depth / 2``).
+    points : ndarray of float, shape (k, 2)
+        The outline (row, col), only if ``outline`` is true.
+    """
+    from scipy.spatial import ConvexHull, QhullError
+    from skimage.measure import find_contours
+
+    contours = find_contours(np.pad(mask, 1).astype(np.float32), 0.5)
+    pts = max(contours, key=len)[:-1] - 1.0 if contours else np.zeros((0, 2))
+    try:
+        hv = np.sort(ConvexHull(pts).vertices) if len(pts) >= 8 else None
+    except QhullError:
+        hv = None
+    if hv is None:
+        return ([], pts) if outline else []
+    out = []
+    for k in range(len(hv)):
+        i, j = hv[k], hv[(k + 1) % len(hv)]
+        idx = np.arange(i, j + 1) if j > i else np.r_[np.arange(i, len(pts)), np.arange(0, j + 1)]
+        if len(idx) < 3:
+            continue
+        a, b = pts[i], pts[j]
+        ab = b - a
+        norm = float(np.hypot(*ab))
+        if norm == 0:
+            continue
+        seg = pts[idx]
+        dist = np.abs(ab[0] * (seg[:, 1] - a[1]) - ab[1] * (seg[:, 0] - a[0])) / norm
+        # one hull edge can span several notches: keep every distinct peak
+        peaks = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)
+        out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
+    return (out, pts) if outline else out
+
+
+def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
+    """Local maxima of a 1-D signal at least ``height`` high and ``prominence`` prominent.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n,)
+    height : float
+        Smallest peak value.
+    prominence : float
+        Smallest prominence: the peak's value minus the higher of the two
+        lowest values between it and the nearest strictly higher sample on
+        either side (or the signal's end).
+
+    Returns
+    -------
+    ndarray of int
+        Peak indices, increasing; a flat top counts once, at its middle
+        (the lower one of two middles).
+
+    Notes
+    -----
+    The peaks ``scipy.signal.find_peaks(x, height=height,
+    prominence=prominence)[0]`` returns [1]_ (tested against it); written here
+    because importing ``scipy.signal`` costs a dask worker about 0.6 s before
+    its first frame.
+
+    References
+    ----------
+    .. [1] SciPy documentation, ``scipy.signal.find_peaks`` and
+       ``scipy.signal.peak_prominences``.
+    """
+    x = np.asarray(x, float)
+    if x.size < 3:
+        return np.zeros(0, np.intp)
+    # runs of equal values: a run higher than both neighbouring runs is one peak
+    start = np.flatnonzero(np.r_[True, x[1:] != x[:-1]])
+    end = np.r_[start[1:], x.size] - 1
+    val = x[start]
+    inner = np.arange(1, len(start) - 1)
+    top = inner[(val[inner - 1] < val[inner]) & (val[inner + 1] < val[inner])]
+    peaks = (start[top] + end[top]) // 2
+    keep = []
+    for i in peaks:
+        if x[i] < height:
+            continue
+        higher_left = np.flatnonzero(x[:i] > x[i])
+        higher_right = np.flatnonzero(x[i + 1:] > x[i])
+        lo = higher_left[-1] + 1 if higher_left.size else 0
+        hi = i + 1 + higher_right[0] if higher_right.size else x.size
+        base = max(x[lo:i + 1].min(), x[i:hi].min())
+        if x[i] - base >= prominence:
+            keep.append(i)
+    return np.asarray(keep, np.intp)
+
+
+def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> list[np.ndarray] | None:
+    """Cut a shape along the segment p-q; two parts or None."""
+    from skimage.draw import line
+    from skimage.segmentation import watershed
+
+    r0, c0 = np.clip(np.round(p).astype(int), 0, np.array(mask.shape) - 1)
+    r1, c1 = np.clip(np.round(q).astype(int), 0, np.array(mask.shape) - 1)
+    rr, cc = line(r0, c0, r1, c1)
+    # the end points lie on the outline and round to either side of it: judge the pixels between
+    inner = mask[rr[1:-1], cc[1:-1]] if len(rr) > 2 else mask[rr, cc]
+    if inner.size == 0 or inner.mean() < 0.9:
+        return None  # the segment leaves the shape
+    cut = mask.copy()
+    cut[rr, cc] = False
+    pieces, n = ndi.label(cut)  # 4-connected: a digital line separates
+    if n < 2:
+        return None
+    areas = np.bincount(pieces.ravel())[1:]
+    order = np.argsort(areas)[::-1]
+    if areas[order[1]] < min_area:
+        return None
+    markers = np.zeros(mask.shape, np.int32)
+    markers[pieces == order[0] + 1] = 1
+    markers[pieces == order[1] + 1] = 2
+    ws = watershed(np.zeros(mask.shape, np.float32), markers, mask=mask)
+    return [ws == 1, ws == 2]
+
+
+def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
+                      budget: list) -> list[np.ndarray] | None:
+    """Cut between two concavities so that the parts are convex (or split further)."""
+    r_eq = np.sqrt(mask.sum() / np.pi)
+    defects, outline = convexity_defects(mask, max(MIN_DEPTH_PX, split_depth * r_eq), outline=True)
+    if not defects:
+        return None
+    cuts = []
+    for a in range(len(defects)):
+        for b in range(a + 1, len(defects)):
+            (p, dp), (q, dq) = defects[a], defects[b]
+            cuts.append((float(np.hypot(*(p - q))) / (dp + dq), p, q))
+    cuts.sort(key=lambda c: c[0])
+    cuts = cuts[:8]
+    # a concavity whose partner is too shallow to count: cut to the nearest outline points
+    step = np.hypot(*np.diff(np.vstack([outline, outline[:1]]), axis=0).T)
+    arc = np.concatenate([[0.0], np.cumsum(step)[:-1]])
+    total = float(step.sum())
+    for p, _ in defects:
+        d = np.hypot(*(outline - p).T)
+        ip = int(np.argmin(d))
+        along = np.abs(arc - arc[ip])
+        along = np.minimum(along, total - along)
+        order = np.argsort(d)
+        taken = []
+        for i in order:
+            # a cut is a short cut: much shorter than the way round the outline
+            if d[i] < 2 * MIN_DEPTH_PX or along[i] < 3 * d[i] \
+                    or any(np.hypot(*(outline[i] - t)) < 3 for t in taken):
+                continue
+            taken.append(outline[i])
+            if len(taken) == 6:
+                break
+        cuts.extend((np.inf, p, t) for t in taken)
+    for _, p, q in cuts:
+        if budget[0] <= 0:
+            return None
+        budget[0] -= 1
+        parts = _cut(mask, p, q, min_area)
+        if parts is None:
+            continue
+        out = []
+        for part in parts:
+            if is_convex(part, split_depth, PART_SLACK):
+                out.append(part)
+                continue
+            sub = _split(part, min_area, split_depth, depth + 1, budget)
+            if sub is None:
+                break
+            out.extend(sub)
+        else:
+            return out
+    return None
+
+
+def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08) -> list[np.ndarray]:
+    """Split one connected component into convex grains.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        One component, cropped to its bounding box with a margin of 1 pixel.
+    min_area : float
+        Smallest part area in pixels.
+    split_depth : float
+        Concavity allowance as a fraction of the equal-area radius (see
+        :func:`is_convex`); convex components are never split, and a split
+        is kept only if every part is convex.
+
+    Returns
+    -------
+    list of ndarray of bool, shape (h, w)
+        The grains; one element (the mask itself) if not split.
+
+    Notes
+    -----
+    First the outline's concavities (:func:`convexity_defects`) are paired,
+    shortest cut relative to the two depths first, and the shape is cut
+    along the straight segment between them; the visible boundary between
+    an overlapping pair is an edge of the front (convex) grain, which runs
+    between these two points. Parts that are still concave are split again.
+    If no cut gives convex parts, the distance-map watershed is tried.
+    """
+    if mask.sum() < 2 * min_area or is_convex(mask, split_depth):
+        return [mask]
+    # no part may be a sliver of the cluster: a tenth of its area at least
+    min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
+    return _split(mask, min_part, split_depth, 0, [MAX_CUTS]) or [mask]
+
+
+def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
+           budget: list) -> list[np.ndarray] | None:
+    """Convex parts of a concave shape, or None if no acceptable split exists."""
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    if depth > 5 or mask.sum() < 2 * min_area:
+        return None
+    parts = _split_at_defects(mask, min_area, split_depth, depth, budget)
+    if parts is not None:
+        return parts
+    dist = ndi.distance_transform_edt(mask)
+    dmax = float(dist.max())
+    for frac in H_FRACTIONS:
+        h = max(frac * dmax, H_MIN_PX)
+        if h >= dmax:
+            continue
+        markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
+        if n < 2:
+            continue
+        ws = watershed(-dist, markers, mask=mask)
+        parts = [ws == k for k in range(1, n + 1)]
+        if min(int(p.sum()) for p in parts) < min_area:
+            continue
+        if not _necks_are_narrow(ws, dist, n):
+            continue
+        # the ends of a watershed line leave small notches: parts get twice the allowance
+        if all(is_convex(p, split_depth, PART_SLACK) for p in parts):
+            return parts
+    return None
+
+
+def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, method: str = "noise",
+                 local_block_nm: float = 2000.0, local_offset: float = 0.0, min_ecd_nm: float = 40.0,
+                 close_nm: float | None = None, refine_nm: float | None = None, gap_level: float = 0.25,
+                 split: bool = True,
+                 split_depth: float = 0.08) -> tuple[np.ndarray, np.ndarray, dict]:
+    """Label grains in one image (a whole frame or one tile).
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame: grains bright, background 0.
+    pixel_size_nm : float
+        Pixel side in nm.
+    levels : dict
+        Frame-wide levels (see :func:`frame_levels`).
+    method, local_block_nm, local_offset, close_nm, refine_nm, gap_level
+        See :func:`foreground`.
+    min_ecd_nm : float
+        Minimum equivalent circle diameter ``sqrt(4 A / pi)`` in nm.
+    split : bool
+        Split touching grains.
+    split_depth : float
+        See :func:`split_component`.
+
+    Returns
+    -------
+    labels : ndarray of int32, shape (rows, cols)
+        1..n in row-major order of first pixels.
+    clusters : ndarray of int32, shape (rows, cols)
+        Connected component (before splitting) of every grain pixel.
+    flags : dict
+        ``{"split": ndarray of bool, shape (n + 1,)}`` indexed by label.
+    """
+    arr = _check_image(image)
+    if not np.isfinite(pixel_size_nm) or pixel_size_nm <= 0:
+        raise ValueError(f"pixel_size_nm must be positive, got {pixel_size_nm!r}")
+    fg = foreground(arr, pixel_size_nm, levels, method, local_block_nm, local_offset, close_nm, refine_nm,
+                    gap_level)
+    above = arr > levels["noise"]
+    min_area = np.pi / 4.0 * (min_ecd_nm / pixel_size_nm) ** 2
+    comp, n = ndi.label(fg, structure=_EIGHT)
+    labels = np.zeros(arr.shape, np.int32)
+    split_flag = [False]
+    nxt = 1
+    for k, sl in enumerate(ndi.find_objects(comp), start=1):
+        if sl is None:
+            continue
+        r0, r1 = max(sl[0].start - 1, 0), min(sl[0].stop + 1, arr.shape[0])
+        c0, c1 = max(sl[1].start - 1, 0), min(sl[1].stop + 1, arr.shape[1])
+        box = (slice(r0, r1), slice(c0, c1))
+        m = comp[box] == k
+        if m.sum() < max(min_area, 1):
+            comp[box][m] = 0
+            continue
+        parts = split_component(m, max(min_area, 1), split_depth) if split else [m]
+        was_split = len(parts) > 1
+        # closing and hole filling can enclose background between grains: a part
+        # mostly below the threshold is such a pocket, not a grain
+        parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        view = labels[box]
+        for p in parts:
+            view[p] = nxt
+            split_flag.append(was_split)
+            nxt += 1
+    labels, old = tiling.renumber_raster(labels)
+    flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]])}
+    clusters = np.where(labels > 0, comp, 0).astype(np.int32)
+    return labels, clusters, flags
+
+
+def edge_cut(labels: np.ndarray) -> np.ndarray:
+    """Which labels touch the frame border.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        1..n consecutive.
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+    """
+    n = int(labels.max()) if labels.size else 0
+    out = np.zeros(n + 1, bool)
+    for edge in (labels[0, :], labels[-1, :], labels[:, 0], labels[:, -1]):
+        out[edge] = True
+    return out[1:]
+
+
+def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None = None
+                  ) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """The whole step on an array, tiled when the frame is large.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame: grains bright, background 0, about 1 on grains.
+    pixel_size_nm : float
+        Pixel side in nm.
+    params : dict, optional
+        Step parameters (see ``STEP``); missing keys take their defaults.
+
+    Returns
+    -------
+    labels : ndarray of int32, shape (rows, cols)
+    split : ndarray of bool, shape (n,)
+    notes : list of str
+
+    Raises
+    ------
+    ValueError
+        If the foreground covers more than 95 % of the frame, or the most
+        common level is nearer the upper Otsu class (grains everywhere).
+    """
+    p = STEP.resolve(params)
+    arr = _check_image(image)
+    notes = []
+    levels = frame_levels(arr, p["noise_k"])
+    t = levels["otsu"]
+    upper, lower = arr > t, arr <= t
+    mean_up = float(arr[upper].mean()) if upper.any() else t
+    mean_low = float(arr[lower].mean()) if lower.any() else t
+    contrast = mean_up - mean_low
+    if contrast < p["min_contrast"]:
+        notes.append(f"segment-grains: no grains found (contrast {contrast:.3f} between the Otsu "
+                     f"classes is below min_contrast {p['min_contrast']})")
+        return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
+    fg_frac = float(np.mean(arr > t))
+    if fg_frac > MAX_FOREGROUND or abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
+        raise ValueError(f"segment-grains: foreground covers {100 * fg_frac:.0f} % of the frame and the most "
+                         "common level is not background; no background to separate grains from "
+                         "(check polarity and threshold)")
+    kw = dict(method=p["threshold"], local_block_nm=p["local_block_nm"], local_offset=p["local_offset"],
+              min_ecd_nm=p["min_ecd_nm"], close_nm=p["close_nm"], refine_nm=p["refine_nm"],
+              gap_level=p["gap_level"], split=p["split"], split_depth=p["split_depth"])
+
+    def func(tile):
+        return label_grains(tile, pixel_size_nm, levels, **kw)
+
+    if max(arr.shape) > p["tile_px"]:
+        halo = int(np.ceil(p["tile_overlap_nm"] / pixel_size_nm))
+        labels, flags, n_trunc = tiling.label_tiled(arr, func, p["tile_px"], halo, p["tile_workers"])
+        split = flags.get("split", np.zeros(int(labels.max()), bool))
+        if n_trunc:
+            notes.append(f"segment-grains: {n_trunc} grain cluster(s) larger than the tile overlap; "
+                         "raise tile_overlap_nm")
+    else:
+        labels, _, flags = func(arr)
+        split = flags["split"][1:]
+    if labels.max() == 0:
+        notes.append("segment-grains: no grains found")
+    return labels.astype(np.int32), split.astype(bool), notes
+
+
+@hookimpl
+def grainhabit_segment(frame, params):
+    """Label the grains of ``frame.image``; see the module docstring."""
+    if frame.image is None:
+        raise ValueError("segment-grains needs frame.image: run a preprocess step (flatten-background) first")
+    labels, split, notes = segment_image(frame.image, frame.pixel_size_nm, params)
+    n = int(labels.max())
+    new = frame.replace(labels=labels, grains={})
+    new = new.with_columns(label=np.arange(1, n + 1, dtype=np.int64), split=split,
+                           edge_cut=edge_cut(labels))
+    for note in notes:
+        new = new.with_note(note)
+    return new
+
+
+@hookimpl
+def grainhabit_prepare_worker(steps):
+    """Import the scikit-image modules the segmentation calls, once per worker."""
+    if STEP.name not in steps:
+        return
+    import skimage.draw  # noqa: F401
+    import skimage.filters  # noqa: F401
+    import skimage.measure  # noqa: F401
+    import skimage.morphology  # noqa: F401
+    import skimage.segmentation  # noqa: F401

@@ -1,0 +1,1 @@
+"""Survey-level plugins: statistics, per-sample summaries, the report, compare and aggregate."""

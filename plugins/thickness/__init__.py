@@ -1,0 +1,1 @@
+"""Thickness steps: grain thickness from known values or from shadow lengths."""
