@@ -16,6 +16,7 @@ The order of work for ``grainhabit run``:
 from __future__ import annotations
 
 import csv
+import importlib.metadata
 import json
 import logging
 import os
@@ -77,22 +78,25 @@ class RunOutcome:
 
 
 def versions(host: Host) -> dict:
-    """Versions of grainhabit, its plugins and the main libraries."""
-    import dask
-    import scipy
-    import skimage
-    import tifffile
-    import xarray
-    import zarr
+    """Versions of grainhabit, its plugins and the main libraries.
 
-    return {
-        "grainhabit": __version__,
-        "python": platform.python_version(),
-        "numpy": np.__version__, "scipy": scipy.__version__, "scikit-image": skimage.__version__,
-        "dask": dask.__version__, "xarray": xarray.__version__, "zarr": zarr.__version__,
-        "tifffile": tifffile.__version__,
-        "plugins": {name: rec.version for name, rec in sorted(host.records.items())},
-    }
+    Library versions come from the installed distributions' metadata, so
+    no library is imported for this (a run that reads no TIFF never loads
+    tifffile).
+    """
+    libs = {}
+    for dist in _LIBRARIES:
+        try:
+            libs[dist] = importlib.metadata.version(dist)
+        except importlib.metadata.PackageNotFoundError:
+            continue
+    return {"grainhabit": __version__, "python": platform.python_version(), **libs,
+            "plugins": {name: rec.version for name, rec in sorted(host.records.items())}}
+
+
+#: Libraries whose versions a results store records.
+_LIBRARIES = ("numpy", "scipy", "scikit-image", "dask", "distributed", "xarray", "zarr", "tifffile", "imagecodecs",
+              "rosettasciio", "mrcfile", "pluggy")
 
 
 def _read_sidecar(path: str | None) -> dict[str, dict]:

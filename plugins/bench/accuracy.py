@@ -32,6 +32,8 @@ import numpy as np
 from grainhabit import hookimpl
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "bench-accuracy"
 
 TARGETS = {"recall": 0.97, "precision": 0.97, "ecd_err_pct": 2.0, "pairs_split": 0.90}
 

@@ -31,6 +31,8 @@ from grainhabit.frame import FrameData
 from grainhabit.plugins.habit.vocabulary import HABITS
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "bench-habit"
 
 _MIX = {"cube": 1.0, "cuboctahedron": 1.6, "octahedron": 1.0, "tabular_hexagon": 1.0,
         "tabular_triangle": 0.8, "rod": 0.6, "irregular": 0.6}

@@ -21,6 +21,8 @@ import numpy as np
 from grainhabit import hookimpl
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "bench-measure"
 
 #: regionprops properties timed against our scalar measurement.
 REGIONPROPS_PROPERTIES = (

@@ -36,6 +36,8 @@ from grainhabit import hookimpl
 from grainhabit.plugins.bench import harness as bu
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "bench-memory"
 
 TARGET_RATIO = 1.3
 

@@ -28,6 +28,8 @@ from grainhabit import hookimpl
 from grainhabit.plugins.bench import harness as bu
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "bench-profile"
 
 
 def profile_chain(paths, warm) -> tuple[pstats.Stats, dict]:

@@ -71,6 +71,8 @@ from grainhabit import hookimpl
 from grainhabit.plugins.bench import harness as bu
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "bench-throughput"
 
 #: Per-frame stages in the order of the task's ``timings``.
 FRAME_PHASES = ("read", "preprocess", "segment", "measure", "classify", "fit_growth")

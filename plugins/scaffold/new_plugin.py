@@ -31,6 +31,8 @@ from grainhabit.hookspecs import API_VERSION
 from grainhabit.params import STAGES
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "new-plugin"
 
 #: Kinds of plugin the command can start: every stage, plus a frame reader.
 KINDS = STAGES + ("reader",)

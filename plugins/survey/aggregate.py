@@ -25,6 +25,8 @@ from grainhabit.plugins.survey.results_tables import load_results, plain_dataset
 xr = lazy_module("xarray")  # imported on first use: workers never need it
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "aggregate"
 
 _TIME_KEYS = ("finished", "ended", "started", "time")
 

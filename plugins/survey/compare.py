@@ -22,6 +22,8 @@ from grainhabit.plugins.survey.results_tables import load_results
 xr = lazy_module("xarray")  # imported on first use: workers never need it
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "compare"
 
 
 def sample_grains(grains: xr.Dataset, sample: str, include_edge_cut: bool = False) -> dict[str, np.ndarray]:

@@ -27,6 +27,8 @@ import tifffile
 from grainhabit import hookimpl
 
 GRAINHABIT_API = 1
+#: The name this plugin is registered under.
+NAME = "demo"
 __version__ = "1.0"
 
 SAFETY_NOTE = (
