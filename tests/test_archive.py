@@ -7,7 +7,7 @@ import zarr
 
 from grainhabit.plugins.readers import archive
 
-from conftest import draw_frame, run_cli, write_tiff
+from builders import draw_frame, run_cli, write_tiff
 
 
 def test_ingest_then_add_only_new_or_changed(tmp_path):

@@ -12,78 +12,9 @@ from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.measure import outline as ol
 
+from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
+
 # --------------------------------------------------------------- drawing helpers
-from skimage.draw import polygon
-
-from grainhabit.frame import FrameData
-
-from grainhabit.frame import FrameData
-
-
-def body_and_rotation(alpha, face, rotation_deg):
-    return cr.wulff_polyhedron(alpha), cr.in_plane_rotation(rotation_deg) @ cr.resting_rotation(face)
-
-
-def draw_frame(body, rot, ecd_px=70.0, size=128, contrast="bright", facets=True, mu_per_ecd=4.0,
-               noise=0.0, seed=0):
-    """Frame with one grain: SEM facet shading or TEM thickness contrast.
-
-    ``facets=False`` draws a uniform interior (a flat plate look) in either contrast;
-    ``mu_per_ecd`` is the attenuation per grain ECD of thickness (TEM).
-    """
-    k = ecd_px * np.sqrt((np.pi / 4) / cr.projected_area(body, rot))
-    c = size / 2.0
-    outline = cr.project(body, rot) * k
-    rows, cols = c - outline[:, 1], c + outline[:, 0]          # lab y up -> rows down
-    rr, cc = polygon(rows - 0.5, cols - 0.5, (size, size))     # pixel centres at index + 0.5
-    labels = np.zeros((size, size), np.int32)
-    labels[rr, cc] = 1
-    if contrast == "bright":
-        img = np.full((size, size), 0.1)
-        if facets:
-            for f in cr.visible_faces(body, rot):
-                p = f.polygon * k
-                fr, fc = polygon(c - p[:, 1] - 0.5, c + p[:, 0] - 0.5, (size, size))
-                n = f.normal
-                img[fr, fc] = 0.4 + 0.35 * (1 - n[2]) + 0.12 * n[0] - 0.08 * n[1]
-        else:
-            img[rr, cc] = 0.45
-    else:
-        x = (cc + 0.5 - c) / k
-        y = (c - (rr + 0.5)) / k
-        t = cr.thickness_map(body, rot, x, y) * k / ecd_px     # thickness in ECD units
-        if not facets:
-            t = np.full_like(t, np.mean(t))
-        img = np.ones((size, size))
-        img[rr, cc] = np.exp(-mu_per_ecd * t)
-    if noise:
-        img = img + np.random.default_rng(seed).normal(0, noise, img.shape)
-    raw = img.astype(np.float32)
-    image = raw if contrast == "bright" else (1.0 - raw)
-    return FrameData(source="drawn", sample="invented", raw=raw, pixel_size_nm=10.0,
-                     image=image.astype(np.float32), polarity=contrast, labels=labels,
-                     grains={"label": np.array([1]), "edge_cut": np.array([False]),
-                             "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
-
-
-def draw_polygon_frame(poly_xy, size=128, contrast="bright", level=0.45, transmission=0.6):
-    """Frame with one uniform grain of the given outline (lab axes, pixels about the centre)."""
-    c = size / 2.0
-    rr, cc = polygon(c - poly_xy[:, 1] - 0.5, c + poly_xy[:, 0] - 0.5, (size, size))
-    labels = np.zeros((size, size), np.int32)
-    labels[rr, cc] = 1
-    if contrast == "bright":
-        img = np.full((size, size), 0.1)
-        img[rr, cc] = level
-        image = img
-    else:
-        img = np.ones((size, size))
-        img[rr, cc] = transmission
-        image = 1.0 - img
-    return FrameData(source="drawn", sample="invented", raw=img.astype(np.float32), pixel_size_nm=10.0,
-                     image=image.astype(np.float32), polarity=contrast, labels=labels,
-                     grains={"label": np.array([1]), "edge_cut": np.array([False]),
-                             "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
 
 
 def habit_of(frame):
@@ -102,7 +33,7 @@ def test_square_with_shaded_corner_facets_is_cube():
     # truncated cube (alpha = 1.3 on {100}): square outline, four small {111}
     # corner facets shaded differently from the top face (Wulff construction)
     body, rot = body_and_rotation(1.3, "100", 20.0)
-    habit, cols = habit_of(draw_frame(body, rot, contrast="bright"))
+    habit, cols = habit_of(draw_crystal_frame(body, rot, contrast="bright"))
     assert habit == "cube"
     assert cols["facet_chi2"][0] > cl.STEP.defaults()["facet_chi2_min"]
 
@@ -111,10 +42,10 @@ def test_opaque_uniform_square_is_cube_but_pale_thin_square_plate_is_not():
     # TEM: a cube is thick (nearly opaque), a thin square plate of the same
     # outline is semi-transparent; both have a uniform interior
     body, rot = body_and_rotation(1.0, "100", 10.0)
-    thick = draw_frame(body, rot, contrast="dark", mu_per_ecd=4.0)
+    thick = draw_crystal_frame(body, rot, contrast="dark", mu_per_ecd=4.0)
     habit, cols = habit_of(thick)
     assert habit == "cube"
-    thin = draw_frame(body, rot, contrast="dark", mu_per_ecd=0.4)
+    thin = draw_crystal_frame(body, rot, contrast="dark", mu_per_ecd=0.4)
     habit, cols = habit_of(thin)
     assert habit != "cube"
     assert cols["interior_transmission"][0] > 0.5
@@ -125,7 +56,7 @@ def test_hexagon_with_inclined_facets_is_octahedron(contrast):
     # octahedron on a {111} face: hexagonal outline; SEM shows the top
     # triangle and three inclined facets, TEM a thickness peaking in the middle
     body, rot = body_and_rotation(3.0, "111", 5.0)
-    habit, cols = habit_of(draw_frame(body, rot, contrast=contrast))
+    habit, cols = habit_of(draw_crystal_frame(body, rot, contrast=contrast))
     assert habit == "octahedron"
 
 
@@ -133,7 +64,7 @@ def test_hexagon_with_inclined_facets_is_octahedron(contrast):
 def test_uniform_hexagon_is_tabular_hexagon(contrast):
     # the same hexagonal outline with a flat, uniform interior: a plate
     body, rot = body_and_rotation(3.0, "111", 5.0)
-    habit, _ = habit_of(draw_frame(body, rot, contrast=contrast, facets=False, mu_per_ecd=0.5))
+    habit, _ = habit_of(draw_crystal_frame(body, rot, contrast=contrast, facets=False, mu_per_ecd=0.5))
     assert habit == "tabular_hexagon"
 
 
@@ -207,7 +138,7 @@ def test_hull_shape_square_feret_and_solidity():
 
 def test_hook_returns_columns_for_every_grain():
     body, rot = body_and_rotation(2.0, "100", 0.0)
-    frame = draw_frame(body, rot)
+    frame = draw_crystal_frame(body, rot)
     out = cl.grainhabit_classify(frame, cl.STEP.resolve({}))
     assert set(cl.HABITS) >= set(out.grains["habit"])
     assert 0.0 <= out.grains["habit_score"][0] <= 1.0
@@ -230,7 +161,7 @@ def test_outline_shortcut_gives_the_same_habit_as_the_full_fit(monkeypatch):
     frames = [draw_polygon_frame(cr.project(plate, rot) * 70),
               draw_polygon_frame(cr.project(cr.tabular_prism(0.05, 0.1), rot) * 70),
               draw_polygon_frame(rect, size=160),
-              draw_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5)]
+              draw_crystal_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5)]
     searches = []
     real = cl.gr.fit_alpha_cached
 

@@ -12,7 +12,7 @@ from grainhabit.results import open_results, write_results
 from grainhabit.plugins.survey import aggregate
 from grainhabit.plugins.survey import compare
 from grainhabit.plugins.survey import write_report as report
-from test_summary import SAMPLES, make_groups, make_store
+from builders import SAMPLES, make_groups, make_store
 
 
 def _parse(module, argv):

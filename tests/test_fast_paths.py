@@ -20,7 +20,7 @@ from grainhabit.plugins.common import image_stats as imstats
 from grainhabit.plugins.preprocess import flatten_background as pp
 from grainhabit.plugins.segment import segment_grains as sg
 
-from conftest import REPO, reference_gap_lines
+from builders import REPO, reference_gap_lines
 
 
 def _full_frame_foreground(arr, levels, w=3.0):

@@ -9,7 +9,7 @@ import pytest
 
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import fit_growth_ratio as gr
-from test_classify import body_and_rotation, draw_frame, draw_polygon_frame
+from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
 
 
 def fit_drawn(frame, interior=True):
@@ -70,7 +70,7 @@ def test_shift_distances_find_rotation_against_numpy_roll():
 def test_fit_recovers_alpha_of_cuboctahedron_on_100(alpha, contrast):
     # noiseless model grain drawn at ~70 px ECD (e.g. 700 nm at 10 nm/px)
     body, rot = body_and_rotation(alpha, "100", 17.0)
-    fit = fit_drawn(draw_frame(body, rot, contrast=contrast))
+    fit = fit_drawn(draw_crystal_frame(body, rot, contrast=contrast))
     assert fit.face == "100"
     assert abs(fit.alpha - alpha) <= 0.1
     assert fit.alpha_lo <= alpha <= fit.alpha_hi
@@ -80,7 +80,7 @@ def test_outline_alone_keeps_both_look_alike_octagons():
     # alpha = 1.8 and its twin octagon (straight and diagonal edges swapped)
     # look the same in outline: the range must hold the true alpha
     body, rot = body_and_rotation(1.8, "100", 17.0)
-    fit = fit_drawn(draw_frame(body, rot), interior=False)
+    fit = fit_drawn(draw_crystal_frame(body, rot), interior=False)
     assert fit.alpha_lo <= 1.8 <= fit.alpha_hi
     assert "outline only" in fit.note
 
@@ -100,7 +100,7 @@ def test_square_outline_gives_upper_bound_1_5():
 def test_octahedron_on_111_gives_lower_bound_near_3():
     lib = gr.model_library()
     body, rot = body_and_rotation(3.0, "111", 8.0)
-    fit = fit_drawn(draw_frame(body, rot, contrast="bright"))
+    fit = fit_drawn(draw_crystal_frame(body, rot, contrast="bright"))
     assert fit.face == "111"
     assert fit.alpha_hi == pytest.approx(lib.grid[-1])
     assert 2.6 <= fit.alpha_lo <= 3.0
@@ -109,7 +109,7 @@ def test_octahedron_on_111_gives_lower_bound_near_3():
 
 def test_hook_writes_nan_with_reason_for_non_polyhedral():
     body, rot = body_and_rotation(2.0, "100", 0.0)
-    frame = draw_frame(body, rot)
+    frame = draw_crystal_frame(body, rot)
     for habit, word in (("tabular_hexagon", "edge_ratio"), ("rod", "rod"), ("irregular", "irregular")):
         f = frame.with_columns(habit=np.array([habit], object))
         out = gr.grainhabit_fit_growth(f, gr.STEP.resolve({}))
@@ -169,7 +169,7 @@ def test_radial_signature_equals_all_pairs_solution():
 
 def _drawn(alpha, face, rot_deg, contrast, noise=0.02, seed=0):
     body, rot = body_and_rotation(alpha, face, rot_deg)
-    frame = draw_frame(body, rot, contrast=contrast, noise=noise, seed=seed)
+    frame = draw_crystal_frame(body, rot, contrast=contrast, noise=noise, seed=seed)
     return gr.grain_evidence(frame, gr.contours_for(frame), 0)
 
 

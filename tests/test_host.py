@@ -10,7 +10,7 @@ import pytest
 from grainhabit.manager import DEFAULT_CHAIN, DEFAULT_PLUGINS, make_host
 from grainhabit.workflow import validate
 
-from conftest import REPO
+from builders import REPO
 
 
 def test_every_built_in_plugin_loads():

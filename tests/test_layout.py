@@ -96,3 +96,14 @@ def test_readers_register_under_their_public_names():
     for mod in ("grainhabit.plugins.readers.tiff", "grainhabit.plugins.readers.archive"):
         name = importlib.import_module(mod).NAME
         assert host.records[name].module == mod
+
+
+def test_tests_share_builders_through_one_module():
+    # tests/builders.py holds what several test modules use; no test module imports another (nor conftest)
+    offences = []
+    for path in sorted((REPO / "tests").glob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text())):
+            mods = ([node.module] if isinstance(node, ast.ImportFrom) and node.module else
+                    [a.name for a in node.names] if isinstance(node, ast.Import) else [])
+            offences += [f"{path.name}: {m}" for m in mods if m.startswith("test_") or m == "conftest"]
+    assert offences == []

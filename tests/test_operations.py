@@ -17,7 +17,7 @@ import psutil
 import pytest
 import xarray as xr
 
-from conftest import REPO, draw_frame, run_cli, run_cli_subprocess, write_tiff, write_workflow
+from builders import REPO, draw_frame, run_cli, run_cli_subprocess, write_tiff, write_workflow
 
 WF = """\
 version: 1

@@ -5,7 +5,7 @@ import pytest
 
 from grainhabit.frame import FrameData
 from grainhabit.plugins.preprocess import flatten_background as preprocess
-from test_segment import draw_frame
+from builders import draw_faceted_frame
 
 GRAINS = ((80, 80, 40, 6, 0.0), (80, 200, 35, 4, 20.0), (190, 130, 45, 3, 5.0))
 
@@ -16,7 +16,7 @@ def frame_of(raw, px=5.0):
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
 def test_polarity_detected_and_grains_bright(contrast):
-    raw, truth = draw_frame((260, 260), grains=GRAINS, contrast=contrast, seed=11)
+    raw, truth = draw_faceted_frame((260, 260), grains=GRAINS, contrast=contrast, seed=11)
     out = preprocess.grainhabit_preprocess(frame=frame_of(raw), params={})
     assert out.polarity == contrast
     assert out.image.dtype == np.float32 and out.image.shape == raw.shape
@@ -30,13 +30,13 @@ def test_polarity_detected_and_grains_bright(contrast):
 
 
 def test_forced_polarity_is_used():
-    raw, _ = draw_frame((200, 200), grains=GRAINS[:1], contrast="bright", seed=12)
+    raw, _ = draw_faceted_frame((200, 200), grains=GRAINS[:1], contrast="bright", seed=12)
     out = preprocess.grainhabit_preprocess(frame=frame_of(raw), params={"polarity": "dark"})
     assert out.polarity == "dark" and out.notes == ()
 
 
 def test_no_grains_gives_low_confidence_note():
-    raw, _ = draw_frame((200, 200), grains=(), seed=13)
+    raw, _ = draw_faceted_frame((200, 200), grains=(), seed=13)
     out = preprocess.grainhabit_preprocess(frame=frame_of(raw), params={})
     assert any("low confidence" in n for n in out.notes)
     # pure noise is not stretched to grain level
@@ -45,14 +45,14 @@ def test_no_grains_gives_low_confidence_note():
 
 def test_large_grain_is_not_flattened_away():
     # one grain covering about a quarter of the frame, plus the illumination ramp
-    raw, truth = draw_frame((240, 240), grains=((120, 120, 75, 6, 0.0),), seed=14)
+    raw, truth = draw_faceted_frame((240, 240), grains=((120, 120, 75, 6, 0.0),), seed=14)
     out = preprocess.grainhabit_preprocess(frame=frame_of(raw), params={"background_nm": 500.0})
     assert np.median(out.image[truth > 0]) > 0.6
     assert np.median(out.image[truth == 0]) < 0.05
 
 
 def test_background_scale_is_in_nm():
-    raw, _ = draw_frame((200, 200), grains=GRAINS[:2], seed=15)
+    raw, _ = draw_faceted_frame((200, 200), grains=GRAINS[:2], seed=15)
     a = preprocess.flatten(raw, 5.0, background_nm=1000.0)[0]
     b = preprocess.flatten(raw, 10.0, background_nm=2000.0)[0]
     c = preprocess.flatten(raw, 5.0, background_nm=2000.0)[0]
@@ -91,7 +91,7 @@ def test_noise_sigma_of_white_noise():
 
 @pytest.mark.parametrize("method", ["bilateral", "nlmeans", "none"])
 def test_other_denoisers_keep_polarity(method):
-    raw, truth = draw_frame((160, 160), grains=GRAINS[:1], contrast="dark", seed=16)
+    raw, truth = draw_faceted_frame((160, 160), grains=GRAINS[:1], contrast="dark", seed=16)
     out = preprocess.grainhabit_preprocess(frame=frame_of(raw), params={"denoise": method})
     assert out.polarity == "dark" and np.median(out.image[truth > 0]) > 0.6
 

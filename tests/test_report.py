@@ -16,7 +16,7 @@ from skimage.color import deltaE_ciede2000, rgb2lab
 
 from grainhabit.plugins.survey import write_report as report
 from grainhabit.plugins.survey import statistics as st
-from test_summary import make_store
+from builders import make_store
 
 
 class _Refs(HTMLParser):

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from conftest import run_cli, write_workflow
+from builders import run_cli, write_workflow
 
 WF = """\
 version: 1
@@ -36,7 +36,7 @@ SUMMARY_VARS = ["grain_count", "ecd_mean_nm", "ecd_cov_pct", "ecd_d10_nm", "ecd_
 @pytest.fixture(scope="module")
 def local_run(tmp_path_factory):
     """One run on a real local dask cluster (2 worker processes)."""
-    from conftest import draw_frame, write_tiff
+    from builders import draw_frame, write_tiff
 
     root = tmp_path_factory.mktemp("e2e")
     for s, sample in enumerate(("alpha-batch", "beta-batch")):
@@ -133,7 +133,7 @@ def test_failed_frame_is_recorded_and_run_goes_on(tmp_path, small_survey):
     bad = small_survey / "data" / "alpha-batch" / "broken.tif"
     bad.write_bytes(b"not a tiff at all")
     nocal = small_survey / "data" / "beta-batch" / "nocal.tif"
-    from conftest import draw_frame, write_tiff
+    from builders import draw_frame, write_tiff
 
     write_tiff(nocal, draw_frame(discs=[(50, 50, 10)]), None)
     wf = write_workflow(small_survey / "wf.yaml", WF.format(scheduler="serial"))

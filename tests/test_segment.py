@@ -8,53 +8,14 @@ invented test data.
 import numpy as np
 import pytest
 from scipy import ndimage as ndi
-from skimage.draw import disk, line_aa, polygon
+from skimage.draw import disk, polygon
 from skimage.measure import label as sk_label
 
 from grainhabit.frame import FrameData
 from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import segment_grains as segment
 
-from conftest import reference_gap_lines
-
-
-def regular_polygon(cy, cx, r, n=6, rot_deg=0.0):
-    """Vertices (rows, cols) of a regular n-gon of circumradius r."""
-    t = np.deg2rad(rot_deg) + np.arange(n) * 2 * np.pi / n
-    return cy + r * np.sin(t), cx + r * np.cos(t)
-
-
-def draw_frame(shape=(256, 256), grains=((128, 128, 40, 6, 0.0),), contrast="bright", seed=0,
-               gradient=0.3, noise=0.03, facets=True, blur=1.0):
-    """Draw faceted polygon grains; returns (raw float32 image, truth labels int32).
-
-    ``grains`` holds (row, col, circumradius px, n corners, rotation deg);
-    n = 0 draws a disc. Later grains lie on top of earlier ones.
-    """
-    rng = np.random.default_rng(seed)
-    truth = np.zeros(shape, np.int32)
-    signal = np.zeros(shape)
-    for k, (cy, cx, r, n, rot) in enumerate(grains, 1):
-        if n == 0:
-            rr, cc = disk((cy, cx), r, shape=shape)
-        else:
-            rr, cc = polygon(*regular_polygon(cy, cx, r, n, rot), shape)
-        truth[rr, cc] = k
-        signal[rr, cc] = 0.7
-        yy, xx = rr, cc
-        signal[yy, xx] += 0.15 * np.cos(3 * np.arctan2(yy - cy, xx - cx))  # facet shading
-        if facets and n:
-            vy, vx = regular_polygon(cy, cx, r * 0.97, n, rot)
-            for i in range(n):  # strong inner facet edges from the centre to each corner
-                lr, lc, _ = line_aa(int(cy), int(cx), int(round(vy[i])), int(round(vx[i])))
-                ok = (lr >= 0) & (lr < shape[0]) & (lc >= 0) & (lc < shape[1])
-                signal[lr[ok], lc[ok]] = 0.05 if i % 2 else 1.1
-    signal = ndi.gaussian_filter(signal, blur)
-    xx = np.mgrid[0:shape[0], 0:shape[1]][1]
-    background = 0.15 + gradient * xx / shape[1]
-    img = background + (signal if contrast == "bright" else 0.9 - signal)
-    img = img + rng.normal(0.0, noise, shape)
-    return img.astype(np.float32), truth
+from builders import draw_faceted_frame, polygon_rows_cols, reference_gap_lines
 
 
 def run_chain(raw, pixel_size_nm=5.0, seg_params=None, pre_params=None):
@@ -76,7 +37,7 @@ def best_iou(labels, truth_mask):
 def test_disc_area_matches_pi_r_squared():
     # handbook geometry: area of a disc = pi r^2
     r = 30.0
-    raw, _ = draw_frame((200, 200), grains=((100, 100, r, 0, 0.0),), facets=False)
+    raw, _ = draw_faceted_frame((200, 200), grains=((100, 100, r, 0, 0.0),), facets=False)
     out = run_chain(raw)
     assert out.n_grains == 1
     area = (out.labels == 1).sum()
@@ -91,7 +52,7 @@ def test_clean_masks_match_skimage_label():
         if n == 0:
             rr, cc = disk((cy, cx), r, shape=mask.shape)
         else:
-            rr, cc = polygon(*regular_polygon(cy, cx, r, n, rot), mask.shape)
+            rr, cc = polygon(*polygon_rows_cols(cy, cx, r, n, rot), mask.shape)
         mask[rr, cc] = True
     labels, split, _ = segment.segment_image(mask.astype(np.float32), 5.0, {"close_nm": 0.0, "refine_nm": 0.0})
     ref = sk_label(mask, connectivity=2)
@@ -102,7 +63,7 @@ def test_clean_masks_match_skimage_label():
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
 def test_strong_facet_lines_keep_one_grain(contrast):
     grains = ((80, 80, 45, 6, 0.0), (80, 190, 40, 4, 20.0), (180, 120, 45, 3, 10.0))
-    raw, truth = draw_frame((260, 260), grains=grains, contrast=contrast, seed=1)
+    raw, truth = draw_faceted_frame((260, 260), grains=grains, contrast=contrast, seed=1)
     out = run_chain(raw)
     assert out.polarity == contrast
     assert out.n_grains == 3
@@ -114,7 +75,7 @@ def test_strong_facet_lines_keep_one_grain(contrast):
 
 def test_touching_pair_splits():
     grains = ((100, 80, 40, 6, 0.0), (100, 150, 38, 6, 30.0))
-    raw, truth = draw_frame((200, 240), grains=grains, seed=2)
+    raw, truth = draw_faceted_frame((200, 240), grains=grains, seed=2)
     assert ndi.label(truth > 0)[1] == 1  # the two drawn grains do touch
     out = run_chain(raw)
     assert out.n_grains == 2
@@ -127,7 +88,7 @@ def test_touching_pair_splits():
 def test_overlapping_pair_of_different_sizes_splits_at_the_neck():
     # two overlapping discs, radii 45 and 22 px; the neck is where the circles cross
     big, small = (110, 90, 45.0), (110, 150, 22.0)
-    raw, truth = draw_frame((220, 220), grains=((*big, 0, 0.0), (*small, 0, 0.0)), facets=False, seed=3)
+    raw, truth = draw_faceted_frame((220, 220), grains=((*big, 0, 0.0), (*small, 0, 0.0)), facets=False, seed=3)
     out = run_chain(raw)
     assert out.n_grains == 2 and out.grains["split"].all()
     # chord through the crossing points of the two circles (handbook geometry)
@@ -145,7 +106,7 @@ def test_overlapping_pair_of_different_sizes_splits_at_the_neck():
 
 @pytest.mark.parametrize("n,r,rot", [(0, 35, 0), (3, 45, 0), (4, 40, 15), (6, 12, 0), (8, 40, 5), (3, 14, 30)])
 def test_single_convex_grain_never_split(n, r, rot):
-    raw, truth = draw_frame((140, 140), grains=((70, 70, r, n, rot),), seed=4)
+    raw, truth = draw_faceted_frame((140, 140), grains=((70, 70, r, n, rot),), seed=4)
     out = run_chain(raw)
     assert out.n_grains == 1
     assert not out.grains["split"].any()
@@ -153,7 +114,7 @@ def test_single_convex_grain_never_split(n, r, rot):
 
 def test_rod_never_split():
     # an elongated prism (aspect 5) with a facet ridge along its length
-    raw, _ = draw_frame((120, 260), grains=(), seed=5)
+    raw, _ = draw_faceted_frame((120, 260), grains=(), seed=5)
     mask = np.zeros(raw.shape, bool)
     rr, cc = polygon(np.array([45, 45, 75, 75]), np.array([55, 205, 205, 55]), raw.shape)
     mask[rr, cc] = True
@@ -165,7 +126,7 @@ def test_rod_never_split():
 
 def test_columns_and_edge_cut():
     grains = ((100, 100, 30, 6, 0.0), (10, 180, 25, 4, 0.0))
-    raw, _ = draw_frame((200, 220), grains=grains, seed=6)
+    raw, _ = draw_faceted_frame((200, 220), grains=grains, seed=6)
     out = run_chain(raw)
     assert out.labels.dtype == np.int32
     np.testing.assert_array_equal(out.grains["label"], [1, 2])
@@ -175,7 +136,7 @@ def test_columns_and_edge_cut():
 
 
 def test_empty_frame_gives_zero_grains_with_note():
-    raw, _ = draw_frame((128, 128), grains=(), seed=7)
+    raw, _ = draw_faceted_frame((128, 128), grains=(), seed=7)
     out = run_chain(raw)
     assert out.n_grains == 0
     assert out.labels.shape == raw.shape and out.labels.max() == 0
@@ -203,7 +164,7 @@ def test_missing_image_is_a_clear_error():
 
 def test_min_ecd_scales_with_pixel_size():
     # one disc of radius 20 px: ECD 40 px = 200 nm at 5 nm/px, 400 nm at 10 nm/px
-    raw, _ = draw_frame((120, 120), grains=((60, 60, 20, 0, 0.0),), facets=False, seed=8)
+    raw, _ = draw_faceted_frame((120, 120), grains=((60, 60, 20, 0, 0.0),), facets=False, seed=8)
     params = {"min_ecd_nm": 300.0}
     assert run_chain(raw, 5.0, params).n_grains == 0
     assert run_chain(raw, 10.0, params).n_grains == 1
@@ -212,7 +173,7 @@ def test_min_ecd_scales_with_pixel_size():
 def test_split_tuning_params_in_nm_scale():
     # the same touching pair at two pixel sizes with min_ecd in nm scaled alike: same result
     grains = ((100, 80, 40, 6, 0.0), (100, 150, 38, 6, 30.0))
-    raw, _ = draw_frame((200, 240), grains=grains, seed=2)
+    raw, _ = draw_faceted_frame((200, 240), grains=grains, seed=2)
     a = run_chain(raw, 5.0, {"min_ecd_nm": 40.0}, {"background_nm": 4000.0})
     b = run_chain(raw, 10.0, {"min_ecd_nm": 80.0}, {"background_nm": 8000.0})
     np.testing.assert_array_equal(a.labels, b.labels)
@@ -221,7 +182,7 @@ def test_split_tuning_params_in_nm_scale():
 @pytest.mark.parametrize("method", ["local", "sauvola"])
 def test_local_thresholds_on_uneven_frame(method):
     grains = ((70, 70, 35, 6, 0.0), (70, 200, 35, 4, 10.0), (180, 130, 40, 3, 0.0))
-    raw, truth = draw_frame((260, 260), grains=grains, gradient=0.6, seed=9)
+    raw, truth = draw_faceted_frame((260, 260), grains=grains, gradient=0.6, seed=9)
     out = run_chain(raw, 5.0, {"threshold": method, "local_block_nm": 800.0})
     assert out.n_grains == 3
     for k in range(1, 4):
@@ -231,7 +192,7 @@ def test_local_thresholds_on_uneven_frame(method):
 def test_bad_threshold_name_is_refused():
     from grainhabit.params import ParamError
 
-    raw, _ = draw_frame((64, 64), grains=())
+    raw, _ = draw_faceted_frame((64, 64), grains=())
     with pytest.raises(ParamError):
         run_chain(raw, 5.0, {"threshold": "magic"})
 
@@ -261,14 +222,14 @@ def test_digital_convex_shapes_count_as_convex(n, r):
     if n == 0:
         mask[disk((50, 50), r, shape=mask.shape)] = True
     else:
-        mask[polygon(*regular_polygon(50, 50, r, n, 7.0), mask.shape)] = True
+        mask[polygon(*polygon_rows_cols(50, 50, r, n, 7.0), mask.shape)] = True
     assert segment.concavity_depth(mask) <= 1.5
     assert segment.is_convex(mask)
 
 
 def test_cluster_of_three_splits_into_three():
     grains = ((90, 70, 35, 4, 0.0), (90, 135, 32, 6, 0.0), (140, 100, 33, 0, 0.0))
-    raw, truth = draw_frame((240, 220), grains=grains, seed=10)
+    raw, truth = draw_faceted_frame((240, 220), grains=grains, seed=10)
     assert ndi.label(truth > 0)[1] == 1
     out = run_chain(raw)
     assert out.n_grains == 3 and out.grains["split"].all()
@@ -278,9 +239,9 @@ def test_cluster_of_three_splits_into_three():
 
 def test_faint_grain_found_by_noise_threshold_not_by_otsu():
     # one strong and one faint grain (a fifth of the contrast), as thin plates look in bright field
-    raw, truth = draw_frame((200, 260), grains=((100, 70, 40, 6, 0.0),), facets=False, seed=11)
+    raw, truth = draw_faceted_frame((200, 260), grains=((100, 70, 40, 6, 0.0),), facets=False, seed=11)
     faint = np.zeros(raw.shape, bool)
-    faint[polygon(*regular_polygon(100, 190, 40, 3, 0.0), raw.shape)] = True
+    faint[polygon(*polygon_rows_cols(100, 190, 40, 3, 0.0), raw.shape)] = True
     raw = raw + ndi.gaussian_filter(np.where(faint, 0.15, 0.0), 1.0).astype(np.float32)
     default = run_chain(raw)
     assert default.n_grains == 2
@@ -292,7 +253,7 @@ def test_faint_grain_found_by_noise_threshold_not_by_otsu():
 
 def squares_apart(gap, half=25, seed=12):
     """Two axis-aligned squares of side ``2 * half`` px, ``gap`` px apart face to face, on a noisy ramp."""
-    raw, _ = draw_frame((130, 4 * half + gap + 120), grains=(), seed=seed)
+    raw, _ = draw_faceted_frame((130, 4 * half + gap + 120), grains=(), seed=seed)
     truth = np.zeros(raw.shape, np.int32)
     c1 = 60 + half
     for k, c in enumerate((c1, c1 + 2 * half + gap), 1):

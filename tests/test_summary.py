@@ -1,180 +1,20 @@
-"""Tests of the summarise-samples step, and the small results-store builder the
-report, compare and aggregate tests share.
+"""Tests of the summarise-samples step on small invented results stores (tests/builders.py).
 
-The stores built here are invented test data: lognormal grain sizes and
+The stores are invented test data: lognormal grain sizes and
 regular polygon outlines, not measurements of any real emulsion.
 """
 
 from __future__ import annotations
 
-import json
-
 import numpy as np
 import pytest
 import xarray as xr
-from skimage.draw import polygon as draw_polygon
 
-from grainhabit.results import open_results, text_array, write_results
+from grainhabit.results import open_results
 from grainhabit.plugins.survey import statistics as st
 from grainhabit.plugins.survey import summarise_samples as summary
 
-# --------------------------------------------------------------------------
-# invented test stores in the results layout of the design contract
-# --------------------------------------------------------------------------
-
-_SIDES = {"cube": 4, "cuboctahedron": 8, "octahedron": 4, "tabular_hexagon": 6,
-          "tabular_triangle": 3, "rod": 4, "irregular": 7}
-
-
-def _outline(habit: str, ecd: float, cx: float, cy: float, rng) -> np.ndarray:
-    """Polygon (k, 2) in nm of the habit's rough outline with area pi/4 ecd^2."""
-    k = _SIDES[habit]
-    t = np.linspace(0, 2 * np.pi, k, endpoint=False) + rng.uniform(0, np.pi)
-    rad = np.ones(k)
-    if habit == "irregular":
-        rad = rng.uniform(0.6, 1.2, k)
-    xy = np.c_[np.cos(t) * rad, np.sin(t) * rad]
-    if habit == "rod":
-        xy = xy * [2.2, 0.45]
-    x, y = xy[:, 0], xy[:, 1]
-    a = 0.5 * abs(np.dot(x, np.roll(y, 1)) - np.dot(y, np.roll(x, 1)))
-    xy *= np.sqrt(np.pi / 4 * ecd**2 / a)
-    return xy + [cx, cy]
-
-
-def make_groups(samples: dict, frames_per_sample: int = 3, grains_per_frame: int = 25, seed: int = 0,
-                px_nm: float = 8.0, size_px: int = 1000, fail_one: bool = True, run_time: str = "2031-05-04T02:00:00"):
-    """Build the groups and root attrs of a small invented results store.
-
-    ``samples`` maps sample name -> dict(gm=nm, gsd=, habits={name: prob},
-    alpha=(median, sd), batch=, date=).
-    """
-    rng = np.random.default_rng(seed)
-    g_cols = {k: [] for k in ("frame", "source", "sample", "label", "centroid_x_nm", "centroid_y_nm",
-                              "area_nm2", "ecd_nm", "habit", "habit_score", "alpha", "alpha_lo", "alpha_hi",
-                              "alpha_note", "thickness_nm", "tabular_aspect_ratio", "edge_cut", "split")}
-    f_cols = {k: [] for k in ("source", "sample", "status", "error", "grain_count", "pixel_size_nm",
-                              "calibration", "content_hash", "notes", "rows", "cols", "batch", "date")}
-    vx, vy, vg = [], [], []
-    thumbs, tscale, trows, tcols = [], [], [], []
-    field_nm = size_px * px_nm
-    f = 0
-    for name, spec in samples.items():
-        for j in range(frames_per_sample):
-            source = f"/invented/{name}/field_{j:02d}.tif"
-            failed = fail_one and j == frames_per_sample - 1 and name == list(samples)[0]
-            f_cols["source"].append(source)
-            f_cols["sample"].append(name)
-            f_cols["status"].append("failed" if failed else "ok")
-            f_cols["error"].append("segment-grains: no foreground found" if failed else "")
-            f_cols["pixel_size_nm"].append(px_nm)
-            f_cols["calibration"].append("workflow")
-            f_cols["content_hash"].append(f"{seed}-{name}-{j}")
-            f_cols["notes"].append("")
-            f_cols["rows"].append(size_px)
-            f_cols["cols"].append(size_px)
-            f_cols["batch"].append(spec.get("batch", name))
-            f_cols["date"].append(spec.get("date", "2031-05-01"))
-            scale = field_nm / 256
-            img = np.full((256, 256), 40, np.uint8)
-            img += rng.integers(0, 20, img.shape, dtype=np.uint8)
-            n = 0 if failed else grains_per_frame
-            habits = list(spec["habits"])
-            probs = np.array([spec["habits"][h] for h in habits], float)
-            for lab in range(1, n + 1):
-                ecd = rng.lognormal(np.log(spec["gm"]), np.log(spec["gsd"]))
-                # jittered grid, so grains rarely overlap; the outer ring can touch the border
-                side = int(np.ceil(np.sqrt(grains_per_frame)))
-                cell = field_nm / side
-                cx, cy = (np.array([(lab - 1) % side, (lab - 1) // side]) + 0.5) * cell + rng.uniform(-0.2, 0.2, 2) * cell
-                h = habits[rng.choice(len(habits), p=probs / probs.sum())]
-                poly = _outline(h, ecd, cx, cy, rng)
-                edge = bool((poly.min() < 0) or (poly.max() > field_nm))
-                poly = np.clip(poly, 0, field_nm)
-                x, y = poly[:, 0], poly[:, 1]
-                area = 0.5 * abs(np.dot(x, np.roll(y, 1)) - np.dot(y, np.roll(x, 1)))
-                if h in ("cube", "cuboctahedron", "octahedron"):
-                    al = float(np.clip(rng.normal(*spec["alpha"]), 0.2, 4.0))
-                    note = ""
-                else:
-                    al = np.nan
-                    note = "outline class has no alpha"
-                tab = h.startswith("tabular")
-                thick = ecd / rng.uniform(5, 12) if tab else np.nan
-                for key, val in (("frame", f), ("source", source), ("sample", name), ("label", lab),
-                                 ("centroid_x_nm", x.mean()), ("centroid_y_nm", y.mean()), ("area_nm2", area),
-                                 ("ecd_nm", np.sqrt(4 * area / np.pi)), ("habit", h),
-                                 ("habit_score", rng.uniform(0.5, 1)), ("alpha", al), ("alpha_lo", al - 0.1),
-                                 ("alpha_hi", al + 0.1), ("alpha_note", note), ("thickness_nm", thick),
-                                 ("tabular_aspect_ratio", ecd / thick if tab else np.nan),
-                                 ("edge_cut", edge), ("split", False)):
-                    g_cols[key].append(val)
-                gi = len(g_cols["frame"]) - 1
-                vx.extend(x)
-                vy.extend(y)
-                vg.extend([gi] * len(x))
-                rr, cc = draw_polygon(y / scale, x / scale, img.shape)
-                img[rr, cc] = 200
-            f_cols["grain_count"].append(n)
-            thumbs.append(img)
-            tscale.append(scale)
-            trows.append(256)
-            tcols.append(256)
-            f += 1
-    text = {"source", "sample", "habit", "alpha_note", "status", "error", "calibration", "content_hash",
-            "notes", "batch", "date"}
-
-    def ds_of(cols, dim):
-        data = {}
-        for k, v in cols.items():
-            arr = text_array(v) if k in text else np.asarray(v)
-            data[k] = ((dim,), arr, {"units": "nm" if k.endswith("_nm") else ("" if k in text else "1"),
-                                     "long_name": k.replace("_", " ")})
-        return xr.Dataset(data)
-
-    grains = ds_of(g_cols, "grain")
-    frames = ds_of(f_cols, "frame")
-    outlines = xr.Dataset({
-        "grain": (("vertex",), np.asarray(vg, dtype=np.int64), {"units": "1", "long_name": "grain index"}),
-        "x_nm": (("vertex",), np.asarray(vx), {"units": "nm", "long_name": "outline vertex x"}),
-        "y_nm": (("vertex",), np.asarray(vy), {"units": "nm", "long_name": "outline vertex y"}),
-    })
-    thumbnails = xr.Dataset({
-        "image": (("frame", "thumb_y", "thumb_x"), np.stack(thumbs), {"units": "1", "long_name": "thumbnail"}),
-        "scale_nm": (("frame",), np.asarray(tscale), {"units": "nm", "long_name": "nm per thumbnail pixel"}),
-        "thumb_rows": (("frame",), np.asarray(trows), {"units": "1", "long_name": "valid rows"}),
-        "thumb_cols": (("frame",), np.asarray(tcols), {"units": "1", "long_name": "valid cols"}),
-    })
-    ok = np.asarray(f_cols["status"]) == "ok"
-    groups = {"grains": grains, "frames": frames, "outlines": outlines, "thumbnails": thumbnails}
-    groups.update(summary.summarise(grains, frames, {"bootstrap": 200, "group_by": ["batch"]}))
-    assert ok.sum() > 0
-    attrs = {
-        "workflow": "version: 1\nname: invented-test-survey\n",
-        "workflow_hash": f"hash{seed}",
-        "versions": json.dumps({"grainhabit": "0.1.0"}),
-        "runs": json.dumps([{"started": run_time, "finished": run_time, "frames": int(f)}]),
-    }
-    return groups, attrs
-
-
-SAMPLES = {
-    "batch_A": dict(gm=400.0, gsd=1.08, habits={"cube": 0.8, "cuboctahedron": 0.15, "irregular": 0.05},
-                    alpha=(0.9, 0.15), batch="B01", date="2031-05-01"),
-    "batch_B": dict(gm=650.0, gsd=1.35, habits={"octahedron": 0.5, "tabular_hexagon": 0.3,
-                                                  "tabular_triangle": 0.1, "rod": 0.1},
-                    alpha=(3.2, 0.3), batch="B02", date="2031-05-02"),
-    "batch_C": dict(gm=500.0, gsd=1.15, habits={"cuboctahedron": 0.7, "cube": 0.2, "octahedron": 0.1},
-                    alpha=(2.0, 0.3), batch="B03", date="2031-05-03"),
-}
-
-
-def make_store(path, samples=SAMPLES, **kw) -> str:
-    """Write an invented results store at ``path`` with the lead's ``write_results``."""
-    groups, attrs = make_groups(samples, **kw)
-    write_results(path, groups, attrs)
-    return str(path)
-
+from builders import SAMPLES, make_store
 
 # --------------------------------------------------------------------------
 # tests

@@ -7,7 +7,7 @@ from skimage.metrics import contingency_table
 from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import segment_grains as segment
 from grainhabit.plugins.segment import tiling
-from test_segment import draw_frame
+from builders import draw_faceted_frame
 
 
 def scattered_grains(n, shape, seed):
@@ -40,7 +40,7 @@ def test_renumber_raster_matches_skimage_order():
 
 def test_tiled_equals_untiled():
     shape = (480, 460)
-    raw, _ = draw_frame(shape, grains=scattered_grains(60, shape, seed=4), seed=4)
+    raw, _ = draw_faceted_frame(shape, grains=scattered_grains(60, shape, seed=4), seed=4)
     image = preprocess.flatten(raw, 5.0)[0]
     params = {"tile_overlap_nm": 500.0}  # 100 px, more than the largest cluster
     untiled, split_u, _ = segment.segment_image(image, 5.0, params)
@@ -56,7 +56,7 @@ def test_tiled_equals_untiled():
 
 def test_too_small_overlap_is_reported():
     shape = (300, 300)
-    raw, _ = draw_frame(shape, grains=((150, 150, 60, 6, 0.0),), seed=5)
+    raw, _ = draw_faceted_frame(shape, grains=((150, 150, 60, 6, 0.0),), seed=5)
     image = preprocess.flatten(raw, 5.0)[0]
     labels, _, notes = segment.segment_image(image, 5.0, {"tile_px": 140, "tile_overlap_nm": 50.0})
     assert any("tile_overlap_nm" in n for n in notes)

@@ -7,7 +7,7 @@ import pytest
 from grainhabit.manager import make_host
 from grainhabit.workflow import WorkflowError, expand, validate
 
-from conftest import run_cli, write_workflow
+from builders import run_cli, write_workflow
 
 GOOD = """\
 version: 1
