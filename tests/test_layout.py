@@ -107,3 +107,17 @@ def test_tests_share_builders_through_one_module():
                     [a.name for a in node.names] if isinstance(node, ast.Import) else [])
             offences += [f"{path.name}: {m}" for m in mods if m.startswith("test_") or m == "conftest"]
     assert offences == []
+
+
+def test_plain_install_holds_only_the_grainhabit_package(tmp_path):
+    # a wheel (what a plain `pip install .` installs) has the one top-level package and the templates
+    import subprocess
+    import sys
+    import zipfile
+
+    subprocess.run([sys.executable, "-m", "pip", "wheel", "-q", "--no-deps", "--no-build-isolation",
+                    "-w", str(tmp_path), str(REPO)], check=True, capture_output=True, timeout=300)
+    names = zipfile.ZipFile(next(tmp_path.glob("grainhabit-*.whl"))).namelist()
+    assert {n.split("/")[0] for n in names if not n.split("/")[0].endswith(".dist-info")} == {"grainhabit"}
+    assert "grainhabit/plugins/scaffold/templates/stages/segment.py.tmpl" in names
+    assert "grainhabit/plugins/habit/vocabulary.py" in names
