@@ -20,6 +20,7 @@ from grainhabit import hookimpl
 from grainhabit.lazy import lazy_module
 from grainhabit.params import Param, StepInfo
 
+from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, OCTAHEDRON_ALPHA
 from grainhabit.plugins.survey import statistics as st
 from grainhabit.plugins.survey.results_tables import text_values
 
@@ -27,7 +28,6 @@ xr = lazy_module("xarray")  # imported on first use: workers never need it
 
 GRAINHABIT_API = 1
 
-CUBE_ALPHA_MAX, OCTAHEDRON_ALPHA = 1.5, 3.0  # placeholder until vocabulary lands
 
 #: How the confidence intervals are made (stored as the ``ci_note`` attribute).
 CI_NOTE = (
@@ -89,8 +89,10 @@ _VARS = {
     "alpha_count": ("1", "grains with a determined alpha"),
     "alpha_bounded_count": ("1", "grains whose alpha is only bounded (alpha NaN, alpha_lo / alpha_hi finite)"),
     "alpha_determined_fraction": ("1", "fraction of the grains with alpha information whose alpha is determined"),
-    "alpha_cube_range_fraction": ("1", "fraction of the grains with alpha information known to have alpha <= 1.5"),
-    "alpha_octahedron_range_fraction": ("1", "fraction of the grains with alpha information known to have alpha >= 3"),
+    "alpha_cube_range_fraction": ("1", f"fraction of the grains with alpha information known to have alpha <= "
+                                       f"{CUBE_ALPHA_MAX:g} (alpha or alpha_hi)"),
+    "alpha_octahedron_range_fraction": ("1", f"fraction of the grains with alpha information known to have alpha >= "
+                                             f"{OCTAHEDRON_ALPHA:g} (alpha or alpha_lo)"),
     "tabular_aspect_ratio_mean": ("1", "mean aspect ratio of tabular grains"),
     "tabular_count": ("1", "tabular grains with a measured aspect ratio"),
     "monodisperse": ("", "size COV at or below the monodispersity threshold"),
@@ -136,7 +138,7 @@ def _one_group(ecd, area, codes, alpha, alpha_lo, alpha_hi, aspect, frame, param
     """Statistics of one group of grains (already filtered): name -> value.
 
     ``frame`` is each grain's frame: the confidence intervals treat frames,
-    not grains, as the independent units (see :func:`plugins.statistics.clustered_bootstrap`).
+    not grains, as the independent units (see :func:`grainhabit.plugins.survey.statistics.clustered_bootstrap`).
     """
     k = len(st.HABITS)
     n = int(ecd.size)
@@ -330,6 +332,7 @@ def summarise_by(grains: xr.Dataset, frames: xr.Dataset, dim: str, params: dict)
         monodisperse_note="threshold on the size COV; 10-15 % or less is called monodisperse (common practice, from memory)",
         d_values_basis="ecd_dXX_nm are number-based (r = 0); _area_ (r = 2) and _volume_ (r = 3) variants are weighted",
         bootstrap_resamples=int(params["bootstrap"]),
+        bootstrap_method="frame (cluster) bootstrap, Student t on frames - 1 degrees of freedom",
         ci_note=CI_NOTE,
         bootstrap_seed=int(params["seed"]),
         confidence=float(params["confidence"]),
