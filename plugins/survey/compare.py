@@ -12,7 +12,7 @@ within 9 nm").
 Grains of one frame are not independent (focus, contrast and local growth
 conditions are shared), so frames are the units: standard errors come from
 the frames (clustered standard error for means and fractions, frame
-bootstrap for the COV and the alpha median; see :mod:`plugins.statistics`)
+bootstrap for the COV and the alpha median; see :mod:`grainhabit.plugins.survey.statistics`)
 and the tests use Student t on Welch-Satterthwaite degrees of freedom built
 from each sample's number of frames.
 """
@@ -26,7 +26,6 @@ import numpy as np
 
 from grainhabit import hookimpl
 from grainhabit.lazy import lazy_module
-
 from grainhabit.plugins.survey import statistics as st
 from grainhabit.plugins.survey.results_tables import load_results
 
