@@ -85,19 +85,19 @@ def _quantities(s: dict, habits, n_resamples: int, rng) -> dict:
     n = s["ecd"].size
     fr = s["frame"]
     out["ecd_mean_nm"] = st.clustered_mean(s["ecd"], fr) if n else None
-    out["ecd_cov_pct"] = (st.clustered_bootstrap(st.weighted_cov_stat(s["ecd"]), n, fr, n_resamples=n_resamples,
-                                                 rng=rng) if n >= 2 else None)
     known = s["codes"] >= 0
     if known.any():
         onehot = (s["codes"][known][:, None] == np.asarray(habits)[None, :]).astype(float)
         sp = st.clustered_mean(onehot, fr[known], binary=True)
         for j, h in enumerate(habits):
             out[f"fraction:{st.HABITS[h]}"] = st.Spread(sp.estimate[j], sp.se[j], sp.df, sp.n_clusters)
-    det, bnd = st.alpha_states(s["alpha"], s["alpha_lo"], s["alpha_hi"])
-    nd, ninfo = int(det.sum()), int((det | bnd).sum())
-    if nd >= MIN_ALPHA_VALUES and nd >= MIN_ALPHA_DETERMINED * ninfo:
-        out["alpha_median"] = st.clustered_bootstrap(st.weighted_quantile_stat(s["alpha"][det], 0.5), nd, fr[det],
-                                                     n_resamples=n_resamples, rng=rng)
+    if n >= 2:
+        boot = {"ecd_cov_pct": st.weighted_cov_stat(s["ecd"])}
+        det, bnd = st.alpha_states(s["alpha"], s["alpha_lo"], s["alpha_hi"])
+        nd, ninfo = int(det.sum()), int((det | bnd).sum())
+        if nd >= MIN_ALPHA_VALUES and nd >= MIN_ALPHA_DETERMINED * ninfo:
+            boot["alpha_median"] = (st.weighted_quantile_stat(s["alpha"][det], 0.5), det)
+        out.update(st.clustered_bootstrap(boot, n, fr, n_resamples=n_resamples, rng=rng))
     return out
 
 
@@ -136,8 +136,9 @@ def compare_samples(a: dict, b: dict, n_resamples: int = 1000, seed: int = 0, fa
     qa = _quantities(a, seen, n_resamples, rng)
     qb = _quantities(b, seen, n_resamples, rng)
     rows = []
-    for name in qa:
-        sa, sb = qa[name], qb.get(name)
+    order = ["ecd_mean_nm", "ecd_cov_pct"] + [f"fraction:{st.HABITS[j]}" for j in seen] + ["alpha_median"]
+    for name in order:
+        sa, sb = qa.get(name), qb.get(name)
         if sa is None or sb is None:
             continue
         floor_a = floor_b = 0.0
@@ -157,7 +158,8 @@ def compare_samples(a: dict, b: dict, n_resamples: int = 1000, seed: int = 0, fa
     rejected, level = st.holm([r["pvalue"] for r in rows], family_alpha)
     for r, rej, lev in zip(rows, rejected, level):
         q = st.stats.t.ppf(1 - lev / 2, r["df"]) if np.isfinite(lev) else np.nan
-        r.update(ci_lo=r["difference"] - q * r["se"], ci_hi=r["difference"] + q * r["se"],
+        bound = 1.0 if r["name"].startswith("fraction:") else np.inf  # two fractions differ by at most 1
+        r.update(ci_lo=max(r["difference"] - q * r["se"], -bound), ci_hi=min(r["difference"] + q * r["se"], bound),
                  confidence=float(1 - lev) if np.isfinite(lev) else np.nan, differs=bool(rej))
         r["verdict"] = _verdict(r)
     fa = int(np.unique(a["frame"]).size)

@@ -1103,18 +1103,22 @@ def _weight_batches(codes, n_clusters, n_resamples, by_frame, rng, max_elements=
             yield _draw_counts(rng, n, b)
 
 
-def clustered_bootstrap(statistic: Callable, n: int, clusters, *, n_resamples: int = 400,
-                        rng: np.random.Generator | None = None) -> Spread:
+def clustered_bootstrap(statistic, n: int, clusters, *, n_resamples: int = 400,
+                        rng: np.random.Generator | None = None):
     """Standard error of a statistic of clustered grains by resampling whole frames.
 
     Parameters
     ----------
-    statistic : callable
+    statistic : callable or dict
         ``statistic(w)`` with ``w`` of shape (m, n): m sets of grain
         weights (how often each grain is drawn). Returns shape (m,) or
         (m, k). The estimate is ``statistic(ones((1, n)))``. Build one
         with :func:`weighted_mean_stat`, :func:`weighted_cov_stat`,
-        :func:`weighted_quantile_stat`, ... on the data.
+        :func:`weighted_quantile_stat`, ... on the data. A dict maps names
+        to such callables, or to ``(callable, mask)`` for a statistic of
+        the grains in ``mask`` only (e.g. those with a determined alpha;
+        it gets ``w[:, mask]``); all of them are evaluated on the same
+        resamples.
     n : int
         Number of grains.
     clusters : array_like, shape (n,)
@@ -1126,10 +1130,10 @@ def clustered_bootstrap(statistic: Callable, n: int, clusters, *, n_resamples: i
 
     Returns
     -------
-    Spread
+    Spread or dict of Spread
         ``se`` = max(frame-bootstrap SD * sqrt(F / (F - 1)), grain-bootstrap
         SD); ``df`` = F - 1 (n - 1 for one frame: frame-to-frame spread
-        unseen).
+        unseen), F counting the frames that hold the statistic's grains.
 
     Notes
     -----
@@ -1158,25 +1162,50 @@ def clustered_bootstrap(statistic: Callable, n: int, clusters, *, n_resamples: i
     if codes.size != n:
         raise ValueError(f"clusters has {codes.size} entries, expected {n}")
     rng = np.random.default_rng() if rng is None else rng
-    with np.errstate(invalid="ignore", divide="ignore"):
-        est = np.asarray(statistic(np.ones((1, n))), dtype=float)[0]
-    if n < 2:
-        return Spread(est, np.full(est.shape, np.nan), np.nan, F)
+    single = callable(statistic)
+    items = {"": statistic} if single else dict(statistic)
+    funcs, masks = {}, {}
+    for name, item in items.items():
+        f, mask = item if isinstance(item, tuple) else (item, None)
+        mask = None if mask is None else np.asarray(mask, dtype=bool)
+        if mask is not None and mask.shape != (n,):
+            raise ValueError(f"mask of {name!r} has shape {mask.shape}, expected ({n},)")
+        funcs[name], masks[name] = f, mask
+
+    def evaluate(w):
+        out = {}
+        with np.errstate(invalid="ignore", divide="ignore"):
+            for name, f in funcs.items():
+                m = masks[name]
+                out[name] = np.asarray(f(w if m is None else w[:, m]), dtype=float)
+        return out
+
+    est = {k: v[0] for k, v in evaluate(np.ones((1, n))).items()}
+    sizes = {k: (n if masks[k] is None else int(masks[k].sum())) for k in funcs}
+    frames = {k: (F if masks[k] is None else int(np.unique(codes[masks[k]]).size)) for k in funcs}
 
     def sd(by_frame):
-        with np.errstate(invalid="ignore", divide="ignore"):
-            vals = np.concatenate([np.asarray(statistic(w), dtype=float)
-                                   for w in _weight_batches(codes, F, int(n_resamples), by_frame, rng)])
+        vals = {k: [] for k in funcs}
+        for w in _weight_batches(codes, F, int(n_resamples), by_frame, rng):
+            for k, v in evaluate(w).items():
+                vals[k].append(v)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns give NaN
-            return np.nanstd(vals, axis=0, ddof=1)
+            return {k: np.nanstd(np.concatenate(v), axis=0, ddof=1) for k, v in vals.items()}
 
-    se = sd(False)
-    df = float(n - 1)
-    if F >= 2:
-        se = np.fmax(se, sd(True) * np.sqrt(F / (F - 1)))
-        df = float(F - 1)
-    return Spread(est, se, df, F)
+    out = {}
+    if n >= 2:
+        sd_grain = sd(False)
+        sd_frame = sd(True) if F >= 2 else None
+    for k in funcs:
+        nk, fk = sizes[k], frames[k]
+        if n < 2 or nk < 2:
+            out[k] = Spread(est[k], np.full(est[k].shape, np.nan), np.nan, fk)
+        elif fk >= 2:
+            out[k] = Spread(est[k], np.fmax(sd_grain[k], sd_frame[k] * np.sqrt(fk / (fk - 1))), float(fk - 1), fk)
+        else:
+            out[k] = Spread(est[k], sd_grain[k], float(nk - 1), fk)
+    return out[""] if single else out
 
 
 def t_interval(spread: Spread, confidence: float = 0.95, low: float = -np.inf, high: float = np.inf):

@@ -157,7 +157,7 @@ def _one_group(ecd, area, codes, alpha, alpha_lo, alpha_hi, aspect, frame, param
     out["habit_unknown_count"] = int((codes < 0).sum())
     out["habit_number_fraction"], out["habit_area_fraction"] = st.habit_fractions(codes, area, k)
     out["tabular_aspect_ratio_mean"], out["tabular_count"] = st.tabular_aspect_ratio_mean(aspect, codes)
-    out.update(_alpha_stats(alpha, alpha_lo, alpha_hi, frame, params, rng))
+    out.update(_alpha_stats(alpha, alpha_lo, alpha_hi, frame, params))
 
     for name in _CI_OF:
         if name.startswith("alpha_"):
@@ -176,31 +176,35 @@ def _one_group(ecd, area, codes, alpha, alpha_lo, alpha_hi, aspect, frame, param
             out["habit_number_fraction_ci_lo"], out["habit_number_fraction_ci_hi"] = st.proportion_ci(
                 out["habit_number_fraction"], sp.se**2, nk, sp.df, conf)
     if B > 0 and n >= 2:
-        boot = dict(n_resamples=B, rng=rng)
-        sp = st.clustered_bootstrap(st.weighted_cov_stat(ecd), n, frame, **boot)
-        out["ecd_cov_pct_ci_lo"], out["ecd_cov_pct_ci_hi"] = st.t_interval(sp, conf, low=0)
-        sp = st.clustered_bootstrap(st.weighted_quantile_stat(ecd, [0.1, 0.5, 0.9]), n, frame, **boot)
-        lo, hi = st.t_interval(sp, conf, low=0)
+        known = codes >= 0
+        onehot = (codes[:, None] == np.arange(k)[None, :]).astype(float)
+        boot = {"cov": st.weighted_cov_stat(ecd),
+                "d": st.weighted_quantile_stat(ecd, [0.1, 0.5, 0.9]),
+                "d32": st.weighted_moment_mean_stat(ecd, 3, 2)}
+        if known.sum() >= 2:
+            boot["area"] = (st.weighted_ratio_stat(onehot[known] * area[known][:, None], area[known]), known)
+        det = np.isfinite(alpha)
+        if np.isfinite(out["alpha_median"]) and det.sum() >= 2:
+            boot["alpha"] = (st.weighted_quantile_stat(alpha[det], 0.5), det)
+        sp = st.clustered_bootstrap(boot, n, frame, n_resamples=B, rng=rng)
+        out["ecd_cov_pct_ci_lo"], out["ecd_cov_pct_ci_hi"] = st.t_interval(sp["cov"], conf, low=0)
+        lo, hi = st.t_interval(sp["d"], conf, low=0)
         for j, name in enumerate(("ecd_d10_nm", "ecd_d50_nm", "ecd_d90_nm")):
             out[name + "_ci_lo"], out[name + "_ci_hi"] = float(lo[j]), float(hi[j])
-        sp = st.clustered_bootstrap(st.weighted_moment_mean_stat(ecd, 3, 2), n, frame, **boot)
-        out["sauter_d32_nm_ci_lo"], out["sauter_d32_nm_ci_hi"] = st.t_interval(sp, conf, low=0)
-        known = codes >= 0
-        if known.sum() >= 2:
-            onehot = (codes[known][:, None] == np.arange(k)[None, :]).astype(float)
-            sp = st.clustered_bootstrap(st.weighted_ratio_stat(onehot * area[known][:, None], area[known]),
-                                        int(known.sum()), frame[known], **boot)
+        out["sauter_d32_nm_ci_lo"], out["sauter_d32_nm_ci_hi"] = st.t_interval(sp["d32"], conf, low=0)
+        if "area" in sp:
             out["habit_area_fraction_ci_lo"], out["habit_area_fraction_ci_hi"] = st.proportion_ci(
-                out["habit_area_fraction"], sp.se**2, int(known.sum()), sp.df, conf)
+                out["habit_area_fraction"], sp["area"].se**2, int(known.sum()), sp["area"].df, conf)
+        if "alpha" in sp:
+            out["alpha_median_ci_lo"], out["alpha_median_ci_hi"] = st.t_interval(sp["alpha"], conf)
     out["monodisperse"], out["monodispersity"] = st.monodispersity(
         out["ecd_cov_pct"], out["ecd_cov_pct_ci_lo"], out["ecd_cov_pct_ci_hi"], params["monodisperse_cov_pct"])
     return out
 
 
-def _alpha_stats(alpha, alpha_lo, alpha_hi, frame, params, rng) -> dict:
+def _alpha_stats(alpha, alpha_lo, alpha_hi, frame, params) -> dict:
     """alpha statistics of one group: determined values only; bounds as fractions of known ranges."""
     conf = float(params["confidence"])
-    B = int(params["bootstrap"])
     det, bnd = st.alpha_states(alpha, alpha_lo, alpha_hi)
     info = det | bnd
     n_info = int(info.sum())
@@ -227,12 +231,8 @@ def _alpha_stats(alpha, alpha_lo, alpha_hi, frame, params, rng) -> dict:
         su = st.clustered_mean((yes | undecided).astype(float), fi, binary=True) if undecided.any() else sy
         out[name + "_ci_hi"] = st.proportion_ci(su.estimate, su.se**2, n_info, su.df, conf)[1]
     if out["alpha_determined_fraction"] >= float(params["alpha_min_determined"]) and det.sum() >= 1:
-        a = alpha[det]
-        out["alpha_median"], out["alpha_iqr"], _ = st.alpha_median_iqr(a)
-        if B > 0 and a.size >= 2:
-            sp = st.clustered_bootstrap(st.weighted_quantile_stat(a, 0.5), a.size, frame[det],
-                                        n_resamples=B, rng=rng)
-            out["alpha_median_ci_lo"], out["alpha_median_ci_hi"] = st.t_interval(sp, conf)
+        # the median's interval comes from the sample's frame bootstrap (see _one_group)
+        out["alpha_median"], out["alpha_iqr"], _ = st.alpha_median_iqr(alpha[det])
     return out
 
 
