@@ -1209,7 +1209,23 @@ def clustered_bootstrap(statistic, n: int, clusters, *, n_resamples: int = 400,
 
 
 def t_interval(spread: Spread, confidence: float = 0.95, low: float = -np.inf, high: float = np.inf):
-    """estimate -/+ t_{df} * se, clipped to [low, high]; NaN where se is unknown."""
+    """Confidence interval estimate -/+ t_{df} * se.
+
+    Parameters
+    ----------
+    spread : Spread
+        Estimate, standard error and degrees of freedom (from
+        :func:`clustered_mean` or :func:`clustered_bootstrap`).
+    confidence : float
+        Two-sided level.
+    low, high : float
+        Limits are clipped to [low, high] (e.g. 0 for a size).
+
+    Returns
+    -------
+    low, high : float or ndarray
+        NaN where the standard error or degrees of freedom are unknown.
+    """
     q = stats.t.ppf(1 - 0.5 * (1 - confidence), spread.df) if np.isfinite(spread.df) else np.nan
     est, se = np.asarray(spread.estimate, float), np.asarray(spread.se, float)
     lo = np.clip(est - q * se, low, high)
