@@ -183,7 +183,7 @@ def grainhabit_measure(frame: FrameData, params: dict) -> FrameData:
         With the morphology columns of the results' ``grains`` group
         (``centroid_x_nm``, ``centroid_y_nm``, ``area_nm2``, ``ecd_nm``,
         ``perimeter_nm``, ``feret_max_nm``, ``feret_min_nm``,
-        ``feret_ratio``, ``circularity``, ``solidity``, ``n_corners``,
+        ``feret_ratio``, ``form_factor``, ``circularity``, ``solidity``, ``n_corners``,
         ``edge_ratio``, ...) and ``outlines`` (one (k, 2) polygon in nm per
         grain).
     """

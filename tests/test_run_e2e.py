@@ -25,7 +25,7 @@ execution:
 """
 
 GRAIN_VARS = ["frame", "source", "sample", "label", "centroid_x_nm", "centroid_y_nm", "area_nm2", "ecd_nm",
-              "perimeter_nm", "feret_max_nm", "feret_min_nm", "feret_ratio", "circularity", "solidity",
+              "perimeter_nm", "feret_max_nm", "feret_min_nm", "feret_ratio", "form_factor", "circularity", "solidity",
               "n_corners", "edge_ratio", "habit", "habit_score", "alpha", "alpha_lo", "alpha_hi", "thickness_nm",
               "tabular_aspect_ratio", "edge_cut", "split"]
 FRAME_VARS = ["source", "sample", "status", "error", "grain_count", "pixel_size_nm"]

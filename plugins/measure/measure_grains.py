@@ -21,7 +21,7 @@ traced for all grains at once). Two versions are used:
   only blunt sharp corners and shorten calipers);
 - the outline smoothed by local quadratic regression over
   ``contour_window`` vertices (:func:`grainhabit.plugins.measure.outline.smooth_closed_contour`):
-  perimeter, circularity and the corner polygon are taken from it. The raw
+  perimeter, form factor, circularity and the corner polygon are taken from it. The raw
   staircase is 5-8 % too long at most orientations; smoothed, a digitised
   disc's perimeter is within 1 % of 2 pi r, while sharp corners are rounded
   by about a pixel (a square of ECD 80 px comes out about 1 % short).
@@ -61,12 +61,16 @@ Columns
     slanted hull edges; the two agree within 1 px.
 ``feret_ratio``
     x_Fmin / x_Fmax (the ISO 9276-6 aspect ratio from Feret diameters).
+``form_factor``
+    4 pi A_o / P^2 (the ISO 9276-6 form factor), with A_o the area enclosed
+    by the smoothed outline (1 for a disc, pi/4 for a square, pi sqrt(3)/9
+    for an equilateral triangle, pi sqrt(3)/6 for a regular hexagon). A_o
+    differs from ``area_nm2`` by about half a pixel (the outline cuts the
+    corners of the pixels it passes); using it keeps tiny grains in [0, 1].
 ``circularity``
-    4 pi A_o / P^2, with A_o the area enclosed by the smoothed outline
-    (1 for a disc, pi/4 for a square, pi sqrt(3)/9 for an equilateral
-    triangle, pi sqrt(3)/6 for a regular hexagon). A_o differs from
-    ``area_nm2`` by about half a pixel (the outline cuts the corners of the
-    pixels it passes); using it keeps tiny grains in [0, 1].
+    sqrt(form_factor), the ISO 9276-6 circularity (the standard's
+    definitions as we recall them, from memory: no copy at hand): 1 for a
+    disc, sqrt(pi)/2 for a square.
 ``solidity``
     A / A_C. A digitally convex grain scores exactly 1, whatever its size
     and orientation; regionprops' ``solidity`` is the same ratio with a hull
@@ -157,7 +161,8 @@ COLUMNS = {
     "feret_max_nm": ("nm", "maximum Feret diameter"),
     "feret_min_nm": ("nm", "minimum Feret diameter"),
     "feret_ratio": ("1", "Feret ratio (min / max)"),
-    "circularity": ("1", "circularity 4 pi A / P^2"),
+    "form_factor": ("1", "form factor 4 pi A / P^2 (ISO 9276-6)"),
+    "circularity": ("1", "circularity sqrt(4 pi A / P^2) (ISO 9276-6)"),
     "solidity": ("1", "solidity (area / convex hull area)"),
     "convexity": ("1", "convexity (convex hull perimeter / perimeter)"),
     "orientation_deg": ("deg", "major-axis direction from +x towards +y (clockwise on screen)"),
@@ -327,7 +332,7 @@ def measure_labels(labels, image=None, pixel_size_nm=1.0, contour_window=9):
             "feret_max_nm": fmax * px,
             "feret_min_nm": fmin * px,
             "feret_ratio": np.where(fmax > 0, fmin / fmax, np.nan),
-            "circularity": np.where(perim > 0, 4.0 * np.pi * out_a / perim**2, np.nan),
+            "form_factor": np.where(perim > 0, 4.0 * np.pi * out_a / perim**2, np.nan),
             "solidity": np.where(hull_pixels > 0, area / hull_pixels, np.nan),
             "convexity": np.where(perim > 0, np.minimum(conv_p / perim, 1.0), np.nan),
             "orientation_deg": np.where(absent, np.nan, theta),
@@ -338,6 +343,7 @@ def measure_labels(labels, image=None, pixel_size_nm=1.0, contour_window=9):
             "intensity_std": mom.get("std", np.full(n, np.nan)),
         }
     cols["ecd_nm"] = np.where(absent, np.nan, cols["ecd_nm"])
+    cols["circularity"] = np.sqrt(cols["form_factor"])
     return {k: np.asarray(v, dtype=np.float64) for k, v in cols.items()}, contours
 
 

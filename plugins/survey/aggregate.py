@@ -173,7 +173,7 @@ def aggregate(stores: list, params: dict | None = None) -> tuple[dict, dict, dic
         sa = newest.get("summary", xr.Dataset()).attrs
         params = {}
         for key, attr in (("bootstrap", "bootstrap_resamples"), ("seed", "bootstrap_seed"),
-                          ("ci_method", "bootstrap_method"), ("confidence", "confidence"),
+                          ("confidence", "confidence"),
                           ("monodisperse_cov_pct", "monodisperse_cov_pct")):
             if attr in sa:
                 params[key] = type(summary_step.STEP.defaults()[key])(sa[attr])
