@@ -28,9 +28,9 @@ def with_info_strip(image: np.ndarray, rows: int, background: int = 40, ink: int
     strip = np.full((rows, image.shape[1]), background, image.dtype)
     strip[0, :] = ink  # frame line
     for k, c0 in enumerate(range(6, image.shape[1] - 20, 24)):  # "letters": short strokes
-        r0 = 3 + (k % 3)
+        r0 = min(3 + (k % 3), rows - 2)
         strip[r0:r0 + 7, c0] = ink
-        strip[r0 + 3, c0:c0 + 5] = ink
+        strip[min(r0 + 3, rows - 1), c0:c0 + 5] = ink
     return np.concatenate([image, strip], axis=0)
 
 
