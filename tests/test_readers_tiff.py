@@ -199,3 +199,11 @@ def test_override_uses_the_workflow_pixel_size(tmp_path):
     f = _one(write_tescan(tmp_path / "t.tif"), opts)
     assert f.pixel_size_nm == 7.0 and f.calibration == "workflow"
     assert any("override" in n and "5.5 nm" in n for n in f.notes)
+
+
+def test_zeiss_pixel_size_scaled_from_the_image_store_without_a_field_width(tmp_path):
+    text = ("0\r\n0\r\n1\r\nDP_IMAGE_STORE\r\nStore resolution = 1024 * 768\r\nAP_MAG\r\nMag =  50.00 K X\r\n"
+            "AP_PIXEL_SIZE\r\nPixel Size = 5.825 nm\r\n")
+    tifffile.imwrite(tmp_path / "z.tif", noisy((48, 64)), extratags=[(34118, "s", 0, text.encode("latin-1"), True)])
+    f = _one(tmp_path / "z.tif")
+    assert f.pixel_size_nm == pytest.approx(5.825 * 1024 / 64) and f.calibration == "instrument"

@@ -100,7 +100,7 @@ def describe(cal: Calibration | None, options: dict) -> str:
 
 def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: dict, *,
            notes: tuple = (), meta: dict | None = None, image_rows: int | None = None,
-           strip_rows: int | None = None, strip_detail: str = "", find_strip: bool = False) -> FrameData:
+           strip_rows: int | None = None, strip_detail: str = "", look_for_overlays: bool = False) -> FrameData:
     """Turn a frame's stored pixels and calibration into a :class:`FrameData`.
 
     Parameters
@@ -125,9 +125,10 @@ def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: 
         Rows of the info strip at the bottom as the file states them.
     strip_detail : str
         Where the file states the strip, for the note.
-    find_strip : bool
-        Look for an info strip by image analysis when the file states none
-        (scanning-microscope TIFF and bitmap exports).
+    look_for_overlays : bool
+        Look for an info strip by image analysis when the file states none,
+        and for drawn scale bars and text (TIFF and bitmap exports; the
+        other formats hold the detector's data only).
 
     Returns
     -------
@@ -164,13 +165,13 @@ def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: 
     elif strip_rows and 0 < strip_rows < rows:
         cut = int(strip_rows)
         how = f"the file states a {cut}-row strip{' (' + strip_detail + ')' if strip_detail else ''}"
-    elif find_strip:
+    elif look_for_overlays:
         cut = overlays.find_info_strip(data)
         how = "found by image analysis"
     if cut:
         data = data[: rows - cut]
         notes.append(f"info strip removed: bottom {cut} of {rows} rows ({how})")
-    marks = overlays.annotation_mask(data) if find_strip else None
+    marks = overlays.annotation_mask(data) if look_for_overlays else None
     valid = None
     if marks is not None:
         valid = ~marks

@@ -143,20 +143,27 @@ def annotation_mask(image: np.ndarray) -> np.ndarray | None:
         labels, n = ndimage.label(candidate, structure=np.ones((3, 3)))
         if n == 0:
             continue
-        dist = ndimage.distance_transform_edt(np.pad(candidate, 1))[1:-1, 1:-1]
-        thick = ndimage.maximum(dist, labels, index=np.arange(1, n + 1))
-        sizes = ndimage.sum(candidate, labels, index=np.arange(1, n + 1))
-        ring = ndimage.grey_dilation(labels, size=(3, 3)) * ~candidate
-        around = ndimage.median(image, ring, index=np.arange(1, n + 1))
-        contrast = np.abs(np.asarray(around, float) - float(value)) / (float(hi) - float(lo))
-        slices = ndimage.find_objects(labels)
+        sizes = np.bincount(labels.ravel(), minlength=n + 1)
+        sizes[0] = 0
         keep = np.zeros(n + 1, bool)
-        for i, sl in enumerate(slices):
+        big = np.flatnonzero(sizes >= 12)  # specks of clipped noise are not marks
+        if big.size == 0:
+            continue
+        ring = ndimage.grey_dilation(labels, size=(3, 3)) * ~candidate
+        around = np.asarray(ndimage.median(image, ring, index=big), float)
+        contrast = np.abs(around - float(value)) / (float(hi) - float(lo))
+        slices = ndimage.find_objects(labels)
+        for lab, c in zip(big, contrast):
+            if c < MIN_MARK_CONTRAST:
+                continue
+            sl = slices[lab - 1]
             h, w = sl[0].stop - sl[0].start, sl[1].stop - sl[1].start
+            own = labels[sl] == lab
+            thick = ndimage.distance_transform_edt(np.pad(own, 1)).max()
             long, short = max(h, w), min(h, w)
-            stroke = thick[i] <= 2.0 and sizes[i] >= 12
-            bar = short <= 12 and long >= 5 * short and long >= 20 and sizes[i] >= 0.6 * h * w
-            keep[i + 1] = (stroke or bar) and contrast[i] >= MIN_MARK_CONTRAST
+            stroke = thick <= 2.0
+            bar = short <= 12 and long >= 5 * short and long >= 20 and sizes[lab] >= 0.6 * h * w
+            keep[lab] = stroke or bar
         marks |= keep[labels]
     if not marks.any():
         return None

@@ -70,4 +70,4 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
     notes = () if info else ("bitmap export: no specimen scale in the file",)
     return finish(ref, data, cal, options, notes=notes, meta={"format": ref.dtype},
                   image_rows=info.image_rows if info else None, strip_detail=info.maker if info else "",
-                  find_strip=True)
+                  look_for_overlays=True)

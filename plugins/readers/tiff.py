@@ -239,4 +239,4 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
     maker = info.maker if info is not None else ""
     return finish(ref, data, cal, options, notes=tuple(notes), meta=meta,
                   image_rows=getattr(info, "image_rows", None), strip_rows=getattr(info, "strip_rows", None),
-                  strip_detail=maker, find_strip=True)
+                  strip_detail=maker, look_for_overlays=True)

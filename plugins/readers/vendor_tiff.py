@@ -120,7 +120,9 @@ def zeiss(tif, page) -> VendorInfo | None:
 
     The pixel size is the stated field of view (``ap_width``) over the
     stored columns: the tag's ``ap_pixel_size`` is that of the acquisition
-    store resolution and is wrong for a file saved at another size.
+    store resolution and is wrong for a file saved at another size; it is
+    used only with the store size (``dp_image_store``, ``1024 * 768``) to
+    scale it by, otherwise the tag gives no scale.
     """
     if not getattr(tif, "is_sem", False):
         return None
@@ -137,9 +139,12 @@ def zeiss(tif, page) -> VendorInfo | None:
             py = px
         return VendorInfo(make(px, py, "instrument", detail, mag, "sem"), None, None, "Zeiss tag 34118")
     size = _zeiss_length(meta.get("ap_pixel_size"))
-    if size > 0:
-        return VendorInfo(make(size, size, "instrument", "Zeiss tag 34118, ap_pixel_size", mag, "sem"),
-                          None, None, "Zeiss tag 34118")
+    store = re.match(r"\s*(\d+)\s*\*\s*(\d+)", str((meta.get("dp_image_store") or ("", ""))[1]))
+    if size > 0 and store:
+        # ap_pixel_size is that of the acquisition store; scale it to the stored columns
+        size *= int(store.group(1)) / cols
+        return VendorInfo(make(size, size, "instrument", "Zeiss tag 34118, ap_pixel_size over image store", mag,
+                               "sem"), None, None, "Zeiss tag 34118")
     return VendorInfo(None, None, None, "Zeiss tag 34118")
 
 
