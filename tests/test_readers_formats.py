@@ -158,3 +158,13 @@ def test_every_reader_passes_over_foreign_files(tmp_path):
     for path in ("notes.txt", "table.csv", "fake.dm3", "."):
         for module in READERS:
             assert module.grainhabit_list_frames(path=str(tmp_path / path), options=OPTS) is None, (module, path)
+
+
+def test_jeol_sem_text_file_beside_a_tiff(tmp_path):
+    # $KEY value lines: a 160-px scale bar of 5 µm -> 31.25 nm per pixel; the scanned image is 80 x 56 px
+    tifffile.imwrite(tmp_path / "jsm_01.tif", with_info_strip(noisy((56, 80)), 12))
+    (tmp_path / "jsm_01.txt").write_text("$CM_FORMAT JEOL/SEM\n$CM_MAG 20000\n$CM_FULL_SIZE 80 56\n"
+                                         "$$SM_MICRON_BAR 160\n$$SM_MICRON_MARKER 5um\n")
+    _, [f] = _read_all(tiff, tmp_path / "jsm_01.tif")
+    assert f.pixel_size_nm == pytest.approx(31.25) and f.calibration == "instrument"
+    assert f.raw.shape == (56, 80)

@@ -1,10 +1,18 @@
-"""The text file a Hitachi SEM writes beside each image (same name, ``.txt``).
+"""The text file an SEM writes beside each image (same name, ``.txt``).
 
-The file is INI-like: a ``[SemImageFile]`` section with ``PixelSize`` (nm
-per pixel), ``DataSize`` (``1280x960``: the scanned image, without the info
-strip saved below it) and ``Magnification``. The image itself (TIFF, BMP or
-JPEG) carries no calibration, so the reader of the image consults this
-file; its source label is ``instrument``.
+The image itself (TIFF, BMP or JPEG) carries no calibration, so the reader
+of the image consults this file; its source label is ``instrument``. Two
+layouts are known:
+
+- Hitachi: INI-like, a ``[SemImageFile]`` section with ``PixelSize`` (nm
+  per pixel), ``DataSize`` (``1280x960``: the scanned image, without the
+  info strip saved below it) and ``Magnification``;
+- JEOL SEM: ``$KEY value`` lines; the scale bar's length in pixels
+  (``$$SM_MICRON_BAR 160``) and in length units (``$$SM_MICRON_MARKER
+  5um``) give the pixel size (the bar length is a whole number of pixels,
+  so the size is known to about 1/bar, 0.6 % for a 160-px bar);
+  ``$CM_FULL_SIZE 1280 960`` is the scanned image and ``$CM_MAG`` the
+  magnification.
 """
 
 from __future__ import annotations
@@ -14,7 +22,7 @@ import os
 import re
 from dataclasses import dataclass
 
-from .calibration import Calibration, make
+from .calibration import Calibration, make, unit_to_nm
 
 #: Section header that identifies such a file.
 HEADER = "[SemImageFile]"
@@ -60,7 +68,7 @@ def read(image_path: str) -> SidecarInfo | None:
     except OSError:
         return None
     if HEADER not in text:
-        return None
+        return _jeol(text, os.path.basename(txt)) if "$$SM_MICRON_BAR" in text else None
     kv = parse(text)
     try:
         px = float(kv.get("PixelSize", "nan"))
@@ -74,3 +82,30 @@ def read(image_path: str) -> SidecarInfo | None:
         mag = math.nan
     cal = make(px, px, "instrument", f"{os.path.basename(txt)}, PixelSize", mag, "sem")
     return SidecarInfo(cal, rows)
+
+
+def _jeol(text: str, name: str) -> SidecarInfo:
+    """JEOL SEM ``$KEY value`` lines: scale bar pixels and length, scanned size, magnification."""
+    kv = {}
+    for line in text.splitlines():
+        parts = line.strip().split(None, 1)
+        if len(parts) == 2 and parts[0].startswith("$"):
+            kv.setdefault(parts[0].lstrip("$"), parts[1].strip())
+    bar_px = _number(kv.get("SM_MICRON_BAR"))
+    marker = re.match(r"\s*([0-9.]+)\s*([^\s0-9.]+)", kv.get("SM_MICRON_MARKER", ""))
+    size = math.nan
+    if marker and bar_px > 0:
+        factor = unit_to_nm(marker.group(2))
+        if factor:
+            size = float(marker.group(1)) * factor / bar_px
+    full = re.match(r"\s*(\d+)\s+(\d+)", kv.get("CM_FULL_SIZE", ""))
+    cal = make(size, size, "instrument", f"{name}, scale bar $$SM_MICRON_MARKER over $$SM_MICRON_BAR",
+               _number(kv.get("CM_MAG")), "sem")
+    return SidecarInfo(cal, int(full.group(2)) if full else None, None, "JEOL SEM text file")
+
+
+def _number(value) -> float:
+    try:
+        return float(str(value).split()[0])
+    except (ValueError, IndexError, TypeError):
+        return math.nan
