@@ -35,6 +35,7 @@ DEFAULT_PLUGINS = (
     "grainhabit.plugins.readers.tia",
     "grainhabit.plugins.readers.phenom",
     "grainhabit.plugins.readers.plain",
+    "grainhabit.plugins.readers.sidecar",
     "grainhabit.plugins.preprocess.flatten_background",
     "grainhabit.plugins.segment.segment_grains",
     "grainhabit.plugins.measure.measure_grains",

@@ -19,7 +19,7 @@ import tifffile
 from PIL import Image
 from readers_files import OPTS, noisy, with_info_strip
 
-from grainhabit.plugins.readers import emd, gatan, mrc, phenom, plain, signals, tia, tiff
+from grainhabit.plugins.readers import emd, gatan, mrc, phenom, plain, sidecar, signals, tia, tiff
 
 READERS = (tiff, mrc, gatan, emd, tia, phenom, plain)
 
@@ -168,3 +168,13 @@ def test_jeol_sem_text_file_beside_a_tiff(tmp_path):
     _, [f] = _read_all(tiff, tmp_path / "jsm_01.tif")
     assert f.pixel_size_nm == pytest.approx(31.25) and f.calibration == "instrument"
     assert f.raw.shape == (56, 80)
+
+
+def test_sem_text_file_as_an_input_lists_no_frames(tmp_path):
+    (tmp_path / "a.txt").write_text("[SemImageFile]\nPixelSize=12.5\n")
+    with pytest.raises(ValueError, match="image .* is missing"):
+        sidecar.grainhabit_list_frames(path=str(tmp_path / "a.txt"), options=OPTS)
+    Image.fromarray(noisy((8, 8))).save(tmp_path / "a.bmp")
+    assert sidecar.grainhabit_list_frames(path=str(tmp_path / "a.txt"), options=OPTS) == []
+    (tmp_path / "notes.txt").write_text("no SEM keys here")
+    assert sidecar.grainhabit_list_frames(path=str(tmp_path / "notes.txt"), options=OPTS) is None

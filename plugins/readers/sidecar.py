@@ -13,6 +13,10 @@ layouts are known:
   so the size is known to about 1/bar, 0.6 % for a 160-px bar);
   ``$CM_FULL_SIZE 1280 960`` is the scanned image and ``$CM_MAG`` the
   magnification.
+
+As a plugin (``read-sem-text``) this module recognises such a text file
+when it is an input itself (a glob like ``**/*`` matches it) and lists no
+frames for it: its image is read, with it, by the image's reader.
 """
 
 from __future__ import annotations
@@ -22,7 +26,16 @@ import os
 import re
 from dataclasses import dataclass
 
+from grainhabit import hookimpl
+
 from .calibration import Calibration, make, unit_to_nm
+
+GRAINHABIT_API = 1
+__version__ = "1.0"
+NAME = "read-sem-text"
+
+#: Suffixes of the images such a text file belongs to.
+IMAGE_SUFFIXES = (".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".png")
 
 #: Section header that identifies such a file.
 HEADER = "[SemImageFile]"
@@ -109,3 +122,25 @@ def _number(value) -> float:
         return float(str(value).split()[0])
     except (ValueError, IndexError, TypeError):
         return math.nan
+
+
+def _is_sem_text(path: str) -> bool:
+    if not path.lower().endswith(".txt") or not os.path.isfile(path):
+        return False
+    try:
+        with open(path, encoding="utf-8", errors="replace") as fh:
+            start = fh.read(4000)
+    except OSError:
+        return False
+    return HEADER in start or "$$SM_MICRON_BAR" in start or "$CM_FORMAT" in start
+
+
+@hookimpl
+def grainhabit_list_frames(path: str, options: dict):
+    """An SEM text file is recognised with no frames of its own when its image lies beside it."""
+    if not _is_sem_text(path):
+        return None
+    stem = os.path.splitext(path)[0]
+    if any(os.path.isfile(stem + ext) or os.path.isfile(stem + ext.upper()) for ext in IMAGE_SUFFIXES):
+        return []
+    raise ValueError(f"{path}: an SEM text file whose image (same name, .tif/.bmp/.jpg/.png) is missing")
