@@ -52,6 +52,7 @@ def test_tescan_pixel_size_impossible_at_its_magnification_is_refused(tmp_path):
     # the 109.6-dpi screen value read as a scale (231.8 µm per pixel) at 50 kx would need a 740 m display
     path = write_tescan(tmp_path / "bad.tif", px_m="231.77e-6")
     ref = tiff.grainhabit_list_frames(path=str(path), options=OPTS)[0]
+    assert ref.calibration.startswith("refused: pixel size 231770 nm is impossible")  # what check shows
     with pytest.raises(ValueError, match="impossible at the file's magnification"):
         tiff.grainhabit_read_frame(ref=ref, options=OPTS)
 

@@ -87,13 +87,21 @@ def to_luminance(rgb: np.ndarray) -> np.ndarray:
     return np.tensordot(rgb[..., :3].astype(np.float32), w, axes=([-1], [0]))
 
 
-def describe(cal: Calibration | None, options: dict) -> str:
-    """The calibration a frame will get, as one line for ``grainhabit check``."""
+def describe(cal: Calibration | None, options: dict, cols: int = 0) -> str:
+    """The calibration a frame will get, as one line for ``grainhabit check``.
+
+    ``cols`` (image width in pixels) lets the magnification check run here
+    too, so that ``check`` shows a scale the read will refuse.
+    """
     fallback = options.get("pixel_size_nm")
     if options.get("calibration") == "override":
         return f"{fallback:g} nm (workflow, input.calibration: override)"
     if cal is None:
         return f"{fallback:g} nm (workflow)" if fallback else "none (the frame fails: set input.pixel_size_nm)"
+    try:
+        check_plausible(cal, cols, "")
+    except ValueError as exc:
+        return f"refused: {str(exc).lstrip(': ')}"
     text = cal.text()
     return text if cal.square else text + ", resampled to square pixels"
 

@@ -202,7 +202,7 @@ def grainhabit_list_frames(path: str, options: dict):
             cal, _, _ = calibrate(tif, page, path)
     except tifffile.TiffFileError as exc:
         raise ValueError(f"{path}: not a readable TIFF ({exc})") from None
-    return refs_for(path, NAME, shapes, dtype, describe(cal, options))
+    return refs_for(path, NAME, shapes, dtype, describe(cal, options, int(shapes[0][1])))
 
 
 def _locate(tif: tifffile.TiffFile, index: int):
