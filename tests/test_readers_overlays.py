@@ -37,3 +37,11 @@ def test_scale_bar_and_text_are_masked_clipped_grains_are_not():
     assert marks[181, 50] and marks[180, 125]
     assert not marks[60, 60] and not marks[60, 140]
     assert marks[:150].sum() == 0
+
+
+def test_marks_are_filled_with_their_surroundings():
+    img = noisy((100, 100), seed=5, mean=100, sd=5)
+    img[80:84, 10:70] = 255
+    marks = overlays.annotation_mask(img)
+    filled = overlays.fill_marks(img, marks)
+    assert abs(float(filled[80:84, 10:70].mean()) - 100) < 10 and filled.dtype == img.dtype

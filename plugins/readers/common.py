@@ -183,7 +183,9 @@ def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: 
     valid = None
     if marks is not None:
         valid = ~marks
-        notes.append(f"drawn marks (scale bar, text) masked: {int(marks.sum())} px excluded from analysis")
+        data = overlays.fill_marks(data, marks)
+        notes.append(f"drawn marks (scale bar, text) masked: {int(marks.sum())} px excluded from analysis "
+                     "and filled with the grey level around them")
 
     mode = options.get("calibration") or "auto"
     raw = data.astype(np.float32, copy=False)
