@@ -105,7 +105,7 @@ _PIXEL_SIZE_TEXT = re.compile(
 def description_calibration(tif: tifffile.TiffFile, page) -> Calibration | None:
     """Unit and scale written into the description text.
 
-    ImageJ-style texts give a length ``unit`` and keep the pixels per unit
+    Image programs write a length ``unit=...`` line and keep the pixels per unit
     in the resolution tags (whatever their ResolutionUnit); other texts may
     state ``pixel size = 2.5 nm`` directly.
     """
