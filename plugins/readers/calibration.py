@@ -36,7 +36,7 @@ UNIT_NM = {
     "micrometers": 1e3, "\\u00b5m": 1e3,
     "mm": 1e6, "millimeter": 1e6, "millimetre": 1e6,
     "cm": 1e7, "centimeter": 1e7, "centimetre": 1e7,
-    "m": 1e9, "meter": 1e9, "metre": 1e9,
+    "m": 1e9, "meter": 1e9, "metre": 1e9, "meters": 1e9, "metres": 1e9,
 }
 
 #: The generic calibration labels of the design contract, best first.
