@@ -33,10 +33,12 @@ def test_scale_bar_and_text_are_masked_clipped_grains_are_not():
     img[rr, cc] = 20
     rr, cc = disk((60, 140), 2)
     img[rr, cc] = 0  # a dark grain's core at the bottom of the range: surrounded by dark, kept
+    img[100:131, 20:51] = 150
+    img[100, 20:51] = img[130, 20:51] = img[100:131, 20] = img[100:131, 50] = 255  # a grain's clipped rim
     marks = overlays.annotation_mask(img)
     assert marks[181, 50] and marks[180, 125]
-    assert not marks[60, 60] and not marks[60, 140]
-    assert marks[:150].sum() == 0
+    assert not marks[60, 60] and not marks[60, 140] and not marks[100, 35]
+    assert marks[:160].sum() == 0
 
 
 def test_marks_are_filled_with_their_surroundings():

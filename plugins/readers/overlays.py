@@ -30,6 +30,9 @@ MAX_STRIP_FRACTION = 0.30
 #: A drawn mark differs from its surroundings by at least this fraction of the grey range.
 MIN_MARK_CONTRAST = 0.3
 
+#: Strokes of text span at most this many pixels across the line of text.
+MAX_TEXT_HEIGHT = 40
+
 
 def _row_flatness(image: np.ndarray, rows: range) -> dict[int, float]:
     """Fraction of each row's pixels that share the row's most common value."""
@@ -110,7 +113,9 @@ def annotation_mask(image: np.ndarray) -> np.ndarray | None:
     Drawn marks have exactly the image's lowest or highest value. Connected
     sets of such pixels (8-connected) are marks when they are thin strokes
     (no pixel more than 2 px from the set's edge: letters, digits, frame
-    lines) of at least 12 px, or long narrow bars (length at least 5 times
+    lines) of at least 12 px, at most 40 px across, enclosing at most three
+    times their own area (a clipped bright rim round a grain encloses the
+    grain and is kept), or long narrow bars (length at least 5 times
     the width and at most 12 px wide: scale bars), and when they stand out
     from what surrounds them (median of the 1-px ring around them at least
     30 % of the grey range away: drawn, not a clipped rim or core of a
@@ -161,7 +166,9 @@ def annotation_mask(image: np.ndarray) -> np.ndarray | None:
             own = labels[sl] == lab
             thick = ndimage.distance_transform_edt(np.pad(own, 1)).max()
             long, short = max(h, w), min(h, w)
-            stroke = thick <= 2.0
+            hole = int(ndimage.binary_fill_holes(own).sum()) - int(sizes[lab])
+            # a line of text is short across; a clipped rim round a grain encloses much more than it covers
+            stroke = thick <= 2.0 and short <= MAX_TEXT_HEIGHT and hole <= 3 * sizes[lab]
             bar = short <= 12 and long >= 5 * short and long >= 20 and sizes[lab] >= 0.6 * h * w
             keep[lab] = stroke or bar
         marks |= keep[labels]
