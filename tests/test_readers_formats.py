@@ -178,3 +178,20 @@ def test_sem_text_file_as_an_input_lists_no_frames(tmp_path):
     assert sidecar.grainhabit_list_frames(path=str(tmp_path / "a.txt"), options=OPTS) == []
     (tmp_path / "notes.txt").write_text("no SEM keys here")
     assert sidecar.grainhabit_list_frames(path=str(tmp_path / "notes.txt"), options=OPTS) is None
+
+
+def test_tescan_hdr_file_beside_a_tiff_without_the_tag(tmp_path):
+    img = with_info_strip(noisy((48, 64), dtype=np.uint16, mean=9000, sd=900), 10, background=20000)
+    tifffile.imwrite(tmp_path / "vega_01.tif", img)
+    (tmp_path / "vega_01-tif.hdr").write_text("[MAIN]\r\nImageStripSize=10\r\nMagnification=50.000e3\r\n"
+                                              "PixelSizeX=5.5000e-9\r\nPixelSizeY=5.5000e-9\r\n")
+    _, [f] = _read_all(tiff, tmp_path / "vega_01.tif")
+    assert f.pixel_size_nm == pytest.approx(5.5) and f.calibration == "instrument" and f.raw.shape == (48, 64)
+    assert sidecar.grainhabit_list_frames(path=str(tmp_path / "vega_01-tif.hdr"), options=OPTS) == []
+
+
+def test_colour_records_become_rgb():
+    rec = np.zeros((4, 5), dtype=[("R", "u1"), ("G", "u1"), ("B", "u1"), ("A", "u1")])
+    rec["G"] = 200
+    out = signals.pixels({"data": rec}, 0)
+    assert out.shape == (4, 5, 3) and out[..., 1].max() == 200

@@ -12,7 +12,10 @@ layouts are known:
   5um``) give the pixel size (the bar length is a whole number of pixels,
   so the size is known to about 1/bar, 0.6 % for a 160-px bar);
   ``$CM_FULL_SIZE 1280 960`` is the scanned image and ``$CM_MAG`` the
-  magnification.
+  magnification;
+- Tescan SEM: ``NAME-tif.hdr`` (or ``NAME.hdr``) with the same
+  ``PixelSizeX=5.5e-9`` (m) lines as its TIFF tag 50431 (for exports
+  without the tag).
 
 As a plugin (``read-sem-text``) this module recognises such a text file
 when it is an input itself (a glob like ``**/*`` matches it) and lists no
@@ -52,11 +55,12 @@ class SidecarInfo:
 
 
 def path_for(image_path: str) -> str | None:
-    """The text file beside an image (``.txt`` or ``.TXT``), or None."""
-    stem = os.path.splitext(image_path)[0]
-    for ext in (".txt", ".TXT"):
-        if os.path.isfile(stem + ext):
-            return stem + ext
+    """The text file beside an image (``NAME.txt``, ``NAME-tif.hdr``, ``NAME.hdr``, any case), or None."""
+    stem, ext = os.path.splitext(image_path)
+    for tail in (".txt", f"-{ext.lstrip('.').lower()}.hdr", ".hdr"):
+        for candidate in (stem + tail, stem + tail.upper()):
+            if os.path.isfile(candidate):
+                return candidate
     return None
 
 
@@ -81,7 +85,11 @@ def read(image_path: str) -> SidecarInfo | None:
     except OSError:
         return None
     if HEADER not in text:
-        return _jeol(text, os.path.basename(txt)) if "$$SM_MICRON_BAR" in text else None
+        if "$$SM_MICRON_BAR" in text:
+            return _jeol(text, os.path.basename(txt))
+        if "PixelSizeX=" in text:
+            return _tescan(text, os.path.basename(txt))
+        return None
     kv = parse(text)
     try:
         px = float(kv.get("PixelSize", "nan"))
@@ -125,14 +133,14 @@ def _number(value) -> float:
 
 
 def _is_sem_text(path: str) -> bool:
-    if not path.lower().endswith(".txt") or not os.path.isfile(path):
+    if not path.lower().endswith((".txt", ".hdr")) or not os.path.isfile(path):
         return False
     try:
         with open(path, encoding="utf-8", errors="replace") as fh:
             start = fh.read(4000)
     except OSError:
         return False
-    return HEADER in start or "$$SM_MICRON_BAR" in start or "$CM_FORMAT" in start
+    return HEADER in start or "$$SM_MICRON_BAR" in start or "$CM_FORMAT" in start or "PixelSizeX=" in start
 
 
 @hookimpl
@@ -141,6 +149,15 @@ def grainhabit_list_frames(path: str, options: dict):
     if not _is_sem_text(path):
         return None
     stem = os.path.splitext(path)[0]
-    if any(os.path.isfile(stem + ext) or os.path.isfile(stem + ext.upper()) for ext in IMAGE_SUFFIXES):
+    stems = {stem, re.sub(r"-(tif|tiff|png|jpg|jpeg|bmp)$", "", stem, flags=re.IGNORECASE)}
+    if any(os.path.isfile(st + ext) or os.path.isfile(st + ext.upper()) for st in stems for ext in IMAGE_SUFFIXES):
         return []
     raise ValueError(f"{path}: an SEM text file whose image (same name, .tif/.bmp/.jpg/.png) is missing")
+
+
+def _tescan(text: str, name: str) -> SidecarInfo:
+    """Tescan ``key=value`` lines: ``PixelSizeX/Y`` (m), ``Magnification``, ``ImageStripSize`` (rows)."""
+    from .vendor_tiff import tescan_text
+
+    info = tescan_text(text, f"{name}, PixelSizeX")
+    return SidecarInfo(info.calibration, None, info.strip_rows, "Tescan text file")

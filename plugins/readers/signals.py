@@ -118,7 +118,10 @@ def pixels(sig: dict, stack_index: int) -> np.ndarray:
     shape = tuple(data.shape)
     if len(shape) > 2:
         data = data.reshape((-1,) + shape[-2:])[stack_index]
-    return np.asarray(data.compute() if hasattr(data, "compute") else data)
+    arr = np.asarray(data.compute() if hasattr(data, "compute") else data)
+    if arr.dtype.names and all(c in arr.dtype.names for c in "RGB"):  # colour images as records
+        arr = np.stack([arr[c] for c in "RGB"], axis=-1)
+    return arr
 
 
 def skipped_note(skipped: list[str]) -> tuple[str, ...]:

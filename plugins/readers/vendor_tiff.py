@@ -161,16 +161,21 @@ def tescan(page) -> VendorInfo | None:
     raw = tag.value
     text = raw.decode("latin-1") if isinstance(raw, (bytes, bytearray)) else str(raw)
     # the tag starts with a thumbnail image; the metadata is key=value lines after it
+    if "PixelSizeX=" not in text:
+        return None
+    return tescan_text(text, "Tescan text tag 50431, PixelSizeX")
+
+
+def tescan_text(text: str, detail: str) -> VendorInfo:
+    """Tescan ``key=value`` metadata text (in tag 50431 or a ``.hdr`` file beside the image)."""
     kv = {}
     for m in re.finditer(r"(PixelSizeX|PixelSizeY|Magnification|ImageStripSize)=([^\r\n\x00]*)", text):
         kv.setdefault(m.group(1), m.group(2).strip())
-    if "PixelSizeX" not in kv:
-        return None
     px = _float(kv.get("PixelSizeX"))
     py = _float(kv.get("PixelSizeY", kv.get("PixelSizeX")))
     mag = _float(kv.get("Magnification"))
     strip = _float(kv.get("ImageStripSize"))
-    cal = make(px * 1e9, py * 1e9, "instrument", "Tescan text tag 50431, PixelSizeX", mag, "sem")
+    cal = make(px * 1e9, py * 1e9, "instrument", detail, mag, "sem")
     return VendorInfo(cal, None, int(strip) if strip > 0 else None, "Tescan text tag 50431")
 
 
