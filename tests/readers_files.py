@@ -34,10 +34,10 @@ def with_info_strip(image: np.ndarray, rows: int, background: int = 40, ink: int
     return np.concatenate([image, strip], axis=0)
 
 
-def write_fei(path: Path, rows=60, strip=8, cols=64) -> Path:
+def write_fei(path: Path, rows=60, strip=8, cols=64, field_factor=1.0) -> Path:
     """FEI/Thermo SEM TIFF: INI text in tag 34682 (values of a real Helios file, 3.3724 µm pixels)."""
     image = with_info_strip(noisy((rows, cols)), strip)
-    hfw = 3.3724e-06 * cols
+    hfw = 3.3724e-06 * cols * field_factor
     text = ("[User]\r\nDate=06/13/2016\r\n[Scan]\r\nPixelWidth=3.3724e-06\r\nPixelHeight=3.3724e-06\r\n"
             f"HorFieldsize={hfw:.6g}\r\n[Image]\r\nResolutionX={cols}\r\nResolutionY={rows}\r\n"
             f"MagCanvasRealWidth={0.2072 * cols / 512:.6g}\r\n")

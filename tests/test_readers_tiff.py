@@ -34,6 +34,12 @@ def test_fei_text_block_pixel_size_and_stated_image_height(tmp_path):
     assert any("bottom 8 of 68 rows" in n and "image height of 60 rows" in n for n in f.notes)
 
 
+def test_fei_field_width_that_contradicts_the_pixel_width_is_refused(tmp_path):
+    path = write_fei(tmp_path / "fei.tif", field_factor=2.0)
+    with pytest.raises(ValueError, match="fei.tif: FEI/Thermo metadata disagrees with itself"):
+        tiff.grainhabit_list_frames(path=str(path), options=OPTS)
+
+
 def test_zeiss_tag_field_width_over_stored_columns(tmp_path):
     # the tag's own "Pixel Size" (5.825 nm) belongs to the 1024-px acquisition store: not used
     f = _one(write_zeiss(tmp_path / "zeiss.tif", cols=64))

@@ -168,7 +168,10 @@ def calibrate(tif: tifffile.TiffFile, page, path: str, series_index: int = 0):
     notes : list of str
     """
     notes = []
-    info = vendor_tiff.read(tif, page) or sidecar.read(path)
+    try:
+        info = vendor_tiff.read(tif, page) or sidecar.read(path)
+    except ValueError as exc:
+        raise ValueError(f"{path}: {exc}") from None
     if info is not None and info.calibration is not None:
         return info.calibration, info, notes
     if info is not None:
