@@ -84,6 +84,10 @@ def cmd_check(args, host: Host) -> int:
         print(f"  problem: {path}: {reason}")
     cal = cfg["input"]["pixel_size_nm"]
     print(f"  pixel size where a file has none: {cal if cal is not None else 'not set (such frames fail)'} nm")
+    if cfg["input"]["calibration"] == "override":
+        print(f"  input.calibration: override: every frame is measured at {cal} nm")
+    for line in _file_lines(frames, cfg["input"]):
+        print(line)
     print(f"output: {cfg['output']['results']}" + (f", report {cfg['output']['report']}" if cfg["output"]["report"] else ""))
     ex = cfg["execution"]
     print(f"execution: scheduler {ex['scheduler']}, workers {ex['workers']}")
@@ -95,6 +99,28 @@ def cmd_check(args, host: Host) -> int:
                            for k, v in s.params.items()) or "no parameters"
         print(f"  {s.stage:<10} {s.name} {s.version}: {params}")
     return EXIT_OK
+
+
+def _file_lines(frames, options: dict) -> list[str]:
+    """One line per input file: reader, frame count and the calibration its frames will get."""
+    by_path: dict[str, list] = {}
+    for f in frames:
+        by_path.setdefault(f.ref.path, []).append(f.ref)
+    lines = []
+    for path, refs in by_path.items():
+        texts = list(dict.fromkeys(r.calibration for r in refs))
+        if options.get("calibration") == "override":
+            cal = f"{options['pixel_size_nm']:g} nm (workflow, input.calibration: override)"
+        elif texts != [""]:
+            cal = "; ".join(t or "when read" for t in texts)
+        elif options.get("pixel_size_nm") is not None:
+            cal = f"the file's own when read, else {options['pixel_size_nm']:g} nm (workflow)"
+        else:
+            cal = "the file's own when read"
+        n = len(refs)
+        lines.append(f"  file {path}: reader {refs[0].reader or '?'}, {n} frame{'s' if n != 1 else ''}, "
+                     f"calibration {cal}")
+    return lines
 
 
 def cmd_run(args, host: Host) -> int:

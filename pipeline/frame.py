@@ -45,6 +45,10 @@ class FrameRef:
     content_hash : str
         Hash of the frame's stored bytes (or of the file for single-page
         files); empty if the reader cannot tell without reading.
+    calibration : str
+        The calibration the reader will use, as one line for
+        ``grainhabit check`` (e.g. ``"5.5 nm (instrument: Tescan text tag
+        50431, PixelSizeX)"``); empty if known only when the frame is read.
     """
 
     source: str
@@ -54,6 +58,7 @@ class FrameRef:
     dtype: str = ""
     reader: str = ""
     content_hash: str = ""
+    calibration: str = ""
 
 
 @dataclass(frozen=True)
@@ -71,8 +76,9 @@ class FrameData:
     pixel_size_nm : float
         Side of one (square) pixel in nm.
     calibration : str
-        Where ``pixel_size_nm`` came from (``"ome"``, ``"imagej"``,
-        ``"resolution"``, ``"workflow"``, ``"archive"``).
+        Where ``pixel_size_nm`` came from: ``"instrument"``, ``"ome"``,
+        ``"tiff-description"``, ``"tiff-resolution"`` or ``"workflow"``
+        (the design contract's labels).
     image : ndarray of float32, shape (rows, cols), optional
         Preprocessed frame, flattened and scaled so that grains are bright
         and background is dark, roughly in [0, 1]. Set by preprocess steps.
@@ -92,6 +98,10 @@ class FrameData:
         Remarks for the frame record (e.g. "RGB converted to luminance").
     meta : dict
         Free-form acquisition metadata from the reader.
+    valid : ndarray of bool, shape (rows, cols), optional
+        False on pixels that are not specimen (scale bars and text drawn
+        into the image); segmentation leaves them out. None: every pixel
+        is specimen. Set by readers.
     """
 
     source: str
@@ -106,6 +116,7 @@ class FrameData:
     outlines: tuple = ()
     notes: tuple = ()
     meta: dict = field(default_factory=dict)
+    valid: np.ndarray | None = None
 
     @property
     def n_grains(self) -> int:

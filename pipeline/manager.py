@@ -29,6 +29,13 @@ from .params import FRAME_STAGES, STAGES, StepInfo
 DEFAULT_PLUGINS = (
     "grainhabit.plugins.readers.tiff",
     "grainhabit.plugins.readers.archive",
+    "grainhabit.plugins.readers.mrc",
+    "grainhabit.plugins.readers.gatan",
+    "grainhabit.plugins.readers.emd",
+    "grainhabit.plugins.readers.tia",
+    "grainhabit.plugins.readers.phenom",
+    "grainhabit.plugins.readers.plain",
+    "grainhabit.plugins.readers.sidecar",
     "grainhabit.plugins.preprocess.flatten_background",
     "grainhabit.plugins.segment.segment_grains",
     "grainhabit.plugins.measure.measure_grains",

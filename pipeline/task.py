@@ -161,6 +161,10 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         if not isinstance(frame, FrameData):
             raise TypeError(f"reader returned {type(frame).__name__}, expected FrameData")
         fallback = job.input_options.get("pixel_size_nm")
+        if job.input_options.get("calibration") == "override" and frame.calibration != "workflow":
+            # input.calibration: override applies to every reader, also one that does not know the key
+            frame = frame.replace(pixel_size_nm=float(fallback), calibration="workflow").with_note(
+                f"input.calibration: override: {fallback:g} nm used instead of the file's own")
         if not (frame.pixel_size_nm and np.isfinite(frame.pixel_size_nm)):
             if fallback is None:
                 raise ValueError(f"{ref.source}: the file carries no pixel size and input.pixel_size_nm is not set")

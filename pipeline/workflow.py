@@ -47,6 +47,7 @@ SCHEMA: dict[str, Any] = {
         "paths": ((list, str), False, []),
         "archive": (str, False, None),
         "pixel_size_nm": (_ANY_NUMBER, False, None),
+        "calibration": (str, False, "auto"),
         "sample": (str, False, "{parent}"),
         "fields": (dict, False, {}),
         "metadata_csv": (str, False, None),
@@ -142,6 +143,7 @@ class Plan:
             {
                 "steps": [[s.name, s.version, s.params] for s in self.frame_steps],
                 "pixel_size_nm": inp.get("pixel_size_nm"),
+                "calibration": inp.get("calibration"),
                 "max_pixels": inp.get("max_pixels"),
                 "readers": readers,
                 "plugins": self.config.get("plugins", []),
@@ -291,6 +293,10 @@ def validate(path: str, host: Host, overrides: dict | None = None) -> Plan:
         inp["metadata_csv"] = _resolve_path(base, inp["metadata_csv"])
     if inp["pixel_size_nm"] is not None and inp["pixel_size_nm"] <= 0:
         raise WorkflowError(path, "input.pixel_size_nm", f"expected a number > 0 (nm), got {inp['pixel_size_nm']!r}")
+    if inp["calibration"] not in ("auto", "override"):
+        raise WorkflowError(path, "input.calibration", f"expected 'auto' or 'override', got {inp['calibration']!r}")
+    if inp["calibration"] == "override" and inp["pixel_size_nm"] is None:
+        raise WorkflowError(path, "input.calibration", "'override' needs input.pixel_size_nm (the size to apply)")
     if inp["max_pixels"] <= 0:
         raise WorkflowError(path, "input.max_pixels", f"expected an integer > 0, got {inp['max_pixels']!r}")
     if inp["on_missing"] not in ("keep", "drop"):

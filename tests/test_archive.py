@@ -22,7 +22,7 @@ def test_ingest_then_add_only_new_or_changed(tmp_path):
     arrays = {root["frames"][e["array"]].attrs["source"]: root["frames"][e["array"]]
               for e in root.attrs["index"].values()}
     a = arrays[str(data / "s1" / "a.tif")]
-    assert a.chunks == (128, 128) and a.attrs["pixel_size_nm"] == 5.0 and a.attrs["calibration"] == "resolution"
+    assert a.chunks == (128, 128) and a.attrs["pixel_size_nm"] == 5.0 and a.attrs["calibration"] == "tiff-resolution"
     b = arrays[str(data / "s1" / "b.tif")]
     assert b.attrs["pixel_size_nm"] == 7.5 and b.attrs["calibration"] == "workflow"
     np.testing.assert_array_equal(a[...], draw_frame(discs=[(50, 50, 10)]))

@@ -1,0 +1,207 @@
+"""What an instrument or an image program draws onto a micrograph.
+
+Two kinds of pixels are not specimen and must never become grains:
+
+- the info strip ("databar") that SEM software puts under the scanned
+  image: full-width rows of flat colour with text, a scale bar and frame
+  lines. A reader crops it, from the row count the file states where it
+  does (:func:`crop_rows`), otherwise where :func:`find_info_strip` finds
+  it by image analysis;
+- scale bars and text burned into the image itself: thin strokes and bars
+  drawn in the image's extreme grey value. :func:`annotation_mask` marks
+  them; the frame's ``valid`` mask is False there and segmentation leaves
+  those pixels out.
+
+Both work on the stored values (before any scaling): drawn pixels have
+exactly one value, where a micrograph's rows are noisy.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: A row is flat when at least this fraction of its pixels has the row's most common value.
+FLAT_ROW_FRACTION = 0.45
+
+#: An info strip is at least this many rows (and 2 % of the height) and at most 30 % of the height.
+MIN_STRIP_ROWS = 8
+MAX_STRIP_FRACTION = 0.30
+
+#: A drawn mark differs from its surroundings by at least this fraction of the grey range.
+MIN_MARK_CONTRAST = 0.3
+
+#: Strokes of text span at most this many pixels across the line of text.
+MAX_TEXT_HEIGHT = 40
+
+
+def _row_flatness(image: np.ndarray, rows: range) -> dict[int, float]:
+    """Fraction of each row's pixels that share the row's most common value."""
+    if len(rows) == 0:
+        return {}
+    block = np.sort(image[rows.start:rows.stop], axis=1)
+    n, cols = block.shape
+    starts = np.ones(block.shape, bool)
+    starts[:, 1:] = block[:, 1:] != block[:, :-1]
+    run = np.cumsum(starts, axis=1) - 1 + (np.arange(n) * cols)[:, None]
+    longest = np.bincount(run.ravel(), minlength=n * cols).reshape(n, cols).max(axis=1)
+    return {r: float(c) / cols for r, c in zip(rows, longest)}
+
+
+def find_info_strip(image: np.ndarray) -> int:
+    """Rows of an info strip at the bottom of an image, found by image analysis.
+
+    The strip is the block of bottom rows that are flat (most pixels share
+    one value: background of the strip, interrupted by text) above which the
+    image rows are not flat (a micrograph's noise). At most two noisy rows
+    at the very bottom are allowed (some writers pad the last row), and at
+    most 15 % of the strip's rows may be non-flat (rows through dense text).
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Stored pixel values (integer images; a float image has no exactly
+        repeated values and gives 0).
+
+    Returns
+    -------
+    int
+        Number of rows to drop at the bottom (0 if no strip is found, or if
+        the image itself is flat so that no boundary can be told).
+    """
+    if image.ndim != 2 or image.dtype.kind not in "ui" or image.shape[0] < 50 or image.shape[1] < 50:
+        return 0
+    n_rows = image.shape[0]
+    lowest = max(0, n_rows - int(MAX_STRIP_FRACTION * n_rows) - 6)
+    flat = {r: f >= FLAT_ROW_FRACTION for r, f in _row_flatness(image, range(lowest, n_rows)).items()}
+    r = n_rows - 1
+    skipped = 0
+    while r >= lowest and not flat[r] and skipped < 2:
+        r, skipped = r - 1, skipped + 1
+    bottom = r
+    top = None
+    run_noisy = 0
+    while r >= lowest:
+        if flat[r]:
+            top, run_noisy = r, 0
+        else:
+            run_noisy += 1
+            if run_noisy >= 4:
+                break
+        r -= 1
+    if top is None:
+        return 0
+    height = n_rows - top
+    block = [flat[i] for i in range(top, bottom + 1)]
+    if height < max(MIN_STRIP_ROWS, 0.02 * n_rows) or height > MAX_STRIP_FRACTION * n_rows:
+        return 0
+    if sum(block) < 0.85 * len(block):
+        return 0
+    above = _row_flatness(image, range(max(0, top - 40), top))
+    if not above or np.median(list(above.values())) >= 0.25:
+        return 0  # the image above is as flat as the strip: no boundary to trust
+    return int(height)
+
+
+def crop_rows(image: np.ndarray, keep_rows: int):
+    """The top ``keep_rows`` rows of an image (the rest is the info strip)."""
+    return image[: int(keep_rows)]
+
+
+def annotation_mask(image: np.ndarray) -> np.ndarray | None:
+    """Pixels of scale bars and text drawn into an image (True = drawn).
+
+    Drawn marks have exactly the image's lowest or highest value. Connected
+    sets of such pixels (8-connected) are marks when they are thin strokes
+    (no pixel more than 2 px from the set's edge: letters, digits, frame
+    lines) of at least 12 px, at most 40 px across, enclosing at most three
+    times their own area (a clipped bright rim round a grain encloses the
+    grain and is kept), or long narrow bars (length at least 5 times
+    the width and at most 12 px wide: scale bars), and when they stand out
+    from what surrounds them (median of the 1-px ring around them at least
+    30 % of the grey range away: drawn, not a clipped rim or core of a
+    grain). Solid blobs, such as grains clipped at the top of the grey
+    range, are kept. The marks are
+    grown by 2 px so that anti-aliased edges go too.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Stored integer values; float images return None.
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols), or None
+        None when nothing was found.
+    """
+    from scipy import ndimage
+
+    if image.ndim != 2 or image.dtype.kind not in "ui" or image.size == 0:
+        return None
+    lo, hi = image.min(), image.max()
+    if lo == hi:
+        return None
+    marks = np.zeros(image.shape, bool)
+    for value in (lo, hi):
+        candidate = image == value
+        if candidate.mean() > 0.2:  # a clipped background, not marks
+            continue
+        labels, n = ndimage.label(candidate, structure=np.ones((3, 3)))
+        if n == 0:
+            continue
+        sizes = np.bincount(labels.ravel(), minlength=n + 1)
+        sizes[0] = 0
+        keep = np.zeros(n + 1, bool)
+        big = np.flatnonzero(sizes >= 12)  # specks of clipped noise are not marks
+        if big.size == 0:
+            continue
+        ring = ndimage.grey_dilation(labels, size=(3, 3)) * ~candidate
+        around = np.asarray(ndimage.median(image, ring, index=big), float)
+        contrast = np.abs(around - float(value)) / (float(hi) - float(lo))
+        slices = ndimage.find_objects(labels)
+        for lab, c in zip(big, contrast):
+            if c < MIN_MARK_CONTRAST:
+                continue
+            sl = slices[lab - 1]
+            h, w = sl[0].stop - sl[0].start, sl[1].stop - sl[1].start
+            own = labels[sl] == lab
+            thick = ndimage.distance_transform_edt(np.pad(own, 1)).max()
+            long, short = max(h, w), min(h, w)
+            hole = int(ndimage.binary_fill_holes(own).sum()) - int(sizes[lab])
+            # a line of text is short across; a clipped rim round a grain encloses much more than it covers
+            stroke = thick <= 2.0 and short <= MAX_TEXT_HEIGHT and hole <= 3 * sizes[lab]
+            bar = short <= 12 and long >= 5 * short and long >= 20 and sizes[lab] >= 0.6 * h * w
+            keep[lab] = stroke or bar
+        marks |= keep[labels]
+    if not marks.any():
+        return None
+    return ndimage.binary_dilation(marks, iterations=2)
+
+
+def fill_marks(image: np.ndarray, marks: np.ndarray) -> np.ndarray:
+    """A copy of ``image`` with each mark replaced by the median grey level of the 1-px ring around it.
+
+    The pixels under a drawn mark are lost; filling them with their
+    surroundings keeps a mark from looking like a grain to any step, also
+    one that does not read ``FrameData.valid``.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+    marks : ndarray of bool, shape (rows, cols)
+
+    Returns
+    -------
+    ndarray
+        Same dtype as ``image``.
+    """
+    from scipy import ndimage
+
+    labels, n = ndimage.label(marks, structure=np.ones((3, 3)))
+    if n == 0:
+        return image
+    ring = ndimage.grey_dilation(labels, size=(3, 3)) * ~marks
+    level = np.asarray(ndimage.median(image, ring, index=np.arange(1, n + 1)), float)
+    level = np.where(np.isfinite(level), level, float(np.median(image[~marks])) if (~marks).any() else 0.0)
+    out = image.copy()
+    out[marks] = np.concatenate([[0.0], level])[labels[marks]].astype(image.dtype)
+    return out

@@ -1,0 +1,49 @@
+"""Info strips and drawn marks: cropped or masked, never grains; grains clipped in grey value are kept."""
+
+from __future__ import annotations
+
+import numpy as np
+from readers_files import noisy, with_info_strip
+from skimage.draw import disk
+
+from grainhabit.plugins.readers import overlays
+
+
+def test_info_strip_found_below_a_noisy_image():
+    img = with_info_strip(noisy((200, 256), seed=1), 22)
+    assert overlays.find_info_strip(img) == 22
+
+
+def test_no_strip_in_a_plain_micrograph_or_a_blank_frame():
+    assert overlays.find_info_strip(noisy((200, 256), seed=2)) == 0
+    blank = with_info_strip(np.zeros((200, 256), np.uint8), 20)  # nothing to tell the strip from
+    assert overlays.find_info_strip(blank) == 0
+    assert overlays.find_info_strip(noisy((200, 256)).astype(np.float32)) == 0
+
+
+def test_scale_bar_and_text_are_masked_clipped_grains_are_not():
+    img = noisy((200, 200), seed=4, mean=100, sd=10)
+    img[180:184, 20:100] = 255  # scale bar: 80 x 4 px in the top grey value
+    for c0 in range(120, 180, 10):  # "text": 1-px strokes
+        img[175:190, c0] = 255
+        img[182, c0:c0 + 6] = 255
+    rr, cc = disk((60, 60), 15)
+    img[rr, cc] = 255  # a grain clipped at the top of the grey range: solid, kept
+    rr, cc = disk((60, 140), 12)
+    img[rr, cc] = 20
+    rr, cc = disk((60, 140), 2)
+    img[rr, cc] = 0  # a dark grain's core at the bottom of the range: surrounded by dark, kept
+    img[100:131, 20:51] = 150
+    img[100, 20:51] = img[130, 20:51] = img[100:131, 20] = img[100:131, 50] = 255  # a grain's clipped rim
+    marks = overlays.annotation_mask(img)
+    assert marks[181, 50] and marks[180, 125]
+    assert not marks[60, 60] and not marks[60, 140] and not marks[100, 35]
+    assert marks[:160].sum() == 0
+
+
+def test_marks_are_filled_with_their_surroundings():
+    img = noisy((100, 100), seed=5, mean=100, sd=5)
+    img[80:84, 10:70] = 255
+    marks = overlays.annotation_mask(img)
+    filled = overlays.fill_marks(img, marks)
+    assert abs(float(filled[80:84, 10:70].mean()) - 100) < 10 and filled.dtype == img.dtype
