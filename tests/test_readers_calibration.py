@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 import pytest
-from readers_files import OPTS
+from builders import OPTS
 
 from grainhabit.frame import FrameRef
 from grainhabit.plugins.readers import calibration as cal

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import tifffile
 from PIL import Image
-from readers_files import OPTS, noisy, with_info_strip
+from builders import OPTS, noisy, with_info_strip
 
 from grainhabit.plugins.readers import emd, gatan, mrc, phenom, plain, sidecar, signals, tia, tiff
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from readers_files import noisy, with_info_strip
+from builders import noisy, with_info_strip
 from skimage.draw import disk
 
 from grainhabit.plugins.readers import overlays

@@ -1,7 +1,7 @@
 """TIFF reader: makers' metadata, OME, description text, resolution tags, compression, info strips.
 
 Each vendor file is written here with tifffile in the maker's layout, with
-values from real files of that maker (see tests/readers_files.py).
+values from real files of that maker (see tests/builders.py).
 """
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ import math
 import numpy as np
 import pytest
 import tifffile
-from readers_files import (OPTS, noisy, with_info_strip, write_fei, write_gatan_tags, write_jeol, write_tescan,
+from builders import (OPTS, noisy, with_info_strip, write_fei, write_gatan_tags, write_jeol, write_tescan,
                            write_zeiss)
 
 from grainhabit.plugins.readers import tiff

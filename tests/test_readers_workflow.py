@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import pytest
 import tifffile
-from readers_files import noisy, write_tescan
+from builders import noisy, write_tescan
 
-from conftest import run_cli, write_workflow
+from builders import run_cli, write_workflow
 from grainhabit.manager import make_host
 from grainhabit.task import FrameJob, process_frame
 from grainhabit.workflow import WorkflowError, validate
