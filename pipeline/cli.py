@@ -110,6 +110,8 @@ def cmd_run(args, host: Host) -> int:
     for source, error in outcome.failures:
         log.error("failed frame: %s: %s", source, error)
     log.info(outcome.line(), extra={"fields": {"summary": True, "exit_code": outcome.exit_code}})
+    for line in outcome.verdict_lines:  # one line per sample on stdout, for cron mail
+        print(line, flush=True)
     return outcome.exit_code
 
 
