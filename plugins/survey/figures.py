@@ -76,7 +76,12 @@ def _sequence_styles(n: int):
 
 def size_overlay(batches: list[tuple[str, np.ndarray]], limits: list[tuple[str, float, float]],
                  title: str, bins: int = 30) -> str:
-    """ECD distributions of several batches on one axis (number density, step lines).
+    """ECD distributions of several batches on one axis.
+
+    Each batch is drawn as a Gaussian kernel density estimate of its number
+    distribution (scipy.stats.gaussian_kde, Scott's bandwidth), which keeps
+    several small batches readable on one axis where histograms would
+    overlap into noise; the newest batch also gets its histogram, faintly.
 
     Parameters
     ----------
@@ -86,33 +91,40 @@ def size_overlay(batches: list[tuple[str, np.ndarray]], limits: list[tuple[str, 
         Spec limits on a size statistic, drawn as a shaded band.
     title : str
     bins : int
+        Histogram classes of the newest batch.
 
     Returns
     -------
     str
         ``data:`` URI of a PNG.
     """
-    fig = figure(figsize=(7.0, 3.4))
+    from scipy.stats import gaussian_kde
+
+    n = len(batches)
+    fig = figure(figsize=(7.0, 3.3 + 0.17 * ((n + 2) // 3)))
     ax = fig.subplots()
     allx = np.concatenate([x for _, x in batches if x.size]) if any(x.size for _, x in batches) else np.zeros(0)
     if allx.size:
         lo, hi = np.percentile(allx, [0.5, 99.5])
-        edges = np.linspace(max(lo * 0.85, 0), hi * 1.15, bins + 1)
-        for (lab, x), (c, ls, lw) in zip(batches, _sequence_styles(len(batches))):
-            if x.size:
-                ax.hist(x, bins=edges, density=True, histtype="step", color=c, ls=ls, lw=lw, label=lab)
+        grid = np.linspace(max(lo * 0.8, 0), hi * 1.2, 400)
         for lab, a, b in limits:
-            a = a if math.isfinite(a) else edges[0]
-            b = b if math.isfinite(b) else edges[-1]
-            ax.axvspan(a, b, color="#999999", alpha=0.15, lw=0)
-            ax.text(0.5 * (a + b), 0.97, lab, transform=ax.get_xaxis_transform(), ha="center", va="top",
-                    fontsize=7, color="#333")
-        ax.legend(fontsize=7, loc="upper right", ncol=1 if len(batches) < 7 else 2)
+            a = a if math.isfinite(a) else grid[0]
+            b = b if math.isfinite(b) else grid[-1]
+            ax.axvspan(a, b, color="#999999", alpha=0.18, lw=0, label=lab)
+        styles = _sequence_styles(n)
+        last = batches[-1][1] if batches else np.zeros(0)
+        if last.size:
+            ax.hist(last, bins=np.linspace(grid[0], grid[-1], bins + 1), density=True, color=styles[-1][0],
+                    alpha=0.15, lw=0)
+        for (lab, x), (c, ls, lw) in zip(batches, styles):
+            if x.size >= 2 and np.ptp(x) > 0:
+                ax.plot(grid, gaussian_kde(x)(grid), color=c, ls=ls, lw=lw, label=lab)
         ax.set_ylim(0, None)
+        ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=3, frameon=False)
     else:
         ax.text(0.5, 0.5, "no grains counted", ha="center", va="center", transform=ax.transAxes)
     ax.set_xlabel("ECD (nm)")
-    ax.set_ylabel("grains per nm (normalised)")
+    ax.set_ylabel("grains per nm (density)")
     ax.set_title(title, fontsize=9)
     fig.tight_layout()
     return data_uri(fig)

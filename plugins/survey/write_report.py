@@ -85,7 +85,7 @@ th{background:#eee} td.t,th.t{text-align:left}
 td.wrap{min-width:14em;white-space:normal} td.nw{white-space:nowrap}
 .prov{background:#f4f4f4;border-left:4px solid #888;padding:.4em .9em;font-size:.9em}
 .caution{background:#fff8e0;border:1px solid #b08900;border-left:6px solid #b08900;padding:.4em .9em;font-size:.9em}
-.note{font-size:.86em;color:#444}
+.note{font-size:.86em;color:#444} span.when{white-space:nowrap}
 .v{display:inline-block;font-weight:bold;padding:.05em .45em;border-radius:3px;white-space:nowrap;letter-spacing:.02em}
 .v-pass{background:#d8f0d8;color:#0b3d0b;border:2px solid #0b3d0b}
 .v-fail{background:#8c0a1a;color:#fff;border:2px solid #3d0008}
@@ -326,7 +326,7 @@ def _verdict_section(c: _Ctx) -> list[str]:
         if ov == "undecided" and math.isfinite(need) and need > n:
             grains_txt += f"<br><span class='note'>about {int(need)} needed</span>"
         decide = "; ".join(why) if why else "every criterion inside its limits"
-        out.append(f"<tr><td class='t'><b>{_esc(s)}</b><br><span class='note'>{_esc(c.when(s))}</span></td>"
+        out.append(f"<tr><td class='t'><b>{_esc(s)}</b><br><span class='note when'>{_esc(c.when(s))}</span></td>"
                    f"<td class='t nw'>{_esc(c.product_of[s])}</td><td class='t'>{_badge(ov)}</td><td>{grains_txt}</td>"
                    f"<td>{frames_txt}</td><td class='t wrap'>{decide}</td></tr>")
     out.append("</table></div>")
@@ -353,7 +353,7 @@ def _verdict_section(c: _Ctx) -> list[str]:
                     math.isfinite(lo) and (lo != val or hi != val)) else ""
                 cells.append(f"<td class='c-{cv}' title='{_esc(v['note'].values[r, j])}'>{_fmt(val, nd)}{ci}"
                              f"<br>{_badge(cv) if cv else ''}</td>")
-            out.append(f"<tr><td class='t'>{_esc(s)}<br><span class='note'>{_esc(c.when(s))}</span></td>"
+            out.append(f"<tr><td class='t'>{_esc(s)}<br><span class='note when'>{_esc(c.when(s))}</span></td>"
                        f"<td class='t'>{_badge(c.overall.get(s, ''))}</td>{''.join(cells)}</tr>")
         out.append("</table></div>")
     out.append(f"<p class='note'>Brackets: {100 * conf:g} % confidence intervals from the summary step"
@@ -480,7 +480,7 @@ def _product_sections(c: _Ctx) -> list[str]:
                     j, r = crits.index(name), vs.index(mine[0])
                     lo, hi = float(v["limit_lo"].values[r, j]), float(v["limit_hi"].values[r, j])
                     if math.isfinite(lo) or math.isfinite(hi):
-                        limits.append((f"{figures.label_of(name)} limits", lo, hi))
+                        limits.append((f"{figures.label_of(name)} spec limits", lo, hi))
         batches = [(f"{s}" + (f" ({c.when(s)})" if c.when(s) else "") + f", n = {int((c.keep & (c.g_sample == s)).sum())}",
                     c.ecd[c.keep & (c.g_sample == s)]) for s in mine]
         out.append(f"<img class='figure' src='{figures.size_overlay(batches, limits, f'{p}: ECD of its batches', bins)}'"

@@ -11,8 +11,8 @@ lies behind them. The spec file :data:`SPEC_TEXT` (also shipped as
 ``workflows/demo-products.yaml``) holds the invented products' limits.
 
 The story the demo tells: the cubic product's size creeps up over the
-last three nights, and its control chart flags the change while the
-batches' intervals still straddle the upper limit (undecided); one tabular
+last three nights: the control chart flags it (a Western Electric rule)
+and the last two batches are undecided or fail on their D50; one tabular
 batch came out with too many triangular plates (it fails); the trial batch
 matches no product (no verdict).
 
