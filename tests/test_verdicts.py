@@ -267,3 +267,62 @@ def test_false_alarm_rates_of_a_stable_process_match_the_normal_distribution():
     for rule, e in expect.items():
         got = sum(rule in f for f in flags) / x.size
         assert got == pytest.approx(e, rel=0.12), (rule, got, e)
+
+
+# --------------------------------------------------------------------------
+# through a real run
+# --------------------------------------------------------------------------
+
+RUN_WF = """\
+version: 1
+name: verdict-run
+input:
+  paths: ["data/**/*.tif"]
+output:
+  results: out/survey.zarr
+  report: out/report
+specs: products.yaml
+execution:
+  scheduler: serial
+"""
+
+RUN_SPEC = """\
+version: 1
+products:
+  - name: alpha-product
+    samples: ["alpha-*"]
+    min_grains: 100            # the run finds a handful: undecided
+    ecd_d50_nm: {min: 10, max: 10000}
+  - name: beta-product
+    samples: ["beta-*"]
+    ecd_d50_nm: {max: 50}      # the grains are 150-400 nm: fails
+"""
+
+
+def test_run_judges_batches_and_prints_one_line_per_sample(small_survey):
+    from conftest import run_cli, write_workflow
+
+    (small_survey / "data" / "alpha-batch" / "broken.tif").write_bytes(b"not a tiff at all")
+    (small_survey / "products.yaml").write_text(RUN_SPEC)
+    wf = write_workflow(small_survey / "wf.yaml", RUN_WF)
+    proc = run_cli("run", wf)
+    assert proc.returncode == 1, proc.stderr  # a frame failed; the verdicts do not change the exit code
+    lines = proc.stdout.strip().splitlines()
+    assert len(lines) == 2 and all(line.startswith("verdict ") for line in lines)
+    assert "alpha-batch" in lines[0] and "alpha-product" in lines[0] and "UNDECIDED" in lines[0]
+    assert "too few grains" in lines[0]
+    assert "beta-batch" in lines[1] and "FAIL" in lines[1] and "ecd_d50_nm" in lines[1]
+    store = small_survey / "out" / "survey.zarr"
+    v = xr.open_zarr(store, group="verdicts").load()
+    assert dict(zip(map(str, v["sample"].values), map(str, v["verdict_overall"].values))) == {
+        "alpha-batch": "undecided", "beta-batch": "fail"}
+    assert set(v["criterion"].values) == {"grain_count", "ecd_d50_nm"}
+    for name in ("value", "ci_lo", "ci_hi", "limit_lo", "limit_hi", "verdict", "product", "grains_needed"):
+        assert name in v and v[name].attrs["long_name"]
+    t = xr.open_zarr(store, group="trends").load()
+    assert set(map(str, t["product"].values)) == {"alpha-product", "beta-product"}
+    frames = xr.open_zarr(store, group="frames").load()
+    samples = dict(zip(map(str, frames["source"].values), map(str, frames["sample"].values)))
+    assert samples[str(small_survey / "data" / "alpha-batch" / "broken.tif")] == "alpha-batch"  # no phantom
+    page = (small_survey / "out" / "report" / "index.html").read_text()
+    assert "beta-product" in page and "broken.tif" in page  # the failed frame is listed near the top
