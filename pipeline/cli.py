@@ -85,6 +85,16 @@ def cmd_check(args, host: Host) -> int:
     cal = cfg["input"]["pixel_size_nm"]
     print(f"  pixel size where a file has none: {cal if cal is not None else 'not set (such frames fail)'} nm")
     print(f"output: {cfg['output']['results']}" + (f", report {cfg['output']['report']}" if cfg["output"]["report"] else ""))
+    if plan.specs is not None:
+        samples = sorted({f.sample for f in frames})
+        print(f"specs: {cfg['specs']}: {len(plan.specs.products)} products")
+        for p in plan.specs.products:
+            mine = [s for s in samples if plan.specs.product_of(s) is p]
+            print(f"  {p.name}: {len(p.criteria)} criteria, at least {p.min_grains} grains; samples found now: "
+                  + (", ".join(mine) or "none"))
+        lone = [s for s in samples if plan.specs.product_of(s) is None]
+        if lone:
+            print(f"  matching no product (no verdict): {', '.join(lone)}")
     ex = cfg["execution"]
     print(f"execution: scheduler {ex['scheduler']}, workers {ex['workers']}")
     print("steps:")
