@@ -13,9 +13,13 @@ limits.
   expected range of two independent normal values in units of sigma);
   control limits centre +- 3 sigma. Shewhart, *Economic Control of Quality
   of Manufactured Product* (1931); NIST/SEMATECH e-Handbook of Statistical
-  Methods, section 6.3.2.2 ("Individuals control charts").
+  Methods, section 6.3.2.2 ("Individuals control charts") (section number
+  from memory). d2 is derived here, not looked up (tests check it against
+  scipy's half-normal distribution).
 - Run rules, as in the Western Electric *Statistical Quality Control
-  Handbook* (1956), on one side of the centre at a time:
+  Handbook* (1956) (the rules as we recall them, from memory; tests check
+  each rule's false-alarm rate against the normal distribution), on one
+  side of the centre at a time:
 
   1. one point beyond 3 sigma;
   2. two of three consecutive points beyond 2 sigma;
@@ -87,8 +91,8 @@ def individuals_limits(values, min_points: int = 5) -> Limits:
 
     References
     ----------
-    NIST/SEMATECH e-Handbook of Statistical Methods, 6.3.2.2: sigma =
-    MR-bar / 1.128 for moving ranges of span 2.
+    NIST/SEMATECH e-Handbook of Statistical Methods, 6.3.2.2 (from memory):
+    sigma = MR-bar / 1.128 for moving ranges of span 2.
     """
     x = np.asarray(values, dtype=float).ravel()
     x = x[np.isfinite(x)]

@@ -22,7 +22,8 @@
 
 ``grains_needed`` assumes the estimate stays where it is and the interval
 narrows as 1 / sqrt(n), the behaviour of a standard error (e.g. NIST/SEMATECH
-e-Handbook of Statistical Methods, 7.2.2.2, sample sizes for a mean). With
+e-Handbook of Statistical Methods, 7.2.2.2, sample sizes for a mean; from
+memory). With
 frames as the independent units the interval narrows with the number of
 frames, so read it as grains at the present grains per frame.
 """
