@@ -235,7 +235,7 @@ def alpha_scatter(ecd, alpha, habit) -> str:
     return data_uri(fig)
 
 
-def frame_view(img, polygons, numbers, centroids, habits, edge, side_px: int = 620) -> str:
+def frame_view(img, polygons, numbers, centroids, habits, edge, side_px: int = 900) -> str:
     """A frame's thumbnail with every grain's outline (habit colour and line) and number.
 
     Parameters
@@ -267,14 +267,14 @@ def frame_view(img, polygons, numbers, centroids, habits, edge, side_px: int = 6
     fig = figure(figsize=(cols * scale / dpi, rows * scale / dpi))
     ax = fig.add_axes([0, 0, 1, 1])
     ax.imshow(img, cmap="gray", vmin=0, vmax=255, interpolation="lanczos", extent=(0, cols, rows, 0))
-    halo = [patheffects.Stroke(linewidth=2.4, foreground="white"), patheffects.Normal()]
+    halo = [patheffects.Stroke(linewidth=2.8, foreground="white"), patheffects.Normal()]
     text_halo = [patheffects.Stroke(linewidth=2.2, foreground="white"), patheffects.Normal()]
     for (xs, ys), num, (cx, cy), h, e in zip(polygons, numbers, centroids, habits, edge):
         if len(xs) >= 2:
             ax.plot(xs, ys, color=HABIT_COLOURS.get(h, "#ff00ff"), ls=HABIT_LINES.get(h, "-"),
-                    lw=1.4 if not e else 0.7, path_effects=halo)
+                    lw=1.7 if not e else 0.8, path_effects=halo)
         if np.isfinite(cx) and np.isfinite(cy):
-            ax.text(cx, cy, str(num), fontsize=6.5, ha="center", va="center", color="#000",
+            ax.text(cx, cy, str(num), fontsize=7.5, ha="center", va="center", color="#000",
                     path_effects=text_halo)
     ax.set_xlim(0, cols)
     ax.set_ylim(rows, 0)

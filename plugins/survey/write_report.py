@@ -97,9 +97,10 @@ td.c-fail{background:#f7dadd} td.c-undecided{background:#fdf6e3}
 .gallery figure{margin:0}
 .gallery img{width:100%;height:auto;border:1px solid #999;cursor:zoom-in;display:block}
 .gallery figcaption{font-size:.82em;word-break:break-all}
-.gallery figure:target{position:fixed;inset:0;z-index:10;background:rgba(20,20,20,.94);margin:0;padding:1em;
-overflow:auto;color:#eee}
-.gallery figure:target img{width:auto;max-width:100%;max-height:88vh;margin:0 auto;cursor:zoom-out}
+.gallery figure:target{position:fixed;inset:0;z-index:10;background:#111;margin:0;padding:.8em;
+overflow:auto;color:#eee;text-align:center}
+.gallery figure:target img{width:auto;max-width:100%;height:calc(100vh - 5em);max-height:none;margin:0 auto;
+object-fit:contain;cursor:zoom-out}
 .gallery a.close{display:none} .gallery figure:target a.close{display:inline;color:#fff}
 .swatch{display:inline-block;width:1.6em;height:.9em;vertical-align:middle;border:1px solid #333;margin-right:.3em}
 .legend span.item{margin-right:1.1em;white-space:nowrap;display:inline-block}
@@ -301,7 +302,8 @@ def _verdict_section(c: _Ctx) -> list[str]:
         frames_txt = f"{nfr}" + (f" <span class='failed'>({nfail})</span>" if nfail else "")
         if s not in vs or not c.product_of.get(s):
             n = int(c.summary["grain_count"].values[c.srow(s)])
-            out.append(f"<tr><td class='t'>{_esc(s)}</td><td class='t'>&ndash;</td><td class='t'>{_badge('')}</td>"
+            out.append(f"<tr><td class='t'><b>{_esc(s)}</b><br><span class='note when'>{_esc(c.when(s))}</span></td>"
+                       f"<td class='t'>&ndash;</td><td class='t'>{_badge('')}</td>"
                        f"<td>{n}</td><td>{frames_txt}</td><td class='t wrap'>matches no product in the spec file"
                        f"</td></tr>")
             continue
