@@ -14,7 +14,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 
 def test_shipped_spec_file_is_the_demos_and_says_it_is_invented():
-    shipped = REPO / "workflows" / "demo-products.yaml"
+    shipped = REPO / "workflows" / "specs" / "demo-products.yaml"
     assert shipped.read_text() == demo.SPEC_TEXT
     specs = load_specs(shipped)
     assert "invented" in specs.note.lower() and "invented" in demo.SPEC_TEXT.splitlines()[0].lower()

@@ -8,7 +8,7 @@ batch of a product nobody has specified yet. Its micrographs are rendered
 here from 3-D crystal shapes (:mod:`grainhabit.plugins.synthetic.render`),
 so the habits in them are genuine; no real sample, instrument or process
 lies behind them. The spec file :data:`SPEC_TEXT` (also shipped as
-``workflows/demo-products.yaml``) holds the invented products' limits.
+``workflows/specs/demo-products.yaml``) holds the invented products' limits.
 
 The story the demo tells: the cubic product's size creeps up over the
 last three nights: the control chart flags it (a Western Electric rule)
@@ -67,7 +67,7 @@ BATCHES = (
     (NIGHTS[7], "KX-01", _TRIAL, 300.0, 1, "bright", "ome"),
 )
 
-#: The invented products' spec file (``workflows/demo-products.yaml`` is the same text).
+#: The invented products' spec file (``workflows/specs/demo-products.yaml`` is the same text).
 SPEC_TEXT = """\
 # Invented products of the invented pilot line Kestrel (grainhabit demo).
 # The limits are invented too: they show the format, not what any real
