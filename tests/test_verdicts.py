@@ -145,6 +145,16 @@ def test_grains_needed_matches_the_classical_sample_size_formula():
     assert vd.grains_for_decision(n, 308.0, 300.0, 316.0, 200.0, 308.0) == math.inf  # estimate on the limit
 
 
+def test_grains_needed_with_frames_as_the_independent_units():
+    # a Student t interval on F - 1 df from frame means with spread s: half-width t(F-1) s / sqrt(F);
+    # the frames needed are the fewest F' whose half-width is within the distance d (scipy.stats.t as reference)
+    s_frames, frames, per_frame, d = 12.0, 3, 30, 9.0
+    half = stats.t.ppf(0.975, frames - 1) * s_frames / math.sqrt(frames)
+    f_need = next(f for f in range(2, 1000) if stats.t.ppf(0.975, f - 1) * s_frames / math.sqrt(f) <= d)
+    need = vd.grains_for_decision(frames * per_frame, 300.0, 300.0 - half, 300.0 + half, 200.0, 309.0, frames=frames)
+    assert need == pytest.approx(f_need * per_frame)
+
+
 def _summary(rows: dict) -> xr.Dataset:
     """A summary group with the variables the verdicts read (invented numbers)."""
     from grainhabit.plugins.habit.vocabulary import HABITS
@@ -295,7 +305,7 @@ products:
     ecd_d50_nm: {min: 10, max: 10000}
   - name: beta-product
     samples: ["beta-*"]
-    ecd_d50_nm: {max: 50}      # the grains are 150-400 nm: fails
+    ecd_d50_nm: {max: 20}      # the grains are 150-400 nm: fails
 """
 
 

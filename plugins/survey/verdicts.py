@@ -81,12 +81,32 @@ def criterion_verdict(value: float, ci_lo: float, ci_hi: float, lower: float, up
     return "undecided", f"interval straddles the {side} limit" if side != "both" else "interval wider than the limits"
 
 
-def grains_for_decision(n: int, value: float, ci_lo: float, ci_hi: float, lower: float, upper: float) -> float:
+def grains_for_decision(n: int, value: float, ci_lo: float, ci_hi: float, lower: float, upper: float,
+                        frames: int = 0, confidence: float = 0.95) -> float:
     """Estimated counted grains at which a straddled limit would be decided.
 
-    The interval's half-width on the side of each straddled limit is scaled
-    by sqrt(n / n') until it no longer reaches the limit:
-    n' = n (w / d)^2, with d the distance from the estimate to the limit.
+    The interval's half-width w on the side of each straddled limit must
+    shrink below the distance d from the estimate to that limit. With
+    grains as the independent units the half-width goes as 1 / sqrt(n), so
+    n' = n (w / d)^2. Where the interval was made with frames as the
+    independent units (``frames`` >= 2: a Student t interval on frames - 1
+    degrees of freedom), the half-width goes as t(F - 1) / sqrt(F) in the
+    number of frames F; the smallest F' with
+    t(F' - 1) / sqrt(F') <= (d / w) t(F - 1) / sqrt(F) is found and
+    n' = n F' / F (at the present grains per frame).
+
+    Parameters
+    ----------
+    n : int
+        Counted grains.
+    value, ci_lo, ci_hi : float
+        Estimate and interval.
+    lower, upper : float
+        Limits (-inf / inf where open).
+    frames : int
+        Frames behind the interval (0: grains taken as independent).
+    confidence : float
+        Two-sided level of the interval (for the t quantiles).
 
     Returns
     -------
@@ -98,13 +118,26 @@ def grains_for_decision(n: int, value: float, ci_lo: float, ci_hi: float, lower:
         return math.nan
     need = float(n)
     for limit in (lower, upper):
-        if not math.isfinite(limit) or not (ci_lo < limit < ci_hi or ci_lo == limit or ci_hi == limit):
+        if not (math.isfinite(limit) and ci_lo <= limit <= ci_hi):
             continue
         d = abs(value - limit)
         w = (ci_hi - value) if limit >= value else (value - ci_lo)
         if d == 0:
             return math.inf
-        need = max(need, n * (w / d) ** 2 * 1.0001)
+        ratio = w / d
+        if ratio <= 1:
+            continue
+        if frames >= 2:
+            from scipy.stats import t as student
+
+            q = 0.5 + confidence / 2
+            target = student.ppf(q, frames - 1) / math.sqrt(frames) / ratio
+            f = frames
+            while student.ppf(q, f - 1) / math.sqrt(f) > target and f < 10**6:
+                f = f + 1 if f < 64 else int(f * 1.05) + 1
+            need = max(need, n * f / frames)
+        else:
+            need = max(need, n * ratio**2 * 1.0001)
     return need
 
 
@@ -145,6 +178,7 @@ def judge_samples(specs: Specs, summary) -> "xr.Dataset":
     """
     samples = [str(s) for s in summary["sample"].values]
     rows = [i for i, s in enumerate(samples) if s]
+    confidence = float(summary.attrs.get("confidence", 0.95))
     names: list[str] = []
     for p in specs.products:
         for c in p.criteria:
@@ -161,6 +195,8 @@ def judge_samples(specs: Specs, summary) -> "xr.Dataset":
     counts = np.zeros(ns, dtype=np.int64)
     for r, i in enumerate(rows):
         n = int(summary["grain_count"].values[i])
+        # frames as the independent units of the summary's intervals, where the summary says so
+        frames = int(summary["ci_frames"].values[i]) if "ci_frames" in summary else 0
         counts[r] = n
         p = specs.product_of(samples[i])
         if p is None:
@@ -185,7 +221,7 @@ def judge_samples(specs: Specs, summary) -> "xr.Dataset":
                 num[k][r, j] = x
             verdict[r, j], note[r, j] = v, why
             if v == "undecided" and c.variable not in EXACT_VARIABLES:
-                need = max(need, grains_for_decision(n, value, lo, hi, c.lower, c.upper))
+                need = max(need, grains_for_decision(n, value, lo, hi, c.lower, c.upper, frames, confidence))
             if _RANK[v] > _RANK[worst]:
                 worst = v
         overall[r] = worst
