@@ -56,14 +56,14 @@ _TRIAL = {"cuboctahedron": 0.55, "octahedron": 0.35, "cube": 0.05, "irregular": 
 BATCHES = (
     (NIGHTS[0], "KB-01", _CUBIC, 258.0, 1, "bright", "resolution"),
     (NIGHTS[1], "KB-02", _CUBIC, 262.0, 1, "bright", "resolution"),
-    (NIGHTS[1], "KT-01", _TABULAR, 420.0, 2, "dark", "imagej"),
+    (NIGHTS[1], "KT-01", _TABULAR, 420.0, 1, "dark", "imagej"),
     (NIGHTS[2], "KB-03", _CUBIC, 256.0, 1, "bright", "resolution"),
     (NIGHTS[3], "KB-04", _CUBIC, 261.0, 1, "bright", "resolution"),
     (NIGHTS[4], "KB-05", _CUBIC, 259.0, 1, "bright", "resolution"),
-    (NIGHTS[4], "KT-02", _TABULAR_OFF, 430.0, 2, "dark", "imagej"),
+    (NIGHTS[4], "KT-02", _TABULAR_OFF, 430.0, 1, "dark", "imagej"),
     (NIGHTS[5], "KB-06", _CUBIC, 272.0, 1, "bright", "resolution"),
     (NIGHTS[6], "KB-07", _CUBIC, 284.0, 1, "bright", "resolution"),
-    (NIGHTS[7], "KB-08", _CUBIC, 296.0, 1, "bright", "resolution"),
+    (NIGHTS[7], "KB-08", _CUBIC, 305.0, 1, "bright", "resolution"),
     (NIGHTS[7], "KX-01", _TRIAL, 300.0, 1, "bright", "ome"),
 )
 
@@ -83,7 +83,7 @@ products:
     habit_number_fraction: {cube: {min: 0.5}}
   - name: kestrel-tabular-420
     samples: ["KT-*"]
-    min_grains: 20
+    min_grains: 15
     ecd_d50_nm: {target: 420, tolerance: 60}
     habit_number_fraction: {tabular_hexagon: {min: 0.45}}
 """
@@ -146,7 +146,7 @@ def make_survey(out: Path, frames_per_batch: int | None = None, size_px: int = 7
 
     files = []
     for b, (night, name, habits, ecd, frames, contrast, flavour) in enumerate(BATCHES):
-        n = grains_per_frame if ecd < 400 else int(grains_per_frame * 0.6)
+        n = grains_per_frame if ecd < 400 else int(grains_per_frame * 0.8)
         for i in range(frames_per_batch or frames):
             field = make_field(n, (size_px, size_px), pixel_size_nm, habits, ecd, contrast=contrast,
                                seed=seed + 100 * b + i)
@@ -228,7 +228,7 @@ def grainhabit_add_commands(subparsers):
                     "and print the per-sample summary, the batch verdicts and where the results and report are.")
     p.add_argument("--out", default="grainhabit-demo", help="folder to write into (default ./grainhabit-demo)")
     p.add_argument("--frames", type=int, default=None,
-                   help="frames per batch (default: each batch's own, 1 or 2)")
+                   help="frames per batch (default: one each)")
     p.add_argument("--workers", type=int, default=None, help="local worker processes (default: all cores)")
     p.add_argument("--scheduler", default=None, help="'local' (default), 'serial' or tcp://HOST:PORT")
     p.set_defaults(handler=_cmd_demo)
