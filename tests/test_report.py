@@ -247,3 +247,21 @@ def test_real_browser_shows_every_image_without_errors(written, tmp_path, width)
     got = json.loads(html.unescape(found.group(1)))
     assert got["images"] == len(parsed.images) and got["broken"] == [] and got["errors"] == []
     assert got["scroll_width"] <= width  # the page never scrolls sideways; wide tables scroll in their own box
+
+
+def test_report_command_judges_a_store_against_a_spec_file(tmp_path, capsys):
+    from test_summary import make_store
+
+    store = make_store(tmp_path / "plain.zarr")  # a run without specs: no verdicts stored
+    spec = tmp_path / "p.yaml"
+    spec.write_text(SPEC)
+    args = _parse(["report", store, "--out", str(tmp_path / "o"), "--specs", str(spec), "--gallery", "0"])
+    assert args.handler(args) == 0
+    page = (tmp_path / "o" / "index.html").read_text()
+    assert "product-one" in page and "No product specs were given" not in page
+    assert "one self-contained file" in capsys.readouterr().out
+    spec.write_text(SPEC.replace("{cube:", "{cubes:"))
+    args = _parse(["report", store, "--out", str(tmp_path / "o2"), "--specs", str(spec)])
+    assert args.handler(args) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "habit_number_fraction.cubes" in err and "unknown habit" in err

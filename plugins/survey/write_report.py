@@ -732,7 +732,8 @@ def _exports(groups: dict, out: Path) -> list[str]:
 # --------------------------------------------------------------------------
 
 
-def write_report(results: str | os.PathLike, out_dir: str | os.PathLike, params: dict | None = None) -> list[str]:
+def write_report(results: str | os.PathLike, out_dir: str | os.PathLike, params: dict | None = None,
+                 specs=None) -> list[str]:
     """Write the report of a results store into ``out_dir``.
 
     Parameters
@@ -743,6 +744,11 @@ def write_report(results: str | os.PathLike, out_dir: str | os.PathLike, params:
         Folder for ``index.html`` (the whole report, one file) and ``data/``.
     params : dict, optional
         Parameters of :data:`STEP`.
+    specs : grainhabit.plugins.survey.specs.Specs, optional
+        Judge the store against these product specs for this page (the
+        store's own ``verdicts`` and ``trends`` are replaced on the page, not
+        in the store); trends run over the store's first ``summary_by_*``
+        field.
 
     Returns
     -------
@@ -761,6 +767,14 @@ def write_report(results: str | os.PathLike, out_dir: str | os.PathLike, params:
     out.mkdir(parents=True, exist_ok=True)
     if "summary" not in groups or "sample" not in groups["summary"].dims:
         groups.update(summary_step.summarise(groups["grains"], groups["frames"], {}))
+    if specs is not None:
+        from grainhabit.plugins.survey.verdicts import judge
+
+        by = sorted(g[len("summary_by_"):] for g in groups if g.startswith("summary_by_"))
+        sp = {k: groups["summary"].attrs[k] for k in ("bootstrap_resamples", "confidence") if k in groups["summary"].attrs}
+        groups.update(judge(specs, groups, {"group_by": by[:1], "confidence": sp.get("confidence", 0.95),
+                                            "bootstrap": int(sp.get("bootstrap_resamples", 1000))}))
+        info["spec_text"] = Path(specs.file).read_text(encoding="utf-8")
     c = _Ctx(groups, params)
     title = params["title"] or (f"Batch report: {info['name']}" if info["name"] else "Batch report")
     now = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
@@ -816,7 +830,12 @@ def grainhabit_report(results, out_dir, params):
 
 def _run(args) -> int:
     try:
-        files = write_report(args.results, args.out, {"gallery_frames": args.gallery})
+        specs = None
+        if args.specs:
+            from grainhabit.plugins.survey.specs import load_specs
+
+            specs = load_specs(args.specs)
+        files = write_report(args.results, args.out, {"gallery_frames": args.gallery}, specs=specs)
     except (ValueError, OSError, KeyError) as exc:
         if getattr(args, "debug", False):
             raise
@@ -837,4 +856,6 @@ def grainhabit_add_commands(subparsers):
     p.add_argument("results", help="results store (.zarr)")
     p.add_argument("--out", required=True, help="folder to write the report into")
     p.add_argument("--gallery", type=int, default=8, help="frames in the gallery (default 8)")
+    p.add_argument("--specs", default=None, help="product spec file to judge the batches against on this page "
+                                                 "(default: the verdicts stored by the run, if any)")
     p.set_defaults(handler=_run)
