@@ -160,6 +160,11 @@ def _limits_text(lo: float, hi: float) -> str:
     return "&ndash;"
 
 
+def _limits_at(v, r: int, j: int) -> str:
+    """The limits of criterion ``j`` of sample row ``r`` of a verdicts group, as text."""
+    return _limits_text(float(v["limit_lo"].values[r, j]), float(v["limit_hi"].values[r, j]))
+
+
 def _root_info(groups: dict, path) -> dict:
     attrs = dict(groups.get("/", xr.Dataset()).attrs)
     info = {"path": str(path), "workflow_text": str(attrs.get("workflow", "") or ""),
@@ -321,7 +326,7 @@ def _verdict_section(c: _Ctx) -> list[str]:
                     val, lo, hi = (float(v[k].values[r, j]) for k in ("value", "ci_lo", "ci_hi"))
                     nd = _nd(val)
                     why.append(f"{_esc(figures.label_of(cr))} {_fmt(val, nd)} [{_fmt(lo, nd)}, {_fmt(hi, nd)}] "
-                               f"against {_limits_text(float(v['limit_lo'].values[r, j]), float(v['limit_hi'].values[r, j]))}"
+                               f"against {_limits_at(v, r, j)}"
                                f": {_esc(v['note'].values[r, j])}")
         need = float(v["grains_needed"].values[r])
         grains_txt = f"{n}"
@@ -343,7 +348,7 @@ def _verdict_section(c: _Ctx) -> list[str]:
         out.append(f"<h3>{_esc(p)}: every criterion</h3><div class='scroll'><table><tr><th class='t'>batch</th>"
                    "<th class='t'>verdict</th>"
                    + "".join(f"<th>{_esc(figures.label_of(crits[j]))}<br><span class='note'>"
-                             f"{_limits_text(float(v['limit_lo'].values[rows[0], j]), float(v['limit_hi'].values[rows[0], j]))}"
+                             f"{_limits_at(v, rows[0], j)}"
                              f"</span></th>" for j in used) + "</tr>")
         for s, r in zip(mine, rows):
             cells = []
@@ -483,9 +488,11 @@ def _product_sections(c: _Ctx) -> list[str]:
                     lo, hi = float(v["limit_lo"].values[r, j]), float(v["limit_hi"].values[r, j])
                     if math.isfinite(lo) or math.isfinite(hi):
                         limits.append((f"{figures.label_of(name)} spec limits", lo, hi))
-        batches = [(f"{s}" + (f" ({c.when(s)})" if c.when(s) else "") + f", n = {int((c.keep & (c.g_sample == s)).sum())}",
-                    c.ecd[c.keep & (c.g_sample == s)]) for s in mine]
-        out.append(f"<img class='figure' src='{figures.size_overlay(batches, limits, f'{p}: ECD of its batches', bins)}'"
+        batches = [(f"{s}" + (f" ({c.when(s)})" if c.when(s) else "")
+                    + f", n = {int((c.keep & (c.g_sample == s)).sum())}", c.ecd[c.keep & (c.g_sample == s)])
+                   for s in mine]
+        uri = figures.size_overlay(batches, limits, f"{p}: ECD of its batches", bins)
+        out.append(f"<img class='figure' src='{uri}'"
                    f" alt='size distributions of the batches of {_esc(p)}'>")
     others = [s for s in c.samples if not c.product_of.get(s)]
     if others:
@@ -533,8 +540,8 @@ def _detail_sections(c: _Ctx) -> list[str]:
     if samples:
         val = np.asarray(s_["habit_number_fraction"].values, float)[rows]
         nan = np.full_like(val, np.nan)
-        lo = np.asarray(s_["habit_number_fraction_ci_lo"].values, float)[rows] if "habit_number_fraction_ci_lo" in s_ else nan
-        hi = np.asarray(s_["habit_number_fraction_ci_hi"].values, float)[rows] if "habit_number_fraction_ci_hi" in s_ else nan
+        lo, hi = (np.asarray(s_[f"habit_number_fraction_ci_{k}"].values, float)[rows]
+                  if f"habit_number_fraction_ci_{k}" in s_ else nan for k in ("lo", "hi"))
         out.append("<h3>Habits</h3>")
         out.append(f"<img class='figure' src='{figures.habit_bars(samples, habits, val, lo, hi, 'fraction by number')}'"
                    " alt='habit fractions by number'>")
@@ -771,7 +778,8 @@ def write_report(results: str | os.PathLike, out_dir: str | os.PathLike, params:
         from grainhabit.plugins.survey.verdicts import judge
 
         by = sorted(g[len("summary_by_"):] for g in groups if g.startswith("summary_by_"))
-        sp = {k: groups["summary"].attrs[k] for k in ("bootstrap_resamples", "confidence") if k in groups["summary"].attrs}
+        sp = {k: groups["summary"].attrs[k] for k in ("bootstrap_resamples", "confidence")
+              if k in groups["summary"].attrs}
         groups.update(judge(specs, groups, {"group_by": by[:1], "confidence": sp.get("confidence", 0.95),
                                             "bootstrap": int(sp.get("bootstrap_resamples", 1000))}))
         info["spec_text"] = Path(specs.file).read_text(encoding="utf-8")

@@ -24,7 +24,6 @@ background as in bright-field TEM).
 
 from __future__ import annotations
 
-import argparse
 import os
 import sys
 import time
