@@ -150,19 +150,22 @@ def _badge(verdict: str) -> str:
     return "<span class='v v-none'>no verdict</span>"
 
 
-def _limits_text(lo: float, hi: float) -> str:
+def _limits_text(lo: float, hi: float, nd: int | None = None) -> str:
+    a = _nd(lo) if nd is None else nd
+    b = _nd(hi) if nd is None else nd
     if math.isfinite(lo) and math.isfinite(hi):
-        return f"{_fmt(lo, _nd(lo))} &ndash; {_fmt(hi, _nd(hi))}"
+        return f"{_fmt(lo, a)} &ndash; {_fmt(hi, b)}"
     if math.isfinite(lo):
-        return f"&ge; {_fmt(lo, _nd(lo))}"
+        return f"&ge; {_fmt(lo, a)}"
     if math.isfinite(hi):
-        return f"&le; {_fmt(hi, _nd(hi))}"
+        return f"&le; {_fmt(hi, b)}"
     return "&ndash;"
 
 
 def _limits_at(v, r: int, j: int) -> str:
     """The limits of criterion ``j`` of sample row ``r`` of a verdicts group, as text."""
-    return _limits_text(float(v["limit_lo"].values[r, j]), float(v["limit_hi"].values[r, j]))
+    exact = str(v["criterion"].values[j]) in EXACT_VARIABLES
+    return _limits_text(float(v["limit_lo"].values[r, j]), float(v["limit_hi"].values[r, j]), 0 if exact else None)
 
 
 def _root_info(groups: dict, path) -> dict:
@@ -338,8 +341,9 @@ def _verdict_section(c: _Ctx) -> list[str]:
                    f"<td>{frames_txt}</td><td class='t wrap'>{decide}</td></tr>")
     out.append("</table></div>")
     out.append("<p class='note'>&ldquo;About N needed&rdquo; estimates the counted grains at which every criterion "
-               "would be decided if the estimate stayed where it is and the interval narrowed as "
-               "1/&radic;n.</p>")
+               "would be decided if the estimate stayed where it is and the interval narrowed as a standard error "
+               "does (as 1/&radic;n in the grains, or in the frames where the intervals treat frames as the "
+               "independent units, at the present grains per frame).</p>")
     # per product: every criterion of every batch
     for p in c.products:
         mine = [s for s in c.sample_order([s for s in c.samples if c.product_of.get(s) == p]) if s in vs]
