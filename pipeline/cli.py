@@ -89,6 +89,16 @@ def cmd_check(args, host: Host) -> int:
     for line in _file_lines(frames, cfg["input"]):
         print(line)
     print(f"output: {cfg['output']['results']}" + (f", report {cfg['output']['report']}" if cfg["output"]["report"] else ""))
+    if plan.specs is not None:
+        samples = sorted({f.sample for f in frames})
+        print(f"specs: {cfg['specs']}: {len(plan.specs.products)} products")
+        for p in plan.specs.products:
+            mine = [s for s in samples if plan.specs.product_of(s) is p]
+            print(f"  {p.name}: {len(p.criteria)} criteria, at least {p.min_grains} grains; samples found now: "
+                  + (", ".join(mine) or "none"))
+        lone = [s for s in samples if plan.specs.product_of(s) is None]
+        if lone:
+            print(f"  matching no product (no verdict): {', '.join(lone)}")
     ex = cfg["execution"]
     print(f"execution: scheduler {ex['scheduler']}, workers {ex['workers']}")
     print("steps:")
@@ -136,6 +146,8 @@ def cmd_run(args, host: Host) -> int:
     for source, error in outcome.failures:
         log.error("failed frame: %s: %s", source, error)
     log.info(outcome.line(), extra={"fields": {"summary": True, "exit_code": outcome.exit_code}})
+    for line in outcome.verdict_lines:  # one line per sample on stdout, for cron mail
+        print(line, flush=True)
     return outcome.exit_code
 
 

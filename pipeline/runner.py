@@ -69,6 +69,8 @@ class RunOutcome:
     failures: list = field(default_factory=list)
     results: str = ""
     report: str = ""
+    #: One line per sample with its product and verdict (printed to stdout at the end of ``run``).
+    verdict_lines: list = field(default_factory=list)
 
     def line(self) -> str:
         rate = self.frames_processed / self.seconds * 60 if self.seconds > 0 else 0.0
@@ -268,6 +270,14 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 log.error("summarise step %s", survey_errors[-1])
                 log.debug("traceback of %s", step.name, exc_info=True)
         groups.update(summary)
+        if plan.specs is not None and "summary" in groups:
+            try:
+                groups.update(_judge(plan, groups))
+            except Exception as exc:
+                survey_errors.append(f"verdicts: {exc.__class__.__name__}: {exc}")
+                log.error("%s", survey_errors[-1])
+                log.debug("traceback of the verdicts", exc_info=True)
+        outcome.verdict_lines = _verdict_lines(groups)
         outcome.failures.extend(("(survey)", e) for e in survey_errors)
 
         previous_runs = _previous_runs(results)
@@ -283,6 +293,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                  "workflow_hash": plan.hash, "workflow_file": plan.file, "processing_key": pkey,
                  "versions": json.dumps(versions(host)), "runs": json.dumps(previous_runs + [record]),
                  "data_note": plan.config.get("note") or "",
+                 "spec_file": plan.config.get("specs") or "", "spec_text": _spec_text(plan),
                  "conventions": "origin at the top-left corner of the top-left pixel; x along columns, y along rows; nm"}
         with obs.phase("results_write"):
             write_results(results, groups, attrs)
@@ -309,12 +320,37 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
     return outcome
 
 
+def _judge(plan: Plan, groups: dict) -> dict:
+    """``verdicts`` and ``trends`` groups from the workflow's product specs (built-in survey plugin)."""
+    from grainhabit.plugins.survey.verdicts import judge
+
+    params = next((s.params for s in plan.survey_steps if s.stage == "summarise"), {})
+    return judge(plan.specs, groups, params)
+
+
+def _verdict_lines(groups: dict) -> list[str]:
+    if "summary" not in groups:
+        return []
+    from grainhabit.plugins.survey.verdicts import verdict_lines
+
+    return verdict_lines(groups["summary"], groups.get("verdicts"))
+
+
+def _spec_text(plan: Plan) -> str:
+    try:
+        return Path(plan.config["specs"]).read_text(encoding="utf-8") if plan.config.get("specs") else ""
+    except OSError:
+        return ""
+
+
 def _consolidate(frames, problems, transient, results, stage, plan, host) -> dict:
     """Datasets of the input problems, every listed frame in order, then kept frames of missing files."""
     entries = []
     for path, reason in problems:
-        entries.append(({"source": path, "sample": "", "content_hash": "", "stage_key": ""},
-                        _failed_result(path, "", reason)))
+        # an unreadable file still belongs to the sample its path names; a pattern that matched nothing has none
+        sample = expand(plan.config["input"]["sample"], path, 0) if os.path.isfile(path) else ""
+        entries.append(({"source": path, "sample": sample, "content_hash": "", "stage_key": ""},
+                        _failed_result(path, sample, reason)))
     listed_sources = set()
     for f in frames:
         listed_sources.add(f.ref.source)

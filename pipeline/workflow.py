@@ -42,6 +42,7 @@ SCHEMA: dict[str, Any] = {
     "version": (int, True, None),
     "name": (str, False, None),
     "note": (str, False, None),
+    "specs": (str, False, None),
     "plugins": (list, False, []),
     "input": {
         "paths": ((list, str), False, []),
@@ -122,6 +123,9 @@ class Plan:
     config: dict
     frame_steps: list[StepPlan] = field(default_factory=list)
     survey_steps: list[StepPlan] = field(default_factory=list)
+    #: The product spec file named by ``specs:`` (a validated
+    #: :class:`grainhabit.plugins.survey.specs.Specs`), or None.
+    specs: Any = None
 
     @property
     def name(self) -> str:
@@ -326,6 +330,12 @@ def validate(path: str, host: Host, overrides: dict | None = None) -> Plan:
         raise WorkflowError(path, "execution.scheduler", f"expected 'local', 'serial' or tcp://HOST:PORT, got {sch!r}")
 
     plan = Plan(path, text, hashlib.sha256(text.encode()).hexdigest(), cfg)
+    if cfg["specs"]:
+        # product specs: checked in full now, like the workflow itself (exit 2 on any problem)
+        from grainhabit.plugins.survey.specs import load_specs
+
+        cfg["specs"] = _resolve_path(base, cfg["specs"])
+        plan.specs = load_specs(cfg["specs"])
     _resolve_steps(plan, cfg["steps"], host)
     return plan
 

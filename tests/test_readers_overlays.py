@@ -47,3 +47,16 @@ def test_marks_are_filled_with_their_surroundings():
     marks = overlays.annotation_mask(img)
     filled = overlays.fill_marks(img, marks)
     assert abs(float(filled[80:84, 10:70].mean()) - 100) < 10 and filled.dtype == img.dtype
+
+
+def test_clipped_bright_bottom_with_grains_is_not_a_strip():
+    # a transmission field whose illumination ramp saturates the bottom rows, with grains reaching into
+    # them: the clipped background is flat in half of each row, but no info strip (invented test data)
+    rows, cols = 400, 400
+    ramp = np.linspace(40000, 90000, rows)[:, None] * np.ones((1, cols))
+    img = np.clip(ramp + np.random.default_rng(1).normal(0, 800, (rows, cols)), 0, 65535)
+    rr, cc = disk((385, 120), 60, shape=img.shape)
+    img[rr, cc] = 20000 + np.random.default_rng(2).normal(0, 800, rr.size)
+    rr, cc = disk((380, 300), 50, shape=img.shape)
+    img[rr, cc] = 25000
+    assert overlays.find_info_strip(img.astype(np.uint16)) == 0

@@ -23,6 +23,9 @@ import numpy as np
 #: A row is flat when at least this fraction of its pixels has the row's most common value.
 FLAT_ROW_FRACTION = 0.45
 
+#: In an info strip, the median row has at least this fraction of its pixels at its background value.
+MOSTLY_FLAT = 0.75
+
 #: An info strip is at least this many rows (and 2 % of the height) and at most 30 % of the height.
 MIN_STRIP_ROWS = 8
 MAX_STRIP_FRACTION = 0.30
@@ -55,6 +58,9 @@ def find_info_strip(image: np.ndarray) -> int:
     image rows are not flat (a micrograph's noise). At most two noisy rows
     at the very bottom are allowed (some writers pad the last row), and at
     most 15 % of the strip's rows may be non-flat (rows through dense text).
+    A block whose every row is flat to the pixel holds no text or lines, and
+    one whose median row is flat only in places (:data:`MOSTLY_FLAT`) holds
+    grains on a clipped background: neither is a strip.
 
     Parameters
     ----------
@@ -95,6 +101,11 @@ def find_info_strip(image: np.ndarray) -> int:
     if height < max(MIN_STRIP_ROWS, 0.02 * n_rows) or height > MAX_STRIP_FRACTION * n_rows:
         return 0
     if sum(block) < 0.85 * len(block):
+        return 0
+    flatness = np.array(list(_row_flatness(image, range(top, n_rows)).values()))
+    if flatness.min() >= 0.999 or np.median(flatness) < MOSTLY_FLAT:
+        # flat to the pixel (no text or lines: a clipped, saturated part of the image), or only half flat
+        # (grains on a saturated background): not a strip
         return 0
     above = _row_flatness(image, range(max(0, top - 40), top))
     if not above or np.median(list(above.values())) >= 0.25:
