@@ -196,7 +196,8 @@ def append_groups(path: str | os.PathLike, appended: dict[str, xr.Dataset], repl
         for var_name in ds.variables:
             arr = root[f"{name}/{var_name}"]
             rows = arr.chunks[0]
-            if n_old and rows < 64 and n_old >= 64:
+            want = THUMBS_PER_CHUNK if name == "thumbnails" and arr.ndim == 3 else CHUNK_ROWS[dim]
+            if n_old >= want and rows < want // 4:
                 raise CannotAppend(f"{name}.{var_name}: chunks of {rows} rows (a store written before chunked "
                                    "appends)")
             if n_old % rows:

@@ -67,8 +67,9 @@ class NightPlan:
 
 
 def _open_group(path: str, name: str) -> xr.Dataset | None:
+    """A group of the store, read lazily without dask (numpy-backed when loaded), or None."""
     try:
-        return xr.open_zarr(path, group=name)
+        return xr.open_zarr(path, group=name, chunks=None)
     except Exception:
         return None
 
@@ -197,7 +198,7 @@ def _unresolved(source: str) -> bool:
 
 def _full_groups(results: str, night: NightPlan, new: dict) -> dict:
     """Stored rows that stay, then the new rows: every appendable group, in memory."""
-    old = {name: (night.stored[name] if name in night.stored else xr.open_zarr(results, group=name).load())
+    old = {name: (night.stored[name] if name in night.stored else _open_group(results, name).load())
            for name in APPEND_DIMS}
     old = select_frames(old, night.keep)
     offset_indices(new, old["frames"].sizes.get("frame", 0), old["grains"].sizes.get("grain", 0))

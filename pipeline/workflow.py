@@ -297,7 +297,7 @@ def plugin_specs(path: str) -> list[str]:
     WorkflowError
         If the file or its ``plugins`` key is invalid.
     """
-    _, data = load_yaml(path)
+    _, data = load_yaml(path, duplicates=[])  # duplicate keys are reported by validate() with the rest
     specs = data.get("plugins") or []
     if not isinstance(specs, list):
         raise WorkflowError(path, "plugins", f"expected a list, got {specs!r}")
