@@ -44,7 +44,7 @@ import numpy as np
 import xarray as xr
 import zarr
 
-from .results import METADATA_FILE, _prepare, consolidate
+from .results import METADATA_FILE, as_stored, consolidate
 
 #: Appendable groups and their row dimension.
 APPEND_DIMS = {"grains": "grain", "frames": "frame", "outlines": "vertex", "thumbnails": "frame"}
@@ -191,7 +191,7 @@ def append_groups(path: str | os.PathLike, appended: dict[str, xr.Dataset], repl
         if not ds.sizes.get(dim, 0):
             continue
         old = xr.open_zarr(store, group=name, consolidated=False)
-        ds = _check_fits(name, old, _prepare(ds), dim)
+        ds = _check_fits(name, old, as_stored(ds), dim)
         n_old = int(old.sizes.get(dim, 0))
         for var_name in ds.variables:
             arr = root[f"{name}/{var_name}"]
@@ -220,7 +220,7 @@ def append_groups(path: str | os.PathLike, appended: dict[str, xr.Dataset], repl
             del root[name]
     renamed: dict[str, bytes] = {}
     for name, ds in replaced.items():
-        ds = _prepare(ds)
+        ds = as_stored(ds)
         for var in ds.variables.values():
             var.encoding = {"chunks": tuple(max(1, s) for s in var.shape)} if var.ndim else {}
         ds.to_zarr(store, group=name, mode="a", consolidated=False, zarr_format=3)

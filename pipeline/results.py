@@ -37,13 +37,16 @@ def text_array(values) -> np.ndarray:
     return np.array([("" if v is None else str(v)) for v in values], dtype=np.dtypes.StringDType())
 
 
-def _prepare(ds: xr.Dataset) -> xr.Dataset:
-    """Convert fixed-width or object text variables to variable-length strings."""
+def as_stored(ds: xr.Dataset) -> xr.Dataset:
+    """``ds`` with fixed-width or object text variables as variable-length strings (as the store keeps them)."""
     out = ds.copy()
     for name, var in list(out.variables.items()):
         if var.dtype.kind in ("U", "S", "O"):
             out[name] = var.copy(data=text_array(np.asarray(var.values).ravel()).reshape(var.shape))
     return out
+
+
+_prepare = as_stored  # the name used before it was public
 
 
 def consolidate(store) -> None:
@@ -121,7 +124,7 @@ def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_at
     root.attrs.update(root_attrs or {})
     made = {folder}
     for name, ds in groups.items():
-        _prepare(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
+        as_stored(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
         _spill(held, folder, made, metadata_too=False)
     consolidate(store)
     _spill(held, folder, made, metadata_too=True)

@@ -6,7 +6,6 @@ behaviour (files opened, rows stored, exit codes), not on image science.
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import subprocess
@@ -392,3 +391,18 @@ def test_batch_settings_are_checked_up_front(tmp_path):
     res = run_cli("check", w)
     assert res.returncode == 2 and "execution.jobqueue: only used with a batch-system scheduler" in res.stderr
     assert not (tmp_path / "out").exists()
+
+
+def test_nightly_benchmark_prints_the_ratio_table(tmp_path, capsys):
+    from grainhabit.cli import _benchmarks
+    from grainhabit.manager import make_host
+
+    bench = _benchmarks(make_host(autoload=False))["nightly"]
+    code = bench(["--sizes", "3,9", "--base", "3", "--repeat", "1", "--distinct", "2", "--workdir", str(tmp_path)])
+    out = capsys.readouterr().out
+    assert code == 0, out
+    rows = [ln.split() for ln in out.splitlines() if ln.strip() and ln.split()[0] in ("3", "9")]
+    table = {r[0]: r for r in rows if len(r) == 7}
+    assert set(table) == {"3", "9"} and float(table["3"][2]) == 1.0 and float(table["9"][2]) > 0
+    assert table["9"][4] == "0" and table["9"][5] == "2" and table["9"][6] == "0"  # no old file; 2 staged read
+    assert (tmp_path / "archive-9" / "out" / "r.zarr").exists()
