@@ -46,8 +46,16 @@ class FoundInputs:
     unmatched: list = field(default_factory=list)
 
 
+class _Plain(str):
+    """A path found by a directory scan that is known not to be a symbolic link."""
+
+
 class _Resolver:
-    """``os.path.realpath`` of files, with the folders' resolutions cached (one ``lstat`` per file)."""
+    """``os.path.realpath`` of files, with the folders' resolutions cached.
+
+    A file itself costs one ``lstat`` (is it a link?), or none when the
+    directory scan that found it already said it is not (:class:`_Plain`).
+    """
 
     def __init__(self):
         self._dirs: dict[str, str] = {}
@@ -58,6 +66,8 @@ class _Resolver:
         if real_dir is None:
             real_dir = self._dirs[head] = os.path.realpath(head)
         full = os.path.join(real_dir, name)
+        if isinstance(path, _Plain):
+            return full
         return os.path.realpath(full) if os.path.islink(full) else full
 
 
@@ -116,13 +126,20 @@ def _walk_pattern(base: str, parts: list[str], seen_dirs: set, out: list, inside
         path = os.path.join(base, comp)
         names = [path] if os.path.lexists(path) else []
     for e in names:
-        path = e if isinstance(e, str) else e.path
+        if isinstance(e, str):
+            path, is_file, is_dir = e, os.path.isfile(e), os.path.isdir(e)
+        else:  # a directory entry knows its type without a system call (unless it is a link)
+            path = e.path
+            try:
+                is_file, is_dir = e.is_file(), e.is_dir()
+            except OSError:
+                continue
         if rest:
-            if os.path.isdir(path):
+            if is_dir:
                 _walk_pattern(path, rest, seen_dirs, out, inside)
-        elif os.path.isfile(path):
-            out.append(path)
-        elif os.path.isdir(path):  # a pattern that names folders takes the image files inside them
+        elif is_file:
+            out.append(path if isinstance(e, str) or e.is_symlink() else _Plain(path))
+        elif is_dir:  # a pattern that names folders takes the image files inside them
             out.extend(_folder_files(path, inside))
 
 

@@ -96,6 +96,7 @@ class ListingIndex:
         self._stale_answers = False
         self.current: dict[str, dict] = {}
         self.hits = self.misses = 0
+        self._reused: dict | None = None
         try:
             data = json.loads(self.path.read_text(encoding="utf-8"))
         except (OSError, ValueError):
@@ -110,10 +111,16 @@ class ListingIndex:
         if entry is None or self._stale_answers or entry.get("stat") != _ident(st) or "refs" not in entry:
             return None
         self.hits += 1
+        self._reused = entry
         return [_ref_from_json(r) for r in entry["refs"]]
 
     def remember(self, path: str, st: os.stat_result | None, refs: list[FrameRef] | None, root: str) -> None:
         """Record this run's view of a file (``refs`` None: listing failed; it is listed again next time)."""
+        reused = self._reused
+        self._reused = None
+        if reused is not None and st is not None and reused.get("stat") == _ident(st):
+            self.current[path] = reused if reused.get("root") == root else dict(reused, root=root)
+            return
         entry: dict = {"root": root}
         if st is not None and refs is not None:
             entry["stat"] = _ident(st)

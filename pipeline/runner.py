@@ -26,7 +26,6 @@ import socket
 import threading
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 
@@ -43,7 +42,7 @@ from .night import build_night, commit_night, plan_night
 from .results import recover, root_attrs
 from .staging import clean_temporaries, frame_key, is_staged, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
-from .workflow import Plan, expand, find_inputs
+from .workflow import Plan, find_inputs, template_values
 
 log = logging.getLogger("grainhabit")
 
@@ -174,9 +173,10 @@ def list_frames(plan: Plan, host: Host, processing_key: str,
             continue
         for ref in refs:
             src_path = ref.source.split("#")[0] if "#" in ref.source else ref.source
-            sample = expand(inp["sample"], src_path, ref.page)
-            fields = {k: expand(t, src_path, ref.page) for k, t in inp["fields"].items()}
-            extra = sidecar.get(Path(src_path).name) or sidecar.get(src_path) or {}
+            values = template_values(src_path, ref.page)
+            sample = inp["sample"].format(**values)
+            fields = {k: t.format(**values) for k, t in inp["fields"].items()}
+            extra = (sidecar.get(values["name"]) or sidecar.get(src_path) or {}) if sidecar else {}
             fields.update(extra)
             key = frame_key(ref.content_hash, ref.source, sample, processing_key)
             frames.append(ListedFrame(ref, sample, fields, key))

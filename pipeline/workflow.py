@@ -502,19 +502,24 @@ def find_inputs(plan: Plan, folder_files: set | None = None) -> tuple[list[str],
 
 
 def template_values(source_path: str, page: int) -> dict:
-    """Values for the ``input.sample`` / ``input.fields`` placeholders."""
-    p = Path(source_path)
-    name = p.name
-    stem = name
+    """Values for the ``input.sample`` / ``input.fields`` placeholders.
+
+    String operations only (no pathlib objects): a night lists every file of
+    the archive, so this runs once per frame.
+    """
+    folder, name = os.path.split(source_path)
+    upper, parent = os.path.split(folder)
+    grandparent = os.path.basename(upper)
     for compound in (".ome.tiff", ".ome.tif"):  # OME-TIFF's two-part suffix
-        if stem.lower().endswith(compound):
-            stem = stem[: -len(compound)]
+        if name.lower().endswith(compound):
+            stem = name[: -len(compound)]
             break
     else:
-        stem = p.stem
+        root, ext = os.path.splitext(name)
+        stem = root if ext else name
     return {
-        "parent": p.parent.name,
-        "grandparent": p.parent.parent.name,
+        "parent": parent,
+        "grandparent": grandparent,
         "stem": stem,
         "name": name,
         "page": page,
