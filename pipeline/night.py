@@ -265,3 +265,73 @@ def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attr
     groups.update(survey)
     write_results(results, set_chunking(groups), attrs)
     return "written"
+
+
+@dataclass
+class TouchedPart:
+    """The rows of the samples that got frames tonight (for summaries computed per sample)."""
+
+    samples: list
+    grains: xr.Dataset
+    frames: xr.Dataset
+
+
+def touched_part(results: str, night: NightPlan, built: dict) -> TouchedPart | None:
+    """All rows of the samples that got new frames tonight, or None where summaries need every row.
+
+    Only for nights that append (no row of a stored sample changed) to a store
+    that has a ``summary`` group. The summaries of the other samples are
+    those stored (:func:`merge_summaries`).
+    """
+    if night.mode != "append" or not night.new_entries:
+        return None
+    if _open_group(results, "summary") is None:
+        return None
+    samples = sorted({str(info.get("sample", "")) for info, _ in night.new_entries})
+    frames, grains = built["frames"], built["grains"]
+    fmask = np.isin(np.asarray(frames["sample"].values, dtype=object), samples)
+    gmask = np.isin(np.asarray(grains["sample"].values, dtype=object), samples) if grains.sizes.get("grain") else \
+        np.zeros(0, bool)
+    return TouchedPart(samples, grains.isel(grain=np.flatnonzero(gmask)), frames.isel(frame=np.flatnonzero(fmask)))
+
+
+def _as_object_text(ds: xr.Dataset) -> xr.Dataset:
+    changed = {k: v.copy(data=np.asarray(v.values, dtype=object)) for k, v in ds.variables.items()
+               if v.dtype.kind in ("T", "U", "O")}
+    return ds.assign(changed) if changed else ds
+
+
+def merge_summaries(results: str, part: dict, samples: list) -> dict | None:
+    """Stored summaries of the untouched samples with tonight's summaries of ``samples``.
+
+    Each group must have a ``sample`` dimension with a ``sample`` coordinate,
+    the same variables (with the same dims) and the same attributes as the
+    stored group, and every variable without the ``sample`` dimension equal
+    to the stored one; the rows are put in sample order (as the summarise
+    steps sort them). Otherwise None: the caller summarises every sample.
+    Per-sample summaries computed this way equal those of a full computation
+    as long as a sample's summary depends on that sample's rows alone
+    (``summarise-samples`` seeds its bootstrap per sample).
+    """
+    merged = {}
+    for name, new in part.items():
+        if not isinstance(new, xr.Dataset) or "sample" not in new.dims or "sample" not in new.coords:
+            return None
+        stored = _open_group(results, name)
+        if stored is None or "sample" not in stored.dims or "sample" not in stored.coords:
+            return None
+        stored = _as_object_text(stored.load())
+        new = _as_object_text(new)
+        if set(stored.variables) != set(new.variables) or dict(stored.attrs) != dict(new.attrs):
+            return None
+        for k, v in new.variables.items():
+            if stored[k].dims != v.dims:
+                return None
+            if "sample" not in v.dims and not stored[k].variable.equals(v):
+                return None
+        keep = [s for s in stored["sample"].values.tolist() if s not in set(samples)]
+        both = xr.concat([stored.sel(sample=keep), new], dim="sample", data_vars="all", coords="different",
+                         compat="equals", join="outer", combine_attrs="override")
+        order = np.argsort(np.asarray(both["sample"].values, dtype=str), kind="stable")
+        merged[name] = both.isel(sample=order)
+    return merged

@@ -38,7 +38,7 @@ from .manager import Host
 from .observe import RunObserver
 from .inputs import find_files
 from .listing import ListingIndex, index_path, listing_key, vanished_roots
-from .night import build_night, commit_night, plan_night
+from .night import build_night, commit_night, merge_summaries, plan_night, touched_part
 from .results import recover, root_attrs
 from .staging import clean_temporaries, frame_key, is_staged, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
@@ -312,11 +312,25 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                                                                   frames_ds["status"].values) if str(st) != "ok"]
         summary: dict = {}
         survey_errors: list[str] = []
+        part = touched_part(results, night, built)  # append nights: only the samples that got frames
+        part_summary: dict = {}
         for step in [s for s in plan.survey_steps if s.stage == "summarise"]:
             try:
                 with obs.phase("summarise"):
-                    out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary,
-                                         params=step.params)
+                    out = None
+                    if part is not None:
+                        got = host.call_step(step.name, grains=part.grains, frames=part.frames,
+                                             summary=part_summary, params=step.params)
+                        out = merge_summaries(results, got, part.samples) if isinstance(got, dict) else None
+                        if out is None:
+                            part = None
+                            log.info("summaries computed over all samples (step %s gives groups that cannot be "
+                                     "merged per sample)", step.name)
+                        else:
+                            part_summary.update(got)
+                    if out is None:
+                        out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary,
+                                             params=step.params)
                 if not isinstance(out, dict) or "summary" not in out:
                     raise TypeError(f"returned {type(out).__name__}; expected a dict with a 'summary' dataset")
                 summary.update(out)
@@ -325,6 +339,9 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 log.error("summarise step %s", survey_errors[-1])
                 log.debug("traceback of %s", step.name, exc_info=True)
         outcome.failures.extend(("(survey)", e) for e in survey_errors)
+        if part is not None:
+            log.info("summaries recomputed for the %d samples that got frames tonight (%s); the others kept",
+                     len(part.samples), ", ".join(part.samples[:5]) + (", ..." if len(part.samples) > 5 else ""))
 
         previous_runs = _previous_runs(results)
         outcome.seconds = time.monotonic() - t_start

@@ -115,9 +115,11 @@ def test_appended_store_equals_a_store_written_in_one_night(tmp_path):
         frame(tmp_path, i)
     nightly = workflow(tmp_path, "a.yaml", results="a/r.zarr")
     assert run_cli("run", nightly).returncode == 0
-    for i in (3, 4):
-        frame(tmp_path, i)
-    assert run_cli("run", nightly).returncode == 0
+    frame(tmp_path, 3)  # sample s1 gets a frame, s0 none, s9 is new
+    write_tiff(tmp_path / "data" / "s9" / "f004.tif", draw_frame((96, 96), discs=[(40, 40, 9), (70, 70, 12)]), 5.0)
+    res = run_cli("run", nightly)
+    assert res.returncode == 0 and "results appended" in res.stderr, res.stderr
+    assert "summaries recomputed for the 2 samples that got frames tonight (s1, s9)" in res.stderr  # s0's kept
     once = workflow(tmp_path, "b.yaml", results="b/r.zarr")
     assert run_cli("run", once).returncode == 0
     # a night's frames follow the stored ones, so the rows come in another order: compare by source
