@@ -1,7 +1,10 @@
 """Benchmark ``grainhabit bench nightly``: a night costs what its new frames cost, not the archive.
 
 For archives of ``--sizes`` frames (default 100, 1000 and 10000 tiny
-fields) it measures one night that adds ``--new`` (2) frames, and prints
+fields in 3 samples) it measures one night that adds ``--new`` (2) frames
+of a new batch (a new sample folder, as a facility's nightly batches
+arrive; ``--same-samples`` adds them to the stored samples, whose summaries
+are then recomputed over all their grains), and prints
 that night's wall time against the same night in the ``--base`` archive
 (100 frames): the ratio. Target: a 1,500-frame archive's night takes at most
 1.5x (goal 1.1x) the 100-frame archive's; the bench prints the ratio of
@@ -85,14 +88,14 @@ def _tagged(image: np.ndarray, number: int) -> np.ndarray:
     return out
 
 
-def _file(root: Path, i: int) -> Path:
-    return root / "data" / f"batch-{i % SAMPLES}" / f"field{i:06d}.tif"
+def _file(root: Path, i: int, batch: str | None = None) -> Path:
+    return root / "data" / (batch or f"batch-{i % SAMPLES}") / f"field{i:06d}.tif"
 
 
-def _write(root: Path, images, i: int) -> Path:
+def _write(root: Path, images, i: int, batch: str | None = None) -> Path:
     from grainhabit.plugins.synthetic.demo import write_frame
 
-    path = _file(root, i)
+    path = _file(root, i, batch)
     write_frame(path, _tagged(images[i % len(images)], i), bu.PIXEL_SIZE_NM, "resolution")
     return path
 
@@ -154,12 +157,14 @@ def _templates(work: Path, images, host, scheduler: str) -> dict:
             for s, k in zip(frames["source"].values, frames["stage_key"].values)}
 
 
-def _night(root: Path, wf: Path, host, images, first: int, new: int, counter: _OpenCounter) -> dict:
-    """Add ``new`` frames to an archive and time the run that takes them in."""
+def _night(root: Path, wf: Path, host, images, first: int, new: int, counter: _OpenCounter,
+           new_batch: bool = True) -> dict:
+    """Add ``new`` frames to an archive (as a new batch, or into the stored ones) and time the run."""
     from grainhabit.runner import run
     from grainhabit.workflow import validate
 
-    added = [_write(root, images, first + j) for j in range(new)]
+    batch = f"night-{first:06d}" if new_batch else None
+    added = [_write(root, images, first + j, batch) for j in range(new)]
     t0 = time.perf_counter()
     counter.start(root)
     plan = validate(str(wf), host, check_files=True)
@@ -194,6 +199,9 @@ def run_bench(argv: list[str]) -> int:
     ap.add_argument("--repeat", type=int, default=3, help="interleaved rounds; the best night is kept (default 3)")
     ap.add_argument("--scheduler", choices=("serial", "local"), default="serial",
                     help="serial (default: the host's own cost, without a cluster's start) or local")
+    ap.add_argument("--same-samples", action="store_true",
+                    help="put a night's frames into the archive's samples (default: a new batch folder each night, "
+                         "as a facility's nightly batches arrive)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--workdir", metavar="DIR", help="keep archives and results here (default: a temporary folder)")
     ap.add_argument("--check", action="store_true", help="exit 1 if the target is missed")
@@ -216,9 +224,11 @@ def run_bench(argv: list[str]) -> int:
         t0 = time.perf_counter()
         images = bu.render_frames(args.distinct, args.size, grains=1, seed=args.seed, ecd_nm=args.size * bu.PIXEL_SIZE_NM / 3)
         templates = _templates(work, images, host, args.scheduler)
+        where = "into the stored samples" if args.same_samples else "as a new batch (sample)"
         print(f"grainhabit bench nightly: {args.scheduler} scheduler; archives of {', '.join(map(str, sizes))} "
-              f"frames of {args.size}x{args.size} px (invented; {args.distinct} fields processed, the rest seeded "
-              f"from them: {time.perf_counter() - t0:.1f} s); a night adds {args.new} frames", file=out)
+              f"frames of {args.size}x{args.size} px in {SAMPLES} samples (invented; {args.distinct} fields "
+              f"processed, the rest seeded from them: {time.perf_counter() - t0:.1f} s); a night adds {args.new} "
+              f"frames {where}", file=out)
         archives = {}
         for n in sizes:
             root = work / f"archive-{n}"
@@ -229,7 +239,8 @@ def run_bench(argv: list[str]) -> int:
         for r in range(args.repeat):
             for n in sizes:
                 a = archives[n]
-                night = _night(a["root"], a["workflow"], host, images, a["next"], args.new, counter)
+                night = _night(a["root"], a["workflow"], host, images, a["next"], args.new, counter,
+                               new_batch=not args.same_samples)
                 a["next"] += args.new
                 a["nights"].append(night)
         base = min(archives[args.base]["nights"], key=lambda d: d["seconds"])["seconds"]
