@@ -282,8 +282,9 @@ def _check_template(file: str, key: str, template: str, errs: list) -> None:
 
 
 def _resolve_path(base: Path, p: str) -> str:
+    """``p`` made absolute against the workflow's folder, ``..`` and ``.`` taken out (links are kept)."""
     p = os.path.expanduser(os.path.expandvars(p))
-    return p if os.path.isabs(p) else str((base / p))
+    return os.path.normpath(p if os.path.isabs(p) else str(base / p))
 
 
 def plugin_specs(path: str) -> list[str]:
