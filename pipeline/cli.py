@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import os
 import signal
 import sys
@@ -20,7 +21,7 @@ import traceback
 
 from . import __version__
 from .lock import LockHeld
-from .logs import setup
+from .logs import setup, to_file_only
 from .manager import Host, make_host
 from .workflow import WorkflowError, plugin_specs, validate
 
@@ -70,10 +71,13 @@ def _host_for(workflow: str, host: Host) -> Host:
 
 def cmd_check(args, host: Host) -> int:
     host = _host_for(args.workflow, host)
-    plan = validate(args.workflow, host, _overrides(args))
-    from .runner import list_frames
+    plan = validate(args.workflow, host, _overrides(args), check_files=True)
+    from .listing import ListingIndex, index_path, listing_key
+    from .runner import list_frames, reader_versions
 
-    frames, problems = list_frames(plan, host, plan.processing_key(host))
+    index = None if plan.config["input"]["archive"] else ListingIndex(
+        index_path(plan.config["output"]["results"]), listing_key(reader_versions(host), plan.config["input"]))
+    frames, problems = list_frames(plan, host, plan.processing_key(host), index)  # the index is only read
     files = {f.ref.path for f in frames}
     cfg = plan.config
     print(f"workflow {plan.name} ({plan.file}) is valid")
@@ -137,12 +141,17 @@ def cmd_run(args, host: Host) -> int:
     from .runner import run
 
     host = _host_for(args.workflow, host)
-    plan = validate(args.workflow, host, _overrides(args))
+    plan = validate(args.workflow, host, _overrides(args), check_files=True)
     out = plan.config["output"]
     log_file = out["log"] or (out["results"].rstrip("/") + ".log")
     os.makedirs(os.path.dirname(os.path.abspath(log_file)), exist_ok=True)
     log = setup(json_lines=args.log_json, log_file=log_file, debug=args.debug)
-    outcome = run(plan, host, fresh=args.fresh)
+    try:
+        outcome = run(plan, host, fresh=args.fresh)
+    except KeyboardInterrupt:
+        to_file_only(log, logging.WARNING, "interrupted (Ctrl-C or SIGTERM); staged frames are kept and the next "
+                                           "run resumes; the results store holds the last complete run")
+        raise
     for source, error in outcome.failures:
         log.error("failed frame: %s: %s", source, error)
     log.info(outcome.line(), extra={"fields": {"summary": True, "exit_code": outcome.exit_code}})
@@ -299,7 +308,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{exc}", file=sys.stderr)
         return EXIT_USAGE
     except WorkflowError as exc:
-        print(f"grainhabit: bad workflow: {exc}", file=sys.stderr)
+        for err in exc.errors:
+            print(f"grainhabit: bad workflow: {err}", file=sys.stderr)
         return EXIT_USAGE
     except LockHeld as exc:
         print(f"grainhabit: locked: {exc}", file=sys.stderr)

@@ -177,3 +177,104 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
         }
     )
     return {"grains": grains, "frames": frames, "outlines": outlines, "thumbnails": thumbnails}
+
+
+def offset_indices(groups: dict[str, xr.Dataset], frames_before: int, grains_before: int) -> dict[str, xr.Dataset]:
+    """Shift the ``frame`` and ``grain`` indices of new rows past the rows already stored.
+
+    Parameters
+    ----------
+    groups : dict of str -> xarray.Dataset
+        From :func:`build_datasets` for the new frames only (modified in place and returned).
+    frames_before, grains_before : int
+        Rows of ``frames`` and ``grains`` already in the store.
+    """
+    if "grains" in groups and "frame" in groups["grains"]:
+        groups["grains"]["frame"] = groups["grains"]["frame"] + np.int64(frames_before)
+    if "outlines" in groups and "grain" in groups["outlines"]:
+        groups["outlines"]["grain"] = groups["outlines"]["grain"] + np.int64(grains_before)
+    return groups
+
+
+def select_frames(groups: dict[str, xr.Dataset], keep: np.ndarray) -> dict[str, xr.Dataset]:
+    """Keep some frames of stored results, with their grains, outlines and thumbnails, renumbered.
+
+    Parameters
+    ----------
+    groups : dict of str -> xarray.Dataset
+        ``frames``, ``grains``, ``outlines``, ``thumbnails`` (loaded).
+    keep : ndarray of bool, shape (n_frames,)
+        Frames to keep.
+
+    Returns
+    -------
+    dict of str -> xarray.Dataset
+        The same groups with only the kept rows; ``grains.frame`` and
+        ``outlines.grain`` point at the new row numbers.
+    """
+    keep = np.asarray(keep, dtype=bool)
+    new_frame = np.cumsum(keep) - 1
+    out = dict(groups)
+    out["frames"] = groups["frames"].isel(frame=np.flatnonzero(keep))
+    if "thumbnails" in groups and groups["thumbnails"].sizes.get("frame", 0) == keep.size:
+        out["thumbnails"] = groups["thumbnails"].isel(frame=np.flatnonzero(keep))
+    grains = groups["grains"]
+    frame_of = grains["frame"].values.astype(np.int64) if grains.sizes.get("grain", 0) else np.zeros(0, np.int64)
+    grain_keep = keep[frame_of] if frame_of.size else np.zeros(0, bool)
+    g = grains.isel(grain=np.flatnonzero(grain_keep))
+    if g.sizes.get("grain", 0):
+        g["frame"] = g["frame"].copy(data=new_frame[frame_of[grain_keep]].astype(np.int64))
+    out["grains"] = g
+    if "outlines" in groups:
+        ol = groups["outlines"]
+        owner = ol["grain"].values.astype(np.int64)
+        vkeep = grain_keep[owner] if owner.size else np.zeros(0, bool)
+        new_grain = np.cumsum(grain_keep) - 1
+        o = ol.isel(vertex=np.flatnonzero(vkeep))
+        if o.sizes.get("vertex", 0):
+            o["grain"] = o["grain"].copy(data=new_grain[owner[vkeep]].astype(np.int64))
+        out["outlines"] = o
+    return out
+
+
+def concat_rows(old: dict[str, xr.Dataset], new: dict[str, xr.Dataset]) -> dict[str, xr.Dataset]:
+    """Stored rows followed by new rows (indices of ``new`` already offset), group by group.
+
+    Thumbnail stacks of different sizes are padded with 0 to the larger one.
+    A group missing on one side is taken from the other.
+    """
+    dims = {"grains": "grain", "frames": "frame", "outlines": "vertex", "thumbnails": "frame"}
+    out = {}
+    for name, dim in dims.items():
+        a, b = old.get(name), new.get(name)
+        if a is None or b is None:
+            out[name] = a if b is None else b
+            continue
+        if not a.sizes.get(dim, 0):
+            out[name] = b
+            continue
+        if not b.sizes.get(dim, 0):
+            out[name] = a
+            continue
+        if name == "thumbnails":
+            side = (max(a.sizes["thumb_y"], b.sizes["thumb_y"]), max(a.sizes["thumb_x"], b.sizes["thumb_x"]))
+            a, b = (d.pad(thumb_y=(0, side[0] - d.sizes["thumb_y"]), thumb_x=(0, side[1] - d.sizes["thumb_x"]),
+                          constant_values=0) if "thumb_y" in d.dims else d for d in (a, b))
+        both = [a.copy(), b.copy()]
+        for k in sorted(set(a.data_vars) ^ set(b.data_vars)):  # a column one side has not got: filled
+            for d in both:
+                if k not in d:
+                    like = (a if k in a else b)[k]
+                    fill = "" if like.dtype.kind in TEXT_KINDS else (False if like.dtype.kind == "b" else np.nan)
+                    d[k] = xr.Variable(like.dims, np.full((d.sizes[dim],) + like.shape[1:], fill,
+                                                          dtype=object if fill == "" else None), like.attrs)
+        parts = []
+        for d in both:
+            d = d.copy()
+            for k, v in d.variables.items():
+                if v.dtype.kind in TEXT_KINDS:
+                    d[k] = v.copy(data=np.asarray(v.values, dtype=object))
+            parts.append(d)
+        out[name] = xr.concat(parts, dim=dim, data_vars="all", coords="minimal", compat="override",
+                              join="outer", combine_attrs="override")
+    return out

@@ -93,8 +93,10 @@ class DaskExecutor:
     """
 
     def __init__(self, address=None, workers="auto", threads_per_worker=1, memory_limit="auto",
-                 upload=(), max_in_flight=0):
+                 upload=(), max_in_flight=0, dashboard=False, batch=None):
         self.address = address
+        self.dashboard = dashboard
+        self.batch = batch
         self.workers = workers
         self.threads = threads_per_worker
         self.memory_limit = memory_limit
@@ -110,7 +112,18 @@ class DaskExecutor:
         import dask
         from distributed import Client, LocalCluster
 
-        if self.address:
+        if self.batch:
+            from .hpc import make_cluster
+
+            system, options = self.batch
+            self.cluster = make_cluster(system, options, dashboard=self.dashboard)
+            jobs = int(options.get("jobs") or 1)
+            self.cluster.scale(jobs=jobs)
+            self.client = Client(self.cluster)
+            per_job = int(options.get("processes") or options["cores"])
+            self.n_workers = jobs * per_job
+            self.description = f"{system} batch jobs ({jobs} x {per_job} workers)"
+        elif self.address:
             self.client = Client(self.address, timeout="20s")
             info = self.client.scheduler_info()
             self.n_workers = max(1, len(info.get("workers", {})))
@@ -127,8 +140,14 @@ class DaskExecutor:
                              "distributed.scheduler.allowed-failures": 1,
                              "distributed.scheduler.worker-saturation": 1.0,
                              "distributed.worker.daemon": False})
+            # the scheduler's HTTP server (health and metrics routes) always listens; without a dashboard it
+            # takes any free port instead of dask's 8787 (a second run warned "Port 8787 is already in use")
+            # Ctrl-C reaches the workers too (the terminal signals the whole process group): they ignore it
+            # (grainhabit.quiet_worker) and the run shuts them down, instead of each printing its traceback
+            dask.config.set({"distributed.worker.preload": ["grainhabit.quiet_worker"]})
             self.cluster = LocalCluster(n_workers=n, threads_per_worker=self.threads, processes=True,
-                                        memory_limit=self.memory_limit, dashboard_address=None,
+                                        memory_limit=self.memory_limit,
+                                        dashboard_address=":8787" if self.dashboard else ":0",
                                         silence_logs=logging.ERROR)
             self.client = Client(self.cluster)
             self.n_workers = n
@@ -137,6 +156,8 @@ class DaskExecutor:
             self.client.upload_file(path)
         if self.address:
             self.advice = worker_advice(self.client.run(_worker_settings))
+        if self.dashboard and self.cluster is not None:
+            self.advice = list(self.advice) + [f"dask dashboard at {self.cluster.dashboard_link}"]
 
     def prepare(self, func: Callable, *args) -> list:
         """Run ``func(*args)`` once on every worker, all at once, before any frame is submitted.
@@ -262,8 +283,13 @@ def make_executor(execution: dict, upload=()) -> SerialExecutor | DaskExecutor:
     sch = execution.get("scheduler", "local")
     if sch == "serial":
         return SerialExecutor()
+    from .hpc import BATCH_SYSTEMS
+
+    batch = (sch, dict(execution.get("jobqueue") or {})) if sch in BATCH_SYSTEMS else None
     return DaskExecutor(
-        address=None if sch == "local" else sch,
+        address=None if (sch == "local" or batch) else sch,
+        dashboard=bool(execution.get("dashboard", False)),
+        batch=batch,
         workers=execution.get("workers", "auto"),
         threads_per_worker=execution.get("threads_per_worker", 1),
         memory_limit=execution.get("memory_limit", "auto"),

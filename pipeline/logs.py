@@ -97,3 +97,15 @@ class Progress:
         if self.tty and self.total:
             sys.stderr.write("\n")
             sys.stderr.flush()
+
+
+def to_file_only(log: logging.Logger, level: int, message: str) -> None:
+    """Log ``message`` to the run's log file (and a JSON console), not as a second line on a terminal.
+
+    Used for an interruption: the command line prints its own one line, the
+    log file records what happened.
+    """
+    record = log.makeRecord(log.name, level, __file__, 0, message, (), None)
+    for handler in log.handlers:
+        if isinstance(handler, logging.FileHandler) and record.levelno >= handler.level:
+            handler.handle(record)

@@ -37,13 +37,16 @@ def text_array(values) -> np.ndarray:
     return np.array([("" if v is None else str(v)) for v in values], dtype=np.dtypes.StringDType())
 
 
-def _prepare(ds: xr.Dataset) -> xr.Dataset:
-    """Convert fixed-width or object text variables to variable-length strings."""
+def as_stored(ds: xr.Dataset) -> xr.Dataset:
+    """``ds`` with fixed-width or object text variables as variable-length strings (as the store keeps them)."""
     out = ds.copy()
     for name, var in list(out.variables.items()):
         if var.dtype.kind in ("U", "S", "O"):
             out[name] = var.copy(data=text_array(np.asarray(var.values).ravel()).reshape(var.shape))
     return out
+
+
+_prepare = as_stored  # the name used before it was public
 
 
 def consolidate(store) -> None:
@@ -121,7 +124,7 @@ def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_at
     root.attrs.update(root_attrs or {})
     made = {folder}
     for name, ds in groups.items():
-        _prepare(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
+        as_stored(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
         _spill(held, folder, made, metadata_too=False)
     consolidate(store)
     _spill(held, folder, made, metadata_too=True)
@@ -218,9 +221,42 @@ def open_results(path: str | os.PathLike, load: bool = True) -> dict[str, xr.Dat
         raise ValueError(f"{path}: not a grainhabit results store ({exc.__class__.__name__})") from None
     out = {"/": xr.Dataset(attrs=dict(root.attrs))}
     for name in sorted(root.group_keys()):
-        ds = xr.open_zarr(path, group=name)
-        out[name] = ds.load() if load else ds
+        out[name] = open_group(path, name, load=load)
     return out
+
+
+def text_as_object(ds: xr.Dataset) -> xr.Dataset:
+    """``ds`` with its text variables as numpy object arrays of ``str``.
+
+    zarr 3 with numpy 2 reads variable-length strings as numpy
+    ``StringDType``, and xarray keeps that dtype for zarr stores; on such an
+    array ``.astype(str)`` raises (numpy cannot cast it to a fixed width it
+    does not know). Object arrays of ``str`` behave as text always has:
+    ``astype(str)``, ``==``, pandas, ``np.unique``.
+    """
+    changed = {}
+    for name, var in ds.variables.items():
+        if var.dtype.kind == "T":
+            changed[name] = var.copy(data=np.asarray(var.values, dtype=object))
+    return ds.assign(changed) if changed else ds
+
+
+def open_group(path: str | os.PathLike, group: str, load: bool = True) -> xr.Dataset:
+    """One group of a results store, text variables as object arrays of ``str`` (see :func:`text_as_object`).
+
+    Parameters
+    ----------
+    path : path-like
+        Results store.
+    group : str
+        ``grains``, ``frames``, ``summary``, ...
+    load : bool
+        Load into memory (default); otherwise lazy, text converted when loaded.
+    """
+    ds = xr.open_zarr(str(path), group=group)
+    if not load:
+        return ds
+    return text_as_object(ds.load())
 
 
 def root_attrs(path: str | os.PathLike) -> dict:

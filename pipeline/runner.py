@@ -15,32 +15,36 @@ The order of work for ``grainhabit run``:
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import importlib.metadata
 import json
 import logging
 import os
 import platform
+import signal
 import socket
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import xarray as xr
 
 from . import __version__
-from .consolidate import build_datasets
 from .executors import WorkerDied, make_executor
 from .frame import FrameRef
 from .lock import RunLock, describe
 from .logs import Progress
 from .manager import Host
 from .observe import RunObserver
-from .results import recover, root_attrs, write_results
-from .staging import clean_temporaries, frame_key, is_staged, read_staged, staging_dir, write_staged
+from .inputs import find_files
+from .listing import ListingIndex, index_path, listing_key, vanished_roots
+from .night import build_night, commit_night, merge_summaries, plan_night, touched_part
+from .results import recover, root_attrs
+from .staging import clean_temporaries, frame_key, is_staged, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
-from .workflow import Plan, expand, find_inputs
+from .workflow import Plan, expand, find_inputs, template_values
 
 log = logging.getLogger("grainhabit")
 
@@ -112,13 +116,28 @@ def _read_sidecar(path: str | None) -> dict[str, dict]:
     return {r["file"]: {k: v for k, v in r.items() if k != "file"} for r in rows}
 
 
-def list_frames(plan: Plan, host: Host, processing_key: str) -> tuple[list[ListedFrame], list[tuple[str, str]]]:
+def reader_versions(host: Host) -> list[str]:
+    """``name=version`` of every plugin that reads frames (part of the listing and processing keys)."""
+    return sorted(f"{r.name}={r.version}" for r in host.records.values()
+                  if "grainhabit_read_frame" in host.hooks_of(host.pm.get_plugin(r.name)))
+
+
+def list_frames(plan: Plan, host: Host, processing_key: str,
+                index: ListingIndex | None = None) -> tuple[list[ListedFrame], list[tuple[str, str]]]:
     """List the frames of the workflow's inputs.
+
+    Parameters
+    ----------
+    plan, host, processing_key
+        The validated workflow, its plugins and :meth:`Plan.processing_key`.
+    index : ListingIndex, optional
+        Remembered listings: a file whose size, mtime and inode are those
+        remembered is not opened again; every file listed is recorded in it.
 
     Returns
     -------
     frames : list of ListedFrame
-        In listing order (sorted paths, then pages).
+        In listing order (resolved paths sorted per input pattern, then pages).
     problems : list of (path, reason)
         Inputs that could not be listed (patterns that matched nothing,
         unreadable files); they become failed frames.
@@ -126,15 +145,33 @@ def list_frames(plan: Plan, host: Host, processing_key: str) -> tuple[list[Liste
     inp = plan.config["input"]
     in_folders: set = set()
     files, unmatched = find_inputs(plan, in_folders)
+    roots = plan.found.root_of if plan.found is not None else {}
     problems = [(p, "no file matches this input pattern") for p in unmatched]
     sidecar = _read_sidecar(inp.get("metadata_csv"))
     frames = []
     for path in files:
-        try:
-            refs = host.first_answer("grainhabit_list_frames", path=path, options=inp)
-        except Exception as exc:
-            problems.append((path, f"{exc.__class__.__name__}: {exc}"))
-            continue
+        root = inp["paths"][roots[path]] if path in roots else ""
+        st = None
+        refs = None
+        if index is not None:
+            try:
+                st = os.stat(path)
+            except OSError:
+                st = None
+            refs = index.lookup(path, st) if st is not None else None
+        if refs is None:
+            try:
+                refs = host.first_answer("grainhabit_list_frames", path=path, options=inp)
+            except Exception as exc:
+                problems.append((path, f"{exc.__class__.__name__}: {exc}"))
+                if index is not None:
+                    index.remember(path, None, None, root)
+                continue
+            if index is not None:
+                index.misses += 1
+                index.remember(path, st, refs, root)
+        elif index is not None:
+            index.remember(path, st, refs, root)
         if refs is None:
             if path in in_folders:
                 log.debug("input %s: no reader recognises this file; passed over", path)
@@ -143,9 +180,10 @@ def list_frames(plan: Plan, host: Host, processing_key: str) -> tuple[list[Liste
             continue
         for ref in refs:
             src_path = ref.source.split("#")[0] if "#" in ref.source else ref.source
-            sample = expand(inp["sample"], src_path, ref.page)
-            fields = {k: expand(t, src_path, ref.page) for k, t in inp["fields"].items()}
-            extra = sidecar.get(Path(src_path).name) or sidecar.get(src_path) or {}
+            values = template_values(src_path, ref.page)
+            sample = inp["sample"].format(**values)
+            fields = {k: t.format(**values) for k, t in inp["fields"].items()}
+            extra = (sidecar.get(values["name"]) or sidecar.get(src_path) or {}) if sidecar else {}
             fields.update(extra)
             key = frame_key(ref.content_hash, ref.source, sample, processing_key)
             frames.append(ListedFrame(ref, sample, fields, key))
@@ -187,8 +225,27 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         if clean_temporaries(stage):
             log.info("removed half-written staged files left by an interrupted run")
         pkey = plan.processing_key(host)
+        inp = plan.config["input"]
+        index = None
+        if not inp["archive"]:
+            index = ListingIndex(index_path(results), listing_key(reader_versions(host), inp))
+            if plan.found is None:
+                plan.found = find_files(inp["paths"])
+            vanished = vanished_roots(index, inp["paths"], plan.found.per_root)
+            if vanished:
+                for i, before in vanished:
+                    log.error("input.paths[%d] (%s): none of the %d files found there by earlier runs is found "
+                              "now (is the share mounted?); the results store is left untouched", i,
+                              inp["paths"][i], before)
+                outcome.exit_code = 2
+                outcome.failures = [(inp["paths"][i], "input root vanished") for i, _ in vanished]
+                outcome.seconds = time.monotonic() - t_start
+                return outcome
         with obs.phase("list"):
-            frames, problems = list_frames(plan, host, pkey)
+            frames, problems = list_frames(plan, host, pkey, index)
+        if index is not None and (index.hits or index.misses):
+            log.info("%d input files unchanged since the last run (not opened), %d listed by the readers",
+                     index.hits, index.misses)
         log.info("workflow %s: %d frames listed from %s", plan.name, len(frames),
                  plan.config["input"]["archive"] or ", ".join(plan.config["input"]["paths"]))
         for path, reason in problems:
@@ -200,25 +257,27 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             log.info("%d frames already staged for this workflow: reused (use --fresh to redo)",
                      outcome.frames_reused)
         transient: dict[str, dict] = {}
+        processed: set = set()
         steps = tuple((s.name, s.stage, s.params) for s in plan.frame_steps)
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]))
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
             executor = obs.executor(make_executor(plan.config["execution"], upload=upload))
-            executor.start()
-            log.info("processing %d frames on %s", len(todo), executor.description)
-            for line in executor.advice:
-                log.warning("%s", line)
-            ready = executor.prepare(prepare_worker, job)
-            for res in ready:
-                for err in res.get("errors", ()):
-                    log.warning("preparing worker %s: %s", res.get("pid"), err)
-            took = [r["seconds"] for r in ready if not r.get("errors")]
-            log.info("%d of %d workers ready (imports and plugin tables: %.1f s at most)", len(took), len(ready),
-                     max(took, default=0.0))
             progress = Progress(len(todo), log, tty=tty)
             by_key = {}
             try:
+                executor.start()
+                log.info("processing %d frames on %s", len(todo), executor.description)
+                for line in executor.advice:
+                    log.warning("%s", line)
+                ready = executor.prepare(prepare_worker, job)
+                for res in ready:
+                    for err in res.get("errors", ()):
+                        log.warning("preparing worker %s: %s", res.get("pid"), err)
+                took = [r["seconds"] for r in ready if not r.get("errors")]
+                log.info("%d of %d workers ready (imports and plugin tables: %.1f s at most)", len(took),
+                         len(ready), max(took, default=0.0))
+                progress.t0 = time.monotonic()
                 items = []
                 for f in todo:
                     by_key.setdefault(f.key, f)
@@ -226,6 +285,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                     items.append((key, (f.ref, f.sample, job)))
                 for key, res in executor.map_unordered(process_frame, items):
                     f = by_key[key]
+                    processed.add(key)
                     if isinstance(res, Exception):
                         reason = str(res) if isinstance(res, WorkerDied) else f"task: {res.__class__.__name__}: {res}"
                         transient[key] = _failed_result(f.ref.source, f.sample, reason)
@@ -246,8 +306,11 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 executor.close()
 
         with obs.phase("consolidate"):
-            groups = _consolidate(frames, problems, transient, results, stage, plan, host)
-        grains, frames_ds = groups["grains"], groups["frames"]
+            night = plan_night(results, frames, problems, transient, stage, processed,
+                               plan.config["input"]["on_missing"], _failed_result, fresh=fresh,
+                               sample_of=lambda path: _problem_sample(plan, path))
+            built = build_night(results, night, extra_columns=_declared_columns(host, plan))
+        grains, frames_ds = built["grains"], built["frames"]
         ok_frames = [i for i, s in enumerate(frames_ds["status"].values) if str(s) == "ok"]
         outcome.frames_ok = len(ok_frames)
         outcome.frames_failed = int(frames_ds.sizes.get("frame", 0)) - outcome.frames_ok
@@ -257,11 +320,25 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                                                                   frames_ds["status"].values) if str(st) != "ok"]
         summary: dict = {}
         survey_errors: list[str] = []
+        part = touched_part(results, night, built)  # append nights: only the samples that got frames
+        part_summary: dict = {}
         for step in [s for s in plan.survey_steps if s.stage == "summarise"]:
             try:
                 with obs.phase("summarise"):
-                    out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary,
-                                         params=step.params)
+                    out = None
+                    if part is not None:
+                        got = host.call_step(step.name, grains=part.grains, frames=part.frames,
+                                             summary=part_summary, params=step.params)
+                        out = merge_summaries(results, got, part.samples) if isinstance(got, dict) else None
+                        if out is None:
+                            part = None
+                            log.info("summaries computed over all samples (step %s gives groups that cannot be "
+                                     "merged per sample)", step.name)
+                        else:
+                            part_summary.update(got)
+                    if out is None:
+                        out = host.call_step(step.name, grains=grains, frames=frames_ds, summary=summary,
+                                             params=step.params)
                 if not isinstance(out, dict) or "summary" not in out:
                     raise TypeError(f"returned {type(out).__name__}; expected a dict with a 'summary' dataset")
                 summary.update(out)
@@ -269,16 +346,18 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 survey_errors.append(f"{step.name}: {exc.__class__.__name__}: {exc}")
                 log.error("summarise step %s", survey_errors[-1])
                 log.debug("traceback of %s", step.name, exc_info=True)
-        groups.update(summary)
-        if plan.specs is not None and "summary" in groups:
+        if plan.specs is not None and "summary" in summary:
             try:
-                groups.update(_judge(plan, groups))
+                summary.update(_judge(plan, {"summary": summary["summary"], "grains": grains, "frames": frames_ds}))
             except Exception as exc:
                 survey_errors.append(f"verdicts: {exc.__class__.__name__}: {exc}")
                 log.error("%s", survey_errors[-1])
                 log.debug("traceback of the verdicts", exc_info=True)
-        outcome.verdict_lines = _verdict_lines(groups)
+        outcome.verdict_lines = _verdict_lines(summary)
         outcome.failures.extend(("(survey)", e) for e in survey_errors)
+        if part is not None:
+            log.info("summaries recomputed for the %d samples that got frames tonight (%s); the others kept",
+                     len(part.samples), ", ".join(part.samples[:5]) + (", ..." if len(part.samples) > 5 else ""))
 
         previous_runs = _previous_runs(results)
         outcome.seconds = time.monotonic() - t_start
@@ -295,9 +374,13 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                  "data_note": plan.config.get("note") or "",
                  "spec_file": plan.config.get("specs") or "", "spec_text": _spec_text(plan),
                  "conventions": "origin at the top-left corner of the top-left pixel; x along columns, y along rows; nm"}
-        with obs.phase("results_write"):
-            write_results(results, groups, attrs)
-        log.info("results written to %s", results)
+        with obs.phase("results_write"), interrupts_deferred():
+            how = commit_night(results, night, built, summary, attrs, extra_columns=_declared_columns(host, plan))
+            if index is not None:
+                index.save()
+        c = night.counts
+        log.info("results %s %s (%d frames added, %d replaced, %d removed, %d unchanged)", how, results,
+                 c.get("added", 0), c.get("replaced", 0), c.get("removed", 0), c.get("unchanged", 0))
 
         report_dir = plan.config["output"]["report"]
         if report_dir:
@@ -336,6 +419,11 @@ def _verdict_lines(groups: dict) -> list[str]:
     return verdict_lines(groups["summary"], groups.get("verdicts"))
 
 
+def _problem_sample(plan: Plan, path: str) -> str:
+    """Sample of an input that could not be listed: the one its path names; none for an unmatched pattern."""
+    return expand(plan.config["input"]["sample"], path, 0) if os.path.isfile(path) else ""
+
+
 def _spec_text(plan: Plan) -> str:
     try:
         return Path(plan.config["specs"]).read_text(encoding="utf-8") if plan.config.get("specs") else ""
@@ -343,25 +431,27 @@ def _spec_text(plan: Plan) -> str:
         return ""
 
 
-def _consolidate(frames, problems, transient, results, stage, plan, host) -> dict:
-    """Datasets of the input problems, every listed frame in order, then kept frames of missing files."""
-    entries = []
-    for path, reason in problems:
-        # an unreadable file still belongs to the sample its path names; a pattern that matched nothing has none
-        sample = expand(plan.config["input"]["sample"], path, 0) if os.path.isfile(path) else ""
-        entries.append(({"source": path, "sample": sample, "content_hash": "", "stage_key": ""},
-                        _failed_result(path, sample, reason)))
-    listed_sources = set()
-    for f in frames:
-        listed_sources.add(f.ref.source)
-        staged = transient.get(f.key)
-        if staged is None:
-            staged = read_staged(stage / f"{f.key}.npz")
-        info = {"source": f.ref.source, "sample": f.sample, "content_hash": f.ref.content_hash,
-                "stage_key": f.key, **f.fields}
-        entries.append((info, staged))
-    entries.extend(_missing_frames(results, listed_sources, stage, plan.config["input"]["on_missing"]))
-    return build_datasets(entries, extra_columns=_declared_columns(host, plan))
+@contextlib.contextmanager
+def interrupts_deferred():
+    """Hold Ctrl-C and SIGTERM back while the results store is written; raise KeyboardInterrupt after it.
+
+    Writing the store takes a second or so; an interruption in the middle
+    would leave zarr's I/O tasks half done (the store itself stays
+    consistent, see :mod:`grainhabit.append`), so it waits for the commit.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught = []
+    previous = {sig: signal.signal(sig, lambda signum, frame: caught.append(signum))
+                for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+    if caught:
+        raise KeyboardInterrupt
 
 
 def _previous_runs(results: str) -> list:
@@ -370,42 +460,6 @@ def _previous_runs(results: str) -> list:
         return runs if isinstance(runs, list) else []
     except Exception:
         return []
-
-
-#: Text variables of the frames group that come from the frame's own record, not from the listing.
-_RECORD_TEXT = ("status", "error", "calibration", "notes", "polarity")
-
-
-def _missing_frames(results: str, listed: set, stage: Path, on_missing: str) -> list:
-    """Frames of the previous results whose files are no longer found."""
-    if not os.path.exists(results):
-        return []
-    try:
-        prev = xr.open_zarr(results, group="frames").load()
-    except Exception:
-        return []
-    out = []
-    gone = [i for i, s in enumerate(prev["source"].values) if str(s) not in listed
-            and "stage_key" in prev and str(prev["stage_key"].values[i])]
-    if not gone:
-        return []
-    if on_missing == "drop":
-        log.warning("%d frames of earlier runs are no longer found in the inputs: dropped (input.on_missing=drop)",
-                    len(gone))
-        return []
-    kept = 0
-    for i in gone:
-        key = str(prev["stage_key"].values[i])
-        p = stage / f"{key}.npz"
-        if not p.exists():
-            continue
-        # the listing's view of the frame: identity plus the workflow's per-frame text fields
-        info = {k: str(prev[k].values[i]) for k in prev.data_vars
-                if prev[k].dtype.kind in ("U", "O", "T") and k not in _RECORD_TEXT}
-        out.append((info, read_staged(p)))
-        kept += 1
-    log.warning("%d frames of earlier runs are no longer found in the inputs: kept (input.on_missing=keep)", kept)
-    return out
 
 
 def _declared_columns(host: Host, plan: Plan):

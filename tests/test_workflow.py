@@ -91,7 +91,9 @@ def test_cli_bad_workflow_exit_2_nothing_written(tmp_path):
     proc = run_cli("run", wf)
     assert proc.returncode == 2
     lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
-    assert len(lines) == 1 and "steps[0].params.min_ecd_nm" in lines[0] and "Traceback" not in proc.stderr
+    # every problem, one line each: the bad parameter and the inputs that match nothing (no data/ here)
+    assert len(lines) == 2 and "steps[0].params.min_ecd_nm" in lines[0] and "Traceback" not in proc.stderr
+    assert "input.paths: no file matches" in lines[1]
     assert not (tmp_path / "out").exists()
 
 
