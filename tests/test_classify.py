@@ -10,80 +10,12 @@ from skimage.draw import ellipse
 
 from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit.vocabulary import HABITS
 from grainhabit.plugins.measure import outline as ol
 
+from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
+
 # --------------------------------------------------------------- drawing helpers
-from skimage.draw import polygon
-
-from grainhabit.frame import FrameData
-
-from grainhabit.frame import FrameData
-
-
-def body_and_rotation(alpha, face, rotation_deg):
-    return cr.wulff_polyhedron(alpha), cr.in_plane_rotation(rotation_deg) @ cr.resting_rotation(face)
-
-
-def draw_frame(body, rot, ecd_px=70.0, size=128, contrast="bright", facets=True, mu_per_ecd=4.0,
-               noise=0.0, seed=0):
-    """Frame with one grain: SEM facet shading or TEM thickness contrast.
-
-    ``facets=False`` draws a uniform interior (a flat plate look) in either contrast;
-    ``mu_per_ecd`` is the attenuation per grain ECD of thickness (TEM).
-    """
-    k = ecd_px * np.sqrt((np.pi / 4) / cr.projected_area(body, rot))
-    c = size / 2.0
-    outline = cr.project(body, rot) * k
-    rows, cols = c - outline[:, 1], c + outline[:, 0]          # lab y up -> rows down
-    rr, cc = polygon(rows - 0.5, cols - 0.5, (size, size))     # pixel centres at index + 0.5
-    labels = np.zeros((size, size), np.int32)
-    labels[rr, cc] = 1
-    if contrast == "bright":
-        img = np.full((size, size), 0.1)
-        if facets:
-            for f in cr.visible_faces(body, rot):
-                p = f.polygon * k
-                fr, fc = polygon(c - p[:, 1] - 0.5, c + p[:, 0] - 0.5, (size, size))
-                n = f.normal
-                img[fr, fc] = 0.4 + 0.35 * (1 - n[2]) + 0.12 * n[0] - 0.08 * n[1]
-        else:
-            img[rr, cc] = 0.45
-    else:
-        x = (cc + 0.5 - c) / k
-        y = (c - (rr + 0.5)) / k
-        t = cr.thickness_map(body, rot, x, y) * k / ecd_px     # thickness in ECD units
-        if not facets:
-            t = np.full_like(t, np.mean(t))
-        img = np.ones((size, size))
-        img[rr, cc] = np.exp(-mu_per_ecd * t)
-    if noise:
-        img = img + np.random.default_rng(seed).normal(0, noise, img.shape)
-    raw = img.astype(np.float32)
-    image = raw if contrast == "bright" else (1.0 - raw)
-    return FrameData(source="drawn", sample="invented", raw=raw, pixel_size_nm=10.0,
-                     image=image.astype(np.float32), polarity=contrast, labels=labels,
-                     grains={"label": np.array([1]), "edge_cut": np.array([False]),
-                             "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
-
-
-def draw_polygon_frame(poly_xy, size=128, contrast="bright", level=0.45, transmission=0.6):
-    """Frame with one uniform grain of the given outline (lab axes, pixels about the centre)."""
-    c = size / 2.0
-    rr, cc = polygon(c - poly_xy[:, 1] - 0.5, c + poly_xy[:, 0] - 0.5, (size, size))
-    labels = np.zeros((size, size), np.int32)
-    labels[rr, cc] = 1
-    if contrast == "bright":
-        img = np.full((size, size), 0.1)
-        img[rr, cc] = level
-        image = img
-    else:
-        img = np.ones((size, size))
-        img[rr, cc] = transmission
-        image = 1.0 - img
-    return FrameData(source="drawn", sample="invented", raw=img.astype(np.float32), pixel_size_nm=10.0,
-                     image=image.astype(np.float32), polarity=contrast, labels=labels,
-                     grains={"label": np.array([1]), "edge_cut": np.array([False]),
-                             "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
 
 
 def habit_of(frame):
@@ -102,22 +34,23 @@ def test_square_with_shaded_corner_facets_is_cube():
     # truncated cube (alpha = 1.3 on {100}): square outline, four small {111}
     # corner facets shaded differently from the top face (Wulff construction)
     body, rot = body_and_rotation(1.3, "100", 20.0)
-    habit, cols = habit_of(draw_frame(body, rot, contrast="bright"))
+    habit, cols = habit_of(draw_crystal_frame(body, rot, contrast="bright"))
     assert habit == "cube"
     assert cols["facet_chi2"][0] > cl.STEP.defaults()["facet_chi2_min"]
 
 
-def test_opaque_uniform_square_is_cube_but_pale_thin_square_plate_is_not():
-    # TEM: a cube is thick (nearly opaque), a thin square plate of the same
-    # outline is semi-transparent; both have a uniform interior
+@pytest.mark.parametrize("mu_per_ecd", [4.0, 0.4])
+def test_uniform_square_is_cube_in_either_contrast(mu_per_ecd):
+    # a square outline with a flat interior is a cube seen on its top face
+    # (Wulff construction: the {100} outline is square for alpha <= 1.5),
+    # bright on dark (SEM) or dark on bright (TEM), opaque or semi-transparent
     body, rot = body_and_rotation(1.0, "100", 10.0)
-    thick = draw_frame(body, rot, contrast="dark", mu_per_ecd=4.0)
-    habit, cols = habit_of(thick)
-    assert habit == "cube"
-    thin = draw_frame(body, rot, contrast="dark", mu_per_ecd=0.4)
-    habit, cols = habit_of(thin)
-    assert habit != "cube"
-    assert cols["interior_transmission"][0] > 0.5
+    for contrast in ("bright", "dark"):
+        habit, cols = habit_of(draw_crystal_frame(body, rot, contrast=contrast, mu_per_ecd=mu_per_ecd))
+        assert habit == "cube"
+        # the outline only bounds alpha: NaN, with the bound carried by the range
+        assert np.isnan(cols["fit_alpha"][0])
+        assert cols["fit_alpha_lo"][0] == pytest.approx(0.5) and 1.0 <= cols["fit_alpha_hi"][0] <= 1.6
 
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
@@ -125,7 +58,7 @@ def test_hexagon_with_inclined_facets_is_octahedron(contrast):
     # octahedron on a {111} face: hexagonal outline; SEM shows the top
     # triangle and three inclined facets, TEM a thickness peaking in the middle
     body, rot = body_and_rotation(3.0, "111", 5.0)
-    habit, cols = habit_of(draw_frame(body, rot, contrast=contrast))
+    habit, cols = habit_of(draw_crystal_frame(body, rot, contrast=contrast))
     assert habit == "octahedron"
 
 
@@ -133,7 +66,7 @@ def test_hexagon_with_inclined_facets_is_octahedron(contrast):
 def test_uniform_hexagon_is_tabular_hexagon(contrast):
     # the same hexagonal outline with a flat, uniform interior: a plate
     body, rot = body_and_rotation(3.0, "111", 5.0)
-    habit, _ = habit_of(draw_frame(body, rot, contrast=contrast, facets=False, mu_per_ecd=0.5))
+    habit, _ = habit_of(draw_crystal_frame(body, rot, contrast=contrast, facets=False, mu_per_ecd=0.5))
     assert habit == "tabular_hexagon"
 
 
@@ -207,9 +140,9 @@ def test_hull_shape_square_feret_and_solidity():
 
 def test_hook_returns_columns_for_every_grain():
     body, rot = body_and_rotation(2.0, "100", 0.0)
-    frame = draw_frame(body, rot)
+    frame = draw_crystal_frame(body, rot)
     out = cl.grainhabit_classify(frame, cl.STEP.resolve({}))
-    assert set(cl.HABITS) >= set(out.grains["habit"])
+    assert set(HABITS) >= set(out.grains["habit"])
     assert 0.0 <= out.grains["habit_score"][0] <= 1.0
     for c in cl.STEP.outputs:
         assert c.name in out.grains
@@ -227,22 +160,26 @@ def test_outline_shortcut_gives_the_same_habit_as_the_full_fit(monkeypatch):
     rot = cr.in_plane_rotation(12.0) @ cr.resting_rotation("111")
     rect = np.array([[-60, -12], [60, -12], [60, 12], [-60, 12]], float)
     body, brot = body_and_rotation(3.0, "111", 5.0)
+    cube, crot = body_and_rotation(1.0, "100", 21.0)
     frames = [draw_polygon_frame(cr.project(plate, rot) * 70),
               draw_polygon_frame(cr.project(cr.tabular_prism(0.05, 0.1), rot) * 70),
               draw_polygon_frame(rect, size=160),
-              draw_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5)]
-    searches = []
-    real = cl.gr.fit_alpha_cached
+              draw_crystal_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5),
+              draw_crystal_frame(cube, crot, contrast="dark", noise=0.02),
+              draw_crystal_frame(cube, crot, contrast="bright", noise=0.02)]
+    placed = []
+    real = cl.en.fit_alpha
 
-    def spy(*a, **kw):
-        searches.append(kw.get("search"))
-        return real(*a, **kw)
+    def spy(contour, interior=None, **kw):
+        placed.append(interior is not None and kw.get("search") != "quick")
+        return real(contour, interior, **kw)
 
-    monkeypatch.setattr(cl.gr, "fit_alpha_cached", spy)
+    monkeypatch.setattr(cl.en, "fit_alpha", spy)
     short = [cl.classify_frame(f) for f in frames]
-    assert "coarse" not in searches[:3]          # the plate and rod outlines decided alone
+    assert not any(placed[:3])                      # plate and rod outlines decided alone
     monkeypatch.setattr(cl, "outline_decides", lambda *a, **k: False)
+    monkeypatch.setattr(cl.en, "outline_settles", lambda *a, **k: False)
     full = [cl.classify_frame(f) for f in frames]
     assert [c["habit"][0] for c in short] == [c["habit"][0] for c in full]
     assert [c["habit"][0] for c in short] == ["tabular_hexagon", "tabular_triangle", "rod",
-                                              "tabular_hexagon"]
+                                              "tabular_hexagon", "cube", "cube"]
