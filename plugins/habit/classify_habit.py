@@ -39,11 +39,13 @@ Decision
 5. A hexagonal outline with a featureless interior that the plate family
    fits is ``tabular_hexagon`` (an octahedron on {111} shows inclined facets
    or a thickness relief in either contrast).
-6. Everything else is polyhedral and named by the class of lowest score
-   (:func:`engine.polyhedral_class`; thresholds in :mod:`vocabulary`):
-   ``cube`` alpha <= 1.5, ``cuboctahedron`` 1.5 < alpha < 3, ``octahedron``
-   alpha >= 3. The same rule holds in both contrasts: a flat square is a
-   cube whether it is bright on dark or dark on bright.
+6. Everything else is polyhedral and named by alpha (thresholds in
+   :mod:`vocabulary`): ``cube`` alpha <= 1.5, ``cuboctahedron``
+   1.5 < alpha < 3, ``octahedron`` alpha >= 3; a cuboctahedron needs
+   evidence of its truncation, i.e. neither end member fits within
+   ``tolerance`` (:func:`engine.polyhedral_class`). The same rule holds in
+   both contrasts: a flat square is a cube whether it is bright on dark or
+   dark on bright.
 
 The full interior fit is run only where steps 1-4 do not decide from the
 outline (the habit is then provably the same, :func:`outline_decides`).
@@ -325,7 +327,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0):
             and plate_gain > -p["plate_margin"] and fit.face == "111":
         # a featureless hexagon: a flat plate (an octahedron shows its facets)
         return "tabular_hexagon", flat_score, cols, fit
-    habit, share = en.polyhedral_class(fit, lib)
+    habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     return habit, share, cols, fit
 
 

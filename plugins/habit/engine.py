@@ -1535,25 +1535,46 @@ def class_probabilities(fit: AlphaFit, library: ModelLibrary) -> np.ndarray:
     return out / out.sum()
 
 
-def polyhedral_class(fit: AlphaFit, library: ModelLibrary) -> tuple[str, float]:
-    """Name a Wulff fit by alpha: the most probable class and its probability.
+def polyhedral_class(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0) -> tuple[str, float]:
+    """Name a Wulff fit by alpha: the simplest class the evidence allows.
 
     Parameters
     ----------
     fit : AlphaFit
     library : ModelLibrary
+    tolerance : float
+        Score difference within which models cannot be told apart (the
+        same that bounds alpha_lo..alpha_hi).
 
     Returns
     -------
     habit : str
-        'cube', 'cuboctahedron' or 'octahedron' (thresholds in
-        :mod:`vocabulary`), the largest of :func:`class_probabilities`.
-    probability : float
-        Its posterior probability.
+        'cube', 'cuboctahedron' or 'octahedron' (thresholds in :mod:`vocabulary`).
+    score : float
+        exp(-S_c / 2) / sum_k exp(-S_k / 2) of the chosen class, S_k the
+        class scores of :func:`class_scores`.
+
+    Notes
+    -----
+    The cube and the octahedron are end members: every alpha beyond their
+    limit gives the same body, with no truncation to measure. A
+    cuboctahedron has a truncation, and the name needs evidence of it: when
+    the cube class or the octahedron class fits within ``tolerance`` of the
+    best (the range alpha_lo..alpha_hi reaches it), the grain is named by
+    the better of the two; otherwise by the class of the best fit. This is a
+    likelihood-ratio test of the end member against the truncated body, at
+    the level ``tolerance`` stands for (4 chi-square units, about 95 % for
+    one parameter). Blur rounds an octahedron's corners, which a barely
+    truncated model may then fit a little better; that no longer turns an
+    octahedron into a cuboctahedron.
     """
-    pr = class_probabilities(fit, library)
-    k = int(np.argmax(pr))
-    return ("cube", "cuboctahedron", "octahedron")[k], float(pr[k])
+    s = class_scores(fit, library)
+    k = int(np.argmin(s))
+    ends = np.array([s[0], np.inf, s[2]])
+    if k == 1 and ends.min() <= s[1] + tolerance:
+        k = int(np.argmin(ends))
+    w = np.exp(-0.5 * (s - s.min()))
+    return ("cube", "cuboctahedron", "octahedron")[k], float(w[k] / w.sum())
 
 
 def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0) -> bool:
