@@ -47,6 +47,12 @@ Decision
    both contrasts: a flat square is a cube whether it is bright on dark or
    dark on bright.
 
+A grain cut from a touching neighbour (``split``) is judged by the outline
+its true edges imply: the smallest centrally symmetric convex outline that
+holds it (:func:`engine.complete_by_symmetry`; every Wulff projection here
+is centrally symmetric), so a cut cube stays a cube. Its area and ECD stay
+those of the visible part (measure-grains).
+
 The full interior fit is run only where steps 1-4 do not decide from the
 outline (the habit is then provably the same, :func:`outline_decides`).
 
@@ -313,7 +319,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0):
     if disc_gap < p["tolerance"] and not faceted:
         cols["outline_class"] = "disc"
         cols["habit_note"] = "unresolved: the outline fits a disc as well as any model, the interior shows no facets"
-        return "irregular", 0.5 * (1.0 - _margin(disc_gap, p["tolerance"], 1.0)), cols, fit
+        return "irregular", 0.25 * (1.0 - _margin(disc_gap, p["tolerance"], 1.0)), cols, fit
     if best == 2 and feret_ratio < p["rod_feret_ratio"]:
         return "rod", 1.0 - _margin(feret_ratio, p["rod_feret_ratio"], 0.05), cols, fit
     plate_gain = ratios[0] ** 2 - ratios[1] ** 2       # how much better the plate outline fits
@@ -366,13 +372,21 @@ def classify_frame(frame, params=None) -> dict:
     contours = frame_contours(frame)
     signal, mode = interior_signal(frame)
     labels = np.asarray(frame.labels)
+    split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
     for i in range(n):
         lab = int(frame.grains["label"][i])
-        contour, interior = en.grain_evidence(labels, signal, mode, contours[i], lab, p["erode_px"])
+        outline_px = contours[i]
+        if split[i] and len(outline_px) >= 8:
+            # cut from a touching neighbour: judge the outline its true edges imply
+            outline_px = en.complete_by_symmetry(outline_px)
+        contour, interior = en.grain_evidence(labels, signal, mode, outline_px, lab, p["erode_px"])
         if contour is None or len(contour) < 8:
             cols["habit_note"][i] = "outline too small"
             continue
         habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p)
+        if split[i]:
+            ev["habit_note"] = "; ".join(x for x in (ev["habit_note"], "split grain: outline completed by "
+                                                     "central symmetry") if x)
         cols["habit"][i], cols["habit_score"][i] = habit, score
         for k, v in ev.items():
             cols[k][i] = v

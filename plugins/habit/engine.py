@@ -1603,6 +1603,48 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
     return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
 
 
+def complete_by_symmetry(contour_xy) -> np.ndarray:
+    """The smallest centrally symmetric convex outline that contains a (cut) outline.
+
+    Parameters
+    ----------
+    contour_xy : array_like, shape (k, 2)
+        Closed outline of a grain that was cut from a touching neighbour.
+
+    Returns
+    -------
+    ndarray, shape (q, 2)
+        Convex hull of the outline and its point reflection through the
+        centre c that makes that hull smallest, counter-clockwise.
+
+    Notes
+    -----
+    Every Wulff projection fitted here is centrally symmetric. A body cut
+    by a straight line keeps at least half of its outline when the cut
+    removes less than half of it, and the union of what is left with its
+    reflection through the body's centre is then the whole outline again;
+    through any other centre the hull is larger. The centre is found by
+    ``scipy.optimize.minimize`` (Nelder-Mead) on the hull area, started at
+    the centroid of the cut outline.
+    """
+    from scipy.optimize import minimize
+    from scipy.spatial import ConvexHull
+
+    c = _check_poly(contour_xy, "contour_xy")
+    pts = c[ConvexHull(c).vertices]
+    cen, area = polygon_centroid(pts)
+    scale = math.sqrt(area)
+
+    def hull_area(q):
+        return ConvexHull(np.vstack([pts, 2.0 * q - pts])).volume
+
+    res = minimize(hull_area, cen, method="Nelder-Mead",
+                   options={"xatol": 1e-3 * scale, "fatol": 1e-6 * area, "initial_simplex":
+                            np.array([cen, cen + [0.1 * scale, 0.0], cen + [0.0, 0.1 * scale]])})
+    both = np.vstack([pts, 2.0 * res.x - pts])
+    return both[ConvexHull(both).vertices]
+
+
 # ---------------------------------------------------------------- grain evidence
 
 def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
