@@ -49,8 +49,9 @@ Decision
 
 A grain cut from a touching neighbour (``split``) is judged by the outline
 its true edges imply: the smallest centrally symmetric convex outline that
-holds it (:func:`engine.complete_by_symmetry`; every Wulff projection here
-is centrally symmetric), so a cut cube stays a cube. Its area and ECD stay
+holds the outline away from the cut (:func:`free_edge`,
+:func:`engine.complete_by_symmetry`; every Wulff projection along [100] and
+[111] is centrally symmetric), so a cut cube stays a cube. Its area and ECD stay
 those of the visible part (measure-grains).
 
 The full interior fit is run only where steps 1-4 do not decide from the
@@ -358,6 +359,36 @@ def frame_contours(frame) -> list:
     return [allc[lab - 1] if 0 < lab <= len(allc) else np.empty((0, 2)) for lab in labs]
 
 
+def free_edge(labels, contour_px, label, reach_px=2):
+    """Which outline vertices lie on the grain's true edge, not along a cut to a neighbour.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+    contour_px : ndarray, shape (k, 2)
+        Outline in pixel coordinates (x = col + 0.5 at pixel centres).
+    label : int
+    reach_px : int
+        A vertex within this many pixels of another grain is on the cut.
+
+    Returns
+    -------
+    ndarray of bool, shape (k,)
+    """
+    from scipy import ndimage as ndi
+
+    c = np.asarray(contour_px, float)
+    r0 = max(int(np.floor(c[:, 1].min())) - reach_px - 1, 0)
+    c0 = max(int(np.floor(c[:, 0].min())) - reach_px - 1, 0)
+    r1 = min(int(np.ceil(c[:, 1].max())) + reach_px + 2, labels.shape[0])
+    c1 = min(int(np.ceil(c[:, 0].max())) + reach_px + 2, labels.shape[1])
+    crop = labels[r0:r1, c0:c1]
+    near = ndi.binary_dilation((crop != label) & (crop != 0), iterations=reach_px)
+    rr = np.clip(np.floor(c[:, 1]).astype(int) - r0, 0, crop.shape[0] - 1)
+    cc = np.clip(np.floor(c[:, 0]).astype(int) - c0, 0, crop.shape[1] - 1)
+    return ~near[rr, cc]
+
+
 def classify_frame(frame, params=None) -> dict:
     """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
@@ -378,7 +409,7 @@ def classify_frame(frame, params=None) -> dict:
         outline_px = contours[i]
         if split[i] and len(outline_px) >= 8:
             # cut from a touching neighbour: judge the outline its true edges imply
-            outline_px = en.complete_by_symmetry(outline_px)
+            outline_px = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab))
         contour, interior = en.grain_evidence(labels, signal, mode, outline_px, lab, p["erode_px"])
         if contour is None or len(contour) < 8:
             cols["habit_note"][i] = "outline too small"

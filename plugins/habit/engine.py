@@ -1603,13 +1603,17 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
     return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
 
 
-def complete_by_symmetry(contour_xy) -> np.ndarray:
+def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
     """The smallest centrally symmetric convex outline that contains a (cut) outline.
 
     Parameters
     ----------
     contour_xy : array_like, shape (k, 2)
         Closed outline of a grain that was cut from a touching neighbour.
+    free : array_like of bool, shape (k,), optional
+        Vertices on the grain's true edges (False along the cut, where the
+        dividing line need not follow the true contact). Only these are
+        completed when they span at least half the outline's area; default all.
 
     Returns
     -------
@@ -1632,6 +1636,14 @@ def complete_by_symmetry(contour_xy) -> np.ndarray:
 
     c = _check_poly(contour_xy, "contour_xy")
     pts = c[ConvexHull(c).vertices]
+    if free is not None:
+        f = c[np.asarray(free, bool)]
+        try:
+            fh = f[ConvexHull(f).vertices]
+            if polygon_centroid(fh)[1] >= 0.5 * polygon_centroid(pts)[1]:
+                pts = fh
+        except (ValueError, RuntimeError, IndexError):     # too few or collinear free vertices
+            pass
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
 
