@@ -1041,9 +1041,10 @@ class AlphaFit:
     score : ndarray, shape (m,)
         Score of every library model (lower is better, 0 at the best).
     facet_chi2 : float
-        Interior evidence for facets: ``w (RSS_flat - RSS_best) / s^2``, the
+        Interior evidence for facets: ``w (RSS_0 - RSS_best) / s^2``, the
         score by which the best placed model beats a featureless interior
-        (one level plus a plane); NaN without interior samples.
+        (the better of one level plus a plane, and a round body); NaN
+        without interior samples.
     interior_level : float
         Mean interior value (brightness, or attenuation for TEM); NaN without.
     signature : ndarray, shape (n_angles,)
@@ -1062,6 +1063,30 @@ class AlphaFit:
     facet_chi2: float = float("nan")
     interior_level: float = float("nan")
     signature: np.ndarray | None = None
+
+
+@functools.lru_cache(maxsize=1)
+def _round_planes(n_planes: int = 120):
+    """Plane tables of a sphere of unit diameter (a polyhedron of ``n_planes`` tangent planes)."""
+    k = np.arange(n_planes) + 0.5
+    z = 1.0 - 2.0 * k / n_planes
+    phi = math.pi * (1.0 + math.sqrt(5.0)) * k                      # Fibonacci directions
+    rxy = np.sqrt(1.0 - z * z)
+    nrm = np.column_stack([rxy * np.cos(phi), rxy * np.sin(phi), z])
+    body = cr.polyhedron_from_halfspaces(nrm, np.full(n_planes, 0.5), kind="sphere")
+    g_up, z_up = _planes(body, np.eye(3), True)
+    g_dn, z_dn = _planes(body, np.eye(3), False)
+    return g_up[None], z_up[None], g_dn[None], z_dn[None]
+
+
+def _round_rss(interior: Interior, tem_offset_max: float) -> float:
+    """RSS of the interior under a round body (a sphere of the grain's ECD), same models as the facets.
+
+    A rounded grain shows brightness rising towards its rim (secondary electrons) or a
+    thickness dome (transmission) without facets; facet evidence is counted against the
+    better of this and a flat interior.
+    """
+    return float(interior_rss_batch(interior, *_round_planes(), edge_px=0.0, tem_offset_max=tem_offset_max)[0])
 
 
 def _flat_rss(interior: Interior) -> float:
@@ -1309,7 +1334,8 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     if interior is not None and interior.value.size >= 30:
         level = float(np.mean(interior.value))
         if evidence:
-            fchi = max(w_eff * (_flat_rss(full) - rmin) / s2, 0.0)
+            featureless = min(_flat_rss(full), _round_rss(full, tem_offset_max))
+            fchi = max(w_eff * (featureless - rmin) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
                     dbest, "; ".join(notes), score, fchi, level, sig)
 
