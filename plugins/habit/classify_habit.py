@@ -252,7 +252,7 @@ def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
                 or r[0] ** 2 - r[1] ** 2 > p["plate_margin"])
 
 
-def classify_grain(contour_lab, interior, params, pixel_scale=1.0):
+def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     """Habit of one grain, with the Wulff fit it rests on.
 
     Parameters
@@ -265,6 +265,9 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0):
         Resolved parameters of this step.
     pixel_scale : float
         Pixel length in the contour's unit.
+    hull : (float, float), optional
+        Solidity and Feret ratio (min/max) of the grain's outline when
+        measure-grains has them already; else from :func:`hull_shape`.
 
     Returns
     -------
@@ -287,8 +290,11 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0):
     d_plate, ip = best_family(sig, plate)
     d_rod, ir = best_family(sig, rod)
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
-    solidity, fmin, fmax = hull_shape(contour_lab)
-    feret_ratio = fmin / fmax
+    if hull is None:
+        solidity, fmin, fmax = hull_shape(contour_lab)
+        feret_ratio = fmin / fmax
+    else:
+        solidity, feret_ratio = hull
     o_ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
     unresolved = o_ratios[3] ** 2 - o_ratios[:3].min() ** 2 < p["tolerance"]
     if interior is not None:
@@ -404,6 +410,8 @@ def classify_frame(frame, params=None) -> dict:
     signal, mode = interior_signal(frame)
     labels = np.asarray(frame.labels)
     split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
+    g = frame.grains
+    measured = "solidity" in g and "feret_ratio" in g
     for i in range(n):
         lab = int(frame.grains["label"][i])
         outline_px = contours[i]
@@ -414,7 +422,10 @@ def classify_frame(frame, params=None) -> dict:
         if contour is None or len(contour) < 8:
             cols["habit_note"][i] = "outline too small"
             continue
-        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p)
+        hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
+        if hull is not None and not all(np.isfinite(hull)):
+            hull = None
+        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull)
         if split[i]:
             ev["habit_note"] = "; ".join(x for x in (ev["habit_note"], "split grain: outline completed by "
                                                      "central symmetry") if x)
