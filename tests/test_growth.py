@@ -188,7 +188,7 @@ def _drawn(alpha, face, rot_deg, contrast, noise=0.02, seed=0):
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
 def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
-    # reference: the single-model fit (_interior_rss): numpy least squares for SEM,
+    # reference: the single-model fit (interior_rss): numpy least squares for SEM,
     # scipy.optimize.lsq_linear (bounded least squares) for TEM
     lib = gr.model_library()
     tab = lib.tables
@@ -203,7 +203,7 @@ def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
         i = int(np.flatnonzero(lib.shape_id == uniq[u])[0])
         rot = cr.in_plane_rotation(360.0 * k / 256) @ lib.rotations[i]
         # float32 geometry: a pixel exactly on a facet edge may change side
-        assert r == pytest.approx(gr._interior_rss(inner, lib.bodies[i], rot), rel=1e-5)
+        assert r == pytest.approx(gr.interior_rss(inner, lib.bodies[i], rot), rel=1e-5)
 
 
 def test_batched_outline_distances_match_shift_distances():

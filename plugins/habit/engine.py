@@ -1,6 +1,8 @@
 """The habit engine: Wulff-shape models of a grain's outline and interior, and the alpha fit.
 
-Pure functions on arrays, shared by the steps ``classify-habit`` (which names
+The outline half lives in :mod:`signature`, the interior half in
+:mod:`interior`; this module holds the model library, the fit and the class
+rule. Pure functions on arrays, shared by the steps ``classify-habit`` (which names
 the habit from the fit) and ``fit-growth-ratio`` (which reports alpha). No
 module state carries results from one call to the next: a model library is
 built once per parameter set (``functools.lru_cache``; workers build it in
@@ -73,19 +75,26 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage as ndi
 
 from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
+                                               grain_evidence, grain_interior, interior_rss, interior_rss_batch,
+                                               round_rss, subsample_interior)
+from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
+                                                radial_signature, rounded_outline, shift_distances)
 from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
+
+__all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
+           "OutlineMatch", "class_scores", "complete_by_symmetry", "fit_alpha", "fit_options", "grain_evidence",
+           "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
+           "outline_candidates", "outline_settles", "placed_planes", "polygon_centroid", "polyhedral_class",
+           "radial_signature", "rounded_outline", "shift_distances", "subsample_interior", "view_probability",
+           "FAR_HEIGHT", "face_planes", "flat_rss", "round_rss", "check_n_angles", "check_polygon"]
 
 #: Directions a grain may be seen along (the face family that faces the beam).
 VIEWS = ("100", "111", "110")
 
-#: Range of the gain k of the tilt law ``1 + k (sec(tilt) - 1)`` in secondary-electron
-#: contrast: k = 1 is the secant law [3]_; detectors and the substrate's own yield soften or
-#: sharpen it. The lower end is what makes a predicted but unseen facet cost.
-TILT_GAIN_RANGE = (0.2, 3.0)
 
 #: Parameters of the engine. They are parameters of ``classify-habit``, the
 #: step that runs the fit; ``fit-growth-ratio`` reports its result.
@@ -154,199 +163,8 @@ def fit_options(params: dict) -> dict:
 
 # --------------------------------------------------------------------------- checks
 
-def _check_poly(poly, name="outline") -> np.ndarray:
-    p = np.asarray(poly, dtype=float)
-    if p.ndim != 2 or p.shape[1] != 2 or len(p) < 3:
-        raise ValueError(f"{name} must have shape (k >= 3, 2), got {p.shape}")
-    if not np.all(np.isfinite(p)):
-        raise ValueError(f"{name} contains non-finite coordinates")
-    return p
-
-
-def _check_n(n_angles: int) -> int:
-    if int(n_angles) != n_angles or n_angles < 8:
-        raise ValueError(f"n_angles must be an integer >= 8, got {n_angles!r}")
-    return int(n_angles)
-
 
 # ------------------------------------------------------------------ signatures
-
-def polygon_centroid(poly) -> tuple[np.ndarray, float]:
-    """Centroid and unsigned area of a simple polygon.
-
-    Parameters
-    ----------
-    poly : array_like, shape (k, 2)
-
-    Returns
-    -------
-    centroid : ndarray, shape (2,)
-    area : float
-
-    Notes
-    -----
-    c = (1 / 6A) sum (p_i + p_{i+1}) (x_i y_{i+1} - x_{i+1} y_i).
-    """
-    p = _check_poly(poly)
-    x, y = p[:, 0], p[:, 1]
-    x1, y1 = np.roll(x, -1), np.roll(y, -1)
-    cross = x * y1 - x1 * y
-    a = 0.5 * cross.sum()
-    if abs(a) < 1e-12:
-        raise ValueError("outline has zero area")
-    c = np.array([((x + x1) * cross).sum(), ((y + y1) * cross).sum()]) / (6.0 * a)
-    return c, abs(a)
-
-
-def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
-    """Centroid-distance signature of a closed outline, normalised by sqrt(area).
-
-    Parameters
-    ----------
-    poly : array_like, shape (k, 2)
-        Closed outline (x, y) in any length unit, first vertex not repeated;
-        a polygon or a dense contour. Axes x right, y up: the samples run
-        counter-clockwise.
-    n_angles : int
-        Number of ray directions phi_j = 2 pi j / n_angles.
-
-    Returns
-    -------
-    ndarray, shape (n_angles,)
-        r(phi_j) / sqrt(A): distance from the centroid to the outline along
-        direction phi_j (the farthest crossing), divided by the square root of
-        the enclosed area. A disc gives 1 / sqrt(pi) everywhere, a square of
-        side s gives 1/2 at phi = 0.
-
-    Notes
-    -----
-    Ray-segment intersection: c + t d = a + s e with 0 <= s <= 1, solved by
-    Cramer's rule. Only the (ray, edge) pairs that can meet are solved: the
-    rays within the angle an edge subtends at the centroid, widened by one
-    ray either side (an edge nearly through the centroid is tried against
-    every ray), so the work grows as n + k rather than n k.
-    """
-    n = _check_n(n_angles)
-    p = _check_poly(poly)
-    c, area = polygon_centroid(p)
-    q = p - c
-    e = np.roll(q, -1, axis=0) - q
-    k = len(q)
-    a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))        # vertex angle in ray steps
-    da = np.roll(a0, -1) - a0
-    da = (da + n / 2) % n - n / 2                                    # signed, in [-n/2, n/2)
-    lo = np.floor(np.minimum(a0, a0 + da)).astype(np.int64) - 1
-    cnt = np.floor(np.maximum(a0, a0 + da)).astype(np.int64) + 2 - lo
-    wide = np.abs(da) > n / 2 - 2
-    lo[wide], cnt[wide] = 0, n
-    cnt = np.minimum(cnt, n)
-    edge = np.repeat(np.arange(k), cnt)
-    start = np.cumsum(cnt) - cnt
-    ray = (lo[edge] + np.arange(edge.size) - start[edge]) % n
-    phi = 2.0 * np.pi * ray / n
-    dx, dy = np.cos(phi), np.sin(phi)
-    qe, ee = q[edge], e[edge]
-    det = -dx * ee[:, 1] + ee[:, 0] * dy
-    ok = np.abs(det) > 1e-14
-    det = np.where(ok, det, 1.0)
-    t = (-qe[:, 0] * ee[:, 1] + ee[:, 0] * qe[:, 1]) / det
-    s = (dx * qe[:, 1] - dy * qe[:, 0]) / det
-    hit = ok & (s >= -1e-9) & (s <= 1 + 1e-9) & (t > 0)
-    r = np.zeros(n)
-    np.maximum.at(r, ray[hit], t[hit])
-    return r / math.sqrt(area)
-
-
-def shift_distances(sig_obs, sig_model) -> np.ndarray:
-    """RMS distance between two signatures at every cyclic shift.
-
-    Parameters
-    ----------
-    sig_obs, sig_model : array_like, shape (n,)
-        Radial signatures (:func:`radial_signature`).
-
-    Returns
-    -------
-    ndarray, shape (n,)
-        ``d[s] = sqrt(mean_j (r_obs[j + s] - r_model[j])^2)``: the observed
-        outline matches the model turned counter-clockwise by 2 pi s / n.
-
-    Notes
-    -----
-    sum_j (a_{j+s} - b_j)^2 = |a|^2 + |b|^2 - 2 C[s] with the circular
-    cross-correlation C = IFFT(FFT(a) conj(FFT(b))).
-    """
-    a = np.asarray(sig_obs, float)
-    b = np.asarray(sig_model, float)
-    if a.shape != b.shape or a.ndim != 1:
-        raise ValueError(f"signatures must be 1-D of equal length, got {a.shape} and {b.shape}")
-    cc = np.fft.irfft(np.fft.rfft(a) * np.conj(np.fft.rfft(b)), len(a))
-    d2 = (np.dot(a, a) + np.dot(b, b) - 2.0 * cc) / len(a)
-    return np.sqrt(np.maximum(d2, 0.0))
-
-
-def rounded_outline(poly, radius: float, arc_step_deg: float = 10.0) -> np.ndarray:
-    """A convex polygon with its corners rounded: the opening by a disc of ``radius``.
-
-    Parameters
-    ----------
-    poly : array_like, shape (k, 2)
-        Convex polygon, counter-clockwise.
-    radius : float
-        Disc radius, in the polygon's unit (0 returns the polygon).
-    arc_step_deg : float
-        Angular spacing of the points on each corner arc.
-
-    Returns
-    -------
-    ndarray, shape (q, 2)
-        Dense polygon of the rounded outline.
-
-    Notes
-    -----
-    The opening of a convex set K by a disc D_r is (K shrunk by r) + D_r
-    (Minkowski sum): every edge moves in by r (edges shorter than the
-    rounding vanish), and each corner of the shrunk polygon becomes an arc
-    of radius r. Blur followed by a threshold rounds the corners of a
-    grain's outline in much this way.
-    """
-    p = _check_poly(poly, "poly")
-    if radius <= 0:
-        return p
-    x, y = p[:, 0], p[:, 1]
-    if np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y) < 0:
-        p = p[::-1]
-    e = np.roll(p, -1, axis=0) - p
-    nrm = np.column_stack([e[:, 1], -e[:, 0]]) / np.linalg.norm(e, axis=1, keepdims=True)  # outward (CCW)
-    off = np.einsum("ij,ij->i", nrm, p) - radius
-    # shrunk polygon: clip a large square by every shifted edge half-plane n . x <= off
-    big = 4.0 * np.abs(p).max() + 4.0 * radius
-    q = np.array([[-big, -big], [big, -big], [big, big], [-big, big]])
-    for nv, ov in zip(nrm, off):
-        val = q @ nv - ov
-        out = []
-        for i in range(len(q)):
-            a, b, va, vb = q[i], q[(i + 1) % len(q)], val[i], val[(i + 1) % len(q)]
-            if va <= 0:
-                out.append(a)
-            if (va <= 0) != (vb <= 0):
-                out.append(a + (b - a) * (va / (va - vb)))
-        if len(out) < 3:
-            raise ValueError(f"radius {radius!r} is larger than the polygon's inradius")
-        q = np.asarray(out)
-    # Minkowski sum with the disc: an arc at every corner between the adjacent edge normals
-    pts = []
-    m = len(q)
-    for i in range(m):
-        ein = q[i] - q[i - 1]
-        eout = q[(i + 1) % m] - q[i]
-        t0 = math.atan2(-ein[0], ein[1])
-        t1 = math.atan2(-eout[0], eout[1])
-        dt = (t1 - t0) % (2 * math.pi)
-        k = max(int(math.ceil(math.degrees(dt) / arc_step_deg)), 1)
-        th = t0 + dt * np.arange(k + 1) / k
-        pts.append(q[i] + radius * np.column_stack([np.cos(th), np.sin(th)]))
-    return np.concatenate(pts)
 
 
 #: Corner rounding of the model outlines, relative to the ECD: a grain is
@@ -455,7 +273,7 @@ def model_library(alpha_min: float = 0.5, alpha_max: float = 4.0, step: float = 
     {100}); identical bodies (alpha <= 1, alpha >= 3) share one shape id and
     one computed body per view.
     """
-    return _build_library(float(alpha_min), float(alpha_max), float(step), _check_n(n_angles),
+    return _build_library(float(alpha_min), float(alpha_max), float(step), check_n_angles(n_angles),
                           float(view_floor))
 
 
@@ -498,197 +316,6 @@ def _build_library(alpha_min, alpha_max, step, n_angles, view_floor) -> ModelLib
 
 # ---------------------------------------------------------------- interior data
 
-@dataclass(frozen=True)
-class Interior:
-    """Pixels inside one grain, ready to compare with a model's facets.
-
-    Attributes
-    ----------
-    x, y : ndarray, shape (p,)
-        Pixel centres in the lab frame of the grain: origin at the outline
-        centroid, x right, y up, in units of the grain's ECD.
-    value : ndarray, shape (p,)
-        Brightness (SEM) or attenuation -ln(I / I_bg) (TEM) at those pixels.
-    mode : str
-        'facets' (uniform brightness per facet) or 'thickness' (linear in
-        projected thickness).
-    pixel : float
-        One pixel in the same units (1 / ECD in pixels).
-    weight : float
-        Pixels each sample stands for (1 as collected; more after
-        :func:`subsample_interior`): the interior evidence is multiplied by it.
-    """
-
-    x: np.ndarray
-    y: np.ndarray
-    value: np.ndarray
-    mode: str
-    pixel: float = 0.0
-    weight: float = 1.0
-
-
-def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
-    """Collect the interior samples of one grain.
-
-    Parameters
-    ----------
-    signal : ndarray, shape (h, w)
-        Crop of the brightness or attenuation image.
-    mask : ndarray of bool, shape (h, w)
-        The grain's pixels in the crop.
-    centroid_xy_px : (float, float)
-        Outline centroid in crop pixel coordinates (x = col + 0.5, y = row + 0.5).
-    ecd_px : float
-        ECD in pixels.
-    mode : {'facets', 'thickness'}
-    erode_px : int
-        Binary erosion of the mask first (the rim and the blurred edge).
-
-    Returns
-    -------
-    Interior or None
-        None when fewer than 30 pixels remain.
-    """
-    if mode not in ("facets", "thickness"):
-        raise ValueError(f"mode must be 'facets' or 'thickness', got {mode!r}")
-    m = np.asarray(mask, bool)
-    if erode_px > 0:
-        m = ndi.binary_erosion(m, iterations=int(erode_px))
-    rr, cc = np.nonzero(m)
-    if rr.size < 30:
-        return None
-    x = (cc + 0.5 - centroid_xy_px[0]) / ecd_px
-    y = -(rr + 0.5 - centroid_xy_px[1]) / ecd_px
-    v = np.asarray(signal, float)[rr, cc]
-    return Interior(x, y, v, mode, 1.0 / ecd_px)
-
-
-def subsample_interior(interior: Interior, max_samples: int) -> Interior:
-    """Keep at most about ``max_samples`` interior samples, on a regular pixel lattice.
-
-    Parameters
-    ----------
-    interior : Interior
-    max_samples : int
-        Sample budget (>= 30).
-
-    Returns
-    -------
-    Interior
-        ``interior`` itself when it is within budget; else the samples on
-        every s-th row and column (s = ceil(sqrt(p / max_samples))), with
-        ``weight`` multiplied by p / p_kept so that sums of squares over the
-        kept samples estimate those over all of them.
-
-    Notes
-    -----
-    A lattice keeps the samples evenly spread in both directions, so every
-    facet keeps its share; a raster stride is used instead when the lattice
-    would keep under a quarter of the budget (an already thinned sample).
-    """
-    if int(max_samples) != max_samples or max_samples < 30:
-        raise ValueError(f"max_samples must be an integer >= 30, got {max_samples!r}")
-    p = interior.value.size
-    if p <= max_samples:
-        return interior
-    if interior.pixel > 0:
-        ix = np.rint((interior.x - interior.x.min()) / interior.pixel).astype(np.int64)
-        iy = np.rint((interior.y - interior.y.min()) / interior.pixel).astype(np.int64)
-        st = int(math.ceil(math.sqrt(p / max_samples)))
-        keep = np.flatnonzero((ix % st == 0) & (iy % st == 0))
-    else:
-        keep = np.zeros(0, int)
-    if keep.size < max_samples / 4 or keep.size > max_samples:
-        keep = np.arange(0, p, int(math.ceil(p / max_samples)))
-    return Interior(interior.x[keep], interior.y[keep], interior.value[keep], interior.mode,
-                    interior.pixel, interior.weight * p / keep.size)
-
-
-def _top_facets(interior: Interior, body, rotation, edge_px: float):
-    """Top facet of every sample, the facet tilt features and the edge mask (one model)."""
-    x, y = interior.x, interior.y
-    nl = body.face_normals @ np.asarray(rotation).T
-    up = nl[:, 2] > 1e-9
-    coef_up = np.vstack([-nl[up, 0], -nl[up, 1], body.face_offsets[up]]) / nl[up, 2]
-    pts = np.column_stack([x, y, np.ones_like(x)])
-    zup = pts @ coef_up
-    idx = np.argmin(zup, axis=1)
-    far = np.ones(x.size, bool)
-    if up.sum() > 1 and edge_px > 0:
-        g = coef_up[:2].T
-        gd = np.linalg.norm(g[:, None, :] - g[None, :, :], axis=-1)
-        ztop = zup[np.arange(x.size), idx]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            dist = (zup - ztop[:, None]) / gd[idx]
-        dist[np.arange(x.size), idx] = np.inf
-        far = np.nanmin(np.where(np.isfinite(dist), dist, np.inf), axis=1) >= edge_px * interior.pixel
-    return nl[up][idx], zup.min(axis=1), far
-
-
-def _interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0,
-                  tem_offset_max: float = 0.5) -> float:
-    """Residual sum of squares of the interior under one placed model (the reference).
-
-    Parameters
-    ----------
-    interior : Interior
-    body : Polyhedron
-    rotation : ndarray, shape (3, 3)
-        Crystal -> lab rotation of the placed model.
-    edge_px : float
-        'facets': samples closer than this (pixels) to a predicted facet
-        edge are left out and the RSS scaled back to all samples.
-    tem_offset_max : float
-        'thickness': bound of the thickness-independent term, as a share of
-        the mean attenuation.
-
-    Returns
-    -------
-    float
-
-    Notes
-    -----
-    'facets' (secondary electrons, brightness above the background): the
-    facet seen at (x, y) is the upward plane of lowest height there; its
-    brightness is ``a (1 + k (sec(tilt) - 1)) + c_x n_x + c_y n_y`` plus a
-    plane ``p_x x + p_y y`` (illumination gradient), with a >= 0 and k in
-    :data:`TILT_GAIN_RANGE`. This reference solves it by brute force: linear
-    least squares at 2001 values of k spread over the range (and a = 0), the
-    smallest RSS kept. 'thickness'
-    (transmission): ``b t + a + p_x x + p_y y`` with b >= 0 and
-    0 <= a <= tem_offset_max * mean(value), solved by
-    ``scipy.optimize.lsq_linear`` (bounded least squares).
-    """
-    from scipy.optimize import lsq_linear
-
-    x, y, v = interior.x, interior.y, interior.value
-    if interior.mode == "facets":
-        n, _, far = _top_facets(interior, body, rotation, edge_px)
-        scale = 1.0
-        if far.sum() >= 30 and not far.all():
-            scale = v.size / far.sum()
-            x, y, v, n = x[far], y[far], v[far], n[far]
-        sec = 1.0 / n[:, 2] - 1.0
-        a0 = np.column_stack([n[:, 0], n[:, 1], x, y])
-        coef, *_ = np.linalg.lstsq(a0, v, rcond=None)
-        best = float(np.sum((v - a0 @ coef) ** 2))                  # a = 0
-        for k in np.linspace(*TILT_GAIN_RANGE, 2001):
-            a = np.column_stack([1.0 + k * sec, a0])
-            coef, *_ = np.linalg.lstsq(a, v, rcond=None)
-            if coef[0] >= 0:
-                best = min(best, float(np.sum((v - a @ coef) ** 2)))
-        return best * scale
-    nl = body.face_normals @ np.asarray(rotation).T
-    pts = np.column_stack([x, y, np.ones_like(x)])
-    up, dn = nl[:, 2] > 1e-9, nl[:, 2] < -1e-9
-    zup = pts @ (np.vstack([-nl[up, 0], -nl[up, 1], body.face_offsets[up]]) / nl[up, 2])
-    zdn = pts @ (np.vstack([-nl[dn, 0], -nl[dn, 1], body.face_offsets[dn]]) / nl[dn, 2])
-    t = np.maximum(zup.min(axis=1) - zdn.max(axis=1), 0.0)
-    amax = max(tem_offset_max * float(np.mean(v)), 0.0)
-    a = np.column_stack([t, np.ones_like(t), x, y])
-    res = lsq_linear(a, v, bounds=([0.0, 0.0, -np.inf, -np.inf], [np.inf, amax + 1e-15, np.inf, np.inf]),
-                     method="bvls", tol=1e-12)
-    return float(np.sum((v - a @ res.x) ** 2))
 
 # ------------------------------------------------------- batched model tables
 
@@ -702,8 +329,8 @@ class _Tables:
     (levels, u) their squared norms; ``g_up`` (u, M, 2)
     and ``z_up`` (u, M) the height gradient and height at the origin of each
     upward plane at rest (z = z_up + g . (x, y)), padded with flat planes at
-    height ``_FAR``; ``g_dn``/``z_dn`` the same for the downward planes,
-    padded at ``-_FAR``; ``model_shape`` (m,) the shape row of every library
+    height ``FAR_HEIGHT``; ``g_dn``/``z_dn`` the same for the downward planes,
+    padded at ``-FAR_HEIGHT``; ``model_shape`` (m,) the shape row of every library
     model; ``prior`` (u,) -2 ln P(view | body) of each shape.
     """
 
@@ -720,17 +347,6 @@ class _Tables:
     prior: np.ndarray
 
 
-_FAR = 1e6
-
-
-def _planes(body, rotation, upward: bool):
-    """Height gradients (k, 2) and origin heights (k,) of the up- or downward face planes."""
-    nl = body.face_normals @ np.asarray(rotation).T
-    sel = nl[:, 2] > 1e-9 if upward else nl[:, 2] < -1e-9
-    nz = nl[sel, 2]
-    return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
-
-
 def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmetry_deg, prior) -> _Tables:
     """The :class:`_Tables` of a library's models (one row per distinct shape)."""
     uniq = np.unique(shape_id)
@@ -741,8 +357,8 @@ def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmet
         sel = np.flatnonzero(face == f)
         pos[sel[np.argsort(alphas[first[sel]], kind="stable")]] = np.arange(sel.size)
     sigs = signatures[:, first]
-    ups = [_planes(bodies[i], rotations[i], True) for i in first]
-    dns = [_planes(bodies[i], rotations[i], False) for i in first]
+    ups = [face_planes(bodies[i], rotations[i], True) for i in first]
+    dns = [face_planes(bodies[i], rotations[i], False) for i in first]
 
     def pad(planes, fill):
         m = max(len(z) for _, z in planes)
@@ -752,8 +368,8 @@ def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmet
             g[j, :len(zz)], z[j, :len(zz)] = gg, zz
         return g, z
 
-    g_up, z_up = pad(ups, _FAR)
-    g_dn, z_dn = pad(dns, -_FAR)
+    g_up, z_up = pad(ups, FAR_HEIGHT)
+    g_dn, z_dn = pad(dns, -FAR_HEIGHT)
     return _Tables(face, pos, symmetry_deg[first], np.conj(np.fft.rfft(sigs, axis=-1)),
                    np.einsum("lij,lij->li", sigs, sigs), g_up, z_up, g_dn, z_dn,
                    np.searchsorted(uniq, shape_id), prior[first])
@@ -843,176 +459,6 @@ def placed_planes(tab: _Tables, shape, shift, n: int):
     return turn(tab.g_up[shape]), tab.z_up[shape], turn(tab.g_dn[shape]), tab.z_dn[shape]
 
 
-def _solve_fixed(nm, rhs, vv, fixed):
-    """Least squares with some unknowns held at given values, for c small systems at once.
-
-    Parameters
-    ----------
-    nm : ndarray, shape (c, k, k)
-        Normal matrices A^T A.
-    rhs : ndarray, shape (c, k)
-        A^T v.
-    vv : ndarray, shape (c,)
-        v . v.
-    fixed : dict
-        Unknown index -> value, ndarray (c,) or float.
-
-    Returns
-    -------
-    theta : ndarray, shape (c, k)
-    rss : ndarray, shape (c,)
-        |v - A theta|^2 = v.v - 2 theta.rhs + theta^T nm theta.
-    """
-    c, k = rhs.shape
-    theta = np.zeros((c, k))
-    for i, val in fixed.items():
-        theta[:, i] = val
-    free = np.array([i for i in range(k) if i not in fixed])
-    if free.size:
-        nf = nm[:, free[:, None], free[None, :]]
-        r = rhs[:, free] - np.einsum("cij,cj->ci", nm[:, free, :], theta)
-        tr = np.einsum("cii->c", nf)
-        nf = nf + np.eye(free.size)[None] * (1e-12 * tr + 1e-300)[:, None, None]
-        theta[:, free] = np.linalg.solve(nf, r[:, :, None])[:, :, 0]
-    rss = vv - 2.0 * np.einsum("ci,ci->c", theta, rhs) + np.einsum("ci,cij,cj->c", theta, nm, theta)
-    return theta, np.maximum(rss, 0.0)
-
-
-def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
-                       tem_offset_max: float = 0.5, max_elements: int = 1_000_000) -> np.ndarray:
-    """:func:`_interior_rss` of many placed models at once.
-
-    Parameters
-    ----------
-    interior : Interior
-        p samples.
-    g_up, z_up : ndarray, shapes (c, M, 2) and (c, M)
-        Upward planes of each model (:func:`placed_planes`), padded with
-        flat planes at height ``_FAR``.
-    g_dn, z_dn : ndarray, shapes (c, K, 2) and (c, K)
-        Downward planes (needed for 'thickness'), padded at ``-_FAR``.
-    edge_px, tem_offset_max : float
-        As in :func:`_interior_rss`.
-    max_elements : int
-        Models are processed in chunks of about this many (model, sample,
-        plane) elements (memory bound).
-
-    Returns
-    -------
-    ndarray, shape (c,)
-        Residual sum of squares of each model, as :func:`_interior_rss`.
-
-    Notes
-    -----
-    Same model as :func:`_interior_rss`. A plane's tilt follows from its
-    height gradient g: n_z = 1 / sqrt(1 + |g|^2), (n_x, n_y) = -g n_z. The
-    per-facet sums of the normal equations of all models come from one
-    weighted ``bincount`` over (model, facet) bins. Both bounded fits are
-    convex least-squares problems with a few linear inequality constraints,
-    solved exactly by trying every active set (the best feasible candidate
-    is the optimum): in 'facets' mode a >= 0 and k_min a <= b <= k_max a
-    with b = k a, in 'thickness' mode b >= 0 and 0 <= a <= amax.
-    """
-    g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
-    c, m = z_up.shape
-    if c == 0:
-        return np.zeros(0)
-    p = interior.value.size
-    step = max(1, int(max_elements // max(p * max(m, 1), 1)))
-    if c > step:
-        return np.concatenate([
-            interior_rss_batch(interior, g_up[i:i + step], z_up[i:i + step],
-                               None if g_dn is None else g_dn[i:i + step],
-                               None if z_dn is None else z_dn[i:i + step], edge_px, tem_offset_max,
-                               max_elements)
-            for i in range(0, c, step)])
-    x, y, v = interior.x, interior.y, interior.value
-    # plane heights laid out (plane, model, sample): reductions run over whole
-    # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
-    # the sums of the normal equations float64
-    x32, y32 = x.astype(np.float32), y.astype(np.float32)
-
-    def heights(g, z0):
-        gt = np.asarray(g, np.float32).transpose(2, 1, 0)                  # (2, M, c)
-        return (np.asarray(z0, np.float32).T[:, :, None] + gt[0][:, :, None] * x32
-                + gt[1][:, :, None] * y32)                                  # (M, c, p)
-
-    zup = heights(g_up, z_up)
-    ztop = zup.min(axis=0)                                                   # (c, p)
-    if interior.mode == "facets":
-        idx = zup.argmin(axis=0)                          # lowest plane, first index on ties
-        wt = np.ones((c, p))
-        scale = np.ones(c)
-        if m > 1 and edge_px > 0:
-            # distance to the line where plane j meets the top plane:
-            # (z_j - z_top) / |g_j - g_top|; the top plane itself gives 0 * inf = NaN, skipped by fmin
-            gd = np.linalg.norm(g_up[:, :, None, :] - g_up[:, None, :, :], axis=-1)   # (c, M, M)
-            with np.errstate(divide="ignore"):
-                inv = (1.0 / gd).astype(np.float32).transpose(2, 0, 1)                # (j, c, top)
-            zup -= ztop
-            with np.errstate(invalid="ignore"):
-                zup *= inv[:, np.arange(c)[:, None], idx]
-            near = np.fmin.reduce(zup, axis=0)
-            far = ~(near < edge_px * interior.pixel)
-            nfar = far.sum(axis=1)
-            use = (nfar >= 30) & (nfar < p)
-            wt = np.where(use[:, None], far, True).astype(float)
-            scale = np.where(use, p / np.maximum(nfar, 1), 1.0)
-        bins = (np.arange(c)[:, None] * m + idx).ravel()
-        cnt = np.bincount(bins, wt.ravel(), minlength=c * m).reshape(c, m)
-        sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
-        sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
-        sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
-        xx, xy, yy = wt @ (x * x), wt @ (x * y), wt @ (y * y)
-        xv, yv, vv = wt @ (x * v), wt @ (y * v), wt @ (v * v)
-        nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
-        sec = 1.0 / nz - 1.0
-        f = np.stack([np.ones_like(sec), sec, -g_up[..., 0] * nz, -g_up[..., 1] * nz], axis=-1)   # (c, M, 4)
-        # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
-        nm = np.zeros((c, 6, 6))
-        nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
-        nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
-        nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
-        nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
-        rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
-        kmin, kmax = TILT_GAIN_RANGE
-        eps = 1e-12
-        th, rss = _solve_fixed(nm, rhs, vv, {})
-        ok = (th[:, 0] >= -eps) & (th[:, 1] >= kmin * th[:, 0] - eps) & (th[:, 1] <= kmax * th[:, 0] + eps)
-        best = np.where(ok, rss, np.inf)
-        best = np.minimum(best, _solve_fixed(nm, rhs, vv, {0: 0.0, 1: 0.0})[1])          # a = 0
-        for k in (kmin, kmax):
-            # b = k a: the pair becomes one unknown a on the column 1 + k sec
-            t = np.eye(6)[:, [0, 2, 3, 4, 5]]
-            t[1, 0] = k
-            nk = np.einsum("ia,cij,jb->cab", t, nm, t)
-            th, rss = _solve_fixed(nk, rhs @ t, vv, {})
-            best = np.where(th[:, 0] >= -eps, np.minimum(best, rss), best)
-        return best * scale
-    if g_dn is None or z_dn is None:
-        raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
-    t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)   # (c, p)
-    nm = np.empty((c, 4, 4))
-    st, sx_, sy_ = t.sum(axis=1), t @ x, t @ y
-    nm[:, 0, 0] = np.einsum("cp,cp->c", t, t)
-    nm[:, 0, 1], nm[:, 0, 2], nm[:, 0, 3] = st, sx_, sy_
-    nm[:, 1:, 0] = nm[:, 0, 1:]
-    nm[:, 1:, 1:] = np.array([[p, x.sum(), y.sum()], [x.sum(), x @ x, x @ y],
-                              [y.sum(), x @ y, y @ y]])[None]
-    rhs = np.empty((c, 4))
-    rhs[:, 0] = t @ v
-    rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
-    vv = np.full(c, v @ v)
-    amax = max(tem_offset_max * float(np.mean(v)), 0.0)
-    best = np.full(c, np.inf)
-    eps = 1e-12
-    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set
-    for fixed in ({}, {1: 0.0}, {1: amax}, {0: 0.0}, {0: 0.0, 1: 0.0}, {0: 0.0, 1: amax}):
-        th, rss = _solve_fixed(nm, rhs, vv, fixed)
-        ok = (th[:, 0] >= -eps) & (th[:, 1] >= -eps) & (th[:, 1] <= amax + eps)
-        best = np.where(ok, np.minimum(best, rss), best)
-    return best
-
 # ------------------------------------------------------------------------ fit
 
 @dataclass(frozen=True)
@@ -1065,40 +511,6 @@ class AlphaFit:
     signature: np.ndarray | None = None
 
 
-@functools.lru_cache(maxsize=1)
-def _round_planes(n_planes: int = 120):
-    """Plane tables of a sphere of unit diameter (a polyhedron of ``n_planes`` tangent planes)."""
-    k = np.arange(n_planes) + 0.5
-    z = 1.0 - 2.0 * k / n_planes
-    phi = math.pi * (1.0 + math.sqrt(5.0)) * k                      # Fibonacci directions
-    rxy = np.sqrt(1.0 - z * z)
-    nrm = np.column_stack([rxy * np.cos(phi), rxy * np.sin(phi), z])
-    body = cr.polyhedron_from_halfspaces(nrm, np.full(n_planes, 0.5), kind="sphere")
-    g_up, z_up = _planes(body, np.eye(3), True)
-    g_dn, z_dn = _planes(body, np.eye(3), False)
-    return g_up[None], z_up[None], g_dn[None], z_dn[None]
-
-
-def _round_rss(interior: Interior, tem_offset_max: float) -> float:
-    """RSS of the interior under a round body (a sphere of the grain's ECD), same models as the facets.
-
-    A rounded grain shows brightness rising towards its rim (secondary electrons) or a
-    thickness dome (transmission) without facets; facet evidence is counted against the
-    better of this and a flat interior.
-    """
-    return float(interior_rss_batch(interior, *_round_planes(), edge_px=0.0, tem_offset_max=tem_offset_max)[0])
-
-
-def _flat_rss(interior: Interior) -> float:
-    """RSS of a featureless interior: one level plus a plane a x + b y."""
-    a = np.column_stack([np.ones_like(interior.x), interior.x, interior.y])
-    nm = a.T @ a
-    rhs = a.T @ interior.value
-    coef = np.linalg.solve(nm + np.eye(3) * 1e-12 * np.trace(nm), rhs)
-    v = interior.value
-    return float(max(v @ v - coef @ rhs, 0.0))
-
-
 @dataclass(frozen=True)
 class OutlineMatch:
     """A grain's outline compared with every shape of a library (:func:`match_outline`).
@@ -1146,7 +558,7 @@ def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
     -------
     OutlineMatch
     """
-    c = _check_poly(contour_xy, "contour_xy")
+    c = check_polygon(contour_xy, "contour_xy")
     _, area = polygon_centroid(c)
     sig = radial_signature(c, library.signatures.shape[-1])
     tau = max(outline_noise_px * pixel_scale / math.sqrt(area), outline_noise_floor)
@@ -1191,7 +603,7 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
         Cap on ``interior_weight`` times the interior's pixel count (the
         models are not exact; past this the evidence no longer grows).
     facet_edge_px, tem_offset_max : float
-        See :func:`_interior_rss` (``edge_px``, ``tem_offset_max``).
+        See :func:`interior_rss` (``edge_px``, ``tem_offset_max``).
     faces : tuple of str
         Views allowed (subset of :data:`VIEWS`).
     search : {'coarse', 'exhaustive', 'quick'}
@@ -1334,7 +746,7 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     if interior is not None and interior.value.size >= 30:
         level = float(np.mean(interior.value))
         if evidence:
-            featureless = min(_flat_rss(full), _round_rss(full, tem_offset_max))
+            featureless = min(flat_rss(full), round_rss(full, tem_offset_max))
             fchi = max(w_eff * (featureless - rmin) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
                     dbest, "; ".join(notes), score, fchi, level, sig)
@@ -1500,7 +912,6 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     return tot, shape_best, rmin, s2
 
 
-
 # ------------------------------------------------------------------ habit classes
 
 def class_scores(fit: AlphaFit, library: ModelLibrary, face: str | None = None) -> np.ndarray:
@@ -1525,40 +936,6 @@ def class_scores(fit: AlphaFit, library: ModelLibrary, face: str | None = None) 
     out = np.full(3, np.inf)
     np.minimum.at(out, cls, sc)
     return out
-
-
-def class_probabilities(fit: AlphaFit, library: ModelLibrary) -> np.ndarray:
-    """Posterior probability of each polyhedral class: cube, cuboctahedron, octahedron.
-
-    Parameters
-    ----------
-    fit : AlphaFit
-    library : ModelLibrary
-
-    Returns
-    -------
-    ndarray, shape (3,)
-        P(class) = sum over the grid alphas of the class of exp(-S(alpha) / 2),
-        normalised, with S(alpha) the score profiled over views (minimum).
-
-    Notes
-    -----
-    The score is -2 ln of a likelihood (times the view prior), so this is
-    Bayes' rule with alpha uniform over the model grid: a class wins by the
-    weight of all its alphas that fit, not by its single best one. Near
-    alpha = 3 the octahedron (every alpha >= 3 gives the same body) and the
-    slightly truncated octahedra fit about equally; the class whose alphas
-    fit over more of their range then carries more weight, so the choice
-    follows the grain's evidence rather than a fixed margin.
-    """
-    grid = library.grid
-    prof = np.full(grid.size, np.inf)
-    gi = np.searchsorted(grid, library.alphas - 1e-9)
-    np.minimum.at(prof, gi, fit.score)
-    w = np.exp(-0.5 * (prof - prof.min()))
-    cls = np.where(grid <= CUBE_ALPHA_MAX, 0, np.where(grid < OCTAHEDRON_ALPHA, 1, 2))
-    out = np.bincount(cls, w, minlength=3)
-    return out / out.sum()
 
 
 def polyhedral_class(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0) -> tuple[str, float]:
@@ -1660,7 +1037,7 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
     from scipy.optimize import minimize
     from scipy.spatial import ConvexHull
 
-    c = _check_poly(contour_xy, "contour_xy")
+    c = check_polygon(contour_xy, "contour_xy")
     pts = c[ConvexHull(c).vertices]
     if free is not None:
         f = c[np.asarray(free, bool)]
@@ -1685,56 +1062,3 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
 
 # ---------------------------------------------------------------- grain evidence
 
-def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
-    """Lab-frame contour and interior samples of one labelled grain.
-
-    Parameters
-    ----------
-    labels : ndarray of int, shape (rows, cols)
-        Label image (0 background).
-    signal : ndarray, shape (rows, cols)
-        Brightness ('facets') or transmitted intensity ('thickness').
-    mode : {'facets', 'thickness'}
-        Secondary-electron contrast: the brightness above the median of a
-        background ring around the grain is used; transmission contrast: the
-        attenuation -ln(I / I_bg) with I_bg the ring's median.
-    contour_px : ndarray, shape (k, 2)
-        Sub-pixel outline in pixel coordinates (x = col + 0.5 at pixel
-        centres, y down).
-    label : int
-        The grain's label.
-    erode_px : int
-        Pixels left out along the outline.
-
-    Returns
-    -------
-    contour_lab : ndarray, shape (k, 2) or None
-        Contour with y flipped (lab axes, y up), in pixels; None for fewer
-        than 3 vertices.
-    interior : Interior or None
-    """
-    c = np.asarray(contour_px, float)
-    if len(c) < 3:
-        return None, None
-    cen, area = polygon_centroid(c)
-    ecd = math.sqrt(4 * area / math.pi)
-    rows, cols = labels.shape
-    pad = 4
-    r0 = max(int(np.floor(c[:, 1].min())) - pad, 0)
-    r1 = min(int(np.ceil(c[:, 1].max())) + pad + 1, rows)
-    c0 = max(int(np.floor(c[:, 0].min())) - pad, 0)
-    c1 = min(int(np.ceil(c[:, 0].max())) + pad + 1, cols)
-    lab_crop = labels[r0:r1, c0:c1]
-    mask = lab_crop == label
-    crop = np.asarray(signal[r0:r1, c0:c1], float)
-    ring = (lab_crop == 0) & ~ndi.binary_dilation(mask, iterations=2)
-    bg = float(np.median(crop[ring])) if ring.any() else float(np.percentile(crop, 5 if mode == "facets" else 95))
-    if mode == "thickness":
-        if bg <= 0:
-            bg = float(np.max(crop))
-        crop = -np.log(np.clip(crop, 1e-3 * bg, None) / bg) if bg > 0 else np.zeros_like(crop)
-    else:
-        crop = crop - bg
-    contour_lab = np.column_stack([c[:, 0], -c[:, 1]])
-    interior = grain_interior(crop, mask, (cen[0] - c0, cen[1] - r0), ecd, mode, erode_px)
-    return contour_lab, interior
