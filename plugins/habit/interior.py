@@ -375,14 +375,17 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         th, rss = _solve_fixed(nm, rhs, vv, {})
         ok = (th[:, 0] >= -eps) & (th[:, 1] >= kmin * th[:, 0] - eps) & (th[:, 1] <= kmax * th[:, 0] + eps)
         best = np.where(ok, rss, np.inf)
-        best = np.minimum(best, _solve_fixed(nm, rhs, vv, {0: 0.0, 1: 0.0})[1])          # a = 0
-        for k in (kmin, kmax):
-            # b = k a: the pair becomes one unknown a on the column 1 + k sec
-            t = np.eye(6)[:, [0, 2, 3, 4, 5]]
-            t[1, 0] = k
-            nk = np.einsum("ia,cij,jb->cab", t, nm, t)
-            th, rss = _solve_fixed(nk, rhs @ t, vv, {})
-            best = np.where(th[:, 0] >= -eps, np.minimum(best, rss), best)
+        bad = np.flatnonzero(~ok)          # the unconstrained optimum is feasible: it is the optimum
+        if bad.size:
+            nb, rb, vb = nm[bad], rhs[bad], vv[bad]
+            sub = _solve_fixed(nb, rb, vb, {0: 0.0, 1: 0.0})[1]                      # a = 0
+            for k in (kmin, kmax):
+                # b = k a: the pair becomes one unknown a on the column 1 + k sec
+                t = np.eye(6)[:, [0, 2, 3, 4, 5]]
+                t[1, 0] = k
+                th, rss = _solve_fixed(np.einsum("ia,cij,jb->cab", t, nb, t), rb @ t, vb, {})
+                sub = np.where(th[:, 0] >= -eps, np.minimum(sub, rss), sub)
+            best[bad] = sub
         return best * scale
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
@@ -401,11 +404,17 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     amax = max(tem_offset_max * float(np.mean(v)), 0.0)
     best = np.full(c, np.inf)
     eps = 1e-12
-    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set
+    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set (the other
+    # sets only where the unconstrained optimum is not feasible)
+    rows = np.arange(c)
     for fixed in ({}, {1: 0.0}, {1: amax}, {0: 0.0}, {0: 0.0, 1: 0.0}, {0: 0.0, 1: amax}):
-        th, rss = _solve_fixed(nm, rhs, vv, fixed)
+        th, rss = _solve_fixed(nm[rows], rhs[rows], vv[rows], fixed)
         ok = (th[:, 0] >= -eps) & (th[:, 1] >= -eps) & (th[:, 1] <= amax + eps)
-        best = np.where(ok, np.minimum(best, rss), best)
+        best[rows] = np.where(ok, np.minimum(best[rows], rss), best[rows])
+        if not fixed:
+            rows = rows[~ok]
+            if rows.size == 0:
+                break
     return best
 
 
