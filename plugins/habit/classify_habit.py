@@ -47,11 +47,12 @@ Decision
    both contrasts: a flat square is a cube whether it is bright on dark or
    dark on bright.
 
-A grain cut from a touching neighbour (``split``) is judged by the outline
-its true edges imply: the smallest centrally symmetric convex outline that
-holds the outline away from the cut (:func:`free_edge`,
-:func:`engine.complete_by_symmetry`; every Wulff projection along [100] and
-[111] is centrally symmetric), so a cut cube stays a cube. Its area and ECD stay
+A grain cut from a touching neighbour (``split``) whose cut outline fits
+nothing is judged by the outline its true edges imply: the smallest
+centrally symmetric convex outline that holds the outline away from the cut
+(:func:`free_edge`, :func:`engine.complete_by_symmetry`; every Wulff
+projection along [100] and [111] is centrally symmetric), so a cut cube
+stays a cube. A cut plate or rod that still fits its family keeps that. Its area and ECD stay
 those of the visible part (measure-grains).
 
 The full interior fit is run only where steps 1-4 do not decide from the
@@ -415,9 +416,6 @@ def classify_frame(frame, params=None) -> dict:
     for i in range(n):
         lab = int(frame.grains["label"][i])
         outline_px = contours[i]
-        if split[i] and len(outline_px) >= 8:
-            # cut from a touching neighbour: judge the outline its true edges imply
-            outline_px = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab))
         contour, interior = en.grain_evidence(labels, signal, mode, outline_px, lab, p["erode_px"])
         if contour is None or len(contour) < 8:
             cols["habit_note"][i] = "outline too small"
@@ -426,9 +424,16 @@ def classify_frame(frame, params=None) -> dict:
         if hull is not None and not all(np.isfinite(hull)):
             hull = None
         habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull)
-        if split[i]:
-            ev["habit_note"] = "; ".join(x for x in (ev["habit_note"], "split grain: outline completed by "
-                                                     "central symmetry") if x)
+        if split[i] and habit == "irregular":
+            # cut from a touching neighbour, and the cut outline fits nothing: judge the
+            # outline its true edges imply (a centrally symmetric body)
+            done = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab))
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, done, lab, p["erode_px"])
+            if contour2 is not None and len(contour2) >= 8:
+                res = classify_grain(contour2, interior2 if p["interior"] else None, p)
+                if res[0] != "irregular":
+                    habit, score, ev, fit = res
+                    ev["habit_note"] = "split grain: outline completed by central symmetry"
         cols["habit"][i], cols["habit_score"][i] = habit, score
         for k, v in ev.items():
             cols[k][i] = v
