@@ -220,7 +220,7 @@ class ModelLibrary:
 _SYMMETRY = {"100": 90.0, "111": 120.0, "110": 180.0}
 
 
-def view_probability(alpha: float, view: str, floor: float = 0.02) -> float:
+def view_probability(alpha: float, view: str, floor: float = 0.02, body=None) -> float:
     """Prior probability that a Wulff body lies so that it is seen along ``view``.
 
     Parameters
@@ -230,6 +230,8 @@ def view_probability(alpha: float, view: str, floor: float = 0.02) -> float:
     view : {'100', '111', '110'}
     floor : float
         Probability kept for a view that is no face of the body.
+    body : Polyhedron, optional
+        ``crystal.wulff_polyhedron(alpha)`` when the caller has it (any scale).
 
     Returns
     -------
@@ -243,7 +245,7 @@ def view_probability(alpha: float, view: str, floor: float = 0.02) -> float:
     likely to end up on the substrate). The kinetic Wulff bodies here have
     {100} and {111} faces only, so a view along [110] always gets the floor.
     """
-    p = cr.wulff_polyhedron(float(alpha))
+    p = cr.wulff_polyhedron(float(alpha)) if body is None else body
     fam = np.array([cr.face_family(m) for m in p.face_miller])
     share = float(p.face_areas[fam == view].sum() / p.surface_area)
     return max(share, float(floor))
@@ -287,15 +289,17 @@ def _build_library(alpha_min, alpha_max, step, n_angles, view_floor) -> ModelLib
         raise ValueError(f"view_floor must be in (0, 1], got {view_floor!r}")
     grid = np.round(np.arange(alpha_min, alpha_max + step / 2, step), 6)
     alphas, faces, sigs, ids, bodies, rots, sym, prior = [], [], [], [], [], [], [], []
-    cache = {}
+    cache, solids = {}, {}
     for face in VIEWS:
         rot = cr.resting_rotation(face)
         for a in grid:
             key = (face, min(max(float(a), CUBE_SHAPE_ALPHA), OCTAHEDRON_ALPHA))
             if key not in cache:
-                body = cr.wulff_polyhedron(key[1])
+                if key[1] not in solids:
+                    solids[key[1]] = cr.wulff_polyhedron(key[1])
+                body = solids[key[1]]
+                pv = view_probability(key[1], face, view_floor, body)
                 body = body.scaled(math.sqrt((math.pi / 4) / cr.projected_area(body, rot)))
-                pv = view_probability(key[1], face, view_floor)
                 outline = cr.project(body, rot)
                 sig_levels = np.array([radial_signature(rounded_outline(outline, rho), n)
                                        for rho in ROUNDING_LEVELS])
