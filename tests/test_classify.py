@@ -10,6 +10,7 @@ from skimage.draw import ellipse
 
 from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit.vocabulary import HABITS
 from grainhabit.plugins.measure import outline as ol
 
 from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
@@ -38,17 +39,18 @@ def test_square_with_shaded_corner_facets_is_cube():
     assert cols["facet_chi2"][0] > cl.STEP.defaults()["facet_chi2_min"]
 
 
-def test_opaque_uniform_square_is_cube_but_pale_thin_square_plate_is_not():
-    # TEM: a cube is thick (nearly opaque), a thin square plate of the same
-    # outline is semi-transparent; both have a uniform interior
+@pytest.mark.parametrize("mu_per_ecd", [4.0, 0.4])
+def test_uniform_square_is_cube_in_either_contrast(mu_per_ecd):
+    # a square outline with a flat interior is a cube seen on its top face
+    # (Wulff construction: the {100} outline is square for alpha <= 1.5),
+    # bright on dark (SEM) or dark on bright (TEM), opaque or semi-transparent
     body, rot = body_and_rotation(1.0, "100", 10.0)
-    thick = draw_crystal_frame(body, rot, contrast="dark", mu_per_ecd=4.0)
-    habit, cols = habit_of(thick)
-    assert habit == "cube"
-    thin = draw_crystal_frame(body, rot, contrast="dark", mu_per_ecd=0.4)
-    habit, cols = habit_of(thin)
-    assert habit != "cube"
-    assert cols["interior_transmission"][0] > 0.5
+    for contrast in ("bright", "dark"):
+        habit, cols = habit_of(draw_crystal_frame(body, rot, contrast=contrast, mu_per_ecd=mu_per_ecd))
+        assert habit == "cube"
+        # the outline only bounds alpha: NaN, with the bound carried by the range
+        assert np.isnan(cols["fit_alpha"][0])
+        assert cols["fit_alpha_lo"][0] == pytest.approx(0.5) and 1.0 <= cols["fit_alpha_hi"][0] <= 1.6
 
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
@@ -140,7 +142,7 @@ def test_hook_returns_columns_for_every_grain():
     body, rot = body_and_rotation(2.0, "100", 0.0)
     frame = draw_crystal_frame(body, rot)
     out = cl.grainhabit_classify(frame, cl.STEP.resolve({}))
-    assert set(cl.HABITS) >= set(out.grains["habit"])
+    assert set(HABITS) >= set(out.grains["habit"])
     assert 0.0 <= out.grains["habit_score"][0] <= 1.0
     for c in cl.STEP.outputs:
         assert c.name in out.grains
@@ -158,22 +160,26 @@ def test_outline_shortcut_gives_the_same_habit_as_the_full_fit(monkeypatch):
     rot = cr.in_plane_rotation(12.0) @ cr.resting_rotation("111")
     rect = np.array([[-60, -12], [60, -12], [60, 12], [-60, 12]], float)
     body, brot = body_and_rotation(3.0, "111", 5.0)
+    cube, crot = body_and_rotation(1.0, "100", 21.0)
     frames = [draw_polygon_frame(cr.project(plate, rot) * 70),
               draw_polygon_frame(cr.project(cr.tabular_prism(0.05, 0.1), rot) * 70),
               draw_polygon_frame(rect, size=160),
-              draw_crystal_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5)]
-    searches = []
-    real = cl.gr.fit_alpha_cached
+              draw_crystal_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5),
+              draw_crystal_frame(cube, crot, contrast="dark", noise=0.02),
+              draw_crystal_frame(cube, crot, contrast="bright", noise=0.02)]
+    placed = []
+    real = cl.en.fit_alpha
 
-    def spy(*a, **kw):
-        searches.append(kw.get("search"))
-        return real(*a, **kw)
+    def spy(contour, interior=None, **kw):
+        placed.append(interior is not None and kw.get("search") != "quick")
+        return real(contour, interior, **kw)
 
-    monkeypatch.setattr(cl.gr, "fit_alpha_cached", spy)
+    monkeypatch.setattr(cl.en, "fit_alpha", spy)
     short = [cl.classify_frame(f) for f in frames]
-    assert "coarse" not in searches[:3]          # the plate and rod outlines decided alone
+    assert not any(placed[:3])                      # plate and rod outlines decided alone
     monkeypatch.setattr(cl, "outline_decides", lambda *a, **k: False)
+    monkeypatch.setattr(cl.en, "outline_settles", lambda *a, **k: False)
     full = [cl.classify_frame(f) for f in frames]
     assert [c["habit"][0] for c in short] == [c["habit"][0] for c in full]
     assert [c["habit"][0] for c in short] == ["tabular_hexagon", "tabular_triangle", "rod",
-                                              "tabular_hexagon"]
+                                              "tabular_hexagon", "cube", "cube"]

@@ -1,4 +1,5 @@
-"""Tests of the alpha fit (fit-growth-ratio) against closed-form geometry and drawn model grains.
+"""Tests of the habit engine's alpha fit and of fit-growth-ratio, against closed-form geometry,
+scipy and drawn model grains.
 
 Drawn grains (skimage.draw) are invented test data.
 """
@@ -8,13 +9,19 @@ import numpy as np
 import pytest
 
 from grainhabit.plugins.habit import crystal as cr
-from grainhabit.plugins.habit import fit_growth_ratio as gr
+from grainhabit.plugins.habit import classify_habit as cl
+from grainhabit.plugins.habit import engine as gr
+from grainhabit.plugins.habit import fit_growth_ratio as fg
 from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
 
 
+def evidence(frame):
+    signal, mode = cl.interior_signal(frame)
+    return gr.grain_evidence(frame.labels, signal, mode, cl.frame_contours(frame)[0], 1)
+
+
 def fit_drawn(frame, interior=True):
-    contours = gr.contours_for(frame)
-    contour, inner = gr.grain_evidence(frame, contours, 0)
+    contour, inner = evidence(frame)
     return gr.fit_alpha(contour, inner if interior else None)
 
 
@@ -94,7 +101,9 @@ def test_square_outline_gives_upper_bound_1_5():
     # ~1.5: at 70 px a corner cut of alpha = 1.6 is ~4 px along the side,
     # about what one pixel of outline rounding hides, so up to ~1.6 is allowed
     assert 1.5 <= fit.alpha_hi <= 1.65
-    assert "upper bound" in fit.note
+    # design contract: a square only bounds alpha, so alpha itself is NaN
+    assert np.isnan(fit.alpha) and fit.alpha_best <= 1.5
+    assert "only bounded: alpha <=" in fit.note
 
 
 def test_octahedron_on_111_gives_lower_bound_near_3():
@@ -104,23 +113,27 @@ def test_octahedron_on_111_gives_lower_bound_near_3():
     assert fit.face == "111"
     assert fit.alpha_hi == pytest.approx(lib.grid[-1])
     assert 2.6 <= fit.alpha_lo <= 3.0
-    assert "lower bound" in fit.note
+    assert np.isnan(fit.alpha) and "only bounded: alpha >=" in fit.note
 
 
 def test_hook_writes_nan_with_reason_for_non_polyhedral():
     body, rot = body_and_rotation(2.0, "100", 0.0)
-    frame = draw_crystal_frame(body, rot)
+    frame = cl.grainhabit_classify(draw_crystal_frame(body, rot), cl.STEP.resolve({}))
     for habit, word in (("tabular_hexagon", "edge_ratio"), ("rod", "rod"), ("irregular", "irregular")):
         f = frame.with_columns(habit=np.array([habit], object))
-        out = gr.grainhabit_fit_growth(f, gr.STEP.resolve({}))
+        out = fg.grainhabit_fit_growth(f, fg.STEP.resolve({}))
         assert np.isnan(out.grains["alpha"][0]) and np.isnan(out.grains["alpha_lo"][0])
         assert word in out.grains["alpha_note"][0]
     f = frame.with_columns(habit=np.array(["cuboctahedron"], object))
-    out = gr.grainhabit_fit_growth(f, gr.STEP.resolve({}))
+    out = fg.grainhabit_fit_growth(f, fg.STEP.resolve({}))
     assert out.grains["alpha"][0] == pytest.approx(2.0, abs=0.1)
+    assert out.grains["alpha_lo"][0] <= 2.0 <= out.grains["alpha_hi"][0]
     cut = frame.with_columns(habit=np.array(["cube"], object), edge_cut=np.array([True]))
-    out = gr.grainhabit_fit_growth(cut, gr.STEP.resolve({}))
+    out = fg.grainhabit_fit_growth(cut, fg.STEP.resolve({}))
     assert np.isnan(out.grains["alpha"][0]) and "border" in out.grains["alpha_note"][0]
+    with pytest.raises(ValueError, match="classify-habit"):
+        fg.grainhabit_fit_growth(draw_crystal_frame(body, rot).with_columns(habit=np.array(["cube"], object)),
+                                 fg.STEP.resolve({}))
 
 
 def test_bad_inputs_are_refused():
@@ -170,14 +183,15 @@ def test_radial_signature_equals_all_pairs_solution():
 def _drawn(alpha, face, rot_deg, contrast, noise=0.02, seed=0):
     body, rot = body_and_rotation(alpha, face, rot_deg)
     frame = draw_crystal_frame(body, rot, contrast=contrast, noise=noise, seed=seed)
-    return gr.grain_evidence(frame, gr.contours_for(frame), 0)
+    return evidence(frame)
 
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
 def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
-    # reference: the single-model least-squares fit (_interior_rss)
+    # reference: the single-model fit (interior_rss): numpy least squares for SEM,
+    # scipy.optimize.lsq_linear (bounded least squares) for TEM
     lib = gr.model_library()
-    tab = gr.library_tables(lib)
+    tab = lib.tables
     _, inner = _drawn(2.0, "100", 17.0, contrast)
     rng = np.random.default_rng(1)
     uniq = np.unique(lib.shape_id)
@@ -189,19 +203,19 @@ def test_batched_interior_fit_equals_one_model_at_a_time(contrast):
         i = int(np.flatnonzero(lib.shape_id == uniq[u])[0])
         rot = cr.in_plane_rotation(360.0 * k / 256) @ lib.rotations[i]
         # float32 geometry: a pixel exactly on a facet edge may change side
-        assert r == pytest.approx(gr._interior_rss(inner, lib.bodies[i], rot), rel=1e-5)
+        assert r == pytest.approx(gr.interior_rss(inner, lib.bodies[i], rot), rel=1e-5)
 
 
 def test_batched_outline_distances_match_shift_distances():
     lib = gr.model_library()
-    tab = gr.library_tables(lib)
+    tab = lib.tables
     contour, _ = _drawn(1.8, "100", 9.0, "bright")
     sig = gr.radial_signature(contour, 256)
     shifts, dist, valid = gr.outline_candidates(sig, tab)
     uniq = np.unique(lib.shape_id)
     for u in (0, 10, 60, uniq.size - 1):
         i = int(np.flatnonzero(lib.shape_id == uniq[u])[0])
-        d = gr.shift_distances(sig, lib.signatures[i])
+        d = gr.shift_distances(sig, lib.signatures[0, i])
         assert dist[u, 0] == pytest.approx(d.min(), abs=1e-9)
         assert np.allclose(dist[u][valid[u]], d[shifts[u][valid[u]]], atol=1e-9)
 
@@ -214,7 +228,8 @@ def test_coarse_search_gives_the_exhaustive_answer(alpha, face, rot_deg, contras
     contour, inner = _drawn(alpha, face, rot_deg, contrast, seed=int(10 * alpha))
     ref = gr.fit_alpha(contour, inner, search="exhaustive")
     fast = gr.fit_alpha(contour, inner, search="coarse")
-    assert abs(fast.alpha - ref.alpha) <= 0.02
+    assert abs(fast.alpha_best - ref.alpha_best) <= 0.02
+    assert np.isnan(fast.alpha) == np.isnan(ref.alpha)
     assert fast.alpha_lo == pytest.approx(ref.alpha_lo, abs=0.021)
     assert fast.alpha_hi == pytest.approx(ref.alpha_hi, abs=0.021)
     assert fast.face == ref.face

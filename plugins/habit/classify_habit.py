@@ -1,62 +1,72 @@
-"""Step ``classify-habit``: the crystal habit of every grain, from outline and interior.
+"""Step ``classify-habit``: the crystal habit of every grain, and the alpha fit it rests on.
 
 Evidence, per grain
 -------------------
-*Outline.* The sub-pixel outline of the grain's label (the one measure-grains
-uses) is compared, by the scale- and rotation-invariant radial-signature
-distance of :mod:`grainhabit.plugins.habit.fit_growth_ratio`, with three model families: Wulff shapes at
-rest on {100} or {111} (cube ... octahedron), twinned {111} plates (a
-triangle with cut corners, short/long edge ratio e from 0 to 1) and {100}
-rods (rectangles of length/width 1.6 ... 16). Distances are in units of the
-outline noise ``tau`` (:func:`grainhabit.plugins.habit.fit_growth_ratio.fit_alpha`). Feret ratio and
-solidity come from the outline's convex hull.
+*Outline.* The sub-pixel outline of the grain's label is compared, by the
+scale- and rotation-invariant radial-signature distance of
+:mod:`engine`, with four model families: Wulff shapes seen along [100],
+[111] or [110] (cube ... octahedron), twinned {111} plates (a triangle with
+cut corners, short/long edge ratio e from 0 to 1), {100} rods (rectangles of
+length/width 1.6 ... 16) and the disc. Distances are in units of the outline
+noise ``tau`` (:func:`engine.match_outline`). Feret ratio and solidity come
+from the outline's convex hull.
 
 *Interior.* The grain's pixels (rim left out) are fitted by the placed Wulff
-models: in SEM contrast (bright polarity) each facet has its own uniform
-brightness, in TEM contrast (dark polarity) the attenuation -ln(I/I_bg) is
-linear in projected thickness. ``facet_chi2`` is how much better the best
-faceted model explains the interior than a featureless one (one level and a
+models (:func:`engine.fit_alpha`): facet brightness following the facet tilt
+in secondary-electron contrast, attenuation following the projected
+thickness in transmission contrast. ``facet_chi2`` is how much better the
+best model explains the interior than a featureless one (one level and a
 plane): large for an octahedron on {111} (inclined facets, or thickness
-peaking in the middle), near zero for a flat plate. In TEM contrast the mean
-transmission tells a thin plate (semi-transparent) from a thick 3-D grain
-(nearly opaque): ``interior_transmission``.
+peaking in the middle), near zero for a flat plate or a cube's top face.
 
 Decision
 --------
 1. ``irregular`` if the outline is concave (solidity below ``min_solidity``:
    aggregates, unsplit clusters) or fits none of the families within
    ``irregular_misfit`` noise units (rounded, ripened, lumpy).
-2. ``rod`` if the rod family fits best and the Feret ratio is below
+2. ``irregular`` with a low ``habit_score`` if the grain is too small for
+   its shape to be resolved: the disc fits its outline within ``tolerance``
+   of the best model family and its interior shows no facets. This follows
+   from the outline noise (a pixel-scale quantity) and the grain's size,
+   not from a size threshold.
+3. ``rod`` if the rod family fits best and the Feret ratio is below
    ``rod_feret_ratio``.
-3. The plate family fits clearly better than any Wulff outline (Wulff
-   projections are centrally symmetric; a triangle or a hexagon with three long
-   and three short edges is not): ``tabular_triangle`` where the fitted edge
-   ratio is below ``triangle_edge_ratio``, else ``tabular_hexagon``.
-4. Otherwise the outline is a square, octagon, hexagon or 12-gon. A flat
-   interior (``facet_chi2 < facet_chi2_min``) with a hexagonal outline that
-   the plate family fits is ``tabular_hexagon`` (in TEM only if
-   semi-transparent; an octahedron on {111} always shows inclined facets or a
-   thickness peak). A flat square is a cube in SEM or when opaque in TEM (a
-   perfect cube shows only its top face), but ``irregular`` when
-   semi-transparent in TEM (a thin {100} plate: the fixed vocabulary has no
-   class for it). A flat octagon, 12-gon or disc fits no model: ``irregular``. Everything else is polyhedral
-   and named by alpha (design contract): ``cube`` alpha <= 1.5,
-   ``cuboctahedron`` 1.5 < alpha < 3, ``octahedron`` alpha >= 3, taking the
-   class whose best alpha scores lowest, with the octahedron preferred within
-   ``octahedron_margin`` (:func:`polyhedral_class`).
+4. The plate family fits clearly better than any Wulff outline (Wulff
+   projections along [100] and [111] are centrally symmetric; a triangle or
+   a hexagon with three long and three short edges is not):
+   ``tabular_triangle`` where the fitted edge ratio is below
+   ``triangle_edge_ratio``, else ``tabular_hexagon``.
+5. A hexagonal outline with a featureless interior that the plate family
+   fits is ``tabular_hexagon`` (an octahedron on {111} shows inclined facets
+   or a thickness relief in either contrast).
+6. Everything else is polyhedral and named by alpha (thresholds in
+   :mod:`vocabulary`): ``cube`` alpha <= 1.5, ``cuboctahedron``
+   1.5 < alpha < 3, ``octahedron`` alpha >= 3; a cuboctahedron needs
+   evidence of its truncation, i.e. neither end member fits within
+   ``tolerance`` (:func:`engine.polyhedral_class`). The same rule holds in
+   both contrasts: a flat square is a cube whether it is bright on dark or
+   dark on bright.
 
-The Wulff fit with the interior (:func:`grainhabit.plugins.habit.fit_growth_ratio.fit_alpha`, coarse
-search) is run only when steps 1-3 do not already decide from the outline
-with the smallest Wulff misfit (:func:`outline_decides`; the habit is then
-provably the same). For grains the outline decides, ``facet_chi2`` comes from
-the eight outline-best Wulff models (``search='quick'``) and the Wulff misfit
-is the smallest one.
+A grain cut from a touching neighbour (``split``) whose cut outline fits
+nothing is judged by the outline its true edges imply: the smallest
+centrally symmetric convex outline that holds the outline away from the cut
+(:func:`free_edge`, :func:`engine.complete_by_symmetry`; every Wulff
+projection along [100] and [111] is centrally symmetric), so a cut cube
+stays a cube. A cut plate or rod that still fits its family keeps that. Its area and ECD stay
+those of the visible part (measure-grains).
 
-``habit_score`` is the relative likelihood of that class for polyhedral
-grains (0.7 times it when the interior is flat), and for the other
-classes a product of logistic margins of the deciding quantities (documented
-in :func:`_margin`); it is a confidence in [0, 1], not a calibrated
-probability.
+The full interior fit is run only where steps 1-4 do not decide from the
+outline (the habit is then provably the same, :func:`outline_decides`).
+
+The fit's result is written to the frame (``fit_alpha``, ``fit_alpha_lo``,
+``fit_alpha_hi``, ``fit_note``, ``rest_face``, ``fit_rotation_deg``,
+``outline_misfit``), where ``fit-growth-ratio`` reads it: one fit per grain,
+one parameter set (this step's), nothing kept between steps or frames.
+
+``habit_score`` is the relative likelihood of the class for polyhedral
+grains, and for the other classes a product of logistic margins of the
+deciding quantities (:func:`_margin`); a confidence in [0, 1], not a
+calibrated probability.
 
 References
 ----------
@@ -74,17 +84,15 @@ from scipy.spatial import ConvexHull
 from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
-from grainhabit.plugins.habit.vocabulary import HABITS
-from grainhabit.plugins.habit import fit_growth_ratio as gr
+from grainhabit.plugins.habit import engine as en
 
 GRAINHABIT_API = 1
-
 
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="1.0",
-    summary="Crystal habit from outline shape and interior facets or thickness contrast.",
+    version="2.0",
+    summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
               doc="Outlines less convex than this (area / convex-hull area) are irregular."),
@@ -98,20 +106,21 @@ STEP = StepInfo(
               doc="Plates with a short/long edge ratio below this are tabular_triangle."),
         Param("facet_chi2_min", float, 12.0, low=0.0,
               doc="Interior facet evidence (chi-square units) above which a grain counts as faceted."),
-        Param("plate_transmission", float, 0.3, low=0.0, high=1.0,
-              doc="TEM: a flat grain transmitting more than this fraction of the background is a thin plate."),
-        Param("octahedron_margin", float, 0.5, low=0.0,
-              doc="Score margin within which the octahedron is preferred to an alpha just under 3."),
-        Param("erode_px", int, 2, unit="px", low=0,
-              doc="Pixels left out along the outline before reading the interior."),
-    ),
+    ) + en.FIT_PARAMS,
     outputs=(
-        Column("outline_class", "", "best outline family: wulff, plate or rod"),
+        Column("outline_class", "", "best outline family: wulff, plate, rod or disc"),
         Column("outline_misfit_ratio", "1", "best outline misfit over the outline noise"),
         Column("facet_chi2", "1", "interior evidence for facets over a featureless interior"),
-        Column("interior_transmission", "1", "TEM: mean interior transmission I / I_bg (NaN in SEM)"),
         Column("plate_edge_ratio", "1", "short/long edge ratio of the best-fitting plate outline"),
         Column("rod_aspect", "1", "length/width of the best-fitting rod outline"),
+        Column("habit_note", "", "why the habit is irregular, where the outline alone does not say"),
+        Column("fit_alpha", "1", "alpha of the Wulff fit where determined (NaN where only bounded)"),
+        Column("fit_alpha_lo", "1", "lower end of the alpha range of the Wulff fit"),
+        Column("fit_alpha_hi", "1", "upper end of the alpha range of the Wulff fit"),
+        Column("fit_note", "", "what bounds the fitted alpha range"),
+        Column("rest_face", "", "view of the best Wulff model: 100, 111 or 110"),
+        Column("fit_rotation_deg", "deg", "in-plane rotation of the best model, counter-clockwise on screen"),
+        Column("outline_misfit", "1", "RMS radial-signature distance of the best model / sqrt(area)"),
     ),
 )
 
@@ -120,7 +129,7 @@ STEP = StepInfo(
 
 @functools.lru_cache(maxsize=4)
 def family_signatures(n_angles: int = 256):
-    """Radial signatures of the plate and rod families.
+    """Radial signatures and spectra of the plate and rod families (built once per size).
 
     Parameters
     ----------
@@ -130,43 +139,44 @@ def family_signatures(n_angles: int = 256):
     -------
     plate_e : ndarray, shape (p,)
         Edge ratios of the plates (0 triangle ... 1 regular hexagon).
-    plate_sig : ndarray, shape (p, n_angles)
+    plate : tuple
+        (signatures (p, n_angles), conjugate spectra, squared norms).
     rod_aspect : ndarray, shape (q,)
         Length / width of the rods.
-    rod_sig : ndarray, shape (q, n_angles)
+    rod : tuple
+        As ``plate``.
     """
     e = np.linspace(0.0, 1.0, 51)
     rot = cr.resting_rotation("111")
-    psig = np.array([gr.radial_signature(cr.project(cr.tabular_prism(v, 0.1), rot), n_angles)
-                     for v in e])
+    psig = np.array([en.radial_signature(cr.project(cr.tabular_prism(v, 0.1), rot), n_angles) for v in e])
     asp = np.geomspace(1.6, 16.0, 40)
     r100 = cr.resting_rotation("100")
-    rsig = np.array([gr.radial_signature(cr.project(cr.rod_prism(v), r100), n_angles) for v in asp])
-    return e, psig, asp, rsig
+    rsig = np.array([en.radial_signature(cr.project(cr.rod_prism(v), r100), n_angles) for v in asp])
+
+    def spectra(s):
+        return s, np.conj(np.fft.rfft(s, axis=1)), np.einsum("ij,ij->i", s, s)
+
+    return e, spectra(psig), asp, spectra(rsig)
 
 
-_SPECTRA: dict = {}
+def best_family(sig, family) -> tuple[float, int]:
+    """Smallest signature distance over a model family and its index.
 
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+    family : tuple
+        (signatures, conjugate spectra, squared norms) from :func:`family_signatures`.
 
-def _best_family(sig, fam_sig):
-    """Smallest signature distance over a family and its index.
-
-    Notes
-    -----
-    The minimum over shifts of :func:`grainhabit.plugins.habit.fit_growth_ratio.shift_distances` for
-    every family member at once: one inverse FFT of the observed spectrum
-    times the stored conjugate spectra of the family (computed once per
-    family array).
+    Returns
+    -------
+    distance : float
+        min over members and cyclic shifts of :func:`engine.shift_distances`.
+    index : int
+        The member that attains it.
     """
-    fam_sig = np.asarray(fam_sig, float)
-    key = (id(fam_sig), fam_sig.shape)
-    hit = _SPECTRA.get(key)
-    if hit is None or hit[0] is not fam_sig:
-        hit = (fam_sig, np.conj(np.fft.rfft(fam_sig, axis=1)), np.einsum("ij,ij->i", fam_sig, fam_sig))
-        if len(_SPECTRA) > 16:
-            _SPECTRA.clear()
-        _SPECTRA[key] = hit
-    _, spec, sq = hit
+    _, spec, sq = family
     a = np.asarray(sig, float)
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
     d2 = (a @ a + sq[:, None] - 2.0 * cc) / a.size
@@ -191,7 +201,7 @@ def hull_shape(contour) -> tuple[float, float, float]:
         distance, in the contour's unit.
     """
     c = np.asarray(contour, float)
-    _, area = gr.polygon_centroid(c)
+    _, area = en.polygon_centroid(c)
     hull = ConvexHull(c)
     h = c[hull.vertices]
     fmax = float(np.max(np.linalg.norm(h[:, None] - h[None], axis=-1)))
@@ -208,61 +218,6 @@ def _margin(value, threshold, width):
     return float(1.0 / (1.0 + math.exp(-max(min(z, 50.0), -50.0))))
 
 
-def class_scores(fit: gr.AlphaFit, library: gr.ModelLibrary, face: str | None = None) -> np.ndarray:
-    """Best score of the fit within each alpha class: cube, cuboctahedron, octahedron.
-
-    Parameters
-    ----------
-    fit : AlphaFit
-    library : ModelLibrary
-    face : str, optional
-        Only models resting on this face ('100' or '111'); default both.
-
-    Returns
-    -------
-    ndarray, shape (3,)
-        min of S(alpha) (profiled over faces) over alpha <= 1.5, 1.5 < alpha < 3
-        and alpha >= 3 (design contract); inf where the class has no model.
-    """
-    grid = library.grid
-    prof = np.full(grid.size, np.inf)
-    gi = np.searchsorted(grid, library.alphas - 1e-9)
-    sc = fit.score if face is None else np.where(np.asarray(library.faces) == face, fit.score, np.inf)
-    np.minimum.at(prof, gi, sc)
-    cls = np.where(grid <= 1.5, 0, np.where(grid < 3.0, 1, 2))
-    return np.array([prof[cls == k].min() if np.any(cls == k) else np.inf for k in range(3)])
-
-
-def polyhedral_class(fit: gr.AlphaFit, library: gr.ModelLibrary, octahedron_margin: float = 0.5
-                     ) -> tuple[str, float]:
-    """Name a Wulff fit by alpha (design contract) with a relative-likelihood score.
-
-    Parameters
-    ----------
-    fit : AlphaFit
-    library : ModelLibrary
-    octahedron_margin : float
-        The octahedron (alpha >= 3, one body) is taken when its score is within
-        this of the best: outline blur rounds the six corners of an
-        octahedron's hexagon, which a barely truncated (alpha just under 3)
-        model then fits marginally better.
-
-    Returns
-    -------
-    habit : str
-        'cube' (alpha <= 1.5), 'cuboctahedron' (1.5 < alpha < 3) or 'octahedron'.
-    score : float
-        exp(-S_c / 2) / sum_k exp(-S_k / 2) of the chosen class, S_k the class
-        scores of :func:`class_scores`.
-    """
-    s = class_scores(fit, library)
-    k = int(np.argmin(s))
-    if k == 1 and s[2] <= s[1] + octahedron_margin:
-        k = 2
-    w = np.exp(-0.5 * (s - s.min()))
-    return ("cube", "cuboctahedron", "octahedron")[k], float(w[k] / w.sum())
-
-
 # ------------------------------------------------------------------ per grain
 
 def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
@@ -272,7 +227,7 @@ def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
     ----------
     ratios : array_like, shape (3,)
         Outline misfits over the outline noise of the best Wulff outline
-        (the smallest, interior left out), the plate and the rod family.
+        (interior left out), the plate and the rod family.
     solidity, feret_ratio : float
     params : dict
         Resolved parameters of this step.
@@ -298,165 +253,208 @@ def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
                 or r[0] ** 2 - r[1] ** 2 > p["plate_margin"])
 
 
-def classify_grain(contour_lab, interior, params, pixel_scale=1.0, transmission=float("nan")):
-    """Habit of one grain.
+def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
+    """Habit of one grain, with the Wulff fit it rests on.
 
     Parameters
     ----------
     contour_lab : ndarray, shape (k, 2)
         Outline in lab axes (y up), pixels.
     interior : Interior or None
-        From :func:`grainhabit.plugins.habit.fit_growth_ratio.grain_interior`.
+        From :func:`engine.grain_evidence`.
     params : dict
         Resolved parameters of this step.
     pixel_scale : float
         Pixel length in the contour's unit.
-    transmission : float
-        TEM mean transmission I / I_bg inside the grain (NaN for SEM).
+    hull : (float, float), optional
+        Solidity and Feret ratio (min/max) of the grain's outline when
+        measure-grains has them already; else from :func:`hull_shape`.
 
     Returns
     -------
-    dict
-        ``habit``, ``habit_score`` and the extra columns of this step.
+    habit : str
+    habit_score : float
+    columns : dict
+        The evidence columns of this step for this grain.
+    fit : AlphaFit
     """
     p = params
-    kw = gr.fit_kwargs(None)
-    kw["pixel_scale"] = pixel_scale
+    kw = en.fit_options(p)
     lib = kw["library"]
-    # outline first: the best Wulff outline (no interior) with facet evidence
-    # from the outline-best models only
-    fit = gr.fit_alpha_cached(contour_lab, interior, **{**kw, "search": "quick"})
-    _, area = gr.polygon_centroid(contour_lab)
-    tau = max(0.25 * pixel_scale / math.sqrt(area), 0.003)
-    sig = fit.signature
-    pe, psig, ra, rsig = family_signatures(lib.signatures.shape[1])
-    d_plate, ip = _best_family(sig, psig)
-    d_rod, ir = _best_family(sig, rsig)
-    solidity, fmin, fmax = hull_shape(contour_lab)
-    feret_ratio = fmin / fmax
-    if not outline_decides(np.array([fit.outline_misfit, d_plate, d_rod]) / tau, solidity, feret_ratio, p):
-        fit = gr.fit_alpha_cached(contour_lab, interior, **kw)
-    d_wulff = fit.outline_misfit
-    ratios = np.array([d_wulff, d_plate, d_rod]) / tau
-    best = int(np.argmin(ratios))
-    out = {
+    match = en.match_outline(contour_lab, lib, pixel_scale, p["outline_noise_px"], p["outline_noise_floor"],
+                             p["corner_radius_px"])
+    tau = match.tau
+    # outline first: the best Wulff outline alone
+    fit = en.fit_alpha(contour_lab, None, **kw, match=match)
+    sig = match.signature
+    pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1])
+    d_plate, ip = best_family(sig, plate)
+    d_rod, ir = best_family(sig, rod)
+    d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
+    if hull is None:
+        solidity, fmin, fmax = hull_shape(contour_lab)
+        feret_ratio = fmin / fmax
+    else:
+        solidity, feret_ratio = hull
+    o_ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
+    unresolved = o_ratios[3] ** 2 - o_ratios[:3].min() ** 2 < p["tolerance"]
+    if interior is not None:
+        if not outline_decides(o_ratios[:3], solidity, feret_ratio, p) \
+                and not en.outline_settles(fit, lib, p["tolerance"]):
+            fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
+        elif unresolved:
+            # facet evidence from the outline-best models, for the resolution test
+            fit = en.fit_alpha(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+    ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
+    best = int(np.argmin(ratios[:3]))
+    cols = {
         "outline_class": ("wulff", "plate", "rod")[best],
         "outline_misfit_ratio": float(ratios[best]),
         "facet_chi2": fit.facet_chi2,
-        "interior_transmission": transmission,
         "plate_edge_ratio": float(pe[ip]),
         "rod_aspect": float(ra[ir]),
-        "_fit": fit,
+        "habit_note": "",
     }
     fchi = fit.facet_chi2 if np.isfinite(fit.facet_chi2) else 0.0
     faceted = fchi >= p["facet_chi2_min"]
     if solidity < p["min_solidity"] or ratios[best] > p["irregular_misfit"]:
         s = max(1.0 - _margin(solidity, p["min_solidity"], 0.01),
                 _margin(ratios[best], p["irregular_misfit"], 0.5))
-        return {**out, "habit": "irregular", "habit_score": s}
+        cols["habit_note"] = "concave outline" if solidity < p["min_solidity"] else "fits no model family"
+        return "irregular", s, cols, fit
+    # resolution: is the disc (a shape without corners) as good an explanation as the best family?
+    disc_gap = ratios[3] ** 2 - ratios[best] ** 2
+    if disc_gap < p["tolerance"] and not faceted:
+        cols["outline_class"] = "disc"
+        cols["habit_note"] = "unresolved: the outline fits a disc as well as any model, the interior shows no facets"
+        return "irregular", 0.25 * (1.0 - _margin(disc_gap, p["tolerance"], 1.0)), cols, fit
     if best == 2 and feret_ratio < p["rod_feret_ratio"]:
-        s = 1.0 - _margin(feret_ratio, p["rod_feret_ratio"], 0.05)
-        return {**out, "habit": "rod", "habit_score": s}
+        return "rod", 1.0 - _margin(feret_ratio, p["rod_feret_ratio"], 0.05), cols, fit
     plate_gain = ratios[0] ** 2 - ratios[1] ** 2       # how much better the plate outline fits
     if plate_gain > p["plate_margin"]:
         s = _margin(plate_gain, p["plate_margin"], 2.0)
         if pe[ip] < p["triangle_edge_ratio"]:
-            return {**out, "habit": "tabular_triangle", "habit_score": s}
-        return {**out, "habit": "tabular_hexagon", "habit_score": s}
-    thin = np.isfinite(transmission) and transmission > p["plate_transmission"]
+            return "tabular_triangle", s, cols, fit
+        return "tabular_hexagon", s, cols, fit
     flat_score = 1.0 - _margin(fchi, p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
-    if not faceted and interior is not None:
-        # a featureless interior: a flat plate, or a cube seen on its top face;
-        # a flat octagon or 12-gon (or a disc) fits neither
-        if ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"]:
-            if thin or not np.isfinite(transmission):
-                return {**out, "habit": "tabular_hexagon", "habit_score": flat_score}
-        cs = class_scores(fit, lib)
-        square = class_scores(fit, lib, "100")[0] <= kw["tolerance"]     # square outline
-        if not square:
-            return {**out, "habit": "irregular", "habit_score": flat_score}
-        if thin:
-            return {**out, "habit": "irregular",
-                    "habit_score": flat_score * _margin(transmission, p["plate_transmission"], 0.05)}
-        w = np.exp(-0.5 * (cs - cs.min()))
-        return {**out, "habit": "cube", "habit_score": 0.7 * float(w[0] / w.sum())}
-    habit, share = polyhedral_class(fit, lib, p["octahedron_margin"])
-    if not faceted:
-        share *= 0.7          # a flat top face: a cube, but the plate cannot be ruled out
-    return {**out, "habit": habit, "habit_score": share}
+    if not faceted and interior is not None and ratios[1] <= p["irregular_misfit"] \
+            and plate_gain > -p["plate_margin"] and fit.face == "111":
+        # a featureless hexagon: a flat plate (an octahedron shows its facets)
+        return "tabular_hexagon", flat_score, cols, fit
+    habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
+    return habit, share, cols, fit
 
 
-def _transmission(frame, index, boxes=None):
-    """TEM mean interior transmission I / I_bg of grain ``index`` (NaN for SEM).
+def interior_signal(frame):
+    """Interior signal image and the engine's mode for the frame's polarity."""
+    raw = frame.raw if frame.raw is not None and np.shape(frame.raw) == np.shape(frame.labels) else None
+    src = raw if raw is not None else frame.image
+    if frame.polarity == "dark":
+        if raw is None:
+            # the preprocessed image is inverted (grains bright): back to transmission-like values
+            return 1.0 - np.asarray(src, float), "thickness"
+        return np.asarray(src, float), "thickness"
+    return np.asarray(src, float), "facets"
 
-    ``boxes``: ``scipy.ndimage.find_objects(frame.labels)`` when already
-    computed (one pass for the whole frame).
+
+def frame_contours(frame) -> list:
+    """Sub-pixel contour (pixel coordinates) of every grain row of the frame."""
+    from grainhabit.plugins.common.contours import grain_contours
+
+    labs = np.asarray(frame.grains["label"], int)
+    allc = grain_contours(frame.labels, int(frame.labels.max()), window=5)
+    return [allc[lab - 1] if 0 < lab <= len(allc) else np.empty((0, 2)) for lab in labs]
+
+
+def free_edge(labels, contour_px, label, reach_px=2):
+    """Which outline vertices lie on the grain's true edge, not along a cut to a neighbour.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+    contour_px : ndarray, shape (k, 2)
+        Outline in pixel coordinates (x = col + 0.5 at pixel centres).
+    label : int
+    reach_px : int
+        A vertex within this many pixels of another grain is on the cut.
+
+    Returns
+    -------
+    ndarray of bool, shape (k,)
     """
-    if frame.polarity != "dark" or frame.raw is None or np.shape(frame.raw) != np.shape(frame.labels):
-        return float("nan")
     from scipy import ndimage as ndi
 
-    lab = int(frame.grains["label"][index])
-    if boxes is None:
-        boxes = ndi.find_objects(np.asarray(frame.labels))
-    if not 0 < lab <= len(boxes) or boxes[lab - 1] is None:
-        return float("nan")
-    r, c = boxes[lab - 1]
-    pad = 6
-    r0, r1 = max(r.start - pad, 0), min(r.stop + pad, frame.labels.shape[0])
-    c0, c1 = max(c.start - pad, 0), min(c.stop + pad, frame.labels.shape[1])
-    lc = frame.labels[r0:r1, c0:c1]
-    raw = np.asarray(frame.raw[r0:r1, c0:c1], float)
-    mask = lc == lab
-    inner = ndi.binary_erosion(mask, iterations=2)
-    ring = (lc == 0) & ~ndi.binary_dilation(mask, iterations=2)
-    if not inner.any() or not ring.any():
-        return float("nan")
-    bg = float(np.median(raw[ring]))
-    return float(np.mean(raw[inner]) / bg) if bg > 0 else float("nan")
+    c = np.asarray(contour_px, float)
+    r0 = max(int(np.floor(c[:, 1].min())) - reach_px - 1, 0)
+    c0 = max(int(np.floor(c[:, 0].min())) - reach_px - 1, 0)
+    r1 = min(int(np.ceil(c[:, 1].max())) + reach_px + 2, labels.shape[0])
+    c1 = min(int(np.ceil(c[:, 0].max())) + reach_px + 2, labels.shape[1])
+    crop = labels[r0:r1, c0:c1]
+    near = ndi.binary_dilation((crop != label) & (crop != 0), iterations=reach_px)
+    rr = np.clip(np.floor(c[:, 1]).astype(int) - r0, 0, crop.shape[0] - 1)
+    cc = np.clip(np.floor(c[:, 0]).astype(int) - c0, 0, crop.shape[1] - 1)
+    return ~near[rr, cc]
 
 
 def classify_frame(frame, params=None) -> dict:
-    """Habit columns for every grain of a frame (see the module docstring)."""
+    """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
     n = frame.n_grains
-    cols = {
-        "habit": np.full(n, "irregular", dtype=object), "habit_score": np.zeros(n),
-        "outline_class": np.full(n, "", dtype=object), "outline_misfit_ratio": np.full(n, np.nan),
-        "facet_chi2": np.full(n, np.nan), "interior_transmission": np.full(n, np.nan),
-        "plate_edge_ratio": np.full(n, np.nan), "rod_aspect": np.full(n, np.nan),
-    }
+    cols = {"habit": np.full(n, "irregular", dtype=object), "habit_score": np.zeros(n)}
+    for c in STEP.outputs:
+        cols[c.name] = np.full(n, "", dtype=object) if c.units == "" else np.full(n, np.nan)
     if n == 0:
         return cols
     if frame.labels is None:
         raise ValueError("classify-habit needs frame.labels: run a segment step first")
-    gr.clear_fit_cache()  # the fits of this frame's grains are remembered for fit-growth-ratio, no older ones
-    contours = gr.contours_for(frame)
-    boxes = None
-    if frame.polarity == "dark":
-        from scipy import ndimage as ndi
-        boxes = ndi.find_objects(np.asarray(frame.labels))
+    contours = frame_contours(frame)
+    signal, mode = interior_signal(frame)
+    labels = np.asarray(frame.labels)
+    split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
+    g = frame.grains
+    measured = "solidity" in g and "feret_ratio" in g
     for i in range(n):
-        contour, interior = gr.grain_evidence(frame, contours, i, p["erode_px"])
+        lab = int(frame.grains["label"][i])
+        outline_px = contours[i]
+        contour, interior = en.grain_evidence(labels, signal, mode, outline_px, lab, p["erode_px"])
         if contour is None or len(contour) < 8:
-            cols["habit_score"][i] = 0.0
+            cols["habit_note"][i] = "outline too small"
             continue
-        res = classify_grain(contour, interior, p, 1.0, _transmission(frame, i, boxes))
-        for k in cols:
-            cols[k][i] = res[k]
+        hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
+        if hull is not None and not all(np.isfinite(hull)):
+            hull = None
+        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull)
+        if split[i] and habit == "irregular":
+            # cut from a touching neighbour, and the cut outline fits nothing: judge the
+            # outline its true edges imply (a centrally symmetric body)
+            done = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab))
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, done, lab, p["erode_px"])
+            if contour2 is not None and len(contour2) >= 8:
+                res = classify_grain(contour2, interior2 if p["interior"] else None, p)
+                if res[0] != "irregular":
+                    habit, score, ev, fit = res
+                    ev["habit_note"] = "split grain: outline completed by central symmetry"
+        cols["habit"][i], cols["habit_score"][i] = habit, score
+        for k, v in ev.items():
+            cols[k][i] = v
+        cols["fit_alpha"][i], cols["fit_alpha_lo"][i], cols["fit_alpha_hi"][i] = fit.alpha, fit.alpha_lo, fit.alpha_hi
+        cols["fit_note"][i] = fit.note
+        cols["rest_face"][i] = fit.face
+        cols["fit_rotation_deg"][i] = fit.rotation_deg
+        cols["outline_misfit"][i] = fit.outline_misfit
     return cols
 
 
 @hookimpl
 def grainhabit_classify(frame, params):
-    """Add ``habit``, ``habit_score`` and the evidence columns; see the module docstring."""
+    """Add ``habit``, ``habit_score``, the evidence and the fit columns; see the module docstring."""
     return frame.with_columns(**classify_frame(frame, params))
 
 
 @hookimpl
 def grainhabit_prepare_worker(steps):
-    """Build the Wulff model library, its plane tables and the plate/rod signatures once per worker."""
+    """Build the model library of this step's parameters and the plate/rod signatures once per worker."""
     if STEP.name not in steps:
         return
-    lib = gr.prepare_fit(None)  # the library classify_grain fits with (the fit step's defaults)
-    family_signatures(lib.signatures.shape[1])
+    lib = en.fit_options(STEP.resolve(steps[STEP.name]))["library"]
+    family_signatures(lib.signatures.shape[-1])

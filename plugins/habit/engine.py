@@ -1,0 +1,1068 @@
+"""The habit engine: Wulff-shape models of a grain's outline and interior, and the alpha fit.
+
+The outline half lives in :mod:`signature`, the interior half in
+:mod:`interior`; this module holds the model library, the fit and the class
+rule. Pure functions on arrays, shared by the steps ``classify-habit`` (which names
+the habit from the fit) and ``fit-growth-ratio`` (which reports alpha). No
+module state carries results from one call to the next: a model library is
+built once per parameter set (``functools.lru_cache``; workers build it in
+``grainhabit_prepare_worker``) and every fit is a function of its inputs.
+
+alpha = sqrt(3) v100 / v111 (the cube/octahedron growth parameter; its
+thresholds are defined once, in :mod:`vocabulary`). Each grain is matched
+against kinetic Wulff shapes (:mod:`crystal`) seen along [100], [111] or
+[110], over a grid of alpha, using
+
+1. the outline: a scale- and rotation-invariant distance between the
+   centroid-distance radial signatures of the observed and the model outline;
+2. where visible, the interior, laid over the grain at the rotation the
+   outline match found: in secondary-electron contrast (bright polarity) the
+   brightness above the background of every facet follows its tilt,
+   ``a (1 + k (sec(tilt) - 1)) + c . n_xy`` (one scale ``a`` >= 0 shared by
+   all facets, a tilt gain k within :data:`TILT_GAIN_RANGE`, a directional
+   detector term c), so a predicted facet that the image does not show costs; in transmission
+   contrast (dark polarity) the attenuation -ln(I / I_bg) is ``b t + a``
+   with the thickness t of the model, b >= 0 and a thickness-independent part
+   (diffraction contrast) 0 <= a <= ``tem_offset_max`` times the mean
+   attenuation, so a flat interior cannot hide a predicted thickness relief;
+3. a prior on the view: a body lies on one of its faces, with odds equal to
+   that face family's share of its surface area (an assumption, stated as
+   such); views along a direction that is no face of the body (a cube along
+   [111], an octahedron along [100], any body along [110]) keep a small
+   floor probability ``view_floor``.
+
+Outline misfit, interior misfit (each in units of its own noise) and the
+prior (-2 ln P) add up to a chi-square-like score per model. The range
+``alpha_lo``..``alpha_hi`` holds every alpha (any view) within ``tolerance``
+of the best score; ``alpha`` is a number only where that range is bounded
+on both sides inside the model grid. Where the range runs into the grid's
+lower end (a square outline: alpha <= 1.5) or upper end (an octahedron:
+alpha >= 3), alpha is only bounded: NaN, with the bound in alpha_lo/alpha_hi.
+
+Why the radial signature
+------------------------
+The Wulff projections are convex and centrally symmetric, so the distance
+r(phi) from the centroid is single-valued and a complete description of the
+outline. Normalised by sqrt(area) it is scale invariant; a rotation is a
+cyclic shift of the samples, so the distance at every rotation is one FFT
+circular cross-correlation. It integrates the outline (a corner that blur
+rounds by a pixel moves r by a pixel, locally), whereas a turning function
+differentiates it and turns digitisation noise into large angle spikes.
+
+What the outline alone can tell (see the tests)
+-----------------------------------------------
+Along [100] the outline is a square for every alpha <= 1.5, an octagon for
+1.5 < alpha < 3 and a square again (turned 45 degrees) at alpha >= 3; an
+octagon and the one with its straight and diagonal edges swapped are the same
+shape turned 45 degrees, so the outline alone leaves two windows of alpha.
+Along [111] the outline is a hexagon at alpha = 1, 1.5 and >= 3 and a nearly
+regular 12-gon between. The interior breaks these ties.
+
+References
+----------
+.. [1] G. Wulff, Z. Kristallogr. 34, 449-530, 1901 (the Wulff construction).
+.. [2] D. Zhang, G. Lu, "Review of shape representation and description
+   techniques", Pattern Recognition 37(1), 1-19, 2004,
+   doi:10.1016/j.patcog.2003.07.008 (centroid-distance shape signatures).
+.. [3] L. Reimer, *Scanning Electron Microscopy*, 2nd ed., Springer (1998),
+   ch. 4 (secondary-electron yield rising with tilt, roughly as sec(tilt);
+   from memory).
+"""
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from grainhabit.params import Param
+from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
+                                               grain_evidence, grain_interior, interior_rss, interior_rss_batch,
+                                               round_rss, subsample_interior)
+from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
+                                                radial_signature, rounded_outline, shift_distances)
+from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
+
+__all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
+           "OutlineMatch", "class_scores", "complete_by_symmetry", "fit_alpha", "fit_options", "grain_evidence",
+           "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
+           "outline_candidates", "outline_settles", "placed_planes", "polygon_centroid", "polyhedral_class",
+           "radial_signature", "rounded_outline", "shift_distances", "subsample_interior", "view_probability",
+           "FAR_HEIGHT", "face_planes", "flat_rss", "round_rss", "check_n_angles", "check_polygon"]
+
+#: Directions a grain may be seen along (the face family that faces the beam).
+VIEWS = ("100", "111", "110")
+
+
+#: Parameters of the engine. They are parameters of ``classify-habit``, the
+#: step that runs the fit; ``fit-growth-ratio`` reports its result.
+FIT_PARAMS = (
+    Param("alpha_min", float, 0.5, low=0.1, high=1.0,
+          doc="Lowest alpha of the model grid (a cube gives only an upper bound, so alpha_lo lands here)."),
+    Param("alpha_max", float, 4.0, low=3.1, high=10.0,
+          doc="Highest alpha of the model grid (an octahedron gives only a lower bound, so alpha_hi lands here)."),
+    Param("alpha_step", float, 0.02, low=0.005, high=0.2, doc="Spacing of the model grid."),
+    Param("n_angles", int, 256, low=32, high=4096,
+          doc="Samples of the radial signature around the outline."),
+    Param("view_floor", float, 0.02, low=1e-6, high=1.0,
+          doc="Prior probability of a view along a direction that is no face of the body "
+              "(e.g. a cube along [111]); views on a face have odds equal to its share of the surface."),
+    Param("tolerance", float, 4.0, low=0.0,
+          doc="Score difference (chi-square units) from the best fit that bounds alpha_lo..alpha_hi."),
+    Param("outline_noise_px", float, 0.25, unit="px", low=0.01,
+          doc="RMS outline error in pixels (digitisation, blur) that sets the outline misfit unit."),
+    Param("outline_noise_floor", float, 0.003, low=0.0,
+          doc="Least outline misfit unit (model imperfection), relative to sqrt(area)."),
+    Param("corner_radius_px", float, 1.0, unit="px", low=0.0,
+          doc="Radius to which blur and thresholding round an outline's corners; models are rounded alike."),
+    Param("interior", bool, True, doc="Use the facet layout / thickness inside the grain."),
+    Param("interior_weight", float, 0.05, low=0.0,
+          doc="Independent samples per interior pixel (blur makes neighbours correlated)."),
+    Param("interior_max_samples", float, 60.0, low=1.0,
+          doc="Most independent interior samples one grain counts for: the models are not exact, "
+              "so the interior's evidence stops growing with the grain's size."),
+    Param("erode_px", int, 2, unit="px", low=0,
+          doc="Pixels left out along the outline before reading the interior (rim, blur)."),
+    Param("facet_edge_px", float, 2.0, unit="px", low=0.0,
+          doc="SEM: pixels this close to a predicted facet edge (bright edge lines) are left out."),
+    Param("tem_offset_max", float, 0.5, low=0.0, high=1.0,
+          doc="TEM: largest share of a grain's mean attenuation that may not follow its thickness "
+              "(diffraction contrast)."),
+    Param("interior_samples", int, 600, low=30, high=100000,
+          doc="Interior samples compared with each model; more pixels are thinned to a lattice, "
+              "each kept sample counting for those it replaces."),
+    Param("search", str, "coarse", choices=("coarse", "exhaustive"),
+          doc="'coarse': coarse alpha grid, refined around the best fits; "
+              "'exhaustive': place every candidate model (slow reference)."),
+)
+
+
+def fit_options(params: dict) -> dict:
+    """Keyword arguments of :func:`fit_alpha` from resolved step parameters.
+
+    Parameters
+    ----------
+    params : dict
+        Resolved parameters holding at least the names of :data:`FIT_PARAMS`.
+
+    Returns
+    -------
+    dict
+        ``library`` (:func:`model_library`, built once per parameter set) and
+        the scalar options of :func:`fit_alpha`.
+    """
+    p = params
+    lib = model_library(p["alpha_min"], p["alpha_max"], p["alpha_step"], p["n_angles"], p["view_floor"])
+    return dict(library=lib, tolerance=p["tolerance"], outline_noise_px=p["outline_noise_px"],
+                outline_noise_floor=p["outline_noise_floor"], corner_radius_px=p["corner_radius_px"],
+                interior_weight=p["interior_weight"], interior_max_samples=p["interior_max_samples"],
+                facet_edge_px=p["facet_edge_px"], tem_offset_max=p["tem_offset_max"],
+                interior_samples=p["interior_samples"], search=p["search"])
+
+# --------------------------------------------------------------------------- checks
+
+
+# ------------------------------------------------------------------ signatures
+
+
+#: Corner rounding of the model outlines, relative to the ECD: a grain is
+#: compared with the level nearest to ``corner_radius_px`` / its ECD in pixels.
+ROUNDING_LEVELS = (0.0, 0.008, 0.016, 0.025, 0.04, 0.06, 0.09)
+
+
+# --------------------------------------------------------------------- library
+
+@dataclass(frozen=True)
+class ModelLibrary:
+    """Wulff shapes seen along [100], [111] and [110] over an alpha grid.
+
+    Attributes
+    ----------
+    alphas : ndarray, shape (m,)
+        Alpha of each model.
+    faces : tuple of str, length m
+        View: the face family facing the beam, '100', '111' or '110'.
+    signatures : ndarray, shape (levels, m, n_angles)
+        Radial signatures of each model's outline at every corner rounding
+        of :data:`ROUNDING_LEVELS`.
+    shape_id : ndarray of int, shape (m,)
+        Models with the same id have the same body and view (alpha <= 1 are
+        all the cube, alpha >= 3 all the octahedron).
+    bodies : tuple of Polyhedron
+        Each scaled so that its projected outline has unit ECD, in the crystal
+        frame; rotate with ``rotations[i]``.
+    rotations : tuple of ndarray (3, 3)
+        Resting rotation (crystal -> lab) of each model.
+    symmetry_deg : ndarray, shape (m,)
+        In-plane turn that maps the view onto itself (90, 120, 180 degrees).
+    grid : ndarray
+        The alpha grid itself.
+    prior : ndarray, shape (m,)
+        -2 ln P(view | body): the prior's share of the score.
+    tables : _Tables
+        Per-shape arrays of the batched fit.
+    """
+
+    alphas: np.ndarray
+    faces: tuple
+    signatures: np.ndarray
+    shape_id: np.ndarray
+    bodies: tuple
+    rotations: tuple
+    symmetry_deg: np.ndarray
+    grid: np.ndarray
+    prior: np.ndarray
+    tables: "_Tables"
+
+
+_SYMMETRY = {"100": 90.0, "111": 120.0, "110": 180.0}
+
+
+def view_probability(alpha: float, view: str, floor: float = 0.02, body=None) -> float:
+    """Prior probability that a Wulff body lies so that it is seen along ``view``.
+
+    Parameters
+    ----------
+    alpha : float
+        Growth parameter of the body.
+    view : {'100', '111', '110'}
+    floor : float
+        Probability kept for a view that is no face of the body.
+    body : Polyhedron, optional
+        ``crystal.wulff_polyhedron(alpha)`` when the caller has it (any scale).
+
+    Returns
+    -------
+    float
+        max(share of the body's surface area on faces of family ``view``, floor).
+
+    Notes
+    -----
+    An assumption of this engine, not a law: a grain settles on one of its
+    faces with odds proportional to the face's area (a large face is more
+    likely to end up on the substrate). The kinetic Wulff bodies here have
+    {100} and {111} faces only, so a view along [110] always gets the floor.
+    """
+    p = cr.wulff_polyhedron(float(alpha)) if body is None else body
+    fam = np.array([cr.face_family(m) for m in p.face_miller])
+    share = float(p.face_areas[fam == view].sum() / p.surface_area)
+    return max(share, float(floor))
+
+
+def model_library(alpha_min: float = 0.5, alpha_max: float = 4.0, step: float = 0.02,
+                  n_angles: int = 256, view_floor: float = 0.02) -> ModelLibrary:
+    """The model library of a parameter set (built once per process and argument set).
+
+    Parameters
+    ----------
+    alpha_min, alpha_max, step : float
+        Grid ``alpha_min, alpha_min + step, ..., <= alpha_max``; needs
+        alpha_min < 1 and alpha_max > 3 (both limiting bodies inside).
+    n_angles : int
+        Samples of each radial signature.
+    view_floor : float
+        See :func:`view_probability`.
+
+    Returns
+    -------
+    ModelLibrary
+
+    Notes
+    -----
+    Every view is modelled over the whole grid (no gap near alpha = 3 on
+    {100}); identical bodies (alpha <= 1, alpha >= 3) share one shape id and
+    one computed body per view.
+    """
+    return _build_library(float(alpha_min), float(alpha_max), float(step), check_n_angles(n_angles),
+                          float(view_floor))
+
+
+@functools.lru_cache(maxsize=4)
+def _build_library(alpha_min, alpha_max, step, n_angles, view_floor) -> ModelLibrary:
+    n = n_angles
+    if not (0 < alpha_min < CUBE_SHAPE_ALPHA and alpha_max > OCTAHEDRON_ALPHA and 0 < step < 1):
+        raise ValueError(f"need 0 < alpha_min < {CUBE_SHAPE_ALPHA}, alpha_max > {OCTAHEDRON_ALPHA} "
+                         f"and 0 < step < 1, got {alpha_min!r}, {alpha_max!r}, {step!r}")
+    if not 0 < view_floor <= 1:
+        raise ValueError(f"view_floor must be in (0, 1], got {view_floor!r}")
+    grid = np.round(np.arange(alpha_min, alpha_max + step / 2, step), 6)
+    alphas, faces, sigs, ids, bodies, rots, sym, prior = [], [], [], [], [], [], [], []
+    cache, solids = {}, {}
+    for face in VIEWS:
+        rot = cr.resting_rotation(face)
+        for a in grid:
+            key = (face, min(max(float(a), CUBE_SHAPE_ALPHA), OCTAHEDRON_ALPHA))
+            if key not in cache:
+                if key[1] not in solids:
+                    solids[key[1]] = cr.wulff_polyhedron(key[1])
+                body = solids[key[1]]
+                pv = view_probability(key[1], face, view_floor, body)
+                body = body.scaled(math.sqrt((math.pi / 4) / cr.projected_area(body, rot)))
+                outline = cr.project(body, rot)
+                sig_levels = np.array([radial_signature(rounded_outline(outline, rho), n)
+                                       for rho in ROUNDING_LEVELS])
+                cache[key] = (len(cache), body, sig_levels, -2.0 * math.log(pv))
+            sid, body, sig, pr = cache[key]
+            alphas.append(float(a))
+            faces.append(face)
+            sigs.append(sig)
+            ids.append(sid)
+            bodies.append(body)
+            rots.append(rot)
+            sym.append(_SYMMETRY[face])
+            prior.append(pr)
+    alphas, ids, sigs = np.asarray(alphas), np.asarray(ids), np.asarray(sigs).transpose(1, 0, 2)
+    tab = _build_tables(alphas, tuple(faces), sigs, ids, bodies, rots, np.asarray(sym), np.asarray(prior))
+    return ModelLibrary(alphas, tuple(faces), sigs, ids, tuple(bodies), tuple(rots), np.asarray(sym),
+                        grid, np.asarray(prior), tab)
+
+# ---------------------------------------------------------------- interior data
+
+
+# ------------------------------------------------------- batched model tables
+
+@dataclass(frozen=True)
+class _Tables:
+    """Per-shape arrays of a library for the batched fit (built once per library).
+
+    ``face`` (u,), ``pos`` (u,) rank of the shape among its face's shapes by
+    alpha, ``sym_deg`` (u,), ``sig_fft`` (levels, u, n // 2 + 1) conjugate
+    spectra of the signatures at every rounding level and ``sig_sq``
+    (levels, u) their squared norms; ``g_up`` (u, M, 2)
+    and ``z_up`` (u, M) the height gradient and height at the origin of each
+    upward plane at rest (z = z_up + g . (x, y)), padded with flat planes at
+    height ``FAR_HEIGHT``; ``g_dn``/``z_dn`` the same for the downward planes,
+    padded at ``-FAR_HEIGHT``; ``model_shape`` (m,) the shape row of every library
+    model; ``prior`` (u,) -2 ln P(view | body) of each shape.
+    """
+
+    face: np.ndarray
+    pos: np.ndarray
+    sym_deg: np.ndarray
+    sig_fft: np.ndarray
+    sig_sq: np.ndarray
+    g_up: np.ndarray
+    z_up: np.ndarray
+    g_dn: np.ndarray
+    z_dn: np.ndarray
+    model_shape: np.ndarray
+    prior: np.ndarray
+
+
+def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmetry_deg, prior) -> _Tables:
+    """The :class:`_Tables` of a library's models (one row per distinct shape)."""
+    uniq = np.unique(shape_id)
+    first = np.array([int(np.flatnonzero(shape_id == u)[0]) for u in uniq])
+    face = np.array([faces[i] for i in first])
+    pos = np.zeros(uniq.size, int)
+    for f in VIEWS:
+        sel = np.flatnonzero(face == f)
+        pos[sel[np.argsort(alphas[first[sel]], kind="stable")]] = np.arange(sel.size)
+    sigs = signatures[:, first]
+    ups = [face_planes(bodies[i], rotations[i], True) for i in first]
+    dns = [face_planes(bodies[i], rotations[i], False) for i in first]
+
+    def pad(planes, fill):
+        m = max(len(z) for _, z in planes)
+        g = np.zeros((len(planes), m, 2))
+        z = np.full((len(planes), m), fill)
+        for j, (gg, zz) in enumerate(planes):
+            g[j, :len(zz)], z[j, :len(zz)] = gg, zz
+        return g, z
+
+    g_up, z_up = pad(ups, FAR_HEIGHT)
+    g_dn, z_dn = pad(dns, -FAR_HEIGHT)
+    return _Tables(face, pos, symmetry_deg[first], np.conj(np.fft.rfft(sigs, axis=-1)),
+                   np.einsum("lij,lij->li", sigs, sigs), g_up, z_up, g_dn, z_dn,
+                   np.searchsorted(uniq, shape_id), prior[first])
+
+
+def outline_candidates(sig, tab: _Tables, level: int = 0):
+    """Signature distance of every library shape at its candidate rotations, in one batch.
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+    tab : _Tables
+        Library tables.
+    level : int
+        Corner rounding level of the model signatures (:data:`ROUNDING_LEVELS`).
+
+    Returns
+    -------
+    shifts : ndarray of int, shape (u, 4)
+        Candidate cyclic shifts of each shape: the best one, then the best
+        within +-n/32 of each look-alike turn (half the view's symmetry on
+        [100] and [110]; a quarter, a half and three quarters of it on [111]).
+    dist : ndarray, shape (u, 4)
+        RMS signature distance at those shifts (:func:`shift_distances`).
+    valid : ndarray of bool, shape (u, 4)
+        False for unused slots and repeated shifts.
+
+    Notes
+    -----
+    All cross-correlations are one inverse real FFT of the (u, n/2+1)
+    product of the observed spectrum with the stored conjugate model
+    spectra: d^2[s] = (|a|^2 + |b|^2 - 2 C[s]) / n.
+    """
+    a = np.asarray(sig, float)
+    n = a.size
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
+    d = (a @ a + tab.sig_sq[level][:, None] - 2.0 * cc) / n            # squared distances
+    u = d.shape[0]
+    rows = np.arange(u)
+    k0 = np.argmin(d, axis=1)
+    half = tab.sym_deg / 2 / 360 * n
+    is100 = tab.face != "111"
+    offs = np.where(is100[:, None], np.column_stack([half, np.full(u, np.nan), np.full(u, np.nan)]),
+                    np.column_stack([half / 2, half, 1.5 * half]))
+    shifts = np.zeros((u, 4), int)
+    valid = np.zeros((u, 4), bool)
+    shifts[:, 0], valid[:, 0] = k0, True
+    w = np.arange(-(n // 32), n // 32 + 1)
+    for j in range(3):
+        ok = np.isfinite(offs[:, j])
+        o = np.round(np.nan_to_num(offs[:, j])).astype(int)
+        win = (k0[:, None] + o[:, None] + w[None, :]) % n
+        best = win[rows, np.argmin(d[rows[:, None], win], axis=1)]
+        dup = np.any((shifts[:, :j + 1] == best[:, None]) & valid[:, :j + 1], axis=1)
+        shifts[:, j + 1] = best
+        valid[:, j + 1] = ok & ~dup
+    return shifts, np.sqrt(np.maximum(d[rows[:, None], shifts], 0.0)), valid
+
+
+def placed_planes(tab: _Tables, shape, shift, n: int):
+    """Plane tables of shapes turned in-plane by ``2 pi shift / n``.
+
+    Parameters
+    ----------
+    tab : _Tables
+    shape, shift : ndarray of int, shape (c,)
+    n : int
+        Signature length.
+
+    Returns
+    -------
+    g_up, z_up, g_dn, z_dn : ndarray
+        As in :class:`_Tables`, for the c placed models.
+
+    Notes
+    -----
+    A turn R about z leaves every plane's height at the origin and its
+    up/down sense alone and turns its height gradient: g' = R g.
+    """
+    t = 2.0 * np.pi * np.asarray(shift, float) / n
+    c, s = np.cos(t)[:, None], np.sin(t)[:, None]
+
+    def turn(g):
+        return np.stack([c * g[..., 0] - s * g[..., 1], s * g[..., 0] + c * g[..., 1]], axis=-1)
+
+    return turn(tab.g_up[shape]), tab.z_up[shape], turn(tab.g_dn[shape]), tab.z_dn[shape]
+
+
+# ------------------------------------------------------------------------ fit
+
+@dataclass(frozen=True)
+class AlphaFit:
+    """Result of fitting one grain.
+
+    Attributes
+    ----------
+    alpha : float
+        The best-scoring alpha where the range is bounded on both sides
+        inside the model grid; NaN where the evidence only bounds alpha.
+    alpha_lo, alpha_hi : float
+        The range within ``tolerance`` of the best score (the grid's ends
+        where only bounded).
+    alpha_best : float
+        The best-scoring grid alpha, also where alpha is only bounded
+        (for naming the habit; not a measurement).
+    face : str
+        View of the best model ('100', '111' or '110').
+    rotation_deg : float
+        Its in-plane rotation (counter-clockwise, lab frame).
+    outline_misfit : float
+        Its RMS signature distance.
+    note : str
+        What bounds the range ('' when both ends are inside the grid).
+    score : ndarray, shape (m,)
+        Score of every library model (lower is better, 0 at the best).
+    facet_chi2 : float
+        Interior evidence for facets: ``w (RSS_0 - RSS_best) / s^2``, the
+        score by which the best placed model beats a featureless interior
+        (the better of one level plus a plane, and a round body); NaN
+        without interior samples.
+    interior_level : float
+        Mean interior value (brightness, or attenuation for TEM); NaN without.
+    signature : ndarray, shape (n_angles,)
+        The grain's radial signature (:func:`radial_signature`).
+    """
+
+    alpha: float
+    alpha_lo: float
+    alpha_hi: float
+    alpha_best: float
+    face: str
+    rotation_deg: float
+    outline_misfit: float
+    note: str
+    score: np.ndarray
+    facet_chi2: float = float("nan")
+    interior_level: float = float("nan")
+    signature: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class OutlineMatch:
+    """A grain's outline compared with every shape of a library (:func:`match_outline`).
+
+    Attributes
+    ----------
+    signature : ndarray, shape (n_angles,)
+        Radial signature of the outline.
+    shifts, dist, valid : ndarray, shape (u, 4)
+        As returned by :func:`outline_candidates`.
+    tau : float
+        Outline misfit unit (relative to sqrt(area)).
+    area : float
+        Enclosed area in the contour's unit squared.
+    """
+
+    signature: np.ndarray
+    shifts: np.ndarray
+    dist: np.ndarray
+    valid: np.ndarray
+    tau: float
+    area: float
+
+
+def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
+                  outline_noise_px: float = 0.25, outline_noise_floor: float = 0.003,
+                  corner_radius_px: float = 1.0) -> OutlineMatch:
+    """Compare a closed outline with every shape of ``library``.
+
+    Parameters
+    ----------
+    contour_xy : array_like, shape (k, 2)
+        Closed outline in lab axes (x right, y up), any length unit.
+    library : ModelLibrary
+    pixel_scale : float
+        Length of one pixel in the unit of ``contour_xy``.
+    outline_noise_px, outline_noise_floor : float
+        Outline misfit unit ``tau = max(outline_noise_px * pixel / sqrt(A),
+        outline_noise_floor)``.
+    corner_radius_px : float
+        Radius (pixels) to which blur and thresholding round the corners
+        of an outline; the models are compared at the nearest rounding level.
+
+    Returns
+    -------
+    OutlineMatch
+    """
+    c = check_polygon(contour_xy, "contour_xy")
+    _, area = polygon_centroid(c)
+    sig = radial_signature(c, library.signatures.shape[-1])
+    tau = max(outline_noise_px * pixel_scale / math.sqrt(area), outline_noise_floor)
+    ecd_px = math.sqrt(4.0 * area / math.pi) / pixel_scale
+    level = int(np.argmin(np.abs(np.asarray(ROUNDING_LEVELS) - corner_radius_px / ecd_px)))
+    shifts, dist, valid = outline_candidates(sig, library.tables, level)
+    return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area))
+
+
+def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: float = 1.0,
+              library: ModelLibrary | None = None, tolerance: float = 4.0,
+              outline_noise_px: float = 0.25, outline_noise_floor: float = 0.003,
+              corner_radius_px: float = 1.0,
+              interior_weight: float = 0.05, interior_max_samples: float = 60.0,
+              facet_edge_px: float = 2.0, tem_offset_max: float = 0.5,
+              faces=VIEWS, search: str = "coarse", interior_samples: int = 600,
+              search_samples: int = 150, coarse_every: int = 4, search_margin: float = 25.0,
+              match: OutlineMatch | None = None) -> AlphaFit:
+    """Fit alpha (and the resting face) of one grain.
+
+    Parameters
+    ----------
+    contour_xy : array_like, shape (k, 2)
+        Closed outline in lab axes (x right, y up), any length unit.
+    interior : Interior, optional
+        Interior samples (:func:`grain_interior`); None for outline only.
+    pixel_scale : float
+        Length of one pixel in the unit of ``contour_xy`` (sets the outline
+        noise unit).
+    library : ModelLibrary, optional
+        Default: :func:`model_library` with its defaults.
+    match : OutlineMatch, optional
+        :func:`match_outline` of ``contour_xy`` with ``library`` when the
+        caller has it already (it is then not computed again).
+    tolerance : float
+        Score difference bounding ``alpha_lo``/``alpha_hi``.
+    outline_noise_px, outline_noise_floor, corner_radius_px : float
+        See :func:`match_outline`.
+    interior_weight : float
+        Independent samples per interior pixel.
+    interior_max_samples : float
+        Cap on ``interior_weight`` times the interior's pixel count (the
+        models are not exact; past this the evidence no longer grows).
+    facet_edge_px, tem_offset_max : float
+        See :func:`interior_rss` (``edge_px``, ``tem_offset_max``).
+    faces : tuple of str
+        Views allowed (subset of :data:`VIEWS`).
+    search : {'coarse', 'exhaustive', 'quick'}
+        'exhaustive' places the interior of every candidate model (the
+        reference); 'coarse' searches a coarse alpha grid with a sparse
+        sample and refines where it matters (see Notes); 'quick' scores
+        alpha by the outline alone and places only the eight outline-best
+        models, for ``facet_chi2`` (a lower bound on the full search's; used
+        by classify-habit for grains whose outline decides the habit).
+    interior_samples : int
+        At most this many interior samples are compared with each model
+        (:func:`subsample_interior`; each sample then stands for the pixels
+        it replaces, so the evidence keeps its weight).
+    search_samples, coarse_every, search_margin : float
+        'coarse' only: samples of the search stage, spacing of its alpha
+        grid (in shapes of one face) and the score margin above its best
+        within which a coarse grid point is refined.
+
+    Returns
+    -------
+    AlphaFit
+
+    Notes
+    -----
+    Score of model m at rotation theta:
+    ``S = (d_m(theta)^2 - d_min^2) / tau^2 + w (RSS_m(theta) - RSS_min) / s^2``,
+    with d the signature distance (:func:`outline_candidates`), RSS the
+    interior residual sum of squares of the placed model, s^2 = RSS_min /
+    (p - q) the residual variance of the best interior model (it absorbs blur
+    and the shading the model leaves out), w = ``interior_weight`` times the
+    pixels each sample stands for. For each model the rotations tried are the
+    best outline rotation and those near the look-alike turns; the interior
+    is placed only for models whose outline score is below 25 + tolerance.
+    The score is profiled over faces (minimum); ``alpha_lo``/``alpha_hi`` are
+    the outer edges of the grid cells (half a step either side of a grid
+    alpha, clipped to the grid) whose score is within ``tolerance``.
+
+    'coarse' search: (1) every ``coarse_every``-th candidate shape of each
+    face (and the last) is placed, all its candidate rotations, over a
+    sparse sample of the interior (``search_samples``); (2) the shapes
+    around every coarse point within ``search_margin`` of the stage's best
+    score, and around its least-RSS model, are placed over the full sample
+    at the rotations that won nearby; (3) while a shape within ``tolerance``
+    of the best has an unplaced neighbour, that neighbour is placed too, so
+    the range edges are those of the exhaustive search whenever its minimum
+    lies in a refined region. Shapes never placed over the full sample get
+    their score from stage 1 (offset to the stage-2 best) or, between coarse
+    points, by linear interpolation in alpha, never below their outline
+    score: they lie outside the range and matter only for
+    :func:`class_scores`.
+    """
+    lib = model_library() if library is None else library
+    if search not in ("coarse", "exhaustive", "quick"):
+        raise ValueError(f"search must be 'coarse', 'exhaustive' or 'quick', got {search!r}")
+    tab = lib.tables
+    if match is None:
+        match = match_outline(contour_xy, lib, pixel_scale, outline_noise_px, outline_noise_floor,
+                              corner_radius_px)
+    n = lib.signatures.shape[-1]
+    sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
+    shape_ok = np.array([f in faces for f in tab.face])
+    if not shape_ok.any():
+        raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
+    valid = match.valid & shape_ok[:, None]
+    dmin = dist[valid].min()
+    # outline misfit plus the view prior, in chi-square units
+    osc = np.where(valid, (dist ** 2 - dmin ** 2) / tau ** 2 + tab.prior[:, None], np.inf)   # (u, 4)
+    osc = osc - osc[valid].min()
+    geo = (n, facet_edge_px, tem_offset_max)
+
+    use_int = interior is not None and interior.value.size >= 30
+    tot = np.where(valid, osc, np.inf)
+    shape_best = None
+    rmin, s2, w_eff, full = np.inf, np.inf, 0.0, None
+    evidence = False
+    if use_int:
+        interior_weight = min(interior_weight, interior_max_samples / interior.value.size)
+        full = subsample_interior(interior, interior_samples)
+        w_eff = interior_weight * full.weight
+        gated = valid & (osc <= _INTERIOR_GATE + tolerance)
+        if search == "quick":
+            # facet evidence from the outline-best models; alpha from the outline alone
+            order = np.argsort(np.where(gated, osc, np.inf), axis=None, kind="stable")[:_QUICK_MODELS]
+            pick = np.zeros(osc.shape, bool)
+            pick.flat[order] = True
+            res = _place_all(tab, shifts, osc, pick & gated, full, geo, w_eff)
+            if res is not None:
+                rmin, s2 = res[2], res[3]
+                evidence = True
+            res, use_int = None, False
+        elif search == "coarse":
+            res = _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance,
+                                 interior_weight, search_samples, coarse_every, search_margin)
+            if res is None:
+                res = _place_all(tab, shifts, osc, gated, full, geo, w_eff)
+        else:
+            res = _place_all(tab, shifts, osc, gated, full, geo, w_eff)
+        if use_int and res is None:
+            use_int = False
+        elif use_int:
+            tot, shape_best, rmin, s2 = res
+            evidence = True
+    if shape_best is None:
+        shape_best = tot.min(axis=1)
+
+    ms = tab.model_shape
+    score = np.where(shape_ok[ms], shape_best[ms], np.inf)
+    score = score - np.min(score)
+
+    # profile over faces: score(alpha) = min over faces
+    grid = lib.grid
+    prof = np.full(grid.size, np.inf)
+    gi = np.searchsorted(grid, lib.alphas - 1e-9)
+    np.minimum.at(prof, gi, score)
+    inside = np.flatnonzero(prof <= tolerance)
+    best_val = prof.min()
+    ties = np.flatnonzero(prof <= best_val + 1e-9)
+    # identical bodies tie exactly: report the middle of the tied run
+    ib = int(ties[len(ties) // 2])
+    alpha = float(grid[ib])
+    mbest = int(np.flatnonzero((np.abs(lib.alphas - alpha) < 1e-9) & (score <= best_val + 1e-9))[0])
+    ub = int(ms[mbest])
+    row = np.where(np.isfinite(tot[ub]), tot[ub], np.inf)
+    # lowest score, then the smallest shift (as the candidates were listed in order)
+    jb = int(np.lexsort((shifts[ub], row))[0])
+    kbest, dbest = int(shifts[ub, jb]), float(dist[ub, jb])
+    # each grid alpha stands for the cell of half a step either side
+    half = 0.5 * (grid[1] - grid[0]) if grid.size > 1 else 0.0
+    lo = float(max(grid[inside.min()] - half, grid[0]))
+    hi = float(min(grid[inside.max()] + half, grid[-1]))
+    notes = []
+    bounded = inside.min() == 0 or inside.max() == grid.size - 1
+    if inside.min() == 0:
+        notes.append(f"only bounded: alpha <= {hi:.2f} (alpha_lo is the grid minimum {grid[0]:g})")
+    if inside.max() == grid.size - 1:
+        notes.append(f"only bounded: alpha >= {lo:.2f} (alpha_hi is the grid maximum {grid[-1]:g})")
+    if not use_int:
+        notes.append("outline only")
+    fchi, level = float("nan"), float("nan")
+    if interior is not None and interior.value.size >= 30:
+        level = float(np.mean(interior.value))
+        if evidence:
+            featureless = min(flat_rss(full), round_rss(full, tem_offset_max))
+            fchi = max(w_eff * (featureless - rmin) / s2, 0.0)
+    return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
+                    dbest, "; ".join(notes), score, fchi, level, sig)
+
+
+_QUICK_MODELS = 8
+#: Outline score (chi-square units) above the best beyond which a model's interior is never placed.
+_INTERIOR_GATE = 25.0
+def _rss_of(tab, shifts, pairs, interior, geo):
+    """Interior RSS of the (shape, slot) ``pairs`` (k, 2) placed over ``interior``.
+
+    ``geo`` is (signature length, facet edge px, TEM offset bound).
+    """
+    if len(pairs) == 0:
+        return np.zeros(0)
+    n, edge_px, tem = geo
+    u, j = pairs[:, 0], pairs[:, 1]
+    return interior_rss_batch(interior, *placed_planes(tab, u, shifts[u, j], n), edge_px=edge_px,
+                              tem_offset_max=tem)
+
+
+#: Least interior noise, relative to the interior's level (mean magnitude plus spread): an
+#: image is never known better than this, so a noise-free picture does not make tiny
+#: differences between models decisive.
+INTERIOR_NOISE_FLOOR = 0.005
+
+
+def _totals(osc, rss, placed, interior, w):
+    """Scores of placed candidates; None if the residual variance is not usable.
+
+    The residual variance is that of the best placed model, s^2 = RSS_min / (p - 8),
+    but at least (``INTERIOR_NOISE_FLOOR`` * (|mean| + sd of the interior values))^2.
+    """
+    rmin = rss[placed].min()
+    v = interior.value
+    s2 = max(rmin / max(v.size - 8, 1), (INTERIOR_NOISE_FLOOR * (abs(float(np.mean(v))) + float(np.std(v)))) ** 2)
+    if not (s2 > 0 and np.isfinite(s2)):
+        return None
+    return np.where(placed, osc + w * (rss - rmin) / s2, np.inf), rmin, s2
+
+
+def _place_all(tab, shifts, osc, gated, interior, geo, w):
+    """Exhaustive interior fit: every gated candidate over ``interior``."""
+    pairs = np.argwhere(gated)
+    rss = np.full(osc.shape, np.inf)
+    rss[gated] = _rss_of(tab, shifts, pairs, interior, geo) if len(pairs) else []
+    if not gated.any():
+        return None
+    r = _totals(osc, rss, gated, interior, w)
+    if r is None:
+        return None
+    tot, rmin, s2 = r
+    # candidates the outline ruled out keep a prohibitive score, as before
+    tot = np.where(np.isfinite(osc) & ~gated, osc + 1e9, tot)
+    return tot, tot.min(axis=1), rmin, s2
+
+
+def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weight,
+                   search_samples, every, margin):
+    """Coarse-to-fine interior fit (see :func:`fit_alpha`); None falls back to the exhaustive one."""
+    u = osc.shape[0]
+    gshape = gated.any(axis=1)
+    if not gshape.any():
+        return None
+    seqs = []                                   # gated shapes of each face, by alpha
+    for f in VIEWS:
+        sel = np.flatnonzero(gshape & (tab.face == f))
+        if sel.size:
+            seqs.append(sel[np.argsort(tab.pos[sel])])
+    coarse = np.zeros(u, bool)
+    for q in seqs:
+        coarse[q[::every]] = True
+        coarse[q[-1]] = True
+    # stage 1: coarse shapes, all gated rotations, sparse sample
+    sparse = subsample_interior(interior, search_samples)
+    m1 = gated & coarse[:, None]
+    rss1 = np.full(osc.shape, np.inf)
+    rss1[m1] = _rss_of(tab, shifts, np.argwhere(m1), sparse, geo)
+    r1 = _totals(osc, rss1, m1, sparse, weight * sparse.weight)
+    if r1 is None:
+        return None
+    tot1 = r1[0]
+    sb1 = tot1.min(axis=1)
+    best1 = sb1.min()
+    won1 = tot1 <= sb1[:, None] + margin / 2              # rotations worth refining, per coarse shape
+    # seeds: coarse local minima (one per basin) within the margin, and the least-RSS model
+    seeds = np.zeros(u, bool)
+    for q in seqs:
+        cq = q[coarse[q]]
+        val = sb1[cq]
+        left = np.r_[np.inf, val[:-1]]
+        right = np.r_[val[1:], np.inf]
+        seeds[cq[(val <= left) & (val <= right) & (val <= best1 + margin)]] = True
+    seeds[np.unravel_index(np.argmin(np.where(m1, rss1, np.inf)), rss1.shape)[0]] = True
+    # brackets: runs of shapes from one coarse shape to the next
+    brackets, where = [], {}
+    for q in seqs:
+        cpos = np.flatnonzero(coarse[q])
+        if cpos.size == 1:
+            cpos = np.array([0, 0])
+        for a, b in zip(cpos[:-1], cpos[1:]):
+            for s in q[a:b + 1]:
+                where.setdefault(int(s), []).append(len(brackets))
+            brackets.append(q[a:b + 1])
+    want = np.zeros(osc.shape, bool)
+    taken = np.zeros(len(brackets), bool)
+
+    def take(k, extra=None):
+        run = brackets[k]
+        slots = won1[run[0]] | won1[run[-1]]
+        if extra is not None:
+            slots = slots | extra
+        for s in run:
+            w = slots & gated[s]
+            want[s] |= w if w.any() else gated[s]
+        taken[k] = True
+
+    for s in np.flatnonzero(seeds):
+        for k in where.get(int(s), []):
+            take(k)
+    # stage 2: full sample; grow while a shape within tolerance has an unplaced neighbour
+    rss2 = np.full(osc.shape, np.inf)
+    done = np.zeros(osc.shape, bool)
+    pos_of = {int(s): (q, i) for q in seqs for i, s in enumerate(q)}
+    for _ in range(len(brackets) + 1):
+        new = want & ~done
+        if new.any():
+            rss2[new] = _rss_of(tab, shifts, np.argwhere(new), full, geo)
+            done |= new
+        res = _totals(osc, rss2, done, full, weight * full.weight)
+        if res is None:
+            return None
+        tot2 = res[0]
+        sb2 = tot2.min(axis=1)
+        grew = False
+        for s in np.flatnonzero(sb2 <= sb2.min() + tolerance):
+            q, i = pos_of[int(s)]
+            for k in (i - 1, i + 1):
+                if 0 <= k < len(q) and not done[q[k]].any():
+                    for b in where[int(q[k])]:
+                        if not taken[b]:
+                            take(b, tot2[s] <= sb2[s] + tolerance)
+                            grew = True
+        if not grew:
+            break
+    tot2, rmin, s2 = res
+    sb2 = tot2.min(axis=1)
+    best2 = sb2.min()
+    # scores of shapes not placed over the full sample (outside the range)
+    placed = done.any(axis=1)
+    est = np.where(placed, sb2, np.where(coarse & gshape, sb1 - best1 + best2, np.nan))
+    for q in seqs:
+        known = np.isfinite(est[q])
+        if not known.all():
+            idx = np.arange(q.size)
+            est[q[~known]] = np.interp(idx[~known], idx[known], est[q][known])
+    lower = np.where(gated, osc, np.inf).min(axis=1)
+    est = np.where(placed, est, np.maximum(est, lower))
+    # shapes the outline ruled out keep a prohibitive score, as in the exhaustive fit
+    ruled_out = np.where(np.isfinite(osc), osc, np.inf).min(axis=1) + 1e9
+    shape_best = np.where(gshape, est, ruled_out)
+    tot = np.where(done, tot2, np.where(np.isfinite(osc) & ~gated, osc + 1e9, np.inf))
+    return tot, shape_best, rmin, s2
+
+
+# ------------------------------------------------------------------ habit classes
+
+def class_scores(fit: AlphaFit, library: ModelLibrary, face: str | None = None) -> np.ndarray:
+    """Best score of a fit within each polyhedral class: cube, cuboctahedron, octahedron.
+
+    Parameters
+    ----------
+    fit : AlphaFit
+    library : ModelLibrary
+    face : str, optional
+        Only models of this view; default all.
+
+    Returns
+    -------
+    ndarray, shape (3,)
+        min of the score over alpha <= ``CUBE_ALPHA_MAX``, ``CUBE_ALPHA_MAX``
+        < alpha < ``OCTAHEDRON_ALPHA`` and alpha >= ``OCTAHEDRON_ALPHA``
+        (:mod:`vocabulary`); inf where the class has no model.
+    """
+    sc = fit.score if face is None else np.where(np.asarray(library.faces) == face, fit.score, np.inf)
+    cls = np.where(library.alphas <= CUBE_ALPHA_MAX, 0, np.where(library.alphas < OCTAHEDRON_ALPHA, 1, 2))
+    out = np.full(3, np.inf)
+    np.minimum.at(out, cls, sc)
+    return out
+
+
+def polyhedral_class(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0) -> tuple[str, float]:
+    """Name a Wulff fit by alpha: the simplest class the evidence allows.
+
+    Parameters
+    ----------
+    fit : AlphaFit
+    library : ModelLibrary
+    tolerance : float
+        Score difference within which models cannot be told apart (the
+        same that bounds alpha_lo..alpha_hi).
+
+    Returns
+    -------
+    habit : str
+        'cube', 'cuboctahedron' or 'octahedron' (thresholds in :mod:`vocabulary`).
+    score : float
+        exp(-S_c / 2) / sum_k exp(-S_k / 2) of the chosen class, S_k the
+        class scores of :func:`class_scores`.
+
+    Notes
+    -----
+    The cube and the octahedron are end members: every alpha beyond their
+    limit gives the same body, with no truncation to measure. A
+    cuboctahedron has a truncation, and the name needs evidence of it: when
+    the cube class or the octahedron class fits within ``tolerance`` of the
+    best (the range alpha_lo..alpha_hi reaches it), the grain is named by
+    the better of the two; otherwise by the class of the best fit. This is a
+    likelihood-ratio test of the end member against the truncated body, at
+    the level ``tolerance`` stands for (4 chi-square units, about 95 % for
+    one parameter). Blur rounds an octahedron's corners, which a barely
+    truncated model may then fit a little better; that no longer turns an
+    octahedron into a cuboctahedron.
+    """
+    s = class_scores(fit, library)
+    k = int(np.argmin(s))
+    ends = np.array([s[0], np.inf, s[2]])
+    if k == 1 and ends.min() <= s[1] + tolerance:
+        k = int(np.argmin(ends))
+    w = np.exp(-0.5 * (s - s.min()))
+    return ("cube", "cuboctahedron", "octahedron")[k], float(w[k] / w.sum())
+
+
+def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0) -> bool:
+    """Whether an outline-only fit already fixes the polyhedral class and leaves alpha only bounded.
+
+    Parameters
+    ----------
+    fit : AlphaFit
+        :func:`fit_alpha` without interior.
+    library : ModelLibrary
+    tolerance : float
+        As in :func:`fit_alpha`.
+
+    Returns
+    -------
+    bool
+        True when every model whose interior the full fit would place (outline
+        score within ``tolerance`` plus the interior gate of the best) is of
+        one class, and the outline range runs into an end of the grid (alpha
+        NaN, e.g. a square: alpha <= 1.5). The full fit then names the same
+        class (its best model is one of those) and could at most narrow a
+        range that only bounds alpha; it is skipped.
+    """
+    near = fit.score <= tolerance + _INTERIOR_GATE
+    cls = np.where(library.alphas <= CUBE_ALPHA_MAX, 0, np.where(library.alphas < OCTAHEDRON_ALPHA, 1, 2))
+    return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
+
+
+def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
+    """The smallest centrally symmetric convex outline that contains a (cut) outline.
+
+    Parameters
+    ----------
+    contour_xy : array_like, shape (k, 2)
+        Closed outline of a grain that was cut from a touching neighbour.
+    free : array_like of bool, shape (k,), optional
+        Vertices on the grain's true edges (False along the cut, where the
+        dividing line need not follow the true contact). Only these are
+        completed when they span at least half the outline's area; default all.
+
+    Returns
+    -------
+    ndarray, shape (q, 2)
+        Convex hull of the outline and its point reflection through the
+        centre c that makes that hull smallest, counter-clockwise.
+
+    Notes
+    -----
+    Every Wulff projection fitted here is centrally symmetric. A body cut
+    by a straight line keeps at least half of its outline when the cut
+    removes less than half of it, and the union of what is left with its
+    reflection through the body's centre is then the whole outline again;
+    through any other centre the hull is larger. The centre is found by
+    ``scipy.optimize.minimize`` (Nelder-Mead) on the hull area, started at
+    the centroid of the cut outline.
+    """
+    from scipy.optimize import minimize
+    from scipy.spatial import ConvexHull
+
+    c = check_polygon(contour_xy, "contour_xy")
+    pts = c[ConvexHull(c).vertices]
+    if free is not None:
+        f = c[np.asarray(free, bool)]
+        try:
+            fh = f[ConvexHull(f).vertices]
+            if polygon_centroid(fh)[1] >= 0.5 * polygon_centroid(pts)[1]:
+                pts = fh
+        except (ValueError, RuntimeError, IndexError):     # too few or collinear free vertices
+            pass
+    cen, area = polygon_centroid(pts)
+    scale = math.sqrt(area)
+
+    def hull_area(q):
+        return ConvexHull(np.vstack([pts, 2.0 * q - pts])).volume
+
+    res = minimize(hull_area, cen, method="Nelder-Mead",
+                   options={"xatol": 1e-3 * scale, "fatol": 1e-6 * area, "initial_simplex":
+                            np.array([cen, cen + [0.1 * scale, 0.0], cen + [0.0, 0.1 * scale]])})
+    both = np.vstack([pts, 2.0 * res.x - pts])
+    return both[ConvexHull(both).vertices]
+
+
+# ---------------------------------------------------------------- grain evidence
+

@@ -1,0 +1,507 @@
+"""Interior evidence of a grain: placed Wulff models against its pixels (the habit engine's interior half).
+
+Secondary-electron contrast ('facets'): the brightness above the background of
+the facet seen at each pixel follows its tilt, ``a (1 + k (sec(tilt) - 1))``
+with one scale a >= 0 and k in :data:`TILT_GAIN_RANGE`, plus a detector term
+``c . n_xy`` and a plane; transmission contrast ('thickness'): the attenuation
+-ln(I / I_bg) is ``b t + a`` with the model's projected thickness t, b >= 0
+and 0 <= a <= ``tem_offset_max`` times the mean attenuation, plus a plane.
+Both are bounded least squares; a predicted facet or thickness relief that
+the image does not show therefore costs. Pure functions on arrays.
+
+References
+----------
+.. [1] L. Reimer, *Scanning Electron Microscopy*, 2nd ed., Springer (1998),
+   ch. 4 (secondary-electron yield rising with tilt, roughly as sec(tilt);
+   from memory).
+"""
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit.signature import polygon_centroid
+
+
+#: Range of the gain k of the tilt law ``1 + k (sec(tilt) - 1)`` in secondary-electron
+#: contrast: k = 1 is the secant law [3]_; detectors and the substrate's own yield soften or
+#: sharpen it. The lower end is what makes a predicted but unseen facet cost.
+TILT_GAIN_RANGE = (0.2, 3.0)
+
+
+@dataclass(frozen=True)
+class Interior:
+    """Pixels inside one grain, ready to compare with a model's facets.
+
+    Attributes
+    ----------
+    x, y : ndarray, shape (p,)
+        Pixel centres in the lab frame of the grain: origin at the outline
+        centroid, x right, y up, in units of the grain's ECD.
+    value : ndarray, shape (p,)
+        Brightness (SEM) or attenuation -ln(I / I_bg) (TEM) at those pixels.
+    mode : str
+        'facets' (uniform brightness per facet) or 'thickness' (linear in
+        projected thickness).
+    pixel : float
+        One pixel in the same units (1 / ECD in pixels).
+    weight : float
+        Pixels each sample stands for (1 as collected; more after
+        :func:`subsample_interior`): the interior evidence is multiplied by it.
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    value: np.ndarray
+    mode: str
+    pixel: float = 0.0
+    weight: float = 1.0
+
+
+def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
+    """Collect the interior samples of one grain.
+
+    Parameters
+    ----------
+    signal : ndarray, shape (h, w)
+        Crop of the brightness or attenuation image.
+    mask : ndarray of bool, shape (h, w)
+        The grain's pixels in the crop.
+    centroid_xy_px : (float, float)
+        Outline centroid in crop pixel coordinates (x = col + 0.5, y = row + 0.5).
+    ecd_px : float
+        ECD in pixels.
+    mode : {'facets', 'thickness'}
+    erode_px : int
+        Binary erosion of the mask first (the rim and the blurred edge).
+
+    Returns
+    -------
+    Interior or None
+        None when fewer than 30 pixels remain.
+    """
+    if mode not in ("facets", "thickness"):
+        raise ValueError(f"mode must be 'facets' or 'thickness', got {mode!r}")
+    m = np.asarray(mask, bool)
+    if erode_px > 0:
+        m = ndi.binary_erosion(m, iterations=int(erode_px))
+    rr, cc = np.nonzero(m)
+    if rr.size < 30:
+        return None
+    x = (cc + 0.5 - centroid_xy_px[0]) / ecd_px
+    y = -(rr + 0.5 - centroid_xy_px[1]) / ecd_px
+    v = np.asarray(signal, float)[rr, cc]
+    return Interior(x, y, v, mode, 1.0 / ecd_px)
+
+
+def subsample_interior(interior: Interior, max_samples: int) -> Interior:
+    """Keep at most about ``max_samples`` interior samples, on a regular pixel lattice.
+
+    Parameters
+    ----------
+    interior : Interior
+    max_samples : int
+        Sample budget (>= 30).
+
+    Returns
+    -------
+    Interior
+        ``interior`` itself when it is within budget; else the samples on
+        every s-th row and column (s = ceil(sqrt(p / max_samples))), with
+        ``weight`` multiplied by p / p_kept so that sums of squares over the
+        kept samples estimate those over all of them.
+
+    Notes
+    -----
+    A lattice keeps the samples evenly spread in both directions, so every
+    facet keeps its share; a raster stride is used instead when the lattice
+    would keep under a quarter of the budget (an already thinned sample).
+    """
+    if int(max_samples) != max_samples or max_samples < 30:
+        raise ValueError(f"max_samples must be an integer >= 30, got {max_samples!r}")
+    p = interior.value.size
+    if p <= max_samples:
+        return interior
+    if interior.pixel > 0:
+        ix = np.rint((interior.x - interior.x.min()) / interior.pixel).astype(np.int64)
+        iy = np.rint((interior.y - interior.y.min()) / interior.pixel).astype(np.int64)
+        st = int(math.ceil(math.sqrt(p / max_samples)))
+        keep = np.flatnonzero((ix % st == 0) & (iy % st == 0))
+    else:
+        keep = np.zeros(0, int)
+    if keep.size < max_samples / 4 or keep.size > max_samples:
+        keep = np.arange(0, p, int(math.ceil(p / max_samples)))
+    return Interior(interior.x[keep], interior.y[keep], interior.value[keep], interior.mode,
+                    interior.pixel, interior.weight * p / keep.size)
+
+
+def _top_facets(interior: Interior, body, rotation, edge_px: float):
+    """Top facet of every sample, the facet tilt features and the edge mask (one model)."""
+    x, y = interior.x, interior.y
+    nl = body.face_normals @ np.asarray(rotation).T
+    up = nl[:, 2] > 1e-9
+    coef_up = np.vstack([-nl[up, 0], -nl[up, 1], body.face_offsets[up]]) / nl[up, 2]
+    pts = np.column_stack([x, y, np.ones_like(x)])
+    zup = pts @ coef_up
+    idx = np.argmin(zup, axis=1)
+    far = np.ones(x.size, bool)
+    if up.sum() > 1 and edge_px > 0:
+        g = coef_up[:2].T
+        gd = np.linalg.norm(g[:, None, :] - g[None, :, :], axis=-1)
+        ztop = zup[np.arange(x.size), idx]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dist = (zup - ztop[:, None]) / gd[idx]
+        dist[np.arange(x.size), idx] = np.inf
+        far = np.nanmin(np.where(np.isfinite(dist), dist, np.inf), axis=1) >= edge_px * interior.pixel
+    return nl[up][idx], zup.min(axis=1), far
+
+
+def interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0,
+                  tem_offset_max: float = 0.5) -> float:
+    """Residual sum of squares of the interior under one placed model (the reference).
+
+    Parameters
+    ----------
+    interior : Interior
+    body : Polyhedron
+    rotation : ndarray, shape (3, 3)
+        Crystal -> lab rotation of the placed model.
+    edge_px : float
+        'facets': samples closer than this (pixels) to a predicted facet
+        edge are left out and the RSS scaled back to all samples.
+    tem_offset_max : float
+        'thickness': bound of the thickness-independent term, as a share of
+        the mean attenuation.
+
+    Returns
+    -------
+    float
+
+    Notes
+    -----
+    'facets' (secondary electrons, brightness above the background): the
+    facet seen at (x, y) is the upward plane of lowest height there; its
+    brightness is ``a (1 + k (sec(tilt) - 1)) + c_x n_x + c_y n_y`` plus a
+    plane ``p_x x + p_y y`` (illumination gradient), with a >= 0 and k in
+    :data:`TILT_GAIN_RANGE`. This reference solves it by brute force: linear
+    least squares at 2001 values of k spread over the range (and a = 0), the
+    smallest RSS kept. 'thickness'
+    (transmission): ``b t + a + p_x x + p_y y`` with b >= 0 and
+    0 <= a <= tem_offset_max * mean(value), solved by
+    ``scipy.optimize.lsq_linear`` (bounded least squares).
+    """
+    from scipy.optimize import lsq_linear
+
+    x, y, v = interior.x, interior.y, interior.value
+    if interior.mode == "facets":
+        n, _, far = _top_facets(interior, body, rotation, edge_px)
+        scale = 1.0
+        if far.sum() >= 30 and not far.all():
+            scale = v.size / far.sum()
+            x, y, v, n = x[far], y[far], v[far], n[far]
+        sec = 1.0 / n[:, 2] - 1.0
+        a0 = np.column_stack([n[:, 0], n[:, 1], x, y])
+        coef, *_ = np.linalg.lstsq(a0, v, rcond=None)
+        best = float(np.sum((v - a0 @ coef) ** 2))                  # a = 0
+        for k in np.linspace(*TILT_GAIN_RANGE, 2001):
+            a = np.column_stack([1.0 + k * sec, a0])
+            coef, *_ = np.linalg.lstsq(a, v, rcond=None)
+            if coef[0] >= 0:
+                best = min(best, float(np.sum((v - a @ coef) ** 2)))
+        return best * scale
+    nl = body.face_normals @ np.asarray(rotation).T
+    pts = np.column_stack([x, y, np.ones_like(x)])
+    up, dn = nl[:, 2] > 1e-9, nl[:, 2] < -1e-9
+    zup = pts @ (np.vstack([-nl[up, 0], -nl[up, 1], body.face_offsets[up]]) / nl[up, 2])
+    zdn = pts @ (np.vstack([-nl[dn, 0], -nl[dn, 1], body.face_offsets[dn]]) / nl[dn, 2])
+    t = np.maximum(zup.min(axis=1) - zdn.max(axis=1), 0.0)
+    amax = max(tem_offset_max * float(np.mean(v)), 0.0)
+    a = np.column_stack([t, np.ones_like(t), x, y])
+    res = lsq_linear(a, v, bounds=([0.0, 0.0, -np.inf, -np.inf], [np.inf, amax + 1e-15, np.inf, np.inf]),
+                     method="bvls", tol=1e-12)
+    return float(np.sum((v - a @ res.x) ** 2))
+
+
+FAR_HEIGHT = 1e6
+
+
+def face_planes(body, rotation, upward: bool):
+    """Height gradients (k, 2) and origin heights (k,) of the up- or downward face planes."""
+    nl = body.face_normals @ np.asarray(rotation).T
+    sel = nl[:, 2] > 1e-9 if upward else nl[:, 2] < -1e-9
+    nz = nl[sel, 2]
+    return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
+
+
+def _solve_fixed(nm, rhs, vv, fixed):
+    """Least squares with some unknowns held at given values, for c small systems at once.
+
+    Parameters
+    ----------
+    nm : ndarray, shape (c, k, k)
+        Normal matrices A^T A.
+    rhs : ndarray, shape (c, k)
+        A^T v.
+    vv : ndarray, shape (c,)
+        v . v.
+    fixed : dict
+        Unknown index -> value, ndarray (c,) or float.
+
+    Returns
+    -------
+    theta : ndarray, shape (c, k)
+    rss : ndarray, shape (c,)
+        |v - A theta|^2 = v.v - 2 theta.rhs + theta^T nm theta.
+    """
+    c, k = rhs.shape
+    theta = np.zeros((c, k))
+    for i, val in fixed.items():
+        theta[:, i] = val
+    free = np.array([i for i in range(k) if i not in fixed])
+    if free.size:
+        nf = nm[:, free[:, None], free[None, :]]
+        r = rhs[:, free] - np.einsum("cij,cj->ci", nm[:, free, :], theta)
+        tr = np.einsum("cii->c", nf)
+        nf = nf + np.eye(free.size)[None] * (1e-12 * tr + 1e-300)[:, None, None]
+        theta[:, free] = np.linalg.solve(nf, r[:, :, None])[:, :, 0]
+    rss = vv - 2.0 * np.einsum("ci,ci->c", theta, rhs) + np.einsum("ci,cij,cj->c", theta, nm, theta)
+    return theta, np.maximum(rss, 0.0)
+
+
+def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
+                       tem_offset_max: float = 0.5, max_elements: int = 1_000_000) -> np.ndarray:
+    """:func:`interior_rss` of many placed models at once.
+
+    Parameters
+    ----------
+    interior : Interior
+        p samples.
+    g_up, z_up : ndarray, shapes (c, M, 2) and (c, M)
+        Upward planes of each model (:func:`placed_planes`), padded with
+        flat planes at height ``FAR_HEIGHT``.
+    g_dn, z_dn : ndarray, shapes (c, K, 2) and (c, K)
+        Downward planes (needed for 'thickness'), padded at ``-FAR_HEIGHT``.
+    edge_px, tem_offset_max : float
+        As in :func:`interior_rss`.
+    max_elements : int
+        Models are processed in chunks of about this many (model, sample,
+        plane) elements (memory bound).
+
+    Returns
+    -------
+    ndarray, shape (c,)
+        Residual sum of squares of each model, as :func:`interior_rss`.
+
+    Notes
+    -----
+    Same model as :func:`interior_rss`. A plane's tilt follows from its
+    height gradient g: n_z = 1 / sqrt(1 + |g|^2), (n_x, n_y) = -g n_z. The
+    per-facet sums of the normal equations of all models come from one
+    weighted ``bincount`` over (model, facet) bins. Both bounded fits are
+    convex least-squares problems with a few linear inequality constraints,
+    solved exactly by trying every active set (the best feasible candidate
+    is the optimum): in 'facets' mode a >= 0 and k_min a <= b <= k_max a
+    with b = k a, in 'thickness' mode b >= 0 and 0 <= a <= amax.
+    """
+    g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
+    c, m = z_up.shape
+    if c == 0:
+        return np.zeros(0)
+    p = interior.value.size
+    step = max(1, int(max_elements // max(p * max(m, 1), 1)))
+    if c > step:
+        return np.concatenate([
+            interior_rss_batch(interior, g_up[i:i + step], z_up[i:i + step],
+                               None if g_dn is None else g_dn[i:i + step],
+                               None if z_dn is None else z_dn[i:i + step], edge_px, tem_offset_max,
+                               max_elements)
+            for i in range(0, c, step)])
+    x, y, v = interior.x, interior.y, interior.value
+    # plane heights laid out (plane, model, sample): reductions run over whole
+    # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
+    # the sums of the normal equations float64
+    x32, y32 = x.astype(np.float32), y.astype(np.float32)
+
+    def heights(g, z0):
+        gt = np.asarray(g, np.float32).transpose(2, 1, 0)                  # (2, M, c)
+        return (np.asarray(z0, np.float32).T[:, :, None] + gt[0][:, :, None] * x32
+                + gt[1][:, :, None] * y32)                                  # (M, c, p)
+
+    zup = heights(g_up, z_up)
+    ztop = zup.min(axis=0)                                                   # (c, p)
+    if interior.mode == "facets":
+        idx = zup.argmin(axis=0)                          # lowest plane, first index on ties
+        wt = np.ones((c, p))
+        scale = np.ones(c)
+        if m > 1 and edge_px > 0:
+            # distance to the line where plane j meets the top plane:
+            # (z_j - z_top) / |g_j - g_top|; the top plane itself gives 0 * inf = NaN, skipped by fmin
+            gd = np.linalg.norm(g_up[:, :, None, :] - g_up[:, None, :, :], axis=-1)   # (c, M, M)
+            with np.errstate(divide="ignore"):
+                inv = (1.0 / gd).astype(np.float32).transpose(2, 0, 1)                # (j, c, top)
+            zup -= ztop
+            with np.errstate(invalid="ignore"):
+                zup *= inv[:, np.arange(c)[:, None], idx]
+            near = np.fmin.reduce(zup, axis=0)
+            far = ~(near < edge_px * interior.pixel)
+            nfar = far.sum(axis=1)
+            use = (nfar >= 30) & (nfar < p)
+            wt = np.where(use[:, None], far, True).astype(float)
+            scale = np.where(use, p / np.maximum(nfar, 1), 1.0)
+        bins = (np.arange(c)[:, None] * m + idx).ravel()
+        cnt = np.bincount(bins, wt.ravel(), minlength=c * m).reshape(c, m)
+        sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
+        sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
+        sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
+        xx, xy, yy = wt @ (x * x), wt @ (x * y), wt @ (y * y)
+        xv, yv, vv = wt @ (x * v), wt @ (y * v), wt @ (v * v)
+        nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
+        sec = 1.0 / nz - 1.0
+        f = np.stack([np.ones_like(sec), sec, -g_up[..., 0] * nz, -g_up[..., 1] * nz], axis=-1)   # (c, M, 4)
+        # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
+        nm = np.zeros((c, 6, 6))
+        nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
+        nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
+        nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
+        nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
+        rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
+        kmin, kmax = TILT_GAIN_RANGE
+        eps = 1e-12
+        th, rss = _solve_fixed(nm, rhs, vv, {})
+        ok = (th[:, 0] >= -eps) & (th[:, 1] >= kmin * th[:, 0] - eps) & (th[:, 1] <= kmax * th[:, 0] + eps)
+        best = np.where(ok, rss, np.inf)
+        bad = np.flatnonzero(~ok)          # the unconstrained optimum is feasible: it is the optimum
+        if bad.size:
+            nb, rb, vb = nm[bad], rhs[bad], vv[bad]
+            sub = _solve_fixed(nb, rb, vb, {0: 0.0, 1: 0.0})[1]                      # a = 0
+            for k in (kmin, kmax):
+                # b = k a: the pair becomes one unknown a on the column 1 + k sec
+                t = np.eye(6)[:, [0, 2, 3, 4, 5]]
+                t[1, 0] = k
+                th, rss = _solve_fixed(np.einsum("ia,cij,jb->cab", t, nb, t), rb @ t, vb, {})
+                sub = np.where(th[:, 0] >= -eps, np.minimum(sub, rss), sub)
+            best[bad] = sub
+        return best * scale
+    if g_dn is None or z_dn is None:
+        raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
+    t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)   # (c, p)
+    nm = np.empty((c, 4, 4))
+    st, sx_, sy_ = t.sum(axis=1), t @ x, t @ y
+    nm[:, 0, 0] = np.einsum("cp,cp->c", t, t)
+    nm[:, 0, 1], nm[:, 0, 2], nm[:, 0, 3] = st, sx_, sy_
+    nm[:, 1:, 0] = nm[:, 0, 1:]
+    nm[:, 1:, 1:] = np.array([[p, x.sum(), y.sum()], [x.sum(), x @ x, x @ y],
+                              [y.sum(), x @ y, y @ y]])[None]
+    rhs = np.empty((c, 4))
+    rhs[:, 0] = t @ v
+    rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
+    vv = np.full(c, v @ v)
+    amax = max(tem_offset_max * float(np.mean(v)), 0.0)
+    best = np.full(c, np.inf)
+    eps = 1e-12
+    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set (the other
+    # sets only where the unconstrained optimum is not feasible)
+    rows = np.arange(c)
+    for fixed in ({}, {1: 0.0}, {1: amax}, {0: 0.0}, {0: 0.0, 1: 0.0}, {0: 0.0, 1: amax}):
+        th, rss = _solve_fixed(nm[rows], rhs[rows], vv[rows], fixed)
+        ok = (th[:, 0] >= -eps) & (th[:, 1] >= -eps) & (th[:, 1] <= amax + eps)
+        best[rows] = np.where(ok, np.minimum(best[rows], rss), best[rows])
+        if not fixed:
+            rows = rows[~ok]
+            if rows.size == 0:
+                break
+    return best
+
+
+@functools.lru_cache(maxsize=1)
+def _round_planes(n_planes: int = 120):
+    """Plane tables of a sphere of unit diameter (a polyhedron of ``n_planes`` tangent planes)."""
+    k = np.arange(n_planes) + 0.5
+    z = 1.0 - 2.0 * k / n_planes
+    phi = math.pi * (1.0 + math.sqrt(5.0)) * k                      # Fibonacci directions
+    rxy = np.sqrt(1.0 - z * z)
+    nrm = np.column_stack([rxy * np.cos(phi), rxy * np.sin(phi), z])
+    body = cr.polyhedron_from_halfspaces(nrm, np.full(n_planes, 0.5), kind="sphere")
+    g_up, z_up = face_planes(body, np.eye(3), True)
+    g_dn, z_dn = face_planes(body, np.eye(3), False)
+    return g_up[None], z_up[None], g_dn[None], z_dn[None]
+
+
+def round_rss(interior: Interior, tem_offset_max: float) -> float:
+    """RSS of the interior under a round body (a sphere of the grain's ECD), same models as the facets.
+
+    A rounded grain shows brightness rising towards its rim (secondary electrons) or a
+    thickness dome (transmission) without facets; facet evidence is counted against the
+    better of this and a flat interior.
+    """
+    return float(interior_rss_batch(interior, *_round_planes(), edge_px=0.0, tem_offset_max=tem_offset_max)[0])
+
+
+def flat_rss(interior: Interior) -> float:
+    """RSS of a featureless interior: one level plus a plane a x + b y."""
+    a = np.column_stack([np.ones_like(interior.x), interior.x, interior.y])
+    nm = a.T @ a
+    rhs = a.T @ interior.value
+    coef = np.linalg.solve(nm + np.eye(3) * 1e-12 * np.trace(nm), rhs)
+    v = interior.value
+    return float(max(v @ v - coef @ rhs, 0.0))
+
+
+def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
+    """Lab-frame contour and interior samples of one labelled grain.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Label image (0 background).
+    signal : ndarray, shape (rows, cols)
+        Brightness ('facets') or transmitted intensity ('thickness').
+    mode : {'facets', 'thickness'}
+        Secondary-electron contrast: the brightness above the median of a
+        background ring around the grain is used; transmission contrast: the
+        attenuation -ln(I / I_bg) with I_bg the ring's median.
+    contour_px : ndarray, shape (k, 2)
+        Sub-pixel outline in pixel coordinates (x = col + 0.5 at pixel
+        centres, y down).
+    label : int
+        The grain's label.
+    erode_px : int
+        Pixels left out along the outline.
+
+    Returns
+    -------
+    contour_lab : ndarray, shape (k, 2) or None
+        Contour with y flipped (lab axes, y up), in pixels; None for fewer
+        than 3 vertices.
+    interior : Interior or None
+    """
+    c = np.asarray(contour_px, float)
+    if len(c) < 3:
+        return None, None
+    cen, area = polygon_centroid(c)
+    ecd = math.sqrt(4 * area / math.pi)
+    rows, cols = labels.shape
+    pad = 4
+    r0 = max(int(np.floor(c[:, 1].min())) - pad, 0)
+    r1 = min(int(np.ceil(c[:, 1].max())) + pad + 1, rows)
+    c0 = max(int(np.floor(c[:, 0].min())) - pad, 0)
+    c1 = min(int(np.ceil(c[:, 0].max())) + pad + 1, cols)
+    lab_crop = labels[r0:r1, c0:c1]
+    mask = lab_crop == label
+    crop = np.asarray(signal[r0:r1, c0:c1], float)
+    ring = (lab_crop == 0) & ~ndi.binary_dilation(mask, iterations=2)
+    bg = float(np.median(crop[ring])) if ring.any() else float(np.percentile(crop, 5 if mode == "facets" else 95))
+    if mode == "thickness":
+        if bg <= 0:
+            bg = float(np.max(crop))
+        crop = -np.log(np.clip(crop, 1e-3 * bg, None) / bg) if bg > 0 else np.zeros_like(crop)
+    else:
+        crop = crop - bg
+    contour_lab = np.column_stack([c[:, 0], -c[:, 1]])
+    interior = grain_interior(crop, mask, (cen[0] - c0, cen[1] - r0), ecd, mode, erode_px)
+    return contour_lab, interior
