@@ -338,3 +338,17 @@ def test_run_judges_batches_and_prints_one_line_per_sample(small_survey):
     assert samples[str(small_survey / "data" / "alpha-batch" / "broken.tif")] == "alpha-batch"  # no phantom
     page = (small_survey / "out" / "report" / "index.html").read_text()
     assert "beta-product" in page and "broken.tif" in page  # the failed frame is listed near the top
+
+
+def test_prospective_limits_flag_a_drift_at_its_first_point():
+    # a stable history (sd 1 around 100, invented) followed by a step of 6 sigma: judged against the nights
+    # before it, the first drifted point breaks rule 1 (beyond 3 sigma); limits taken over the whole history
+    # (drift included) are so wide that the same point breaks nothing (Shewhart individuals chart)
+    rng = np.random.default_rng(3)
+    values = list(100 + rng.normal(0, 1, 10)) + [106.0, 106.5, 107.0]
+    limits, flags = cc.prospective(values)
+    assert all(math.isnan(lim.sigma) for lim in limits[:5]) and flags[:5] == [[]] * 5
+    assert 1 in flags[10]
+    whole = cc.individuals_limits(values)
+    assert 1 not in cc.run_rules(values, whole.centre, whole.sigma)[10]
+    assert limits[10].centre == pytest.approx(np.mean(values[:10]))

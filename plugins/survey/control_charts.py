@@ -27,6 +27,15 @@ limits.
   4. eight consecutive points on one side of the centre line.
 
   A rule flags the point that completes its pattern.
+
+- Each point is judged against the limits of the history before it
+  (:func:`prospective`): the nights before a point are its reference, so a
+  drifting batch is measured against the in-control batches that came
+  before it and not against a history that already holds the drift (a
+  chart whose limits include the drifted points widens with the drift and
+  flags it late). This is the usual split of a control chart into a
+  reference period and the monitoring of new points (NIST/SEMATECH
+  e-Handbook 6.3.1, from memory), applied at every point.
 """
 
 from __future__ import annotations
@@ -138,3 +147,42 @@ def run_rules(values, centre: float, sigma: float) -> list[list[int]]:
     for f in flags:
         f.sort()
     return flags
+
+
+def prospective(values, min_points: int = 5) -> tuple[list[Limits], list[list[int]]]:
+    """Limits and run-rule flags of every point, each judged against the history before it.
+
+    Parameters
+    ----------
+    values : array_like of float
+        The history in time order (NaN: no data that night, skipped).
+    min_points : int
+        Finite earlier points needed before a point gets limits (and can
+        break a rule).
+
+    Returns
+    -------
+    limits : list of Limits
+        Per point, the limits from the finite points before it (NaN limits
+        until ``min_points`` earlier points exist).
+    flags : list of list of int
+        Per point, the rules whose pattern it completes when its window (it
+        and the finite points just before it) is measured against its own
+        limits.
+    """
+    x = np.asarray(values, dtype=float).ravel()
+    idx = np.flatnonzero(np.isfinite(x))
+    limits: list[Limits] = []
+    flags: list[list[int]] = [[] for _ in range(x.size)]
+    for i in range(x.size):
+        before = idx[idx < i]
+        lim = individuals_limits(x[before], min_points=min_points)
+        limits.append(lim)
+        if not np.isfinite(x[i]) or not (np.isfinite(lim.sigma) and lim.sigma > 0):
+            continue
+        window = max(w for _, w, _, _ in RULES.values())
+        recent = np.r_[before[-(window - 1):], i]
+        last = run_rules(x[recent], lim.centre, lim.sigma)[-1]
+        flags[i] = last
+    return limits, flags
+

@@ -162,10 +162,12 @@ def control_chart(groups: list[str], series: list[dict], title: str) -> str:
         err = np.vstack([np.nan_to_num(v - lo), np.nan_to_num(hi - v)]).clip(min=0)
         ax.errorbar(x, v, yerr=err, color="#9a9a9a", lw=0, elinewidth=0.9, capsize=2, zorder=1)
         ax.plot(x, v, color="#1a2a6e", marker="o", ms=4, lw=1.2, zorder=3, label="value")
-        for key, style, lab in (("centre", ":", "centre"), ("lcl", "--", "control limits"), ("ucl", "--", None)):
-            val = s[key]
-            if math.isfinite(val):
-                ax.axhline(val, color="#555", ls=style, lw=1, label=lab, zorder=2)
+        # each point's limits come from the nights before it: drawn as steps
+        for key, style, lab in (("centre", ":", "centre (nights before)"), ("lcl", "--", "control limits"),
+                                ("ucl", "--", None)):
+            val = np.asarray(s[key], float)
+            if np.isfinite(val).any():
+                ax.step(x, val, where="mid", color="#555", ls=style, lw=1, label=lab, zorder=2)
         for key, lab in (("limit_lo", "spec limits"), ("limit_hi", None)):
             val = s[key]
             if math.isfinite(val):

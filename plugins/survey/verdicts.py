@@ -309,8 +309,7 @@ def trend_points(specs: Specs, grains, frames, key: str, params: dict) -> "xr.Da
                 vals.append(v)
                 los.append(lo)
                 his.append(hi)
-            lim = cc.individuals_limits(vals)
-            flags = cc.run_rules(vals, lim.centre, lim.sigma)
+            limits, flags = cc.prospective(vals)
             for pos, k in enumerate(keep):
                 lab = labels[k]
                 cols["product"].append(p.name)
@@ -322,6 +321,7 @@ def trend_points(specs: Specs, grains, frames, key: str, params: dict) -> "xr.Da
                 cols["ci_hi"].append(his[pos])
                 cols["grain_count"].append(int(ds["grain_count"].values[k]))
                 cols["samples"].append(", ".join(groups_samples[lab]))
+                lim = limits[pos]
                 cols["centre"].append(lim.centre)
                 cols["sigma"].append(lim.sigma)
                 cols["lcl"].append(lim.lower)
@@ -335,7 +335,8 @@ def trend_points(specs: Specs, grains, frames, key: str, params: dict) -> "xr.Da
         "group": f"value of the trend field {key!r}", "position": "order of the point in the product's history",
         "value": "value of the criterion", "ci_lo": "lower confidence limit", "ci_hi": "upper confidence limit",
         "grain_count": "grains counted", "samples": "samples (batches) of this point",
-        "centre": "centre line (mean of the history)", "sigma": "short-term sigma, average moving range / d2",
+        "centre": "centre line (mean of the history before this point)",
+        "sigma": "short-term sigma of the history before this point, average moving range / d2",
         "lcl": "lower control limit, centre - 3 sigma", "ucl": "upper control limit, centre + 3 sigma",
         "limit_lo": "lower spec limit", "limit_hi": "upper spec limit",
         "rules": "Western Electric rules (1-4) this point breaks, space-separated",

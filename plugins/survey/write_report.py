@@ -433,8 +433,8 @@ def _trend_series(c: _Ctx, product: str):
             "criterion": cr, "label": figures.label_of(cr), "x": np.asarray(t["position"].values, int)[m],
             "groups": text_values(t["group"].values)[m],
             **{k: np.asarray(t[k].values, float)[m] for k in ("value", "ci_lo", "ci_hi")},
-            **{k: float(np.asarray(t[k].values, float)[m][0]) for k in ("centre", "lcl", "ucl", "limit_lo",
-                                                                        "limit_hi", "sigma")},
+            **{k: np.asarray(t[k].values, float)[m] for k in ("centre", "lcl", "ucl")},
+            **{k: float(np.asarray(t[k].values, float)[m][0]) for k in ("limit_lo", "limit_hi")},
             "rules": list(text_values(t["rules"].values)[m]),
             "samples": list(text_values(t["samples"].values)[m]),
         })
@@ -472,8 +472,6 @@ def _product_sections(c: _Ctx) -> list[str]:
                             flags.append(f"<li>{_esc(by)} {_esc(g)} ({_esc(smp)}): {_esc(s['label'])} "
                                          f"{_fmt(v, _nd(v))} breaks rule " + ", ".join(
                                              f"{n} ({_esc(RULES[int(n)][0])})" for n in r.split()) + "</li>")
-                    if not math.isfinite(s["lcl"]):
-                        pass
                 if flags:
                     out.append("<p><b>Run rules broken:</b></p><ul>" + "".join(flags) + "</ul>")
                 elif len(groups) >= int(c.trends.attrs.get("min_points_for_limits", 5)):
