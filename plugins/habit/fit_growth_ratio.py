@@ -1247,9 +1247,9 @@ def _signal(frame) -> tuple[np.ndarray, str]:
     raw = frame.raw if frame.raw is not None and np.shape(frame.raw) == np.shape(frame.labels) else None
     if frame.polarity == "dark":
         src = raw if raw is not None else frame.image
-        return np.asarray(src, float), "thickness"
+        return src, "thickness"
     src = raw if raw is not None else frame.image
-    return np.asarray(src, float), "facets"
+    return src, "facets"
 
 
 def _attenuation(crop, mask, ring):
@@ -1294,9 +1294,9 @@ def grain_evidence(frame, contours_px, index, erode_px=2):
     c1 = min(int(np.ceil(c[:, 0].max())) + pad + 1, cols)
     lab_crop = frame.labels[r0:r1, c0:c1]
     mask = lab_crop == lab
-    sig, mode = _signal(frame)
-    crop = sig[r0:r1, c0:c1]
-    if mode == "thickness" and frame.raw is not None and sig is not frame.image:
+    src, mode = _signal(frame)
+    crop = np.asarray(src[r0:r1, c0:c1], float)  # convert the crop only: a whole-frame copy per grain was quadratic
+    if mode == "thickness" and frame.raw is not None and src is not frame.image:
         ring = (lab_crop == 0) & ~ndi.binary_dilation(mask, iterations=2)
         crop = _attenuation(crop, mask, ring)
     contour_lab = np.column_stack([c[:, 0], -c[:, 1]])
