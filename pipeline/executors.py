@@ -270,3 +270,75 @@ def make_executor(execution: dict, upload=()) -> SerialExecutor | DaskExecutor:
         upload=upload,
         max_in_flight=execution.get("max_in_flight", 0),
     )
+
+
+def _in_dask_worker():
+    """The dask worker running this code, or None outside a worker."""
+    import sys
+
+    if "distributed" not in sys.modules:
+        return None
+    try:
+        from distributed import get_worker
+
+        return get_worker()
+    except (ImportError, ValueError):
+        return None
+
+
+def fan_out(func: Callable, items: list, threads: int = 0) -> list:
+    """``[func(*args) for args in items]``, spread over the cluster or the local cores.
+
+    The seam through which one frame task splits its work (tiles of a huge
+    frame) over every worker instead of running it all on its own.
+
+    Parameters
+    ----------
+    func : callable
+        Pure, picklable (cloudpickle) and thread-safe.
+    items : list of tuple
+        Arguments of each call. Large arrays among them are sent to the
+        workers once, by scatter.
+    threads : int
+        Outside a dask worker: threads of a local pool (0: one per core; 1:
+        in this thread, one call after another). Inside a dask worker 1
+        also keeps the calls in this thread; any other value submits them to
+        the cluster.
+
+    Returns
+    -------
+    list
+        The results in the order of ``items``.
+
+    Notes
+    -----
+    Inside a worker the calls become tasks of the cluster the frame task
+    runs on: the frame task leaves the worker's thread pool while it waits
+    (``distributed.worker_client``), so its own worker runs calls too, and
+    the calls are submitted with a higher priority than the frames still
+    queued, so that the frame that waits for them is finished first.
+    Serial and local runs use a thread pool (most of scikit-image and
+    scipy.ndimage releases the GIL).
+    """
+    items = [tuple(a) for a in items]
+    if not items:
+        return []
+    worker = _in_dask_worker()
+    if threads == 1 or len(items) == 1:
+        return [func(*a) for a in items]
+    if worker is not None:
+        from distributed import worker_client
+
+        with worker_client() as client:
+            shipped = [tuple(client.scatter(x, direct=True) if _is_large(x) else x for x in a) for a in items]
+            futures = [client.submit(func, *a, pure=False, priority=100) for a in shipped]
+            return client.gather(futures)
+    from concurrent.futures import ThreadPoolExecutor
+
+    n = threads if threads > 0 else (os.cpu_count() or 1)
+    with ThreadPoolExecutor(max_workers=min(n, len(items))) as pool:
+        return list(pool.map(lambda a: func(*a), items))
+
+
+def _is_large(x) -> bool:
+    return getattr(x, "nbytes", 0) > 1_000_000
