@@ -12,7 +12,8 @@ size distribution and noise are the same at every size, and an 8192 px
 frame costs a few renders instead of one render of 2,700 grains (which
 takes minutes).
 
-Cost is CPU time of this process (all its threads: tiled segmentation may
+The process reuses freed frame-sized arrays as a worker does
+(:func:`grainhabit.executors.keep_freed_memory`). Cost is CPU time of this process (all its threads: tiled segmentation may
 run tiles in threads), so that another program on a shared machine changes
 it less than the wall clock; both are printed. Sizes are run in
 interleaved rounds (``--rounds``, default 2), smallest first, and the
@@ -158,8 +159,10 @@ def run(argv: list[str]) -> int:
         ap.error(f"--sizes must be integers separated by commas, got {args.sizes!r}")
     if not sizes or args.tile < 64 or args.fields < 1 or args.rounds < 1 or any(s % args.tile for s in sizes):
         ap.error("--sizes must be multiples of --tile (>= 64); --fields and --rounds >= 1")
+    from grainhabit.executors import keep_freed_memory
     from grainhabit.plugins.bench.throughput import default_chain
 
+    keep_freed_memory()  # as every frame task does in a worker
     out = sys.stdout
     root = Path(tempfile.mkdtemp(prefix="grainhabit-sizes-"))
     try:

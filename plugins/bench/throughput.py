@@ -134,6 +134,9 @@ def serial_loop(paths, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
 
     from grainhabit.frame import FrameData
 
+    from grainhabit.executors import keep_freed_memory
+
+    keep_freed_memory()  # as every frame task does in a worker
     chain = default_chain()
     stages = {k: 0.0 for k in FRAME_PHASES}
     grains = pixels = 0
