@@ -272,7 +272,7 @@ def make_executor(execution: dict, upload=()) -> SerialExecutor | DaskExecutor:
     )
 
 
-def _in_dask_worker():
+def in_dask_worker():
     """The dask worker running this code, or None outside a worker."""
     import sys
 
@@ -323,7 +323,7 @@ def fan_out(func: Callable, items: list, threads: int = 0) -> list:
     items = [tuple(a) for a in items]
     if not items:
         return []
-    worker = _in_dask_worker()
+    worker = in_dask_worker()
     if threads == 1 or len(items) == 1:
         return [func(*a) for a in items]
     if worker is not None:

@@ -367,6 +367,6 @@ def label_tiled(image: np.ndarray, func: Callable, tile_px: int, halo_px: int,
 
 
 def _in_worker() -> bool:
-    from grainhabit.executors import _in_dask_worker
+    from grainhabit.executors import in_dask_worker
 
-    return _in_dask_worker() is not None
+    return in_dask_worker() is not None
