@@ -217,6 +217,12 @@ def versus_script(args, root, workers: int, out) -> dict:
           + ", ".join(f"{a['wall'] / b['wall']:.2f}x" for a, b in zip(scripts, runs))
           + f"); target >= {TARGET_RATIO}x: {'met' if ok else 'MISSED'}, goal {GOAL_RATIO}x: "
           f"{'met' if ratio >= GOAL_RATIO else 'not met'}", file=out)
+    cpu_run = c["cpu"].get("workers", float("nan")) + c["cpu"].get("main", float("nan"))
+    cpu_ratio = c["workers"] * s["cpu"] / cpu_run
+    print(f"CPU seconds per frame: script {s['cpu'] / args.frames:.2f}, grainhabit run {cpu_run / args.frames:.2f} "
+          f"(workers and main process); on {c['workers']} cores nobody else uses, the ratio would be at most "
+          f"{cpu_ratio:.2f}x ({c['workers']} x script CPU / run CPU; a shared machine gives each process its share)",
+          file=out)
     acc = accuracy(fields[: max(0, args.accuracy_frames)]) if args.accuracy_frames > 0 else {}
     if acc:
         print(f"accuracy on the first {min(args.accuracy_frames, len(fields))} of these fields (seeds {args.seed}..), "
@@ -226,7 +232,7 @@ def versus_script(args, root, workers: int, out) -> dict:
                   f"{a['ecd_err_pct']:.2f} %  touching pairs split {a['pairs_split']:.2f}  ({a['n_truth']} grains)",
                   file=out)
     print(f"{bu.load_text()} at the end", file=out)
-    return {"script": scripts, "pipeline": runs, "ratio": ratio, "accuracy": acc, "ok": ok,
+    return {"script": scripts, "pipeline": runs, "ratio": ratio, "cpu_ratio": cpu_ratio, "accuracy": acc, "ok": ok,
             "target": TARGET_RATIO, "goal": GOAL_RATIO}
 
 
