@@ -127,7 +127,7 @@ def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout
     others = [v for pid, v in sampler.peak_by_pid.items() if pid != proc.pid]
     figures.update(
         peak_tree=sampler.peak, peak_main=sampler.peak_root, peak_processes=sampler.peak_processes,
-        peak_largest_child=max(others, default=0),
+        peak_largest_child=max(others, default=0), peak_children=sorted(others, reverse=True),
         peak_processing=sampler.peak_between(ps, pe) if ps and pe else 0,
         peak_after=sampler.peak_between(pe, float("inf")) if pe else 0,
         samples=len(sampler.samples), wall=time.perf_counter() - t0, returncode=proc.returncode,
@@ -258,6 +258,8 @@ def huge_frame(size_px: int, workers: int, args) -> int:
               f"({bu.mib(c['peak_largest_child']) / raw_mib:.1f}x the float32 frame), run's main process "
               f"{bu.mib(c['peak_main']):.0f} MiB, whole tree {bu.mib(c['peak_tree']):.0f} MiB "
               f"({c['peak_processes']} processes)", file=out)
+        print("peak RSS of every process the run started, MiB (the workers segment the frame's tiles between them): "
+              + ", ".join(f"{bu.mib(v):.0f}" for v in c["peak_children"]), file=out)
         print(f"{bu.load_text()} at the end", file=out)
         if args.json:
             Path(args.json).parent.mkdir(parents=True, exist_ok=True)
