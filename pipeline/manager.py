@@ -61,6 +61,7 @@ BENCHMARK_PLUGINS = (
     "grainhabit.plugins.bench.memory",
     "grainhabit.plugins.bench.profile",
     "grainhabit.plugins.bench.nightly",
+    "grainhabit.plugins.bench.sizes",
 )
 
 #: Step used for a stage when the workflow names none. Stages missing here

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .executors import keep_freed_memory
 from .frame import FrameData, FrameRef
 from .manager import worker_host
 
@@ -141,6 +142,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         and ``outline_offsets`` (n + 1,) int64, ``thumb`` uint8 image and
         ``traceback`` (text, empty if ok).
     """
+    keep_freed_memory()
     host = worker_host(tuple(job.plugins))
     record = {
         "source": ref.source, "sample": sample, "status": "ok", "error": "", "grain_count": 0,

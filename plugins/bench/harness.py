@@ -394,6 +394,8 @@ class TreeRssSampler:
         Largest RSS of the root process alone (bytes).
     peak_processes : int
         Processes in the tree at the moment of ``peak``.
+    peak_by_pid : dict of int -> int
+        Largest RSS sampled of every process of the tree (bytes).
     samples : list of (float, int, int)
         (``time.time()``, tree RSS, root RSS) of every sample.
 
@@ -411,6 +413,7 @@ class TreeRssSampler:
         self.root = psutil.Process(pid)
         self.interval = float(interval)
         self.peak = self.peak_root = self.peak_processes = 0
+        self.peak_by_pid: dict[int, int] = {}
         self.samples: list[tuple[float, int, int]] = []
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name="rss-sampler", daemon=True)
@@ -427,6 +430,8 @@ class TreeRssSampler:
             except psutil.Error:
                 continue
             total += rss
+            if rss > self.peak_by_pid.get(p.pid, 0):
+                self.peak_by_pid[p.pid] = rss
             if p.pid == self.root.pid:
                 root = rss
         self.samples.append((time.time(), total, root))

@@ -126,8 +126,10 @@ def measure_case(workflow: Path, out_json: Path, interval: float = 0.05, timeout
             _, err = proc.communicate()
     figures = json.loads(out_json.read_text()) if out_json.exists() else {}
     ps, pe = figures.get("processing_start_wall"), figures.get("processing_end_wall")
+    others = [v for pid, v in sampler.peak_by_pid.items() if pid != proc.pid]
     figures.update(
         peak_tree=sampler.peak, peak_main=sampler.peak_root, peak_processes=sampler.peak_processes,
+        peak_largest_child=max(others, default=0), peak_children=sorted(others, reverse=True),
         peak_processing=sampler.peak_between(ps, pe) if ps and pe else 0,
         peak_after=sampler.peak_between(pe, float("inf")) if pe else 0,
         samples=len(sampler.samples), wall=time.perf_counter() - t0, returncode=proc.returncode,
@@ -155,9 +157,14 @@ def run(argv: list[str]) -> int:
                                                      "(default: a temporary folder, removed)")
     ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
                     help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (default unset; dask's own is 65536)")
+    ap.add_argument("--huge", type=int, metavar="PX",
+                    help="instead: one frame of PX x PX px (e.g. 8192; a mosaic of rendered 1024 px fields at "
+                         "the same grain density) on the local cluster; peak RSS of every worker")
     ap.add_argument("--check", action="store_true", help="exit 1 if the target is missed")
     args = ap.parse_args(argv)
     workers = args.workers or os.cpu_count() or 1
+    if args.huge:
+        return huge_frame(args.huge, workers, args)
     if not (1 <= args.small <= args.large) or args.size < 64 or args.distinct < 1 or workers < 1:
         ap.error("need 1 <= --small <= --large, --size >= 64, --distinct >= 1, --workers >= 1")
     grains = args.grains or bu.grains_for(args.size)
@@ -213,6 +220,59 @@ def run(argv: list[str]) -> int:
             shutil.rmtree(root, ignore_errors=True)
     failed = any(c["returncode"] != 0 for c in cases.values())
     return 1 if failed or (args.check and not ok) else 0
+
+
+def huge_frame(size_px: int, workers: int, args) -> int:
+    """One ``size_px`` frame through ``grainhabit run`` on the local cluster; print peak RSS per process.
+
+    The frame is a mosaic of rendered 1024 px fields
+    (:func:`grainhabit.plugins.bench.sizes.mosaic`), at the grain density of
+    the other benchmarks; its tiles are segmented on every worker
+    (:mod:`grainhabit.plugins.segment.tiling`).
+
+    Returns
+    -------
+    int
+        1 if the run failed (a worker killed counts), else 0.
+    """
+    from grainhabit.plugins.bench.sizes import mosaic, render_tiles
+
+    tile = 1024 if size_px % 1024 == 0 else size_px
+    if size_px < 64:
+        raise SystemExit(f"grainhabit bench memory: --huge must be >= 64, got {size_px}")
+    root = Path(args.workdir).resolve() if args.workdir else Path(tempfile.mkdtemp(prefix="grainhabit-mem-"))
+    out = sys.stdout
+    try:
+        t0 = time.perf_counter()
+        frame = mosaic(render_tiles(min(args.distinct, 4), tile, args.seed), size_px, seed=args.seed)
+        bu.write_frames(root / "huge" / "bench", [frame])
+        raw_mib = bu.mib(frame.size * 4)
+        del frame
+        print(f"grainhabit bench memory --huge: one {size_px}x{size_px} px frame (invented data, made in "
+              f"{time.perf_counter() - t0:.0f} s; {raw_mib:.0f} MiB as float32), local cluster of {workers} "
+              f"workers, {bu.load_text()}", file=out)
+        wf = bu.write_workflow(root / "huge.yaml", root / "huge", root / "out" / "huge.zarr", workers=workers,
+                               scheduler=args.scheduler, name="bench-memory-huge")
+        c = measure_case(wf, root / "huge.json", malloc_trim=args.malloc_trim)
+        print(f"frames ok {c.get('frames_ok', 0)}/1, grains {c.get('grains', 0)}, wall {c['wall']:.0f} s, "
+              f"exit code {c['returncode']}", file=out)
+        print(f"peak RSS: largest worker process {bu.mib(c['peak_largest_child']):.0f} MiB "
+              f"({bu.mib(c['peak_largest_child']) / raw_mib:.1f}x the float32 frame), run's main process "
+              f"{bu.mib(c['peak_main']):.0f} MiB, whole tree {bu.mib(c['peak_tree']):.0f} MiB "
+              f"({c['peak_processes']} processes)", file=out)
+        print("peak RSS of every process the run started, MiB (the workers segment the frame's tiles between them): "
+              + ", ".join(f"{bu.mib(v):.0f}" for v in c["peak_children"]), file=out)
+        print(f"{bu.load_text()} at the end", file=out)
+        if args.json:
+            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+            Path(args.json).write_text(json.dumps({"benchmark": "memory-huge", "size_px": size_px,
+                                                   "workers": workers, "case": c}, indent=2, default=float))
+        if c["returncode"] != 0:
+            print(f"  problem: the run exited with {c['returncode']}: {c['stderr']}", file=out)
+    finally:
+        if not args.workdir:
+            shutil.rmtree(root, ignore_errors=True)
+    return 1 if c["returncode"] != 0 else 0
 
 
 @hookimpl

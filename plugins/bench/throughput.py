@@ -136,6 +136,9 @@ def serial_loop(paths, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
 
     from grainhabit.frame import FrameData
 
+    from grainhabit.executors import keep_freed_memory
+
+    keep_freed_memory()  # as every frame task does in a worker
     chain = default_chain()
     stages = {k: 0.0 for k in FRAME_PHASES}
     grains = pixels = 0
@@ -318,10 +321,12 @@ def run(argv: list[str]) -> int:
                                              "worker and with all workers, and as many plain loops at once "
                                              "(the machine's ceiling), on synthetic frames (invented data); "
                                              "time per stage and the host's overheads.")
-    ap.add_argument("--frames", type=int, default=32, help="frames (default 32)")
-    ap.add_argument("--size", type=int, default=1024, help="frame side in pixels (default 1024)")
+    ap.add_argument("--frames", type=int, default=None, help="frames (default 32; 12 with --versus-script)")
+    ap.add_argument("--size", type=int, default=None,
+                    help="frame side in pixels (default 1024; 2048 with --versus-script)")
     ap.add_argument("--grains", type=int, default=None,
-                    help=f"grains per frame (default {bu.DENSITY_PER_MPX:g} per megapixel, about 42 at 1024 px)")
+                    help=f"grains per frame (default {bu.DENSITY_PER_MPX:g} per megapixel, about 42 at 1024 px; "
+                         "135 with --versus-script)")
     ap.add_argument("--workers", type=int, default=None, help="workers of run (c) (default: one per core)")
     ap.add_argument("--seed", type=int, default=0, help="first seed of the rendered fields (default 0)")
     ap.add_argument("--repeat", type=int, default=3,
@@ -334,8 +339,19 @@ def run(argv: list[str]) -> int:
     ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
                     help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (default: unset, glibc's own "
                          "thresholds; 65536, dask's own default, makes every large array a fresh mmap)")
+    ap.add_argument("--versus-script", action="store_true",
+                    help="instead: a hand-written serial script (read, Gaussian smoothing, Otsu, fill holes, "
+                         "distance transform, peak_local_max, watershed, regionprops_table) against grainhabit run "
+                         "with all workers, cold start included; throughput ratio and accuracy of both")
+    ap.add_argument("--accuracy-frames", type=int, default=2,
+                    help="with --versus-script: fields scored for accuracy (default 2; 0 skips)")
     ap.add_argument("--check", action="store_true", help="exit 1 if a target is missed")
     args = ap.parse_args(argv)
+    versus = args.versus_script
+    args.frames = args.frames if args.frames is not None else (12 if versus else 32)
+    args.size = args.size if args.size is not None else (2048 if versus else 1024)
+    if versus and args.grains is None:
+        args.grains = 135
     workers = args.workers or os.cpu_count() or 1
     if (args.frames < 1 or args.size < 64 or workers < 1 or args.repeat < 1
             or (args.grains is not None and args.grains < 1)):
@@ -343,6 +359,19 @@ def run(argv: list[str]) -> int:
     from grainhabit.manager import make_host
 
     out = sys.stdout
+    if versus:
+        from grainhabit.plugins.bench.reference_script import versus_script
+
+        root = Path(args.workdir).resolve() if args.workdir else Path(tempfile.mkdtemp(prefix="grainhabit-bench-"))
+        try:
+            res = versus_script(args, root, workers, out)
+            if args.json:
+                Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+                Path(args.json).write_text(json.dumps(res, indent=2, default=float))
+        finally:
+            if not args.workdir:
+                shutil.rmtree(root, ignore_errors=True)
+        return 1 if (args.check and not res["ok"]) else 0
     grains = args.grains or bu.grains_for(args.size)
     root = Path(args.workdir).resolve() if args.workdir else Path(tempfile.mkdtemp(prefix="grainhabit-bench-"))
     figures = {"benchmark": "throughput", "frames": args.frames, "size_px": args.size,

@@ -101,12 +101,13 @@ STEP = StepInfo(
               doc="Concavity depth, as a fraction of the equal-area radius, above which a component is split."),
         Param("min_contrast", float, 0.3, low=0.0,
               doc="Below this difference of the Otsu class means (image units) the frame holds no grains."),
-        Param("tile_px", int, 4096, unit="px", low=64,
+        Param("tile_px", int, 2048, unit="px", low=64,
               doc="Frames with more pixels per side are segmented in overlapping tiles of this core size."),
-        Param("tile_overlap_nm", float, 3000.0, unit="nm", low=0.0,
-              doc="Tile halo; must exceed the largest grain cluster."),
+        Param("tile_overlap_nm", float, 320.0, unit="nm", low=0.0,
+              doc="Tile halo (at least 32 px); twice the reach of the segmentation around a grain. Clusters "
+                  "that reach into the halo are segmented again in a window of their own."),
         Param("tile_workers", int, 0, low=0,
-              doc="Threads for tiles; 0 chooses automatically."),
+              doc="Threads for tiles outside a cluster; 0 spreads them over the cluster's workers or the local cores."),
     ),
 )
 
@@ -910,12 +911,12 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         return label_grains(tile, pixel_size_nm, levels, **kw)
 
     if max(arr.shape) > p["tile_px"]:
-        halo = int(np.ceil(p["tile_overlap_nm"] / pixel_size_nm))
-        labels, flags, n_trunc = tiling.label_tiled(arr, func, p["tile_px"], halo, p["tile_workers"])
+        halo = max(32, int(np.ceil(p["tile_overlap_nm"] / pixel_size_nm)))
+        labels, flags, n_lost = tiling.label_tiled(arr, func, p["tile_px"], halo, p["tile_workers"])
         split = flags.get("split", np.zeros(int(labels.max()), bool))
-        if n_trunc:
-            notes.append(f"segment-grains: {n_trunc} grain cluster(s) larger than the tile overlap; "
-                         "raise tile_overlap_nm")
+        if n_lost:
+            notes.append(f"segment-grains: {n_lost} pixel(s) of grain clusters cut by tile edges were not found "
+                         "again; raise tile_overlap_nm")
     else:
         labels, _, flags = func(arr)
         split = flags["split"][1:]

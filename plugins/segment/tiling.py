@@ -1,29 +1,29 @@
 """Tiled processing of frames too large for one pass, and label stitching.
 
 A frame is cut into square *cores* of ``tile_px`` pixels; each tile is its
-core plus a *halo* of ``halo_px`` pixels on every side (clipped at the frame).
-A labelling function runs on every tile, in a local thread pool (most of
-scikit-image and scipy.ndimage releases the GIL, so threads overlap well and
-no cluster is needed; inside a dask worker one thread is used, because the
-worker's own threads already keep the cores busy with other frames).
+core plus a *halo* of ``halo_px`` pixels on every side (clipped at the
+frame). A labelling function runs on every tile; the tiles of one frame are
+spread over every worker of the cluster the frame runs on, or over the local
+cores outside a cluster (:func:`grainhabit.executors.fan_out`).
 
-Stitching rule: a labelling function reports for every grain the *cluster*
-(connected foreground component, before splitting touching grains) it came
-from. A tile keeps a cluster, with all its grains, exactly when the cluster's
-first pixel in row-major order lies in the tile's core. Cores partition the
-frame, so every cluster is kept by exactly one tile and measured once. When
-the halo is larger than every cluster and the labelling function depends
-only on a neighbourhood smaller than the halo, the kept cluster is the same
-as in an untiled run, so tiled and untiled labels are the same partition.
-A kept cluster that touches an inner tile edge shows that the halo was too
-small; such clusters are counted and reported.
+Stitching rule. The labelling function reports for every grain the
+*cluster* (connected foreground component, before touching grains are split)
+it came from, and is assumed *local*: what it makes of a cluster depends
+only on the pixels within ``margin = halo_px // 2`` of the cluster. A
+cluster whose bounding box lies at least ``margin`` from every inner edge of
+its tile (an edge that is not the frame's) is therefore exactly the cluster
+of an untiled run; it is *safe*. A tile keeps its safe clusters whose first
+pixel (row-major) lies in its core; cores partition the frame, so no cluster
+is kept twice. Every other cluster that reaches into a core is labelled
+again, in a window of its own: the bounding box of what was seen of it
+grown by the halo, grown again until the cluster is safe in the window
+(:func:`_resolve_open`). So the tiled labels equal the untiled ones for
+clusters of any size, and the halo only needs to exceed twice the reach of
+the labelling function, not the largest cluster.
 """
 
 from __future__ import annotations
 
-import os
-import sys
-from concurrent.futures import ThreadPoolExecutor
 from typing import Callable
 
 import numpy as np
@@ -71,6 +71,45 @@ def tile_grid(shape: tuple, tile_px: int, halo_px: int) -> list[tuple[tuple, tup
     return out
 
 
+def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
+    """Row-major index of the first pixel of every label 1..n (-1 for an absent label).
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        0 background, positive ids.
+    n : int, optional
+        Largest id (default ``labels.max()``).
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+
+    Notes
+    -----
+    The first pixel lies in the top row of the label's bounding box
+    (:func:`scipy.ndimage.find_objects`, one pass over the frame); only that
+    row of the box is searched, so the cost grows with the pixels and the
+    labels' widths, not with pixels times labels (``np.unique`` with
+    ``return_index`` sorts every pixel).
+    """
+    from scipy import ndimage as ndi
+
+    lab = np.asarray(labels)
+    n = int(lab.max()) if n is None and lab.size else int(n or 0)
+    out = np.full(n, -1, np.int64)
+    if n == 0:
+        return out
+    cols = lab.shape[1]
+    for k, box in enumerate(ndi.find_objects(lab, max_label=n), start=1):
+        if box is None:
+            continue
+        r, c = box[0].start, box[1]
+        row = lab[r, c]
+        out[k - 1] = r * cols + c.start + int(np.argmax(row == k))
+    return out
+
+
 def renumber_raster(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Relabel 1..n in the row-major order of each label's first pixel.
 
@@ -90,26 +129,170 @@ def renumber_raster(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     The order is the one :func:`skimage.measure.label` gives connected
     components, and it does not depend on how the frame was tiled.
     """
-    flat = np.asarray(labels).ravel()
-    ids, first = np.unique(flat, return_index=True)
-    keep = ids > 0
-    ids, first = ids[keep], first[keep]
-    old_ids = ids[np.argsort(first, kind="stable")]
-    lut = np.zeros(int(flat.max()) + 1 if flat.size else 1, np.int32)
+    lab = np.asarray(labels)
+    first = first_pixels(lab)
+    present = np.flatnonzero(first >= 0) + 1
+    old_ids = present[np.argsort(first[present - 1], kind="stable")]
+    lut = np.zeros(int(lab.max()) + 1 if lab.size else 1, np.int32)
     lut[old_ids] = np.arange(1, len(old_ids) + 1, dtype=np.int32)
-    return lut[np.asarray(labels)], old_ids
+    return lut[lab], old_ids
 
 
-def _auto_workers() -> int:
-    if "distributed" in sys.modules:
-        try:
-            from distributed import get_worker
+def _safe(boxes, shape: tuple, margin: int, open_edges: tuple) -> np.ndarray:
+    """Which bounding boxes lie at least ``margin`` px from every open (inner) edge of a window.
 
-            get_worker()
-            return 1
-        except (ImportError, ValueError):
-            pass
-    return max(1, os.cpu_count() or 1)
+    Parameters
+    ----------
+    boxes : list of tuple of slice or None
+        From :func:`scipy.ndimage.find_objects`.
+    shape : tuple of int
+        The window's shape.
+    margin : int
+    open_edges : tuple of bool
+        (top, bottom, left, right) edges that are inner edges.
+
+    Returns
+    -------
+    ndarray of bool, shape (len(boxes),)
+        False for absent labels.
+    """
+    top, bottom, left, right = open_edges
+    out = np.zeros(len(boxes), bool)
+    for i, b in enumerate(boxes):
+        if b is None:
+            continue
+        out[i] = ((not top or b[0].start >= margin) and (not bottom or shape[0] - b[0].stop >= margin)
+                  and (not left or b[1].start >= margin) and (not right or shape[1] - b[1].stop >= margin))
+    return out
+
+
+def _open_edges(window: tuple, frame_shape: tuple) -> tuple:
+    return (window[0].start > 0, window[0].stop < frame_shape[0],
+            window[1].start > 0, window[1].stop < frame_shape[1])
+
+
+def label_one_tile(func: Callable, tile_image: np.ndarray, core: tuple, tile: tuple,
+                   frame_shape: tuple, margin: int) -> tuple[np.ndarray, dict, int, np.ndarray]:
+    """Label one tile; keep its safe clusters that start in its core, list the open ones.
+
+    Parameters
+    ----------
+    func : callable
+        The labelling function of :func:`label_tiled`.
+    tile_image : ndarray
+        ``image[tile]``.
+    core, tile : tuple of slice
+        Core and tile in frame coordinates (from :func:`tile_grid`).
+    frame_shape : tuple of int
+    margin : int
+        Reach of ``func`` in pixels (see the module docstring).
+
+    Returns
+    -------
+    kept : ndarray of int32, shape of the tile
+        The tile's label ids on the grains of kept clusters, -1 on the other
+        pixels of kept clusters, 0 elsewhere.
+    flags : dict
+        The function's per-label flags (indexed by the tile's label ids).
+    n_labels : int
+        Largest label id of the tile.
+    open_pixels : ndarray of int64, shape (k,)
+        Row-major frame indices of the core pixels of clusters that are not
+        safe in this tile (to be labelled again).
+    """
+    from scipy import ndimage as ndi
+
+    lab, clu, flags = func(tile_image)
+    lab = np.asarray(lab)
+    clu = np.asarray(clu)
+    n_clu = int(clu.max()) if clu.size else 0
+    boxes = ndi.find_objects(clu, max_label=n_clu) if n_clu else []
+    safe = _safe(boxes, clu.shape, margin, _open_edges(tile, frame_shape))
+    first = first_pixels(clu, n_clu)
+    fr, fc = np.divmod(first, clu.shape[1])
+    fr, fc = fr + tile[0].start, fc + tile[1].start
+    in_core = ((first >= 0) & (fr >= core[0].start) & (fr < core[0].stop)
+               & (fc >= core[1].start) & (fc < core[1].stop))
+    keep = np.zeros(n_clu + 1, bool)
+    keep[1:] = safe & in_core
+    unsafe = np.zeros(n_clu + 1, bool)
+    unsafe[1:] = ~safe & (first >= 0)
+    kept = np.where(keep[clu], np.where(lab > 0, lab, -1), 0).astype(np.int32)
+    # core pixels of open clusters, in frame coordinates
+    cr = slice(core[0].start - tile[0].start, core[0].stop - tile[0].start)
+    cc = slice(core[1].start - tile[1].start, core[1].stop - tile[1].start)
+    rr, ccol = np.nonzero(unsafe[clu[cr, cc]])
+    open_pixels = ((rr + core[0].start).astype(np.int64) * frame_shape[1] + ccol + core[1].start)
+    n_labels = int(lab.max()) if lab.size else 0
+    return kept, flags, n_labels, open_pixels
+
+
+def _resolve_open(img: np.ndarray, func: Callable, out: np.ndarray, pending: np.ndarray, halo: int,
+                  margin: int, offset: int, gathered: dict) -> tuple[int, int]:
+    """Label the clusters that were open in their tiles, each in a window where it is safe.
+
+    Writes into ``out`` (frame labels, ids from ``offset + 1`` on; -1 on the
+    other pixels of a written cluster) and appends their flags to
+    ``gathered``.
+
+    Returns
+    -------
+    offset : int
+        The last id used.
+    unresolved : int
+        Open pixels whose cluster could not be found again (0 for a local
+        labelling function).
+    """
+    from scipy import ndimage as ndi
+
+    rows, cols = img.shape
+    flat = out.reshape(-1)
+    todo = np.zeros(out.size, bool)
+    todo[pending] = True
+    todo &= flat == 0
+    unresolved = 0
+    for q in pending:
+        if not todo[q]:
+            continue
+        qr, qc = divmod(int(q), cols)
+        box = [qr, qr + 1, qc, qc + 1]
+        while True:
+            win = (slice(max(box[0] - halo, 0), min(box[1] + halo, rows)),
+                   slice(max(box[2] - halo, 0), min(box[3] + halo, cols)))
+            lab, clu, flags = func(img[win])
+            lab, clu = np.asarray(lab), np.asarray(clu)
+            cid = int(clu[qr - win[0].start, qc - win[1].start])
+            if cid == 0:
+                break
+            cbox = ndi.find_objects((clu == cid).astype(np.uint8))[0]
+            if _safe([cbox], clu.shape, margin, _open_edges(win, img.shape))[0]:
+                break
+            grown = [cbox[0].start + win[0].start, cbox[0].stop + win[0].start,
+                     cbox[1].start + win[1].start, cbox[1].stop + win[1].start]
+            box = [min(box[0], grown[0]), max(box[1], grown[1]), min(box[2], grown[2]), max(box[3], grown[3])]
+        if cid == 0:
+            todo[q] = False
+            unresolved += 1
+            continue
+        member = clu == cid
+        rr, cc = np.nonzero(member)
+        idx = (rr + win[0].start) * cols + cc + win[1].start
+        todo[idx] = False
+        if (flat[idx] != 0).any():
+            continue  # kept whole by a tile already
+        ids = np.unique(lab[member])
+        ids = ids[ids > 0]
+        lut = np.zeros(int(lab.max()) + 1, np.int64)
+        lut[ids] = np.arange(offset + 1, offset + 1 + len(ids))
+        vals = lut[lab[member]]
+        flat[idx] = np.where(vals > 0, vals, -1)
+        for k in gathered:
+            given = np.zeros(int(lab.max()) + 1, bool)
+            f = np.asarray(flags.get(k, given), bool)[: len(given)]
+            given[: len(f)] = f
+            gathered[k].append(given[ids])
+        offset += len(ids)
+    return offset, unresolved
 
 
 def label_tiled(image: np.ndarray, func: Callable, tile_px: int, halo_px: int,
@@ -121,17 +304,21 @@ def label_tiled(image: np.ndarray, func: Callable, tile_px: int, halo_px: int,
     image : ndarray, shape (rows, cols)
         Frame to label.
     func : callable
-        ``func(tile_image) -> (labels, clusters, flags)``: ``labels`` int
-        (tile shape, 0 background), ``clusters`` int (tile shape, the
+        ``func(window_image) -> (labels, clusters, flags)``: ``labels`` int
+        (window shape, 0 background), ``clusters`` int (window shape, the
         connected component each grain pixel belongs to), ``flags`` a dict
         of per-label boolean arrays indexed by label id (index 0 unused).
-        Must be pure and thread-safe.
+        Must be pure, thread-safe, picklable (cloudpickle) and local (see
+        the module docstring).
     tile_px : int
         Core side in pixels.
     halo_px : int
-        Overlap in pixels; should exceed the largest cluster.
+        Overlap in pixels; at least twice the reach of ``func``.
     workers : int
-        Threads; 0 chooses automatically (see module docstring).
+        0: spread the tiles over every worker of the cluster the frame runs
+        on, or over the local cores outside a cluster
+        (:func:`grainhabit.executors.fan_out`); 1: one after another in this
+        thread; n > 1: n local threads (outside a cluster).
 
     Returns
     -------
@@ -139,63 +326,47 @@ def label_tiled(image: np.ndarray, func: Callable, tile_px: int, halo_px: int,
         1..n in row-major order of first pixels (:func:`renumber_raster`).
     flags : dict of str -> ndarray of bool, shape (n,)
         The function's flags, in label order.
-    n_truncated : int
-        Kept clusters that touched an inner tile edge (halo too small).
+    n_unresolved : int
+        Open clusters that could not be labelled again (0 for a local
+        labelling function).
     """
+    from grainhabit.executors import fan_out
+
     img = np.asarray(image)
-    grid = tile_grid(img.shape, int(tile_px), int(halo_px))
-    workers = int(workers) if workers and workers > 0 else _auto_workers()
+    halo = int(halo_px)
+    margin = max(1, halo // 2)
+    grid = tile_grid(img.shape, int(tile_px), halo)
+    items = [(func, img[tile], core, tile, img.shape, margin) for core, tile in grid]
+    workers = int(workers) if workers and workers > 0 else 0
+    if workers > 1 and _in_worker():
+        workers = 0  # thread counts apply outside a cluster; inside, the cluster's workers share the tiles
+    results = fan_out(label_one_tile, items, threads=workers)
 
-    def one(item):
-        core, tile = item
-        lab, clu, flags = func(img[tile])
-        lab = np.asarray(lab)
-        clu = np.asarray(clu)
-        r_off, c_off = tile[0].start, tile[1].start
-        ids, first = np.unique(clu.ravel(), return_index=True)
-        sel = ids > 0
-        ids, first = ids[sel], first[sel]
-        fr, fc = np.unravel_index(first, clu.shape)
-        fr, fc = fr + r_off, fc + c_off
-        in_core = ((fr >= core[0].start) & (fr < core[0].stop)
-                   & (fc >= core[1].start) & (fc < core[1].stop))
-        kept = ids[in_core]
-        keep_mask = np.isin(clu, kept) & (lab > 0)
-        # inner edges: tile edges that are not frame edges
-        inner = np.zeros(clu.shape, bool)
-        if tile[0].start > 0:
-            inner[0, :] = True
-        if tile[0].stop < img.shape[0]:
-            inner[-1, :] = True
-        if tile[1].start > 0:
-            inner[:, 0] = True
-        if tile[1].stop < img.shape[1]:
-            inner[:, -1] = True
-        truncated = int(np.unique(clu[inner & np.isin(clu, kept)]).size)
-        return tile, lab, keep_mask, flags, truncated
-
-    if workers == 1 or len(grid) == 1:
-        results = [one(item) for item in grid]
-    else:
-        with ThreadPoolExecutor(max_workers=min(workers, len(grid))) as pool:
-            results = list(pool.map(one, grid))
-
-    out = np.zeros(img.shape, np.int64)
-    flag_names = sorted({k for res in results for k in res[3]})
+    out = np.zeros(img.shape, np.int32)
+    flag_names = sorted({k for res in results for k in res[1]})
     gathered = {k: [np.zeros(1, bool)] for k in flag_names}
     offset = 0
-    n_trunc = 0
-    for tile, lab, keep_mask, flags, truncated in results:
-        n_trunc += truncated
-        nmax = int(lab.max()) if lab.size else 0
+    pending = []
+    for (core, tile), (kept, flags, nmax, open_pixels) in zip(grid, results):
         view = out[tile]
-        view[keep_mask] = lab[keep_mask].astype(np.int64) + offset
+        view[kept > 0] = kept[kept > 0] + offset
+        view[kept < 0] = -1
+        pending.append(open_pixels)
         for k in flag_names:
             arr = np.zeros(nmax + 1, bool)
             given = np.asarray(flags.get(k, arr), bool)
             arr[: min(len(given), nmax + 1)] = given[: nmax + 1]
             gathered[k].append(arr[1:])
         offset += nmax
+    pending = np.concatenate(pending) if pending else np.zeros(0, np.int64)
+    offset, unresolved = _resolve_open(img, func, out, pending, halo, margin, offset, gathered)
+    out[out < 0] = 0
     stitched, old_ids = renumber_raster(out)
     flags_out = {k: np.concatenate(v)[old_ids] for k, v in gathered.items()}
-    return stitched, flags_out, n_trunc
+    return stitched, flags_out, unresolved
+
+
+def _in_worker() -> bool:
+    from grainhabit.executors import in_dask_worker
+
+    return in_dask_worker() is not None
