@@ -160,19 +160,6 @@ def test_find_peaks_matches_scipy(seed):
     assert sg.find_peaks(np.zeros(2), 0.0, 0.0).size == 0
 
 
-@pytest.mark.parametrize("seed", range(8))
-def test_nonnegative_line_matches_scipy_nnls(seed):
-    # reference library: scipy.optimize.nnls on the two-column design [x, 1]
-    from scipy.optimize import nnls
-
-    rng = np.random.default_rng(seed)
-    x = rng.random(16)
-    y = rng.normal([0.5, -0.5, 0.0, 1.0][seed % 4], 0.3) * x + rng.normal([0.2, 0.1, -0.4, -0.1][seed % 4], 0.2) \
-        + rng.normal(0, 0.05, 16)
-    ref, _ = nnls(np.column_stack([x, np.ones_like(x)]), y)
-    np.testing.assert_allclose(pp.nonnegative_line(x, y), ref, atol=1e-9)
-
-
 def _store_files(folder):
     """Relative path -> bytes of every file of a store folder."""
     from pathlib import Path
