@@ -30,6 +30,7 @@ from grainhabit.plugins.survey import statistics as st
 from grainhabit.plugins.survey.results_tables import load_results
 
 xr = lazy_module("xarray")  # imported on first use: workers never need it
+stats = lazy_module("scipy.stats")
 
 GRAINHABIT_API = 1
 #: The name this plugin is registered under.
@@ -159,7 +160,7 @@ def compare_samples(a: dict, b: dict, n_resamples: int = 1000, seed: int = 0, fa
                      "difference": d.estimate, "se": d.se, "df": d.df, "pvalue": d.pvalue})
     rejected, level = st.holm([r["pvalue"] for r in rows], family_alpha)
     for r, rej, lev in zip(rows, rejected, level):
-        q = st.stats.t.ppf(1 - lev / 2, r["df"]) if np.isfinite(lev) else np.nan
+        q = stats.t.ppf(1 - lev / 2, r["df"]) if np.isfinite(lev) else np.nan
         bound = 1.0 if r["name"].startswith("fraction:") else np.inf  # two fractions differ by at most 1
         r.update(ci_lo=max(r["difference"] - q * r["se"], -bound), ci_hi=min(r["difference"] + q * r["se"], bound),
                  confidence=float(1 - lev) if np.isfinite(lev) else np.nan, differs=bool(rej))
