@@ -450,10 +450,10 @@ def _product_sections(c: _Ctx) -> list[str]:
     if c.trends is not None:
         out.append(
             f"<p class='note'>Each panel is a Shewhart individuals chart of one spec'd statistic, one point per "
-            f"{_esc(by)} (grey whiskers: its confidence interval). Centre line: the mean of the product's history "
-            f"in this results store; control limits: centre &plusmn; 3 sigma, sigma from the average moving range "
-            f"(&divide; 2/&radic;&pi;), given from {int(c.trends.attrs.get('min_points_for_limits', 5))} points on "
-            f"and provisional while the history is short. Red lines: spec limits. Ringed points break one of the "
+            f"{_esc(by)} (grey whiskers: its confidence interval). Each point is judged against the nights before it: "
+            f"centre line, the mean of those nights; control limits, centre &plusmn; 3 sigma, sigma from their "
+            f"average moving range (&divide; 2/&radic;&pi;), once {int(c.trends.attrs.get('min_points_for_limits', 5))}"
+            f" nights are behind it (drawn as steps). Red lines: spec limits. Ringed points break one of the "
             f"{_esc(RULES_NAME)}: " + "; ".join(f"{n}: {_esc(d[0])}" for n, d in RULES.items())
             + ". A broken rule flags a change in the process, often before a batch fails its spec.</p>")
     bins = int(c.params["bins"])
