@@ -40,6 +40,7 @@ DEFAULT_PLUGINS = (
     "grainhabit.plugins.survey.write_report",
     "grainhabit.plugins.survey.compare",
     "grainhabit.plugins.survey.aggregate",
+    "grainhabit.plugins.survey.score_masks",
     "grainhabit.plugins.synthetic.demo",
     "grainhabit.plugins.scaffold.new_plugin",
 )

@@ -61,6 +61,7 @@ class RunOutcome:
     exit_code: int
     frames_ok: int = 0
     frames_failed: int = 0
+    frames_flagged: int = 0
     frames_reused: int = 0
     frames_processed: int = 0
     grains: int = 0
@@ -71,7 +72,8 @@ class RunOutcome:
 
     def line(self) -> str:
         rate = self.frames_processed / self.seconds * 60 if self.seconds > 0 else 0.0
-        return (f"done: {self.frames_ok} frames ok, {self.frames_failed} failed, {self.grains} grains, "
+        return (f"done: {self.frames_ok} frames ok, {self.frames_failed} failed, "
+                f"{self.frames_flagged} ok but flagged by QC, {self.grains} grains, "
                 f"{self.frames_processed} processed + {self.frames_reused} reused, {self.seconds:.1f} s wall, "
                 f"{rate:.1f} frames/min")
 
@@ -244,6 +246,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         grains, frames_ds = groups["grains"], groups["frames"]
         ok_frames = [i for i, s in enumerate(frames_ds["status"].values) if str(s) == "ok"]
         outcome.frames_ok = len(ok_frames)
+        if "qc" in frames_ds:
+            outcome.frames_flagged = sum(1 for i in ok_frames if str(frames_ds["qc"].values[i]))
         outcome.frames_failed = int(frames_ds.sizes.get("frame", 0)) - outcome.frames_ok
         outcome.grains = int(grains.sizes.get("grain", 0))
         outcome.failures = [(str(s), str(e)) for s, e, st in zip(frames_ds["source"].values,
@@ -333,7 +337,7 @@ def _previous_runs(results: str) -> list:
 
 
 #: Text variables of the frames group that come from the frame's own record, not from the listing.
-_RECORD_TEXT = ("status", "error", "calibration", "notes", "polarity")
+_RECORD_TEXT = ("status", "error", "calibration", "notes", "polarity", "qc")
 
 
 def _missing_frames(results: str, listed: set, stage: Path, on_missing: str) -> list:

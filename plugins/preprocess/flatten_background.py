@@ -522,7 +522,8 @@ def grainhabit_preprocess(frame, params):
     out, pol, conf = flatten(src, px, p["background_nm"], p["denoise"], smooth_px, p["polarity"])
     new = frame.replace(image=out, polarity=pol)
     if p["polarity"] == "auto" and conf < LOW_CONFIDENCE:
-        new = new.with_note(f"flatten-background: polarity auto-detected as {pol!r} with low confidence "
+        new = new.with_note(f"flatten-background: qc polarity-uncertain: polarity auto-detected as {pol!r} "
+                            f"with low confidence "
                             f"({conf:.2f}); set polarity to force it")
     return new
 

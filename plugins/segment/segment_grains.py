@@ -1002,7 +1002,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     mean_low = float(arr[lower].mean()) if lower.any() else t
     contrast = mean_up - mean_low
     if contrast < p["min_contrast"]:
-        notes.append(f"segment-grains: no grains found (contrast {contrast:.3f} between the Otsu "
+        notes.append(f"segment-grains: qc no-grains: no grains found (contrast {contrast:.3f} between the Otsu "
                      f"classes is below min_contrast {p['min_contrast']})")
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
     fg_frac = float(np.mean(arr > t))
@@ -1038,7 +1038,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         notes.append(f"segment-grains: {n_line} line-like and {n_stroke} stroke-like object(s) dropped as "
                      "drawn marks (scale bars, letters, text, streaks)")
     if labels.max() == 0:
-        notes.append("segment-grains: no grains found")
+        notes.append("segment-grains: qc no-grains: no grains found (nothing stands out of the background noise, "
+                     "or everything was too small or looked like drawn marks)")
     return labels.astype(np.int32), split.astype(bool), notes
 
 
