@@ -54,6 +54,7 @@ BENCHMARK_PLUGINS = (
     "grainhabit.plugins.bench.throughput",
     "grainhabit.plugins.bench.memory",
     "grainhabit.plugins.bench.profile",
+    "grainhabit.plugins.bench.realdata",
 )
 
 #: Step used for a stage when the workflow names none. Stages missing here

@@ -140,15 +140,20 @@ MAX_FOREGROUND = 0.95
 GAP_MIN_AREA_PX = 20
 #: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
 GAP_REACH_PX = 4.0
+#: Otsu classes closer than this many background sigmas split noise, not grains from background
+#: (for Gaussian noise the two halves' means differ by about 1.6 sigma).
+NOISE_ONLY_SIGMAS = 4.0
 #: Width (px) of the skirt of a component that the auto threshold cuts at half its peak.
 EDGE_BAND_PX = 3.0
 #: Objects more elongated than this (area over squared inscribed diameter) are drawn lines, not grains.
 LINE_ELONGATION = 15.0
 #: Thin objects (elongation above this) with solidity below STROKE_SOLIDITY are strokes of letters.
-STROKE_ELONGATION = 3.0
-STROKE_SOLIDITY = 0.6
-#: A filled shape whose drawn pixels cover less than this fraction of it is a ring (a letter O, a digit 0).
-RING_FILL = 0.4
+STROKE_ELONGATION = 4.0
+STROKE_SOLIDITY = 0.7
+#: Text rows: at least this many glyphs, bottoms (or tops) within this many pixels, glyphs less solid than this.
+TEXT_MIN_GLYPHS = 3
+TEXT_BASELINE_PX = 2
+TEXT_SOLIDITY = 0.85
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -381,8 +386,9 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
         longer than wide (scale bars, streaks, scratches); ``"stroke"``: a
         thin curved stroke (letters, digits, text), i.e. elongation above
         :data:`STROKE_ELONGATION` and solidity below :data:`STROKE_SOLIDITY`,
-        or a ring whose drawn pixels cover less than
-        :data:`RING_FILL` of the filled shape; None for a grain.
+        judged on the pixels above the noise threshold (a letter O or a
+        digit 0 is a curved stroke there, whatever its filled shape) or on
+        the filled shape; None for a grain.
 
     Notes
     -----
@@ -404,15 +410,94 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
         return "line"
     raw = raw & part
     raw_area = float(raw.sum())
-    if raw_area > 0 and raw_area < RING_FILL * area:
+    if raw_area > 0:
         r_raw = float(ndi.distance_transform_edt(np.pad(raw, 1)).max())
         if raw_area / (4.0 * r_raw * r_raw) > STROKE_ELONGATION:
-            return "stroke"
+            hull = float(convex_hull_image(raw).sum())
+            if raw_area < STROKE_SOLIDITY * hull:
+                return "stroke"
     if elong > STROKE_ELONGATION:
         solidity = area / max(float(convex_hull_image(part).sum()), 1.0)
         if solidity < STROKE_SOLIDITY:
             return "stroke"
     return None
+
+
+def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+    """Labels that form a line of text: glyph-like objects of one height on one baseline.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Grains 1..n.
+    drawn : ndarray of bool, shape (rows, cols)
+        Pixels above the noise threshold.
+
+    Returns
+    -------
+    ndarray of int
+        Labels to drop.
+
+    Notes
+    -----
+    A row is a chain of at least :data:`TEXT_MIN_GLYPHS` objects whose
+    bounding boxes end on the same row (within :data:`TEXT_BASELINE_PX`,
+    their bottoms; or their tops), with heights within 35 % of each other and
+    horizontal gaps under 1.5 heights: the layout of printed text (common
+    practice). It is dropped when most of its members are not convex (drawn
+    pixels fill under :data:`TEXT_SOLIDITY` of their convex hull), as
+    letters and digits are and a row of touching grains is not. Smaller
+    objects inside the band of a dropped row (pieces of split glyphs) are
+    dropped with it.
+    """
+    from skimage.morphology import convex_hull_image
+
+    boxes = ndi.find_objects(labels)
+    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
+    if len(items) < TEXT_MIN_GLYPHS:
+        return np.zeros(0, np.int64)
+    top = np.array([b[0].start for _, b in items])
+    bottom = np.array([b[0].stop for _, b in items])
+    left = np.array([b[1].start for _, b in items])
+    right = np.array([b[1].stop for _, b in items])
+    height = (bottom - top).astype(float)
+    ids = np.array([k for k, _ in items])
+    drop = set()
+    solid = {}
+
+    def solidity(i):
+        if i not in solid:
+            k, b = items[i]
+            m = (labels[b] == k) & drawn[b]
+            solid[i] = float(m.sum()) / max(float(convex_hull_image(m).sum()), 1.0) if m.any() else 1.0
+        return solid[i]
+
+    for edge in (bottom, top):
+        order = np.argsort(edge, kind="stable")
+        for a in order:
+            # neighbours on the same line, chained left to right
+            same = np.flatnonzero((np.abs(edge - edge[a]) <= TEXT_BASELINE_PX)
+                                  & (np.abs(height / height[a] - 1) < 0.35))
+            same = same[np.argsort(left[same])]
+            group = [same[0]]
+            for j in same[1:]:
+                if left[j] - right[group[-1]] < 1.5 * max(height[a], 1):
+                    group.append(j)
+                elif a in group:
+                    break
+                else:
+                    group = [j]
+            if a not in group or len(group) < TEXT_MIN_GLYPHS:
+                continue
+            if sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group):
+                drop.update(int(ids[i]) for i in group)
+                # pieces of glyphs (a split letter, a dot) inside the line's band go with it
+                g = np.asarray(group)
+                t0, t1 = top[g].min() - TEXT_BASELINE_PX, bottom[g].max() + TEXT_BASELINE_PX
+                c0, c1 = left[g].min() - height[a], right[g].max() + height[a]
+                inside = (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
+                drop.update(int(k) for k in ids[inside])
+    return np.asarray(sorted(drop), np.int64)
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
@@ -942,6 +1027,13 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             view[p] = nxt
             split_flag.append(was_split)
             nxt += 1
+    if reject_annotations and nxt > 1:
+        gone = text_rows(labels, above)
+        if gone.size:
+            rejected["stroke"] += int(gone.size)
+            keep = np.ones(nxt, bool)
+            keep[gone] = False
+            labels = np.where(keep[labels], labels, 0)
     labels, old = tiling.renumber_raster(labels)
     flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]]), "rejected": rejected}
     clusters = np.where(labels > 0, comp, 0).astype(np.int32)
@@ -1004,6 +1096,10 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     if contrast < p["min_contrast"]:
         notes.append(f"segment-grains: qc no-grains: no grains found (contrast {contrast:.3f} between the Otsu "
                      f"classes is below min_contrast {p['min_contrast']})")
+        return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
+    if contrast < NOISE_ONLY_SIGMAS * levels["sigma"]:
+        notes.append(f"segment-grains: qc no-grains: no grains found (the Otsu classes differ by "
+                     f"{contrast / levels['sigma']:.1f} background sigmas: noise only)")
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
     fg_frac = float(np.mean(arr > t))
     if fg_frac > MAX_FOREGROUND or abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
