@@ -70,6 +70,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
+from grainhabit.plugins.preprocess.flatten_background import one_sided_sigma
 from grainhabit.plugins.segment import tiling
 
 GRAINHABIT_API = 1
@@ -97,6 +98,9 @@ STEP = StepInfo(
         Param("min_ecd_px", float, 6.0, unit="px", low=1.0,
               doc="Grains smaller than this equivalent circle diameter in pixels are dropped (below it no "
                   "outline can be measured), whatever the pixel size."),
+        Param("min_peak", float, 0.3, low=0.0,
+              doc="Objects whose brightest pixel stays below this (image units: background 0, typical grain 1) "
+                  "are background texture, not grains."),
         Param("reject_annotations", bool, True,
               doc="Drop thin line-like or stroke-like objects (scale bars, panel letters, text, scratches)."),
         Param("close_nm", float, None, unit="nm", low=0.0,
@@ -140,9 +144,9 @@ MAX_FOREGROUND = 0.95
 GAP_MIN_AREA_PX = 20
 #: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
 GAP_REACH_PX = 4.0
-#: Otsu classes closer than this many background sigmas split noise, not grains from background
-#: (for Gaussian noise the two halves' means differ by about 1.6 sigma).
-NOISE_ONLY_SIGMAS = 4.0
+#: A frame with a smaller fraction of pixels above the noise threshold holds noise only (Gaussian noise
+#: exceeds 5 sigma in 3e-7 of the pixels).
+NOISE_ONLY_FRACTION = 1e-4
 #: Width (px) of the skirt of a component that the auto threshold cuts at half its peak.
 EDGE_BAND_PX = 3.0
 #: Objects more elongated than this (area over squared inscribed diameter) are drawn lines, not grains.
@@ -220,7 +224,13 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     from grainhabit.plugins.common.image_stats import background_level, regular_subsample
 
     sub = regular_subsample(_check_image(image), max_samples)
-    bg, sigma = background_level(sub)
+    # values clipped by the preprocessing (grains at 1, the low clip) pile up in one histogram bin that
+    # can outnumber the background's mode: leave them out of the background's level and noise
+    inner = sub[(sub > sub.min()) & (sub < sub.max())]
+    bg, sigma = background_level(inner if inner.size >= 0.25 * sub.size else sub)
+    # grains are bright here: the lower half of the background peak alone gives the noise, however
+    # much of the frame the grains cover
+    sigma = min(sigma, one_sided_sigma(inner if inner.size >= 0.25 * sub.size else sub, bg, -1))
     return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
 
 
@@ -950,7 +960,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
                  local_block_nm: float = 2000.0, local_offset: float = 0.0, min_ecd_nm: float = 40.0,
                  close_nm: float | None = None, refine_nm: float | None = None, gap_level: float = 0.25,
                  split: bool = True, split_depth: float = 0.08, edge_level: float = 0.5,
-                 min_ecd_px: float = 6.0,
+                 min_ecd_px: float = 6.0, min_peak: float = 0.3,
                  reject_annotations: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
     """Label grains in one image (a whole frame or one tile).
 
@@ -975,6 +985,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     min_ecd_px : float
         Minimum equivalent circle diameter in pixels (the larger of the two
         limits applies).
+    min_peak : float
+        Objects whose brightest pixel is below this (image units, grains
+        about 1) are dropped.
     reject_annotations : bool
         Drop objects :func:`annotation_kind` calls drawn marks.
 
@@ -1016,6 +1029,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # closing and hole filling can enclose background between grains: a part
         # mostly below the threshold is such a pocket, not a grain
         parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        # an object must rise to min_peak of the frame's grain level (1): background texture and specks
+        # of correlated noise a few sigmas up do not
+        parts = [q for q in parts if float(arr[box][q].max()) >= min_peak]
         if reject_annotations:
             kinds = [annotation_kind(q, above[box]) for q in parts]
             for kind in kinds:
@@ -1097,19 +1113,24 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         notes.append(f"segment-grains: qc no-grains: no grains found (contrast {contrast:.3f} between the Otsu "
                      f"classes is below min_contrast {p['min_contrast']})")
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
-    if contrast < NOISE_ONLY_SIGMAS * levels["sigma"]:
-        notes.append(f"segment-grains: qc no-grains: no grains found (the Otsu classes differ by "
-                     f"{contrast / levels['sigma']:.1f} background sigmas: noise only)")
+    otsu_frac = float(np.mean(upper))
+    if otsu_frac > MAX_FOREGROUND:
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
+                         "to separate grains from (check polarity and threshold)")
+    fg_frac = float(np.mean(arr > levels["noise"]))
+    if fg_frac < NOISE_ONLY_FRACTION:
+        notes.append(f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
+                     f"{p['noise_k']:g} background sigmas above the background: noise only)")
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
-    fg_frac = float(np.mean(arr > t))
-    if fg_frac > MAX_FOREGROUND or abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
-        raise ValueError(f"segment-grains: foreground covers {100 * fg_frac:.0f} % of the frame and the most "
+    if abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
                          "common level is not background; no background to separate grains from "
                          "(check polarity and threshold)")
     kw = dict(method=p["threshold"], local_block_nm=p["local_block_nm"], local_offset=p["local_offset"],
               min_ecd_nm=p["min_ecd_nm"], close_nm=p["close_nm"], refine_nm=p["refine_nm"],
               gap_level=p["gap_level"], split=p["split"], split_depth=p["split_depth"],
-              edge_level=p["edge_level"], min_ecd_px=p["min_ecd_px"], reject_annotations=p["reject_annotations"])
+              edge_level=p["edge_level"], min_ecd_px=p["min_ecd_px"], min_peak=p["min_peak"],
+              reject_annotations=p["reject_annotations"])
 
     dropped = []
 
