@@ -147,6 +147,8 @@ GAP_REACH_PX = 4.0
 #: A frame with a smaller fraction of pixels above the noise threshold holds noise only (Gaussian noise
 #: exceeds 5 sigma in 3e-7 of the pixels).
 NOISE_ONLY_FRACTION = 1e-4
+#: Objects below min_peak are kept when at least this many times the smallest grain area (faint plates).
+FAINT_MIN_AREA_FACTOR = 16.0
 #: Width (px) of the skirt of a component that the auto threshold cuts at half its peak.
 EDGE_BAND_PX = 3.0
 #: Objects more elongated than this (area over squared inscribed diameter) are drawn lines, not grains.
@@ -987,7 +989,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         limits applies).
     min_peak : float
         Objects whose brightest pixel is below this (image units, grains
-        about 1) are dropped.
+        about 1) are dropped, unless they are larger than
+        :data:`FAINT_MIN_AREA_FACTOR` times the smallest grain and above the
+        noise threshold on average (faint thin plates).
     reject_annotations : bool
         Drop objects :func:`annotation_kind` calls drawn marks.
 
@@ -1030,8 +1034,10 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # mostly below the threshold is such a pocket, not a grain
         parts = [q for q in parts if above[box][q].mean() >= 0.5]
         # an object must rise to min_peak of the frame's grain level (1): background texture and specks
-        # of correlated noise a few sigmas up do not
-        parts = [q for q in parts if float(arr[box][q].max()) >= min_peak]
+        # of correlated noise a few sigmas up do not; a large object wholly above the noise threshold on
+        # average (a faint thin plate) stays
+        parts = [q for q in parts if float(arr[box][q].max()) >= min_peak
+                 or (q.sum() >= FAINT_MIN_AREA_FACTOR * min_area and float(arr[box][q].mean()) > levels["noise"])]
         if reject_annotations:
             kinds = [annotation_kind(q, above[box]) for q in parts]
             for kind in kinds:
