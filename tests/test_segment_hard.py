@@ -164,3 +164,17 @@ def test_score_folder_reads_pictures_and_masks(tmp_path):
     res = score_masks.score_folder(tmp_path / "img", tmp_path / "msk")
     assert res["frames"] == 1 and res["recall"] == 1.0 and res["precision"] == 1.0
     assert res["ecd_error_median"] < 0.1
+
+
+def test_artefacts_leave_truth_alone_and_debris_is_dropped():
+    from grainhabit.plugins.synthetic import render
+
+    field = render.make_field(12, (256, 256), 5.0, {"cube": 1.0}, 250.0, contrast="dark", seed=3)
+    hard = render.add_artefacts(field, seed=3, n_streaks=2, n_debris=30)
+    assert np.array_equal(hard.labels, field.labels) and not np.array_equal(hard.image, field.image)
+    labels, _ = find(hard.image.astype(np.float32))
+    # every found grain lies on a drawn grain: no debris speck (under 3 px) and no streak became a grain
+    ids = np.arange(1, labels.max() + 1)
+    cents = ndi.center_of_mass(np.ones_like(labels), labels, ids)
+    on_truth = [field.labels[int(round(r)), int(round(c))] > 0 for r, c in cents]
+    assert labels.max() >= 10 and all(on_truth)
