@@ -132,6 +132,8 @@ H_MIN_PX = 1.5
 MIN_DEPTH_PX = 2.0
 #: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
 NECK_RATIO = 0.75
+#: Levels of recursive cutting at most.
+MAX_DEPTH = 5
 #: Cuts tried per component at most, over all recursion levels (bounds the time).
 MAX_CUTS = 200
 #: Smallest part of a split, as a fraction of the whole component's area.
@@ -156,6 +158,9 @@ LINE_ELONGATION = 15.0
 #: Thin objects (elongation above this) with solidity below STROKE_SOLIDITY are strokes of letters.
 STROKE_ELONGATION = 4.0
 STROKE_SOLIDITY = 0.7
+#: Strokes are drawn at screen resolution: at most this half-width (px); a wider curved band is an unsplit
+#: chain of grains, not a letter.
+STROKE_MAX_HALF_WIDTH_PX = 4.0
 #: Text rows: at least this many glyphs, bottoms (or tops) within this many pixels, glyphs less solid than this.
 TEXT_MIN_GLYPHS = 3
 TEXT_BASELINE_PX = 2
@@ -394,10 +399,12 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
     Returns
     -------
     {"line", "stroke", None}
-        ``"line"``: a straight bar more than :data:`LINE_ELONGATION` times
-        longer than wide (scale bars, streaks, scratches); ``"stroke"``: a
+        ``"line"``: a bar more than :data:`LINE_ELONGATION` times longer
+        than wide and at most ``4 * STROKE_MAX_HALF_WIDTH_PX`` wide (scale
+        bars, streaks, scratches; a wider band is an unsplit chain of grains); ``"stroke"``: a
         thin curved stroke (letters, digits, text), i.e. elongation above
-        :data:`STROKE_ELONGATION` and solidity below :data:`STROKE_SOLIDITY`,
+        :data:`STROKE_ELONGATION`, solidity below :data:`STROKE_SOLIDITY` and
+        half-width at most :data:`STROKE_MAX_HALF_WIDTH_PX`,
         judged on the pixels above the noise threshold (a letter O or a
         digit 0 is a curved stroke there, whatever its filled shape) or on
         the filled shape; None for a grain.
@@ -418,17 +425,17 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
         return None
     r = float(ndi.distance_transform_edt(np.pad(part, 1)).max())
     elong = area / (4.0 * r * r)
-    if elong > LINE_ELONGATION:
+    if elong > LINE_ELONGATION and r <= 2 * STROKE_MAX_HALF_WIDTH_PX:
         return "line"
     raw = raw & part
     raw_area = float(raw.sum())
     if raw_area > 0:
         r_raw = float(ndi.distance_transform_edt(np.pad(raw, 1)).max())
-        if raw_area / (4.0 * r_raw * r_raw) > STROKE_ELONGATION:
+        if r_raw <= STROKE_MAX_HALF_WIDTH_PX and raw_area / (4.0 * r_raw * r_raw) > STROKE_ELONGATION:
             hull = float(convex_hull_image(raw).sum())
             if raw_area < STROKE_SOLIDITY * hull:
                 return "stroke"
-    if elong > STROKE_ELONGATION:
+    if elong > STROKE_ELONGATION and r <= STROKE_MAX_HALF_WIDTH_PX:
         solidity = area / max(float(convex_hull_image(part).sum()), 1.0)
         if solidity < STROKE_SOLIDITY:
             return "stroke"
@@ -932,7 +939,7 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
-    if depth > 5 or mask.sum() < 2 * min_area:
+    if depth > MAX_DEPTH or mask.sum() < 2 * min_area:
         return None
     parts = _split_at_defects(mask, min_area, split_depth, depth, budget)
     if parts is not None:
