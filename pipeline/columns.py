@@ -57,6 +57,7 @@ FRAME_COLUMNS = (
     Column("cols", "1", "frame width in pixels"),
     Column("polarity", "", "grain contrast: bright or dark"),
     Column("notes", "", "remarks from reading and processing"),
+    Column("qc", "", "why an ok frame's result is not to be trusted (codes, comma-separated; empty if none)"),
     Column("seconds", "s", "processing time of the frame"),
 )
 

@@ -47,6 +47,7 @@ DEFAULT_PLUGINS = (
     "grainhabit.plugins.survey.write_report",
     "grainhabit.plugins.survey.compare",
     "grainhabit.plugins.survey.aggregate",
+    "grainhabit.plugins.survey.score_masks",
     "grainhabit.plugins.synthetic.demo",
     "grainhabit.plugins.scaffold.new_plugin",
 )
@@ -62,6 +63,7 @@ BENCHMARK_PLUGINS = (
     "grainhabit.plugins.bench.profile",
     "grainhabit.plugins.bench.nightly",
     "grainhabit.plugins.bench.sizes",
+    "grainhabit.plugins.bench.realdata",
 )
 
 #: Step used for a stage when the workflow names none. Stages missing here

@@ -66,6 +66,7 @@ class RunOutcome:
     exit_code: int
     frames_ok: int = 0
     frames_failed: int = 0
+    frames_flagged: int = 0
     frames_reused: int = 0
     frames_processed: int = 0
     grains: int = 0
@@ -78,7 +79,8 @@ class RunOutcome:
 
     def line(self) -> str:
         rate = self.frames_processed / self.seconds * 60 if self.seconds > 0 else 0.0
-        return (f"done: {self.frames_ok} frames ok, {self.frames_failed} failed, {self.grains} grains, "
+        return (f"done: {self.frames_ok} frames ok, {self.frames_failed} failed, "
+                f"{self.frames_flagged} ok but flagged by QC, {self.grains} grains, "
                 f"{self.frames_processed} processed + {self.frames_reused} reused, {self.seconds:.1f} s wall, "
                 f"{rate:.1f} frames/min")
 
@@ -313,6 +315,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         grains, frames_ds = built["grains"], built["frames"]
         ok_frames = [i for i, s in enumerate(frames_ds["status"].values) if str(s) == "ok"]
         outcome.frames_ok = len(ok_frames)
+        if "qc" in frames_ds:
+            outcome.frames_flagged = sum(1 for i in ok_frames if str(frames_ds["qc"].values[i]))
         outcome.frames_failed = int(frames_ds.sizes.get("frame", 0)) - outcome.frames_ok
         outcome.grains = int(grains.sizes.get("grain", 0))
         outcome.failures = [(str(s), str(e)) for s, e, st in zip(frames_ds["source"].values,

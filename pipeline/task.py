@@ -147,7 +147,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
     record = {
         "source": ref.source, "sample": sample, "status": "ok", "error": "", "grain_count": 0,
         "pixel_size_nm": float("nan"), "calibration": "", "content_hash": ref.content_hash,
-        "rows": 0, "cols": 0, "polarity": "", "notes": "", "seconds": 0.0, "timings": {},
+        "rows": 0, "cols": 0, "polarity": "", "notes": "", "qc": "", "seconds": 0.0, "timings": {},
         "worker_pid": os.getpid(),
     }
     result = {"record": record, "columns": {}, "outline_xy": np.zeros((0, 2)),
@@ -197,6 +197,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         timings[stage] = timings.get(stage, 0.0) + time.perf_counter() - t0
 
     record["notes"] = "; ".join(frame.notes)
+    record["qc"] = qc_codes(frame.notes, record["status"] == "ok" and frame.n_grains == 0)
     record["polarity"] = frame.polarity
     if record["status"] == "ok":
         cols = {k: np.asarray(v) for k, v in frame.grains.items()}
@@ -213,3 +214,38 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
                 result["outline_offsets"] = np.concatenate([[0], np.cumsum([len(p) for p in polys])]).astype(np.int64)
     record["seconds"] = time.perf_counter() - t_start
     return result
+
+
+#: A note whose text after the step name starts with this marks the frame's result as not to be trusted.
+QC_MARK = "qc "
+
+
+def qc_codes(notes, empty: bool) -> str:
+    """Quality codes of a frame from its notes.
+
+    A step flags a frame with a note ``"<step>: qc <code>: <why>"``; an ok
+    frame without any grain always gets ``no-grains``, so that no empty
+    result passes unnoticed.
+
+    Parameters
+    ----------
+    notes : sequence of str
+        The frame's notes.
+    empty : bool
+        Whether the frame finished ok with 0 grains.
+
+    Returns
+    -------
+    str
+        Codes, comma-separated, in note order; empty if none.
+    """
+    codes = []
+    for note in notes:
+        text = note.split(": ", 1)[-1]
+        if text.startswith(QC_MARK):
+            code = text[len(QC_MARK):].split(":", 1)[0].strip()
+            if code and code not in codes:
+                codes.append(code)
+    if empty and "no-grains" not in codes:
+        codes.append("no-grains")
+    return ",".join(codes)

@@ -415,10 +415,40 @@ def estimate_background(image: np.ndarray, pixel_size_nm: float, background_nm: 
     r_sub = regular_subsample(arr, LEVEL_SAMPLES) - regular_subsample(bg, LEVEL_SAMPLES)
     m = histogram_mode(r_sub)
     s_full = clipped_sigma(r_sub, m)
+    if grain_sign:
+        # grains lie on one side: the other half of the background peak alone gives its width, however
+        # much of the frame the grains cover (a two-sided clip starts from a spread the grains inflate)
+        s_full = min(s_full, one_sided_sigma(r_sub, m, -grain_sign))
     bg = bg + m
     dev = (arr - bg) / s_full
     is_bg = np.abs(dev) < CLIP_SIGMAS
     return bg, is_bg, s_full
+
+
+def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
+    """Noise sd from one side of a symmetric peak.
+
+    Parameters
+    ----------
+    r : ndarray
+        Values; the background peak is centred on ``centre``.
+    centre : float
+        The peak's mode.
+    side : {-1, 1}
+        The side free of grains.
+
+    Returns
+    -------
+    float
+        ``1.4826 * median(|r - centre|)`` over the values on ``side`` of the
+        centre: the MAD estimator of a normal sd (common practice), on the
+        half of the peak that the grains leave alone.
+    """
+    d = (np.asarray(r, float).ravel() - centre) * side
+    d = d[d > 0]
+    if d.size < 10:
+        return float("inf")
+    return max(1.4826 * float(np.median(d)), 1e-9)
 
 
 def detect_polarity(residual: np.ndarray, sigma: float) -> tuple[str, float]:
@@ -491,6 +521,10 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     x, _ = denoise(x, denoise_method, smooth_px)
     bg, _, s = estimate_background(x, pixel_size_nm, background_nm, grain_sign=0)
     if polarity == "auto":
+        # the grain-free side of the background peak gives its width even where grains cover much of the
+        # frame (a two-sided clip then starts from a spread the grains inflate and finds no tail)
+        r_sub = regular_subsample(x - bg, LEVEL_SAMPLES)
+        s = min(s, one_sided_sigma(r_sub, 0.0, -1), one_sided_sigma(r_sub, 0.0, 1))
         pol, conf = detect_polarity(x - bg, s)
     else:
         pol, conf = polarity, 1.0
@@ -515,7 +549,8 @@ def grainhabit_preprocess(frame, params):
     out, pol, conf = flatten(src, px, p["background_nm"], p["denoise"], smooth_px, p["polarity"])
     new = frame.replace(image=out, polarity=pol)
     if p["polarity"] == "auto" and conf < LOW_CONFIDENCE:
-        new = new.with_note(f"flatten-background: polarity auto-detected as {pol!r} with low confidence "
+        new = new.with_note(f"flatten-background: qc polarity-uncertain: polarity auto-detected as {pol!r} "
+                            f"with low confidence "
                             f"({conf:.2f}); set polarity to force it")
     return new
 

@@ -70,6 +70,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
+from grainhabit.plugins.preprocess.flatten_background import one_sided_sigma
 from grainhabit.plugins.segment import tiling
 
 GRAINHABIT_API = 1
@@ -80,16 +81,28 @@ STEP = StepInfo(
     version="1.1",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
-        Param("threshold", str, "noise", choices=("noise", "otsu", "local", "sauvola"),
-              doc="Foreground threshold: noise_k background sigmas, global Otsu, Gaussian local mean, or Sauvola."),
+        Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
+              doc="Foreground threshold: auto (half grain height, faint grains at the noise level), noise_k "
+                  "background sigmas, global Otsu, Gaussian local mean, or Sauvola."),
+        Param("edge_level", float, 0.5, low=0.0, high=1.0,
+              doc="auto threshold: outline level of distinct grains as a fraction of the grain level "
+                  "(0.5, the half-height point of a blurred edge)."),
         Param("noise_k", float, 5.0, low=0.0,
               doc="Background sigmas above the background level for the noise threshold (and local floor)."),
         Param("local_block_nm", float, 2000.0, unit="nm", low=0.0,
               doc="Window side of the local thresholds; should be a few grain diameters."),
         Param("local_offset", float, 0.0,
               doc="Subtracted from the local threshold (image units, background 0, grains about 1)."),
-        Param("min_ecd_nm", float, 40.0, unit="nm", low=0.0,
-              doc="Grains (and split parts) with a smaller equivalent circle diameter are dropped."),
+        Param("min_ecd_nm", float, 0.0, unit="nm", low=0.0,
+              doc="Grains (and split parts) with a smaller equivalent circle diameter are dropped (0: no nm limit)."),
+        Param("min_ecd_px", float, 6.0, unit="px", low=1.0,
+              doc="Grains smaller than this equivalent circle diameter in pixels are dropped (below it no "
+                  "outline can be measured), whatever the pixel size."),
+        Param("min_peak", float, 0.3, low=0.0,
+              doc="Objects whose brightest pixel stays below this (image units: background 0, typical grain 1) "
+                  "are background texture, not grains."),
+        Param("reject_annotations", bool, True,
+              doc="Drop thin line-like or stroke-like objects (scale bars, panel letters, text, scratches)."),
         Param("close_nm", float, None, unit="nm", low=0.0,
               doc="Radius of the closing that bridges facet lines at the outline; unset means 2 pixels."),
         Param("refine_nm", float, None, unit="nm", low=0.0,
@@ -99,8 +112,9 @@ STEP = StepInfo(
         Param("split", bool, True, doc="Split touching grains by watershed."),
         Param("split_depth", float, 0.08, low=0.0, high=1.0,
               doc="Concavity depth, as a fraction of the equal-area radius, above which a component is split."),
-        Param("min_contrast", float, 0.3, low=0.0,
-              doc="Below this difference of the Otsu class means (image units) the frame holds no grains."),
+        Param("min_contrast", float, 0.0, low=0.0,
+              doc="Below this difference of the Otsu class means (image units) the frame holds no grains "
+                  "(0: no such test; a frame without grains is flagged in any case)."),
         Param("tile_px", int, 2048, unit="px", low=64,
               doc="Frames with more pixels per side are segmented in overlapping tiles of this core size."),
         Param("tile_overlap_nm", float, 320.0, unit="nm", low=0.0,
@@ -119,6 +133,8 @@ H_MIN_PX = 1.5
 MIN_DEPTH_PX = 2.0
 #: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
 NECK_RATIO = 0.75
+#: Levels of recursive cutting at most.
+MAX_DEPTH = 5
 #: Cuts tried per component at most, over all recursion levels (bounds the time).
 MAX_CUTS = 200
 #: Smallest part of a split, as a fraction of the whole component's area.
@@ -131,6 +147,25 @@ MAX_FOREGROUND = 0.95
 GAP_MIN_AREA_PX = 20
 #: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
 GAP_REACH_PX = 4.0
+#: A frame with a smaller fraction of pixels above the noise threshold holds noise only (Gaussian noise
+#: exceeds 5 sigma in 3e-7 of the pixels).
+NOISE_ONLY_FRACTION = 1e-4
+#: Objects below min_peak are kept when at least this many times the smallest grain area (faint plates).
+FAINT_MIN_AREA_FACTOR = 16.0
+#: Width (px) of the skirt of a component that the auto threshold cuts at half its peak.
+EDGE_BAND_PX = 3.0
+#: Objects more elongated than this (area over squared inscribed diameter) are drawn lines, not grains.
+LINE_ELONGATION = 15.0
+#: Thin objects (elongation above this) with solidity below STROKE_SOLIDITY are strokes of letters.
+STROKE_ELONGATION = 4.0
+STROKE_SOLIDITY = 0.7
+#: Strokes are drawn at screen resolution: at most this half-width (px); a wider curved band is an unsplit
+#: chain of grains, not a letter.
+STROKE_MAX_HALF_WIDTH_PX = 4.0
+#: Text rows: at least this many glyphs, bottoms (or tops) within this many pixels, glyphs less solid than this.
+TEXT_MIN_GLYPHS = 3
+TEXT_BASELINE_PX = 2
+TEXT_SOLIDITY = 0.85
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -197,14 +232,20 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     from grainhabit.plugins.common.image_stats import background_level, regular_subsample
 
     sub = regular_subsample(_check_image(image), max_samples)
-    bg, sigma = background_level(sub)
+    # values clipped by the preprocessing (grains at 1, the low clip) pile up in one histogram bin that
+    # can outnumber the background's mode: leave them out of the background's level and noise
+    inner = sub[(sub > sub.min()) & (sub < sub.max())]
+    bg, sigma = background_level(inner if inner.size >= 0.25 * sub.size else sub)
+    # grains are bright here: the lower half of the background peak alone gives the noise, however
+    # much of the frame the grains cover
+    sigma = min(sigma, one_sided_sigma(inner if inner.size >= 0.25 * sub.size else sub, bg, -1))
     return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
 
 
 def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: str = "noise",
                local_block_nm: float = 2000.0, local_offset: float = 0.0,
                close_nm: float | None = None, refine_nm: float | None = None,
-               gap_level: float = 0.25) -> np.ndarray:
+               gap_level: float = 0.25, edge_level: float = 0.5) -> np.ndarray:
     """Foreground mask with grain extent from outlines only.
 
     Parameters
@@ -215,7 +256,9 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
         Pixel side in nm.
     levels : dict
         Frame-wide levels from :func:`frame_levels`.
-    method : {"noise", "otsu", "local", "sauvola"}
+    method : {"auto", "noise", "otsu", "local", "sauvola"}
+        ``auto``: every component above the noise threshold is cut at
+        ``edge_level`` of its own peak (:func:`half_height_mask`);
         ``noise``: a fixed number of background sigmas above the background
         (finds faint grains too); ``otsu``: the global Otsu threshold;
         ``local`` / ``sauvola``: local thresholds, never below ``noise``.
@@ -231,6 +274,8 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     gap_level : float
         Level of the grain cores (image units, background 0, grains about
         1) between which near grains are kept apart (see :func:`gap_lines`).
+    edge_level : float
+        Fraction of a component's peak where the ``auto`` outline lies.
 
     Returns
     -------
@@ -252,7 +297,9 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     from skimage.segmentation import watershed
 
     arr = _check_image(image)
-    if method == "noise":
+    if method == "auto":
+        fg = half_height_mask(arr, levels["noise"], edge_level)
+    elif method == "noise":
         fg = arr > levels["noise"]
     elif method == "otsu":
         fg = arr > levels["otsu"]
@@ -264,7 +311,7 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
             t = threshold_sauvola(arr, window_size=block, k=0.2) - local_offset
         fg = arr > np.maximum(t, levels["noise"])
     else:
-        raise ValueError(f"threshold must be 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
+        raise ValueError(f"threshold must be 'auto', 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
     gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]))
     r = int(round(2.0 if close_nm is None else close_nm / pixel_size_nm))
     if r >= 1:
@@ -298,6 +345,179 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     near_band = ndi.binary_dilation(band, structure=ndi.generate_binary_structure(2, 1))
     ws = watershed(sobel(arr), np.where(near_band, markers, 0), mask=near_band)
     return fill_holes(seeds | (ws == 2))
+
+
+def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 0.5) -> np.ndarray:
+    """Foreground cut at a fixed fraction of each object's own peak.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (background 0, grains bright).
+    noise_level : float
+        Noise threshold (a few background sigmas above the background).
+    edge_level : float
+        Fraction of the peak at which the outline is drawn.
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+        In every 8-connected component ``C`` of ``I > T_n``: its pixels deeper
+        than :data:`EDGE_BAND_PX` from its outline, and the others where
+        ``I > f * max_C(I)``.
+
+    Notes
+    -----
+    The half-height point of a blurred step edge is where the step was
+    (common practice: the full width at half maximum of a blurred object
+    is its true width), so a component's outline at half its own peak keeps
+    the ECD unbiased whatever the blur and however bright the grain; a
+    faint grain (a thin plate a few sigmas up) has half its peak below the
+    noise threshold and is kept whole at that threshold.
+    """
+    weak = image > noise_level
+    lab, n = ndi.label(weak, structure=_EIGHT)
+    if n == 0:
+        return weak
+    peak = np.zeros(n + 1, np.float32)
+    peak[1:] = ndi.maximum(image, lab, index=np.arange(1, n + 1))
+    # only the skirt of each component (within EDGE_BAND_PX of its outline) is cut at the level: inner
+    # facet lines and texture deeper inside never split a grain
+    deep = ndi.binary_erosion(weak, structure=disk_structure(EDGE_BAND_PX), border_value=1)
+    return deep | (weak & (image > edge_level * peak[lab]))
+
+
+def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
+    """Whether an object is a mark drawn on the picture rather than a grain.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+        The object (holes filled).
+    raw : ndarray of bool, shape (h, w)
+        Its pixels above the noise threshold (before closing and hole filling).
+
+    Returns
+    -------
+    {"line", "stroke", None}
+        ``"line"``: a bar more than :data:`LINE_ELONGATION` times longer
+        than wide and at most ``4 * STROKE_MAX_HALF_WIDTH_PX`` wide (scale
+        bars, streaks, scratches; a wider band is an unsplit chain of grains); ``"stroke"``: a
+        thin curved stroke (letters, digits, text), i.e. elongation above
+        :data:`STROKE_ELONGATION`, solidity below :data:`STROKE_SOLIDITY` and
+        half-width at most :data:`STROKE_MAX_HALF_WIDTH_PX`,
+        judged on the pixels above the noise threshold (a letter O or a
+        digit 0 is a curved stroke there, whatever its filled shape) or on
+        the filled shape; None for a grain.
+
+    Notes
+    -----
+    Elongation ``E = A / (2 r)^2`` with ``A`` the area and ``r`` the largest
+    inscribed radius (distance transform maximum): about 0.8 for a disc, 1 for
+    a square, ``L / w`` for a bar or rod of length ``L`` and width ``w``.
+    Solidity is area over convex hull area (ISO 9276-6). Grains are compact
+    and convex or made of convex parts; drawn marks are lines one to a few
+    pixels wide.
+    """
+    from skimage.morphology import convex_hull_image
+
+    area = float(part.sum())
+    if area < 4:
+        return None
+    r = float(ndi.distance_transform_edt(np.pad(part, 1)).max())
+    elong = area / (4.0 * r * r)
+    if elong > LINE_ELONGATION and r <= 2 * STROKE_MAX_HALF_WIDTH_PX:
+        return "line"
+    raw = raw & part
+    raw_area = float(raw.sum())
+    if raw_area > 0:
+        r_raw = float(ndi.distance_transform_edt(np.pad(raw, 1)).max())
+        if r_raw <= STROKE_MAX_HALF_WIDTH_PX and raw_area / (4.0 * r_raw * r_raw) > STROKE_ELONGATION:
+            hull = float(convex_hull_image(raw).sum())
+            if raw_area < STROKE_SOLIDITY * hull:
+                return "stroke"
+    if elong > STROKE_ELONGATION and r <= STROKE_MAX_HALF_WIDTH_PX:
+        solidity = area / max(float(convex_hull_image(part).sum()), 1.0)
+        if solidity < STROKE_SOLIDITY:
+            return "stroke"
+    return None
+
+
+def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+    """Labels that form a line of text: glyph-like objects of one height on one baseline.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Grains 1..n.
+    drawn : ndarray of bool, shape (rows, cols)
+        Pixels above the noise threshold.
+
+    Returns
+    -------
+    ndarray of int
+        Labels to drop.
+
+    Notes
+    -----
+    A row is a chain of at least :data:`TEXT_MIN_GLYPHS` objects whose
+    bounding boxes end on the same row (within :data:`TEXT_BASELINE_PX`,
+    their bottoms; or their tops), with heights within 35 % of each other and
+    horizontal gaps under 1.5 heights: the layout of printed text (common
+    practice). It is dropped when most of its members are not convex (drawn
+    pixels fill under :data:`TEXT_SOLIDITY` of their convex hull), as
+    letters and digits are and a row of touching grains is not. Smaller
+    objects inside the band of a dropped row (pieces of split glyphs) are
+    dropped with it.
+    """
+    from skimage.morphology import convex_hull_image
+
+    boxes = ndi.find_objects(labels)
+    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
+    if len(items) < TEXT_MIN_GLYPHS:
+        return np.zeros(0, np.int64)
+    top = np.array([b[0].start for _, b in items])
+    bottom = np.array([b[0].stop for _, b in items])
+    left = np.array([b[1].start for _, b in items])
+    right = np.array([b[1].stop for _, b in items])
+    height = (bottom - top).astype(float)
+    ids = np.array([k for k, _ in items])
+    drop = set()
+    solid = {}
+
+    def solidity(i):
+        if i not in solid:
+            k, b = items[i]
+            m = (labels[b] == k) & drawn[b]
+            solid[i] = float(m.sum()) / max(float(convex_hull_image(m).sum()), 1.0) if m.any() else 1.0
+        return solid[i]
+
+    for edge in (bottom, top):
+        order = np.argsort(edge, kind="stable")
+        for a in order:
+            # neighbours on the same line, chained left to right
+            same = np.flatnonzero((np.abs(edge - edge[a]) <= TEXT_BASELINE_PX)
+                                  & (np.abs(height / height[a] - 1) < 0.35))
+            same = same[np.argsort(left[same])]
+            group = [same[0]]
+            for j in same[1:]:
+                if left[j] - right[group[-1]] < 1.5 * max(height[a], 1):
+                    group.append(j)
+                elif a in group:
+                    break
+                else:
+                    group = [j]
+            if a not in group or len(group) < TEXT_MIN_GLYPHS:
+                continue
+            if sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group):
+                drop.update(int(ids[i]) for i in group)
+                # pieces of glyphs (a split letter, a dot) inside the line's band go with it
+                g = np.asarray(group)
+                t0, t1 = top[g].min() - TEXT_BASELINE_PX, bottom[g].max() + TEXT_BASELINE_PX
+                c0, c1 = left[g].min() - height[a], right[g].max() + height[a]
+                inside = (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
+                drop.update(int(k) for k in ids[inside])
+    return np.asarray(sorted(drop), np.int64)
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
@@ -575,50 +795,25 @@ def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
     height : float
         Smallest peak value.
     prominence : float
-        Smallest prominence: the peak's value minus the higher of the two
-        lowest values between it and the nearest strictly higher sample on
-        either side (or the signal's end).
+        Smallest prominence.
 
     Returns
     -------
     ndarray of int
-        Peak indices, increasing; a flat top counts once, at its middle
-        (the lower one of two middles).
-
-    Notes
-    -----
-    The peaks ``scipy.signal.find_peaks(x, height=height,
-    prominence=prominence)[0]`` returns [1]_ (tested against it); written here
-    because importing ``scipy.signal`` costs a dask worker about 0.6 s before
-    its first frame.
+        Peak indices, increasing: ``scipy.signal.find_peaks(x, height=height,
+        prominence=prominence)[0]`` [1]_ (workers import scipy.signal once, when
+        they are prepared).
 
     References
     ----------
-    .. [1] SciPy documentation, ``scipy.signal.find_peaks`` and
-       ``scipy.signal.peak_prominences``.
+    .. [1] SciPy documentation, ``scipy.signal.find_peaks``.
     """
+    from scipy.signal import find_peaks as _scipy_find_peaks
+
     x = np.asarray(x, float)
     if x.size < 3:
         return np.zeros(0, np.intp)
-    # runs of equal values: a run higher than both neighbouring runs is one peak
-    start = np.flatnonzero(np.r_[True, x[1:] != x[:-1]])
-    end = np.r_[start[1:], x.size] - 1
-    val = x[start]
-    inner = np.arange(1, len(start) - 1)
-    top = inner[(val[inner - 1] < val[inner]) & (val[inner + 1] < val[inner])]
-    peaks = (start[top] + end[top]) // 2
-    keep = []
-    for i in peaks:
-        if x[i] < height:
-            continue
-        higher_left = np.flatnonzero(x[:i] > x[i])
-        higher_right = np.flatnonzero(x[i + 1:] > x[i])
-        lo = higher_left[-1] + 1 if higher_left.size else 0
-        hi = i + 1 + higher_right[0] if higher_right.size else x.size
-        base = max(x[lo:i + 1].min(), x[i:hi].min())
-        if x[i] - base >= prominence:
-            keep.append(i)
-    return np.asarray(keep, np.intp)
+    return _scipy_find_peaks(x, height=height, prominence=prominence)[0].astype(np.intp)
 
 
 def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> list[np.ndarray] | None:
@@ -745,7 +940,7 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
-    if depth > 5 or mask.sum() < 2 * min_area:
+    if depth > MAX_DEPTH or mask.sum() < 2 * min_area:
         return None
     parts = _split_at_defects(mask, min_area, split_depth, depth, budget)
     if parts is not None:
@@ -774,8 +969,9 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
 def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, method: str = "noise",
                  local_block_nm: float = 2000.0, local_offset: float = 0.0, min_ecd_nm: float = 40.0,
                  close_nm: float | None = None, refine_nm: float | None = None, gap_level: float = 0.25,
-                 split: bool = True,
-                 split_depth: float = 0.08) -> tuple[np.ndarray, np.ndarray, dict]:
+                 split: bool = True, split_depth: float = 0.08, edge_level: float = 0.5,
+                 min_ecd_px: float = 6.0, min_peak: float = 0.3,
+                 reject_annotations: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
     """Label grains in one image (a whole frame or one tile).
 
     Parameters
@@ -794,6 +990,18 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         Split touching grains.
     split_depth : float
         See :func:`split_component`.
+    edge_level : float
+        See :func:`half_height_mask`.
+    min_ecd_px : float
+        Minimum equivalent circle diameter in pixels (the larger of the two
+        limits applies).
+    min_peak : float
+        Objects whose brightest pixel is below this (image units, grains
+        about 1) are dropped, unless they are larger than
+        :data:`FAINT_MIN_AREA_FACTOR` times the smallest grain and above the
+        noise threshold on average (faint thin plates).
+    reject_annotations : bool
+        Drop objects :func:`annotation_kind` calls drawn marks.
 
     Returns
     -------
@@ -802,15 +1010,18 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     clusters : ndarray of int32, shape (rows, cols)
         Connected component (before splitting) of every grain pixel.
     flags : dict
-        ``{"split": ndarray of bool, shape (n + 1,)}`` indexed by label.
+        ``{"split": ndarray of bool, shape (n + 1,)}`` indexed by label,
+        and ``"rejected"``: ``{"line": k, "stroke": k}``, objects dropped as
+        drawn marks.
     """
     arr = _check_image(image)
     if not np.isfinite(pixel_size_nm) or pixel_size_nm <= 0:
         raise ValueError(f"pixel_size_nm must be positive, got {pixel_size_nm!r}")
     fg = foreground(arr, pixel_size_nm, levels, method, local_block_nm, local_offset, close_nm, refine_nm,
-                    gap_level)
+                    gap_level, edge_level)
     above = arr > levels["noise"]
-    min_area = np.pi / 4.0 * (min_ecd_nm / pixel_size_nm) ** 2
+    min_area = np.pi / 4.0 * max(min_ecd_nm / pixel_size_nm, min_ecd_px) ** 2
+    rejected = {"line": 0, "stroke": 0}
     comp, n = ndi.label(fg, structure=_EIGHT)
     labels = np.zeros(arr.shape, np.int32)
     split_flag = [False]
@@ -830,13 +1041,31 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # closing and hole filling can enclose background between grains: a part
         # mostly below the threshold is such a pocket, not a grain
         parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        # an object must rise to min_peak of the frame's grain level (1): background texture and specks
+        # of correlated noise a few sigmas up do not; a large object wholly above the noise threshold on
+        # average (a faint thin plate) stays
+        parts = [q for q in parts if float(arr[box][q].max()) >= min_peak
+                 or (q.sum() >= FAINT_MIN_AREA_FACTOR * min_area and float(arr[box][q].mean()) > levels["noise"])]
+        if reject_annotations:
+            kinds = [annotation_kind(q, above[box]) for q in parts]
+            for kind in kinds:
+                if kind is not None:
+                    rejected[kind] += 1
+            parts = [q for q, kind in zip(parts, kinds) if kind is None]
         view = labels[box]
         for p in parts:
             view[p] = nxt
             split_flag.append(was_split)
             nxt += 1
+    if reject_annotations and nxt > 1:
+        gone = text_rows(labels, above)
+        if gone.size:
+            rejected["stroke"] += int(gone.size)
+            keep = np.ones(nxt, bool)
+            keep[gone] = False
+            labels = np.where(keep[labels], labels, 0)
     labels, old = tiling.renumber_raster(labels)
-    flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]])}
+    flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]]), "rejected": rejected}
     clusters = np.where(labels > 0, comp, 0).astype(np.int32)
     return labels, clusters, flags
 
@@ -895,20 +1124,34 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     mean_low = float(arr[lower].mean()) if lower.any() else t
     contrast = mean_up - mean_low
     if contrast < p["min_contrast"]:
-        notes.append(f"segment-grains: no grains found (contrast {contrast:.3f} between the Otsu "
+        notes.append(f"segment-grains: qc no-grains: no grains found (contrast {contrast:.3f} between the Otsu "
                      f"classes is below min_contrast {p['min_contrast']})")
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
-    fg_frac = float(np.mean(arr > t))
-    if fg_frac > MAX_FOREGROUND or abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
-        raise ValueError(f"segment-grains: foreground covers {100 * fg_frac:.0f} % of the frame and the most "
+    otsu_frac = float(np.mean(upper))
+    if otsu_frac > MAX_FOREGROUND:
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
+                         "to separate grains from (check polarity and threshold)")
+    fg_frac = float(np.mean(arr > levels["noise"]))
+    if fg_frac < NOISE_ONLY_FRACTION:
+        notes.append(f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
+                     f"{p['noise_k']:g} background sigmas above the background: noise only)")
+        return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
+    if abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
                          "common level is not background; no background to separate grains from "
                          "(check polarity and threshold)")
     kw = dict(method=p["threshold"], local_block_nm=p["local_block_nm"], local_offset=p["local_offset"],
               min_ecd_nm=p["min_ecd_nm"], close_nm=p["close_nm"], refine_nm=p["refine_nm"],
-              gap_level=p["gap_level"], split=p["split"], split_depth=p["split_depth"])
+              gap_level=p["gap_level"], split=p["split"], split_depth=p["split_depth"],
+              edge_level=p["edge_level"], min_ecd_px=p["min_ecd_px"], min_peak=p["min_peak"],
+              reject_annotations=p["reject_annotations"])
+
+    dropped = []
 
     def func(tile):
-        return label_grains(tile, pixel_size_nm, levels, **kw)
+        labels, clusters, flags = label_grains(tile, pixel_size_nm, levels, **kw)
+        dropped.append(flags.pop("rejected"))
+        return labels, clusters, flags
 
     if max(arr.shape) > p["tile_px"]:
         halo = max(32, int(np.ceil(p["tile_overlap_nm"] / pixel_size_nm)))
@@ -920,8 +1163,14 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     else:
         labels, _, flags = func(arr)
         split = flags["split"][1:]
+    n_line = sum(d["line"] for d in dropped)
+    n_stroke = sum(d["stroke"] for d in dropped)
+    if n_line or n_stroke:
+        notes.append(f"segment-grains: {n_line} line-like and {n_stroke} stroke-like object(s) dropped as "
+                     "drawn marks (scale bars, letters, text, streaks)")
     if labels.max() == 0:
-        notes.append("segment-grains: no grains found")
+        notes.append("segment-grains: qc no-grains: no grains found (nothing stands out of the background noise, "
+                     "or everything was too small or looked like drawn marks)")
     return labels.astype(np.int32), split.astype(bool), notes
 
 
@@ -950,3 +1199,4 @@ def grainhabit_prepare_worker(steps):
     import skimage.measure  # noqa: F401
     import skimage.morphology  # noqa: F401
     import skimage.segmentation  # noqa: F401
+    import scipy.signal  # noqa: F401

@@ -65,6 +65,7 @@ __all__ = [
     "grain_outline",
     "touching_label_pairs",
     "bench_render",
+    "add_artefacts",
 ]
 
 
@@ -546,6 +547,55 @@ def render_field(grains, shape, pixel_size_nm, contrast="bright", *, gradient=0.
     img = np.clip(img, 0.0, 1.0).astype(np.float32)
     return SyntheticField(image=img, labels=labels, grains=grains, pixel_size_nm=px,
                           contrast=contrast, touching_pairs=touching_label_pairs(labels))
+
+
+def add_artefacts(field: SyntheticField, seed: int = 0, n_streaks: int = 3, streak_amplitude: float = 0.15,
+                  n_debris: int = 40, debris_amplitude: float = 0.5) -> SyntheticField:
+    """Add charging streaks and debris specks to a rendered field; the truth labels stay as they were.
+
+    Parameters
+    ----------
+    field : SyntheticField
+        A field from :func:`render_field`.
+    seed : int
+        Seed of the artefacts' positions.
+    n_streaks : int
+        Horizontal charging streaks: 1-3 rows from a random start column to
+        the right edge, brightness ``a exp(-(x - x0) / L)`` with ``L`` a
+        quarter of the width (a charged spot discharging along the scan line;
+        common practice, from memory, of the look of SEM charging).
+    streak_amplitude : float
+        ``a`` as a fraction of the intensity range (added in both contrasts).
+    n_debris : int
+        Specks of dirt: Gaussian spots of sigma 0.4-0.8 px (under 3 px across),
+        with the grains' contrast.
+    debris_amplitude : float
+        Peak of a speck relative to a grain's contrast.
+
+    Returns
+    -------
+    SyntheticField
+        A copy with the new image.
+    """
+    rng = np.random.default_rng(seed + 7919)
+    img = field.image.astype(np.float64).copy()
+    rows, cols = img.shape
+    for _ in range(int(n_streaks)):
+        r0 = int(rng.integers(0, rows))
+        h = int(rng.integers(1, 4))
+        x0 = int(rng.integers(0, cols // 2))
+        x = np.arange(cols) - x0
+        prof = np.where(x >= 0, streak_amplitude * np.exp(-np.clip(x, 0, None) / (cols / 4.0)), 0.0)
+        img[r0:r0 + h] += prof[None, :]
+    sign = 1.0 if field.contrast == "bright" else -1.0
+    level = 0.5 if field.contrast == "bright" else 0.6
+    yy, xx = np.mgrid[-3:4, -3:4]
+    for _ in range(int(n_debris)):
+        r, c = int(rng.integers(3, rows - 3)), int(rng.integers(3, cols - 3))
+        sig = rng.uniform(0.4, 0.8)
+        img[r - 3:r + 4, c - 3:c + 4] += sign * debris_amplitude * level * np.exp(-(yy ** 2 + xx ** 2) / (2 * sig ** 2))
+    img = np.clip(img, 0.0, 1.0).astype(np.float32)
+    return replace(field, image=img)
 
 
 # ---------------------------------------------------------------- random fields
