@@ -15,7 +15,7 @@ from grainhabit.frame import FrameData
 from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import segment_grains as segment
 
-from builders import draw_faceted_frame, polygon_rows_cols, reference_gap_lines
+from builders import draw_faceted_frame, draw_frame, polygon_rows_cols, reference_gap_lines
 
 
 def run_chain(raw, pixel_size_nm=5.0, seg_params=None, pre_params=None):
@@ -315,7 +315,6 @@ def test_short_neck_is_cut_between_its_concavities():
 def test_lone_disc_in_a_small_frame_is_one_grain(seed):
     # a 96 px frame holding one disc of 10-14 px radius: the background peak spans only a few histogram bins
     # until the mode is refined; the disc stays one grain with the area skimage.draw.disk gives (within 6 %)
-    from builders import draw_frame  # noqa: PLC0415  (the plain drawer of conftest fixtures)
 
     rad = 10 + seed % 5
     raw = draw_frame((96, 96), discs=[(48, 48, rad)], seed=seed).astype(np.float32)
