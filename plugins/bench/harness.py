@@ -489,3 +489,20 @@ def mib(nbytes: float) -> float:
 def ratio(a: float, b: float) -> float:
     """``a / b``, NaN when ``b`` is 0 or NaN."""
     return a / b if (b and b == b and not math.isinf(b)) else float("nan")
+
+
+def write_figures(path: str | os.PathLike | None, figures: dict, out=None) -> None:
+    """Write a benchmark's figures as JSON to ``path`` (folders made as needed); nothing if ``path`` is None.
+
+    Numbers numpy cannot give JSON directly are written as floats; with
+    ``out``, a line says where the figures went.
+    """
+    if not path:
+        return
+    import json
+
+    Path(path).parent.mkdir(parents=True, exist_ok=True)
+    Path(path).write_text(json.dumps(figures, indent=2, default=float))
+    if out is not None:
+        print(f"figures written to {path}", file=out)
+

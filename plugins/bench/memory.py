@@ -212,9 +212,7 @@ def run(argv: list[str]) -> int:
                        "malloc_trim_threshold": args.malloc_trim,
                        "size_px": args.size, "grains_per_frame": grains, "distinct": len(images),
                        "cases": cases, "ratio": r, "target": TARGET_RATIO, "ok": bool(ok)}
-            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-            Path(args.json).write_text(json.dumps(figures, indent=2, default=float))
-            print(f"figures written to {args.json}", file=out)
+            bu.write_figures(args.json, figures, out)
     finally:
         if not args.workdir:
             shutil.rmtree(root, ignore_errors=True)
@@ -263,10 +261,7 @@ def huge_frame(size_px: int, workers: int, args) -> int:
         print("peak RSS of every process the run started, MiB (the workers segment the frame's tiles between them): "
               + ", ".join(f"{bu.mib(v):.0f}" for v in c["peak_children"]), file=out)
         print(f"{bu.load_text()} at the end", file=out)
-        if args.json:
-            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-            Path(args.json).write_text(json.dumps({"benchmark": "memory-huge", "size_px": size_px,
-                                                   "workers": workers, "case": c}, indent=2, default=float))
+        bu.write_figures(args.json, {"benchmark": "memory-huge", "size_px": size_px, "workers": workers, "case": c})
         if c["returncode"] != 0:
             print(f"  problem: the run exited with {c['returncode']}: {c['stderr']}", file=out)
     finally:

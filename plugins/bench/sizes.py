@@ -32,7 +32,6 @@ smallest per megapixel. ``--check`` makes the exit code 1 when it is missed.
 from __future__ import annotations
 
 import argparse
-import json
 import shutil
 import sys
 import tempfile
@@ -213,11 +212,8 @@ def run(argv: list[str]) -> int:
         ok = ratio <= TARGET_RATIO
         print(f"\n{sizes[-1]} px frame per megapixel: {ratio:.2f}x the {sizes[0]} px frame; target <= "
               f"{TARGET_RATIO}x: {'met' if ok else 'MISSED'}; {bu.load_text()} at the end", file=out)
-        if args.json:
-            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-            Path(args.json).write_text(json.dumps({"benchmark": "sizes", "table": table, "rounds": rounds,
-                                                   "ratio": ratio, "target": TARGET_RATIO}, indent=2,
-                                                  default=float))
+        bu.write_figures(args.json, {"benchmark": "sizes", "table": table, "rounds": rounds, "ratio": ratio,
+                                     "target": TARGET_RATIO})
     finally:
         shutil.rmtree(root, ignore_errors=True)
     return 1 if (args.check and not ok) else 0

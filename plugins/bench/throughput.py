@@ -492,10 +492,7 @@ def run(argv: list[str]) -> int:
                        scaling=scaling, checks=checks,
                        targets=TARGETS, load_end=bu.load_average())
         print(f"{bu.load_text()} at the end", file=out)
-        if args.json:
-            Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-            Path(args.json).write_text(json.dumps(figures, indent=2, default=float))
-            print(f"figures written to {args.json}", file=out)
+        bu.write_figures(args.json, figures, out)
     finally:
         if not args.workdir:
             shutil.rmtree(root, ignore_errors=True)

@@ -186,8 +186,9 @@ def _cmd_ingest(args) -> int:
 @hookimpl
 def grainhabit_add_commands(subparsers):
     p = subparsers.add_parser(
-        "ingest", help="copy TIFF frames into a chunked zarr archive",
-        description="Copy frames of TIFF / OME-TIFF / multi-page files into a chunked, compressed zarr archive "
+        "ingest", help="copy frames of instrument files into a chunked zarr archive",
+        description="Copy the frames of every file a reader opens (TIFF, OME-TIFF, DM3/DM4, EMD, SER, MRC, ...) "
+                    "into a chunked, compressed zarr archive "
                     "with their calibration, source path and content hash. Running it again adds only new or "
                     "changed frames.")
     p.add_argument("paths", nargs="+", metavar="PATH", help="files, folders or glob patterns")
