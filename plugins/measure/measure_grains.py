@@ -131,7 +131,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="measure-grains",
     stage="measure",
-    version="1.0",
+    version="1.1",
     summary="ISO 9276-6 size and shape descriptors in nm from a sub-pixel outline; corner polygon fit.",
     params=(
         Param("contour_window", int, 9, unit="vertices", low=0, high=51,
