@@ -60,10 +60,13 @@ products:
 
 @pytest.fixture(scope="module")
 def written(tmp_path_factory):
-    """An invented store with verdicts, trends, a failed frame and a failed input that named no sample."""
+    """An invented store with verdicts, trends, a failed frame, a QC-flagged frame and a failed input that named no
+    sample."""
     base = tmp_path_factory.mktemp("rep")
     groups, attrs = make_groups(SAMPLES)
     frames = groups["frames"]
+    nfr = frames.sizes["frame"]
+    frames["qc"] = ("frame", text_array(["polarity-uncertain"] + [""] * (nfr - 1)))  # a step's QC flag on frame 0
     phantom = {k: (("frame",), text_array([""]) if frames[k].dtype.kind in "OUT" else
                    np.zeros(1, dtype=frames[k].dtype), frames[k].attrs) for k in frames.data_vars}
     phantom["source"] = (("frame",), text_array([str(base / "incoming" / "unreadable.tif")]), {})
@@ -265,3 +268,10 @@ def test_report_command_judges_a_store_against_a_spec_file(tmp_path, capsys):
     assert args.handler(args) == 2
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and "habit_number_fraction.cubes" in err and "unknown habit" in err
+
+
+def test_frames_flagged_by_qc_are_listed_as_untrusted(written):
+    _, text, _ = _page(written)
+    section = text[text.index("id='frames'"):]
+    section = section[:section.index("<h2", 10)] if "<h2" in section[10:] else section
+    assert "QC: polarity-uncertain" in section and "untrusted" in section

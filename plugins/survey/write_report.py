@@ -383,6 +383,7 @@ def _frames_section(c: _Ctx) -> list[str]:
     edge = np.asarray(c.grains["edge_cut"].values, bool) if "edge_cut" in c.grains else np.zeros(c.g_frame.size, bool)
     per_edge = np.bincount(c.g_frame, weights=edge, minlength=nf)[:nf] if c.g_frame.size else np.zeros(nf)
     notes = _col(c.frames, "notes", nf)
+    qc = _col(c.frames, "qc", nf)
     out = ["<h2 id='frames'>Failed and untrusted frames</h2>"]
     failed = [i for i in range(nf) if c.f_status[i] != "ok"]
     untrusted = []
@@ -396,11 +397,13 @@ def _frames_section(c: _Ctx) -> list[str]:
             why.append(f"{int(per_edge[i])} of {per[i]} grains cut by the frame border")
         if not c.f_sample[i]:
             why.append("no sample name")
+        if qc[i] and not (per[i] == 0 and qc[i] == "no-grains"):
+            why.append(f"QC: {qc[i]}")  # a step could not vouch for its result (frames.qc)
         if why:
             untrusted.append((i, "; ".join(why + ([notes[i]] if notes[i] else []))))
     if not failed and not untrusted:
         out.append(f"<p>All {nf} frames were read and measured; none looks untrusted (no frame without grains, "
-                   f"none with half or more of its grains cut by the border).</p>")
+                   f"none with half or more of its grains cut by the border, none flagged by a step's QC).</p>")
         return out
     out.append("<div class='scroll'><table><tr><th>frame</th><th class='t'>sample</th><th class='t'>state</th>"
                "<th class='t'>file</th><th class='t'>reason</th></tr>")
