@@ -141,28 +141,23 @@ def plan_night(results: str, frames: list, problems: list, transient: dict, stag
     new_entries = []
     counts = {"unchanged": 0, "added": 0, "replaced": 0, "removed": 0, "kept_missing": 0}
 
+    def tally(i, unchanged: bool, make) -> None:
+        """Count tonight's row against stored row ``i`` (None: new) and queue it unless unchanged."""
+        if i is not None and unchanged:
+            counts["unchanged"] += 1
+            return
+        if i is not None:
+            keep[i] = False
+        counts["replaced" if i is not None else "added"] += 1
+        new_entries.append(make())
+
     for path, reason in problems:
         i = row_of.get(path)
-        if i is not None and keys[i] == "" and errors[i] == reason:
-            counts["unchanged"] += 1
-            continue
-        if i is not None:
-            keep[i] = False
-            counts["replaced"] += 1
-        else:
-            counts["added"] += 1
-        new_entries.append(_problem_row(path, reason, failed_result, sample_of))
+        tally(i, i is not None and keys[i] == "" and errors[i] == reason,
+              lambda: _problem_row(path, reason, failed_result, sample_of))
     for f in frames:
         i = row_of.get(f.ref.source)
-        if i is not None and keys[i] == f.key and f.key not in processed and not fresh:
-            counts["unchanged"] += 1
-            continue
-        if i is not None:
-            keep[i] = False
-            counts["replaced"] += 1
-        else:
-            counts["added"] += 1
-        new_entries.append(entry(f))
+        tally(i, i is not None and keys[i] == f.key and f.key not in processed and not fresh, lambda: entry(f))
     gone = []
     for i, s in enumerate(sources):
         if s in listed or s in tonight_problems or not keep[i]:
