@@ -64,6 +64,8 @@ __all__ = [
     "to_uint16",
     "grain_outline",
     "touching_label_pairs",
+    "Placement",
+    "place_grains",
     "bench_render",
     "add_artefacts",
 ]
@@ -109,6 +111,11 @@ class GrainSpec:
         Larger is in front where grains overlap.
     shape_seed : int
         Seed of the random outline of an ``'irregular'`` grain.
+    contrast_scale : float
+        In (0, 1]: the fraction of its full contrast that the grain shows
+        (1 for a normal grain; below 1 for a faint, electron-transparent thin
+        plate). ``'bright'``: the grain is laid over the background with this
+        opacity; ``'dark'``: its loss of transmitted intensity is scaled by it.
     """
 
     habit: str
@@ -122,6 +129,7 @@ class GrainSpec:
     aspect: float = 5.0
     z_order: int = 0
     shape_seed: int = 0
+    contrast_scale: float = 1.0
 
 
 @dataclass
@@ -142,6 +150,12 @@ class SyntheticField:
         'bright' or 'dark'.
     touching_pairs : list of tuple of int
         Sorted 1-based label pairs that share a boundary in ``labels``.
+    debris_rc : ndarray of int, shape (k, 2)
+        (row, col) centres of the debris specks added by
+        :func:`add_artefacts` (empty otherwise).
+    streaks : ndarray of int, shape (k, 3)
+        (first row, rows, start column) of each charging streak added by
+        :func:`add_artefacts` (empty otherwise).
     """
 
     image: np.ndarray
@@ -150,6 +164,8 @@ class SyntheticField:
     pixel_size_nm: float
     contrast: str
     touching_pairs: list = field(default_factory=list)
+    debris_rc: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=int))
+    streaks: np.ndarray = field(default_factory=lambda: np.zeros((0, 3), dtype=int))
 
 
 # ------------------------------------------------------------------ validation
@@ -169,6 +185,8 @@ def _check_spec(g: GrainSpec) -> None:
                              "(cube <= 1.5 < cuboctahedron < 3 <= octahedron)")
         if g.face not in ("100", "111", "110"):
             raise ValueError(f"face must be '100', '111' or '110', got {g.face!r}")
+    if not (np.isfinite(g.contrast_scale) and 0.0 < g.contrast_scale <= 1.0):
+        raise ValueError(f"contrast_scale must be in (0, 1], got {g.contrast_scale!r}")
     if g.habit.startswith("tabular"):
         if not (0.0 <= g.edge_ratio <= 1.0):
             raise ValueError(f"edge_ratio must be in [0, 1], got {g.edge_ratio!r}")
@@ -526,10 +544,11 @@ def render_field(grains, shape, pixel_size_nm, contrast="bright", *, gradient=0.
         cov = cov.reshape(h, w)
         val = val.reshape(h, w)
         block = img[r0:r1, c0:c1]
+        s = float(g.contrast_scale)
         if bright:
-            img[r0:r1, c0:c1] = block * (1.0 - cov) + val
+            img[r0:r1, c0:c1] = block * (1.0 - s * cov) + s * val
         else:
-            img[r0:r1, c0:c1] = block * (1.0 + val)
+            img[r0:r1, c0:c1] = block * (1.0 + s * val)
 
     rng = np.random.default_rng(seed)
     if gradient > 0:
@@ -550,7 +569,8 @@ def render_field(grains, shape, pixel_size_nm, contrast="bright", *, gradient=0.
 
 
 def add_artefacts(field: SyntheticField, seed: int = 0, n_streaks: int = 3, streak_amplitude: float = 0.15,
-                  n_debris: int = 40, debris_amplitude: float = 0.5) -> SyntheticField:
+                  n_debris: int = 40, debris_amplitude: float = 0.5, avoid_grains: bool = False
+                  ) -> SyntheticField:
     """Add charging streaks and debris specks to a rendered field; the truth labels stay as they were.
 
     Parameters
@@ -571,15 +591,21 @@ def add_artefacts(field: SyntheticField, seed: int = 0, n_streaks: int = 3, stre
         with the grains' contrast.
     debris_amplitude : float
         Peak of a speck relative to a grain's contrast.
+    avoid_grains : bool
+        Put specks only where no grain lies within 4 pixels of the speck's
+        centre, so that a speck is always background in the truth (positions
+        are redrawn, at most 50 times per speck, then the speck is left out).
 
     Returns
     -------
     SyntheticField
-        A copy with the new image.
+        A copy with the new image, ``debris_rc`` the speck centres and
+        ``streaks`` the streaks.
     """
     rng = np.random.default_rng(seed + 7919)
     img = field.image.astype(np.float64).copy()
     rows, cols = img.shape
+    streaks = []
     for _ in range(int(n_streaks)):
         r0 = int(rng.integers(0, rows))
         h = int(rng.integers(1, 4))
@@ -587,15 +613,27 @@ def add_artefacts(field: SyntheticField, seed: int = 0, n_streaks: int = 3, stre
         x = np.arange(cols) - x0
         prof = np.where(x >= 0, streak_amplitude * np.exp(-np.clip(x, 0, None) / (cols / 4.0)), 0.0)
         img[r0:r0 + h] += prof[None, :]
+        streaks.append((r0, h, x0))
     sign = 1.0 if field.contrast == "bright" else -1.0
     level = 0.5 if field.contrast == "bright" else 0.6
     yy, xx = np.mgrid[-3:4, -3:4]
+    near = ndimage.binary_dilation(field.labels > 0, np.ones((9, 9), bool)) if avoid_grains else None
+    debris = []
     for _ in range(int(n_debris)):
         r, c = int(rng.integers(3, rows - 3)), int(rng.integers(3, cols - 3))
+        if near is not None:
+            for _ in range(50):
+                if not near[r, c]:
+                    break
+                r, c = int(rng.integers(3, rows - 3)), int(rng.integers(3, cols - 3))
+            else:
+                continue
         sig = rng.uniform(0.4, 0.8)
         img[r - 3:r + 4, c - 3:c + 4] += sign * debris_amplitude * level * np.exp(-(yy ** 2 + xx ** 2) / (2 * sig ** 2))
+        debris.append((r, c))
     img = np.clip(img, 0.0, 1.0).astype(np.float32)
-    return replace(field, image=img)
+    return replace(field, image=img, debris_rc=np.array(debris, dtype=int).reshape(-1, 2),
+                   streaks=np.array(streaks, dtype=int).reshape(-1, 3))
 
 
 # ---------------------------------------------------------------- random fields
@@ -648,6 +686,31 @@ def _hull(points: np.ndarray) -> np.ndarray:
     return points[ConvexHull(points).vertices]
 
 
+@dataclass
+class Placement:
+    """Grains placed by :func:`place_grains` and how they were grouped.
+
+    Attributes
+    ----------
+    grains : list of GrainSpec
+        Label i + 1 of a rendered field is ``grains[i]``.
+    pairs : list of tuple of int
+        Sorted 1-based label pairs placed in contact: each grain of a group
+        with the grain it was set against (touching groups and overlapping
+        pairs alike).
+    groups : list of tuple of int
+        Sorted 1-based labels of each touching group of two or more grains.
+    overlaps : list of tuple of int
+        ``(back, front)`` 1-based labels of each pair placed so that the front
+        grain lies partly over the back one.
+    """
+
+    grains: list
+    pairs: list
+    groups: list = field(default_factory=list)
+    overlaps: list = field(default_factory=list)
+
+
 def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
                   touching_fraction=0.15, seed=0, margin_nm=None):
     """Random grains placed in a field, mostly apart, some as touching pairs.
@@ -683,20 +746,82 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
 
     Notes
     -----
-    Grains are placed one by one at random free spots (random sequential
-    addition, largest first); isolated grains keep a gap of at least 3 pixels
-    between the convex hulls of their outlines. The second grain of a pair sits at ``f (r1 + r2)``, ``f`` uniform
-    in [0.7, 0.95] and ``r = ECD / 2``, along a random direction; where the
-    outlines would not meet there, the distance is cut to ``f'`` in
-    [0.85, 0.95] of the contact distance. The smaller grain of a pair is in
-    front. Alpha ranges: cube [0.6, 1.4], cuboctahedron [1.6, 2.9], octahedron
-    [3.0, 3.6]; resting face {100} for cubes, {111} for octahedra, either for
+    The same as :func:`place_grains` with its default groups (pairs only),
+    which describes the placement.
+    """
+    p = place_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=ecd_gsd,
+                     touching_fraction=touching_fraction, seed=seed, margin_nm=margin_nm)
+    return p.grains, p.pairs
+
+
+def _contact_distance(a: np.ndarray, b: np.ndarray, u: np.ndarray) -> float:
+    """Centre distance along unit vector ``u`` at which convex hulls a, b (about
+    their centres) just meet (bisection, 30 halvings)."""
+    lo_d = 0.0
+    hi_d = float(np.linalg.norm(a, axis=1).max() + np.linalg.norm(b, axis=1).max())
+    for _ in range(30):
+        mid = 0.5 * (lo_d + hi_d)
+        if _convex_separated(a, b + mid * u, 0.0):
+            hi_d = mid
+        else:
+            lo_d = mid
+    return lo_d
+
+
+def place_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15, touching_fraction=0.15,
+                 seed=0, margin_nm=None, *, group_sizes=(2,), overlap_fraction=0.0,
+                 extra_grains=()) -> Placement:
+    """Random grains placed in a field: apart, in touching groups, or lying partly over another.
+
+    Parameters
+    ----------
+    n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd, seed, margin_nm
+        As in :func:`random_grains`.
+    touching_fraction : float
+        About this fraction of the ``n`` random grains is placed in touching
+        groups, in [0, 1].
+    group_sizes : tuple of int
+        Sizes (>= 2) of the touching groups, drawn with equal odds while
+        grains for groups are left (a last group takes a size that fits).
+    overlap_fraction : float
+        About this fraction of the ``n`` random grains is placed as pairs in
+        which the smaller grain lies partly over the larger, in [0, 1].
+    extra_grains : sequence of GrainSpec
+        Given grains (their position is ignored) placed apart like isolated
+        grains, after the ``n`` random ones in the draw; e.g. faint thin plates.
+
+    Returns
+    -------
+    Placement
+
+    Notes
+    -----
+    Grains are placed unit by unit (a single grain, a group or a pair) at
+    random free spots (random sequential addition, largest unit first);
+    units keep a gap of at least 3 pixels between the convex hulls of their
+    outlines. Distances are along a random direction as fractions ``f`` of
+    the contact distance of the two convex hulls (where they just meet):
+
+    - pairs of the default ``group_sizes=(2,)`` with no overlaps (the
+      original scheme): ``f (r1 + r2)``, ``f`` uniform in [0.7, 0.95] and
+      ``r = ECD / 2``, cut to [0.85, 0.95] of the contact distance where the
+      outlines would not meet;
+    - touching groups otherwise: each next grain is set against a random
+      grain of the group at ``f`` in [0.85, 0.95], and must not overlap the
+      other grains of the group (20 tries; else it is placed alone);
+    - overlapping pairs: ``f`` in [0.6, 0.8] (for two equal discs the front
+      one hides 14-35 % of the back one's area, lens-area geometry).
+
+    The smaller grain of two in contact is in front (``z_order``). Alpha
+    ranges: cube [0.6, 1.4], cuboctahedron [1.6, 2.9], octahedron [3.0, 3.6];
+    resting face {100} for cubes, {111} for octahedra, either for
     cuboctahedra.
 
     Raises
     ------
     ValueError
-        If the grains cannot be placed (field too crowded).
+        If the grains cannot be placed (field too crowded) or an argument is
+        out of range.
     """
     rows, cols = _check_shape(shape)
     px = _check_px(pixel_size_nm)
@@ -717,6 +842,17 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
         raise ValueError(f"ecd_gsd must be >= 1, got {ecd_gsd!r}")
     if not (0 <= touching_fraction <= 1):
         raise ValueError(f"touching_fraction must be in [0, 1], got {touching_fraction!r}")
+    if not (0 <= overlap_fraction <= 1):
+        raise ValueError(f"overlap_fraction must be in [0, 1], got {overlap_fraction!r}")
+    try:
+        group_sizes = tuple(int(k) for k in group_sizes)
+    except (TypeError, ValueError):
+        raise ValueError(f"group_sizes must be integers >= 2, got {group_sizes!r}") from None
+    if not group_sizes or min(group_sizes) < 2:
+        raise ValueError(f"group_sizes must be integers >= 2, got {group_sizes!r}")
+    extra = list(extra_grains)
+    for e in extra:
+        _check_spec(e)
     margin = 3 * px if margin_nm is None else float(margin_nm)
     gap = 3 * px
     width, height = cols * px, rows * px
@@ -730,24 +866,65 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
         h = names[hab[i]]
         specs.append(GrainSpec(habit=h, ecd_nm=float(ecd[i]), x_nm=0.0, y_nm=0.0,
                                rotation_deg=float(rng.uniform(0, 360)), **_habit_params(h, rng)))
+    specs += [replace(e, x_nm=0.0, y_nm=0.0) for e in extra]
+    n_all = len(specs)
     # convex hulls of the outlines about each centre, in frame orientation (y down)
     hulls = []
     for sp in specs:
         o = _make_body(sp).outline
         hulls.append(_hull(np.column_stack([o[:, 0], -o[:, 1]])))
-    radius = np.array([np.linalg.norm(h, axis=1).max() for h in hulls])     # circumscribed
-    inradius = np.array([_inradius(h) for h in hulls])                      # inscribed
-    lo_xy = np.array([h.min(axis=0) for h in hulls])
-    hi_xy = np.array([h.max(axis=0) for h in hulls])
+    radius = np.array([np.linalg.norm(h, axis=1).max() for h in hulls]) if hulls else np.zeros(0)
+    inradius = np.array([_inradius(h) for h in hulls]) if hulls else np.zeros(0)
+    lo_xy = np.array([h.min(axis=0) for h in hulls]).reshape(-1, 2)
+    hi_xy = np.array([h.max(axis=0) for h in hulls]).reshape(-1, 2)
 
-    n_pairs = min(int(round(touching_fraction * n / 2)), n // 2)
+    legacy = group_sizes == (2,) and overlap_fraction == 0
     idx = rng.permutation(n)
-    units = [tuple(idx[2 * k:2 * k + 2]) for k in range(n_pairs)] + [(i,) for i in idx[2 * n_pairs:]]
-    units.sort(key=lambda u: -sum(radius[list(u)]))                 # big first packs better
+    # a unit: (members, kind, offsets of the members from the first one or None, contact edges)
+    if legacy:
+        n_pairs = min(int(round(touching_fraction * n / 2)), n // 2)
+        units = [(tuple(idx[2 * k:2 * k + 2]), "pair", None, []) for k in range(n_pairs)]
+        units += [((i,), "single", [np.zeros(2)], []) for i in idx[2 * n_pairs:]]
+    else:
+        units = []
+        n_over = min(int(round(overlap_fraction * n / 2)), n // 2)
+        chunks = [(tuple(idx[2 * k:2 * k + 2]), "overlap") for k in range(n_over)]
+        k = 2 * n_over
+        left = min(int(round(touching_fraction * n)), n - k)
+        while True:
+            fits = [g for g in group_sizes if g <= left]
+            if not fits:
+                break
+            size = int(fits[int(rng.integers(len(fits)))])
+            chunks.append((tuple(idx[k:k + size]), "group"))
+            k += size
+            left -= size
+        for members, kind in chunks:
+            lo_f, hi_f = (0.6, 0.8) if kind == "overlap" else (0.85, 0.95)
+            off = {members[0]: np.zeros(2)}
+            edges, alone = [], []
+            for m in members[1:]:
+                for _ in range(20):
+                    anchor = list(off)[int(rng.integers(len(off)))]
+                    ang = rng.uniform(0, 2 * np.pi)
+                    u = np.array([math.cos(ang), math.sin(ang)])
+                    o = off[anchor] + rng.uniform(lo_f, hi_f) * _contact_distance(hulls[anchor], hulls[m], u) * u
+                    if all(_convex_separated(hulls[j] + off[j], hulls[m] + o, 0.0) for j in off if j != anchor):
+                        off[m] = o
+                        edges.append((anchor, m))
+                        break
+                else:
+                    alone.append(m)
+            kept = tuple(off)
+            units.append((kept, kind if len(kept) > 1 else "single", [off[j] for j in kept], edges))
+            units += [((m,), "single", [np.zeros(2)], []) for m in alone]
+        units += [((i,), "single", [np.zeros(2)], []) for i in idx[k:]]
+    units += [((n + j,), "single", [np.zeros(2)], []) for j in range(len(extra))]
+    units.sort(key=lambda u: -sum(radius[list(u[0])]))                 # big first packs better
 
     placed: list[int] = []
-    centre = np.zeros((n, 2))
-    pairs = []
+    centre = np.zeros((n_all, 2))
+    done = []
     batch = 128
 
     def in_bounds(xy, k):
@@ -770,24 +947,18 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
         return all(_convex_separated(hulls[k] + c, hulls[pk[j]] + pxy[j], gap)
                    for j in np.flatnonzero(near_row))
 
-    for unit in units:
-        a = unit[0]
-        offset = np.zeros(2)
-        if len(unit) == 2:
-            b = unit[1]
+    for members, kind, offs, edges in units:
+        a = members[0]
+        if kind == "pair":                            # the original pair scheme, draw for draw
+            b = members[1]
             ang = rng.uniform(0, 2 * np.pi)
             u = np.array([math.cos(ang), math.sin(ang)])
             dist = rng.uniform(0.7, 0.95) * 0.5 * (specs[a].ecd_nm + specs[b].ecd_nm)
-            lo_d, hi_d = 0.0, radius[a] + radius[b]
-            for _ in range(30):                       # contact distance along u
-                mid = 0.5 * (lo_d + hi_d)
-                if _convex_separated(hulls[a], hulls[b] + mid * u, 0.0):
-                    hi_d = mid
-                else:
-                    lo_d = mid
+            lo_d = _contact_distance(hulls[a], hulls[b], u)
             if dist > 0.95 * lo_d:
                 dist = rng.uniform(0.85, 0.95) * lo_d
-            offset = dist * u
+            offs = [np.zeros(2), dist * u]
+            edges = [(a, b)]
         pk = np.array(placed, dtype=int)
         pxy = centre[pk]
         found = None
@@ -796,47 +967,55 @@ def random_grains(n, shape, pixel_size_nm, habits, ecd_median_nm, ecd_gsd=1.15,
         if np.all(lo <= hi):
             for _ in range(40):
                 cand = rng.uniform(lo, hi, size=(batch, 2))
-                ok = in_bounds(cand, a)
-                if len(unit) == 2:
-                    ok &= in_bounds(cand + offset, unit[1])
+                ok = np.ones(len(cand), bool)
+                for m, o in zip(members, offs):
+                    ok &= in_bounds(cand + o, m)
                 cand = cand[ok]
-                hit_a, near_a = screen(cand, a, pxy, pk)
-                if len(unit) == 2:
-                    hit_b, near_b = screen(cand + offset, unit[1], pxy, pk)
-                    hit_a = hit_a | hit_b
-                for c in np.flatnonzero(~hit_a):          # first candidate that is clear
-                    if not exact_clear(cand[c], a, near_a[c], pxy, pk):
-                        continue
-                    if len(unit) == 2 and not exact_clear(cand[c] + offset, unit[1], near_b[c],
-                                                          pxy, pk):
-                        continue
-                    found = cand[c]
-                    break
+                tests = [screen(cand + o, m, pxy, pk) for m, o in zip(members, offs)]
+                hit = np.any([t[0] for t in tests], axis=0)
+                for c in np.flatnonzero(~hit):          # first candidate that is clear
+                    if all(exact_clear(cand[c] + o, m, t[1][c], pxy, pk)
+                           for m, o, t in zip(members, offs, tests)):
+                        found = cand[c]
+                        break
                 if found is not None:
                     break
         if found is None:
-            raise ValueError(f"could not place {n} grains of median ECD {ecd_median_nm} nm in a "
+            raise ValueError(f"could not place {n_all} grains of median ECD {ecd_median_nm} nm in a "
                              f"{rows}x{cols} field at {px} nm/px; use fewer or smaller grains")
-        centre[a] = found
-        placed.append(a)
-        if len(unit) == 2:
-            centre[unit[1]] = found + offset
-            placed.append(unit[1])
-            pairs.append(unit)
+        for m, o in zip(members, offs):
+            centre[m] = found + o
+            placed.append(m)
+        done.append((members, kind, edges))
 
-    perm = rng.permutation(n)                 # label order independent of placement order
-    new_index = np.empty(n, dtype=int)
-    new_index[perm] = np.arange(n)
+    perm = rng.permutation(n_all)             # label order independent of placement order
+    new_index = np.empty(n_all, dtype=int)
+    new_index[perm] = np.arange(n_all)
     out = []
     for i in perm:
         out.append(replace(specs[i], x_nm=float(centre[i, 0]), y_nm=float(centre[i, 1])))
-    label_pairs = []
-    for a, b in pairs:
-        front = a if specs[a].ecd_nm <= specs[b].ecd_nm else b
-        out[new_index[front]].z_order = 1
-        la, lb = sorted((int(new_index[a]) + 1, int(new_index[b]) + 1))
-        label_pairs.append((la, lb))
-    return out, sorted(label_pairs)
+
+    def lab(i):
+        return int(new_index[i]) + 1
+
+    label_pairs, groups, overlaps = [], [], []
+    for members, kind, edges in done:
+        if kind == "single":
+            continue
+        if kind == "pair":
+            a, b = members
+            front = a if specs[a].ecd_nm <= specs[b].ecd_nm else b
+            out[new_index[front]].z_order = 1
+        else:                                 # smaller grains in front
+            for rank, m in enumerate(sorted(members, key=lambda j: (-specs[j].ecd_nm, j))):
+                out[new_index[m]].z_order = rank
+        label_pairs += [tuple(sorted((lab(p), lab(q)))) for p, q in edges]
+        if kind == "overlap":
+            back, front = sorted(members, key=lambda j: (-specs[j].ecd_nm, j))
+            overlaps.append((lab(back), lab(front)))
+        else:
+            groups.append(tuple(sorted(lab(m) for m in members)))
+    return Placement(grains=out, pairs=sorted(label_pairs), groups=sorted(groups), overlaps=sorted(overlaps))
 
 
 def make_field(n, shape, pixel_size_nm, habits, ecd_median_nm, contrast="bright", seed=0, **kw
