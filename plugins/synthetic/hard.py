@@ -140,7 +140,8 @@ def hard_field(kind: str, index: int, *, size: int = 768, pixel_size_nm: float =
     Parameters
     ----------
     kind : {'bright', 'dark', 'photo'}
-        Contrast (``'photo'``: :func:`photo_field`, which ignores the grain arguments).
+        Contrast (``'photo'``: :func:`photo_field` with objects of median ECD ``45 size / 768`` px;
+        the grain arguments are not used).
     index : int
         Frame number within the survey (>= 0): sets the seed, the defocused frames and the panel letter.
     size : int
@@ -163,7 +164,7 @@ def hard_field(kind: str, index: int, *, size: int = 768, pixel_size_nm: float =
     if index < 0:
         raise ValueError(f"index must be >= 0, got {index!r}")
     if kind == "photo":
-        return photo_field(index, size=size, seed=seed)
+        return photo_field(index, size=size, ecd_px=45.0 * size / 768, seed=seed)
     fseed = int(seed) + index
     rng = np.random.default_rng((fseed, 0x4A2D))
     plates = faint_plates(max(1, int(round(FAINT_FRACTION * n_grains))), ecd_nm, rng)
