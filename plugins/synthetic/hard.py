@@ -9,8 +9,8 @@ Three kinds of frame (invented test data, not measurements of any sample):
     - 30 % of the grains in touching groups of 2, 3 or 4 (:data:`GROUP_FRACTION`, :data:`GROUP_SIZES`);
     - 5 % of the grains lying partly over another (:data:`OVERLAP_FRACTION` of the grains in such
       pairs, the smaller one in front);
-    - faint thin plates (:data:`FAINT_FRACTION` of the grains; tabular, 1.3-2 times the median
-      ECD, ECD/thickness 25-50, showing 30-50 % of a normal grain's contrast);
+    - faint thin plates (:data:`FAINT_FRACTION` of the grains; tabular, 1.3-2.5 times the median
+      ECD, ECD/thickness 25-50, showing 15-50 % of a normal grain's contrast);
     - half the signal-to-noise ratio (:data:`NOISE_FACTOR` times the noise amplitude);
     - one frame in four defocused (:data:`DEFOCUS_EVERY`, blur :data:`DEFOCUS_FACTOR` times larger);
     - charging streaks and debris specks under 3 px on the background
@@ -20,7 +20,7 @@ Three kinds of frame (invented test data, not measurements of any sample):
 
 ``'photo'``
     A photograph-like frame (:func:`photo_field`): 24 well-separated round objects of low contrast
-    (6-10 % of the local level) under uneven illumination (vignetting, a ramp and broad patches,
+    (4-10 % of the local level) under uneven illumination (vignetting, a ramp and broad patches,
     together far larger than the objects' contrast), blur, noise, 8-bit levels, and the same
     annotations.
 
@@ -108,18 +108,18 @@ def faint_plates(k: int, ecd_median_nm: float, rng: np.random.Generator) -> list
     -------
     list of GrainSpec
         Hexagonal plates (two in three; edge ratio 0.4-1) and triangular ones
-        (edge ratio 0-0.08), ECD 1.3-2 times ``ecd_median_nm``, ECD/thickness
-        25-50, ``contrast_scale`` 0.3-0.5 (choices of this generator).
+        (edge ratio 0-0.08), ECD 1.3-2.5 times ``ecd_median_nm``, ECD/thickness
+        25-50, ``contrast_scale`` 0.15-0.5 (choices of this generator).
     """
     out = []
     for _ in range(int(k)):
         hexagon = rng.random() < 2 / 3
         out.append(rd.GrainSpec(
             habit="tabular_hexagon" if hexagon else "tabular_triangle",
-            ecd_nm=float(ecd_median_nm * rng.uniform(1.3, 2.0)), x_nm=0.0, y_nm=0.0,
+            ecd_nm=float(ecd_median_nm * rng.uniform(1.3, 2.5)), x_nm=0.0, y_nm=0.0,
             rotation_deg=float(rng.uniform(0, 360)),
             edge_ratio=float(rng.uniform(0.4, 1.0) if hexagon else rng.uniform(0.0, 0.08)),
-            aspect=float(rng.uniform(25.0, 50.0)), contrast_scale=float(rng.uniform(0.3, 0.5))))
+            aspect=float(rng.uniform(25.0, 50.0)), contrast_scale=float(rng.uniform(0.15, 0.5))))
     return out
 
 
@@ -232,9 +232,10 @@ def photo_field(index: int, *, size: int = 768, n_objects: int = 24, ecd_px: flo
     An object is an ellipse of axis ratio 0.85-1 and area ``pi ECD^2 / 4``
     (ellipse area ``pi a b``, handbook geometry); two objects' centres are
     at least 0.75 times the sum of their ECDs apart (a clear gap of half the
-    mean ECD at least), and an object keeps 10 px from the border (an object
-    that finds no such place in 2000 tries is left out). It changes the local level by ``s c (0.7 + 0.3 sqrt(1 - rho^2))``
-    (a dome-like shading; ``rho`` the elliptical radius, ``c`` 6-10 %, ``s``
+    mean ECD at least), and an object's centre keeps 10 px plus half its ECD
+    from the border (an object that finds no such place in 2000 tries is left
+    out). It changes the local level by ``s c (0.7 + 0.3 sqrt(1 - rho^2))``
+    (a dome-like shading; ``rho`` the elliptical radius, ``c`` 4-10 %, ``s``
     darker or lighter, once per frame). Then blur 1.2 px, Gaussian noise of
     sd 0.012 and 8-bit levels.
     """
@@ -255,7 +256,7 @@ def photo_field(index: int, *, size: int = 768, n_objects: int = 24, ecd_px: flo
                 break
     light = _illumination(rows, cols, rng)
     sign = -1.0 if rng.random() < 0.5 else 1.0
-    c_amp = rng.uniform(0.06, 0.10)
+    c_amp = rng.uniform(0.04, 0.10)
     change = np.zeros((rows, cols))
     labels = np.zeros((rows, cols), np.int32)
     grains = []
