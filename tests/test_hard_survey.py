@@ -42,6 +42,19 @@ def test_faint_regular_hexagon_area_and_contrast():
         np.testing.assert_allclose(b.image[core] - bg, 0.4 * (a.image[core] - bg), atol=1e-5)
 
 
+def test_faint_square_cube_area():
+    # a cube on a {100} face seen from above is a square of side s: area s^2, diagonal s sqrt(2)
+    # (handbook geometry); ECD^2 pi / 4 = s^2 (ISO 9276-6)
+    g = GrainSpec("cube", 360.0, 400.0, 400.0, alpha=1.0, rotation_deg=21.0, contrast_scale=0.25)
+    o = sy.grain_outline(g)
+    side = np.linalg.norm(np.roll(o, -1, axis=0) - o, axis=1)
+    diag = np.linalg.norm(o[2] - o[0])
+    assert len(o) == 4 and np.ptp(side) < 1e-6 * side.mean() and diag == pytest.approx(side[0] * math.sqrt(2))
+    for contrast in ("bright", "dark"):
+        f = sy.render_field([g], (160, 160), PX, contrast, gradient=0, blur_px=0, noise=0)
+        assert np.count_nonzero(f.labels) == pytest.approx(side[0] ** 2 / PX ** 2, rel=0.02)
+
+
 def test_faint_plate_transmission_follows_exp_mu_t():
     # bright-field transmission through a plate of thickness t: (1 - loss) exp(-mu t) of the beam
     # (mass-thickness contrast, Williams and Carter, Transmission Electron Microscopy, 2nd ed., 2009)

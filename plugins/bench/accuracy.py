@@ -259,7 +259,8 @@ def score_hard_frame(hf, found) -> dict:
         {kind: [rejected, n]}; ``extras`` {cause: count}; the habit ``confusion`` (rows truth,
         columns found, order of :data:`HABITS`); alpha errors ``alpha_err_cubo`` (cuboctahedra)
         and ``alpha_err_poly`` (cubes, cuboctahedra, octahedra, truth clipped to [1, 3]) of grains
-        whose alpha is determined; ``ecd_truth_nm`` and ``ecd_found_nm`` for the COV; ``qc``
+        whose alpha is determined; ``ecd_truth_nm``, ``ecd_found_nm`` and ``ecd_matched_nm`` (found
+        ECD of matched grains) for the COV; ``qc``
         1 if the chain flagged the frame (a note ``"<step>: qc <code>: ..."``) and ``qc_codes``
         {code: 1}.
 
@@ -365,14 +366,18 @@ def score_hard_frame(hf, found) -> dict:
     out["extras"] = extras
 
     conf = np.zeros((len(HABITS), len(HABITS)), int)
-    err_cubo, err_poly, ecd_found = [], [], []
+    err_cubo, err_poly, ecd_found, ecd_matched = [], [], [], []
     if found is not None and found.grains and "label" in found.grains:
         g = found.grains
         row = {int(v): i for i, v in enumerate(np.asarray(g["label"]))}
         edge = np.asarray(g.get("edge_cut", np.zeros(len(row), bool)), dtype=bool)
         for t, p in matched.items():
             i = row.get(p)
-            if t in t_edge or i is None or edge[i] or "habit" not in g:
+            if t in t_edge or i is None or edge[i]:
+                continue
+            if "ecd_nm" in g and np.isfinite(float(g["ecd_nm"][i])):
+                ecd_matched.append(float(g["ecd_nm"][i]))
+            if "habit" not in g:
                 continue
             spec = f.grains[t - 1]
             conf[HABITS.index(spec.habit), HABITS.index(str(g["habit"][i]))] += 1
@@ -391,6 +396,7 @@ def score_hard_frame(hf, found) -> dict:
     keep = [t for t in range(1, len(at)) if t not in t_edge and at[t] > 0]
     out["ecd_truth_nm"] = list(np.sqrt(4 * at[keep] / np.pi) * f.pixel_size_nm)
     out["ecd_found_nm"] = ecd_found
+    out["ecd_matched_nm"] = ecd_matched
     codes = set()
     for note in (found.notes if found is not None else ()):
         codes.update(re.findall(r"\bqc ([a-z][a-z-]*)", note))
@@ -431,7 +437,9 @@ def summarise_hard(tot: dict) -> dict:
     dict
         ``recall``, ``precision``, ``ecd_err_pct`` (median), ``habit_accuracy``,
         ``alpha_mae_cubo``, ``alpha_mae_poly``, ``cov_truth_pct``, ``cov_found_pct``,
-        ``cov_err_pp`` (found minus truth, percentage points) and the counts.
+        ``cov_err_pp`` (found minus truth, percentage points), ``cov_matched_pct`` (the found
+        ECDs of matched grains alone: the share of the error that false grains do not cause)
+        and the counts.
     """
     from grainhabit.plugins.survey.statistics import mean_sd_cov
 
@@ -439,6 +447,7 @@ def summarise_hard(tot: dict) -> dict:
     n_conf = int(conf.sum()) if conf is not None else 0
     cov_t = mean_sd_cov(tot["ecd_truth_nm"])[2] if len(tot.get("ecd_truth_nm", [])) > 1 else float("nan")
     cov_f = mean_sd_cov(tot["ecd_found_nm"])[2] if len(tot.get("ecd_found_nm", [])) > 1 else float("nan")
+    cov_m = mean_sd_cov(tot["ecd_matched_nm"])[2] if len(tot.get("ecd_matched_nm", [])) > 1 else float("nan")
     return {
         "recall": tot["tp"] / max(tot["n_truth"], 1),
         "precision": tot["tp_pred"] / max(tot["n_pred"], 1),
@@ -448,6 +457,7 @@ def summarise_hard(tot: dict) -> dict:
         "alpha_mae_poly": float(np.mean(tot["alpha_err_poly"])) if tot.get("alpha_err_poly") else float("nan"),
         "n_alpha_cubo": len(tot.get("alpha_err_cubo", [])), "n_alpha_poly": len(tot.get("alpha_err_poly", [])),
         "cov_truth_pct": cov_t, "cov_found_pct": cov_f, "cov_err_pp": cov_f - cov_t,
+        "cov_matched_pct": cov_m,
         "n_truth": tot["n_truth"], "n_pred": tot["n_pred"], "n_habit": n_conf,
         "groups": tot.get("groups", {}), "overlaps": tot.get("overlaps", [0, 0]),
         "faint": tot.get("faint", {}), "faint_by_contrast": tot.get("faint_by_contrast", {}),
@@ -548,7 +558,8 @@ def format_hard(kind: str, r: dict) -> str:
            f"determined), all polyhedra {r['alpha_mae_poly']:.3f} ({r['n_alpha_poly']}; truth clipped to "
            "[1, 3])" if r["n_alpha_poly"] else ""),
         f"  COV of ECD (sample = the {kind} frames): truth {r['cov_truth_pct']:.1f} %, found "
-        f"{r['cov_found_pct']:.1f} %, error {r['cov_err_pp']:+.1f} percentage points",
+        f"{r['cov_found_pct']:.1f} %, error {r['cov_err_pp']:+.1f} percentage points (matched grains alone: "
+        f"{r['cov_matched_pct']:.1f} %)",
     ]
     if r["n_habit"]:
         lines += ["  " + ln for ln in format_confusion(np.asarray(r["confusion"])).splitlines()]
