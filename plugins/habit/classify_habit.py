@@ -45,7 +45,12 @@ Decision
    evidence of its truncation, i.e. neither end member fits within
    ``tolerance`` (:func:`engine.polyhedral_class`). The same rule holds in
    both contrasts: a flat square is a cube whether it is bright on dark or
-   dark on bright.
+   dark on bright. An octahedron that a truncated body fits as well is only
+   bounded (alpha NaN, ``alpha_lo`` below 3): its ``habit_score`` is at most
+   0.5 and ``habit_note`` gives the largest alpha whose truncation the
+   outline of a grain of its size could show
+   (:func:`engine.resolvable_alpha`: about 2.5 at 40 px and 2.7 at 80 px on
+   {111}); above it a cuboctahedron cannot be told from an octahedron.
 
 A grain cut from a touching neighbour (``split``) whose cut outline fits
 nothing is judged by the outline its true edges imply: the smallest
@@ -91,7 +96,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.0",
+    version="2.1",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -342,6 +347,14 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         # a featureless hexagon: a flat plate (an octahedron shows its facets)
         return "tabular_hexagon", flat_score, cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
+    cls = en.class_scores(fit, lib)
+    if habit == "octahedron" and cls[1] <= cls[2] + p["tolerance"]:
+        # a truncated body fits as well: say how much truncation this outline could show
+        limit = en.resolvable_alpha(lib, fit.face, match.tau, match.level, p["tolerance"])
+        ecd_px = math.sqrt(4.0 * match.area / math.pi) / pixel_scale
+        cols["habit_note"] = (f"octahedron or a cuboctahedron of alpha > {limit:.2f}: the outline of a "
+                              f"{ecd_px:.0f} px grain on {{{fit.face}}} resolves no truncation above that")
+        share = min(share, 0.5)
     return habit, share, cols, fit
 
 

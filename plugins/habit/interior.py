@@ -230,6 +230,12 @@ def interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0,
 FAR_HEIGHT = 1e6
 
 
+def _facet_sets():
+    kmin, kmax = TILT_GAIN_RANGE
+    return (_active_set(6), _active_set(6, ((0, 0.0), (1, 0.0))), _active_set(6, tied=(0, 1, kmin)),
+            _active_set(6, tied=(0, 1, kmax)))
+
+
 def face_planes(body, rotation, upward: bool):
     """Height gradients (k, 2) and origin heights (k,) of the up- or downward face planes."""
     nl = body.face_normals @ np.asarray(rotation).T
@@ -238,8 +244,32 @@ def face_planes(body, rotation, upward: bool):
     return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
 
 
-def _solve_fixed(nm, rhs, vv, fixed):
-    """Least squares with some unknowns held at given values, for c small systems at once.
+def _active_set(k, fixed=(), tied=None):
+    """(T, t0) of an active set over k unknowns: theta = T phi + t0.
+
+    Parameters
+    ----------
+    k : int
+        Number of unknowns.
+    fixed : sequence of (index, value)
+        Unknowns held at a value (their column of T is zero).
+    tied : (i, j, ratio), optional
+        Unknown j held at ``ratio`` times unknown i (column j of T zero, T[j, i] = ratio).
+    """
+    t = np.eye(k)
+    t0 = np.zeros(k)
+    for i, val in fixed:
+        t[:, i] = 0.0
+        t0[i] = val
+    if tied is not None:
+        i, j, ratio = tied
+        t[:, j] = 0.0
+        t[j, i] = ratio
+    return t, t0
+
+
+def _solve_sets(nm, rhs, vv, sets):
+    """Least squares of c small systems under several active sets, in one batched solve.
 
     Parameters
     ----------
@@ -249,28 +279,43 @@ def _solve_fixed(nm, rhs, vv, fixed):
         A^T v.
     vv : ndarray, shape (c,)
         v . v.
-    fixed : dict
-        Unknown index -> value, ndarray (c,) or float.
+    sets : sequence of (T, t0)
+        Each set parametrises theta = T phi + t0 (:func:`_active_set`): unknowns held
+        at a value or tied to another have a zero column in T.
 
     Returns
     -------
-    theta : ndarray, shape (c, k)
-    rss : ndarray, shape (c,)
-        |v - A theta|^2 = v.v - 2 theta.rhs + theta^T nm theta.
+    theta : ndarray, shape (S, c, k)
+    rss : ndarray, shape (S, c)
+        |v - A theta|^2 = v.v - 2 theta.rhs + theta^T nm theta, at least 0.
+
+    Notes
+    -----
+    The normal equations of phi are (T^T N T) phi = T^T (r - N t0). A zero column of
+    T gives a zero row and column there; a unit diagonal is put in its place, so that
+    phi is 0 there and the rest is the least-squares solution of the reduced system.
+    Every system gets the ridge 1e-12 times its trace (a guard against singular
+    systems, e.g. a model with a single facet).
     """
-    c, k = rhs.shape
-    theta = np.zeros((c, k))
-    for i, val in fixed.items():
-        theta[:, i] = val
-    free = np.array([i for i in range(k) if i not in fixed])
-    if free.size:
-        nf = nm[:, free[:, None], free[None, :]]
-        r = rhs[:, free] - np.einsum("cij,cj->ci", nm[:, free, :], theta)
-        tr = np.einsum("cii->c", nf)
-        nf = nf + np.eye(free.size)[None] * (1e-12 * tr + 1e-300)[:, None, None]
-        theta[:, free] = np.linalg.solve(nf, r[:, :, None])[:, :, 0]
-    rss = vv - 2.0 * np.einsum("ci,ci->c", theta, rhs) + np.einsum("ci,cij,cj->c", theta, nm, theta)
+    tm = np.stack([q[0] for q in sets])                                     # (S, k, k)
+    t0 = np.stack([q[1] for q in sets])                                     # (S, k)
+    k = tm.shape[-1]
+    tt = np.swapaxes(tm, 1, 2)
+    nf = tt[:, None] @ nm[None] @ tm[:, None]                               # (S, c, k, k)
+    r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
+    dead = ~np.any(tm != 0.0, axis=1)                                       # (S, k) unused unknowns
+    tr = np.einsum("scii->sc", nf)
+    eye = np.eye(k)
+    nf = nf + eye * (1e-12 * tr + 1e-300)[:, :, None, None] + (dead[:, :, None] * eye)[:, None]
+    phi = np.linalg.solve(nf, r[..., None])[..., 0]                         # (S, c, k)
+    theta = np.einsum("sij,scj->sci", tm, phi) + t0[:, None, :]
+    rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
     return theta, np.maximum(rss, 0.0)
+
+
+#: Active sets of the facet fit over (a, b, c_x, c_y, p_x, p_y): none; a = b = 0;
+#: b = kmin a; b = kmax a (see :func:`interior_rss_batch`).
+_FACET_SETS = _facet_sets()
 
 
 def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
@@ -335,7 +380,10 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     zup = heights(g_up, z_up)
     ztop = zup.min(axis=0)                                                   # (c, p)
     if interior.mode == "facets":
-        idx = zup.argmin(axis=0)                          # lowest plane, first index on ties
+        # lowest plane, first index on ties (zup.argmin(axis=0), without its strided scan)
+        idx = np.full((c, p), m - 1, np.intp)
+        for j in range(m - 2, -1, -1):
+            idx[zup[j] == ztop] = j
         wt = np.ones((c, p))
         scale = np.ones(c)
         if m > 1 and edge_px > 0:
@@ -370,22 +418,16 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
         nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
         rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
-        kmin, kmax = TILT_GAIN_RANGE
         eps = 1e-12
-        th, rss = _solve_fixed(nm, rhs, vv, {})
-        ok = (th[:, 0] >= -eps) & (th[:, 1] >= kmin * th[:, 0] - eps) & (th[:, 1] <= kmax * th[:, 0] + eps)
-        best = np.where(ok, rss, np.inf)
-        bad = np.flatnonzero(~ok)          # the unconstrained optimum is feasible: it is the optimum
-        if bad.size:
-            nb, rb, vb = nm[bad], rhs[bad], vv[bad]
-            sub = _solve_fixed(nb, rb, vb, {0: 0.0, 1: 0.0})[1]                      # a = 0
-            for k in (kmin, kmax):
-                # b = k a: the pair becomes one unknown a on the column 1 + k sec
-                t = np.eye(6)[:, [0, 2, 3, 4, 5]]
-                t[1, 0] = k
-                th, rss = _solve_fixed(np.einsum("ia,cij,jb->cab", t, nb, t), rb @ t, vb, {})
-                sub = np.where(th[:, 0] >= -eps, np.minimum(sub, rss), sub)
-            best[bad] = sub
+        kmin, kmax = TILT_GAIN_RANGE
+        # active sets: none; a = b = 0; b = kmin a; b = kmax a
+        th, rss = _solve_sets(nm, rhs, vv, _FACET_SETS)
+        ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
+            & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
+        sub = np.minimum(rss[1], np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
+        sub = np.minimum(sub, np.where(th[3, :, 0] >= -eps, rss[3], np.inf))
+        # where the unconstrained optimum is feasible it is the optimum
+        best = np.where(ok, rss[0], sub)
         return best * scale
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
@@ -402,19 +444,14 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
     vv = np.full(c, v @ v)
     amax = max(tem_offset_max * float(np.mean(v)), 0.0)
-    best = np.full(c, np.inf)
     eps = 1e-12
-    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set (the other
-    # sets only where the unconstrained optimum is not feasible)
-    rows = np.arange(c)
-    for fixed in ({}, {1: 0.0}, {1: amax}, {0: 0.0}, {0: 0.0, 1: 0.0}, {0: 0.0, 1: amax}):
-        th, rss = _solve_fixed(nm[rows], rhs[rows], vv[rows], fixed)
-        ok = (th[:, 0] >= -eps) & (th[:, 1] >= -eps) & (th[:, 1] <= amax + eps)
-        best[rows] = np.where(ok, np.minimum(best[rows], rss), best[rows])
-        if not fixed:
-            rows = rows[~ok]
-            if rows.size == 0:
-                break
+    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
+    # unconstrained optimum where it is feasible, else the best feasible constrained one
+    sets = [_active_set(4, f) for f in ((), ((1, 0.0),), ((1, amax),), ((0, 0.0),),
+                                        ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, amax)))]
+    th, rss = _solve_sets(nm, rhs, vv, sets)
+    ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
+    best = np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
     return best
 
 
