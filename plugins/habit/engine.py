@@ -80,7 +80,7 @@ from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
                                                grain_evidence, grain_interior, interior_rss, interior_rss_batch,
-                                               round_rss, subsample_interior)
+                                               plane_gap_inverse, round_rss, subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
                                                 radial_signature, rounded_outline, shift_distances)
 from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
@@ -353,6 +353,7 @@ class _Tables:
     turn_ok: np.ndarray
     face_id: np.ndarray
     octa_gap: np.ndarray
+    gap_inv: np.ndarray
 
 
 def _look_alike_turns(face, sym_deg, n):
@@ -406,7 +407,7 @@ def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmet
     return _Tables(face, pos, symmetry_deg[first], np.conj(np.fft.rfft(sigs, axis=-1)),
                    np.einsum("lij,lij->li", sigs, sigs), g_up, z_up, g_dn, z_dn,
                    np.searchsorted(uniq, shape_id), prior[first], turn_off, turn_ok,
-                   np.array([VIEWS.index(f) for f in face]), octa_gap)
+                   np.array([VIEWS.index(f) for f in face]), octa_gap, plane_gap_inverse(g_up))
 
 
 def outline_candidates(sig, tab: _Tables, level: int = 0):
@@ -797,7 +798,7 @@ def _rss_of(tab, shifts, pairs, interior, geo):
     n, edge_px, tem = geo
     u, j = pairs[:, 0], pairs[:, 1]
     return interior_rss_batch(interior, *placed_planes(tab, u, shifts[u, j], n), edge_px=edge_px,
-                              tem_offset_max=tem)
+                              tem_offset_max=tem, gap_inv=tab.gap_inv[u])
 
 
 #: Least interior noise, relative to the interior's level (mean magnitude plus spread): an
@@ -1118,8 +1119,7 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
     reflection through the body's centre is then the whole outline again;
     through any other centre the hull is larger. The centre is found by
     ``scipy.optimize.minimize`` (Nelder-Mead) on the hull area, started at
-    the centroid of the cut outline, to 0.2 % of sqrt(area) in the centre
-    (a tenth of a pixel below 50 px) and 1e-5 of the area.
+    the centroid of the cut outline.
     """
     from scipy.optimize import minimize
     from scipy.spatial import ConvexHull
@@ -1141,7 +1141,7 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
         return ConvexHull(np.vstack([pts, 2.0 * q - pts])).volume
 
     res = minimize(hull_area, cen, method="Nelder-Mead",
-                   options={"xatol": 2e-3 * scale, "fatol": 1e-5 * area, "initial_simplex":
+                   options={"xatol": 1e-3 * scale, "fatol": 1e-6 * area, "initial_simplex":
                             np.array([cen, cen + [0.1 * scale, 0.0], cen + [0.0, 0.1 * scale]])})
     both = np.vstack([pts, 2.0 * res.x - pts])
     return both[ConvexHull(both).vertices]

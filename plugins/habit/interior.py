@@ -232,8 +232,8 @@ FAR_HEIGHT = 1e6
 
 def _facet_sets():
     kmin, kmax = TILT_GAIN_RANGE
-    return (_active_set(6), _active_set(6, ((0, 0.0), (1, 0.0))), _active_set(6, tied=(0, 1, kmin)),
-            _active_set(6, tied=(0, 1, kmax)))
+    return _stack_sets((_active_set(6), _active_set(6, ((0, 0.0), (1, 0.0))), _active_set(6, tied=(0, 1, kmin)),
+                        _active_set(6, tied=(0, 1, kmax))))
 
 
 def face_planes(body, rotation, upward: bool):
@@ -268,6 +268,11 @@ def _active_set(k, fixed=(), tied=None):
     return t, t0
 
 
+def _stack_sets(sets):
+    """(T (S, k, k), t0 (S, k)) of a sequence of :func:`_active_set` results."""
+    return np.stack([q[0] for q in sets]), np.stack([q[1] for q in sets])
+
+
 def _solve_sets(nm, rhs, vv, sets):
     """Least squares of c small systems under several active sets, in one batched solve.
 
@@ -279,9 +284,10 @@ def _solve_sets(nm, rhs, vv, sets):
         A^T v.
     vv : ndarray, shape (c,)
         v . v.
-    sets : sequence of (T, t0)
-        Each set parametrises theta = T phi + t0 (:func:`_active_set`): unknowns held
-        at a value or tied to another have a zero column in T.
+    sets : (ndarray (S, k, k), ndarray (S, k))
+        :func:`_stack_sets` of the active sets: set s parametrises
+        theta = T_s phi + t0_s (:func:`_active_set`); unknowns held at a value or
+        tied to another have a zero column in T_s.
 
     Returns
     -------
@@ -297,8 +303,7 @@ def _solve_sets(nm, rhs, vv, sets):
     Every system gets the ridge 1e-12 times its trace (a guard against singular
     systems, e.g. a model with a single facet).
     """
-    tm = np.stack([q[0] for q in sets])                                     # (S, k, k)
-    t0 = np.stack([q[1] for q in sets])                                     # (S, k)
+    tm, t0 = sets                                                           # (S, k, k), (S, k)
     k = tm.shape[-1]
     tt = np.swapaxes(tm, 1, 2)
     nf = tt[:, None] @ nm[None] @ tm[:, None]                               # (S, c, k, k)
@@ -318,8 +323,20 @@ def _solve_sets(nm, rhs, vv, sets):
 _FACET_SETS = _facet_sets()
 
 
+def plane_gap_inverse(g_up) -> np.ndarray:
+    """1 / |g_j - g_i| of every pair of upward planes (c, M, M), float32 (inf where equal).
+
+    Rotation-invariant, so a library computes it once per shape at rest.
+    """
+    g = np.asarray(g_up, float)
+    d = g[:, :, None, :] - g[:, None, :, :]
+    with np.errstate(divide="ignore"):
+        return (1.0 / np.hypot(d[..., 0], d[..., 1])).astype(np.float32)
+
+
 def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
-                       tem_offset_max: float = 0.5, max_elements: int = 1_000_000) -> np.ndarray:
+                       tem_offset_max: float = 0.5, max_elements: int = 1_000_000,
+                       gap_inv=None) -> np.ndarray:
     """:func:`interior_rss` of many placed models at once.
 
     Parameters
@@ -336,6 +353,9 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     max_elements : int
         Models are processed in chunks of about this many (model, sample,
         plane) elements (memory bound).
+    gap_inv : ndarray, shape (c, M, M), optional
+        :func:`plane_gap_inverse` of ``g_up`` when the caller has it (a model
+        library keeps it per shape); computed here otherwise.
 
     Returns
     -------
@@ -364,18 +384,21 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
             interior_rss_batch(interior, g_up[i:i + step], z_up[i:i + step],
                                None if g_dn is None else g_dn[i:i + step],
                                None if z_dn is None else z_dn[i:i + step], edge_px, tem_offset_max,
-                               max_elements)
+                               max_elements, None if gap_inv is None else gap_inv[i:i + step])
             for i in range(0, c, step)])
     x, y, v = interior.x, interior.y, interior.value
     # plane heights laid out (plane, model, sample): reductions run over whole
     # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
     # the sums of the normal equations float64
-    x32, y32 = x.astype(np.float32), y.astype(np.float32)
+    pts = np.stack([x, y, np.ones_like(x)]).astype(np.float32)              # (3, p)
 
     def heights(g, z0):
-        gt = np.asarray(g, np.float32).transpose(2, 1, 0)                  # (2, M, c)
-        return (np.asarray(z0, np.float32).T[:, :, None] + gt[0][:, :, None] * x32
-                + gt[1][:, :, None] * y32)                                  # (M, c, p)
+        # z0 + g . (x, y) of every plane, model and sample: one matrix product
+        k = z0.shape[1]
+        a = np.empty((k, c, 3), np.float32)
+        a[..., :2] = np.swapaxes(g, 0, 1)
+        a[..., 2] = z0.T
+        return (a.reshape(-1, 3) @ pts).reshape(k, c, p)                    # (M, c, p)
 
     zup = heights(g_up, z_up)
     ztop = zup.min(axis=0)                                                   # (c, p)
@@ -389,9 +412,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         if m > 1 and edge_px > 0:
             # distance to the line where plane j meets the top plane:
             # (z_j - z_top) / |g_j - g_top|; the top plane itself gives 0 * inf = NaN, skipped by fmin
-            gd = np.linalg.norm(g_up[:, :, None, :] - g_up[:, None, :, :], axis=-1)   # (c, M, M)
-            with np.errstate(divide="ignore"):
-                inv = (1.0 / gd).astype(np.float32).transpose(2, 0, 1)                # (j, c, top)
+            inv = (plane_gap_inverse(g_up) if gap_inv is None else gap_inv).transpose(2, 0, 1)  # (j, c, top)
             zup -= ztop
             with np.errstate(invalid="ignore"):
                 zup *= inv[:, np.arange(c)[:, None], idx]
@@ -447,8 +468,8 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     eps = 1e-12
     # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
     # unconstrained optimum where it is feasible, else the best feasible constrained one
-    sets = [_active_set(4, f) for f in ((), ((1, 0.0),), ((1, amax),), ((0, 0.0),),
-                                        ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, amax)))]
+    sets = _stack_sets([_active_set(4, f) for f in ((), ((1, 0.0),), ((1, amax),), ((0, 0.0),),
+                                                    ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, amax)))])
     th, rss = _solve_sets(nm, rhs, vv, sets)
     ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
     best = np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
