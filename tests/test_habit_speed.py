@@ -82,3 +82,16 @@ def test_library_plane_gaps_give_the_same_rss(contrast):
     ref = gr.interior_rss_batch(inner, *planes)
     # float32 geometry: a pixel exactly on a facet edge may change side
     assert np.allclose(fast, ref, rtol=1e-5)
+
+
+@pytest.mark.parametrize("alpha,face,rot_deg", [(1.0, "100", 5.0), (2.6, "111", 33.0)])
+def test_plate_and_rod_families_at_once_equal_one_at_a_time(alpha, face, rot_deg):
+    # reference: best_family on each family separately
+    contour, _ = _evidence(alpha, face, rot_deg)
+    sig = gr.radial_signature(contour, 256)
+    _, plate, _, rod = cl.family_signatures(256)
+    both = cl.best_families(sig)
+    for got, fam in zip(both, (plate, rod)):
+        ref = cl.best_family(sig, fam)
+        assert got[1] == ref[1]
+        assert got[0] == pytest.approx(ref[0], abs=1e-12)

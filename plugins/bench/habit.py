@@ -28,12 +28,12 @@ cuboctahedra near 3 (alpha 2.5 ... 2.95) on a {111} or {100} face at 40,
 60 and 80 px in both contrasts: the fraction named right.
 
 A cuboctahedron whose truncation is too small for the outline of a grain of
-its size (:func:`grainhabit.plugins.habit.engine.resolvable_alpha`, from the
-geometry and the pixel count) cannot be told from an octahedron by its
-outline. Such grains are counted apart: *undetermined* when they are named
-octahedron with ``habit_score`` <= 0.5 and a range that holds the truth (the
-honest answer), wrong otherwise. Accuracies are printed over all grains and
-over the grains whose truncation is resolvable.
+its size to show it reliably (:func:`grainhabit.plugins.habit.engine.resolvable_alpha`
+with 95 % power, from the geometry and the pixel count) cannot be told from
+an octahedron by its outline. Such grains are counted apart: right when named
+cuboctahedron, *undetermined* when named octahedron with ``habit_score`` <= 0.5
+and a range that holds the truth (the honest answer), wrong otherwise.
+Accuracies are printed over all grains and without the undetermined ones.
 
 Also printed: CPU milliseconds per detected grain of classify-habit plus
 fit-growth-ratio (the fit runs once, in classify-habit).
@@ -73,9 +73,13 @@ def truncation_resolvable(alpha: float, face: str, ecd_px: float) -> bool:
     Returns
     -------
     bool
-        False for a truncated octahedron (alpha < 3) above
-        :func:`~grainhabit.plugins.habit.engine.resolvable_alpha` of its view and
-        size, with classify-habit's default outline noise and tolerance; True otherwise.
+        True for an end member (alpha >= 3) and for a truncated octahedron at
+        or below :func:`~grainhabit.plugins.habit.engine.resolvable_alpha` of its
+        view and size with 95 % power (``power_z`` 1.645), with classify-habit's
+        default outline noise and tolerance: the outline should show its
+        truncation in 95 % of such grains. False otherwise (at or near the
+        detection limit, where naming it octahedron with a low score is as
+        honest an answer as naming it cuboctahedron).
     """
     import math
 
@@ -88,7 +92,7 @@ def truncation_resolvable(alpha: float, face: str, ecd_px: float) -> bool:
     tau = max(p["outline_noise_px"] / math.sqrt(area), p["outline_noise_floor"])
     level = int(np.argmin(np.abs(np.asarray(engine.ROUNDING_LEVELS) - p["corner_radius_px"] / ecd_px)))
     lib = prepare()
-    return bool(alpha <= engine.resolvable_alpha(lib, face, tau, level, p["tolerance"]))
+    return bool(alpha <= engine.resolvable_alpha(lib, face, tau, level, p["tolerance"], power_z=1.645))
 
 
 def honest_undetermined(habit: str, score: float, lo: float, hi: float, truth_alpha: float) -> bool:

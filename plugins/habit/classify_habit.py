@@ -190,6 +190,38 @@ def best_family(sig, family) -> tuple[float, int]:
     return float(d[i]), i
 
 
+@functools.lru_cache(maxsize=4)
+def _families_stacked(n_angles: int):
+    """Plate and rod families of :func:`family_signatures` in one (spectra, norms, first row of each)."""
+    _, plate, _, rod = family_signatures(n_angles)
+    spec = np.concatenate([plate[1], rod[1]])
+    sq = np.concatenate([plate[2], rod[2]])
+    return spec, sq, (0, len(plate[2]), len(sq))
+
+
+def best_families(sig) -> tuple[tuple[float, int], tuple[float, int]]:
+    """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+
+    Returns
+    -------
+    (distance, index) of the plate family, then of the rod family.
+    """
+    a = np.asarray(sig, float)
+    spec, sq, cut = _families_stacked(a.size)
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
+    d = np.sqrt(np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0))
+    out = []
+    for lo, hi in zip(cut[:-1], cut[1:]):
+        i = int(np.argmin(d[lo:hi]))
+        out.append((float(d[lo + i]), i))
+    return tuple(out)
+
+
 def hull_shape(contour) -> tuple[float, float, float]:
     """Solidity and Feret diameters of a closed outline.
 
@@ -293,8 +325,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     fit = en.fit_alpha(contour_lab, None, **kw, match=match)
     sig = match.signature
     pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1])
-    d_plate, ip = best_family(sig, plate)
-    d_rod, ir = best_family(sig, rod)
+    (d_plate, ip), (d_rod, ir) = best_families(sig)
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
     if hull is None:
         solidity, fmin, fmax = hull_shape(contour_lab)
@@ -470,4 +501,4 @@ def grainhabit_prepare_worker(steps):
     if STEP.name not in steps:
         return
     lib = en.fit_options(STEP.resolve(steps[STEP.name]))["library"]
-    family_signatures(lib.signatures.shape[-1])
+    _families_stacked(lib.signatures.shape[-1])

@@ -1014,7 +1014,7 @@ def polyhedral_class(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.
 
 
 def resolvable_alpha(library: ModelLibrary, face: str, tau: float, level: int = 0,
-                     tolerance: float = 4.0) -> float:
+                     tolerance: float = 4.0, power_z: float = 0.0) -> float:
     """Largest alpha below 3 whose truncation an outline of this size still tells from the octahedron.
 
     Parameters
@@ -1029,13 +1029,19 @@ def resolvable_alpha(library: ModelLibrary, face: str, tau: float, level: int = 
         Corner rounding level the grain is compared at.
     tolerance : float
         Score difference that tells two models apart (as in :func:`fit_alpha`).
+    power_z : float
+        0 gives the detection limit (a truncation whose expected misfit equals
+        the tolerance is told apart about half the time); 1.645 the limit
+        above which it is told apart in 95 % of grains (expected misfit
+        (sqrt(tolerance) + 1.645)^2, the power of a one-sided normal test).
 
     Returns
     -------
     float
         The largest grid alpha below ``OCTAHEDRON_ALPHA`` from which up to 3
         every truncated body of this view lies within ``tolerance`` of the
-        octahedron by its outline: ``(gap(alpha) / tau)^2 < tolerance``, gap the
+        octahedron by its outline: ``(gap(alpha) / tau)^2 < (sqrt(tolerance) +
+        power_z)^2``, gap the
         RMS radial-signature distance between the two outlines (any turn) at
         the grain's corner rounding. Truncations of alpha above it are too small
         to be seen in the outline at this pixel count (the grid's lowest alpha
@@ -1046,12 +1052,18 @@ def resolvable_alpha(library: ModelLibrary, face: str, tau: float, level: int = 
     Geometry: with d100 = 1 the octahedron vertex lies at 3 / alpha, so the
     {100} planes cut each vertex to a square of half-diagonal 3 / alpha - 1,
     a share 1 - alpha / 3 of the vertex distance. Seen along [111] each
-    corner of the hexagonal outline then recedes by about 0.27 ECD
-    (1 - alpha / 3) over a cut about 1.7 times as long; a 60 px grain moves
-    its corners by 1 px at alpha = 2.82. The outline tells such a corner
+    corner of the hexagonal outline then recedes by h / sqrt(6), about
+    0.27 ECD (1 - alpha / 3), and is replaced by an edge of length h sqrt(2),
+    3.5 times as long; a 60 px grain moves its corners by 1 px at
+    alpha = 2.82. The outline tells such a corner
     from a corner rounded by blur only when the RMS change over the whole
-    outline exceeds sqrt(tolerance) tau, i.e. about 2 px of corner recession
-    for grains of 40-80 px (alpha below about 2.6-2.8 on [111]).
+    outline exceeds sqrt(tolerance) tau, about 2 px of corner recession: with
+    the default parameters the detection limit on [111] is alpha = 2.48,
+    2.62, 2.68 at 40, 60, 80 px ECD (on [100] 2.68, 2.76, 2.80), and with 95 %
+    power 2.40 and 2.52 at 60 and 80 px (on [100] 2.52, 2.64, 2.70 at 40, 60,
+    80 px). Along [111] the outline is a hexagon again at alpha = 1.5, so the
+    gap is not monotonic there; the limit is the largest alpha that is seen
+    (the grid's lowest alpha when none is).
     The interior can resolve more where the truncation is a facet away
     from the rim (the top {100} face of a grain on [100], in secondary-electron
     contrast); this limit is the outline's alone.
@@ -1061,7 +1073,8 @@ def resolvable_alpha(library: ModelLibrary, face: str, tau: float, level: int = 
     a = library.alphas[np.array([int(np.flatnonzero(tab.model_shape == u)[0]) for u in sel])]
     order = np.argsort(a)
     sel, a = sel[order], a[order]
-    seen = ((tab.octa_gap[level, sel] / tau) ** 2 >= tolerance) & (a < OCTAHEDRON_ALPHA - 1e-9)
+    need = (math.sqrt(tolerance) + power_z) ** 2
+    seen = ((tab.octa_gap[level, sel] / tau) ** 2 >= need) & (a < OCTAHEDRON_ALPHA - 1e-9)
     if not seen.any():
         return float(a[0])
     return float(a[np.flatnonzero(seen)[-1]])
