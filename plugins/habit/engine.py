@@ -335,7 +335,13 @@ class _Tables:
     upward plane at rest (z = z_up + g . (x, y)), padded with flat planes at
     height ``FAR_HEIGHT``; ``g_dn``/``z_dn`` the same for the downward planes,
     padded at ``-FAR_HEIGHT``; ``model_shape`` (m,) the shape row of every library
-    model; ``prior`` (u,) -2 ln P(view | body) of each shape.
+    model; ``prior`` (u,) -2 ln P(view | body) of each shape; ``turn_off``,
+    ``turn_ok`` (u, 3) the look-alike turns of :func:`outline_candidates`;
+    ``face_id`` (u,) the index of the view in :data:`VIEWS`; ``octa_gap``
+    (levels, u) the smallest RMS signature distance (any turn) of each shape
+    from the octahedron seen along the same view (:func:`resolvable_alpha`);
+    ``gap_inv`` (u, M, M) :func:`interior.plane_gap_inverse` of ``g_up`` (a turn
+    leaves it alone).
     """
 
     face: np.ndarray
