@@ -403,10 +403,14 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     zup = heights(g_up, z_up)
     ztop = zup.min(axis=0)                                                   # (c, p)
     if interior.mode == "facets":
-        # lowest plane, first index on ties (zup.argmin(axis=0), without its strided scan)
-        idx = np.full((c, p), m - 1, np.intp)
-        for j in range(m - 2, -1, -1):
-            idx[zup[j] == ztop] = j
+        # lowest plane, first index on ties: zup.argmin(axis=0), whose strided scan costs more than
+        # one pass per plane where the planes are few (the Wulff models; not the 60-plane sphere)
+        if m <= 12:
+            idx = np.full((c, p), m - 1, np.intp)
+            for j in range(m - 2, -1, -1):
+                idx[zup[j] == ztop] = j
+        else:
+            idx = zup.argmin(axis=0)
         wt = np.ones((c, p))
         scale = np.ones(c)
         if m > 1 and edge_px > 0:
