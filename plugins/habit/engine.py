@@ -1075,8 +1075,10 @@ def resolvable_alpha(library: ModelLibrary, face: str, tau: float, level: int = 
     contrast); this limit is the outline's alone.
     """
     tab = library.tables
+    shape_alpha = np.full(tab.face.size, np.inf)
+    np.minimum.at(shape_alpha, tab.model_shape, library.alphas)      # lowest alpha of each shape
     sel = np.flatnonzero(tab.face == face)
-    a = library.alphas[np.array([int(np.flatnonzero(tab.model_shape == u)[0]) for u in sel])]
+    a = shape_alpha[sel]
     order = np.argsort(a)
     sel, a = sel[order], a[order]
     need = (math.sqrt(tolerance) + power_z) ** 2
