@@ -45,7 +45,12 @@ Decision
    evidence of its truncation, i.e. neither end member fits within
    ``tolerance`` (:func:`engine.polyhedral_class`). The same rule holds in
    both contrasts: a flat square is a cube whether it is bright on dark or
-   dark on bright.
+   dark on bright. An octahedron that a truncated body fits as well is only
+   bounded (alpha NaN, ``alpha_lo`` below 3): its ``habit_score`` is at most
+   0.5 and ``habit_note`` gives the largest alpha whose truncation the
+   outline of a grain of its size could show
+   (:func:`engine.resolvable_alpha`: about 2.5 at 40 px and 2.7 at 80 px on
+   {111}); above it a cuboctahedron cannot be told from an octahedron.
 
 A grain cut from a touching neighbour (``split``) whose cut outline fits
 nothing is judged by the outline its true edges imply: the smallest
@@ -91,7 +96,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.0",
+    version="2.1",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -183,6 +188,38 @@ def best_family(sig, family) -> tuple[float, int]:
     d = np.sqrt(np.maximum(d2.min(axis=1), 0.0))
     i = int(np.argmin(d))
     return float(d[i]), i
+
+
+@functools.lru_cache(maxsize=4)
+def _families_stacked(n_angles: int):
+    """Plate and rod families of :func:`family_signatures` in one (spectra, norms, first row of each)."""
+    _, plate, _, rod = family_signatures(n_angles)
+    spec = np.concatenate([plate[1], rod[1]])
+    sq = np.concatenate([plate[2], rod[2]])
+    return spec, sq, (0, len(plate[2]), len(sq))
+
+
+def best_families(sig) -> tuple[tuple[float, int], tuple[float, int]]:
+    """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+
+    Returns
+    -------
+    (distance, index) of the plate family, then of the rod family.
+    """
+    a = np.asarray(sig, float)
+    spec, sq, cut = _families_stacked(a.size)
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
+    d = np.sqrt(np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0))
+    out = []
+    for lo, hi in zip(cut[:-1], cut[1:]):
+        i = int(np.argmin(d[lo:hi]))
+        out.append((float(d[lo + i]), i))
+    return tuple(out)
 
 
 def hull_shape(contour) -> tuple[float, float, float]:
@@ -288,8 +325,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     fit = en.fit_alpha(contour_lab, None, **kw, match=match)
     sig = match.signature
     pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1])
-    d_plate, ip = best_family(sig, plate)
-    d_rod, ir = best_family(sig, rod)
+    (d_plate, ip), (d_rod, ir) = best_families(sig)
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
     if hull is None:
         solidity, fmin, fmax = hull_shape(contour_lab)
@@ -342,6 +378,14 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         # a featureless hexagon: a flat plate (an octahedron shows its facets)
         return "tabular_hexagon", flat_score, cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
+    cls = en.class_scores(fit, lib)
+    if habit == "octahedron" and cls[1] <= cls[2] + p["tolerance"]:
+        # a truncated body fits as well: say how much truncation this outline could show
+        limit = en.resolvable_alpha(lib, fit.face, match.tau, match.level, p["tolerance"])
+        ecd_px = math.sqrt(4.0 * match.area / math.pi) / pixel_scale
+        cols["habit_note"] = (f"octahedron or a cuboctahedron of alpha > {limit:.2f}: the outline of a "
+                              f"{ecd_px:.0f} px grain on {{{fit.face}}} resolves no truncation above that")
+        share = min(share, 0.5)
     return habit, share, cols, fit
 
 
@@ -457,4 +501,4 @@ def grainhabit_prepare_worker(steps):
     if STEP.name not in steps:
         return
     lib = en.fit_options(STEP.resolve(steps[STEP.name]))["library"]
-    family_signatures(lib.signatures.shape[-1])
+    _families_stacked(lib.signatures.shape[-1])

@@ -80,7 +80,7 @@ from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
                                                grain_evidence, grain_interior, interior_rss, interior_rss_batch,
-                                               round_rss, subsample_interior)
+                                               plane_gap_inverse, round_rss, subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
                                                 radial_signature, rounded_outline, shift_distances)
 from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
@@ -88,7 +88,7 @@ from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "fit_alpha", "fit_options", "grain_evidence",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
-           "outline_candidates", "outline_settles", "placed_planes", "polygon_centroid", "polyhedral_class",
+           "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "subsample_interior", "view_probability",
            "FAR_HEIGHT", "face_planes", "flat_rss", "round_rss", "check_n_angles", "check_polygon"]
 
@@ -335,7 +335,13 @@ class _Tables:
     upward plane at rest (z = z_up + g . (x, y)), padded with flat planes at
     height ``FAR_HEIGHT``; ``g_dn``/``z_dn`` the same for the downward planes,
     padded at ``-FAR_HEIGHT``; ``model_shape`` (m,) the shape row of every library
-    model; ``prior`` (u,) -2 ln P(view | body) of each shape.
+    model; ``prior`` (u,) -2 ln P(view | body) of each shape; ``turn_off``,
+    ``turn_ok`` (u, 3) the look-alike turns of :func:`outline_candidates`;
+    ``face_id`` (u,) the index of the view in :data:`VIEWS`; ``octa_gap``
+    (levels, u) the smallest RMS signature distance (any turn) of each shape
+    from the octahedron seen along the same view (:func:`resolvable_alpha`);
+    ``gap_inv`` (u, M, M) :func:`interior.plane_gap_inverse` of ``g_up`` (a turn
+    leaves it alone).
     """
 
     face: np.ndarray
@@ -349,6 +355,25 @@ class _Tables:
     z_dn: np.ndarray
     model_shape: np.ndarray
     prior: np.ndarray
+    turn_off: np.ndarray
+    turn_ok: np.ndarray
+    face_id: np.ndarray
+    octa_gap: np.ndarray
+    gap_inv: np.ndarray
+
+
+def _look_alike_turns(face, sym_deg, n):
+    """Shift offsets (u, 3) of the look-alike turns of every shape and which of them exist (u, 3).
+
+    Half the view's symmetry on [100] and [110]; a quarter, a half and three
+    quarters of it on [111]; in signature samples of ``n`` per turn.
+    """
+    u = face.size
+    half = sym_deg / 2 / 360 * n
+    is111 = face == "111"
+    offs = np.where(~is111[:, None], np.column_stack([half, np.full(u, np.nan), np.full(u, np.nan)]),
+                    np.column_stack([half / 2, half, 1.5 * half]))
+    return np.round(np.nan_to_num(offs)).astype(np.int64), np.isfinite(offs)
 
 
 def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmetry_deg, prior) -> _Tables:
@@ -374,9 +399,21 @@ def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmet
 
     g_up, z_up = pad(ups, FAR_HEIGHT)
     g_dn, z_dn = pad(dns, -FAR_HEIGHT)
+    turn_off, turn_ok = _look_alike_turns(face, symmetry_deg[first], signatures.shape[-1])
+    spec = np.fft.rfft(sigs, axis=-1)                                        # (levels, u, k)
+    sq = np.einsum("lij,lij->li", sigs, sigs)
+    n = signatures.shape[-1]
+    octa_gap = np.zeros(sq.shape)
+    for f in VIEWS:
+        sel = np.flatnonzero(face == f)
+        top = sel[np.argmax(alphas[first[sel]])]                             # the octahedron of this view
+        cc = np.fft.irfft(spec[:, sel] * np.conj(spec[:, top])[:, None], n, axis=-1)
+        d2 = (sq[:, sel, None] + sq[:, top, None, None] - 2.0 * cc).min(axis=-1) / n
+        octa_gap[:, sel] = np.sqrt(np.maximum(d2, 0.0))
     return _Tables(face, pos, symmetry_deg[first], np.conj(np.fft.rfft(sigs, axis=-1)),
                    np.einsum("lij,lij->li", sigs, sigs), g_up, z_up, g_dn, z_dn,
-                   np.searchsorted(uniq, shape_id), prior[first])
+                   np.searchsorted(uniq, shape_id), prior[first], turn_off, turn_ok,
+                   np.array([VIEWS.index(f) for f in face]), octa_gap, plane_gap_inverse(g_up))
 
 
 def outline_candidates(sig, tab: _Tables, level: int = 0):
@@ -413,25 +450,20 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
     d = (a @ a + tab.sig_sq[level][:, None] - 2.0 * cc) / n            # squared distances
     u = d.shape[0]
-    rows = np.arange(u)
     k0 = np.argmin(d, axis=1)
-    half = tab.sym_deg / 2 / 360 * n
-    is100 = tab.face != "111"
-    offs = np.where(is100[:, None], np.column_stack([half, np.full(u, np.nan), np.full(u, np.nan)]),
-                    np.column_stack([half / 2, half, 1.5 * half]))
-    shifts = np.zeros((u, 4), int)
+    w = np.arange(-(n // 32), n // 32 + 1)
+    # the three windows of every shape at once: (u, 3, window)
+    win = (k0[:, None, None] + tab.turn_off[:, :, None] + w[None, None, :]) % n
+    vals = np.take_along_axis(d, win.reshape(u, -1), axis=1).reshape(win.shape)
+    best = np.take_along_axis(win, np.argmin(vals, axis=2)[:, :, None], axis=2)[:, :, 0]
+    shifts = np.empty((u, 4), np.int64)
     valid = np.zeros((u, 4), bool)
     shifts[:, 0], valid[:, 0] = k0, True
-    w = np.arange(-(n // 32), n // 32 + 1)
+    shifts[:, 1:] = best
     for j in range(3):
-        ok = np.isfinite(offs[:, j])
-        o = np.round(np.nan_to_num(offs[:, j])).astype(int)
-        win = (k0[:, None] + o[:, None] + w[None, :]) % n
-        best = win[rows, np.argmin(d[rows[:, None], win], axis=1)]
-        dup = np.any((shifts[:, :j + 1] == best[:, None]) & valid[:, :j + 1], axis=1)
-        shifts[:, j + 1] = best
-        valid[:, j + 1] = ok & ~dup
-    return shifts, np.sqrt(np.maximum(d[rows[:, None], shifts], 0.0)), valid
+        dup = np.any((shifts[:, :j + 1] == best[:, j, None]) & valid[:, :j + 1], axis=1)
+        valid[:, j + 1] = tab.turn_ok[:, j] & ~dup
+    return shifts, np.sqrt(np.maximum(np.take_along_axis(d, shifts, axis=1), 0.0)), valid
 
 
 def placed_planes(tab: _Tables, shape, shift, n: int):
@@ -529,6 +561,8 @@ class OutlineMatch:
         Outline misfit unit (relative to sqrt(area)).
     area : float
         Enclosed area in the contour's unit squared.
+    level : int
+        Rounding level of the models it was compared with (:data:`ROUNDING_LEVELS`).
     """
 
     signature: np.ndarray
@@ -537,6 +571,7 @@ class OutlineMatch:
     valid: np.ndarray
     tau: float
     area: float
+    level: int = 0
 
 
 def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
@@ -569,7 +604,7 @@ def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
     ecd_px = math.sqrt(4.0 * area / math.pi) / pixel_scale
     level = int(np.argmin(np.abs(np.asarray(ROUNDING_LEVELS) - corner_radius_px / ecd_px)))
     shifts, dist, valid = outline_candidates(sig, library.tables, level)
-    return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area))
+    return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area), level)
 
 
 def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: float = 1.0,
@@ -668,7 +703,7 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
                               corner_radius_px)
     n = lib.signatures.shape[-1]
     sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
-    shape_ok = np.array([f in faces for f in tab.face])
+    shape_ok = np.isin(tab.face_id, [VIEWS.index(f) for f in faces if f in VIEWS])
     if not shape_ok.any():
         raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
     valid = match.valid & shape_ok[:, None]
@@ -769,7 +804,7 @@ def _rss_of(tab, shifts, pairs, interior, geo):
     n, edge_px, tem = geo
     u, j = pairs[:, 0], pairs[:, 1]
     return interior_rss_batch(interior, *placed_planes(tab, u, shifts[u, j], n), edge_px=edge_px,
-                              tem_offset_max=tem)
+                              tem_offset_max=tem, gap_inv=tab.gap_inv[u])
 
 
 #: Least interior noise, relative to the interior's level (mean magnitude plus spread): an
@@ -982,6 +1017,75 @@ def polyhedral_class(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.
         k = int(np.argmin(ends))
     w = np.exp(-0.5 * (s - s.min()))
     return ("cube", "cuboctahedron", "octahedron")[k], float(w[k] / w.sum())
+
+
+def resolvable_alpha(library: ModelLibrary, face: str, tau: float, level: int = 0,
+                     tolerance: float = 4.0, power_z: float = 0.0) -> float:
+    """Largest alpha below 3 whose truncation an outline of this size still tells from the octahedron.
+
+    Parameters
+    ----------
+    library : ModelLibrary
+    face : {'100', '111', '110'}
+        View.
+    tau : float
+        Outline misfit unit of the grain (:class:`OutlineMatch`; 0.25 px over
+        sqrt(area) above the floor, so it shrinks as the grain grows).
+    level : int
+        Corner rounding level the grain is compared at.
+    tolerance : float
+        Score difference that tells two models apart (as in :func:`fit_alpha`).
+    power_z : float
+        0 gives the detection limit (a truncation whose expected misfit equals
+        the tolerance is told apart about half the time); 1.645 the limit
+        above which it is told apart in 95 % of grains (expected misfit
+        (sqrt(tolerance) + 1.645)^2, the power of a one-sided normal test).
+
+    Returns
+    -------
+    float
+        The largest grid alpha below ``OCTAHEDRON_ALPHA`` from which up to 3
+        every truncated body of this view lies within ``tolerance`` of the
+        octahedron by its outline: ``(gap(alpha) / tau)^2 < (sqrt(tolerance) +
+        power_z)^2``, gap the
+        RMS radial-signature distance between the two outlines (any turn) at
+        the grain's corner rounding. Truncations of alpha above it are too small
+        to be seen in the outline at this pixel count (the grid's lowest alpha
+        when none is).
+
+    Notes
+    -----
+    Geometry: with d100 = 1 the octahedron vertex lies at 3 / alpha, so the
+    {100} planes cut each vertex to a square of half-diagonal 3 / alpha - 1,
+    a share 1 - alpha / 3 of the vertex distance. Seen along [111] each
+    corner of the hexagonal outline then recedes by h / sqrt(6), about
+    0.27 ECD (1 - alpha / 3), and is replaced by an edge of length h sqrt(2),
+    3.5 times as long; a 60 px grain moves its corners by 1 px at
+    alpha = 2.82. The outline tells such a corner
+    from a corner rounded by blur only when the RMS change over the whole
+    outline exceeds sqrt(tolerance) tau, about 2 px of corner recession: with
+    the default parameters the detection limit on [111] is alpha = 2.48,
+    2.62, 2.68 at 40, 60, 80 px ECD (on [100] 2.68, 2.76, 2.80), and with 95 %
+    power 2.40 and 2.52 at 60 and 80 px (on [100] 2.52, 2.64, 2.70 at 40, 60,
+    80 px). Along [111] the outline is a hexagon again at alpha = 1.5, so the
+    gap is not monotonic there; the limit is the largest alpha that is seen
+    (the grid's lowest alpha when none is).
+    The interior can resolve more where the truncation is a facet away
+    from the rim (the top {100} face of a grain on [100], in secondary-electron
+    contrast); this limit is the outline's alone.
+    """
+    tab = library.tables
+    shape_alpha = np.full(tab.face.size, np.inf)
+    np.minimum.at(shape_alpha, tab.model_shape, library.alphas)      # lowest alpha of each shape
+    sel = np.flatnonzero(tab.face == face)
+    a = shape_alpha[sel]
+    order = np.argsort(a)
+    sel, a = sel[order], a[order]
+    need = (math.sqrt(tolerance) + power_z) ** 2
+    seen = ((tab.octa_gap[level, sel] / tau) ** 2 >= need) & (a < OCTAHEDRON_ALPHA - 1e-9)
+    if not seen.any():
+        return float(a[0])
+    return float(a[np.flatnonzero(seen)[-1]])
 
 
 def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0) -> bool:

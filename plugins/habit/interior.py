@@ -230,6 +230,12 @@ def interior_rss(interior: Interior, body, rotation, edge_px: float = 2.0,
 FAR_HEIGHT = 1e6
 
 
+def _facet_sets():
+    kmin, kmax = TILT_GAIN_RANGE
+    return _stack_sets((_active_set(6), _active_set(6, ((0, 0.0), (1, 0.0))), _active_set(6, tied=(0, 1, kmin)),
+                        _active_set(6, tied=(0, 1, kmax))))
+
+
 def face_planes(body, rotation, upward: bool):
     """Height gradients (k, 2) and origin heights (k,) of the up- or downward face planes."""
     nl = body.face_normals @ np.asarray(rotation).T
@@ -238,8 +244,37 @@ def face_planes(body, rotation, upward: bool):
     return -nl[sel, :2] / nz[:, None], body.face_offsets[sel] / nz
 
 
-def _solve_fixed(nm, rhs, vv, fixed):
-    """Least squares with some unknowns held at given values, for c small systems at once.
+def _active_set(k, fixed=(), tied=None):
+    """(T, t0) of an active set over k unknowns: theta = T phi + t0.
+
+    Parameters
+    ----------
+    k : int
+        Number of unknowns.
+    fixed : sequence of (index, value)
+        Unknowns held at a value (their column of T is zero).
+    tied : (i, j, ratio), optional
+        Unknown j held at ``ratio`` times unknown i (column j of T zero, T[j, i] = ratio).
+    """
+    t = np.eye(k)
+    t0 = np.zeros(k)
+    for i, val in fixed:
+        t[:, i] = 0.0
+        t0[i] = val
+    if tied is not None:
+        i, j, ratio = tied
+        t[:, j] = 0.0
+        t[j, i] = ratio
+    return t, t0
+
+
+def _stack_sets(sets):
+    """(T (S, k, k), t0 (S, k)) of a sequence of :func:`_active_set` results."""
+    return np.stack([q[0] for q in sets]), np.stack([q[1] for q in sets])
+
+
+def _solve_sets(nm, rhs, vv, sets):
+    """Least squares of c small systems under several active sets, in one batched solve.
 
     Parameters
     ----------
@@ -249,32 +284,59 @@ def _solve_fixed(nm, rhs, vv, fixed):
         A^T v.
     vv : ndarray, shape (c,)
         v . v.
-    fixed : dict
-        Unknown index -> value, ndarray (c,) or float.
+    sets : (ndarray (S, k, k), ndarray (S, k))
+        :func:`_stack_sets` of the active sets: set s parametrises
+        theta = T_s phi + t0_s (:func:`_active_set`); unknowns held at a value or
+        tied to another have a zero column in T_s.
 
     Returns
     -------
-    theta : ndarray, shape (c, k)
-    rss : ndarray, shape (c,)
-        |v - A theta|^2 = v.v - 2 theta.rhs + theta^T nm theta.
+    theta : ndarray, shape (S, c, k)
+    rss : ndarray, shape (S, c)
+        |v - A theta|^2 = v.v - 2 theta.rhs + theta^T nm theta, at least 0.
+
+    Notes
+    -----
+    The normal equations of phi are (T^T N T) phi = T^T (r - N t0). A zero column of
+    T gives a zero row and column there; a unit diagonal is put in its place, so that
+    phi is 0 there and the rest is the least-squares solution of the reduced system.
+    Every system gets the ridge 1e-12 times its trace (a guard against singular
+    systems, e.g. a model with a single facet).
     """
-    c, k = rhs.shape
-    theta = np.zeros((c, k))
-    for i, val in fixed.items():
-        theta[:, i] = val
-    free = np.array([i for i in range(k) if i not in fixed])
-    if free.size:
-        nf = nm[:, free[:, None], free[None, :]]
-        r = rhs[:, free] - np.einsum("cij,cj->ci", nm[:, free, :], theta)
-        tr = np.einsum("cii->c", nf)
-        nf = nf + np.eye(free.size)[None] * (1e-12 * tr + 1e-300)[:, None, None]
-        theta[:, free] = np.linalg.solve(nf, r[:, :, None])[:, :, 0]
-    rss = vv - 2.0 * np.einsum("ci,ci->c", theta, rhs) + np.einsum("ci,cij,cj->c", theta, nm, theta)
+    tm, t0 = sets                                                           # (S, k, k), (S, k)
+    k = tm.shape[-1]
+    tt = np.swapaxes(tm, 1, 2)
+    nf = tt[:, None] @ nm[None] @ tm[:, None]                               # (S, c, k, k)
+    r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
+    dead = ~np.any(tm != 0.0, axis=1)                                       # (S, k) unused unknowns
+    tr = np.einsum("scii->sc", nf)
+    eye = np.eye(k)
+    nf = nf + eye * (1e-12 * tr + 1e-300)[:, :, None, None] + (dead[:, :, None] * eye)[:, None]
+    phi = np.linalg.solve(nf, r[..., None])[..., 0]                         # (S, c, k)
+    theta = np.einsum("sij,scj->sci", tm, phi) + t0[:, None, :]
+    rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
     return theta, np.maximum(rss, 0.0)
 
 
+#: Active sets of the facet fit over (a, b, c_x, c_y, p_x, p_y): none; a = b = 0;
+#: b = kmin a; b = kmax a (see :func:`interior_rss_batch`).
+_FACET_SETS = _facet_sets()
+
+
+def plane_gap_inverse(g_up) -> np.ndarray:
+    """1 / |g_j - g_i| of every pair of upward planes (c, M, M), float32 (inf where equal).
+
+    Rotation-invariant, so a library computes it once per shape at rest.
+    """
+    g = np.asarray(g_up, float)
+    d = g[:, :, None, :] - g[:, None, :, :]
+    with np.errstate(divide="ignore"):
+        return (1.0 / np.hypot(d[..., 0], d[..., 1])).astype(np.float32)
+
+
 def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
-                       tem_offset_max: float = 0.5, max_elements: int = 1_000_000) -> np.ndarray:
+                       tem_offset_max: float = 0.5, max_elements: int = 1_000_000,
+                       gap_inv=None) -> np.ndarray:
     """:func:`interior_rss` of many placed models at once.
 
     Parameters
@@ -291,6 +353,9 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     max_elements : int
         Models are processed in chunks of about this many (model, sample,
         plane) elements (memory bound).
+    gap_inv : ndarray, shape (c, M, M), optional
+        :func:`plane_gap_inverse` of ``g_up`` when the caller has it (a model
+        library keeps it per shape); computed here otherwise.
 
     Returns
     -------
@@ -319,31 +384,39 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
             interior_rss_batch(interior, g_up[i:i + step], z_up[i:i + step],
                                None if g_dn is None else g_dn[i:i + step],
                                None if z_dn is None else z_dn[i:i + step], edge_px, tem_offset_max,
-                               max_elements)
+                               max_elements, None if gap_inv is None else gap_inv[i:i + step])
             for i in range(0, c, step)])
     x, y, v = interior.x, interior.y, interior.value
     # plane heights laid out (plane, model, sample): reductions run over whole
     # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
     # the sums of the normal equations float64
-    x32, y32 = x.astype(np.float32), y.astype(np.float32)
+    pts = np.stack([x, y, np.ones_like(x)]).astype(np.float32)              # (3, p)
 
     def heights(g, z0):
-        gt = np.asarray(g, np.float32).transpose(2, 1, 0)                  # (2, M, c)
-        return (np.asarray(z0, np.float32).T[:, :, None] + gt[0][:, :, None] * x32
-                + gt[1][:, :, None] * y32)                                  # (M, c, p)
+        # z0 + g . (x, y) of every plane, model and sample: one matrix product
+        k = z0.shape[1]
+        a = np.empty((k, c, 3), np.float32)
+        a[..., :2] = np.swapaxes(g, 0, 1)
+        a[..., 2] = z0.T
+        return (a.reshape(-1, 3) @ pts).reshape(k, c, p)                    # (M, c, p)
 
     zup = heights(g_up, z_up)
     ztop = zup.min(axis=0)                                                   # (c, p)
     if interior.mode == "facets":
-        idx = zup.argmin(axis=0)                          # lowest plane, first index on ties
+        # lowest plane, first index on ties: zup.argmin(axis=0), whose strided scan costs more than
+        # one pass per plane where the planes are few (the Wulff models; not the 60-plane sphere)
+        if m <= 12:
+            idx = np.full((c, p), m - 1, np.intp)
+            for j in range(m - 2, -1, -1):
+                idx[zup[j] == ztop] = j
+        else:
+            idx = zup.argmin(axis=0)
         wt = np.ones((c, p))
         scale = np.ones(c)
         if m > 1 and edge_px > 0:
             # distance to the line where plane j meets the top plane:
             # (z_j - z_top) / |g_j - g_top|; the top plane itself gives 0 * inf = NaN, skipped by fmin
-            gd = np.linalg.norm(g_up[:, :, None, :] - g_up[:, None, :, :], axis=-1)   # (c, M, M)
-            with np.errstate(divide="ignore"):
-                inv = (1.0 / gd).astype(np.float32).transpose(2, 0, 1)                # (j, c, top)
+            inv = (plane_gap_inverse(g_up) if gap_inv is None else gap_inv).transpose(2, 0, 1)  # (j, c, top)
             zup -= ztop
             with np.errstate(invalid="ignore"):
                 zup *= inv[:, np.arange(c)[:, None], idx]
@@ -370,22 +443,16 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
         nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
         rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
-        kmin, kmax = TILT_GAIN_RANGE
         eps = 1e-12
-        th, rss = _solve_fixed(nm, rhs, vv, {})
-        ok = (th[:, 0] >= -eps) & (th[:, 1] >= kmin * th[:, 0] - eps) & (th[:, 1] <= kmax * th[:, 0] + eps)
-        best = np.where(ok, rss, np.inf)
-        bad = np.flatnonzero(~ok)          # the unconstrained optimum is feasible: it is the optimum
-        if bad.size:
-            nb, rb, vb = nm[bad], rhs[bad], vv[bad]
-            sub = _solve_fixed(nb, rb, vb, {0: 0.0, 1: 0.0})[1]                      # a = 0
-            for k in (kmin, kmax):
-                # b = k a: the pair becomes one unknown a on the column 1 + k sec
-                t = np.eye(6)[:, [0, 2, 3, 4, 5]]
-                t[1, 0] = k
-                th, rss = _solve_fixed(np.einsum("ia,cij,jb->cab", t, nb, t), rb @ t, vb, {})
-                sub = np.where(th[:, 0] >= -eps, np.minimum(sub, rss), sub)
-            best[bad] = sub
+        kmin, kmax = TILT_GAIN_RANGE
+        # active sets: none; a = b = 0; b = kmin a; b = kmax a
+        th, rss = _solve_sets(nm, rhs, vv, _FACET_SETS)
+        ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
+            & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
+        sub = np.minimum(rss[1], np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
+        sub = np.minimum(sub, np.where(th[3, :, 0] >= -eps, rss[3], np.inf))
+        # where the unconstrained optimum is feasible it is the optimum
+        best = np.where(ok, rss[0], sub)
         return best * scale
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
@@ -402,19 +469,14 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
     vv = np.full(c, v @ v)
     amax = max(tem_offset_max * float(np.mean(v)), 0.0)
-    best = np.full(c, np.inf)
     eps = 1e-12
-    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set (the other
-    # sets only where the unconstrained optimum is not feasible)
-    rows = np.arange(c)
-    for fixed in ({}, {1: 0.0}, {1: amax}, {0: 0.0}, {0: 0.0, 1: 0.0}, {0: 0.0, 1: amax}):
-        th, rss = _solve_fixed(nm[rows], rhs[rows], vv[rows], fixed)
-        ok = (th[:, 0] >= -eps) & (th[:, 1] >= -eps) & (th[:, 1] <= amax + eps)
-        best[rows] = np.where(ok, np.minimum(best[rows], rss), best[rows])
-        if not fixed:
-            rows = rows[~ok]
-            if rows.size == 0:
-                break
+    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
+    # unconstrained optimum where it is feasible, else the best feasible constrained one
+    sets = _stack_sets([_active_set(4, f) for f in ((), ((1, 0.0),), ((1, amax),), ((0, 0.0),),
+                                                    ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, amax)))])
+    th, rss = _solve_sets(nm, rhs, vv, sets)
+    ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
+    best = np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
     return best
 
 
