@@ -78,18 +78,20 @@ class TiffRegions:
             series = tif.series[self.series]
             page = series.pages[self.page] if self.page < len(series.pages) else None
             if page is not None and getattr(page, "is_memmappable", False) and not self.rgb:
-                data = tifffile.memmap(self.path, series=self.series, level=0, mode="r") \
-                    if len(series.pages) == 1 else None
-                if data is not None:
-                    block = np.asarray(data[rs, cs], dtype=np.float32)
-                    del data
-                    return block
+                data = tifffile.memmap(self.path, series=self.series, level=0, mode="r")
+                lead = data.ndim - 2
+                where = tuple(int(i) for i in np.unravel_index(self.page, data.shape[:lead])) if lead > 0 else ()
+                block = np.asarray(data[where + (rs, cs)], dtype=np.float32)
+                del data
+                return block
             import zarr
 
-            store = series.aszarr(key=self.page) if len(series.pages) > 1 else series.aszarr()
+            store = series.aszarr()
             try:
                 arr = zarr.open(store, mode="r")
-                block = arr[rs, cs] if not self.rgb else arr[rs, cs, :]
+                lead = arr.ndim - (3 if self.rgb else 2)
+                where = tuple(int(i) for i in np.unravel_index(self.page, arr.shape[:lead])) if lead > 0 else ()
+                block = arr[where + (rs, cs)]
             finally:
                 store.close()
         block = np.asarray(block)
