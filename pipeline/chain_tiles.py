@@ -126,15 +126,25 @@ def frame_budget(frame_memory: int = 0) -> int:
     -------
     int
         ``frame_memory`` if set; else :data:`USABLE_SHARE` of the dask
-        worker's memory limit less :data:`BASE_BYTES` (at least 1 byte
-        where a limit is set); 0 in a serial run or a worker without a limit.
+        worker's memory limit less :data:`BASE_BYTES`, shared by the
+        worker's threads (at least 1 byte where a limit is set); 0 in a
+        serial run or a worker without a limit.
     """
     if frame_memory:
         return int(frame_memory)
     limit = worker_memory_limit()
     if not limit:
         return 0
-    return max(1, int(USABLE_SHARE * limit) - BASE_BYTES)
+    return max(1, (int(USABLE_SHARE * limit) - BASE_BYTES) // worker_threads())
+
+
+def worker_threads() -> int:
+    """Threads of the dask worker running this code (tasks it may run at once); 1 outside a worker."""
+    from .executors import in_dask_worker
+
+    worker = in_dask_worker()
+    state = getattr(worker, "state", None)
+    return max(1, int(getattr(state, "nthreads", None) or getattr(worker, "nthreads", 1) or 1)) if worker else 1
 
 
 def plan_core(shape: tuple, budget: int, halo: int = HALO_PX) -> int:
@@ -563,7 +573,11 @@ def process_tiled(ref: FrameRef, sample: str, job, host, budget: int, record: di
                       calibration=calibration, levels=fs.levels, shape=shape)
     del fs
     tiles = grid(shape, core, HALO_PX)
-    outs = fan_out(run_tile, [(ctx, c, w) for c, w in tiles])
+    # on a cluster the tiles go to every worker, one per worker thread; outside one they run one after
+    # another, so that no more than one tile's working set is held at a time
+    from .executors import in_dask_worker
+
+    outs = fan_out(run_tile, [(ctx, c, w) for c, w in tiles], threads=0 if in_dask_worker() is not None else 1)
     for out in outs:
         if "error" in out:
             step, msg = out["error"]
