@@ -184,3 +184,20 @@ def test_frame_memory_key_is_checked(tmp_path):
     res = run_cli("check", wf)
     assert res.returncode == 2
     assert "execution.frame_memory" in res.stderr
+
+
+def test_archive_frames_are_read_by_regions(tmp_path):
+    from builders import draw_frame
+    from grainhabit.plugins.readers import archive
+
+    img = draw_frame(shape=(300, 260), discs=[(50, 50, 10), (200, 180, 14)])
+    write_tiff(tmp_path / "in" / "s1" / "a.tif", img, PX)
+    arch = tmp_path / "arch.zarr"
+    assert run_cli("ingest", tmp_path / "in", "--into", arch, "--chunk", "128").returncode == 0
+    ref = archive.grainhabit_list_frames(path=str(arch), options={"max_pixels": 0})[0]
+    whole = archive.grainhabit_read_frame(ref=ref, options={})
+    src = archive.grainhabit_open_regions(ref=ref, options={})
+    assert src.shape == whole.raw.shape and src.pixel_size_nm == whole.pixel_size_nm == PX
+    assert src.calibration == whole.calibration
+    win = (slice(100, 290), slice(7, 201))
+    np.testing.assert_array_equal(src.read(win), whole.raw[win])

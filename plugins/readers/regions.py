@@ -159,3 +159,37 @@ def open_tiff(ref: FrameRef, options: dict, locate, calibrate) -> TiffRegions:
             notes.append(f"pixel size from {cal.detail}")
     return TiffRegions(path=ref.path, series=si, page=local, shape=(rows - cut, cols), pixel_size_nm=px,
                        calibration=source, notes=tuple(notes), meta=meta, rgb=bool(rgb))
+
+
+@dataclass(frozen=True)
+class ArchiveRegions:
+    """One frame of an archive made by ``grainhabit ingest``, read by regions (its zarr chunks are tiles).
+
+    Attributes
+    ----------
+    path : str
+        The archive (a zarr group).
+    key : str
+        The frame's array in the group ``frames``.
+    shape, pixel_size_nm, calibration, notes, meta
+        As :class:`TiffRegions`.
+    """
+
+    path: str
+    key: str
+    shape: tuple
+    pixel_size_nm: float
+    calibration: str
+    notes: tuple = ()
+    meta: dict = field(default_factory=dict)
+
+    def read(self, window: tuple) -> np.ndarray:
+        """Pixels of ``window`` ((row slice, col slice) in the frame) as float32; only its chunks are read."""
+        import zarr
+
+        rs, cs = window
+        if not (0 <= rs.start < rs.stop <= self.shape[0] and 0 <= cs.start < cs.stop <= self.shape[1]):
+            raise ValueError(f"{self.path}: window rows {rs.start}:{rs.stop}, cols {cs.start}:{cs.stop} "
+                             f"leaves the frame of {self.shape[0]} x {self.shape[1]} px")
+        arr = zarr.open_group(self.path, mode="r")["frames"][self.key]
+        return np.asarray(arr[rs, cs], dtype=np.float32)
