@@ -201,3 +201,10 @@ def test_archive_frames_are_read_by_regions(tmp_path):
     assert src.calibration == whole.calibration
     win = (slice(100, 290), slice(7, 201))
     np.testing.assert_array_equal(src.read(win), whole.raw[win])
+
+
+def test_bench_huge_frame_is_the_sizes_mosaic_built_band_by_band():
+    from grainhabit.plugins.bench.memory import huge_mosaic
+    from grainhabit.plugins.bench.sizes import mosaic
+
+    np.testing.assert_array_equal(huge_mosaic(2048, 2, seed=1), mosaic(render_tiles(2, 1024, 1), 2048, seed=1))
