@@ -208,3 +208,30 @@ def test_bench_huge_frame_is_the_sizes_mosaic_built_band_by_band():
     from grainhabit.plugins.bench.sizes import mosaic
 
     np.testing.assert_array_equal(huge_mosaic(2048, 2, seed=1), mosaic(render_tiles(2, 1024, 1), 2048, seed=1))
+
+
+def test_tiles_spread_over_a_local_cluster_give_the_serial_whole_frame_result(tmp_path):
+    import xarray as xr
+    from grainhabit.plugins.synthetic.render import to_uint16
+
+    # 1280 px: about 82 MB by the estimate, over a 64 MiB frame budget: tiled on the cluster's two workers
+    img = to_uint16(render_tiles(1, 1280, seed=8)[0])
+    write_tiff(tmp_path / "data" / "s1" / "big.tif", img, PX)
+    tables = {}
+    for name, execution in (("whole", ["scheduler: serial"]),
+                            ("tiled", ["scheduler: local", "workers: 2", "frame_memory: 64MiB"])):
+        wf = tmp_path / f"{name}.yaml"
+        wf.write_text("\n".join([
+            "version: 1", "input:", f'  paths: ["{(tmp_path / "data").as_posix()}/**/*.tif"]',
+            "output:", f"  results: {(tmp_path / f'{name}.zarr').as_posix()}", "execution:",
+            *(f"  {line}" for line in execution)]) + "\n")
+        res = run_cli("run", wf)
+        assert res.returncode == 0, res.stderr
+        frames = xr.open_zarr(tmp_path / f"{name}.zarr", group="frames").load()
+        assert ("tiles: frame" in str(frames["notes"].values[0])) == (name == "tiled")
+        tables[name] = xr.open_zarr(tmp_path / f"{name}.zarr", group="grains").load()
+    a, b = tables["whole"], tables["tiled"]
+    assert a.sizes["grain"] == b.sizes["grain"] > 20
+    for k in ("area_nm2", "centroid_x_nm", "centroid_y_nm", "ecd_nm", "alpha_lo"):
+        np.testing.assert_allclose(b[k].values, a[k].values, rtol=TOL, atol=TOL, equal_nan=True, err_msg=k)
+    np.testing.assert_array_equal(b["habit"].values, a["habit"].values)
