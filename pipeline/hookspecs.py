@@ -95,6 +95,70 @@ def grainhabit_read_frame(ref: FrameRef, options: dict) -> FrameData | None:
     """
 
 
+@hookspec(firstresult=True)
+def grainhabit_open_regions(ref: FrameRef, options: dict) -> object | None:
+    """Open one listed frame for reading by regions, without reading its pixels.
+
+    Called on the worker of a frame whose estimated working memory exceeds
+    the frame budget (``execution.frame_memory``, else the worker's memory
+    limit); the frame is then processed tile by tile
+    (:mod:`grainhabit.chain_tiles`). The plugin named in ``ref.reader``
+    answers; others return ``None`` (and a frame that no plugin opens fails
+    with a one-line error).
+
+    Parameters
+    ----------
+    ref : FrameRef
+        As returned by :func:`grainhabit_list_frames`.
+    options : dict
+        The workflow's ``input`` section.
+
+    Returns
+    -------
+    object or None
+        A picklable object with ``shape`` ((rows, cols) of the frame as
+        :func:`grainhabit_read_frame` would return it), ``pixel_size_nm``
+        (NaN where the file has none), ``calibration``, ``notes`` (tuple of
+        str), ``meta`` (dict) and ``read(window) -> ndarray`` giving the
+        float32 pixels of ``window`` (a (row slice, col slice) pair) without
+        reading the rest of the frame; or ``None``.
+    """
+
+
+@hookspec(firstresult=True)
+def grainhabit_tile_levels(step: str, sample: object, params: dict) -> dict | None:
+    """Frame-wide quantities of one step, for a frame processed tile by tile.
+
+    Called once per frame and step, in chain order, before the tiles are
+    processed; the plugin that implements step ``step`` answers (first
+    result wins), others return ``None``. A step without an answer is
+    taken to be local: its result on a grain depends only on pixels near it.
+    Every tile then gets the answers in ``frame.meta["tile_levels"]`` (by
+    step name) and its place in ``frame.meta["tile_window"]`` (row and
+    column slices in the frame), so that all tiles use the same levels.
+
+    Parameters
+    ----------
+    step : str
+        Name of the step.
+    sample : grainhabit.chain_tiles.FrameSample
+        The frame's ``shape``, ``pixel_size_nm``, ``regions(halo)`` (yields
+        ``(core, window, raw)`` over the frame, read region by region),
+        ``preview`` (the previous step's output at every ``preview_step``-th
+        row and column, or None) and ``levels`` (earlier answers).
+    params : dict
+        The step's parameters as the workflow gives them.
+
+    Returns
+    -------
+    dict or None
+        The step's frame-wide quantities (picklable); optional keys
+        ``preview`` and ``preview_step`` (this step's output on a regular
+        grid, for the next step) and ``notes`` (list of str for the frame
+        record).
+    """
+
+
 # --------------------------------------------------------------------------
 # per-frame stages (one step at a time, in the order of FRAME_STAGES)
 # --------------------------------------------------------------------------

@@ -38,6 +38,7 @@ DEFAULT_PLUGINS = (
     "grainhabit.plugins.readers.sidecar",
     "grainhabit.plugins.preprocess.flatten_background",
     "grainhabit.plugins.segment.segment_grains",
+    "grainhabit.plugins.segment.tiling",
     "grainhabit.plugins.measure.measure_grains",
     "grainhabit.plugins.habit.classify_habit",
     "grainhabit.plugins.habit.fit_growth_ratio",

@@ -44,7 +44,7 @@ from .night import build_night, commit_night, merge_summaries, plan_night, touch
 from .results import recover, root_attrs
 from .staging import clean_temporaries, frame_key, is_staged, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
-from .workflow import Plan, expand, find_inputs, template_values
+from .workflow import Plan, expand, find_inputs, frame_memory_bytes, template_values
 
 log = logging.getLogger("grainhabit")
 
@@ -261,7 +261,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         transient: dict[str, dict] = {}
         processed: set = set()
         steps = tuple((s.name, s.stage, s.params) for s in plan.frame_steps)
-        job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]))
+        job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]),
+                       frame_memory=frame_memory_bytes(plan.config["execution"].get("frame_memory", "auto")))
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
             executor = obs.executor(make_executor(plan.config["execution"], upload=upload))

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import chain_tiles
 from .executors import keep_freed_memory
 from .frame import FrameData, FrameRef
 from .manager import worker_host
@@ -36,11 +37,16 @@ class FrameJob:
         The workflow's validated ``input`` section.
     plugins : tuple of str
         Extra plugin modules / files of the workflow.
+    frame_memory : int
+        ``execution.frame_memory`` in bytes (0: auto, the worker's memory
+        limit); a frame whose estimated working memory exceeds it is
+        processed tile by tile (:mod:`grainhabit.chain_tiles`).
     """
 
     steps: tuple
     input_options: dict
     plugins: tuple = ()
+    frame_memory: int = 0
 
 
 def thumbnail(image: np.ndarray, side: int = THUMB_SIDE) -> tuple[np.ndarray, float]:
@@ -155,6 +161,9 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
               "thumb_factor": 1.0, "traceback": ""}
     t_start = time.perf_counter()
     timings = record["timings"]
+    budget = chain_tiles.frame_budget(job.frame_memory)
+    if budget and chain_tiles.estimate_bytes(ref.shape, ref.dtype) > budget:
+        return chain_tiles.run_by_tiles(ref, sample, job, host, budget, record, result, t_start)
     try:
         t0 = time.perf_counter()
         frame = host.first_answer("grainhabit_read_frame", ref=ref, options=job.input_options)

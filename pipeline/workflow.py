@@ -80,6 +80,7 @@ SCHEMA: dict[str, Any] = {
         "workers": ((str, int), False, "auto"),
         "threads_per_worker": (int, False, 1),
         "memory_limit": (str, False, "auto"),
+        "frame_memory": (str, False, "auto"),
         "max_in_flight": (int, False, 0),
         "dashboard": (bool, False, False),
         "jobqueue": (dict, False, None),
@@ -429,6 +430,10 @@ def _check_execution(path: str, ex: dict, errs: list) -> None:
     w = ex["workers"]
     if not (w == "auto" or (isinstance(w, int) and not isinstance(w, bool) and w >= 1)):
         errs.append(WorkflowError(path, "execution.workers", f"expected 'auto' or an integer >= 1, got {w!r}"))
+    try:
+        frame_memory_bytes(ex.get("frame_memory", "auto"))
+    except ValueError as exc:
+        errs.append(WorkflowError(path, "execution.frame_memory", str(exc)))
     sch = ex["scheduler"]
     if not (sch in ("local", "serial") or sch in BATCH_SYSTEMS or sch.startswith("tcp://")
             or sch.startswith("tls://")):
@@ -550,3 +555,25 @@ def template_values(source_path: str, page: int) -> dict:
 def expand(template: str, source_path: str, page: int) -> str:
     """Fill a sample/field template for one frame."""
     return template.format(**template_values(source_path, page))
+
+
+def frame_memory_bytes(value: str) -> int:
+    """``execution.frame_memory`` in bytes: ``auto`` (0: the worker's memory limit) or a size like ``2GiB``.
+
+    Raises
+    ------
+    ValueError
+        For text that is no size, or a size under 64 MiB.
+    """
+    text = str(value).strip()
+    if text.lower() == "auto":
+        return 0
+    from dask.utils import parse_bytes
+
+    try:
+        n = int(parse_bytes(text))
+    except (ValueError, TypeError):
+        raise ValueError(f"expected 'auto' or a size such as '2GiB', got {value!r}") from None
+    if n < 64 * 2**20:
+        raise ValueError(f"expected at least 64MiB, got {value!r}")
+    return n

@@ -32,6 +32,8 @@ import tempfile
 import time
 from pathlib import Path
 
+import numpy as np
+
 from grainhabit import hookimpl
 from grainhabit.plugins.bench import harness as bu
 
@@ -160,6 +162,11 @@ def run(argv: list[str]) -> int:
     ap.add_argument("--huge", type=int, metavar="PX",
                     help="instead: one frame of PX x PX px (e.g. 8192; a mosaic of rendered 1024 px fields at "
                          "the same grain density) on the local cluster; peak RSS of every worker")
+    ap.add_argument("--memory-limit", metavar="SIZE",
+                    help="with --huge: execution.memory_limit of the local workers (e.g. 1.5GiB); a frame whose "
+                         "estimated working memory exceeds the budget it leaves is processed tile by tile")
+    ap.add_argument("--frame-memory", metavar="SIZE",
+                    help="with --huge: execution.frame_memory (the frame budget itself, e.g. 600MiB)")
     ap.add_argument("--check", action="store_true", help="exit 1 if the target is missed")
     args = ap.parse_args(argv)
     workers = args.workers or os.cpu_count() or 1
@@ -220,54 +227,128 @@ def run(argv: list[str]) -> int:
     return 1 if failed or (args.check and not ok) else 0
 
 
+def huge_mosaic(size_px: int, distinct: int, seed: int, band_px: int = 1024) -> np.ndarray:
+    """The ``--huge`` frame as uint16, built band by band (no float copy of the whole frame).
+
+    Parameters
+    ----------
+    size_px : int
+        Frame side (px); a multiple of 1024 uses rendered 1024 px fields,
+        another size one field of its own size.
+    distinct : int
+        Rendered fields (at most 4); the rest are variants.
+    seed : int
+
+    Returns
+    -------
+    ndarray of uint16, shape (size_px, size_px)
+        What :func:`grainhabit.plugins.bench.sizes.mosaic` makes (the same
+        fields, variants and illumination ramp), rounded the same way.
+    """
+    from grainhabit.plugins.bench.sizes import GRADIENT, render_tiles
+    from grainhabit.plugins.synthetic.render import to_uint16
+
+    tile = 1024 if size_px % 1024 == 0 else size_px
+    tiles = render_tiles(min(distinct, 4), tile, seed)
+    k = size_px // tile
+    theta = np.random.default_rng(seed).uniform(0, 2 * np.pi)
+    # the ramp of sizes.mosaic: (cos x + sin y) over the frame, scaled to [0, 1]
+    corners = [np.cos(theta) * x + np.sin(theta) * y for x in (0.0, 1.0) for y in (0.0, 1.0)]
+    lo, span = min(corners), max(max(corners) - min(corners), 1e-12)
+    out = np.empty((size_px, size_px), np.uint16)
+    xx = np.arange(size_px, dtype=np.float32) / max(size_px - 1, 1)
+    for r in range(k):
+        band = np.empty((tile, size_px), np.float64)
+        for c in range(k):
+            i = r * k + c
+            band[:, c * tile:(c + 1) * tile] = bu.variant(tiles[i % len(tiles)], i // len(tiles))
+        yy = (np.arange(r * tile, (r + 1) * tile, dtype=np.float32) / max(size_px - 1, 1))[:, None]
+        ramp = (np.cos(theta) * xx[None, :] + np.sin(theta) * yy - lo) / span
+        band *= 1.0 + GRADIENT * (ramp - 0.5)
+        out[r * tile:(r + 1) * tile] = to_uint16(band)
+    return out
+
+
 def huge_frame(size_px: int, workers: int, args) -> int:
     """One ``size_px`` frame through ``grainhabit run`` on the local cluster; print peak RSS per process.
 
-    The frame is a mosaic of rendered 1024 px fields
-    (:func:`grainhabit.plugins.bench.sizes.mosaic`), at the grain density of
-    the other benchmarks; its tiles are segmented on every worker
-    (:mod:`grainhabit.plugins.segment.tiling`).
+    The frame is a mosaic of rendered 1024 px fields (:func:`huge_mosaic`),
+    at the grain density of the other benchmarks. With ``--memory-limit``
+    (the workers' memory limit) or ``--frame-memory`` (the frame budget) a
+    frame over the budget runs tile by tile through the whole chain
+    (:mod:`grainhabit.chain_tiles`); otherwise it is processed whole and
+    only its segmentation is tiled (:mod:`grainhabit.plugins.segment.tiling`).
 
     Returns
     -------
     int
         1 if the run failed (a worker killed counts), else 0.
     """
-    from grainhabit.plugins.bench.sizes import mosaic, render_tiles
+    from grainhabit.chain_tiles import estimate_bytes
 
-    tile = 1024 if size_px % 1024 == 0 else size_px
     if size_px < 64:
         raise SystemExit(f"grainhabit bench memory: --huge must be >= 64, got {size_px}")
     root = Path(args.workdir).resolve() if args.workdir else Path(tempfile.mkdtemp(prefix="grainhabit-mem-"))
     out = sys.stdout
+    c = {"returncode": 1}
     try:
         t0 = time.perf_counter()
-        frame = mosaic(render_tiles(min(args.distinct, 4), tile, args.seed), size_px, seed=args.seed)
-        bu.write_frames(root / "huge" / "bench", [frame])
-        raw_mib = bu.mib(frame.size * 4)
-        del frame
+        bu.write_frames(root / "huge" / "bench", [huge_mosaic(size_px, args.distinct, args.seed)])
+        raw_mib = bu.mib(size_px * size_px * 4)
+        limits = []
+        if args.memory_limit:
+            limits.append(f"memory_limit: {args.memory_limit}")
+        if args.frame_memory:
+            limits.append(f"frame_memory: {args.frame_memory}")
         print(f"grainhabit bench memory --huge: one {size_px}x{size_px} px frame (invented data, made in "
-              f"{time.perf_counter() - t0:.0f} s; {raw_mib:.0f} MiB as float32), local cluster of {workers} "
-              f"workers, {bu.load_text()}", file=out)
+              f"{time.perf_counter() - t0:.0f} s; {raw_mib:.0f} MiB as float32; estimated working memory "
+              f"{estimate_bytes((size_px, size_px), 'uint16') / 2**30:.1f} GiB), local cluster of {workers} "
+              f"workers{', ' + ', '.join(limits) if limits else ''}, {bu.load_text()}", file=out)
         wf = bu.write_workflow(root / "huge.yaml", root / "huge", root / "out" / "huge.zarr", workers=workers,
                                scheduler=args.scheduler, name="bench-memory-huge")
+        if limits:
+            wf.write_text(wf.read_text() + "".join(f"  {line}\n" for line in limits))
         c = measure_case(wf, root / "huge.json", malloc_trim=args.malloc_trim)
         print(f"frames ok {c.get('frames_ok', 0)}/1, grains {c.get('grains', 0)}, wall {c['wall']:.0f} s, "
               f"exit code {c['returncode']}", file=out)
+        how = frame_outcome(root / "out" / "huge.zarr")
+        if how:
+            print(how, file=out)
         print(f"peak RSS: largest worker process {bu.mib(c['peak_largest_child']):.0f} MiB "
               f"({bu.mib(c['peak_largest_child']) / raw_mib:.1f}x the float32 frame), run's main process "
               f"{bu.mib(c['peak_main']):.0f} MiB, whole tree {bu.mib(c['peak_tree']):.0f} MiB "
               f"({c['peak_processes']} processes)", file=out)
-        print("peak RSS of every process the run started, MiB (the workers segment the frame's tiles between them): "
+        print("peak RSS of every process the run started, MiB: "
               + ", ".join(f"{bu.mib(v):.0f}" for v in c["peak_children"]), file=out)
         print(f"{bu.load_text()} at the end", file=out)
-        bu.write_figures(args.json, {"benchmark": "memory-huge", "size_px": size_px, "workers": workers, "case": c})
+        bu.write_figures(args.json, {"benchmark": "memory-huge", "size_px": size_px, "workers": workers,
+                                     "memory_limit": args.memory_limit, "frame_memory": args.frame_memory,
+                                     "case": c})
         if c["returncode"] != 0:
             print(f"  problem: the run exited with {c['returncode']}: {c['stderr']}", file=out)
     finally:
         if not args.workdir:
             shutil.rmtree(root, ignore_errors=True)
     return 1 if c["returncode"] != 0 else 0
+
+
+def frame_outcome(results: Path) -> str:
+    """One line on how the frame went: its status, error, and the tiling note if it was tiled."""
+    try:
+        import xarray as xr
+
+        frames = xr.open_zarr(results, group="frames").load()
+    except Exception:
+        return ""
+    lines = []
+    for i in range(frames.sizes.get("frame", 0)):
+        status = str(frames["status"].values[i])
+        error = str(frames["error"].values[i]) if "error" in frames else ""
+        notes = str(frames["notes"].values[i]) if "notes" in frames else ""
+        tiled = [n for n in notes.split("; ") if n.startswith("tiles: frame")]
+        lines.append(f"frame {i}: {status}" + (f", {error}" if error else "")
+                     + (f"; {tiled[0]}" if tiled else "; processed whole"))
+    return "\n".join(lines)
 
 
 @hookimpl

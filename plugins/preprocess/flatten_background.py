@@ -26,6 +26,15 @@ Method, in order:
    beyond 3 background standard deviations is the grain side. The confidence
    is ``|B - D| / (B + D)`` of the two tails' excess; below 0.5 (or with almost
    no tail at all) a note is added to the frame.
+
+Frame-wide quantities (normalisation percentiles, noise model, background
+surface, polarity, grain level) are computed by :func:`frame_levels` from a
+stream of regions of the frame and then applied to any window of it by
+:func:`apply_levels`, so that a frame too large for one worker's memory is
+processed tile by tile with the same result as in one piece
+(:mod:`grainhabit.chain_tiles`). Percentiles, polarity and the grain level
+are taken on a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every
+pixel of frames up to that size).
 """
 
 from __future__ import annotations
@@ -46,7 +55,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.1",
+    version="1.2",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -69,6 +78,9 @@ LOW_CLIP = -0.25
 #: Pixel differences used by the noise model, and pixels used for a background mode and sigma (regular
 #: subsamples of larger frames; the estimates' standard errors are then well under 1 %).
 NOISE_SAMPLES = 300_000
+#: Pixels of the regular sample for frame-wide percentiles, polarity and grain level: every pixel of a frame
+#: up to this size, every k-th row and column of a larger one.
+SAMPLE_PIXELS = 4_000_000
 
 
 def _check_image(image) -> np.ndarray:
@@ -142,8 +154,30 @@ def noise_model(image: np.ndarray, n_bins: int = 16) -> tuple[float, float]:
     arr = _check_image(image)
     # disjoint pairs of adjacent rows (0-1, 2-3, ...), every k-th column: about NOISE_SAMPLES differences
     rows = (arr.shape[0] // 2) * 2
-    cstep = max(1, int(round((rows // 2) * arr.shape[1] / NOISE_SAMPLES)))
-    top, bottom = arr[0:rows:2, ::cstep], arr[1:rows:2, ::cstep]
+    cstep = pair_column_step(arr.shape)
+    return noise_model_from_pairs(arr[0:rows:2, ::cstep], arr[1:rows:2, ::cstep], n_bins)
+
+
+def pair_column_step(shape: tuple) -> int:
+    """Column step of the row pairs :func:`noise_model` uses (about :data:`NOISE_SAMPLES` pairs)."""
+    rows = (shape[0] // 2) * 2
+    return max(1, int(round((rows // 2) * shape[1] / NOISE_SAMPLES)))
+
+
+def noise_model_from_pairs(top: np.ndarray, bottom: np.ndarray, n_bins: int = 16) -> tuple[float, float]:
+    """:func:`noise_model` from its row pairs (pixel ``top`` lies just above pixel ``bottom``).
+
+    Parameters
+    ----------
+    top, bottom : ndarray, same shape
+        Normalised intensities of vertically adjacent pixels.
+    n_bins : int
+
+    Returns
+    -------
+    a, b : float
+    """
+    top, bottom = np.asarray(top, float), np.asarray(bottom, float)
     d = ((bottom - top) / np.sqrt(2.0)).ravel()
     m = (0.5 * (bottom + top)).ravel()
     edges = np.unique(np.quantile(m, np.linspace(0, 1, n_bins + 1)))
@@ -365,18 +399,71 @@ def estimate_background(image: np.ndarray, pixel_size_nm: float, background_nm: 
     .. [2] H. Knutsson and C.-F. Westin, "Normalized and differential
        convolution", Proc. IEEE CVPR, 515-523, 1993, doi:10.1109/CVPR.1993.341081
     """
-    from skimage.transform import downscale_local_mean, resize
+    from skimage.transform import downscale_local_mean
 
     arr = _check_image(image)
     px = _check_positive("pixel_size_nm", pixel_size_nm)
     if background_nm < 0 or not np.isfinite(background_nm):
         raise ValueError(f"background_nm must be >= 0, got {background_nm!r}")
     scale_px = background_nm / px
-    f = int(max(1, min(round(scale_px / 8.0), min(arr.shape) // 64))) if scale_px > 0 else \
-        max(1, min(arr.shape) // 128)
+    f = block_factor(arr.shape, scale_px)
     small = downscale_local_mean(arr, (f, f))
     # the last row/column block may be partial (zero padded): drop it if so
     small = small[: arr.shape[0] // f or 1, : arr.shape[1] // f or 1]
+    surface = fit_surface(small, scale_px / f, grain_sign)
+    bg = upsample_at(surface, arr.shape, np.arange(arr.shape[0]), np.arange(arr.shape[1]))
+    r_sub = regular_subsample(arr, LEVEL_SAMPLES) - regular_subsample(bg, LEVEL_SAMPLES)
+    m = histogram_mode(r_sub)
+    s_full = clipped_sigma(r_sub, m)
+    if grain_sign:
+        # grains lie on one side: the other half of the background peak alone gives its width, however
+        # much of the frame the grains cover (a two-sided clip starts from a spread the grains inflate)
+        s_full = min(s_full, one_sided_sigma(r_sub, m, -grain_sign))
+    bg = bg + m
+    dev = (arr - bg) / s_full
+    is_bg = np.abs(dev) < CLIP_SIGMAS
+    return bg, is_bg, s_full
+
+
+def block_factor(shape: tuple, scale_px: float) -> int:
+    """Side (px) of the blocks averaged before the background fit.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        (rows, cols) of the frame.
+    scale_px : float
+        Background scale in pixels (0: quadratic surface only).
+
+    Returns
+    -------
+    int
+        ``round(scale_px / 8)``, at least 1, leaving at least 64 blocks per
+        side (``min(shape) // 128`` without a background scale).
+    """
+    if scale_px > 0:
+        return int(max(1, min(round(scale_px / 8.0), min(shape) // 64)))
+    return max(1, min(shape) // 128)
+
+
+def fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int = 0) -> np.ndarray:
+    """Background surface of a block-averaged frame, grains masked out.
+
+    Parameters
+    ----------
+    small : ndarray, shape (r, c)
+        Block means of the denoised, normalised frame.
+    scale_blocks : float
+        Background scale in blocks (0: quadratic surface only).
+    grain_sign : {-1, 0, 1}
+        Side of the background on which grains lie; 0 rejects both sides.
+
+    Returns
+    -------
+    ndarray of float64, shape (r, c)
+        Robust quadratic surface plus the normalised convolution of the
+        remaining background residual (see :func:`estimate_background`).
+    """
     A = _poly_design(small.shape)
     z = small.ravel()
     mask = np.ones(z.size, bool)
@@ -405,24 +492,50 @@ def estimate_background(image: np.ndarray, pixel_size_nm: float, background_nm: 
     mask2 = ndi.binary_erosion(mask.reshape(small.shape), iterations=1, border_value=1)
     if mask2.sum() < 16:
         mask2 = mask.reshape(small.shape)
-    if scale_px > 0:
-        sig = scale_px / f
-        w = ndi.gaussian_filter(mask2.astype(float), sig, mode="reflect")
-        num = ndi.gaussian_filter(np.where(mask2, resid, 0.0), sig, mode="reflect")
+    if scale_blocks > 0:
+        w = ndi.gaussian_filter(mask2.astype(float), scale_blocks, mode="reflect")
+        num = ndi.gaussian_filter(np.where(mask2, resid, 0.0), scale_blocks, mode="reflect")
         smooth = np.where(w > 1e-3, num / np.maximum(w, 1e-3), 0.0)
         surface = surface + smooth
-    bg = resize(surface, arr.shape, order=1, mode="edge", anti_aliasing=False) if f > 1 else surface
-    r_sub = regular_subsample(arr, LEVEL_SAMPLES) - regular_subsample(bg, LEVEL_SAMPLES)
-    m = histogram_mode(r_sub)
-    s_full = clipped_sigma(r_sub, m)
-    if grain_sign:
-        # grains lie on one side: the other half of the background peak alone gives its width, however
-        # much of the frame the grains cover (a two-sided clip starts from a spread the grains inflate)
-        s_full = min(s_full, one_sided_sigma(r_sub, m, -grain_sign))
-    bg = bg + m
-    dev = (arr - bg) / s_full
-    is_bg = np.abs(dev) < CLIP_SIGMAS
-    return bg, is_bg, s_full
+    return surface
+
+
+def upsample_at(small: np.ndarray, shape: tuple, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+    """Bilinear interpolation of a block-level surface at frame pixels.
+
+    Parameters
+    ----------
+    small : ndarray, shape (r, c)
+        Surface on the block grid.
+    shape : tuple of int
+        (rows, cols) of the whole frame the surface spans.
+    rows, cols : ndarray of int
+        Frame rows and columns wanted (any subset, e.g. one tile's).
+
+    Returns
+    -------
+    ndarray of float64, shape (len(rows), len(cols))
+
+    Notes
+    -----
+    Pixel ``i`` of the frame samples the block grid at ``(i + 0.5) r / R -
+    0.5``, clamped to the grid (edge mode): the mapping of
+    ``skimage.transform.resize(order=1, mode="edge")`` (agrees with it to
+    1e-15 on a random surface). Each pixel's value depends on its own
+    coordinates only, so a tile gets the values the whole frame has there.
+    """
+    small = np.asarray(small, float)
+    rows, cols = np.asarray(rows), np.asarray(cols)
+    out = []
+    for idx, n_small, n_full in ((rows, small.shape[0], shape[0]), (cols, small.shape[1], shape[1])):
+        pos = np.clip((idx + 0.5) * (n_small / n_full) - 0.5, 0, n_small - 1)
+        lo = np.minimum(np.floor(pos).astype(np.intp), max(n_small - 2, 0))
+        out.append((lo, np.minimum(lo + 1, n_small - 1), pos - lo))
+    (r0, r1, wr), (c0, c1, wc) = out
+    wr, wc = wr[:, None], wc[None, :]
+    top = small[r0][:, c0] * (1 - wc) + small[r0][:, c1] * wc
+    bottom = small[r1][:, c0] * (1 - wc) + small[r1][:, c1] * wc
+    return top * (1 - wr) + bottom * wr
 
 
 def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
@@ -479,6 +592,257 @@ def detect_polarity(residual: np.ndarray, sigma: float) -> tuple[str, float]:
     return ("bright" if B >= D else "dark"), abs(B - D) / (B + D)
 
 
+def sample_step(shape: tuple, n: int) -> int:
+    """Step of the regular grid with at most about ``n`` pixels (the step of :func:`regular_subsample`)."""
+    return max(1, int(np.ceil(np.sqrt(shape[0] * shape[1] / n))))
+
+
+def _grid_part(core: tuple, window: tuple, step: int, first_row: int = 0) -> tuple:
+    """Where a core's pixels on a regular grid lie: (slices into the window, slices into the grid array)."""
+    out_w, out_g = [], []
+    for axis, start0 in ((0, first_row), (1, 0)):
+        c, w = core[axis], window[axis]
+        first = start0 + -(-(c.start - start0) // step) * step if c.start > start0 else start0
+        stop = c.stop
+        if first >= stop:
+            return None
+        out_w.append(slice(first - w.start, stop - w.start, step))
+        g0 = (first - start0) // step
+        out_g.append(slice(g0, g0 + len(range(first, stop, step))))
+    return tuple(out_w), tuple(out_g)
+
+
+def _grid_shape(shape: tuple, step: int) -> tuple:
+    return (-(-shape[0] // step), -(-shape[1] // step))
+
+
+def _grid_coords(shape: tuple, step: int) -> tuple:
+    return np.arange(0, shape[0], step), np.arange(0, shape[1], step)
+
+
+def _finite(raw, window) -> np.ndarray:
+    arr = np.asarray(raw, dtype=np.float64)
+    if not np.all(np.isfinite(arr)):
+        raise ValueError(f"image contains NaN or infinite values (rows {window[0].start}-{window[0].stop - 1}, "
+                         f"cols {window[1].start}-{window[1].stop - 1})")
+    return arr
+
+
+def denoise_reach(method: str, smooth_px: float) -> int:
+    """Pixels around a window that :func:`apply_levels` needs to give the whole frame's values there."""
+    if method == "gaussian" and smooth_px > 0:
+        return int(4.0 * smooth_px + 0.5) + 1  # scipy's Gaussian radius at truncate = 4
+    return 0
+
+
+def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: float = 4000.0,
+                 denoise_method: str = "gaussian", smooth_px: float = 1.0, polarity: str = "auto",
+                 whole: np.ndarray | None = None) -> dict:
+    """Frame-wide quantities of the step, from a stream of regions of the frame.
+
+    Parameters
+    ----------
+    regions : callable
+        ``regions(halo)`` yields ``(core, window, raw)`` for cores that
+        partition the frame, each window its core grown by ``halo`` px
+        (clipped to the frame), ``raw`` the frame's pixels in the window;
+        cores start on even rows.
+    shape : tuple of int
+        (rows, cols) of the whole frame.
+    pixel_size_nm : float
+    background_nm, denoise_method, smooth_px, polarity
+        As for :func:`flatten`.
+    whole : ndarray, optional
+        The denoised frame, when one region is the whole frame and it has
+        been computed already (bilateral and non-local-means denoising need
+        the whole frame: their noise estimate and range are frame-wide).
+
+    Returns
+    -------
+    dict
+        ``lo``, ``span`` (normalisation), ``a``, ``b``, ``use_vst`` (noise
+        model), ``method``, ``smooth_px``, ``surface`` (background on the
+        block grid) and ``offset`` (its mode correction), ``sign`` (+1
+        bright grains, -1 dark), ``polarity``, ``confidence``, ``level``
+        (grain level), ``shape``, ``preview_step`` and ``preview`` (the
+        step's output at every ``preview_step``-th row and column, float32).
+
+    Notes
+    -----
+    Two passes over the regions: raw values on a regular grid of at most
+    :data:`SAMPLE_PIXELS` pixels (percentiles), the row pairs of
+    :func:`noise_model` and the frame's mean; then the denoised frame's
+    block means (background fit), its values on the grid of
+    :data:`LEVEL_SAMPLES` pixels (background mode and sigma) and on the
+    sample grid (polarity and grain level). Every grid is indexed by frame
+    coordinates, so the result does not depend on how the frame was cut into
+    regions.
+    """
+    px = _check_positive("pixel_size_nm", pixel_size_nm)
+    rows_f, cols_f = int(shape[0]), int(shape[1])
+    if min(rows_f, cols_f) < 8:
+        raise ValueError(f"image must be at least 8 x 8 pixels, got shape {tuple(shape)}")
+    if background_nm < 0 or not np.isfinite(background_nm):
+        raise ValueError(f"background_nm must be >= 0, got {background_nm!r}")
+    k_s = sample_step(shape, SAMPLE_PIXELS)
+    k_l = sample_step(shape, LEVEL_SAMPLES)
+    cstep = pair_column_step(shape)
+    n_pairs = rows_f // 2
+    raw_s = np.zeros(_grid_shape(shape, k_s))
+    top = np.zeros((n_pairs, -(-cols_f // cstep)))
+    bottom = np.zeros_like(top)
+    total = 0.0
+    for core, window, raw in regions(0):
+        arr = _finite(raw, window)
+        part = _grid_part(core, window, k_s)
+        if part:
+            raw_s[part[1]] = arr[part[0]]
+        total += float(arr[core[0].start - window[0].start:core[0].stop - window[0].start,
+                           core[1].start - window[1].start:core[1].stop - window[1].start].sum())
+        r0, r1 = core[0].start, min(core[0].stop, 2 * n_pairs)
+        if r1 > r0:
+            if r0 % 2:
+                raise ValueError("regions must start on even rows")
+            wr = slice(r0 - window[0].start, r1 - window[0].start)
+            wc = slice(core[1].start - window[1].start, core[1].stop - window[1].start)
+            block = arr[wr, wc]
+            first = -(-core[1].start // cstep) * cstep
+            cols = slice(first - core[1].start, None, cstep)
+            g = slice(first // cstep, first // cstep + len(range(first, core[1].stop, cstep)))
+            top[r0 // 2:(r1 + 1) // 2, g] = block[0::2, cols][: (r1 - r0) // 2]
+            bottom[r0 // 2:(r1 + 1) // 2, g] = block[1::2, cols][: (r1 - r0) // 2]
+    lo, hi = np.percentile(raw_s, [0.1, 99.9])
+    span = float(hi - lo)
+    if span <= 0:
+        lo, span = float(lo), 0.0
+    lv = {"lo": float(lo), "span": span, "method": denoise_method, "smooth_px": float(smooth_px),
+          "shape": (rows_f, cols_f)}
+    norm = (lambda v: (v - lo) / span) if span > 0 else (lambda v: np.zeros_like(v))
+    a, b = noise_model_from_pairs(norm(top), norm(bottom)) if n_pairs else (0.0, 0.0)
+    mean = float(norm(np.float64(total / (rows_f * cols_f))))
+    lv.update(a=a, b=b, use_vst=bool(a > 1e-9 and a > 1e-3 * b / max(mean, 1e-6)))
+
+    scale_px = background_nm / px
+    f = block_factor(shape, scale_px)
+    nbr, nbc = rows_f // f or 1, cols_f // f or 1
+    sums = np.zeros((nbr, nbc))
+    x_s = np.zeros(_grid_shape(shape, k_s))
+    x_l = np.zeros(_grid_shape(shape, k_l))
+    reach = 0 if whole is not None else denoise_reach(denoise_method, smooth_px)
+    for core, window, raw in regions(reach):
+        if whole is not None:
+            x = whole[window]
+        else:
+            x = _denoise_window(norm(_finite(raw, window)), lv)
+            if x.shape == (rows_f, cols_f):
+                lv["denoised"] = x  # one region holds the whole frame: apply_levels need not denoise again
+        cr = slice(core[0].start - window[0].start, core[0].stop - window[0].start)
+        cc = slice(core[1].start - window[1].start, core[1].stop - window[1].start)
+        xc = x[cr, cc]
+        for grid, step in ((x_s, k_s), (x_l, k_l)):
+            part = _grid_part(core, window, step)
+            if part:
+                grid[part[1]] = x[part[0]]
+        # block sums over the full blocks this core touches (a block may span cores: sums add up)
+        rb0, cb0 = core[0].start // f, core[1].start // f
+        rstop, cstop = min(core[0].stop, nbr * f), min(core[1].stop, nbc * f)
+        if rstop > core[0].start and cstop > core[1].start:
+            sub = xc[: rstop - core[0].start, : cstop - core[1].start]
+            rcuts = np.unique(np.r_[0, np.arange((rb0 + 1) * f, rstop, f) - core[0].start])
+            ccuts = np.unique(np.r_[0, np.arange((cb0 + 1) * f, cstop, f) - core[1].start])
+            part_sums = np.add.reduceat(np.add.reduceat(sub, rcuts, axis=0), ccuts, axis=1)
+            sums[rb0:rb0 + part_sums.shape[0], cb0:cb0 + part_sums.shape[1]] += part_sums
+    small = sums / float(f * f) if rows_f >= f and cols_f >= f else sums
+    rs, cs = _grid_coords(shape, k_s)
+    rl, cl = _grid_coords(shape, k_l)
+
+    def background(sign: int):
+        surf = fit_surface(small, scale_px / f if scale_px > 0 else 0.0, sign)
+        r_sub = x_l - upsample_at(surf, shape, rl, cl)
+        m = histogram_mode(r_sub)
+        sd = clipped_sigma(r_sub, m)
+        if sign:
+            sd = min(sd, one_sided_sigma(r_sub, m, -sign))
+        return surf, m, sd
+
+    surf, m, sd = background(0)
+    if polarity == "auto":
+        bg_l = upsample_at(surf, shape, rl, cl) + m
+        r_l = x_l - bg_l
+        sd = min(sd, one_sided_sigma(r_l, 0.0, -1), one_sided_sigma(r_l, 0.0, 1))
+        pol, conf = detect_polarity(x_s - (upsample_at(surf, shape, rs, cs) + m), sd)
+    else:
+        pol, conf = polarity, 1.0
+    sign = 1 if pol == "bright" else -1
+    surf, m, sd = background(sign)
+    r = sign * (x_s - (upsample_at(surf, shape, rs, cs) + m))
+    fg = r[r > CLIP_SIGMAS * sd]
+    level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
+    # never stretch pure noise up to grain level
+    level = max(level, NOISE_FLOOR_SIGMAS * sd)
+    lv.update(surface=surf, offset=float(m), sign=sign, polarity=pol, confidence=float(conf), level=level,
+              sigma=float(sd), preview_step=k_s,
+              preview=np.clip(r / level, LOW_CLIP, 1.0).astype(np.float32))
+    return lv
+
+
+def _denoise_window(x: np.ndarray, lv: dict) -> np.ndarray:
+    """Gaussian (or no) denoising of normalised pixels with the frame's noise model."""
+    a, b, method, sigma_px = lv["a"], lv["b"], lv["method"], lv["smooth_px"]
+    if method not in ("gaussian", "none"):
+        raise ValueError(f"denoise {method!r} needs the whole frame (its noise estimate and range are "
+                         "frame-wide); a frame processed by tiles takes 'gaussian' or 'none'")
+    work = anscombe(x, a, b) if lv["use_vst"] else x
+    if method == "gaussian" and sigma_px > 0:
+        work = ndi.gaussian_filter(work, sigma_px, mode="nearest")
+    return inverse_anscombe(work, a, b) if lv["use_vst"] else work
+
+
+def apply_levels(raw: np.ndarray, window: tuple, levels: dict, denoised: np.ndarray | None = None) -> np.ndarray:
+    """The step's output on one window of a frame, from the frame's levels.
+
+    Parameters
+    ----------
+    raw : ndarray, shape of the window
+        The frame's pixels in ``window``.
+    window : tuple of slice
+        (rows, cols) of the window in the frame.
+    levels : dict
+        From :func:`frame_levels`.
+    denoised : ndarray, optional
+        The denoised, normalised window if already computed.
+
+    Returns
+    -------
+    ndarray of float32, shape of the window
+        ``clip(s (I - B) / L, -0.25, 1)`` (see :func:`flatten`). Pixels
+        within :func:`denoise_reach` of an inner edge of the window differ
+        from the whole frame's (the filter sees no pixels beyond the edge).
+    """
+    if denoised is None:
+        x = _finite(raw, window)
+        x = (x - levels["lo"]) / levels["span"] if levels["span"] > 0 else np.zeros_like(x)
+        x = _denoise_window(x, levels)
+    else:
+        x = denoised
+    rows = np.arange(window[0].start, window[0].stop)
+    cols = np.arange(window[1].start, window[1].stop)
+    bg = upsample_at(levels["surface"], levels["shape"], rows, cols) + levels["offset"]
+    r = levels["sign"] * (x - bg)
+    return np.clip(r / levels["level"], LOW_CLIP, 1.0).astype(np.float32)
+
+
+def whole_frame_regions(image: np.ndarray):
+    """``regions`` for :func:`frame_levels` of a frame held in memory: the whole frame as one region."""
+    arr = np.asarray(image)
+    full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
+
+    def regions(halo):
+        yield full, full, arr
+
+    return regions
+
+
 def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000.0,
             denoise_method: str = "gaussian", smooth_px: float = 1.0,
             polarity: str = "auto") -> tuple[np.ndarray, str, float]:
@@ -514,45 +878,64 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     ``-1`` for dark grains, background ``B`` and ``L`` the 95th percentile of
     ``s (I - B)`` over pixels more than 3 sigma on the grain side, but at
     least 10 sigma, so that a frame without grains is not stretched.
+    Computed as :func:`frame_levels` then :func:`apply_levels`, the path a
+    tiled frame takes too.
     """
     if polarity not in ("auto", "bright", "dark"):
         raise ValueError(f"polarity must be 'auto', 'bright' or 'dark', got {polarity!r}")
-    x = normalise(image)
-    x, _ = denoise(x, denoise_method, smooth_px)
-    bg, _, s = estimate_background(x, pixel_size_nm, background_nm, grain_sign=0)
-    if polarity == "auto":
-        # the grain-free side of the background peak gives its width even where grains cover much of the
-        # frame (a two-sided clip then starts from a spread the grains inflate and finds no tail)
-        r_sub = regular_subsample(x - bg, LEVEL_SAMPLES)
-        s = min(s, one_sided_sigma(r_sub, 0.0, -1), one_sided_sigma(r_sub, 0.0, 1))
-        pol, conf = detect_polarity(x - bg, s)
-    else:
-        pol, conf = polarity, 1.0
-    sign = 1 if pol == "bright" else -1
-    bg, _, s = estimate_background(x, pixel_size_nm, background_nm, grain_sign=sign)
-    r = sign * (x - bg)
-    fg = r[r > CLIP_SIGMAS * s]
-    level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
-    # never stretch pure noise up to grain level
-    level = max(level, NOISE_FLOOR_SIGMAS * s)
-    out = np.clip(r / level, LOW_CLIP, 1.0).astype(np.float32)
-    return out, pol, conf
+    arr = _check_image(image)
+    whole = None
+    if denoise_method not in ("gaussian", "none"):
+        whole, _ = denoise(normalise(arr), denoise_method, smooth_px)
+    lv = frame_levels(whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm, denoise_method,
+                      smooth_px, polarity, whole=whole)
+    full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
+    out = apply_levels(arr, full, lv, denoised=whole if whole is not None else lv.pop("denoised", None))
+    return out, lv["polarity"], lv["confidence"]
 
 
 @hookimpl
 def grainhabit_preprocess(frame, params):
-    """Flatten the background and set polarity; see the module docstring."""
+    """Flatten the background and set polarity; see the module docstring.
+
+    A tile of a frame processed by tiles (``frame.meta["tile_levels"]``)
+    gets the frame's levels (:func:`apply_levels`), not its own.
+    """
     p = STEP.resolve(params)
     px = _check_positive("pixel_size_nm", frame.pixel_size_nm)
     src = frame.image if frame.image is not None else frame.raw
     smooth_px = 1.0 if p["smooth_nm"] is None else p["smooth_nm"] / px
-    out, pol, conf = flatten(src, px, p["background_nm"], p["denoise"], smooth_px, p["polarity"])
+    shared = frame.meta.get("tile_levels", {}).get(STEP.name)
+    if shared is not None:
+        out, pol, conf = apply_levels(src, frame.meta["tile_window"], shared), shared["polarity"], shared["confidence"]
+    else:
+        out, pol, conf = flatten(src, px, p["background_nm"], p["denoise"], smooth_px, p["polarity"])
     new = frame.replace(image=out, polarity=pol)
     if p["polarity"] == "auto" and conf < LOW_CONFIDENCE:
         new = new.with_note(f"flatten-background: qc polarity-uncertain: polarity auto-detected as {pol!r} "
                             f"with low confidence "
                             f"({conf:.2f}); set polarity to force it")
     return new
+
+
+@hookimpl
+def grainhabit_tile_levels(step, sample, params):
+    """Frame-wide levels of this step for a frame processed by tiles (:func:`frame_levels`)."""
+    if step != STEP.name:
+        return None
+    if sample.preview is not None:
+        raise ValueError(f"{STEP.name} runs on the raw frame when it is processed by tiles; an earlier "
+                         "preprocess step cannot be combined with it there")
+    p = STEP.resolve(params)
+    px = _check_positive("pixel_size_nm", sample.pixel_size_nm)
+    smooth_px = 1.0 if p["smooth_nm"] is None else p["smooth_nm"] / px
+    if p["denoise"] not in ("gaussian", "none"):
+        raise ValueError(f"denoise {p['denoise']!r} needs the whole frame (its noise estimate and range are "
+                         "frame-wide); a frame processed by tiles takes 'gaussian' or 'none'")
+    lv = frame_levels(sample.regions, sample.shape, px, p["background_nm"], p["denoise"], smooth_px,
+                      p["polarity"])
+    lv.pop("denoised", None)
+    return lv
 
 
 @hookimpl

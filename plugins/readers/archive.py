@@ -85,6 +85,24 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
                      meta=json.loads(attrs.get("meta", "{}")))
 
 
+@hookimpl
+def grainhabit_open_regions(ref: FrameRef, options: dict):
+    """Open an archived frame for region reads (its chunks are tiles; :class:`.regions.ArchiveRegions`)."""
+    if ref.reader != NAME:
+        return None
+    from .regions import ArchiveRegions
+
+    key = f"f{ref.page:06d}"
+    arr = zarr.open_group(ref.path, mode="r")["frames"][key]
+    attrs = dict(arr.attrs)
+    px = attrs.get("pixel_size_nm")
+    return ArchiveRegions(path=ref.path, key=key, shape=tuple(int(x) for x in arr.shape[:2]),
+                          pixel_size_nm=float(px) if px is not None else math.nan,
+                          calibration=attrs.get("calibration", "") or "",
+                          notes=tuple(n for n in attrs.get("notes", "").split("; ") if n),
+                          meta=json.loads(attrs.get("meta", "{}")))
+
+
 def ingest(paths: list[str], into: str, host, chunk: int = 1024, pixel_size_nm: float | None = None,
            max_pixels: int = 1_000_000_000, log=print) -> dict:
     """Copy frames of TIFF files (or folders) into an archive.

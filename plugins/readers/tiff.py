@@ -243,3 +243,16 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
     return finish(ref, data, cal, options, notes=tuple(notes), meta=meta,
                   image_rows=getattr(info, "image_rows", None), strip_rows=getattr(info, "strip_rows", None),
                   strip_detail=maker, look_for_overlays=True)
+
+
+@hookimpl
+def grainhabit_open_regions(ref: FrameRef, options: dict):
+    """Open a TIFF frame for region reads (:mod:`.regions`): tags now, pixels window by window."""
+    if ref.reader != NAME:
+        return None
+    from .regions import open_tiff
+
+    try:
+        return open_tiff(ref, options, _locate, calibrate)
+    except tifffile.TiffFileError as exc:
+        raise ValueError(f"{ref.source}: not a readable TIFF ({exc})") from None

@@ -1177,6 +1177,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
 @hookimpl
 def grainhabit_segment(frame, params):
     """Label the grains of ``frame.image``; see the module docstring."""
+    if "tile_levels" in frame.meta:  # one tile of a frame processed by tiles: the frame's thresholds
+        return tiling.segment_tile(frame, params)
     if frame.image is None:
         raise ValueError("segment-grains needs frame.image: run a preprocess step (flatten-background) first")
     labels, split, notes = segment_image(frame.image, frame.pixel_size_nm, params)

@@ -20,6 +20,12 @@ grown by the halo, grown again until the cluster is safe in the window
 (:func:`_resolve_open`). So the tiled labels equal the untiled ones for
 clusters of any size, and the halo only needs to exceed twice the reach of
 the labelling function, not the largest cluster.
+
+The same module lets ``segment-grains`` run on the tiles of a frame that
+the host processes tile by tile through the whole chain
+(:mod:`grainhabit.chain_tiles`): :func:`grainhabit_tile_levels` computes
+the frame-wide thresholds once, from the preprocess step's preview of the
+frame, and :func:`segment_tile` labels one tile with them.
 """
 
 from __future__ import annotations
@@ -27,6 +33,14 @@ from __future__ import annotations
 from typing import Callable
 
 import numpy as np
+
+from grainhabit import hookimpl
+
+GRAINHABIT_API = 1
+#: The name this plugin module is registered under (it adds no step of its own).
+NAME = "segment-tiles"
+#: The step whose tiles this module serves.
+SEGMENT_STEP = "segment-grains"
 
 
 def _check_tiling(shape, tile_px: int, halo_px: int) -> None:
@@ -370,3 +384,100 @@ def _in_worker() -> bool:
     from grainhabit.executors import in_dask_worker
 
     return in_dask_worker() is not None
+
+
+@hookimpl
+def grainhabit_tile_levels(step, sample, params):
+    """Frame-wide thresholds of ``segment-grains`` for a frame processed by tiles.
+
+    Computed by :func:`grainhabit.plugins.segment.segment_grains.frame_levels`
+    on the preprocess step's preview of the frame (every pixel of a frame up
+    to its sample size, a regular grid of a larger one), with the frame-level
+    checks of an untiled run on the same preview.
+
+    Returns
+    -------
+    dict or None
+        ``levels`` (the thresholds) and ``empty`` (a qc note when the frame
+        holds no grains, else empty), for ``step == "segment-grains"``.
+    """
+    if step != SEGMENT_STEP:
+        return None
+    from grainhabit.plugins.segment import segment_grains as sg
+
+    p = sg.STEP.resolve(params)
+    if sample.preview is None:
+        raise ValueError("segment-grains on a frame processed by tiles needs a preprocess step that gives a "
+                         "preview of the frame (flatten-background)")
+    arr = np.asarray(sample.preview, np.float32)
+    levels = sg.frame_levels(arr, p["noise_k"])
+    t = levels["otsu"]
+    upper, lower = arr > t, arr <= t
+    mean_up = float(arr[upper].mean()) if upper.any() else t
+    mean_low = float(arr[lower].mean()) if lower.any() else t
+    empty = ""
+    if mean_up - mean_low < p["min_contrast"]:
+        empty = (f"segment-grains: qc no-grains: no grains found (contrast {mean_up - mean_low:.3f} between the "
+                 f"Otsu classes is below min_contrast {p['min_contrast']})")
+    otsu_frac = float(np.mean(upper))
+    if not empty and otsu_frac > sg.MAX_FOREGROUND:
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
+                         "to separate grains from (check polarity and threshold)")
+    fg_frac = float(np.mean(arr > levels["noise"]))
+    if not empty and fg_frac < sg.NOISE_ONLY_FRACTION:
+        empty = (f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
+                 f"{p['noise_k']:g} background sigmas above the background: noise only)")
+    if not empty and abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
+                         "common level is not background; no background to separate grains from "
+                         "(check polarity and threshold)")
+    return {"levels": levels, "empty": empty, "notes": [empty] if empty else []}
+
+
+def segment_tile(frame, params):
+    """``segment-grains`` on one tile of a frame processed by tiles, with the frame's thresholds.
+
+    Parameters
+    ----------
+    frame : FrameData
+        A tile: ``image`` preprocessed, ``meta["tile_levels"]["segment-grains"]``
+        from :func:`grainhabit_tile_levels`.
+    params : dict
+        The step's parameters.
+
+    Returns
+    -------
+    FrameData
+        ``labels``, the columns ``label``, ``split`` and ``edge_cut`` (a
+        grain touching the tile's edge; the host keeps only grains away
+        from inner edges, so kept grains touch the frame's edge), and
+        ``meta["clusters"]`` (the connected component each grain pixel
+        belongs to, for the host's ownership rule).
+    """
+    import inspect
+
+    from grainhabit.plugins.segment import segment_grains as sg
+
+    if frame.image is None:
+        raise ValueError("segment-grains needs frame.image: run a preprocess step (flatten-background) first")
+    p = sg.STEP.resolve(params)
+    shared = frame.meta["tile_levels"][SEGMENT_STEP]
+    shape = np.shape(frame.image)
+    if shared.get("empty"):
+        labels = np.zeros(shape, np.int32)
+        clusters = labels
+        flags = {"split": np.zeros(1, bool), "rejected": {"line": 0, "stroke": 0}}
+    else:
+        accepted = inspect.signature(sg.label_grains).parameters
+        kw = {k: v for k, v in p.items() if k in accepted and k not in ("image", "pixel_size_nm", "levels")}
+        kw["method"] = p["threshold"]
+        labels, clusters, flags = sg.label_grains(frame.image, frame.pixel_size_nm, shared["levels"], **kw)
+    n = int(labels.max()) if labels.size else 0
+    new = frame.replace(labels=labels.astype(np.int32), grains={}, meta={**frame.meta, "clusters": clusters})
+    new = new.with_columns(label=np.arange(1, n + 1, dtype=np.int64),
+                           split=np.asarray(flags["split"], bool)[1:n + 1], edge_cut=sg.edge_cut(labels))
+    rej = flags.get("rejected", {})
+    if rej.get("line") or rej.get("stroke"):
+        new = new.with_note(f"segment-grains: {rej.get('line', 0)} line-like and {rej.get('stroke', 0)} "
+                            "stroke-like object(s) dropped as drawn marks (scale bars, letters, text, streaks)")
+    return new
