@@ -136,3 +136,14 @@ def test_outline_candidates_bitwise_equal_the_previous_kernel():
             ref = _previous_outline_candidates(sig, tab, level)
             for x, y in zip(fast, ref):
                 assert np.array_equal(x, y)
+
+
+@pytest.mark.parametrize("faces", [("111",), ("100", "110"), ("110", "nonsense")])
+def test_view_subset_masks_the_same_models_as_isin(faces):
+    # reference: np.isin of the shapes' view index against the views asked for (the earlier code)
+    lib = gr.model_library()
+    contour, _ = _evidence(2.2, "111", 17.0)
+    fit = gr.fit_alpha(contour, None, library=lib, faces=faces)
+    ok = np.isin(lib.tables.face_id, [gr.VIEWS.index(f) for f in faces if f in gr.VIEWS])[lib.tables.model_shape]
+    assert np.array_equal(np.isfinite(fit.score), ok)
+    assert fit.face in faces

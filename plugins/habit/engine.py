@@ -713,7 +713,9 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
                               corner_radius_px)
     n = lib.signatures.shape[-1]
     sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
-    shape_ok = np.isin(tab.face_id, [VIEWS.index(f) for f in faces if f in VIEWS])
+    allowed = np.zeros(len(VIEWS), bool)                     # the views asked for, by index
+    allowed[np.array([VIEWS.index(f) for f in faces if f in VIEWS], np.intp)] = True
+    shape_ok = allowed[tab.face_id]
     if not shape_ok.any():
         raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
     valid = match.valid & shape_ok[:, None]
