@@ -147,3 +147,18 @@ def test_view_subset_masks_the_same_models_as_isin(faces):
     ok = np.isin(lib.tables.face_id, [gr.VIEWS.index(f) for f in faces if f in gr.VIEWS])[lib.tables.model_shape]
     assert np.array_equal(np.isfinite(fit.score), ok)
     assert fit.face in faces
+
+
+def test_bench_prepare_builds_the_family_tables_before_the_first_frame():
+    # the one-off cost of the plate and rod family signatures is paid in prepare(), as a worker
+    # pays it in classify-habit's prepare hook, not by the grains of the first frame
+    from grainhabit.plugins.bench import habit as bench_habit
+
+    cl.family_signatures.cache_clear()
+    cl._families_stacked.cache_clear()
+    bench_habit.prepare()
+    before = cl.family_signatures.cache_info()
+    assert before.currsize == 1
+    lib = gr.model_library()
+    cl.family_signatures(lib.signatures.shape[-1])
+    assert cl.family_signatures.cache_info().hits == before.hits + 1
