@@ -50,6 +50,28 @@ def _reference_outline_candidates(sig, tab, level=0):
     return shifts, np.sqrt(np.maximum(d[rows[:, None], shifts], 0.0)), valid
 
 
+def _previous_outline_candidates(sig, tab, level=0):
+    """The kernel before the in-place distances and the stored window offsets (plain expressions)."""
+    a = np.asarray(sig, float)
+    n = a.size
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
+    d = (a @ a + tab.sig_sq[level][:, None] - 2.0 * cc) / n
+    u = d.shape[0]
+    k0 = np.argmin(d, axis=1)
+    w = np.arange(-(n // 32), n // 32 + 1)
+    win = (k0[:, None, None] + tab.turn_off[:, :, None] + w[None, None, :]) % n
+    vals = np.take_along_axis(d, win.reshape(u, -1), axis=1).reshape(win.shape)
+    best = np.take_along_axis(win, np.argmin(vals, axis=2)[:, :, None], axis=2)[:, :, 0]
+    shifts = np.empty((u, 4), np.int64)
+    valid = np.zeros((u, 4), bool)
+    shifts[:, 0], valid[:, 0] = k0, True
+    shifts[:, 1:] = best
+    for j in range(3):
+        dup = np.any((shifts[:, :j + 1] == best[:, j, None]) & valid[:, :j + 1], axis=1)
+        valid[:, j + 1] = tab.turn_ok[:, j] & ~dup
+    return shifts, np.sqrt(np.maximum(np.take_along_axis(d, shifts, axis=1), 0.0)), valid
+
+
 # -------------------------------------------------------------------- tests
 
 @pytest.mark.parametrize("alpha,face,rot_deg", [(1.0, "100", 0.0), (1.8, "100", 9.0), (2.6, "111", 33.0),
@@ -95,3 +117,48 @@ def test_plate_and_rod_families_at_once_equal_one_at_a_time(alpha, face, rot_deg
         ref = cl.best_family(sig, fam)
         assert got[1] == ref[1]
         assert got[0] == pytest.approx(ref[0], abs=1e-12)
+
+
+def test_outline_candidates_bitwise_equal_the_previous_kernel():
+    # every shift, distance and flag, also of unused slots, on drawn grains and on noisy
+    # library signatures (each model against the whole library, all rounding levels)
+    lib = gr.model_library()
+    tab = lib.tables
+    rng = np.random.default_rng(5)
+    sigs = [gr.radial_signature(_evidence(a, f, r)[0], 256)
+            for a, f, r in [(1.2, "100", 3.0), (2.4, "111", 40.0), (3.4, "111", 7.0), (1.9, "110", 15.0)]]
+    m = lib.signatures.shape[1]
+    for j in rng.integers(0, m, 12):
+        sigs.append(lib.signatures[int(rng.integers(0, 7)), j] * (1 + 0.02 * rng.standard_normal(256)))
+    for sig in sigs:
+        for level in range(len(gr.ROUNDING_LEVELS)):
+            fast = gr.outline_candidates(sig, tab, level)
+            ref = _previous_outline_candidates(sig, tab, level)
+            for x, y in zip(fast, ref):
+                assert np.array_equal(x, y)
+
+
+@pytest.mark.parametrize("faces", [("111",), ("100", "110"), ("110", "nonsense")])
+def test_view_subset_masks_the_same_models_as_isin(faces):
+    # reference: np.isin of the shapes' view index against the views asked for (the earlier code)
+    lib = gr.model_library()
+    contour, _ = _evidence(2.2, "111", 17.0)
+    fit = gr.fit_alpha(contour, None, library=lib, faces=faces)
+    ok = np.isin(lib.tables.face_id, [gr.VIEWS.index(f) for f in faces if f in gr.VIEWS])[lib.tables.model_shape]
+    assert np.array_equal(np.isfinite(fit.score), ok)
+    assert fit.face in faces
+
+
+def test_bench_prepare_builds_the_family_tables_before_the_first_frame():
+    # the one-off cost of the plate and rod family signatures is paid in prepare(), as a worker
+    # pays it in classify-habit's prepare hook, not by the grains of the first frame
+    from grainhabit.plugins.bench import habit as bench_habit
+
+    cl.family_signatures.cache_clear()
+    cl._families_stacked.cache_clear()
+    bench_habit.prepare()
+    before = cl.family_signatures.cache_info()
+    assert before.currsize == 1
+    lib = gr.model_library()
+    cl.family_signatures(lib.signatures.shape[-1])
+    assert cl.family_signatures.cache_info().hits == before.hits + 1

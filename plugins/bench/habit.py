@@ -153,7 +153,11 @@ def match_labels(truth: np.ndarray, found: np.ndarray, min_iou: float = 0.5) -> 
 
 
 def prepare():
-    """Build the habit engine's model library as a worker does before its first frame.
+    """Build the habit engine's tables as a worker does before its first frame.
+
+    Calls classify-habit's ``grainhabit_prepare_worker`` hook (the model
+    library and the plate and rod family signatures), so that this one-off
+    cost is not charged to the grains of the first frame.
 
     Returns
     -------
@@ -162,6 +166,7 @@ def prepare():
     """
     from grainhabit.plugins.habit import classify_habit, engine
 
+    classify_habit.grainhabit_prepare_worker({classify_habit.STEP.name: {}})
     return engine.fit_options(classify_habit.STEP.resolve({}))["library"]
 
 

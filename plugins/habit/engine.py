@@ -341,7 +341,8 @@ class _Tables:
     (levels, u) the smallest RMS signature distance (any turn) of each shape
     from the octahedron seen along the same view (:func:`resolvable_alpha`);
     ``gap_inv`` (u, M, M) :func:`interior.plane_gap_inverse` of ``g_up`` (a turn
-    leaves it alone).
+    leaves it alone); ``turn_win`` (u, 3, 2 (n // 32) + 1) the shift offsets of
+    the search windows around the look-alike turns (``turn_off`` plus -n/32 ... n/32).
     """
 
     face: np.ndarray
@@ -360,6 +361,7 @@ class _Tables:
     face_id: np.ndarray
     octa_gap: np.ndarray
     gap_inv: np.ndarray
+    turn_win: np.ndarray
 
 
 def _look_alike_turns(face, sym_deg, n):
@@ -410,10 +412,12 @@ def _build_tables(alphas, faces, signatures, shape_id, bodies, rotations, symmet
         cc = np.fft.irfft(spec[:, sel] * np.conj(spec[:, top])[:, None], n, axis=-1)
         d2 = (sq[:, sel, None] + sq[:, top, None, None] - 2.0 * cc).min(axis=-1) / n
         octa_gap[:, sel] = np.sqrt(np.maximum(d2, 0.0))
-    return _Tables(face, pos, symmetry_deg[first], np.conj(np.fft.rfft(sigs, axis=-1)),
+    w = np.arange(-(n // 32), n // 32 + 1)
+    return _Tables(face, pos, symmetry_deg[first], np.ascontiguousarray(np.conj(np.fft.rfft(sigs, axis=-1))),
                    np.einsum("lij,lij->li", sigs, sigs), g_up, z_up, g_dn, z_dn,
                    np.searchsorted(uniq, shape_id), prior[first], turn_off, turn_ok,
-                   np.array([VIEWS.index(f) for f in face]), octa_gap, plane_gap_inverse(g_up))
+                   np.array([VIEWS.index(f) for f in face]), octa_gap, plane_gap_inverse(g_up),
+                   turn_off[:, :, None] + w[None, None, :])
 
 
 def outline_candidates(sig, tab: _Tables, level: int = 0):
@@ -447,14 +451,20 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     """
     a = np.asarray(sig, float)
     n = a.size
-    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
-    d = (a @ a + tab.sig_sq[level][:, None] - 2.0 * cc) / n            # squared distances
+    d = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
+    # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place: the same operations in the same order
+    np.multiply(d, 2.0, out=d)
+    np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
+    np.divide(d, n, out=d)
     u = d.shape[0]
     k0 = np.argmin(d, axis=1)
-    w = np.arange(-(n // 32), n // 32 + 1)
-    # the three windows of every shape at once: (u, 3, window)
-    win = (k0[:, None, None] + tab.turn_off[:, :, None] + w[None, None, :]) % n
-    vals = np.take_along_axis(d, win.reshape(u, -1), axis=1).reshape(win.shape)
+    # the three windows of every shape at once: (u, 3, window), as flat indices into d
+    win = k0[:, None, None] + tab.turn_win
+    if n & (n - 1) == 0:
+        np.bitwise_and(win, n - 1, out=win)          # modulo a power of two (also for negative offsets)
+    else:
+        np.remainder(win, n, out=win)
+    vals = d.ravel()[win + (np.arange(u) * n)[:, None, None]]
     best = np.take_along_axis(win, np.argmin(vals, axis=2)[:, :, None], axis=2)[:, :, 0]
     shifts = np.empty((u, 4), np.int64)
     valid = np.zeros((u, 4), bool)
@@ -703,7 +713,9 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
                               corner_radius_px)
     n = lib.signatures.shape[-1]
     sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
-    shape_ok = np.isin(tab.face_id, [VIEWS.index(f) for f in faces if f in VIEWS])
+    allowed = np.zeros(len(VIEWS), bool)                     # the views asked for, by index
+    allowed[np.array([VIEWS.index(f) for f in faces if f in VIEWS], np.intp)] = True
+    shape_ok = allowed[tab.face_id]
     if not shape_ok.any():
         raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
     valid = match.valid & shape_ok[:, None]
