@@ -182,3 +182,92 @@ def test_flatten_rejects_bad_input_with_a_clear_message():
         pp.flatten(np.zeros((20, 20, 3)), 5.0)
     out, _, _ = pp.flatten(np.full((20, 20), 7.0, np.float32), 5.0)  # a flat frame: all background
     assert out.shape == (20, 20) and np.all(out == 0)
+
+
+# --- drawn marks (readers.overlays): the reference is the whole-frame version it replaces ---------
+
+def reference_annotation_mask(image):
+    from grainhabit.plugins.readers import overlays as ov
+
+    lo, hi = image.min(), image.max()
+    if lo == hi:
+        return None
+    marks = np.zeros(image.shape, bool)
+    for value in (lo, hi):
+        candidate = image == value
+        if candidate.mean() > 0.2:
+            continue
+        labels, n = ndi.label(candidate, structure=np.ones((3, 3)))
+        if n == 0:
+            continue
+        sizes = np.bincount(labels.ravel(), minlength=n + 1)
+        sizes[0] = 0
+        keep = np.zeros(n + 1, bool)
+        big = np.flatnonzero(sizes >= 12)
+        if big.size == 0:
+            continue
+        ring = ndi.grey_dilation(labels, size=(3, 3)) * ~candidate
+        around = np.asarray(ndi.median(image, ring, index=big), float)
+        contrast = np.abs(around - float(value)) / (float(hi) - float(lo))
+        slices = ndi.find_objects(labels)
+        for lab, c in zip(big, contrast):
+            if c < ov.MIN_MARK_CONTRAST:
+                continue
+            sl = slices[lab - 1]
+            h, w = sl[0].stop - sl[0].start, sl[1].stop - sl[1].start
+            own = labels[sl] == lab
+            thick = ndi.distance_transform_edt(np.pad(own, 1)).max()
+            long, short = max(h, w), min(h, w)
+            hole = int(ndi.binary_fill_holes(own).sum()) - int(sizes[lab])
+            stroke = thick <= 2.0 and short <= ov.MAX_TEXT_HEIGHT and hole <= 3 * sizes[lab]
+            bar = short <= 12 and long >= 5 * short and long >= 20 and sizes[lab] >= 0.6 * h * w
+            keep[lab] = stroke or bar
+        marks |= keep[labels]
+    if not marks.any():
+        return None
+    return ndi.binary_dilation(marks, iterations=2)
+
+
+def _marked_frames():
+    from grainhabit.plugins.synthetic.render import HABITS, make_field, to_uint16
+
+    rng = np.random.default_rng(8)
+    frames = []
+    field = to_uint16(make_field(30, (600, 600), bu.PIXEL_SIZE_NM, {h: 1.0 for h in HABITS}, bu.ECD_NM,
+                                 seed=8).image)
+    frames.append(field.copy())  # saturated grain cores, no marks
+    img = field.copy()
+    img[560:566, 20:200] = 65535  # a scale bar near the bottom edge
+    for c0 in range(300, 420, 12):  # "text" strokes touching the bottom edge
+        img[585:600, c0] = 65535
+        img[592, c0:c0 + 7] = 65535
+    img[0:3, 0:40] = 0  # a dark frame line in the corner
+    frames.append(img)
+    noisy_img = rng.normal(120, 25, (300, 400)).clip(0, 255).astype(np.uint8)  # scattered clipped specks
+    noisy_img[100:104, 50:150] = 255
+    frames.append(noisy_img)
+    return frames
+
+
+def test_annotation_mask_equals_whole_frame_reference():
+    from grainhabit.plugins.readers import overlays as ov
+
+    for img in _marked_frames():
+        got, ref = ov.annotation_mask(img), reference_annotation_mask(img)
+        assert (got is None) == (ref is None)
+        if ref is not None:
+            np.testing.assert_array_equal(got, ref)
+    assert ov.annotation_mask(_marked_frames()[1]) is not None
+
+
+def test_ring_medians_equal_scipy_labelled_median():
+    # reference library: scipy.ndimage.median over labels (for every label that has pixels)
+    from grainhabit.plugins.readers import overlays as ov
+
+    rng = np.random.default_rng(9)
+    img = rng.integers(0, 1000, (120, 130)).astype(np.uint16)
+    ring = np.where(rng.uniform(size=img.shape) < 0.05, rng.integers(1, 9, img.shape), 0)
+    index = np.arange(1, 9)
+    np.testing.assert_array_equal(ov.ring_medians(img, ring, index),
+                                  np.asarray(ndi.median(img, ring, index=index), float))
+    assert np.isnan(ov.ring_medians(img, ring, np.array([20]))).all()
