@@ -224,7 +224,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
         ``wall`` (s, the whole :func:`grainhabit.runner.run`), ``fixed``
         (cluster start + worker preparation + close), ``net`` (wall -
         fixed), ``processing`` (workers ready to last frame staged), ``host`` (phase -> s), ``stages``
-        (stage -> total s over the frames, from the staged records),
+        and ``cpu_stages`` (stage -> total wall and CPU s over the frames, from the staged records),
         ``task`` (median, min, max, total s of the frame tasks),
         ``idle_worker_s`` (workers x processing - task total), ``cpu``
         (``workers``, ``main`` s), ``frames``, ``frames_ok``, ``grains``,
@@ -242,6 +242,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
     wall = time.perf_counter() - t0
     records = bu.staged_records(outcome.results)
     stages = {k: float(sum(r["timings"].get(k, 0.0) for r in records)) for k in FRAME_PHASES}
+    cpu_stages = {k: float(sum(r.get("cpu_timings", {}).get(k, 0.0) for r in records)) for k in FRAME_PHASES}
     task = [float(r["seconds"]) for r in records]
     s = clock.seconds
     fixed = s.get("cluster_start", 0.0) + s.get("worker_prepare", 0.0) + s.get("cluster_close", 0.0)
@@ -254,7 +255,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
     return {
         "workers": n_workers, "wall": wall, "fixed": fixed, "net": wall - fixed, "processing": processing,
         "warmup": clock.warmup_seconds,
-        "host": host_s, "stages": stages,
+        "host": host_s, "stages": stages, "cpu_stages": cpu_stages,
         "task": {"median": statistics.median(task) if task else float("nan"),
                  "min": min(task, default=float("nan")), "max": max(task, default=float("nan")),
                  "total": float(sum(task))},
