@@ -271,3 +271,54 @@ def test_ring_medians_equal_scipy_labelled_median():
     np.testing.assert_array_equal(ov.ring_medians(img, ring, index),
                                   np.asarray(ndi.median(img, ring, index=index), float))
     assert np.isnan(ov.ring_medians(img, ring, np.array([20]))).all()
+
+
+# --- corner polygons (measure.outline): the clean-up without its look-ups is the reference --------
+
+def _reference_cleaner():
+    from grainhabit.plugins.measure import outline
+
+    class ReferenceCleaner(outline._Cleaner):
+        """The clean-up as it was: every corner, turn and edge computed again at every step."""
+
+        def polygon(self, idx, refine, reach):
+            import math
+
+            k = len(idx)
+            if not refine:
+                return [tuple(self.pts[i]) for i in idx], None
+            lines = [self.line(idx[j], idx[(j + 1) % k]) for j in range(k)]
+            poly = []
+            for j in range(k):
+                vx, vy = self.pts[idx[j]]
+                p = self.meet(lines[j - 1], lines[j])
+                if p is not None and math.hypot(p[0] - vx, p[1] - vy) <= reach:
+                    poly.append(p)
+                else:
+                    poly.append((vx, vy))
+            return poly, lines
+
+        def turns_and_edges(self, idx, poly):
+            return outline._turns_and_edges(poly)
+
+    return ReferenceCleaner
+
+
+@pytest.mark.parametrize("seed", [1, 6])
+def test_corner_polygons_equal_the_uncached_clean_up(monkeypatch, seed):
+    from grainhabit.plugins.measure import measure_grains, outline
+    from grainhabit.plugins.synthetic.render import HABITS, make_field
+
+    field = make_field(40, (640, 640), bu.PIXEL_SIZE_NM, {h: 1.0 for h in HABITS}, bu.ECD_NM, seed=seed)
+    cols, contours = measure_grains.measure_labels(field.labels, None, 1.0)
+    sizes = cols["ecd_nm"]
+    keep = np.isfinite(sizes) & (sizes > 0)
+    contours, sizes = [c for c, k in zip(contours, keep) if k], sizes[keep]
+    assert len(contours) >= 30
+    for refine in (True, False):
+        fast = outline.fit_polygons(contours, sizes, refine=refine)
+        with monkeypatch.context() as m:
+            m.setattr(outline, "_Cleaner", _reference_cleaner())
+            ref = outline.fit_polygons(contours, sizes, refine=refine)
+        for a, b in zip(fast, ref):
+            np.testing.assert_array_equal(a, b)
