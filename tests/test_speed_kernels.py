@@ -182,6 +182,9 @@ def test_flatten_rejects_bad_input_with_a_clear_message():
         pp.flatten(np.zeros((20, 20, 3)), 5.0)
     out, _, _ = pp.flatten(np.full((20, 20), 7.0, np.float32), 5.0)  # a flat frame: all background
     assert out.shape == (20, 20) and np.all(out == 0)
+    dots = np.full((300, 300), 7.0, np.float32)
+    dots[::50, ::50] = 100.0  # 36 bright pixels: the 0.1 / 99.9 percentiles of the frame are still equal
+    np.testing.assert_array_equal(pp.flatten(dots, 5.0)[0], reference_flatten(dots, 5.0)[0])
 
 
 # --- drawn marks (readers.overlays): the reference is the whole-frame version it replaces ---------

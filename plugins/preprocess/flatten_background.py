@@ -607,8 +607,8 @@ def _fast_normalise(image) -> np.ndarray:
         raise ValueError("image contains NaN or infinite values")
     sub = regular_subsample(arr, NOISE_SAMPLES).astype(np.float64)
     lo, hi = np.percentile(sub, [0.1, 99.9])
-    if hi <= lo:
-        lo, hi = float(arr.min()), float(arr.max())
+    if hi <= lo:  # a frame almost all one value: the whole frame's percentiles decide, as normalise() does
+        lo, hi = np.percentile(arr, [0.1, 99.9])
         if hi <= lo:
             return np.zeros(arr.shape, WORK_DTYPE)
     out = np.subtract(arr, lo, dtype=WORK_DTYPE)
