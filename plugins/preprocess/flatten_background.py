@@ -6,7 +6,7 @@ has a physical scale is set in nm and converted with the frame's pixel size.
 
 Method, in order:
 
-1. Robust normalisation of the raw frame to [0, 1] (0.1 / 99.9 percentiles).
+1. Robust normalisation of the raw frame to [0, 1] (0.1 / 99.9 percentiles, of a regular subsample).
 2. Denoising suited to Poisson + Gaussian detector noise: the noise level
    function ``var(I) = a I + b`` is fitted from neighbour differences binned by
    intensity, the generalised Anscombe transform [1]_ makes the noise roughly
