@@ -143,7 +143,8 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
     Returns
     -------
     dict
-        ``record`` (frame record: status, error, pixel size, timings ...),
+        ``record`` (frame record: status, error, pixel size, ``timings`` and
+        ``cpu_timings``: wall and CPU seconds of this thread per stage ...),
         ``columns`` (per-grain arrays), ``outline_xy`` (V, 2) float64 nm
         and ``outline_offsets`` (n + 1,) int64, ``thumb`` uint8 image and
         ``traceback`` (text, empty if ok).
@@ -154,18 +155,18 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         "source": ref.source, "sample": sample, "status": "ok", "error": "", "grain_count": 0,
         "pixel_size_nm": float("nan"), "calibration": "", "content_hash": ref.content_hash,
         "rows": 0, "cols": 0, "polarity": "", "notes": "", "qc": "", "seconds": 0.0, "timings": {},
-        "worker_pid": os.getpid(),
+        "cpu_timings": {}, "worker_pid": os.getpid(),
     }
     result = {"record": record, "columns": {}, "outline_xy": np.zeros((0, 2)),
               "outline_offsets": np.zeros(1, dtype=np.int64), "thumb": np.zeros((0, 0), np.uint8),
               "thumb_factor": 1.0, "traceback": ""}
     t_start = time.perf_counter()
-    timings = record["timings"]
+    timings, cpu = record["timings"], record["cpu_timings"]  # wall and CPU seconds (this thread) per stage
     budget = chain_tiles.frame_budget(job.frame_memory)
     if budget and chain_tiles.estimate_bytes(ref.shape, ref.dtype) > budget:
         return chain_tiles.run_by_tiles(ref, sample, job, host, budget, record, result, t_start)
     try:
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.thread_time()
         frame = host.first_answer("grainhabit_read_frame", ref=ref, options=job.input_options)
         if frame is None:
             raise ValueError(f"no reader plugin for {ref.source} (listed by {ref.reader or '?'})")
@@ -185,6 +186,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
                       rows=int(frame.raw.shape[0]), cols=int(frame.raw.shape[1]))
         result["thumb"], result["thumb_factor"] = thumbnail(frame.raw)
         timings["read"] = time.perf_counter() - t0
+        cpu["read"] = time.thread_time() - c0
     except Exception as exc:
         _fail(record, "read", exc)
         result["traceback"] = record.pop("traceback")
@@ -192,7 +194,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         return result
 
     for name, stage, params in job.steps:
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.thread_time()
         try:
             out = host.call_step(name, frame=frame, params=params)
             if not isinstance(out, FrameData):
@@ -204,6 +206,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
             result["traceback"] = record.pop("traceback")
             break
         timings[stage] = timings.get(stage, 0.0) + time.perf_counter() - t0
+        cpu[stage] = cpu.get(stage, 0.0) + time.thread_time() - c0
 
     record["notes"] = "; ".join(frame.notes)
     record["qc"] = qc_codes(frame.notes, record["status"] == "ok" and frame.n_grains == 0)

@@ -74,3 +74,5 @@ def test_versus_script_prints_ratio_and_accuracy(tmp_path, capsys):
     fig = json.loads(out.read_text())
     assert fig["pipeline"][0]["frames_ok"] == 1 and set(fig["accuracy"]) == {"script", "grainhabit"}
     assert fig["ratio"] == pytest.approx(fig["script"][0]["wall"] / fig["pipeline"][0]["wall"])
+    assert "CPU seconds per frame and stage" in text
+    assert fig["script"][0]["cpu_stages"]["segment"] > 0 and fig["pipeline"][0]["cpu_stages"]["segment"] > 0

@@ -103,6 +103,7 @@ def test_run_clock_times_a_serial_run(tmp_path, tiny_images):
     assert clock.processing_seconds > 0 and clock.warmup_seconds == clock.warmup_seconds
     records = bu.staged_records(outcome.results)
     assert len(records) == 2 and all("classify" in r["timings"] for r in records)
+    assert all(0 < r["cpu_timings"]["segment"] for r in records)  # CPU seconds of the task's thread per stage
 
 
 def test_tree_sampler_counts_a_child_process():

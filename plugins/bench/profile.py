@@ -5,8 +5,8 @@ data) go through the serial kernel loop of ``grainhabit bench throughput``
 (read, then every default per-frame step, one BLAS/OpenMP thread) under the
 standard library's deterministic profiler, :mod:`cProfile`, after one
 untimed warm-up frame (a mirrored copy of the first, so that imports and
-memoised fits are not counted). Printed: the time per frame of every stage,
-then the functions with the largest own time and the largest cumulative
+memoised fits are not counted). Printed: the wall and CPU time per frame of
+every stage, then the functions with the largest own time and the largest cumulative
 time, in milliseconds per frame. ``--save PATH`` keeps the raw profile for
 :mod:`pstats` or a viewer such as snakeviz.
 
@@ -125,6 +125,9 @@ def run(argv: list[str]) -> int:
               file=out)
         print("per frame, ms: " + ", ".join(f"{k} {1000 * v / n:.0f}" for k, v in loop["stages"].items())
               + f"; whole frame {1000 * loop['wall'] / n:.0f}", file=out)
+        print("per frame, ms of CPU: " + ", ".join(f"{k} {1000 * v / n:.0f}" for k, v in loop["cpu_stages"].items())
+              + f"; whole frame {1000 * loop['cpu'] / n:.0f} (CPU time moves less than wall time on a shared "
+              f"machine)", file=out)
         for key, title in (("tottime", "own time"), ("cumtime", "cumulative time")):
             print(f"\nlargest {title}, ms per frame (own, cumulative, calls per frame):", file=out)
             for name, tt, ct, calls in top_functions(stats, key, args.top, n):

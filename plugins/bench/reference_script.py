@@ -18,7 +18,9 @@ Beside it, in interleaved rounds (the fastest of each case is kept):
 ``grainhabit run`` of the default chain on a local cluster of ``--workers``
 workers, timed from the call to the end of the run, cold start (cluster
 start, worker preparation) included. Printed: frames per second of both,
-the ratio pipeline / script (target >= 1.5, goal 2), and the segmentation
+the ratio pipeline / script (target >= 1.5, goal 2), of every round too, the
+CPU seconds per frame of both, stage by stage (the run's from the CPU time of
+the thread that ran each frame task), and the segmentation
 accuracy of both on the same rendered fields (same seeds; recall, precision,
 median ECD error and touching pairs split, scored as ``grainhabit bench
 accuracy`` scores them).
@@ -87,23 +89,32 @@ def script_loop(paths, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
     Returns
     -------
     dict
-        ``wall``, ``cpu`` (s), ``frames``, ``grains``, ``pixels``.
+        ``wall``, ``cpu`` (s), ``cpu_stages`` (CPU s of ``read``, ``segment``
+        (smoothing to watershed) and ``measure`` (``regionprops_table``) over
+        all frames), ``frames``, ``grains``, ``pixels``.
     """
     import tifffile
     from skimage.measure import regionprops_table
     from threadpoolctl import threadpool_limits
 
     grains = pixels = 0
+    stages = {"read": 0.0, "segment": 0.0, "measure": 0.0}
     t0, c0 = time.perf_counter(), time.process_time()
     with threadpool_limits(limits=1):
         for p in paths:
+            c = time.process_time()
             img = tifffile.imread(p)
+            c1 = time.process_time()
             labels = script_labels(img, pixel_size_nm)
+            c2 = time.process_time()
             table = regionprops_table(labels, intensity_image=img, properties=PROPERTIES)
+            c3 = time.process_time()
+            for k, v in (("read", c1 - c), ("segment", c2 - c1), ("measure", c3 - c2)):
+                stages[k] += v
             grains += len(table["label"])
             pixels += img.size
-    return {"wall": time.perf_counter() - t0, "cpu": time.process_time() - c0, "frames": len(paths),
-            "grains": grains, "pixels": pixels}
+    return {"wall": time.perf_counter() - t0, "cpu": time.process_time() - c0, "cpu_stages": stages,
+            "frames": len(paths), "grains": grains, "pixels": pixels}
 
 
 def accuracy(fields, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
@@ -146,6 +157,28 @@ def accuracy(fields, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
                    "pairs_split": t["pairs_ok"] / t["pairs"] if t["pairs"] else float("nan"),
                    "n_truth": t["n_truth"]}
             for name, t in totals.items()}
+
+
+def print_cpu_stages(script: dict, run: dict, frames: int, out) -> None:
+    """Table of CPU seconds per frame and stage: the script beside the frame tasks of ``grainhabit run``.
+
+    The run's stages are the CPU time of the thread that ran each frame task
+    (the records' ``cpu_timings``); 'frame tasks' is their sum, 'whole run'
+    all CPU of the run's processes (main process and workers, cold start
+    included) divided by the frames.
+    """
+    from grainhabit.plugins.bench.throughput import FRAME_PHASES
+
+    a, b = script.get("cpu_stages", {}), run.get("cpu_stages", {})
+    print("CPU seconds per frame and stage (the run's from its frame tasks' own threads):", file=out)
+    print(f"  {'stage':<12}{'script':>9}{'run':>9}", file=out)
+    for k in FRAME_PHASES:
+        sa = f"{a[k] / frames:>9.3f}" if k in a else f"{'-':>9}"
+        print(f"  {k:<12}{sa}{b.get(k, 0.0) / frames:>9.3f}", file=out)
+    print(f"  {'frame tasks':<12}{sum(a.values()) / frames:>9.3f}{sum(b.values()) / frames:>9.3f}", file=out)
+    whole = run["cpu"].get("workers", float("nan")) + run["cpu"].get("main", float("nan"))
+    print(f"  {'whole run':<12}{script['cpu'] / frames:>9.3f}{whole / frames:>9.3f}   (all processes, start and "
+          f"close included)", file=out)
 
 
 def render_fields(n: int, size_px: int, grains: int, seed: int) -> list:
@@ -223,6 +256,7 @@ def versus_script(args, root, workers: int, out) -> dict:
           f"(workers and main process); on {c['workers']} cores nobody else uses, the ratio would be at most "
           f"{cpu_ratio:.2f}x ({c['workers']} x script CPU / run CPU; a shared machine gives each process its share)",
           file=out)
+    print_cpu_stages(s, c, args.frames, out)
     acc = accuracy(fields[: max(0, args.accuracy_frames)]) if args.accuracy_frames > 0 else {}
     if acc:
         print(f"accuracy on the first {min(args.accuracy_frames, len(fields))} of these fields (seeds {args.seed}..), "
@@ -236,4 +270,4 @@ def versus_script(args, root, workers: int, out) -> dict:
             "target": TARGET_RATIO, "goal": GOAL_RATIO}
 
 
-__all__ = ["script_labels", "script_loop", "accuracy", "render_fields", "versus_script"]
+__all__ = ["script_labels", "script_loop", "accuracy", "print_cpu_stages", "render_fields", "versus_script"]

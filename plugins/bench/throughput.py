@@ -6,7 +6,7 @@ data) are written as TIFF files, then timed in one run, one after another:
 (a) a plain serial loop over the same kernels without the pipeline (after
     one untimed warm-up frame, a mirrored copy of the first, so that imports
     are not counted): the
-    file read with tifffile, then the default chain's step functions
+    file read by the TIFF reader plugin and thumbnailed, as in a worker, then the default chain's step functions
     (``grainhabit_preprocess`` of flatten-background, ... ,
     ``grainhabit_fit_growth`` of fit-growth-ratio) called directly with their
     default parameters, one BLAS/OpenMP thread (as a dask worker has); no
@@ -118,47 +118,61 @@ def default_chain() -> list[tuple[str, object, dict]]:
 def serial_loop(paths, pixel_size_nm: float = bu.PIXEL_SIZE_NM) -> dict:
     """Time the kernels alone: read each TIFF, run the default chain, keep nothing.
 
+    Each frame is read as a worker reads it: by the TIFF reader plugin
+    (calibration, info strip and drawn-mark checks), then thumbnailed
+    (:func:`grainhabit.task.thumbnail`); the files are listed before the
+    clock starts (a run lists them in its main process).
+
     Parameters
     ----------
     paths : sequence of path-like
         TIFF files.
     pixel_size_nm : float
-        Pixel size given to every frame (nm).
+        Pixel size given to frames whose file has none (nm).
 
     Returns
     -------
     dict
-        ``wall``, ``cpu`` and ``cpu_system`` (s, whole loop), ``stages``
-        (stage -> total s), ``frames``, ``grains``, ``pixels``.
+        ``wall``, ``cpu`` and ``cpu_system`` (s, whole loop), ``stages`` and
+        ``cpu_stages`` (stage -> total wall and CPU s), ``frames``,
+        ``grains``, ``pixels``.
     """
-    import tifffile
     from threadpoolctl import threadpool_limits
 
-    from grainhabit.frame import FrameData
-
     from grainhabit.executors import keep_freed_memory
+    from grainhabit.manager import make_host
+    from grainhabit.task import thumbnail
 
     keep_freed_memory()  # as every frame task does in a worker
     chain = default_chain()
+    host = make_host(autoload=False)
+    options = {"pixel_size_nm": float(pixel_size_nm)}
+    refs = [host.first_answer("grainhabit_list_frames", path=str(p), options=options)[0] for p in paths]
     stages = {k: 0.0 for k in FRAME_PHASES}
+    cpu_stages = {k: 0.0 for k in FRAME_PHASES}
     grains = pixels = 0
     t_start, c_start = time.perf_counter(), time.process_time()
     sys0 = resource.getrusage(resource.RUSAGE_SELF).ru_stime
     with threadpool_limits(limits=1):
-        for p in paths:
-            t0 = time.perf_counter()
-            raw = np.asarray(tifffile.imread(p), dtype=np.float32)
-            frame = FrameData(source=str(p), sample="bench", raw=raw, pixel_size_nm=float(pixel_size_nm))
+        for ref in refs:
+            t0, c0 = time.perf_counter(), time.process_time()
+            frame = host.first_answer("grainhabit_read_frame", ref=ref, options=options)
+            if not (frame.pixel_size_nm and np.isfinite(frame.pixel_size_nm)):
+                frame = frame.replace(pixel_size_nm=float(pixel_size_nm))
+            frame = frame.replace(sample="bench")
+            thumbnail(frame.raw)
             stages["read"] += time.perf_counter() - t0
+            cpu_stages["read"] += time.process_time() - c0
             for stage, func, params in chain:
-                t0 = time.perf_counter()
+                t0, c0 = time.perf_counter(), time.process_time()
                 frame = func(frame=frame, params=params)
                 stages[stage] += time.perf_counter() - t0
+                cpu_stages[stage] += time.process_time() - c0
             grains += frame.n_grains
-            pixels += raw.size
+            pixels += frame.raw.size
     return {"wall": time.perf_counter() - t_start, "cpu": time.process_time() - c_start,
             "cpu_system": resource.getrusage(resource.RUSAGE_SELF).ru_stime - sys0, "stages": stages,
-            "frames": len(paths), "grains": grains, "pixels": pixels}
+            "cpu_stages": cpu_stages, "frames": len(paths), "grains": grains, "pixels": pixels}
 
 
 def _ceiling_child(paths) -> dict:
@@ -224,7 +238,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
         ``wall`` (s, the whole :func:`grainhabit.runner.run`), ``fixed``
         (cluster start + worker preparation + close), ``net`` (wall -
         fixed), ``processing`` (workers ready to last frame staged), ``host`` (phase -> s), ``stages``
-        (stage -> total s over the frames, from the staged records),
+        and ``cpu_stages`` (stage -> total wall and CPU s over the frames, from the staged records),
         ``task`` (median, min, max, total s of the frame tasks),
         ``idle_worker_s`` (workers x processing - task total), ``cpu``
         (``workers``, ``main`` s), ``frames``, ``frames_ok``, ``grains``,
@@ -242,6 +256,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
     wall = time.perf_counter() - t0
     records = bu.staged_records(outcome.results)
     stages = {k: float(sum(r["timings"].get(k, 0.0) for r in records)) for k in FRAME_PHASES}
+    cpu_stages = {k: float(sum(r.get("cpu_timings", {}).get(k, 0.0) for r in records)) for k in FRAME_PHASES}
     task = [float(r["seconds"]) for r in records]
     s = clock.seconds
     fixed = s.get("cluster_start", 0.0) + s.get("worker_prepare", 0.0) + s.get("cluster_close", 0.0)
@@ -254,7 +269,7 @@ def pipeline_case(workflow: Path, host, workers: int, malloc_trim: int | None = 
     return {
         "workers": n_workers, "wall": wall, "fixed": fixed, "net": wall - fixed, "processing": processing,
         "warmup": clock.warmup_seconds,
-        "host": host_s, "stages": stages,
+        "host": host_s, "stages": stages, "cpu_stages": cpu_stages,
         "task": {"median": statistics.median(task) if task else float("nan"),
                  "min": min(task, default=float("nan")), "max": max(task, default=float("nan")),
                  "total": float(sum(task))},

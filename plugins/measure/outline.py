@@ -22,7 +22,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.signal import savgol_coeffs
 
 __all__ = [
     "closed_length",
@@ -245,6 +244,9 @@ def smooth_closed_contour(contour_xy, window=9, order=2):
         raise ValueError(f"window must be odd and greater than order={order}, got {window}")
     if len(c) <= window:
         return c.copy()
+    # imported here: scipy.signal brings scipy.stats with it, about 0.9 s CPU at a worker's start
+    from scipy.signal import savgol_coeffs
+
     coef = savgol_coeffs(window, order)
     h = window // 2
     ext = np.concatenate([c[-h:], c, c[:h]])
@@ -571,6 +573,10 @@ class _Cleaner:
         self.cum = cum.tolist()
         self.pts = c.tolist()
         self.cache = {}
+        # a corner depends on its two neighbours, a turn and the edge after it on two corners to each side:
+        # each clean-up step changes one or two corners, so most of them are looked up, not computed again
+        self.corners = {}
+        self.turns = {}
 
     def line(self, a, b):
         """Line (px, py, dx, dy) along edge a -> b, its middle three fifths
@@ -617,14 +623,39 @@ class _Cleaner:
             return [tuple(self.pts[i]) for i in idx], None
         lines = [self.line(idx[j], idx[(j + 1) % k]) for j in range(k)]
         poly = []
+        corners = self.corners
         for j in range(k):
-            vx, vy = self.pts[idx[j]]
-            p = self.meet(lines[j - 1], lines[j])
-            if p is not None and math.hypot(p[0] - vx, p[1] - vy) <= reach:
-                poly.append(p)
-            else:
-                poly.append((vx, vy))
+            key = (idx[j - 1], idx[j], idx[(j + 1) % k], reach)
+            v = corners.get(key)
+            if v is None:
+                vx, vy = self.pts[idx[j]]
+                p = self.meet(lines[j - 1], lines[j])
+                v = p if p is not None and math.hypot(p[0] - vx, p[1] - vy) <= reach else (vx, vy)
+                corners[key] = v
+            poly.append(v)
         return poly, lines
+
+    def turns_and_edges(self, idx, poly):
+        """:func:`_turns_and_edges` of ``poly``, the polygon of corner indices ``idx`` from :meth:`polygon`
+        (with one ``reach`` per cleaner), looked up where known."""
+        k = len(poly)
+        if k < 5:
+            return _turns_and_edges(poly)
+        known = self.turns
+        turns, edges = [], []
+        for j in range(k):
+            key = (idx[j - 2], idx[j - 1], idx[j], idx[(j + 1) % k], idx[(j + 2) % k])
+            te = known.get(key)
+            if te is None:
+                x0, y0 = poly[j - 1]
+                x1, y1 = poly[j]
+                x2, y2 = poly[(j + 1) % k]
+                ax, ay, bx, by = x1 - x0, y1 - y0, x2 - x1, y2 - y1
+                te = known[key] = (abs(math.degrees(math.atan2(ax * by - ay * bx, ax * bx + ay * by))),
+                                   math.hypot(bx, by))
+            turns.append(te[0])
+            edges.append(te[1])
+        return turns, edges
 
     def distance_to_contour(self, p):
         d = self.c - p
@@ -660,7 +691,7 @@ def _clean_polygon(c, idx, size, tol, merge_angle_deg, min_edge_fraction, corner
         poly, lines = cl.polygon(idx, refine, 3.0 * reach)
         if len(idx) <= 3:
             break
-        turn, e = _turns_and_edges(poly)
+        turn, e = cl.turns_and_edges(idx, poly) if refine else _turns_and_edges(poly)
         j = min(range(len(turn)), key=turn.__getitem__)
         if turn[j] < merge_angle_deg:
             del idx[j]
