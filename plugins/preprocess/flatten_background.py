@@ -21,11 +21,11 @@ Method, in order:
    at the scale ``background_nm``. Pixels that look like grains are masked out
    of both fits, so grains larger than the scale are interpolated under, not
    flattened away.
-4. Polarity: the residual's histogram has its main mode at the background;
-   the grains make a tail on one side. The side whose tail carries more excess
-   beyond 3 background standard deviations is the grain side. The confidence
-   is ``|B - D| / (B + D)`` of the two tails' excess; below 0.5 (or with almost
-   no tail at all) a note is added to the frame.
+4. Polarity: the strong edges of the flattened frame vote for the side round
+   which they bend (grains are convex bodies; :mod:`grainhabit.plugins.preprocess.polarity`),
+   which holds however much of the frame the grains cover. The confidence is
+   the absolute mean vote; below 0.1 a note is added to the frame.
+   (:func:`detect_polarity`, the older histogram-tail test, is kept for callers.)
 """
 
 from __future__ import annotations
@@ -37,6 +37,7 @@ from scipy import ndimage as ndi
 
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
+from grainhabit.plugins.preprocess.polarity import detect_polarity as convex_polarity
 from grainhabit.plugins.common.image_stats import (
     CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, histogram_mode, regular_subsample,
 )
@@ -46,7 +47,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.1",
+    version="1.2",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -60,8 +61,9 @@ STEP = StepInfo(
     ),
 )
 
-#: Below this confidence an auto-detected polarity gets a note.
-LOW_CONFIDENCE = 0.5
+#: Below this confidence (mean vote of the edges, see grainhabit.plugins.preprocess.polarity) an
+#: auto-detected polarity gets a note.
+LOW_CONFIDENCE = 0.1
 #: The grain level is at least this many background sigmas (a frame without grains stays dark).
 NOISE_FLOOR_SIGMAS = 10.0
 #: Lower clip of the output: background noise stays visible around 0.
@@ -521,11 +523,9 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     x, _ = denoise(x, denoise_method, smooth_px)
     bg, _, s = estimate_background(x, pixel_size_nm, background_nm, grain_sign=0)
     if polarity == "auto":
-        # the grain-free side of the background peak gives its width even where grains cover much of the
-        # frame (a two-sided clip then starts from a spread the grains inflate and finds no tail)
-        r_sub = regular_subsample(x - bg, LEVEL_SAMPLES)
-        s = min(s, one_sided_sigma(r_sub, 0.0, -1), one_sided_sigma(r_sub, 0.0, 1))
-        pol, conf = detect_polarity(x - bg, s)
+        # which side of the outlines is convex, not which histogram tail is heavier: grains may cover
+        # more of the frame than the background (see grainhabit.plugins.preprocess.polarity)
+        pol, conf = convex_polarity(x - bg)
     else:
         pol, conf = polarity, 1.0
     sign = 1 if pol == "bright" else -1
