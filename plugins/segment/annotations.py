@@ -17,8 +17,9 @@ inner pixels and at least :data:`HOLE_FRACTION` of them are far from the ink
 is not convex (solidity under :data:`GLYPH_SOLIDITY`: most letters and
 digits; objects of :data:`GLYPH_MIN_AREA_PX` or more), or it is a bar: it fills
 its axis-aligned bounding box (over :data:`BOX_FILL`) and is at least
-:data:`BAR_ASPECT` times longer than wide. Smaller pieces in ink within half a
-mark's width of a mark (a glyph cut in two) go with it.
+:data:`BAR_ASPECT` times longer than wide. Objects in ink within half a mark's
+length of a mark (a glyph cut in two, the small digits under a scale bar) go
+with it.
 """
 
 from __future__ import annotations
@@ -137,11 +138,12 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray) -> np.ndarray:
         part = labels[sl] == k
         if is_drawn(part, raw[sl], low, high):
             out.append(k)
-            reach = max(reach, 0.5 * min(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start))
+            reach = max(reach, 0.5 * max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start))
         elif ink_fraction(part, raw[sl], low, high) >= MIN_INK:
             inked.append(k)
     if out and inked:
-        # pieces of a mark (a glyph cut in two, a dot): in ink and within half a mark's width of one
+        # pieces of a mark (a glyph cut in two, a dot) and the text of a scale bar: in ink and within half
+        # a mark's length of one
         near = ndi.distance_transform_edt(~np.isin(labels, out)) <= max(reach, 2.0)
         out += [k for k in inked if near[boxes[k - 1]][labels[boxes[k - 1]] == k].any()]
     return np.asarray(sorted(out), np.int64)
