@@ -57,22 +57,35 @@ def tangent_second_derivative(image: np.ndarray, sigma: float) -> tuple[np.ndarr
 
     Returns
     -------
-    itt : ndarray of float64
+    itt : ndarray of float32
         ``(I_xx I_y^2 - 2 I_xy I_x I_y + I_yy I_x^2) / |grad I|^2``; equals
         ``-kappa |grad I|`` with ``kappa`` the curvature of the isophote,
         positive when it bends round the brighter side.
-    grad : ndarray of float64
+    grad : ndarray of float32
         ``|grad I|``.
+
+    Notes
+    -----
+    One Gaussian smoothing, then central differences (:func:`numpy.gradient`)
+    for the first and second derivatives: five times cheaper than five
+    Gaussian derivative filters, and the same to well under a percent once
+    ``sigma`` is a few pixels.
     """
-    arr = np.asarray(image, np.float64)
-    ix = ndi.gaussian_filter(arr, sigma, order=(0, 1))
-    iy = ndi.gaussian_filter(arr, sigma, order=(1, 0))
-    ixx = ndi.gaussian_filter(arr, sigma, order=(0, 2))
-    iyy = ndi.gaussian_filter(arr, sigma, order=(2, 0))
-    ixy = ndi.gaussian_filter(arr, sigma, order=(1, 1))
+    g = ndi.gaussian_filter(np.asarray(image, np.float32), sigma)
+    iy, ix = np.gradient(g)
+    iyy, iyx = np.gradient(iy)
+    ixx = np.gradient(ix, axis=1)
     g2 = ix * ix + iy * iy
-    itt = (ixx * iy * iy - 2.0 * ixy * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30)
+    itt = (ixx * iy * iy - 2.0 * iyx * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30)
     return itt, np.sqrt(g2)
+
+
+def block_mean(image: np.ndarray, f: int) -> np.ndarray:
+    """Mean of ``f x f`` blocks (the last partial row and column of blocks dropped)."""
+    if f <= 1:
+        return np.asarray(image, np.float32)
+    rows, cols = (image.shape[0] // f) * f, (image.shape[1] // f) * f
+    return np.asarray(image[:rows, :cols], np.float32).reshape(rows // f, f, cols // f, f).mean(axis=(1, 3))
 
 
 def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float = EDGE_FRACTION) -> float:
@@ -83,7 +96,10 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
     image : ndarray, shape (rows, cols)
         Any intensities (raw or denoised).
     scales : sequence of float
-        Gaussian scales in pixels of the working copy.
+        Gaussian scales in pixels of the working copy (the frame block-averaged
+        to at most :data:`MAX_SIDE_PX` per side). A scale of 8 px or more is
+        taken on a copy halved again, at half the scale (the same
+        scale-space level, a quarter of the work).
     edge_fraction : float
         Fraction of pixels (largest gradient) that vote.
 
@@ -93,18 +109,20 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
         In [-1, 1]: +1 when every edge bends round its bright side (bright
         grains), -1 round its dark side (dark grains); 0 for a flat frame.
     """
-    arr = np.asarray(image, np.float64)
-    f = int(np.ceil(max(arr.shape) / MAX_SIDE_PX))
-    if f > 1:
-        rows, cols = (arr.shape[0] // f) * f, (arr.shape[1] // f) * f
-        arr = arr[:rows, :cols].reshape(rows // f, f, cols // f, f).mean(axis=(1, 3))
-    if float(arr.max()) == float(arr.min()):
+    arr = block_mean(np.asarray(image), int(np.ceil(max(np.shape(image)) / MAX_SIDE_PX)))
+    if arr.size == 0 or float(arr.max()) == float(arr.min()):
         return 0.0
+    half = None
     votes = []
     for s in scales:
-        itt, grad = tangent_second_derivative(arr, s)
-        edge = grad >= np.quantile(grad, 1.0 - edge_fraction)
-        edge &= grad > 0
+        if s >= 8 and min(arr.shape) >= 32:
+            half = block_mean(arr, 2) if half is None else half
+            itt, grad = tangent_second_derivative(half, s / 2.0)
+        else:
+            itt, grad = tangent_second_derivative(arr, s)
+        t = np.partition(grad.ravel(), int((1.0 - edge_fraction) * (grad.size - 1)))[
+            int((1.0 - edge_fraction) * (grad.size - 1))]
+        edge = (grad >= t) & (grad > 0)
         if edge.any():
             votes.append(float(np.mean(np.sign(-itt[edge]))))
     return float(np.mean(votes)) if votes else 0.0
