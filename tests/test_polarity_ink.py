@@ -127,3 +127,25 @@ def test_drawn_mark_test_keeps_hand_annotated_particles():
         total += int(truth.max())
         dropped += annotations.drawn_labels(truth, read_gray(img_path)).size
     assert total > 100 and dropped < 0.01 * total
+
+
+def test_score_folder_offset_takes_a_second_subset(tmp_path):
+    # the every-N-th selection starts at the offset: with every=2, offset 1 scores the second picture only
+    from PIL import Image
+
+    from grainhabit.plugins.survey import score_masks
+
+    (tmp_path / "img").mkdir()
+    (tmp_path / "msk").mkdir()
+    yy, xx = np.mgrid[0:96, 0:96]
+    for name, n in (("a", 1), ("b", 2)):
+        img = np.full((96, 96), 200, np.uint8)
+        truth = np.zeros((96, 96), np.uint16)
+        for k in range(1, n + 1):
+            disc = (yy - 30 * k) ** 2 + (xx - 48) ** 2 <= 100
+            img[disc], truth[disc] = 60, k
+        Image.fromarray(np.dstack([img] * 3)).save(tmp_path / "img" / f"{name}.png")
+        Image.fromarray(truth).save(tmp_path / "msk" / f"{name}.png")
+    res = score_masks.score_folder(tmp_path / "img", tmp_path / "msk", every=2, offset=1)
+    assert res["frames"] == 1 and res["particles"] == 2
+    assert [f["name"] for f in res["per_frame"]] == ["b.png"]
