@@ -132,8 +132,10 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray) -> np.ndarray:
     low, high = ink_levels(raw)
     out, inked, reach = [], [], 0.0
     boxes = ndi.find_objects(labels)
+    # only objects holding an ink pixel at all can be marks (one pass over the frame, not one per object)
+    has_ink = np.bincount(labels[(raw <= low) | (raw >= high)].ravel(), minlength=len(boxes) + 1) > 0
     for k, sl in enumerate(boxes, start=1):
-        if sl is None:
+        if sl is None or not has_ink[k]:
             continue
         part = labels[sl] == k
         if is_drawn(part, raw[sl], low, high):
