@@ -40,6 +40,8 @@ def run(argv) -> int:
     ap.add_argument("--images", default=str(DEFAULT_DATA / "images"), help="folder of pictures")
     ap.add_argument("--masks", default=str(DEFAULT_DATA / "segmaps"), help="folder of instance masks")
     ap.add_argument("--every", type=int, default=1, help="every N-th picture only (default 1: all)")
+    ap.add_argument("--offset", type=int, default=0,
+                    help="start the every-N-th selection at this picture (default 0), for a second subset")
     ap.add_argument("--pixel-size-nm", type=float, default=1.0, help="pixel size given (default 1: pixels)")
     ap.add_argument("--json", default=None, help="also write the per-frame result to this JSON file")
     ap.add_argument("--check", action="store_true", help="exit 1 if a target is missed")
@@ -47,8 +49,11 @@ def run(argv) -> int:
     if not Path(args.images).is_dir() or not Path(args.masks).is_dir():
         print(f"real-data benchmark skipped: {args.images} or {args.masks} is not there")
         return 0
-    res = score_folder(Path(args.images), Path(args.masks), args.pixel_size_nm, args.every)
-    print(f"grain finding on {args.images} (every {args.every}):")
+    if not 0 <= args.offset < args.every:
+        print(f"--offset must be in 0..{args.every - 1}, got {args.offset}")
+        return 2
+    res = score_folder(Path(args.images), Path(args.masks), args.pixel_size_nm, args.every, offset=args.offset)
+    print(f"grain finding on {args.images} (every {args.every}, offset {args.offset}):")
     print(format_summary(res))
     ok = (res["recall"] >= TARGETS["recall"] and res["precision"] >= TARGETS["precision"]
           and res["ecd_error_median"] <= TARGETS["ecd_error_median"]

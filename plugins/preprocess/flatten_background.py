@@ -21,11 +21,11 @@ Method, in order:
    at the scale ``background_nm``. Pixels that look like grains are masked out
    of both fits, so grains larger than the scale are interpolated under, not
    flattened away.
-4. Polarity: the residual's histogram has its main mode at the background;
-   the grains make a tail on one side. The side whose tail carries more excess
-   beyond 3 background standard deviations is the grain side. The confidence
-   is ``|B - D| / (B + D)`` of the two tails' excess; below 0.5 (or with almost
-   no tail at all) a note is added to the frame.
+4. Polarity: the strong edges of the flattened frame vote for the side round
+   which they bend (grains are convex bodies; :mod:`grainhabit.plugins.preprocess.polarity`),
+   which holds however much of the frame the grains cover. The confidence is
+   the absolute mean vote; below 0.1 a note is added to the frame.
+   (:func:`detect_polarity`, the older histogram-tail test, is kept for callers.)
 
 Frame-wide quantities (normalisation percentiles, noise model, background
 surface, polarity, grain level) are computed by :func:`frame_levels` from a
@@ -46,6 +46,7 @@ from scipy import ndimage as ndi
 
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
+from grainhabit.plugins.preprocess.polarity import detect_polarity as convex_polarity
 from grainhabit.plugins.common.image_stats import (
     CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, histogram_mode, regular_subsample,
 )
@@ -69,8 +70,9 @@ STEP = StepInfo(
     ),
 )
 
-#: Below this confidence an auto-detected polarity gets a note.
-LOW_CONFIDENCE = 0.5
+#: Below this confidence (mean vote of the edges, see grainhabit.plugins.preprocess.polarity) an
+#: auto-detected polarity gets a note.
+LOW_CONFIDENCE = 0.1
 #: The grain level is at least this many background sigmas (a frame without grains stays dark).
 NOISE_FLOOR_SIGMAS = 10.0
 #: Lower clip of the output: background noise stays visible around 0.
@@ -767,10 +769,10 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
 
     surf, m, sd = background(0)
     if polarity == "auto":
-        bg_l = upsample_at(surf, shape, rl, cl) + m
-        r_l = x_l - bg_l
-        sd = min(sd, one_sided_sigma(r_l, 0.0, -1), one_sided_sigma(r_l, 0.0, 1))
-        pol, conf = detect_polarity(x_s - (upsample_at(surf, shape, rs, cs) + m), sd)
+        # which side of the outlines is convex, not which histogram tail is heavier: grains may cover
+        # more of the frame than the background (see grainhabit.plugins.preprocess.polarity); on the
+        # preview grid (every pixel up to 4 Mpx), so a tiled frame decides as an untiled one
+        pol, conf = convex_polarity(x_s - (upsample_at(surf, shape, rs, cs) + m))
     else:
         pol, conf = polarity, 1.0
     sign = 1 if pol == "bright" else -1

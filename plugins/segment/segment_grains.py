@@ -71,14 +71,14 @@ from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
 from grainhabit.plugins.preprocess.flatten_background import one_sided_sigma
-from grainhabit.plugins.segment import tiling
+from grainhabit.plugins.segment import annotations, tiling
 
 GRAINHABIT_API = 1
 
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.0",
+    version="2.1",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -1089,8 +1089,8 @@ def edge_cut(labels: np.ndarray) -> np.ndarray:
     return out[1:]
 
 
-def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None = None
-                  ) -> tuple[np.ndarray, np.ndarray, list[str]]:
+def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None = None,
+                  raw: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
     """The whole step on an array, tiled when the frame is large.
 
     Parameters
@@ -1101,6 +1101,10 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         Pixel side in nm.
     params : dict, optional
         Step parameters (see ``STEP``); missing keys take their defaults.
+    raw : ndarray, shape (rows, cols), optional
+        The frame as read; with it (and ``reject_annotations``) objects drawn
+        in flat black or white ink are dropped
+        (:mod:`grainhabit.plugins.segment.annotations`).
 
     Returns
     -------
@@ -1165,6 +1169,14 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         split = flags["split"][1:]
     n_line = sum(d["line"] for d in dropped)
     n_stroke = sum(d["stroke"] for d in dropped)
+    if raw is not None and p["reject_annotations"] and labels.max() > 0:
+        inked = annotations.drawn_labels(labels, raw)
+        if inked.size:
+            n_stroke += int(inked.size)
+            keep = np.ones(int(labels.max()) + 1, bool)
+            keep[inked] = False
+            labels, old = tiling.renumber_raster(np.where(keep[labels], labels, 0))
+            split = np.asarray(split, bool)[old - 1]
     if n_line or n_stroke:
         notes.append(f"segment-grains: {n_line} line-like and {n_stroke} stroke-like object(s) dropped as "
                      "drawn marks (scale bars, letters, text, streaks)")
@@ -1181,7 +1193,8 @@ def grainhabit_segment(frame, params):
         return tiling.segment_tile(frame, params)
     if frame.image is None:
         raise ValueError("segment-grains needs frame.image: run a preprocess step (flatten-background) first")
-    labels, split, notes = segment_image(frame.image, frame.pixel_size_nm, params)
+    raw = frame.raw if frame.raw is not None and np.shape(frame.raw) == np.shape(frame.image) else None
+    labels, split, notes = segment_image(frame.image, frame.pixel_size_nm, params, raw)
     n = int(labels.max())
     new = frame.replace(labels=labels, grains={})
     new = new.with_columns(label=np.arange(1, n + 1, dtype=np.int64), split=split,

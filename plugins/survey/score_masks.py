@@ -230,8 +230,9 @@ def find_grains(host, image: np.ndarray, pixel_size_nm: float, steps: list[tuple
 
 
 def score_folder(images: Path, masks: Path, pixel_size_nm: float = 1.0, every: int = 1,
-                 steps: list[tuple[str, dict]] | None = None, host=None, progress=None) -> dict:
-    """Score the chain on every ``every``-th annotated picture of a folder.
+                 steps: list[tuple[str, dict]] | None = None, host=None, progress=None,
+                 offset: int = 0) -> dict:
+    """Score the chain on every ``every``-th annotated picture of a folder, from the ``offset``-th.
 
     Returns
     -------
@@ -248,7 +249,7 @@ def score_folder(images: Path, masks: Path, pixel_size_nm: float = 1.0, every: i
     host = host or make_host()
     steps = steps or [("flatten-background", {}), ("segment-grains", {})]
     frames = []
-    for img_path, mask_path in pair_files(Path(images), Path(masks))[::every]:
+    for img_path, mask_path in pair_files(Path(images), Path(masks))[offset::every]:
         image, truth = read_gray(img_path), read_mask(mask_path)
         t0 = time.perf_counter()
         error = ""

@@ -1,0 +1,165 @@
+"""Polarity from the convex side of outlines, and marks drawn in flat ink (invented frames made here)."""
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.preprocess import flatten_background, polarity
+from grainhabit.plugins.segment import annotations, segment_grains
+
+REALDATA = Path(__file__).resolve().parents[1].parent / "shared" / "realdata" / "emps_train"
+
+
+def packed_discs(shape=(240, 240), radius=17, pitch=38, dark=True, seed=0):
+    """Discs on a square grid covering about 60 % of the frame, blurred, with noise; and their mask."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+    mask = np.zeros(shape, bool)
+    for cy in range(pitch // 2, shape[0], pitch):
+        for cx in range(pitch // 2, shape[1], pitch):
+            r = radius + rng.uniform(-1.5, 1.5)
+            mask |= (yy - cy) ** 2 + (xx - cx) ** 2 <= r * r
+    grain, back = (0.25, 0.8) if dark else (0.8, 0.25)
+    img = np.where(mask, grain, back)
+    img = ndi.gaussian_filter(img, 1.2) + rng.normal(0, 0.02, shape)
+    return img, mask
+
+
+def test_isophote_curvature_of_a_disc_is_one_over_radius():
+    # handbook geometry: a circle of radius R has curvature 1/R; -I_tt / |grad I| is the isophote
+    # curvature, so on the outline of a blurred disc it is about 1/R (Gaussian blur shifts it little
+    # when R >> sigma)
+    yy, xx = np.mgrid[0:201, 0:201]
+    for R in (30.0, 60.0):
+        disc = (np.hypot(yy - 100, xx - 100) <= R).astype(float)
+        itt, grad = polarity.tangent_second_derivative(disc, 2.0)
+        ring = np.abs(np.hypot(yy - 100, xx - 100) - R) < 0.5
+        kappa = np.median(-itt[ring] / grad[ring])
+        assert kappa == pytest.approx(1.0 / R, rel=0.1)
+
+
+@pytest.mark.parametrize("dark", [True, False])
+def test_polarity_of_grains_that_cover_most_of_the_frame(dark):
+    img, mask = packed_discs(dark=dark)
+    assert mask.mean() > 0.55  # the grains, not the background, are the histogram's main mode
+    pol, conf = polarity.detect_polarity(img)
+    assert pol == ("dark" if dark else "bright") and conf > 0.1
+    out, pol2, _ = flatten_background.flatten(img, 1.0)
+    assert pol2 == pol
+    # the grains come out bright (scikit-image's Otsu threshold as the outside reference split)
+    from skimage.filters import threshold_otsu
+
+    fg = out > threshold_otsu(out)
+    assert (fg == mask).mean() > 0.9
+
+
+def draw_text(shape, text, xy, size, ink):
+    """A raster of ``text`` drawn with matplotlib's Agg renderer (bold serif), as a bool mask."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig = plt.figure(figsize=(shape[1] / 100, shape[0] / 100), dpi=100)
+    fig.text(xy[0] / shape[1], 1 - xy[1] / shape[0], text, fontsize=size, fontweight="bold", family="serif",
+             va="top", ha="left", color="black")
+    fig.canvas.draw()
+    arr = np.asarray(fig.canvas.buffer_rgba())[..., 0]
+    plt.close(fig)
+    return arr[: shape[0], : shape[1]] < 128
+
+
+def test_bold_label_and_thick_scale_bar_are_dropped_grains_kept():
+    rng = np.random.default_rng(3)
+    shape = (300, 300)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+    centres = [(100, 120), (110, 220), (200, 90), (210, 190)]
+    grains = np.zeros(shape, np.int32)
+    for k, (cy, cx) in enumerate(centres, start=1):
+        grains[(yy - cy) ** 2 + (xx - cx) ** 2 <= 22 ** 2] = k
+    # 8-bit figure crop: grey support film with noise, darker grains, black ink
+    img = np.where(grains > 0, 60.0, 150.0)
+    img = ndi.gaussian_filter(img, 1.0) + rng.normal(0, 4.0, shape)
+    glyphs = draw_text(shape, "b2", (8, 6), 26, "black")
+    bar = np.zeros(shape, bool)
+    bar[276:284, 200:280] = True  # 8 px thick, 80 px long
+    img[glyphs | bar] = 0.0
+    raw = np.clip(np.round(img), 0, 255).astype(np.float32)
+    out, pol, _ = flatten_background.flatten(raw, 1.0)
+    assert pol == "dark"
+    without, _, _ = segment_grains.segment_image(out, 1.0)
+    labels, _, notes = segment_grains.segment_image(out, 1.0, raw=raw)
+    found = [int(labels[c]) for c in centres]
+    assert all(found) and len(set(found)) == 4
+    assert labels.max() == 4, "only the four grains remain"
+    assert without.max() > labels.max()  # the shape tests alone keep some of the marks
+    assert not labels[glyphs | bar].any()
+    assert any("drawn marks" in n for n in notes)
+
+
+def test_grain_clipped_to_black_is_not_ink():
+    # a dark grain whose core the exposure clipped to 0 is round and solid: it stays
+    yy, xx = np.mgrid[0:80, 0:80]
+    part = (yy - 40) ** 2 + (xx - 40) ** 2 <= 20 ** 2
+    raw = np.where(part, 0.0, 150.0) + np.random.default_rng(1).normal(0, 3, part.shape)
+    raw = np.clip(raw, 0, 255)
+    low, high = annotations.ink_levels(raw)
+    assert not annotations.is_drawn(part, raw, low, high)
+    # the same outline drawn as a ring (a glyph "O") is ink
+    ring = part & ((yy - 40) ** 2 + (xx - 40) ** 2 >= 13 ** 2)
+    raw2 = np.where(ring, 0.0, 150.0)
+    low, high = annotations.ink_levels(raw2)
+    assert annotations.is_drawn(part, raw2, low, high)
+
+
+@pytest.mark.skipif(not REALDATA.is_dir(), reason="../shared/realdata is not there")
+def test_drawn_mark_test_keeps_hand_annotated_particles():
+    # EMPS training masks (Yildirim and Cole 2021): the ink test drops under 1 % of hand-drawn particles
+    from skimage.segmentation import relabel_sequential
+
+    from grainhabit.plugins.survey.score_masks import pair_files, read_gray, read_mask
+
+    total = dropped = 0
+    for img_path, mask_path in pair_files(REALDATA / "images", REALDATA / "segmaps")[::8]:
+        truth, _, _ = relabel_sequential(read_mask(mask_path))
+        total += int(truth.max())
+        dropped += annotations.drawn_labels(truth, read_gray(img_path)).size
+    assert total > 100 and dropped < 0.01 * total
+
+
+def test_score_folder_offset_takes_a_second_subset(tmp_path):
+    # the every-N-th selection starts at the offset: with every=2, offset 1 scores the second picture only
+    from PIL import Image
+
+    from grainhabit.plugins.survey import score_masks
+
+    (tmp_path / "img").mkdir()
+    (tmp_path / "msk").mkdir()
+    yy, xx = np.mgrid[0:96, 0:96]
+    for name, n in (("a", 1), ("b", 2)):
+        img = np.full((96, 96), 200, np.uint8)
+        truth = np.zeros((96, 96), np.uint16)
+        for k in range(1, n + 1):
+            disc = (yy - 30 * k) ** 2 + (xx - 48) ** 2 <= 100
+            img[disc], truth[disc] = 60, k
+        Image.fromarray(np.dstack([img] * 3)).save(tmp_path / "img" / f"{name}.png")
+        Image.fromarray(truth).save(tmp_path / "msk" / f"{name}.png")
+    res = score_masks.score_folder(tmp_path / "img", tmp_path / "msk", every=2, offset=1)
+    assert res["frames"] == 1 and res["particles"] == 2
+    assert [f["name"] for f in res["per_frame"]] == ["b.png"]
+
+
+def test_faceted_grains_with_clipped_facets_are_not_drawn_marks():
+    # five touching squares and a turned one, rendered with facets of different brightness and the brightest
+    # clipped to the top of the grey scale: grey facets next to a clipped one are not the background seen
+    # through a glyph's hole, so all six grains are kept
+    from builders import draw_faceted_frame
+
+    row = tuple((128, 215 + 30 * i, 22, 4, 0.0) for i in range(5))
+    img, _ = draw_faceted_frame((512, 512), grains=row + ((400, 100, 18, 4, 20.0),), seed=3)
+    raw = (np.clip(img, 0, 1) * 60000).astype(np.uint16)
+    image, _, _ = flatten_background.flatten(raw, 5.0)
+    labels, _, notes = segment_grains.segment_image(image, 5.0, {}, raw)
+    assert labels.max() == 6, notes
