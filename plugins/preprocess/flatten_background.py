@@ -602,11 +602,57 @@ def _finite(raw, window) -> np.ndarray:
 
 
 def _normalised(raw: np.ndarray, levels: dict) -> np.ndarray:
-    """``(raw - lo) / span`` in :data:`WORK_DTYPE` (all zeros for a flat frame), a new array."""
+    """``(raw - lo) / span`` in :data:`WORK_DTYPE` (all zeros for a flat frame), a new array.
+
+    ``lo`` and ``span`` only bring the values near [0, 1]: the noise model,
+    the stabilising transform, the filters, the background and the grain
+    level all follow an affine change of the intensities, so the step's
+    output does not depend on them beyond rounding (they are the 0.1 and
+    99.9 percentiles of a regular grid of about :data:`LEVEL_SAMPLES` pixels,
+    see :func:`frame_levels`).
+    """
     if levels["span"] <= 0:
         return np.zeros(np.shape(raw), WORK_DTYPE)
     out = np.subtract(raw, WORK_DTYPE(levels["lo"]), dtype=WORK_DTYPE)
     out *= WORK_DTYPE(1.0 / levels["span"])
+    return out
+
+
+def block_sums(a: np.ndarray, first: int, f: int) -> np.ndarray:
+    """Sums of the rows of ``a`` over blocks of ``f`` frame rows, in float64.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, cols)
+        Rows ``first`` to ``first + n - 1`` of a frame (any float dtype).
+    first : int
+        Frame row of ``a[0]``.
+    f : int
+        Block side (px); block ``k`` holds frame rows ``k f`` to ``k f + f - 1``.
+
+    Returns
+    -------
+    ndarray of float64, shape (last // f - first // f + 1, cols)
+        Row ``i`` sums the rows of ``a`` in block ``first // f + i`` (a
+        partial sum where ``a`` holds part of the block).
+
+    Notes
+    -----
+    The rows are added in the order of their place in the block (``f``
+    whole-array additions of every ``f``-th row), the same for every block
+    whatever the memory layout of ``a``: a block held whole by one region
+    of a frame gets the same sum in any cut of the frame.
+    """
+    n = a.shape[0]
+    b0 = first // f
+    out = np.zeros(((first + n - 1) // f - b0 + 1, a.shape[1]))
+    for j in range(f):
+        o = (j - first) % f  # the first row of a at place j of its block
+        if o >= n:
+            continue
+        rows = a[o::f]
+        b = (first + o) // f - b0
+        out[b:b + rows.shape[0]] += rows
     return out
 
 
@@ -693,7 +739,11 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
             g = slice(first // cstep, first // cstep + len(range(first, core[1].stop, cstep)))
             top[r0 // 2:(r1 + 1) // 2, g] = block[0::2, cols][: (r1 - r0) // 2]
             bottom[r0 // 2:(r1 + 1) // 2, g] = block[1::2, cols][: (r1 - r0) // 2]
-    lo, hi = np.percentile(raw_s, [0.1, 99.9])
+    # the output does not depend on the affine scaling (see _normalised): a sparser grid serves, unless
+    # it sees one value only (a frame almost all background), when the whole sample decides
+    lo, hi = np.percentile(regular_subsample(raw_s, LEVEL_SAMPLES), [0.1, 99.9])
+    if hi <= lo:
+        lo, hi = np.percentile(raw_s, [0.1, 99.9])
     span = float(hi - lo)
     if span <= 0:
         lo, span = float(lo), 0.0
@@ -730,9 +780,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         rstop, cstop = min(core[0].stop, nbr * f), min(core[1].stop, nbc * f)
         if rstop > core[0].start and cstop > core[1].start:
             sub = xc[: rstop - core[0].start, : cstop - core[1].start]
-            rcuts = np.unique(np.r_[0, np.arange((rb0 + 1) * f, rstop, f) - core[0].start])
-            ccuts = np.unique(np.r_[0, np.arange((cb0 + 1) * f, cstop, f) - core[1].start])
-            part_sums = np.add.reduceat(np.add.reduceat(sub, rcuts, axis=0, dtype=np.float64), ccuts, axis=1)
+            part_sums = block_sums(block_sums(sub, core[0].start, f).T, core[1].start, f).T
             sums[rb0:rb0 + part_sums.shape[0], cb0:cb0 + part_sums.shape[1]] += part_sums
     small = sums / float(f * f) if rows_f >= f and cols_f >= f else sums
     rs, cs = _grid_coords(shape, k_s)
@@ -974,7 +1022,8 @@ def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols
     separable: along the columns of the small image first (``part``), then
     each run of output rows between the same two rows of ``part`` is one
     broadcast multiply-add, ``part[j] + t (part[j + 1] - part[j])``, written
-    straight into the result.
+    straight into the result. The column pass runs in float64, the row pass
+    in ``dtype``.
     """
     small = np.asarray(small, dtype=np.float64)
     rows = np.arange(shape[0]) if rows is None else np.asarray(rows)
@@ -982,6 +1031,8 @@ def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols
     j0c, j1c, tc = _bilinear_weights(small.shape[1], shape[1], cols)
     part = small[:, j0c] + tc * (small[:, j1c] - small[:, j0c])
     j0r, j1r, tr = _bilinear_weights(small.shape[0], shape[0], rows)
+    # the row pass, over the whole output, runs in the output's dtype (no casts)
+    part, tr = part.astype(dtype, copy=False), tr.astype(dtype, copy=False)
     out = np.empty((len(rows), len(cols)), dtype=dtype)
     starts = np.concatenate([[0], np.flatnonzero(np.diff(j0r)) + 1, [len(rows)]])
     for a, b in zip(starts[:-1], starts[1:]):
