@@ -32,8 +32,8 @@ surface, polarity, grain level) are computed by :func:`frame_levels` from a
 stream of regions of the frame and then applied to any window of it by
 :func:`apply_levels`, so that a frame too large for one worker's memory is
 processed tile by tile with the same result as in one piece
-(:mod:`grainhabit.chain_tiles`). Percentiles, polarity and the grain level
-are taken on a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every
+(:mod:`grainhabit.chain_tiles`). Polarity and the grain level (and the
+normalising percentiles, on a sparser subgrid of it) are taken on a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every
 pixel of frames up to that size).
 """
 
@@ -698,9 +698,10 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     Notes
     -----
     Two passes over the regions: raw values on a regular grid of at most
-    :data:`SAMPLE_PIXELS` pixels (percentiles), the row pairs of
-    :func:`noise_model` and the frame's mean; then the denoised frame's
-    block means (background fit), its values on the grid of
+    :data:`SAMPLE_PIXELS` pixels (percentiles, from its subgrid of about
+    :data:`LEVEL_SAMPLES` pixels unless that sees one value only), the row
+    pairs of :func:`noise_model` and the frame's mean; then the denoised
+    frame's block sums in a fixed order (:func:`block_sums`, background fit), its values on the grid of
     :data:`LEVEL_SAMPLES` pixels (background mode and sigma) and on the
     sample grid (polarity and grain level). Every grid is indexed by frame
     coordinates, so the result does not depend on how the frame was cut into
@@ -930,7 +931,13 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     ``s (I - B)`` over pixels more than 3 sigma on the grain side, but at
     least 10 sigma, so that a frame without grains is not stretched.
     Computed as :func:`frame_levels` then :func:`apply_levels`, the path a
-    tiled frame takes too.
+    tiled frame takes too. Frame-sized arrays are held in
+    :data:`WORK_DTYPE` from the normalised image on, the Gaussian runs as two
+    1-D passes (:func:`gaussian_nearest`), block means are summed in a fixed
+    order (:func:`block_sums`) and the background is interpolated once
+    (:func:`upsample_bilinear`); ``tests/test_speed_kernels.py`` keeps the
+    step as it was (float64, scipy's Gaussian, scikit-image's resampling)
+    and checks that both agree to 2e-4 of the output scale.
     """
     if polarity not in ("auto", "bright", "dark"):
         raise ValueError(f"polarity must be 'auto', 'bright' or 'dark', got {polarity!r}")
@@ -993,6 +1000,7 @@ def gaussian_nearest(image: np.ndarray, sigma_px: float, truncate: float = 4.0) 
         res += tmp
     return res
 
+
 def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols=None,
                       dtype=np.float64) -> np.ndarray:
     """Bilinear interpolation of a small image to ``shape``, edges repeated; optionally at chosen pixels only.
@@ -1043,6 +1051,7 @@ def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols
         np.multiply(tr[a:b, None], step, out=out[a:b])
         out[a:b] += part[j]
     return out
+
 
 def _bilinear_weights(n_in: int, n_out: int, index: np.ndarray):
     """Neighbours and weight of the second one for output positions ``index`` (see :func:`upsample_bilinear`)."""
