@@ -32,9 +32,11 @@ surface, polarity, grain level) are computed by :func:`frame_levels` from a
 stream of regions of the frame and then applied to any window of it by
 :func:`apply_levels`, so that a frame too large for one worker's memory is
 processed tile by tile with the same result as in one piece
-(:mod:`grainhabit.chain_tiles`). Polarity and the grain level (and the
-normalising percentiles, on a sparser subgrid of it) are taken on a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every
-pixel of frames up to that size).
+(:mod:`grainhabit.chain_tiles`). Polarity and the grain level are taken on
+a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every pixel of
+frames up to that size), the normalising percentiles on a sparser subgrid of
+it. From the normalised frame on, frame-sized arrays are float32
+(:data:`WORK_DTYPE`).
 """
 
 from __future__ import annotations
