@@ -88,9 +88,10 @@ def reference_flatten(image, px, background_nm=4000.0, denoise_method="gaussian"
     x = reference_denoise(x, smooth_px if denoise_method == "gaussian" else 0.0)
     bg, s = reference_background(x, px, background_nm, 0)
     if polarity == "auto":
-        r_sub = regular_subsample(x - bg, LEVEL_SAMPLES)
-        s = min(s, pp.one_sided_sigma(r_sub, 0.0, -1), pp.one_sided_sigma(r_sub, 0.0, 1))
-        pol, conf = pp.detect_polarity(x - bg, s)
+        # the edge-curvature vote of grainhabit.plugins.preprocess.polarity, on the whole residual
+        from grainhabit.plugins.preprocess.polarity import detect_polarity as convex_polarity
+
+        pol, conf = convex_polarity(x - bg)
     else:
         pol, conf = polarity, 1.0
     sign = 1 if pol == "bright" else -1
@@ -162,6 +163,52 @@ def test_upsample_bilinear_equals_skimage_resize(small_shape, shape):
     np.testing.assert_allclose(full, ref, atol=1e-12, rtol=0)
     rows, cols = np.arange(0, shape[0], 3), np.arange(1, shape[1], 4)
     np.testing.assert_array_equal(pp.upsample_bilinear(small, shape, rows, cols), full[np.ix_(rows, cols)])
+
+
+def test_upsample_bilinear_in_float32_equals_float64_and_its_own_subsets():
+    # reference library: skimage.transform.resize(order=1, mode="edge", anti_aliasing=False), to float32 rounding
+    from skimage.transform import resize
+
+    small = np.random.default_rng(6).normal(size=(12, 9))
+    shape = (100, 71)
+    full = pp.upsample_bilinear(small, shape, dtype=np.float32)
+    assert full.dtype == np.float32
+    np.testing.assert_allclose(full, resize(small, shape, order=1, mode="edge", anti_aliasing=False),
+                               atol=1e-6, rtol=0)
+    # a window's values are the whole frame's there, to the bit (a tile gets the frame's background)
+    rows, cols = np.arange(17, 60), np.arange(3, 50)
+    np.testing.assert_array_equal(pp.upsample_bilinear(small, shape, rows, cols, dtype=np.float32),
+                                  full[np.ix_(rows, cols)])
+
+
+@pytest.mark.parametrize("shape,f", [((256, 320), 32), ((300, 257), 16), ((64, 90), 1), ((100, 71), 7)])
+def test_block_sums_equal_skimage_block_means(shape, f):
+    # reference library: skimage.transform.downscale_local_mean (the full blocks), times the block area
+    from skimage.transform import downscale_local_mean
+
+    img = np.random.default_rng(7).uniform(0, 1, shape).astype(np.float32)
+    nb = (shape[0] // f, shape[1] // f)
+    got = pp.block_sums(pp.block_sums(img, 0, f).T, 0, f).T[: nb[0], : nb[1]]
+    ref = downscale_local_mean(img.astype(np.float64), (f, f))[: nb[0], : nb[1]] * (f * f)
+    assert got.dtype == np.float64
+    np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-9)
+
+
+def test_block_sums_of_a_cut_frame_add_up_and_whole_blocks_do_not_depend_on_the_cut():
+    img = np.random.default_rng(8).uniform(0, 1, (200, 150)).astype(np.float32)
+    f = 16
+    whole = pp.block_sums(pp.block_sums(img, 0, f).T, 0, f).T
+    pieces = np.zeros_like(whole)
+    # cores on the block grid (as the tiled chain cuts) and one cut through a block column (72 px), windows
+    # grown by a halo
+    for r0, r1, c0, c1 in ((0, 64, 0, 150), (64, 200, 0, 72), (64, 200, 72, 150)):
+        win = img[max(r0 - 5, 0):r1 + 5, max(c0 - 5, 0):c1 + 5]
+        core = win[r0 - max(r0 - 5, 0):, c0 - max(c0 - 5, 0):][: r1 - r0, : c1 - c0]
+        part = pp.block_sums(pp.block_sums(core, r0, f).T, c0, f).T
+        pieces[r0 // f:r0 // f + part.shape[0], c0 // f:c0 // f + part.shape[1]] += part
+    np.testing.assert_allclose(pieces, whole, rtol=1e-12)
+    # blocks held whole by one core (rows 0-63, every block column) have the same sum to the bit
+    np.testing.assert_array_equal(pieces[:4], whole[:4])
 
 
 def test_estimate_background_equals_reference():

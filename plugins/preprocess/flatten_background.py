@@ -32,9 +32,11 @@ surface, polarity, grain level) are computed by :func:`frame_levels` from a
 stream of regions of the frame and then applied to any window of it by
 :func:`apply_levels`, so that a frame too large for one worker's memory is
 processed tile by tile with the same result as in one piece
-(:mod:`grainhabit.chain_tiles`). Percentiles, polarity and the grain level
-are taken on a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every
-pixel of frames up to that size).
+(:mod:`grainhabit.chain_tiles`). Polarity and the grain level are taken on
+a regular sample of at most :data:`SAMPLE_PIXELS` pixels (every pixel of
+frames up to that size), the normalising percentiles on a sparser subgrid of
+it. From the normalised frame on, frame-sized arrays are float32
+(:data:`WORK_DTYPE`).
 """
 
 from __future__ import annotations
@@ -83,6 +85,10 @@ NOISE_SAMPLES = 300_000
 #: Pixels of the regular sample for frame-wide percentiles, polarity and grain level: every pixel of a frame
 #: up to this size, every k-th row and column of a larger one.
 SAMPLE_PIXELS = 4_000_000
+#: Dtype of the frame-sized arrays from the normalised image on. float32 rounds to 6e-8 of a value; the
+#: variance-stabilised values reach a few hundred, so the denoised image carries errors of about
+#: 1e-7 x (1 + b / a) in normalised units (:func:`noise_model`), far below the noise it removes.
+WORK_DTYPE = np.float32
 
 
 def _check_image(image) -> np.ndarray:
@@ -413,7 +419,7 @@ def estimate_background(image: np.ndarray, pixel_size_nm: float, background_nm: 
     # the last row/column block may be partial (zero padded): drop it if so
     small = small[: arr.shape[0] // f or 1, : arr.shape[1] // f or 1]
     surface = fit_surface(small, scale_px / f, grain_sign)
-    bg = upsample_at(surface, arr.shape, np.arange(arr.shape[0]), np.arange(arr.shape[1]))
+    bg = upsample_bilinear(surface, arr.shape)
     r_sub = regular_subsample(arr, LEVEL_SAMPLES) - regular_subsample(bg, LEVEL_SAMPLES)
     m = histogram_mode(r_sub)
     s_full = clipped_sigma(r_sub, m)
@@ -502,44 +508,6 @@ def fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int = 0) -> 
     return surface
 
 
-def upsample_at(small: np.ndarray, shape: tuple, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
-    """Bilinear interpolation of a block-level surface at frame pixels.
-
-    Parameters
-    ----------
-    small : ndarray, shape (r, c)
-        Surface on the block grid.
-    shape : tuple of int
-        (rows, cols) of the whole frame the surface spans.
-    rows, cols : ndarray of int
-        Frame rows and columns wanted (any subset, e.g. one tile's).
-
-    Returns
-    -------
-    ndarray of float64, shape (len(rows), len(cols))
-
-    Notes
-    -----
-    Pixel ``i`` of the frame samples the block grid at ``(i + 0.5) r / R -
-    0.5``, clamped to the grid (edge mode): the mapping of
-    ``skimage.transform.resize(order=1, mode="edge")`` (agrees with it to
-    1e-15 on a random surface). Each pixel's value depends on its own
-    coordinates only, so a tile gets the values the whole frame has there.
-    """
-    small = np.asarray(small, float)
-    rows, cols = np.asarray(rows), np.asarray(cols)
-    out = []
-    for idx, n_small, n_full in ((rows, small.shape[0], shape[0]), (cols, small.shape[1], shape[1])):
-        pos = np.clip((idx + 0.5) * (n_small / n_full) - 0.5, 0, n_small - 1)
-        lo = np.minimum(np.floor(pos).astype(np.intp), max(n_small - 2, 0))
-        out.append((lo, np.minimum(lo + 1, n_small - 1), pos - lo))
-    (r0, r1, wr), (c0, c1, wc) = out
-    wr, wc = wr[:, None], wc[None, :]
-    top = small[r0][:, c0] * (1 - wc) + small[r0][:, c1] * wc
-    bottom = small[r1][:, c0] * (1 - wc) + small[r1][:, c1] * wc
-    return top * (1 - wr) + bottom * wr
-
-
 def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
     """Noise sd from one side of a symmetric peak.
 
@@ -623,11 +591,73 @@ def _grid_coords(shape: tuple, step: int) -> tuple:
 
 
 def _finite(raw, window) -> np.ndarray:
-    arr = np.asarray(raw, dtype=np.float64)
-    if not np.all(np.isfinite(arr)):
+    """``raw`` as an array of its own dtype, refused with a one-line error if it holds NaN or infinity.
+
+    One float64 sum checks a float array (a NaN or infinity makes it so); only where the sum is not
+    finite (that, or values near the float64 limit) are the pixels tested one by one.
+    """
+    arr = np.asarray(raw)
+    if arr.dtype.kind not in "biuf":
+        arr = arr.astype(np.float64)
+    if arr.dtype.kind == "f" and not np.isfinite(arr.sum(dtype=np.float64)) and not np.all(np.isfinite(arr)):
         raise ValueError(f"image contains NaN or infinite values (rows {window[0].start}-{window[0].stop - 1}, "
                          f"cols {window[1].start}-{window[1].stop - 1})")
     return arr
+
+
+def _normalised(raw: np.ndarray, levels: dict) -> np.ndarray:
+    """``(raw - lo) / span`` in :data:`WORK_DTYPE` (all zeros for a flat frame), a new array.
+
+    ``lo`` and ``span`` only bring the values near [0, 1]: the noise model,
+    the stabilising transform, the filters, the background and the grain
+    level all follow an affine change of the intensities, so the step's
+    output does not depend on them beyond rounding (they are the 0.1 and
+    99.9 percentiles of a regular grid of about :data:`LEVEL_SAMPLES` pixels,
+    see :func:`frame_levels`).
+    """
+    if levels["span"] <= 0:
+        return np.zeros(np.shape(raw), WORK_DTYPE)
+    out = np.subtract(raw, WORK_DTYPE(levels["lo"]), dtype=WORK_DTYPE)
+    out *= WORK_DTYPE(1.0 / levels["span"])
+    return out
+
+
+def block_sums(a: np.ndarray, first: int, f: int) -> np.ndarray:
+    """Sums of the rows of ``a`` over blocks of ``f`` frame rows, in float64.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, cols)
+        Rows ``first`` to ``first + n - 1`` of a frame (any float dtype).
+    first : int
+        Frame row of ``a[0]``.
+    f : int
+        Block side (px); block ``k`` holds frame rows ``k f`` to ``k f + f - 1``.
+
+    Returns
+    -------
+    ndarray of float64, shape (last // f - first // f + 1, cols)
+        Row ``i`` sums the rows of ``a`` in block ``first // f + i`` (a
+        partial sum where ``a`` holds part of the block).
+
+    Notes
+    -----
+    The rows are added in the order of their place in the block (``f``
+    whole-array additions of every ``f``-th row), the same for every block
+    whatever the memory layout of ``a``: a block held whole by one region
+    of a frame gets the same sum in any cut of the frame.
+    """
+    n = a.shape[0]
+    b0 = first // f
+    out = np.zeros(((first + n - 1) // f - b0 + 1, a.shape[1]))
+    for j in range(f):
+        o = (j - first) % f  # the first row of a at place j of its block
+        if o >= n:
+            continue
+        rows = a[o::f]
+        b = (first + o) // f - b0
+        out[b:b + rows.shape[0]] += rows
+    return out
 
 
 def denoise_reach(method: str, smooth_px: float) -> int:
@@ -672,9 +702,10 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     Notes
     -----
     Two passes over the regions: raw values on a regular grid of at most
-    :data:`SAMPLE_PIXELS` pixels (percentiles), the row pairs of
-    :func:`noise_model` and the frame's mean; then the denoised frame's
-    block means (background fit), its values on the grid of
+    :data:`SAMPLE_PIXELS` pixels (percentiles, from its subgrid of about
+    :data:`LEVEL_SAMPLES` pixels unless that sees one value only), the row
+    pairs of :func:`noise_model` and the frame's mean; then the denoised
+    frame's block sums in a fixed order (:func:`block_sums`, background fit), its values on the grid of
     :data:`LEVEL_SAMPLES` pixels (background mode and sigma) and on the
     sample grid (polarity and grain level). Every grid is indexed by frame
     coordinates, so the result does not depend on how the frame was cut into
@@ -700,7 +731,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         if part:
             raw_s[part[1]] = arr[part[0]]
         total += float(arr[core[0].start - window[0].start:core[0].stop - window[0].start,
-                           core[1].start - window[1].start:core[1].stop - window[1].start].sum())
+                           core[1].start - window[1].start:core[1].stop - window[1].start].sum(dtype=np.float64))
         r0, r1 = core[0].start, min(core[0].stop, 2 * n_pairs)
         if r1 > r0:
             if r0 % 2:
@@ -713,7 +744,11 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
             g = slice(first // cstep, first // cstep + len(range(first, core[1].stop, cstep)))
             top[r0 // 2:(r1 + 1) // 2, g] = block[0::2, cols][: (r1 - r0) // 2]
             bottom[r0 // 2:(r1 + 1) // 2, g] = block[1::2, cols][: (r1 - r0) // 2]
-    lo, hi = np.percentile(raw_s, [0.1, 99.9])
+    # the output does not depend on the affine scaling (see _normalised): a sparser grid serves, unless
+    # it sees one value only (a frame almost all background), when the whole sample decides
+    lo, hi = np.percentile(regular_subsample(raw_s, LEVEL_SAMPLES), [0.1, 99.9])
+    if hi <= lo:
+        lo, hi = np.percentile(raw_s, [0.1, 99.9])
     span = float(hi - lo)
     if span <= 0:
         lo, span = float(lo), 0.0
@@ -735,7 +770,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         if whole is not None:
             x = whole[window]
         else:
-            x = _denoise_window(norm(_finite(raw, window)), lv)
+            x = _denoise_window(_normalised(raw, lv), lv)
             if x.shape == (rows_f, cols_f):
                 lv["denoised"] = x  # one region holds the whole frame: apply_levels need not denoise again
         cr = slice(core[0].start - window[0].start, core[0].stop - window[0].start)
@@ -750,9 +785,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         rstop, cstop = min(core[0].stop, nbr * f), min(core[1].stop, nbc * f)
         if rstop > core[0].start and cstop > core[1].start:
             sub = xc[: rstop - core[0].start, : cstop - core[1].start]
-            rcuts = np.unique(np.r_[0, np.arange((rb0 + 1) * f, rstop, f) - core[0].start])
-            ccuts = np.unique(np.r_[0, np.arange((cb0 + 1) * f, cstop, f) - core[1].start])
-            part_sums = np.add.reduceat(np.add.reduceat(sub, rcuts, axis=0), ccuts, axis=1)
+            part_sums = block_sums(block_sums(sub, core[0].start, f).T, core[1].start, f).T
             sums[rb0:rb0 + part_sums.shape[0], cb0:cb0 + part_sums.shape[1]] += part_sums
     small = sums / float(f * f) if rows_f >= f and cols_f >= f else sums
     rs, cs = _grid_coords(shape, k_s)
@@ -760,24 +793,24 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
 
     def background(sign: int):
         surf = fit_surface(small, scale_px / f if scale_px > 0 else 0.0, sign)
-        r_sub = x_l - upsample_at(surf, shape, rl, cl)
+        r_sub = x_l - upsample_bilinear(surf, shape, rl, cl)
         m = histogram_mode(r_sub)
         sd = clipped_sigma(r_sub, m)
         if sign:
             sd = min(sd, one_sided_sigma(r_sub, m, -sign))
-        return surf, m, sd
+        return surf, m, sd, r_sub
 
-    surf, m, sd = background(0)
+    surf, m, sd, _ = background(0)
     if polarity == "auto":
         # which side of the outlines is convex, not which histogram tail is heavier: grains may cover
         # more of the frame than the background (see grainhabit.plugins.preprocess.polarity); on the
         # preview grid (every pixel up to 4 Mpx), so a tiled frame decides as an untiled one
-        pol, conf = convex_polarity(x_s - (upsample_at(surf, shape, rs, cs) + m))
+        pol, conf = convex_polarity(x_s - (upsample_bilinear(surf, shape, rs, cs) + m))
     else:
         pol, conf = polarity, 1.0
     sign = 1 if pol == "bright" else -1
-    surf, m, sd = background(sign)
-    r = sign * (x_s - (upsample_at(surf, shape, rs, cs) + m))
+    surf, m, sd, _ = background(sign)
+    r = sign * (x_s - (upsample_bilinear(surf, shape, rs, cs) + m))
     fg = r[r > CLIP_SIGMAS * sd]
     level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
     # never stretch pure noise up to grain level
@@ -789,15 +822,34 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
 
 
 def _denoise_window(x: np.ndarray, lv: dict) -> np.ndarray:
-    """Gaussian (or no) denoising of normalised pixels with the frame's noise model."""
+    """Gaussian (or no) denoising of normalised pixels with the frame's noise model.
+
+    :func:`anscombe`, :func:`gaussian_nearest` and :func:`inverse_anscombe`
+    computed in place in the dtype of ``x`` (:data:`WORK_DTYPE`); ``x`` is
+    overwritten. Each pixel goes through the same arithmetic wherever the
+    window lies, so a tile gets the whole frame's values (beyond
+    :func:`denoise_reach` of its inner edges).
+    """
     a, b, method, sigma_px = lv["a"], lv["b"], lv["method"], lv["smooth_px"]
     if method not in ("gaussian", "none"):
         raise ValueError(f"denoise {method!r} needs the whole frame (its noise estimate and range are "
                          "frame-wide); a frame processed by tiles takes 'gaussian' or 'none'")
-    work = anscombe(x, a, b) if lv["use_vst"] else x
+    work = x
+    dt = work.dtype.type
+    if lv["use_vst"]:  # anscombe(), in place
+        work *= dt(a)
+        work += dt(0.375 * a * a + b)
+        np.maximum(work, 0.0, out=work)
+        np.sqrt(work, out=work)
+        work *= dt(2.0 / a)
     if method == "gaussian" and sigma_px > 0:
-        work = ndi.gaussian_filter(work, sigma_px, mode="nearest")
-    return inverse_anscombe(work, a, b) if lv["use_vst"] else work
+        work = gaussian_nearest(work, sigma_px)
+    if lv["use_vst"]:  # inverse_anscombe(), in place
+        work *= dt(0.5 * a)
+        np.square(work, out=work)
+        work -= dt(0.375 * a * a + b)
+        work *= dt(1.0 / a)
+    return work
 
 
 def apply_levels(raw: np.ndarray, window: tuple, levels: dict, denoised: np.ndarray | None = None) -> np.ndarray:
@@ -822,16 +874,19 @@ def apply_levels(raw: np.ndarray, window: tuple, levels: dict, denoised: np.ndar
         from the whole frame's (the filter sees no pixels beyond the edge).
     """
     if denoised is None:
-        x = _finite(raw, window)
-        x = (x - levels["lo"]) / levels["span"] if levels["span"] > 0 else np.zeros_like(x)
-        x = _denoise_window(x, levels)
+        x = _denoise_window(_normalised(_finite(raw, window), levels), levels)
     else:
         x = denoised
     rows = np.arange(window[0].start, window[0].stop)
     cols = np.arange(window[1].start, window[1].stop)
-    bg = upsample_at(levels["surface"], levels["shape"], rows, cols) + levels["offset"]
-    r = levels["sign"] * (x - bg)
-    return np.clip(r / levels["level"], LOW_CLIP, 1.0).astype(np.float32)
+    # the background (surface plus mode offset, interpolated) in WORK_DTYPE; the result is written over it
+    r = upsample_bilinear(levels["surface"] + levels["offset"], levels["shape"], rows, cols, dtype=WORK_DTYPE)
+    if levels["sign"] > 0:
+        np.subtract(x, r, out=r)
+    else:
+        np.subtract(r, x, out=r)
+    r *= WORK_DTYPE(1.0 / levels["level"])
+    return np.clip(r, LOW_CLIP, 1.0, out=r).astype(np.float32, copy=False)
 
 
 def whole_frame_regions(image: np.ndarray):
@@ -881,14 +936,25 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     ``s (I - B)`` over pixels more than 3 sigma on the grain side, but at
     least 10 sigma, so that a frame without grains is not stretched.
     Computed as :func:`frame_levels` then :func:`apply_levels`, the path a
-    tiled frame takes too.
+    tiled frame takes too. Frame-sized arrays are held in
+    :data:`WORK_DTYPE` from the normalised image on, the Gaussian runs as two
+    1-D passes (:func:`gaussian_nearest`), block means are summed in a fixed
+    order (:func:`block_sums`) and the background is interpolated once
+    (:func:`upsample_bilinear`); ``tests/test_speed_kernels.py`` keeps the
+    step as it was (float64, scipy's Gaussian, scikit-image's resampling)
+    and checks that both agree to 2e-4 of the output scale.
     """
     if polarity not in ("auto", "bright", "dark"):
         raise ValueError(f"polarity must be 'auto', 'bright' or 'dark', got {polarity!r}")
-    arr = _check_image(image)
     whole = None
-    if denoise_method not in ("gaussian", "none"):
+    if denoise_method in ("gaussian", "none"):
+        arr = np.asarray(image)  # frame_levels checks its values; no float64 copy of the frame
+        if arr.ndim != 2:
+            raise ValueError(f"image must be 2-D (rows, cols), got shape {arr.shape}")
+    else:
+        arr = _check_image(image)
         whole, _ = denoise(normalise(arr), denoise_method, smooth_px)
+        whole = whole.astype(WORK_DTYPE)
     lv = frame_levels(whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm, denoise_method,
                       smooth_px, polarity, whole=whole)
     full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
@@ -939,6 +1005,7 @@ def gaussian_nearest(image: np.ndarray, sigma_px: float, truncate: float = 4.0) 
         res += tmp
     return res
 
+
 def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols=None,
                       dtype=np.float64) -> np.ndarray:
     """Bilinear interpolation of a small image to ``shape``, edges repeated; optionally at chosen pixels only.
@@ -968,7 +1035,8 @@ def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols
     separable: along the columns of the small image first (``part``), then
     each run of output rows between the same two rows of ``part`` is one
     broadcast multiply-add, ``part[j] + t (part[j + 1] - part[j])``, written
-    straight into the result.
+    straight into the result. The column pass runs in float64, the row pass
+    in ``dtype``.
     """
     small = np.asarray(small, dtype=np.float64)
     rows = np.arange(shape[0]) if rows is None else np.asarray(rows)
@@ -976,6 +1044,8 @@ def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols
     j0c, j1c, tc = _bilinear_weights(small.shape[1], shape[1], cols)
     part = small[:, j0c] + tc * (small[:, j1c] - small[:, j0c])
     j0r, j1r, tr = _bilinear_weights(small.shape[0], shape[0], rows)
+    # the row pass, over the whole output, runs in the output's dtype (no casts)
+    part, tr = part.astype(dtype, copy=False), tr.astype(dtype, copy=False)
     out = np.empty((len(rows), len(cols)), dtype=dtype)
     starts = np.concatenate([[0], np.flatnonzero(np.diff(j0r)) + 1, [len(rows)]])
     for a, b in zip(starts[:-1], starts[1:]):
@@ -986,6 +1056,7 @@ def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols
         np.multiply(tr[a:b, None], step, out=out[a:b])
         out[a:b] += part[j]
     return out
+
 
 def _bilinear_weights(n_in: int, n_out: int, index: np.ndarray):
     """Neighbours and weight of the second one for output positions ``index`` (see :func:`upsample_bilinear`)."""
