@@ -290,18 +290,42 @@ def _clusters(frame: FrameData) -> np.ndarray:
     return lab
 
 
-def _first_pixels(labels: np.ndarray, n: int) -> np.ndarray:
-    """Row-major index (within ``labels``) of the first pixel of labels 1..n; -1 if absent."""
+def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
+    """Row-major index of the first pixel of every label 1..n (-1 for an absent label).
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        0 background, positive ids.
+    n : int, optional
+        Largest id (default ``labels.max()``).
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+
+    Notes
+    -----
+    The first pixel lies in the top row of the label's bounding box
+    (:func:`scipy.ndimage.find_objects`, one pass over the frame); only that
+    row of the box is searched, so the cost grows with the pixels and the
+    labels' widths, not with pixels times labels (``np.unique`` with
+    ``return_index`` sorts every pixel).
+    """
     from scipy import ndimage as ndi
 
+    lab = np.asarray(labels)
+    n = int(lab.max()) if n is None and lab.size else int(n or 0)
     out = np.full(n, -1, np.int64)
     if n == 0:
         return out
-    cols = labels.shape[1]
-    for k, box in enumerate(ndi.find_objects(labels, max_label=n), start=1):
-        if box is not None:
-            r, c = box[0].start, box[1]
-            out[k - 1] = r * cols + c.start + int(np.argmax(labels[r, c] == k))
+    cols = lab.shape[1]
+    for k, box in enumerate(ndi.find_objects(lab, max_label=n), start=1):
+        if box is None:
+            continue
+        r, c = box[0].start, box[1]
+        row = lab[r, c]
+        out[k - 1] = r * cols + c.start + int(np.argmax(row == k))
     return out
 
 
@@ -318,7 +342,7 @@ def _grain_rows(frame: FrameData, keep_cluster: np.ndarray, clusters: np.ndarray
     """The grain rows of the kept clusters, in frame coordinates, with their first pixels."""
     labels = np.asarray(frame.labels)
     n_lab = int(labels.max()) if labels.size else 0
-    first = _first_pixels(labels, n_lab)
+    first = first_pixels(labels, n_lab)
     lab_col = np.asarray(frame.grains.get("label", np.arange(1, n_lab + 1)), np.int64)
     f = first[lab_col - 1] if len(lab_col) else np.zeros(0, np.int64)
     fr, fc = np.divmod(np.maximum(f, 0), labels.shape[1])
@@ -363,7 +387,7 @@ def run_tile(ctx: TileContext, core: tuple, window: tuple) -> dict:
     n_clu = int(clusters.max()) if clusters.size else 0
     boxes = ndi.find_objects(clusters, max_label=n_clu) if n_clu else []
     safe = np.array([b is not None and _safe(b, shape, window, ctx.shape, MARGIN_PX) for b in boxes], bool)
-    first = _first_pixels(clusters, n_clu)
+    first = first_pixels(clusters, n_clu)
     fr, fc = np.divmod(np.maximum(first, 0), shape[1])
     fr, fc = fr + window[0].start, fc + window[1].start
     in_core = ((first >= 0) & (fr >= core[0].start) & (fr < core[0].stop)

@@ -8,6 +8,7 @@ from skimage.metrics import contingency_table
 from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import segment_grains as segment
 from grainhabit.plugins.segment import tiling
+from grainhabit.chain_tiles import first_pixels
 from builders import draw_faceted_frame
 
 
@@ -74,7 +75,7 @@ def test_first_pixels_match_numpy_unique():
     lab = sk_label(rng.random((70, 90)) > 0.6, connectivity=1)
     lab = np.where(lab > 0, (lab * 37) % (lab.max() + 5) + 1, 0)
     ids, first = np.unique(lab.ravel(), return_index=True)
-    got = tiling.first_pixels(lab)
+    got = first_pixels(lab)
     np.testing.assert_array_equal(got[ids[ids > 0] - 1], first[ids > 0])
     absent = np.setdiff1d(np.arange(1, lab.max() + 1), ids)
     assert (got[absent - 1] == -1).all()

@@ -35,6 +35,7 @@ from typing import Callable
 import numpy as np
 
 from grainhabit import hookimpl
+from grainhabit.chain_tiles import first_pixels
 
 GRAINHABIT_API = 1
 #: The name this plugin module is registered under (it adds no step of its own).
@@ -82,45 +83,6 @@ def tile_grid(shape: tuple, tile_px: int, halo_px: int) -> list[tuple[tuple, tup
             tile = (slice(max(r0 - halo_px, 0), min(r1 + halo_px, rows)),
                     slice(max(c0 - halo_px, 0), min(c1 + halo_px, cols)))
             out.append((core, tile))
-    return out
-
-
-def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
-    """Row-major index of the first pixel of every label 1..n (-1 for an absent label).
-
-    Parameters
-    ----------
-    labels : ndarray of int, shape (rows, cols)
-        0 background, positive ids.
-    n : int, optional
-        Largest id (default ``labels.max()``).
-
-    Returns
-    -------
-    ndarray of int64, shape (n,)
-
-    Notes
-    -----
-    The first pixel lies in the top row of the label's bounding box
-    (:func:`scipy.ndimage.find_objects`, one pass over the frame); only that
-    row of the box is searched, so the cost grows with the pixels and the
-    labels' widths, not with pixels times labels (``np.unique`` with
-    ``return_index`` sorts every pixel).
-    """
-    from scipy import ndimage as ndi
-
-    lab = np.asarray(labels)
-    n = int(lab.max()) if n is None and lab.size else int(n or 0)
-    out = np.full(n, -1, np.int64)
-    if n == 0:
-        return out
-    cols = lab.shape[1]
-    for k, box in enumerate(ndi.find_objects(lab, max_label=n), start=1):
-        if box is None:
-            continue
-        r, c = box[0].start, box[1]
-        row = lab[r, c]
-        out[k - 1] = r * cols + c.start + int(np.argmax(row == k))
     return out
 
 
