@@ -63,6 +63,22 @@ def unwritable(path: str, kind: str = "file") -> str | None:
         return f"{parent} is a file, not a folder"
     if not os.access(parent, os.W_OK | os.X_OK):
         return f"no permission to create {p} (in {parent})"
+    return _probe(parent, p)
+
+
+def _probe(folder: Path, target: Path) -> str | None:
+    """Create and remove an empty folder in ``folder``: why that fails, or None.
+
+    ``os.access`` answers from the permission bits alone: it says yes to root
+    everywhere and to folders of pseudo file systems (``/proc``, ``/sys``)
+    where nothing can be created. The probe leaves nothing behind.
+    """
+    import tempfile
+
+    try:
+        os.rmdir(tempfile.mkdtemp(prefix=".grainhabit-probe-", dir=folder))
+    except OSError as exc:
+        return f"cannot create {target} (in {folder}): {exc.strerror or exc}"
     return None
 
 

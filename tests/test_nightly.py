@@ -247,7 +247,7 @@ def test_check_lists_every_problem_and_run_refuses_the_same(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.yaml", "blocked"]  # nothing written
 
 
-@pytest.mark.parametrize("case", ["no-input", "no-csv", "unwritable"])
+@pytest.mark.parametrize("case", ["no-input", "no-csv", "unwritable", "pseudo-fs"])
 def test_each_up_front_refusal_is_exit_2_naming_the_key(tmp_path, case):
     frame(tmp_path, 0)
     paths, extra, results = '["data/**/*.tif"]', "", "out/r.zarr"
@@ -255,11 +255,17 @@ def test_each_up_front_refusal_is_exit_2_naming_the_key(tmp_path, case):
         paths = '["data/**/*.png"]'
     elif case == "no-csv":
         extra = "  metadata_csv: batches.csv"
+    elif case == "pseudo-fs":
+        # permission bits say yes (to root everywhere), but nothing can be created under /proc
+        if not Path("/proc/self").is_dir():
+            pytest.skip("no /proc on this system")
+        results = "/proc/grainhabit-test/r.zarr"
     else:
         (tmp_path / "ro").write_text("x")
         results = "ro/sub/r.zarr"
     w = workflow(tmp_path, paths=paths, extra=extra, results=results)
-    key = {"no-input": "input.paths", "no-csv": "input.metadata_csv", "unwritable": "output.results"}[case]
+    key = {"no-input": "input.paths", "no-csv": "input.metadata_csv", "unwritable": "output.results",
+           "pseudo-fs": "output.results"}[case]
     for cmd in ("check", "run"):
         res = run_cli(cmd, w)
         assert res.returncode == 2 and f": {key}: " in res.stderr, (cmd, res.stderr)
