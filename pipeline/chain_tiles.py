@@ -329,12 +329,67 @@ def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
     return out
 
 
-def _safe(box, shape: tuple, window: tuple, frame_shape: tuple, margin: int) -> bool:
-    """Whether a bounding box (window coordinates) lies at least ``margin`` px from every inner edge."""
+def box_is_safe(box, shape: tuple, window: tuple, frame_shape: tuple, margin: int) -> bool:
+    """Whether a bounding box (window coordinates) lies at least ``margin`` px from every inner edge.
+
+    Parameters
+    ----------
+    box : tuple of slice
+        From :func:`scipy.ndimage.find_objects`, in window coordinates.
+    shape : tuple of int
+        The window's shape.
+    window : tuple of slice
+        The window in frame coordinates (an edge on the frame's border is no inner edge).
+    frame_shape : tuple of int
+    margin : int
+    """
     return ((window[0].start == 0 or box[0].start >= margin)
             and (window[0].stop == frame_shape[0] or shape[0] - box[0].stop >= margin)
             and (window[1].start == 0 or box[1].start >= margin)
             and (window[1].stop == frame_shape[1] or shape[1] - box[1].stop >= margin))
+
+
+def owned_clusters(clusters: np.ndarray, window: tuple, core: tuple, frame_shape: tuple,
+                   margin: int) -> tuple[np.ndarray, np.ndarray]:
+    """Which clusters of a tile the tile keeps, and the core pixels of those it cannot settle.
+
+    Parameters
+    ----------
+    clusters : ndarray of int, shape of the window
+        Cluster ids 1..n of the window (0 background).
+    window, core : tuple of slice
+        The window processed and the core it owns, in frame coordinates.
+    frame_shape : tuple of int
+    margin : int
+        A cluster is safe when its bounding box lies at least this far from every inner edge.
+
+    Returns
+    -------
+    keep : ndarray of bool, shape (n + 1,)
+        Safe clusters whose first pixel (row-major) lies in the core.
+    open_pixels : ndarray of int64
+        Row-major frame indices of the core pixels of clusters that are not safe.
+    """
+    from scipy import ndimage as ndi
+
+    shape = clusters.shape
+    n_clu = int(clusters.max()) if clusters.size else 0
+    boxes = ndi.find_objects(clusters, max_label=n_clu) if n_clu else []
+    safe = np.array([b is not None and box_is_safe(b, shape, window, frame_shape, margin) for b in boxes], bool)
+    first = first_pixels(clusters, n_clu)
+    fr, fc = np.divmod(np.maximum(first, 0), shape[1])
+    fr, fc = fr + window[0].start, fc + window[1].start
+    in_core = ((first >= 0) & (fr >= core[0].start) & (fr < core[0].stop)
+               & (fc >= core[1].start) & (fc < core[1].stop))
+    keep = np.zeros(n_clu + 1, bool)
+    keep[1:] = safe & in_core
+    unsafe = np.zeros(n_clu + 1, bool)
+    unsafe[1:] = ~safe & (first >= 0)
+    cr = slice(core[0].start - window[0].start, core[0].stop - window[0].start)
+    cc = slice(core[1].start - window[1].start, core[1].stop - window[1].start)
+    rr, ccol = np.nonzero(unsafe[clusters[cr, cc]])
+    open_pixels = (rr + core[0].start).astype(np.int64) * frame_shape[1] + ccol + core[1].start
+    return keep, open_pixels
 
 
 def _grain_rows(frame: FrameData, keep_cluster: np.ndarray, clusters: np.ndarray, window: tuple,
@@ -376,30 +431,12 @@ def run_tile(ctx: TileContext, core: tuple, window: tuple) -> dict:
         clusters that are not safe in the tile), ``notes``, ``polarity``;
         or ``error`` (step, message) if a step failed.
     """
-    from scipy import ndimage as ndi
-
     try:
         frame = run_window(ctx, window)
     except StepFailed as exc:
         return {"error": (exc.step, str(exc))}
     clusters = _clusters(frame)
-    shape = clusters.shape
-    n_clu = int(clusters.max()) if clusters.size else 0
-    boxes = ndi.find_objects(clusters, max_label=n_clu) if n_clu else []
-    safe = np.array([b is not None and _safe(b, shape, window, ctx.shape, MARGIN_PX) for b in boxes], bool)
-    first = first_pixels(clusters, n_clu)
-    fr, fc = np.divmod(np.maximum(first, 0), shape[1])
-    fr, fc = fr + window[0].start, fc + window[1].start
-    in_core = ((first >= 0) & (fr >= core[0].start) & (fr < core[0].stop)
-               & (fc >= core[1].start) & (fc < core[1].stop))
-    keep = np.zeros(n_clu + 1, bool)
-    keep[1:] = safe & in_core
-    unsafe = np.zeros(n_clu + 1, bool)
-    unsafe[1:] = ~safe & (first >= 0)
-    cr = slice(core[0].start - window[0].start, core[0].stop - window[0].start)
-    cc = slice(core[1].start - window[1].start, core[1].stop - window[1].start)
-    rr, ccol = np.nonzero(unsafe[clusters[cr, cc]])
-    open_px = (rr + core[0].start).astype(np.int64) * ctx.shape[1] + ccol + core[1].start
+    keep, open_px = owned_clusters(clusters, window, core, ctx.shape, MARGIN_PX)
     out = _grain_rows(frame, keep, clusters, window, ctx.shape)
     out.update(open=open_px, notes=tuple(frame.notes), polarity=frame.polarity)
     return out
@@ -452,7 +489,7 @@ def resolve_open(ctx: TileContext, pending: np.ndarray, kept_first: set, budget:
             if cid == 0:
                 break
             cbox = ndi.find_objects((clusters == cid).astype(np.uint8))[0]
-            if _safe(cbox, clusters.shape, win, ctx.shape, MARGIN_PX):
+            if box_is_safe(cbox, clusters.shape, win, ctx.shape, MARGIN_PX):
                 found = (frame, clusters, cid, win)
                 break
             box = [min(box[0], cbox[0].start + win[0].start), max(box[1], cbox[0].stop + win[0].start),

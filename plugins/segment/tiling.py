@@ -35,7 +35,7 @@ from typing import Callable
 import numpy as np
 
 from grainhabit import hookimpl
-from grainhabit.chain_tiles import first_pixels
+from grainhabit.chain_tiles import box_is_safe, first_pixels, owned_clusters
 
 GRAINHABIT_API = 1
 #: The name this plugin module is registered under (it adds no step of its own).
@@ -114,39 +114,6 @@ def renumber_raster(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return lut[lab], old_ids
 
 
-def _safe(boxes, shape: tuple, margin: int, open_edges: tuple) -> np.ndarray:
-    """Which bounding boxes lie at least ``margin`` px from every open (inner) edge of a window.
-
-    Parameters
-    ----------
-    boxes : list of tuple of slice or None
-        From :func:`scipy.ndimage.find_objects`.
-    shape : tuple of int
-        The window's shape.
-    margin : int
-    open_edges : tuple of bool
-        (top, bottom, left, right) edges that are inner edges.
-
-    Returns
-    -------
-    ndarray of bool, shape (len(boxes),)
-        False for absent labels.
-    """
-    top, bottom, left, right = open_edges
-    out = np.zeros(len(boxes), bool)
-    for i, b in enumerate(boxes):
-        if b is None:
-            continue
-        out[i] = ((not top or b[0].start >= margin) and (not bottom or shape[0] - b[0].stop >= margin)
-                  and (not left or b[1].start >= margin) and (not right or shape[1] - b[1].stop >= margin))
-    return out
-
-
-def _open_edges(window: tuple, frame_shape: tuple) -> tuple:
-    return (window[0].start > 0, window[0].stop < frame_shape[0],
-            window[1].start > 0, window[1].stop < frame_shape[1])
-
-
 def label_one_tile(func: Callable, tile_image: np.ndarray, core: tuple, tile: tuple,
                    frame_shape: tuple, margin: int) -> tuple[np.ndarray, dict, int, np.ndarray]:
     """Label one tile; keep its safe clusters that start in its core, list the open ones.
@@ -176,29 +143,11 @@ def label_one_tile(func: Callable, tile_image: np.ndarray, core: tuple, tile: tu
         Row-major frame indices of the core pixels of clusters that are not
         safe in this tile (to be labelled again).
     """
-    from scipy import ndimage as ndi
-
     lab, clu, flags = func(tile_image)
     lab = np.asarray(lab)
     clu = np.asarray(clu)
-    n_clu = int(clu.max()) if clu.size else 0
-    boxes = ndi.find_objects(clu, max_label=n_clu) if n_clu else []
-    safe = _safe(boxes, clu.shape, margin, _open_edges(tile, frame_shape))
-    first = first_pixels(clu, n_clu)
-    fr, fc = np.divmod(first, clu.shape[1])
-    fr, fc = fr + tile[0].start, fc + tile[1].start
-    in_core = ((first >= 0) & (fr >= core[0].start) & (fr < core[0].stop)
-               & (fc >= core[1].start) & (fc < core[1].stop))
-    keep = np.zeros(n_clu + 1, bool)
-    keep[1:] = safe & in_core
-    unsafe = np.zeros(n_clu + 1, bool)
-    unsafe[1:] = ~safe & (first >= 0)
+    keep, open_pixels = owned_clusters(clu, tile, core, frame_shape, margin)
     kept = np.where(keep[clu], np.where(lab > 0, lab, -1), 0).astype(np.int32)
-    # core pixels of open clusters, in frame coordinates
-    cr = slice(core[0].start - tile[0].start, core[0].stop - tile[0].start)
-    cc = slice(core[1].start - tile[1].start, core[1].stop - tile[1].start)
-    rr, ccol = np.nonzero(unsafe[clu[cr, cc]])
-    open_pixels = ((rr + core[0].start).astype(np.int64) * frame_shape[1] + ccol + core[1].start)
     n_labels = int(lab.max()) if lab.size else 0
     return kept, flags, n_labels, open_pixels
 
@@ -241,7 +190,7 @@ def _resolve_open(img: np.ndarray, func: Callable, out: np.ndarray, pending: np.
             if cid == 0:
                 break
             cbox = ndi.find_objects((clu == cid).astype(np.uint8))[0]
-            if _safe([cbox], clu.shape, margin, _open_edges(win, img.shape))[0]:
+            if box_is_safe(cbox, clu.shape, win, img.shape, margin):
                 break
             grown = [cbox[0].start + win[0].start, cbox[0].stop + win[0].start,
                      cbox[1].start + win[1].start, cbox[1].stop + win[1].start]
