@@ -25,7 +25,6 @@ Method, in order:
    which they bend (grains are convex bodies; :mod:`grainhabit.plugins.preprocess.polarity`),
    which holds however much of the frame the grains cover. The confidence is
    the absolute mean vote; below 0.1 a note is added to the frame.
-   (:func:`detect_polarity`, the older histogram-tail test, is kept for callers.)
 
 Frame-wide quantities (normalisation percentiles, noise model, background
 surface, polarity, grain level) are computed by :func:`frame_levels` from a
@@ -532,34 +531,6 @@ def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
     if d.size < 10:
         return float("inf")
     return max(1.4826 * float(np.median(d)), 1e-9)
-
-
-def detect_polarity(residual: np.ndarray, sigma: float) -> tuple[str, float]:
-    """Decide whether grains are brighter or darker than the background.
-
-    Parameters
-    ----------
-    residual : ndarray, shape (rows, cols)
-        Frame minus background (background mode at 0).
-    sigma : float
-        Robust standard deviation of the background.
-
-    Returns
-    -------
-    polarity : {"bright", "dark"}
-    confidence : float
-        ``|B - D| / (B + D)`` in [0, 1], where ``B`` and ``D`` are the summed
-        excess ``|r| - 3 sigma`` of pixels beyond 3 sigma above and below the
-        mode; 0 when neither tail holds more than 0.2 % of the pixels.
-    """
-    r = np.asarray(residual, float)
-    t = CLIP_SIGMAS * sigma
-    up = r[r > t] - t
-    dn = -r[r < -t] - t
-    B, D = float(up.sum()), float(dn.sum())
-    if max(up.size, dn.size) < 0.002 * r.size or B + D <= 0:
-        return "bright", 0.0
-    return ("bright" if B >= D else "dark"), abs(B - D) / (B + D)
 
 
 def sample_step(shape: tuple, n: int) -> int:
