@@ -279,7 +279,17 @@ def build_parser(host: Host) -> argparse.ArgumentParser:
     return parser
 
 
-def _on_sigterm(signum, frame):
+def _on_interrupt(signum, frame):
+    """Ctrl-C or SIGTERM: mute the cluster libraries' own loggers, then stop the run.
+
+    The interruption lands wherever the main thread waits, often inside
+    dask.distributed's event-loop bridge, whose cancellation can log a
+    traceback of its own (seen with distributed's ``sync``: "cannot access
+    free variable 'future'"); the run's own log still records the
+    interruption, and the terminal gets one line.
+    """
+    for name in ("tornado.application", "tornado.general", "distributed", "asyncio"):
+        logging.getLogger(name).setLevel(logging.CRITICAL + 1)
     raise KeyboardInterrupt
 
 
@@ -288,7 +298,8 @@ def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in argv
     try:
-        signal.signal(signal.SIGTERM, _on_sigterm)
+        signal.signal(signal.SIGTERM, _on_interrupt)
+        signal.signal(signal.SIGINT, _on_interrupt)
     except ValueError:  # not the main thread
         pass
     try:
