@@ -18,7 +18,8 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.common import image_stats as imstats
 from grainhabit.plugins.preprocess import flatten_background as pp
-from grainhabit.plugins.segment import segment_grains as sg
+from grainhabit.plugins.segment import foreground as seg_fg, gaps as seg_gaps
+from grainhabit.plugins.segment import levels as seg_levels, touching as seg_touching
 
 from builders import REPO, reference_gap_lines
 
@@ -37,7 +38,7 @@ def _full_frame_foreground(arr, levels, w=3.0):
 
     fg = arr > levels["noise"]
     cores = arr > max(0.25, levels["noise"])
-    gaps, *_ = reference_gap_lines(fg, cores, sg.GAP_MIN_AREA_PX, sg.GAP_REACH_PX)
+    gaps, *_ = reference_gap_lines(fg, cores, seg_gaps.GAP_MIN_AREA_PX, seg_gaps.GAP_REACH_PX)
     pad = ndi.binary_closing(np.pad(fg, 2, mode="edge"), structure=disk(2), border_value=0)
     fg = ndi.binary_fill_holes(pad[2:-2, 2:-2] & ~gaps)
     inside = ndi.distance_transform_edt(fg)
@@ -58,8 +59,8 @@ def test_band_only_refinement_equals_full_frame_watershed(seed):
     # reference library: skimage.segmentation.watershed over the whole frame (no mask)
     raw = bu.render_frames(1, 384, grains=12, seed=seed)[0]
     arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
-    levels = sg.frame_levels(arr)
-    fast = sg.foreground(arr, bu.PIXEL_SIZE_NM, levels)
+    levels = seg_levels.frame_levels(arr)
+    fast = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels)
     assert fast.any()
     np.testing.assert_array_equal(fast, _full_frame_foreground(arr, levels))
 
@@ -156,8 +157,8 @@ def test_find_peaks_matches_scipy(seed):
     x = np.round(rng.random(300) * 6.0) / 2.0 if seed % 2 else np.cumsum(rng.normal(0, 1, 300))
     x = np.r_[0.0, np.abs(x), 0.0]
     for h, p in ((0.0, 0.0), (1.0, 0.5), (2.0, 1.0), (0.5, 3.0)):
-        np.testing.assert_array_equal(sg.find_peaks(x, h, p), scipy_find_peaks(x, height=h, prominence=p)[0])
-    assert sg.find_peaks(np.zeros(2), 0.0, 0.0).size == 0
+        np.testing.assert_array_equal(seg_touching.find_peaks(x, h, p), scipy_find_peaks(x, height=h, prominence=p)[0])
+    assert seg_touching.find_peaks(np.zeros(2), 0.0, 0.0).size == 0
 
 
 def _store_files(folder):
@@ -223,7 +224,7 @@ def test_disk_erosion_equals_distance_transform_threshold(radius):
     mask = ndi.gaussian_filter(rng.random((300, 280)), 4) > 0.5
     mask[:, :3] = True  # foreground along the frame's edge
     for m in (mask, ~mask):
-        fast = ndi.binary_erosion(m, structure=sg.disk_structure(radius), border_value=1)
+        fast = ndi.binary_erosion(m, structure=seg_fg.disk_structure(radius), border_value=1)
         np.testing.assert_array_equal(fast, ndi.distance_transform_edt(m) > radius)
 
 
@@ -238,7 +239,7 @@ def test_deepest_pixels_of_thin_components_equal_full_frame_reference():
     thin = np.flatnonzero(deepest <= 3.0) + 1
     assert 20 < thin.size < n
     want = np.isin(comp, thin) & (depth >= np.concatenate([[np.inf], deepest])[comp])
-    np.testing.assert_array_equal(sg.deepest_pixels(mask, comp, thin, 3.0), want)
+    np.testing.assert_array_equal(seg_fg.deepest_pixels(mask, comp, thin, 3.0), want)
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
@@ -249,6 +250,6 @@ def test_fill_holes_equals_scipy(seed):
     mask[50:60, 50:60] = True
     mask[54:56, 54:56] = False  # a hole for sure
     mask[0, :] = seed == 1  # the frame's edge in the foreground
-    np.testing.assert_array_equal(sg.fill_holes(mask), ndi.binary_fill_holes(mask))
+    np.testing.assert_array_equal(seg_fg.fill_holes(mask), ndi.binary_fill_holes(mask))
     for m in (np.zeros((5, 6), bool), np.ones((5, 6), bool)):
-        np.testing.assert_array_equal(sg.fill_holes(m), ndi.binary_fill_holes(m))
+        np.testing.assert_array_equal(seg_fg.fill_holes(m), ndi.binary_fill_holes(m))

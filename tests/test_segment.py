@@ -14,6 +14,7 @@ from skimage.measure import label as sk_label
 from grainhabit.frame import FrameData
 from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import segment_grains as segment
+from grainhabit.plugins.segment import gaps as seg_gaps, touching as seg_touching
 
 from builders import draw_faceted_frame, draw_frame, polygon_rows_cols, reference_gap_lines
 
@@ -207,13 +208,13 @@ def test_concavity_depth_of_two_overlapping_discs():
     mask[disk((50, 50 + d), R, shape=mask.shape)] = True
     expected = R - np.sqrt(R * R - d * d / 4)
     gap = np.sqrt(R * R + d * d / 4) - R
-    assert segment.concavity_depth(mask) == pytest.approx(gap, abs=1.0)
-    defects = segment.convexity_defects(mask, 2.0)
+    assert seg_touching.concavity_depth(mask) == pytest.approx(gap, abs=1.0)
+    defects = seg_touching.convexity_defects(mask, 2.0)
     assert len(defects) == 2
     for point, depth in defects:
         assert depth == pytest.approx(expected, abs=1.0)
         assert point[1] == pytest.approx(50 + d / 2, abs=1.5)
-    assert not segment.is_convex(mask)
+    assert not seg_touching.is_convex(mask)
 
 
 @pytest.mark.parametrize("n,r", [(0, 25), (3, 30), (4, 8), (6, 40)])
@@ -223,8 +224,8 @@ def test_digital_convex_shapes_count_as_convex(n, r):
         mask[disk((50, 50), r, shape=mask.shape)] = True
     else:
         mask[polygon(*polygon_rows_cols(50, 50, r, n, 7.0), mask.shape)] = True
-    assert segment.concavity_depth(mask) <= 1.5
-    assert segment.is_convex(mask)
+    assert seg_touching.concavity_depth(mask) <= 1.5
+    assert seg_touching.is_convex(mask)
 
 
 def test_cluster_of_three_splits_into_three():
@@ -286,10 +287,10 @@ def test_gap_lines_match_skimage_nearest_label_boundaries():
     cores = ndi.binary_dilation(seeds[:, :150], iterations=4)
     cores = np.pad(cores, ((0, 0), (0, 90)))
     mask = ndi.binary_dilation(seeds, iterations=7) | (rng.random(seeds.shape) > 0.997) | cores
-    ref, bodies, faint, n = reference_gap_lines(mask, cores, segment.GAP_MIN_AREA_PX, segment.GAP_REACH_PX)
+    ref, bodies, faint, n = reference_gap_lines(mask, cores, seg_gaps.GAP_MIN_AREA_PX, seg_gaps.GAP_REACH_PX)
     assert len(np.unique(bodies[faint])) > 2 and n > 2  # both kinds of body are present
     assert (ref & mask).any()
-    np.testing.assert_array_equal(segment.gap_lines(mask, cores), ref)
+    np.testing.assert_array_equal(seg_gaps.gap_lines(mask, cores), ref)
 
 
 def test_short_neck_is_cut_between_its_concavities():
@@ -300,9 +301,9 @@ def test_short_neck_is_cut_between_its_concavities():
     mask = np.zeros((80, 150), bool)
     mask[disk((40, 40), R, shape=mask.shape)] = True
     mask[disk((40, 40 + d), R, shape=mask.shape)] = True
-    (p, _), (q, _) = segment.convexity_defects(mask, 2.0)
+    (p, _), (q, _) = seg_touching.convexity_defects(mask, 2.0)
     assert abs(p[0] - q[0]) == pytest.approx(2 * np.sqrt(R * R - d * d / 4), abs=1.0)
-    parts = segment._cut(mask, p, q, 50.0)
+    parts = seg_touching._cut(mask, p, q, 50.0)
     assert parts is not None and len(parts) == 2
     lens = 2 * R * R * np.arccos(d / (2 * R)) - d / 2 * np.sqrt(4 * R * R - d * d)
     for part in parts:

@@ -377,7 +377,7 @@ def test_corner_polygons_equal_the_uncached_clean_up(monkeypatch, seed):
 def test_half_height_peaks_equal_scipys_labelled_maximum():
     # reference: scipy.ndimage.maximum over each 8-connected component of I > T_n (what half_height_mask
     # used before); the mask must be identical
-    from grainhabit.plugins.segment import segment_grains as sg
+    from grainhabit.plugins.segment import foreground as seg_fg
 
     rng = np.random.default_rng(4)
     image = (ndi.gaussian_filter(rng.normal(size=(300, 300)), 3) * 12).astype(np.float32)
@@ -387,6 +387,6 @@ def test_half_height_peaks_equal_scipys_labelled_maximum():
     assert n > 20
     peak = np.zeros(n + 1, np.float32)
     peak[1:] = ndi.maximum(image, lab, index=np.arange(1, n + 1))
-    deep = ndi.binary_erosion(weak, structure=sg.disk_structure(sg.EDGE_BAND_PX), border_value=1)
+    deep = ndi.binary_erosion(weak, structure=seg_fg.disk_structure(seg_fg.EDGE_BAND_PX), border_value=1)
     expected = deep | (weak & (image > edge_level * peak[lab]))
-    np.testing.assert_array_equal(sg.half_height_mask(image, noise_level, edge_level), expected)
+    np.testing.assert_array_equal(seg_fg.half_height_mask(image, noise_level, edge_level), expected)

@@ -4,7 +4,7 @@ A micrograph exported into a figure carries panel letters, scale bars and
 their text, drawn in a flat ink at the end of the grey scale (black or white):
 their pixels sit at the frame's darkest or brightest level with none of the
 detector noise that every imaged object carries. Shape tests alone miss bold
-glyphs and thick bars (see :func:`grainhabit.plugins.segment.segment_grains.annotation_kind`);
+glyphs and thick bars (see :func:`grainhabit.plugins.segment.mark_shapes.annotation_kind`);
 the ink test needs the raw frame, before any smoothing.
 
 An object is a drawn mark when at least :data:`MIN_INK` of its inner pixels

@@ -301,7 +301,7 @@ def _in_worker() -> bool:
 def grainhabit_tile_levels(step, sample, params):
     """Frame-wide thresholds of ``segment-grains`` for a frame processed by tiles.
 
-    Computed by :func:`grainhabit.plugins.segment.segment_grains.frame_levels`
+    Computed by :func:`grainhabit.plugins.segment.levels.frame_levels`
     on the preprocess step's preview of the frame (every pixel of a frame up
     to its sample size, a regular grid of a larger one), with the frame-level
     checks of an untiled run on the same preview.
@@ -315,13 +315,14 @@ def grainhabit_tile_levels(step, sample, params):
     if step != SEGMENT_STEP:
         return None
     from grainhabit.plugins.segment import segment_grains as sg
+    from grainhabit.plugins.segment.levels import frame_levels
 
     p = sg.STEP.resolve(params)
     if sample.preview is None:
         raise ValueError("segment-grains on a frame processed by tiles needs a preprocess step that gives a "
                          "preview of the frame (flatten-background)")
     arr = np.asarray(sample.preview, np.float32)
-    levels = sg.frame_levels(arr, p["noise_k"])
+    levels = frame_levels(arr, p["noise_k"])
     t = levels["otsu"]
     upper, lower = arr > t, arr <= t
     mean_up = float(arr[upper].mean()) if upper.any() else t

@@ -1,0 +1,252 @@
+"""Foreground of the segmentation: threshold, closing kept off the gap lines, outlines snapped to the gradient.
+
+See :mod:`grainhabit.plugins.segment.segment_grains` for the whole step.
+
+References
+----------
+.. [1] N. Otsu, "A threshold selection method from gray-level histograms",
+   IEEE Trans. Syst. Man Cybern. 9(1), 62-66, 1979, doi:10.1109/TSMC.1979.4310076
+.. [2] J. Sauvola and M. Pietikainen, "Adaptive document image
+   binarization", Pattern Recognition 33(2), 225-236, 2000,
+   doi:10.1016/S0031-3203(99)00055-2
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.segment.gaps import gap_lines
+from grainhabit.plugins.segment.levels import check_image, odd_size
+
+#: Width (px) of the skirt of a component that the auto threshold cuts at half its peak.
+EDGE_BAND_PX = 3.0
+_EIGHT = np.ones((3, 3), bool)
+
+
+def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: str = "noise",
+               local_block_nm: float = 2000.0, local_offset: float = 0.0,
+               close_nm: float | None = None, refine_nm: float | None = None,
+               gap_level: float = 0.25, edge_level: float = 0.5) -> np.ndarray:
+    """Foreground mask with grain extent from outlines only.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (grains bright, background 0).
+    pixel_size_nm : float
+        Pixel side in nm.
+    levels : dict
+        Frame-wide levels from :func:`frame_levels`.
+    method : {"auto", "noise", "otsu", "local", "sauvola"}
+        ``auto``: every component above the noise threshold is cut at
+        ``edge_level`` of its own peak (:func:`half_height_mask`);
+        ``noise``: a fixed number of background sigmas above the background
+        (finds faint grains too); ``otsu``: the global Otsu threshold;
+        ``local`` / ``sauvola``: local thresholds, never below ``noise``.
+    local_block_nm : float
+        Window of the local methods, in nm.
+    local_offset : float
+        Subtracted from the local threshold.
+    close_nm : float or None
+        Closing radius in nm; None means 2 pixels.
+    refine_nm : float or None
+        Half-width of the band in which outlines are moved to the largest
+        intensity gradient; None means 3 pixels, 0 turns refinement off.
+    gap_level : float
+        Level of the grain cores (image units, background 0, grains about
+        1) between which near grains are kept apart (see :func:`gap_lines`).
+    edge_level : float
+        Fraction of a component's peak where the ``auto`` outline lies.
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+
+    Notes
+    -----
+    ``D = fill_holes(close(I > T, disk(r)) & ~V)``, ``V`` the Voronoi lines
+    between the components of ``I > T`` (:func:`gap_lines`). Refinement:
+    pixels of ``D`` deeper than ``w`` (plus the deepest pixel of every thin
+    component) seed the grains, pixels farther than ``w`` outside ``D`` and
+    the pixels of ``V`` seed the background, and a watershed of the Sobel gradient magnitude decides the band in
+    between, so the outline lands on the gradient ridge: the half-height
+    point of a blurred step edge, the foot of a soft (thickness-graded)
+    edge. Holes are filled again afterwards.
+    """
+    from skimage.filters import sobel, threshold_local, threshold_sauvola
+    from skimage.morphology import disk
+    from skimage.segmentation import watershed
+
+    arr = check_image(image)
+    if method == "auto":
+        fg = half_height_mask(arr, levels["noise"], edge_level)
+    elif method == "noise":
+        fg = arr > levels["noise"]
+    elif method == "otsu":
+        fg = arr > levels["otsu"]
+    elif method in ("local", "sauvola"):
+        block = odd_size(local_block_nm / pixel_size_nm)
+        if method == "local":
+            t = threshold_local(arr, block, method="gaussian", offset=local_offset, mode="reflect")
+        else:
+            t = threshold_sauvola(arr, window_size=block, k=0.2) - local_offset
+        fg = arr > np.maximum(t, levels["noise"])
+    else:
+        raise ValueError(f"threshold must be 'auto', 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
+    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]))
+    r = int(round(2.0 if close_nm is None else close_nm / pixel_size_nm))
+    if r >= 1:
+        pad = np.pad(fg, r, mode="edge")
+        pad = ndi.binary_closing(pad, structure=disk(r), border_value=0)
+        fg = pad[r:-r, r:-r]
+    fg = fill_holes(fg & ~gaps)
+    w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
+    if w < 1 or not fg.any():
+        return fg
+    # deeper than w inside (or outside): the Euclidean distance to the nearest pixel of the other kind
+    # exceeds w, i.e. the pixel survives an erosion by the disk of radius w (the frame's edge counts as
+    # neither kind, as in scipy's distance transform); 8x cheaper than the distance transform itself
+    ball = disk_structure(w)
+    seeds = ndi.binary_erosion(fg, structure=ball, border_value=1)
+    comp, n = ndi.label(fg, structure=_EIGHT)
+    if n:
+        # components too thin to hold a deep pixel keep their deepest pixels as seeds
+        has_seed = np.zeros(n + 1, bool)
+        has_seed[comp[seeds]] = True
+        thin = np.flatnonzero(~has_seed[1:]) + 1
+        if thin.size:
+            seeds |= deepest_pixels(fg, comp, thin, w)
+    markers = np.zeros(arr.shape, np.int32)
+    markers[ndi.binary_erosion(~fg, structure=ball, border_value=1) | gaps] = 1
+    markers[seeds] = 2
+    # Flood only the undecided band and the marker pixels touching it: a marker pixel with no
+    # undecided neighbour never labels anything, but scikit-image would queue every one of them
+    # (most of the frame). With this mask the result is the same and the queue holds ~10x fewer pixels.
+    band = markers == 0
+    near_band = ndi.binary_dilation(band, structure=ndi.generate_binary_structure(2, 1))
+    ws = watershed(sobel(arr), np.where(near_band, markers, 0), mask=near_band)
+    return fill_holes(seeds | (ws == 2))
+
+
+def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 0.5) -> np.ndarray:
+    """Foreground cut at a fixed fraction of each object's own peak.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (background 0, grains bright).
+    noise_level : float
+        Noise threshold (a few background sigmas above the background).
+    edge_level : float
+        Fraction of the peak at which the outline is drawn.
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+        In every 8-connected component ``C`` of ``I > T_n``: its pixels deeper
+        than :data:`EDGE_BAND_PX` from its outline, and the others where
+        ``I > f * max_C(I)``.
+
+    Notes
+    -----
+    The half-height point of a blurred step edge is where the step was
+    (common practice: the full width at half maximum of a blurred object
+    is its true width), so a component's outline at half its own peak keeps
+    the ECD unbiased whatever the blur and however bright the grain; a
+    faint grain (a thin plate a few sigmas up) has half its peak below the
+    noise threshold and is kept whole at that threshold.
+    """
+    weak = image > noise_level
+    lab, n = ndi.label(weak, structure=_EIGHT)
+    if n == 0:
+        return weak
+    peak = np.full(n + 1, -np.inf, np.float32)
+    # each component's peak over its own pixels (scipy's labelled maximum visits the whole frame: 0.2-0.7 s
+    # on 2048 px; equal to it, tests/test_speed_kernels.py)
+    np.maximum.at(peak, lab[weak], image[weak])
+    peak[0] = 0.0
+    # only the skirt of each component (within EDGE_BAND_PX of its outline) is cut at the level: inner
+    # facet lines and texture deeper inside never split a grain
+    deep = ndi.binary_erosion(weak, structure=disk_structure(EDGE_BAND_PX), border_value=1)
+    return deep | (weak & (image > edge_level * peak[lab]))
+
+def fill_holes(mask: np.ndarray) -> np.ndarray:
+    """Fill the holes of a mask: background not 4-connected to the frame's edge.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (rows, cols)
+
+    Returns
+    -------
+    ndarray of bool
+        ``scipy.ndimage.binary_fill_holes(mask)`` (same default
+        connectivity), found with one labelling of the background instead
+        of scipy's repeated dilations (about 3x faster on a 1024^2 frame).
+    """
+    back, n = ndi.label(~mask)
+    if n == 0:
+        return mask.copy()
+    edge = np.zeros(n + 1, bool)
+    for side in (back[0], back[-1], back[:, 0], back[:, -1]):
+        edge[side] = True
+    edge[0] = False
+    return ~edge[back]
+
+
+def disk_structure(radius: float) -> np.ndarray:
+    """Structuring element of the offsets within ``radius`` (px) of the centre (Euclidean).
+
+    Returns
+    -------
+    ndarray of bool, shape (2k + 1, 2k + 1), k = floor(radius)
+        True where ``dy**2 + dx**2 <= radius**2``. An erosion by it keeps
+        exactly the pixels whose Euclidean distance transform exceeds
+        ``radius`` (with ``border_value=1``).
+    """
+    k = int(np.floor(radius))
+    dy, dx = np.mgrid[-k:k + 1, -k:k + 1]
+    return dy * dy + dx * dx <= radius * radius
+
+
+def deepest_pixels(mask: np.ndarray, labels: np.ndarray, which: np.ndarray, reach: float) -> np.ndarray:
+    """Pixels of the given components at their largest distance from the background.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (rows, cols)
+        Foreground.
+    labels : ndarray of int, shape (rows, cols)
+        Connected components of ``mask``.
+    which : ndarray of int
+        Labels to take; none of their pixels may lie farther than ``reach``
+        from the background.
+    reach : float
+        Bound on the components' depth (px).
+
+    Returns
+    -------
+    ndarray of bool, shape (rows, cols)
+        For each listed component, its pixels whose Euclidean distance
+        transform (``scipy.ndimage.distance_transform_edt(mask)``) equals the
+        component's maximum.
+
+    Notes
+    -----
+    Every pixel of such a component has its nearest background pixel within
+    ``reach``, so the distance transform of the component's bounding box
+    grown by ``ceil(reach) + 1`` (clipped to the frame) is exact there.
+    """
+    out = np.zeros(mask.shape, bool)
+    m = int(np.ceil(reach)) + 1
+    boxes = ndi.find_objects(labels)
+    for lab in which:
+        box = boxes[lab - 1]
+        if box is None:
+            continue
+        crop = tuple(slice(max(0, s.start - m), min(size, s.stop + m)) for s, size in zip(box, mask.shape))
+        depth = ndi.distance_transform_edt(mask[crop])
+        own = labels[crop] == lab
+        out[crop] |= own & (depth >= depth[own].max())
+    return out

@@ -1,0 +1,86 @@
+"""Frame-wide threshold levels of the segmentation, computed once per frame and shared by all tiles.
+
+References
+----------
+.. [1] N. Otsu, "A threshold selection method from gray-level histograms",
+   IEEE Trans. Syst. Man Cybern. 9(1), 62-66, 1979, doi:10.1109/TSMC.1979.4310076
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from grainhabit.plugins.preprocess.flatten_background import one_sided_sigma
+
+
+def check_image(image) -> np.ndarray:
+    arr = np.asarray(image)
+    if arr.ndim != 2:
+        raise ValueError(f"image must be 2-D (rows, cols), got shape {arr.shape}")
+    if arr.size == 0:
+        raise ValueError("image is empty")
+    arr = arr.astype(np.float32, copy=False)
+    if not np.all(np.isfinite(arr)):
+        raise ValueError("image contains NaN or infinite values")
+    return arr
+
+
+def odd_size(n: float) -> int:
+    n = max(3, int(round(n)))
+    return n if n % 2 else n + 1
+
+
+def otsu_threshold(image: np.ndarray, max_samples: int = 2_000_000) -> float:
+    """Global Otsu threshold, on a regular subsample of large frames.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+    max_samples : int
+        Above this many pixels every k-th row and column is used.
+
+    Returns
+    -------
+    float
+        The threshold; the image's value if it is constant.
+    """
+    from skimage.filters import threshold_otsu
+
+    from grainhabit.plugins.common.image_stats import regular_subsample
+
+    sub = regular_subsample(check_image(image), max_samples)
+    if float(sub.min()) == float(sub.max()):
+        return float(sub.min())
+    return float(threshold_otsu(sub))
+
+
+def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_000_000) -> dict:
+    """Frame-wide threshold levels, computed once and shared by all tiles.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (background about 0, grains about 1).
+    noise_k : float
+        Background sigmas above the background mode for the noise threshold.
+    max_samples : int
+        Above this many pixels a regular subsample is used.
+
+    Returns
+    -------
+    dict
+        ``otsu`` (Otsu threshold), ``background`` and ``sigma`` (mode and
+        robust noise sd of the background) and ``noise`` =
+        ``background + noise_k * sigma``.
+    """
+    from grainhabit.plugins.common.image_stats import background_level, regular_subsample
+
+    sub = regular_subsample(check_image(image), max_samples)
+    # values clipped by the preprocessing (grains at 1, the low clip) pile up in one histogram bin that
+    # can outnumber the background's mode: leave them out of the background's level and noise
+    inner = sub[(sub > sub.min()) & (sub < sub.max())]
+    bg, sigma = background_level(inner if inner.size >= 0.25 * sub.size else sub)
+    # grains are bright here: the lower half of the background peak alone gives the noise, however
+    # much of the frame the grains cover
+    sigma = min(sigma, one_sided_sigma(inner if inner.size >= 0.25 * sub.size else sub, bg, -1))
+    return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}

@@ -1,0 +1,155 @@
+"""Marks drawn on a picture told from grains by their shape: bars, strokes of letters, rows of text.
+
+The ink test on the raw frame is in :mod:`grainhabit.plugins.segment.annotations`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage as ndi
+
+#: Objects more elongated than this (area over squared inscribed diameter) are drawn lines, not grains.
+LINE_ELONGATION = 15.0
+#: Thin objects (elongation above this) with solidity below STROKE_SOLIDITY are strokes of letters.
+STROKE_ELONGATION = 4.0
+STROKE_SOLIDITY = 0.7
+#: Strokes are drawn at screen resolution: at most this half-width (px); a wider curved band is an unsplit
+#: chain of grains, not a letter.
+STROKE_MAX_HALF_WIDTH_PX = 4.0
+#: Text rows: at least this many glyphs, bottoms (or tops) within this many pixels, glyphs less solid than this.
+TEXT_MIN_GLYPHS = 3
+TEXT_BASELINE_PX = 2
+TEXT_SOLIDITY = 0.85
+
+
+def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
+    """Whether an object is a mark drawn on the picture rather than a grain.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+        The object (holes filled).
+    raw : ndarray of bool, shape (h, w)
+        Its pixels above the noise threshold (before closing and hole filling).
+
+    Returns
+    -------
+    {"line", "stroke", None}
+        ``"line"``: a bar more than :data:`LINE_ELONGATION` times longer
+        than wide and at most ``4 * STROKE_MAX_HALF_WIDTH_PX`` wide (scale
+        bars, streaks, scratches; a wider band is an unsplit chain of grains); ``"stroke"``: a
+        thin curved stroke (letters, digits, text), i.e. elongation above
+        :data:`STROKE_ELONGATION`, solidity below :data:`STROKE_SOLIDITY` and
+        half-width at most :data:`STROKE_MAX_HALF_WIDTH_PX`,
+        judged on the pixels above the noise threshold (a letter O or a
+        digit 0 is a curved stroke there, whatever its filled shape) or on
+        the filled shape; None for a grain.
+
+    Notes
+    -----
+    Elongation ``E = A / (2 r)^2`` with ``A`` the area and ``r`` the largest
+    inscribed radius (distance transform maximum): about 0.8 for a disc, 1 for
+    a square, ``L / w`` for a bar or rod of length ``L`` and width ``w``.
+    Solidity is area over convex hull area (ISO 9276-6). Grains are compact
+    and convex or made of convex parts; drawn marks are lines one to a few
+    pixels wide.
+    """
+    from skimage.morphology import convex_hull_image
+
+    area = float(part.sum())
+    if area < 4:
+        return None
+    r = float(ndi.distance_transform_edt(np.pad(part, 1)).max())
+    elong = area / (4.0 * r * r)
+    if elong > LINE_ELONGATION and r <= 2 * STROKE_MAX_HALF_WIDTH_PX:
+        return "line"
+    raw = raw & part
+    raw_area = float(raw.sum())
+    if raw_area > 0:
+        r_raw = float(ndi.distance_transform_edt(np.pad(raw, 1)).max())
+        if r_raw <= STROKE_MAX_HALF_WIDTH_PX and raw_area / (4.0 * r_raw * r_raw) > STROKE_ELONGATION:
+            hull = float(convex_hull_image(raw).sum())
+            if raw_area < STROKE_SOLIDITY * hull:
+                return "stroke"
+    if elong > STROKE_ELONGATION and r <= STROKE_MAX_HALF_WIDTH_PX:
+        solidity = area / max(float(convex_hull_image(part).sum()), 1.0)
+        if solidity < STROKE_SOLIDITY:
+            return "stroke"
+    return None
+
+
+def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+    """Labels that form a line of text: glyph-like objects of one height on one baseline.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Grains 1..n.
+    drawn : ndarray of bool, shape (rows, cols)
+        Pixels above the noise threshold.
+
+    Returns
+    -------
+    ndarray of int
+        Labels to drop.
+
+    Notes
+    -----
+    A row is a chain of at least :data:`TEXT_MIN_GLYPHS` objects whose
+    bounding boxes end on the same row (within :data:`TEXT_BASELINE_PX`,
+    their bottoms; or their tops), with heights within 35 % of each other and
+    horizontal gaps under 1.5 heights: the layout of printed text (common
+    practice). It is dropped when most of its members are not convex (drawn
+    pixels fill under :data:`TEXT_SOLIDITY` of their convex hull), as
+    letters and digits are and a row of touching grains is not. Smaller
+    objects inside the band of a dropped row (pieces of split glyphs) are
+    dropped with it.
+    """
+    from skimage.morphology import convex_hull_image
+
+    boxes = ndi.find_objects(labels)
+    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
+    if len(items) < TEXT_MIN_GLYPHS:
+        return np.zeros(0, np.int64)
+    top = np.array([b[0].start for _, b in items])
+    bottom = np.array([b[0].stop for _, b in items])
+    left = np.array([b[1].start for _, b in items])
+    right = np.array([b[1].stop for _, b in items])
+    height = (bottom - top).astype(float)
+    ids = np.array([k for k, _ in items])
+    drop = set()
+    solid = {}
+
+    def solidity(i):
+        if i not in solid:
+            k, b = items[i]
+            m = (labels[b] == k) & drawn[b]
+            solid[i] = float(m.sum()) / max(float(convex_hull_image(m).sum()), 1.0) if m.any() else 1.0
+        return solid[i]
+
+    for edge in (bottom, top):
+        order = np.argsort(edge, kind="stable")
+        for a in order:
+            # neighbours on the same line, chained left to right
+            same = np.flatnonzero((np.abs(edge - edge[a]) <= TEXT_BASELINE_PX)
+                                  & (np.abs(height / height[a] - 1) < 0.35))
+            same = same[np.argsort(left[same])]
+            group = [same[0]]
+            for j in same[1:]:
+                if left[j] - right[group[-1]] < 1.5 * max(height[a], 1):
+                    group.append(j)
+                elif a in group:
+                    break
+                else:
+                    group = [j]
+            if a not in group or len(group) < TEXT_MIN_GLYPHS:
+                continue
+            if sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group):
+                drop.update(int(ids[i]) for i in group)
+                # pieces of glyphs (a split letter, a dot) inside the line's band go with it
+                g = np.asarray(group)
+                t0, t1 = top[g].min() - TEXT_BASELINE_PX, bottom[g].max() + TEXT_BASELINE_PX
+                c0, c1 = left[g].min() - height[a], right[g].max() + height[a]
+                inside = (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
+                drop.update(int(k) for k in ids[inside])
+    return np.asarray(sorted(drop), np.int64)
