@@ -90,6 +90,7 @@ from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import engine as en
+from grainhabit.plugins.habit.vocabulary import TABULAR_HABITS
 
 GRAINHABIT_API = 1
 
@@ -109,13 +110,17 @@ STEP = StepInfo(
               doc="Squared-misfit units by which the plate family must beat the Wulff outlines."),
         Param("triangle_edge_ratio", float, 0.1, low=0.0, high=1.0,
               doc="Plates with a short/long edge ratio below this are tabular_triangle."),
+        Param("smooth_margin", float, 12.0, low=0.0,
+              doc="Squared-misfit units by which a smooth curve (harmonics up to 5) must beat every model "
+                  "family for a grain without facets to be a rounded irregular one."),
         Param("facet_chi2_min", float, 12.0, low=0.0,
               doc="Interior facet evidence (chi-square units) above which a grain counts as faceted."),
     ) + en.FIT_PARAMS,
     outputs=(
-        Column("outline_class", "", "best outline family: wulff, plate, rod or disc"),
+        Column("outline_class", "", "best outline family: wulff, plate, rod, disc or smooth"),
         Column("outline_misfit_ratio", "1", "best outline misfit over the outline noise"),
         Column("facet_chi2", "1", "interior evidence for facets over a featureless interior"),
+        Column("relief_chi2", "1", "interior evidence against a flat interior (facets, a thickness dome)"),
         Column("plate_edge_ratio", "1", "short/long edge ratio of the best-fitting plate outline"),
         Column("rod_aspect", "1", "length/width of the best-fitting rod outline"),
         Column("habit_note", "", "why the habit is irregular, where the outline alone does not say"),
@@ -128,6 +133,11 @@ STEP = StepInfo(
         Column("outline_misfit", "1", "RMS radial-signature distance of the best model / sqrt(area)"),
     ),
 )
+
+
+#: Relative area by which the three-fold completion of a split grain must be smaller than the
+#: central-symmetric one to be tried first (:func:`classify_frame`).
+COMPLETION_AREA_MARGIN = 0.05
 
 
 # --------------------------------------------------------------- model families
@@ -290,7 +300,7 @@ def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
                 or r[0] ** 2 - r[1] ** 2 > p["plate_margin"])
 
 
-def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
+def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False):
     """Habit of one grain, with the Wulff fit it rests on.
 
     Parameters
@@ -306,6 +316,9 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     hull : (float, float), optional
         Solidity and Feret ratio (min/max) of the grain's outline when
         measure-grains has them already; else from :func:`hull_shape`.
+    split : bool
+        The grain was cut from a touching neighbour: a cut outline is not judged
+        rounded as a whole (:func:`classify_frame` judges its true edges).
 
     Returns
     -------
@@ -334,9 +347,12 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         solidity, feret_ratio = hull
     o_ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
     unresolved = o_ratios[3] ** 2 - o_ratios[:3].min() ** 2 < p["tolerance"]
+    # a rounded outline: a smooth curve fits it better than any model family
+    smooth_gain = o_ratios[:3].min() ** 2 - (en.smooth_residual(sig) / tau) ** 2
+    rounded = smooth_gain > p["smooth_margin"] and solidity >= p["min_solidity"] and not split
     if interior is not None:
-        if not outline_decides(o_ratios[:3], solidity, feret_ratio, p) \
-                and not en.outline_settles(fit, lib, p["tolerance"]):
+        if rounded or (not outline_decides(o_ratios[:3], solidity, feret_ratio, p)
+                       and not en.outline_settles(fit, lib, p["tolerance"])):
             fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
         elif unresolved:
             # facet evidence from the outline-best models, for the resolution test
@@ -347,6 +363,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         "outline_class": ("wulff", "plate", "rod")[best],
         "outline_misfit_ratio": float(ratios[best]),
         "facet_chi2": fit.facet_chi2,
+        "relief_chi2": fit.relief_chi2,
         "plate_edge_ratio": float(pe[ip]),
         "rod_aspect": float(ra[ir]),
         "habit_note": "",
@@ -358,6 +375,11 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
                 _margin(ratios[best], p["irregular_misfit"], 0.5))
         cols["habit_note"] = "concave outline" if solidity < p["min_solidity"] else "fits no model family"
         return "irregular", s, cols, fit
+    if rounded and not faceted:
+        cols["outline_class"] = "smooth"
+        cols["habit_note"] = ("rounded: a smooth outline (harmonics up to 5) fits better than any model family, "
+                              "and the interior shows no facets")
+        return "irregular", _margin(smooth_gain, p["smooth_margin"], 2.0), cols, fit
     # resolution: is the disc (a shape without corners) as good an explanation as the best family?
     disc_gap = ratios[3] ** 2 - ratios[best] ** 2
     if disc_gap < p["tolerance"] and not faceted:
@@ -372,10 +394,12 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         if pe[ip] < p["triangle_edge_ratio"]:
             return "tabular_triangle", s, cols, fit
         return "tabular_hexagon", s, cols, fit
-    flat_score = 1.0 - _margin(fchi, p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
-    if not faceted and interior is not None and ratios[1] <= p["irregular_misfit"] \
-            and plate_gain > -p["plate_margin"] and fit.face == "111":
-        # a featureless hexagon: a flat plate (an octahedron shows its facets)
+    relief = fit.relief_chi2 if np.isfinite(fit.relief_chi2) else 0.0
+    flat_score = 1.0 - _margin(max(fchi, relief), p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
+    if not faceted and relief < p["facet_chi2_min"] and interior is not None \
+            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face == "111":
+        # a featureless, flat hexagon: a plate (an octahedron shows its facets, or in
+        # transmission the thickness falling towards its rim)
         return "tabular_hexagon", flat_score, cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
@@ -440,6 +464,44 @@ def free_edge(labels, contour_px, label, reach_px=2):
     return ~near[rr, cc]
 
 
+def _flat(contour_lab, interior, params) -> bool:
+    """Whether a grain's interior is flat: no facets and no relief (:attr:`engine.AlphaFit.relief_chi2`)."""
+    fit = en.fit_alpha(contour_lab, interior, **{**en.fit_options(params), "search": "quick"})
+    return not (fit.relief_chi2 >= params["facet_chi2_min"])
+
+
+def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
+    """Which radial-signature samples of an outline lie on its true edges.
+
+    Parameters
+    ----------
+    contour_lab : ndarray, shape (k, 2)
+        Outline in lab axes (y up).
+    free : ndarray of bool, shape (k,)
+        Vertices on the grain's true edges (:func:`free_edge`).
+    n_angles : int
+        Samples of the signature (:func:`engine.radial_signature`).
+
+    Returns
+    -------
+    ndarray of bool, shape (n_angles,)
+        Sample j (direction 2 pi j / n from the outline's centroid) takes the flag of the
+        vertex nearest to it in angle.
+    """
+    c = np.asarray(contour_lab, float)
+    cen, _ = en.polygon_centroid(c)
+    n = int(n_angles)
+    a = (np.arctan2(c[:, 1] - cen[1], c[:, 0] - cen[0]) % (2 * np.pi)) * (n / (2 * np.pi))
+    order = np.argsort(a)
+    a, fr = a[order], np.asarray(free, bool)[order]
+    j = np.arange(n)
+    hi = np.searchsorted(a, j) % a.size
+    lo = (hi - 1) % a.size
+    d_hi = np.abs((a[hi] - j + n / 2) % n - n / 2)
+    d_lo = np.abs((a[lo] - j + n / 2) % n - n / 2)
+    return np.where(d_hi < d_lo, fr[hi], fr[lo])
+
+
 def classify_frame(frame, params=None) -> dict:
     """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
@@ -467,17 +529,48 @@ def classify_frame(frame, params=None) -> dict:
         hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
         if hull is not None and not all(np.isfinite(hull)):
             hull = None
-        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull)
+        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull,
+                                               split=bool(split[i]))
         if split[i] and habit == "irregular":
             # cut from a touching neighbour, and the cut outline fits nothing: judge the
-            # outline its true edges imply (a centrally symmetric body)
-            done = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab))
-            contour2, interior2 = en.grain_evidence(labels, signal, mode, done, lab, p["erode_px"])
-            if contour2 is not None and len(contour2) >= 8:
+            # outline its true edges imply (a centrally symmetric body), unless those edges are
+            # a smooth curve within the outline noise (a rounded grain has no corners to complete)
+            free = free_edge(labels, outline_px, lab)
+            n_ang = p["n_angles"]
+            keep = free_samples(contour, free, n_ang)
+            tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
+            smooth_free = en.smooth_residual(en.radial_signature(contour, n_ang), keep=keep) / tau
+            if keep.mean() >= 0.5 and smooth_free <= 1.0:
+                ev["outline_class"] = "smooth"
+                ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
+                                    "to 5) within the outline noise")
+                free = None
+        else:
+            free = None
+        if free is not None:
+            # the clearly smaller of the two completions first: a cut square completed three-fold, or
+            # a cut triangle completed by central symmetry, grows far beyond its true edges; a cut
+            # regular hexagon (an octahedron on {111}) gives both alike, and central symmetry goes first
+            done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
+            if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
+                done = done[::-1]
+            for q, fold in done:
+                contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+                if contour2 is None or len(contour2) < 8:
+                    continue
                 res = classify_grain(contour2, interior2 if p["interior"] else None, p)
-                if res[0] != "irregular":
-                    habit, score, ev, fit = res
-                    ev["habit_note"] = "split grain: outline completed by central symmetry"
+                # the completed model must explain the outline about as well as a smooth curve
+                # explains the true edges (a lumpy grain completed by symmetry looks polyhedral);
+                # a three-fold completion stands for a flat plate only
+                if res[0] == "irregular" or \
+                        res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
+                    continue
+                if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
+                                      and _flat(contour2, interior2, p)):
+                    continue
+                habit, score, ev, fit = res
+                ev["habit_note"] = f"split grain: outline completed by its {fold}-fold symmetry"
+                break
         cols["habit"][i], cols["habit_score"][i] = habit, score
         for k, v in ev.items():
             cols[k][i] = v

@@ -82,14 +82,15 @@ from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Inte
                                                grain_evidence, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_rss, subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
-                                                radial_signature, rounded_outline, shift_distances)
+                                                radial_signature, rounded_outline, shift_distances,
+                                                smooth_residual)
 from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "fit_alpha", "fit_options", "grain_evidence",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
-           "radial_signature", "rounded_outline", "shift_distances", "subsample_interior", "view_probability",
+           "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
            "FAR_HEIGHT", "face_planes", "flat_rss", "round_rss", "check_n_angles", "check_polygon"]
 
 #: Directions a grain may be seen along (the face family that faces the beam).
@@ -541,6 +542,12 @@ class AlphaFit:
         Mean interior value (brightness, or attenuation for TEM); NaN without.
     signature : ndarray, shape (n_angles,)
         The grain's radial signature (:func:`radial_signature`).
+    relief_chi2 : float
+        Interior evidence against a flat interior: ``w (RSS_flat - RSS) / s^2``
+        with RSS the better of the best placed model and a round body, so a
+        thickness dome or a brightness rise counts even where it does not
+        single out facets (an octahedron on {111} in transmission); NaN
+        without interior samples.
     """
 
     alpha: float
@@ -555,6 +562,7 @@ class AlphaFit:
     facet_chi2: float = float("nan")
     interior_level: float = float("nan")
     signature: np.ndarray | None = None
+    relief_chi2: float = float("nan")
 
 
 @dataclass(frozen=True)
@@ -793,14 +801,15 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
         notes.append(f"only bounded: alpha >= {lo:.2f} (alpha_hi is the grid maximum {grid[-1]:g})")
     if not use_int:
         notes.append("outline only")
-    fchi, level = float("nan"), float("nan")
+    fchi, level, relief = float("nan"), float("nan"), float("nan")
     if interior is not None and interior.value.size >= 30:
         level = float(np.mean(interior.value))
         if evidence:
-            featureless = min(flat_rss(full), round_rss(full, tem_offset_max))
-            fchi = max(w_eff * (featureless - rmin) / s2, 0.0)
+            flat, rnd = flat_rss(full), round_rss(full, tem_offset_max)
+            fchi = max(w_eff * (min(flat, rnd) - rmin) / s2, 0.0)
+            relief = max(w_eff * (flat - min(rnd, rmin)) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
-                    dbest, "; ".join(notes), score, fchi, level, sig)
+                    dbest, "; ".join(notes), score, fchi, level, sig, relief)
 
 
 _QUICK_MODELS = 8
@@ -1126,8 +1135,8 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
     return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
 
 
-def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
-    """The smallest centrally symmetric convex outline that contains a (cut) outline.
+def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
+    """The smallest convex outline of ``fold``-fold rotational symmetry that contains a (cut) outline.
 
     Parameters
     ----------
@@ -1137,26 +1146,31 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
         Vertices on the grain's true edges (False along the cut, where the
         dividing line need not follow the true contact). Only these are
         completed when they span at least half the outline's area; default all.
+    fold : {2, 3}
+        2: central symmetry (every Wulff projection along [100], [111] and
+        [110], rods); 3: the three-fold symmetry of a twinned {111} plate
+        (triangles and hexagons with alternating edges).
 
     Returns
     -------
     ndarray, shape (q, 2)
-        Convex hull of the outline and its point reflection through the
-        centre c that makes that hull smallest, counter-clockwise.
+        Convex hull of the outline and its copies turned by 360 / ``fold``
+        degrees (2: the point reflection) about the centre c that makes that
+        hull smallest, counter-clockwise.
 
     Notes
     -----
-    Every Wulff projection fitted here is centrally symmetric. A body cut
-    by a straight line keeps at least half of its outline when the cut
-    removes less than half of it, and the union of what is left with its
-    reflection through the body's centre is then the whole outline again;
-    through any other centre the hull is larger. The centre is found by
-    ``scipy.optimize.minimize`` (Nelder-Mead) on the hull area, started at
-    the centroid of the cut outline.
+    A body of ``fold``-fold symmetry that a straight cut removes less than a
+    share 1 / ``fold`` of is the union of what is left and its copies turned
+    about the body's centre; about any other centre the hull is larger. The
+    centre is found by ``scipy.optimize.minimize`` (Nelder-Mead) on the hull
+    area, started at the centroid of the cut outline.
     """
     from scipy.optimize import minimize
     from scipy.spatial import ConvexHull
 
+    if fold not in (2, 3):
+        raise ValueError(f"fold must be 2 or 3, got {fold!r}")
     c = check_polygon(contour_xy, "contour_xy")
     pts = c[ConvexHull(c).vertices]
     if free is not None:
@@ -1169,14 +1183,21 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
             pass
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
+    turns = []
+    for j in range(1, fold):
+        t = 2.0 * math.pi * j / fold
+        turns.append(np.array([[math.cos(t), -math.sin(t)], [math.sin(t), math.cos(t)]]))
+
+    def copies(q):
+        return np.vstack([pts] + [(pts - q) @ r.T + q for r in turns])
 
     def hull_area(q):
-        return ConvexHull(np.vstack([pts, 2.0 * q - pts])).volume
+        return ConvexHull(copies(q)).volume
 
     res = minimize(hull_area, cen, method="Nelder-Mead",
                    options={"xatol": 1e-3 * scale, "fatol": 1e-6 * area, "initial_simplex":
                             np.array([cen, cen + [0.1 * scale, 0.0], cen + [0.0, 0.1 * scale]])})
-    both = np.vstack([pts, 2.0 * res.x - pts])
+    both = copies(res.x)
     return both[ConvexHull(both).vertices]
 
 
