@@ -142,13 +142,17 @@ COMPLETION_AREA_MARGIN = 0.05
 
 # --------------------------------------------------------------- model families
 
-@functools.lru_cache(maxsize=4)
-def family_signatures(n_angles: int = 256):
-    """Radial signatures and spectra of the plate and rod families (built once per size).
+@functools.lru_cache(maxsize=16)
+def family_signatures(n_angles: int = 256, level: int = 0):
+    """Radial signatures and spectra of the plate and rod families (built once per size and rounding).
 
     Parameters
     ----------
     n_angles : int
+    level : int
+        Corner rounding of the outlines: :data:`engine.ROUNDING_LEVELS` ``[level]`` times the
+        ECD, as the Wulff models are rounded (:func:`engine.match_outline` picks the level
+        of a grain from its size); 0 leaves the corners sharp.
 
     Returns
     -------
@@ -161,12 +165,19 @@ def family_signatures(n_angles: int = 256):
     rod : tuple
         As ``plate``.
     """
-    e = np.linspace(0.0, 1.0, 51)
+    rho = en.ROUNDING_LEVELS[int(level)]
+
+    def sig(poly):
+        poly = np.asarray(poly, float)
+        unit = poly * math.sqrt((math.pi / 4) / en.polygon_centroid(poly)[1])      # unit ECD
+        return en.radial_signature(en.rounded_outline(unit, rho), n_angles)
+
+    e = np.linspace(0.0, 1.0, 201)
     rot = cr.resting_rotation("111")
-    psig = np.array([en.radial_signature(cr.project(cr.tabular_prism(v, 0.1), rot), n_angles) for v in e])
+    psig = np.array([sig(cr.project(cr.tabular_prism(v, 0.1), rot)) for v in e])
     asp = np.geomspace(1.6, 16.0, 40)
     r100 = cr.resting_rotation("100")
-    rsig = np.array([en.radial_signature(cr.project(cr.rod_prism(v), r100), n_angles) for v in asp])
+    rsig = np.array([sig(cr.project(cr.rod_prism(v), r100)) for v in asp])
 
     def spectra(s):
         return s, np.conj(np.fft.rfft(s, axis=1)), np.einsum("ij,ij->i", s, s)
@@ -200,29 +211,31 @@ def best_family(sig, family) -> tuple[float, int]:
     return float(d[i]), i
 
 
-@functools.lru_cache(maxsize=4)
-def _families_stacked(n_angles: int):
+@functools.lru_cache(maxsize=16)
+def _families_stacked(n_angles: int, level: int = 0):
     """Plate and rod families of :func:`family_signatures` in one (spectra, norms, first row of each)."""
-    _, plate, _, rod = family_signatures(n_angles)
+    _, plate, _, rod = family_signatures(n_angles, level)
     spec = np.concatenate([plate[1], rod[1]])
     sq = np.concatenate([plate[2], rod[2]])
     return spec, sq, (0, len(plate[2]), len(sq))
 
 
-def best_families(sig) -> tuple[tuple[float, int], tuple[float, int]]:
+def best_families(sig, level: int = 0) -> tuple[tuple[float, int], tuple[float, int]]:
     """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
 
     Parameters
     ----------
     sig : ndarray, shape (n,)
         Observed radial signature.
+    level : int
+        Corner rounding of the family outlines (:func:`family_signatures`).
 
     Returns
     -------
     (distance, index) of the plate family, then of the rod family.
     """
     a = np.asarray(sig, float)
-    spec, sq, cut = _families_stacked(a.size)
+    spec, sq, cut = _families_stacked(a.size, int(level))
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
     d = np.sqrt(np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0))
     out = []
@@ -337,8 +350,8 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     # outline first: the best Wulff outline alone
     fit = en.fit_alpha(contour_lab, None, **kw, match=match)
     sig = match.signature
-    pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1])
-    (d_plate, ip), (d_rod, ir) = best_families(sig)
+    pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1], match.level)
+    (d_plate, ip), (d_rod, ir) = best_families(sig, match.level)
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
     if hull is None:
         solidity, fmin, fmax = hull_shape(contour_lab)
@@ -545,6 +558,17 @@ def classify_frame(frame, params=None) -> dict:
                 ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
                                     "to 5) within the outline noise")
                 free = None
+        elif split[i] and habit in TABULAR_HABITS:
+            # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
+            # from the outline its true edges imply (three-fold symmetry)
+            free = None
+            q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+            if contour2 is not None and len(contour2) >= 8:
+                res = classify_grain(contour2, None, p)
+                if res[0] in TABULAR_HABITS:
+                    habit, score, ev, fit = res
+                    ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
         else:
             free = None
         if free is not None:
@@ -594,4 +618,5 @@ def grainhabit_prepare_worker(steps):
     if STEP.name not in steps:
         return
     lib = en.fit_options(STEP.resolve(steps[STEP.name]))["library"]
-    _families_stacked(lib.signatures.shape[-1])
+    for level in range(len(en.ROUNDING_LEVELS)):
+        _families_stacked(lib.signatures.shape[-1], level)
