@@ -172,7 +172,7 @@ def family_signatures(n_angles: int = 256, level: int = 0):
         unit = poly * math.sqrt((math.pi / 4) / en.polygon_centroid(poly)[1])      # unit ECD
         return en.radial_signature(en.rounded_outline(unit, rho), n_angles)
 
-    e = np.linspace(0.0, 1.0, 201)
+    e = np.linspace(0.0, 1.0, 51)
     rot = cr.resting_rotation("111")
     psig = np.array([sig(cr.project(cr.tabular_prism(v, 0.1), rot)) for v in e])
     asp = np.geomspace(1.6, 16.0, 40)
@@ -220,7 +220,7 @@ def _families_stacked(n_angles: int, level: int = 0):
     return spec, sq, (0, len(plate[2]), len(sq))
 
 
-def best_families(sig, level: int = 0) -> tuple[tuple[float, int], tuple[float, int]]:
+def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
     """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
 
     Parameters
@@ -232,16 +232,26 @@ def best_families(sig, level: int = 0) -> tuple[tuple[float, int], tuple[float, 
 
     Returns
     -------
-    (distance, index) of the plate family, then of the rod family.
+    (distance, index, position) of the plate family, then of the rod family: ``position``
+    is the index refined between grid members, the vertex of the parabola through the
+    squared distances of the best member and its two neighbours (the index itself at
+    either end of the family or where the three do not curve upwards).
     """
     a = np.asarray(sig, float)
     spec, sq, cut = _families_stacked(a.size, int(level))
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
-    d = np.sqrt(np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0))
+    d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0)
+    d = np.sqrt(d2)
     out = []
     for lo, hi in zip(cut[:-1], cut[1:]):
         i = int(np.argmin(d[lo:hi]))
-        out.append((float(d[lo + i]), i))
+        pos = float(i)
+        if 0 < i < hi - lo - 1:
+            y0, y1, y2 = d2[lo + i - 1], d2[lo + i], d2[lo + i + 1]
+            curve = y0 - 2.0 * y1 + y2
+            if curve > 0:
+                pos = i + float(np.clip(0.5 * (y0 - y2) / curve, -0.5, 0.5))
+        out.append((float(d[lo + i]), i, pos))
     return tuple(out)
 
 
@@ -351,7 +361,8 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     fit = en.fit_alpha(contour_lab, None, **kw, match=match)
     sig = match.signature
     pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1], match.level)
-    (d_plate, ip), (d_rod, ir) = best_families(sig, match.level)
+    (d_plate, ip, fp), (d_rod, ir, fr) = best_families(sig, match.level)
+    edge_ratio = float(np.interp(fp, np.arange(pe.size), pe))
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
     if hull is None:
         solidity, fmin, fmax = hull_shape(contour_lab)
@@ -377,7 +388,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
         "outline_misfit_ratio": float(ratios[best]),
         "facet_chi2": fit.facet_chi2,
         "relief_chi2": fit.relief_chi2,
-        "plate_edge_ratio": float(pe[ip]),
+        "plate_edge_ratio": edge_ratio,
         "rod_aspect": float(ra[ir]),
         "habit_note": "",
     }
@@ -404,7 +415,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     plate_gain = ratios[0] ** 2 - ratios[1] ** 2       # how much better the plate outline fits
     if plate_gain > p["plate_margin"]:
         s = _margin(plate_gain, p["plate_margin"], 2.0)
-        if pe[ip] < p["triangle_edge_ratio"]:
+        if edge_ratio < p["triangle_edge_ratio"]:
             return "tabular_triangle", s, cols, fit
         return "tabular_hexagon", s, cols, fit
     relief = fit.relief_chi2 if np.isfinite(fit.relief_chi2) else 0.0
