@@ -24,22 +24,36 @@ Decision
 1. ``irregular`` if the outline is concave (solidity below ``min_solidity``:
    aggregates, unsplit clusters) or fits none of the families within
    ``irregular_misfit`` noise units (rounded, ripened, lumpy).
-2. ``irregular`` with a low ``habit_score`` if the grain is too small for
+2. ``irregular`` (``outline_class`` "smooth") if the outline is rounded: a
+   smooth curve of harmonics up to 5 (:func:`engine.smooth_residual`) fits it
+   better than every model family by more than ``smooth_margin`` squared-misfit
+   units and the interior shows no facets. Polygons need harmonics far above
+   the fifth for their corners (a square's fundamental is the fourth, a
+   hexagon's the sixth); a lumpy rounded grain does not, and a Wulff outline
+   seen along [110] (a rectangle) otherwise fits such a grain as a cube.
+   ``smooth_margin`` (12) is two squared-misfit units for each of the six free
+   parameters the curve has beyond a family's alpha and rotation (Akaike's
+   criterion; an assumption of this step).
+3. ``irregular`` with a low ``habit_score`` if the grain is too small for
    its shape to be resolved: the disc fits its outline within ``tolerance``
    of the best model family and its interior shows no facets. This follows
    from the outline noise (a pixel-scale quantity) and the grain's size,
    not from a size threshold.
-3. ``rod`` if the rod family fits best and the Feret ratio is below
+4. ``rod`` if the rod family fits best and the Feret ratio is below
    ``rod_feret_ratio``.
-4. The plate family fits clearly better than any Wulff outline (Wulff
+5. The plate family fits clearly better than any Wulff outline (Wulff
    projections along [100] and [111] are centrally symmetric; a triangle or
    a hexagon with three long and three short edges is not):
    ``tabular_triangle`` where the fitted edge ratio is below
    ``triangle_edge_ratio``, else ``tabular_hexagon``.
-5. A hexagonal outline with a featureless interior that the plate family
-   fits is ``tabular_hexagon`` (an octahedron on {111} shows inclined facets
-   or a thickness relief in either contrast).
-6. Everything else is polyhedral and named by alpha (thresholds in
+6. A hexagonal outline with a flat interior (no facets, and no relief:
+   ``relief_chi2``, the evidence against one level plus a plane, below
+   ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``. An
+   octahedron on {111} shows inclined facets in secondary-electron contrast;
+   in transmission its projected thickness falls to zero at the rim over two
+   thirds of its area, a dome that the round body explains as well as the
+   facets (so ``facet_chi2`` stays low) but a flat plate does not.
+7. Everything else is polyhedral and named by alpha (thresholds in
    :mod:`vocabulary`): ``cube`` alpha <= 1.5, ``cuboctahedron``
    1.5 < alpha < 3, ``octahedron`` alpha >= 3; a cuboctahedron needs
    evidence of its truncation, i.e. neither end member fits within
@@ -52,16 +66,33 @@ Decision
    (:func:`engine.resolvable_alpha`: about 2.5 at 40 px and 2.7 at 80 px on
    {111}); above it a cuboctahedron cannot be told from an octahedron.
 
-A grain cut from a touching neighbour (``split``) whose cut outline fits
-nothing is judged by the outline its true edges imply: the smallest
-centrally symmetric convex outline that holds the outline away from the cut
-(:func:`free_edge`, :func:`engine.complete_by_symmetry`; every Wulff
-projection along [100] and [111] is centrally symmetric), so a cut cube
-stays a cube. A cut plate or rod that still fits its family keeps that. Its area and ECD stay
-those of the visible part (measure-grains).
+A grain cut from a touching neighbour (``split``) is not judged rounded as a
+whole (its cut is a straight edge). Where its cut outline fits nothing, it is
+judged by the outline its true edges imply (:func:`free_edge`):
 
-The full interior fit is run only where steps 1-4 do not decide from the
-outline (the habit is then provably the same, :func:`outline_decides`).
+- if the true edges are a smooth curve within the outline noise (harmonics up
+  to 5 fitted to the signature samples on the true edges, :func:`free_samples`),
+  it stays ``irregular`` (a rounded grain has no corners to complete);
+- else the smallest convex outline of two-fold (central) or three-fold
+  symmetry that holds the true edges (:func:`engine.complete_by_symmetry`;
+  every Wulff projection along [100], [111] and [110] and every rod is
+  centrally symmetric, a twinned plate three-fold), the clearly smaller one
+  (by ``COMPLETION_AREA_MARGIN``) first, so a cut cube stays a cube and a cut
+  triangle a triangle. The completion is taken only if its model explains it
+  about as well as a smooth curve explains the true edges (within
+  ``smooth_margin``), and a three-fold one only for a plate with a flat interior.
+
+A cut plate that still fits the plate family takes its edge ratio from the
+outline completed three-fold (a corner cut by the neighbour looks like a short
+edge). Its area and ECD stay those of the visible part (measure-grains).
+
+The plate and rod family outlines are rounded like the Wulff models (the
+rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
+refined between the grid's members (:func:`best_families`).
+
+The full interior fit is run only where steps 1, 4 and 5 do not decide from the
+outline (the habit is then provably the same, :func:`outline_decides`), and
+always for a rounded outline (step 2 asks whether the interior shows facets).
 
 The fit's result is written to the frame (``fit_alpha``, ``fit_alpha_lo``,
 ``fit_alpha_hi``, ``fit_note``, ``rest_face``, ``fit_rotation_deg``,
@@ -97,7 +128,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.1",
+    version="2.2",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,

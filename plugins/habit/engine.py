@@ -1138,7 +1138,7 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
 
 #: Directions of the support function sampled by :func:`complete_by_symmetry` (a multiple of 6,
 #: so that turns by a half and a third of a turn map the directions onto themselves).
-SUPPORT_DIRECTIONS = 360
+SUPPORT_DIRECTIONS = 720
 
 
 def _true_edge_hull(contour_xy, free):
@@ -1191,8 +1191,9 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
     (h_K of the points; a copy turned by R_j about c is R_j (p - c) + c). Sampled at
     ``n_dir`` directions it defines the polygon bounded by those support lines, whose
     vertices are the crossings of neighbouring lines; its area (shoelace formula)
-    exceeds the hull's by a relative O(1 / n_dir^2) (1e-4 at 360 directions for a
-    square), the same for every centre.
+    exceeds the hull's by a relative O(1 / n_dir^2) that grows with the sharpness of
+    the corners (0 for a square whose edge normals are sampled; under 0.5 % at 720
+    directions for hulls of random points; tested against ``scipy.spatial.ConvexHull``).
     """
     p = np.asarray(pts, float)
     cen = np.asarray(centres, float).reshape(-1, 2)
