@@ -121,7 +121,7 @@ from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import engine as en
-from grainhabit.plugins.habit.vocabulary import TABULAR_HABITS
+from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
 GRAINHABIT_API = 1
 
@@ -586,19 +586,25 @@ def classify_frame(frame, params=None) -> dict:
             hull = None
         habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull,
                                                split=bool(split[i]))
-        if split[i] and habit == "irregular":
-            # cut from a touching neighbour, and the cut outline fits nothing: judge the
-            # outline its true edges imply (a centrally symmetric body), unless those edges are
-            # a smooth curve within the outline noise (a rounded grain has no corners to complete)
+        fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
+        if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])):
+            # cut from a touching neighbour: where its true edges are a smooth curve within the
+            # outline noise (and the interior shows no facets) it is a rounded grain, whatever
+            # its cut outline resembles, with no corners to complete; else, where the cut outline
+            # fits nothing, judge the outline its true edges imply (a symmetric body)
             free = free_edge(labels, outline_px, lab)
             n_ang = p["n_angles"]
             keep = free_samples(contour, free, n_ang)
             tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
             smooth_free = en.smooth_residual(en.radial_signature(contour, n_ang), keep=keep) / tau
             if keep.mean() >= 0.5 and smooth_free <= 1.0:
+                if habit != "irregular":
+                    habit, score = "irregular", _margin(1.0, smooth_free, 0.25)
                 ev["outline_class"] = "smooth"
                 ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
                                     "to 5) within the outline noise")
+                free = None
+            elif habit != "irregular":
                 free = None
         elif split[i] and habit in TABULAR_HABITS:
             # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
