@@ -91,8 +91,11 @@ rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
 refined between the grid's members (:func:`best_families`).
 
 The full interior fit is run only where steps 1, 4 and 5 do not decide from the
-outline (the habit is then provably the same, :func:`outline_decides`), and
-always for a rounded outline (step 2 asks whether the interior shows facets).
+outline (the habit is then provably the same, :func:`outline_decides`). Where
+the outline is rounded (step 2) or unresolved (step 3), the facet evidence
+comes from the eight outline-best models placed over the interior
+(``search='quick'``, a lower bound on the full search's), and a rounded grain
+that shows facets there gets the full fit if the outline does not decide it.
 
 The fit's result is written to the frame (``fit_alpha``, ``fit_alpha_lo``,
 ``fit_alpha_hi``, ``fit_note``, ``rest_face``, ``fit_rotation_deg``,
@@ -406,8 +409,15 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     smooth_gain = o_ratios[:3].min() ** 2 - (en.smooth_residual(sig) / tau) ** 2
     rounded = smooth_gain > p["smooth_margin"] and solidity >= p["min_solidity"] and not split
     if interior is not None:
-        if rounded or (not outline_decides(o_ratios[:3], solidity, feret_ratio, p)
-                       and not en.outline_settles(fit, lib, p["tolerance"])):
+        full = not outline_decides(o_ratios[:3], solidity, feret_ratio, p) \
+            and not en.outline_settles(fit, lib, p["tolerance"])
+        if rounded:
+            # facet evidence from the outline-best models first: a rounded grain without
+            # facets is irregular whatever the full search would find for its alpha
+            fit = en.fit_alpha(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+            if full and fit.facet_chi2 >= p["facet_chi2_min"]:
+                fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
+        elif full:
             fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
         elif unresolved:
             # facet evidence from the outline-best models, for the resolution test
