@@ -1139,6 +1139,8 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
 #: Directions of the support function sampled by :func:`complete_by_symmetry` (a multiple of 6,
 #: so that turns by a half and a third of a turn map the directions onto themselves).
 SUPPORT_DIRECTIONS = 720
+#: Directions of the last, finest steps of the search.
+FINE_SUPPORT_DIRECTIONS = 2016
 
 
 def _true_edge_hull(contour_xy, free):
@@ -1264,9 +1266,11 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     share 1 / ``fold`` of is the union of what is left and its copies turned
     about the body's centre; about any other centre the hull is larger. The
     centre is searched on grids of candidate centres, each grid centred on
-    the best point of the one before and a quarter as wide (7 x 7 points, from
+    the best point of the one before and a third as wide (9 x 9 points, from
     +-0.3 sqrt(area) about the centroid down to a thousandth of sqrt(area)),
-    all candidates of a grid at once (:func:`symmetric_hull_areas`).
+    all candidates of a grid at once (:func:`symmetric_hull_areas`, with
+    :data:`SUPPORT_DIRECTIONS` directions, and :data:`FINE_SUPPORT_DIRECTIONS`
+    once the grid is finer than a hundredth of sqrt(area)).
     :func:`complete_by_symmetry_reference` is the earlier search
     (``scipy.optimize.minimize``, Nelder-Mead, on the exact hull area), kept to
     test this one against.
@@ -1278,13 +1282,15 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     pts = _true_edge_hull(contour_xy, free)
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
-    g = np.linspace(-1.0, 1.0, 7)
+    g = np.linspace(-1.0, 1.0, 9)
     grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
     best, half = np.asarray(cen, float), 0.3 * scale
     while half > 1e-3 * scale:
         cand = best + half * grid
-        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold)))]
-        half /= 4.0
+        # finely sampled directions for the last steps, where the areas differ least
+        n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
+        half /= 3.0
     both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
     return both[ConvexHull(both).vertices]
 
