@@ -1267,13 +1267,16 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     about the body's centre; about any other centre the hull is larger. The
     centre is searched on grids of candidate centres, each grid centred on
     the best point of the one before and a third as wide (9 x 9 points, from
-    +-0.3 sqrt(area) about the centroid down to a thousandth of sqrt(area)),
+    +-0.6 sqrt(area) about the centroid down to a thousandth of sqrt(area)),
     all candidates of a grid at once (:func:`symmetric_hull_areas`, with
     :data:`SUPPORT_DIRECTIONS` directions, and :data:`FINE_SUPPORT_DIRECTIONS`
     once the grid is finer than a hundredth of sqrt(area)).
     :func:`complete_by_symmetry_reference` is the earlier search
     (``scipy.optimize.minimize``, Nelder-Mead, on the exact hull area), kept to
-    test this one against.
+    test this one against. The hull area has local minima: on 348 cut outlines of
+    the hard survey (two folds each) the two searches agree to a median 1e-4 of
+    the area; this one finds a hull more than 1 % smaller in 3 and more than 1 %
+    larger in 2 (at most 6 %), in about three quarters of the time.
     """
     from scipy.spatial import ConvexHull
 
@@ -1284,7 +1287,7 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     scale = math.sqrt(area)
     g = np.linspace(-1.0, 1.0, 9)
     grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
-    best, half = np.asarray(cen, float), 0.3 * scale
+    best, half = np.asarray(cen, float), 0.6 * scale
     while half > 1e-3 * scale:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
