@@ -24,22 +24,36 @@ Decision
 1. ``irregular`` if the outline is concave (solidity below ``min_solidity``:
    aggregates, unsplit clusters) or fits none of the families within
    ``irregular_misfit`` noise units (rounded, ripened, lumpy).
-2. ``irregular`` with a low ``habit_score`` if the grain is too small for
+2. ``irregular`` (``outline_class`` "smooth") if the outline is rounded: a
+   smooth curve of harmonics up to 5 (:func:`engine.smooth_residual`) fits it
+   better than every model family by more than ``smooth_margin`` squared-misfit
+   units and the interior shows no facets. Polygons need harmonics far above
+   the fifth for their corners (a square's fundamental is the fourth, a
+   hexagon's the sixth); a lumpy rounded grain does not, and a Wulff outline
+   seen along [110] (a rectangle) otherwise fits such a grain as a cube.
+   ``smooth_margin`` (12) is two squared-misfit units for each of the six free
+   parameters the curve has beyond a family's alpha and rotation (Akaike's
+   criterion; an assumption of this step).
+3. ``irregular`` with a low ``habit_score`` if the grain is too small for
    its shape to be resolved: the disc fits its outline within ``tolerance``
    of the best model family and its interior shows no facets. This follows
    from the outline noise (a pixel-scale quantity) and the grain's size,
    not from a size threshold.
-3. ``rod`` if the rod family fits best and the Feret ratio is below
+4. ``rod`` if the rod family fits best and the Feret ratio is below
    ``rod_feret_ratio``.
-4. The plate family fits clearly better than any Wulff outline (Wulff
+5. The plate family fits clearly better than any Wulff outline (Wulff
    projections along [100] and [111] are centrally symmetric; a triangle or
    a hexagon with three long and three short edges is not):
    ``tabular_triangle`` where the fitted edge ratio is below
    ``triangle_edge_ratio``, else ``tabular_hexagon``.
-5. A hexagonal outline with a featureless interior that the plate family
-   fits is ``tabular_hexagon`` (an octahedron on {111} shows inclined facets
-   or a thickness relief in either contrast).
-6. Everything else is polyhedral and named by alpha (thresholds in
+6. A hexagonal outline with a flat interior (no facets, and no relief:
+   ``relief_chi2``, the evidence against one level plus a plane, below
+   ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``. An
+   octahedron on {111} shows inclined facets in secondary-electron contrast;
+   in transmission its projected thickness falls to zero at the rim over two
+   thirds of its area, a dome that the round body explains as well as the
+   facets (so ``facet_chi2`` stays low) but a flat plate does not.
+7. Everything else is polyhedral and named by alpha (thresholds in
    :mod:`vocabulary`): ``cube`` alpha <= 1.5, ``cuboctahedron``
    1.5 < alpha < 3, ``octahedron`` alpha >= 3; a cuboctahedron needs
    evidence of its truncation, i.e. neither end member fits within
@@ -52,16 +66,36 @@ Decision
    (:func:`engine.resolvable_alpha`: about 2.5 at 40 px and 2.7 at 80 px on
    {111}); above it a cuboctahedron cannot be told from an octahedron.
 
-A grain cut from a touching neighbour (``split``) whose cut outline fits
-nothing is judged by the outline its true edges imply: the smallest
-centrally symmetric convex outline that holds the outline away from the cut
-(:func:`free_edge`, :func:`engine.complete_by_symmetry`; every Wulff
-projection along [100] and [111] is centrally symmetric), so a cut cube
-stays a cube. A cut plate or rod that still fits its family keeps that. Its area and ECD stay
-those of the visible part (measure-grains).
+A grain cut from a touching neighbour (``split``) is not judged rounded as a
+whole (its cut is a straight edge). Where its cut outline fits nothing, it is
+judged by the outline its true edges imply (:func:`free_edge`):
 
-The full interior fit is run only where steps 1-4 do not decide from the
-outline (the habit is then provably the same, :func:`outline_decides`).
+- if the true edges are a smooth curve within the outline noise (harmonics up
+  to 5 fitted to the signature samples on the true edges, :func:`free_samples`),
+  it stays ``irregular`` (a rounded grain has no corners to complete);
+- else the smallest convex outline of two-fold (central) or three-fold
+  symmetry that holds the true edges (:func:`engine.complete_by_symmetry`;
+  every Wulff projection along [100], [111] and [110] and every rod is
+  centrally symmetric, a twinned plate three-fold), the clearly smaller one
+  (by ``COMPLETION_AREA_MARGIN``) first, so a cut cube stays a cube and a cut
+  triangle a triangle. The completion is taken only if its model explains it
+  about as well as a smooth curve explains the true edges (within
+  ``smooth_margin``), and a three-fold one only for a plate with a flat interior.
+
+A cut plate that still fits the plate family takes its edge ratio from the
+outline completed three-fold (a corner cut by the neighbour looks like a short
+edge). Its area and ECD stay those of the visible part (measure-grains).
+
+The plate and rod family outlines are rounded like the Wulff models (the
+rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
+refined between the grid's members (:func:`best_families`).
+
+The full interior fit is run only where steps 1, 4 and 5 do not decide from the
+outline (the habit is then provably the same, :func:`outline_decides`). Where
+the outline is rounded (step 2) or unresolved (step 3), the facet evidence
+comes from the eight outline-best models placed over the interior
+(``search='quick'``, a lower bound on the full search's), and a rounded grain
+that shows facets there gets the full fit if the outline does not decide it.
 
 The fit's result is written to the frame (``fit_alpha``, ``fit_alpha_lo``,
 ``fit_alpha_hi``, ``fit_note``, ``rest_face``, ``fit_rotation_deg``,
@@ -90,13 +124,14 @@ from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import engine as en
+from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
 GRAINHABIT_API = 1
 
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.1",
+    version="2.2",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -109,13 +144,17 @@ STEP = StepInfo(
               doc="Squared-misfit units by which the plate family must beat the Wulff outlines."),
         Param("triangle_edge_ratio", float, 0.1, low=0.0, high=1.0,
               doc="Plates with a short/long edge ratio below this are tabular_triangle."),
+        Param("smooth_margin", float, 12.0, low=0.0,
+              doc="Squared-misfit units by which a smooth curve (harmonics up to 5) must beat every model "
+                  "family for a grain without facets to be a rounded irregular one."),
         Param("facet_chi2_min", float, 12.0, low=0.0,
               doc="Interior facet evidence (chi-square units) above which a grain counts as faceted."),
     ) + en.FIT_PARAMS,
     outputs=(
-        Column("outline_class", "", "best outline family: wulff, plate, rod or disc"),
+        Column("outline_class", "", "best outline family: wulff, plate, rod, disc or smooth"),
         Column("outline_misfit_ratio", "1", "best outline misfit over the outline noise"),
         Column("facet_chi2", "1", "interior evidence for facets over a featureless interior"),
+        Column("relief_chi2", "1", "interior evidence against a flat interior (facets, a thickness dome)"),
         Column("plate_edge_ratio", "1", "short/long edge ratio of the best-fitting plate outline"),
         Column("rod_aspect", "1", "length/width of the best-fitting rod outline"),
         Column("habit_note", "", "why the habit is irregular, where the outline alone does not say"),
@@ -130,15 +169,24 @@ STEP = StepInfo(
 )
 
 
+#: Relative area by which the three-fold completion of a split grain must be smaller than the
+#: central-symmetric one to be tried first (:func:`classify_frame`).
+COMPLETION_AREA_MARGIN = 0.05
+
+
 # --------------------------------------------------------------- model families
 
-@functools.lru_cache(maxsize=4)
-def family_signatures(n_angles: int = 256):
-    """Radial signatures and spectra of the plate and rod families (built once per size).
+@functools.lru_cache(maxsize=16)
+def family_signatures(n_angles: int = 256, level: int = 0):
+    """Radial signatures and spectra of the plate and rod families (built once per size and rounding).
 
     Parameters
     ----------
     n_angles : int
+    level : int
+        Corner rounding of the outlines: :data:`engine.ROUNDING_LEVELS` ``[level]`` times the
+        ECD, as the Wulff models are rounded (:func:`engine.match_outline` picks the level
+        of a grain from its size); 0 leaves the corners sharp.
 
     Returns
     -------
@@ -151,12 +199,19 @@ def family_signatures(n_angles: int = 256):
     rod : tuple
         As ``plate``.
     """
+    rho = en.ROUNDING_LEVELS[int(level)]
+
+    def sig(poly):
+        poly = np.asarray(poly, float)
+        unit = poly * math.sqrt((math.pi / 4) / en.polygon_centroid(poly)[1])      # unit ECD
+        return en.radial_signature(en.rounded_outline(unit, rho), n_angles)
+
     e = np.linspace(0.0, 1.0, 51)
     rot = cr.resting_rotation("111")
-    psig = np.array([en.radial_signature(cr.project(cr.tabular_prism(v, 0.1), rot), n_angles) for v in e])
+    psig = np.array([sig(cr.project(cr.tabular_prism(v, 0.1), rot)) for v in e])
     asp = np.geomspace(1.6, 16.0, 40)
     r100 = cr.resting_rotation("100")
-    rsig = np.array([en.radial_signature(cr.project(cr.rod_prism(v), r100), n_angles) for v in asp])
+    rsig = np.array([sig(cr.project(cr.rod_prism(v), r100)) for v in asp])
 
     def spectra(s):
         return s, np.conj(np.fft.rfft(s, axis=1)), np.einsum("ij,ij->i", s, s)
@@ -190,35 +245,47 @@ def best_family(sig, family) -> tuple[float, int]:
     return float(d[i]), i
 
 
-@functools.lru_cache(maxsize=4)
-def _families_stacked(n_angles: int):
+@functools.lru_cache(maxsize=16)
+def _families_stacked(n_angles: int, level: int = 0):
     """Plate and rod families of :func:`family_signatures` in one (spectra, norms, first row of each)."""
-    _, plate, _, rod = family_signatures(n_angles)
+    _, plate, _, rod = family_signatures(n_angles, level)
     spec = np.concatenate([plate[1], rod[1]])
     sq = np.concatenate([plate[2], rod[2]])
     return spec, sq, (0, len(plate[2]), len(sq))
 
 
-def best_families(sig) -> tuple[tuple[float, int], tuple[float, int]]:
+def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
     """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
 
     Parameters
     ----------
     sig : ndarray, shape (n,)
         Observed radial signature.
+    level : int
+        Corner rounding of the family outlines (:func:`family_signatures`).
 
     Returns
     -------
-    (distance, index) of the plate family, then of the rod family.
+    (distance, index, position) of the plate family, then of the rod family: ``position``
+    is the index refined between grid members, the vertex of the parabola through the
+    squared distances of the best member and its two neighbours (the index itself at
+    either end of the family or where the three do not curve upwards).
     """
     a = np.asarray(sig, float)
-    spec, sq, cut = _families_stacked(a.size)
+    spec, sq, cut = _families_stacked(a.size, int(level))
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
-    d = np.sqrt(np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0))
+    d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0)
+    d = np.sqrt(d2)
     out = []
     for lo, hi in zip(cut[:-1], cut[1:]):
         i = int(np.argmin(d[lo:hi]))
-        out.append((float(d[lo + i]), i))
+        pos = float(i)
+        if 0 < i < hi - lo - 1:
+            y0, y1, y2 = d2[lo + i - 1], d2[lo + i], d2[lo + i + 1]
+            curve = y0 - 2.0 * y1 + y2
+            if curve > 0:
+                pos = i + float(np.clip(0.5 * (y0 - y2) / curve, -0.5, 0.5))
+        out.append((float(d[lo + i]), i, pos))
     return tuple(out)
 
 
@@ -290,7 +357,7 @@ def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
                 or r[0] ** 2 - r[1] ** 2 > p["plate_margin"])
 
 
-def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
+def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False):
     """Habit of one grain, with the Wulff fit it rests on.
 
     Parameters
@@ -306,6 +373,9 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     hull : (float, float), optional
         Solidity and Feret ratio (min/max) of the grain's outline when
         measure-grains has them already; else from :func:`hull_shape`.
+    split : bool
+        The grain was cut from a touching neighbour: a cut outline is not judged
+        rounded as a whole (:func:`classify_frame` judges its true edges).
 
     Returns
     -------
@@ -324,8 +394,9 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     # outline first: the best Wulff outline alone
     fit = en.fit_alpha(contour_lab, None, **kw, match=match)
     sig = match.signature
-    pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1])
-    (d_plate, ip), (d_rod, ir) = best_families(sig)
+    pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1], match.level)
+    (d_plate, ip, fp), (d_rod, ir, fr) = best_families(sig, match.level)
+    edge_ratio = float(np.interp(fp, np.arange(pe.size), pe))
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
     if hull is None:
         solidity, fmin, fmax = hull_shape(contour_lab)
@@ -334,9 +405,19 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         solidity, feret_ratio = hull
     o_ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
     unresolved = o_ratios[3] ** 2 - o_ratios[:3].min() ** 2 < p["tolerance"]
+    # a rounded outline: a smooth curve fits it better than any model family
+    smooth_gain = o_ratios[:3].min() ** 2 - (en.smooth_residual(sig) / tau) ** 2
+    rounded = smooth_gain > p["smooth_margin"] and solidity >= p["min_solidity"] and not split
     if interior is not None:
-        if not outline_decides(o_ratios[:3], solidity, feret_ratio, p) \
-                and not en.outline_settles(fit, lib, p["tolerance"]):
+        full = not outline_decides(o_ratios[:3], solidity, feret_ratio, p) \
+            and not en.outline_settles(fit, lib, p["tolerance"])
+        if rounded:
+            # facet evidence from the outline-best models first: a rounded grain without
+            # facets is irregular whatever the full search would find for its alpha
+            fit = en.fit_alpha(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+            if full and fit.facet_chi2 >= p["facet_chi2_min"]:
+                fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
+        elif full:
             fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
         elif unresolved:
             # facet evidence from the outline-best models, for the resolution test
@@ -347,7 +428,8 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
         "outline_class": ("wulff", "plate", "rod")[best],
         "outline_misfit_ratio": float(ratios[best]),
         "facet_chi2": fit.facet_chi2,
-        "plate_edge_ratio": float(pe[ip]),
+        "relief_chi2": fit.relief_chi2,
+        "plate_edge_ratio": edge_ratio,
         "rod_aspect": float(ra[ir]),
         "habit_note": "",
     }
@@ -358,6 +440,11 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
                 _margin(ratios[best], p["irregular_misfit"], 0.5))
         cols["habit_note"] = "concave outline" if solidity < p["min_solidity"] else "fits no model family"
         return "irregular", s, cols, fit
+    if rounded and not faceted:
+        cols["outline_class"] = "smooth"
+        cols["habit_note"] = ("rounded: a smooth outline (harmonics up to 5) fits better than any model family, "
+                              "and the interior shows no facets")
+        return "irregular", _margin(smooth_gain, p["smooth_margin"], 2.0), cols, fit
     # resolution: is the disc (a shape without corners) as good an explanation as the best family?
     disc_gap = ratios[3] ** 2 - ratios[best] ** 2
     if disc_gap < p["tolerance"] and not faceted:
@@ -369,13 +456,15 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None):
     plate_gain = ratios[0] ** 2 - ratios[1] ** 2       # how much better the plate outline fits
     if plate_gain > p["plate_margin"]:
         s = _margin(plate_gain, p["plate_margin"], 2.0)
-        if pe[ip] < p["triangle_edge_ratio"]:
+        if edge_ratio < p["triangle_edge_ratio"]:
             return "tabular_triangle", s, cols, fit
         return "tabular_hexagon", s, cols, fit
-    flat_score = 1.0 - _margin(fchi, p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
-    if not faceted and interior is not None and ratios[1] <= p["irregular_misfit"] \
-            and plate_gain > -p["plate_margin"] and fit.face == "111":
-        # a featureless hexagon: a flat plate (an octahedron shows its facets)
+    relief = fit.relief_chi2 if np.isfinite(fit.relief_chi2) else 0.0
+    flat_score = 1.0 - _margin(max(fchi, relief), p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
+    if not faceted and relief < p["facet_chi2_min"] and interior is not None \
+            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face == "111":
+        # a featureless, flat hexagon: a plate (an octahedron shows its facets, or in
+        # transmission the thickness falling towards its rim)
         return "tabular_hexagon", flat_score, cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
@@ -440,6 +529,44 @@ def free_edge(labels, contour_px, label, reach_px=2):
     return ~near[rr, cc]
 
 
+def _flat(contour_lab, interior, params) -> bool:
+    """Whether a grain's interior is flat: no facets and no relief (:attr:`engine.AlphaFit.relief_chi2`)."""
+    fit = en.fit_alpha(contour_lab, interior, **{**en.fit_options(params), "search": "quick"})
+    return not (fit.relief_chi2 >= params["facet_chi2_min"])
+
+
+def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
+    """Which radial-signature samples of an outline lie on its true edges.
+
+    Parameters
+    ----------
+    contour_lab : ndarray, shape (k, 2)
+        Outline in lab axes (y up).
+    free : ndarray of bool, shape (k,)
+        Vertices on the grain's true edges (:func:`free_edge`).
+    n_angles : int
+        Samples of the signature (:func:`engine.radial_signature`).
+
+    Returns
+    -------
+    ndarray of bool, shape (n_angles,)
+        Sample j (direction 2 pi j / n from the outline's centroid) takes the flag of the
+        vertex nearest to it in angle.
+    """
+    c = np.asarray(contour_lab, float)
+    cen, _ = en.polygon_centroid(c)
+    n = int(n_angles)
+    a = (np.arctan2(c[:, 1] - cen[1], c[:, 0] - cen[0]) % (2 * np.pi)) * (n / (2 * np.pi))
+    order = np.argsort(a)
+    a, fr = a[order], np.asarray(free, bool)[order]
+    j = np.arange(n)
+    hi = np.searchsorted(a, j) % a.size
+    lo = (hi - 1) % a.size
+    d_hi = np.abs((a[hi] - j + n / 2) % n - n / 2)
+    d_lo = np.abs((a[lo] - j + n / 2) % n - n / 2)
+    return np.where(d_hi < d_lo, fr[hi], fr[lo])
+
+
 def classify_frame(frame, params=None) -> dict:
     """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
@@ -467,17 +594,65 @@ def classify_frame(frame, params=None) -> dict:
         hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
         if hull is not None and not all(np.isfinite(hull)):
             hull = None
-        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull)
-        if split[i] and habit == "irregular":
-            # cut from a touching neighbour, and the cut outline fits nothing: judge the
-            # outline its true edges imply (a centrally symmetric body)
-            done = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab))
-            contour2, interior2 = en.grain_evidence(labels, signal, mode, done, lab, p["erode_px"])
+        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull,
+                                               split=bool(split[i]))
+        fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
+        if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])):
+            # cut from a touching neighbour: where its true edges are a smooth curve within the
+            # outline noise (and the interior shows no facets) it is a rounded grain, whatever
+            # its cut outline resembles, with no corners to complete; else, where the cut outline
+            # fits nothing, judge the outline its true edges imply (a symmetric body)
+            free = free_edge(labels, outline_px, lab)
+            n_ang = p["n_angles"]
+            keep = free_samples(contour, free, n_ang)
+            tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
+            smooth_free = en.smooth_residual(en.radial_signature(contour, n_ang), keep=keep) / tau
+            if keep.mean() >= 0.5 and smooth_free <= 1.0:
+                if habit != "irregular":
+                    habit, score = "irregular", _margin(1.0, smooth_free, 0.25)
+                ev["outline_class"] = "smooth"
+                ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
+                                    "to 5) within the outline noise")
+                free = None
+            elif habit != "irregular":
+                free = None
+        elif split[i] and habit in TABULAR_HABITS:
+            # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
+            # from the outline its true edges imply (three-fold symmetry)
+            free = None
+            q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
             if contour2 is not None and len(contour2) >= 8:
-                res = classify_grain(contour2, interior2 if p["interior"] else None, p)
-                if res[0] != "irregular":
+                res = classify_grain(contour2, None, p)
+                if res[0] in TABULAR_HABITS:
                     habit, score, ev, fit = res
-                    ev["habit_note"] = "split grain: outline completed by central symmetry"
+                    ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
+        else:
+            free = None
+        if free is not None:
+            # the clearly smaller of the two completions first: a cut square completed three-fold, or
+            # a cut triangle completed by central symmetry, grows far beyond its true edges; a cut
+            # regular hexagon (an octahedron on {111}) gives both alike, and central symmetry goes first
+            done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
+            if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
+                done = done[::-1]
+            for q, fold in done:
+                contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+                if contour2 is None or len(contour2) < 8:
+                    continue
+                res = classify_grain(contour2, interior2 if p["interior"] else None, p)
+                # the completed model must explain the outline about as well as a smooth curve
+                # explains the true edges (a lumpy grain completed by symmetry looks polyhedral);
+                # a three-fold completion stands for a flat plate only
+                if res[0] == "irregular" or \
+                        res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
+                    continue
+                if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
+                                      and _flat(contour2, interior2, p)):
+                    continue
+                habit, score, ev, fit = res
+                ev["habit_note"] = f"split grain: outline completed by its {fold}-fold symmetry"
+                break
         cols["habit"][i], cols["habit_score"][i] = habit, score
         for k, v in ev.items():
             cols[k][i] = v
@@ -501,4 +676,5 @@ def grainhabit_prepare_worker(steps):
     if STEP.name not in steps:
         return
     lib = en.fit_options(STEP.resolve(steps[STEP.name]))["library"]
-    _families_stacked(lib.signatures.shape[-1])
+    for level in range(len(en.ROUNDING_LEVELS)):
+        _families_stacked(lib.signatures.shape[-1], level)

@@ -82,14 +82,16 @@ from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Inte
                                                grain_evidence, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_rss, subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
-                                                radial_signature, rounded_outline, shift_distances)
+                                                radial_signature, rounded_outline, shift_distances,
+                                                smooth_residual)
 from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
-           "OutlineMatch", "class_scores", "complete_by_symmetry", "fit_alpha", "fit_options", "grain_evidence",
+           "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
+           "symmetric_hull_areas", "fit_alpha", "fit_options", "grain_evidence",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
-           "radial_signature", "rounded_outline", "shift_distances", "subsample_interior", "view_probability",
+           "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
            "FAR_HEIGHT", "face_planes", "flat_rss", "round_rss", "check_n_angles", "check_polygon"]
 
 #: Directions a grain may be seen along (the face family that faces the beam).
@@ -541,6 +543,12 @@ class AlphaFit:
         Mean interior value (brightness, or attenuation for TEM); NaN without.
     signature : ndarray, shape (n_angles,)
         The grain's radial signature (:func:`radial_signature`).
+    relief_chi2 : float
+        Interior evidence against a flat interior: ``w (RSS_flat - RSS) / s^2``
+        with RSS the better of the best placed model and a round body, so a
+        thickness dome or a brightness rise counts even where it does not
+        single out facets (an octahedron on {111} in transmission); NaN
+        without interior samples.
     """
 
     alpha: float
@@ -555,6 +563,7 @@ class AlphaFit:
     facet_chi2: float = float("nan")
     interior_level: float = float("nan")
     signature: np.ndarray | None = None
+    relief_chi2: float = float("nan")
 
 
 @dataclass(frozen=True)
@@ -793,14 +802,15 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
         notes.append(f"only bounded: alpha >= {lo:.2f} (alpha_hi is the grid maximum {grid[-1]:g})")
     if not use_int:
         notes.append("outline only")
-    fchi, level = float("nan"), float("nan")
+    fchi, level, relief = float("nan"), float("nan"), float("nan")
     if interior is not None and interior.value.size >= 30:
         level = float(np.mean(interior.value))
         if evidence:
-            featureless = min(flat_rss(full), round_rss(full, tem_offset_max))
-            fchi = max(w_eff * (featureless - rmin) / s2, 0.0)
+            flat, rnd = flat_rss(full), round_rss(full, tem_offset_max)
+            fchi = max(w_eff * (min(flat, rnd) - rmin) / s2, 0.0)
+            relief = max(w_eff * (flat - min(rnd, rmin)) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
-                    dbest, "; ".join(notes), score, fchi, level, sig)
+                    dbest, "; ".join(notes), score, fchi, level, sig, relief)
 
 
 _QUICK_MODELS = 8
@@ -1126,35 +1136,15 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
     return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
 
 
-def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
-    """The smallest centrally symmetric convex outline that contains a (cut) outline.
+#: Directions of the support function sampled by :func:`complete_by_symmetry` (a multiple of 6,
+#: so that turns by a half and a third of a turn map the directions onto themselves).
+SUPPORT_DIRECTIONS = 720
+#: Directions of the last, finest steps of the search.
+FINE_SUPPORT_DIRECTIONS = 2016
 
-    Parameters
-    ----------
-    contour_xy : array_like, shape (k, 2)
-        Closed outline of a grain that was cut from a touching neighbour.
-    free : array_like of bool, shape (k,), optional
-        Vertices on the grain's true edges (False along the cut, where the
-        dividing line need not follow the true contact). Only these are
-        completed when they span at least half the outline's area; default all.
 
-    Returns
-    -------
-    ndarray, shape (q, 2)
-        Convex hull of the outline and its point reflection through the
-        centre c that makes that hull smallest, counter-clockwise.
-
-    Notes
-    -----
-    Every Wulff projection fitted here is centrally symmetric. A body cut
-    by a straight line keeps at least half of its outline when the cut
-    removes less than half of it, and the union of what is left with its
-    reflection through the body's centre is then the whole outline again;
-    through any other centre the hull is larger. The centre is found by
-    ``scipy.optimize.minimize`` (Nelder-Mead) on the hull area, started at
-    the centroid of the cut outline.
-    """
-    from scipy.optimize import minimize
+def _true_edge_hull(contour_xy, free):
+    """Hull vertices of the true edges of a cut outline (all of it where they span under half its area)."""
     from scipy.spatial import ConvexHull
 
     c = check_polygon(contour_xy, "contour_xy")
@@ -1167,16 +1157,171 @@ def complete_by_symmetry(contour_xy, free=None) -> np.ndarray:
                 pts = fh
         except (ValueError, RuntimeError, IndexError):     # too few or collinear free vertices
             pass
+    return pts
+
+
+def _turns(fold: int):
+    """Rotation matrices by 360 j / fold degrees, j = 1 ... fold - 1."""
+    out = []
+    for j in range(1, fold):
+        t = 2.0 * math.pi * j / fold
+        out.append(np.array([[math.cos(t), -math.sin(t)], [math.sin(t), math.cos(t)]]))
+    return out
+
+
+def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS) -> np.ndarray:
+    """Areas of the convex hulls of ``pts`` and their copies turned about each of many centres.
+
+    Parameters
+    ----------
+    pts : ndarray, shape (k, 2)
+        Points (the hull of a grain's true edges).
+    centres : ndarray, shape (c, 2)
+        Candidate centres.
+    fold : int
+        The copies are turned by 360 j / ``fold`` degrees, j = 1 ... fold - 1.
+    n_dir : int
+        Directions of the support function (a multiple of ``fold``).
+
+    Returns
+    -------
+    ndarray, shape (c,)
+
+    Notes
+    -----
+    The support function of the union is h(u) = max_j [h_K(R_j^T u) + c . (u - R_j^T u)]
+    (h_K of the points; a copy turned by R_j about c is R_j (p - c) + c). Sampled at
+    ``n_dir`` directions it defines the polygon bounded by those support lines, whose
+    vertices are the crossings of neighbouring lines; its area (shoelace formula)
+    exceeds the hull's by a relative O(1 / n_dir^2) that grows with the sharpness of
+    the corners (0 for a square whose edge normals are sampled; under 0.5 % at 720
+    directions for hulls of random points; tested against ``scipy.spatial.ConvexHull``).
+    """
+    p = np.asarray(pts, float)
+    cen = np.asarray(centres, float).reshape(-1, 2)
+    n = int(n_dir)
+    if n % fold:
+        raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
+    u, du, cross = _support_tables(n, fold)
+    hk = (p @ u.T).max(axis=0)                                         # (n,)
+    h = np.empty((cen.shape[0], n))
+    h[:] = hk
+    for j in range(1, fold):
+        s = j * n // fold                                              # R_j^T u_i = u_{i - s}
+        np.maximum(h, np.roll(hk, s) + cen @ du[j - 1], out=h)
+    # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
+    # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
+    w_sq, w_next = cross
+    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.roll(h, -1, axis=1)))
+
+
+@functools.lru_cache(maxsize=8)
+def _support_tables(n: int, fold: int):
+    """Directions (n, 2), their differences to the turned directions (fold - 1, 2, n), shoelace weights (2, n)."""
+    th = 2.0 * np.pi * np.arange(n) / n
+    u = np.column_stack([np.cos(th), np.sin(th)])
+    du = np.stack([(u - np.roll(u, j * n // fold, axis=0)).T for j in range(1, fold)]) if fold > 1 \
+        else np.zeros((0, 2, n))
+    # v_i = h_i a_i + h_{i+1} b_i, a_i = perp(u_{i+1}) / sin d, b_i = -perp(u_i) / sin d, so
+    # a_i = -b_{i+1}; sum_i v_i x v_{i+1} = sum_i h_i (h_i (b_{i-1} x a_i) + h_{i+1} (a_i x a_{i+1} + b_{i-1} x b_i))
+    d = 2.0 * np.pi / n
+    sd = math.sin(d)
+    u1 = np.roll(u, -1, axis=0)
+    a = np.column_stack([u1[:, 1], -u1[:, 0]]) / sd
+    b = np.column_stack([-u[:, 1], u[:, 0]]) / sd
+
+    def cr(x, y):
+        return x[:, 0] * y[:, 1] - x[:, 1] * y[:, 0]
+
+    bm = np.roll(b, 1, axis=0)
+    return u, du, (cr(bm, a), cr(a, np.roll(a, -1, axis=0)) + cr(bm, b))
+
+
+def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
+    """The smallest convex outline of ``fold``-fold rotational symmetry that contains a (cut) outline.
+
+    Parameters
+    ----------
+    contour_xy : array_like, shape (k, 2)
+        Closed outline of a grain that was cut from a touching neighbour.
+    free : array_like of bool, shape (k,), optional
+        Vertices on the grain's true edges (False along the cut, where the
+        dividing line need not follow the true contact). Only these are
+        completed when they span at least half the outline's area; default all.
+    fold : {2, 3}
+        2: central symmetry (every Wulff projection along [100], [111] and
+        [110], rods); 3: the three-fold symmetry of a twinned {111} plate
+        (triangles and hexagons with alternating edges).
+
+    Returns
+    -------
+    ndarray, shape (q, 2)
+        Convex hull of the outline and its copies turned by 360 / ``fold``
+        degrees (2: the point reflection) about the centre c that makes that
+        hull smallest, counter-clockwise.
+
+    Notes
+    -----
+    A body of ``fold``-fold symmetry that a straight cut removes less than a
+    share 1 / ``fold`` of is the union of what is left and its copies turned
+    about the body's centre; about any other centre the hull is larger. The
+    centre is searched on grids of candidate centres, each grid centred on
+    the best point of the one before and a third as wide (9 x 9 points, from
+    +-0.6 sqrt(area) about the centroid down to a thousandth of sqrt(area)),
+    all candidates of a grid at once (:func:`symmetric_hull_areas`, with
+    :data:`SUPPORT_DIRECTIONS` directions, and :data:`FINE_SUPPORT_DIRECTIONS`
+    once the grid is finer than a hundredth of sqrt(area)).
+    :func:`complete_by_symmetry_reference` is the earlier search
+    (``scipy.optimize.minimize``, Nelder-Mead, on the exact hull area), kept to
+    test this one against. The hull area has local minima: on 348 cut outlines of
+    the hard survey (two folds each) the two searches agree to a median 1e-4 of
+    the area; this one finds a hull more than 1 % smaller in 3 and more than 1 %
+    larger in 2 (at most 6 %), in about three quarters of the time.
+    """
+    from scipy.spatial import ConvexHull
+
+    if fold not in (2, 3):
+        raise ValueError(f"fold must be 2 or 3, got {fold!r}")
+    pts = _true_edge_hull(contour_xy, free)
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
+    g = np.linspace(-1.0, 1.0, 9)
+    grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
+    best, half = np.asarray(cen, float), 0.6 * scale
+    while half > 1e-3 * scale:
+        cand = best + half * grid
+        # finely sampled directions for the last steps, where the areas differ least
+        n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
+        half /= 3.0
+    both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
+    return both[ConvexHull(both).vertices]
 
-    def hull_area(q):
-        return ConvexHull(np.vstack([pts, 2.0 * q - pts])).volume
 
-    res = minimize(hull_area, cen, method="Nelder-Mead",
+def complete_by_symmetry_reference(contour_xy, free=None, fold: int = 2) -> np.ndarray:
+    """:func:`complete_by_symmetry` by Nelder-Mead on the exact hull area (the slower reference).
+
+    Parameters and Returns as :func:`complete_by_symmetry`; the centre is found by
+    ``scipy.optimize.minimize`` (Nelder-Mead) on the hull area (``scipy.spatial.ConvexHull``),
+    started at the centroid of the true edges.
+    """
+    from scipy.optimize import minimize
+    from scipy.spatial import ConvexHull
+
+    if fold not in (2, 3):
+        raise ValueError(f"fold must be 2 or 3, got {fold!r}")
+    pts = _true_edge_hull(contour_xy, free)
+    cen, area = polygon_centroid(pts)
+    scale = math.sqrt(area)
+    turns = _turns(fold)
+
+    def copies(q):
+        return np.vstack([pts] + [(pts - q) @ r.T + q for r in turns])
+
+    res = minimize(lambda q: ConvexHull(copies(q)).volume, cen, method="Nelder-Mead",
                    options={"xatol": 1e-3 * scale, "fatol": 1e-6 * area, "initial_simplex":
                             np.array([cen, cen + [0.1 * scale, 0.0], cen + [0.0, 0.1 * scale]])})
-    both = np.vstack([pts, 2.0 * res.x - pts])
+    both = copies(res.x)
     return both[ConvexHull(both).vertices]
 
 

@@ -321,6 +321,11 @@ def _solve_sets(nm, rhs, vv, sets):
 #: Active sets of the facet fit over (a, b, c_x, c_y, p_x, p_y): none; a = b = 0;
 #: b = kmin a; b = kmax a (see :func:`interior_rss_batch`).
 _FACET_SETS = _facet_sets()
+#: Active sets of the thickness fit over (b, a, p_x, p_y) with the bound amax = 1: none; a = 0;
+#: a = amax; b = 0; b = a = 0; b = 0 and a = amax. Every held value is 0 or amax, so the
+#: offsets of a grain's bound are these times its amax.
+_THICKNESS_SETS = _stack_sets([_active_set(4, f) for f in ((), ((1, 0.0),), ((1, 1.0),), ((0, 0.0),),
+                                                           ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, 1.0)))])
 
 
 def plane_gap_inverse(g_up) -> np.ndarray:
@@ -472,9 +477,8 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     eps = 1e-12
     # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
     # unconstrained optimum where it is feasible, else the best feasible constrained one
-    sets = _stack_sets([_active_set(4, f) for f in ((), ((1, 0.0),), ((1, amax),), ((0, 0.0),),
-                                                    ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, amax)))])
-    th, rss = _solve_sets(nm, rhs, vv, sets)
+    tm, t0 = _THICKNESS_SETS
+    th, rss = _solve_sets(nm, rhs, vv, (tm, t0 * amax))
     ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
     best = np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
     return best
