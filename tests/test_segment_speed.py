@@ -1,0 +1,77 @@
+"""Faster kernels of the segmentation, each against the slower reference it replaces.
+
+References named beside each check: scikit-image's nearest-label expansion and boundaries
+(``expand_labels``, ``find_boundaries``) for the dividing lines between grains; scipy's binary
+morphology with the same structuring element for the disk erosions, dilations and closings; scipy's
+whole-frame Euclidean distance transform for every windowed one.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.bench import harness as bu
+from grainhabit.plugins.preprocess import flatten_background as pp
+from grainhabit.plugins.segment import foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
+
+from builders import reference_gap_lines
+
+
+def _bodies_and_specks(seed, shape=(220, 300)):
+    """Cores, faint components, specks under GAP_MIN_AREA_PX, one speck far from every body, wide dim rims."""
+    rng = np.random.default_rng(seed)
+    seeds = rng.random(shape) > 0.998
+    seeds[:, 200:] = False
+    cores = ndi.binary_dilation(seeds[:, :150], iterations=4)
+    cores = np.pad(cores, ((0, 0), (0, shape[1] - 150)))
+    mask = ndi.binary_dilation(seeds, iterations=7) | (rng.random(shape) > 0.997) | cores
+    mask[:, 200:] = False
+    mask[110:113, 270:273] = True  # a lone speck 70 px from the nearest body
+    # a speck on the bisector of two bodies 80 px apart: the lines through it need both
+    for c in (205, 285):
+        cores[150:161, c:c + 11] = True
+        mask[148:163, c - 2:c + 13] = True
+    mask[154:157, 249:252] = True
+    return mask, cores
+
+
+@pytest.mark.parametrize("seed", [13, 4, 21])
+@pytest.mark.parametrize("near_px", [3.0, 12.0])
+def test_gap_lines_near_the_mask_equal_the_whole_frame_lines(seed, near_px):
+    # reference library: scikit-image expand_labels + find_boundaries over the whole frame (reference_gap_lines);
+    # the windowed lines must equal them at every pixel within near_px of the mask, and add none elsewhere
+    mask, cores = _bodies_and_specks(seed)
+    ref, *_ = reference_gap_lines(mask, cores, seg_gaps.GAP_MIN_AREA_PX, seg_gaps.GAP_REACH_PX)
+    near = seg_gaps.gap_lines(mask, cores, near_px=near_px)
+    k = int(np.ceil(near_px))
+    zone = ndi.maximum_filter(mask, size=2 * k + 1, mode="constant")
+    assert (ref & zone).any()
+    np.testing.assert_array_equal(near & zone, ref & zone)
+    assert not (near & ~ref).any()
+    # the speck on the bisector: its first window holds no body, the lines there come from a grown one
+    # (without growing the windows this test fails)
+    assert (near[140:170, 240:260] & ref[140:170, 240:260]).any()
+    # the whole-frame path is the reference too
+    np.testing.assert_array_equal(seg_gaps.gap_lines(mask, cores), ref)
+
+
+def _full_lines(mask, cores, near_px=None, **kw):
+    return seg_gaps.gap_lines(mask, cores, **kw)
+
+
+@pytest.mark.parametrize("seed, kw", [(0, {}), (3, {"refine_nm": 6 * bu.PIXEL_SIZE_NM, "close_nm": 3 * bu.PIXEL_SIZE_NM}),
+                                      (5, {"method": "noise"})])
+def test_foreground_equals_the_one_with_whole_frame_lines(seed, kw, monkeypatch):
+    # reference: the same foreground with the dividing lines computed over the whole frame (checked above
+    # against scikit-image); a rendered field of 640 px with 40 grains (invented data)
+    raw = bu.render_frames(1, 640, grains=40, seed=seed)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    levels = seg_levels.frame_levels(arr)
+    kw = {"method": "auto", **kw}
+    fast = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels, **kw)
+    monkeypatch.setattr(seg_fg, "gap_lines", _full_lines)
+    slow = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels, **kw)
+    assert slow.sum() > 0.05 * slow.size
+    np.testing.assert_array_equal(fast, slow)
