@@ -94,14 +94,17 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
         fg = arr > np.maximum(t, levels["noise"])
     else:
         raise ValueError(f"threshold must be 'auto', 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
-    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]))
     r = int(round(2.0 if close_nm is None else close_nm / pixel_size_nm))
+    w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
+    # the lines matter only where the closing reaches (r of fg) and in the refinement's undecided band
+    # (within w of both kinds of pixel, so within 3 w of a pixel kept after the closing): lines within
+    # r + 3 w + 1 of fg are the same as over the whole frame, at a fraction of the cost
+    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]), near_px=max(r, 0) + 3 * max(w, 0.0) + 1)
     if r >= 1:
         pad = np.pad(fg, r, mode="edge")
         pad = ndi.binary_closing(pad, structure=disk(r), border_value=0)
         fg = pad[r:-r, r:-r]
     fg = fill_holes(fg & ~gaps)
-    w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
     if w < 1 or not fg.any():
         return fg
     # deeper than w inside (or outside): the Euclidean distance to the nearest pixel of the other kind
