@@ -14,7 +14,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.preprocess import flatten_background as pp
-from grainhabit.plugins.segment import foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
+from grainhabit.plugins.segment import band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
 
 from builders import reference_gap_lines
 
@@ -61,17 +61,46 @@ def _full_lines(mask, cores, near_px=None, **kw):
     return seg_gaps.gap_lines(mask, cores, **kw)
 
 
+def _whole_frame_flood(image, markers, band, label):
+    from skimage.filters import sobel
+    from skimage.segmentation import watershed
+
+    return watershed(sobel(image), np.where(band, markers, 0), mask=band) == label
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_band_flood_equals_one_whole_frame_watershed(seed):
+    # reference library: skimage.segmentation.watershed on skimage.filters.sobel of the whole frame; pieces
+    # of the band touch the frame's edges, some hold no seed of the label asked for
+    rng = np.random.default_rng(seed)
+    image = ndi.gaussian_filter(rng.random((160, 210)), 2.0).astype(np.float32)
+    blobs = ndi.gaussian_filter(rng.random(image.shape), 4.0)
+    inside = blobs > np.quantile(blobs, 0.6)
+    band = ndi.binary_dilation(inside, iterations=3) & ~ndi.binary_erosion(inside, iterations=3)
+    markers = np.zeros(image.shape, np.int32)
+    markers[~ndi.binary_dilation(inside, iterations=2)] = 1
+    markers[ndi.binary_erosion(inside, iterations=2)] = 2
+    markers[rng.random(image.shape) > 0.995] = 3
+    near = ndi.binary_dilation(band & (markers == 0), structure=ndi.generate_binary_structure(2, 1))
+    assert near[0].any() or near[:, 0].any() or near[-1].any() or near[:, -1].any()
+    for label in (1, 2, 3):
+        got = band_flood.flood_band(image, markers, near, label)
+        np.testing.assert_array_equal(got, _whole_frame_flood(image, markers, near, label))
+
+
 @pytest.mark.parametrize("seed, kw", [(0, {}), (3, {"refine_nm": 6 * bu.PIXEL_SIZE_NM, "close_nm": 3 * bu.PIXEL_SIZE_NM}),
                                       (5, {"method": "noise"})])
-def test_foreground_equals_the_one_with_whole_frame_lines(seed, kw, monkeypatch):
+def test_foreground_equals_the_one_with_whole_frame_kernels(seed, kw, monkeypatch):
     # reference: the same foreground with the dividing lines computed over the whole frame (checked above
-    # against scikit-image); a rendered field of 640 px with 40 grains (invented data)
+    # against scikit-image) and the refinement flooded by one scikit-image watershed over the whole frame;
+    # a rendered field of 640 px with 40 grains (invented data)
     raw = bu.render_frames(1, 640, grains=40, seed=seed)[0]
     arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
     levels = seg_levels.frame_levels(arr)
     kw = {"method": "auto", **kw}
     fast = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels, **kw)
     monkeypatch.setattr(seg_fg, "gap_lines", _full_lines)
+    monkeypatch.setattr(seg_fg, "flood_band", _whole_frame_flood)
     slow = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels, **kw)
     assert slow.sum() > 0.05 * slow.size
     np.testing.assert_array_equal(fast, slow)
