@@ -14,7 +14,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.preprocess import flatten_background as pp
-from grainhabit.plugins.segment import band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
+from grainhabit.plugins.segment import annotations, band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
 
 from builders import reference_gap_lines
 
@@ -104,3 +104,14 @@ def test_foreground_equals_the_one_with_whole_frame_kernels(seed, kw, monkeypatc
     slow = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels, **kw)
     assert slow.sum() > 0.05 * slow.size
     np.testing.assert_array_equal(fast, slow)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.int16, np.float32])
+def test_histogram_median_equals_numpy_median(dtype):
+    # reference library: numpy.median (odd and even counts, a single value, a constant run)
+    rng = np.random.default_rng(7)
+    top = 200 if dtype == np.uint8 else 60000 if dtype == np.uint16 else 3000
+    for n in (1, 2, 3, 10, 11, 4096, 4097):
+        values = rng.integers(0, top, n).astype(dtype)
+        assert annotations.median(values) == float(np.median(values))
+    assert annotations.median(np.full(6, 9, dtype)) == 9.0
