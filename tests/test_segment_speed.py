@@ -15,6 +15,7 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.preprocess import flatten_background as pp
 from grainhabit.plugins.segment import annotations, band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
+from grainhabit.plugins.segment import mark_shapes
 
 from builders import reference_gap_lines
 
@@ -115,3 +116,15 @@ def test_histogram_median_equals_numpy_median(dtype):
         values = rng.integers(0, top, n).astype(dtype)
         assert annotations.median(values) == float(np.median(values))
     assert annotations.median(np.full(6, 9, dtype)) == 9.0
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_inscribed_radii_equal_two_distance_transforms(seed):
+    # reference library: scipy.ndimage.distance_transform_edt of each padded mask on its own
+    rng = np.random.default_rng(seed)
+    for h, w in ((1, 1), (3, 17), (25, 9), (40, 40)):
+        a = ndi.binary_opening(rng.random((h, w)) > 0.3) if min(h, w) > 2 else rng.random((h, w)) > 0.3
+        b = a & (rng.random((h, w)) > 0.2)
+        got = mark_shapes.inscribed_radii(a, b)
+        want = tuple(float(ndi.distance_transform_edt(np.pad(m, 1)).max()) for m in (a, b))
+        assert got == want
