@@ -15,7 +15,7 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.preprocess import flatten_background as pp
 from grainhabit.plugins.segment import annotations, band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
-from grainhabit.plugins.segment import mark_shapes
+from grainhabit.plugins.segment import disk_morphology, mark_shapes
 
 from builders import reference_gap_lines
 
@@ -128,3 +128,25 @@ def test_inscribed_radii_equal_two_distance_transforms(seed):
         got = mark_shapes.inscribed_radii(a, b)
         want = tuple(float(ndi.distance_transform_edt(np.pad(m, 1)).max()) for m in (a, b))
         assert got == want
+
+
+@pytest.mark.parametrize("radius", [0, 0.5, 1, 1.5, 2, 2.3, 3, 3.7, 5, 6.5, 31, 33.5])
+def test_disk_morphology_equals_scipy_binary_morphology(radius):
+    # reference library: scipy.ndimage.binary_erosion / binary_dilation / binary_closing with the disk as
+    # structuring element (scikit-image's disk for whole radii), both border values, widths around 64
+    from skimage.morphology import disk
+
+    structure = seg_fg.disk_structure(radius)
+    if float(radius).is_integer():
+        np.testing.assert_array_equal(structure, disk(int(radius)).astype(bool))
+    rng = np.random.default_rng(int(radius * 10))
+    for shape in ((97, 131), (5, 64), (70, 1), (64, 60), (33, 129)):
+        m = rng.random(shape) > 0.4
+        if min(shape) > 2:
+            m = ndi.binary_opening(m)
+        for border in (0, 1):
+            np.testing.assert_array_equal(disk_morphology.erode_disk(m, radius, border),
+                                          ndi.binary_erosion(m, structure, border_value=border))
+        np.testing.assert_array_equal(disk_morphology.dilate_disk(m, radius), ndi.binary_dilation(m, structure))
+        np.testing.assert_array_equal(disk_morphology.close_disk(m, radius),
+                                      ndi.binary_closing(m, structure, border_value=0))
