@@ -17,6 +17,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.band_flood import flood_band
+from grainhabit.plugins.segment.disk_morphology import close_disk, dilate_disk, erode_disk
 from grainhabit.plugins.segment.gaps import gap_lines
 from grainhabit.plugins.segment.levels import check_image, odd_size
 
@@ -76,7 +77,6 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     edge. Holes are filled again afterwards.
     """
     from skimage.filters import threshold_local, threshold_sauvola
-    from skimage.morphology import disk
 
     arr = check_image(image)
     if method == "auto":
@@ -102,7 +102,7 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]), near_px=max(r, 0) + 3 * max(w, 0.0) + 1)
     if r >= 1:
         pad = np.pad(fg, r, mode="edge")
-        pad = ndi.binary_closing(pad, structure=disk(r), border_value=0)
+        pad = close_disk(pad, r)  # scipy's binary_closing by disk(r), border 0 (disk_morphology)
         fg = pad[r:-r, r:-r]
     fg = fill_holes(fg & ~gaps)
     if w < 1 or not fg.any():
@@ -110,8 +110,7 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     # deeper than w inside (or outside): the Euclidean distance to the nearest pixel of the other kind
     # exceeds w, i.e. the pixel survives an erosion by the disk of radius w (the frame's edge counts as
     # neither kind, as in scipy's distance transform); 8x cheaper than the distance transform itself
-    ball = disk_structure(w)
-    seeds = ndi.binary_erosion(fg, structure=ball, border_value=1)
+    seeds = erode_disk(fg, w, 1)  # scipy's binary_erosion by disk_structure(w), border 1 (disk_morphology)
     comp, n = ndi.label(fg, structure=_EIGHT)
     if n:
         # components too thin to hold a deep pixel keep their deepest pixels as seeds
@@ -121,13 +120,13 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
         if thin.size:
             seeds |= deepest_pixels(fg, comp, thin, w)
     markers = np.zeros(arr.shape, np.int32)
-    markers[ndi.binary_erosion(~fg, structure=ball, border_value=1) | gaps] = 1
+    markers[erode_disk(~fg, w, 1) | gaps] = 1
     markers[seeds] = 2
     # Flood only the undecided band and the marker pixels touching it: a marker pixel with no
     # undecided neighbour never labels anything, but scikit-image would queue every one of them
     # (most of the frame). With this mask the result is the same and the queue holds ~10x fewer pixels.
     band = markers == 0
-    near_band = ndi.binary_dilation(band, structure=ndi.generate_binary_structure(2, 1))
+    near_band = dilate_disk(band, 1)  # the 4-neighbours' cross
     # each connected piece of that band flooded in its own box (band_flood; equal to one whole-frame flood)
     return fill_holes(seeds | flood_band(arr, markers, near_band, 2))
 
@@ -171,7 +170,7 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     peak[0] = 0.0
     # only the skirt of each component (within EDGE_BAND_PX of its outline) is cut at the level: inner
     # facet lines and texture deeper inside never split a grain
-    deep = ndi.binary_erosion(weak, structure=disk_structure(EDGE_BAND_PX), border_value=1)
+    deep = erode_disk(weak, EDGE_BAND_PX, 1)  # binary_erosion by disk_structure(EDGE_BAND_PX), border 1
     return deep | (weak & (image > edge_level * peak[lab]))
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
