@@ -150,3 +150,25 @@ def test_disk_morphology_equals_scipy_binary_morphology(radius):
         np.testing.assert_array_equal(disk_morphology.dilate_disk(m, radius), ndi.binary_dilation(m, structure))
         np.testing.assert_array_equal(disk_morphology.close_disk(m, radius),
                                       ndi.binary_closing(m, structure, border_value=0))
+
+
+def _half_height_reference(image, noise_level, edge_level):
+    """The whole-frame form: scipy's labelled maximum, binary erosion and comparison over every pixel."""
+    weak = image > noise_level
+    lab, n = ndi.label(weak, structure=np.ones((3, 3), bool))
+    peak = np.zeros(n + 1, image.dtype)
+    peak[1:] = ndi.maximum(image, lab, np.arange(1, n + 1))
+    deep = ndi.binary_erosion(weak, structure=seg_fg.disk_structure(seg_fg.EDGE_BAND_PX), border_value=1)
+    return deep | (weak & (image > edge_level * peak[lab]))
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_half_height_mask_equals_whole_frame_form(dtype):
+    # reference library: scipy.ndimage.maximum per label and binary_erosion over the whole frame
+    raw = bu.render_frames(1, 512, grains=20, seed=9)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    arr = arr.astype(dtype)
+    noise = seg_levels.frame_levels(arr)["noise"]
+    for edge in (0.3, 0.5, 0.8):
+        np.testing.assert_array_equal(seg_fg.half_height_mask(arr, noise, edge),
+                                      _half_height_reference(arr, noise, edge))
