@@ -14,12 +14,14 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.disk_morphology import dilate_disk
+
 #: Components of the thresholded mask smaller than this (pixels) are specks, not grains kept apart.
 GAP_MIN_AREA_PX = 20
 #: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
 GAP_REACH_PX = 4.0
 _EIGHT = np.ones((3, 3), bool)
-#: Side (px) of the blocks on which the clusters of :func:`gap_lines` with ``near_px`` are found.
+#: Side (px) of the blocks by which the clusters of :func:`gap_lines` with ``near_px`` are grouped.
 _BLOCK = 4
 
 
@@ -43,9 +45,9 @@ def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_P
         take no part.
     near_px : float or None
         None: the lines over the whole frame. Otherwise the lines only at
-        pixels within ``near_px`` (Chebyshev distance, so any Euclidean
-        reach up to it) of a pixel of ``mask``, and no line elsewhere; there
-        they equal the whole-frame lines pixel for pixel (see Notes).
+        pixels within ``near_px`` (Euclidean) of a pixel of ``mask``, and no
+        line elsewhere; there they equal the whole-frame lines pixel for
+        pixel (see Notes).
 
     Returns
     -------
@@ -71,8 +73,8 @@ def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_P
     comes from the Euclidean distance transform with feature indices [4]_.
 
     With ``near_px`` the feature transform runs in one window per cluster
-    (connected pixels within ``near_px`` of the mask): the cluster's box
-    grown by a margin. A pixel's nearest body found in the window is its
+    (connected blocks holding pixels within ``near_px`` of the mask): the
+    cluster's box grown by a margin. A pixel's nearest body found in the window is its
     nearest in the frame when that distance is below the distance to the
     nearest pixel outside the window (no body outside can be as near, so
     ties are broken among the same bodies); every pixel of the cluster and
@@ -160,33 +162,32 @@ def nearest_body_lines(bodies: np.ndarray, mask: np.ndarray,
 
 
 def _lines_near_mask(bodies: np.ndarray, mask: np.ndarray, reach_px: float, near_px: float) -> np.ndarray:
-    """:func:`gap_lines` at the pixels within ``near_px`` (Chebyshev) of ``mask``, window by window.
+    """:func:`gap_lines` at the pixels within ``near_px`` (Euclidean) of ``mask``, window by window.
 
-    The clusters are found on a grid of :data:`_BLOCK` px blocks (a block
-    is near when a block within ``ceil(near_px / _BLOCK)`` blocks holds a
-    mask pixel), so the lines come out on a superset of the pixels within
-    ``near_px``, and every pixel written is checked.
+    The clusters are the connected groups of :data:`_BLOCK` px blocks that
+    hold such a pixel; each is computed in its box grown by a margin, and
+    written (and checked) at those pixels only.
     """
     rows, cols = mask.shape
     b = _BLOCK
-    k = int(np.ceil(near_px / b))
+    zone = dilate_disk(mask, near_px)
     nby, nbx = -(-rows // b), -(-cols // b)
     padded = np.zeros((nby * b, nbx * b), bool)
-    padded[:rows, :cols] = mask
+    padded[:rows, :cols] = zone
     held = padded.reshape(nby, b, nbx, b).any(axis=(1, 3))
-    near = ndi.maximum_filter(held, size=2 * k + 1, mode="constant", cval=False)
-    lab, _ = ndi.label(near)
+    lab, _ = ndi.label(held, structure=_EIGHT)
     out = np.zeros(mask.shape, bool)
-    # a pixel of a cluster lies within (k + 1) * b (Chebyshev) of a mask pixel; when that is a body pixel,
-    # its nearest body lies within sqrt(2) times that (Euclidean): the first margin. Other cases (a speck
-    # or a wide dim rim far from any body) fail the check and take a wider window.
-    first = int(np.ceil((k + 1) * b * np.sqrt(2.0))) + 2
+    # a pixel of the zone lies within near_px of a mask pixel: when that is a body pixel, its nearest body
+    # is no farther, so a margin of near_px + 3 holds it. Other cases (a speck or a dim rim far from any
+    # body) fail the check and take a wider window.
+    first = int(np.ceil(near_px)) + 3
     for j, box in enumerate(ndi.find_objects(lab), start=1):
         if box is None:
             continue
         by0, bx0 = box[0].start * b, box[1].start * b
         by1, bx1 = min(box[0].stop * b, rows), min(box[1].stop * b, cols)
         own_box = np.repeat(np.repeat(lab[box] == j, b, axis=0), b, axis=1)[:by1 - by0, :bx1 - bx0]
+        own_box &= zone[by0:by1, bx0:bx1]
         margin = first
         while True:
             y0, y1 = max(by0 - margin, 0), min(by1 + margin, rows)
