@@ -171,3 +171,62 @@ def test_half_height_mask_equals_whole_frame_form(dtype):
     for edge in (0.3, 0.5, 0.8):
         np.testing.assert_array_equal(seg_fg.half_height_mask(arr, noise, edge),
                                       _half_height_reference(arr, noise, edge))
+
+
+def _annotation_kind_reference(part, raw):
+    """The shape test with both inscribed radii from scipy's distance transform, always."""
+    from skimage.morphology import convex_hull_image
+
+    area = float(part.sum())
+    if area < 4:
+        return None
+    r = float(ndi.distance_transform_edt(np.pad(part, 1)).max())
+    elong = area / (4.0 * r * r)
+    if elong > mark_shapes.LINE_ELONGATION and r <= 2 * mark_shapes.STROKE_MAX_HALF_WIDTH_PX:
+        return "line"
+    raw = raw & part
+    raw_area = float(raw.sum())
+    if raw_area > 0:
+        r_raw = float(ndi.distance_transform_edt(np.pad(raw, 1)).max())
+        if r_raw <= mark_shapes.STROKE_MAX_HALF_WIDTH_PX and raw_area / (4.0 * r_raw * r_raw) > mark_shapes.STROKE_ELONGATION:
+            if raw_area < mark_shapes.STROKE_SOLIDITY * float(convex_hull_image(raw).sum()):
+                return "stroke"
+    if elong > mark_shapes.STROKE_ELONGATION and r <= mark_shapes.STROKE_MAX_HALF_WIDTH_PX:
+        if area / max(float(convex_hull_image(part).sum()), 1.0) < mark_shapes.STROKE_SOLIDITY:
+            return "stroke"
+    return None
+
+
+def test_annotation_kind_equals_the_distance_transform_form():
+    # reference library: scipy.ndimage.distance_transform_edt for both radii on every object; objects:
+    # rendered grains (invented data), bars of widths 1-17 px, rings, arcs and random blobs
+    from skimage.draw import disk as draw_disk
+
+    shapes = []
+    raw = bu.render_frames(1, 512, grains=24, seed=4)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    levels = seg_levels.frame_levels(arr)
+    fg = seg_fg.foreground(arr, bu.PIXEL_SIZE_NM, levels, "auto")
+    above = arr > levels["noise"]
+    lab, _ = ndi.label(fg)
+    for k, box in enumerate(ndi.find_objects(lab), start=1):
+        shapes.append((lab[box] == k, above[box]))
+    rng = np.random.default_rng(5)
+    for w in (1, 2, 3, 5, 8, 9, 12, 17):
+        for length in (20, 90, 300):
+            bar = np.ones((w, length), bool)
+            shapes.append((bar, bar))
+            shapes.append((bar, bar & (rng.random(bar.shape) > 0.3)))
+    for outer, inner in ((10, 7), (14, 11), (20, 12), (30, 27)):
+        yy, xx = np.mgrid[-outer:outer + 1, -outer:outer + 1]
+        ring = (yy * yy + xx * xx <= outer * outer) & (yy * yy + xx * xx > inner * inner)
+        shapes.append((ring | (yy * yy + xx * xx <= inner * inner), ring))
+        shapes.append((ring & (xx < outer // 3), ring & (xx < outer // 3)))
+    for _ in range(40):
+        blob = np.zeros((60, 70), bool)
+        for _ in range(rng.integers(1, 5)):
+            blob[draw_disk((rng.integers(10, 50), rng.integers(10, 60)), rng.integers(2, 12), shape=blob.shape)] = True
+        shapes.append((blob, blob & (rng.random(blob.shape) > rng.random() * 0.5)))
+    kinds = [_annotation_kind_reference(p, a) for p, a in shapes]
+    assert {"line", "stroke", None} <= set(kinds)
+    assert [mark_shapes.annotation_kind(p, a) for p, a in shapes] == kinds

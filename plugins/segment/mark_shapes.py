@@ -8,6 +8,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.disk_morphology import erode_disk
+
 #: Objects more elongated than this (area over squared inscribed diameter) are drawn lines, not grains.
 LINE_ELONGATION = 15.0
 #: Thin objects (elongation above this) with solidity below STROKE_SOLIDITY are strokes of letters.
@@ -60,6 +62,12 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
     if area < 4:
         return None
     raw = raw & part
+    # every test below needs a thin object: r <= 8 and r < sqrt(area / 60) for a line, r_raw <= 4 or r <= 4
+    # for a stroke (r_raw <= r, raw lying inside part). An object whose raw pixels survive an erosion by the
+    # disk of the larger bound (Euclidean distance transform above it) is none, and no transform is needed.
+    bound = max(STROKE_MAX_HALF_WIDTH_PX, min(2 * STROKE_MAX_HALF_WIDTH_PX, float(np.sqrt(area / (4.0 * LINE_ELONGATION)))))
+    if erode_disk(np.pad(raw, 1), bound, 0).any():
+        return None
     r, r_raw = inscribed_radii(part, raw)
     elong = area / (4.0 * r * r)
     if elong > LINE_ELONGATION and r <= 2 * STROKE_MAX_HALF_WIDTH_PX:
