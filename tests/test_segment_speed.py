@@ -152,10 +152,11 @@ def test_disk_morphology_equals_scipy_binary_morphology(radius):
 
 
 def _half_height_reference(image, noise_level, edge_level):
-    """The whole-frame form: scipy's labelled maximum, binary erosion and comparison over every pixel."""
+    """The whole-frame form: scipy's labelled maximum (kept in float32, as the step keeps it), binary
+    erosion and comparison over every pixel."""
     weak = image > noise_level
     lab, n = ndi.label(weak, structure=np.ones((3, 3), bool))
-    peak = np.zeros(n + 1, image.dtype)
+    peak = np.zeros(n + 1, np.float32)
     peak[1:] = ndi.maximum(image, lab, np.arange(1, n + 1))
     deep = ndi.binary_erosion(weak, structure=seg_fg.disk_structure(seg_fg.EDGE_BAND_PX), border_value=1)
     return deep | (weak & (image > edge_level * peak[lab]))
