@@ -20,7 +20,6 @@ References
 from __future__ import annotations
 
 import numpy as np
-from scipy import ndimage as ndi
 
 
 def disk_rectangles(radius: float) -> list[tuple[int, int]]:
