@@ -16,6 +16,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.band_flood import flood_band
+from grainhabit.plugins.segment.disk_morphology import close_disk, dilate_disk, erode_disk
 from grainhabit.plugins.segment.gaps import gap_lines
 from grainhabit.plugins.segment.levels import check_image, odd_size
 
@@ -74,9 +76,7 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
     point of a blurred step edge, the foot of a soft (thickness-graded)
     edge. Holes are filled again afterwards.
     """
-    from skimage.filters import sobel, threshold_local, threshold_sauvola
-    from skimage.morphology import disk
-    from skimage.segmentation import watershed
+    from skimage.filters import threshold_local, threshold_sauvola
 
     arr = check_image(image)
     if method == "auto":
@@ -94,21 +94,25 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
         fg = arr > np.maximum(t, levels["noise"])
     else:
         raise ValueError(f"threshold must be 'auto', 'noise', 'otsu', 'local' or 'sauvola', got {method!r}")
-    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]))
     r = int(round(2.0 if close_nm is None else close_nm / pixel_size_nm))
+    w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
+    # the lines matter only where the closing reaches (r of fg) and in the refinement's undecided band:
+    # pixels with both kinds within w; the 4-connected staircase from such a pixel to the other kind
+    # steps from a pixel kept after the closing (a filled hole never borders the outer background), so
+    # they lie within w of one, and within r + w of fg. Lines within r + w + 1 of fg are the same as over
+    # the whole frame, at a fraction of the cost.
+    gaps = gap_lines(fg, arr > max(gap_level, levels["noise"]), near_px=max(r, 0) + max(w, 0.0) + 1)
     if r >= 1:
         pad = np.pad(fg, r, mode="edge")
-        pad = ndi.binary_closing(pad, structure=disk(r), border_value=0)
+        pad = close_disk(pad, r)  # scipy's binary_closing by disk(r), border 0 (disk_morphology)
         fg = pad[r:-r, r:-r]
     fg = fill_holes(fg & ~gaps)
-    w = 3.0 if refine_nm is None else refine_nm / pixel_size_nm
     if w < 1 or not fg.any():
         return fg
     # deeper than w inside (or outside): the Euclidean distance to the nearest pixel of the other kind
     # exceeds w, i.e. the pixel survives an erosion by the disk of radius w (the frame's edge counts as
     # neither kind, as in scipy's distance transform); 8x cheaper than the distance transform itself
-    ball = disk_structure(w)
-    seeds = ndi.binary_erosion(fg, structure=ball, border_value=1)
+    seeds = erode_disk(fg, w, 1)  # scipy's binary_erosion by disk_structure(w), border 1 (disk_morphology)
     comp, n = ndi.label(fg, structure=_EIGHT)
     if n:
         # components too thin to hold a deep pixel keep their deepest pixels as seeds
@@ -118,15 +122,15 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
         if thin.size:
             seeds |= deepest_pixels(fg, comp, thin, w)
     markers = np.zeros(arr.shape, np.int32)
-    markers[ndi.binary_erosion(~fg, structure=ball, border_value=1) | gaps] = 1
+    markers[erode_disk(~fg, w, 1) | gaps] = 1
     markers[seeds] = 2
     # Flood only the undecided band and the marker pixels touching it: a marker pixel with no
     # undecided neighbour never labels anything, but scikit-image would queue every one of them
     # (most of the frame). With this mask the result is the same and the queue holds ~10x fewer pixels.
     band = markers == 0
-    near_band = ndi.binary_dilation(band, structure=ndi.generate_binary_structure(2, 1))
-    ws = watershed(sobel(arr), np.where(near_band, markers, 0), mask=near_band)
-    return fill_holes(seeds | (ws == 2))
+    near_band = dilate_disk(band, 1)  # the 4-neighbours' cross
+    # each connected piece of that band flooded in its own box (band_flood; equal to one whole-frame flood)
+    return fill_holes(seeds | flood_band(arr, markers, near_band, 2))
 
 
 def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 0.5) -> np.ndarray:
@@ -164,12 +168,21 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     peak = np.full(n + 1, -np.inf, np.float32)
     # each component's peak over its own pixels (scipy's labelled maximum visits the whole frame: 0.2-0.7 s
     # on 2048 px; equal to it, tests/test_speed_kernels.py)
-    np.maximum.at(peak, lab[weak], image[weak])
+    at = np.flatnonzero(weak)
+    own, value = lab.ravel()[at], image.ravel()[at]
+    # grouped by label (a stable sort of the raster-ordered labels is mostly runs), one maximum per run:
+    # 3x cheaper than numpy's maximum.at on a frame's long runs of one label; a maximum is a maximum
+    order = np.argsort(own, kind="stable")
+    grouped = own[order]
+    starts = np.flatnonzero(np.r_[True, grouped[1:] != grouped[:-1]])
+    peak[grouped[starts]] = np.maximum.reduceat(value[order], starts)
     peak[0] = 0.0
     # only the skirt of each component (within EDGE_BAND_PX of its outline) is cut at the level: inner
     # facet lines and texture deeper inside never split a grain
-    deep = ndi.binary_erosion(weak, structure=disk_structure(EDGE_BAND_PX), border_value=1)
-    return deep | (weak & (image > edge_level * peak[lab]))
+    deep = erode_disk(weak, EDGE_BAND_PX, 1)  # binary_erosion by disk_structure(EDGE_BAND_PX), border 1
+    # the level test on the pixels of weak only (the same comparison as over the whole frame)
+    deep.ravel()[at[value > edge_level * peak[own]]] = True
+    return deep
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
     """Fill the holes of a mask: background not 4-connected to the frame's edge.

@@ -14,15 +14,19 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.disk_morphology import dilate_disk
+
 #: Components of the thresholded mask smaller than this (pixels) are specks, not grains kept apart.
 GAP_MIN_AREA_PX = 20
 #: Inside the thresholded mask a gap line reaches at most this far (px) from the nearest grain core.
 GAP_REACH_PX = 4.0
 _EIGHT = np.ones((3, 3), bool)
+#: Side (px) of the blocks by which the clusters of :func:`gap_lines` with ``near_px`` are grouped.
+_BLOCK = 4
 
 
 def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_PX,
-              min_area_px: int = GAP_MIN_AREA_PX) -> np.ndarray:
+              min_area_px: int = GAP_MIN_AREA_PX, near_px: float | None = None) -> np.ndarray:
     """Pixels on the dividing lines between grains that do not touch.
 
     Parameters
@@ -39,6 +43,11 @@ def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_P
     min_area_px : int
         Components smaller than this (pixels; noise specks next to a grain)
         take no part.
+    near_px : float or None
+        None: the lines over the whole frame. Otherwise the lines only at
+        pixels within ``near_px`` (Euclidean) of a pixel of ``mask``, and no
+        line elsewhere; there they equal the whole-frame lines pixel for
+        pixel (see Notes).
 
     Returns
     -------
@@ -62,31 +71,148 @@ def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_P
     bridged, and a dark facet line across a grain (blurred, it keeps most
     of the grain level) never drops below ``gap_level``. The nearest body
     comes from the Euclidean distance transform with feature indices [4]_.
+
+    With ``near_px`` the feature transform runs in one window per cluster
+    (connected blocks holding pixels within ``near_px`` of the mask): the
+    cluster's box grown by a margin. A pixel's nearest body found in the window is its
+    nearest in the frame when that distance is below the distance to the
+    nearest pixel outside the window (no body outside can be as near, so
+    ties are broken among the same bodies); every pixel of the cluster and
+    its 4-neighbours is checked, and a window that fails is grown (twice
+    the margin, at most the frame) and computed again. On frames with
+    grains on a small part of the area this is several times cheaper than
+    one transform of the whole frame (tests/test_fast_paths.py checks the
+    two against each other).
     """
     cores = cores & mask
     comp, n = ndi.label(cores, structure=_EIGHT)
     faint, n_faint = ndi.label(mask, structure=_EIGHT)
     if n + n_faint < 2:
         return np.zeros(mask.shape, bool)
+    # the bodies, worked out on the mask's pixels only (the rest of the frame is no body)
+    at = np.flatnonzero(mask)
+    core_of = comp.ravel()[at]
+    comp_of = faint.ravel()[at]
     # components of the mask without a core are bodies of their own
     has_core = np.zeros(n_faint + 1, bool)
-    has_core[np.unique(faint[cores])] = True
+    has_core[comp_of[core_of > 0]] = True
     has_core[0] = True  # the background is no body
-    faint = np.where(has_core[faint], 0, faint + n)
-    bodies = np.where(cores, comp, faint)
-    area = np.bincount(bodies.ravel())
+    body = np.where(core_of > 0, core_of, np.where(has_core[comp_of], 0, comp_of + n))
+    area = np.bincount(body, minlength=n + n_faint + 1)
     keep = area >= min_area_px
     keep[0] = False
     if keep.sum() < 2:
         return np.zeros(mask.shape, bool)
-    bodies = np.where(keep[bodies], bodies, 0)
-    dist, (ri, ci) = ndi.distance_transform_edt(bodies == 0, return_indices=True)
+    bodies = np.zeros(mask.shape, np.int32)
+    bodies.ravel()[at] = np.where(keep[body], body, 0)
+    if near_px is None:
+        return nearest_body_lines(bodies, mask, reach_px)[0]
+    return _lines_near_mask(bodies, mask, reach_px, near_px)
+
+
+def nearest_body_lines(bodies: np.ndarray, mask: np.ndarray,
+                       reach_px: float) -> tuple[np.ndarray, np.ndarray | None]:
+    """The dividing lines of labelled bodies in one array (the frame or a window of it).
+
+    Parameters
+    ----------
+    bodies : ndarray of int, shape (rows, cols)
+        Body labels, 0 elsewhere.
+    mask : ndarray of bool, shape (rows, cols)
+        Thresholded pixels (a line inside them reaches ``reach_px`` at most).
+    reach_px : float
+        See :func:`gap_lines`.
+
+    Returns
+    -------
+    lines : ndarray of bool, shape (rows, cols)
+        Pixels outside the bodies whose nearest body (Euclidean) differs
+        from that of a 4-neighbour; inside ``mask`` only up to ``reach_px``
+        from it.
+    nearest : ndarray of int, shape (2, rows, cols) or None
+        Row and column of every pixel's nearest body pixel (scipy's feature
+        transform); None when there is no body.
+
+    Notes
+    -----
+    Only the feature indices are asked of scipy; the distances (the
+    larger part of its cost on a large frame) are computed where a line
+    lies inside ``mask``, as scipy does: the square root of the summed
+    squared index differences in float64.
+    """
+    free = bodies == 0
+    if free.all():  # no body at all: no nearest body anywhere
+        return np.zeros(bodies.shape, bool), None
+    ft = ndi.distance_transform_edt(free, return_distances=False, return_indices=True)
+    ri, ci = ft
     nearest = bodies[ri, ci]
-    out = np.zeros(mask.shape, bool)
+    out = np.zeros(bodies.shape, bool)
     down = nearest[1:, :] != nearest[:-1, :]
     right = nearest[:, 1:] != nearest[:, :-1]
     out[1:, :] |= down
     out[:-1, :] |= down
     out[:, 1:] |= right
     out[:, :-1] |= right
-    return out & (dist > 0) & (~mask | (dist <= reach_px))
+    out &= free
+    r, c = np.nonzero(out & mask)
+    if r.size:
+        d = np.sqrt((ri[r, c] - r).astype(np.float64) ** 2 + (ci[r, c] - c).astype(np.float64) ** 2)
+        out[r[d > reach_px], c[d > reach_px]] = False
+    return out, ft
+
+
+def _lines_near_mask(bodies: np.ndarray, mask: np.ndarray, reach_px: float, near_px: float) -> np.ndarray:
+    """:func:`gap_lines` at the pixels within ``near_px`` (Euclidean) of ``mask``, window by window.
+
+    The clusters are the connected groups of :data:`_BLOCK` px blocks that
+    hold such a pixel; each is computed in its box grown by a margin, and
+    written (and checked) at those pixels only.
+    """
+    rows, cols = mask.shape
+    b = _BLOCK
+    zone = dilate_disk(mask, near_px)
+    nby, nbx = -(-rows // b), -(-cols // b)
+    padded = np.zeros((nby * b, nbx * b), bool)
+    padded[:rows, :cols] = zone
+    held = padded.reshape(nby, b, nbx, b).any(axis=(1, 3))
+    lab, _ = ndi.label(held, structure=_EIGHT)
+    out = np.zeros(mask.shape, bool)
+    # a pixel of the zone lies within near_px of a mask pixel: when that is a body pixel, its nearest body
+    # is no farther, so a margin of near_px + 3 holds it. Other cases (a speck or a dim rim far from any
+    # body) fail the check and take a wider window.
+    first = int(np.ceil(near_px)) + 3
+    for j, box in enumerate(ndi.find_objects(lab), start=1):
+        if box is None:
+            continue
+        by0, bx0 = box[0].start * b, box[1].start * b
+        by1, bx1 = min(box[0].stop * b, rows), min(box[1].stop * b, cols)
+        own_box = np.repeat(np.repeat(lab[box] == j, b, axis=0), b, axis=1)[:by1 - by0, :bx1 - bx0]
+        own_box &= zone[by0:by1, bx0:bx1]
+        margin = first
+        while True:
+            y0, y1 = max(by0 - margin, 0), min(by1 + margin, rows)
+            x0, x1 = max(bx0 - margin, 0), min(bx1 + margin, cols)
+            win = (slice(y0, y1), slice(x0, x1))
+            own = np.zeros((y1 - y0, x1 - x0), bool)
+            own[by0 - y0:by1 - y0, bx0 - x0:bx1 - x0] = own_box
+            lines, ft = nearest_body_lines(bodies[win], mask[win], reach_px)
+            if (y0, y1, x0, x1) == (0, rows, 0, cols):
+                break
+            # the cluster and its 4-neighbours (a line compares a pixel with them): is the nearest body found
+            # in the window nearer than any pixel beyond a side of the window cut out of the frame?
+            check = own.copy()
+            check[1:] |= own[:-1]
+            check[:-1] |= own[1:]
+            check[:, 1:] |= own[:, :-1]
+            check[:, :-1] |= own[:, 1:]
+            if ft is not None:
+                r, c = np.nonzero(check)
+                big = rows + cols
+                beyond = np.minimum(np.minimum(r + 1 if y0 > 0 else big, y1 - y0 - r if y1 < rows else big),
+                                    np.minimum(c + 1 if x0 > 0 else big, x1 - x0 - c if x1 < cols else big))
+                d2 = (ft[0][r, c] - r).astype(np.int64) ** 2 + (ft[1][r, c] - c).astype(np.int64) ** 2
+                if np.all(d2 < beyond.astype(np.int64) ** 2):
+                    break
+            margin *= 2
+        out[win] |= lines & own
+    return out

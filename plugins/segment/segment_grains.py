@@ -238,7 +238,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             labels = np.where(keep[labels], labels, 0)
     labels, old = tiling.renumber_raster(labels)
     flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]]), "rejected": rejected}
-    clusters = np.where(labels > 0, comp, 0).astype(np.int32)
+    clusters = np.where(labels > 0, comp, 0).astype(np.int32, copy=False)
     return labels, clusters, flags
 
 
