@@ -28,7 +28,8 @@
    between two notches deeper than 2 px (grains face to face). Otherwise it is cut along a
    straight segment between two outline concavities (or from one concavity to the nearest
    outline point) where that crosses a neck: twice the shallower notch is at least 0.3 of the
-   cut's length and half the cut at most 1.2 times the thicker part's inscribed radius, or the
+   cut's length (a single notch at least as deep as the cut is long) and half the cut at most
+   1.2 times the thicker part's inscribed radius, or the
    image along the cut is 15 % darker than both parts (a seam). The first such cut whose parts
    are convex, or can be cut again into convex parts, is kept; failing that the first such cut,
    its concave parts cut further where they can be (a chain falls apart at its necks). No part

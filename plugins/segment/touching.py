@@ -31,8 +31,7 @@ MAX_CUTS = 200
 MIN_PART_FRACTION = 0.1
 #: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
 PART_SLACK = 2.0
-#: Smallest (twice the shallower of the notches at its ends, or the one notch of a cut from a notch to the
-#: nearest outline point) / (its length) of a straight cut across a neck.
+#: Smallest (twice the shallower of the notches at its ends) / (its length) of a straight cut across a neck.
 NOTCH_RATIO = 0.3
 #: A cut with shallower notches needs a seam: the image along it darker than both parts by this fraction.
 SEAM_DIP = 0.15
@@ -42,6 +41,8 @@ EDGE_PX = 2.0
 SEAM_CLEAR_PX = 3.0
 #: A cut between notches crosses a neck when at most this fraction of the thicker part's inscribed diameter.
 NECK_WIDTH = 1.2
+#: A cut from one notch to the nearest outline point crosses a neck when the notch is this many times its length.
+ONE_NOTCH_RATIO = 1.0
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -323,7 +324,10 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     """Cut across a neck between concavities so that the parts are convex (or split further).
 
     A cut is across a neck when the notches at its ends are deep for its
-    length (their depths add up to :data:`NOTCH_RATIO` of it or more), or,
+    length (twice the shallower one is :data:`NOTCH_RATIO` of it or more; a
+    cut from a single notch: the notch :data:`ONE_NOTCH_RATIO` times the
+    length) and half its length is at most :data:`NECK_WIDTH` times the
+    inscribed radius of the thicker part, or,
     with the image, when it runs along a dark seam (:func:`seam_contrast` at
     least :data:`SEAM_DIP`). The first such cut (deepest notches for the
     length first) whose parts are convex, or can be cut again into convex
@@ -363,7 +367,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
             taken.append(outline[i])
             if len(taken) == 6:
                 break
-        cuts.extend((np.inf, p, t, dp) for t in taken)
+        cuts.extend((np.inf, p, t, NOTCH_RATIO * dp / ONE_NOTCH_RATIO) for t in taken)
     fallback = None
     for _, p, q, notches in cuts:
         if budget[0] <= 0:
