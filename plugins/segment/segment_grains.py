@@ -21,28 +21,24 @@
    unbiased whatever the threshold; the Voronoi lines seed the background
    of that flood, so the gap between two near grains is background too.
    Components with an ECD under ``min_ecd_nm`` are dropped.
-3. Touching grains: each connected component is cropped to its bounding box.
-   A component whose deepest concavity (largest distance from the shape of
-   a pixel of its convex hull) is at most ``max(2 px, split_depth * r_eq)``,
-   with ``r_eq`` the equal-area radius, is one convex grain and is never
-   split. Otherwise it is cut along a straight segment between two outline
-   concavities (or from one concavity to the outline point of the shortest
-   cut; the segment's pixels between its two outline end points must lie in
-   the shape), trying the shortest cuts relative to the concavity depths first;
-   the first cut whose parts are convex (twice the allowance), or can be cut
-   again into convex parts, and no part smaller than a tenth of the
-   component, is kept (at most 200 cuts are tried per component, over all
-   levels, which bounds the time on large clusters). The visible boundary of an overlapping
-   pair is an edge of the front grain, and it runs between these points.
-   If no cut works, the distance transform is flooded by a marker-controlled
-   watershed [3]_ from its h-maxima, trying ``h = f * d_max`` for f = 0.5,
-   0.35, 0.25, 0.15, 0.1 (``d_max`` the largest inscribed radius, so h
-   follows the local grain size); the first split (fewest markers) with
-   convex parts no smaller than ``min_ecd_nm`` is kept, provided every line
-   between two parts crosses a neck: the distance map's saddle on it is at
-   most 0.75 of the smaller part's peak (ripples along one elongated grain
-   are not necks). A pair of different sizes has one distance maximum per
-   member and the watershed line runs through the saddle at the neck.
+3. Touching grains (:mod:`grainhabit.plugins.segment.touching`): each connected component is
+   cropped to its bounding box. A component whose deepest concavity (largest distance from the
+   shape of a pixel of its convex hull) is at most ``max(2 px, split_depth * r_eq)``, with
+   ``r_eq`` the equal-area radius, is one convex grain; it is divided only along a dark seam
+   between two notches deeper than 2 px (grains face to face). Otherwise it is cut along a
+   straight segment between two outline concavities (or from one concavity to the nearest
+   outline point) where that crosses a neck: twice the shallower notch is at least 0.3 of the
+   cut's length (a single notch at least as deep as the cut is long) and half the cut at most
+   1.2 times the thicker part's inscribed radius, or the
+   image along the cut is 15 % darker than both parts (a seam). The first such cut whose parts
+   are convex, or can be cut again into convex parts, is kept; failing that the first such cut,
+   its concave parts cut further where they can be (a chain falls apart at its necks). No part
+   is smaller than a tenth of the component; at most 200 cuts are tried per component. If no
+   cut crosses a neck, the distance transform is flooded by a marker-controlled watershed [3]_
+   from its h-maxima (``h = f * d_max``, f = 0.5 ... 0.1), kept when its parts are convex and
+   every line between two parts crosses a neck of the distance map (saddle at most 0.75 of the
+   smaller part's peak). Rows of text are looked for among the whole components too, so
+   touching glyphs cut apart are still dropped as drawn marks.
 4. Labels are numbered 1..n in row-major order of their first pixel, so a
    tiled run (see :mod:`grainhabit.plugins.segment.tiling`) numbers them as an untiled one.
 
@@ -81,7 +77,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.1",
+    version="2.2",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -208,7 +204,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         if m.sum() < max(min_area, 1):
             comp[box][m] = 0
             continue
-        parts = split_component(m, max(min_area, 1), split_depth) if split else [m]
+        parts = split_component(m, max(min_area, 1), split_depth, arr[box]) if split else [m]
         was_split = len(parts) > 1
         # closing and hole filling can enclose background between grains: a part
         # mostly below the threshold is such a pocket, not a grain
@@ -231,6 +227,10 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             nxt += 1
     if reject_annotations and nxt > 1:
         gone = text_rows(labels, above)
+        # touching glyphs cut apart look like grains: rows of text are looked for among the whole objects too
+        whole = np.where(labels > 0, comp, 0)
+        gone = np.union1d(gone, np.unique(labels[np.isin(whole, text_rows(whole, above))])).astype(np.int64)
+        gone = gone[gone > 0]
         if gone.size:
             rejected["stroke"] += int(gone.size)
             keep = np.ones(nxt, bool)

@@ -31,6 +31,18 @@ MAX_CUTS = 200
 MIN_PART_FRACTION = 0.1
 #: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
 PART_SLACK = 2.0
+#: Smallest (twice the shallower of the notches at its ends) / (its length) of a straight cut across a neck.
+NOTCH_RATIO = 0.3
+#: A cut with shallower notches needs a seam: the image along it darker than both parts by this fraction.
+SEAM_DIP = 0.15
+#: Pixels nearer the outline than this (px) are left out of seam and interior levels (the blurred edge).
+EDGE_PX = 2.0
+#: Pixels of a part nearer the cut than this (px) are left out of its interior level.
+SEAM_CLEAR_PX = 3.0
+#: A cut between notches crosses a neck when at most this fraction of the thicker part's inscribed diameter.
+NECK_WIDTH = 1.2
+#: A cut from one notch to the nearest outline point crosses a neck when the notch is this many times its length.
+ONE_NOTCH_RATIO = 1.0
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -206,25 +218,141 @@ def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> lis
     return [ws == 1, ws == 2]
 
 
+def seam_contrast(image: np.ndarray, mask: np.ndarray, parts: list[np.ndarray], rr: np.ndarray,
+                  cc: np.ndarray) -> float:
+    """How much darker the image is along a cut than inside the two parts it leaves.
+
+    Parameters
+    ----------
+    image : ndarray of float, shape (h, w)
+        Preprocessed image over the component's box (grains bright).
+    mask : ndarray of bool, shape (h, w)
+        The shape that was cut.
+    parts : list of ndarray of bool
+        The two parts.
+    rr, cc : ndarray of int
+        Pixels of the cut.
+
+    Returns
+    -------
+    float
+        ``1 - seam / min(level_1, level_2)``: ``seam`` is the mean, over the
+        cut's pixels more than :data:`EDGE_PX` inside the outline, of the
+        darkest pixel within 1 px of each (the cut may run a pixel beside the
+        seam), and ``level_i`` the median of part i more than
+        :data:`EDGE_PX` from the outline and :data:`SEAM_CLEAR_PX` from the
+        cut, all on the image smoothed by a Gaussian of 1 px. 0 when either
+        is too small to measure.
+
+    Notes
+    -----
+    Grains that meet face to face leave a dark line between them (a gap, a
+    groove, or the thinner edges of both in transmission), while a line
+    across one grain has the grain's own level.
+    """
+    smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
+    dist = ndi.distance_transform_edt(mask)
+    on = dist[rr, cc] > EDGE_PX
+    if on.sum() < 3:
+        return 0.0
+    darkest = ndi.grey_erosion(smooth, footprint=_EIGHT)
+    seam = float(darkest[rr[on], cc[on]].mean())
+    line = np.ones(mask.shape, bool)
+    line[rr, cc] = False
+    clear = ndi.distance_transform_edt(line) > SEAM_CLEAR_PX
+    levels = []
+    for part in parts:
+        inner = part & (dist > EDGE_PX) & clear
+        if inner.sum() < 3:
+            return 0.0
+        levels.append(float(np.median(smooth[inner])))
+    low = min(levels)
+    return 1.0 - seam / low if low > 0 else 0.0
+
+
+def _cut_line(mask: np.ndarray, p: np.ndarray, q: np.ndarray):
+    """Pixels of the digital segment p-q, clipped to the box."""
+    from skimage.draw import line
+
+    r0, c0 = np.clip(np.round(p).astype(int), 0, np.array(mask.shape) - 1)
+    r1, c1 = np.clip(np.round(q).astype(int), 0, np.array(mask.shape) - 1)
+    return line(r0, c0, r1, c1)
+
+
+def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
+                    image: np.ndarray | None, keep: bool) -> list[np.ndarray] | None:
+    """The parts of a cut, each concave one split again.
+
+    With ``keep`` false, None as soon as a concave part cannot be split;
+    with ``keep`` true such a part stays whole.
+    """
+    out = []
+    for part in parts:
+        if is_convex(part, split_depth, PART_SLACK):
+            out.append(part)
+            continue
+        sub = _split(part, min_area, split_depth, depth + 1, budget, image)
+        if sub is None:
+            if not keep:
+                return None
+            sub = [part]
+        out.extend(sub)
+    return out
+
+
+def _split_at_seams(mask: np.ndarray, min_area: float, depth: int, budget: list,
+                    image: np.ndarray) -> list[np.ndarray] | None:
+    """Cuts along dark seams only, between notches deeper than :data:`MIN_DEPTH_PX`, repeated on the parts.
+
+    For shapes within the convexity allowance (grains face to face leave
+    only shallow notches): nothing but a seam divides them.
+    """
+    if depth > MAX_DEPTH or mask.sum() < 2 * min_area or concavity_depth(mask) <= MIN_DEPTH_PX:
+        return None
+    parts = _split_at_defects(mask, min_area, 0.0, depth, budget, image, seam_only=True)
+    if parts is None:
+        return None
+    out = []
+    for part in parts:
+        out.extend(_split_at_seams(part, min_area, depth + 1, budget, image) or [part])
+    return out
+
+
 def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
-                      budget: list) -> list[np.ndarray] | None:
-    """Cut between two concavities so that the parts are convex (or split further)."""
+                      budget: list, image: np.ndarray | None = None,
+                      seam_only: bool = False) -> list[np.ndarray] | None:
+    """Cut across a neck between concavities so that the parts are convex (or split further).
+
+    A cut is across a neck when the notches at its ends are deep for its
+    length (twice the shallower one is :data:`NOTCH_RATIO` of it or more; a
+    cut from a single notch: the notch :data:`ONE_NOTCH_RATIO` times the
+    length) and half its length is at most :data:`NECK_WIDTH` times the
+    inscribed radius of the thicker part, or,
+    with the image, when it runs along a dark seam (:func:`seam_contrast` at
+    least :data:`SEAM_DIP`). The first such cut (deepest notches for the
+    length first) whose parts are convex, or can be cut again into convex
+    parts, is kept; failing that the first such cut at all, its concave
+    parts cut further where they can be (a chain of grains whose parts are
+    not all convex still falls apart at its necks).
+    """
     r_eq = np.sqrt(mask.sum() / np.pi)
     defects, outline = convexity_defects(mask, max(MIN_DEPTH_PX, split_depth * r_eq), outline=True)
     if not defects:
         return None
+    # no part may be a sliver of the shape being cut either
+    min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
     cuts = []
     for a in range(len(defects)):
         for b in range(a + 1, len(defects)):
             (p, dp), (q, dq) = defects[a], defects[b]
-            cuts.append((float(np.hypot(*(p - q))) / (dp + dq), p, q))
+            cuts.append((float(np.hypot(*(p - q))) / (dp + dq), p, q, 2.0 * min(dp, dq)))
     cuts.sort(key=lambda c: c[0])
     cuts = cuts[:8]
     # a concavity whose partner is too shallow to count: cut to the nearest outline points
     step = np.hypot(*np.diff(np.vstack([outline, outline[:1]]), axis=0).T)
     arc = np.concatenate([[0.0], np.cumsum(step)[:-1]])
     total = float(step.sum())
-    for p, _ in defects:
+    for p, dp in defects:
         d = np.hypot(*(outline - p).T)
         ip = int(np.argmin(d))
         along = np.abs(arc - arc[ip])
@@ -239,30 +367,42 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
             taken.append(outline[i])
             if len(taken) == 6:
                 break
-        cuts.extend((np.inf, p, t) for t in taken)
-    for _, p, q in cuts:
+        cuts.extend((np.inf, p, t, NOTCH_RATIO * dp / ONE_NOTCH_RATIO) for t in taken)
+    fallback = None
+    for _, p, q, notches in cuts:
         if budget[0] <= 0:
-            return None
+            break
+        length = float(np.hypot(*(p - q)))
+        narrow = notches >= NOTCH_RATIO * length and not seam_only
+        if not narrow and image is None:
+            continue
         budget[0] -= 1
-        parts = _cut(mask, p, q, min_area)
+        parts = _cut(mask, p, q, min_part)
         if parts is None:
             continue
-        out = []
-        for part in parts:
-            if is_convex(part, split_depth, PART_SLACK):
-                out.append(part)
-                continue
-            sub = _split(part, min_area, split_depth, depth + 1, budget)
-            if sub is None:
-                break
-            out.extend(sub)
-        else:
+        # notches alone mark a neck only where the cut is narrower than the thicker part (a thin band,
+        # a rim or a ring cut across has deep notches on its inner side but no neck)
+        if narrow:
+            thick = max(float(ndi.distance_transform_edt(part).max()) for part in parts) - 0.5
+            narrow = 0.5 * length <= NECK_WIDTH * thick
+        if not narrow and (image is None
+                           or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
+            continue
+        if seam_only:
+            return parts
+        out = _divide_further(parts, min_area, split_depth, depth, budget, image, keep=False)
+        if out is not None:
             return out
+        if fallback is None:
+            fallback = parts
+    if fallback is not None:
+        return _divide_further(fallback, min_area, split_depth, depth, budget, image, keep=True)
     return None
 
 
-def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08) -> list[np.ndarray]:
-    """Split one connected component into convex grains.
+def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08,
+                    image: np.ndarray | None = None) -> list[np.ndarray]:
+    """Split one connected component into grains at its necks.
 
     Parameters
     ----------
@@ -272,8 +412,10 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
         Smallest part area in pixels.
     split_depth : float
         Concavity allowance as a fraction of the equal-area radius (see
-        :func:`is_convex`); convex components are never split, and a split
-        is kept only if every part is convex.
+        :func:`is_convex`); convex components are never split.
+    image : ndarray of float, shape (h, w), optional
+        The preprocessed image over the same box (grains bright): with it a
+        cut between shallow notches is made where a dark seam runs.
 
     Returns
     -------
@@ -283,30 +425,37 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     Notes
     -----
     First the outline's concavities (:func:`convexity_defects`) are paired,
-    shortest cut relative to the two depths first, and the shape is cut
-    along the straight segment between them; the visible boundary between
-    an overlapping pair is an edge of the front (convex) grain, which runs
-    between these two points. Parts that are still concave are split again.
-    If no cut gives convex parts, the distance-map watershed is tried.
+    deepest notches for the cut's length first, and the shape is cut along
+    the straight segment between them where that crosses a neck (see
+    :func:`_split_at_defects`); the visible boundary between an overlapping
+    pair is an edge of the front (convex) grain, which runs between these
+    two points. Parts that are still concave are split again; no part is
+    smaller than a tenth of the shape it is cut from. If no cut crosses a
+    neck, the distance-map watershed is tried.
     """
-    if mask.sum() < 2 * min_area or is_convex(mask, split_depth):
+    if mask.sum() < 2 * min_area:
         return [mask]
-    # no part may be a sliver of the cluster: a tenth of its area at least
+    if is_convex(mask, split_depth):
+        # within the allowance: only a dark seam between two notches divides it
+        return (_split_at_seams(mask, min_area, 0, [MAX_CUTS], image) if image is not None else None) or [mask]
+    # no part may be a sliver of the component: a tenth of its area at least (a letter's stem and bowl
+    # are not two grains)
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    return _split(mask, min_part, split_depth, 0, [MAX_CUTS]) or [mask]
+    return _split(mask, min_part, split_depth, 0, [MAX_CUTS], image) or [mask]
 
 
 def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
-           budget: list) -> list[np.ndarray] | None:
-    """Convex parts of a concave shape, or None if no acceptable split exists."""
+           budget: list, image: np.ndarray | None = None) -> list[np.ndarray] | None:
+    """Parts of a concave shape divided at necks, or None if no acceptable split exists."""
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
     if depth > MAX_DEPTH or mask.sum() < 2 * min_area:
         return None
-    parts = _split_at_defects(mask, min_area, split_depth, depth, budget)
+    parts = _split_at_defects(mask, min_area, split_depth, depth, budget, image)
     if parts is not None:
         return parts
+    min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
     dist = ndi.distance_transform_edt(mask)
     dmax = float(dist.max())
     for frac in H_FRACTIONS:
@@ -318,7 +467,7 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
             continue
         ws = watershed(-dist, markers, mask=mask)
         parts = [ws == k for k in range(1, n + 1)]
-        if min(int(p.sum()) for p in parts) < min_area:
+        if min(int(p.sum()) for p in parts) < min_part:
             continue
         if not _necks_are_narrow(ws, dist, n):
             continue
