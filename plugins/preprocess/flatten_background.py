@@ -20,7 +20,10 @@ Method, in order:
    Gaussian (normalised convolution [2]_) of the remaining background residual
    at the scale ``background_nm``. Pixels that look like grains are masked out
    of both fits, so grains larger than the scale are interpolated under, not
-   flattened away.
+   flattened away. Once the polarity is known the background level and noise
+   are those of the background's own histogram peak, on the side away from
+   the grains, even where grains cover most of the frame
+   (:mod:`grainhabit.plugins.preprocess.background_peak`).
 4. Polarity: the strong edges of the flattened frame vote for the side round
    which they bend (grains are convex bodies; :mod:`grainhabit.plugins.preprocess.polarity`),
    which holds however much of the frame the grains cover. The confidence is
@@ -60,7 +63,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.2",
+    version="1.3",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,

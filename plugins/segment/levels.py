@@ -70,7 +70,8 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     -------
     dict
         ``otsu`` (Otsu threshold), ``background`` and ``sigma`` (mode and
-        robust noise sd of the background) and ``noise`` =
+        noise sd of the background's peak,
+        :func:`grainhabit.plugins.preprocess.background_peak.background_peak`) and ``noise`` =
         ``background + noise_k * sigma``.
     """
     from grainhabit.plugins.common.image_stats import regular_subsample
