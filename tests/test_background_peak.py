@@ -108,3 +108,21 @@ def test_packed_field_grains_found():
     # every disc found once, nothing else
     assert len(hit) >= 0.95 * len(centres)
     assert labels.max() <= len(centres)
+
+
+def test_data_bar_is_not_the_background():
+    # squares covering most of the frame on a background at 0.5, and a flat black data bar along the
+    # bottom edge (12 % of the rows): both the gaps and the bar make peaks below the grains'; the bar's
+    # is the lowest and distinct, but lies in a strip, so the background is the gaps' level
+    rng = np.random.default_rng(2)
+    img = 0.5 + rng.normal(0.0, 0.01, (200, 240))
+    for y in range(4, 170, 42):
+        for x in range(4, 236, 42):
+            img[y:y + 36, x:x + 36] = 0.9 + rng.normal(0.0, 0.01, (36, 36))[: 200 - y, : 240 - x]
+    img[176:] = 0.05 + rng.normal(0.0, 0.002, (24, 240))
+    assert histogram_mode(img.ravel()) == pytest.approx(0.9, abs=0.02)
+    m, s = bp.background_peak(img, 1)
+    assert m == pytest.approx(0.5, abs=0.01)
+    assert s == pytest.approx(0.01, rel=0.3)
+    assert not bp.spread_out(img, np.ones(img.shape, bool), 0.05, 0.002)
+    assert bp.spread_out(img, np.ones(img.shape, bool), 0.5, 0.01)

@@ -15,7 +15,9 @@ background is the peak on the other side:
    :data:`MIN_SEPARATION` of their noise sds below ``m``, the background is
    ``m_low``: a distinct peak of its own, not the lower flank of the
    grains' peak (a single noisy peak that Otsu cuts in two fails this test),
-   and its values lie all over the frame (:func:`spread_out`: not a data bar).
+   and its values lie all over the frame (:func:`spread_out`). A distinct
+   low peak confined to a strip (a data bar) is left out and the test made
+   once more on the other values.
 3. The noise sd is taken on the side free of grains, as the smaller of the
    median absolute deviation (:func:`one_sided_sigma`) and the half width
    at half maximum (:func:`half_width_sigma`), never more than the
@@ -166,16 +168,26 @@ def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | Non
     m = histogram_mode(v)
     if grain_sign == 0:
         return m, clipped_sigma(v, m)
-    s = grain_sign * v
-    ms = grain_sign * m
-    t = otsu_of(s)
-    if ms > t:
+    signed = grain_sign * arr
+    for _ in range(2):
+        s = signed[ok]
+        ms = grain_sign * m
+        t = otsu_of(s)
+        if ms <= t:
+            break
         low = s[s <= t]
-        if low.size >= max(MIN_BACKGROUND_FRACTION * s.size, 64):
-            m_low = histogram_mode(low)
-            s_low = peak_sigma(low, m_low, -1)
-            if ms - m_low > MIN_SEPARATION * s_low and spread_out(grain_sign * arr, ok, m_low, s_low):
-                ms = m_low
+        if low.size < max(MIN_BACKGROUND_FRACTION * s.size, 64):
+            break
+        m_low = histogram_mode(low)
+        s_low = peak_sigma(low, m_low, -1)
+        if ms - m_low <= MIN_SEPARATION * s_low:
+            break
+        if spread_out(signed, ok, m_low, s_low):
+            ms = m_low
+            break
+        # a peak in a strip (a data bar): leave its values out and look again once
+        ok = ok & ~(np.abs(signed - m_low) <= 2.0 * s_low)
+    s = signed[ok]
     sigma = min(clipped_sigma(s, ms), peak_sigma(s, ms, -1))
     return grain_sign * ms, sigma
 
