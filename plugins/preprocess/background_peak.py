@@ -143,7 +143,8 @@ def otsu_of(values: np.ndarray) -> float:
     return float(threshold_otsu(v))
 
 
-def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | None = None) -> tuple[float, float]:
+def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | None = None,
+                    half_width: bool = True) -> tuple[float, float]:
     """Mode and noise sd of the background, grains on the side ``grain_sign``.
 
     Parameters
@@ -188,8 +189,8 @@ def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | Non
         # a peak in a strip (a data bar): leave its values out and look again once
         ok = ok & ~(np.abs(signed - m_low) <= 2.0 * s_low)
     s = signed[ok]
-    sigma = min(clipped_sigma(s, ms), peak_sigma(s, ms, -1))
-    return grain_sign * ms, sigma
+    free = peak_sigma(s, ms, -1) if half_width else one_sided_sigma(s, ms, -1)
+    return grain_sign * ms, min(clipped_sigma(s, ms), free)
 
 
 def spread_out(s: np.ndarray, valid: np.ndarray, centre: float, sigma: float) -> bool:

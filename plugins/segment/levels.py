@@ -82,5 +82,5 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     inner = (sub > sub.min()) & (sub < sub.max())
     # grains are bright here: the background is the peak below them and the lower half of that peak
     # alone gives the noise, however much of the frame the grains cover
-    bg, sigma = background_peak(sub, 1, inner if inner.sum() >= 0.25 * sub.size else None)
+    bg, sigma = background_peak(sub, 1, inner if inner.sum() >= 0.25 * sub.size else None, half_width=False)
     return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
