@@ -14,7 +14,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.common.image_stats import (
-    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, histogram_mode, regular_subsample,
+    CLIP_SIGMAS, LEVEL_SAMPLES, regular_subsample,
 )
 from grainhabit.plugins.preprocess import flatten_background as pp
 
@@ -44,42 +44,11 @@ def reference_background(arr, px, background_nm, grain_sign):
         max(1, min(arr.shape) // 128)
     small = downscale_local_mean(arr, (f, f))
     small = small[: arr.shape[0] // f or 1, : arr.shape[1] // f or 1]
-    A = pp._poly_design(small.shape)
-    z = small.ravel()
-    mask = np.ones(z.size, bool)
-    for order in (0, 1, 2, 2, 2):
-        n_terms = (order + 1) * (order + 2) // 2
-        coef, *_ = np.linalg.lstsq(A[mask][:, :n_terms], z[mask], rcond=None)
-        surface_flat = A[:, :n_terms] @ coef
-        r = z - surface_flat
-        m = histogram_mode(r)
-        s = clipped_sigma(r, m)
-        dev = (r - m) / s
-        if grain_sign > 0:
-            mask = (dev < CLIP_SIGMAS) & (dev > -2 * CLIP_SIGMAS)
-        elif grain_sign < 0:
-            mask = (dev > -CLIP_SIGMAS) & (dev < 2 * CLIP_SIGMAS)
-        else:
-            mask = np.abs(dev) < CLIP_SIGMAS
-        if mask.sum() < A.shape[1] * 4:
-            mask = np.ones(z.size, bool)
-            break
-    surface = surface_flat.reshape(small.shape)
-    resid = small - surface
-    mask2 = ndi.binary_erosion(mask.reshape(small.shape), iterations=1, border_value=1)
-    if mask2.sum() < 16:
-        mask2 = mask.reshape(small.shape)
-    if scale_px > 0:
-        sig = scale_px / f
-        w = ndi.gaussian_filter(mask2.astype(float), sig, mode="reflect")
-        num = ndi.gaussian_filter(np.where(mask2, resid, 0.0), sig, mode="reflect")
-        surface = surface + np.where(w > 1e-3, num / np.maximum(w, 1e-3), 0.0)
+    # the surface fit and its decisions are not a kernel: the step's own fit_surface
+    surface = pp.fit_surface(small, scale_px / f if scale_px > 0 else 0.0, grain_sign)
     bg = resize(surface, arr.shape, order=1, mode="edge", anti_aliasing=False) if f > 1 else surface
     r_sub = regular_subsample(arr, LEVEL_SAMPLES) - regular_subsample(bg, LEVEL_SAMPLES)
-    m = histogram_mode(r_sub)
-    s_full = clipped_sigma(r_sub, m)
-    if grain_sign:
-        s_full = min(s_full, pp.one_sided_sigma(r_sub, m, -grain_sign))
+    m, s_full = pp.background_peak(r_sub, grain_sign)
     return bg + m, s_full
 
 

@@ -20,7 +20,10 @@ Method, in order:
    Gaussian (normalised convolution [2]_) of the remaining background residual
    at the scale ``background_nm``. Pixels that look like grains are masked out
    of both fits, so grains larger than the scale are interpolated under, not
-   flattened away.
+   flattened away. Once the polarity is known the background level and noise
+   are those of the background's own histogram peak, on the side away from
+   the grains, even where grains cover most of the frame
+   (:mod:`grainhabit.plugins.preprocess.background_peak`).
 4. Polarity: the strong edges of the flattened frame vote for the side round
    which they bend (grains are convex bodies; :mod:`grainhabit.plugins.preprocess.polarity`),
    which holds however much of the frame the grains cover. The confidence is
@@ -47,9 +50,12 @@ from scipy import ndimage as ndi
 
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
+from grainhabit.plugins.preprocess.background_peak import (  # noqa: F401  (one_sided_sigma: used by tests)
+    background_peak, one_sided_sigma, otsu_of, peak_sigma,
+)
 from grainhabit.plugins.preprocess.polarity import detect_polarity as convex_polarity
 from grainhabit.plugins.common.image_stats import (
-    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, histogram_mode, regular_subsample,
+    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, regular_subsample,
 )
 
 GRAINHABIT_API = 1
@@ -57,7 +63,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.2",
+    version="1.3",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -76,6 +82,9 @@ STEP = StepInfo(
 LOW_CONFIDENCE = 0.1
 #: The grain level is at least this many background sigmas (a frame without grains stays dark).
 NOISE_FLOOR_SIGMAS = 10.0
+#: The surface fitted with the narrow clip and Otsu's cut is kept when it leaves a background peak narrower
+#: than this fraction of the other's (see fit_surface).
+NARROWER_PEAK = 0.5
 #: Lower clip of the output: background noise stays visible around 0.
 LOW_CLIP = -0.25
 #: Pixel differences used by the noise model, and pixels used for a background mode and sigma (regular
@@ -420,12 +429,9 @@ def estimate_background(image: np.ndarray, pixel_size_nm: float, background_nm: 
     surface = fit_surface(small, scale_px / f, grain_sign)
     bg = upsample_bilinear(surface, arr.shape)
     r_sub = regular_subsample(arr, LEVEL_SAMPLES) - regular_subsample(bg, LEVEL_SAMPLES)
-    m = histogram_mode(r_sub)
-    s_full = clipped_sigma(r_sub, m)
-    if grain_sign:
-        # grains lie on one side: the other half of the background peak alone gives its width, however
-        # much of the frame the grains cover (a two-sided clip starts from a spread the grains inflate)
-        s_full = min(s_full, one_sided_sigma(r_sub, m, -grain_sign))
+    # grains on one side: the background is the peak on the other side and its free half gives the
+    # noise, however much of the frame the grains cover (grainhabit.plugins.preprocess.background_peak)
+    m, s_full = background_peak(r_sub, grain_sign)
     bg = bg + m
     dev = (arr - bg) / s_full
     is_bg = np.abs(dev) < CLIP_SIGMAS
@@ -470,7 +476,37 @@ def fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int = 0) -> 
     ndarray of float64, shape (r, c)
         Robust quadratic surface plus the normalised convolution of the
         remaining background residual (see :func:`estimate_background`).
+
+    Notes
+    -----
+    With a known grain side the fit is made twice: with a 3-sigma clip of
+    the two-sided clipped sd, and with a 3-sigma clip of the sd of the
+    background peak's free side (:func:`background_peak`) with the blocks of
+    Otsu's grain class left out as well. An uneven background widens its own
+    peak before the surface follows it, and a clip of that wide peak then
+    takes grains in (grains covering much of the frame pull the surface up
+    to them); the narrow clip and Otsu's classes, on the other hand, cut a
+    strong illumination gradient in two. The second surface is kept when
+    the background peak it leaves (half width at half maximum,
+    :func:`peak_sigma`) is narrower than :data:`NARROWER_PEAK` times the
+    first one's.
     """
+    if not grain_sign:
+        return _fit_surface(small, scale_blocks, 0, False)
+    widths = []
+    surfaces = []
+    for otsu_cut in (False, True):
+        surfaces.append(_fit_surface(small, scale_blocks, grain_sign, otsu_cut))
+        r = small - surfaces[-1]
+        m, sd = background_peak(r, grain_sign)
+        widths.append(min(sd, peak_sigma(r, m, -grain_sign)))
+    # the narrow clip cuts a peak's top narrower wherever it leaves the rest of the background: it must
+    # halve the width to be taken
+    return surfaces[1] if widths[1] < NARROWER_PEAK * widths[0] else surfaces[0]
+
+
+def _fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int, otsu_cut: bool) -> np.ndarray:
+    """:func:`fit_surface` with or without the blocks of Otsu's grain class left out."""
     A = _poly_design(small.shape)
     z = small.ravel()
     mask = np.ones(z.size, bool)
@@ -482,13 +518,16 @@ def fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int = 0) -> 
         coef, *_ = np.linalg.lstsq(A[mask][:, :n_terms], z[mask], rcond=None)
         surface_flat = A[:, :n_terms] @ coef
         r = z - surface_flat
-        m = histogram_mode(r)
-        s = clipped_sigma(r, m)
+        m, s_free = background_peak(r.reshape(small.shape), grain_sign)
+        # the two-sided clipped sd, or the sd of the background peak's free side with Otsu's cut
+        s = s_free if otsu_cut else clipped_sigma(r, m)
         dev = (r - m) / s
-        if grain_sign > 0:
+        if grain_sign:
+            dev *= grain_sign
             mask = (dev < CLIP_SIGMAS) & (dev > -2 * CLIP_SIGMAS)
-        elif grain_sign < 0:
-            mask = (dev > -CLIP_SIGMAS) & (dev < 2 * CLIP_SIGMAS)
+            if otsu_cut:
+                # never the blocks within a sigma of the background's mode
+                mask &= grain_sign * r <= max(otsu_of(grain_sign * r), grain_sign * m + s)
         else:
             mask = np.abs(dev) < CLIP_SIGMAS
         if mask.sum() < A.shape[1] * 4:
@@ -505,32 +544,6 @@ def fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int = 0) -> 
         smooth = np.where(w > 1e-3, num / np.maximum(w, 1e-3), 0.0)
         surface = surface + smooth
     return surface
-
-
-def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
-    """Noise sd from one side of a symmetric peak.
-
-    Parameters
-    ----------
-    r : ndarray
-        Values; the background peak is centred on ``centre``.
-    centre : float
-        The peak's mode.
-    side : {-1, 1}
-        The side free of grains.
-
-    Returns
-    -------
-    float
-        ``1.4826 * median(|r - centre|)`` over the values on ``side`` of the
-        centre: the MAD estimator of a normal sd (common practice), on the
-        half of the peak that the grains leave alone.
-    """
-    d = (np.asarray(r, float).ravel() - centre) * side
-    d = d[d > 0]
-    if d.size < 10:
-        return float("inf")
-    return max(1.4826 * float(np.median(d)), 1e-9)
 
 
 def sample_step(shape: tuple, n: int) -> int:
@@ -765,10 +778,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     def background(sign: int):
         surf = fit_surface(small, scale_px / f if scale_px > 0 else 0.0, sign)
         r_sub = x_l - upsample_bilinear(surf, shape, rl, cl)
-        m = histogram_mode(r_sub)
-        sd = clipped_sigma(r_sub, m)
-        if sign:
-            sd = min(sd, one_sided_sigma(r_sub, m, -sign))
+        m, sd = background_peak(r_sub, sign)
         return surf, m, sd, r_sub
 
     surf, m, sd, _ = background(0)

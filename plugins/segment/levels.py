@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from grainhabit.plugins.preprocess.flatten_background import one_sided_sigma
+from grainhabit.plugins.preprocess.background_peak import background_peak
 
 
 def check_image(image) -> np.ndarray:
@@ -70,17 +70,17 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     -------
     dict
         ``otsu`` (Otsu threshold), ``background`` and ``sigma`` (mode and
-        robust noise sd of the background) and ``noise`` =
+        noise sd of the background's peak,
+        :func:`grainhabit.plugins.preprocess.background_peak.background_peak`) and ``noise`` =
         ``background + noise_k * sigma``.
     """
-    from grainhabit.plugins.common.image_stats import background_level, regular_subsample
+    from grainhabit.plugins.common.image_stats import regular_subsample
 
     sub = regular_subsample(check_image(image), max_samples)
     # values clipped by the preprocessing (grains at 1, the low clip) pile up in one histogram bin that
     # can outnumber the background's mode: leave them out of the background's level and noise
-    inner = sub[(sub > sub.min()) & (sub < sub.max())]
-    bg, sigma = background_level(inner if inner.size >= 0.25 * sub.size else sub)
-    # grains are bright here: the lower half of the background peak alone gives the noise, however
-    # much of the frame the grains cover
-    sigma = min(sigma, one_sided_sigma(inner if inner.size >= 0.25 * sub.size else sub, bg, -1))
+    inner = (sub > sub.min()) & (sub < sub.max())
+    # grains are bright here: the background is the peak below them and the lower half of that peak
+    # alone gives the noise, however much of the frame the grains cover
+    bg, sigma = background_peak(sub, 1, inner if inner.sum() >= 0.25 * sub.size else None, half_width=False)
     return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}

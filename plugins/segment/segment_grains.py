@@ -1,7 +1,8 @@
 """Step ``segment-grains``: foreground, touching-grain splitting, labels.
 
 1. Foreground: by default ``noise_k`` background sigmas above the background
-   level (both measured once per frame from the histogram's main mode), so
+   level (both measured once per frame from the background's histogram peak,
+   below the grains' even where they cover most of the frame), so
    that faint grains (thin plates in bright-field contrast) are found; or
    the global Otsu threshold [1]_; or a local one (Gaussian-weighted local
    mean, or Sauvola [2]_) over ``local_block_nm``, never below the noise

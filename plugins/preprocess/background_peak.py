@@ -1,0 +1,219 @@
+"""Level and noise of the background, whatever share of the frame the grains cover.
+
+The background of a micrograph is usually its most common level, and the
+width of that histogram peak is the noise. Neither holds when grains cover
+most of the frame (packed spheres, close-set cubes, a few large crystals):
+the grains then make the main mode, and a median absolute deviation taken
+round the background's mode measures the distance to the grains, not the
+noise. Once the side on which grains lie is known (the polarity), the
+background is the peak on the other side:
+
+1. ``m`` = main mode of the values (grain side made positive).
+2. If ``m`` lies above Otsu's threshold ``t`` [1]_ (in the grain class), the
+   values below ``t`` hold at least :data:`MIN_BACKGROUND_FRACTION` of the
+   pixels, and the mode ``m_low`` of those lies more than
+   :data:`MIN_SEPARATION` of their noise sds below ``m``, the background is
+   ``m_low``: a distinct peak of its own, not the lower flank of the
+   grains' peak (a single noisy peak that Otsu cuts in two fails this test),
+   and its values lie all over the frame (:func:`spread_out`). A distinct
+   low peak confined to a strip (a data bar) is left out and the test made
+   once more on the other values.
+3. The noise sd is taken on the side free of grains, as the smaller of the
+   median absolute deviation (:func:`one_sided_sigma`) and the half width
+   at half maximum (:func:`half_width_sigma`), never more than the
+   two-sided clipped sd.
+
+References
+----------
+.. [1] N. Otsu, "A threshold selection method from gray-level histograms",
+   IEEE Trans. Syst. Man Cybern. 9(1), 62-66, 1979, doi:10.1109/TSMC.1979.4310076
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.common.image_stats import clipped_sigma, histogram_mode
+
+#: Least share of the values below Otsu's threshold for them to be the background.
+MIN_BACKGROUND_FRACTION = 0.02
+#: Least share of the rows, and of the columns, holding values of the lower peak (see spread_out).
+MIN_SPREAD = 0.5
+#: Least distance, in noise sds of the lower peak, between the grains' mode and the lower peak's mode.
+MIN_SEPARATION = 4.0
+
+
+def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
+    """Noise sd from one side of a symmetric peak.
+
+    Parameters
+    ----------
+    r : ndarray
+        Values; the background peak is centred on ``centre``.
+    centre : float
+        The peak's mode.
+    side : {-1, 1}
+        The side free of grains.
+
+    Returns
+    -------
+    float
+        ``1.4826 * median(|r - centre|)`` over the values on ``side`` of the
+        centre: the MAD estimator of a normal sd (common practice), on the
+        half of the peak that the grains leave alone; infinity with fewer
+        than 10 such values.
+    """
+    d = (np.asarray(r, float).ravel() - centre) * side
+    d = d[d > 0]
+    if d.size < 10:
+        return float("inf")
+    return max(1.4826 * float(np.median(d)), 1e-9)
+
+
+def half_width_sigma(r: np.ndarray, centre: float, side: int, guess: float) -> float:
+    """Noise sd from the half width at half maximum of one side of a peak.
+
+    Parameters
+    ----------
+    r : ndarray
+        Values; a peak is centred on ``centre``.
+    centre : float
+        The peak's mode.
+    side : {-1, 1}
+        The side measured.
+    guess : float
+        A rough sd (an upper bound, e.g. :func:`one_sided_sigma`): the
+        histogram spans 4 of them on either side of the centre.
+
+    Returns
+    -------
+    float
+        ``HWHM / sqrt(2 ln 2)``, the sd of a normal peak of that half width
+        (handbook: FWHM = 2.3548 sd); infinity when the histogram never falls
+        to half its height on ``side``.
+
+    Notes
+    -----
+    The median absolute deviation of one side counts a long tail (halos
+    round the grains, texture, a drawn letter) as noise; the half width
+    looks at the top of the peak only, which a tail holding less than half
+    the peak's height leaves alone.
+    """
+    v = np.asarray(r, float).ravel()
+    if not np.isfinite(guess) or guess <= 0:
+        return float("inf")
+    near = v[np.abs(v - centre) <= 4.0 * guess]
+    if near.size < 64:
+        return float("inf")
+    bins = int(np.clip(np.sqrt(near.size), 16, 256))
+    hist, edges = np.histogram(near, bins=bins, range=(centre - 4.0 * guess, centre + 4.0 * guess))
+    hist = ndi.gaussian_filter1d(hist.astype(float), 1.0)
+    width = edges[1] - edges[0]
+    k0 = int(np.clip((centre - edges[0]) // width, 0, bins - 1))
+    # the peak's top within a bin or two of the given centre
+    lo, hi = max(k0 - 2, 0), min(k0 + 3, bins)
+    k0 = lo + int(np.argmax(hist[lo:hi]))
+    half = 0.5 * hist[k0]
+    k = k0
+    while 0 <= k < bins and hist[k] > half:
+        k += side
+    if not 0 <= k < bins:
+        return float("inf")
+    # linear interpolation between the last bin above half height and the first below it
+    h_in, h_out = hist[k - side], hist[k]
+    frac = (h_in - half) / (h_in - h_out) if h_in > h_out else 0.0
+    hwhm = (abs(k - k0) - 1 + frac) * width
+    return max(hwhm / np.sqrt(2.0 * np.log(2.0)), 1e-9)
+
+
+def peak_sigma(r: np.ndarray, centre: float, side: int) -> float:
+    """Noise sd of the peak at ``centre`` from its side ``side``: the smaller of MAD and half-width estimates."""
+    mad = one_sided_sigma(r, centre, side)
+    return min(mad, half_width_sigma(r, centre, side, mad))
+
+
+def otsu_of(values: np.ndarray) -> float:
+    """Otsu's threshold of a sample (:func:`skimage.filters.threshold_otsu`, 256 bins); its value if constant."""
+    from skimage.filters import threshold_otsu
+
+    v = np.asarray(values, float).ravel()
+    if v.size == 0 or float(v.min()) == float(v.max()):
+        return float(v[0]) if v.size else 0.0
+    return float(threshold_otsu(v))
+
+
+def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | None = None,
+                    half_width: bool = True) -> tuple[float, float]:
+    """Mode and noise sd of the background, grains on the side ``grain_sign``.
+
+    Parameters
+    ----------
+    values : ndarray
+        Pixel values, a sample of the frame: 2-D (rows, cols) on a regular
+        grid, or 1-D (then the lower peak is not checked for spread).
+    grain_sign : {-1, 0, 1}
+        +1 when grains are brighter than the background, -1 darker; 0 when
+        unknown (then the main mode and its clipped sd).
+    valid : ndarray of bool, shape of ``values``, optional
+        Pixels to use (e.g. leaving out values clipped by an earlier step).
+
+    Returns
+    -------
+    mode, sigma : float
+        See the module docstring.
+    """
+    arr = np.asarray(values, float)
+    ok = np.ones(arr.shape, bool) if valid is None else np.asarray(valid, bool)
+    v = arr[ok]
+    m = histogram_mode(v)
+    if grain_sign == 0:
+        return m, clipped_sigma(v, m)
+    signed = grain_sign * arr
+    for _ in range(2):
+        s = signed[ok]
+        ms = grain_sign * m
+        t = otsu_of(s)
+        if ms <= t:
+            break
+        low = s[s <= t]
+        if low.size < max(MIN_BACKGROUND_FRACTION * s.size, 64):
+            break
+        m_low = histogram_mode(low)
+        s_low = peak_sigma(low, m_low, -1)
+        if ms - m_low <= MIN_SEPARATION * s_low:
+            break
+        if spread_out(signed, ok, m_low, s_low):
+            ms = m_low
+            break
+        # a peak in a strip (a data bar): leave its values out and look again once
+        ok = ok & ~(np.abs(signed - m_low) <= 2.0 * s_low)
+    s = signed[ok]
+    free = peak_sigma(s, ms, -1) if half_width else one_sided_sigma(s, ms, -1)
+    return grain_sign * ms, min(clipped_sigma(s, ms), free)
+
+
+def spread_out(s: np.ndarray, valid: np.ndarray, centre: float, sigma: float) -> bool:
+    """Whether the values within 2 sds of ``centre`` lie across the frame, not in one strip.
+
+    Parameters
+    ----------
+    s : ndarray
+        Values (grain side positive); 1-D samples always pass.
+    valid : ndarray of bool, shape of ``s``
+    centre, sigma : float
+        The candidate background peak.
+
+    Returns
+    -------
+    bool
+        For a 2-D ``s``: such values occur in at least :data:`MIN_SPREAD` of
+        the rows and of the columns. The data bar of a microscope (a flat
+        dark strip along one edge) or a flat panel beside a figure makes a
+        distinct low peak too, but only in a few rows or columns; the gaps
+        between packed grains run all over the frame.
+    """
+    if s.ndim != 2:
+        return True
+    near = valid & (np.abs(s - centre) <= 2.0 * sigma)
+    return bool(near.any(axis=1).mean() >= MIN_SPREAD and near.any(axis=0).mean() >= MIN_SPREAD)
