@@ -842,8 +842,7 @@ def _totals(osc, rss, placed, interior, w):
     but at least (``INTERIOR_NOISE_FLOOR`` * (|mean| + sd of the interior values))^2.
     """
     rmin = rss[placed].min()
-    v = interior.value
-    s2 = max(rmin / max(v.size - 8, 1), (INTERIOR_NOISE_FLOOR * (abs(float(np.mean(v))) + float(np.std(v)))) ** 2)
+    s2 = max(rmin / max(interior.value.size - 8, 1), (INTERIOR_NOISE_FLOOR * interior.spread) ** 2)
     if not (s2 > 0 and np.isfinite(s2)):
         return None
     return np.where(placed, osc + w * (rss - rmin) / s2, np.inf), rmin, s2
@@ -943,10 +942,11 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         tot2 = res[0]
         sb2 = tot2.min(axis=1)
         grew = False
+        placed_any = done.any(axis=1)             # take() changes want and taken, not done
         for s in np.flatnonzero(sb2 <= sb2.min() + tolerance):
             q, i = pos_of[int(s)]
             for k in (i - 1, i + 1):
-                if 0 <= k < len(q) and not done[q[k]].any():
+                if 0 <= k < len(q) and not placed_any[q[k]]:
                     for b in where[int(q[k])]:
                         if not taken[b]:
                             take(b, tot2[s] <= sb2[s] + tolerance)
