@@ -490,14 +490,19 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
         eps = 1e-12
         kmin, kmax = TILT_GAIN_RANGE
-        # active sets: none; a = b = 0; b = kmin a; b = kmax a
-        th, rss = _solve_sets(nm, rhs, vv, _FACET_SETS)
+        # active sets: none; a = b = 0; b = kmin a; b = kmax a. Where the unconstrained optimum
+        # is feasible it is the optimum; the constrained sets are solved only where it is not
+        # (each system is solved on its own, so a subset gives the same bits)
+        tm, t0 = _FACET_SETS
+        th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
         ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
             & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
-        sub = np.minimum(rss[1], np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
-        sub = np.minimum(sub, np.where(th[3, :, 0] >= -eps, rss[3], np.inf))
-        # where the unconstrained optimum is feasible it is the optimum
-        best = np.where(ok, rss[0], sub)
+        best = rss[0]
+        if not ok.all():
+            bad = ~ok
+            th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
+            sub = np.minimum(rss[0], np.where(th[1, :, 0] >= -eps, rss[1], np.inf))
+            best[bad] = np.minimum(sub, np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
         return best * scale
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
@@ -518,9 +523,16 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
     # unconstrained optimum where it is feasible, else the best feasible constrained one
     tm, t0 = _THICKNESS_SETS
-    th, rss = _solve_sets(nm, rhs, vv, (tm, t0 * amax))
-    ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
-    best = np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
+    t0 = t0 * amax
+    th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
+    best = rss[0]
+    ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= -eps) & (th[0, :, 1] <= amax + eps)
+    if not ok.all():
+        # the constrained sets only where the unconstrained optimum is not feasible
+        bad = ~ok
+        th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
+        ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
+        best[bad] = np.where(ok, rss, np.inf).min(axis=0)
     return best
 
 
