@@ -908,8 +908,8 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         if cpos.size == 1:
             cpos = np.array([0, 0])
         for a, b in zip(cpos[:-1], cpos[1:]):
-            for s in q[a:b + 1]:
-                where.setdefault(int(s), []).append(len(brackets))
+            for s in q[a:b + 1].tolist():
+                where.setdefault(s, []).append(len(brackets))
             brackets.append(q[a:b + 1])
     want = np.zeros(osc.shape, bool)
     taken = np.zeros(len(brackets), bool)
@@ -919,9 +919,10 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         slots = won1[run[0]] | won1[run[-1]]
         if extra is not None:
             slots = slots | extra
-        for s in run:
-            w = slots & gated[s]
-            want[s] |= w if w.any() else gated[s]
+        # per shape of the run: the slots asked for among its gated ones, or all its gated ones
+        g = gated[run]
+        w = slots & g
+        want[run] |= np.where(w.any(axis=1)[:, None], w, g)
         taken[k] = True
 
     for s in np.flatnonzero(seeds):
@@ -930,7 +931,7 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     # stage 2: full sample; grow while a shape within tolerance has an unplaced neighbour
     rss2 = np.full(osc.shape, np.inf)
     done = np.zeros(osc.shape, bool)
-    pos_of = {int(s): (q, i) for q in seqs for i, s in enumerate(q)}
+    pos_of = {s: (q, i) for q in seqs for i, s in enumerate(q.tolist())}
     for _ in range(len(brackets) + 1):
         new = want & ~done
         if new.any():
