@@ -164,3 +164,147 @@ def test_bench_prepare_builds_the_family_tables_before_the_first_frame():
     for level in range(levels):
         cl.family_signatures(lib.signatures.shape[-1], level)
     assert cl.family_signatures.cache_info().hits == before.hits + levels
+
+
+# ------------------------------------------ interior fit: the kernel before the per-interior caches
+
+def _previous_sets(k, spec):
+    """(T, t0) stacks of active sets as the earlier kernel built them (fixed values, one tie)."""
+    ts, t0s = [], []
+    for fixed, tied in spec:
+        t, t0 = np.eye(k), np.zeros(k)
+        for i, val in fixed:
+            t[:, i] = 0.0
+            t0[i] = val
+        if tied is not None:
+            i, j, ratio = tied
+            t[:, j] = 0.0
+            t[j, i] = ratio
+        ts.append(t)
+        t0s.append(t0)
+    return np.stack(ts), np.stack(t0s)
+
+
+def _previous_solve_sets(nm, rhs, vv, sets):
+    tm, t0 = sets
+    k = tm.shape[-1]
+    tt = np.swapaxes(tm, 1, 2)
+    nf = tt[:, None] @ nm[None] @ tm[:, None]
+    r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
+    dead = ~np.any(tm != 0.0, axis=1)
+    tr = np.einsum("scii->sc", nf)
+    eye = np.eye(k)
+    nf = nf + eye * (1e-12 * tr + 1e-300)[:, :, None, None] + (dead[:, :, None] * eye)[:, None]
+    phi = np.linalg.solve(nf, r[..., None])[..., 0]
+    theta = np.einsum("sij,scj->sci", tm, phi) + t0[:, None, :]
+    rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
+    return theta, np.maximum(rss, 0.0)
+
+
+def _previous_interior_rss_batch(interior, g_up, z_up, g_dn=None, z_dn=None, edge_px=2.0, tem_offset_max=0.5,
+                                 gap_inv=None):
+    """The batched interior fit before its per-interior sums were kept (one chunk; the earlier kernel)."""
+    kmin, kmax = gr.TILT_GAIN_RANGE
+    g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
+    c, m = z_up.shape
+    x, y, v = interior.x, interior.y, interior.value
+    p = v.size
+    pts = np.stack([x, y, np.ones_like(x)]).astype(np.float32)
+
+    def heights(g, z0):
+        k = z0.shape[1]
+        a = np.empty((k, c, 3), np.float32)
+        a[..., :2] = np.swapaxes(g, 0, 1)
+        a[..., 2] = z0.T
+        return (a.reshape(-1, 3) @ pts).reshape(k, c, p)
+
+    zup = heights(g_up, z_up)
+    ztop = zup.min(axis=0)
+    if interior.mode == "facets":
+        if m <= 12:
+            idx = np.full((c, p), m - 1, np.intp)
+            for j in range(m - 2, -1, -1):
+                idx[zup[j] == ztop] = j
+        else:
+            idx = zup.argmin(axis=0)
+        wt = np.ones((c, p))
+        scale = np.ones(c)
+        if m > 1 and edge_px > 0:
+            inv = (gr.plane_gap_inverse(g_up) if gap_inv is None else gap_inv).transpose(2, 0, 1)
+            zup -= ztop
+            with np.errstate(invalid="ignore"):
+                zup *= inv[:, np.arange(c)[:, None], idx]
+            near = np.fmin.reduce(zup, axis=0)
+            far = ~(near < edge_px * interior.pixel)
+            nfar = far.sum(axis=1)
+            use = (nfar >= 30) & (nfar < p)
+            wt = np.where(use[:, None], far, True).astype(float)
+            scale = np.where(use, p / np.maximum(nfar, 1), 1.0)
+        bins = (np.arange(c)[:, None] * m + idx).ravel()
+        cnt = np.bincount(bins, wt.ravel(), minlength=c * m).reshape(c, m)
+        sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
+        sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
+        sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
+        xx, xy, yy = wt @ (x * x), wt @ (x * y), wt @ (y * y)
+        xv, yv, vv = wt @ (x * v), wt @ (y * v), wt @ (v * v)
+        nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
+        sec = 1.0 / nz - 1.0
+        f = np.stack([np.ones_like(sec), sec, -g_up[..., 0] * nz, -g_up[..., 1] * nz], axis=-1)
+        nm = np.zeros((c, 6, 6))
+        nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
+        nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
+        nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
+        nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
+        rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
+        eps = 1e-12
+        sets = _previous_sets(6, [((), None), (((0, 0.0), (1, 0.0)), None), ((), (0, 1, kmin)), ((), (0, 1, kmax))])
+        th, rss = _previous_solve_sets(nm, rhs, vv, sets)
+        ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
+            & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
+        sub = np.minimum(rss[1], np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
+        sub = np.minimum(sub, np.where(th[3, :, 0] >= -eps, rss[3], np.inf))
+        return np.where(ok, rss[0], sub) * scale
+    t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)
+    nm = np.empty((c, 4, 4))
+    st, sx_, sy_ = t.sum(axis=1), t @ x, t @ y
+    nm[:, 0, 0] = np.einsum("cp,cp->c", t, t)
+    nm[:, 0, 1], nm[:, 0, 2], nm[:, 0, 3] = st, sx_, sy_
+    nm[:, 1:, 0] = nm[:, 0, 1:]
+    nm[:, 1:, 1:] = np.array([[p, x.sum(), y.sum()], [x.sum(), x @ x, x @ y], [y.sum(), x @ y, y @ y]])[None]
+    rhs = np.empty((c, 4))
+    rhs[:, 0] = t @ v
+    rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
+    vv = np.full(c, v @ v)
+    amax = max(tem_offset_max * float(np.mean(v)), 0.0)
+    eps = 1e-12
+    tm, t0 = _previous_sets(4, [(f, None) for f in ((), ((1, 0.0),), ((1, 1.0),), ((0, 0.0),),
+                                                   ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, 1.0)))])
+    th, rss = _previous_solve_sets(nm, rhs, vv, (tm, t0 * amax))
+    ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
+    return np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+@pytest.mark.parametrize("alpha,face,rot_deg", [(1.0, "100", 5.0), (2.3, "111", 21.0), (1.7, "110", 40.0)])
+def test_interior_fit_bitwise_equals_the_previous_kernel(contrast, alpha, face, rot_deg):
+    # the kept per-interior sums and the stored active-set constants change no bit: every RSS of
+    # random placements (with and without the library's plane gaps, the full and a thinned sample,
+    # each interior placed twice so that its kept sums are reused) and of the round body
+    lib = gr.model_library()
+    tab = lib.tables
+    _, inner = _evidence(alpha, face, rot_deg, contrast, seed=2)
+    rng = np.random.default_rng(11)
+    for sample in (inner, gr.subsample_interior(inner, 150)):
+        for _ in range(2):
+            u = rng.integers(0, tab.face.size, 30)
+            k = rng.integers(0, 256, 30)
+            planes = gr.placed_planes(tab, u, k, 256)
+            for gap in (None, tab.gap_inv[u]):
+                got = gr.interior_rss_batch(sample, *planes, gap_inv=gap)
+                ref = _previous_interior_rss_batch(sample, *planes, gap_inv=gap)
+                assert np.array_equal(got, ref)
+        rnd = gr.round_rss(sample, 0.5)
+        from grainhabit.plugins.habit.interior import _round_planes
+        assert rnd == float(_previous_interior_rss_batch(sample, *_round_planes(), edge_px=0.0)[0])
+        # the kept noise scale is the plain |mean| + standard deviation
+        assert sample.spread == abs(float(np.mean(sample.value))) + float(np.std(sample.value))

@@ -842,8 +842,7 @@ def _totals(osc, rss, placed, interior, w):
     but at least (``INTERIOR_NOISE_FLOOR`` * (|mean| + sd of the interior values))^2.
     """
     rmin = rss[placed].min()
-    v = interior.value
-    s2 = max(rmin / max(v.size - 8, 1), (INTERIOR_NOISE_FLOOR * (abs(float(np.mean(v))) + float(np.std(v)))) ** 2)
+    s2 = max(rmin / max(interior.value.size - 8, 1), (INTERIOR_NOISE_FLOOR * interior.spread) ** 2)
     if not (s2 > 0 and np.isfinite(s2)):
         return None
     return np.where(placed, osc + w * (rss - rmin) / s2, np.inf), rmin, s2
@@ -909,8 +908,8 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         if cpos.size == 1:
             cpos = np.array([0, 0])
         for a, b in zip(cpos[:-1], cpos[1:]):
-            for s in q[a:b + 1]:
-                where.setdefault(int(s), []).append(len(brackets))
+            for s in q[a:b + 1].tolist():
+                where.setdefault(s, []).append(len(brackets))
             brackets.append(q[a:b + 1])
     want = np.zeros(osc.shape, bool)
     taken = np.zeros(len(brackets), bool)
@@ -920,9 +919,10 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         slots = won1[run[0]] | won1[run[-1]]
         if extra is not None:
             slots = slots | extra
-        for s in run:
-            w = slots & gated[s]
-            want[s] |= w if w.any() else gated[s]
+        # per shape of the run: the slots asked for among its gated ones, or all its gated ones
+        g = gated[run]
+        w = slots & g
+        want[run] |= np.where(w.any(axis=1)[:, None], w, g)
         taken[k] = True
 
     for s in np.flatnonzero(seeds):
@@ -931,7 +931,7 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     # stage 2: full sample; grow while a shape within tolerance has an unplaced neighbour
     rss2 = np.full(osc.shape, np.inf)
     done = np.zeros(osc.shape, bool)
-    pos_of = {int(s): (q, i) for q in seqs for i, s in enumerate(q)}
+    pos_of = {s: (q, i) for q in seqs for i, s in enumerate(q.tolist())}
     for _ in range(len(brackets) + 1):
         new = want & ~done
         if new.any():
@@ -943,10 +943,11 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         tot2 = res[0]
         sb2 = tot2.min(axis=1)
         grew = False
+        placed_any = done.any(axis=1)             # take() changes want and taken, not done
         for s in np.flatnonzero(sb2 <= sb2.min() + tolerance):
             q, i = pos_of[int(s)]
             for k in (i - 1, i + 1):
-                if 0 <= k < len(q) and not done[q[k]].any():
+                if 0 <= k < len(q) and not placed_any[q[k]]:
                     for b in where[int(q[k])]:
                         if not taken[b]:
                             take(b, tot2[s] <= sb2[s] + tolerance)

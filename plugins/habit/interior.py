@@ -20,6 +20,7 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from scipy import ndimage as ndi
@@ -61,6 +62,29 @@ class Interior:
     mode: str
     pixel: float = 0.0
     weight: float = 1.0
+
+    @cached_property
+    def points32(self) -> np.ndarray:
+        """(x, y, 1) of every sample as rows of a (3, p) float32 array (the plane-height operand)."""
+        return np.stack([self.x, self.y, np.ones_like(self.x)]).astype(np.float32)
+
+    @cached_property
+    def products(self) -> tuple:
+        """x*x, x*y, y*y, x*v, y*v, v*v of every sample (the plane terms of the facet fit)."""
+        x, y, v = self.x, self.y, self.value
+        return x * x, x * y, y * y, x * v, y * v, v * v
+
+    @cached_property
+    def sums(self) -> tuple:
+        """sum x, sum y, sum v, x.x, x.y, y.y, x.v, y.v, v.v and mean v (the plane and level terms)."""
+        x, y, v = self.x, self.y, self.value
+        return x.sum(), y.sum(), v.sum(), x @ x, x @ y, y @ y, x @ v, y @ v, v @ v, float(np.mean(v))
+
+    @cached_property
+    def spread(self) -> float:
+        """|mean| + standard deviation of the values (the scale of the interior noise floor)."""
+        v = self.value
+        return abs(float(np.mean(v))) + float(np.std(v))
 
 
 def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
@@ -304,18 +328,35 @@ def _solve_sets(nm, rhs, vv, sets):
     systems, e.g. a model with a single facet).
     """
     tm, t0 = sets                                                           # (S, k, k), (S, k)
-    k = tm.shape[-1]
-    tt = np.swapaxes(tm, 1, 2)
+    tt, dead_eye, eye = _set_constants(tm)
     nf = tt[:, None] @ nm[None] @ tm[:, None]                               # (S, c, k, k)
     r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
-    dead = ~np.any(tm != 0.0, axis=1)                                       # (S, k) unused unknowns
     tr = np.einsum("scii->sc", nf)
-    eye = np.eye(k)
-    nf = nf + eye * (1e-12 * tr + 1e-300)[:, :, None, None] + (dead[:, :, None] * eye)[:, None]
+    # nf + ridge + unit diagonal of the unused unknowns, added in place in that order
+    nf += eye * (1e-12 * tr + 1e-300)[:, :, None, None]
+    nf += dead_eye[:, None]
     phi = np.linalg.solve(nf, r[..., None])[..., 0]                         # (S, c, k)
     theta = np.einsum("sij,scj->sci", tm, phi) + t0[:, None, :]
     rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
     return theta, np.maximum(rss, 0.0)
+
+
+_SET_CONSTANTS = {}
+
+
+def _set_constants(tm):
+    """T^T, the unit diagonal of the unused unknowns (S, k, k) and the identity of a stack of active sets.
+
+    Kept per stack (the module's two stacks are built once), so that a solve does not rebuild them.
+    """
+    key = (tm.shape, tm.tobytes())
+    got = _SET_CONSTANTS.get(key)
+    if got is None:
+        k = tm.shape[-1]
+        eye = np.eye(k)
+        dead = ~np.any(tm != 0.0, axis=1)                                   # (S, k) unused unknowns
+        got = _SET_CONSTANTS[key] = (np.swapaxes(tm, 1, 2), dead[:, :, None] * eye, eye)
+    return got
 
 
 #: Active sets of the facet fit over (a, b, c_x, c_y, p_x, p_y): none; a = b = 0;
@@ -395,7 +436,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     # plane heights laid out (plane, model, sample): reductions run over whole
     # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
     # the sums of the normal equations float64
-    pts = np.stack([x, y, np.ones_like(x)]).astype(np.float32)              # (3, p)
+    pts = interior.points32                                                  # (3, p)
 
     def heights(g, z0):
         # z0 + g . (x, y) of every plane, model and sample: one matrix product
@@ -436,8 +477,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
         sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
         sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
-        xx, xy, yy = wt @ (x * x), wt @ (x * y), wt @ (y * y)
-        xv, yv, vv = wt @ (x * v), wt @ (y * v), wt @ (v * v)
+        xx, xy, yy, xv, yv, vv = (wt @ q for q in interior.products)
         nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
         sec = 1.0 / nz - 1.0
         f = np.stack([np.ones_like(sec), sec, -g_up[..., 0] * nz, -g_up[..., 1] * nz], axis=-1)   # (c, M, 4)
@@ -450,14 +490,19 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
         eps = 1e-12
         kmin, kmax = TILT_GAIN_RANGE
-        # active sets: none; a = b = 0; b = kmin a; b = kmax a
-        th, rss = _solve_sets(nm, rhs, vv, _FACET_SETS)
+        # active sets: none; a = b = 0; b = kmin a; b = kmax a. Where the unconstrained optimum
+        # is feasible it is the optimum; the constrained sets are solved only where it is not
+        # (each system is solved on its own, so a subset gives the same bits)
+        tm, t0 = _FACET_SETS
+        th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
         ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
             & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
-        sub = np.minimum(rss[1], np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
-        sub = np.minimum(sub, np.where(th[3, :, 0] >= -eps, rss[3], np.inf))
-        # where the unconstrained optimum is feasible it is the optimum
-        best = np.where(ok, rss[0], sub)
+        best = rss[0]
+        if not ok.all():
+            bad = ~ok
+            th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
+            sub = np.minimum(rss[0], np.where(th[1, :, 0] >= -eps, rss[1], np.inf))
+            best[bad] = np.minimum(sub, np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
         return best * scale
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
@@ -467,20 +512,27 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     nm[:, 0, 0] = np.einsum("cp,cp->c", t, t)
     nm[:, 0, 1], nm[:, 0, 2], nm[:, 0, 3] = st, sx_, sy_
     nm[:, 1:, 0] = nm[:, 0, 1:]
-    nm[:, 1:, 1:] = np.array([[p, x.sum(), y.sum()], [x.sum(), x @ x, x @ y],
-                              [y.sum(), x @ y, y @ y]])[None]
+    sx_all, sy_all, sv_all, x_x, x_y, y_y, x_v, y_v, v_v, v_mean = interior.sums
+    nm[:, 1:, 1:] = np.array([[p, sx_all, sy_all], [sx_all, x_x, x_y], [sy_all, x_y, y_y]])[None]
     rhs = np.empty((c, 4))
     rhs[:, 0] = t @ v
-    rhs[:, 1:] = np.array([v.sum(), x @ v, y @ v])[None]
-    vv = np.full(c, v @ v)
-    amax = max(tem_offset_max * float(np.mean(v)), 0.0)
+    rhs[:, 1:] = np.array([sv_all, x_v, y_v])[None]
+    vv = np.full(c, v_v)
+    amax = max(tem_offset_max * v_mean, 0.0)
     eps = 1e-12
     # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
     # unconstrained optimum where it is feasible, else the best feasible constrained one
     tm, t0 = _THICKNESS_SETS
-    th, rss = _solve_sets(nm, rhs, vv, (tm, t0 * amax))
-    ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
-    best = np.where(ok[0], rss[0], np.where(ok[1:], rss[1:], np.inf).min(axis=0))
+    t0 = t0 * amax
+    th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
+    best = rss[0]
+    ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= -eps) & (th[0, :, 1] <= amax + eps)
+    if not ok.all():
+        # the constrained sets only where the unconstrained optimum is not feasible
+        bad = ~ok
+        th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
+        ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
+        best[bad] = np.where(ok, rss, np.inf).min(axis=0)
     return best
 
 
