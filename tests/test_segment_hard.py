@@ -178,3 +178,24 @@ def test_artefacts_leave_truth_alone_and_debris_is_dropped():
     cents = ndi.center_of_mass(np.ones_like(labels), labels, ids)
     on_truth = [field.labels[int(round(r)), int(round(c))] > 0 for r, c in cents]
     assert labels.max() >= 10 and all(on_truth)
+
+
+def test_objects_cut_by_the_frame_edge_are_not_a_row_of_text():
+    # Three hollow "U" shapes of one height side by side read as a row of glyphs (bounding boxes on one
+    # baseline, most not convex): dropped. Cut by the frame's top edge, their tops lie on that edge,
+    # not on a baseline (e.g. chains of grains running out of the picture): kept.
+    # Solidity = area / convex hull area, ISO 9276-6; the U's is (3 strokes) / (full box) ~ 0.55.
+    from grainhabit.plugins.segment.mark_shapes import text_rows
+
+    def u_shapes(top):
+        labels = np.zeros((120, 200), np.int32)
+        for k, (c0, h) in enumerate(((10, 40), (60, 46), (110, 52)), start=1):  # tops level, bottoms not
+            labels[top:top + h, c0:c0 + 6] = k
+            labels[top:top + h, c0 + 24:c0 + 30] = k
+            labels[top + h - 6:top + h, c0:c0 + 30] = k
+        return labels
+
+    inside = u_shapes(30)
+    assert sorted(text_rows(inside, inside > 0).tolist()) == [1, 2, 3]
+    at_edge = u_shapes(0)
+    assert text_rows(at_edge, at_edge > 0).size == 0

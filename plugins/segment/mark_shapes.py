@@ -133,7 +133,7 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
     -----
     A row is a chain of at least :data:`TEXT_MIN_GLYPHS` objects whose
     bounding boxes end on the same row (within :data:`TEXT_BASELINE_PX`,
-    their bottoms; or their tops), with heights within 35 % of each other and
+    their bottoms; or their tops; a box ending on the frame's edge is cut, not on a baseline), with heights within 35 % of each other and
     horizontal gaps under 1.5 heights: the layout of printed text (common
     practice). It is dropped when most of its members are not convex (drawn
     pixels fill under :data:`TEXT_SOLIDITY` of their convex hull), as
@@ -163,11 +163,14 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
             solid[i] = float(m.sum()) / max(float(convex_hull_image(m).sum()), 1.0) if m.any() else 1.0
         return solid[i]
 
-    for edge in (bottom, top):
+    for edge, at_frame_edge in ((bottom, bottom >= labels.shape[0]), (top, top <= 0)):
         order = np.argsort(edge, kind="stable")
         for a in order:
+            if at_frame_edge[a]:
+                # objects cut by the frame's top (or bottom) edge share that edge, not a baseline
+                continue
             # neighbours on the same line, chained left to right
-            same = np.flatnonzero((np.abs(edge - edge[a]) <= TEXT_BASELINE_PX)
+            same = np.flatnonzero((np.abs(edge - edge[a]) <= TEXT_BASELINE_PX) & ~at_frame_edge
                                   & (np.abs(height / height[a] - 1) < 0.35))
             same = same[np.argsort(left[same])]
             group = [same[0]]
