@@ -179,3 +179,22 @@ def test_seam_contrast_of_a_drawn_line():
     parts = [mask & (np.arange(80) < 40)[None, :], mask & (np.arange(80) >= 40)[None, :]]
     assert touching.seam_contrast(img, mask, parts, rr, cc) == pytest.approx(0.6, abs=0.05)
     assert abs(touching.seam_contrast(flat, mask, parts, rr, cc)) < 0.02
+
+
+def test_triangle_pressed_against_a_square_is_two_grains_without_neck_or_seam():
+    # A 40 px square and a triangle whose 50 px base lies along the square's side, one flat grey (no
+    # seam): the contact is as long as the grains, so no neck, but the shape is far from convex and
+    # falls into two convex parts along the contact. The parts are the drawn polygons
+    # (scikit-image's polygon raster as the reference), IoU > 0.9 each.
+    shape = (100, 140)
+    square = np.zeros(shape, bool)
+    square[25:65, 20:61] = True
+    triangle = np.zeros(shape, bool)
+    rr, cc = polygon([20, 70, 45], [61, 61, 105], shape)
+    triangle[rr, cc] = True
+    mask = square | triangle
+    parts = touching.split_component(mask, 50.0, 0.08, np.where(mask, 1.0, 0.0))
+    assert len(parts) == 2
+    for part in parts:
+        iou = max((part & t).sum() / (part | t).sum() for t in (square, triangle))
+        assert iou > 0.9

@@ -31,7 +31,8 @@
    outline point) where that crosses a neck: twice the shallower notch is at least 0.3 of the
    cut's length (a single notch at least as deep as the cut is long) and half the cut at most
    1.2 times the thicker part's inscribed radius, or the
-   image along the cut is 15 % darker than both parts (a seam). The first such cut whose parts
+   image along the cut is 15 % darker than both parts (a seam), or the component's concavity is over
+   twice its allowance and the cut leaves two convex parts. The first such cut whose parts
    are convex, or can be cut again into convex parts, is kept; failing that the first such cut,
    its concave parts cut further where they can be (a chain falls apart at its necks). No part
    is smaller than a tenth of the component; at most 200 cuts are tried per component. If no

@@ -43,6 +43,9 @@ SEAM_CLEAR_PX = 3.0
 NECK_WIDTH = 1.2
 #: A cut from one notch to the nearest outline point crosses a neck when the notch is this many times its length.
 ONE_NOTCH_RATIO = 1.0
+#: A shape whose deepest concavity exceeds this many times its allowance is no single grain: a cut into
+#: two convex parts is kept there without a neck or a seam.
+CLEAR_CONCAVITY = 2.0
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -333,7 +336,10 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     length first) whose parts are convex, or can be cut again into convex
     parts, is kept; failing that the first such cut at all, its concave
     parts cut further where they can be (a chain of grains whose parts are
-    not all convex still falls apart at its necks).
+    not all convex still falls apart at its necks). A shape whose deepest
+    concavity exceeds :data:`CLEAR_CONCAVITY` times its allowance is no
+    single grain: there a cut into two convex parts is kept without a neck
+    or a seam (a triangle pressed against a square along its whole side).
     """
     r_eq = np.sqrt(mask.sum() / np.pi)
     defects, outline = convexity_defects(mask, max(MIN_DEPTH_PX, split_depth * r_eq), outline=True)
@@ -369,6 +375,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                 break
         cuts.extend((np.inf, p, t, NOTCH_RATIO * dp / ONE_NOTCH_RATIO) for t in taken)
     fallback = None
+    clearly_concave = concavity_depth(mask) > CLEAR_CONCAVITY * max(MIN_DEPTH_PX, split_depth * r_eq)
     for _, p, q, notches in cuts:
         if budget[0] <= 0:
             break
@@ -387,7 +394,11 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
             narrow = 0.5 * length <= NECK_WIDTH * thick
         if not narrow and (image is None
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
-            continue
+            # no neck and no seam: a shape far from convex (notches over CLEAR_CONCAVITY times the
+            # allowance) still falls into two convex parts there (two faceted grains pressed together)
+            if not (clearly_concave and not seam_only
+                    and all(is_convex(part, split_depth) for part in parts)):
+                continue
         if seam_only:
             return parts
         out = _divide_further(parts, min_area, split_depth, depth, budget, image, keep=False)
