@@ -184,6 +184,7 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     deep.ravel()[at[value > edge_level * peak[own]]] = True
     return deep
 
+
 def fill_holes(mask: np.ndarray) -> np.ndarray:
     """Fill the holes of a mask: background not 4-connected to the frame's edge.
 

@@ -375,7 +375,8 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                 break
         cuts.extend((np.inf, p, t, NOTCH_RATIO * dp / ONE_NOTCH_RATIO) for t in taken)
     fallback = None
-    clearly_concave = concavity_depth(mask) > CLEAR_CONCAVITY * max(MIN_DEPTH_PX, split_depth * r_eq)
+    clearly_concave = (not seam_only
+                       and concavity_depth(mask) > CLEAR_CONCAVITY * max(MIN_DEPTH_PX, split_depth * r_eq))
     for _, p, q, notches in cuts:
         if budget[0] <= 0:
             break
@@ -396,8 +397,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
             # no neck and no seam: a shape far from convex (notches over CLEAR_CONCAVITY times the
             # allowance) still falls into two convex parts there (two faceted grains pressed together)
-            if not (clearly_concave and not seam_only
-                    and all(is_convex(part, split_depth) for part in parts)):
+            if not (clearly_concave and all(is_convex(part, split_depth) for part in parts)):
                 continue
         if seam_only:
             return parts
