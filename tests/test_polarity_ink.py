@@ -129,6 +129,27 @@ def test_drawn_mark_test_keeps_hand_annotated_particles():
     assert total > 100 and dropped < 0.01 * total
 
 
+@pytest.mark.skipif(not REALDATA.is_dir(), reason="../shared/realdata is not there")
+def test_drawn_mark_tests_keep_hand_annotated_groups_whole():
+    # EMPS training masks (Yildirim and Cole 2021): judged as whole touching groups, before any splitting,
+    # the shape tests (bars, lines, strokes) call no hand-drawn particle a mark and the ink test under 0.5 %
+    from grainhabit.plugins.segment.mark_shapes import annotation_kind
+    from grainhabit.plugins.survey.score_masks import pair_files, read_gray, read_mask
+
+    total = shaped = inked = 0
+    for img_path, mask_path in pair_files(REALDATA / "images", REALDATA / "segmaps")[::4]:
+        truth = read_mask(mask_path)
+        groups, _ = ndi.label(truth > 0, structure=np.ones((3, 3)))
+        total += len(np.unique(truth[truth > 0]))
+        for k, box in enumerate(ndi.find_objects(groups), start=1):
+            group = np.pad(groups[box] == k, 1)
+            if annotation_kind(group, group) is not None:
+                shaped += len(np.unique(truth[box][groups[box] == k]))
+        for k in annotations.drawn_labels(groups, read_gray(img_path)):
+            inked += len(np.unique(truth[groups == k]))
+    assert total > 1000 and shaped == 0 and inked < 0.005 * total
+
+
 def test_score_folder_offset_takes_a_second_subset(tmp_path):
     # the every-N-th selection starts at the offset: with every=2, offset 1 scores the second picture only
     from PIL import Image

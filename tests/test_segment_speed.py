@@ -181,6 +181,8 @@ def _annotation_kind_reference(part, raw):
     area = float(part.sum())
     if area < 4:
         return None
+    if mark_shapes.aligned_bar(part) is not None:  # the same bar rule in both
+        return "line"
     r = float(ndi.distance_transform_edt(np.pad(part, 1)).max())
     elong = area / (4.0 * r * r)
     if elong > mark_shapes.LINE_ELONGATION and r <= 2 * mark_shapes.STROKE_MAX_HALF_WIDTH_PX:

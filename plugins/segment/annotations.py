@@ -8,7 +8,8 @@ glyphs and thick bars (see :func:`grainhabit.plugins.segment.mark_shapes.annotat
 the ink test needs the raw frame, before any smoothing.
 
 An object is a drawn mark when at least :data:`MIN_INK` of its inner pixels
-(the object eroded by one pixel) lie within :data:`INK_TOLERANCE` of the
+(the object eroded by one pixel, or by :data:`RIM_PX` where a figure's
+resampling has blurred a bold mark's edge: :func:`core_pixels`) lie within :data:`INK_TOLERANCE` of the
 frame's range from its darkest or brightest level, and, so that a real grain
 whose core is clipped to black or white is kept, its shape is not that of a
 filled convex body: either the ink covers less than :data:`SOLID_INK` of the
@@ -19,7 +20,10 @@ digits; objects of :data:`GLYPH_MIN_AREA_PX` or more), or it is a bar: it fills
 its axis-aligned bounding box (over :data:`BOX_FILL`) and is at least
 :data:`BAR_ASPECT` times longer than wide. Objects in ink within half a mark's
 length of a mark (a glyph cut in two, the small digits under a scale bar) go
-with it.
+with it. A scale bar pasted in a grey that is no end of the scale is told by
+its flat colour instead: it fills its axis-aligned box like a bar and varies
+along its length by under half the frame's background noise
+(:func:`is_flat_bar`), where an imaged rod carries the detector's noise.
 """
 
 from __future__ import annotations
@@ -29,6 +33,8 @@ from scipy import ndimage as ndi
 
 #: Fraction of the frame's grey range, from either end, counted as ink.
 INK_TOLERANCE = 0.02
+#: Rim (px) of an object left out of its ink test: resampling blurs a mark's edge over this many pixels.
+RIM_PX = 2
 #: Smallest fraction of inner pixels in ink for a drawn mark.
 MIN_INK = 0.3
 #: Above this ink fraction a convex, non-rectangular object is a clipped grain, not a mark.
@@ -43,6 +49,10 @@ GLYPH_SOLIDITY = 0.9
 #: than wide, are bars (a clipped rod is seldom that long and that well aligned with the frame).
 BOX_FILL = 0.95
 BAR_ASPECT = 5.0
+#: Bars told by their flat colour (:func:`is_flat_bar`) are at most this wide (px).
+BAR_MAX_WIDTH_PX = 24
+#: A drawn bar varies along its length by at most this fraction of the background noise.
+FLAT_NOISE_RATIO = 0.5
 #: Smaller objects are never called marks: a small digitised disc is neither solid nor hollow enough to judge.
 GLYPH_MIN_AREA_PX = 50
 
@@ -92,11 +102,11 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
 
     if high <= low:
         return False
-    inner = ndi.binary_erosion(part)
-    if inner.sum() < 4:
-        inner = part
+    inner, core = core_pixels(part)
     vals = raw[inner]
-    dark, bright = float(np.mean(vals <= low)), float(np.mean(vals >= high))
+    dark, bright = ink_shares(raw[core], low, high)
+    if core is not inner:  # a hollow glyph's core is mostly its hole: the inner ring counts as well
+        dark, bright = (max(a, b) for a, b in zip((dark, bright), ink_shares(vals, low, high)))
     ink = max(dark, bright)
     if ink < MIN_INK:
         return False
@@ -147,12 +157,17 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray) -> np.ndarray:
     boxes = ndi.find_objects(labels)
     # only objects holding an ink pixel at all can be marks (one pass over the frame, not one per object)
     has_ink = np.bincount(labels[(raw <= low) | (raw >= high)].ravel(), minlength=len(boxes) + 1) > 0
+    bars = bar_candidates(labels, boxes)
+    noise = noise_sd(raw, labels) if bars.any() else 0.0
     for k, sl in enumerate(boxes, start=1):
-        if sl is None or not has_ink[k]:
+        if sl is None or not (has_ink[k] or bars[k]):
             continue
         part = labels[sl] == k
         crop = np.asarray(raw[sl], np.float64)
-        if is_drawn(part, crop, low, high, background):
+        if bars[k] and is_flat_bar(part, crop, noise):
+            out.append(k)
+            reach = max(reach, 0.5 * max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start))
+        elif has_ink[k] and is_drawn(part, crop, low, high, background):
             out.append(k)
             reach = max(reach, 0.5 * max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start))
         elif ink_fraction(part, crop, low, high) >= MIN_INK:
@@ -165,13 +180,122 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray) -> np.ndarray:
     return np.asarray(sorted(out), np.int64)
 
 
-def ink_fraction(part: np.ndarray, raw: np.ndarray, low: float, high: float) -> float:
-    """Fraction of an object's inner pixels (eroded by one pixel) at either ink level."""
+def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
+    """Which labels fill their bounding box like a bar along a frame axis.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+    boxes : list of tuple of slice or None
+        ``scipy.ndimage.find_objects(labels)``.
+
+    Returns
+    -------
+    ndarray of bool, shape (len(boxes) + 1,)
+        True where the object fills over :data:`BOX_FILL` of its box, which
+        is at least :data:`BAR_ASPECT` times longer than wide and at most
+        :data:`BAR_MAX_WIDTH_PX` wide.
+    """
+    out = np.zeros(len(boxes) + 1, bool)
+    if not boxes:
+        return out
+    area = np.bincount(labels.ravel(), minlength=len(boxes) + 1)
+    for k, sl in enumerate(boxes, start=1):
+        if sl is None:
+            continue
+        h, w = sl[0].stop - sl[0].start, sl[1].stop - sl[1].start
+        out[k] = (min(h, w) <= BAR_MAX_WIDTH_PX and max(h, w) >= BAR_ASPECT * min(h, w)
+                  and area[k] >= BOX_FILL * h * w)
+    return out
+
+
+def noise_sd(raw: np.ndarray, labels: np.ndarray) -> float:
+    """Pixel noise of the frame's background (grey levels), from differences of neighbours along rows.
+
+    Returns
+    -------
+    float
+        ``1.4826 MAD(d) / sqrt(2)`` over the differences ``d`` of
+        horizontally adjacent pixels both outside every object: a robust
+        standard deviation (normal consistency factor 1.4826) that a smooth
+        illumination gradient hardly moves.
+    """
+    free = (labels[:, 1:] == 0) & (labels[:, :-1] == 0)
+    d = np.diff(np.asarray(raw, np.float32), axis=1)[free]
+    if d.size < 16:
+        return 0.0
+    return float(1.4826 * np.median(np.abs(d - np.median(d))) / np.sqrt(2.0))
+
+
+def is_flat_bar(part: np.ndarray, raw: np.ndarray, noise: float) -> bool:
+    """Whether a bar-shaped object is drawn: flat along its length, with none of the frame's noise.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+        An object that fills its axis-aligned box (see :func:`bar_candidates`).
+    raw : ndarray, shape (h, w)
+        The raw frame over the same crop.
+    noise : float
+        The frame's background noise (:func:`noise_sd`).
+
+    Returns
+    -------
+    bool
+        True when the median, over the lines of the bar's core (the object
+        less its rim, :func:`core_pixels`) along its length, of the
+        standard deviation of the grey levels along the line is at most
+        :data:`FLAT_NOISE_RATIO` times ``noise``. A scale bar is one flat
+        colour however the figure was resampled; an imaged rod, however well
+        aligned, carries the detector's noise along its axis.
+    """
+    if noise <= 0:
+        return False
+    _, core = core_pixels(part)
+    if part.shape[0] > part.shape[1]:  # lines along the bar's length are rows
+        core, raw = core.T, raw.T
+    lines = np.flatnonzero(core.sum(axis=1) >= 8)
+    if lines.size == 0:
+        return False
+    sds = [float(np.std(raw[i][core[i]])) for i in lines]
+    return float(np.median(sds)) <= FLAT_NOISE_RATIO * noise
+
+
+def core_pixels(part: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The pixels of an object inside its rim, and deeper inside, where a drawn mark shows its flat ink.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+
+    Returns
+    -------
+    inner, core : ndarray of bool, shape (h, w)
+        ``inner``: ``part`` eroded by one pixel (``part`` itself where fewer
+        than 4 pixels remain). ``core``: ``part`` eroded by :data:`RIM_PX`
+        pixels where at least 4 remain, else ``inner`` (the same object).
+        Figures resampled for print spread a mark's edge over one to two
+        pixels of grey; the core of a bold glyph is then in ink where its
+        inner ring is not.
+    """
     inner = ndi.binary_erosion(part)
     if inner.sum() < 4:
-        inner = part
-    vals = raw[inner]
-    return max(float(np.mean(vals <= low)), float(np.mean(vals >= high)))
+        return part, part
+    core = ndi.binary_erosion(inner, iterations=RIM_PX - 1)
+    return inner, (core if core.sum() >= 4 else inner)
+
+
+def ink_shares(vals: np.ndarray, low: float, high: float) -> tuple[float, float]:
+    """Fractions of ``vals`` at or below ``low`` and at or above ``high``."""
+    if vals.size == 0:
+        return 0.0, 0.0
+    return float(np.mean(vals <= low)), float(np.mean(vals >= high))
+
+
+def ink_fraction(part: np.ndarray, raw: np.ndarray, low: float, high: float) -> float:
+    """Largest fraction of an object's inner or core pixels (:func:`core_pixels`) at either ink level."""
+    inner, core = core_pixels(part)
+    return max(*ink_shares(raw[inner], low, high), *ink_shares(raw[core], low, high))
 
 
 def median(values: np.ndarray) -> float:

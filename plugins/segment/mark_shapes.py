@@ -18,6 +18,11 @@ STROKE_SOLIDITY = 0.7
 #: Strokes are drawn at screen resolution: at most this half-width (px); a wider curved band is an unsplit
 #: chain of grains, not a letter.
 STROKE_MAX_HALF_WIDTH_PX = 4.0
+#: Scale bars: objects filling over BAR_BOX_FILL of their axis-aligned bounding box, at least ALIGNED_BAR_ASPECT
+#: times longer than wide and at most ``2 * STROKE_MAX_HALF_WIDTH_PX`` wide (a rod lying that exactly along a
+#: frame axis, that thin and that square-ended is rare; a drawn bar always is).
+BAR_BOX_FILL = 0.95
+ALIGNED_BAR_ASPECT = 8.0
 #: Text rows: at least this many glyphs, bottoms (or tops) within this many pixels, glyphs less solid than this.
 TEXT_MIN_GLYPHS = 3
 TEXT_BASELINE_PX = 2
@@ -39,7 +44,8 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
     {"line", "stroke", None}
         ``"line"``: a bar more than :data:`LINE_ELONGATION` times longer
         than wide and at most ``4 * STROKE_MAX_HALF_WIDTH_PX`` wide (scale
-        bars, streaks, scratches; a wider band is an unsplit chain of grains); ``"stroke"``: a
+        bars, streaks, scratches; a wider band is an unsplit chain of grains),
+        or a bar along a frame axis (:func:`aligned_bar`); ``"stroke"``: a
         thin curved stroke (letters, digits, text), i.e. elongation above
         :data:`STROKE_ELONGATION`, solidity below :data:`STROKE_SOLIDITY` and
         half-width at most :data:`STROKE_MAX_HALF_WIDTH_PX`,
@@ -68,6 +74,8 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
     bound = max(STROKE_MAX_HALF_WIDTH_PX, min(2 * STROKE_MAX_HALF_WIDTH_PX, float(np.sqrt(area / (4.0 * LINE_ELONGATION)))))
     if erode_disk(np.pad(raw, 1), bound, 0).any():
         return None
+    if aligned_bar(part) is not None:
+        return "line"
     r, r_raw = inscribed_radii(part, raw)
     elong = area / (4.0 * r * r)
     if elong > LINE_ELONGATION and r <= 2 * STROKE_MAX_HALF_WIDTH_PX:
@@ -83,6 +91,38 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
         if solidity < STROKE_SOLIDITY:
             return "stroke"
     return None
+
+
+def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_PX,
+                aspect: float = ALIGNED_BAR_ASPECT) -> tuple[int, int, int, int] | None:
+    """The box of a thin bar drawn along a frame axis (a scale bar), or None.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+        One object.
+    max_width : float
+        Widest bar (px).
+    aspect : float
+        Least length over width.
+
+    Returns
+    -------
+    (top, bottom, left, right) or None
+        The object's bounding box within ``part`` (bottom and right
+        exclusive) when it fills over :data:`BAR_BOX_FILL` of it, is at least
+        ``aspect`` times longer than wide and at most ``max_width`` wide;
+        else None. The defaults are the shape test of :func:`annotation_kind`.
+    """
+    rows, cols = np.flatnonzero(part.any(axis=1)), np.flatnonzero(part.any(axis=0))
+    if rows.size == 0:
+        return None
+    top, bottom, left, right = int(rows[0]), int(rows[-1]) + 1, int(cols[0]), int(cols[-1]) + 1
+    h, w = bottom - top, right - left
+    if (min(h, w) > max_width or max(h, w) < aspect * min(h, w)
+            or float(part.sum()) < BAR_BOX_FILL * h * w):
+        return None
+    return top, bottom, left, right
 
 
 def inscribed_radii(first: np.ndarray, second: np.ndarray) -> tuple[float, float]:
@@ -191,4 +231,87 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
                 c0, c1 = left[g].min() - height[a], right[g].max() + height[a]
                 inside = (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
                 drop.update(int(k) for k in ids[inside])
+    return np.asarray(sorted(drop), np.int64)
+
+
+def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
+                 drawn: np.ndarray | None = None) -> np.ndarray:
+    """Labels that form the caption of a scale bar ("50 nm" above or below the bar).
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Grains 1..n.
+    bars : list of (top, bottom, left, right)
+        Frame boxes (bottom and right exclusive) of the bars dropped as drawn
+        lines.
+    drawn : ndarray of bool, shape (rows, cols), optional
+        Pixels above the noise threshold; with it a lone object counts as a
+        caption (glyphs run together) when they fill under
+        :data:`TEXT_SOLIDITY` of its convex hull.
+
+    Returns
+    -------
+    ndarray of int
+        Labels to drop.
+
+    Notes
+    -----
+    A caption is a row of at least two objects beside a horizontal bar: their
+    boxes overlap the bar's columns (widened by a quarter of its length on
+    each side), lie within twice their height (or that quarter length)
+    above or below it, are at
+    most half the bar's length tall, and end on one baseline (within
+    ``TEXT_BASELINE_PX + 1``) with horizontal gaps under 1.5 heights, the
+    layout of printed text (common practice), or one object of glyphs run
+    together, not convex (see ``drawn``), wider than tall, at most a
+    quarter of the bar's length tall and within its height of the bar. Small text drawn without a
+    flat ink (anti-aliased, resampled) passes neither the ink nor the
+    stroke test, but it is set beside its bar.
+    """
+    from skimage.morphology import convex_hull_image
+
+    boxes = ndi.find_objects(labels)
+    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
+    drop: set[int] = set()
+    if not items or not bars:
+        return np.zeros(0, np.int64)
+    top = np.array([b[0].start for _, b in items])
+    bottom = np.array([b[0].stop for _, b in items])
+    left = np.array([b[1].start for _, b in items])
+    right = np.array([b[1].stop for _, b in items])
+    height = (bottom - top).astype(float)
+    ids = np.array([k for k, _ in items])
+
+    def width_of(i):
+        return float(right[i] - left[i])
+
+    for b_top, b_bottom, b_left, b_right in bars:
+        length = b_right - b_left
+        if length <= b_bottom - b_top:
+            continue  # an upright bar: its caption is set sideways or not at all
+        reach = 0.25 * length
+        gap = np.maximum(b_top - bottom, top - b_bottom)  # rows between box and bar (<= 0: overlapping rows)
+        near = np.flatnonzero((right > b_left - reach) & (left < b_right + reach) & (gap >= 0)
+                              & (gap <= np.maximum(2.0 * height, reach)) & (height <= 0.5 * length))
+        for a in near:
+            row = near[np.abs(bottom[near] - bottom[a]) <= TEXT_BASELINE_PX + 1]
+            row = row[np.argsort(left[row])]
+            # the run of neighbours holding a, chained left to right
+            chain = [row[0]]
+            for j in row[1:]:
+                if left[j] - right[chain[-1]] < 1.5 * max(height[a], 1.0):
+                    chain.append(j)
+                elif a in chain:
+                    break
+                else:
+                    chain = [j]
+            if a in chain and len(chain) >= 2:
+                drop.update(int(ids[i]) for i in chain)
+            elif (drawn is not None and len(chain) == 1 and width_of(a) >= height[a] and gap[a] <= height[a]
+                  and height[a] <= reach):
+                k, b = items[a]
+                m = (labels[b] == k) & drawn[b]
+                if m.any() and float(m.sum()) < TEXT_SOLIDITY * float(convex_hull_image(m).sum()):
+                    drop.add(int(k))
     return np.asarray(sorted(drop), np.int64)

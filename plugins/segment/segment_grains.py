@@ -39,8 +39,11 @@
    cut crosses a neck, the distance transform is flooded by a marker-controlled watershed [3]_
    from its h-maxima (``h = f * d_max``, f = 0.5 ... 0.1), kept when its parts are convex and
    every line between two parts crosses a neck of the distance map (saddle at most 0.75 of the
-   smaller part's peak). Rows of text are looked for among the whole components too, so
-   touching glyphs cut apart are still dropped as drawn marks.
+   smaller part's peak). Drawn marks are judged on the whole component before any cut (a
+   letter cut into convex pieces looks like grains), on the pieces after, and by their ink on
+   the raw frame (:mod:`grainhabit.plugins.segment.annotations`); rows of text are looked for
+   among the grains, the whole components and the marks already dropped, and the caption
+   beside a dropped scale bar goes with it (:func:`~grainhabit.plugins.segment.mark_shapes.bar_captions`).
 4. Labels are numbered 1..n in row-major order of their first pixel, so a
    tiled run (see :mod:`grainhabit.plugins.segment.tiling`) numbers them as an untiled one.
 
@@ -71,7 +74,7 @@ from grainhabit.params import Param, StepInfo
 from grainhabit.plugins.segment import annotations, tiling
 from grainhabit.plugins.segment.foreground import foreground
 from grainhabit.plugins.segment.levels import check_image, frame_levels
-from grainhabit.plugins.segment.mark_shapes import annotation_kind, text_rows
+from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
 from grainhabit.plugins.segment.touching import split_component
 
 GRAINHABIT_API = 1
@@ -79,7 +82,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.3",
+    version="2.4",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -192,6 +195,8 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     above = arr > levels["noise"]
     min_area = np.pi / 4.0 * max(min_ecd_nm / pixel_size_nm, min_ecd_px) ** 2
     rejected = {"line": 0, "stroke": 0}
+    bars = []  # frame boxes of scale bars dropped, for their captions
+    marks = np.zeros(arr.shape, bool)  # objects dropped as drawn marks: glyphs of the rows of text looked for below
     comp, n = ndi.label(fg, structure=_EIGHT)
     labels = np.zeros(arr.shape, np.int32)
     split_flag = [False]
@@ -206,6 +211,17 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         if m.sum() < max(min_area, 1):
             comp[box][m] = 0
             continue
+        if reject_annotations:
+            # a whole drawn mark, judged before the splitter cuts a letter into convex pieces that look like grains
+            kind = annotation_kind(m, above[box])
+            if kind is not None:
+                rejected[kind] += 1
+                bar = aligned_bar(m)
+                if bar is not None:
+                    bars.append((r0 + bar[0], r0 + bar[1], c0 + bar[2], c0 + bar[3]))
+                marks[box] |= m
+                comp[box][m] = 0
+                continue
         parts = split_component(m, max(min_area, 1), split_depth, arr[box]) if split else [m]
         was_split = len(parts) > 1
         # closing and hole filling can enclose background between grains: a part
@@ -216,11 +232,15 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # average (a faint thin plate) stays
         parts = [q for q in parts if float(arr[box][q].max()) >= min_peak
                  or (q.sum() >= FAINT_MIN_AREA_FACTOR * min_area and float(arr[box][q].mean()) > levels["noise"])]
-        if reject_annotations:
+        if reject_annotations and not (len(parts) == 1 and parts[0] is m):  # m itself was judged above
             kinds = [annotation_kind(q, above[box]) for q in parts]
-            for kind in kinds:
+            for q, kind in zip(parts, kinds):
                 if kind is not None:
                     rejected[kind] += 1
+                    bar = aligned_bar(q) if kind == "line" else None
+                    if bar is not None:
+                        bars.append((r0 + bar[0], r0 + bar[1], c0 + bar[2], c0 + bar[3]))
+                    marks[box] |= q
             parts = [q for q, kind in zip(parts, kinds) if kind is None]
         view = labels[box]
         for p in parts:
@@ -228,11 +248,17 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             split_flag.append(was_split)
             nxt += 1
     if reject_annotations and nxt > 1:
-        gone = text_rows(labels, above)
+        # the glyphs already dropped stay in the rows and captions looked for, as numbers past the grains'
+        page = labels
+        if marks.any():
+            glyphs, _ = ndi.label(marks & (labels == 0), structure=_EIGHT)
+            page = np.where(glyphs > 0, glyphs + (nxt - 1), labels)
+        gone = text_rows(page, above)
         # touching glyphs cut apart look like grains: rows of text are looked for among the whole objects too
         whole = np.where(labels > 0, comp, 0)
         gone = np.union1d(gone, np.unique(labels[np.isin(whole, text_rows(whole, above))])).astype(np.int64)
-        gone = gone[gone > 0]
+        gone = np.union1d(gone, bar_captions(page, bars, above)).astype(np.int64)
+        gone = gone[(gone > 0) & (gone < nxt)]
         if gone.size:
             rejected["stroke"] += int(gone.size)
             keep = np.ones(nxt, bool)
@@ -242,6 +268,13 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]]), "rejected": rejected}
     clusters = np.where(labels > 0, comp, 0).astype(np.int32, copy=False)
     return labels, clusters, flags
+
+
+def _frame_box(box, crop):
+    """A (top, bottom, left, right) box within ``crop`` (a pair of slices) in frame coordinates; None stays."""
+    if box is None:
+        return None
+    return (crop[0].start + box[0], crop[0].start + box[1], crop[1].start + box[2], crop[1].start + box[3])
 
 
 def edge_cut(labels: np.ndarray) -> np.ndarray:
@@ -338,14 +371,29 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         if n_lost:
             notes.append(f"segment-grains: {n_lost} pixel(s) of grain clusters cut by tile edges were not found "
                          "again; raise tile_overlap_nm")
+        clusters = None
     else:
-        labels, _, flags = func(arr)
+        labels, clusters, flags = func(arr)
         split = flags["split"][1:]
     n_line = sum(d["line"] for d in dropped)
     n_stroke = sum(d["stroke"] for d in dropped)
     if raw is not None and p["reject_annotations"] and labels.max() > 0:
         inked = annotations.drawn_labels(labels, raw)
+        if clusters is not None and np.any(flags["split"]):
+            # a glyph the splitter cut into convex pieces is judged whole as well
+            cut = np.where(flags["split"][labels], clusters, 0)
+            whole = annotations.drawn_labels(cut, raw)
+            if whole.size:
+                inked = np.union1d(inked, np.unique(labels[np.isin(cut, whole)])).astype(np.int64)
+                inked = inked[inked > 0]
         if inked.size:
+            # the caption beside a bar dropped here ("50 nm" in anti-aliased text, no ink of its own)
+            boxes = ndi.find_objects(labels)
+            bars = [b for b in (_frame_box(aligned_bar(labels[boxes[k - 1]] == k, annotations.BAR_MAX_WIDTH_PX,
+                                                      annotations.BAR_ASPECT), boxes[k - 1]) for k in inked)
+                    if b is not None]
+            if bars:
+                inked = np.union1d(inked, bar_captions(labels, bars, arr > levels["noise"])).astype(np.int64)
             n_stroke += int(inked.size)
             keep = np.ones(int(labels.max()) + 1, bool)
             keep[inked] = False
