@@ -2,9 +2,16 @@
 
 from __future__ import annotations
 
+import os
+import tempfile
+
 import pytest
 
 from builders import draw_frame, write_tiff
+
+# model tables cached on disk (plugins/habit/disk_cache.py) go to a folder of this test session, shared by
+# the workers and command-line runs it starts, never to the user's own cache
+os.environ["GRAINHABIT_CACHE"] = tempfile.mkdtemp(prefix="grainhabit-test-cache-")
 
 
 @pytest.fixture

@@ -123,6 +123,7 @@ from scipy.spatial import ConvexHull
 from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit import engine as en
 from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
@@ -177,6 +178,7 @@ COMPLETION_AREA_MARGIN = 0.05
 # --------------------------------------------------------------- model families
 
 @functools.lru_cache(maxsize=16)
+@disk_cache.on_disk
 def family_signatures(n_angles: int = 256, level: int = 0):
     """Radial signatures and spectra of the plate and rod families (built once per size and rounding).
 

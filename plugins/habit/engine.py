@@ -78,6 +78,7 @@ import numpy as np
 
 from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
+from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
                                                grain_evidence, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_rss, subsample_interior)
@@ -282,6 +283,7 @@ def model_library(alpha_min: float = 0.5, alpha_max: float = 4.0, step: float = 
 
 
 @functools.lru_cache(maxsize=4)
+@disk_cache.on_disk
 def _build_library(alpha_min, alpha_max, step, n_angles, view_floor) -> ModelLibrary:
     n = n_angles
     if not (0 < alpha_min < CUBE_SHAPE_ALPHA and alpha_max > OCTAHEDRON_ALPHA and 0 < step < 1):
