@@ -245,6 +245,12 @@ def versus_script(args, root, workers: int, out) -> dict:
     print(f"grainhabit run, {c['workers']} workers, cold start included: {fps_c:.3f} frames/s ({c['wall']:.1f} s; "
           f"cluster start {c['host'].get('cluster_start', 0.0):.1f} s, worker preparation "
           f"{c['host'].get('worker_prepare', 0.0):.1f} s)", file=out)
+    from grainhabit.plugins.habit.disk_cache import cache_folder
+
+    folder = cache_folder()
+    print("  (workers are fresh processes every round; the habit model tables "
+          + (f"are read from the disk cache in {folder}, as on any machine after its first run)" if folder else
+             "are built by every worker: GRAINHABIT_CACHE=off)"), file=out)
     ok = ratio >= TARGET_RATIO
     print(f"throughput ratio grainhabit run / script: {ratio:.2f}x (each round: "
           + ", ".join(f"{a['wall'] / b['wall']:.2f}x" for a, b in zip(scripts, runs))
