@@ -79,7 +79,7 @@ import numpy as np
 from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
-                                               grain_evidence, grain_interior, interior_rss, interior_rss_batch,
+                                               grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_rss, subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
                                                 radial_signature, rounded_outline, shift_distances,
@@ -88,7 +88,7 @@ from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
-           "symmetric_hull_areas", "fit_alpha", "fit_options", "grain_evidence",
+           "symmetric_hull_areas", "fit_alpha", "fit_options", "grain_evidence", "grain_evidence_lazy",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",

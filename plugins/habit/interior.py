@@ -598,9 +598,42 @@ def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
         than 3 vertices.
     interior : Interior or None
     """
+    contour_lab, get_interior = grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px)
+    return contour_lab, get_interior()
+
+
+def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2):
+    """:func:`grain_evidence` with the interior collected only when it is asked for.
+
+    Parameters
+    ----------
+    labels, signal, mode, contour_px, label, erode_px
+        As in :func:`grain_evidence`.
+
+    Returns
+    -------
+    contour_lab : ndarray, shape (k, 2) or None
+        As in :func:`grain_evidence`.
+    get_interior : callable
+        ``get_interior()`` returns the :class:`Interior` (or None) of
+        :func:`grain_evidence`, collected on the first call and kept. A grain
+        whose habit its outline decides never pays for the crop, the
+        background ring and the erosion.
+    """
     c = np.asarray(contour_px, float)
     if len(c) < 3:
-        return None, None
+        return None, lambda: None
+    contour_lab = np.column_stack([c[:, 0], -c[:, 1]])
+
+    @functools.lru_cache(maxsize=1)
+    def get_interior():
+        return _collect_interior(labels, signal, mode, c, label, erode_px)
+
+    return contour_lab, get_interior
+
+
+def _collect_interior(labels, signal, mode, c, label, erode_px):
+    """The interior samples of :func:`grain_evidence` (outline ``c`` in pixel coordinates, >= 3 vertices)."""
     cen, area = polygon_centroid(c)
     ecd = math.sqrt(4 * area / math.pi)
     rows, cols = labels.shape
@@ -620,6 +653,4 @@ def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
         crop = -np.log(np.clip(crop, 1e-3 * bg, None) / bg) if bg > 0 else np.zeros_like(crop)
     else:
         crop = crop - bg
-    contour_lab = np.column_stack([c[:, 0], -c[:, 1]])
-    interior = grain_interior(crop, mask, (cen[0] - c0, cen[1] - r0), ecd, mode, erode_px)
-    return contour_lab, interior
+    return grain_interior(crop, mask, (cen[0] - c0, cen[1] - r0), ecd, mode, erode_px)
