@@ -454,10 +454,16 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     a = np.asarray(sig, float)
     n = a.size
     d = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
-    # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place: the same operations in the same order
-    np.multiply(d, 2.0, out=d)
-    np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
-    np.divide(d, n, out=d)
+    # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place
+    if n & (n - 1) == 0:
+        # n a power of two: scaling by -2/n and by 1/n is exact, and rounding commutes with it, so
+        # (-2/n) C + (|a|^2 + |b|^2)/n is the same float as (|a|^2 + |b|^2 - 2 C) / n in two passes
+        np.multiply(d, -2.0 / n, out=d)
+        np.add(d, ((a @ a + tab.sig_sq[level]) / n)[:, None], out=d)
+    else:
+        np.multiply(d, 2.0, out=d)
+        np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
+        np.divide(d, n, out=d)
     u = d.shape[0]
     k0 = np.argmin(d, axis=1)
     # the three windows of every shape at once: (u, 3, window), as flat indices into d

@@ -329,6 +329,8 @@ def _solve_sets(nm, rhs, vv, sets):
     """
     tm, t0 = sets                                                           # (S, k, k), (S, k)
     tt, dead_eye, eye = _set_constants(tm)
+    if tm.shape[0] == 1 and _is_free(tm, t0):
+        return _solve_free(nm, rhs, vv, eye)
     nf = tt[:, None] @ nm[None] @ tm[:, None]                               # (S, c, k, k)
     r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
     tr = np.einsum("scii->sc", nf)
@@ -339,6 +341,33 @@ def _solve_sets(nm, rhs, vv, sets):
     theta = np.einsum("sij,scj->sci", tm, phi) + t0[:, None, :]
     rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
     return theta, np.maximum(rss, 0.0)
+
+
+def _solve_free(nm, rhs, vv, eye):
+    """:func:`_solve_sets` of the one set with no unknown held (T the identity, t0 zero).
+
+    T^T N T = N, T^T (r - N t0) = r and theta = phi hold exactly in floating point
+    (products with 1 and 0, sums with 0), so the products with T are left out; the ridge,
+    the solve and the RSS are the same operations (tested equal to the general path).
+    """
+    nf = nm[None].copy()                                                    # (1, c, k, k)
+    tr = np.einsum("scii->sc", nf)
+    nf += eye * (1e-12 * tr + 1e-300)[:, :, None, None]
+    theta = np.linalg.solve(nf, rhs[None, ..., None])[..., 0]               # (1, c, k)
+    rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
+    return theta, np.maximum(rss, 0.0)
+
+
+_FREE_SETS = {}
+
+
+def _is_free(tm, t0) -> bool:
+    """Whether a one-set stack holds no unknown (T the identity, t0 zero); kept per stack."""
+    key = (tm.shape, tm.tobytes(), t0.tobytes())
+    got = _FREE_SETS.get(key)
+    if got is None:
+        got = _FREE_SETS[key] = bool(np.array_equal(tm[0], np.eye(tm.shape[-1])) and not np.any(t0))
+    return got
 
 
 _SET_CONSTANTS = {}
@@ -457,22 +486,25 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
                 idx[zup[j] == ztop] = j
         else:
             idx = zup.argmin(axis=0)
-        wt = np.ones((c, p))
-        scale = np.ones(c)
+        bins = (np.arange(c)[:, None] * m + idx).ravel()                     # (model, top plane) of every sample
         if m > 1 and edge_px > 0:
             # distance to the line where plane j meets the top plane:
             # (z_j - z_top) / |g_j - g_top|; the top plane itself gives 0 * inf = NaN, skipped by fmin
-            inv = (plane_gap_inverse(g_up) if gap_inv is None else gap_inv).transpose(2, 0, 1)  # (j, c, top)
+            inv = plane_gap_inverse(g_up) if gap_inv is None else gap_inv                          # (c, top, j)
+            # the row of 1 / |g_j - g_top| of every sample's top plane: one row gather, laid out (j, c, p)
+            rows = np.take(np.ascontiguousarray(inv).reshape(c * m, m), bins, axis=0)
             zup -= ztop
             with np.errstate(invalid="ignore"):
-                zup *= inv[:, np.arange(c)[:, None], idx]
+                zup *= rows.T.reshape(m, c, p)
             near = np.fmin.reduce(zup, axis=0)
             far = ~(near < edge_px * interior.pixel)
             nfar = far.sum(axis=1)
             use = (nfar >= 30) & (nfar < p)
             wt = np.where(use[:, None], far, True).astype(float)
             scale = np.where(use, p / np.maximum(nfar, 1), 1.0)
-        bins = (np.arange(c)[:, None] * m + idx).ravel()
+        else:
+            wt = np.ones((c, p))
+            scale = np.ones(c)
         cnt = np.bincount(bins, wt.ravel(), minlength=c * m).reshape(c, m)
         sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
         sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
