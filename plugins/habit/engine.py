@@ -472,8 +472,12 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
         np.bitwise_and(win, n - 1, out=win)          # modulo a power of two (also for negative offsets)
     else:
         np.remainder(win, n, out=win)
-    vals = d.ravel()[win + (np.arange(u) * n)[:, None, None]]
-    best = np.take_along_axis(win, np.argmin(vals, axis=2)[:, :, None], axis=2)[:, :, 0]
+    # window values laid out (window offset, shape, turn): the first minimum over the window is
+    # found by whole-row passes instead of one short argmin per (shape, turn) (same index)
+    vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
+    nw = vals.shape[0]
+    first = nw - np.max((vals == vals.min(axis=0)) * np.arange(nw, 0, -1, dtype=np.uint8)[:, None, None], axis=0)
+    best = np.take_along_axis(win, first[:, :, None].astype(np.intp), axis=2)[:, :, 0]
     shifts = np.empty((u, 4), np.int64)
     valid = np.zeros((u, 4), bool)
     shifts[:, 0], valid[:, 0] = k0, True

@@ -398,6 +398,31 @@ _THICKNESS_SETS = _stack_sets([_active_set(4, f) for f in ((), ((1, 0.0),), ((1,
                                                            ((0, 0.0), (1, 0.0)), ((0, 0.0), (1, 1.0)))])
 
 
+def first_lowest(z, zmin) -> np.ndarray:
+    """Index of the lowest of the planes of every (model, sample), the first one on ties.
+
+    Parameters
+    ----------
+    z : ndarray, shape (M, c, p)
+        Plane heights.
+    zmin : ndarray, shape (c, p)
+        ``z.min(axis=0)``.
+
+    Returns
+    -------
+    ndarray of intp, shape (c, p)
+        ``z.argmin(axis=0)``, computed without its strided scan over the first axis: plane j
+        at the minimum scores M - j, and M minus the largest score is the first such j (one
+        comparison, one product and one element-wise maximum over whole rows).
+    """
+    m = z.shape[0]
+    if m > 255:
+        return z.argmin(axis=0)
+    score = np.arange(m, 0, -1, dtype=np.uint8)[:, None, None]
+    top = np.max((z == zmin) * score, axis=0)
+    return m - top.astype(np.intp)
+
+
 def plane_gap_inverse(g_up) -> np.ndarray:
     """1 / |g_j - g_i| of every pair of upward planes (c, M, M), float32 (inf where equal).
 
@@ -478,14 +503,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     zup = heights(g_up, z_up)
     ztop = zup.min(axis=0)                                                   # (c, p)
     if interior.mode == "facets":
-        # lowest plane, first index on ties: zup.argmin(axis=0), whose strided scan costs more than
-        # one pass per plane where the planes are few (the Wulff models; not the 60-plane sphere)
-        if m <= 12:
-            idx = np.full((c, p), m - 1, np.intp)
-            for j in range(m - 2, -1, -1):
-                idx[zup[j] == ztop] = j
-        else:
-            idx = zup.argmin(axis=0)
+        idx = first_lowest(zup, ztop)                                        # (c, p) top plane
         bins = (np.arange(c)[:, None] * m + idx).ravel()                     # (model, top plane) of every sample
         if m > 1 and edge_px > 0:
             # distance to the line where plane j meets the top plane:
