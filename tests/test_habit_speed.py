@@ -392,3 +392,43 @@ def test_classify_grain_with_a_lazy_interior_equals_the_collected_one(case):
     assert len(calls) <= 1
     if case == "plate":
         assert calls == []                            # the outline decides a plate: no interior collected
+
+
+# ------------------------------------------------ next vertex by slicing instead of np.roll
+
+def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720):
+    """The support-function areas with np.roll (the code before the slicing)."""
+    u, du, (w_sq, w_next) = gr._support_tables(n_dir, fold)
+    hk = (np.asarray(pts, float) @ u.T).max(axis=0)
+    cen = np.asarray(centres, float).reshape(-1, 2)
+    h = np.empty((cen.shape[0], n_dir))
+    h[:] = hk
+    for j in range(1, fold):
+        np.maximum(h, np.roll(hk, j * n_dir // fold) + cen @ du[j - 1], out=h)
+    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.roll(h, -1, axis=1)))
+
+
+def _previous_polygon_centroid(poly):
+    p = np.asarray(poly, float)
+    x, y = p[:, 0], p[:, 1]
+    x1, y1 = np.roll(x, -1), np.roll(y, -1)
+    cross = x * y1 - x1 * y
+    a = 0.5 * cross.sum()
+    return np.array([((x + x1) * cross).sum(), ((y + y1) * cross).sum()]) / (6.0 * a), abs(a)
+
+
+def test_next_vertex_by_slicing_equals_np_roll():
+    from grainhabit.plugins.habit import signature as sg
+
+    rng = np.random.default_rng(9)
+    for a in (rng.random(7), rng.random((40, 2)), np.arange(3.0)):
+        assert np.array_equal(sg._next(a), np.roll(a, -1, axis=0))
+    contour, _ = _evidence(2.4, "111", 40.0)
+    c, area = gr.polygon_centroid(contour)
+    c0, area0 = _previous_polygon_centroid(contour)
+    assert np.array_equal(c, c0) and area == area0
+    pts = rng.standard_normal((25, 2))
+    centres = rng.standard_normal((81, 2)) * 0.3
+    for fold in (2, 3):
+        assert np.array_equal(gr.symmetric_hull_areas(pts, centres, fold),
+                              _previous_symmetric_hull_areas(pts, centres, fold))

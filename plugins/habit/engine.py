@@ -1219,11 +1219,11 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
     h[:] = hk
     for j in range(1, fold):
         s = j * n // fold                                              # R_j^T u_i = u_{i - s}
-        np.maximum(h, np.roll(hk, s) + cen @ du[j - 1], out=h)
+        np.maximum(h, np.concatenate((hk[n - s:], hk[:n - s])) + cen @ du[j - 1], out=h)   # np.roll(hk, s)
     # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
     # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
     w_sq, w_next = cross
-    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.roll(h, -1, axis=1)))
+    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]), axis=1)))
 
 
 @functools.lru_cache(maxsize=8)
