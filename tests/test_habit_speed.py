@@ -432,3 +432,21 @@ def test_next_vertex_by_slicing_equals_np_roll():
     for fold in (2, 3):
         assert np.array_equal(gr.symmetric_hull_areas(pts, centres, fold),
                               _previous_symmetric_hull_areas(pts, centres, fold))
+
+
+@pytest.mark.parametrize("radius", [1, 2, 3, 4])
+def test_diamond_morphology_equals_scipy_iterations(radius):
+    # reference: scipy.ndimage.binary_erosion / binary_dilation with iterations=radius (default cross,
+    # border_value 0), on random and closed masks of every size down to one pixel, touching the border
+    from scipy import ndimage as ndi
+
+    from grainhabit.plugins.habit import interior as it
+
+    rng = np.random.default_rng(radius)
+    for trial in range(120):
+        h, w = (int(v) for v in rng.integers(1, 30, 2))
+        m = rng.random((h, w)) < rng.uniform(0.3, 0.97)
+        if trial % 2:
+            m = ndi.binary_closing(m, iterations=2)
+        assert np.array_equal(it.diamond_morphology(m, radius, True), ndi.binary_erosion(m, iterations=radius))
+        assert np.array_equal(it.diamond_morphology(m, radius, False), ndi.binary_dilation(m, iterations=radius))

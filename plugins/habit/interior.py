@@ -113,7 +113,7 @@ def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
         raise ValueError(f"mode must be 'facets' or 'thickness', got {mode!r}")
     m = np.asarray(mask, bool)
     if erode_px > 0:
-        m = ndi.binary_erosion(m, iterations=int(erode_px))
+        m = diamond_morphology(m, int(erode_px), erode=True)
     rr, cc = np.nonzero(m)
     if rr.size < 30:
         return None
@@ -121,6 +121,49 @@ def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
     y = -(rr + 0.5 - centroid_xy_px[1]) / ecd_px
     v = np.asarray(signal, float)[rr, cc]
     return Interior(x, y, v, mode, 1.0 / ecd_px)
+
+
+def diamond_morphology(mask, radius: int, erode: bool) -> np.ndarray:
+    """``scipy.ndimage.binary_erosion`` / ``binary_dilation`` of ``mask`` with ``iterations=radius``.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+    radius : int
+        Iterations of the default (cross-shaped) structuring element, >= 1.
+    erode : bool
+        Erosion (True) or dilation (False); pixels outside the array count as background,
+        as scipy's default ``border_value=0``.
+
+    Returns
+    -------
+    ndarray of bool, shape (h, w)
+
+    Notes
+    -----
+    ``radius`` steps of the cross are one step of their Minkowski sum, the diamond
+    |di| + |dj| <= radius (the array is a box, so every path between a pixel and a diamond
+    neighbour inside it stays inside it). That step is an AND (erosion) or OR (dilation) of
+    2 r^2 + 2 r + 1 shifted views of the zero-padded mask: the same pixels as scipy's
+    iterations, without its per-call overhead on a grain's crop (tested equal). Radii above 4
+    go to scipy.
+    """
+    m = np.asarray(mask, bool)
+    r = int(radius)
+    if r < 1 or r > 4 or m.ndim != 2:
+        op = ndi.binary_erosion if erode else ndi.binary_dilation
+        return op(m, iterations=r) if r >= 1 else m.copy()
+    h, w = m.shape
+    pad = np.zeros((h + 2 * r, w + 2 * r), bool)
+    pad[r:r + h, r:r + w] = m
+    out = m.copy()
+    comb = np.logical_and if erode else np.logical_or
+    for di in range(-r, r + 1):
+        k = r - abs(di)
+        for dj in range(-k, k + 1):
+            if di or dj:
+                comb(out, pad[r + di:r + di + h, r + dj:r + dj + w], out=out)
+    return out
 
 
 def subsample_interior(interior: Interior, max_samples: int) -> Interior:
@@ -695,7 +738,7 @@ def _collect_interior(labels, signal, mode, c, label, erode_px):
     lab_crop = labels[r0:r1, c0:c1]
     mask = lab_crop == label
     crop = np.asarray(signal[r0:r1, c0:c1], float)
-    ring = (lab_crop == 0) & ~ndi.binary_dilation(mask, iterations=2)
+    ring = (lab_crop == 0) & ~diamond_morphology(mask, 2, erode=False)
     bg = float(np.median(crop[ring])) if ring.any() else float(np.percentile(crop, 5 if mode == "facets" else 95))
     if mode == "thickness":
         if bg <= 0:
