@@ -10,7 +10,7 @@ import pytest
 from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import engine as gr
-from builders import body_and_rotation, draw_crystal_frame
+from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
 
 
 def _evidence(alpha, face, rot_deg, contrast="bright", seed=0, ecd_px=70.0):
@@ -308,3 +308,145 @@ def test_interior_fit_bitwise_equals_the_previous_kernel(contrast, alpha, face, 
         assert rnd == float(_previous_interior_rss_batch(sample, *_round_planes(), edge_px=0.0)[0])
         # the kept noise scale is the plain |mean| + standard deviation
         assert sample.spread == abs(float(np.mean(sample.value))) + float(np.std(sample.value))
+
+
+# ------------------------------------- per-grain work left out: the free active set, the lazy interior
+
+def test_free_active_set_solve_equals_the_general_path():
+    # reference: _solve_sets through T^T N T, T^T (r - N t0) and T phi + t0 with T the identity
+    # (the path before the free set was solved on its own); random normal matrices of both fits
+    from grainhabit.plugins.habit import interior as it
+
+    rng = np.random.default_rng(7)
+    for k, sets in ((6, it._FACET_SETS), (4, it._THICKNESS_SETS)):
+        a = rng.standard_normal((25, 40, k))
+        nm = np.einsum("cpi,cpj->cij", a, a)
+        rhs = rng.standard_normal((25, k))
+        vv = rng.random(25) * 50.0
+        free = (sets[0][:1], sets[1][:1])
+        got = it._solve_sets(nm, rhs, vv, free)
+        ref = _previous_solve_sets(nm, rhs, vv, free)
+        for x, y in zip(got, ref):
+            assert np.array_equal(x, y)
+        # a stack with held unknowns still takes the general path
+        assert not it._is_free(sets[0][1:2], sets[1][1:2])
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_lazy_interior_equals_the_collected_one(contrast):
+    # reference: grain_evidence (the interior collected at once), field by field
+    from grainhabit.plugins.habit import interior as it
+
+    body, rot = body_and_rotation(2.3, "111", 21.0)
+    frame = draw_crystal_frame(body, rot, contrast=contrast, noise=0.02, seed=4)
+    signal, mode = cl.interior_signal(frame)
+    outline = cl.frame_contours(frame)[0]
+    contour, inner = gr.grain_evidence(frame.labels, signal, mode, outline, 1)
+    contour2, get = gr.grain_evidence_lazy(frame.labels, signal, mode, outline, 1)
+    assert np.array_equal(contour, contour2)
+    lazy = get()
+    assert get() is lazy                              # collected once
+    for name in ("x", "y", "value"):
+        assert np.array_equal(getattr(inner, name), getattr(lazy, name))
+    assert (inner.mode, inner.pixel, inner.weight) == (lazy.mode, lazy.pixel, lazy.weight)
+    assert gr.grain_evidence_lazy(frame.labels, signal, mode, outline[:2], 1)[0] is None
+    assert it.grain_evidence(frame.labels, signal, mode, outline[:2], 1) == (None, None)
+
+
+@pytest.mark.parametrize("case", ["cube", "octahedron_dark", "plate", "disc"])
+def test_classify_grain_with_a_lazy_interior_equals_the_collected_one(case):
+    # reference: classify_grain given the interior collected beforehand (every column, every fit field)
+    p = cl.STEP.resolve({})
+    if case == "plate":
+        plate = cr.tabular_prism(0.5, 0.1)
+        rot = cr.in_plane_rotation(12.0) @ cr.resting_rotation("111")
+        frame = draw_polygon_frame(cr.project(plate, rot) * 70)
+    elif case == "disc":
+        t = np.linspace(0, 2 * np.pi, 90, endpoint=False)
+        frame = draw_polygon_frame(np.column_stack([9 * np.cos(t), 9 * np.sin(t)]))
+    else:
+        alpha, face, contrast = (1.0, "100", "bright") if case == "cube" else (3.4, "111", "dark")
+        body, rot = body_and_rotation(alpha, face, 17.0)
+        frame = draw_crystal_frame(body, rot, contrast=contrast, noise=0.02, seed=1)
+    signal, mode = cl.interior_signal(frame)
+    outline = cl.frame_contours(frame)[0]
+    contour, inner = gr.grain_evidence(frame.labels, signal, mode, outline, 1, p["erode_px"])
+    calls = []
+    _, get = gr.grain_evidence_lazy(frame.labels, signal, mode, outline, 1, p["erode_px"])
+
+    def counted():
+        calls.append(1)
+        return get()
+
+    ref = cl.classify_grain(contour, inner, p)
+    got = cl.classify_grain(contour, counted, p)
+    assert got[0] == ref[0] and got[1] == ref[1]
+    assert got[2].keys() == ref[2].keys()
+    for k in ref[2]:
+        assert got[2][k] == ref[2][k] or (np.isnan(got[2][k]) and np.isnan(ref[2][k]))
+    for k in ("alpha", "alpha_lo", "alpha_hi", "face", "rotation_deg", "outline_misfit", "note",
+              "facet_chi2", "relief_chi2"):
+        a, b = getattr(got[3], k), getattr(ref[3], k)
+        assert a == b or (isinstance(a, float) and np.isnan(a) and np.isnan(b))
+    assert np.array_equal(got[3].score, ref[3].score)
+    assert len(calls) <= 1
+    if case == "plate":
+        assert calls == []                            # the outline decides a plate: no interior collected
+
+
+# ------------------------------------------------ next vertex by slicing instead of np.roll
+
+def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720):
+    """The support-function areas with np.roll (the code before the slicing)."""
+    u, du, (w_sq, w_next) = gr._support_tables(n_dir, fold)
+    hk = (np.asarray(pts, float) @ u.T).max(axis=0)
+    cen = np.asarray(centres, float).reshape(-1, 2)
+    h = np.empty((cen.shape[0], n_dir))
+    h[:] = hk
+    for j in range(1, fold):
+        np.maximum(h, np.roll(hk, j * n_dir // fold) + cen @ du[j - 1], out=h)
+    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.roll(h, -1, axis=1)))
+
+
+def _previous_polygon_centroid(poly):
+    p = np.asarray(poly, float)
+    x, y = p[:, 0], p[:, 1]
+    x1, y1 = np.roll(x, -1), np.roll(y, -1)
+    cross = x * y1 - x1 * y
+    a = 0.5 * cross.sum()
+    return np.array([((x + x1) * cross).sum(), ((y + y1) * cross).sum()]) / (6.0 * a), abs(a)
+
+
+def test_next_vertex_by_slicing_equals_np_roll():
+    from grainhabit.plugins.habit import signature as sg
+
+    rng = np.random.default_rng(9)
+    for a in (rng.random(7), rng.random((40, 2)), np.arange(3.0)):
+        assert np.array_equal(sg._next(a), np.roll(a, -1, axis=0))
+    contour, _ = _evidence(2.4, "111", 40.0)
+    c, area = gr.polygon_centroid(contour)
+    c0, area0 = _previous_polygon_centroid(contour)
+    assert np.array_equal(c, c0) and area == area0
+    pts = rng.standard_normal((25, 2))
+    centres = rng.standard_normal((81, 2)) * 0.3
+    for fold in (2, 3):
+        assert np.array_equal(gr.symmetric_hull_areas(pts, centres, fold),
+                              _previous_symmetric_hull_areas(pts, centres, fold))
+
+
+@pytest.mark.parametrize("radius", [1, 2, 3, 4])
+def test_diamond_morphology_equals_scipy_iterations(radius):
+    # reference: scipy.ndimage.binary_erosion / binary_dilation with iterations=radius (default cross,
+    # border_value 0), on random and closed masks of every size down to one pixel, touching the border
+    from scipy import ndimage as ndi
+
+    from grainhabit.plugins.habit import interior as it
+
+    rng = np.random.default_rng(radius)
+    for trial in range(120):
+        h, w = (int(v) for v in rng.integers(1, 30, 2))
+        m = rng.random((h, w)) < rng.uniform(0.3, 0.97)
+        if trial % 2:
+            m = ndi.binary_closing(m, iterations=2)
+        assert np.array_equal(it.diamond_morphology(m, radius, True), ndi.binary_erosion(m, iterations=radius))
+        assert np.array_equal(it.diamond_morphology(m, radius, False), ndi.binary_dilation(m, iterations=radius))

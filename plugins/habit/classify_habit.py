@@ -366,8 +366,10 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     ----------
     contour_lab : ndarray, shape (k, 2)
         Outline in lab axes (y up), pixels.
-    interior : Interior or None
-        From :func:`engine.grain_evidence`.
+    interior : Interior, None or callable
+        From :func:`engine.grain_evidence`; or the ``get_interior`` of
+        :func:`engine.grain_evidence_lazy`, called only where the interior is
+        used (not for a grain whose habit and fit its outline settles).
     params : dict
         Resolved parameters of this step.
     pixel_scale : float
@@ -410,9 +412,13 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     # a rounded outline: a smooth curve fits it better than any model family
     smooth_gain = o_ratios[:3].min() ** 2 - (en.smooth_residual(sig) / tau) ** 2
     rounded = smooth_gain > p["smooth_margin"] and solidity >= p["min_solidity"] and not split
+    lazy = callable(interior)
     if interior is not None:
         full = not outline_decides(o_ratios[:3], solidity, feret_ratio, p) \
             and not en.outline_settles(fit, lib, p["tolerance"])
+        if lazy and (rounded or full or unresolved):
+            interior, lazy = interior(), False
+    if interior is not None and not lazy:
         if rounded:
             # facet evidence from the outline-best models first: a rounded grain without
             # facets is irregular whatever the full search would find for its alpha
@@ -463,6 +469,8 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
         return "tabular_hexagon", s, cols, fit
     relief = fit.relief_chi2 if np.isfinite(fit.relief_chi2) else 0.0
     flat_score = 1.0 - _margin(max(fchi, relief), p["facet_chi2_min"], 0.25 * p["facet_chi2_min"] + 1e-9)
+    if lazy and not faceted and relief < p["facet_chi2_min"]:
+        interior = interior()
     if not faceted and relief < p["facet_chi2_min"] and interior is not None \
             and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face == "111":
         # a featureless, flat hexagon: a plate (an octahedron shows its facets, or in
@@ -589,7 +597,7 @@ def classify_frame(frame, params=None) -> dict:
     for i in range(n):
         lab = int(frame.grains["label"][i])
         outline_px = contours[i]
-        contour, interior = en.grain_evidence(labels, signal, mode, outline_px, lab, p["erode_px"])
+        contour, interior = en.grain_evidence_lazy(labels, signal, mode, outline_px, lab, p["erode_px"])
         if contour is None or len(contour) < 8:
             cols["habit_note"][i] = "outline too small"
             continue

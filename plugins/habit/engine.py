@@ -80,7 +80,7 @@ from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
-                                               grain_evidence, grain_interior, interior_rss, interior_rss_batch,
+                                               grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_rss, subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
                                                 radial_signature, rounded_outline, shift_distances,
@@ -89,7 +89,7 @@ from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
-           "symmetric_hull_areas", "fit_alpha", "fit_options", "grain_evidence",
+           "symmetric_hull_areas", "fit_alpha", "fit_options", "grain_evidence", "grain_evidence_lazy",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
@@ -456,10 +456,16 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     a = np.asarray(sig, float)
     n = a.size
     d = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
-    # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place: the same operations in the same order
-    np.multiply(d, 2.0, out=d)
-    np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
-    np.divide(d, n, out=d)
+    # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place
+    if n & (n - 1) == 0:
+        # n a power of two: scaling by -2/n and by 1/n is exact, and rounding commutes with it, so
+        # (-2/n) C + (|a|^2 + |b|^2)/n is the same float as (|a|^2 + |b|^2 - 2 C) / n in two passes
+        np.multiply(d, -2.0 / n, out=d)
+        np.add(d, ((a @ a + tab.sig_sq[level]) / n)[:, None], out=d)
+    else:
+        np.multiply(d, 2.0, out=d)
+        np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
+        np.divide(d, n, out=d)
     u = d.shape[0]
     k0 = np.argmin(d, axis=1)
     # the three windows of every shape at once: (u, 3, window), as flat indices into d
@@ -468,8 +474,12 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
         np.bitwise_and(win, n - 1, out=win)          # modulo a power of two (also for negative offsets)
     else:
         np.remainder(win, n, out=win)
-    vals = d.ravel()[win + (np.arange(u) * n)[:, None, None]]
-    best = np.take_along_axis(win, np.argmin(vals, axis=2)[:, :, None], axis=2)[:, :, 0]
+    # window values laid out (window offset, shape, turn): the first minimum over the window is
+    # found by whole-row passes instead of one short argmin per (shape, turn) (same index)
+    vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
+    nw = vals.shape[0]
+    first = nw - np.max((vals == vals.min(axis=0)) * np.arange(nw, 0, -1, dtype=np.uint8)[:, None, None], axis=0)
+    best = np.take_along_axis(win, first[:, :, None].astype(np.intp), axis=2)[:, :, 0]
     shifts = np.empty((u, 4), np.int64)
     valid = np.zeros((u, 4), bool)
     shifts[:, 0], valid[:, 0] = k0, True
@@ -1211,11 +1221,11 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
     h[:] = hk
     for j in range(1, fold):
         s = j * n // fold                                              # R_j^T u_i = u_{i - s}
-        np.maximum(h, np.roll(hk, s) + cen @ du[j - 1], out=h)
+        np.maximum(h, np.concatenate((hk[n - s:], hk[:n - s])) + cen @ du[j - 1], out=h)   # np.roll(hk, s)
     # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
     # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
     w_sq, w_next = cross
-    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.roll(h, -1, axis=1)))
+    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]), axis=1)))
 
 
 @functools.lru_cache(maxsize=8)

@@ -33,6 +33,11 @@ def check_n_angles(n_angles: int) -> int:
     return int(n_angles)
 
 
+def _next(a: np.ndarray) -> np.ndarray:
+    """``np.roll(a, -1, axis=0)`` (the next vertex of each), without roll's general-case overhead."""
+    return np.concatenate((a[1:], a[:1]))
+
+
 def polygon_centroid(poly) -> tuple[np.ndarray, float]:
     """Centroid and unsigned area of a simple polygon.
 
@@ -51,7 +56,7 @@ def polygon_centroid(poly) -> tuple[np.ndarray, float]:
     """
     p = check_polygon(poly)
     x, y = p[:, 0], p[:, 1]
-    x1, y1 = np.roll(x, -1), np.roll(y, -1)
+    x1, y1 = _next(x), _next(y)
     cross = x * y1 - x1 * y
     a = 0.5 * cross.sum()
     if abs(a) < 1e-12:
@@ -92,10 +97,10 @@ def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
     p = check_polygon(poly)
     c, area = polygon_centroid(p)
     q = p - c
-    e = np.roll(q, -1, axis=0) - q
+    e = _next(q) - q
     k = len(q)
     a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))        # vertex angle in ray steps
-    da = np.roll(a0, -1) - a0
+    da = _next(a0) - a0
     da = (da + n / 2) % n - n / 2                                    # signed, in [-n/2, n/2)
     lo = np.floor(np.minimum(a0, a0 + da)).astype(np.int64) - 1
     cnt = np.floor(np.maximum(a0, a0 + da)).astype(np.int64) + 2 - lo
