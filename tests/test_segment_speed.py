@@ -15,7 +15,7 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.preprocess import flatten_background as pp
 from grainhabit.plugins.segment import annotations, band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
-from grainhabit.plugins.segment import disk_morphology, mark_shapes
+from grainhabit.plugins.segment import disk_morphology, hull_fill, mark_shapes, segment_grains as seg_grains, touching
 
 from builders import reference_gap_lines
 
@@ -231,3 +231,65 @@ def test_annotation_kind_equals_the_distance_transform_form():
     kinds = [_annotation_kind_reference(p, a) for p, a in shapes]
     assert {"line", "stroke", None} <= set(kinds)
     assert [mark_shapes.annotation_kind(p, a) for p, a in shapes] == kinds
+
+
+def _hull_test_shapes():
+    """Random masks (noise, opened noise, single pixels, lines, empty) and the split parts of a rendered
+    field of 512 px (invented data)."""
+    from skimage.draw import line as draw_line
+
+    rng = np.random.default_rng(11)
+    shapes = [np.zeros((5, 7), bool), np.ones((1, 1), bool), np.ones((3, 1), bool), np.ones((1, 9), bool)]
+    for _ in range(600):
+        h, w = (int(v) for v in rng.integers(1, 48, 2))
+        m = rng.random((h, w)) > rng.random()
+        if rng.random() < 0.5 and min(h, w) > 2:
+            m = ndi.binary_opening(m)
+        shapes.append(m)
+    for _ in range(40):
+        m = np.zeros((40, 50), bool)
+        r0, r1 = (int(v) for v in rng.integers(0, 40, 2))
+        c0, c1 = (int(v) for v in rng.integers(0, 50, 2))
+        m[draw_line(r0, c0, r1, c1)] = True
+        shapes.append(m)
+    raw = bu.render_frames(1, 512, grains=24, seed=2)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    lab, _, _ = seg_grains.label_grains(arr, bu.PIXEL_SIZE_NM, seg_levels.frame_levels(arr), method="auto")
+    shapes += [np.pad(lab[box] == k, 1) for k, box in enumerate(ndi.find_objects(lab), start=1)]
+    return shapes
+
+
+def test_convex_hull_mask_equals_scikit_image_convex_hull_image():
+    # reference library: skimage.morphology.convex_hull_image (default options: pixel-edge midpoints,
+    # borders included), pixel for pixel
+    import warnings
+
+    from skimage.morphology import convex_hull_image
+
+    for m in _hull_test_shapes():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # scikit-image warns on an empty mask
+            want = convex_hull_image(m)
+        np.testing.assert_array_equal(hull_fill.convex_hull_mask(m), want)
+
+
+def _concavity_depth_reference(mask):
+    """Deepest concavity with scikit-image's hull and scipy's distance transform of the whole box."""
+    from skimage.morphology import convex_hull_image
+
+    if mask.sum() < 3:
+        return 0.0
+    pocket = convex_hull_image(mask) & ~mask
+    if not pocket.any():
+        return 0.0
+    return float(ndi.distance_transform_edt(~mask)[pocket].max())
+
+
+def test_concavity_depth_equals_the_scikit_image_hull_form():
+    # reference library: skimage.morphology.convex_hull_image and scipy.ndimage.distance_transform_edt;
+    # every shape twice in a row (the second answer comes from the one-shape memory) and once mirrored
+    for m in _hull_test_shapes():
+        want = _concavity_depth_reference(m)
+        assert touching.concavity_depth(m) == want
+        assert touching.concavity_depth(m.copy()) == want
+        assert touching.concavity_depth(m[::-1].copy()) == _concavity_depth_reference(m[::-1])

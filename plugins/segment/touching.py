@@ -15,6 +15,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+
 #: Fractions of the component's largest inscribed radius tried as h.
 H_FRACTIONS = (0.5, 0.35, 0.25, 0.15, 0.1)
 #: h is never below this many pixels (pixel-grid ripples of the distance map).
@@ -47,6 +49,8 @@ ONE_NOTCH_RATIO = 1.0
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
 _EIGHT = np.ones((3, 3), bool)
+#: The last shape given to concavity_depth and its depth (key: shape and packed pixels).
+_LAST_DEPTH: list = [None]
 
 
 def concavity_depth(mask: np.ndarray) -> float:
@@ -63,14 +67,18 @@ def concavity_depth(mask: np.ndarray) -> float:
         ``max over (hull - shape) of the distance to the shape``; about 1
         pixel or less for a digitised convex shape.
     """
-    from skimage.morphology import convex_hull_image
-
     if mask.sum() < 3:
         return 0.0
-    pocket = convex_hull_image(mask) & ~mask
-    if not pocket.any():
-        return 0.0
-    return float(ndi.distance_transform_edt(~mask)[pocket].max())
+    # the same shape is often asked twice in a row (is the component convex? then: any seam?)
+    key = (mask.shape, np.packbits(mask).tobytes())
+    last = _LAST_DEPTH[0]  # one tuple, read at once (tiles may run in threads)
+    if last is not None and last[0] == key:
+        return last[1]
+    # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel)
+    pocket = convex_hull_mask(mask) & ~mask
+    depth = float(ndi.distance_transform_edt(~mask)[pocket].max()) if pocket.any() else 0.0
+    _LAST_DEPTH[0] = (key, depth)
+    return depth
 
 
 def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -> bool:
