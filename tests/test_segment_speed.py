@@ -293,3 +293,16 @@ def test_concavity_depth_equals_the_scikit_image_hull_form():
         assert touching.concavity_depth(m) == want
         assert touching.concavity_depth(m.copy()) == want
         assert touching.concavity_depth(m[::-1].copy()) == _concavity_depth_reference(m[::-1])
+
+
+@pytest.mark.parametrize("radius", [0, 1, 2.5, 4, 5.3, 8])
+def test_survives_disk_erosion_equals_the_erosion(radius):
+    # reference: scipy.ndimage.binary_erosion of the padded mask by the disk (border 0); bars of every
+    # width around the radius, rings, random blobs and rendered grains' parts
+    shapes = _hull_test_shapes()[::3]
+    for w in range(1, 20):
+        shapes.append(np.ones((w, 40), bool))
+        shapes.append(np.ones((40, w), bool))
+    for m in shapes:
+        want = ndi.binary_erosion(np.pad(m, 1), seg_fg.disk_structure(radius), border_value=0).any()
+        assert mark_shapes.survives_disk_erosion(m, radius) == want
