@@ -306,3 +306,83 @@ def test_survives_disk_erosion_equals_the_erosion(radius):
     for m in shapes:
         want = ndi.binary_erosion(np.pad(m, 1), seg_fg.disk_structure(radius), border_value=0).any()
         assert mark_shapes.survives_disk_erosion(m, radius) == want
+
+
+def _label_grains_reference(arr, pixel_size_nm, levels, min_area):
+    """label_grains' bookkeeping over the whole frame: every part written, rows of text found with
+    find_objects on the labels and on the whole components, then scipy-ordered renumbering
+    (tiling.renumber_raster) and the clusters by one np.where; default parameters, threshold auto."""
+    from grainhabit.plugins.segment import tiling
+
+    fg = seg_fg.foreground(arr, pixel_size_nm, levels, "auto")
+    above = arr > levels["noise"]
+    rejected = {"line": 0, "stroke": 0}
+    comp, n = ndi.label(fg, structure=np.ones((3, 3), bool))
+    labels = np.zeros(arr.shape, np.int32)
+    split_flag = [False]
+    nxt = 1
+    for k, sl in enumerate(ndi.find_objects(comp), start=1):
+        r0, r1 = max(sl[0].start - 1, 0), min(sl[0].stop + 1, arr.shape[0])
+        c0, c1 = max(sl[1].start - 1, 0), min(sl[1].stop + 1, arr.shape[1])
+        box = (slice(r0, r1), slice(c0, c1))
+        m = comp[box] == k
+        if m.sum() < min_area:
+            comp[box][m] = 0
+            continue
+        parts = touching.split_component(m, min_area, 0.08, arr[box])
+        was_split = len(parts) > 1
+        parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        parts = [q for q in parts if float(arr[box][q].max()) >= 0.3
+                 or (q.sum() >= seg_grains.FAINT_MIN_AREA_FACTOR * min_area and float(arr[box][q].mean()) > levels["noise"])]
+        kinds = [mark_shapes.annotation_kind(q, above[box]) for q in parts]
+        for kind in kinds:
+            if kind is not None:
+                rejected[kind] += 1
+        parts = [q for q, kind in zip(parts, kinds) if kind is None]
+        for p in parts:
+            labels[box][p] = nxt
+            split_flag.append(was_split)
+            nxt += 1
+    if nxt > 1:
+        gone = mark_shapes.text_rows(labels, above)
+        whole = np.where(labels > 0, comp, 0)
+        gone = np.union1d(gone, np.unique(labels[np.isin(whole, mark_shapes.text_rows(whole, above))])).astype(np.int64)
+        gone = gone[gone > 0]
+        if gone.size:
+            rejected["stroke"] += int(gone.size)
+            keep = np.ones(nxt, bool)
+            keep[gone] = False
+            labels = np.where(keep[labels], labels, 0)
+    labels, old = tiling.renumber_raster(labels)
+    split = np.concatenate([[False], np.asarray(split_flag, bool)[old]])
+    return labels, np.where(labels > 0, comp, 0), split, rejected
+
+
+@pytest.mark.parametrize("kind, index", [("bright", 0), ("dark", 1), ("photo", 2), ("bright", 5), ("text", 3)])
+def test_label_grains_equals_the_whole_frame_bookkeeping(kind, index):
+    # reference: the same steps with find_objects, np.where and renumber_raster over the whole frame
+    # (renumber_raster is checked against skimage.measure.label's order in tests/test_tiling.py);
+    # frames of the hard survey (invented data: touching groups, faint plates, burnt-in scale bars and text)
+    from grainhabit.plugins.synthetic.hard import hard_field
+
+    raw = hard_field("bright" if kind == "text" else kind, index, size=512, n_grains=30).field.image
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    if kind == "text":
+        # two rows of text and glyphs touching each other (bold dots), on the field
+        from grainhabit.plugins.synthetic.annotate import text_mask
+
+        arr = arr.copy()
+        for (r, c), text, dot in (((8, 20), "20 nm 3a", 3), ((470, 240), "abc12", 2)):
+            t = text_mask(text, dot)
+            arr[r:r + t.shape[0], c:c + t.shape[1]][t] = 1.0
+            if dot == 2:
+                arr[r:r + t.shape[0], c:c + t.shape[1]][ndi.binary_dilation(t, iterations=1)] = 1.0
+    levels = seg_levels.frame_levels(arr)
+    min_area = np.pi / 4.0 * 6.0 ** 2
+    labels, clusters, flags = seg_grains.label_grains(arr, bu.PIXEL_SIZE_NM, levels, method="auto", min_ecd_nm=0.0)
+    want_labels, want_clusters, want_split, want_rejected = _label_grains_reference(arr, bu.PIXEL_SIZE_NM, levels, min_area)
+    assert want_labels.max() > 5
+    np.testing.assert_array_equal(labels, want_labels)
+    np.testing.assert_array_equal(clusters, want_clusters)
+    np.testing.assert_array_equal(flags["split"], want_split)
+    assert flags["rejected"] == want_rejected

@@ -142,7 +142,7 @@ def inscribed_radii(first: np.ndarray, second: np.ndarray) -> tuple[float, float
     return float(dist[:h + 2].max()), float(dist[h + 2:].max())
 
 
-def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) -> np.ndarray:
     """Labels that form a line of text: glyph-like objects of one height on one baseline.
 
     Parameters
@@ -151,6 +151,9 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
         Grains 1..n.
     drawn : ndarray of bool, shape (rows, cols)
         Pixels above the noise threshold.
+    boxes : list of (slice, slice) or None, optional
+        ``scipy.ndimage.find_objects(labels)`` when the caller knows it
+        already (saves a pass over the frame).
 
     Returns
     -------
@@ -171,7 +174,8 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
     """
     from skimage.morphology import convex_hull_image
 
-    boxes = ndi.find_objects(labels)
+    if boxes is None:
+        boxes = ndi.find_objects(labels)
     items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
     if len(items) < TEXT_MIN_GLYPHS:
         return np.zeros(0, np.int64)
