@@ -386,3 +386,58 @@ def test_label_grains_equals_the_whole_frame_bookkeeping(kind, index):
     np.testing.assert_array_equal(clusters, want_clusters)
     np.testing.assert_array_equal(flags["split"], want_split)
     assert flags["rejected"] == want_rejected
+
+
+def _convexity_defects_reference(mask, min_depth):
+    """Every hull edge's distance profile handed to scipy.signal.find_peaks, however low."""
+    from scipy.signal import find_peaks
+    from scipy.spatial import ConvexHull, QhullError
+    from skimage.measure import find_contours
+
+    contours = find_contours(np.pad(mask, 1).astype(np.float32), 0.5)
+    pts = max(contours, key=len)[:-1] - 1.0 if contours else np.zeros((0, 2))
+    try:
+        hv = np.sort(ConvexHull(pts).vertices) if len(pts) >= 8 else None
+    except QhullError:
+        hv = None
+    if hv is None:
+        return []
+    out = []
+    for k in range(len(hv)):
+        i, j = hv[k], hv[(k + 1) % len(hv)]
+        idx = np.arange(i, j + 1) if j > i else np.r_[np.arange(i, len(pts)), np.arange(0, j + 1)]
+        if len(idx) < 3:
+            continue
+        a, b = pts[i], pts[j]
+        ab = b - a
+        norm = float(np.hypot(*ab))
+        if norm == 0:
+            continue
+        seg = pts[idx]
+        dist = np.abs(ab[0] * (seg[:, 1] - a[1]) - ab[1] * (seg[:, 0] - a[0])) / norm
+        peaks = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)[0]
+        out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
+    return out
+
+
+def test_convexity_defects_equal_scipy_find_peaks_on_every_hull_edge():
+    # reference library: scipy.signal.find_peaks on the distance profile of every hull edge (the shortcut
+    # skips edges whose profile never reaches the height); rendered grains and their unions (touching pairs)
+    shapes = [m for m in _hull_test_shapes() if m.sum() >= 30 and min(m.shape) >= 5]
+    for a, b in zip(shapes[::2], shapes[1::2]):
+        h, w = max(a.shape[0], b.shape[0]), a.shape[1] + b.shape[1] - 3
+        pair = np.zeros((h, w), bool)
+        pair[:a.shape[0], :a.shape[1]] |= a
+        pair[:b.shape[0], w - b.shape[1]:] |= b
+        shapes.append(pair)
+    found = 0
+    for m in shapes:
+        for depth in (2.0, 3.5):
+            got = touching.convexity_defects(m, depth)
+            want = _convexity_defects_reference(m, depth)
+            assert len(got) == len(want)
+            for (p, d), (q, e) in zip(got, want):
+                np.testing.assert_array_equal(p, q)
+                assert d == e
+            found += len(got)
+    assert found > 20
