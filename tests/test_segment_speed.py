@@ -441,3 +441,32 @@ def test_convexity_defects_equal_scipy_find_peaks_on_every_hull_edge():
                 assert d == e
             found += len(got)
     assert found > 20
+
+
+def test_fill_holes_equals_scipy_with_one_or_many_outer_pieces():
+    # reference library: scipy.ndimage.binary_fill_holes; masks with no hole, with holes and one background
+    # piece touching the edge, with several such pieces (a band across the frame), and a full frame
+    rng = np.random.default_rng(3)
+    cases = []
+    blobs = ndi.gaussian_filter(rng.random((120, 150)), 2.5)
+    for level in (0.52, 0.5, 0.48):
+        m = blobs > level
+        cases.append(m)
+        ring = m.copy()
+        ring[30:50, 30:50] = True
+        ring[35:45, 35:45] = False
+        cases.append(ring)
+        band = ring.copy()
+        band[:, 70:73] = True
+        cases.append(band)
+    ring = np.zeros((30, 40), bool)
+    ring[5:20, 5:25] = True
+    ring[8:12, 8:12] = False
+    cases += [ring, np.ones((4, 4), bool), np.zeros((4, 4), bool), np.pad(np.ones((3, 3), bool), 1)]
+    kinds = set()
+    for m in cases:
+        back, n = ndi.label(~m)
+        outer = np.unique(np.concatenate([back[0], back[-1], back[:, 0], back[:, -1]]))
+        kinds.add((min(int((outer > 0).sum()), 2), n > (outer > 0).sum()))  # (pieces at the edge, any hole)
+        np.testing.assert_array_equal(seg_fg.fill_holes(m), ndi.binary_fill_holes(m))
+    assert {(1, True), (2, True), (1, False), (0, False)} <= kinds
