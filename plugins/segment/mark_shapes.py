@@ -85,34 +85,6 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
     return None
 
 
-def survives_disk_erosion(mask: np.ndarray, radius: float) -> bool:
-    """Whether any pixel of a mask survives an erosion by the disk of ``radius`` (nothing beyond the mask's box).
-
-    Parameters
-    ----------
-    mask : ndarray of bool, shape (h, w)
-    radius : float
-        Disk radius (px), >= 0.
-
-    Returns
-    -------
-    bool
-        ``erode_disk(numpy.pad(mask, 1), radius, 0).any()``.
-
-    Notes
-    -----
-    The disk lies inside the square of half-side ``floor(radius)``: a pixel
-    that survives the erosion by that square (two running minima, cheap)
-    survives the disk's too. Only a mask with no such pixel (a thin object,
-    rare among grains) takes the erosion by the disk itself.
-    """
-    k = int(np.floor(radius))
-    m = np.asarray(mask, bool)
-    if m.size and ndi.minimum_filter(m.view(np.uint8), size=2 * k + 1, mode="constant", cval=0).any():
-        return True
-    return bool(erode_disk(np.pad(m, 1), radius, 0).any())
-
-
 def inscribed_radii(first: np.ndarray, second: np.ndarray) -> tuple[float, float]:
     """Largest inscribed radius (maximum of the Euclidean distance transform) of two masks of one shape.
 
@@ -142,7 +114,35 @@ def inscribed_radii(first: np.ndarray, second: np.ndarray) -> tuple[float, float
     return float(dist[:h + 2].max()), float(dist[h + 2:].max())
 
 
-def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) -> np.ndarray:
+def survives_disk_erosion(mask: np.ndarray, radius: float) -> bool:
+    """Whether any pixel of a mask survives an erosion by the disk of ``radius`` (nothing beyond the mask's box).
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+    radius : float
+        Disk radius (px), >= 0.
+
+    Returns
+    -------
+    bool
+        ``erode_disk(numpy.pad(mask, 1), radius, 0).any()``.
+
+    Notes
+    -----
+    The disk lies inside the square of half-side ``floor(radius)``: a pixel
+    that survives the erosion by that square (two running minima, cheap)
+    survives the disk's too. Only a mask with no such pixel (a thin object,
+    rare among grains) takes the erosion by the disk itself.
+    """
+    k = int(np.floor(radius))
+    m = np.asarray(mask, bool)
+    if m.size and ndi.minimum_filter(m.view(np.uint8), size=2 * k + 1, mode="constant", cval=0).any():
+        return True
+    return bool(erode_disk(np.pad(m, 1), radius, 0).any())
+
+
+def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
     """Labels that form a line of text: glyph-like objects of one height on one baseline.
 
     Parameters
@@ -151,9 +151,6 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
         Grains 1..n.
     drawn : ndarray of bool, shape (rows, cols)
         Pixels above the noise threshold.
-    boxes : list of (slice, slice) or None, optional
-        ``scipy.ndimage.find_objects(labels)`` when the caller knows it
-        already (saves a pass over the frame).
 
     Returns
     -------
@@ -174,8 +171,7 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
     """
     from skimage.morphology import convex_hull_image
 
-    if boxes is None:
-        boxes = ndi.find_objects(labels)
+    boxes = ndi.find_objects(labels)
     items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
     if len(items) < TEXT_MIN_GLYPHS:
         return np.zeros(0, np.int64)

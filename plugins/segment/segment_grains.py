@@ -193,17 +193,14 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     min_area = np.pi / 4.0 * max(min_ecd_nm / pixel_size_nm, min_ecd_px) ** 2
     rejected = {"line": 0, "stroke": 0}
     comp, n = ndi.label(fg, structure=_EIGHT)
-    rows, cols = arr.shape
     labels = np.zeros(arr.shape, np.int32)
-    # the kept parts: box, mask in the box, split flag, row-major index of the first pixel in the frame, component
-    found = []
-    # bounding boxes (find_objects' slices) of the parts, and of each component's kept pixels
-    part_boxes, comp_boxes = [], [None] * n
+    split_flag = [False]
+    nxt = 1
     for k, sl in enumerate(ndi.find_objects(comp), start=1):
         if sl is None:
             continue
-        r0, r1 = max(sl[0].start - 1, 0), min(sl[0].stop + 1, rows)
-        c0, c1 = max(sl[1].start - 1, 0), min(sl[1].stop + 1, cols)
+        r0, r1 = max(sl[0].start - 1, 0), min(sl[0].stop + 1, arr.shape[0])
+        c0, c1 = max(sl[1].start - 1, 0), min(sl[1].stop + 1, arr.shape[1])
         box = (slice(r0, r1), slice(c0, c1))
         m = comp[box] == k
         if m.sum() < max(min_area, 1):
@@ -226,45 +223,25 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
                     rejected[kind] += 1
             parts = [q for q, kind in zip(parts, kinds) if kind is None]
         view = labels[box]
-        kept = np.zeros(m.shape, bool)
         for p in parts:
-            view[p] = len(found) + 1
-            kept |= p
-            first = int(np.argmax(p))  # row-major first pixel of the part in its box
-            found.append((box, p, was_split, (r0 + first // p.shape[1]) * cols + c0 + first % p.shape[1], k))
-            part_boxes.append(_tight_box(p, r0, c0))
-        # the component keeps the pixels of its kept parts only (as the clusters returned)
-        comp[box][m & ~kept] = 0
-        if kept.any():
-            comp_boxes[k - 1] = _tight_box(kept, r0, c0)
-    gone = np.zeros(len(found) + 1, bool)
-    if reject_annotations and found:
-        gone[text_rows(labels, above, part_boxes)] = True
+            view[p] = nxt
+            split_flag.append(was_split)
+            nxt += 1
+    if reject_annotations and nxt > 1:
+        gone = text_rows(labels, above)
         # touching glyphs cut apart look like grains: rows of text are looked for among the whole objects too
-        # (comp now holds the kept pixels of every component)
-        whole_gone = np.zeros(n + 1, bool)
-        whole_gone[text_rows(comp, above, comp_boxes)] = True
-        gone[1:] |= whole_gone[[f[4] for f in found]]
-        rejected["stroke"] += int(gone.sum())
-    # labels 1..n in row-major order of their first pixels, written box by box
-    kept_ids = [i for i in range(len(found)) if not gone[i + 1]]
-    order = sorted(kept_ids, key=lambda i: found[i][3])
-    new_id = np.zeros(len(found), np.int32)
-    new_id[order] = np.arange(1, len(order) + 1, dtype=np.int32)
-    for i, (box, p, _, _, _) in enumerate(found):
-        if new_id[i] != i + 1:
-            labels[box][p] = new_id[i]
-            if new_id[i] == 0:
-                comp[box][p] = 0
-    flags = {"split": np.asarray([False] + [found[i][2] for i in order], bool), "rejected": rejected}
-    return labels, comp, flags
-
-
-def _tight_box(mask: np.ndarray, r0: int, c0: int) -> tuple[slice, slice]:
-    """Bounding box (as ``scipy.ndimage.find_objects`` gives it) of a mask lying at ``(r0, c0)`` in the frame."""
-    rr = np.flatnonzero(mask.any(axis=1))
-    cc = np.flatnonzero(mask.any(axis=0))
-    return slice(r0 + int(rr[0]), r0 + int(rr[-1]) + 1), slice(c0 + int(cc[0]), c0 + int(cc[-1]) + 1)
+        whole = np.where(labels > 0, comp, 0)
+        gone = np.union1d(gone, np.unique(labels[np.isin(whole, text_rows(whole, above))])).astype(np.int64)
+        gone = gone[gone > 0]
+        if gone.size:
+            rejected["stroke"] += int(gone.size)
+            keep = np.ones(nxt, bool)
+            keep[gone] = False
+            labels = np.where(keep[labels], labels, 0)
+    labels, old = tiling.renumber_raster(labels)
+    flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]]), "rejected": rejected}
+    clusters = np.where(labels > 0, comp, 0).astype(np.int32, copy=False)
+    return labels, clusters, flags
 
 
 def edge_cut(labels: np.ndarray) -> np.ndarray:
