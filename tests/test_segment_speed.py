@@ -15,7 +15,7 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.bench import harness as bu
 from grainhabit.plugins.preprocess import flatten_background as pp
 from grainhabit.plugins.segment import annotations, band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
-from grainhabit.plugins.segment import disk_morphology, mark_shapes
+from grainhabit.plugins.segment import disk_morphology, hull_fill, mark_shapes, segment_grains as seg_grains, touching
 
 from builders import reference_gap_lines
 
@@ -233,3 +233,162 @@ def test_annotation_kind_equals_the_distance_transform_form():
     kinds = [_annotation_kind_reference(p, a) for p, a in shapes]
     assert {"line", "stroke", None} <= set(kinds)
     assert [mark_shapes.annotation_kind(p, a) for p, a in shapes] == kinds
+
+
+def _hull_test_shapes():
+    """Random masks (noise, opened noise, single pixels, lines, empty) and the split parts of a rendered
+    field of 512 px (invented data)."""
+    from skimage.draw import line as draw_line
+
+    rng = np.random.default_rng(11)
+    shapes = [np.zeros((5, 7), bool), np.ones((1, 1), bool), np.ones((3, 1), bool), np.ones((1, 9), bool)]
+    for _ in range(600):
+        h, w = (int(v) for v in rng.integers(1, 48, 2))
+        m = rng.random((h, w)) > rng.random()
+        if rng.random() < 0.5 and min(h, w) > 2:
+            m = ndi.binary_opening(m)
+        shapes.append(m)
+    for _ in range(40):
+        m = np.zeros((40, 50), bool)
+        r0, r1 = (int(v) for v in rng.integers(0, 40, 2))
+        c0, c1 = (int(v) for v in rng.integers(0, 50, 2))
+        m[draw_line(r0, c0, r1, c1)] = True
+        shapes.append(m)
+    raw = bu.render_frames(1, 512, grains=24, seed=2)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    lab, _, _ = seg_grains.label_grains(arr, bu.PIXEL_SIZE_NM, seg_levels.frame_levels(arr), method="auto")
+    shapes += [np.pad(lab[box] == k, 1) for k, box in enumerate(ndi.find_objects(lab), start=1)]
+    return shapes
+
+
+def test_convex_hull_mask_equals_scikit_image_convex_hull_image():
+    # reference library: skimage.morphology.convex_hull_image (default options: pixel-edge midpoints,
+    # borders included), pixel for pixel
+    import warnings
+
+    from skimage.morphology import convex_hull_image
+
+    for m in _hull_test_shapes():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # scikit-image warns on an empty mask
+            want = convex_hull_image(m)
+        np.testing.assert_array_equal(hull_fill.convex_hull_mask(m), want)
+
+
+def _concavity_depth_reference(mask):
+    """Deepest concavity with scikit-image's hull and scipy's distance transform of the whole box."""
+    from skimage.morphology import convex_hull_image
+
+    if mask.sum() < 3:
+        return 0.0
+    pocket = convex_hull_image(mask) & ~mask
+    if not pocket.any():
+        return 0.0
+    return float(ndi.distance_transform_edt(~mask)[pocket].max())
+
+
+def test_concavity_depth_equals_the_scikit_image_hull_form():
+    # reference library: skimage.morphology.convex_hull_image and scipy.ndimage.distance_transform_edt;
+    # every shape twice in a row (the second answer comes from the one-shape memory) and once mirrored
+    for m in _hull_test_shapes():
+        want = _concavity_depth_reference(m)
+        assert touching.concavity_depth(m) == want
+        assert touching.concavity_depth(m.copy()) == want
+        assert touching.concavity_depth(m[::-1].copy()) == _concavity_depth_reference(m[::-1])
+
+
+@pytest.mark.parametrize("radius", [0, 1, 2.5, 4, 5.3, 8])
+def test_survives_disk_erosion_equals_the_erosion(radius):
+    # reference: scipy.ndimage.binary_erosion of the padded mask by the disk (border 0); bars of every
+    # width around the radius, rings, random blobs and rendered grains' parts
+    shapes = _hull_test_shapes()[::3]
+    for w in range(1, 20):
+        shapes.append(np.ones((w, 40), bool))
+        shapes.append(np.ones((40, w), bool))
+    for m in shapes:
+        want = ndi.binary_erosion(np.pad(m, 1), seg_fg.disk_structure(radius), border_value=0).any()
+        assert mark_shapes.survives_disk_erosion(m, radius) == want
+
+
+def _convexity_defects_reference(mask, min_depth):
+    """Every hull edge's distance profile handed to scipy.signal.find_peaks, however low."""
+    from scipy.signal import find_peaks
+    from scipy.spatial import ConvexHull, QhullError
+    from skimage.measure import find_contours
+
+    contours = find_contours(np.pad(mask, 1).astype(np.float32), 0.5)
+    pts = max(contours, key=len)[:-1] - 1.0 if contours else np.zeros((0, 2))
+    try:
+        hv = np.sort(ConvexHull(pts).vertices) if len(pts) >= 8 else None
+    except QhullError:
+        hv = None
+    if hv is None:
+        return []
+    out = []
+    for k in range(len(hv)):
+        i, j = hv[k], hv[(k + 1) % len(hv)]
+        idx = np.arange(i, j + 1) if j > i else np.r_[np.arange(i, len(pts)), np.arange(0, j + 1)]
+        if len(idx) < 3:
+            continue
+        a, b = pts[i], pts[j]
+        ab = b - a
+        norm = float(np.hypot(*ab))
+        if norm == 0:
+            continue
+        seg = pts[idx]
+        dist = np.abs(ab[0] * (seg[:, 1] - a[1]) - ab[1] * (seg[:, 0] - a[0])) / norm
+        peaks = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)[0]
+        out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
+    return out
+
+
+def test_convexity_defects_equal_scipy_find_peaks_on_every_hull_edge():
+    # reference library: scipy.signal.find_peaks on the distance profile of every hull edge (the shortcut
+    # skips edges whose profile never reaches the height); rendered grains and their unions (touching pairs)
+    shapes = [m for m in _hull_test_shapes() if m.sum() >= 30 and min(m.shape) >= 5]
+    for a, b in zip(shapes[::2], shapes[1::2]):
+        h, w = max(a.shape[0], b.shape[0]), a.shape[1] + b.shape[1] - 3
+        pair = np.zeros((h, w), bool)
+        pair[:a.shape[0], :a.shape[1]] |= a
+        pair[:b.shape[0], w - b.shape[1]:] |= b
+        shapes.append(pair)
+    found = 0
+    for m in shapes:
+        for depth in (2.0, 3.5):
+            got = touching.convexity_defects(m, depth)
+            want = _convexity_defects_reference(m, depth)
+            assert len(got) == len(want)
+            for (p, d), (q, e) in zip(got, want):
+                np.testing.assert_array_equal(p, q)
+                assert d == e
+            found += len(got)
+    assert found > 20
+
+
+def test_fill_holes_equals_scipy_with_one_or_many_outer_pieces():
+    # reference library: scipy.ndimage.binary_fill_holes; masks with no hole, with holes and one background
+    # piece touching the edge, with several such pieces (a band across the frame), and a full frame
+    rng = np.random.default_rng(3)
+    cases = []
+    blobs = ndi.gaussian_filter(rng.random((120, 150)), 2.5)
+    for level in (0.52, 0.5, 0.48):
+        m = blobs > level
+        cases.append(m)
+        ring = m.copy()
+        ring[30:50, 30:50] = True
+        ring[35:45, 35:45] = False
+        cases.append(ring)
+        band = ring.copy()
+        band[:, 70:73] = True
+        cases.append(band)
+    ring = np.zeros((30, 40), bool)
+    ring[5:20, 5:25] = True
+    ring[8:12, 8:12] = False
+    cases += [ring, np.ones((4, 4), bool), np.zeros((4, 4), bool), np.pad(np.ones((3, 3), bool), 1)]
+    kinds = set()
+    for m in cases:
+        back, n = ndi.label(~m)
+        outer = np.unique(np.concatenate([back[0], back[-1], back[:, 0], back[:, -1]]))
+        kinds.add((min(int((outer > 0).sum()), 2), n > (outer > 0).sum()))  # (pieces at the edge, any hole)
+        np.testing.assert_array_equal(seg_fg.fill_holes(m), ndi.binary_fill_holes(m))
+    assert {(1, True), (2, True), (1, False), (0, False)} <= kinds

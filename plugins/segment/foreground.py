@@ -206,6 +206,11 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     for side in (back[0], back[-1], back[:, 0], back[:, -1]):
         edge[side] = True
     edge[0] = False
+    outer = np.flatnonzero(edge)
+    if outer.size == n:
+        return mask.copy()  # no hole
+    if outer.size == 1:
+        return back != outer[0]  # one background piece touches the edge: a comparison, not a lookup
     return ~edge[back]
 
 

@@ -144,9 +144,12 @@ def nearest_body_lines(bodies: np.ndarray, mask: np.ndarray,
     if free.all():  # no body at all: no nearest body anywhere
         return np.zeros(bodies.shape, bool), None
     ft = ndi.distance_transform_edt(free, return_distances=False, return_indices=True)
+    out = np.zeros(bodies.shape, bool)
+    held = bodies[~free]
+    if held.min() == held.max():
+        return out, ft  # one body: the same nearest body everywhere, no line
     ri, ci = ft
     nearest = bodies[ri, ci]
-    out = np.zeros(bodies.shape, bool)
     down = nearest[1:, :] != nearest[:-1, :]
     right = nearest[:, 1:] != nearest[:, :-1]
     out[1:, :] |= down

@@ -72,7 +72,7 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
     # for a stroke (r_raw <= r, raw lying inside part). An object whose raw pixels survive an erosion by the
     # disk of the larger bound (Euclidean distance transform above it) is none, and no transform is needed.
     bound = max(STROKE_MAX_HALF_WIDTH_PX, min(2 * STROKE_MAX_HALF_WIDTH_PX, float(np.sqrt(area / (4.0 * LINE_ELONGATION)))))
-    if erode_disk(np.pad(raw, 1), bound, 0).any():
+    if survives_disk_erosion(raw, bound):
         return None
     if aligned_bar(part) is not None:
         return "line"
@@ -152,6 +152,34 @@ def inscribed_radii(first: np.ndarray, second: np.ndarray) -> tuple[float, float
     both[h + 3:2 * h + 3, 1:w + 1] = second
     dist = ndi.distance_transform_edt(both)
     return float(dist[:h + 2].max()), float(dist[h + 2:].max())
+
+
+def survives_disk_erosion(mask: np.ndarray, radius: float) -> bool:
+    """Whether any pixel of a mask survives an erosion by the disk of ``radius`` (nothing beyond the mask's box).
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+    radius : float
+        Disk radius (px), >= 0.
+
+    Returns
+    -------
+    bool
+        ``erode_disk(numpy.pad(mask, 1), radius, 0).any()``.
+
+    Notes
+    -----
+    The disk lies inside the square of half-side ``floor(radius)``: a pixel
+    that survives the erosion by that square (two running minima, cheap)
+    survives the disk's too. Only a mask with no such pixel (a thin object,
+    rare among grains) takes the erosion by the disk itself.
+    """
+    k = int(np.floor(radius))
+    m = np.asarray(mask, bool)
+    if m.size and ndi.minimum_filter(m.view(np.uint8), size=2 * k + 1, mode="constant", cval=0).any():
+        return True
+    return bool(erode_disk(np.pad(m, 1), radius, 0).any())
 
 
 def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:

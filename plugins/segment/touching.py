@@ -15,6 +15,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+
 #: Fractions of the component's largest inscribed radius tried as h.
 H_FRACTIONS = (0.5, 0.35, 0.25, 0.15, 0.1)
 #: h is never below this many pixels (pixel-grid ripples of the distance map).
@@ -47,6 +49,8 @@ ONE_NOTCH_RATIO = 1.0
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
 _EIGHT = np.ones((3, 3), bool)
+#: The last shape given to concavity_depth and its depth (key: shape and packed pixels).
+_LAST_DEPTH: list = [None]
 
 
 def concavity_depth(mask: np.ndarray) -> float:
@@ -63,14 +67,35 @@ def concavity_depth(mask: np.ndarray) -> float:
         ``max over (hull - shape) of the distance to the shape``; about 1
         pixel or less for a digitised convex shape.
     """
-    from skimage.morphology import convex_hull_image
-
     if mask.sum() < 3:
         return 0.0
-    pocket = convex_hull_image(mask) & ~mask
+    # the same shape is often asked twice in a row (is the component convex? then: any seam?)
+    key = (mask.shape, np.packbits(mask).tobytes())
+    last = _LAST_DEPTH[0]  # one tuple, read at once (tiles may run in threads)
+    if last is not None and last[0] == key:
+        return last[1]
+    # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel)
+    pocket = convex_hull_mask(mask) & ~mask
+    depth = _pocket_depth(mask, pocket)
+    _LAST_DEPTH[0] = (key, depth)
+    return depth
+
+
+def _pocket_depth(mask: np.ndarray, pocket: np.ndarray) -> float:
+    """``max(distance_transform_edt(~mask)[pocket])`` (0 for an empty pocket).
+
+    A digitised convex shape leaves a pocket one pixel thick along its hull: when every pocket pixel
+    touches the shape (8-neighbours), its distance is 1 (a 4-neighbour in the shape) or sqrt(2) (a
+    diagonal one only), and no distance transform is needed.
+    """
     if not pocket.any():
         return 0.0
-    return float(ndi.distance_transform_edt(~mask)[pocket].max())
+    m = np.pad(mask, 1)
+    cross = m[:-2, 1:-1] | m[2:, 1:-1] | m[1:-1, :-2] | m[1:-1, 2:]
+    diag = m[:-2, :-2] | m[:-2, 2:] | m[2:, :-2] | m[2:, 2:]
+    if (pocket & ~(cross | diag)).any():
+        return float(ndi.distance_transform_edt(~mask)[pocket].max())
+    return float(np.sqrt(2.0)) if (pocket & ~cross).any() else 1.0
 
 
 def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -> bool:
@@ -157,6 +182,8 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
             continue
         seg = pts[idx]
         dist = np.abs(ab[0] * (seg[:, 1] - a[1]) - ab[1] * (seg[:, 0] - a[0])) / norm
+        if dist.max() < min_depth:
+            continue  # no peak reaches the height (most hull edges: the same as find_peaks' empty answer)
         # one hull edge can span several notches: keep every distinct peak
         peaks = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)
         out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
