@@ -8,8 +8,9 @@ glyphs and thick bars (see :func:`grainhabit.plugins.segment.mark_shapes.annotat
 the ink test needs the raw frame, before any smoothing.
 
 An object is a drawn mark when at least :data:`MIN_INK` of its inner pixels
-(the object eroded by one pixel, or by :data:`RIM_PX` where a figure's
-resampling has blurred a bold mark's edge: :func:`core_pixels`) lie within :data:`INK_TOLERANCE` of the
+(the object eroded by one pixel; a cluster the splitter cut is judged whole as
+well, eroded by :data:`RIM_PX`, as a figure's resampling blurs a bold glyph's
+edge: :func:`core_pixels`) lie within :data:`INK_TOLERANCE` of the
 frame's range from its darkest or brightest level, and, so that a real grain
 whose core is clipped to black or white is kept, its shape is not that of a
 filled convex body: either the ink covers less than :data:`SOLID_INK` of the
@@ -76,7 +77,8 @@ def ink_levels(raw: np.ndarray) -> tuple[float, float]:
     return lo + INK_TOLERANCE * span, hi - INK_TOLERANCE * span
 
 
-def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, background: float | None = None) -> bool:
+def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, background: float | None = None,
+             rim: int = 1) -> bool:
     """Whether one object is a drawn mark.
 
     Parameters
@@ -93,6 +95,11 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
         pixels only within ``HOLE_CONTRAST`` of the range from it, so that a
         faceted grain with one facet clipped to white and the others grey is
         not taken for a hollow glyph. Unset: any pixel far from the ink counts.
+    rim : int
+        Rim (px) left out of the ink count besides the one-pixel edge
+        (:func:`core_pixels`): 1 for single objects; :data:`RIM_PX` for a
+        whole cluster the splitter cut (a bold glyph blurred by resampling),
+        where the pieces were judged with 1 already.
 
     Returns
     -------
@@ -102,7 +109,7 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
 
     if high <= low:
         return False
-    inner, core = core_pixels(part)
+    inner, core = core_pixels(part, rim)
     vals = raw[inner]
     dark, bright = ink_shares(raw[core], low, high)
     if core is not inner:  # a hollow glyph's core is mostly its hole: the inner ring counts as well
@@ -130,7 +137,7 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
     return area < GLYPH_SOLIDITY * float(convex_hull_image(part).sum())
 
 
-def drawn_labels(labels: np.ndarray, raw: np.ndarray) -> np.ndarray:
+def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1) -> np.ndarray:
     """Labels of a segmentation that are drawn marks.
 
     Parameters
@@ -167,10 +174,10 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray) -> np.ndarray:
         if bars[k] and is_flat_bar(part, crop, noise):
             out.append(k)
             reach = max(reach, 0.5 * max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start))
-        elif has_ink[k] and is_drawn(part, crop, low, high, background):
+        elif has_ink[k] and is_drawn(part, crop, low, high, background, rim):
             out.append(k)
             reach = max(reach, 0.5 * max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start))
-        elif ink_fraction(part, crop, low, high) >= MIN_INK:
+        elif ink_fraction(part, crop, low, high, rim) >= MIN_INK:
             inked.append(k)
     if out and inked:
         # pieces of a mark (a glyph cut in two, a dot) and the text of a scale bar: in ink and within half
@@ -261,7 +268,7 @@ def is_flat_bar(part: np.ndarray, raw: np.ndarray, noise: float) -> bool:
     return float(np.median(sds)) <= FLAT_NOISE_RATIO * noise
 
 
-def core_pixels(part: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def core_pixels(part: np.ndarray, rim: int = RIM_PX) -> tuple[np.ndarray, np.ndarray]:
     """The pixels of an object inside its rim, and deeper inside, where a drawn mark shows its flat ink.
 
     Parameters
@@ -272,7 +279,7 @@ def core_pixels(part: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     -------
     inner, core : ndarray of bool, shape (h, w)
         ``inner``: ``part`` eroded by one pixel (``part`` itself where fewer
-        than 4 pixels remain). ``core``: ``part`` eroded by :data:`RIM_PX`
+        than 4 pixels remain). ``core``: ``part`` eroded by ``rim``
         pixels where at least 4 remain, else ``inner`` (the same object).
         Figures resampled for print spread a mark's edge over one to two
         pixels of grey; the core of a bold glyph is then in ink where its
@@ -281,7 +288,9 @@ def core_pixels(part: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     inner = ndi.binary_erosion(part)
     if inner.sum() < 4:
         return part, part
-    core = ndi.binary_erosion(inner, iterations=RIM_PX - 1)
+    if rim <= 1:
+        return inner, inner
+    core = ndi.binary_erosion(inner, iterations=int(rim) - 1)
     return inner, (core if core.sum() >= 4 else inner)
 
 
@@ -292,9 +301,9 @@ def ink_shares(vals: np.ndarray, low: float, high: float) -> tuple[float, float]
     return float(np.mean(vals <= low)), float(np.mean(vals >= high))
 
 
-def ink_fraction(part: np.ndarray, raw: np.ndarray, low: float, high: float) -> float:
+def ink_fraction(part: np.ndarray, raw: np.ndarray, low: float, high: float, rim: int = 1) -> float:
     """Largest fraction of an object's inner or core pixels (:func:`core_pixels`) at either ink level."""
-    inner, core = core_pixels(part)
+    inner, core = core_pixels(part, rim)
     return max(*ink_shares(raw[inner], low, high), *ink_shares(raw[core], low, high))
 
 

@@ -212,8 +212,10 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             comp[box][m] = 0
             continue
         if reject_annotations:
-            # a whole drawn mark, judged before the splitter cuts a letter into convex pieces that look like grains
-            kind = annotation_kind(m, above[box])
+            # a whole drawn mark, judged before the splitter cuts a letter into convex pieces that look like grains;
+            # by its filled shape alone (the bright rims of grains touching in a chain are thin strokes above the
+            # threshold, and the splitter may still make grains of them)
+            kind = annotation_kind(m, m)
             if kind is not None:
                 rejected[kind] += 1
                 bar = aligned_bar(m)
@@ -382,7 +384,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         if clusters is not None and np.any(flags["split"]):
             # a glyph the splitter cut into convex pieces is judged whole as well
             cut = np.where(flags["split"][labels], clusters, 0)
-            whole = annotations.drawn_labels(cut, raw)
+            whole = annotations.drawn_labels(cut, raw, rim=annotations.RIM_PX)
             if whole.size:
                 inked = np.union1d(inked, np.unique(labels[np.isin(cut, whole)])).astype(np.int64)
                 inked = inked[inked > 0]
