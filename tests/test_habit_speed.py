@@ -450,3 +450,30 @@ def test_diamond_morphology_equals_scipy_iterations(radius):
             m = ndi.binary_closing(m, iterations=2)
         assert np.array_equal(it.diamond_morphology(m, radius, True), ndi.binary_erosion(m, iterations=radius))
         assert np.array_equal(it.diamond_morphology(m, radius, False), ndi.binary_dilation(m, iterations=radius))
+
+
+def test_interior_fits_of_many_grains_solved_together_equal_one_call_each():
+    # reference: interior_rss_batch, one call per request (the previous way); the systems of grains of
+    # both contrasts, thinned and full samples, and a request cut into chunks, solved in one call per mode
+    from grainhabit.plugins.habit import interior as it
+
+    lib = gr.model_library()
+    tab = lib.tables
+    rng = np.random.default_rng(5)
+    requests = []
+    for j, (contrast, alpha, face, rot) in enumerate([("bright", 1.0, "100", 5.0), ("dark", 2.3, "111", 21.0),
+                                                      ("bright", 3.5, "111", 12.0), ("dark", 1.7, "110", 40.0)]):
+        _, inner = _evidence(alpha, face, rot, contrast, seed=j)
+        for sample in (inner, gr.subsample_interior(inner, 150)):
+            c = int(rng.integers(1, 40))
+            u = rng.integers(0, tab.face.size, c)
+            g_up, z_up, g_dn, z_dn = gr.placed_planes(tab, u, rng.integers(0, 256, c), 256)
+            requests.append((sample, g_up, z_up, g_dn, z_dn, 2.0, 0.5, tab.gap_inv[u]))
+    requests.append((requests[0][0], *requests[0][1:5], 2.0, 0.5, None))
+    for me in (1_000_000, 20_000):          # the second cuts requests into chunks (as the reference does)
+        ref = [gr.interior_rss_batch(*r[:7], max_elements=me, gap_inv=r[7]) for r in requests]
+        got = it.rss_requests(requests, max_elements=me)
+        assert len(got) == len(ref)
+        for a, b in zip(got, ref):
+            assert np.array_equal(a, b)
+    assert it.rss_requests([(requests[0][0], *(x[:0] for x in requests[0][1:5]), 2.0, 0.5, None)])[0].size == 0
