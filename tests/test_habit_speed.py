@@ -477,3 +477,27 @@ def test_interior_fits_of_many_grains_solved_together_equal_one_call_each():
         for a, b in zip(got, ref):
             assert np.array_equal(a, b)
     assert it.rss_requests([(requests[0][0], *(x[:0] for x in requests[0][1:5]), 2.0, 0.5, None)])[0].size == 0
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_frame_fitted_together_equals_grain_by_grain(contrast, monkeypatch):
+    # reference: every grain's fits evaluated on their own (engine.run_steps per grain, the previous
+    # way); classify_frame runs the grains in step and solves each round's placements together.
+    # Every column must be the same, bit for bit (rendered field, touching grains included; invented)
+    from grainhabit.frame import FrameData
+    from grainhabit.plugins.bench import habit as bh
+    from grainhabit.plugins.synthetic import render as sy
+
+    mix = {"cube": 1.0, "cuboctahedron": 1.0, "octahedron": 1.0, "tabular_hexagon": 1.0, "tabular_triangle": 1.0,
+           "rod": 0.5, "irregular": 0.5}
+    field = sy.make_field(8, (320, 320), 10.0, mix, 600.0, contrast=contrast, seed=4, touching_fraction=0.4,
+                          ecd_gsd=1.12, noise=0.02, blur_px=1.0, gradient=0.3)
+    frame = bh.run_chain(FrameData(source="invented", sample="invented", raw=field.image, pixel_size_nm=10.0,
+                                   calibration="synthetic"))
+    assert frame.n_grains >= 4
+    together = cl.classify_frame(frame)
+    monkeypatch.setattr(gr, "run_together", lambda steps: [gr.run_steps(s) for s in steps])
+    alone = cl.classify_frame(frame)
+    for k, v in together.items():
+        a, b = np.asarray(v), np.asarray(alone[k])
+        assert (np.all(a == b) if a.dtype == object else np.array_equal(a, b, equal_nan=True)), k

@@ -768,7 +768,13 @@ def round_rss(interior: Interior, tem_offset_max: float) -> float:
     thickness dome (transmission) without facets; facet evidence is counted against the
     better of this and a flat interior.
     """
-    return float(interior_rss_batch(interior, *_round_planes(), edge_px=0.0, tem_offset_max=tem_offset_max)[0])
+    req = round_request(interior, tem_offset_max)
+    return float(interior_rss_batch(*req[:7], gap_inv=req[7])[0])
+
+
+def round_request(interior: Interior, tem_offset_max: float) -> tuple:
+    """The :func:`interior_rss_batch` arguments of :func:`round_rss` (a request for :func:`rss_requests`)."""
+    return (interior, *_round_planes(), 0.0, tem_offset_max, None)
 
 
 def flat_rss(interior: Interior) -> float:
