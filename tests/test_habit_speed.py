@@ -496,8 +496,11 @@ def test_frame_fitted_together_equals_grain_by_grain(contrast, monkeypatch):
                                    calibration="synthetic"))
     assert frame.n_grains >= 4
     together = cl.classify_frame(frame)
+    monkeypatch.setattr(cl, "GRAINS_IN_STEP", 3)                # grains in step three at a time
+    in_threes = cl.classify_frame(frame)
     monkeypatch.setattr(gr, "run_together", lambda steps: [gr.run_steps(s) for s in steps])
     alone = cl.classify_frame(frame)
-    for k, v in together.items():
-        a, b = np.asarray(v), np.asarray(alone[k])
-        assert (np.all(a == b) if a.dtype == object else np.array_equal(a, b, equal_nan=True)), k
+    for other in (alone, in_threes):
+        for k, v in together.items():
+            a, b = np.asarray(v), np.asarray(other[k])
+            assert (np.all(a == b) if a.dtype == object else np.array_equal(a, b, equal_nan=True)), k

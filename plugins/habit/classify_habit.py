@@ -170,6 +170,10 @@ STEP = StepInfo(
 )
 
 
+#: Grains whose interior fits :func:`classify_frame` runs in step (their requests solved together,
+#: :func:`engine.run_together`); bounds the grain interiors held at once on large frames.
+GRAINS_IN_STEP = 64
+
 #: Relative area by which the three-fold completion of a split grain must be smaller than the
 #: central-symmetric one to be tried first (:func:`classify_frame`).
 COMPLETION_AREA_MARGIN = 0.05
@@ -682,9 +686,13 @@ def classify_frame(frame, params=None) -> dict:
     split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
     g = frame.grains
     measured = "solidity" in g and "feret_ratio" in g
-    steps = [_grain_steps(frame, i, contours[i], labels, signal, mode, split, measured, p) for i in range(n)]
-    # every grain's interior fits run in step: each round's placements of all grains in one solve
-    for i, res in enumerate(en.run_together(steps)):
+    # the grains' interior fits run in step, GRAINS_IN_STEP at a time: each round's placements of
+    # those grains in one solve (a bound on the interiors held at once)
+    results = []
+    for start in range(0, n, GRAINS_IN_STEP):
+        results += en.run_together([_grain_steps(frame, i, contours[i], labels, signal, mode, split, measured, p)
+                                    for i in range(start, min(start + GRAINS_IN_STEP, n))])
+    for i, res in enumerate(results):
         if res is None:
             cols["habit_note"][i] = "outline too small"
             continue
