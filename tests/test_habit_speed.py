@@ -450,3 +450,57 @@ def test_diamond_morphology_equals_scipy_iterations(radius):
             m = ndi.binary_closing(m, iterations=2)
         assert np.array_equal(it.diamond_morphology(m, radius, True), ndi.binary_erosion(m, iterations=radius))
         assert np.array_equal(it.diamond_morphology(m, radius, False), ndi.binary_dilation(m, iterations=radius))
+
+
+def test_interior_fits_of_many_grains_solved_together_equal_one_call_each():
+    # reference: interior_rss_batch, one call per request (the previous way); the systems of grains of
+    # both contrasts, thinned and full samples, and a request cut into chunks, solved in one call per mode
+    from grainhabit.plugins.habit import interior as it
+
+    lib = gr.model_library()
+    tab = lib.tables
+    rng = np.random.default_rng(5)
+    requests = []
+    for j, (contrast, alpha, face, rot) in enumerate([("bright", 1.0, "100", 5.0), ("dark", 2.3, "111", 21.0),
+                                                      ("bright", 3.5, "111", 12.0), ("dark", 1.7, "110", 40.0)]):
+        _, inner = _evidence(alpha, face, rot, contrast, seed=j)
+        for sample in (inner, gr.subsample_interior(inner, 150)):
+            c = int(rng.integers(1, 40))
+            u = rng.integers(0, tab.face.size, c)
+            g_up, z_up, g_dn, z_dn = gr.placed_planes(tab, u, rng.integers(0, 256, c), 256)
+            requests.append((sample, g_up, z_up, g_dn, z_dn, 2.0, 0.5, tab.gap_inv[u]))
+    requests.append((requests[0][0], *requests[0][1:5], 2.0, 0.5, None))
+    for me in (1_000_000, 20_000):          # the second cuts requests into chunks (as the reference does)
+        ref = [gr.interior_rss_batch(*r[:7], max_elements=me, gap_inv=r[7]) for r in requests]
+        got = it.rss_requests(requests, max_elements=me)
+        assert len(got) == len(ref)
+        for a, b in zip(got, ref):
+            assert np.array_equal(a, b)
+    assert it.rss_requests([(requests[0][0], *(x[:0] for x in requests[0][1:5]), 2.0, 0.5, None)])[0].size == 0
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_frame_fitted_together_equals_grain_by_grain(contrast, monkeypatch):
+    # reference: every grain's fits evaluated on their own (engine.run_steps per grain, the previous
+    # way); classify_frame runs the grains in step and solves each round's placements together.
+    # Every column must be the same, bit for bit (rendered field, touching grains included; invented)
+    from grainhabit.frame import FrameData
+    from grainhabit.plugins.bench import habit as bh
+    from grainhabit.plugins.synthetic import render as sy
+
+    mix = {"cube": 1.0, "cuboctahedron": 1.0, "octahedron": 1.0, "tabular_hexagon": 1.0, "tabular_triangle": 1.0,
+           "rod": 0.5, "irregular": 0.5}
+    field = sy.make_field(8, (320, 320), 10.0, mix, 600.0, contrast=contrast, seed=4, touching_fraction=0.4,
+                          ecd_gsd=1.12, noise=0.02, blur_px=1.0, gradient=0.3)
+    frame = bh.run_chain(FrameData(source="invented", sample="invented", raw=field.image, pixel_size_nm=10.0,
+                                   calibration="synthetic"))
+    assert frame.n_grains >= 4
+    together = cl.classify_frame(frame)
+    monkeypatch.setattr(cl, "GRAINS_IN_STEP", 3)                # grains in step three at a time
+    in_threes = cl.classify_frame(frame)
+    monkeypatch.setattr(gr, "run_together", lambda steps: [gr.run_steps(s) for s in steps])
+    alone = cl.classify_frame(frame)
+    for other in (alone, in_threes):
+        for k, v in together.items():
+            a, b = np.asarray(v), np.asarray(other[k])
+            assert (np.all(a == b) if a.dtype == object else np.array_equal(a, b, equal_nan=True)), k

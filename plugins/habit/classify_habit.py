@@ -170,6 +170,10 @@ STEP = StepInfo(
 )
 
 
+#: Grains whose interior fits :func:`classify_frame` runs in step (their requests solved together,
+#: :func:`engine.run_together`); bounds the grain interiors held at once on large frames.
+GRAINS_IN_STEP = 64
+
 #: Relative area by which the three-fold completion of a split grain must be smaller than the
 #: central-symmetric one to be tried first (:func:`classify_frame`).
 COMPLETION_AREA_MARGIN = 0.05
@@ -360,7 +364,16 @@ def outline_decides(ratios, solidity, feret_ratio, params) -> bool:
 
 
 def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False):
-    """Habit of one grain, with the Wulff fit it rests on.
+    """Habit of one grain, with the Wulff fit it rests on: :func:`classify_grain_steps`, run on its own."""
+    return en.run_steps(classify_grain_steps(contour_lab, interior, params, pixel_scale, hull, split))
+
+
+def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False):
+    """Habit of one grain, with the Wulff fit it rests on (a generator of interior-fit requests).
+
+    The placements of its interior fits are yielded as requests (:func:`engine.fit_alpha_steps`):
+    :func:`classify_grain` evaluates them one by one, :func:`classify_frame` those of all the
+    frame's grains together (:func:`engine.run_together`); the result is the same.
 
     Parameters
     ----------
@@ -388,6 +401,7 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     columns : dict
         The evidence columns of this step for this grain.
     fit : AlphaFit
+        (as the generator's return value)
     """
     p = params
     kw = en.fit_options(p)
@@ -422,14 +436,14 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
         if rounded:
             # facet evidence from the outline-best models first: a rounded grain without
             # facets is irregular whatever the full search would find for its alpha
-            fit = en.fit_alpha(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+            fit = yield from en.fit_alpha_steps(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
             if full and fit.facet_chi2 >= p["facet_chi2_min"]:
-                fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
+                fit = yield from en.fit_alpha_steps(contour_lab, interior, **kw, match=match)
         elif full:
-            fit = en.fit_alpha(contour_lab, interior, **kw, match=match)
+            fit = yield from en.fit_alpha_steps(contour_lab, interior, **kw, match=match)
         elif unresolved:
             # facet evidence from the outline-best models, for the resolution test
-            fit = en.fit_alpha(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+            fit = yield from en.fit_alpha_steps(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
     ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
     best = int(np.argmin(ratios[:3]))
     cols = {
@@ -539,9 +553,12 @@ def free_edge(labels, contour_px, label, reach_px=2):
     return ~near[rr, cc]
 
 
-def _flat(contour_lab, interior, params) -> bool:
-    """Whether a grain's interior is flat: no facets and no relief (:attr:`engine.AlphaFit.relief_chi2`)."""
-    fit = en.fit_alpha(contour_lab, interior, **{**en.fit_options(params), "search": "quick"})
+def _flat_steps(contour_lab, interior, params):
+    """Whether a grain's interior is flat: no facets and no relief (:attr:`engine.AlphaFit.relief_chi2`).
+
+    A generator of interior-fit requests (:func:`engine.fit_alpha_steps`) returning a bool.
+    """
+    fit = yield from en.fit_alpha_steps(contour_lab, interior, **{**en.fit_options(params), "search": "quick"})
     return not (fit.relief_chi2 >= params["facet_chi2_min"])
 
 
@@ -577,6 +594,81 @@ def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
     return np.where(d_hi < d_lo, fr[hi], fr[lo])
 
 
+def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p):
+    """Habit, score, evidence columns and fit of grain row ``i`` (None if its outline is too small).
+
+    A generator of interior-fit requests (:func:`classify_grain_steps`); see :func:`classify_frame`.
+    """
+    g = frame.grains
+    lab = int(frame.grains["label"][i])
+    contour, interior = en.grain_evidence_lazy(labels, signal, mode, outline_px, lab, p["erode_px"])
+    if contour is None or len(contour) < 8:
+        return None
+    hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
+    if hull is not None and not all(np.isfinite(hull)):
+        hull = None
+    habit, score, ev, fit = yield from classify_grain_steps(contour, interior if p["interior"] else None, p,
+                                                            hull=hull, split=bool(split[i]))
+    fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
+    if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])):
+        # cut from a touching neighbour: where its true edges are a smooth curve within the
+        # outline noise (and the interior shows no facets) it is a rounded grain, whatever
+        # its cut outline resembles, with no corners to complete; else, where the cut outline
+        # fits nothing, judge the outline its true edges imply (a symmetric body)
+        free = free_edge(labels, outline_px, lab)
+        n_ang = p["n_angles"]
+        keep = free_samples(contour, free, n_ang)
+        tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
+        smooth_free = en.smooth_residual(en.radial_signature(contour, n_ang), keep=keep) / tau
+        if keep.mean() >= 0.5 and smooth_free <= 1.0:
+            if habit != "irregular":
+                habit, score = "irregular", _margin(1.0, smooth_free, 0.25)
+            ev["outline_class"] = "smooth"
+            ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
+                                "to 5) within the outline noise")
+            free = None
+        elif habit != "irregular":
+            free = None
+    elif split[i] and habit in TABULAR_HABITS:
+        # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
+        # from the outline its true edges imply (three-fold symmetry)
+        free = None
+        q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
+        contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+        if contour2 is not None and len(contour2) >= 8:
+            res = yield from classify_grain_steps(contour2, None, p)
+            if res[0] in TABULAR_HABITS:
+                habit, score, ev, fit = res
+                ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
+    else:
+        free = None
+    if free is not None:
+        # the clearly smaller of the two completions first: a cut square completed three-fold, or
+        # a cut triangle completed by central symmetry, grows far beyond its true edges; a cut
+        # regular hexagon (an octahedron on {111}) gives both alike, and central symmetry goes first
+        done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
+        if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
+            done = done[::-1]
+        for q, fold in done:
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+            if contour2 is None or len(contour2) < 8:
+                continue
+            res = yield from classify_grain_steps(contour2, interior2 if p["interior"] else None, p)
+            # the completed model must explain the outline about as well as a smooth curve
+            # explains the true edges (a lumpy grain completed by symmetry looks polyhedral);
+            # a three-fold completion stands for a flat plate only
+            if res[0] == "irregular" or \
+                    res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
+                continue
+            if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
+                                  and (yield from _flat_steps(contour2, interior2, p))):
+                continue
+            habit, score, ev, fit = res
+            ev["habit_note"] = f"split grain: outline completed by its {fold}-fold symmetry"
+            break
+    return habit, score, ev, fit
+
+
 def classify_frame(frame, params=None) -> dict:
     """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
@@ -594,75 +686,17 @@ def classify_frame(frame, params=None) -> dict:
     split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
     g = frame.grains
     measured = "solidity" in g and "feret_ratio" in g
-    for i in range(n):
-        lab = int(frame.grains["label"][i])
-        outline_px = contours[i]
-        contour, interior = en.grain_evidence_lazy(labels, signal, mode, outline_px, lab, p["erode_px"])
-        if contour is None or len(contour) < 8:
+    # the grains' interior fits run in step, GRAINS_IN_STEP at a time: each round's placements of
+    # those grains in one solve (a bound on the interiors held at once)
+    results = []
+    for start in range(0, n, GRAINS_IN_STEP):
+        results += en.run_together([_grain_steps(frame, i, contours[i], labels, signal, mode, split, measured, p)
+                                    for i in range(start, min(start + GRAINS_IN_STEP, n))])
+    for i, res in enumerate(results):
+        if res is None:
             cols["habit_note"][i] = "outline too small"
             continue
-        hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
-        if hull is not None and not all(np.isfinite(hull)):
-            hull = None
-        habit, score, ev, fit = classify_grain(contour, interior if p["interior"] else None, p, hull=hull,
-                                               split=bool(split[i]))
-        fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
-        if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])):
-            # cut from a touching neighbour: where its true edges are a smooth curve within the
-            # outline noise (and the interior shows no facets) it is a rounded grain, whatever
-            # its cut outline resembles, with no corners to complete; else, where the cut outline
-            # fits nothing, judge the outline its true edges imply (a symmetric body)
-            free = free_edge(labels, outline_px, lab)
-            n_ang = p["n_angles"]
-            keep = free_samples(contour, free, n_ang)
-            tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
-            smooth_free = en.smooth_residual(en.radial_signature(contour, n_ang), keep=keep) / tau
-            if keep.mean() >= 0.5 and smooth_free <= 1.0:
-                if habit != "irregular":
-                    habit, score = "irregular", _margin(1.0, smooth_free, 0.25)
-                ev["outline_class"] = "smooth"
-                ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
-                                    "to 5) within the outline noise")
-                free = None
-            elif habit != "irregular":
-                free = None
-        elif split[i] and habit in TABULAR_HABITS:
-            # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
-            # from the outline its true edges imply (three-fold symmetry)
-            free = None
-            q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
-            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
-            if contour2 is not None and len(contour2) >= 8:
-                res = classify_grain(contour2, None, p)
-                if res[0] in TABULAR_HABITS:
-                    habit, score, ev, fit = res
-                    ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
-        else:
-            free = None
-        if free is not None:
-            # the clearly smaller of the two completions first: a cut square completed three-fold, or
-            # a cut triangle completed by central symmetry, grows far beyond its true edges; a cut
-            # regular hexagon (an octahedron on {111}) gives both alike, and central symmetry goes first
-            done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
-            if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
-                done = done[::-1]
-            for q, fold in done:
-                contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
-                if contour2 is None or len(contour2) < 8:
-                    continue
-                res = classify_grain(contour2, interior2 if p["interior"] else None, p)
-                # the completed model must explain the outline about as well as a smooth curve
-                # explains the true edges (a lumpy grain completed by symmetry looks polyhedral);
-                # a three-fold completion stands for a flat plate only
-                if res[0] == "irregular" or \
-                        res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
-                    continue
-                if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
-                                      and _flat(contour2, interior2, p)):
-                    continue
-                habit, score, ev, fit = res
-                ev["habit_note"] = f"split grain: outline completed by its {fold}-fold symmetry"
-                break
+        habit, score, ev, fit = res
         cols["habit"][i], cols["habit_score"][i] = habit, score
         for k, v in ev.items():
             cols[k][i] = v

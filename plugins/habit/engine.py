@@ -81,7 +81,8 @@ from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
                                                grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
-                                               plane_gap_inverse, round_rss, subsample_interior)
+                                               plane_gap_inverse, round_request, round_rss, rss_requests,
+                                               subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
                                                 radial_signature, rounded_outline, shift_distances,
                                                 smooth_residual)
@@ -89,7 +90,7 @@ from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
-           "symmetric_hull_areas", "fit_alpha", "fit_options", "grain_evidence", "grain_evidence_lazy",
+           "symmetric_hull_areas", "fit_alpha", "fit_alpha_steps", "run_steps", "run_together", "fit_options", "grain_evidence", "grain_evidence_lazy",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
@@ -638,7 +639,71 @@ def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
     return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area), level)
 
 
-def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: float = 1.0,
+def fit_alpha(contour_xy, interior: Interior | None = None, **options) -> AlphaFit:
+    """Fit alpha (and the resting face) of one grain: :func:`fit_alpha_steps`, its interior fits evaluated one by one.
+
+    Parameters
+    ----------
+    contour_xy, interior, **options
+        As in :func:`fit_alpha_steps`.
+
+    Returns
+    -------
+    AlphaFit
+    """
+    return run_steps(fit_alpha_steps(contour_xy, interior, **options))
+
+
+def run_steps(steps):
+    """Run a generator of interior-fit requests (:func:`fit_alpha_steps`), each request as it comes.
+
+    Every request is the argument tuple ``(interior, g_up, z_up, g_dn, z_dn, edge_px,
+    tem_offset_max, gap_inv)`` of :func:`interior_rss_batch`; the generator is sent that call's
+    result and finally returns its own.
+    """
+    try:
+        req = next(steps)
+        while True:
+            req = steps.send(interior_rss_batch(*req[:7], gap_inv=req[7]))
+    except StopIteration as stop:
+        return stop.value
+
+
+def run_together(steps_list) -> list:
+    """Run many generators of interior-fit requests in step: each round's requests in one solve.
+
+    Parameters
+    ----------
+    steps_list : sequence of generator
+        As for :func:`run_steps` (e.g. one per grain of a frame).
+
+    Returns
+    -------
+    list
+        What each generator returns: the same as :func:`run_steps` of each on its own, since
+        :func:`interior.rss_requests` gives every request the bits of its own
+        :func:`interior_rss_batch` call; only the per-call cost of the small solves is shared.
+    """
+    out = [None] * len(steps_list)
+    live = {}
+    for i, g in enumerate(steps_list):
+        try:
+            live[i] = next(g)
+        except StopIteration as stop:
+            out[i] = stop.value
+    while live:
+        keys = list(live)
+        got = rss_requests([live[k] for k in keys])
+        for k, r in zip(keys, got):
+            try:
+                live[k] = steps_list[k].send(r)
+            except StopIteration as stop:
+                out[k] = stop.value
+                del live[k]
+    return out
+
+
+def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale: float = 1.0,
               library: ModelLibrary | None = None, tolerance: float = 4.0,
               outline_noise_px: float = 0.25, outline_noise_floor: float = 0.003,
               corner_radius_px: float = 1.0,
@@ -646,8 +711,12 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
               facet_edge_px: float = 2.0, tem_offset_max: float = 0.5,
               faces=VIEWS, search: str = "coarse", interior_samples: int = 600,
               search_samples: int = 150, coarse_every: int = 4, search_margin: float = 25.0,
-              match: OutlineMatch | None = None) -> AlphaFit:
-    """Fit alpha (and the resting face) of one grain.
+              match: OutlineMatch | None = None):
+    """Fit alpha (and the resting face) of one grain, as a generator of its interior-fit requests.
+
+    Every placement of models over the interior is yielded as a request (the arguments of
+    :func:`interior_rss_batch`) and the RSS is sent back: :func:`fit_alpha` evaluates them one by
+    one, :func:`run_together` the requests of many grains at once.
 
     Parameters
     ----------
@@ -695,6 +764,7 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     Returns
     -------
     AlphaFit
+        As the generator's return value.
 
     Notes
     -----
@@ -761,18 +831,18 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
             order = np.argsort(np.where(gated, osc, np.inf), axis=None, kind="stable")[:_QUICK_MODELS]
             pick = np.zeros(osc.shape, bool)
             pick.flat[order] = True
-            res = _place_all(tab, shifts, osc, pick & gated, full, geo, w_eff)
+            res = yield from _place_all(tab, shifts, osc, pick & gated, full, geo, w_eff)
             if res is not None:
                 rmin, s2 = res[2], res[3]
                 evidence = True
             res, use_int = None, False
         elif search == "coarse":
-            res = _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance,
-                                 interior_weight, search_samples, coarse_every, search_margin)
+            res = yield from _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance,
+                                            interior_weight, search_samples, coarse_every, search_margin)
             if res is None:
-                res = _place_all(tab, shifts, osc, gated, full, geo, w_eff)
+                res = yield from _place_all(tab, shifts, osc, gated, full, geo, w_eff)
         else:
-            res = _place_all(tab, shifts, osc, gated, full, geo, w_eff)
+            res = yield from _place_all(tab, shifts, osc, gated, full, geo, w_eff)
         if use_int and res is None:
             use_int = False
         elif use_int:
@@ -818,7 +888,8 @@ def fit_alpha(contour_xy, interior: Interior | None = None, *, pixel_scale: floa
     if interior is not None and interior.value.size >= 30:
         level = float(np.mean(interior.value))
         if evidence:
-            flat, rnd = flat_rss(full), round_rss(full, tem_offset_max)
+            # the round body's RSS (:func:`round_rss`) as one more request
+            flat, rnd = flat_rss(full), float((yield round_request(full, tem_offset_max))[0])
             fchi = max(w_eff * (min(flat, rnd) - rmin) / s2, 0.0)
             relief = max(w_eff * (flat - min(rnd, rmin)) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
@@ -829,16 +900,16 @@ _QUICK_MODELS = 8
 #: Outline score (chi-square units) above the best beyond which a model's interior is never placed.
 _INTERIOR_GATE = 25.0
 def _rss_of(tab, shifts, pairs, interior, geo):
-    """Interior RSS of the (shape, slot) ``pairs`` (k, 2) placed over ``interior``.
+    """Interior RSS of the (shape, slot) ``pairs`` (k, 2) placed over ``interior`` (a generator).
 
-    ``geo`` is (signature length, facet edge px, TEM offset bound).
+    ``geo`` is (signature length, facet edge px, TEM offset bound). Yields the request (the
+    arguments of :func:`interior_rss_batch`) and returns the RSS it is sent (:func:`run_steps`).
     """
     if len(pairs) == 0:
         return np.zeros(0)
     n, edge_px, tem = geo
     u, j = pairs[:, 0], pairs[:, 1]
-    return interior_rss_batch(interior, *placed_planes(tab, u, shifts[u, j], n), edge_px=edge_px,
-                              tem_offset_max=tem, gap_inv=tab.gap_inv[u])
+    return (yield (interior, *placed_planes(tab, u, shifts[u, j], n), edge_px, tem, tab.gap_inv[u]))
 
 
 #: Least interior noise, relative to the interior's level (mean magnitude plus spread): an
@@ -864,7 +935,7 @@ def _place_all(tab, shifts, osc, gated, interior, geo, w):
     """Exhaustive interior fit: every gated candidate over ``interior``."""
     pairs = np.argwhere(gated)
     rss = np.full(osc.shape, np.inf)
-    rss[gated] = _rss_of(tab, shifts, pairs, interior, geo) if len(pairs) else []
+    rss[gated] = (yield from _rss_of(tab, shifts, pairs, interior, geo)) if len(pairs) else []
     if not gated.any():
         return None
     r = _totals(osc, rss, gated, interior, w)
@@ -896,7 +967,7 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     sparse = subsample_interior(interior, search_samples)
     m1 = gated & coarse[:, None]
     rss1 = np.full(osc.shape, np.inf)
-    rss1[m1] = _rss_of(tab, shifts, np.argwhere(m1), sparse, geo)
+    rss1[m1] = yield from _rss_of(tab, shifts, np.argwhere(m1), sparse, geo)
     r1 = _totals(osc, rss1, m1, sparse, weight * sparse.weight)
     if r1 is None:
         return None
@@ -947,7 +1018,7 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     for _ in range(len(brackets) + 1):
         new = want & ~done
         if new.any():
-            rss2[new] = _rss_of(tab, shifts, np.argwhere(new), full, geo)
+            rss2[new] = yield from _rss_of(tab, shifts, np.argwhere(new), full, geo)
             done |= new
         res = _totals(osc, rss2, done, full, weight * full.weight)
         if res is None:

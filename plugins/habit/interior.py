@@ -20,6 +20,7 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass
+from typing import NamedTuple
 from functools import cached_property
 
 import numpy as np
@@ -351,8 +352,8 @@ def _solve_sets(nm, rhs, vv, sets):
         A^T v.
     vv : ndarray, shape (c,)
         v . v.
-    sets : (ndarray (S, k, k), ndarray (S, k))
-        :func:`_stack_sets` of the active sets: set s parametrises
+    sets : (ndarray (S, k, k), ndarray (S, k) or (S, c, k))
+        :func:`_stack_sets` of the active sets (offsets shared, or one row per system): set s parametrises
         theta = T_s phi + t0_s (:func:`_active_set`); unknowns held at a value or
         tied to another have a zero column in T_s.
 
@@ -375,13 +376,17 @@ def _solve_sets(nm, rhs, vv, sets):
     if tm.shape[0] == 1 and _is_free(tm, t0):
         return _solve_free(nm, rhs, vv, eye)
     nf = tt[:, None] @ nm[None] @ tm[:, None]                               # (S, c, k, k)
-    r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
+    if t0.ndim == 3:
+        # offsets per system (S, c, k): the same products and sums per system
+        r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,scj->sck", nm, t0))
+    else:
+        r = np.einsum("sak,sck->sca", tt, rhs[None] - np.einsum("ckj,sj->sck", nm, t0))
     tr = np.einsum("scii->sc", nf)
     # nf + ridge + unit diagonal of the unused unknowns, added in place in that order
     nf += eye * (1e-12 * tr + 1e-300)[:, :, None, None]
     nf += dead_eye[:, None]
     phi = np.linalg.solve(nf, r[..., None])[..., 0]                         # (S, c, k)
-    theta = np.einsum("sij,scj->sci", tm, phi) + t0[:, None, :]
+    theta = np.einsum("sij,scj->sci", tm, phi) + (t0 if t0.ndim == 3 else t0[:, None, :])
     rss = vv - 2.0 * np.einsum("sci,ci->sc", theta, rhs) + np.einsum("sci,cij,scj->sc", theta, nm, theta)
     return theta, np.maximum(rss, 0.0)
 
@@ -529,6 +534,148 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
                                None if z_dn is None else z_dn[i:i + step], edge_px, tem_offset_max,
                                max_elements, None if gap_inv is None else gap_inv[i:i + step])
             for i in range(0, c, step)])
+    return solve_normal_equations([normal_equations(interior, g_up, z_up, g_dn, z_dn, edge_px, tem_offset_max,
+                                                    gap_inv)])[0]
+
+
+class NormalEquations(NamedTuple):
+    """Normal equations of c placed models over one grain's interior (:func:`normal_equations`).
+
+    Attributes
+    ----------
+    mode : str
+        'facets' (unknowns a, b, c_x, c_y, p_x, p_y) or 'thickness' (b, a, p_x, p_y).
+    nm : ndarray, shape (c, k, k)
+        A^T A of each model.
+    rhs : ndarray, shape (c, k)
+        A^T v.
+    vv : ndarray, shape (c,)
+        v . v.
+    extra : ndarray, shape (c,)
+        'facets': the factor of each model's RSS (samples near facet edges left out);
+        'thickness': the bound amax of the offset a.
+    """
+
+    mode: str
+    nm: np.ndarray
+    rhs: np.ndarray
+    vv: np.ndarray
+    extra: np.ndarray
+
+
+def rss_requests(requests, max_elements: int = 1_000_000) -> list:
+    """:func:`interior_rss_batch` of several requests (e.g. of many grains), the solves in one call per mode.
+
+    Parameters
+    ----------
+    requests : sequence of tuple
+        Each the arguments ``(interior, g_up, z_up, g_dn, z_dn, edge_px, tem_offset_max, gap_inv)``
+        of :func:`interior_rss_batch`.
+    max_elements : int
+        As in :func:`interior_rss_batch` (per request).
+
+    Returns
+    -------
+    list of ndarray
+        The RSS of each request's models, the same numbers as one :func:`interior_rss_batch`
+        call per request: the normal equations are built per request, and the small
+        least-squares systems of all requests are solved together (each system on its own).
+    """
+    eqs, owner = [], []
+    for r, (interior, g_up, z_up, g_dn, z_dn, edge_px, tem, gap_inv) in enumerate(requests):
+        g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
+        c, m = z_up.shape
+        if c == 0:
+            continue
+        step = max(1, int(max_elements // max(interior.value.size * max(m, 1), 1)))
+        for i in range(0, c, step):
+            eqs.append(normal_equations(interior, g_up[i:i + step], z_up[i:i + step],
+                                        None if g_dn is None else g_dn[i:i + step],
+                                        None if z_dn is None else z_dn[i:i + step], edge_px, tem,
+                                        None if gap_inv is None else gap_inv[i:i + step]))
+            owner.append(r)
+    got = solve_normal_equations(eqs)
+    out = [[] for _ in requests]
+    for r, g in zip(owner, got):
+        out[r].append(g)
+    return [np.concatenate(o) if o else np.zeros(0) for o in out]
+
+
+def solve_normal_equations(eqs) -> list:
+    """RSS of every model of a list of :class:`NormalEquations`, solved under the bounds of their mode.
+
+    Both bounded fits are convex least-squares problems with a few linear inequality
+    constraints, solved exactly by trying every active set: where the unconstrained optimum
+    is feasible it is the optimum, the constrained sets are solved only where it is not
+    (each system is solved on its own, so stacking the systems of many requests gives the
+    same bits as solving them request by request).
+
+    Returns
+    -------
+    list of ndarray
+        One (c,) array per entry of ``eqs``.
+    """
+    out = [None] * len(eqs)
+    for mode, solve in (("facets", _solve_facets), ("thickness", _solve_thickness)):
+        idx = [i for i, e in enumerate(eqs) if e.mode == mode]
+        if not idx:
+            continue
+        if len(idx) == 1:
+            e = eqs[idx[0]]
+            out[idx[0]] = solve(e.nm, e.rhs, e.vv, e.extra)
+            continue
+        parts = [eqs[i] for i in idx]
+        best = solve(*(np.concatenate([getattr(e, f) for e in parts]) for f in ("nm", "rhs", "vv", "extra")))
+        cut = np.cumsum([e.vv.size for e in parts])[:-1]
+        for i, b in zip(idx, np.split(best, cut)):
+            out[i] = b
+    return out
+
+
+def _solve_facets(nm, rhs, vv, scale):
+    """Facet fit RSS: a >= 0 and k_min a <= b <= k_max a (active sets: none; a = b = 0; b = kmin a; b = kmax a)."""
+    eps = 1e-12
+    kmin, kmax = TILT_GAIN_RANGE
+    tm, t0 = _FACET_SETS
+    th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
+    ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
+        & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
+    best = rss[0]
+    if not ok.all():
+        bad = ~ok
+        th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
+        sub = np.minimum(rss[0], np.where(th[1, :, 0] >= -eps, rss[1], np.inf))
+        best[bad] = np.minimum(sub, np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
+    return best * scale
+
+
+def _solve_thickness(nm, rhs, vv, amax):
+    """Thickness fit RSS over (b, a, p_x, p_y): b >= 0, 0 <= a <= amax (amax per model).
+
+    The held values of the constrained sets are 0 or amax, i.e. the sets' offsets times each
+    model's amax (:data:`_THICKNESS_SETS`).
+    """
+    eps = 1e-12
+    tm, t0 = _THICKNESS_SETS
+    th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1] * 0.0))
+    best = rss[0]
+    ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= -eps) & (th[0, :, 1] <= amax + eps)
+    if not ok.all():
+        # the constrained sets only where the unconstrained optimum is not feasible
+        bad = ~ok
+        ab = amax[bad]
+        th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:, None, :] * ab[None, :, None]))
+        ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= ab + eps)
+        best[bad] = np.where(ok, rss, np.inf).min(axis=0)
+    return best
+
+
+def normal_equations(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
+                     tem_offset_max: float = 0.5, gap_inv=None) -> NormalEquations:
+    """The normal equations of :func:`interior_rss_batch` (one chunk of models), not yet solved."""
+    g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
+    c, m = z_up.shape
+    p = interior.value.size
     x, y, v = interior.x, interior.y, interior.value
     # plane heights laid out (plane, model, sample): reductions run over whole
     # rows; the geometry is float32 (heights ~1, edge distances ~1e-2 ECD),
@@ -581,22 +728,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
         nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
         nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
         rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
-        eps = 1e-12
-        kmin, kmax = TILT_GAIN_RANGE
-        # active sets: none; a = b = 0; b = kmin a; b = kmax a. Where the unconstrained optimum
-        # is feasible it is the optimum; the constrained sets are solved only where it is not
-        # (each system is solved on its own, so a subset gives the same bits)
-        tm, t0 = _FACET_SETS
-        th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
-        ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= kmin * th[0, :, 0] - eps) \
-            & (th[0, :, 1] <= kmax * th[0, :, 0] + eps)
-        best = rss[0]
-        if not ok.all():
-            bad = ~ok
-            th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
-            sub = np.minimum(rss[0], np.where(th[1, :, 0] >= -eps, rss[1], np.inf))
-            best[bad] = np.minimum(sub, np.where(th[2, :, 0] >= -eps, rss[2], np.inf))
-        return best * scale
+        return NormalEquations("facets", nm, rhs, vv, scale)
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
     t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)   # (c, p)
@@ -612,21 +744,7 @@ def interior_rss_batch(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edg
     rhs[:, 1:] = np.array([sv_all, x_v, y_v])[None]
     vv = np.full(c, v_v)
     amax = max(tem_offset_max * v_mean, 0.0)
-    eps = 1e-12
-    # unknowns (b, a, p_x, p_y): b >= 0, 0 <= a <= amax; every active set at once; the
-    # unconstrained optimum where it is feasible, else the best feasible constrained one
-    tm, t0 = _THICKNESS_SETS
-    t0 = t0 * amax
-    th, rss = _solve_sets(nm, rhs, vv, (tm[:1], t0[:1]))
-    best = rss[0]
-    ok = (th[0, :, 0] >= -eps) & (th[0, :, 1] >= -eps) & (th[0, :, 1] <= amax + eps)
-    if not ok.all():
-        # the constrained sets only where the unconstrained optimum is not feasible
-        bad = ~ok
-        th, rss = _solve_sets(nm[bad], rhs[bad], vv[bad], (tm[1:], t0[1:]))
-        ok = (th[..., 0] >= -eps) & (th[..., 1] >= -eps) & (th[..., 1] <= amax + eps)
-        best[bad] = np.where(ok, rss, np.inf).min(axis=0)
-    return best
+    return NormalEquations("thickness", nm, rhs, vv, np.full(c, amax))
 
 
 @functools.lru_cache(maxsize=1)
@@ -650,7 +768,13 @@ def round_rss(interior: Interior, tem_offset_max: float) -> float:
     thickness dome (transmission) without facets; facet evidence is counted against the
     better of this and a flat interior.
     """
-    return float(interior_rss_batch(interior, *_round_planes(), edge_px=0.0, tem_offset_max=tem_offset_max)[0])
+    req = round_request(interior, tem_offset_max)
+    return float(interior_rss_batch(*req[:7], gap_inv=req[7])[0])
+
+
+def round_request(interior: Interior, tem_offset_max: float) -> tuple:
+    """The :func:`interior_rss_batch` arguments of :func:`round_rss` (a request for :func:`rss_requests`)."""
+    return (interior, *_round_planes(), 0.0, tem_offset_max, None)
 
 
 def flat_rss(interior: Interior) -> float:
