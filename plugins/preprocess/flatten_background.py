@@ -63,7 +63,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.3",
+    version="1.4",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,

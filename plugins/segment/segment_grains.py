@@ -68,7 +68,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
-from grainhabit.plugins.segment import annotations, tiling
+from grainhabit.plugins.segment import annotations, specks, tiling
 from grainhabit.plugins.segment.foreground import foreground
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.mark_shapes import annotation_kind, text_rows
@@ -79,7 +79,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.3",
+    version="2.4",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -216,6 +216,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # average (a faint thin plate) stays
         parts = [q for q in parts if float(arr[box][q].max()) >= min_peak
                  or (q.sum() >= FAINT_MIN_AREA_FACTOR * min_area and float(arr[box][q].mean()) > levels["noise"])]
+        parts = specks.drop_specks(parts, box, arr, fg)  # small objects no brighter than the texture around
         if reject_annotations:
             kinds = [annotation_kind(q, above[box]) for q in parts]
             for kind in kinds:
