@@ -14,7 +14,9 @@ with the ring the pixels between :data:`RING_GAP_PX` and
 ``max(RING_MIN_PX, RING_FACTOR * ECD)`` px from the object that belong to no
 foreground object (the median absolute deviation, scaled to a normal sd,
 common practice). An object of ECD below :data:`SMALL_ECD_PX` whose contrast
-is below :data:`MIN_CONTRAST` is a speck. The ring's robust sd measures the
+is below :data:`MIN_CONTRAST` is a speck, provided it lies on the background
+(the ring's median below :data:`ON_BACKGROUND` of the object's mean; a bright
+piece found inside a fainter particle is not texture). The ring's robust sd measures the
 local texture and noise together, so the rule follows a dark corner, a rough
 patch and a clean area alike.
 
@@ -40,6 +42,9 @@ RING_FACTOR = 1.5
 RING_MIN_PX = 6.0
 #: Fewest ring pixels for a judgement (a small object packed among others is kept).
 MIN_RING_PIXELS = 24
+#: Only an object on the background is judged: its ring's median below this fraction of the object's
+#: mean (a brighter piece inside a larger, fainter body is part of that body, left to the other rules).
+ON_BACKGROUND = 0.5
 
 
 def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np.ndarray) -> float:
@@ -60,8 +65,8 @@ def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np
     -------
     float
         ``(mean(object) - median(ring)) / (1.4826 MAD(ring))``; infinity
-        when the ring has fewer than :data:`MIN_RING_PIXELS` pixels or no
-        spread.
+        when the ring has fewer than :data:`MIN_RING_PIXELS` pixels, no
+        spread, or a median above :data:`ON_BACKGROUND` of the object's mean.
     """
     area = int(part.sum())
     ecd = np.sqrt(4.0 * area / np.pi)
@@ -79,9 +84,10 @@ def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np
     vals = win[ring].astype(float)
     med = float(np.median(vals))
     sd = 1.4826 * float(np.median(np.abs(vals - med)))
-    if sd <= 0:
+    mean = float(win[obj].mean())
+    if sd <= 0 or med > ON_BACKGROUND * mean:
         return float("inf")
-    return (float(win[obj].mean()) - med) / sd
+    return (mean - med) / sd
 
 
 def is_speck(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np.ndarray) -> bool:
