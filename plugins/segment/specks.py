@@ -14,9 +14,7 @@ with the ring the pixels between :data:`RING_GAP_PX` and
 ``max(RING_MIN_PX, RING_FACTOR * ECD)`` px from the object that belong to no
 foreground object (the median absolute deviation, scaled to a normal sd,
 common practice). An object of ECD below :data:`SMALL_ECD_PX` whose contrast
-is below :data:`MIN_CONTRAST` is a speck, provided it lies on the background
-(the ring's median below :data:`ON_BACKGROUND` of the object's mean; a bright
-piece found inside a fainter particle is not texture). The ring's robust sd measures the
+is below :data:`MIN_CONTRAST` is a speck. The ring's robust sd measures the
 local texture and noise together, so the rule follows a dark corner, a rough
 patch and a clean area alike.
 
@@ -42,9 +40,6 @@ RING_FACTOR = 1.5
 RING_MIN_PX = 6.0
 #: Fewest ring pixels for a judgement (a small object packed among others is kept).
 MIN_RING_PIXELS = 24
-#: Only an object on the background is judged: its ring's median below this fraction of the object's
-#: mean (a brighter piece inside a larger, fainter body is part of that body, left to the other rules).
-ON_BACKGROUND = 0.5
 
 
 def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np.ndarray) -> float:
@@ -65,8 +60,8 @@ def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np
     -------
     float
         ``(mean(object) - median(ring)) / (1.4826 MAD(ring))``; infinity
-        when the ring has fewer than :data:`MIN_RING_PIXELS` pixels, no
-        spread, or a median above :data:`ON_BACKGROUND` of the object's mean.
+        when the ring has fewer than :data:`MIN_RING_PIXELS` pixels or no
+        spread.
     """
     area = int(part.sum())
     ecd = np.sqrt(4.0 * area / np.pi)
@@ -84,10 +79,9 @@ def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np
     vals = win[ring].astype(float)
     med = float(np.median(vals))
     sd = 1.4826 * float(np.median(np.abs(vals - med)))
-    mean = float(win[obj].mean())
-    if sd <= 0 or med > ON_BACKGROUND * mean:
+    if sd <= 0:
         return float("inf")
-    return (mean - med) / sd
+    return (float(win[obj].mean()) - med) / sd
 
 
 def is_speck(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np.ndarray) -> bool:
