@@ -211,12 +211,12 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # closing and hole filling can enclose background between grains: a part
         # mostly below the threshold is such a pocket, not a grain
         parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        parts = specks.drop_specks(parts, box, arr, fg)  # small objects no brighter than the texture around
         # an object must rise to min_peak of the frame's grain level (1): background texture and specks
         # of correlated noise a few sigmas up do not; a large object wholly above the noise threshold on
         # average (a faint thin plate) stays
         parts = [q for q in parts if float(arr[box][q].max()) >= min_peak
                  or (q.sum() >= FAINT_MIN_AREA_FACTOR * min_area and float(arr[box][q].mean()) > levels["noise"])]
-        parts = specks.drop_specks(parts, box, arr, fg)  # small objects no brighter than the texture around
         if reject_annotations:
             kinds = [annotation_kind(q, above[box]) for q in parts]
             for kind in kinds:
