@@ -71,7 +71,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
-from grainhabit.plugins.segment import annotations, tiling
+from grainhabit.plugins.segment import annotations, specks, tiling
 from grainhabit.plugins.segment.foreground import foreground
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
@@ -229,6 +229,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # closing and hole filling can enclose background between grains: a part
         # mostly below the threshold is such a pocket, not a grain
         parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        parts = specks.drop_specks(parts, box, arr, fg)  # small objects no brighter than the texture around
         # an object must rise to min_peak of the frame's grain level (1): background texture and specks
         # of correlated noise a few sigmas up do not; a large object wholly above the noise threshold on
         # average (a faint thin plate) stays
