@@ -240,16 +240,8 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
             # neighbours on the same line, chained left to right
             same = np.flatnonzero((np.abs(edge - edge[a]) <= TEXT_BASELINE_PX) & ~at_frame_edge
                                   & (np.abs(height / height[a] - 1) < 0.35))
-            same = same[np.argsort(left[same])]
-            group = [same[0]]
-            for j in same[1:]:
-                if left[j] - right[group[-1]] < 1.5 * max(height[a], 1):
-                    group.append(j)
-                elif a in group:
-                    break
-                else:
-                    group = [j]
-            if a not in group or len(group) < TEXT_MIN_GLYPHS:
+            group = chain_holding(a, same, left, right, 1.5 * max(height[a], 1))
+            if len(group) < TEXT_MIN_GLYPHS:
                 continue
             if sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group):
                 drop.update(int(ids[i]) for i in group)
@@ -324,22 +316,43 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
                               & (gap <= np.maximum(2.0 * height, reach)) & (height <= 0.5 * length))
         for a in near:
             row = near[np.abs(bottom[near] - bottom[a]) <= TEXT_BASELINE_PX + 1]
-            row = row[np.argsort(left[row])]
-            # the run of neighbours holding a, chained left to right
-            chain = [row[0]]
-            for j in row[1:]:
-                if left[j] - right[chain[-1]] < 1.5 * max(height[a], 1.0):
-                    chain.append(j)
-                elif a in chain:
-                    break
-                else:
-                    chain = [j]
-            if a in chain and len(chain) >= 2:
+            chain = chain_holding(a, row, left, right, 1.5 * max(height[a], 1.0))
+            if len(chain) >= 2:
                 drop.update(int(ids[i]) for i in chain)
-            elif (drawn is not None and len(chain) == 1 and width_of(a) >= height[a] and gap[a] <= height[a]
+            elif (drawn is not None and len(chain) <= 1 and width_of(a) >= height[a] and gap[a] <= height[a]
                   and height[a] <= reach):
                 k, b = items[a]
                 m = (labels[b] == k) & drawn[b]
                 if m.any() and float(m.sum()) < TEXT_SOLIDITY * float(convex_hull_image(m).sum()):
                     drop.add(int(k))
     return np.asarray(sorted(drop), np.int64)
+
+
+def chain_holding(a: int, members: np.ndarray, left: np.ndarray, right: np.ndarray, max_gap: float) -> list:
+    """The run of boxes holding box ``a`` among ``members``, chained left to right with gaps under ``max_gap``.
+
+    Parameters
+    ----------
+    a : int
+        Index of the box the run must hold.
+    members : ndarray of int
+        Indices of the candidate boxes (``a`` among them).
+    left, right : ndarray
+        Left and right (exclusive) column of every box.
+    max_gap : float
+        Largest horizontal gap (px) between neighbours of one run.
+
+    Returns
+    -------
+    list of int
+        The run, left to right; empty if ``a`` is not in ``members``.
+    """
+    members = members[np.argsort(left[members], kind="stable")]
+    run = []
+    for j in members:
+        if run and left[j] - right[run[-1]] >= max_gap:
+            if a in run:
+                break
+            run = []
+        run.append(j)
+    return run if a in run else []
