@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import atexit
 import os
+import shutil
 import tempfile
 
 import pytest
@@ -12,6 +14,7 @@ from builders import draw_frame, write_tiff
 # model tables cached on disk (plugins/habit/disk_cache.py) go to a folder of this test session, shared by
 # the workers and command-line runs it starts, never to the user's own cache
 os.environ["GRAINHABIT_CACHE"] = tempfile.mkdtemp(prefix="grainhabit-test-cache-")
+atexit.register(shutil.rmtree, os.environ["GRAINHABIT_CACHE"], True)
 
 
 @pytest.fixture
