@@ -204,15 +204,13 @@ def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
         :data:`BAR_MAX_WIDTH_PX` wide.
     """
     out = np.zeros(len(boxes) + 1, bool)
-    if not boxes:
-        return out
-    area = np.bincount(labels.ravel(), minlength=len(boxes) + 1)
     for k, sl in enumerate(boxes, start=1):
         if sl is None:
             continue
         h, w = sl[0].stop - sl[0].start, sl[1].stop - sl[1].start
+        # the box's shape first: the area is counted only for the few bar-shaped boxes
         out[k] = (min(h, w) <= BAR_MAX_WIDTH_PX and max(h, w) >= BAR_ASPECT * min(h, w)
-                  and area[k] >= BOX_FILL * h * w)
+                  and int(np.count_nonzero(labels[sl] == k)) >= BOX_FILL * h * w)
     return out
 
 
