@@ -55,6 +55,26 @@ def regular_subsample(image: np.ndarray, n: int) -> np.ndarray:
     return image[::k, ::k]
 
 
+def robust_sd(values: np.ndarray) -> tuple[float, float]:
+    """Median and robust standard deviation ``1.4826 MAD`` of ``values``.
+
+    Parameters
+    ----------
+    values : ndarray
+        At least one value.
+
+    Returns
+    -------
+    median, sd : float
+        The median and 1.4826 times the median absolute deviation from it,
+        the standard deviation for normal values (consistency factor
+        1 / Phi^-1(3/4)).
+    """
+    v = np.asarray(values, float).ravel()
+    med = float(np.median(v))
+    return med, 1.4826 * float(np.median(np.abs(v - med)))
+
+
 def clipped_sigma(r: np.ndarray, centre: float) -> float:
     """Standard deviation of the central core of ``r`` around ``centre`` (iterative 3-sigma clip)."""
     dev = np.abs(r - centre)

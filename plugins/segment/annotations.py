@@ -32,6 +32,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.common.image_stats import robust_sd
+
 #: Fraction of the frame's grey range, from either end, counted as ink.
 INK_TOLERANCE = 0.02
 #: Rim (px) of an object left out of its ink test: resampling blurs a mark's edge over this many pixels.
@@ -229,7 +231,7 @@ def noise_sd(raw: np.ndarray, labels: np.ndarray) -> float:
     d = np.diff(np.asarray(raw, np.float32), axis=1)[free]
     if d.size < 16:
         return 0.0
-    return float(1.4826 * np.median(np.abs(d - np.median(d))) / np.sqrt(2.0))
+    return robust_sd(d)[1] / float(np.sqrt(2.0))
 
 
 def is_flat_bar(part: np.ndarray, raw: np.ndarray, noise: float) -> bool:

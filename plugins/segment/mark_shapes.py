@@ -211,16 +211,10 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
     """
     from skimage.morphology import convex_hull_image
 
-    boxes = ndi.find_objects(labels)
-    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
+    items, ids, top, bottom, left, right = box_table(labels)
     if len(items) < TEXT_MIN_GLYPHS:
         return np.zeros(0, np.int64)
-    top = np.array([b[0].start for _, b in items])
-    bottom = np.array([b[0].stop for _, b in items])
-    left = np.array([b[1].start for _, b in items])
-    right = np.array([b[1].stop for _, b in items])
     height = (bottom - top).astype(float)
-    ids = np.array([k for k, _ in items])
     drop = set()
     solid = {}
 
@@ -291,17 +285,11 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
     """
     from skimage.morphology import convex_hull_image
 
-    boxes = ndi.find_objects(labels)
-    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
+    items, ids, top, bottom, left, right = box_table(labels)
     drop: set[int] = set()
     if not items or not bars:
         return np.zeros(0, np.int64)
-    top = np.array([b[0].start for _, b in items])
-    bottom = np.array([b[0].stop for _, b in items])
-    left = np.array([b[1].start for _, b in items])
-    right = np.array([b[1].stop for _, b in items])
     height = (bottom - top).astype(float)
-    ids = np.array([k for k, _ in items])
 
     def width_of(i):
         return float(right[i] - left[i])
@@ -326,6 +314,23 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
                 if m.any() and float(m.sum()) < TEXT_SOLIDITY * float(convex_hull_image(m).sum()):
                     drop.add(int(k))
     return np.asarray(sorted(drop), np.int64)
+
+
+def box_table(labels: np.ndarray) -> tuple[list, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The labels present and their bounding boxes as columns.
+
+    Returns
+    -------
+    items : list of (int, tuple of slice)
+        ``(label, box)`` of every label present, in label order.
+    ids, top, bottom, left, right : ndarray of int
+        The labels and their boxes' first and past-the-end row and column.
+    """
+    items = [(k + 1, b) for k, b in enumerate(ndi.find_objects(labels)) if b is not None]
+    ids = np.array([k for k, _ in items], np.int64)
+    top, bottom, left, right = (np.array([getattr(b[axis], end) for _, b in items], np.int64)
+                                for axis, end in ((0, "start"), (0, "stop"), (1, "start"), (1, "stop")))
+    return items, ids, top, bottom, left, right
 
 
 def chain_holding(a: int, members: np.ndarray, left: np.ndarray, right: np.ndarray, max_gap: float) -> list:

@@ -218,9 +218,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             kind = annotation_kind(m, m)
             if kind is not None:
                 rejected[kind] += 1
-                bar = aligned_bar(m)
+                bar = _frame_box(aligned_bar(m), box)
                 if bar is not None:
-                    bars.append((r0 + bar[0], r0 + bar[1], c0 + bar[2], c0 + bar[3]))
+                    bars.append(bar)
                 marks[box] |= m
                 comp[box][m] = 0
                 continue
@@ -240,9 +240,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             for q, kind in zip(parts, kinds):
                 if kind is not None:
                     rejected[kind] += 1
-                    bar = aligned_bar(q) if kind == "line" else None
+                    bar = _frame_box(aligned_bar(q), box) if kind == "line" else None
                     if bar is not None:
-                        bars.append((r0 + bar[0], r0 + bar[1], c0 + bar[2], c0 + bar[3]))
+                        bars.append(bar)
                     marks[box] |= q
             parts = [q for q, kind in zip(parts, kinds) if kind is None]
         view = labels[box]

@@ -29,6 +29,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.common.image_stats import robust_sd
+
 #: Objects with an equivalent circle diameter below this (px) are judged; larger ones are never specks.
 SMALL_ECD_PX = 24.0
 #: Least contrast (object mean above the ring's median, in the ring's robust sds) of a small object.
@@ -76,9 +78,7 @@ def local_contrast(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np
     if ring.sum() < MIN_RING_PIXELS:
         return float("inf")
     win = image[r0:r1, c0:c1]
-    vals = win[ring].astype(float)
-    med = float(np.median(vals))
-    sd = 1.4826 * float(np.median(np.abs(vals - med)))
+    med, sd = robust_sd(win[ring])
     if sd <= 0:
         return float("inf")
     return (float(win[obj].mean()) - med) / sd
