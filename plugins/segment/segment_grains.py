@@ -44,7 +44,15 @@
    the raw frame (:mod:`grainhabit.plugins.segment.annotations`); rows of text are looked for
    among the grains, the whole components and the marks already dropped, and the caption
    beside a dropped scale bar goes with it (:func:`~grainhabit.plugins.segment.mark_shapes.bar_captions`).
-4. Labels are numbered 1..n in row-major order of their first pixel, so a
+4. Packed fields (:mod:`grainhabit.plugins.segment.packed`): before all of
+   this, a frame of at most ``tile_px`` per side is tested, on the frame as
+   read, for particles covering most of it with thin gaps between them (a
+   close-packed monolayer, where the usual background tests take the
+   particles' own level for background). Such a frame is divided at the
+   saddles of the distance map of the particles' Otsu class instead, whatever
+   polarity the preprocessing chose; its drawn marks are dropped by ink as
+   below, and a note says so (``packed_fields: false`` turns the test off).
+5. Labels are numbered 1..n in row-major order of their first pixel, so a
    tiled run (see :mod:`grainhabit.plugins.segment.tiling`) numbers them as an untiled one.
 
 References
@@ -74,6 +82,7 @@ from grainhabit.params import Param, StepInfo
 from grainhabit.plugins.segment import annotations, specks, tiling
 from grainhabit.plugins.segment.foreground import foreground
 from grainhabit.plugins.segment.levels import check_image, frame_levels
+from grainhabit.plugins.segment.packed import packed_field
 from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
 from grainhabit.plugins.segment.touching import split_component
 
@@ -82,7 +91,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.4",
+    version="2.5",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -116,6 +125,9 @@ STEP = StepInfo(
         Param("split", bool, True, doc="Split touching grains by watershed."),
         Param("split_depth", float, 0.08, low=0.0, high=1.0,
               doc="Concavity depth, as a fraction of the equal-area radius, above which a component is split."),
+        Param("packed_fields", bool, True,
+              doc="Look for a packed field (particles covering the frame, thin gaps between them) and divide it "
+                  "at the saddles of its distance map (frames of at most tile_px per side; see packed.py)."),
         Param("min_contrast", float, 0.0, low=0.0,
               doc="Below this difference of the Otsu class means (image units) the frame holds no grains "
                   "(0: no such test; a frame without grains is flagged in any case)."),
@@ -325,35 +337,25 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     Raises
     ------
     ValueError
-        If the foreground covers more than 95 % of the frame, or the most
-        common level is nearer the upper Otsu class (grains everywhere).
+        See :func:`check_frame` (grains everywhere, no background).
     """
     p = STEP.resolve(params)
     arr = check_image(image)
     notes = []
     levels = frame_levels(arr, p["noise_k"])
-    t = levels["otsu"]
-    upper, lower = arr > t, arr <= t
-    mean_up = float(arr[upper].mean()) if upper.any() else t
-    mean_low = float(arr[lower].mean()) if lower.any() else t
-    contrast = mean_up - mean_low
-    if contrast < p["min_contrast"]:
-        notes.append(f"segment-grains: qc no-grains: no grains found (contrast {contrast:.3f} between the Otsu "
-                     f"classes is below min_contrast {p['min_contrast']})")
+    field = packed_test(arr, raw, pixel_size_nm, p)
+    if field is not None:
+        notes.append(f"segment-grains: packed field: {int(field.labels.max())} particles divided at the saddles "
+                     f"of the distance map ({'bright' if field.bright else 'dark'} particles covering "
+                     f"{100 * field.cover:.0f} % of the frame, gaps {field.gap_radius_px:.1f} px against "
+                     f"{field.radius_px:.1f} px)")
+        labels = field.labels
+        return drop_drawn_marks(arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool), None,
+                                np.zeros(int(labels.max()) + 1, bool), [], notes)
+    empty = check_frame(arr, levels, p)
+    if empty:
+        notes.append(empty)
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
-    otsu_frac = float(np.mean(upper))
-    if otsu_frac > MAX_FOREGROUND:
-        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
-                         "to separate grains from (check polarity and threshold)")
-    fg_frac = float(np.mean(arr > levels["noise"]))
-    if fg_frac < NOISE_ONLY_FRACTION:
-        notes.append(f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
-                     f"{p['noise_k']:g} background sigmas above the background: noise only)")
-        return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
-    if abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
-        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
-                         "common level is not background; no background to separate grains from "
-                         "(check polarity and threshold)")
     kw = dict(method=p["threshold"], local_block_nm=p["local_block_nm"], local_offset=p["local_offset"],
               min_ecd_nm=p["min_ecd_nm"], close_nm=p["close_nm"], refine_nm=p["refine_nm"],
               gap_level=p["gap_level"], split=p["split"], split_depth=p["split_depth"],
@@ -378,13 +380,112 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     else:
         labels, clusters, flags = func(arr)
         split = flags["split"][1:]
+    return drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, flags.get("split"), dropped, notes)
+
+
+def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
+    """Whether the frame can hold grains at all, from its frame-wide levels.
+
+    Parameters
+    ----------
+    arr : ndarray
+        Preprocessed frame (grains bright).
+    levels : dict
+        :func:`frame_levels` of ``arr``.
+    p : dict
+        Resolved step parameters (``min_contrast``, ``noise_k``).
+
+    Returns
+    -------
+    str
+        A ``qc no-grains`` note when the Otsu classes differ by less than
+        ``min_contrast`` or almost nothing stands above the noise threshold;
+        "" otherwise.
+
+    Raises
+    ------
+    ValueError
+        If Otsu's upper class covers more than :data:`MAX_FOREGROUND` of the
+        frame, or the background's level is nearer that class's mean than
+        the lower class's (grains everywhere, no background to work with).
+    """
+    t = levels["otsu"]
+    upper = arr > t
+    mean_up = float(arr[upper].mean()) if upper.any() else t
+    mean_low = float(arr[~upper].mean()) if not upper.all() else t
+    if mean_up - mean_low < p["min_contrast"]:
+        return (f"segment-grains: qc no-grains: no grains found (contrast {mean_up - mean_low:.3f} between the "
+                f"Otsu classes is below min_contrast {p['min_contrast']})")
+    otsu_frac = float(np.mean(upper))
+    if otsu_frac > MAX_FOREGROUND:
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
+                         "to separate grains from (check polarity and threshold)")
+    fg_frac = float(np.mean(arr > levels["noise"]))
+    if fg_frac < NOISE_ONLY_FRACTION:
+        return (f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
+                f"{p['noise_k']:g} background sigmas above the background: noise only)")
+    if abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
+                         "common level is not background; no background to separate grains from "
+                         "(check polarity and threshold)")
+    return ""
+
+
+def packed_test(arr: np.ndarray, raw: np.ndarray | None, pixel_size_nm: float, p: dict):
+    """The packed field of an untiled frame (:func:`~grainhabit.plugins.segment.packed.packed_field`), or None.
+
+    Tested on the frame as read (``raw``), whose two classes the preprocessing may have
+    taken for grains and background the wrong way round; None without ``raw``, with
+    ``packed_fields`` off, for a frame larger than ``tile_px`` per side, or when the
+    frame is not packed.
+    """
+    if raw is None or not p["packed_fields"] or max(arr.shape) > p["tile_px"]:
+        return None
+    min_ecd = max(p["min_ecd_px"], p["min_ecd_nm"] / pixel_size_nm)
+    field = packed_field(raw, np.pi / 4.0 * min_ecd ** 2)
+    return field if field.packed else None
+
+
+def drop_drawn_marks(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict, labels: np.ndarray,
+                     split: np.ndarray, clusters: np.ndarray | None, split_by_label: np.ndarray | None, dropped: list,
+                     notes: list) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Drop the grains drawn in flat ink on the raw frame, count the marks, flag an empty frame.
+
+    Parameters
+    ----------
+    arr : ndarray
+        Preprocessed frame.
+    raw : ndarray or None
+        The frame as read (no ink test without it).
+    levels : dict
+        :func:`frame_levels` of ``arr``.
+    p : dict
+        Resolved step parameters.
+    labels : ndarray of int
+        Grains 1..n.
+    split : ndarray of bool, shape (n,)
+        Whether each grain was cut from a larger component.
+    clusters : ndarray of int or None
+        The components before cutting (untiled frames), for the ink test of whole cut clusters.
+    split_by_label : ndarray of bool, shape (n + 1,), or None
+        ``split`` indexed by label (0 for the background); None for a tiled frame.
+    dropped : list of dict
+        The ``line`` and ``stroke`` counts of marks dropped by shape.
+    notes : list of str
+        Appended to.
+
+    Returns
+    -------
+    labels, split, notes
+        As :func:`segment_image`.
+    """
     n_line = sum(d["line"] for d in dropped)
     n_stroke = sum(d["stroke"] for d in dropped)
     if raw is not None and p["reject_annotations"] and labels.max() > 0:
         inked = annotations.drawn_labels(labels, raw)
-        if clusters is not None and np.any(flags["split"]):
+        if clusters is not None and split_by_label is not None and np.any(split_by_label):
             # a glyph the splitter cut into convex pieces is judged whole as well
-            cut = np.where(flags["split"][labels], clusters, 0)
+            cut = np.where(split_by_label[labels], clusters, 0)
             whole = annotations.drawn_labels(cut, raw, rim=annotations.RIM_PX)
             if whole.size:
                 inked = np.union1d(inked, np.unique(labels[np.isin(cut, whole)])).astype(np.int64)

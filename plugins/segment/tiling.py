@@ -323,26 +323,7 @@ def grainhabit_tile_levels(step, sample, params):
                          "preview of the frame (flatten-background)")
     arr = np.asarray(sample.preview, np.float32)
     levels = frame_levels(arr, p["noise_k"])
-    t = levels["otsu"]
-    upper, lower = arr > t, arr <= t
-    mean_up = float(arr[upper].mean()) if upper.any() else t
-    mean_low = float(arr[lower].mean()) if lower.any() else t
-    empty = ""
-    if mean_up - mean_low < p["min_contrast"]:
-        empty = (f"segment-grains: qc no-grains: no grains found (contrast {mean_up - mean_low:.3f} between the "
-                 f"Otsu classes is below min_contrast {p['min_contrast']})")
-    otsu_frac = float(np.mean(upper))
-    if not empty and otsu_frac > sg.MAX_FOREGROUND:
-        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
-                         "to separate grains from (check polarity and threshold)")
-    fg_frac = float(np.mean(arr > levels["noise"]))
-    if not empty and fg_frac < sg.NOISE_ONLY_FRACTION:
-        empty = (f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
-                 f"{p['noise_k']:g} background sigmas above the background: noise only)")
-    if not empty and abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
-        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
-                         "common level is not background; no background to separate grains from "
-                         "(check polarity and threshold)")
+    empty = sg.check_frame(arr, levels, p)
     return {"levels": levels, "empty": empty, "notes": [empty] if empty else []}
 
 

@@ -1,0 +1,345 @@
+"""Packed fields: particles that cover most of the frame, with thin gaps between them.
+
+A monolayer of close-packed spheres or cubes leaves no background peak: the
+particles make the frame's main level and the gaps between them, a few
+pixels wide, make a flat shelf below it. The frame-wide background tests of
+the usual path then take the particles' own level for background and find
+nothing, or only their bright rims. Such a field is told by its geometry,
+not its histogram:
+
+1. The frame, smoothed with a Gaussian of 1 px, is cut in two at Otsu's
+   threshold [1]_.
+2. The inscribed radii of each class are measured with the Euclidean
+   distance transform: the 95th percentile of the distance to the other
+   class over the class's pixels. For a disc of radius ``r`` that
+   percentile is ``(1 - sqrt(0.05)) r = 0.776 r`` (handbook geometry: the
+   share of a disc's area farther than ``x`` from its rim is
+   ``((r - x) / r)^2``). The class with the larger radii (the thick class)
+   holds the particles, the other the gaps, whichever is brighter (this
+   also settles the polarity).
+3. Small holes of the thick class (a dark pit inside a particle) are
+   filled. Where its distance map exceeds :data:`H_SHARE` of the inscribed
+   radius lie the particles' cores: touching particles meet at necks
+   narrower than that, so each core is one particle, a round one: its
+   area is close to that of the disc inscribed in it (median ratio at most
+   :data:`MAX_CORE_RATIO`), where the background of a frame of scattered
+   grains leaves winding pockets. This cheap look is made first.
+4. The thick class is divided at the saddles of its distance map
+   (watershed from the distance map's h-maxima [2]_, ``h`` the same share
+   of the inscribed radius), the textbook split of touching round particles.
+5. The field counts as packed only when all of these hold: the thick class
+   covers at least :data:`MIN_COVER` of the frame; the gaps are thin (their
+   radius at most :data:`MAX_GAP_RATIO` of the particles'); the gaps reach
+   over the whole frame (:data:`MIN_GAP_SPREAD` of an 8 x 8 grid of
+   blocks); at least :data:`MIN_PARTS` cores and as many particles lie clear
+   of the frame's edge; and those particles look like a packing: of similar
+   size (coefficient of variation of their areas at most
+   :data:`MAX_AREA_COV`) and compact (median solidity at least
+   :data:`MIN_SOLIDITY`). The pockets of background between crossing rods,
+   or a frame of sparse grains whose background is the thick class, fail
+   the count, size or shape tests.
+
+The size and shape limits are this project's rules, chosen to leave every
+ordinary frame on the usual path; a polydisperse packing (radius COV above
+:data:`MAX_AREA_COV`) is not taken for a packed field.
+
+References
+----------
+.. [1] N. Otsu, "A threshold selection method from gray-level histograms",
+   IEEE Trans. Syst. Man Cybern. 9(1), 62-66, 1979, doi:10.1109/TSMC.1979.4310076
+.. [2] P. Soille, *Morphological Image Analysis*, 2nd ed., Springer, 2003,
+   ch. 6 (regional extrema, h-maxima) and ch. 9 (marker-controlled watershed).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.segment.tiling import renumber_raster
+
+#: Least share of the frame covered by the thick class.
+MIN_COVER = 0.6
+#: Largest ratio of the gaps' inscribed radius to the particles'.
+MAX_GAP_RATIO = 0.5
+#: Least share of the 8 x 8 blocks of the frame in which gaps are found (>= 1 % of the block).
+MIN_GAP_SPREAD = 0.9
+#: Fewest parts of a packed field.
+MIN_PARTS = 10
+#: Largest coefficient of variation of the particles' areas.
+MAX_AREA_COV = 0.4
+#: Largest median ratio of a core's area to its inscribed disc's (a first look, before the watershed).
+MAX_CORE_RATIO = 1.6
+#: Least median solidity (area / convex hull area) of the parts.
+MIN_SOLIDITY = 0.85
+#: The cores are the particles' pixels farther than this share of their inscribed radius from the gaps.
+H_SHARE = 0.3
+#: The 95th percentile of the distance map inside a disc, in units of its radius (1 - sqrt(0.05)).
+P95_OF_RADIUS = 1.0 - np.sqrt(0.05)
+#: Frames at least twice this side (px) are first tested on a copy block-averaged by
+#: ``side // COARSE_SIDE_PX`` (a 2048 px frame at 512 px: its cost is then a few per cent of the frame's).
+COARSE_SIDE_PX = 512
+#: Smoothing of the frame before the Otsu cut, px.
+SMOOTH_PX = 1.0
+_EIGHT = np.ones((3, 3), bool)
+
+
+@dataclass
+class PackedField:
+    """The outcome of :func:`packed_field`.
+
+    Attributes
+    ----------
+    packed : bool
+        Whether every test passed.
+    labels : ndarray of int32
+        The parts (1..n), 0 for the gaps; empty when the test stopped early.
+    bright : bool
+        Whether the particles are the brighter class.
+    cover : float
+        Share of the frame in the thick class.
+    radius_px, gap_radius_px : float
+        Inscribed radii of the particles and of the gaps (the distance map's
+        95th percentile divided by :data:`P95_OF_RADIUS`), px.
+    area_cov : float
+        Coefficient of variation of the areas of the particles clear of the frame's edge.
+    solidity : float
+        Their median solidity.
+    core_ratio : float
+        Median ratio of a core's area to the area of the disc inscribed in it.
+    reason : str
+        The first test that failed, or "" when packed.
+    """
+
+    packed: bool
+    labels: np.ndarray
+    bright: bool = True
+    cover: float = 0.0
+    radius_px: float = 0.0
+    gap_radius_px: float = 0.0
+    area_cov: float = float("nan")
+    core_ratio: float = float("nan")
+    solidity: float = float("nan")
+    reason: str = ""
+
+
+def inscribed_radius(dist: np.ndarray, mask: np.ndarray) -> float:
+    """Typical inscribed radius (px) of the objects of ``mask``.
+
+    Parameters
+    ----------
+    dist : ndarray of float
+        Euclidean distance transform of ``mask``.
+    mask : ndarray of bool
+
+    Returns
+    -------
+    float
+        The 95th percentile of ``dist`` over the mask divided by
+        :data:`P95_OF_RADIUS`: the radius itself for a disc. 0 for an empty mask.
+    """
+    if not mask.any():
+        return 0.0
+    return float(np.percentile(dist[mask], 95)) / P95_OF_RADIUS
+
+
+def gap_spread(gaps: np.ndarray, blocks: int = 8) -> float:
+    """Share of the ``blocks x blocks`` grid cells in which at least 1 % of the pixels are gaps."""
+    rows, cols = gaps.shape
+    r = np.linspace(0, rows, blocks + 1).astype(int)
+    c = np.linspace(0, cols, blocks + 1).astype(int)
+    hit = [gaps[r[i]:r[i + 1], c[j]:c[j + 1]].mean() > 0.01
+           for i in range(blocks) for j in range(blocks) if r[i + 1] > r[i] and c[j + 1] > c[j]]
+    return float(np.mean(hit)) if hit else 0.0
+
+
+def core_area_ratios(dist: np.ndarray, cut: float, min_area: float) -> np.ndarray:
+    """Area of each core over the area of the disc inscribed in it.
+
+    Parameters
+    ----------
+    dist : ndarray of float
+        Distance map of the particles' class.
+    cut : float
+        The cores are the connected regions where ``dist`` exceeds this (px).
+    min_area : float
+        Cores smaller than this (px), and cores touching the frame's edge, are left out.
+
+    Returns
+    -------
+    ndarray
+        ``area / (pi (d_max - cut)^2)`` per core, with ``d_max`` the largest
+        distance in the core: about 1 for the round core of a particle
+        (touching particles meet at necks narrower than the cut, so each core
+        is one particle), several for the winding pockets the background of a
+        frame of scattered grains leaves. A cheap look, made before the watershed.
+    """
+    cores, n = ndi.label(dist > cut, _EIGHT)
+    if n == 0:
+        return np.zeros(0)
+    rows, cols = cores.shape
+    areas = np.bincount(cores.ravel(), minlength=n + 1)
+    keep = [k for k, box in enumerate(ndi.find_objects(cores), start=1)
+            if box is not None and areas[k] >= min_area and box[0].start > 0 and box[1].start > 0
+            and box[0].stop < rows and box[1].stop < cols]
+    if not keep:
+        return np.zeros(0)
+    inner = np.asarray(ndi.maximum(dist, cores, keep), float) - cut
+    return areas[keep] / (np.pi * np.maximum(inner, 0.5) ** 2)
+
+
+def split_by_distance(dist: np.ndarray, mask: np.ndarray, radius_px: float, min_area: float) -> np.ndarray:
+    """Touching round particles divided at the saddles of the distance map.
+
+    Parameters
+    ----------
+    dist : ndarray of float
+        Euclidean distance transform of ``mask``.
+    mask : ndarray of bool
+        The particles' class.
+    radius_px : float
+        Their inscribed radius (px): h-maxima of ``H_SHARE * radius_px``
+        (1 px at least) mark one particle each.
+    min_area : float
+        Parts smaller than this (px) are dropped.
+
+    Returns
+    -------
+    ndarray of int32
+        Parts numbered 1..n in raster order of their first pixel.
+    """
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    markers, n = ndi.label(h_maxima(dist, max(1.0, H_SHARE * radius_px)), _EIGHT)
+    if n == 0:
+        return np.zeros(mask.shape, np.int32)
+    ws = watershed(-dist, markers, mask=mask)
+    areas = np.bincount(ws.ravel(), minlength=n + 1)
+    keep = areas >= min_area
+    keep[0] = False
+    return renumber_raster(np.where(keep[ws], ws, 0))[0]
+
+
+def part_shapes(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Areas (px) and solidities of the parts 1..n of ``labels`` clear of the frame's edge.
+
+    Parts cut by the frame's edge are left out: their areas are fractions of
+    a particle's and would inflate the spread of sizes.
+    """
+    from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+
+    rows, cols = labels.shape
+    areas, solid = [], []
+    for k, box in enumerate(ndi.find_objects(labels), start=1):
+        if box is None or box[0].start == 0 or box[1].start == 0 or box[0].stop == rows or box[1].stop == cols:
+            continue
+        m = labels[box] == k
+        a = int(m.sum())
+        areas.append(a)
+        solid.append(a / max(int(convex_hull_mask(m).sum()), 1))
+    return np.asarray(areas, float), np.asarray(solid, float)
+
+
+def packed_field(image: np.ndarray, min_area: float) -> PackedField:
+    """Test whether a frame is a packed field of particles and, if so, label them.
+
+    A frame of at least twice :data:`COARSE_SIDE_PX` per side is first tested
+    on a copy block-averaged to about that side (an ordinary frame is turned
+    away there, at a small cost); only a frame that passes is tested and
+    divided again at full resolution. Gaps narrower than the block (4 px on
+    a 2048 px frame) are lost on the copy, so packed fields of particles
+    smaller than about 12 blocks across are not recognised on such frames.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        The frame as read (any polarity, any units).
+    min_area : float
+        Smallest particle area, px.
+
+    Returns
+    -------
+    PackedField
+        See the module docstring for the tests; ``labels`` holds the parts
+        whenever the tests got as far as dividing the thick class.
+    """
+    from grainhabit.plugins.preprocess.polarity import block_mean
+
+    f = max(1, int(max(np.shape(image)) // COARSE_SIDE_PX))
+    if f > 1:
+        coarse = _test(block_mean(np.asarray(image, float), f), min_area / f ** 2)
+        if not coarse.packed:
+            coarse.labels = np.zeros(np.shape(image), np.int32)
+            coarse.radius_px *= f
+            coarse.gap_radius_px *= f
+            return coarse
+    return _test(ndi.gaussian_filter(np.asarray(image, float), SMOOTH_PX), min_area)
+
+
+def _test(g: np.ndarray, min_area: float) -> PackedField:
+    """The tests of :func:`packed_field` on a smoothed frame ``g``."""
+    from skimage.filters import threshold_otsu
+
+    empty = np.zeros(g.shape, np.int32)
+    if float(g.min()) == float(g.max()):
+        return PackedField(False, empty, reason="flat frame")
+    upper = g > threshold_otsu(g)
+    d_up, d_low = ndi.distance_transform_edt(upper), ndi.distance_transform_edt(~upper)
+    r_up, r_low = inscribed_radius(d_up, upper), inscribed_radius(d_low, ~upper)
+    bright = bool(r_up >= r_low)
+    grains = upper if bright else ~upper
+    radius, gap_radius = max(r_up, r_low), min(r_up, r_low)
+    out = PackedField(False, empty, bright, float(grains.mean()), radius, gap_radius)
+    if out.cover < MIN_COVER:
+        out.reason = f"particles cover {out.cover:.2f} < {MIN_COVER}"
+        return out
+    if gap_radius > MAX_GAP_RATIO * radius:
+        out.reason = f"gaps not thin ({gap_radius:.1f} px against {radius:.1f} px)"
+        return out
+    if gap_spread(~grains) < MIN_GAP_SPREAD:
+        out.reason = "gaps do not reach over the frame"
+        return out
+    # a speck of the gaps' class inside a particle (a dark core, a pit) is part of the particle
+    small = ndi.binary_fill_holes(grains) & ~grains & ~_large_holes(grains, min_area)
+    solid = grains | small
+    dist = ndi.distance_transform_edt(solid) if small.any() else (d_up if bright else d_low)
+    # one core per particle where the necks are narrow: a cheap count before the watershed
+    ratios = core_area_ratios(dist, max(1.0, H_SHARE * radius), min_area)
+    if ratios.size < MIN_PARTS:
+        out.reason = f"{ratios.size} particle cores clear of the edge < {MIN_PARTS}"
+        return out
+    out.core_ratio = float(np.median(ratios))
+    if out.core_ratio > MAX_CORE_RATIO:
+        out.reason = (f"cores not round (median area over inscribed disc {out.core_ratio:.2f} > "
+                      f"{MAX_CORE_RATIO})")
+        return out
+    labels = split_by_distance(dist, solid, radius, min_area)
+    areas, solidity = part_shapes(labels)
+    if areas.size < MIN_PARTS:
+        out.reason = f"{areas.size} particles clear of the edge < {MIN_PARTS}"
+        return out
+    out.area_cov = float(areas.std() / areas.mean())
+    out.solidity = float(np.median(solidity))
+    if out.area_cov > MAX_AREA_COV:
+        out.reason = f"particle areas vary (COV {out.area_cov:.2f} > {MAX_AREA_COV})"
+    elif out.solidity < MIN_SOLIDITY:
+        out.reason = f"particles not compact (median solidity {out.solidity:.2f} < {MIN_SOLIDITY})"
+    else:
+        out.packed = True
+        out.labels = labels
+    return out
+
+
+def _large_holes(grains: np.ndarray, min_area: float) -> np.ndarray:
+    """Holes of ``grains`` at least ``min_area`` px: gaps enclosed by a ring of particles stay gaps."""
+    holes = ndi.binary_fill_holes(grains) & ~grains
+    lab, n = ndi.label(holes)
+    if n == 0:
+        return np.zeros(grains.shape, bool)
+    areas = np.bincount(lab.ravel(), minlength=n + 1)
+    big = areas >= min_area
+    big[0] = False
+    return big[lab]
