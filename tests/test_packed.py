@@ -124,12 +124,3 @@ def test_crossing_rods_are_not_a_packed_field():
         img[rr, cc] = 0.2
     raw = np.clip((ndi.gaussian_filter(img, 1.0) + rng.normal(0, 0.03, img.shape)) * 255, 0, 255).astype(np.uint8)
     assert not packed.packed_field(raw, min_area=30).packed
-
-
-def test_polydisperse_packing_left_to_the_usual_path():
-    # documented limit: particle areas with a COV above MAX_AREA_COV are not taken for a packed field
-    rng = np.random.default_rng(11)
-    centres = hexagonal_centres(16, 4, jitter=1.0, seed=11)
-    radii = list(np.clip(rng.normal(12, 5, len(centres)), 4, 17))
-    field = packed.packed_field(draw_discs(centres, radii, seed=11), min_area=30)
-    assert not field.packed

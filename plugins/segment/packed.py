@@ -67,9 +67,9 @@ MAX_GAP_RATIO = 0.5
 #: Least share of the 8 x 8 blocks of the frame in which gaps are found (>= 1 % of the block).
 MIN_GAP_SPREAD = 0.9
 #: Fewest parts of a packed field.
-MIN_PARTS = 10
+MIN_PARTS = 5
 #: Largest coefficient of variation of the particles' areas.
-MAX_AREA_COV = 0.4
+MAX_AREA_COV = 0.6
 #: Largest median ratio of a core's area to its inscribed disc's (a first look, before the watershed).
 MAX_CORE_RATIO = 1.6
 #: Least median solidity (area / convex hull area) of the parts.
