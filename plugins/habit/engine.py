@@ -984,16 +984,22 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         right = np.r_[val[1:], np.inf]
         seeds[cq[(val <= left) & (val <= right) & (val <= best1 + margin)]] = True
     seeds[np.unravel_index(np.argmin(np.where(m1, rss1, np.inf)), rss1.shape)[0]] = True
-    # brackets: runs of shapes from one coarse shape to the next
-    brackets, where = [], {}
-    for q in seqs:
+    # brackets: runs of shapes from one coarse shape to the next; a shape lies in one run, or in
+    # two where it is a coarse shape between runs (_brackets_of lists them, in order)
+    brackets, seq_of, pos_in, first_bracket, cposs = [], np.full(u, -1), np.zeros(u, np.intp), [], []
+    for j, q in enumerate(seqs):
         cpos = np.flatnonzero(coarse[q])
         if cpos.size == 1:
             cpos = np.array([0, 0])
-        for a, b in zip(cpos[:-1], cpos[1:]):
-            for s in q[a:b + 1].tolist():
-                where.setdefault(s, []).append(len(brackets))
-            brackets.append(q[a:b + 1])
+        first_bracket.append(len(brackets))
+        cposs.append(cpos)
+        seq_of[q], pos_in[q] = j, np.arange(q.size)
+        brackets += [q[a:b + 1] for a, b in zip(cpos[:-1].tolist(), cpos[1:].tolist())]
+
+    def where(s):
+        j = seq_of[s]
+        return [] if j < 0 else _brackets_of(cposs[j], int(pos_in[s]), first_bracket[j])
+
     want = np.zeros(osc.shape, bool)
     taken = np.zeros(len(brackets), bool)
 
@@ -1008,13 +1014,12 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         want[run] |= np.where(w.any(axis=1)[:, None], w, g)
         taken[k] = True
 
-    for s in np.flatnonzero(seeds):
-        for k in where.get(int(s), []):
+    for s in np.flatnonzero(seeds).tolist():
+        for k in where(s):
             take(k)
     # stage 2: full sample; grow while a shape within tolerance has an unplaced neighbour
     rss2 = np.full(osc.shape, np.inf)
     done = np.zeros(osc.shape, bool)
-    pos_of = {s: (q, i) for q in seqs for i, s in enumerate(q.tolist())}
     for _ in range(len(brackets) + 1):
         new = want & ~done
         if new.any():
@@ -1027,11 +1032,11 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         sb2 = tot2.min(axis=1)
         grew = False
         placed_any = done.any(axis=1)             # take() changes want and taken, not done
-        for s in np.flatnonzero(sb2 <= sb2.min() + tolerance):
-            q, i = pos_of[int(s)]
+        for s in np.flatnonzero(sb2 <= sb2.min() + tolerance).tolist():
+            q, i = seqs[seq_of[s]], int(pos_in[s])
             for k in (i - 1, i + 1):
                 if 0 <= k < len(q) and not placed_any[q[k]]:
-                    for b in where[int(q[k])]:
+                    for b in where(int(q[k])):
                         if not taken[b]:
                             take(b, tot2[s] <= sb2[s] + tolerance)
                             grew = True
@@ -1055,6 +1060,19 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     shape_best = np.where(gshape, est, ruled_out)
     tot = np.where(done, tot2, np.where(np.isfinite(osc) & ~gated, osc + 1e9, np.inf))
     return tot, shape_best, rmin, s2
+
+
+def _brackets_of(cpos, i, first):
+    """Indices (ascending) of the runs ``cpos[t] .. cpos[t + 1]`` of one face's shapes that hold position ``i``.
+
+    ``cpos`` are the positions of the coarse shapes in the face's sequence (increasing, the
+    first 0 and the last the sequence's end; ``[0, 0]`` for a sequence of one shape), ``first``
+    the index of the face's first run among all runs of :func:`_coarse_search`.
+    """
+    t = int(np.searchsorted(cpos, i))
+    if t < cpos.size and cpos[t] == i:                  # a coarse shape: the runs that end and start here
+        return [first + r for r in (t - 1, t) if 0 <= r < max(cpos.size - 1, 1)]
+    return [first + t - 1]
 
 
 # ------------------------------------------------------------------ habit classes
