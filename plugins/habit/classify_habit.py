@@ -279,8 +279,16 @@ def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[
     """
     a = np.asarray(sig, float)
     spec, sq, cut = _families_stacked(a.size, int(level))
-    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
-    d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0)
+    n = a.size
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, n, axis=1)
+    if n & (n - 1) == 0:
+        # (|a|^2 + |b|^2 - 2 C) / n in two passes in place: scaling by a power of two is exact
+        # and commutes with rounding, so these are the same floats (engine.outline_candidates)
+        np.multiply(cc, -2.0 / n, out=cc)
+        np.add(cc, ((a @ a + sq) / n)[:, None], out=cc)
+        d2 = np.maximum(cc.min(axis=1), 0.0)
+    else:
+        d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
     d = np.sqrt(d2)
     out = []
     for lo, hi in zip(cut[:-1], cut[1:]):

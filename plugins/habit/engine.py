@@ -479,16 +479,28 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     # found by whole-row passes instead of one short argmin per (shape, turn) (same index)
     vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
     nw = vals.shape[0]
-    first = nw - np.max((vals == vals.min(axis=0)) * np.arange(nw, 0, -1, dtype=np.uint8)[:, None, None], axis=0)
-    best = np.take_along_axis(win, first[:, :, None].astype(np.intp), axis=2)[:, :, 0]
+    # descending scores (uint8 for windows of up to 255 samples, n_angles <= 8160)
+    score = np.arange(nw, 0, -1, dtype=np.uint8 if nw < 256 else np.uint16)
+    first = nw - np.max((vals == vals.min(axis=0)) * score[:, None, None], axis=0)
+    # the shift at that window position: k0 + turn offset + (position - n // 32), modulo n
+    best = k0[:, None] + tab.turn_off + (first.astype(np.int64) - n // 32)
+    if n & (n - 1) == 0:
+        np.bitwise_and(best, n - 1, out=best)
+    else:
+        np.remainder(best, n, out=best)
     shifts = np.empty((u, 4), np.int64)
-    valid = np.zeros((u, 4), bool)
+    valid = np.empty((u, 4), bool)
     shifts[:, 0], valid[:, 0] = k0, True
     shifts[:, 1:] = best
-    for j in range(3):
-        dup = np.any((shifts[:, :j + 1] == best[:, j, None]) & valid[:, :j + 1], axis=1)
-        valid[:, j + 1] = tab.turn_ok[:, j] & ~dup
-    return shifts, np.sqrt(np.maximum(np.take_along_axis(d, shifts, axis=1), 0.0)), valid
+    # a look-alike slot is valid where the turn exists and its shift repeats no valid slot before it
+    b0, b1, b2 = best[:, 0], best[:, 1], best[:, 2]
+    ok = tab.turn_ok
+    v1 = ok[:, 0] & (b0 != k0)
+    v2 = ok[:, 1] & ~((b1 == k0) | ((b1 == b0) & v1))
+    valid[:, 1], valid[:, 2] = v1, v2
+    valid[:, 3] = ok[:, 2] & ~((b2 == k0) | ((b2 == b0) & v1) | ((b2 == b1) & v2))
+    at = d.ravel()[shifts + (np.arange(u) * n)[:, None]]
+    return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
 
 
 def placed_planes(tab: _Tables, shape, shift, n: int):
