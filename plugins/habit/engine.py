@@ -220,6 +220,32 @@ class ModelLibrary:
     prior: np.ndarray
     tables: "_Tables"
 
+    @functools.cached_property
+    def grid_index(self) -> np.ndarray:
+        """(m,) the grid cell of every model: ``searchsorted(grid, alphas - 1e-9)`` (kept, not pickled)."""
+        return np.searchsorted(self.grid, self.alphas - 1e-9)
+
+    @functools.cached_property
+    def at_grid(self) -> np.ndarray:
+        """(grid size, m) bool: which models have the alpha of each grid point (to 1e-9)."""
+        return np.abs(self.alphas[None, :] - self.grid[:, None]) < 1e-9
+
+    def __getstate__(self):
+        # the cached tables above are rebuilt on use, not stored with the library on disk
+        state = dict(self.__dict__)
+        state.pop("grid_index", None)
+        state.pop("at_grid", None)
+        return state
+
+
+@functools.lru_cache(maxsize=8)
+def _allowed_views(faces: tuple) -> np.ndarray:
+    """(len(VIEWS),) bool: the views among ``faces`` (read-only)."""
+    allowed = np.zeros(len(VIEWS), bool)
+    allowed[np.array([VIEWS.index(f) for f in faces if f in VIEWS], np.intp)] = True
+    allowed.flags.writeable = False
+    return allowed
+
 
 _SYMMETRY = {"100": 90.0, "111": 120.0, "110": 180.0}
 
@@ -816,8 +842,7 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
                               corner_radius_px)
     n = lib.signatures.shape[-1]
     sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
-    allowed = np.zeros(len(VIEWS), bool)                     # the views asked for, by index
-    allowed[np.array([VIEWS.index(f) for f in faces if f in VIEWS], np.intp)] = True
+    allowed = _allowed_views(tuple(faces))                   # the views asked for, by index
     shape_ok = allowed[tab.face_id]
     if not shape_ok.any():
         raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
@@ -870,15 +895,14 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
     # profile over faces: score(alpha) = min over faces
     grid = lib.grid
     prof = np.full(grid.size, np.inf)
-    gi = np.searchsorted(grid, lib.alphas - 1e-9)
-    np.minimum.at(prof, gi, score)
+    np.minimum.at(prof, lib.grid_index, score)
     inside = np.flatnonzero(prof <= tolerance)
     best_val = prof.min()
     ties = np.flatnonzero(prof <= best_val + 1e-9)
     # identical bodies tie exactly: report the middle of the tied run
     ib = int(ties[len(ties) // 2])
     alpha = float(grid[ib])
-    mbest = int(np.flatnonzero((np.abs(lib.alphas - alpha) < 1e-9) & (score <= best_val + 1e-9))[0])
+    mbest = int(np.flatnonzero(lib.at_grid[ib] & (score <= best_val + 1e-9))[0])
     ub = int(ms[mbest])
     row = np.where(np.isfinite(tot[ub]), tot[ub], np.inf)
     # lowest score, then the smallest shift (as the candidates were listed in order)
