@@ -513,10 +513,10 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
 def interior_signal(frame):
     """Interior signal image and the engine's mode for the frame's polarity.
 
-    The image is handed on in its own data type where float64 holds every value of it
-    exactly (integers up to 32 bits, float32): each grain converts only its own crop
-    (:func:`engine.grain_evidence`), the same numbers as converting the whole frame first,
-    without a float64 pass over the frame (about 40 ms on a 2048 px frame).
+    The image is handed on in its own data type where that casts safely to float64 (integers,
+    float32): each grain converts only its own crop (:func:`engine.grain_evidence`). The
+    conversion is element by element, so these are the numbers of converting the whole frame
+    first, without a float64 pass over the frame (about 40 ms on a 2048 px frame).
     """
     raw = frame.raw if frame.raw is not None and np.shape(frame.raw) == np.shape(frame.labels) else None
     src = raw if raw is not None else frame.image
