@@ -122,6 +122,22 @@ def _previous_brackets(seqs, coarse):
     return brackets, where
 
 
+def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720):
+    """All centres at once: (centres, directions) arrays in one piece."""
+    p = np.asarray(pts, float)
+    cen = np.asarray(centres, float).reshape(-1, 2)
+    n = int(n_dir)
+    u, du, cross = gr._support_tables(n, fold)
+    hk = (p @ u.T).max(axis=0)
+    h = np.empty((cen.shape[0], n))
+    h[:] = hk
+    for j in range(1, fold):
+        s = j * n // fold
+        np.maximum(h, np.concatenate((hk[n - s:], hk[:n - s])) + cen @ du[j - 1], out=h)
+    w_sq, w_next = cross
+    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]), axis=1)))
+
+
 def _drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
     body, rot = body_and_rotation(alpha, face, rot_deg)
     frame = draw_crystal_frame(body, rot, ecd_px=ecd_px, noise=0.02, seed=1)
@@ -254,3 +270,35 @@ def test_frame_columns_equal_those_of_the_previous_kernels(contrast, monkeypatch
     monkeypatch.undo()
     signal, _ = cl.interior_signal(f32)
     assert signal.dtype == np.float32
+
+
+@pytest.mark.parametrize("chunk", [1, 700, 5000, gr.HULL_CHUNK_ELEMENTS, 10 ** 8])
+def test_symmetric_hull_areas_in_chunks_bitwise_equal_all_at_once(chunk, monkeypatch):
+    # any number of centres per chunk gives the floats of all centres at once (the product of the
+    # centres with the direction table stays one BLAS call: a product of fewer rows may round
+    # differently); random hulls of all sizes and offsets, both folds, coarse and fine directions
+    from scipy.spatial import ConvexHull
+
+    monkeypatch.setattr(gr, "HULL_CHUNK_ELEMENTS", chunk)
+    rng = np.random.default_rng(4)
+    for _ in range(40):
+        pts = rng.normal(size=(int(rng.integers(3, 80)), 2)) * rng.uniform(0.1, 300, 2) + rng.normal(0, 1000, 2)
+        pts = pts[ConvexHull(pts).vertices]
+        cen = pts.mean(axis=0) + rng.normal(size=(int(rng.choice([1, 5, 81, 100])), 2)) * rng.uniform(0.01, 100)
+        fold, n = int(rng.choice([2, 3])), int(rng.choice([24, 720, 2016]))
+        assert np.array_equal(gr.symmetric_hull_areas(pts, cen, fold, n), _previous_symmetric_hull_areas(pts, cen, fold, n))
+
+
+def test_symmetric_hull_area_of_a_cut_square_against_scipy():
+    # handbook geometry: a unit square with a corner cut off, completed by its point reflection about
+    # the square's centre, is the unit square again; scipy.spatial.ConvexHull of the points and
+    # their copies gives the exact area at other centres (within the O(1 / n^2) of the sampled support)
+    from scipy.spatial import ConvexHull
+
+    pts = np.array([[0.0, 0.0], [1.0, 0.0], [1.0, 0.7], [0.7, 1.0], [0.0, 1.0]])
+    centres = np.array([[0.5, 0.5], [0.52, 0.47], [0.3, 0.6]])
+    got = gr.symmetric_hull_areas(pts, centres, 2, 720)
+    assert got[0] == pytest.approx(1.0, rel=1e-6)
+    for c, a in zip(centres, got):
+        exact = ConvexHull(np.vstack([pts, 2 * c - pts])).volume
+        assert a == pytest.approx(exact, rel=5e-3)

@@ -1342,15 +1342,30 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, du, cross = _support_tables(n, fold)
     hk = (p @ u.T).max(axis=0)                                         # (n,)
-    h = np.empty((cen.shape[0], n))
-    h[:] = hk
-    for j in range(1, fold):
-        s = j * n // fold                                              # R_j^T u_i = u_{i - s}
-        np.maximum(h, np.concatenate((hk[n - s:], hk[:n - s])) + cen @ du[j - 1], out=h)   # np.roll(hk, s)
-    # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
-    # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
+    # R_j^T u_i = u_{i - s}: the support of the turned copy is np.roll(hk, s), s = j n / fold
+    rolled = [np.concatenate((hk[n - j * n // fold:], hk[:n - j * n // fold])) for j in range(1, fold)]
     w_sq, w_next = cross
-    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]), axis=1)))
+    # c . (u - R_j^T u) of all centres in one product: BLAS picks its kernel by the matrix shape,
+    # so a product of fewer rows may round differently
+    moved = [cen @ du[j - 1] for j in range(1, fold)]
+    out = np.empty(cen.shape[0])
+    # then a few centres at a time: element-wise steps and a sum per centre (the same floats), with
+    # temporaries small enough to stay in cache and off fresh memory pages
+    rows = max(1, HULL_CHUNK_ELEMENTS // n)
+    for a in range(0, cen.shape[0], rows):
+        h = np.empty((min(rows, cen.shape[0] - a), n))
+        h[:] = hk
+        for j in range(1, fold):
+            np.maximum(h, rolled[j - 1] + moved[j - 1][a:a + rows], out=h)
+        # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
+        # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
+        out[a:a + rows] = 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]),
+                                                                                                axis=1)))
+    return out
+
+
+#: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
+HULL_CHUNK_ELEMENTS = 32768
 
 
 @functools.lru_cache(maxsize=8)
