@@ -1353,14 +1353,21 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
     # temporaries small enough to stay in cache and off fresh memory pages
     rows = max(1, HULL_CHUNK_ELEMENTS // n)
     for a in range(0, cen.shape[0], rows):
-        h = np.empty((min(rows, cen.shape[0] - a), n))
-        h[:] = hk
+        h = None
         for j in range(1, fold):
-            np.maximum(h, rolled[j - 1] + moved[j - 1][a:a + rows], out=h)
+            t = moved[j - 1][a:a + rows]
+            np.add(t, rolled[j - 1], out=t)                            # hk turned, plus c . (u - R_j^T u)
+            h = np.maximum(t, hk, out=t) if h is None else np.maximum(h, t, out=h)
+        if h is None:
+            h = np.empty((min(rows, cen.shape[0] - a), n))
+            h[:] = hk
         # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
-        # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
-        out[a:a + rows] = 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]),
-                                                                                                axis=1)))
+        # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1}): w_sq h_i + w_next h_{i+1}
+        nxt = np.concatenate((h[:, 1:], h[:, :1]), axis=1)
+        np.multiply(nxt, w_next, out=nxt)
+        q = h * w_sq
+        np.add(q, nxt, out=q)
+        out[a:a + rows] = 0.5 * np.abs(np.einsum("ci,ci->c", h, q))
     return out
 
 
