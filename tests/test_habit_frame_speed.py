@@ -302,3 +302,52 @@ def test_symmetric_hull_area_of_a_cut_square_against_scipy():
     for c, a in zip(centres, got):
         exact = ConvexHull(np.vstack([pts, 2 * c - pts])).volume
         assert a == pytest.approx(exact, rel=5e-3)
+
+
+def _plain_outline_candidates(sig, spec, sq, turn_off, turn_ok):
+    """One argmin per look-alike window over the distances at every shift (no scores, no flat gathers)."""
+    a = np.asarray(sig, float)
+    n = a.size
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, n, axis=1)
+    np.multiply(cc, -2.0 / n, out=cc)
+    d = np.add(cc, ((a @ a + sq) / n)[:, None], out=cc)
+    u = d.shape[0]
+    k0 = np.argmin(d, axis=1)
+    w = np.arange(-(n // 32), n // 32 + 1)
+    shifts = np.zeros((u, 4), np.int64)
+    valid = np.zeros((u, 4), bool)
+    shifts[:, 0], valid[:, 0] = k0, True
+    for i in range(u):
+        for j in range(3):
+            win = (k0[i] + turn_off[i, j] + w) % n
+            best = win[int(np.argmin(d[i, win]))]
+            shifts[i, j + 1] = best
+            valid[i, j + 1] = turn_ok[i, j] and not any(shifts[i, q] == best and valid[i, q] for q in range(j + 1))
+    return shifts, np.sqrt(np.maximum(d[np.arange(u)[:, None], shifts], 0.0)), valid
+
+
+@pytest.mark.parametrize("n", [256, 4096])
+def test_outline_candidates_at_the_largest_n_angles(n):
+    # n_angles may be 4096 (its parameter's upper bound): a look-alike window then holds 257 shifts,
+    # more than a uint8 score counts (the previous kernel raised OverflowError there). Regular
+    # polygons (handbook geometry: a square looks alike after a quarter turn, a hexagon after a
+    # sixth) and noisy copies, against one argmin per window
+    import types
+
+    rng = np.random.default_rng(5)
+    polys = [np.column_stack([np.cos(t), np.sin(t)]) for t in
+             (np.arange(4) * np.pi / 2 + 0.1, np.arange(6) * np.pi / 3, np.arange(8) * np.pi / 4 + 0.2)]
+    sigs = np.array([gr.radial_signature(p, n) for p in polys])
+    face = np.array(["100", "111", "110"])
+    turn_off, turn_ok = gr._look_alike_turns(face, np.array([90.0, 120.0, 180.0]), n)
+    w = np.arange(-(n // 32), n // 32 + 1)
+    tab = types.SimpleNamespace(sig_fft=np.conj(np.fft.rfft(sigs, axis=1))[None], sig_sq=np.einsum("ij,ij->i", sigs, sigs)[None],
+                                turn_off=turn_off, turn_ok=turn_ok, turn_win=turn_off[:, :, None] + w[None, None, :])
+    for sig in [sigs[0], sigs[1] * (1 + 0.01 * rng.standard_normal(n)), np.roll(sigs[2], n // 7)]:
+        got = gr.outline_candidates(sig, tab, 0)
+        ref = _plain_outline_candidates(sig, tab.sig_fft[0], tab.sig_sq[0], turn_off, turn_ok)
+        for x, y in zip(got, ref):
+            assert np.array_equal(x, y)
+    # a square against itself: distance 0 at its best shift
+    got = gr.outline_candidates(sigs[0], tab, 0)
+    assert got[1][0, 0] == pytest.approx(0.0, abs=1e-6)      # sqrt of rounding in the squared distance

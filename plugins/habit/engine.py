@@ -505,7 +505,7 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     # found by whole-row passes instead of one short argmin per (shape, turn) (same index)
     vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
     nw = vals.shape[0]
-    # descending scores (uint8 for windows of up to 255 samples, n_angles <= 8160)
+    # descending scores: uint8 for windows of up to 255 samples (n_angles < 4096), else uint16
     score = np.arange(nw, 0, -1, dtype=np.uint8 if nw < 256 else np.uint16)
     first = nw - np.max((vals == vals.min(axis=0)) * score[:, None, None], axis=0)
     # the shift at that window position: k0 + turn offset + (position - n // 32), modulo n
