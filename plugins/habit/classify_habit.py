@@ -279,8 +279,16 @@ def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[
     """
     a = np.asarray(sig, float)
     spec, sq, cut = _families_stacked(a.size, int(level))
-    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
-    d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0)
+    n = a.size
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, n, axis=1)
+    if n & (n - 1) == 0:
+        # (|a|^2 + |b|^2 - 2 C) / n in two passes in place: scaling by a power of two is exact
+        # and commutes with rounding, so these are the same floats (engine.outline_candidates)
+        np.multiply(cc, -2.0 / n, out=cc)
+        np.add(cc, ((a @ a + sq) / n)[:, None], out=cc)
+        d2 = np.maximum(cc.min(axis=1), 0.0)
+    else:
+        d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
     d = np.sqrt(d2)
     out = []
     for lo, hi in zip(cut[:-1], cut[1:]):
@@ -503,15 +511,22 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
 
 
 def interior_signal(frame):
-    """Interior signal image and the engine's mode for the frame's polarity."""
+    """Interior signal image and the engine's mode for the frame's polarity.
+
+    The image is handed on in its own data type where that casts safely to float64 (integers,
+    float32): each grain converts only its own crop (:func:`engine.grain_evidence`). The
+    conversion is element by element, so these are the numbers of converting the whole frame
+    first, without a float64 pass over the frame (about 40 ms on a 2048 px frame).
+    """
     raw = frame.raw if frame.raw is not None and np.shape(frame.raw) == np.shape(frame.labels) else None
     src = raw if raw is not None else frame.image
-    if frame.polarity == "dark":
-        if raw is None:
-            # the preprocessed image is inverted (grains bright): back to transmission-like values
-            return 1.0 - np.asarray(src, float), "thickness"
-        return np.asarray(src, float), "thickness"
-    return np.asarray(src, float), "facets"
+    if frame.polarity == "dark" and raw is None:
+        # the preprocessed image is inverted (grains bright): back to transmission-like values
+        return 1.0 - np.asarray(src, float), "thickness"
+    src = np.asarray(src)
+    if not np.can_cast(src.dtype, np.float64, "safe"):
+        src = np.asarray(src, float)
+    return src, "thickness" if frame.polarity == "dark" else "facets"
 
 
 def frame_contours(frame) -> list:

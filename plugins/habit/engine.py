@@ -220,6 +220,32 @@ class ModelLibrary:
     prior: np.ndarray
     tables: "_Tables"
 
+    @functools.cached_property
+    def grid_index(self) -> np.ndarray:
+        """(m,) the grid cell of every model: ``searchsorted(grid, alphas - 1e-9)`` (kept, not pickled)."""
+        return np.searchsorted(self.grid, self.alphas - 1e-9)
+
+    @functools.cached_property
+    def at_grid(self) -> np.ndarray:
+        """(grid size, m) bool: which models have the alpha of each grid point (to 1e-9)."""
+        return np.abs(self.alphas[None, :] - self.grid[:, None]) < 1e-9
+
+    def __getstate__(self):
+        # the cached tables above are rebuilt on use, not stored with the library on disk
+        state = dict(self.__dict__)
+        state.pop("grid_index", None)
+        state.pop("at_grid", None)
+        return state
+
+
+@functools.lru_cache(maxsize=8)
+def _allowed_views(faces: tuple) -> np.ndarray:
+    """(len(VIEWS),) bool: the views among ``faces`` (read-only)."""
+    allowed = np.zeros(len(VIEWS), bool)
+    allowed[np.array([VIEWS.index(f) for f in faces if f in VIEWS], np.intp)] = True
+    allowed.flags.writeable = False
+    return allowed
+
 
 _SYMMETRY = {"100": 90.0, "111": 120.0, "110": 180.0}
 
@@ -479,16 +505,28 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     # found by whole-row passes instead of one short argmin per (shape, turn) (same index)
     vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
     nw = vals.shape[0]
-    first = nw - np.max((vals == vals.min(axis=0)) * np.arange(nw, 0, -1, dtype=np.uint8)[:, None, None], axis=0)
-    best = np.take_along_axis(win, first[:, :, None].astype(np.intp), axis=2)[:, :, 0]
+    # descending scores: uint8 for windows of up to 255 samples (n_angles < 4096), else uint16
+    score = np.arange(nw, 0, -1, dtype=np.uint8 if nw < 256 else np.uint16)
+    first = nw - np.max((vals == vals.min(axis=0)) * score[:, None, None], axis=0)
+    # the shift at that window position: k0 + turn offset + (position - n // 32), modulo n
+    best = k0[:, None] + tab.turn_off + (first.astype(np.int64) - n // 32)
+    if n & (n - 1) == 0:
+        np.bitwise_and(best, n - 1, out=best)
+    else:
+        np.remainder(best, n, out=best)
     shifts = np.empty((u, 4), np.int64)
-    valid = np.zeros((u, 4), bool)
+    valid = np.empty((u, 4), bool)
     shifts[:, 0], valid[:, 0] = k0, True
     shifts[:, 1:] = best
-    for j in range(3):
-        dup = np.any((shifts[:, :j + 1] == best[:, j, None]) & valid[:, :j + 1], axis=1)
-        valid[:, j + 1] = tab.turn_ok[:, j] & ~dup
-    return shifts, np.sqrt(np.maximum(np.take_along_axis(d, shifts, axis=1), 0.0)), valid
+    # a look-alike slot is valid where the turn exists and its shift repeats no valid slot before it
+    b0, b1, b2 = best[:, 0], best[:, 1], best[:, 2]
+    ok = tab.turn_ok
+    v1 = ok[:, 0] & (b0 != k0)
+    v2 = ok[:, 1] & ~((b1 == k0) | ((b1 == b0) & v1))
+    valid[:, 1], valid[:, 2] = v1, v2
+    valid[:, 3] = ok[:, 2] & ~((b2 == k0) | ((b2 == b0) & v1) | ((b2 == b1) & v2))
+    at = d.ravel()[shifts + (np.arange(u) * n)[:, None]]
+    return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
 
 
 def placed_planes(tab: _Tables, shape, shift, n: int):
@@ -804,8 +842,7 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
                               corner_radius_px)
     n = lib.signatures.shape[-1]
     sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
-    allowed = np.zeros(len(VIEWS), bool)                     # the views asked for, by index
-    allowed[np.array([VIEWS.index(f) for f in faces if f in VIEWS], np.intp)] = True
+    allowed = _allowed_views(tuple(faces))                   # the views asked for, by index
     shape_ok = allowed[tab.face_id]
     if not shape_ok.any():
         raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
@@ -858,15 +895,14 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
     # profile over faces: score(alpha) = min over faces
     grid = lib.grid
     prof = np.full(grid.size, np.inf)
-    gi = np.searchsorted(grid, lib.alphas - 1e-9)
-    np.minimum.at(prof, gi, score)
+    np.minimum.at(prof, lib.grid_index, score)
     inside = np.flatnonzero(prof <= tolerance)
     best_val = prof.min()
     ties = np.flatnonzero(prof <= best_val + 1e-9)
     # identical bodies tie exactly: report the middle of the tied run
     ib = int(ties[len(ties) // 2])
     alpha = float(grid[ib])
-    mbest = int(np.flatnonzero((np.abs(lib.alphas - alpha) < 1e-9) & (score <= best_val + 1e-9))[0])
+    mbest = int(np.flatnonzero(lib.at_grid[ib] & (score <= best_val + 1e-9))[0])
     ub = int(ms[mbest])
     row = np.where(np.isfinite(tot[ub]), tot[ub], np.inf)
     # lowest score, then the smallest shift (as the candidates were listed in order)
@@ -984,16 +1020,22 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         right = np.r_[val[1:], np.inf]
         seeds[cq[(val <= left) & (val <= right) & (val <= best1 + margin)]] = True
     seeds[np.unravel_index(np.argmin(np.where(m1, rss1, np.inf)), rss1.shape)[0]] = True
-    # brackets: runs of shapes from one coarse shape to the next
-    brackets, where = [], {}
-    for q in seqs:
+    # brackets: runs of shapes from one coarse shape to the next; a shape lies in one run, or in
+    # two where it is a coarse shape between runs (_brackets_of lists them, in order)
+    brackets, seq_of, pos_in, first_bracket, cposs = [], np.full(u, -1), np.zeros(u, np.intp), [], []
+    for j, q in enumerate(seqs):
         cpos = np.flatnonzero(coarse[q])
         if cpos.size == 1:
             cpos = np.array([0, 0])
-        for a, b in zip(cpos[:-1], cpos[1:]):
-            for s in q[a:b + 1].tolist():
-                where.setdefault(s, []).append(len(brackets))
-            brackets.append(q[a:b + 1])
+        first_bracket.append(len(brackets))
+        cposs.append(cpos)
+        seq_of[q], pos_in[q] = j, np.arange(q.size)
+        brackets += [q[a:b + 1] for a, b in zip(cpos[:-1].tolist(), cpos[1:].tolist())]
+
+    def where(s):
+        j = seq_of[s]
+        return [] if j < 0 else _brackets_of(cposs[j], int(pos_in[s]), first_bracket[j])
+
     want = np.zeros(osc.shape, bool)
     taken = np.zeros(len(brackets), bool)
 
@@ -1008,13 +1050,12 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         want[run] |= np.where(w.any(axis=1)[:, None], w, g)
         taken[k] = True
 
-    for s in np.flatnonzero(seeds):
-        for k in where.get(int(s), []):
+    for s in np.flatnonzero(seeds).tolist():
+        for k in where(s):
             take(k)
     # stage 2: full sample; grow while a shape within tolerance has an unplaced neighbour
     rss2 = np.full(osc.shape, np.inf)
     done = np.zeros(osc.shape, bool)
-    pos_of = {s: (q, i) for q in seqs for i, s in enumerate(q.tolist())}
     for _ in range(len(brackets) + 1):
         new = want & ~done
         if new.any():
@@ -1027,11 +1068,11 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         sb2 = tot2.min(axis=1)
         grew = False
         placed_any = done.any(axis=1)             # take() changes want and taken, not done
-        for s in np.flatnonzero(sb2 <= sb2.min() + tolerance):
-            q, i = pos_of[int(s)]
+        for s in np.flatnonzero(sb2 <= sb2.min() + tolerance).tolist():
+            q, i = seqs[seq_of[s]], int(pos_in[s])
             for k in (i - 1, i + 1):
                 if 0 <= k < len(q) and not placed_any[q[k]]:
-                    for b in where[int(q[k])]:
+                    for b in where(int(q[k])):
                         if not taken[b]:
                             take(b, tot2[s] <= sb2[s] + tolerance)
                             grew = True
@@ -1055,6 +1096,19 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     shape_best = np.where(gshape, est, ruled_out)
     tot = np.where(done, tot2, np.where(np.isfinite(osc) & ~gated, osc + 1e9, np.inf))
     return tot, shape_best, rmin, s2
+
+
+def _brackets_of(cpos, i, first):
+    """Indices (ascending) of the runs ``cpos[t] .. cpos[t + 1]`` of one face's shapes that hold position ``i``.
+
+    ``cpos`` are the positions of the coarse shapes in the face's sequence (increasing, the
+    first 0 and the last the sequence's end; ``[0, 0]`` for a sequence of one shape), ``first``
+    the index of the face's first run among all runs of :func:`_coarse_search`.
+    """
+    t = int(np.searchsorted(cpos, i))
+    if t < cpos.size and cpos[t] == i:                  # a coarse shape: the runs that end and start here
+        return [first + r for r in (t - 1, t) if 0 <= r < max(cpos.size - 1, 1)]
+    return [first + t - 1]
 
 
 # ------------------------------------------------------------------ habit classes
@@ -1288,15 +1342,37 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, du, cross = _support_tables(n, fold)
     hk = (p @ u.T).max(axis=0)                                         # (n,)
-    h = np.empty((cen.shape[0], n))
-    h[:] = hk
-    for j in range(1, fold):
-        s = j * n // fold                                              # R_j^T u_i = u_{i - s}
-        np.maximum(h, np.concatenate((hk[n - s:], hk[:n - s])) + cen @ du[j - 1], out=h)   # np.roll(hk, s)
-    # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
-    # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1})
+    # R_j^T u_i = u_{i - s}: the support of the turned copy is np.roll(hk, s), s = j n / fold
+    rolled = [np.concatenate((hk[n - j * n // fold:], hk[:n - j * n // fold])) for j in range(1, fold)]
     w_sq, w_next = cross
-    return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]), axis=1)))
+    # c . (u - R_j^T u) of all centres in one product: BLAS picks its kernel by the matrix shape,
+    # so a product of fewer rows may round differently
+    moved = [cen @ du[j - 1] for j in range(1, fold)]
+    out = np.empty(cen.shape[0])
+    # then a few centres at a time: element-wise steps and a sum per centre (the same floats), with
+    # temporaries small enough to stay in cache and off fresh memory pages
+    rows = max(1, HULL_CHUNK_ELEMENTS // n)
+    for a in range(0, cen.shape[0], rows):
+        h = None
+        for j in range(1, fold):
+            t = moved[j - 1][a:a + rows]
+            np.add(t, rolled[j - 1], out=t)                            # hk turned, plus c . (u - R_j^T u)
+            h = np.maximum(t, hk, out=t) if h is None else np.maximum(h, t, out=h)
+        if h is None:
+            h = np.empty((min(rows, cen.shape[0] - a), n))
+            h[:] = hk
+        # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
+        # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1}): w_sq h_i + w_next h_{i+1}
+        nxt = np.concatenate((h[:, 1:], h[:, :1]), axis=1)
+        np.multiply(nxt, w_next, out=nxt)
+        q = h * w_sq
+        np.add(q, nxt, out=q)
+        out[a:a + rows] = 0.5 * np.abs(np.einsum("ci,ci->c", h, q))
+    return out
+
+
+#: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
+HULL_CHUNK_ELEMENTS = 32768
 
 
 @functools.lru_cache(maxsize=8)

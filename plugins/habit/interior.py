@@ -720,7 +720,11 @@ def normal_equations(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_
         xx, xy, yy, xv, yv, vv = (wt @ q for q in interior.products)
         nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
         sec = 1.0 / nz - 1.0
-        f = np.stack([np.ones_like(sec), sec, -g_up[..., 0] * nz, -g_up[..., 1] * nz], axis=-1)   # (c, M, 4)
+        f = np.empty((c, m, 4))                                              # (1, sec, -g nz) per plane
+        f[..., 0] = 1.0
+        f[..., 1] = sec
+        np.multiply(-g_up[..., 0], nz, out=f[..., 2])
+        np.multiply(-g_up[..., 1], nz, out=f[..., 3])
         # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
         nm = np.zeros((c, 6, 6))
         nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)

@@ -13,6 +13,7 @@ References
 """
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -65,6 +66,20 @@ def polygon_centroid(poly) -> tuple[np.ndarray, float]:
     return c, abs(a)
 
 
+@functools.lru_cache(maxsize=8)
+def _ray_directions(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """cos and sin of the ray angles phi_j = 2 pi j / n, j = 0 ... n - 1 (read-only).
+
+    The same floats as ``np.cos(2.0 * np.pi * j / n)`` computed for any subset of rays
+    (numpy evaluates each element on its own; ``tests/test_habit_frame_speed.py`` checks it).
+    """
+    phi = 2.0 * np.pi * np.arange(n) / n
+    out = np.cos(phi), np.sin(phi)
+    for a in out:
+        a.flags.writeable = False
+    return out
+
+
 def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
     """Centroid-distance signature of a closed outline, normalised by sqrt(area).
 
@@ -110,14 +125,15 @@ def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
     edge = np.repeat(np.arange(k), cnt)
     start = np.cumsum(cnt) - cnt
     ray = (lo[edge] + np.arange(edge.size) - start[edge]) % n
-    phi = 2.0 * np.pi * ray / n
-    dx, dy = np.cos(phi), np.sin(phi)
-    qe, ee = q[edge], e[edge]
-    det = -dx * ee[:, 1] + ee[:, 0] * dy
+    cos_ray, sin_ray = _ray_directions(n)
+    dx, dy = cos_ray[ray], sin_ray[ray]
+    ex, ey, qx, qy = e[:, 0][edge], e[:, 1][edge], q[:, 0][edge], q[:, 1][edge]
+    det = -dx * ey + ex * dy
     ok = np.abs(det) > 1e-14
     det = np.where(ok, det, 1.0)
-    t = (-qe[:, 0] * ee[:, 1] + ee[:, 0] * qe[:, 1]) / det
-    s = (dx * qe[:, 1] - dy * qe[:, 0]) / det
+    # the numerator of t is one number per edge: computed per edge, then spread over its rays
+    t = (-q[:, 0] * e[:, 1] + e[:, 0] * q[:, 1])[edge] / det
+    s = (dx * qy - dy * qx) / det
     hit = ok & (s >= -1e-9) & (s <= 1 + 1e-9) & (t > 0)
     r = np.zeros(n)
     np.maximum.at(r, ray[hit], t[hit])
