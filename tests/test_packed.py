@@ -124,3 +124,13 @@ def test_crossing_rods_are_not_a_packed_field():
         img[rr, cc] = 0.2
     raw = np.clip((ndi.gaussian_filter(img, 1.0) + rng.normal(0, 0.03, img.shape)) * 255, 0, 255).astype(np.uint8)
     assert not packed.packed_field(raw, min_area=30).packed
+
+
+@pytest.mark.parametrize("dtype", [np.uint16, np.float32])
+def test_block_average_equals_the_mean_of_blocks(dtype):
+    # reference: numpy's mean over the reshaped blocks, on a frame whose side is no multiple of the block
+    rng = np.random.default_rng(2)
+    img = (rng.random((203, 157)) * 60000).astype(dtype)
+    f = 4
+    ref = img[:200, :156].astype(np.float64).reshape(50, 4, 39, 4).mean(axis=(1, 3))
+    np.testing.assert_allclose(packed.block_average(img, f), ref, rtol=1e-12)

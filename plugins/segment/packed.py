@@ -145,6 +145,19 @@ def inscribed_radius(dist: np.ndarray, mask: np.ndarray) -> float:
     return float(np.percentile(dist[mask], 95)) / P95_OF_RADIUS
 
 
+def block_average(image: np.ndarray, f: int) -> np.ndarray:
+    """Mean of ``f x f`` blocks (the last partial row and column of blocks dropped), as float64.
+
+    Sums along the rows of each block first, then across, in an integer or
+    float accumulator of the input's kind: no float copy of the whole frame.
+    """
+    a = np.asarray(image)
+    rows, cols = (a.shape[0] // f) * f, (a.shape[1] // f) * f
+    acc = np.float64 if a.dtype.kind == "f" else np.int64
+    s = a[:rows, :cols].reshape(rows // f, f, cols).sum(axis=1, dtype=acc)
+    return s.reshape(rows // f, cols // f, f).sum(axis=2) / float(f * f)
+
+
 def gap_spread(gaps: np.ndarray, blocks: int = 8) -> float:
     """Share of the ``blocks x blocks`` grid cells in which at least 1 % of the pixels are gaps."""
     rows, cols = gaps.shape
@@ -266,11 +279,9 @@ def packed_field(image: np.ndarray, min_area: float) -> PackedField:
         See the module docstring for the tests; ``labels`` holds the parts
         whenever the tests got as far as dividing the thick class.
     """
-    from grainhabit.plugins.preprocess.polarity import block_mean
-
     f = max(1, int(max(np.shape(image)) // COARSE_SIDE_PX))
     if f > 1:
-        coarse = _test(block_mean(np.asarray(image, float), f), min_area / f ** 2)
+        coarse = _test(block_average(image, f), min_area / f ** 2)
         if not coarse.packed:
             coarse.labels = np.zeros(np.shape(image), np.int32)
             coarse.radius_px *= f
@@ -303,7 +314,8 @@ def _test(g: np.ndarray, min_area: float) -> PackedField:
         out.reason = "gaps do not reach over the frame"
         return out
     # a speck of the gaps' class inside a particle (a dark core, a pit) is part of the particle
-    small = ndi.binary_fill_holes(grains) & ~grains & ~_large_holes(grains, min_area)
+    holes = ndi.binary_fill_holes(grains) & ~grains
+    small = holes & ~_large(holes, min_area)
     solid = grains | small
     dist = ndi.distance_transform_edt(solid) if small.any() else (d_up if bright else d_low)
     # one core per particle where the necks are narrow: a cheap count before the watershed
@@ -333,12 +345,11 @@ def _test(g: np.ndarray, min_area: float) -> PackedField:
     return out
 
 
-def _large_holes(grains: np.ndarray, min_area: float) -> np.ndarray:
-    """Holes of ``grains`` at least ``min_area`` px: gaps enclosed by a ring of particles stay gaps."""
-    holes = ndi.binary_fill_holes(grains) & ~grains
-    lab, n = ndi.label(holes)
+def _large(mask: np.ndarray, min_area: float) -> np.ndarray:
+    """The connected parts of ``mask`` of at least ``min_area`` px (gaps enclosed by a ring of particles stay gaps)."""
+    lab, n = ndi.label(mask)
     if n == 0:
-        return np.zeros(grains.shape, bool)
+        return np.zeros(mask.shape, bool)
     areas = np.bincount(lab.ravel(), minlength=n + 1)
     big = areas >= min_area
     big[0] = False
