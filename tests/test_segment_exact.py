@@ -50,3 +50,78 @@ def test_watershed_window_takes_the_public_function_for_other_label_types():
     seeds = np.zeros((20, 30), np.int64)
     seeds[3, 4], seeds[15, 25] = 1, 2
     np.testing.assert_array_equal(band_flood.watershed_window(relief, seeds, mask), watershed(relief, seeds, mask=mask))
+
+
+def _rendered(seed, size=512, grains=30):
+    from grainhabit.plugins.bench import harness as bu
+    from grainhabit.plugins.preprocess import flatten_background as pp
+
+    raw = bu.render_frames(1, size, grains=grains, seed=seed)[0]
+    arr, _, _ = pp.flatten(raw, bu.PIXEL_SIZE_NM)
+    return raw, arr, bu.PIXEL_SIZE_NM
+
+
+@pytest.mark.parametrize("seed", [0, 4])
+def test_label_grains_boxes_equal_find_objects(seed):
+    # reference library: scipy.ndimage.find_objects of the labels label_grains returns, and the clusters it
+    # returns for the component of every label; a rendered field (invented data)
+    from grainhabit.plugins.segment import segment_grains as sg
+    from grainhabit.plugins.segment.levels import frame_levels
+
+    _, arr, px = _rendered(seed)
+    labels, clusters, flags = sg.label_grains(arr, px, frame_levels(arr), method="auto")
+    assert labels.max() > 10
+    assert flags["boxes"] == ndi.find_objects(labels)
+    for k, c in enumerate(flags["cluster_of"], start=1):
+        assert np.all(clusters[labels == k] == c)
+
+
+def test_union_boxes_equal_find_objects_of_the_grouped_image():
+    # reference library: scipy.ndimage.find_objects of the image where every object's pixels carry its group id
+    from grainhabit.plugins.segment import segment_grains as sg
+
+    rng = np.random.default_rng(3)
+    objects = ndi.label(ndi.gaussian_filter(rng.random((120, 150)), 2.0) > 0.55)[0]
+    n = int(objects.max())
+    group = np.r_[0, rng.integers(1, 9, size=n)]
+    take = np.r_[False, rng.random(n) > 0.3]
+    grouped = np.where(take[objects], group[objects], 0)
+    got = sg._union_boxes([None] + ndi.find_objects(objects), group, take)
+    assert got == ndi.find_objects(grouped)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32])
+def test_drawn_labels_with_shared_ink_and_boxes_equal_the_plain_call(dtype):
+    # reference: drawn_labels computing its own ink levels, background median (numpy's median) and
+    # scipy.ndimage.find_objects; a frame with a drawn bar, a hollow drawn ring and grey blobs (invented data)
+    from grainhabit.plugins.segment import annotations
+
+    rng = np.random.default_rng(5)
+    raw = (rng.normal(90, 6, (200, 260))).clip(1, 250)
+    raw[20:26, 30:150] = 255  # a bar in white ink
+    yy, xx = np.mgrid[:200, :260]
+    ring = np.abs(np.hypot(yy - 120, xx - 60) - 15) < 3
+    raw[ring] = 0  # a ring in black ink
+    blobs = np.hypot((yy - 130) % 50 - 25, (xx - 170) % 45 - 22) < 9
+    raw[blobs] += 60
+    raw = raw.astype(dtype)
+    labels = ndi.label(ring | blobs | (raw >= 250))[0]
+    plain = annotations.drawn_labels(labels, raw)
+    shared = annotations.frame_ink(raw)
+    fast = annotations.drawn_labels(labels, raw, boxes=ndi.find_objects(labels), ink=shared)
+    assert plain.size >= 2
+    np.testing.assert_array_equal(fast, plain)
+    for rim in (1, annotations.RIM_PX):
+        np.testing.assert_array_equal(annotations.drawn_labels(labels, raw, rim=rim, ink=shared),
+                                      annotations.drawn_labels(labels, raw, rim=rim))
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 1000, 1001])
+def test_median_of_counts_equals_numpy_median(n):
+    # reference library: numpy.median
+    from grainhabit.plugins.segment import annotations
+
+    v = np.random.default_rng(n).integers(0, 40, size=n)
+    assert annotations.median_of_counts(np.bincount(v), v.size) == float(np.median(v))
+    # counts with trailing empty levels (a frame's counts less an object's)
+    assert annotations.median_of_counts(np.r_[np.bincount(v), [0, 0, 0]], v.size) == float(np.median(v))

@@ -201,6 +201,11 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     labels = np.zeros(arr.shape, np.int32)
     split_flag = [False]
     nxt = 1
+    # every label's bounding box, first pixel (row-major frame index) and component, noted as it is
+    # written: what scipy's find_objects and a raster scan would give, without their passes over the
+    # frame. Trusted only when the parts lie in their components and do not overlap (checked below).
+    part_box, part_first, part_comp = [None], [-1], [0]
+    written, boxes_ok = 0, True
     for k, sl in enumerate(ndi.find_objects(comp), start=1):
         if sl is None:
             continue
@@ -250,27 +255,95 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             view[p] = nxt
             split_flag.append(was_split)
             nxt += 1
+            rr = np.flatnonzero(p.any(axis=1))
+            if rr.size == 0:
+                part_box.append(None)
+                part_first.append(-1)
+            else:
+                cc = np.flatnonzero(p.any(axis=0))
+                part_box.append((slice(r0 + int(rr[0]), r0 + int(rr[-1]) + 1),
+                                 slice(c0 + int(cc[0]), c0 + int(cc[-1]) + 1)))
+                part_first.append((r0 + int(rr[0])) * arr.shape[1] + c0 + int(np.argmax(p[rr[0]])))
+            part_comp.append(k)
+            written += int(np.count_nonzero(p))
+            boxes_ok &= p.shape == m.shape and not (p & ~m).any()
+    # overlapping parts would leave fewer labelled pixels than written
+    boxes_ok = boxes_ok and written == int(np.count_nonzero(labels))
+    keep = np.ones(nxt, bool)
     if reject_annotations and nxt > 1:
         # the glyphs already dropped stay in the rows and captions looked for, as numbers past the grains'
         page = labels
+        page_boxes = part_box[1:] if boxes_ok else None
         if marks.any():
             glyphs, _ = ndi.label(marks & (labels == 0), structure=_EIGHT)
             page = np.where(glyphs > 0, glyphs + (nxt - 1), labels)
-        gone = text_rows(page, above)
+            if page_boxes is not None:
+                page_boxes = page_boxes + ndi.find_objects(glyphs)
+        gone = text_rows(page, above, page_boxes)
         # touching glyphs cut apart look like grains: rows of text are looked for among the whole objects too
         whole = np.where(labels > 0, comp, 0)
-        gone = np.union1d(gone, np.unique(labels[np.isin(whole, text_rows(whole, above))])).astype(np.int64)
-        gone = np.union1d(gone, bar_captions(page, bars, above)).astype(np.int64)
+        whole_boxes = _union_boxes(part_box, part_comp, np.ones(nxt, bool)) if boxes_ok else None
+        gone = np.union1d(gone, np.unique(labels[np.isin(whole, text_rows(whole, above, whole_boxes))])).astype(np.int64)
+        gone = np.union1d(gone, bar_captions(page, bars, above, page_boxes)).astype(np.int64)
         gone = gone[(gone > 0) & (gone < nxt)]
         if gone.size:
             rejected["stroke"] += int(gone.size)
-            keep = np.ones(nxt, bool)
             keep[gone] = False
-            labels = np.where(keep[labels], labels, 0)
-    labels, old = tiling.renumber_raster(labels)
+            if not boxes_ok:
+                labels = np.where(keep[labels], labels, 0)
+    if boxes_ok:
+        # tiling.renumber_raster from the first pixels noted above (labels dropped map to 0)
+        first = np.asarray(part_first, np.int64)
+        present = np.flatnonzero(keep & (first >= 0))
+        present = present[present > 0]
+        old = present[np.argsort(first[present], kind="stable")]
+        lut = np.zeros(nxt, np.int32)
+        lut[old] = np.arange(1, len(old) + 1, dtype=np.int32)
+        labels = lut[labels]
+    else:
+        labels, old = tiling.renumber_raster(labels)
     flags = {"split": np.concatenate([[False], np.asarray(split_flag, bool)[old]]), "rejected": rejected}
+    if boxes_ok:
+        # for the caller: find_objects(labels), and the component of every label
+        flags["boxes"] = [part_box[i] for i in old]
+        flags["cluster_of"] = np.asarray(part_comp, np.int64)[old]
     clusters = np.where(labels > 0, comp, 0).astype(np.int32, copy=False)
     return labels, clusters, flags
+
+
+def _union_boxes(boxes: list, group: list | np.ndarray, take: np.ndarray) -> list:
+    """``find_objects`` of the image that gives every pixel of object ``i`` (where ``take[i]``) the id ``group[i]``.
+
+    Parameters
+    ----------
+    boxes : list of tuple of slice or None
+        Bounding box of every object (entry 0 unused).
+    group : sequence of int
+        The id each object's pixels get (>= 1).
+    take : ndarray of bool
+        Which objects are drawn.
+
+    Returns
+    -------
+    list of tuple of slice or None
+        Entry ``g - 1``: the smallest box holding the boxes of the objects of id ``g`` (None where there
+        are none), up to the largest id drawn.
+    """
+    spans = {}
+    for i in range(1, len(boxes)):
+        b = boxes[i]
+        if b is None or not take[i]:
+            continue
+        g = int(group[i])
+        if g in spans:
+            s = spans[g]
+            spans[g] = [min(s[0], b[0].start), max(s[1], b[0].stop), min(s[2], b[1].start), max(s[3], b[1].stop)]
+        else:
+            spans[g] = [b[0].start, b[0].stop, b[1].start, b[1].stop]
+    out = [None] * (max(spans) if spans else 0)
+    for g, s in spans.items():
+        out[g - 1] = (slice(s[0], s[1]), slice(s[2], s[3]))
+    return out
 
 
 def _frame_box(box, crop):
@@ -361,10 +434,13 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
               reject_annotations=p["reject_annotations"])
 
     dropped = []
+    noted = {}
 
     def func(tile):
         labels, clusters, flags = label_grains(tile, pixel_size_nm, levels, **kw)
         dropped.append(flags.pop("rejected"))
+        # boxes and components of the labels: used by an untiled run (tiles are stitched and renumbered)
+        noted["boxes"], noted["cluster_of"] = flags.pop("boxes", None), flags.pop("cluster_of", None)
         return labels, clusters, flags
 
     if max(arr.shape) > p["tile_px"]:
@@ -375,23 +451,30 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
             notes.append(f"segment-grains: {n_lost} pixel(s) of grain clusters cut by tile edges were not found "
                          "again; raise tile_overlap_nm")
         clusters = None
+        boxes = cluster_of = None
     else:
         labels, clusters, flags = func(arr)
         split = flags["split"][1:]
+        boxes, cluster_of = noted["boxes"], noted["cluster_of"]
     n_line = sum(d["line"] for d in dropped)
     n_stroke = sum(d["stroke"] for d in dropped)
     if raw is not None and p["reject_annotations"] and labels.max() > 0:
-        inked = annotations.drawn_labels(labels, raw)
+        ink = annotations.frame_ink(raw)  # ink levels, ink pixels and grey-level counts, shared by both calls
+        inked = annotations.drawn_labels(labels, raw, boxes=boxes, ink=ink)
         if clusters is not None and np.any(flags["split"]):
             # a glyph the splitter cut into convex pieces is judged whole as well
             cut = np.where(flags["split"][labels], clusters, 0)
-            whole = annotations.drawn_labels(cut, raw, rim=annotations.RIM_PX)
+            cut_boxes = None
+            if boxes is not None:
+                cut_boxes = _union_boxes([None] + list(boxes), np.r_[0, cluster_of], flags["split"])
+            whole = annotations.drawn_labels(cut, raw, rim=annotations.RIM_PX, boxes=cut_boxes, ink=ink)
             if whole.size:
                 inked = np.union1d(inked, np.unique(labels[np.isin(cut, whole)])).astype(np.int64)
                 inked = inked[inked > 0]
         if inked.size:
             # the caption beside a bar dropped here ("50 nm" in anti-aliased text, no ink of its own)
-            boxes = ndi.find_objects(labels)
+            if boxes is None:
+                boxes = ndi.find_objects(labels)
             bars = [b for b in (_frame_box(aligned_bar(labels[boxes[k - 1]] == k, annotations.BAR_MAX_WIDTH_PX,
                                                       annotations.BAR_ASPECT), boxes[k - 1]) for k in inked)
                     if b is not None]
