@@ -125,3 +125,30 @@ def test_median_of_counts_equals_numpy_median(n):
     assert annotations.median_of_counts(np.bincount(v), v.size) == float(np.median(v))
     # counts with trailing empty levels (a frame's counts less an object's)
     assert annotations.median_of_counts(np.r_[np.bincount(v), [0, 0, 0]], v.size) == float(np.median(v))
+
+
+@pytest.mark.parametrize("b", [2, 3, 4, 8])
+def test_block_any_equals_numpy_reduction(b):
+    # reference library: numpy's any over the blocks of a reshaped mask
+    from grainhabit.plugins.segment import gaps
+
+    rng = np.random.default_rng(b)
+    mask = rng.random((16 * b, 24 * b)) > 0.995
+    mask[-1, -1] = True
+    ref = mask.reshape(16, b, 24, b).any(axis=(1, 3))
+    np.testing.assert_array_equal(gaps.block_any(mask, b), ref)
+    np.testing.assert_array_equal(gaps.block_any(np.asfortranarray(mask), b), ref)
+
+
+def test_paint_boxes_equals_a_lookup_over_the_frame():
+    # reference library: numpy.where over the whole frame, boxes from scipy.ndimage.find_objects
+    from grainhabit.plugins.segment import segment_grains as sg
+
+    rng = np.random.default_rng(11)
+    labels = ndi.label(ndi.gaussian_filter(rng.random((90, 130)), 2.0) > 0.55)[0]
+    n = int(labels.max())
+    value = rng.integers(1, 50, size=n + 1)
+    take = np.r_[False, rng.random(n) > 0.4]
+    got = sg.paint_boxes(labels, [None] + ndi.find_objects(labels), value, take)
+    assert got.dtype == np.int32
+    np.testing.assert_array_equal(got, np.where(take[labels], value[labels], 0))
