@@ -152,3 +152,20 @@ def test_paint_boxes_equals_a_lookup_over_the_frame():
     got = sg.paint_boxes(labels, [None] + ndi.find_objects(labels), value, take)
     assert got.dtype == np.int32
     np.testing.assert_array_equal(got, np.where(take[labels], value[labels], 0))
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_convex_hull_mask_of_shapes_with_empty_rows_equals_scikit_image(seed):
+    # reference library: skimage.morphology.convex_hull_image; shapes in pieces (empty rows between them),
+    # single pixels, one-pixel rows and columns, where the kept points of each line are most often the same
+    from skimage.morphology import convex_hull_image
+
+    from grainhabit.plugins.segment import hull_fill
+
+    rng = np.random.default_rng(seed)
+    shapes = [rng.random((rng.integers(1, 30), rng.integers(1, 30))) > rng.uniform(0.6, 0.97) for _ in range(80)]
+    shapes += [np.eye(7, dtype=bool), np.ones((1, 9), bool), np.ones((9, 1), bool), np.ones((1, 1), bool)]
+    for m in shapes:
+        if not m.any():
+            continue
+        np.testing.assert_array_equal(hull_fill.convex_hull_mask(m), convex_hull_image(m))
