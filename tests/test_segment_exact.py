@@ -76,7 +76,7 @@ def test_label_grains_boxes_equal_find_objects(seed):
         assert np.all(clusters[labels == k] == c)
 
 
-def test_union_boxes_equal_find_objects_of_the_grouped_image():
+def testunion_boxes_equal_find_objects_of_the_grouped_image():
     # reference library: scipy.ndimage.find_objects of the image where every object's pixels carry its group id
     from grainhabit.plugins.segment import segment_grains as sg
 
@@ -86,7 +86,7 @@ def test_union_boxes_equal_find_objects_of_the_grouped_image():
     group = np.r_[0, rng.integers(1, 9, size=n)]
     take = np.r_[False, rng.random(n) > 0.3]
     grouped = np.where(take[objects], group[objects], 0)
-    got = sg._union_boxes([None] + ndi.find_objects(objects), group, take)
+    got = sg.union_boxes([None] + ndi.find_objects(objects), group, take)
     assert got == ndi.find_objects(grouped)
 
 
@@ -169,3 +169,46 @@ def test_convex_hull_mask_of_shapes_with_empty_rows_equals_scikit_image(seed):
         if not m.any():
             continue
         np.testing.assert_array_equal(hull_fill.convex_hull_mask(m), convex_hull_image(m))
+
+
+def _rings_and_islands(seed):
+    """Random blobs, rings with islands, a ring in a ring's hole with an island, rings cut by the frame's edge."""
+    rng = np.random.default_rng(seed)
+    shape = (160, 190)
+    mask = ndi.gaussian_filter(rng.random(shape), 1.5) > 0.56
+    yy, xx = np.mgrid[:shape[0], :shape[1]]
+    for cy, cx, r in ((40, 50, 22), (110, 130, 30), (0, 100, 12), (150, 10, 14)):
+        d = np.hypot(yy - cy, xx - cx)
+        mask[d < r + 3] = False
+        mask[(d >= r) & (d < r + 2)] = True  # a ring
+    d = np.hypot(yy - 110, xx - 130)
+    mask[(d >= 15) & (d < 17)] = True  # a ring in the big ring's hole
+    mask[(d < 4)] = True  # an island in it
+    mask[(d >= 9) & (d < 10.5)] = True  # and a thin ring between
+    mask[44:47, 48:52] = True  # an island in the first ring
+    mask[80, 100:103] = True
+    mask[81, 103] = True  # a diagonal step
+    return mask
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+def test_fill_label_equals_filling_then_labelling(seed):
+    # reference library: scipy.ndimage.binary_fill_holes, then scipy.ndimage.label (8-connected) and
+    # scipy.ndimage.find_objects of the filled mask
+    from grainhabit.plugins.segment import foreground as seg_fg
+
+    mask = _rings_and_islands(seed)
+    filled, comp, n, boxes = seg_fg.fill_label(mask)
+    want = ndi.binary_fill_holes(mask)
+    want_comp, want_n = ndi.label(want, structure=np.ones((3, 3), bool))
+    assert (want & ~mask).sum() > 100  # holes were filled
+    np.testing.assert_array_equal(filled, want)
+    assert comp.dtype == want_comp.dtype and n == want_n
+    np.testing.assert_array_equal(comp, want_comp)
+    assert boxes == ndi.find_objects(want_comp)
+    # a mask without holes, and an empty one
+    for m in (np.eye(20, dtype=bool), np.zeros((8, 9), bool)):
+        f, c, k, b = seg_fg.fill_label(m)
+        np.testing.assert_array_equal(f, ndi.binary_fill_holes(m))
+        np.testing.assert_array_equal(c, ndi.label(m, structure=np.ones((3, 3), bool))[0])
+        assert b == ndi.find_objects(c)

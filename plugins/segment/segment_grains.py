@@ -72,7 +72,7 @@ from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
 from grainhabit.plugins.segment import annotations, specks, tiling
-from grainhabit.plugins.segment.foreground import foreground
+from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
 from grainhabit.plugins.segment.touching import split_component
@@ -190,14 +190,14 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     arr = check_image(image)
     if not np.isfinite(pixel_size_nm) or pixel_size_nm <= 0:
         raise ValueError(f"pixel_size_nm must be positive, got {pixel_size_nm!r}")
-    fg = foreground(arr, pixel_size_nm, levels, method, local_block_nm, local_offset, close_nm, refine_nm,
-                    gap_level, edge_level)
+    # the foreground and its 8-connected components (one labelling for the hole filling and them)
+    fg, comp, n, comp_boxes = foreground_labels(arr, pixel_size_nm, levels, method, local_block_nm, local_offset,
+                                                close_nm, refine_nm, gap_level, edge_level)
     above = arr > levels["noise"]
     min_area = np.pi / 4.0 * max(min_ecd_nm / pixel_size_nm, min_ecd_px) ** 2
     rejected = {"line": 0, "stroke": 0}
     bars = []  # frame boxes of scale bars dropped, for their captions
     marks = np.zeros(arr.shape, bool)  # objects dropped as drawn marks: glyphs of the rows of text looked for below
-    comp, n = ndi.label(fg, structure=_EIGHT)
     labels = np.zeros(arr.shape, np.int32)
     split_flag = [False]
     nxt = 1
@@ -206,7 +206,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     # frame. Trusted only when the parts lie in their components and do not overlap (checked below).
     part_box, part_first, part_comp = [None], [-1], [0]
     written, boxes_ok = 0, True
-    for k, sl in enumerate(ndi.find_objects(comp), start=1):
+    for k, sl in enumerate(comp_boxes, start=1):
         if sl is None:
             continue
         r0, r1 = max(sl[0].start - 1, 0), min(sl[0].stop + 1, arr.shape[0])
@@ -266,7 +266,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
                 part_first.append((r0 + int(rr[0])) * arr.shape[1] + c0 + int(np.argmax(p[rr[0]])))
             part_comp.append(k)
             written += int(np.count_nonzero(p))
-            boxes_ok &= p.shape == m.shape and not (p & ~m).any()
+            boxes_ok &= p.dtype == bool and p.shape == m.shape and not (p & ~m).any()
     # overlapping parts would leave fewer labelled pixels than written
     boxes_ok = boxes_ok and written == int(np.count_nonzero(labels))
     keep = np.ones(nxt, bool)
@@ -283,7 +283,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # touching glyphs cut apart look like grains: rows of text are looked for among the whole objects too
         if boxes_ok:
             whole = paint_boxes(labels, part_box, part_comp, np.ones(nxt, bool))  # np.where(labels > 0, comp, 0)
-            whole_rows = text_rows(whole, above, _union_boxes(part_box, part_comp, np.ones(nxt, bool)))
+            whole_rows = text_rows(whole, above, union_boxes(part_box, part_comp, np.ones(nxt, bool)))
         else:
             whole = np.where(labels > 0, comp, 0)
             whole_rows = text_rows(whole, above)
@@ -350,7 +350,7 @@ def paint_boxes(labels: np.ndarray, boxes: list, value, take: np.ndarray) -> np.
     return out
 
 
-def _union_boxes(boxes: list, group: list | np.ndarray, take: np.ndarray) -> list:
+def union_boxes(boxes: list, group: list | np.ndarray, take: np.ndarray) -> list:
     """``find_objects`` of the image that gives every pixel of object ``i`` (where ``take[i]``) the id ``group[i]``.
 
     Parameters
@@ -506,7 +506,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
             if boxes is not None:
                 # np.where(flags["split"][labels], clusters, 0), box by box
                 cut = paint_boxes(labels, [None] + list(boxes), np.r_[0, cluster_of], flags["split"])
-                cut_boxes = _union_boxes([None] + list(boxes), np.r_[0, cluster_of], flags["split"])
+                cut_boxes = union_boxes([None] + list(boxes), np.r_[0, cluster_of], flags["split"])
             else:
                 cut = np.where(flags["split"][labels], clusters, 0)
             whole = annotations.drawn_labels(cut, raw, rim=annotations.RIM_PX, boxes=cut_boxes, ink=ink)
