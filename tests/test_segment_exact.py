@@ -212,3 +212,32 @@ def test_fill_label_equals_filling_then_labelling(seed):
         np.testing.assert_array_equal(f, ndi.binary_fill_holes(m))
         np.testing.assert_array_equal(c, ndi.label(m, structure=np.ones((3, 3), bool))[0])
         assert b == ndi.find_objects(c)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_level_counts_equal_numpy_bincount(dtype):
+    # reference library: numpy.bincount over the whole array at once
+    from grainhabit.plugins.segment import annotations
+
+    v = np.random.default_rng(2).integers(0, np.iinfo(dtype).max, size=(300, 701)).astype(dtype)
+    got = annotations.level_counts(v, chunk=1000)
+    want = np.bincount(v.ravel())
+    assert got.dtype == want.dtype
+    np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 5])
+def test_euler_number8_equals_scikit_image(seed):
+    # reference library: skimage.measure.euler_number (connectivity 2: 8-connected objects, 4-connected holes),
+    # and components less holes counted with scipy.ndimage.label
+    from skimage.measure import euler_number
+
+    from grainhabit.plugins.segment import foreground as seg_fg
+
+    for mask in (_rings_and_islands(seed), np.random.default_rng(seed).random((60, 70)) > 0.5,
+                 np.zeros((5, 6), bool), np.ones((5, 6), bool)):
+        got = seg_fg.euler_number8(mask)
+        assert got == euler_number(mask, connectivity=2)
+        back, nb = ndi.label(~np.pad(mask, 1))
+        n_holes = nb - 1 if nb else 0  # the padded frame's outer background is one component
+        assert got == ndi.label(mask, structure=np.ones((3, 3), bool))[1] - n_holes

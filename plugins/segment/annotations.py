@@ -156,8 +156,25 @@ def frame_ink(raw: np.ndarray) -> dict:
     """
     raw = np.asarray(raw)
     low, high = ink_levels(raw)
-    counts = np.bincount(raw.ravel()) if raw.dtype.kind == "u" and raw.dtype.itemsize <= 2 else None
+    counts = level_counts(raw) if raw.dtype.kind == "u" and raw.dtype.itemsize <= 2 else None
     return {"low": low, "high": high, "pixels": (raw <= low) | (raw >= high), "counts": counts}
+
+
+def level_counts(values: np.ndarray, chunk: int = 1 << 18) -> np.ndarray:
+    """``numpy.bincount(values.ravel())`` of 8 or 16 bit unsigned integers, counted ``chunk`` values at a time.
+
+    numpy widens the values to 64-bit integers before counting; done on a whole frame at once that is a
+    temporary of 8 bytes per pixel, which on a busy machine can cost more in fresh memory than the count
+    itself. The counts are the same.
+    """
+    flat = np.asarray(values).ravel()
+    if flat.size == 0:
+        return np.bincount(flat)
+    n = int(flat.max()) + 1
+    counts = np.zeros(n, np.intp)
+    for i in range(0, flat.size, chunk):
+        counts += np.bincount(flat[i:i + chunk], minlength=n)
+    return counts
 
 
 def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1, boxes: list | None = None,
