@@ -250,7 +250,8 @@ def fill_label(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, int, list]:
     filled mask. A hole of the mask (background not 4-connected to the frame's edge) is a hole of
     one 8-connected component ``C`` of the mask: the pixels that border the hole's outside are
     8-connected and all in the mask, hence in one component, which every path from the hole to the
-    edge crosses (Rosenfeld's digital topology, from memory). Conversely a hole of ``C`` alone that
+    edge crosses (A. Rosenfeld, "Digital topology", Amer. Math. Monthly 86(8), 621-630, 1979,
+    doi:10.2307/2321290; from memory). Conversely a hole of ``C`` alone that
     is background of the mask is a hole of the mask. So each component's holes are found in its own
     box. A component inside the hole of another (an island in a ring) merges with it; the others
     keep their numbers, which ``scipy.ndimage.label`` gives in the row-major order of first pixels
