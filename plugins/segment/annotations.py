@@ -139,7 +139,46 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
     return area < GLYPH_SOLIDITY * float(convex_hull_image(part).sum())
 
 
-def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1) -> np.ndarray:
+def frame_ink(raw: np.ndarray) -> dict:
+    """What :func:`drawn_labels` needs of the raw frame alone, worked out once for several calls.
+
+    Parameters
+    ----------
+    raw : ndarray, shape (rows, cols)
+        The frame as read.
+
+    Returns
+    -------
+    dict
+        ``low``, ``high`` (:func:`ink_levels`), ``pixels`` (bool, shape of ``raw``: at or below ``low``
+        or at or above ``high``) and ``counts`` (``numpy.bincount`` of the grey levels for 8 or 16 bit
+        unsigned frames, else None).
+    """
+    raw = np.asarray(raw)
+    low, high = ink_levels(raw)
+    counts = level_counts(raw) if raw.dtype.kind == "u" and raw.dtype.itemsize <= 2 else None
+    return {"low": low, "high": high, "pixels": (raw <= low) | (raw >= high), "counts": counts}
+
+
+def level_counts(values: np.ndarray, chunk: int = 1 << 18) -> np.ndarray:
+    """``numpy.bincount(values.ravel())`` of 8 or 16 bit unsigned integers, counted ``chunk`` values at a time.
+
+    numpy widens the values to 64-bit integers before counting; done on a whole frame at once that is a
+    temporary of 8 bytes per pixel, which on a busy machine can cost more in fresh memory than the count
+    itself. The counts are the same.
+    """
+    flat = np.asarray(values).ravel()
+    if flat.size == 0:
+        return np.bincount(flat)
+    n = int(flat.max()) + 1
+    counts = np.zeros(n, np.intp)
+    for i in range(0, flat.size, chunk):
+        counts += np.bincount(flat[i:i + chunk], minlength=n)
+    return counts
+
+
+def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1, boxes: list | None = None,
+                 ink: dict | None = None) -> np.ndarray:
     """Labels of a segmentation that are drawn marks.
 
     Parameters
@@ -148,6 +187,12 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1) -> np.ndarra
         Grains 1..n.
     raw : ndarray, shape (rows, cols)
         The frame as read.
+    rim : int
+        See :func:`is_drawn`.
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)``, when the caller has it already.
+    ink : dict, optional
+        :func:`frame_ink` of ``raw``, when the caller has it already.
 
     Returns
     -------
@@ -159,13 +204,22 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1) -> np.ndarra
         raise ValueError(f"raw frame shape {raw.shape} differs from the labels' shape {labels.shape}")
     # the frame stays in its own type (a whole-frame float64 copy costs more than the rest); comparisons
     # with the float levels promote elementwise, and every crop handed on is float64 as before
-    low, high = ink_levels(raw)
-    outside = raw[labels == 0]
-    background = median(outside) if outside.size else None
+    if ink is None:
+        ink = frame_ink(raw)
+    low, high = ink["low"], ink["high"]
+    if ink["counts"] is not None:
+        # the background's grey-level counts: the frame's less the objects' (fewer pixels to count)
+        counts = ink["counts"] - np.bincount(raw[labels != 0], minlength=len(ink["counts"]))
+        n_out = int(counts.sum())
+        background = median_of_counts(counts, n_out) if n_out else None
+    else:
+        outside = raw[labels == 0]
+        background = median(outside) if outside.size else None
     out, inked, reach = [], [], 0.0
-    boxes = ndi.find_objects(labels)
+    if boxes is None:
+        boxes = ndi.find_objects(labels)
     # only objects holding an ink pixel at all can be marks (one pass over the frame, not one per object)
-    has_ink = np.bincount(labels[(raw <= low) | (raw >= high)].ravel(), minlength=len(boxes) + 1) > 0
+    has_ink = np.bincount(labels[ink["pixels"]].ravel(), minlength=len(boxes) + 1) > 0
     bars = bar_candidates(labels, boxes)
     noise = noise_sd(raw, labels) if bars.any() else 0.0
     for k, sl in enumerate(boxes, start=1):
@@ -326,8 +380,18 @@ def median(values: np.ndarray) -> float:
     values = np.asarray(values).ravel()
     if values.dtype.kind != "u" or values.dtype.itemsize > 2:
         return float(np.median(values))
-    counts = np.cumsum(np.bincount(values))
-    n = values.size
-    lo = int(np.searchsorted(counts, (n - 1) // 2, side="right"))
-    hi = int(np.searchsorted(counts, n // 2, side="right"))
+    return median_of_counts(np.bincount(values), values.size)
+
+
+def median_of_counts(counts: np.ndarray, n: int) -> float:
+    """The median of ``n`` >= 1 non-negative integer values given by their counts (``counts[v]`` values ``v``).
+
+    Returns
+    -------
+    float
+        The middle value, or the mean of the two middle values of an even count (as :func:`median`).
+    """
+    cum = np.cumsum(counts)
+    lo = int(np.searchsorted(cum, (n - 1) // 2, side="right"))
+    hi = int(np.searchsorted(cum, n // 2, side="right"))
     return (float(lo) + float(hi)) / 2.0

@@ -8,6 +8,13 @@ the frame, so that the 3x3 operator sees the same pixels). Over a 2048 px frame 
 this avoids the whole-frame gradient and the whole-frame padding, raveling and marker scan of
 scikit-image's watershed; the result equals the whole-frame flood (tests/test_segment_speed.py).
 
+A frame has about 150 such pieces, and most of the cost of ``skimage.segmentation.watershed`` on one
+of them is its argument checks and paddings, not the flood. :func:`watershed_window` builds the
+padded arrays that function builds (float64 image, int8 mask, int32 labels, one pixel of zeros
+around) and hands them to the same compiled flood scikit-image calls; it falls back to the public
+function where that routine is missing or refuses the arguments. Same routine, same arrays: the same
+labels (tests/test_band_flood_direct.py compares the two).
+
 References
 ----------
 .. [1] F. Meyer and S. Beucher, "Morphological segmentation", J. Visual
@@ -22,6 +29,58 @@ import numpy as np
 from scipy import ndimage as ndi
 
 _CROSS = ndi.generate_binary_structure(2, 1)
+
+try:  # the compiled flood behind skimage.segmentation.watershed (checked against it in the tests)
+    from skimage.segmentation._watershed_cy import watershed_raveled as _flood_raveled
+except ImportError:  # pragma: no cover - another scikit-image layout: the public function is used
+    _flood_raveled = None
+
+
+def watershed_window(gradient: np.ndarray, seeds: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """``skimage.segmentation.watershed(gradient, seeds, mask=mask)`` (connectivity 1) for a small window.
+
+    Parameters
+    ----------
+    gradient : ndarray of float, shape (h, w)
+        The relief flooded.
+    seeds : ndarray of int32, shape (h, w)
+        Marker labels, 0 elsewhere; zero outside ``mask``.
+    mask : ndarray of bool, shape (h, w)
+        Where the flood may run.
+
+    Returns
+    -------
+    ndarray of int32, shape (h, w)
+        The labels scikit-image's watershed gives.
+
+    Notes
+    -----
+    scikit-image pads its float64 image, int8 mask and labels with one pixel of zeros, lists the
+    nonzero labels in raster order, and floods with the neighbour offsets ``(-W, -1, 1, W)`` (``W``
+    the padded width, its 4-neighbourhood in its own order), compactness 0 and no watershed line.
+    The same arrays are built here in one step each and passed to the same routine.
+    """
+    seeds = np.asarray(seeds)
+    if _flood_raveled is None or seeds.dtype != np.int32:
+        from skimage.segmentation import watershed
+
+        return watershed(gradient, seeds, mask=mask)
+    h, w = gradient.shape
+    big_w = w + 2
+    relief = np.zeros((h + 2, big_w), np.float64)
+    relief[1:-1, 1:-1] = gradient
+    allowed = np.zeros((h + 2, big_w), np.int8)
+    allowed[1:-1, 1:-1] = mask
+    out = np.zeros((h + 2, big_w), np.int32)
+    out[1:-1, 1:-1] = seeds
+    try:
+        _flood_raveled(relief.ravel(), np.flatnonzero(out), np.array([-big_w, -1, 1, big_w], np.intp),
+                       allowed.ravel(), np.array([big_w, 1], np.intp), 0.0, out.ravel(), False)
+    except (TypeError, ValueError):  # pragma: no cover - the routine's signature changed: the public function
+        from skimage.segmentation import watershed
+
+        return watershed(gradient, seeds, mask=mask)
+    return out[1:-1, 1:-1]
 
 
 def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: int = 2) -> np.ndarray:
@@ -45,7 +104,6 @@ def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: 
         (scikit-image, connectivity 1).
     """
     from skimage.filters import sobel
-    from skimage.segmentation import watershed
 
     rows, cols = band.shape
     out = np.zeros(band.shape, bool)
@@ -60,6 +118,6 @@ def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: 
         seeds = np.where(own, markers[win], 0)
         if not (seeds == label).any():
             continue
-        flooded = watershed(sobel(image[win]), seeds, mask=own)
+        flooded = watershed_window(sobel(image[win]), seeds.astype(np.int32, copy=False), own)
         out[win] |= flooded == label
     return out

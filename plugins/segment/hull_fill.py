@@ -43,25 +43,37 @@ def hull_vertices2(mask: np.ndarray) -> np.ndarray | None:
     The midpoints of the edges of pixel ``(r, c)`` are ``(2r +- 1, 2c)`` and
     ``(2r, 2c +- 1)`` doubled. Every pixel of a row lies between the row's
     leftmost and rightmost pixels, so its midpoints lie in the hull of theirs:
-    only those two pixels per row are handed to Quickhull [2]_.
+    only those two pixels per row count. Of their midpoints on one odd line
+    ``Y = 2r + 1`` (the bottom edges of row ``r``, the top edges of row
+    ``r + 1``) only the leftmost and the rightmost are kept: the others lie
+    on the segment between them, inside the hull, which stays the same.
+    Without repeated points (which can upset Quickhull [2]_) no sort is
+    needed to weed them out, and Quickhull gets about a third fewer points.
     """
     from scipy.spatial import ConvexHull
 
     m = np.asarray(mask, bool)
-    rows = np.flatnonzero(m.any(axis=1))
+    present = m.any(axis=1)
+    rows = np.flatnonzero(present)
     if rows.size == 0:
         return None
-    sub = m[rows]
-    left = sub.argmax(axis=1).astype(np.int64)
-    right = (m.shape[1] - 1 - sub[:, ::-1].argmax(axis=1)).astype(np.int64)
-    r2 = 2 * rows.astype(np.int64)
-    lx, rx = 2 * left, 2 * right
-    ys = np.concatenate([r2 - 1, r2 + 1, r2, r2 - 1, r2 + 1, r2])
-    xs = np.concatenate([lx, lx, lx - 1, rx, rx, rx + 1])
-    # repeated points can upset Quickhull: keep each once
-    width = 2 * m.shape[1] + 4
-    key = np.unique((ys + 1) * width + (xs + 1))
-    pts = np.stack([key // width - 1, key % width - 1], axis=1)
+    r0, r1 = int(rows[0]), int(rows[-1])
+    sub = m[r0:r1 + 1]
+    has = present[r0:r1 + 1]
+    far = np.int64(4 * (m.shape[0] + m.shape[1]) + 8)
+    left = np.where(has, sub.argmax(axis=1), far).astype(np.int64)
+    right = np.where(has, m.shape[1] - 1 - sub[:, ::-1].argmax(axis=1), -far).astype(np.int64)
+    # odd line i (Y = 2 (r0 + i) - 1, i = 0 .. n): between row r0 + i - 1 and row r0 + i
+    lo = np.minimum(np.r_[far, left], np.r_[left, far])
+    hi = np.maximum(np.r_[-far, right], np.r_[right, -far])
+    y_odd = 2 * (r0 + np.arange(lo.size, dtype=np.int64)) - 1
+    near = lo < far  # a line next to a row of the shape (rows of a shape in pieces may be empty)
+    wide = hi > lo  # a line with one pixel's corner only gives one point
+    r2 = 2 * (r0 + np.flatnonzero(has).astype(np.int64))
+    lx, rx = left[has], right[has]
+    ys = np.concatenate([y_odd[near], y_odd[wide], r2, r2])
+    xs = np.concatenate([2 * lo[near], 2 * hi[wide], 2 * lx - 1, 2 * rx + 1])
+    pts = np.stack([ys, xs], axis=1)
     hull = ConvexHull(pts.astype(np.float64))
     return pts[hull.vertices]
 

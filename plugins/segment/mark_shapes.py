@@ -182,7 +182,7 @@ def survives_disk_erosion(mask: np.ndarray, radius: float) -> bool:
     return bool(erode_disk(np.pad(m, 1), radius, 0).any())
 
 
-def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) -> np.ndarray:
     """Labels that form a line of text: glyph-like objects of one height on one baseline.
 
     Parameters
@@ -191,6 +191,8 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
         Grains 1..n.
     drawn : ndarray of bool, shape (rows, cols)
         Pixels above the noise threshold.
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)``, when the caller has it already.
 
     Returns
     -------
@@ -211,7 +213,7 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
     """
     from skimage.morphology import convex_hull_image
 
-    items, ids, top, bottom, left, right = box_table(labels)
+    items, ids, top, bottom, left, right = box_table(labels, boxes)
     if len(items) < TEXT_MIN_GLYPHS:
         return np.zeros(0, np.int64)
     height = (bottom - top).astype(float)
@@ -249,7 +251,7 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray) -> np.ndarray:
 
 
 def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
-                 drawn: np.ndarray | None = None) -> np.ndarray:
+                 drawn: np.ndarray | None = None, boxes: list | None = None) -> np.ndarray:
     """Labels that form the caption of a scale bar ("50 nm" above or below the bar).
 
     Parameters
@@ -263,6 +265,8 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
         Pixels above the noise threshold; with it a lone object counts as a
         caption (glyphs run together) when they fill under
         :data:`TEXT_SOLIDITY` of its convex hull.
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)``, when the caller has it already.
 
     Returns
     -------
@@ -285,7 +289,7 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
     """
     from skimage.morphology import convex_hull_image
 
-    items, ids, top, bottom, left, right = box_table(labels)
+    items, ids, top, bottom, left, right = box_table(labels, boxes)
     drop: set[int] = set()
     if not items or not bars:
         return np.zeros(0, np.int64)
@@ -316,8 +320,16 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
     return np.asarray(sorted(drop), np.int64)
 
 
-def box_table(labels: np.ndarray) -> tuple[list, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def box_table(labels: np.ndarray, boxes: list | None = None) -> tuple[list, np.ndarray, np.ndarray, np.ndarray,
+                                                                       np.ndarray, np.ndarray]:
     """The labels present and their bounding boxes as columns.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)`` (entry ``k - 1`` the box of label ``k``, None for a label
+        not present); computed here when not given.
 
     Returns
     -------
@@ -326,7 +338,9 @@ def box_table(labels: np.ndarray) -> tuple[list, np.ndarray, np.ndarray, np.ndar
     ids, top, bottom, left, right : ndarray of int
         The labels and their boxes' first and past-the-end row and column.
     """
-    items = [(k + 1, b) for k, b in enumerate(ndi.find_objects(labels)) if b is not None]
+    if boxes is None:
+        boxes = ndi.find_objects(labels)
+    items = [(k + 1, b) for k, b in enumerate(boxes) if b is not None]
     ids = np.array([k for k, _ in items], np.int64)
     top, bottom, left, right = (np.array([getattr(b[axis], end) for _, b in items], np.int64)
                                 for axis, end in ((0, "start"), (0, "stop"), (1, "start"), (1, "stop")))
