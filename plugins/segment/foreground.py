@@ -23,6 +23,13 @@ from grainhabit.plugins.segment.levels import check_image, odd_size
 
 #: Width (px) of the skirt of a component that the auto threshold cuts at half its peak.
 EDGE_BAND_PX = 3.0
+#: Deep pixels at or below this share of their component's peak are kept only within STRONG_REACH_PX of
+#: pixels above the level (a faint stain or film fold round a grain is not the grain).
+STAIN_SHARE = 0.25
+STRONG_REACH_PX = 3.0
+#: A faint part that large (px) and that convex (solidity) is a faint grain touching a bright one, kept.
+PLATE_MIN_AREA_PX = 100
+PLATE_SOLIDITY = 0.8
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -160,9 +167,12 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     Returns
     -------
     ndarray of bool, shape (rows, cols)
-        In every 8-connected component ``C`` of ``I > T_n``: its pixels deeper
-        than :data:`EDGE_BAND_PX` from its outline, and the others where
-        ``I > f * max_C(I)``.
+        In every 8-connected component ``C`` of ``I > T_n``: the pixels where
+        ``I > f * max_C(I)``, and those deeper than :data:`EDGE_BAND_PX` from
+        its outline, except deep pixels at most :data:`STAIN_SHARE` of the
+        peak farther than :data:`STRONG_REACH_PX` from the pixels above the
+        level, in parts not shaped like a grain (:func:`diffuse_parts`): the
+        faint stain, film fold or halo a grain lies on.
 
     Notes
     -----
@@ -193,8 +203,39 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     # facet lines and texture deeper inside never split a grain
     deep = erode_disk(weak, EDGE_BAND_PX, 1)  # binary_erosion by disk_structure(EDGE_BAND_PX), border 1
     # the level test on the pixels of weak only (the same comparison as over the whole frame)
-    deep.ravel()[at[value > edge_level * peak[own]]] = True
+    strong = np.zeros(weak.shape, bool)
+    strong.ravel()[at[value > edge_level * peak[own]]] = True
+    # deep pixels at a small share of the peak and far from every pixel above the level are a faint stain
+    # or film fold the grain lies on, not the grain: dropped beyond STRONG_REACH_PX of the grain's pixels
+    faint = np.zeros(weak.shape, bool)
+    faint.ravel()[at[value <= STAIN_SHARE * peak[own]]] = True
+    stain = faint & deep & ~dilate_disk(strong, STRONG_REACH_PX)
+    if stain.any():
+        deep &= ~diffuse_parts(stain)
+    deep |= strong
     return deep
+
+
+def diffuse_parts(mask: np.ndarray) -> np.ndarray:
+    """The parts of ``mask`` that are not shaped like a grain: small, or far from convex.
+
+    A faint region joined to a bright grain is either a stain, film fold or halo
+    (diffuse, winding round the grain) or a faint grain of its own touching it (a thin
+    plate: compact, convex). Parts of at least :data:`PLATE_MIN_AREA_PX` px whose
+    solidity (area over convex hull area) is at least :data:`PLATE_SOLIDITY` are kept.
+    """
+    from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+
+    lab, n = ndi.label(mask, structure=_EIGHT)
+    out = mask.copy()
+    areas = np.bincount(lab.ravel(), minlength=n + 1)
+    for k, box in enumerate(ndi.find_objects(lab), start=1):
+        if box is None or areas[k] < PLATE_MIN_AREA_PX:
+            continue
+        part = lab[box] == k
+        if areas[k] >= PLATE_SOLIDITY * convex_hull_mask(part).sum():
+            out[box][part] = False
+    return out
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
