@@ -80,3 +80,21 @@ def test_diffuse_parts_keeps_compact_parts():
     d = foreground.diffuse_parts(m)
     assert not d[10:40, 10:40].any()
     assert d[(62 + 8 * np.sin(x / 8.0)).astype(int), x].all() and d[80, 70:100].all() and d[5:9, 100:104].all()
+
+
+def test_enclosed_crevices_are_not_stains():
+    # a part of mask that never meets the outer skirt (a dark crevice inside a rough grain) is kept
+    m = np.zeros((60, 60), bool)
+    m[20:24, 10:50] = True                   # winding or not, it lies inside: not diffuse
+    outer = np.zeros((60, 60), bool)
+    outer[0, :] = True
+    assert not foreground.diffuse_parts(m, outer).any()
+    outer[22, 9] = True                      # now it meets the skirt: a thin band, diffuse
+    x = np.arange(10, 50)
+    m2 = np.zeros((60, 60), bool)
+    for dy in range(3):
+        m2[(22 + 6 * np.sin(x / 5.0)).astype(int) + dy, x] = True
+    outer2 = np.zeros((60, 60), bool)
+    outer2[m2.nonzero()[0][0], 9] = True
+    outer2 = ndi.binary_dilation(outer2)
+    assert foreground.diffuse_parts(m2, outer2).any()

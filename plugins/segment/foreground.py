@@ -211,18 +211,21 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     faint.ravel()[at[value <= STAIN_SHARE * peak[own]]] = True
     stain = faint & deep & ~dilate_disk(strong, STRONG_REACH_PX)
     if stain.any():
-        deep &= ~diffuse_parts(stain)
+        # a stain reaches the component's outer skirt; a dark crevice of a rough grain lies inside it
+        deep &= ~diffuse_parts(stain, dilate_disk(weak & ~deep, 1.5))
     deep |= strong
     return deep
 
 
-def diffuse_parts(mask: np.ndarray) -> np.ndarray:
+def diffuse_parts(mask: np.ndarray, outer: np.ndarray | None = None) -> np.ndarray:
     """The parts of ``mask`` that are not shaped like a grain: small, or far from convex.
 
     A faint region joined to a bright grain is either a stain, film fold or halo
     (diffuse, winding round the grain) or a faint grain of its own touching it (a thin
     plate: compact, convex). Parts of at least :data:`PLATE_MIN_AREA_PX` px whose
-    solidity (area over convex hull area) is at least :data:`PLATE_SOLIDITY` are kept.
+    solidity (area over convex hull area) is at least :data:`PLATE_SOLIDITY` are kept;
+    with ``outer`` (ndarray of bool), so are the parts that do not meet it (the dark
+    crevices of a rough grain, enclosed by the grain).
     """
     from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
@@ -230,10 +233,12 @@ def diffuse_parts(mask: np.ndarray) -> np.ndarray:
     out = mask.copy()
     areas = np.bincount(lab.ravel(), minlength=n + 1)
     for k, box in enumerate(ndi.find_objects(lab), start=1):
-        if box is None or areas[k] < PLATE_MIN_AREA_PX:
+        if box is None:
             continue
         part = lab[box] == k
-        if areas[k] >= PLATE_SOLIDITY * convex_hull_mask(part).sum():
+        if outer is not None and not (outer[box] & part).any():
+            out[box][part] = False
+        elif areas[k] >= PLATE_MIN_AREA_PX and areas[k] >= PLATE_SOLIDITY * convex_hull_mask(part).sum():
             out[box][part] = False
     return out
 
