@@ -25,11 +25,14 @@ H_MIN_PX = 1.5
 MIN_DEPTH_PX = 2.0
 #: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
 NECK_RATIO = 0.75
-#: Levels of recursive cutting at most.
-MAX_DEPTH = 5
-#: Cuts tried per component at most, over all recursion levels (bounds the time).
+#: Levels of recursive cutting at most (a chain of grains may be cut one grain at a time).
+MAX_DEPTH = 30
+#: Cuts tried per component at most, over all recursion levels (bounds the time), per HEAP_GRAINS grains
+#: the component could hold (its area over the disc of its largest inscribed radius), and at least this.
 MAX_CUTS = 200
-#: Smallest part of a split, as a fraction of the whole component's area.
+HEAP_GRAINS = 10.0
+#: Smallest part of a split, as a fraction of the whole component's area (the heap's floor), except for
+#: cuts between corners (see :data:`NOTCH_TURN_DEG`).
 MIN_PART_FRACTION = 0.1
 #: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
 PART_SLACK = 2.0
@@ -45,6 +48,13 @@ SEAM_CLEAR_PX = 3.0
 NECK_WIDTH = 1.2
 #: A cut from one notch to the nearest outline point crosses a neck when the notch is this many times its length.
 ONE_NOTCH_RATIO = 1.0
+#: A cut leaving a part below the heap's floor (a tenth of the component) must end in corners: the outline
+#: turns by at least this many degrees at both its ends (a side of a rod turns by almost none).
+NOTCH_TURN_DEG = 35.0
+#: The turn at a cut's end is measured over arms of this fraction of the cut's length ...
+NOTCH_ARM_FRACTION = 0.25
+#: ... and never shorter than this (px; blur and thresholding round a corner over a few pixels).
+NOTCH_ARM_PX = 3.0
 #: A shape whose deepest concavity exceeds this many times its allowance is no single grain: a cut into
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
@@ -309,8 +319,42 @@ def _cut_line(mask: np.ndarray, p: np.ndarray, q: np.ndarray):
     return line(r0, c0, r1, c1)
 
 
+def _turning(outline: np.ndarray, arc: np.ndarray, total: float, point: np.ndarray, arm: float) -> float:
+    """Angle (degrees) by which a closed outline turns at one of its points, over arms of a given length.
+
+    Parameters
+    ----------
+    outline : ndarray of float, shape (k, 2)
+        Closed outline (row, col), in order.
+    arc : ndarray of float, shape (k,)
+        Arc length (px) from the first point to each point.
+    total : float
+        Length of the whole outline (px).
+    point : ndarray of float, shape (2,)
+        A point of the outline (the nearest one is taken).
+    arm : float
+        Arc length (px) before and after the point over which the direction is taken.
+
+    Returns
+    -------
+    float
+        The angle between the chords (point before -> point) and (point -> point after), 0 to 180:
+        near 0 on a straight or gently curved side, about 90 where two square grains meet face to
+        face, 60 to 180 where two discs meet (handbook geometry: the tangents of two circles whose
+        centres are ``D`` apart turn by ``180 - 2 acos(D / 2r)`` at their crossing).
+    """
+    i = int(np.argmin(np.hypot(*(outline - point).T)))
+    before = outline[int(np.argmin(np.abs((arc - (arc[i] - arm)) % total)))]
+    after = outline[int(np.argmin(np.abs((arc - (arc[i] + arm)) % total)))]
+    u, v = outline[i] - before, after - outline[i]
+    nu, nv = float(np.hypot(*u)), float(np.hypot(*v))
+    if nu == 0 or nv == 0:
+        return 0.0
+    return float(np.degrees(np.arccos(np.clip(np.dot(u, v) / (nu * nv), -1.0, 1.0))))
+
+
 def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
-                    image: np.ndarray | None, keep: bool) -> list[np.ndarray] | None:
+                    image: np.ndarray | None, keep: bool, fine_area: float) -> list[np.ndarray] | None:
     """The parts of a cut, each concave one split again.
 
     With ``keep`` false, None as soon as a concave part cannot be split;
@@ -321,7 +365,7 @@ def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float
         if is_convex(part, split_depth, PART_SLACK):
             out.append(part)
             continue
-        sub = _split(part, min_area, split_depth, depth + 1, budget, image)
+        sub = _split(part, min_area, split_depth, depth + 1, budget, image, fine_area)
         if sub is None:
             if not keep:
                 return None
@@ -350,7 +394,7 @@ def _split_at_seams(mask: np.ndarray, min_area: float, depth: int, budget: list,
 
 def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
                       budget: list, image: np.ndarray | None = None,
-                      seam_only: bool = False) -> list[np.ndarray] | None:
+                      seam_only: bool = False, fine_area: float | None = None) -> list[np.ndarray] | None:
     """Cut across a neck between concavities so that the parts are convex (or split further).
 
     A cut is across a neck when the notches at its ends are deep for its
@@ -367,6 +411,16 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     concavity exceeds :data:`CLEAR_CONCAVITY` times its allowance is no
     single grain: there a cut into two convex parts is kept without a neck
     or a seam (a triangle pressed against a square along its whole side).
+
+    No part is smaller than ``min_area`` (the heap's floor, a tenth of the
+    component) nor a tenth of this shape, except after a cut between two
+    notches that are corners (the outline turns by :data:`NOTCH_TURN_DEG`
+    or more at both ends, over arms of a quarter of the cut's length) and
+    narrower than both parts (half its length at most :data:`NECK_WIDTH`
+    times the thinner part's inscribed radius): a grain of a heap of more
+    than ten. The straight side of a rod, where the notch of a pocket
+    between the grains touching it may lie, turns by almost nothing there.
+    Such parts are at least ``fine_area`` (default ``min_area``).
     """
     r_eq = np.sqrt(mask.sum() / np.pi)
     defects, outline = convexity_defects(mask, max(MIN_DEPTH_PX, split_depth * r_eq), outline=True)
@@ -374,6 +428,11 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         return None
     # no part may be a sliver of the shape being cut either
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
+    fine_area = min_area if fine_area is None else fine_area
+    fine_part = max(fine_area, MIN_PART_FRACTION * float(mask.sum()))
+    step = np.hypot(*np.diff(np.vstack([outline, outline[:1]]), axis=0).T)
+    arc = np.concatenate([[0.0], np.cumsum(step)[:-1]])  # arc length (px) along the outline
+    total = float(step.sum())
     cuts = []
     for a in range(len(defects)):
         for b in range(a + 1, len(defects)):
@@ -382,9 +441,6 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     cuts.sort(key=lambda c: c[0])
     cuts = cuts[:8]
     # a concavity whose partner is too shallow to count: cut to the nearest outline points
-    step = np.hypot(*np.diff(np.vstack([outline, outline[:1]]), axis=0).T)
-    arc = np.concatenate([[0.0], np.cumsum(step)[:-1]])
-    total = float(step.sum())
     for p, dp in defects:
         d = np.hypot(*(outline - p).T)
         ip = int(np.argmin(d))
@@ -404,7 +460,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     fallback = None
     clearly_concave = (not seam_only
                        and concavity_depth(mask) > CLEAR_CONCAVITY * max(MIN_DEPTH_PX, split_depth * r_eq))
-    for _, p, q, notches in cuts:
+    for key, p, q, notches in cuts:
         if budget[0] <= 0:
             break
         length = float(np.hypot(*(p - q)))
@@ -412,14 +468,21 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         if not narrow and image is None:
             continue
         budget[0] -= 1
-        parts = _cut(mask, p, q, min_part)
+        pair = narrow and np.isfinite(key)
+        parts = _cut(mask, p, q, fine_part if pair else min_part)
         if parts is None:
             continue
         # notches alone mark a neck only where the cut is narrower than the thicker part (a thin band,
         # a rim or a ring cut across has deep notches on its inner side but no neck)
         if narrow:
-            thick = max(float(ndi.distance_transform_edt(part).max()) for part in parts) - 0.5
-            narrow = 0.5 * length <= NECK_WIDTH * thick
+            radii = [float(ndi.distance_transform_edt(part).max()) - 0.5 for part in parts]
+            narrow = 0.5 * length <= NECK_WIDTH * max(radii)
+            if min(part.sum() for part in parts) < min_part:
+                # a part below the heap's floor: a grain of a heap, cut off between corners, narrower than both parts
+                arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
+                if not (narrow and 0.5 * length <= NECK_WIDTH * min(radii)
+                        and min(_turning(outline, arc, total, x, arm) for x in (p, q)) >= NOTCH_TURN_DEG):
+                    continue
         if not narrow and (image is None
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
             # no neck and no seam: a shape far from convex (notches over CLEAR_CONCAVITY times the
@@ -428,13 +491,13 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                 continue
         if seam_only:
             return parts
-        out = _divide_further(parts, min_area, split_depth, depth, budget, image, keep=False)
+        out = _divide_further(parts, min_area, split_depth, depth, budget, image, keep=False, fine_area=fine_area)
         if out is not None:
             return out
         if fallback is None:
             fallback = parts
     if fallback is not None:
-        return _divide_further(fallback, min_area, split_depth, depth, budget, image, keep=True)
+        return _divide_further(fallback, min_area, split_depth, depth, budget, image, keep=True, fine_area=fine_area)
     return None
 
 
@@ -468,8 +531,11 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     :func:`_split_at_defects`); the visible boundary between an overlapping
     pair is an edge of the front (convex) grain, which runs between these
     two points. Parts that are still concave are split again; no part is
-    smaller than a tenth of the shape it is cut from. If no cut crosses a
-    neck, the distance-map watershed is tried.
+    smaller than a tenth of the shape it is cut from, nor, but for cuts between two corners that are
+    narrower than both parts, a tenth of the component (the heap's floor; see
+    :func:`_split_at_defects`). If no cut crosses a neck, the distance-map watershed is tried (parts
+    of a tenth of the component at least). Neighbouring parts, one of them under the heap's floor,
+    that meet at no neck and no seam are joined again (:func:`_rejoin`).
     """
     if mask.sum() < 2 * min_area:
         return [mask]
@@ -479,20 +545,95 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     # no part may be a sliver of the component: a tenth of its area at least (a letter's stem and bowl
     # are not two grains)
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    return _split(mask, min_part, split_depth, 0, [MAX_CUTS], image) or [mask]
+    radius = float(ndi.distance_transform_edt(mask).max())
+    grains = float(mask.sum()) / (np.pi * radius ** 2)  # how many of its thickest grain it could hold
+    budget = [int(MAX_CUTS * max(1.0, grains / HEAP_GRAINS))]
+    parts = _split(mask, min_part, split_depth, 0, budget, image, min_area) or [mask]
+    if len(parts) > 2:
+        parts = _rejoin(parts, split_depth, image, min_part)
+    return parts
+
+
+def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
+    """Whether two touching parts meet at a neck of their union: notches at both ends of their border.
+
+    The border (pixels of ``b`` next to ``a``) reaches the union's outline at two ends (or more); each
+    end's notch is the depth (largest distance to the union) of the pockets of the union's convex hull
+    that reach within 2 px of it. A neck: twice the shallower of the two deepest end notches is at least :data:`NOTCH_RATIO`
+    of the border's length, as for a cut (:func:`_split_at_defects`).
+    """
+    union = a | b
+    border = ndi.binary_dilation(a, structure=_EIGHT) & b
+    outside = ~union
+    ends = border & ndi.binary_dilation(outside, structure=_EIGHT)
+    end_labels, n_ends = ndi.label(ndi.binary_dilation(ends, structure=_EIGHT, iterations=2), structure=_EIGHT)
+    if n_ends < 2:
+        return False
+    pocket = convex_hull_mask(union) & outside
+    if not pocket.any():
+        return False
+    pockets, n_pockets = ndi.label(pocket, structure=_EIGHT)
+    deepest = np.r_[0.0, ndi.maximum(ndi.distance_transform_edt(outside), pockets, index=np.arange(1, n_pockets + 1))]
+    notch = np.sort([deepest[np.unique(pockets[end_labels == k])].max() for k in range(1, n_ends + 1)])[::-1]
+    rows, cols = np.nonzero(border)
+    length = float(np.hypot(rows.max() - rows.min(), cols.max() - cols.min()))
+    return 2.0 * float(notch[1]) >= NOTCH_RATIO * length
+
+
+def _rejoin(parts: list[np.ndarray], split_depth: float, image: np.ndarray | None,
+            heap_floor: float) -> list[np.ndarray]:
+    """Join back neighbouring parts that make one convex shape together (no neck between them).
+
+    Two parts whose union is convex within the allowance (:func:`is_convex`) were cut where the notches at
+    the cut's ends belong to other grains (a rod with grains touching its sides, cut across between their
+    contacts); they are joined unless the image shows a dark seam between them (:func:`seam_contrast`).
+    Pairs with the smaller part first; repeated until no pair joins.
+    """
+    parts = list(parts)
+    while True:
+        order = sorted(range(len(parts)), key=lambda i: parts[i].sum())
+        joined = False
+        for i in order:
+            grown = ndi.binary_dilation(parts[i], structure=_EIGHT)
+            for j in order:
+                if j == i or not (grown & parts[j]).any():
+                    continue
+                if min(parts[i].sum(), parts[j].sum()) >= heap_floor:
+                    continue
+                union = parts[i] | parts[j]
+                rows, cols = np.nonzero(union)
+                box = (slice(max(rows.min() - 1, 0), rows.max() + 2), slice(max(cols.min() - 1, 0), cols.max() + 2))
+                if not is_convex(union[box], split_depth) and _meet_at_neck(parts[i][box], parts[j][box]):
+                    continue
+                if image is not None:
+                    line = grown & parts[j]
+                    rr, cc = np.nonzero(line[box])
+                    if seam_contrast(image[box], union[box], [parts[i][box], parts[j][box]], rr, cc) >= SEAM_DIP:
+                        continue
+                parts[i] = union
+                del parts[j]
+                joined = True
+                break
+            if joined:
+                break
+        if not joined:
+            return parts
 
 
 def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
-           budget: list, image: np.ndarray | None = None) -> list[np.ndarray] | None:
+           budget: list, image: np.ndarray | None = None, fine_area: float | None = None) -> list[np.ndarray] | None:
     """Parts of a concave shape divided at necks, or None if no acceptable split exists."""
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
-    if depth > MAX_DEPTH or mask.sum() < 2 * min_area:
+    fine_area = min_area if fine_area is None else fine_area
+    if depth > MAX_DEPTH or mask.sum() < 2 * fine_area:
         return None
-    parts = _split_at_defects(mask, min_area, split_depth, depth, budget, image)
+    parts = _split_at_defects(mask, min_area, split_depth, depth, budget, image, fine_area=fine_area)
     if parts is not None:
         return parts
+    if mask.sum() < 2 * min_area:
+        return None
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
     dist = ndi.distance_transform_edt(mask)
     dmax = float(dist.max())
