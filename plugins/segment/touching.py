@@ -31,6 +31,9 @@ MAX_DEPTH = 30
 #: the component could hold (its area over the disc of its largest inscribed radius), and at least this.
 MAX_CUTS = 200
 HEAP_GRAINS = 10.0
+#: A shape that could hold this many discs of its largest inscribed radius is a heap: the distance-map
+#: watershed is tried on it first (:func:`_split_heap`).
+HEAP_MIN_GRAINS = 6.0
 #: Smallest part of a split, as a fraction of the whole component's area (the heap's floor), except for
 #: cuts between corners (see :data:`NOTCH_TURN_DEG`).
 MIN_PART_FRACTION = 0.1
@@ -51,10 +54,19 @@ ONE_NOTCH_RATIO = 1.0
 #: A cut leaving a part below the heap's floor (a tenth of the component) must end in corners: the outline
 #: turns by at least this many degrees at both its ends (a side of a rod turns by almost none).
 NOTCH_TURN_DEG = 35.0
+#: ... and the cut leaves each corner within this many degrees of the notch's axis.
+NOTCH_AXIS_DEG = 60.0
 #: The turn at a cut's end is measured over arms of this fraction of the cut's length ...
 NOTCH_ARM_FRACTION = 0.25
 #: ... and never shorter than this (px; blur and thresholding round a corner over a few pixels).
 NOTCH_ARM_PX = 3.0
+#: A cut from one notch is across a band (not a neck) when the shape beyond it stays as narrow as the cut,
+#: within this fraction (plus 2 px) ...
+BAND_TOLERANCE = 0.15
+#: ... for more than this many times the cut's length on one side.
+BAND_RUN = 1.3
+#: Enclosed pixels below this fraction of a component's median level are background (a pocket), not grain.
+POCKET_LEVEL = 0.25
 #: A shape whose deepest concavity exceeds this many times its allowance is no single grain: a cut into
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
@@ -319,8 +331,9 @@ def _cut_line(mask: np.ndarray, p: np.ndarray, q: np.ndarray):
     return line(r0, c0, r1, c1)
 
 
-def _turning(outline: np.ndarray, arc: np.ndarray, total: float, point: np.ndarray, arm: float) -> float:
-    """Angle (degrees) by which a closed outline turns at one of its points, over arms of a given length.
+def _corner(outline: np.ndarray, arc: np.ndarray, total: float, point: np.ndarray, arm: float,
+            toward: np.ndarray) -> tuple[float, float]:
+    """How sharply a closed outline turns at one of its points, and how a cut from there meets the turn.
 
     Parameters
     ----------
@@ -333,15 +346,23 @@ def _turning(outline: np.ndarray, arc: np.ndarray, total: float, point: np.ndarr
     point : ndarray of float, shape (2,)
         A point of the outline (the nearest one is taken).
     arm : float
-        Arc length (px) before and after the point over which the direction is taken.
+        Arc length (px) before and after the point over which the directions are taken.
+    toward : ndarray of float, shape (2,)
+        The other end of a cut from ``point``.
 
     Returns
     -------
-    float
-        The angle between the chords (point before -> point) and (point -> point after), 0 to 180:
-        near 0 on a straight or gently curved side, about 90 where two square grains meet face to
-        face, 60 to 180 where two discs meet (handbook geometry: the tangents of two circles whose
-        centres are ``D`` apart turn by ``180 - 2 acos(D / 2r)`` at their crossing).
+    turn : float
+        Angle (degrees, 0 to 180) between the chords (point before -> point) and (point -> point
+        after): near 0 on a straight or gently curved side, about 90 where two square grains meet
+        face to face, 60 to 180 where two discs meet (handbook geometry: the tangents of two circles
+        whose centres are ``D`` apart turn by ``180 - 2 acos(D / 2r)`` at their crossing).
+    off_axis : float
+        Angle (degrees) between the cut and the notch's axis (the bisector of the two chords from the
+        point, reversed: into the shape). Where two grains meet the line between them leaves the
+        notch along its axis (two discs: 0; a small square face to face against a larger one: 45);
+        a cut that crosses a rod from the corner where another grain touches its side leaves at
+        nearly 90 degrees.
     """
     i = int(np.argmin(np.hypot(*(outline - point).T)))
     before = outline[int(np.argmin(np.abs((arc - (arc[i] - arm)) % total)))]
@@ -349,8 +370,62 @@ def _turning(outline: np.ndarray, arc: np.ndarray, total: float, point: np.ndarr
     u, v = outline[i] - before, after - outline[i]
     nu, nv = float(np.hypot(*u)), float(np.hypot(*v))
     if nu == 0 or nv == 0:
-        return 0.0
-    return float(np.degrees(np.arccos(np.clip(np.dot(u, v) / (nu * nv), -1.0, 1.0))))
+        return 0.0, 90.0
+    turn = float(np.degrees(np.arccos(np.clip(np.dot(u, v) / (nu * nv), -1.0, 1.0))))
+    axis = u / nu - v / nv  # minus the sum of the unit chords from the point: into the shape
+    cut = toward - outline[i]
+    na, nc = float(np.hypot(*axis)), float(np.hypot(*cut))
+    if na == 0 or nc == 0:
+        return turn, 90.0
+    return turn, float(np.degrees(np.arccos(np.clip(np.dot(axis, cut) / (na * nc), -1.0, 1.0))))
+
+
+def _is_band(mask: np.ndarray, p: np.ndarray, q: np.ndarray) -> bool:
+    """Whether the segment p-q runs across a band (a rod, a plate seen edge-on) rather than a neck.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        The shape being cut.
+    p, q : ndarray of float, shape (2,)
+        Ends of the cut (row, col), on the outline.
+
+    Returns
+    -------
+    bool
+        True when, on either side, the shape's chord parallel to the cut stays within
+        ``(1 + BAND_TOLERANCE) * length + 2 px`` for more than :data:`BAND_RUN` times the cut's length
+        beyond it (the chord's middle followed step by step, 1 px at a time): the cut then lies across
+        a band that goes on past it, as when a grain touches a rod's side.
+    """
+    u = q - p
+    length = float(np.hypot(*u))
+    if length == 0:
+        return False
+    u = u / length
+    limit = (1.0 + BAND_TOLERANCE) * length + 2.0
+    s = np.arange(-limit, limit + 0.5, 0.5)
+    mid = len(s) // 2
+    lo, hi = np.zeros(2), np.array(mask.shape, float) - 1
+    for sign in (1.0, -1.0):
+        normal = sign * np.array([-u[1], u[0]])
+        centre = 0.5 * (p + q)
+        t = 0
+        while t <= BAND_RUN * length:
+            t += 1
+            centre = centre + normal
+            pts = np.clip(np.round(centre + s[:, None] * u), lo, hi).astype(int)
+            inside = mask[pts[:, 0], pts[:, 1]]
+            if not inside[mid]:
+                break  # the shape ends (or turns away) here
+            if inside[:mid + 1].all() or inside[mid:].all():
+                break  # wider than the limit: the shape widens past the cut
+            left = mid - int(np.argmin(inside[mid::-1]))
+            right = mid + int(np.argmin(inside[mid:]))
+            centre = centre + 0.5 * (s[left + 1] + s[right - 1]) * u
+        else:
+            return True
+    return False
 
 
 def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
@@ -480,9 +555,13 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
             if min(part.sum() for part in parts) < min_part:
                 # a part below the heap's floor: a grain of a heap, cut off between corners, narrower than both parts
                 arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
+                ends = [_corner(outline, arc, total, x, arm, y) for x, y in ((p, q), (q, p))]
                 if not (narrow and 0.5 * length <= NECK_WIDTH * min(radii)
-                        and min(_turning(outline, arc, total, x, arm) for x in (p, q)) >= NOTCH_TURN_DEG):
+                        and all(turn >= NOTCH_TURN_DEG and off <= NOTCH_AXIS_DEG for turn, off in ends)):
                     continue
+            if narrow and not pair:
+                # from one notch across to a side: not where the shape goes on as narrow past the cut
+                narrow = not _is_band(mask, p, q)
         if not narrow and (image is None
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
             # no neck and no seam: a shape far from convex (notches over CLEAR_CONCAVITY times the
@@ -544,6 +623,17 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
         return (_split_at_seams(mask, min_area, 0, [MAX_CUTS], image) if image is not None else None) or [mask]
     # no part may be a sliver of the component: a tenth of its area at least (a letter's stem and bowl
     # are not two grains)
+    pockets = _pockets(mask, image, min_area) if image is not None else None
+    if pockets is not None:
+        # background enclosed by a ring of grains (filled as a hole): the ring is split on its own, and
+        # the pocket is returned as a part of its own (mostly below the threshold, it is dropped as such)
+        rest, n = ndi.label(mask & ~pockets, structure=_EIGHT)
+        found, _ = ndi.label(pockets, structure=_EIGHT)
+        out = [found == k for k in range(1, int(found.max()) + 1)]
+        for k in range(1, n + 1):
+            piece = rest == k
+            out.extend(split_component(piece, min_area, split_depth, image) if piece.sum() >= min_area else [piece])
+        return out
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
     radius = float(ndi.distance_transform_edt(mask).max())
     grains = float(mask.sum()) / (np.pi * radius ** 2)  # how many of its thickest grain it could hold
@@ -552,6 +642,41 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     if len(parts) > 2:
         parts = _rejoin(parts, split_depth, image, min_part)
     return parts
+
+
+def _pockets(mask: np.ndarray, image: np.ndarray, min_area: float) -> np.ndarray | None:
+    """Background enclosed by a component: pixels far below its grains' level, away from its outline.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        One component (its holes filled).
+    image : ndarray of float, shape (h, w)
+        The preprocessed image (grains bright, background 0).
+    min_area : float
+        Smallest pocket kept (pixels).
+
+    Returns
+    -------
+    ndarray of bool or None
+        Connected regions where the image, smoothed by a Gaussian of 1 px, is below
+        :data:`POCKET_LEVEL` of the component's median, of ``min_area`` or more, that do not reach
+        the component's outline (a ring of grains around a gap); None when there is none.
+    """
+    smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
+    level = POCKET_LEVEL * float(np.median(smooth[mask]))
+    if level <= 0:
+        return None
+    low, n = ndi.label(mask & (smooth < level), structure=_EIGHT)
+    if n == 0:
+        return None
+    areas = np.bincount(low.ravel())[1:]
+    rim = np.unique(low[ndi.binary_dilation(~mask, structure=_EIGHT)])
+    keep = np.zeros(n + 1, bool)
+    keep[1:] = areas >= min_area
+    keep[rim] = False
+    keep[0] = False
+    return keep[low] if keep.any() else None
 
 
 def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
@@ -566,7 +691,7 @@ def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
     border = ndi.binary_dilation(a, structure=_EIGHT) & b
     outside = ~union
     ends = border & ndi.binary_dilation(outside, structure=_EIGHT)
-    end_labels, n_ends = ndi.label(ndi.binary_dilation(ends, structure=_EIGHT, iterations=2), structure=_EIGHT)
+    end_labels, n_ends = ndi.label(ndi.binary_dilation(ends, structure=_EIGHT), structure=_EIGHT)
     if n_ends < 2:
         return False
     pocket = convex_hull_mask(union) & outside
@@ -574,7 +699,8 @@ def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
         return False
     pockets, n_pockets = ndi.label(pocket, structure=_EIGHT)
     deepest = np.r_[0.0, ndi.maximum(ndi.distance_transform_edt(outside), pockets, index=np.arange(1, n_pockets + 1))]
-    notch = np.sort([deepest[np.unique(pockets[end_labels == k])].max() for k in range(1, n_ends + 1)])[::-1]
+    notch = np.sort([deepest[np.unique(pockets[ndi.binary_dilation(end_labels == k, structure=_EIGHT)])].max()
+                     for k in range(1, n_ends + 1)])[::-1]
     rows, cols = np.nonzero(border)
     length = float(np.hypot(rows.max() - rows.min(), cols.max() - cols.min()))
     return 2.0 * float(notch[1]) >= NOTCH_RATIO * length
@@ -629,6 +755,9 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
     fine_area = min_area if fine_area is None else fine_area
     if depth > MAX_DEPTH or mask.sum() < 2 * fine_area:
         return None
+    parts = _split_heap(mask, split_depth, depth, budget, image, min_area, fine_area)
+    if parts is not None:
+        return parts
     parts = _split_at_defects(mask, min_area, split_depth, depth, budget, image, fine_area=fine_area)
     if parts is not None:
         return parts
@@ -653,4 +782,40 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
         # the ends of a watershed line leave small notches: parts get twice the allowance
         if all(is_convex(p, split_depth, PART_SLACK) for p in parts):
             return parts
+    return None
+
+
+def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, image: np.ndarray | None,
+                min_area: float, fine_area: float) -> list[np.ndarray] | None:
+    """A heap of many grains divided by the distance-map watershed [3]_, its concave parts cut further.
+
+    Only for a shape that could hold :data:`HEAP_MIN_GRAINS` or more discs of its largest inscribed
+    radius (the interior grains of a heap have no notches on the outline to cut between). The
+    h-maxima of the distance map (``h`` as in :func:`_split`) seed the flood; the split is kept when
+    every part is at least ``fine_area``, every line between two parts crosses a neck of the distance
+    map (:func:`_necks_are_narrow`) and at least half the parts are convex (twice the allowance); the
+    others are cut further at their necks where they can be (:func:`_divide_further`).
+    """
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    dist = ndi.distance_transform_edt(mask)
+    dmax = float(dist.max())
+    if float(mask.sum()) < HEAP_MIN_GRAINS * np.pi * dmax ** 2:
+        return None
+    for frac in H_FRACTIONS:
+        h = max(frac * dmax, H_MIN_PX)
+        if h >= dmax:
+            continue
+        markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
+        if n < 2:
+            continue
+        budget[0] -= 1
+        ws = watershed(-dist, markers, mask=mask)
+        parts = [ws == k for k in range(1, n + 1)]
+        if min(int(p.sum()) for p in parts) < fine_area or not _necks_are_narrow(ws, dist, n):
+            continue
+        if 2 * sum(is_convex(p, split_depth, PART_SLACK) for p in parts) >= n:
+            return _divide_further(parts, min_area, split_depth, depth, budget, image, keep=True,
+                                   fine_area=fine_area)
     return None
