@@ -67,6 +67,8 @@ BAND_TOLERANCE = 0.15
 BAND_RUN = 1.3
 #: Enclosed pixels below this fraction of a component's median level are background (a pocket), not grain.
 POCKET_LEVEL = 0.25
+#: In a heap, pixels below this fraction of the component's median level are gaps between grains.
+GAP_LEVEL = 0.5
 #: A shape whose deepest concavity exceeds this many times its allowance is no single grain: a cut into
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
@@ -552,15 +554,19 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         if narrow:
             radii = [float(ndi.distance_transform_edt(part).max()) - 0.5 for part in parts]
             narrow = 0.5 * length <= NECK_WIDTH * max(radii)
+            arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
+            ends = [_corner(outline, arc, total, x, arm, y) for x, y in ((p, q), (q, p))] if pair else []
+            corners = pair and all(turn >= NOTCH_TURN_DEG for turn, _ in ends)
             if min(part.sum() for part in parts) < min_part:
-                # a part below the heap's floor: a grain of a heap, cut off between corners, narrower than both parts
-                arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
-                ends = [_corner(outline, arc, total, x, arm, y) for x, y in ((p, q), (q, p))]
-                if not (narrow and 0.5 * length <= NECK_WIDTH * min(radii)
-                        and all(turn >= NOTCH_TURN_DEG and off <= NOTCH_AXIS_DEG for turn, off in ends)):
+                # a part below the heap's floor: a grain of a heap, cut off between corners, narrower than
+                # both parts
+                if not (narrow and corners and 0.5 * length <= NECK_WIDTH * min(radii)
+                        and all(off <= NOTCH_AXIS_DEG for _, off in ends)):
                     continue
-            if narrow and not pair:
-                # from one notch across to a side: not where the shape goes on as narrow past the cut
+            if narrow and not corners:
+                # from one notch (or from a corner to a point of a straight side, the bottom of a pocket
+                # between grains touching it) across to a side: no neck where the shape goes on as
+                # narrow past the cut (a rod)
                 narrow = not _is_band(mask, p, q)
         if not narrow and (image is None
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
@@ -623,7 +629,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
         return (_split_at_seams(mask, min_area, 0, [MAX_CUTS], image) if image is not None else None) or [mask]
     # no part may be a sliver of the component: a tenth of its area at least (a letter's stem and bowl
     # are not two grains)
-    pockets = _pockets(mask, image, min_area) if image is not None else None
+    pockets = enclosed_pockets(mask, image, min_area) if image is not None else None
     if pockets is not None:
         # background enclosed by a ring of grains (filled as a hole): the ring is split on its own, and
         # the pocket is returned as a part of its own (mostly below the threshold, it is dropped as such)
@@ -644,7 +650,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     return parts
 
 
-def _pockets(mask: np.ndarray, image: np.ndarray, min_area: float) -> np.ndarray | None:
+def enclosed_pockets(mask: np.ndarray, image: np.ndarray, min_area: float) -> np.ndarray | None:
     """Background enclosed by a component: pixels far below its grains' level, away from its outline.
 
     Parameters
@@ -799,7 +805,12 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
-    dist = ndi.distance_transform_edt(mask)
+    solid = mask
+    if image is not None:
+        # the dark gaps between packed grains (filled as holes) are background for the distance map
+        smooth = ndi.median_filter(np.asarray(image, np.float32), size=3)  # single noisy pixels are no gap
+        solid = mask & (smooth >= GAP_LEVEL * float(np.median(smooth[mask])))
+    dist = ndi.distance_transform_edt(solid)
     dmax = float(dist.max())
     if float(mask.sum()) < HEAP_MIN_GRAINS * np.pi * dmax ** 2:
         return None
