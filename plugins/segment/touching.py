@@ -152,10 +152,15 @@ def _necks_are_narrow(ws: np.ndarray, dist: np.ndarray, n: int) -> bool:
     one elongated grain leave saddles almost as high as the peaks.
     """
     peaks = ndi.maximum(dist, ws, index=np.arange(1, n + 1))
-    for i in range(1, n + 1):
-        ring = ndi.binary_dilation(ws == i, structure=_EIGHT) & (ws > i)
-        for j in np.unique(ws[ring]):
-            saddle = float(dist[ring & (ws == j)].max())
+    for i, sl in enumerate(ndi.find_objects(ws, max_label=n), start=1):
+        if sl is None:
+            continue
+        # the part's box grown by a pixel holds its whole 8-neighbour ring
+        box = tuple(slice(max(s.start - 1, 0), s.stop + 1) for s in sl)
+        w = ws[box]
+        ring = ndi.binary_dilation(w == i, structure=_EIGHT) & (w > i)
+        for j in np.unique(w[ring]):
+            saddle = float(dist[box][ring & (w == j)].max())
             if saddle > NECK_RATIO * min(peaks[i - 1], peaks[j - 1]):
                 return False
     return True
@@ -430,24 +435,40 @@ def _is_band(mask: np.ndarray, p: np.ndarray, q: np.ndarray) -> bool:
     return False
 
 
+def _box(mask: np.ndarray) -> tuple[slice, slice]:
+    """The bounding box of a shape's pixels with a margin of 1 pixel, within the array."""
+    rows = np.flatnonzero(mask.any(axis=1))
+    cols = np.flatnonzero(mask.any(axis=0))
+    return (slice(max(int(rows[0]) - 1, 0), int(rows[-1]) + 2), slice(max(int(cols[0]) - 1, 0), int(cols[-1]) + 2))
+
+
 def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
                     image: np.ndarray | None, keep: bool, fine_area: float) -> list[np.ndarray] | None:
     """The parts of a cut, each concave one split again.
 
     With ``keep`` false, None as soon as a concave part cannot be split;
-    with ``keep`` true such a part stays whole.
+    with ``keep`` true such a part stays whole. Each part is judged and cut
+    within its own bounding box (the same result, by translation, at the
+    cost of its box rather than the component's).
     """
     out = []
     for part in parts:
-        if is_convex(part, split_depth, PART_SLACK):
+        box = _box(part)
+        sub_mask = part[box]
+        if is_convex(sub_mask, split_depth, PART_SLACK):
             out.append(part)
             continue
-        sub = _split(part, min_area, split_depth, depth + 1, budget, image, fine_area)
+        sub = _split(sub_mask, min_area, split_depth, depth + 1, budget, None if image is None else image[box],
+                     fine_area)
         if sub is None:
             if not keep:
                 return None
-            sub = [part]
-        out.extend(sub)
+            out.append(part)
+            continue
+        for piece in sub:
+            full = np.zeros(part.shape, bool)
+            full[box] = piece
+            out.append(full)
     return out
 
 
@@ -563,10 +584,9 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                 if not (narrow and corners and 0.5 * length <= NECK_WIDTH * min(radii)
                         and all(off <= NOTCH_AXIS_DEG for _, off in ends)):
                     continue
-            if narrow and not corners:
-                # from one notch (or from a corner to a point of a straight side, the bottom of a pocket
-                # between grains touching it) across to a side: no neck where the shape goes on as
-                # narrow past the cut (a rod)
+            if narrow and not pair:
+                # from one notch across to a side: no neck where the shape goes on as narrow past the
+                # cut (a rod touched by a grain at its side)
                 narrow = not _is_band(mask, p, q)
         if not narrow and (image is None
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
@@ -714,42 +734,47 @@ def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
 
 def _rejoin(parts: list[np.ndarray], split_depth: float, image: np.ndarray | None,
             heap_floor: float) -> list[np.ndarray]:
-    """Join back neighbouring parts that make one convex shape together (no neck between them).
+    """Join back neighbouring parts, one of them under the heap's floor, that meet at no neck.
 
-    Two parts whose union is convex within the allowance (:func:`is_convex`) were cut where the notches at
-    the cut's ends belong to other grains (a rod with grains touching its sides, cut across between their
-    contacts); they are joined unless the image shows a dark seam between them (:func:`seam_contrast`).
-    Pairs with the smaller part first; repeated until no pair joins.
+    A pair of touching parts (8-neighbours), the smaller under ``heap_floor``, is joined when their
+    union is convex within the allowance (:func:`is_convex`) or their border has no notch at both
+    ends (:func:`_meet_at_neck`), unless the image shows a dark seam along the border
+    (:func:`seam_contrast`): such a cut crossed a grain between notches that belong to other grains
+    (a rod with grains touching its sides). Pairs with the smaller part first; a pair judged once is
+    judged again only after one of its parts has grown.
     """
-    parts = list(parts)
+    labels = np.zeros(parts[0].shape, np.int32)
+    for k, part in enumerate(parts, 1):
+        labels[part] = k
+    kept = set()  # pairs judged to stay apart
     while True:
-        order = sorted(range(len(parts)), key=lambda i: parts[i].sum())
+        areas = np.bincount(labels.ravel(), minlength=len(parts) + 1)
+        pairs = set()
+        for a, b in ((labels[1:, :], labels[:-1, :]), (labels[:, 1:], labels[:, :-1]),
+                     (labels[1:, 1:], labels[:-1, :-1]), (labels[1:, :-1], labels[:-1, 1:])):
+            touch = (a > 0) & (b > 0) & (a != b)
+            pairs.update(zip(np.minimum(a[touch], b[touch]).tolist(), np.maximum(a[touch], b[touch]).tolist()))
+        todo = sorted((p for p in pairs if p not in kept and min(areas[p[0]], areas[p[1]]) < heap_floor),
+                      key=lambda p: min(areas[p[0]], areas[p[1]]))
         joined = False
-        for i in order:
-            grown = ndi.binary_dilation(parts[i], structure=_EIGHT)
-            for j in order:
-                if j == i or not (grown & parts[j]).any():
+        for i, j in todo:
+            union = (labels == i) | (labels == j)
+            box = _box(union)
+            a, b = labels[box] == i, labels[box] == j
+            if not is_convex(union[box], split_depth) and _meet_at_neck(a, b):
+                kept.add((i, j))
+                continue
+            if image is not None:
+                rr, cc = np.nonzero(ndi.binary_dilation(a, structure=_EIGHT) & b)
+                if seam_contrast(image[box], union[box], [a, b], rr, cc) >= SEAM_DIP:
+                    kept.add((i, j))
                     continue
-                if min(parts[i].sum(), parts[j].sum()) >= heap_floor:
-                    continue
-                union = parts[i] | parts[j]
-                rows, cols = np.nonzero(union)
-                box = (slice(max(rows.min() - 1, 0), rows.max() + 2), slice(max(cols.min() - 1, 0), cols.max() + 2))
-                if not is_convex(union[box], split_depth) and _meet_at_neck(parts[i][box], parts[j][box]):
-                    continue
-                if image is not None:
-                    line = grown & parts[j]
-                    rr, cc = np.nonzero(line[box])
-                    if seam_contrast(image[box], union[box], [parts[i][box], parts[j][box]], rr, cc) >= SEAM_DIP:
-                        continue
-                parts[i] = union
-                del parts[j]
-                joined = True
-                break
-            if joined:
-                break
+            labels[labels == j] = i
+            kept = {p for p in kept if i not in p and j not in p}
+            joined = True
+            break
         if not joined:
-            return parts
+            return [labels == k for k in np.unique(labels) if k > 0]
 
 
 def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
@@ -826,7 +851,7 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
         parts = [ws == k for k in range(1, n + 1)]
         if min(int(p.sum()) for p in parts) < fine_area or not _necks_are_narrow(ws, dist, n):
             continue
-        if 2 * sum(is_convex(p, split_depth, PART_SLACK) for p in parts) >= n:
+        if 2 * sum(is_convex(p[_box(p)], split_depth, PART_SLACK) for p in parts) >= n:
             return _divide_further(parts, min_area, split_depth, depth, budget, image, keep=True,
                                    fine_area=fine_area)
     return None
