@@ -4,6 +4,25 @@ A component is cut along straight segments between outline concavities, or
 else by a marker-controlled watershed [3]_ of its distance map; see
 :mod:`grainhabit.plugins.segment.segment_grains` (step 3) for the rules.
 
+Heaps of many grains (segment-grains 2.5):
+
+- Background enclosed by a ring of grains (filled as a hole by the
+  foreground) is taken out first (:func:`enclosed_pockets`); the ring is
+  split on its own and the pocket, below the threshold, is dropped by the
+  caller.
+- A shape that could hold :data:`HEAP_MIN_GRAINS` discs of its largest
+  inscribed radius is flooded from the h-maxima of its distance map first,
+  the dark gaps between packed grains counted as background
+  (:func:`_split_heap`): the interior grains of a heap have no notch on
+  its outline to cut between.
+- Parts may be smaller than a tenth of the component only after a cut
+  between two corners of the outline, narrower than both parts
+  (:func:`_split_at_defects`); such small parts that meet a neighbour at
+  no neck and no seam are joined again (:func:`_rejoin`).
+- A cut from one notch across to a side is no neck where the shape goes on
+  as narrow past it (:func:`_is_band`): a rod or a plate seen edge-on that
+  a grain touches at its side is not cut across there.
+
 References
 ----------
 .. [3] F. Meyer and S. Beucher, "Morphological segmentation", J. Visual
