@@ -94,7 +94,9 @@ def test_bold_label_and_thick_scale_bar_are_dropped_grains_kept():
     found = [int(labels[c]) for c in centres]
     assert all(found) and len(set(found)) == 4
     assert labels.max() == 4, "only the four grains remain"
-    assert without.max() > labels.max()  # the shape tests alone keep some of the marks
+    # up to segment-grains 2.4 the shape tests alone kept the stem and bowl of the "b" as grains; since 2.5
+    # the bowl's counter is an enclosed pocket and the ring left is judged a stroke
+    assert without.max() == labels.max() and not without[glyphs | bar].any()
     assert not labels[glyphs | bar].any()
     assert any("drawn marks" in n for n in notes)
 

@@ -4,6 +4,25 @@ A component is cut along straight segments between outline concavities, or
 else by a marker-controlled watershed [3]_ of its distance map; see
 :mod:`grainhabit.plugins.segment.segment_grains` (step 3) for the rules.
 
+Heaps of many grains (segment-grains 2.5):
+
+- Background enclosed by a ring of grains (filled as a hole by the
+  foreground) is taken out first (:func:`enclosed_pockets`); the ring is
+  split on its own and the pocket, below the threshold, is dropped by the
+  caller.
+- A shape that could hold :data:`HEAP_MIN_GRAINS` discs of its largest
+  inscribed radius is flooded from the h-maxima of its distance map first,
+  the dark gaps between packed grains counted as background
+  (:func:`_split_heap`): the interior grains of a heap have no notch on
+  its outline to cut between.
+- Parts may be smaller than a tenth of the component only after a cut
+  between two corners of the outline, narrower than both parts
+  (:func:`_split_at_defects`); such small parts that meet a neighbour at
+  no neck and no seam are joined again (:func:`_rejoin`).
+- A cut from one notch across to a side is no neck where the shape goes on
+  as narrow past it (:func:`_is_band`): a rod or a plate seen edge-on that
+  a grain touches at its side is not cut across there.
+
 References
 ----------
 .. [3] F. Meyer and S. Beucher, "Morphological segmentation", J. Visual
@@ -25,11 +44,17 @@ H_MIN_PX = 1.5
 MIN_DEPTH_PX = 2.0
 #: Largest saddle / smaller peak of the distance map accepted as a neck between grains.
 NECK_RATIO = 0.75
-#: Levels of recursive cutting at most.
-MAX_DEPTH = 5
-#: Cuts tried per component at most, over all recursion levels (bounds the time).
+#: Levels of recursive cutting at most (a chain of grains may be cut one grain at a time).
+MAX_DEPTH = 30
+#: Cuts tried per component at most, over all recursion levels (bounds the time), per HEAP_GRAINS grains
+#: the component could hold (its area over the disc of its largest inscribed radius), and at least this.
 MAX_CUTS = 200
-#: Smallest part of a split, as a fraction of the whole component's area.
+HEAP_GRAINS = 10.0
+#: A shape that could hold this many discs of its largest inscribed radius is a heap: the distance-map
+#: watershed is tried on it first (:func:`_split_heap`).
+HEAP_MIN_GRAINS = 6.0
+#: Smallest part of a split, as a fraction of the whole component's area (the heap's floor), except for
+#: cuts between corners (see :data:`NOTCH_TURN_DEG`).
 MIN_PART_FRACTION = 0.1
 #: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
 PART_SLACK = 2.0
@@ -45,6 +70,24 @@ SEAM_CLEAR_PX = 3.0
 NECK_WIDTH = 1.2
 #: A cut from one notch to the nearest outline point crosses a neck when the notch is this many times its length.
 ONE_NOTCH_RATIO = 1.0
+#: A cut leaving a part below the heap's floor (a tenth of the component) must end in corners: the outline
+#: turns by at least this many degrees at both its ends (a side of a rod turns by almost none).
+NOTCH_TURN_DEG = 35.0
+#: ... and the cut leaves each corner within this many degrees of the notch's axis.
+NOTCH_AXIS_DEG = 60.0
+#: The turn at a cut's end is measured over arms of this fraction of the cut's length ...
+NOTCH_ARM_FRACTION = 0.25
+#: ... and never shorter than this (px; blur and thresholding round a corner over a few pixels).
+NOTCH_ARM_PX = 3.0
+#: A cut from one notch is across a band (not a neck) when the shape beyond it stays as narrow as the cut,
+#: within this fraction (plus 2 px) ...
+BAND_TOLERANCE = 0.15
+#: ... for more than this many times the cut's length on one side.
+BAND_RUN = 1.3
+#: Enclosed pixels below this fraction of a component's median level are background (a pocket), not grain.
+POCKET_LEVEL = 0.25
+#: In a heap, pixels below this fraction of the component's median level are gaps between grains.
+GAP_LEVEL = 0.5
 #: A shape whose deepest concavity exceeds this many times its allowance is no single grain: a cut into
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
@@ -128,10 +171,15 @@ def _necks_are_narrow(ws: np.ndarray, dist: np.ndarray, n: int) -> bool:
     one elongated grain leave saddles almost as high as the peaks.
     """
     peaks = ndi.maximum(dist, ws, index=np.arange(1, n + 1))
-    for i in range(1, n + 1):
-        ring = ndi.binary_dilation(ws == i, structure=_EIGHT) & (ws > i)
-        for j in np.unique(ws[ring]):
-            saddle = float(dist[ring & (ws == j)].max())
+    for i, sl in enumerate(ndi.find_objects(ws, max_label=n), start=1):
+        if sl is None:
+            continue
+        # the part's box grown by a pixel holds its whole 8-neighbour ring
+        box = tuple(slice(max(s.start - 1, 0), s.stop + 1) for s in sl)
+        w = ws[box]
+        ring = ndi.binary_dilation(w == i, structure=_EIGHT) & (w > i)
+        for j in np.unique(w[ring]):
+            saddle = float(dist[box][ring & (w == j)].max())
             if saddle > NECK_RATIO * min(peaks[i - 1], peaks[j - 1]):
                 return False
     return True
@@ -309,24 +357,137 @@ def _cut_line(mask: np.ndarray, p: np.ndarray, q: np.ndarray):
     return line(r0, c0, r1, c1)
 
 
+def _corner(outline: np.ndarray, arc: np.ndarray, total: float, point: np.ndarray, arm: float,
+            toward: np.ndarray) -> tuple[float, float]:
+    """How sharply a closed outline turns at one of its points, and how a cut from there meets the turn.
+
+    Parameters
+    ----------
+    outline : ndarray of float, shape (k, 2)
+        Closed outline (row, col), in order.
+    arc : ndarray of float, shape (k,)
+        Arc length (px) from the first point to each point.
+    total : float
+        Length of the whole outline (px).
+    point : ndarray of float, shape (2,)
+        A point of the outline (the nearest one is taken).
+    arm : float
+        Arc length (px) before and after the point over which the directions are taken.
+    toward : ndarray of float, shape (2,)
+        The other end of a cut from ``point``.
+
+    Returns
+    -------
+    turn : float
+        Angle (degrees, 0 to 180) between the chords (point before -> point) and (point -> point
+        after): near 0 on a straight or gently curved side, about 90 where two square grains meet
+        face to face, 60 to 180 where two discs meet (handbook geometry: the tangents of two circles
+        whose centres are ``D`` apart turn by ``180 - 2 acos(D / 2r)`` at their crossing).
+    off_axis : float
+        Angle (degrees) between the cut and the notch's axis (the bisector of the two chords from the
+        point, reversed: into the shape). Where two grains meet the line between them leaves the
+        notch along its axis (two discs: 0; a small square face to face against a larger one: 45);
+        a cut that crosses a rod from the corner where another grain touches its side leaves at
+        nearly 90 degrees.
+    """
+    i = int(np.argmin(np.hypot(*(outline - point).T)))
+    before = outline[int(np.argmin(np.abs((arc - (arc[i] - arm)) % total)))]
+    after = outline[int(np.argmin(np.abs((arc - (arc[i] + arm)) % total)))]
+    u, v = outline[i] - before, after - outline[i]
+    nu, nv = float(np.hypot(*u)), float(np.hypot(*v))
+    if nu == 0 or nv == 0:
+        return 0.0, 90.0
+    turn = float(np.degrees(np.arccos(np.clip(np.dot(u, v) / (nu * nv), -1.0, 1.0))))
+    axis = u / nu - v / nv  # minus the sum of the unit chords from the point: into the shape
+    cut = toward - outline[i]
+    na, nc = float(np.hypot(*axis)), float(np.hypot(*cut))
+    if na == 0 or nc == 0:
+        return turn, 90.0
+    return turn, float(np.degrees(np.arccos(np.clip(np.dot(axis, cut) / (na * nc), -1.0, 1.0))))
+
+
+def _is_band(mask: np.ndarray, p: np.ndarray, q: np.ndarray) -> bool:
+    """Whether the segment p-q runs across a band (a rod, a plate seen edge-on) rather than a neck.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        The shape being cut.
+    p, q : ndarray of float, shape (2,)
+        Ends of the cut (row, col), on the outline.
+
+    Returns
+    -------
+    bool
+        True when, on either side, the shape's chord parallel to the cut stays within
+        ``(1 + BAND_TOLERANCE) * length + 2 px`` for more than :data:`BAND_RUN` times the cut's length
+        beyond it (the chord's middle followed step by step, 1 px at a time): the cut then lies across
+        a band that goes on past it, as when a grain touches a rod's side.
+    """
+    u = q - p
+    length = float(np.hypot(*u))
+    if length == 0:
+        return False
+    u = u / length
+    limit = (1.0 + BAND_TOLERANCE) * length + 2.0
+    s = np.arange(-limit, limit + 0.5, 0.5)
+    mid = len(s) // 2
+    lo, hi = np.zeros(2), np.array(mask.shape, float) - 1
+    for sign in (1.0, -1.0):
+        normal = sign * np.array([-u[1], u[0]])
+        centre = 0.5 * (p + q)
+        t = 0
+        while t <= BAND_RUN * length:
+            t += 1
+            centre = centre + normal
+            pts = np.clip(np.round(centre + s[:, None] * u), lo, hi).astype(int)
+            inside = mask[pts[:, 0], pts[:, 1]]
+            if not inside[mid]:
+                break  # the shape ends (or turns away) here
+            if inside[:mid + 1].all() or inside[mid:].all():
+                break  # wider than the limit: the shape widens past the cut
+            left = mid - int(np.argmin(inside[mid::-1]))
+            right = mid + int(np.argmin(inside[mid:]))
+            centre = centre + 0.5 * (s[left + 1] + s[right - 1]) * u
+        else:
+            return True
+    return False
+
+
+def _box(mask: np.ndarray) -> tuple[slice, slice]:
+    """The bounding box of a shape's pixels with a margin of 1 pixel, within the array."""
+    rows = np.flatnonzero(mask.any(axis=1))
+    cols = np.flatnonzero(mask.any(axis=0))
+    return (slice(max(int(rows[0]) - 1, 0), int(rows[-1]) + 2), slice(max(int(cols[0]) - 1, 0), int(cols[-1]) + 2))
+
+
 def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
-                    image: np.ndarray | None, keep: bool) -> list[np.ndarray] | None:
+                    image: np.ndarray | None, keep: bool, fine_area: float) -> list[np.ndarray] | None:
     """The parts of a cut, each concave one split again.
 
     With ``keep`` false, None as soon as a concave part cannot be split;
-    with ``keep`` true such a part stays whole.
+    with ``keep`` true such a part stays whole. Each part is judged and cut
+    within its own bounding box (the same result, by translation, at the
+    cost of its box rather than the component's).
     """
     out = []
     for part in parts:
-        if is_convex(part, split_depth, PART_SLACK):
+        box = _box(part)
+        sub_mask = part[box]
+        if is_convex(sub_mask, split_depth, PART_SLACK):
             out.append(part)
             continue
-        sub = _split(part, min_area, split_depth, depth + 1, budget, image)
+        sub = _split(sub_mask, min_area, split_depth, depth + 1, budget, None if image is None else image[box],
+                     fine_area)
         if sub is None:
             if not keep:
                 return None
-            sub = [part]
-        out.extend(sub)
+            out.append(part)
+            continue
+        for piece in sub:
+            full = np.zeros(part.shape, bool)
+            full[box] = piece
+            out.append(full)
     return out
 
 
@@ -350,7 +511,7 @@ def _split_at_seams(mask: np.ndarray, min_area: float, depth: int, budget: list,
 
 def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
                       budget: list, image: np.ndarray | None = None,
-                      seam_only: bool = False) -> list[np.ndarray] | None:
+                      seam_only: bool = False, fine_area: float | None = None) -> list[np.ndarray] | None:
     """Cut across a neck between concavities so that the parts are convex (or split further).
 
     A cut is across a neck when the notches at its ends are deep for its
@@ -367,6 +528,16 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     concavity exceeds :data:`CLEAR_CONCAVITY` times its allowance is no
     single grain: there a cut into two convex parts is kept without a neck
     or a seam (a triangle pressed against a square along its whole side).
+
+    No part is smaller than ``min_area`` (the heap's floor, a tenth of the
+    component) nor a tenth of this shape, except after a cut between two
+    notches that are corners (the outline turns by :data:`NOTCH_TURN_DEG`
+    or more at both ends, over arms of a quarter of the cut's length) and
+    narrower than both parts (half its length at most :data:`NECK_WIDTH`
+    times the thinner part's inscribed radius): a grain of a heap of more
+    than ten. The straight side of a rod, where the notch of a pocket
+    between the grains touching it may lie, turns by almost nothing there.
+    Such parts are at least ``fine_area`` (default ``min_area``).
     """
     r_eq = np.sqrt(mask.sum() / np.pi)
     defects, outline = convexity_defects(mask, max(MIN_DEPTH_PX, split_depth * r_eq), outline=True)
@@ -374,6 +545,11 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         return None
     # no part may be a sliver of the shape being cut either
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
+    fine_area = min_area if fine_area is None else fine_area
+    fine_part = max(fine_area, MIN_PART_FRACTION * float(mask.sum()))
+    step = np.hypot(*np.diff(np.vstack([outline, outline[:1]]), axis=0).T)
+    arc = np.concatenate([[0.0], np.cumsum(step)[:-1]])  # arc length (px) along the outline
+    total = float(step.sum())
     cuts = []
     for a in range(len(defects)):
         for b in range(a + 1, len(defects)):
@@ -382,9 +558,6 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     cuts.sort(key=lambda c: c[0])
     cuts = cuts[:8]
     # a concavity whose partner is too shallow to count: cut to the nearest outline points
-    step = np.hypot(*np.diff(np.vstack([outline, outline[:1]]), axis=0).T)
-    arc = np.concatenate([[0.0], np.cumsum(step)[:-1]])
-    total = float(step.sum())
     for p, dp in defects:
         d = np.hypot(*(outline - p).T)
         ip = int(np.argmin(d))
@@ -404,7 +577,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
     fallback = None
     clearly_concave = (not seam_only
                        and concavity_depth(mask) > CLEAR_CONCAVITY * max(MIN_DEPTH_PX, split_depth * r_eq))
-    for _, p, q, notches in cuts:
+    for key, p, q, notches in cuts:
         if budget[0] <= 0:
             break
         length = float(np.hypot(*(p - q)))
@@ -412,14 +585,28 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         if not narrow and image is None:
             continue
         budget[0] -= 1
-        parts = _cut(mask, p, q, min_part)
+        pair = narrow and np.isfinite(key)
+        parts = _cut(mask, p, q, fine_part if pair else min_part)
         if parts is None:
             continue
         # notches alone mark a neck only where the cut is narrower than the thicker part (a thin band,
         # a rim or a ring cut across has deep notches on its inner side but no neck)
         if narrow:
-            thick = max(float(ndi.distance_transform_edt(part).max()) for part in parts) - 0.5
-            narrow = 0.5 * length <= NECK_WIDTH * thick
+            radii = [float(ndi.distance_transform_edt(part).max()) - 0.5 for part in parts]
+            narrow = 0.5 * length <= NECK_WIDTH * max(radii)
+            arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
+            ends = [_corner(outline, arc, total, x, arm, y) for x, y in ((p, q), (q, p))] if pair else []
+            corners = pair and all(turn >= NOTCH_TURN_DEG for turn, _ in ends)
+            if min(part.sum() for part in parts) < min_part:
+                # a part below the heap's floor: a grain of a heap, cut off between corners, narrower than
+                # both parts
+                if not (narrow and corners and 0.5 * length <= NECK_WIDTH * min(radii)
+                        and all(off <= NOTCH_AXIS_DEG for _, off in ends)):
+                    continue
+            if narrow and not pair:
+                # from one notch across to a side: no neck where the shape goes on as narrow past the
+                # cut (a rod touched by a grain at its side)
+                narrow = not _is_band(mask, p, q)
         if not narrow and (image is None
                            or seam_contrast(image, mask, parts, *_cut_line(mask, p, q)) < SEAM_DIP):
             # no neck and no seam: a shape far from convex (notches over CLEAR_CONCAVITY times the
@@ -428,13 +615,13 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
                 continue
         if seam_only:
             return parts
-        out = _divide_further(parts, min_area, split_depth, depth, budget, image, keep=False)
+        out = _divide_further(parts, min_area, split_depth, depth, budget, image, keep=False, fine_area=fine_area)
         if out is not None:
             return out
         if fallback is None:
             fallback = parts
     if fallback is not None:
-        return _divide_further(fallback, min_area, split_depth, depth, budget, image, keep=True)
+        return _divide_further(fallback, min_area, split_depth, depth, budget, image, keep=True, fine_area=fine_area)
     return None
 
 
@@ -468,8 +655,11 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     :func:`_split_at_defects`); the visible boundary between an overlapping
     pair is an edge of the front (convex) grain, which runs between these
     two points. Parts that are still concave are split again; no part is
-    smaller than a tenth of the shape it is cut from. If no cut crosses a
-    neck, the distance-map watershed is tried.
+    smaller than a tenth of the shape it is cut from, nor, but for cuts between two corners that are
+    narrower than both parts, a tenth of the component (the heap's floor; see
+    :func:`_split_at_defects`). If no cut crosses a neck, the distance-map watershed is tried (parts
+    of a tenth of the component at least). Neighbouring parts, one of them under the heap's floor,
+    that meet at no neck and no seam are joined again (:func:`_rejoin`).
     """
     if mask.sum() < 2 * min_area:
         return [mask]
@@ -478,21 +668,151 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
         return (_split_at_seams(mask, min_area, 0, [MAX_CUTS], image) if image is not None else None) or [mask]
     # no part may be a sliver of the component: a tenth of its area at least (a letter's stem and bowl
     # are not two grains)
+    pockets = enclosed_pockets(mask, image, min_area) if image is not None else None
+    if pockets is not None:
+        # background enclosed by a ring of grains (filled as a hole): the ring is split on its own, and
+        # the pocket is returned as a part of its own (mostly below the threshold, it is dropped as such)
+        rest, n = ndi.label(mask & ~pockets, structure=_EIGHT)
+        found, _ = ndi.label(pockets, structure=_EIGHT)
+        out = [found == k for k in range(1, int(found.max()) + 1)]
+        for k in range(1, n + 1):
+            piece = rest == k
+            out.extend(split_component(piece, min_area, split_depth, image) if piece.sum() >= min_area else [piece])
+        return out
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    return _split(mask, min_part, split_depth, 0, [MAX_CUTS], image) or [mask]
+    radius = float(ndi.distance_transform_edt(mask).max())
+    grains = float(mask.sum()) / (np.pi * radius ** 2)  # how many of its thickest grain it could hold
+    budget = [int(MAX_CUTS * max(1.0, grains / HEAP_GRAINS))]
+    parts = _split(mask, min_part, split_depth, 0, budget, image, min_area) or [mask]
+    if len(parts) > 2:
+        parts = _rejoin(parts, split_depth, image, min_part)
+    return parts
+
+
+def enclosed_pockets(mask: np.ndarray, image: np.ndarray, min_area: float) -> np.ndarray | None:
+    """Background enclosed by a component: pixels far below its grains' level, away from its outline.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        One component (its holes filled).
+    image : ndarray of float, shape (h, w)
+        The preprocessed image (grains bright, background 0).
+    min_area : float
+        Smallest pocket kept (pixels).
+
+    Returns
+    -------
+    ndarray of bool or None
+        Connected regions where the image, smoothed by a Gaussian of 1 px, is below
+        :data:`POCKET_LEVEL` of the component's median, of ``min_area`` or more, that do not reach
+        the component's outline (a ring of grains around a gap); None when there is none.
+    """
+    smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
+    level = POCKET_LEVEL * float(np.median(smooth[mask]))
+    if level <= 0:
+        return None
+    low, n = ndi.label(mask & (smooth < level), structure=_EIGHT)
+    if n == 0:
+        return None
+    areas = np.bincount(low.ravel())[1:]
+    rim = np.unique(low[ndi.binary_dilation(~mask, structure=_EIGHT)])
+    keep = np.zeros(n + 1, bool)
+    keep[1:] = areas >= min_area
+    keep[rim] = False
+    keep[0] = False
+    return keep[low] if keep.any() else None
+
+
+def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
+    """Whether two touching parts meet at a neck of their union: notches at both ends of their border.
+
+    The border (pixels of ``b`` next to ``a``) reaches the union's outline at two ends (or more); each
+    end's notch is the depth (largest distance to the union) of the pockets of the union's convex hull
+    that reach within 2 px of it. A neck: twice the shallower of the two deepest end notches is at least :data:`NOTCH_RATIO`
+    of the border's length, as for a cut (:func:`_split_at_defects`).
+    """
+    union = a | b
+    border = ndi.binary_dilation(a, structure=_EIGHT) & b
+    outside = ~union
+    ends = border & ndi.binary_dilation(outside, structure=_EIGHT)
+    end_labels, n_ends = ndi.label(ndi.binary_dilation(ends, structure=_EIGHT), structure=_EIGHT)
+    if n_ends < 2:
+        return False
+    pocket = convex_hull_mask(union) & outside
+    if not pocket.any():
+        return False
+    pockets, n_pockets = ndi.label(pocket, structure=_EIGHT)
+    deepest = np.r_[0.0, ndi.maximum(ndi.distance_transform_edt(outside), pockets, index=np.arange(1, n_pockets + 1))]
+    notch = np.sort([deepest[np.unique(pockets[ndi.binary_dilation(end_labels == k, structure=_EIGHT)])].max()
+                     for k in range(1, n_ends + 1)])[::-1]
+    rows, cols = np.nonzero(border)
+    length = float(np.hypot(rows.max() - rows.min(), cols.max() - cols.min()))
+    return 2.0 * float(notch[1]) >= NOTCH_RATIO * length
+
+
+def _rejoin(parts: list[np.ndarray], split_depth: float, image: np.ndarray | None,
+            heap_floor: float) -> list[np.ndarray]:
+    """Join back neighbouring parts, one of them under the heap's floor, that meet at no neck.
+
+    A pair of touching parts (8-neighbours), the smaller under ``heap_floor``, is joined when their
+    union is convex within the allowance (:func:`is_convex`) or their border has no notch at both
+    ends (:func:`_meet_at_neck`), unless the image shows a dark seam along the border
+    (:func:`seam_contrast`): such a cut crossed a grain between notches that belong to other grains
+    (a rod with grains touching its sides). Pairs with the smaller part first; a pair judged once is
+    judged again only after one of its parts has grown.
+    """
+    labels = np.zeros(parts[0].shape, np.int32)
+    for k, part in enumerate(parts, 1):
+        labels[part] = k
+    kept = set()  # pairs judged to stay apart
+    while True:
+        areas = np.bincount(labels.ravel(), minlength=len(parts) + 1)
+        pairs = set()
+        for a, b in ((labels[1:, :], labels[:-1, :]), (labels[:, 1:], labels[:, :-1]),
+                     (labels[1:, 1:], labels[:-1, :-1]), (labels[1:, :-1], labels[:-1, 1:])):
+            touch = (a > 0) & (b > 0) & (a != b)
+            pairs.update(zip(np.minimum(a[touch], b[touch]).tolist(), np.maximum(a[touch], b[touch]).tolist()))
+        todo = sorted((p for p in pairs if p not in kept and min(areas[p[0]], areas[p[1]]) < heap_floor),
+                      key=lambda p: min(areas[p[0]], areas[p[1]]))
+        joined = False
+        for i, j in todo:
+            union = (labels == i) | (labels == j)
+            box = _box(union)
+            a, b = labels[box] == i, labels[box] == j
+            if not is_convex(union[box], split_depth) and _meet_at_neck(a, b):
+                kept.add((i, j))
+                continue
+            if image is not None:
+                rr, cc = np.nonzero(ndi.binary_dilation(a, structure=_EIGHT) & b)
+                if seam_contrast(image[box], union[box], [a, b], rr, cc) >= SEAM_DIP:
+                    kept.add((i, j))
+                    continue
+            labels[labels == j] = i
+            kept = {p for p in kept if i not in p and j not in p}
+            joined = True
+            break
+        if not joined:
+            return [labels == k for k in np.unique(labels) if k > 0]
 
 
 def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
-           budget: list, image: np.ndarray | None = None) -> list[np.ndarray] | None:
+           budget: list, image: np.ndarray | None = None, fine_area: float | None = None) -> list[np.ndarray] | None:
     """Parts of a concave shape divided at necks, or None if no acceptable split exists."""
     from skimage.morphology import h_maxima
     from skimage.segmentation import watershed
 
-    if depth > MAX_DEPTH or mask.sum() < 2 * min_area:
+    fine_area = min_area if fine_area is None else fine_area
+    if depth > MAX_DEPTH or mask.sum() < 2 * fine_area:
         return None
-    parts = _split_at_defects(mask, min_area, split_depth, depth, budget, image)
+    parts = _split_heap(mask, split_depth, depth, budget, image, min_area, fine_area)
     if parts is not None:
         return parts
+    parts = _split_at_defects(mask, min_area, split_depth, depth, budget, image, fine_area=fine_area)
+    if parts is not None:
+        return parts
+    if mask.sum() < 2 * min_area:
+        return None
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
     dist = ndi.distance_transform_edt(mask)
     dmax = float(dist.max())
@@ -512,4 +832,45 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
         # the ends of a watershed line leave small notches: parts get twice the allowance
         if all(is_convex(p, split_depth, PART_SLACK) for p in parts):
             return parts
+    return None
+
+
+def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, image: np.ndarray | None,
+                min_area: float, fine_area: float) -> list[np.ndarray] | None:
+    """A heap of many grains divided by the distance-map watershed [3]_, its concave parts cut further.
+
+    Only for a shape that could hold :data:`HEAP_MIN_GRAINS` or more discs of its largest inscribed
+    radius (the interior grains of a heap have no notches on the outline to cut between). The
+    h-maxima of the distance map (``h`` as in :func:`_split`) seed the flood; the split is kept when
+    every part is at least ``fine_area``, every line between two parts crosses a neck of the distance
+    map (:func:`_necks_are_narrow`) and at least half the parts are convex (twice the allowance); the
+    others are cut further at their necks where they can be (:func:`_divide_further`).
+    """
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    solid = mask
+    if image is not None:
+        # the dark gaps between packed grains (filled as holes) are background for the distance map
+        smooth = ndi.median_filter(np.asarray(image, np.float32), size=3)  # single noisy pixels are no gap
+        solid = mask & (smooth >= GAP_LEVEL * float(np.median(smooth[mask])))
+    dist = ndi.distance_transform_edt(solid)
+    dmax = float(dist.max())
+    if float(mask.sum()) < HEAP_MIN_GRAINS * np.pi * dmax ** 2:
+        return None
+    for frac in H_FRACTIONS:
+        h = max(frac * dmax, H_MIN_PX)
+        if h >= dmax:
+            continue
+        markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
+        if n < 2:
+            continue
+        budget[0] -= 1
+        ws = watershed(-dist, markers, mask=mask)
+        parts = [ws == k for k in range(1, n + 1)]
+        if min(int(p.sum()) for p in parts) < fine_area or not _necks_are_narrow(ws, dist, n):
+            continue
+        if 2 * sum(is_convex(p[_box(p)], split_depth, PART_SLACK) for p in parts) >= n:
+            return _divide_further(parts, min_area, split_depth, depth, budget, image, keep=True,
+                                   fine_area=fine_area)
     return None
