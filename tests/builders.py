@@ -172,6 +172,29 @@ def draw_faceted_frame(shape=(256, 256), grains=((128, 128, 40, 6, 0.0),), contr
     return img.astype(np.float32), truth
 
 
+def run_chain(raw, pixel_size_nm=5.0, seg_params=None, pre_params=None):
+    """flatten-background then segment-grains on a drawn frame; the frame after both."""
+    from grainhabit.plugins.preprocess import flatten_background as preprocess
+    from grainhabit.plugins.segment import segment_grains as segment
+
+    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=pixel_size_nm)
+    frame = preprocess.grainhabit_preprocess(frame=frame, params=pre_params or {})
+    return segment.grainhabit_segment(frame=frame, params=seg_params or {})
+
+
+def ramp_finish(signal, seed, noise=0.02):
+    """Blur 1 px, a background of 0.15 with a ramp, Gaussian noise."""
+    rng = np.random.default_rng(seed)
+    img = 0.15 + 0.1 * np.mgrid[0:signal.shape[0], 0:signal.shape[1]][1] / signal.shape[1]
+    img = img + ndi.gaussian_filter(signal, 1.0) + rng.normal(0.0, noise, signal.shape)
+    return img.astype(np.float32)
+
+
+def iou(a, b):
+    """Intersection over union of two masks."""
+    return (a & b).sum() / max((a | b).sum(), 1)
+
+
 # ---------------------------------------------------------------- single crystals
 
 

@@ -13,10 +13,8 @@ import pytest
 from scipy import ndimage as ndi
 from skimage.draw import disk, rectangle
 
-from grainhabit.frame import FrameData
-from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import packed
-from grainhabit.plugins.segment import segment_grains as segment
+from builders import run_chain
 
 SIZE = 384
 
@@ -50,10 +48,6 @@ def interior_truth(centres, radii, size=SIZE):
             if r + 1 <= y <= size - r - 2 and r + 1 <= x <= size - r - 2]
 
 
-def run_chain(raw, params=None):
-    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=5.0)
-    frame = preprocess.grainhabit_preprocess(frame=frame, params={})
-    return segment.grainhabit_segment(frame=frame, params=params or {})
 
 
 def test_inscribed_radius_of_a_disc():
@@ -98,7 +92,7 @@ def test_packing_through_the_step():
     found = {int(out.labels[int(round(y)), int(round(x))]) for y, x, _ in inside}
     assert 0 not in found and len(found) == len(inside)
     # switched off, the step takes the usual path
-    off = run_chain(raw, {"packed_fields": False})
+    off = run_chain(raw, seg_params={"packed_fields": False})
     assert not any("packed field" in n for n in off.notes)
 
 

@@ -17,12 +17,9 @@ from grainhabit.plugins.segment import segment_grains as segment
 from grainhabit.plugins.segment import gaps as seg_gaps, touching as seg_touching
 
 from builders import draw_faceted_frame, draw_frame, polygon_rows_cols, reference_gap_lines
+from builders import run_chain
 
 
-def run_chain(raw, pixel_size_nm=5.0, seg_params=None, pre_params=None):
-    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=pixel_size_nm)
-    frame = preprocess.grainhabit_preprocess(frame=frame, params=pre_params or {})
-    return segment.grainhabit_segment(frame=frame, params=seg_params or {})
 
 
 def best_iou(labels, truth_mask):

@@ -10,10 +10,8 @@ import pytest
 from scipy import ndimage as ndi
 from skimage.draw import disk, rectangle
 
-from grainhabit.frame import FrameData
-from grainhabit.plugins.preprocess import flatten_background as preprocess
 from grainhabit.plugins.segment import foreground
-from grainhabit.plugins.segment import segment_grains as segment
+from builders import run_chain
 
 SIZE = 256
 
@@ -24,10 +22,6 @@ def finish(signal, seed, noise=0.01, background=0.85):
     return np.clip(img * 255, 0, 255).astype(np.uint8)
 
 
-def run_chain(raw):
-    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=5.0)
-    frame = preprocess.grainhabit_preprocess(frame=frame, params={})
-    return segment.grainhabit_segment(frame=frame, params={})
 
 
 def winding_band(shape, centre, radius, width, seed):

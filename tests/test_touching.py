@@ -12,30 +12,16 @@ from scipy import ndimage as ndi
 from skimage.draw import disk, polygon, rectangle
 from skimage.segmentation import watershed
 
-from grainhabit.frame import FrameData
-from grainhabit.plugins.preprocess import flatten_background as preprocess
-from grainhabit.plugins.segment import segment_grains as segment
 from grainhabit.plugins.segment import touching
 
 from builders import draw_faceted_frame
+from builders import iou, ramp_finish as finish, run_chain
 
 
-def run_chain(raw, pixel_size_nm=5.0):
-    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=pixel_size_nm)
-    frame = preprocess.grainhabit_preprocess(frame=frame, params={})
-    return segment.grainhabit_segment(frame=frame, params={})
 
 
-def finish(signal, seed, noise=0.02):
-    """Blur 1 px, a background of 0.15 with a ramp, Gaussian noise."""
-    rng = np.random.default_rng(seed)
-    img = 0.15 + 0.1 * np.mgrid[0:signal.shape[0], 0:signal.shape[1]][1] / signal.shape[1]
-    img = img + ndi.gaussian_filter(signal, 1.0) + rng.normal(0.0, noise, signal.shape)
-    return img.astype(np.float32)
 
 
-def iou(a, b):
-    return (a & b).sum() / max((a | b).sum(), 1)
 
 
 def best_match(labels, truth_mask):

@@ -12,28 +12,14 @@ from scipy import ndimage as ndi
 from skimage.draw import disk, rectangle
 from skimage.segmentation import watershed
 
-from grainhabit.frame import FrameData
-from grainhabit.plugins.preprocess import flatten_background as preprocess
-from grainhabit.plugins.segment import segment_grains as segment
 from grainhabit.plugins.segment import touching
+from builders import iou, ramp_finish as finish, run_chain
 
 
-def run_chain(raw, pixel_size_nm=5.0):
-    frame = FrameData(source="t.tif", sample="s", raw=raw, pixel_size_nm=pixel_size_nm)
-    frame = preprocess.grainhabit_preprocess(frame=frame, params={})
-    return segment.grainhabit_segment(frame=frame, params={})
 
 
-def finish(signal, seed, noise=0.02):
-    """Blur 1 px, a background of 0.15 with a ramp, Gaussian noise."""
-    rng = np.random.default_rng(seed)
-    img = 0.15 + 0.1 * np.mgrid[0:signal.shape[0], 0:signal.shape[1]][1] / signal.shape[1]
-    img = img + ndi.gaussian_filter(signal, 1.0) + rng.normal(0.0, noise, signal.shape)
-    return img.astype(np.float32)
 
 
-def iou(a, b):
-    return (a & b).sum() / max((a | b).sum(), 1)
 
 
 def lens_area(r, d):
@@ -167,7 +153,6 @@ def test_bare_rod_and_long_plate_are_single_grains():
 def test_pockets_are_background_enclosed_by_grains_only():
     # a drawn ring of grains around a dark gap has a pocket; a grain with a darker (but not background)
     # patch inside has none
-    shape = (60, 60)
     yy, xx = np.mgrid[0:60, 0:60]
     rad = np.hypot(yy - 30, xx - 30)
     mask = rad <= 25

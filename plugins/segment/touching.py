@@ -799,9 +799,6 @@ def _rejoin(parts: list[np.ndarray], split_depth: float, image: np.ndarray | Non
 def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
            budget: list, image: np.ndarray | None = None, fine_area: float | None = None) -> list[np.ndarray] | None:
     """Parts of a concave shape divided at necks, or None if no acceptable split exists."""
-    from skimage.morphology import h_maxima
-    from skimage.segmentation import watershed
-
     fine_area = min_area if fine_area is None else fine_area
     if depth > MAX_DEPTH or mask.sum() < 2 * fine_area:
         return None
@@ -815,16 +812,7 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
         return None
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
     dist = ndi.distance_transform_edt(mask)
-    dmax = float(dist.max())
-    for frac in H_FRACTIONS:
-        h = max(frac * dmax, H_MIN_PX)
-        if h >= dmax:
-            continue
-        markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
-        if n < 2:
-            continue
-        ws = watershed(-dist, markers, mask=mask)
-        parts = [ws == k for k in range(1, n + 1)]
+    for ws, parts, n in _distance_floods(dist, mask):
         if min(int(p.sum()) for p in parts) < min_part:
             continue
         if not _necks_are_narrow(ws, dist, n):
@@ -846,9 +834,6 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
     map (:func:`_necks_are_narrow`) and at least half the parts are convex (twice the allowance); the
     others are cut further at their necks where they can be (:func:`_divide_further`).
     """
-    from skimage.morphology import h_maxima
-    from skimage.segmentation import watershed
-
     solid = mask
     if image is not None:
         # the dark gaps between packed grains (filled as holes) are background for the distance map
@@ -858,6 +843,34 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
     dmax = float(dist.max())
     if float(mask.sum()) < HEAP_MIN_GRAINS * np.pi * dmax ** 2:
         return None
+    for ws, parts, n in _distance_floods(dist, mask, budget):
+        if min(int(p.sum()) for p in parts) < fine_area or not _necks_are_narrow(ws, dist, n):
+            continue
+        if 2 * sum(is_convex(p[_box(p)], split_depth, PART_SLACK) for p in parts) >= n:
+            return _divide_further(parts, min_area, split_depth, depth, budget, image, keep=True,
+                                   fine_area=fine_area)
+    return None
+
+
+def _distance_floods(dist: np.ndarray, mask: np.ndarray, budget: list | None = None):
+    """Watershed floods of ``-dist`` within ``mask`` from the h-maxima of ``dist``, h falling.
+
+    ``h = max(f * d_max, H_MIN_PX)`` for ``f`` in :data:`H_FRACTIONS` (levels with ``h >= d_max``
+    or fewer than two markers skipped); each flood made counts one against ``budget[0]`` if given.
+
+    Yields
+    ------
+    ws : ndarray of int
+        The flood's labels.
+    parts : list of ndarray of bool
+        ``ws == k`` for k = 1..n.
+    n : int
+        Number of parts.
+    """
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    dmax = float(dist.max())
     for frac in H_FRACTIONS:
         h = max(frac * dmax, H_MIN_PX)
         if h >= dmax:
@@ -865,12 +878,7 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
         markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
         if n < 2:
             continue
-        budget[0] -= 1
+        if budget is not None:
+            budget[0] -= 1
         ws = watershed(-dist, markers, mask=mask)
-        parts = [ws == k for k in range(1, n + 1)]
-        if min(int(p.sum()) for p in parts) < fine_area or not _necks_are_narrow(ws, dist, n):
-            continue
-        if 2 * sum(is_convex(p[_box(p)], split_depth, PART_SLACK) for p in parts) >= n:
-            return _divide_further(parts, min_area, split_depth, depth, budget, image, keep=True,
-                                   fine_area=fine_area)
-    return None
+        yield ws, [ws == k for k in range(1, n + 1)], n
