@@ -195,6 +195,25 @@ def iou(a, b):
     return (a & b).sum() / max((a | b).sum(), 1)
 
 
+def half_height_reference(image, noise_level, edge_level):
+    """``foreground.half_height_mask`` in its whole-frame form: scipy's labelled maximum (kept in float32,
+    as the step keeps it), binary erosion and dilations and a comparison over every pixel."""
+    from grainhabit.plugins.segment import foreground as seg_fg
+
+    weak = image > noise_level
+    lab, n = ndi.label(weak, structure=np.ones((3, 3), bool))
+    peak = np.zeros(n + 1, np.float32)
+    peak[1:] = ndi.maximum(image, lab, np.arange(1, n + 1))
+    deep = ndi.binary_erosion(weak, structure=seg_fg.disk_structure(seg_fg.EDGE_BAND_PX), border_value=1)
+    strong = weak & (image > edge_level * peak[lab])
+    # the stain rule (segment-grains 2.5)
+    faint = weak & (image <= seg_fg.STAIN_SHARE * peak[lab])
+    stain = faint & deep & ~ndi.binary_dilation(strong, seg_fg.disk_structure(seg_fg.STRONG_REACH_PX))
+    if stain.any():
+        deep &= ~seg_fg.diffuse_parts(stain, ndi.binary_dilation(weak & ~deep, seg_fg.disk_structure(1.5)))
+    return deep | strong
+
+
 # ---------------------------------------------------------------- single crystals
 
 

@@ -17,7 +17,7 @@ from grainhabit.plugins.preprocess import flatten_background as pp
 from grainhabit.plugins.segment import annotations, band_flood, foreground as seg_fg, gaps as seg_gaps, levels as seg_levels
 from grainhabit.plugins.segment import disk_morphology, hull_fill, mark_shapes, segment_grains as seg_grains, touching
 
-from builders import reference_gap_lines
+from builders import half_height_reference, reference_gap_lines
 
 
 def _bodies_and_specks(seed, shape=(220, 300)):
@@ -151,23 +151,6 @@ def test_disk_morphology_equals_scipy_binary_morphology(radius):
                                       ndi.binary_closing(m, structure, border_value=0))
 
 
-def _half_height_reference(image, noise_level, edge_level):
-    """The whole-frame form: scipy's labelled maximum (kept in float32, as the step keeps it), binary
-    erosion and comparison over every pixel."""
-    weak = image > noise_level
-    lab, n = ndi.label(weak, structure=np.ones((3, 3), bool))
-    peak = np.zeros(n + 1, np.float32)
-    peak[1:] = ndi.maximum(image, lab, np.arange(1, n + 1))
-    deep = ndi.binary_erosion(weak, structure=seg_fg.disk_structure(seg_fg.EDGE_BAND_PX), border_value=1)
-    strong = weak & (image > edge_level * peak[lab])
-    # the stain rule (segment-grains 2.5), its dilations by scipy
-    faint = weak & (image <= seg_fg.STAIN_SHARE * peak[lab])
-    stain = faint & deep & ~ndi.binary_dilation(strong, seg_fg.disk_structure(seg_fg.STRONG_REACH_PX))
-    if stain.any():
-        deep &= ~seg_fg.diffuse_parts(stain, ndi.binary_dilation(weak & ~deep, seg_fg.disk_structure(1.5)))
-    return deep | strong
-
-
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_half_height_mask_equals_whole_frame_form(dtype):
     # reference library: scipy.ndimage.maximum per label and binary_erosion over the whole frame
@@ -177,7 +160,7 @@ def test_half_height_mask_equals_whole_frame_form(dtype):
     noise = seg_levels.frame_levels(arr)["noise"]
     for edge in (0.3, 0.5, 0.8):
         np.testing.assert_array_equal(seg_fg.half_height_mask(arr, noise, edge),
-                                      _half_height_reference(arr, noise, edge))
+                                      half_height_reference(arr, noise, edge))
 
 
 def _annotation_kind_reference(part, raw):
