@@ -283,6 +283,22 @@ def draw_polygon_frame(poly_xy, size=128, contrast="bright", level=0.45, transmi
                              "ecd_nm": np.array([10.0 * np.sqrt(4 * rr.size / np.pi)])})
 
 
+def habit_chain_frame(grains, contrast, seed, quantise=False):
+    """A rendered field of every habit with touching grains (invented), through the chain up to
+    segmentation (``bench habit``'s chain): the frame ready for classify-habit. ``quantise`` stores the
+    raw frame as uint16, as a 16-bit TIFF reads."""
+    from grainhabit.plugins.bench import habit as bh
+    from grainhabit.plugins.synthetic import render as sy
+
+    mix = {"cube": 1.0, "cuboctahedron": 1.0, "octahedron": 1.0, "tabular_hexagon": 1.0, "tabular_triangle": 1.0,
+           "rod": 0.5, "irregular": 0.5}
+    field = sy.make_field(grains, (320, 320), 10.0, mix, 600.0, contrast=contrast, seed=seed, touching_fraction=0.4,
+                          ecd_gsd=1.12, noise=0.02, blur_px=1.0, gradient=0.3)
+    raw = sy.to_uint16(field.image) if quantise else field.image
+    return bh.run_chain(FrameData(source="invented", sample="invented", raw=raw, pixel_size_nm=10.0,
+                                  calibration="synthetic"))
+
+
 # ---------------------------------------------------------------- invented results stores
 
 

@@ -14,7 +14,7 @@ import pytest
 from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import engine as gr
 from grainhabit.plugins.habit import signature as sg
-from builders import body_and_rotation, draw_crystal_frame
+from builders import body_and_rotation, draw_crystal_frame, habit_chain_frame
 
 
 # --------------------------------------------------------------- references
@@ -245,16 +245,7 @@ def test_frame_columns_equal_those_of_the_previous_kernels(contrast, monkeypatch
     # quantised to uint16 as a 16-bit TIFF reads: classify-habit's columns with the previous kernels
     # (whole-frame float64 signal, per-pair ray directions, the earlier outline and family kernels)
     # and with the present ones must be the same, bit for bit
-    from grainhabit.frame import FrameData
-    from grainhabit.plugins.bench import habit as bh
-    from grainhabit.plugins.synthetic import render as sy
-
-    mix = {"cube": 1.0, "cuboctahedron": 1.0, "octahedron": 1.0, "tabular_hexagon": 1.0, "tabular_triangle": 1.0,
-           "rod": 0.5, "irregular": 0.5}
-    field = sy.make_field(10, (320, 320), 10.0, mix, 600.0, contrast=contrast, seed=11, touching_fraction=0.4,
-                          ecd_gsd=1.12, noise=0.02, blur_px=1.0, gradient=0.3)
-    frame = bh.run_chain(FrameData(source="invented", sample="invented", raw=sy.to_uint16(field.image),
-                                   pixel_size_nm=10.0, calibration="synthetic"))
+    frame = habit_chain_frame(10, contrast, seed=11, quantise=True)
     assert frame.n_grains >= 5 and frame.raw.dtype == np.uint16
     now = cl.classify_frame(frame)
     monkeypatch.setattr(cl, "interior_signal", _previous_interior_signal)

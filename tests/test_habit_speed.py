@@ -10,7 +10,7 @@ import pytest
 from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import engine as gr
-from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame
+from builders import body_and_rotation, draw_crystal_frame, draw_polygon_frame, habit_chain_frame
 
 
 def _evidence(alpha, face, rot_deg, contrast="bright", seed=0, ecd_px=70.0):
@@ -484,16 +484,7 @@ def test_frame_fitted_together_equals_grain_by_grain(contrast, monkeypatch):
     # reference: every grain's fits evaluated on their own (engine.run_steps per grain, the previous
     # way); classify_frame runs the grains in step and solves each round's placements together.
     # Every column must be the same, bit for bit (rendered field, touching grains included; invented)
-    from grainhabit.frame import FrameData
-    from grainhabit.plugins.bench import habit as bh
-    from grainhabit.plugins.synthetic import render as sy
-
-    mix = {"cube": 1.0, "cuboctahedron": 1.0, "octahedron": 1.0, "tabular_hexagon": 1.0, "tabular_triangle": 1.0,
-           "rod": 0.5, "irregular": 0.5}
-    field = sy.make_field(8, (320, 320), 10.0, mix, 600.0, contrast=contrast, seed=4, touching_fraction=0.4,
-                          ecd_gsd=1.12, noise=0.02, blur_px=1.0, gradient=0.3)
-    frame = bh.run_chain(FrameData(source="invented", sample="invented", raw=field.image, pixel_size_nm=10.0,
-                                   calibration="synthetic"))
+    frame = habit_chain_frame(8, contrast, seed=4)
     assert frame.n_grains >= 4
     together = cl.classify_frame(frame)
     monkeypatch.setattr(cl, "GRAINS_IN_STEP", 3)                # grains in step three at a time
