@@ -32,7 +32,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.common.image_stats import robust_sd
+from grainhabit.plugins.common.image_stats import median, median_of_counts, robust_sd
 
 #: Fraction of the frame's grey range, from either end, counted as ink.
 INK_TOLERANCE = 0.02
@@ -359,39 +359,3 @@ def ink_fraction(part: np.ndarray, raw: np.ndarray, low: float, high: float, rim
     """Largest fraction of an object's inner or core pixels (:func:`core_pixels`) at either ink level."""
     inner, core = core_pixels(part, rim)
     return max(*ink_shares(raw[inner], low, high), *ink_shares(raw[core], low, high))
-
-
-def median(values: np.ndarray) -> float:
-    """``float(numpy.median(values))``, from a histogram when the values are 8 or 16 bit unsigned integers.
-
-    Parameters
-    ----------
-    values : ndarray
-        At least one value.
-
-    Returns
-    -------
-    float
-        The middle value, or the mean of the two middle values of an even
-        count (as numpy). For 8/16-bit unsigned integers the counts of every level
-        (``numpy.bincount``) give it without sorting: equal to numpy's, 5-10x
-        faster on the millions of background pixels of a frame.
-    """
-    values = np.asarray(values).ravel()
-    if values.dtype.kind != "u" or values.dtype.itemsize > 2:
-        return float(np.median(values))
-    return median_of_counts(np.bincount(values), values.size)
-
-
-def median_of_counts(counts: np.ndarray, n: int) -> float:
-    """The median of ``n`` >= 1 non-negative integer values given by their counts (``counts[v]`` values ``v``).
-
-    Returns
-    -------
-    float
-        The middle value, or the mean of the two middle values of an even count (as :func:`median`).
-    """
-    cum = np.cumsum(counts)
-    lo = int(np.searchsorted(cum, (n - 1) // 2, side="right"))
-    hi = int(np.searchsorted(cum, n // 2, side="right"))
-    return (float(lo) + float(hi)) / 2.0

@@ -145,6 +145,12 @@ def inscribed_radius(dist: np.ndarray, mask: np.ndarray) -> float:
     return float(np.percentile(dist[mask], 95)) / P95_OF_RADIUS
 
 
+def _clear_of_edge(box: tuple | None, shape: tuple) -> bool:
+    """Whether an object's box (``find_objects``; None for a missing label) keeps off the frame's edge."""
+    return (box is not None and box[0].start > 0 and box[1].start > 0
+            and box[0].stop < shape[0] and box[1].stop < shape[1])
+
+
 def block_average(image: np.ndarray, f: int) -> np.ndarray:
     """Mean of ``f x f`` blocks (the last partial row and column of blocks dropped), as float64.
 
@@ -192,11 +198,9 @@ def core_area_ratios(dist: np.ndarray, cut: float, min_area: float) -> np.ndarra
     cores, n = ndi.label(dist > cut, _EIGHT)
     if n == 0:
         return np.zeros(0)
-    rows, cols = cores.shape
     areas = np.bincount(cores.ravel(), minlength=n + 1)
     keep = [k for k, box in enumerate(ndi.find_objects(cores), start=1)
-            if box is not None and areas[k] >= min_area and box[0].start > 0 and box[1].start > 0
-            and box[0].stop < rows and box[1].stop < cols]
+            if areas[k] >= min_area and _clear_of_edge(box, cores.shape)]
     if not keep:
         return np.zeros(0)
     inner = np.asarray(ndi.maximum(dist, cores, keep), float) - cut
@@ -244,10 +248,9 @@ def part_shapes(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """
     from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
-    rows, cols = labels.shape
     areas, solid = [], []
     for k, box in enumerate(ndi.find_objects(labels), start=1):
-        if box is None or box[0].start == 0 or box[1].start == 0 or box[0].stop == rows or box[1].stop == cols:
+        if not _clear_of_edge(box, labels.shape):
             continue
         m = labels[box] == k
         a = int(m.sum())
