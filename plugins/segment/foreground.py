@@ -30,6 +30,8 @@ STRONG_REACH_PX = 3.0
 #: A faint part that large (px) and that convex (solidity) is a faint grain touching a bright one, kept.
 PLATE_MIN_AREA_PX = 100
 PLATE_SOLIDITY = 0.8
+#: Faint objects (below the noise threshold) this close (px) to a pixel above it are left out.
+FAINT_CLEARANCE_PX = 6.0
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -45,7 +47,7 @@ def foreground(image: np.ndarray, pixel_size_nm: float, levels: dict, method: st
 def foreground_labels(image: np.ndarray, pixel_size_nm: float, levels: dict, method: str = "noise",
                       local_block_nm: float = 2000.0, local_offset: float = 0.0,
                       close_nm: float | None = None, refine_nm: float | None = None,
-                      gap_level: float = 0.25, edge_level: float = 0.5) -> tuple:
+                      gap_level: float = 0.25, edge_level: float = 0.5, faint_min_area: float = 0.0) -> tuple:
     """Foreground mask with grain extent from outlines only, and its 8-connected components.
 
     Parameters
@@ -76,6 +78,8 @@ def foreground_labels(image: np.ndarray, pixel_size_nm: float, levels: dict, met
         1) between which near grains are kept apart (see :func:`gap_lines`).
     edge_level : float
         Fraction of a component's peak where the ``auto`` outline lies.
+    faint_min_area : float
+        With ``levels["faint"]``: smallest grain area (px), see :func:`half_height_mask`.
 
     Returns
     -------
@@ -99,7 +103,7 @@ def foreground_labels(image: np.ndarray, pixel_size_nm: float, levels: dict, met
 
     arr = check_image(image)
     if method == "auto":
-        fg = half_height_mask(arr, levels["noise"], edge_level)
+        fg = half_height_mask(arr, levels["noise"], edge_level, levels.get("faint"), faint_min_area)
     elif method == "noise":
         fg = arr > levels["noise"]
     elif method == "otsu":
@@ -152,7 +156,8 @@ def foreground_labels(image: np.ndarray, pixel_size_nm: float, levels: dict, met
     return fill_label(seeds | flood_band(arr, markers, near_band, 2))
 
 
-def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 0.5) -> np.ndarray:
+def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 0.5,
+                     faint_level: float | None = None, faint_min_area: float = 0.0) -> np.ndarray:
     """Foreground cut at a fixed fraction of each object's own peak.
 
     Parameters
@@ -163,6 +168,18 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
         Noise threshold (a few background sigmas above the background).
     edge_level : float
         Fraction of the peak at which the outline is drawn.
+    faint_level : float, optional
+        A lower threshold (fewer background sigmas): its 8-connected
+        components that hold no object of at least ``faint_min_area`` px
+        above ``noise_level`` (nothing, or only the brightest pixels of a
+        faint grain), and keep :data:`FAINT_CLEARANCE_PX` from such objects,
+        are taken whole as objects (:func:`faint_objects`; a two-level
+        threshold after J. Canny, "A computational approach to edge
+        detection", IEEE Trans. PAMI 8(6), 679-698, 1986,
+        doi:10.1109/TPAMI.1986.4767851). Grains that stand clear of
+        ``noise_level`` keep the extent that threshold gives them.
+    faint_min_area : float
+        Smallest grain area (px).
 
     Returns
     -------
@@ -184,6 +201,8 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     noise threshold and is kept whole at that threshold.
     """
     weak = image > noise_level
+    if faint_level is not None and faint_level < noise_level:
+        weak |= faint_objects(image > faint_level, weak, faint_min_area)
     lab, n = ndi.label(weak, structure=_EIGHT)
     if n == 0:
         return weak
@@ -215,6 +234,42 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
         deep &= ~diffuse_parts(stain, dilate_disk(weak & ~deep, 1.5))
     deep |= strong
     return deep
+
+
+def faint_objects(low: np.ndarray, high: np.ndarray, min_area: float = 0.0) -> np.ndarray:
+    """The objects of a low threshold that the high one shows too little of.
+
+    Parameters
+    ----------
+    low, high : ndarray of bool, shape (rows, cols)
+        The pixels above the low and the high threshold (``high`` within ``low``).
+    min_area : float
+        Smallest grain area (px).
+
+    Returns
+    -------
+    ndarray of bool
+        The 8-connected components of ``low`` that hold no 8-connected
+        component of ``high`` of ``min_area`` px or more and keep
+        :data:`FAINT_CLEARANCE_PX` from every such component: a faint grain
+        whose brightest pixels alone (or none) pass the high threshold. Near
+        a grain the high threshold shows whole, a faint streak or speck would
+        join it in the closing (a bump on its outline) and is left out.
+    """
+    lab, n = ndi.label(low, structure=_EIGHT)
+    if n == 0:
+        return low
+    shown, m = ndi.label(high, structure=_EIGHT)
+    if m:
+        areas = np.bincount(shown.ravel(), minlength=m + 1)
+        areas[0] = 0
+        whole = areas >= max(min_area, 1.0)
+        high = whole[shown]
+    reached = np.zeros(n + 1, bool)
+    if high.any():
+        reached[lab[dilate_disk(high, FAINT_CLEARANCE_PX) & low]] = True
+    reached[0] = True
+    return ~reached[lab]
 
 
 def diffuse_parts(mask: np.ndarray, outer: np.ndarray | None = None) -> np.ndarray:

@@ -54,7 +54,8 @@ def otsu_threshold(image: np.ndarray, max_samples: int = 2_000_000) -> float:
     return float(threshold_otsu(sub))
 
 
-def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_000_000) -> dict:
+def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_000_000,
+                 faint_k: float | None = None) -> dict:
     """Frame-wide threshold levels, computed once and shared by all tiles.
 
     Parameters
@@ -65,6 +66,9 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
         Background sigmas above the background mode for the noise threshold.
     max_samples : int
         Above this many pixels a regular subsample is used.
+    faint_k : float, optional
+        Background sigmas of the lower threshold at which objects wholly
+        below the noise threshold are found (``faint``); None: none.
 
     Returns
     -------
@@ -72,7 +76,8 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
         ``otsu`` (Otsu threshold), ``background`` and ``sigma`` (mode and
         noise sd of the background's peak,
         :func:`grainhabit.plugins.preprocess.background_peak.background_peak`) and ``noise`` =
-        ``background + noise_k * sigma``.
+        ``background + noise_k * sigma``; with ``faint_k``, also ``faint`` =
+        ``background + faint_k * sigma``.
     """
     from grainhabit.plugins.common.image_stats import regular_subsample
 
@@ -83,4 +88,7 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     # grains are bright here: the background is the peak below them and the lower half of that peak
     # alone gives the noise, however much of the frame the grains cover
     bg, sigma = background_peak(sub, 1, inner if inner.sum() >= 0.25 * sub.size else None, half_width=False)
-    return {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
+    levels = {"otsu": otsu_threshold(sub), "background": bg, "sigma": sigma, "noise": bg + noise_k * sigma}
+    if faint_k is not None:
+        levels["faint"] = bg + faint_k * sigma
+    return levels

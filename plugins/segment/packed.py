@@ -81,6 +81,8 @@ P95_OF_RADIUS = 1.0 - np.sqrt(0.05)
 #: Frames at least twice this side (px) are first tested on a copy block-averaged by
 #: ``side // COARSE_SIDE_PX`` (a 2048 px frame at 512 px: its cost is then a few per cent of the frame's).
 COARSE_SIDE_PX = 512
+#: Width of the Gaussian that takes the illumination's trend out before the cut, as a share of the frame's side.
+TREND_SHARE = 0.125
 #: Smoothing of the frame before the Otsu cut, px.
 SMOOTH_PX = 1.0
 _EIGHT = np.ones((3, 3), bool)
@@ -300,6 +302,9 @@ def _test(g: np.ndarray, min_area: float) -> PackedField:
     empty = np.zeros(g.shape, np.int32)
     if float(g.min()) == float(g.max()):
         return PackedField(False, empty, reason="flat frame")
+    # uneven illumination (an SEM's shading, a TEM's beam spot) moves the levels of particles and gaps alike:
+    # the cut is made on the frame less its trend over many particles
+    g = g - ndi.gaussian_filter(g, TREND_SHARE * max(g.shape), mode="reflect")
     upper = g > threshold_otsu(g)
     d_up, d_low = ndi.distance_transform_edt(upper), ndi.distance_transform_edt(~upper)
     r_up, r_low = inscribed_radius(d_up, upper), inscribed_radius(d_low, ~upper)

@@ -91,7 +91,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.5",
+    version="2.6",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -102,6 +102,9 @@ STEP = StepInfo(
                   "(0.5, the half-height point of a blurred edge)."),
         Param("noise_k", float, 5.0, low=0.0,
               doc="Background sigmas above the background level for the noise threshold (and local floor)."),
+        Param("faint_k", float, 4.0, low=0.0,
+              doc="auto threshold: objects this many background sigmas up of which the noise_k threshold shows "
+                  "less than one smallest grain are taken whole (faint small grains; noise_k or more: off)."),
         Param("local_block_nm", float, 2000.0, unit="nm", low=0.0,
               doc="Window side of the local thresholds; should be a few grain diameters."),
         Param("local_offset", float, 0.0,
@@ -203,10 +206,10 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     if not np.isfinite(pixel_size_nm) or pixel_size_nm <= 0:
         raise ValueError(f"pixel_size_nm must be positive, got {pixel_size_nm!r}")
     # the foreground and its 8-connected components (one labelling for the hole filling and them)
-    fg, comp, n, comp_boxes = foreground_labels(arr, pixel_size_nm, levels, method, local_block_nm, local_offset,
-                                                close_nm, refine_nm, gap_level, edge_level)
-    above = arr > levels["noise"]
     min_area = np.pi / 4.0 * max(min_ecd_nm / pixel_size_nm, min_ecd_px) ** 2
+    fg, comp, n, comp_boxes = foreground_labels(arr, pixel_size_nm, levels, method, local_block_nm, local_offset,
+                                                close_nm, refine_nm, gap_level, edge_level, min_area)
+    above = arr > levels["noise"]
     rejected = {"line": 0, "stroke": 0}
     bars = []  # frame boxes of scale bars dropped, for their captions
     marks = np.zeros(arr.shape, bool)  # objects dropped as drawn marks: glyphs of the rows of text looked for below
@@ -243,9 +246,11 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
                 continue
         parts = split_component(m, max(min_area, 1), split_depth, arr[box]) if split else [m]
         was_split = len(parts) > 1
-        # closing and hole filling can enclose background between grains: a part
-        # mostly below the threshold is such a pocket, not a grain
-        parts = [q for q in parts if above[box][q].mean() >= 0.5]
+        # closing and hole filling can enclose background between grains: a part of a split component
+        # mostly below the threshold is such a pocket, not a grain (a whole component is no pocket: the
+        # outline of a faint grain lies outside the few pixels above the threshold, on its edge's gradient)
+        if was_split:
+            parts = [q for q in parts if above[box][q].mean() >= 0.5]
         parts = specks.drop_specks(parts, box, arr, fg)  # small objects no brighter than the texture around
         # an object must rise to min_peak of the frame's grain level (1): background texture and specks
         # of correlated noise a few sigmas up do not; a large object wholly above the noise threshold on
@@ -454,7 +459,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     p = STEP.resolve(params)
     arr = check_image(image)
     notes = []
-    levels = frame_levels(arr, p["noise_k"])
+    levels = frame_levels(arr, p["noise_k"], faint_k=p["faint_k"])
     field = packed_test(arr, raw, pixel_size_nm, p)
     if field is not None:
         notes.append(f"segment-grains: packed field: {int(field.labels.max())} particles divided at the saddles "

@@ -322,7 +322,7 @@ def grainhabit_tile_levels(step, sample, params):
         raise ValueError("segment-grains on a frame processed by tiles needs a preprocess step that gives a "
                          "preview of the frame (flatten-background)")
     arr = np.asarray(sample.preview, np.float32)
-    levels = frame_levels(arr, p["noise_k"])
+    levels = frame_levels(arr, p["noise_k"], faint_k=p["faint_k"])
     empty = sg.check_frame(arr, levels, p)
     return {"levels": levels, "empty": empty, "notes": [empty] if empty else []}
 
