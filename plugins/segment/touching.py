@@ -133,7 +133,8 @@ def _pocket_depth(mask: np.ndarray, pocket: np.ndarray) -> float:
     """
     if not pocket.any():
         return 0.0
-    m = np.pad(mask, 1)
+    m = np.zeros((mask.shape[0] + 2, mask.shape[1] + 2), bool)  # np.pad(mask, 1), without its overhead
+    m[1:-1, 1:-1] = mask
     cross = m[:-2, 1:-1] | m[2:, 1:-1] | m[1:-1, :-2] | m[1:-1, 2:]
     diag = m[:-2, :-2] | m[:-2, 2:] | m[2:, :-2] | m[2:, 2:]
     if (pocket & ~(cross | diag)).any():
@@ -209,7 +210,9 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
     from scipy.spatial import ConvexHull, QhullError
     from skimage.measure import find_contours
 
-    contours = find_contours(np.pad(mask, 1).astype(np.float32), 0.5)
+    padded = np.zeros((mask.shape[0] + 2, mask.shape[1] + 2), np.float32)  # np.pad(mask, 1) as float32
+    padded[1:-1, 1:-1] = mask
+    contours = find_contours(padded, 0.5)
     pts = max(contours, key=len)[:-1] - 1.0 if contours else np.zeros((0, 2))
     try:
         hv = np.sort(ConvexHull(pts).vertices) if len(pts) >= 8 else None
