@@ -79,12 +79,13 @@ def clipped_sigma(r: np.ndarray, centre: float) -> float:
     """Standard deviation of the central core of ``r`` around ``centre`` (iterative 3-sigma clip)."""
     dev = np.abs(r - centre)
     s = 1.4826 * float(np.median(dev))
+    dev2 = dev * dev  # squared once: the same values as squaring each clipped sample
     for _ in range(8):
-        sel = dev < CLIP_SIGMAS * s
-        if sel.sum() < 10:
+        core = dev2[dev < CLIP_SIGMAS * s]
+        if core.size < 10:
             break
         # a 3-sigma clipped normal has sd 0.9866 of the full one
-        s_new = float(np.sqrt(np.mean(dev[sel] ** 2))) / 0.9866
+        s_new = float(np.sqrt(np.mean(core))) / 0.9866
         if abs(s_new - s) <= 1e-3 * s:
             s = s_new
             break
@@ -103,9 +104,10 @@ def histogram_mode(r: np.ndarray) -> float:
     mode, so the mode is resolved to a fraction of the peak's width.
     """
     mode, width = _coarse_mode(r)
-    spread = 1.4826 * float(np.median(np.abs(r - mode)))  # the peak's width, robustly
+    dev = np.abs(r - mode)
+    spread = 1.4826 * float(np.median(dev))  # the peak's width, robustly
     if width > 0.25 * spread > 0:
-        near = r[np.abs(r - mode) <= 4 * spread]
+        near = r[dev <= 4 * spread]
         if near.size >= 64:
             mode, _ = _coarse_mode(near)
     return mode
