@@ -169,3 +169,19 @@ def test_background_peak_and_its_helpers_equal_the_form_before(seed):
             for valid in (None, inner):
                 for half in (True, False):
                     assert bp.background_peak(field, sign, valid, half) == _background_peak_before(field, sign, valid, half)
+
+
+@pytest.mark.parametrize("polarity", ["auto", "dark"])
+def test_flatten_with_float32_level_grids_equals_float64_grids(polarity, monkeypatch):
+    # reference: the step as it was, its grids of denoised values in float64; a rendered frame (invented data)
+    from grainhabit.plugins.bench import harness as bu
+    from grainhabit.plugins.preprocess import flatten_background as fb
+
+    raw = bu.render_frames(1, 640, grains=30, seed=5)[0].astype(np.float32)
+    if polarity == "dark":
+        raw = raw.max() - raw
+    got = fb.flatten(raw, bu.PIXEL_SIZE_NM, polarity=polarity)
+    monkeypatch.setattr(fb, "GRID_DTYPE", np.float64)
+    want = fb.flatten(raw, bu.PIXEL_SIZE_NM, polarity=polarity)
+    np.testing.assert_array_equal(got[0], want[0])
+    assert got[1:] == want[1:]
