@@ -43,3 +43,49 @@ def test_smooth_closed_contour_equals_the_scipy_weights_form():
         ext = np.concatenate([c[-h:], c, c[:h]])
         want = np.stack([np.convolve(ext[:, j], coef, mode="valid") for j in range(2)], axis=1)
         np.testing.assert_array_equal(outline.smooth_closed_contour(c, window, 2), want)
+
+
+def _label_moments_before(lab, image, n):
+    # the function as it was (np.flatnonzero of the labels themselves)
+    flat = lab.ravel()
+    fg = np.flatnonzero(flat)
+    ids = flat[fg].astype(np.intp)
+    rows, cols = np.divmod(fg, lab.shape[1])
+    x, y = cols.astype(np.float64), rows.astype(np.float64)
+
+    def total(w=None):
+        return np.bincount(ids, w, n + 1)[1:n + 1]
+
+    area = total().astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inv = 1.0 / area
+        mx, my = total(x) * inv, total(y) * inv
+        out = {"area": area, "cx": mx + 0.5, "cy": my + 0.5, "mxx": total(x * x) * inv - mx * mx + 1.0 / 12.0,
+               "myy": total(y * y) * inv - my * my + 1.0 / 12.0, "mxy": total(x * y) * inv - mx * my}
+        vals = np.asarray(image).ravel()[fg].astype(np.float64)
+        mean = total(vals) * inv
+        dv = vals - np.concatenate([[0.0], mean])[ids]
+        out["mean"], out["std"] = mean, np.sqrt(total(dv * dv) * inv)
+    return out
+
+
+def test_label_moments_equal_the_form_before():
+    # reference: label_moments as it was, bit for bit, on a rendered and segmented frame (invented data),
+    # with one label left absent
+    from grainhabit.frame import FrameData
+    from grainhabit.plugins.bench import harness as bu
+    from grainhabit.plugins.measure.measure_grains import label_moments
+    from grainhabit.plugins.preprocess import flatten_background
+    from grainhabit.plugins.segment import segment_grains
+
+    raw = bu.render_frames(1, 512, grains=25, seed=2)[0].astype(np.float32)
+    frame = FrameData(source="t.tif", sample="t", raw=raw, pixel_size_nm=bu.PIXEL_SIZE_NM)
+    frame = segment_grains.grainhabit_segment(frame=flatten_background.grainhabit_preprocess(frame=frame, params={}),
+                                              params={})
+    lab = frame.labels.copy()
+    lab[lab == 3] = 0
+    n = int(lab.max()) + 1
+    got, want = label_moments(lab, frame.image, n), _label_moments_before(lab, frame.image, n)
+    assert got.keys() == want.keys()
+    for k in want:
+        np.testing.assert_array_equal(got[k], want[k])
