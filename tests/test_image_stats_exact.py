@@ -185,38 +185,3 @@ def test_flatten_with_float32_level_grids_equals_float64_grids(polarity, monkeyp
     want = fb.flatten(raw, bu.PIXEL_SIZE_NM, polarity=polarity)
     np.testing.assert_array_equal(got[0], want[0])
     assert got[1:] == want[1:]
-
-
-def _convex_side_vote_before(image, scales, edge_fraction):
-    # the vote as it was: I_tt over the whole working copy, then taken at the edge pixels
-    from grainhabit.plugins.preprocess import polarity as pol
-
-    arr = pol.block_mean(np.asarray(image), int(np.ceil(max(np.shape(image)) / pol.MAX_SIDE_PX)))
-    if arr.size == 0 or float(arr.max()) == float(arr.min()):
-        return 0.0
-    half, votes = None, []
-    for s in scales:
-        if s >= 8 and min(arr.shape) >= 32:
-            half = pol.block_mean(arr, 2) if half is None else half
-            itt, grad = pol.tangent_second_derivative(half, s / 2.0)
-        else:
-            itt, grad = pol.tangent_second_derivative(arr, s)
-        k = int((1.0 - edge_fraction) * (grad.size - 1))
-        t = np.partition(grad.ravel(), k)[k]
-        edge = (grad >= t) & (grad > 0)
-        if edge.any():
-            votes.append(float(np.mean(np.sign(-itt[edge]))))
-    return float(np.mean(votes)) if votes else 0.0
-
-
-@pytest.mark.parametrize("seed", [0, 1])
-def test_convex_side_vote_equals_the_whole_image_form(seed):
-    # reference: the vote with I_tt computed over the whole image (as before), bit for bit; rendered frames
-    # bright and dark, a frame larger than the working copy, a flat frame (invented data)
-    from grainhabit.plugins.bench import harness as bu
-    from grainhabit.plugins.preprocess import polarity as pol
-
-    raw = bu.render_frames(1, 1100, grains=40, seed=seed)[0].astype(np.float32)
-    for img in (raw, raw.max() - raw, raw[:300, :500], np.full((64, 64), 3.0, np.float32)):
-        for scales, frac in ((pol.SCALES_PX, pol.EDGE_FRACTION), ((2.0,), 0.3)):
-            assert pol.convex_side_vote(img, scales, frac) == _convex_side_vote_before(img, scales, frac)

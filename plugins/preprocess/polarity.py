@@ -71,23 +71,13 @@ def tangent_second_derivative(image: np.ndarray, sigma: float) -> tuple[np.ndarr
     Gaussian derivative filters, and the same to well under a percent once
     ``sigma`` is a few pixels.
     """
-    d = _derivatives(image, sigma)
-    return _tangent_term(*d[:5], d[5]), np.sqrt(d[5])
-
-
-def _derivatives(image: np.ndarray, sigma: float) -> tuple:
-    """``ix, iy, ixx, iyx, iyy, |grad I|^2`` of the Gaussian-smoothed image (float32; see
-    :func:`tangent_second_derivative`)."""
     g = ndi.gaussian_filter(np.asarray(image, np.float32), sigma)
     iy, ix = np.gradient(g)
     iyy, iyx = np.gradient(iy)
     ixx = np.gradient(ix, axis=1)
-    return ix, iy, ixx, iyx, iyy, ix * ix + iy * iy
-
-
-def _tangent_term(ix, iy, ixx, iyx, iyy, g2):
-    """``I_tt`` from the derivatives, elementwise (any arrays of one shape: the whole image or some pixels)."""
-    return (ixx * iy * iy - 2.0 * iyx * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30)
+    g2 = ix * ix + iy * iy
+    itt = (ixx * iy * iy - 2.0 * iyx * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30)
+    return itt, np.sqrt(g2)
 
 
 def block_mean(image: np.ndarray, f: int) -> np.ndarray:
@@ -127,17 +117,14 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
     for s in scales:
         if s >= 8 and min(arr.shape) >= 32:
             half = block_mean(arr, 2) if half is None else half
-            d = _derivatives(half, s / 2.0)
+            itt, grad = tangent_second_derivative(half, s / 2.0)
         else:
-            d = _derivatives(arr, s)
-        grad = np.sqrt(d[5])
+            itt, grad = tangent_second_derivative(arr, s)
         t = np.partition(grad.ravel(), int((1.0 - edge_fraction) * (grad.size - 1)))[
             int((1.0 - edge_fraction) * (grad.size - 1))]
         edge = (grad >= t) & (grad > 0)
         if edge.any():
-            # I_tt at the voting pixels alone: the same elementwise arithmetic as over the whole image
-            itt = _tangent_term(*(v[edge] for v in d))
-            votes.append(float(np.mean(np.sign(-itt))))
+            votes.append(float(np.mean(np.sign(-itt[edge]))))
     return float(np.mean(votes)) if votes else 0.0
 
 
