@@ -89,3 +89,47 @@ def test_label_moments_equal_the_form_before():
     assert got.keys() == want.keys()
     for k in want:
         np.testing.assert_array_equal(got[k], want[k])
+
+
+def _line_before(c, a, b):
+    # the edge line of the polygon clean-up as it was: every row of the cumulative table turned into Python
+    # floats up front
+    import math
+
+    m = len(c)
+    cx, cy = (float(v) for v in c.mean(axis=0))
+    cc = np.concatenate([c, c]) - (cx, cy)
+    x, y = cc[:, 0], cc[:, 1]
+    cum = np.zeros((2 * m + 1, 5))
+    np.cumsum(np.stack([x, y, x * x, y * y, x * y], axis=1), axis=0, out=cum[1:])
+    cum, pts = cum.tolist(), c.tolist()
+    span = (b - a) % m
+    trim = span // 5
+    if span - 2 * trim >= 3:
+        s0, n = (a + trim) % m, span - 2 * trim + 1
+        lo, hi = cum[s0], cum[s0 + n]
+        mx, my = (hi[0] - lo[0]) / n, (hi[1] - lo[1]) / n
+        sxx, syy = (hi[2] - lo[2]) / n - mx * mx, (hi[3] - lo[3]) / n - my * my
+        sxy = (hi[4] - lo[4]) / n - mx * my
+        t = 0.5 * math.atan2(2.0 * sxy, sxx - syy)
+        return (mx + cx, my + cy, math.cos(t), math.sin(t))
+    (ax, ay), (bx, by) = pts[a], pts[b]
+    ln = math.hypot(bx - ax, by - ay)
+    return (ax, ay, (bx - ax) / ln, (by - ay) / ln) if ln > 0 else None
+
+
+def test_cleaner_lines_equal_the_form_before():
+    # reference: the edge lines computed from the whole table of Python floats, as before, bit for bit;
+    # outlines of an invented square, disc and hexagon
+    from skimage.measure import find_contours
+
+    yy, xx = np.mgrid[:60, :60]
+    shapes = [(np.abs(yy - 30) < 15) & (np.abs(xx - 28) < 18), np.hypot(yy - 30, xx - 30) < 22,
+              (np.abs(yy - 30) < 20) & (np.abs(xx - 30) + 0.58 * np.abs(yy - 30) < 24)]
+    for mask in shapes:
+        c = np.ascontiguousarray(find_contours(mask.astype(float), 0.5)[0][:-1, ::-1])
+        cl = outline._Cleaner(c)
+        m = len(c)
+        for a in range(0, m, 7):
+            for b in range(0, m, 5):
+                assert cl.line(a, b) == _line_before(c, a, b)

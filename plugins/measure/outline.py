@@ -616,7 +616,9 @@ class _Cleaner:
         x, y = cc[:, 0], cc[:, 1]
         cum = np.zeros((2 * m + 1, 5))
         np.cumsum(np.stack([x, y, x * x, y * y, x * y], axis=1), axis=0, out=cum[1:])
-        self.cum = cum.tolist()
+        # rows are turned into Python floats when a line needs them (two rows a line): the whole table of a
+        # contour of m vertices, 10 m + 5 floats, cost more than the clean-up itself
+        self.cum = cum
         self.pts = c.tolist()
         self.cache = {}
         # a corner depends on its two neighbours, a turn and the edge after it on two corners to each side:
@@ -637,7 +639,7 @@ class _Cleaner:
         if span - 2 * trim >= 3:
             s0 = (a + trim) % m
             n = span - 2 * trim + 1
-            lo, hi = self.cum[s0], self.cum[s0 + n]
+            lo, hi = self.cum[s0].tolist(), self.cum[s0 + n].tolist()
             mx, my = (hi[0] - lo[0]) / n, (hi[1] - lo[1]) / n
             sxx = (hi[2] - lo[2]) / n - mx * mx
             syy = (hi[3] - lo[3]) / n - my * my
