@@ -79,12 +79,13 @@ def clipped_sigma(r: np.ndarray, centre: float) -> float:
     """Standard deviation of the central core of ``r`` around ``centre`` (iterative 3-sigma clip)."""
     dev = np.abs(r - centre)
     s = 1.4826 * float(np.median(dev))
+    dev2 = dev * dev  # squared once: the same values as squaring each clipped sample
     for _ in range(8):
-        sel = dev < CLIP_SIGMAS * s
-        if sel.sum() < 10:
+        core = dev2[dev < CLIP_SIGMAS * s]
+        if core.size < 10:
             break
         # a 3-sigma clipped normal has sd 0.9866 of the full one
-        s_new = float(np.sqrt(np.mean(dev[sel] ** 2))) / 0.9866
+        s_new = float(np.sqrt(np.mean(core))) / 0.9866
         if abs(s_new - s) <= 1e-3 * s:
             s = s_new
             break
@@ -103,9 +104,10 @@ def histogram_mode(r: np.ndarray) -> float:
     mode, so the mode is resolved to a fraction of the peak's width.
     """
     mode, width = _coarse_mode(r)
-    spread = 1.4826 * float(np.median(np.abs(r - mode)))  # the peak's width, robustly
+    dev = np.abs(r - mode)
+    spread = 1.4826 * float(np.median(dev))  # the peak's width, robustly
     if width > 0.25 * spread > 0:
-        near = r[np.abs(r - mode) <= 4 * spread]
+        near = r[dev <= 4 * spread]
         if near.size >= 64:
             mode, _ = _coarse_mode(near)
     return mode
@@ -124,7 +126,7 @@ def _coarse_mode(r: np.ndarray) -> tuple[float, float]:
 
 
 def median(values: np.ndarray) -> float:
-    """``float(numpy.median(values))``, from a histogram when the values are 8 or 16 bit unsigned integers.
+    """``float(numpy.median(values))``, by counting instead of sorting for 8/16-bit integers and float32.
 
     Parameters
     ----------
@@ -137,12 +139,70 @@ def median(values: np.ndarray) -> float:
         The middle value, or the mean of the two middle values of an even
         count (as numpy). For 8/16-bit unsigned integers the counts of every level
         (``numpy.bincount``) give it without sorting: equal to numpy's, 5-10x
-        faster on the millions of background pixels of a frame.
+        faster on the millions of background pixels of a frame. Large float32
+        samples without NaN (frames as the readers give them) take
+        :func:`float32_median`, equal to numpy's and about 3x faster.
     """
     values = np.asarray(values).ravel()
+    if values.dtype == np.float32 and values.size >= FLOAT32_COUNTING_MIN and not np.isnan(values).any():
+        return float32_median(values)
     if values.dtype.kind != "u" or values.dtype.itemsize > 2:
         return float(np.median(values))
     return median_of_counts(np.bincount(values), values.size)
+
+
+#: Below this many values :func:`median` leaves float32 samples to numpy (its selection is fast enough there).
+FLOAT32_COUNTING_MIN = 1 << 16
+#: The 65536 values of the upper 16 bits of a float32 in the order of the numbers they begin: the negative
+#: numbers (sign bit set) from the largest magnitude down, then the positive ones up.
+_UPPER_ORDER = np.r_[np.arange(0xFFFF, 0x7FFF, -1), np.arange(0, 0x8000)]
+
+
+def float32_median(values: np.ndarray) -> float:
+    """``float(numpy.median(values))`` of float32 values without NaN, from two rounds of counting.
+
+    Parameters
+    ----------
+    values : ndarray of float32, shape (n,)
+        n >= 1, no NaN.
+
+    Returns
+    -------
+    float
+        The middle value, or numpy's mean of the two middle values (the same
+        ``numpy.mean`` of a float32 pair numpy takes), so the result equals
+        numpy's bit for bit (the two are equal numbers in every case: the sign
+        of a zero may differ when both signs of zero are in the sample).
+
+    Notes
+    -----
+    The bits of a float32, read as an unsigned integer, order the positive
+    numbers as the numbers, and the negative ones in reverse (IEEE 754
+    sign-magnitude). The upper 16 bits of every value are counted
+    (``numpy.bincount``), the counts put in the order of the numbers, and
+    the group that holds the wanted rank found from their running sum; the
+    lower 16 bits of that group's values are counted the same way, which
+    gives the value's every bit. Two passes over the values and one over a
+    small group, where ``numpy.median`` partitions all of them.
+    """
+    v = np.ascontiguousarray(values, dtype=np.float32).ravel()
+    n = v.size
+    bits = v.view(np.uint32)
+    upper = bits >> 16
+    cum = np.cumsum(np.bincount(upper, minlength=1 << 16)[_UPPER_ORDER])
+    picked = []
+    for k in sorted({(n - 1) // 2, n // 2}):
+        j = int(np.searchsorted(cum, k, side="right"))
+        rank = k - (int(cum[j - 1]) if j else 0)
+        top = int(_UPPER_ORDER[j])
+        counts = np.bincount(bits[upper == top] & 0xFFFF, minlength=1 << 16)
+        if top >= 0x8000:  # negative numbers: a larger magnitude is a smaller number
+            low = 0xFFFF - int(np.searchsorted(np.cumsum(counts[::-1]), rank, side="right"))
+        else:
+            low = int(np.searchsorted(np.cumsum(counts), rank, side="right"))
+        picked.append(np.uint32((top << 16) | low).view(np.float32))
+    # one value for an odd count, the two middle ones for an even count: numpy's own mean of them
+    return float(np.mean(np.array(picked, dtype=np.float32)))
 
 
 def median_of_counts(counts: np.ndarray, n: int) -> float:

@@ -210,7 +210,7 @@ def label_moments(labels, image=None, n_labels=None):
     lab = check_labels(labels, image)
     n = int(lab.max()) if n_labels is None else int(n_labels)
     flat = lab.ravel()
-    fg = np.flatnonzero(flat)
+    fg = np.flatnonzero(flat != 0)  # the same indices; numpy finds them about 3x faster in a bool array
     ids = flat[fg].astype(np.intp)
     rows, cols = np.divmod(fg, lab.shape[1])
     x = cols.astype(np.float64)

@@ -33,6 +33,7 @@ __all__ = [
     "interior_angles",
     "polygon_area",
     "polygon_edges",
+    "savgol_coefficients",
     "smooth_closed_contour",
     "turning_angles",
 ]
@@ -200,6 +201,54 @@ def edge_ratio(poly):
     return float(e.min() / e.max())
 
 
+def savgol_coefficients(window: int, order: int) -> np.ndarray:
+    """Savitzky-Golay smoothing coefficients, ``scipy.signal.savgol_coeffs(window, order)`` without scipy.signal.
+
+    Parameters
+    ----------
+    window : int
+        Odd number of samples, greater than ``order``.
+    order : int
+        Degree of the local polynomial.
+
+    Returns
+    -------
+    ndarray of float64, shape (window,)
+        The weights that, convolved with a signal, give the value at each
+        sample of the least-squares polynomial of degree ``order`` through
+        the ``window`` samples around it [1]_.
+
+    Notes
+    -----
+    The least-squares solution ``c`` of ``A c = e_0`` with ``A[i, j] = x_j^i``,
+    ``x = (h, h - 1, ..., -h)`` (reversed for convolution) and ``h = window //
+    2``, solved by ``scipy.linalg.lstsq`` with ``cond = eps * window``: the
+    computation of ``scipy.signal.savgol_coeffs`` (SciPy 1.17) for the
+    smoothing case, so the weights are the same bit for bit
+    (``tests/test_measure_exact.py``). Importing scipy.signal brings
+    scipy.stats with it, about 0.6 s of CPU in every fresh worker process;
+    scipy.linalg is imported there anyway.
+
+    References
+    ----------
+    .. [1] A. Savitzky, M. J. E. Golay, "Smoothing and differentiation of data
+       by simplified least squares procedures", Analytical Chemistry 36(8),
+       1627-1639, 1964. DOI: 10.1021/ac60214a047
+    """
+    from scipy.linalg import lstsq
+
+    window, order = int(window), int(order)
+    if window % 2 == 0 or not 0 <= order < window:
+        raise ValueError(f"window must be odd and greater than order={order}, got {window}")
+    h = window // 2
+    x = np.flip(np.arange(-h, window - h, dtype=np.float64))
+    a = x ** np.arange(order + 1, dtype=np.float64).reshape(-1, 1)
+    y = np.zeros(order + 1, dtype=np.float64)
+    y[0] = 1.0
+    coef, _, _, _ = lstsq(a, y, cond=np.finfo(np.float64).eps * max(a.shape))
+    return coef
+
+
 def smooth_closed_contour(contour_xy, window=9, order=2):
     """Smooth a closed contour by local polynomial (Savitzky-Golay) regression.
 
@@ -244,10 +293,7 @@ def smooth_closed_contour(contour_xy, window=9, order=2):
         raise ValueError(f"window must be odd and greater than order={order}, got {window}")
     if len(c) <= window:
         return c.copy()
-    # imported here: scipy.signal brings scipy.stats with it, about 0.9 s CPU at a worker's start
-    from scipy.signal import savgol_coeffs
-
-    coef = savgol_coeffs(window, order)
+    coef = savgol_coefficients(window, order)
     h = window // 2
     ext = np.concatenate([c[-h:], c, c[:h]])
     out = np.empty_like(c)
@@ -570,7 +616,9 @@ class _Cleaner:
         x, y = cc[:, 0], cc[:, 1]
         cum = np.zeros((2 * m + 1, 5))
         np.cumsum(np.stack([x, y, x * x, y * y, x * y], axis=1), axis=0, out=cum[1:])
-        self.cum = cum.tolist()
+        # rows are turned into Python floats when a line needs them (two rows a line): the whole table of a
+        # contour of m vertices, 10 m + 5 floats, cost more than the clean-up itself
+        self.cum = cum
         self.pts = c.tolist()
         self.cache = {}
         # a corner depends on its two neighbours, a turn and the edge after it on two corners to each side:
@@ -591,7 +639,7 @@ class _Cleaner:
         if span - 2 * trim >= 3:
             s0 = (a + trim) % m
             n = span - 2 * trim + 1
-            lo, hi = self.cum[s0], self.cum[s0 + n]
+            lo, hi = self.cum[s0].tolist(), self.cum[s0 + n].tolist()
             mx, my = (hi[0] - lo[0]) / n, (hi[1] - lo[1]) / n
             sxx = (hi[2] - lo[2]) / n - mx * mx
             syy = (hi[3] - lo[3]) / n - my * my

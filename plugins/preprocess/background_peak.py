@@ -169,9 +169,13 @@ def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | Non
     m = histogram_mode(v)
     if grain_sign == 0:
         return m, clipped_sigma(v, m)
-    signed = grain_sign * arr
-    for _ in range(2):
+    # grain_sign * arr and its valid values, without a copy for +1 (the same values; negation is exact)
+    if grain_sign in (1, -1):
+        signed, s = (arr, v) if grain_sign == 1 else (-arr, -v)
+    else:
+        signed = grain_sign * arr
         s = signed[ok]
+    for _ in range(2):
         ms = grain_sign * m
         t = otsu_of(s)
         if ms <= t:
@@ -188,7 +192,7 @@ def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | Non
             break
         # a peak in a strip (a data bar): leave its values out and look again once
         ok = ok & ~(np.abs(signed - m_low) <= 2.0 * s_low)
-    s = signed[ok]
+        s = signed[ok]
     free = peak_sigma(s, ms, -1) if half_width else one_sided_sigma(s, ms, -1)
     return grain_sign * ms, min(clipped_sigma(s, ms), free)
 

@@ -133,7 +133,8 @@ def _pocket_depth(mask: np.ndarray, pocket: np.ndarray) -> float:
     """
     if not pocket.any():
         return 0.0
-    m = np.pad(mask, 1)
+    m = np.zeros((mask.shape[0] + 2, mask.shape[1] + 2), bool)  # np.pad(mask, 1), without its overhead
+    m[1:-1, 1:-1] = mask
     cross = m[:-2, 1:-1] | m[2:, 1:-1] | m[1:-1, :-2] | m[1:-1, 2:]
     diag = m[:-2, :-2] | m[:-2, 2:] | m[2:, :-2] | m[2:, 2:]
     if (pocket & ~(cross | diag)).any():
@@ -209,7 +210,9 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
     from scipy.spatial import ConvexHull, QhullError
     from skimage.measure import find_contours
 
-    contours = find_contours(np.pad(mask, 1).astype(np.float32), 0.5)
+    padded = np.zeros((mask.shape[0] + 2, mask.shape[1] + 2), np.float32)  # np.pad(mask, 1) as float32
+    padded[1:-1, 1:-1] = mask
+    contours = find_contours(padded, 0.5)
     pts = max(contours, key=len)[:-1] - 1.0 if contours else np.zeros((0, 2))
     try:
         hv = np.sort(ConvexHull(pts).vertices) if len(pts) >= 8 else None
@@ -253,19 +256,44 @@ def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
     -------
     ndarray of int
         Peak indices, increasing: ``scipy.signal.find_peaks(x, height=height,
-        prominence=prominence)[0]`` [1]_ (workers import scipy.signal once, when
-        they are prepared).
+        prominence=prominence)[0]`` [1]_, computed here with numpy (importing
+        scipy.signal brings scipy.stats with it, about 0.6 s of CPU in every
+        worker process; ``tests/test_touching_exact.py`` checks the two equal).
+
+    Notes
+    -----
+    As scipy defines them: a local maximum is a sample higher than its left
+    neighbour and than the first sample after it that differs from it (a
+    flat top counts once, at its middle sample, rounded down; the first and
+    the last sample never count). Its prominence is its value less the
+    higher of the lowest values between it and the nearest strictly higher
+    sample on either side (or the signal's end).
 
     References
     ----------
-    .. [1] SciPy documentation, ``scipy.signal.find_peaks``.
+    .. [1] SciPy documentation, ``scipy.signal.find_peaks`` and ``scipy.signal.peak_prominences``.
     """
-    from scipy.signal import find_peaks as _scipy_find_peaks
-
     x = np.asarray(x, float)
     if x.size < 3:
         return np.zeros(0, np.intp)
-    return _scipy_find_peaks(x, height=height, prominence=prominence)[0].astype(np.intp)
+    # runs of equal samples: start index and value; a run is a peak when higher than both neighbour runs
+    # and neither at the signal's start nor at its end
+    starts = np.r_[0, np.flatnonzero(x[1:] != x[:-1]) + 1]
+    ends = np.r_[starts[1:], x.size] - 1
+    v = x[starts]
+    top = np.zeros(v.size, bool)
+    top[1:-1] = (v[1:-1] > v[:-2]) & (v[1:-1] > v[2:])
+    peaks = (starts[top] + ends[top]) // 2
+    peaks = peaks[height <= x[peaks]]
+    keep = np.zeros(peaks.size, bool)
+    for i, p in enumerate(peaks):
+        h = x[p]
+        higher_left = np.flatnonzero(x[:p] > h)
+        lo = higher_left[-1] + 1 if higher_left.size else 0
+        higher_right = np.flatnonzero(x[p + 1:] > h)
+        hi = p + 1 + higher_right[0] if higher_right.size else x.size
+        keep[i] = prominence <= h - max(x[lo:p + 1].min(), x[p:hi].min())
+    return peaks[keep].astype(np.intp)
 
 
 def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> list[np.ndarray] | None:
