@@ -609,6 +609,55 @@ def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
     return np.where(d_hi < d_lo, fr[hi], fr[lo])
 
 
+def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current):
+    """Habit of a split grain from the outline its true edges imply (a generator of interior-fit requests).
+
+    The true edges are completed by two-fold, three-fold and six-fold rotational symmetry
+    (:func:`engine.complete_by_symmetry`). A completion is a candidate when
+
+    - it adds no more than a straight cut of a ``fold``-fold body could have taken away: a cut
+      that removes a share s < 1 / fold of the body (the premise of the completion) leaves
+      1 - s of its area, so the completed area is below fold / (fold - 1) times the visible one;
+    - its model explains it about as well as a smooth curve explains the true edges (within
+      ``smooth_margin``; a lumpy grain completed by symmetry looks polyhedral);
+    - a three-fold completion is a plate with a flat interior (a twinned plate), a six-fold one a
+      truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
+      outlines of six-fold symmetry; a cube has no {111} face to rest on).
+
+    Of the candidates and the habit of the cut outline itself (``current``, where it is not
+    irregular), the one whose model fits its outline best is taken: a cut octahedron on {111} is
+    a regular hexagon again only when completed six-fold, a cut square when completed two-fold,
+    and a grain cut along its true contact keeps the outline it has.
+    """
+    vis = en.polygon_centroid(outline_px)[1]
+    best, best_fold = None, 0
+    for fold in (2, 3, 6):
+        q = en.complete_by_symmetry(outline_px, free, fold)
+        if en.polygon_centroid(q)[1] > vis * fold / (fold - 1):
+            continue
+        contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+        if contour2 is None or len(contour2) < 8:
+            continue
+        res = yield from classify_grain_steps(contour2, interior2 if p["interior"] else None, p)
+        omr = res[2]["outline_misfit_ratio"]
+        if res[0] == "irregular" or omr ** 2 - smooth_free ** 2 > p["smooth_margin"]:
+            continue
+        if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
+                              and (yield from _flat_steps(contour2, interior2, p))):
+            continue
+        if fold == 6 and not ((res[0] in ("cuboctahedron", "octahedron") and res[3].face == "111")
+                              or res[0] == "tabular_hexagon"):
+            continue
+        if best is None or omr < best[2]["outline_misfit_ratio"]:
+            best, best_fold = res, fold
+    if best is None or (current[0] != "irregular"
+                        and current[2]["outline_misfit_ratio"] <= best[2]["outline_misfit_ratio"]):
+        return current
+    habit, score, ev, fit = best
+    ev["habit_note"] = f"split grain: outline completed by its {best_fold}-fold symmetry"
+    return habit, score, ev, fit
+
+
 def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p):
     """Habit, score, evidence columns and fit of grain row ``i`` (None if its outline is too small).
 
@@ -642,10 +691,9 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
             ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
                                 "to 5) within the outline noise")
             free = None
-        elif habit != "irregular":
-            free = None
-    elif split[i] and habit in TABULAR_HABITS:
-        # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
+    elif split[i] and habit in TABULAR_HABITS and (interior is None or not p["interior"] or (
+            yield from _flat_steps(contour, interior() if callable(interior) else interior, p))):
+        # a flat plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
         # from the outline its true edges imply (three-fold symmetry)
         free = None
         q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
@@ -655,32 +703,18 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
             if res[0] in TABULAR_HABITS:
                 habit, score, ev, fit = res
                 ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
+    elif split[i] and habit in TABULAR_HABITS:
+        # the cut outline looks like a plate, but the interior is not flat: a cut breaks the central
+        # symmetry of a Wulff outline, so judge the outline its true edges imply
+        free = free_edge(labels, outline_px, lab)
+        keep = free_samples(contour, free, p["n_angles"])
+        tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
+        smooth_free = en.smooth_residual(en.radial_signature(contour, p["n_angles"]), keep=keep) / tau
     else:
         free = None
     if free is not None:
-        # the clearly smaller of the two completions first: a cut square completed three-fold, or
-        # a cut triangle completed by central symmetry, grows far beyond its true edges; a cut
-        # regular hexagon (an octahedron on {111}) gives both alike, and central symmetry goes first
-        done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
-        if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
-            done = done[::-1]
-        for q, fold in done:
-            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
-            if contour2 is None or len(contour2) < 8:
-                continue
-            res = yield from classify_grain_steps(contour2, interior2 if p["interior"] else None, p)
-            # the completed model must explain the outline about as well as a smooth curve
-            # explains the true edges (a lumpy grain completed by symmetry looks polyhedral);
-            # a three-fold completion stands for a flat plate only
-            if res[0] == "irregular" or \
-                    res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
-                continue
-            if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
-                                  and (yield from _flat_steps(contour2, interior2, p))):
-                continue
-            habit, score, ev, fit = res
-            ev["habit_note"] = f"split grain: outline completed by its {fold}-fold symmetry"
-            break
+        habit, score, ev, fit = yield from _completed(outline_px, free, smooth_free, labels, signal, mode, lab,
+                                                      p, (habit, score, ev, fit))
     return habit, score, ev, fit
 
 

@@ -1408,10 +1408,14 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
         Vertices on the grain's true edges (False along the cut, where the
         dividing line need not follow the true contact). Only these are
         completed when they span at least half the outline's area; default all.
-    fold : {2, 3}
+    fold : {2, 3, 6}
         2: central symmetry (every Wulff projection along [100], [111] and
         [110], rods); 3: the three-fold symmetry of a twinned {111} plate
-        (triangles and hexagons with alternating edges).
+        (triangles and hexagons with alternating edges); 6: the six-fold
+        symmetry of a Wulff body seen along [111] (a body with a three-fold
+        axis and a centre of inversion projects along that axis to an outline
+        of six-fold rotational symmetry: the regular hexagon of the octahedron
+        and of the cube, the 12-gon of a cuboctahedron).
 
     Returns
     -------
@@ -1440,8 +1444,8 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     """
     from scipy.spatial import ConvexHull
 
-    if fold not in (2, 3):
-        raise ValueError(f"fold must be 2 or 3, got {fold!r}")
+    if fold not in (2, 3, 6):
+        raise ValueError(f"fold must be 2, 3 or 6, got {fold!r}")
     pts = _true_edge_hull(contour_xy, free)
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
