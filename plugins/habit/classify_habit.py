@@ -624,32 +624,51 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
       truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
       outlines of six-fold symmetry; a cube has no {111} face to rest on).
 
-    Of the candidates and the habit of the cut outline itself (``current``, where it is not
-    irregular), the one whose model fits its outline best is taken: a cut octahedron on {111} is
-    a regular hexagon again only when completed six-fold, a cut square when completed two-fold,
-    and a grain cut along its true contact keeps the outline it has.
+    The two-fold and three-fold completions are tried in order of area, the clearly smaller one
+    (by ``COMPLETION_AREA_MARGIN``) first: a cut square completed three-fold, or a cut triangle
+    completed by central symmetry, grows far beyond its true edges, and the plate family, free in
+    its edge ratio, fits any three-fold hull of straight edges. An outline of six-fold symmetry is
+    also centrally symmetric, so the six-fold completion is the more constrained of the two: it
+    replaces the two-fold one where its model fits its outline better (a cut regular hexagon,
+    an octahedron on {111}, completed by central symmetry about a centre a little off becomes a
+    hexagon with unequal edges). The habit of the cut outline itself (``current``, where it is not
+    irregular) stays where it fits its outline at least as well as the chosen completion (a grain
+    cut along its true contact keeps the outline it has). Returns ``current`` where no
+    completion is a candidate.
     """
     vis = en.polygon_centroid(outline_px)[1]
-    best, best_fold = None, 0
-    for fold in (2, 3, 6):
-        q = en.complete_by_symmetry(outline_px, free, fold)
+
+    def candidate(fold, q):
         if en.polygon_centroid(q)[1] > vis * fold / (fold - 1):
-            continue
+            return None
         contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
         if contour2 is None or len(contour2) < 8:
-            continue
+            return None
         res = yield from classify_grain_steps(contour2, interior2 if p["interior"] else None, p)
-        omr = res[2]["outline_misfit_ratio"]
-        if res[0] == "irregular" or omr ** 2 - smooth_free ** 2 > p["smooth_margin"]:
-            continue
+        if res[0] == "irregular" or res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
+            return None
         if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
                               and (yield from _flat_steps(contour2, interior2, p))):
-            continue
+            return None
         if fold == 6 and not ((res[0] in ("cuboctahedron", "octahedron") and res[3].face == "111")
                               or res[0] == "tabular_hexagon"):
-            continue
-        if best is None or omr < best[2]["outline_misfit_ratio"]:
-            best, best_fold = res, fold
+            return None
+        return res
+
+    done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
+    if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
+        done = done[::-1]
+    best, best_fold = None, 0
+    for q, fold in done:
+        best = yield from candidate(fold, q)
+        if best is not None:
+            best_fold = fold
+            break
+    if best is None or best_fold == 2:
+        six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6))
+        if six is not None and (best is None or
+                                six[2]["outline_misfit_ratio"] < best[2]["outline_misfit_ratio"]):
+            best, best_fold = six, 6
     if best is None or (current[0] != "irregular"
                         and current[2]["outline_misfit_ratio"] <= best[2]["outline_misfit_ratio"]):
         return current
