@@ -123,7 +123,7 @@ from scipy.spatial import ConvexHull
 from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
-from grainhabit.plugins.habit import disk_cache
+from grainhabit.plugins.habit import disk_cache, edge_blur
 from grainhabit.plugins.habit import engine as en
 from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
@@ -664,7 +664,10 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
         if best is not None:
             best_fold = fold
             break
-    if best is None or best_fold == 2:
+    if best is None or (best_fold == 2 and best[0] != "rod"
+                        and not (best[0] in POLYHEDRAL_HABITS and best[3].face == "100")):
+        # six-fold only where the two-fold completion is no outline of four-fold or only two-fold
+        # symmetry by nature (a cut square completed two-fold is a cube on {100}, a cut rod a rod)
         six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6))
         if six is not None and (best is None or
                                 six[2]["outline_misfit_ratio"] < best[2]["outline_misfit_ratio"]):
@@ -751,6 +754,9 @@ def classify_frame(frame, params=None) -> dict:
     contours = frame_contours(frame)
     signal, mode = interior_signal(frame)
     labels = np.asarray(frame.labels)
+    # the models' corners are rounded as the frame's blur rounds the grains' corners (edge_blur)
+    p = {**p, "corner_radius_px": edge_blur.corner_radius_px(edge_blur.edge_blur_px(signal, labels),
+                                                             p["corner_radius_px"])}
     split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
     g = frame.grains
     measured = "solidity" in g and "feret_ratio" in g
