@@ -80,11 +80,36 @@ judged by the outline its true edges imply (:func:`free_edge`):
   (by ``COMPLETION_AREA_MARGIN``) first, so a cut cube stays a cube and a cut
   triangle a triangle. The completion is taken only if its model explains it
   about as well as a smooth curve explains the true edges (within
-  ``smooth_margin``), and a three-fold one only for a plate with a flat interior.
+  ``smooth_margin``), if it adds no more than a straight cut of a body of that
+  symmetry could have removed (at most fold / (fold - 1) times the visible
+  area), and a three-fold one only for a plate with a flat interior;
+- a body seen along [111] projects to an outline of six-fold symmetry (a
+  three-fold axis and a centre of inversion): the regular hexagon of the
+  octahedron, the 12-gon of a cuboctahedron. A cut octahedron completed by
+  central symmetry about a centre a little off becomes a hexagon with unequal
+  edges that no model fits, so the six-fold completion is tried too (unless the
+  two-fold one is a {100} view or a rod) and replaces the two-fold one where its
+  model fits better; it stands for a truncated octahedron or an octahedron on
+  {111}, or a hexagonal plate (:func:`_completed`).
+
+The same completion is tried for a split grain whose cut outline looks polyhedral
+without showing facets, or is an octahedron that a truncated body fits as well
+(the cut hides the corners whose truncation tells them apart), or looks like a plate while its interior is not flat (a
+cut breaks the central symmetry of a Wulff outline, so a cut octahedron can look
+like a plate); the cut outline's own habit stays where it fits its outline at
+least as well as the completion does (a grain cut along its true contact keeps
+the outline it has).
 
 A cut plate that still fits the plate family takes its edge ratio from the
 outline completed three-fold (a corner cut by the neighbour looks like a short
 edge). Its area and ECD stay those of the visible part (measure-grains).
+
+The models' corners are rounded as the frame's blur rounds the grains' corners:
+:func:`edge_blur.edge_blur_px` measures the blur of the grains' edges (two-scale
+peak-gradient ratio), and the corner radius is 1.86 times that sigma (the
+half-height line of a blurred right angle), at least ``corner_radius_px``. A
+defocused frame's corners are rounded by several pixels, which a sharp-cornered
+triangle model would read as cut corners (a hexagonal plate).
 
 The plate and rod family outlines are rounded like the Wulff models (the
 rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
@@ -132,7 +157,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.2",
+    version="2.3",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -676,7 +701,8 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
                         and current[2]["outline_misfit_ratio"] <= best[2]["outline_misfit_ratio"]):
         return current
     habit, score, ev, fit = best
-    ev["habit_note"] = f"split grain: outline completed by its {best_fold}-fold symmetry"
+    ev["habit_note"] = f"split grain: outline completed by its {best_fold}-fold symmetry" + \
+        (f"; {ev['habit_note']}" if ev["habit_note"] else "")
     return habit, score, ev, fit
 
 
@@ -696,7 +722,8 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
     habit, score, ev, fit = yield from classify_grain_steps(contour, interior if p["interior"] else None, p,
                                                             hull=hull, split=bool(split[i]))
     fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
-    if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])):
+    if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])
+                     or (habit == "octahedron" and score <= 0.5)):
         # cut from a touching neighbour: where its true edges are a smooth curve within the
         # outline noise (and the interior shows no facets) it is a rounded grain, whatever
         # its cut outline resembles, with no corners to complete; else, where the cut outline
