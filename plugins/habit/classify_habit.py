@@ -88,7 +88,7 @@ judged by the outline its true edges imply (:func:`free_edge`):
   octahedron, the 12-gon of a cuboctahedron. A cut octahedron completed by
   central symmetry about a centre a little off becomes a hexagon with unequal
   edges that no model fits, so the six-fold completion is tried too (unless the
-  two-fold one is a {100} view or a rod) and replaces the two-fold one where its
+  two-fold one is a {100} view) and replaces the two-fold one where its
   model fits better; it stands for a truncated octahedron or an octahedron on
   {111}, or a hexagonal plate (:func:`_completed`).
 
@@ -662,17 +662,23 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
     completion is a candidate.
     """
     vis = en.polygon_centroid(outline_px)[1]
+    bar = current[2]["outline_misfit_ratio"] if current[0] != "irregular" else math.inf
 
-    def candidate(fold, q):
+    def candidate(fold, q, beat):
         if en.polygon_centroid(q)[1] > vis * fold / (fold - 1):
             return None
-        contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+        contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
         if contour2 is None or len(contour2) < 8:
             return None
-        res = yield from classify_grain_steps(contour2, interior2 if p["interior"] else None, p)
+        # the outline alone first: the interior fit only moves the outline misfit up, so a
+        # completion whose outline misfit does not beat ``beat`` cannot win (and no interior is read)
+        if not _outline_misfit_ratio(contour2, p) < beat:
+            return None
+        interior2 = get_interior() if p["interior"] else None
+        res = yield from classify_grain_steps(contour2, interior2, p)
         if res[0] == "irregular" or res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
             return None
-        if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
+        if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None
                               and (yield from _flat_steps(contour2, interior2, p))):
             return None
         if fold == 6 and not ((res[0] in ("cuboctahedron", "octahedron") and res[3].face == "111")
@@ -685,25 +691,35 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
         done = done[::-1]
     best, best_fold = None, 0
     for q, fold in done:
-        best = yield from candidate(fold, q)
+        best = yield from candidate(fold, q, bar)
         if best is not None:
             best_fold = fold
             break
-    if best is None or (best_fold == 2 and best[0] != "rod"
-                        and not (best[0] in POLYHEDRAL_HABITS and best[3].face == "100")):
-        # six-fold only where the two-fold completion is no outline of four-fold or only two-fold
-        # symmetry by nature (a cut square completed two-fold is a cube on {100}, a cut rod a rod)
-        six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6))
+    if best is None or (best_fold == 2 and not (best[0] in POLYHEDRAL_HABITS and best[3].face == "100")):
+        # six-fold only where the two-fold completion is no view along [100] (a cut square completed
+        # two-fold is a cube on {100}, an outline of four-fold symmetry that no six-fold one can be)
+        beat = bar if best is None else min(bar, best[2]["outline_misfit_ratio"])
+        six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6), beat)
         if six is not None and (best is None or
                                 six[2]["outline_misfit_ratio"] < best[2]["outline_misfit_ratio"]):
             best, best_fold = six, 6
-    if best is None or (current[0] != "irregular"
-                        and current[2]["outline_misfit_ratio"] <= best[2]["outline_misfit_ratio"]):
+    if best is None or best[2]["outline_misfit_ratio"] >= bar:
         return current
     habit, score, ev, fit = best
     ev["habit_note"] = f"split grain: outline completed by its {best_fold}-fold symmetry" + \
         (f"; {ev['habit_note']}" if ev["habit_note"] else "")
     return habit, score, ev, fit
+
+
+def _outline_misfit_ratio(contour_lab, p) -> float:
+    """Best outline misfit of a closed outline over the Wulff, plate and rod families, in outline-noise units."""
+    lib = en.fit_options(p)["library"]
+    match = en.match_outline(contour_lab, lib, 1.0, p["outline_noise_px"], p["outline_noise_floor"],
+                             p["corner_radius_px"])
+    valid = match.valid
+    d_wulff = float(match.dist[valid].min())
+    (d_plate, _, _), (d_rod, _, _) = best_families(match.signature, match.level)
+    return min(d_wulff, d_plate, d_rod) / match.tau
 
 
 def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p):
@@ -761,6 +777,10 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
         smooth_free = en.smooth_residual(en.radial_signature(contour, p["n_angles"]), keep=keep) / tau
     else:
         free = None
+    if free is not None and habit != "irregular" and ev["outline_misfit_ratio"] ** 2 <= p["tolerance"]:
+        # the cut outline fits its model within the tolerance of a perfect fit: a grain cut along
+        # its true contact, which no completion could explain better
+        free = None
     if free is not None:
         habit, score, ev, fit = yield from _completed(outline_px, free, smooth_free, labels, signal, mode, lab,
                                                       p, (habit, score, ev, fit))
@@ -782,8 +802,9 @@ def classify_frame(frame, params=None) -> dict:
     signal, mode = interior_signal(frame)
     labels = np.asarray(frame.labels)
     # the models' corners are rounded as the frame's blur rounds the grains' corners (edge_blur)
-    p = {**p, "corner_radius_px": edge_blur.corner_radius_px(edge_blur.edge_blur_px(signal, labels),
-                                                             p["corner_radius_px"])}
+    labs = np.asarray(frame.grains["label"], int)
+    sigma = edge_blur.edge_blur_px(signal, labels, outlines=list(zip(labs.tolist(), contours)))
+    p = {**p, "corner_radius_px": edge_blur.corner_radius_px(sigma, p["corner_radius_px"])}
     split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
     g = frame.grains
     measured = "solidity" in g and "feret_ratio" in g

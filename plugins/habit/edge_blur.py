@@ -42,7 +42,7 @@ CORNER_RADIUS_PER_SIGMA = 0.77 / (math.sqrt(2.0) - 1.0)
 #: The two scales (pixels) of the Gaussian derivative filters.
 SCALES_PX = (1.5, 3.0)
 
-#: Grains whose edges are read at most (the largest; the blur is one number per frame).
+#: Grains whose edges are read at most (the blur is one number per frame).
 MAX_GRAINS = 8
 
 #: Least number of edge pixels for an estimate.
@@ -52,14 +52,14 @@ MIN_EDGE_PIXELS = 200
 def _peak_ratio(crop: np.ndarray, edge: np.ndarray) -> np.ndarray:
     """Ratio of the peak gradient magnitudes at the two scales on the edge pixels of one crop."""
     s1, s2 = SCALES_PX
-    g1 = ndi.maximum_filter(ndi.gaussian_gradient_magnitude(crop, s1), size=3)
-    g2 = ndi.maximum_filter(ndi.gaussian_gradient_magnitude(crop, s2), size=3)
+    g1 = ndi.maximum_filter(ndi.gaussian_gradient_magnitude(crop, s1, truncate=3.0), size=3)
+    g2 = ndi.maximum_filter(ndi.gaussian_gradient_magnitude(crop, s2, truncate=3.0), size=3)
     a, b = g1[edge], g2[edge]
     strong = b > 0.5 * np.median(b) if b.size else b.astype(bool)
     return a[strong] / np.maximum(b[strong], 1e-12)
 
 
-def edge_blur_px(image, labels, max_grains: int = MAX_GRAINS) -> float:
+def edge_blur_px(image, labels, max_grains: int = MAX_GRAINS, outlines=None) -> float:
     """Standard deviation (pixels) of the Gaussian blur of a frame's grain edges.
 
     Parameters
@@ -69,7 +69,10 @@ def edge_blur_px(image, labels, max_grains: int = MAX_GRAINS) -> float:
     labels : ndarray of int, shape (rows, cols)
         Grain labels (0 background).
     max_grains : int
-        The edges of at most this many grains are read (the largest).
+        The edges of at most this many grains are read (those nearest the median size).
+    outlines : sequence of (label, ndarray (k, 2)), optional
+        Outlines (x = column + 0.5, y = row + 0.5 at pixel centres) of the grains, where the
+        caller has them: their boxes are taken from them instead of a pass over the label image.
 
     Returns
     -------
@@ -79,27 +82,37 @@ def edge_blur_px(image, labels, max_grains: int = MAX_GRAINS) -> float:
         scale resolves, NaN where the frame has fewer than :data:`MIN_EDGE_PIXELS` edge pixels.
     """
     lab = np.asarray(labels)
-    img = np.asarray(image, float)
-    if lab.shape != img.shape or lab.max() <= 0:
+    img = np.asarray(image)
+    if lab.shape != img.shape or lab.size == 0:
         return float("nan")
-    objs = ndi.find_objects(lab)
-    sizes = [((o[0].stop - o[0].start) * (o[1].stop - o[1].start), k + 1) for k, o in enumerate(objs)
-             if o is not None]
-    sizes.sort(reverse=True)
+    if outlines is None:
+        boxes = [(k + 1, (o[0].start, o[0].stop, o[1].start, o[1].stop))
+                 for k, o in enumerate(ndi.find_objects(lab)) if o is not None]
+    else:
+        boxes = []
+        for k, c in outlines:
+            c = np.asarray(c, float)
+            if len(c):
+                boxes.append((int(k), (int(np.floor(c[:, 1].min())), int(np.ceil(c[:, 1].max())) + 1,
+                                       int(np.floor(c[:, 0].min())), int(np.ceil(c[:, 0].max())) + 1)))
+    # the grains nearest the median size: every grain of a frame is blurred alike, and the largest
+    # would only cost more
+    area = np.array([(b[1] - b[0]) * (b[3] - b[2]) for _, b in boxes], float)
+    order = np.argsort(np.abs(area - np.median(area)), kind="stable") if area.size else []
+    boxes = [boxes[j] for j in order]
     pad = int(math.ceil(3 * SCALES_PX[1])) + 2
     ratios = []
-    for _, k in sizes[:max_grains]:
-        o = objs[k - 1]
-        r0, r1 = max(o[0].start - pad, 0), min(o[0].stop + pad, lab.shape[0])
-        c0, c1 = max(o[1].start - pad, 0), min(o[1].stop + pad, lab.shape[1])
-        m = lab[r0:r1, c0:c1] == k
+    for k, (a0, a1, b0, b1) in boxes[:max_grains]:
+        r0, r1 = max(a0 - pad, 0), min(a1 + pad, lab.shape[0])
+        c0, c1 = max(b0 - pad, 0), min(b1 + pad, lab.shape[1])
+        crop = lab[r0:r1, c0:c1]
+        m = crop == k
         edge = m & ~ndi.binary_erosion(m)
         # only the grain's own edges facing the background, not its cut to a neighbour
-        others = ndi.binary_dilation((lab[r0:r1, c0:c1] != k) & (lab[r0:r1, c0:c1] != 0), iterations=3)
-        edge &= ~others
+        edge &= ~ndi.binary_dilation((crop != k) & (crop != 0), iterations=3)
         if edge.sum() < 8:
             continue
-        ratios.append(_peak_ratio(img[r0:r1, c0:c1], edge))
+        ratios.append(_peak_ratio(np.asarray(img[r0:r1, c0:c1], float), edge))
     if not ratios:
         return float("nan")
     r = np.concatenate(ratios)
