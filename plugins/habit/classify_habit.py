@@ -88,7 +88,7 @@ judged by the outline its true edges imply (:func:`free_edge`):
   octahedron, the 12-gon of a cuboctahedron. A cut octahedron completed by
   central symmetry about a centre a little off becomes a hexagon with unequal
   edges that no model fits, so the six-fold completion is tried too (unless the
-  two-fold one is a {100} view) and replaces the two-fold one where its
+  two-fold one is a {100} view or fits within tolerance) and replaces the two-fold one where its
   model fits better; it stands for a truncated octahedron or an octahedron on
   {111}, or a hexagonal plate (:func:`_completed`).
 
@@ -634,7 +634,7 @@ def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
     return np.where(d_hi < d_lo, fr[hi], fr[lo])
 
 
-def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current):
+def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current, plates=True):
     """Habit of a split grain from the outline its true edges imply (a generator of interior-fit requests).
 
     The true edges are completed by two-fold, three-fold and six-fold rotational symmetry
@@ -659,7 +659,8 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
     hexagon with unequal edges). The habit of the cut outline itself (``current``, where it is not
     irregular) stays where it fits its outline at least as well as the chosen completion (a grain
     cut along its true contact keeps the outline it has). Returns ``current`` where no
-    completion is a candidate.
+    completion is a candidate. ``plates`` False (the interior is known not to be flat) leaves the
+    three-fold completion out: it could only stand for a flat plate.
     """
     vis = en.polygon_centroid(outline_px)[1]
     bar = current[2]["outline_misfit_ratio"] if current[0] != "irregular" else math.inf
@@ -686,20 +687,27 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
             return None
         return res
 
-    done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
-    if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
+    done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in ((2, 3) if plates else (2,))]
+    if plates and en.polygon_centroid(done[1][0])[1] < \
+            (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
         done = done[::-1]
+    done_by = {fold: q for q, fold in done}
     best, best_fold = None, 0
     for q, fold in done:
         best = yield from candidate(fold, q, bar)
         if best is not None:
             best_fold = fold
             break
-    if best is None or (best_fold == 2 and not (best[0] in POLYHEDRAL_HABITS and best[3].face == "100")):
+    if best is None or (best_fold == 2 and not (best[0] in POLYHEDRAL_HABITS and best[3].face == "100")
+                        and best[2]["outline_misfit_ratio"] ** 2 > p["tolerance"]):
         # six-fold only where the two-fold completion is no view along [100] (a cut square completed
         # two-fold is a cube on {100}, an outline of four-fold symmetry that no six-fold one can be)
+        # and does not already fit its model within the tolerance of a perfect fit
         beat = bar if best is None else min(bar, best[2]["outline_misfit_ratio"])
-        six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6), beat)
+        # the centre of the body is that of the two-fold completion (a centrally symmetric outline's
+        # centroid), to within the search's first grids
+        six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6,
+                                                              centre=en.polygon_centroid(done_by[2])[0]), beat)
         if six is not None and (best is None or
                                 six[2]["outline_misfit_ratio"] < best[2]["outline_misfit_ratio"]):
             best, best_fold = six, 6
@@ -782,8 +790,10 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
         # its true contact, which no completion could explain better
         free = None
     if free is not None:
+        relief = max(np.nan_to_num(ev["facet_chi2"]), np.nan_to_num(ev["relief_chi2"]))
         habit, score, ev, fit = yield from _completed(outline_px, free, smooth_free, labels, signal, mode, lab,
-                                                      p, (habit, score, ev, fit))
+                                                      p, (habit, score, ev, fit),
+                                                      plates=not relief >= p["facet_chi2_min"])
     return habit, score, ev, fit
 
 

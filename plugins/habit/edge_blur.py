@@ -43,7 +43,7 @@ CORNER_RADIUS_PER_SIGMA = 0.77 / (math.sqrt(2.0) - 1.0)
 SCALES_PX = (1.5, 3.0)
 
 #: Grains whose edges are read at most (the blur is one number per frame).
-MAX_GRAINS = 8
+MAX_GRAINS = 6
 
 #: Least number of edge pixels for an estimate.
 MIN_EDGE_PIXELS = 200

@@ -120,7 +120,8 @@ FIT_PARAMS = (
     Param("outline_noise_floor", float, 0.003, low=0.0,
           doc="Least outline misfit unit (model imperfection), relative to sqrt(area)."),
     Param("corner_radius_px", float, 1.0, unit="px", low=0.0,
-          doc="Radius to which blur and thresholding round an outline's corners; models are rounded alike."),
+          doc="Least radius to which blur and thresholding round an outline's corners; models are rounded "
+              "alike (classify-habit rounds them more where the frame's measured edge blur says so)."),
     Param("interior", bool, True, doc="Use the facet layout / thickness inside the grain."),
     Param("interior_weight", float, 0.05, low=0.0,
           doc="Independent samples per interior pixel (blur makes neighbours correlated)."),
@@ -1397,7 +1398,7 @@ def _support_tables(n: int, fold: int):
     return u, du, (cr(bm, a), cr(a, np.roll(a, -1, axis=0)) + cr(bm, b))
 
 
-def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
+def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> np.ndarray:
     """The smallest convex outline of ``fold``-fold rotational symmetry that contains a (cut) outline.
 
     Parameters
@@ -1416,6 +1417,11 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
         axis and a centre of inversion projects along that axis to an outline
         of six-fold rotational symmetry: the regular hexagon of the octahedron
         and of the cube, the 12-gon of a cuboctahedron).
+
+    centre : (float, float), optional
+        Where the body's centre is known to lie within a few hundredths of sqrt(area) (the
+        centre of another completion of the same grain): the search starts there, two grids
+        finer, and stops at a hundredth of sqrt(area) (default: from the centroid).
 
     Returns
     -------
@@ -1451,8 +1457,10 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     scale = math.sqrt(area)
     g = np.linspace(-1.0, 1.0, 9)
     grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
-    best, half = np.asarray(cen, float), 0.6 * scale
-    while half > 1e-3 * scale:
+    best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
+    if centre is not None:
+        best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
+    while half > stop:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
