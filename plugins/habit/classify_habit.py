@@ -104,13 +104,6 @@ A cut plate that still fits the plate family takes its edge ratio from the
 outline completed three-fold (a corner cut by the neighbour looks like a short
 edge). Its area and ECD stay those of the visible part (measure-grains).
 
-The models' corners are rounded as the frame's blur rounds the grains' corners:
-:func:`edge_blur.edge_blur_px` measures the blur of the grains' edges (two-scale
-peak-gradient ratio), and the corner radius is 1.86 times that sigma (the
-half-height line of a blurred right angle), at least ``corner_radius_px``. A
-defocused frame's corners are rounded by several pixels, which a sharp-cornered
-triangle model would read as cut corners (a hexagonal plate).
-
 The plate and rod family outlines are rounded like the Wulff models (the
 rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
 refined between the grid's members (:func:`best_families`).
@@ -148,7 +141,7 @@ from scipy.spatial import ConvexHull
 from grainhabit import hookimpl
 from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
-from grainhabit.plugins.habit import disk_cache, edge_blur
+from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit import engine as en
 from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
@@ -811,10 +804,6 @@ def classify_frame(frame, params=None) -> dict:
     contours = frame_contours(frame)
     signal, mode = interior_signal(frame)
     labels = np.asarray(frame.labels)
-    # the models' corners are rounded as the frame's blur rounds the grains' corners (edge_blur)
-    labs = np.asarray(frame.grains["label"], int)
-    sigma = edge_blur.edge_blur_px(signal, labels, outlines=list(zip(labs.tolist(), contours)))
-    p = {**p, "corner_radius_px": edge_blur.corner_radius_px(sigma, p["corner_radius_px"])}
     split = np.asarray(frame.grains.get("split", np.zeros(n, bool)), bool)
     g = frame.grains
     measured = "solidity" in g and "feret_ratio" in g

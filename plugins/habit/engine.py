@@ -120,8 +120,7 @@ FIT_PARAMS = (
     Param("outline_noise_floor", float, 0.003, low=0.0,
           doc="Least outline misfit unit (model imperfection), relative to sqrt(area)."),
     Param("corner_radius_px", float, 1.0, unit="px", low=0.0,
-          doc="Least radius to which blur and thresholding round an outline's corners; models are rounded "
-              "alike (classify-habit rounds them more where the frame's measured edge blur says so)."),
+          doc="Radius to which blur and thresholding round an outline's corners; models are rounded alike."),
     Param("interior", bool, True, doc="Use the facet layout / thickness inside the grain."),
     Param("interior_weight", float, 0.05, low=0.0,
           doc="Independent samples per interior pixel (blur makes neighbours correlated)."),
