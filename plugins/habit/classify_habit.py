@@ -94,11 +94,11 @@ judged by the outline its true edges imply (:func:`free_edge`):
 
 The same completion is tried for a split grain whose cut outline looks polyhedral
 without showing facets, or is an octahedron that a truncated body fits as well
-(the cut hides the corners whose truncation tells them apart), or looks like a plate while its interior is not flat (a
-cut breaks the central symmetry of a Wulff outline, so a cut octahedron can look
-like a plate); the cut outline's own habit stays where it fits its outline at
-least as well as the completion does (a grain cut along its true contact keeps
-the outline it has).
+(the cut hides the corners whose truncation tells them apart), where the cut
+outline misfits its model by more than the tolerance and by more than a smooth
+curve misfits its true edges (the test a completion must pass); the cut
+outline's own habit stays where it fits its outline at least as well as the
+completion does (a grain cut along its true contact keeps the outline it has).
 
 A cut plate that still fits the plate family takes its edge ratio from the
 outline completed three-fold (a corner cut by the neighbour looks like a short
@@ -757,9 +757,8 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
             ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
                                 "to 5) within the outline noise")
             free = None
-    elif split[i] and habit in TABULAR_HABITS and (interior is None or not p["interior"] or (
-            yield from _flat_steps(contour, interior() if callable(interior) else interior, p))):
-        # a flat plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
+    elif split[i] and habit in TABULAR_HABITS:
+        # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
         # from the outline its true edges imply (three-fold symmetry)
         free = None
         q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
@@ -769,18 +768,14 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
             if res[0] in TABULAR_HABITS:
                 habit, score, ev, fit = res
                 ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
-    elif split[i] and habit in TABULAR_HABITS:
-        # the cut outline looks like a plate, but the interior is not flat: a cut breaks the central
-        # symmetry of a Wulff outline, so judge the outline its true edges imply
-        free = free_edge(labels, outline_px, lab)
-        keep = free_samples(contour, free, p["n_angles"])
-        tau = max(p["outline_noise_px"] / math.sqrt(en.polygon_centroid(contour)[1]), p["outline_noise_floor"])
-        smooth_free = en.smooth_residual(en.radial_signature(contour, p["n_angles"]), keep=keep) / tau
     else:
         free = None
-    if free is not None and habit != "irregular" and ev["outline_misfit_ratio"] ** 2 <= p["tolerance"]:
-        # the cut outline fits its model within the tolerance of a perfect fit: a grain cut along
-        # its true contact, which no completion could explain better
+    if free is not None and habit != "irregular" and (
+            ev["outline_misfit_ratio"] ** 2 <= p["tolerance"]
+            or ev["outline_misfit_ratio"] ** 2 - smooth_free ** 2 <= p["smooth_margin"]):
+        # the cut outline fits its model within the tolerance of a perfect fit, or as well as a
+        # smooth curve fits its true edges (the test a completion must pass): a grain cut along its
+        # true contact, which no completion could explain better
         free = None
     if free is not None:
         relief = max(np.nan_to_num(ev["facet_chi2"]), np.nan_to_num(ev["relief_chi2"]))
