@@ -80,7 +80,25 @@ judged by the outline its true edges imply (:func:`free_edge`):
   (by ``COMPLETION_AREA_MARGIN``) first, so a cut cube stays a cube and a cut
   triangle a triangle. The completion is taken only if its model explains it
   about as well as a smooth curve explains the true edges (within
-  ``smooth_margin``), and a three-fold one only for a plate with a flat interior.
+  ``smooth_margin``), if it adds no more than a straight cut of a body of that
+  symmetry could have removed (at most fold / (fold - 1) times the visible
+  area), and a three-fold one only for a plate with a flat interior;
+- a body seen along [111] projects to an outline of six-fold symmetry (a
+  three-fold axis and a centre of inversion): the regular hexagon of the
+  octahedron, the 12-gon of a cuboctahedron. A cut octahedron completed by
+  central symmetry about a centre a little off becomes a hexagon with unequal
+  edges that no model fits, so the six-fold completion is tried too (unless the
+  two-fold one is a {100} view or fits within tolerance) and replaces the two-fold one where its
+  model fits better; it stands for a truncated octahedron or an octahedron on
+  {111}, or a hexagonal plate (:func:`_completed`).
+
+The same completion is tried for a split grain whose cut outline looks polyhedral
+without showing facets, or is an octahedron that a truncated body fits as well
+(the cut hides the corners whose truncation tells them apart), where the cut
+outline misfits its model by more than the tolerance and by more than a smooth
+curve misfits its true edges (the test a completion must pass); the cut
+outline's own habit stays where it fits its outline at least as well as the
+completion does (a grain cut along its true contact keeps the outline it has).
 
 A cut plate that still fits the plate family takes its edge ratio from the
 outline completed three-fold (a corner cut by the neighbour looks like a short
@@ -132,7 +150,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.2",
+    version="2.3",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -609,6 +627,102 @@ def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
     return np.where(d_hi < d_lo, fr[hi], fr[lo])
 
 
+def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current, plates=True):
+    """Habit of a split grain from the outline its true edges imply (a generator of interior-fit requests).
+
+    The true edges are completed by two-fold, three-fold and six-fold rotational symmetry
+    (:func:`engine.complete_by_symmetry`). A completion is a candidate when
+
+    - it adds no more than a straight cut of a ``fold``-fold body could have taken away: a cut
+      that removes a share s < 1 / fold of the body (the premise of the completion) leaves
+      1 - s of its area, so the completed area is below fold / (fold - 1) times the visible one;
+    - its model explains it about as well as a smooth curve explains the true edges (within
+      ``smooth_margin``; a lumpy grain completed by symmetry looks polyhedral);
+    - a three-fold completion is a plate with a flat interior (a twinned plate), a six-fold one a
+      truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
+      outlines of six-fold symmetry; a cube has no {111} face to rest on).
+
+    The two-fold and three-fold completions are tried in order of area, the clearly smaller one
+    (by ``COMPLETION_AREA_MARGIN``) first: a cut square completed three-fold, or a cut triangle
+    completed by central symmetry, grows far beyond its true edges, and the plate family, free in
+    its edge ratio, fits any three-fold hull of straight edges. An outline of six-fold symmetry is
+    also centrally symmetric, so the six-fold completion is the more constrained of the two: it
+    replaces the two-fold one where its model fits its outline better (a cut regular hexagon,
+    an octahedron on {111}, completed by central symmetry about a centre a little off becomes a
+    hexagon with unequal edges). The habit of the cut outline itself (``current``, where it is not
+    irregular) stays where it fits its outline at least as well as the chosen completion (a grain
+    cut along its true contact keeps the outline it has). Returns ``current`` where no
+    completion is a candidate. ``plates`` False (the interior is known not to be flat) leaves the
+    three-fold completion out: it could only stand for a flat plate.
+    """
+    vis = en.polygon_centroid(outline_px)[1]
+    bar = current[2]["outline_misfit_ratio"] if current[0] != "irregular" else math.inf
+
+    def candidate(fold, q, beat):
+        if en.polygon_centroid(q)[1] > vis * fold / (fold - 1):
+            return None
+        contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
+        if contour2 is None or len(contour2) < 8:
+            return None
+        # the outline alone first: the interior fit only moves the outline misfit up, so a
+        # completion whose outline misfit does not beat ``beat`` cannot win (and no interior is read)
+        if not _outline_misfit_ratio(contour2, p) < beat:
+            return None
+        interior2 = get_interior() if p["interior"] else None
+        res = yield from classify_grain_steps(contour2, interior2, p)
+        if res[0] == "irregular" or res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
+            return None
+        if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None
+                              and (yield from _flat_steps(contour2, interior2, p))):
+            return None
+        if fold == 6 and not ((res[0] in ("cuboctahedron", "octahedron") and res[3].face == "111")
+                              or res[0] == "tabular_hexagon"):
+            return None
+        return res
+
+    done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in ((2, 3) if plates else (2,))]
+    if plates and en.polygon_centroid(done[1][0])[1] < \
+            (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
+        done = done[::-1]
+    done_by = {fold: q for q, fold in done}
+    best, best_fold = None, 0
+    for q, fold in done:
+        best = yield from candidate(fold, q, bar)
+        if best is not None:
+            best_fold = fold
+            break
+    if best is None or (best_fold == 2 and not (best[0] in POLYHEDRAL_HABITS and best[3].face == "100")
+                        and best[2]["outline_misfit_ratio"] ** 2 > p["tolerance"]):
+        # six-fold only where the two-fold completion is no view along [100] (a cut square completed
+        # two-fold is a cube on {100}, an outline of four-fold symmetry that no six-fold one can be)
+        # and does not already fit its model within the tolerance of a perfect fit
+        beat = bar if best is None else min(bar, best[2]["outline_misfit_ratio"])
+        # the centre of the body is that of the two-fold completion (a centrally symmetric outline's
+        # centroid), to within the search's first grids
+        six = yield from candidate(6, en.complete_by_symmetry(outline_px, free, 6,
+                                                              centre=en.polygon_centroid(done_by[2])[0]), beat)
+        if six is not None and (best is None or
+                                six[2]["outline_misfit_ratio"] < best[2]["outline_misfit_ratio"]):
+            best, best_fold = six, 6
+    if best is None or best[2]["outline_misfit_ratio"] >= bar:
+        return current
+    habit, score, ev, fit = best
+    ev["habit_note"] = f"split grain: outline completed by its {best_fold}-fold symmetry" + \
+        (f"; {ev['habit_note']}" if ev["habit_note"] else "")
+    return habit, score, ev, fit
+
+
+def _outline_misfit_ratio(contour_lab, p) -> float:
+    """Best outline misfit of a closed outline over the Wulff, plate and rod families, in outline-noise units."""
+    lib = en.fit_options(p)["library"]
+    match = en.match_outline(contour_lab, lib, 1.0, p["outline_noise_px"], p["outline_noise_floor"],
+                             p["corner_radius_px"])
+    valid = match.valid
+    d_wulff = float(match.dist[valid].min())
+    (d_plate, _, _), (d_rod, _, _) = best_families(match.signature, match.level)
+    return min(d_wulff, d_plate, d_rod) / match.tau
+
+
 def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p):
     """Habit, score, evidence columns and fit of grain row ``i`` (None if its outline is too small).
 
@@ -625,7 +739,8 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
     habit, score, ev, fit = yield from classify_grain_steps(contour, interior if p["interior"] else None, p,
                                                             hull=hull, split=bool(split[i]))
     fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
-    if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])):
+    if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])
+                     or (habit == "octahedron" and score <= 0.5)):
         # cut from a touching neighbour: where its true edges are a smooth curve within the
         # outline noise (and the interior shows no facets) it is a rounded grain, whatever
         # its cut outline resembles, with no corners to complete; else, where the cut outline
@@ -642,8 +757,6 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
             ev["habit_note"] = ("rounded: the true edges of this split grain are a smooth curve (harmonics up "
                                 "to 5) within the outline noise")
             free = None
-        elif habit != "irregular":
-            free = None
     elif split[i] and habit in TABULAR_HABITS:
         # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
         # from the outline its true edges imply (three-fold symmetry)
@@ -657,30 +770,18 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p)
                 ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
     else:
         free = None
+    if free is not None and habit != "irregular" and (
+            ev["outline_misfit_ratio"] ** 2 <= p["tolerance"]
+            or ev["outline_misfit_ratio"] ** 2 - smooth_free ** 2 <= p["smooth_margin"]):
+        # the cut outline fits its model within the tolerance of a perfect fit, or as well as a
+        # smooth curve fits its true edges (the test a completion must pass): a grain cut along its
+        # true contact, which no completion could explain better
+        free = None
     if free is not None:
-        # the clearly smaller of the two completions first: a cut square completed three-fold, or
-        # a cut triangle completed by central symmetry, grows far beyond its true edges; a cut
-        # regular hexagon (an octahedron on {111}) gives both alike, and central symmetry goes first
-        done = [(en.complete_by_symmetry(outline_px, free, fold), fold) for fold in (2, 3)]
-        if en.polygon_centroid(done[1][0])[1] < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(done[0][0])[1]:
-            done = done[::-1]
-        for q, fold in done:
-            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
-            if contour2 is None or len(contour2) < 8:
-                continue
-            res = yield from classify_grain_steps(contour2, interior2 if p["interior"] else None, p)
-            # the completed model must explain the outline about as well as a smooth curve
-            # explains the true edges (a lumpy grain completed by symmetry looks polyhedral);
-            # a three-fold completion stands for a flat plate only
-            if res[0] == "irregular" or \
-                    res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
-                continue
-            if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None and p["interior"]
-                                  and (yield from _flat_steps(contour2, interior2, p))):
-                continue
-            habit, score, ev, fit = res
-            ev["habit_note"] = f"split grain: outline completed by its {fold}-fold symmetry"
-            break
+        relief = max(np.nan_to_num(ev["facet_chi2"]), np.nan_to_num(ev["relief_chi2"]))
+        habit, score, ev, fit = yield from _completed(outline_px, free, smooth_free, labels, signal, mode, lab,
+                                                      p, (habit, score, ev, fit),
+                                                      plates=not relief >= p["facet_chi2_min"])
     return habit, score, ev, fit
 
 

@@ -1397,7 +1397,7 @@ def _support_tables(n: int, fold: int):
     return u, du, (cr(bm, a), cr(a, np.roll(a, -1, axis=0)) + cr(bm, b))
 
 
-def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
+def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> np.ndarray:
     """The smallest convex outline of ``fold``-fold rotational symmetry that contains a (cut) outline.
 
     Parameters
@@ -1408,10 +1408,19 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
         Vertices on the grain's true edges (False along the cut, where the
         dividing line need not follow the true contact). Only these are
         completed when they span at least half the outline's area; default all.
-    fold : {2, 3}
+    fold : {2, 3, 6}
         2: central symmetry (every Wulff projection along [100], [111] and
         [110], rods); 3: the three-fold symmetry of a twinned {111} plate
-        (triangles and hexagons with alternating edges).
+        (triangles and hexagons with alternating edges); 6: the six-fold
+        symmetry of a Wulff body seen along [111] (a body with a three-fold
+        axis and a centre of inversion projects along that axis to an outline
+        of six-fold rotational symmetry: the regular hexagon of the octahedron
+        and of the cube, the 12-gon of a cuboctahedron).
+
+    centre : (float, float), optional
+        Where the body's centre is known to lie within a few hundredths of sqrt(area) (the
+        centre of another completion of the same grain): the search starts there, two grids
+        finer, and stops at a hundredth of sqrt(area) (default: from the centroid).
 
     Returns
     -------
@@ -1440,15 +1449,17 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2) -> np.ndarray:
     """
     from scipy.spatial import ConvexHull
 
-    if fold not in (2, 3):
-        raise ValueError(f"fold must be 2 or 3, got {fold!r}")
+    if fold not in (2, 3, 6):
+        raise ValueError(f"fold must be 2, 3 or 6, got {fold!r}")
     pts = _true_edge_hull(contour_xy, free)
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
     g = np.linspace(-1.0, 1.0, 9)
     grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
-    best, half = np.asarray(cen, float), 0.6 * scale
-    while half > 1e-3 * scale:
+    best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
+    if centre is not None:
+        best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
+    while half > stop:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
