@@ -246,10 +246,7 @@ def _smooth_all(xy, offsets, window, order=2):
     """
     if window % 2 == 0 or window <= order:
         raise ValueError(f"contour window must be odd and greater than {order}, got {window}")
-    # imported here: scipy.signal brings scipy.stats with it, about 0.9 s CPU at a worker's start
-    from scipy.signal import savgol_coeffs
-
-    coef = savgol_coeffs(window, order)
+    coef = savgol_coefficients(window, order)
     h = window // 2
     counts = np.diff(offsets)
     n = len(counts)
@@ -292,3 +289,51 @@ def grain_contours(labels, n_labels=None, window=9):
         empty (0, 2) for an absent label. See :func:`trace_outlines`.
     """
     return trace_outlines(labels, n_labels, window).as_list()
+
+
+def savgol_coefficients(window: int, order: int) -> np.ndarray:
+    """Savitzky-Golay smoothing coefficients, ``scipy.signal.savgol_coeffs(window, order)`` without scipy.signal.
+
+    Parameters
+    ----------
+    window : int
+        Odd number of samples, greater than ``order``.
+    order : int
+        Degree of the local polynomial.
+
+    Returns
+    -------
+    ndarray of float64, shape (window,)
+        The weights that, convolved with a signal, give the value at each
+        sample of the least-squares polynomial of degree ``order`` through
+        the ``window`` samples around it [1]_.
+
+    Notes
+    -----
+    The least-squares solution ``c`` of ``A c = e_0`` with ``A[i, j] = x_j^i``,
+    ``x = (h, h - 1, ..., -h)`` (reversed for convolution) and ``h = window //
+    2``, solved by ``scipy.linalg.lstsq`` with ``cond = eps * window``: the
+    computation of ``scipy.signal.savgol_coeffs`` (SciPy 1.17) for the
+    smoothing case, so the weights are the same bit for bit
+    (``tests/test_measure_exact.py``). Importing scipy.signal brings
+    scipy.stats with it, about 0.6 s of CPU in every fresh worker process;
+    scipy.linalg is imported there anyway.
+
+    References
+    ----------
+    .. [1] A. Savitzky, M. J. E. Golay, "Smoothing and differentiation of data
+       by simplified least squares procedures", Analytical Chemistry 36(8),
+       1627-1639, 1964. DOI: 10.1021/ac60214a047
+    """
+    from scipy.linalg import lstsq
+
+    window, order = int(window), int(order)
+    if window % 2 == 0 or not 0 <= order < window:
+        raise ValueError(f"window must be odd and greater than order={order}, got {window}")
+    h = window // 2
+    x = np.flip(np.arange(-h, window - h, dtype=np.float64))
+    a = x ** np.arange(order + 1, dtype=np.float64).reshape(-1, 1)
+    y = np.zeros(order + 1, dtype=np.float64)
+    y[0] = 1.0
+    coef, _, _, _ = lstsq(a, y, cond=np.finfo(np.float64).eps * max(a.shape))
+    return coef
