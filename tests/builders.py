@@ -536,3 +536,25 @@ def write_gatan_tags(path: Path) -> Path:
     tifffile.imwrite(path, noisy((32, 32)).astype(np.int32), resolution=(72, 72), resolutionunit="INCH",
                      extratags=extratags)
     return path
+
+
+def classified_on_truth(grains, shape, contrast, px=5.0, seed=3):
+    """Render ``grains`` (synthetic.render), preprocess, then measure and classify on the renderer's own
+    labels (split = touching): the habit step judged apart from the segmentation."""
+    from grainhabit.plugins.habit import classify_habit as cl
+    from grainhabit.plugins.measure import measure_grains as measure
+    from grainhabit.plugins.preprocess import flatten_background as preprocess
+    from grainhabit.plugins.segment.segment_grains import edge_cut
+    from grainhabit.plugins.synthetic import render as sy
+
+    field = sy.render_field(grains, shape, px, contrast, seed=seed)
+    frame = FrameData(source="invented", sample="invented", raw=field.image, pixel_size_nm=px,
+                      calibration="synthetic")
+    f = preprocess.grainhabit_preprocess(frame, preprocess.STEP.resolve({}))
+    lab = field.labels.astype(np.int32)
+    n = int(lab.max())
+    touch = {a for pair in sy.touching_label_pairs(lab) for a in pair}
+    f = f.replace(labels=lab, grains={}).with_columns(
+        label=np.arange(1, n + 1), split=np.array([k in touch for k in range(1, n + 1)]), edge_cut=edge_cut(lab))
+    f = measure.grainhabit_measure(f, measure.STEP.resolve({}))
+    return cl.classify_frame(f, cl.STEP.resolve({}))

@@ -9,13 +9,10 @@ import math
 import numpy as np
 import pytest
 
-from grainhabit.frame import FrameData
-from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import engine as en
-from grainhabit.plugins.measure import measure_grains as measure
-from grainhabit.plugins.preprocess import flatten_background as preprocess
-from grainhabit.plugins.segment.segment_grains import edge_cut
 from grainhabit.plugins.synthetic import render as sy
+
+from builders import classified_on_truth
 
 PX = 5.0
 
@@ -43,18 +40,7 @@ def test_completion_refuses_other_folds():
 
 
 def _classified_on_truth(grains, shape, contrast, seed=3):
-    """Render ``grains``, preprocess, then classify on the renderer's own labels (split = touching)."""
-    field = sy.render_field(grains, shape, PX, contrast, seed=seed)
-    frame = FrameData(source="invented", sample="invented", raw=field.image, pixel_size_nm=PX,
-                      calibration="synthetic")
-    f = preprocess.grainhabit_preprocess(frame, preprocess.STEP.resolve({}))
-    lab = field.labels.astype(np.int32)
-    n = int(lab.max())
-    touch = {a for pair in sy.touching_label_pairs(lab) for a in pair}
-    f = f.replace(labels=lab, grains={}).with_columns(
-        label=np.arange(1, n + 1), split=np.array([k in touch for k in range(1, n + 1)]), edge_cut=edge_cut(lab))
-    f = measure.grainhabit_measure(f, measure.STEP.resolve({}))
-    return cl.classify_frame(f, cl.STEP.resolve({}))
+    return classified_on_truth(grains, shape, contrast, PX, seed)
 
 
 def _overlapping(habit, shift, **kw):
