@@ -32,6 +32,8 @@ PLATE_MIN_AREA_PX = 100
 PLATE_SOLIDITY = 0.8
 #: Faint objects (below the noise threshold) this close (px) to a pixel above it are left out.
 FAINT_CLEARANCE_PX = 6.0
+#: ... and those of which the noise threshold already shows this share (sharp objects, not faint ones).
+FAINT_SHOWN_SHARE = 0.5
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -250,9 +252,10 @@ def faint_objects(low: np.ndarray, high: np.ndarray, min_area: float = 0.0) -> n
     -------
     ndarray of bool
         The 8-connected components of ``low`` that hold no 8-connected
-        component of ``high`` of ``min_area`` px or more and keep
-        :data:`FAINT_CLEARANCE_PX` from every such component: a faint grain
-        whose brightest pixels alone (or none) pass the high threshold. Near
+        component of ``high`` of ``min_area`` px or more, keep
+        :data:`FAINT_CLEARANCE_PX` from every such component and have less
+        than :data:`FAINT_SHOWN_SHARE` of their pixels in ``high``: a faint
+        grain whose brightest pixels alone (or none) pass the high threshold. Near
         a grain the high threshold shows whole, a faint streak or speck would
         join it in the closing (a bump on its outline) and is left out.
     """
@@ -268,6 +271,10 @@ def faint_objects(low: np.ndarray, high: np.ndarray, min_area: float = 0.0) -> n
     reached = np.zeros(n + 1, bool)
     if high.any():
         reached[lab[dilate_disk(high, FAINT_CLEARANCE_PX) & low]] = True
+    # a sharp bright object (a glyph's thin strokes, a speck) stands above the high threshold over most of
+    # its low-threshold extent; a faint grain shows there at most its brightest pixels
+    shown_px = np.bincount(lab[shown > 0], minlength=n + 1) if m else np.zeros(n + 1, np.int64)
+    reached |= shown_px >= FAINT_SHOWN_SHARE * np.bincount(lab.ravel(), minlength=n + 1)
     reached[0] = True
     return ~reached[lab]
 
