@@ -174,17 +174,14 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     edge_level : float
         Fraction of the peak at which the outline is drawn.
     faint_level : float, optional
-        A lower threshold (fewer background sigmas): its 8-connected
-        components that hold no object of at least ``faint_min_area`` px
-        above ``noise_level`` (nothing, or only the brightest pixels of a
-        faint grain), and keep :data:`FAINT_CLEARANCE_PX` from such objects,
-        are taken whole as objects (:func:`faint_objects`; a two-level
-        threshold after J. Canny, "A computational approach to edge
-        detection", IEEE Trans. PAMI 8(6), 679-698, 1986,
-        doi:10.1109/TPAMI.1986.4767851). Grains that stand clear of
-        ``noise_level`` keep the extent that threshold gives them.
+        A lower threshold (fewer background sigmas): the faint objects it
+        shows that ``noise_level`` shows too little of are taken whole (the
+        rules: :func:`faint_objects`; a two-level threshold after J. Canny,
+        "A computational approach to edge detection", IEEE Trans. PAMI 8(6),
+        679-698, 1986, doi:10.1109/TPAMI.1986.4767851). Grains that stand
+        clear of ``noise_level`` keep the extent that threshold gives them.
     faint_min_area : float
-        Smallest grain area (px).
+        Smallest grain area (px), for :func:`faint_objects`.
 
     Returns
     -------

@@ -676,4 +676,3 @@ def grainhabit_prepare_worker(steps):
     import skimage.measure  # noqa: F401
     import skimage.morphology  # noqa: F401
     import skimage.segmentation  # noqa: F401
-
