@@ -79,7 +79,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
-from grainhabit.plugins.segment import annotations, specks, tiling
+from grainhabit.plugins.segment import annotations, population, specks, tiling
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.packed import packed_field
@@ -91,7 +91,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.6",
+    version="2.7",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -114,6 +114,10 @@ STEP = StepInfo(
         Param("min_ecd_px", float, 6.0, unit="px", low=1.0,
               doc="Grains smaller than this equivalent circle diameter in pixels are dropped (below it no "
                   "outline can be measured), whatever the pixel size."),
+        Param("min_area_share", float, population.MIN_AREA_SHARE, low=0.0, high=1.0,
+              doc="Objects smaller than this fraction of the frame's typical grain area (the area-weighted median: "
+                  "half the grain area lies in larger objects) are dropped as debris or substrate texture (0: off; "
+                  "set 0 for a field that holds grains over 7 times apart in diameter)."),
         Param("min_peak", float, 0.3, low=0.0,
               doc="Objects whose brightest pixel stays below this (image units: background 0, typical grain 1) "
                   "are background texture, not grains."),
@@ -467,8 +471,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
                      f"{100 * field.cover:.0f} % of the frame, gaps {field.gap_radius_px:.1f} px against "
                      f"{field.radius_px:.1f} px)")
         labels = field.labels
-        return drop_drawn_marks(arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool), None,
-                                np.zeros(int(labels.max()) + 1, bool), [], notes)
+        return drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool), None,
+                                             np.zeros(int(labels.max()) + 1, bool), [], notes), p)
     empty = check_frame(arr, levels, p)
     if empty:
         notes.append(empty)
@@ -502,8 +506,21 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         labels, clusters, flags = func(arr)
         split = flags["split"][1:]
         boxes, cluster_of = noted["boxes"], noted["cluster_of"]
-    return drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, flags.get("split"), dropped, notes,
-                            boxes, cluster_of)
+    return drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, flags.get("split"), dropped,
+                                         notes, boxes, cluster_of), p)
+
+
+def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, p: dict
+                ) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Drop objects under ``min_area_share`` of the frame's typical grain area and note how many.
+
+    See :mod:`grainhabit.plugins.segment.population`.
+    """
+    labels, split, n = population.drop_below_population(labels, split, p["min_area_share"])
+    if n:
+        notes.append(f"segment-grains: {n} object(s) under {100 * p['min_area_share']:g} % of the frame's typical "
+                     "grain area dropped (debris, substrate texture)")
+    return labels, split, notes
 
 
 def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:

@@ -1,0 +1,114 @@
+"""Objects far smaller than a frame's grains: debris and substrate texture, not grains.
+
+A micrograph is taken at a magnification chosen for its grains, so the
+grains of one frame span a limited range of sizes, while dust, debris,
+substrate grain and film texture add specks far below it. An object whose
+area is under ``share`` times the frame's *typical grain area* is dropped,
+the typical area being the area-weighted median of the objects found: the
+area that halves the frame's total grain area (half of it lies in larger
+objects). Weighting by area keeps the reference on the grains even where
+the specks outnumber them ten to one, as on a rough film; a plain median
+would fall to the specks.
+
+With the default share of 0.02 an object is dropped when its equivalent
+circle diameter is under about 1/7 of the typical one (sqrt(0.02) = 0.14).
+A sample that really holds grains spanning more than that in one field (a
+blend of a fine and a coarse emulsion) should set ``min_area_share`` to 0,
+and rely on ``min_ecd_nm`` / ``min_ecd_px`` alone.
+
+On the 357 EMPS training images (B. Yildirim, J. M. Cole, J. Chem. Inf.
+Model. 61 (2021) 1136) the rule dropped 366 found objects that lie on no
+hand-masked particle and 17 that matched one, measured on the labels of
+segment-grains 2.6 (see DEVELOPERS.md, "Debris below the frame's grains").
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: Default smallest area, as a fraction of the frame's area-weighted median grain area.
+MIN_AREA_SHARE = 0.02
+
+
+def typical_area(areas: np.ndarray) -> float:
+    """The area-weighted median of object areas.
+
+    Parameters
+    ----------
+    areas : array_like of float, shape (n,)
+        Object areas (px or any unit), n >= 1.
+
+    Returns
+    -------
+    float
+        The smallest area ``a`` such that objects of area <= ``a`` hold at
+        least half of the total area.
+
+    Examples
+    --------
+    Ten specks of 1 px and one grain of 100 px: the grain holds most of the
+    area, so it is the typical area.
+
+    >>> typical_area([1] * 10 + [100])
+    100.0
+    """
+    a = np.sort(np.asarray(areas, np.float64))
+    if a.size == 0:
+        raise ValueError("typical_area needs at least one area")
+    cum = np.cumsum(a)
+    return float(a[np.searchsorted(cum, 0.5 * cum[-1])])
+
+
+def below_population(areas: np.ndarray, share: float = MIN_AREA_SHARE) -> np.ndarray:
+    """Which objects are smaller than ``share`` of the frame's typical grain area.
+
+    Parameters
+    ----------
+    areas : array_like of float, shape (n,)
+        Areas of the frame's objects (px).
+    share : float
+        Fraction of :func:`typical_area`; 0 drops nothing.
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+        True for the objects to drop.
+    """
+    areas = np.asarray(areas, np.float64)
+    if share <= 0 or areas.size == 0:
+        return np.zeros(areas.shape, bool)
+    return areas < share * typical_area(areas)
+
+
+def drop_below_population(labels: np.ndarray, split: np.ndarray, share: float = MIN_AREA_SHARE
+                          ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Remove the objects :func:`below_population` names from a label image.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Grains 1..n, numbered in row-major order of their first pixel.
+    split : ndarray of bool, shape (n,)
+        A per-grain flag carried along.
+    share : float
+        See :func:`below_population`.
+
+    Returns
+    -------
+    labels : ndarray of int32
+        The kept grains, renumbered 1..m in the same order.
+    split : ndarray of bool, shape (m,)
+    dropped : int
+        Objects removed.
+    """
+    n = int(labels.max()) if labels.size else 0
+    if n == 0 or share <= 0:
+        return labels, split, 0
+    areas = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+    drop = below_population(areas, share)
+    if not drop.any():
+        return labels, split, 0
+    keep = ~drop
+    lut = np.zeros(n + 1, np.int32)
+    lut[1:][keep] = np.arange(1, int(keep.sum()) + 1, dtype=np.int32)
+    return lut[labels], np.asarray(split, bool)[keep], int(drop.sum())

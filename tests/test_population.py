@@ -1,0 +1,79 @@
+"""Objects far below a frame's grains dropped as debris (plugins/segment/population.py).
+
+Everything drawn here is invented test data.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+from skimage.draw import disk
+
+from grainhabit.plugins.segment.population import below_population, drop_below_population, typical_area
+from grainhabit.plugins.segment.segment_grains import segment_image
+
+
+def test_typical_area_of_a_lognormal_sample_follows_hatch_choate():
+    # Hatch-Choate: for a count-lognormal diameter (median CMD, geometric sd sg) the median of the
+    # distribution weighted by d^2 (projected area) is CMD exp(2 ln^2 sg) (handbook: W. C. Hinds, Aerosol
+    # Technology, 2nd ed., 1999, ch. 4)
+    rng = np.random.default_rng(3)
+    cmd, sg = 40.0, 1.4
+    d = cmd * np.exp(np.log(sg) * rng.standard_normal(200_000))
+    area_median_d = np.sqrt(4.0 * typical_area(np.pi / 4.0 * d ** 2) / np.pi)
+    assert area_median_d == pytest.approx(cmd * np.exp(2.0 * np.log(sg) ** 2), rel=0.01)
+
+
+def test_many_specks_do_not_pull_the_reference_down():
+    areas = np.r_[np.full(200, 9.0), np.full(20, 700.0)]  # specks outnumber the grains ten to one
+    assert typical_area(areas) == 700.0
+    drop = below_population(areas, 0.02)
+    assert drop[:200].all() and not drop[200:].any()
+
+
+def test_share_zero_or_an_empty_frame_drops_nothing():
+    assert not below_population([1.0, 1000.0], 0.0).any()
+    labels = np.zeros((5, 5), np.int32)
+    out, split, n = drop_below_population(labels, np.zeros(0, bool))
+    assert n == 0 and out is labels
+
+
+def test_drop_keeps_the_raster_numbering_and_the_flags():
+    labels = np.zeros((40, 40), np.int32)
+    labels[2:4, 2:4] = 1          # 4 px speck
+    labels[5:35, 5:25] = 2        # 600 px grain
+    labels[6:8, 30:32] = 3        # 4 px speck
+    labels[20:38, 28:38] = 4      # 180 px grain
+    out, split, n = drop_below_population(labels, np.array([True, False, True, True]), 0.02)
+    assert n == 2
+    assert np.array_equal(np.unique(out), [0, 1, 2])
+    assert (out[5:35, 5:25] == 1).all() and (out[20:38, 28:38] == 2).all()
+    assert split.tolist() == [False, True]
+
+
+def test_segmentation_drops_dust_beside_grains_and_notes_it():
+    # 16 grains of radius 28 px (ECD 56 px) and 40 dust specks of radius 3.5 px (ECD about 7 px, above
+    # min_ecd_px 6): the specks' area is under 0.02 of the grains' (ECD under 1/7 of theirs), so the area
+    # share is what drops them (scikit-image disk geometry)
+    shape = (480, 480)
+    img = np.zeros(shape, np.float32)
+    for i in range(4):
+        for j in range(4):
+            rr, cc = disk((60 + 115 * i, 60 + 115 * j), 28, shape=shape)
+            img[rr, cc] = 1.0
+    rng = np.random.default_rng(0)
+    dust = 0
+    while dust < 40:
+        r, c = rng.integers(5, 475, 2)
+        if img[max(r - 6, 0):r + 7, max(c - 6, 0):c + 7].any():
+            continue
+        rr, cc = disk((r, c), 3.5, shape=shape)
+        img[rr, cc] = 1.0
+        dust += 1
+    img = ndi.gaussian_filter(img, 0.8) + rng.normal(0.0, 0.03, shape).astype(np.float32)
+    on, _, notes = segment_image(img, 1.0)
+    off, _, _ = segment_image(img, 1.0, {"min_area_share": 0.0})
+    assert on.max() == 16
+    assert off.max() > 16 + 20  # the specks pass every other rule
+    assert any("typical grain area dropped" in n for n in notes)
