@@ -54,6 +54,7 @@ from grainhabit.plugins.preprocess.background_peak import (  # noqa: F401  (one_
     background_peak, one_sided_sigma, otsu_of, peak_sigma,
 )
 from grainhabit.plugins.preprocess.polarity import detect_polarity as convex_polarity
+from grainhabit.plugins.common.drawn_panels import drawn_panels
 from grainhabit.plugins.common.image_stats import (
     CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, regular_subsample,
 )
@@ -63,7 +64,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.4",
+    version="1.5",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -832,7 +833,12 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     sign = 1 if pol == "bright" else -1
     surf, m, sd, _ = background(sign)
     r = sign * (x_s - (upsample_bilinear(surf, shape, rs, cs) + m))
-    fg = r[r > CLIP_SIGMAS * sd]
+    grain_side = r > CLIP_SIGMAS * sd
+    panels = drawn_panels(raw_s)
+    if panels.any():
+        # a flat drawn box (behind a panel letter, a data bar) is no grain: it must not set the grain level
+        grain_side &= ~panels
+    fg = r[grain_side]
     level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
     # never stretch pure noise up to grain level
     level = max(level, NOISE_FLOOR_SIGMAS * sd)
