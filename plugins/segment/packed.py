@@ -17,6 +17,15 @@ not its histogram:
    ``((r - x) / r)^2``). The class with the larger radii (the thick class)
    holds the particles, the other the gaps, whichever is brighter (this
    also settles the polarity).
+   Particles with bright rims round darker middles (an SEM's edge effect)
+   make rings of the upper class, which then covers less of the frame than
+   the particles do. Where the cut fails and filling the upper class's holes
+   adds at least :data:`RING_GAIN` of the frame, two more cuts are judged
+   by the same tests, the filled rings and the gaps a black top-hat of
+   :data:`TOPHAT_SIZES_PX` finds (the thin valleys narrower than its window,
+   whatever the middles do), and the one that passes with the most
+   particles is taken (segment-grains 2.7; EMPS 78b42bc5e8: 0 -> 134 of 136
+   particles, the other 356 training frames unchanged).
 3. Small holes of the thick class (a dark pit inside a particle) are
    filled. Where its distance map exceeds :data:`H_SHARE` of the inscribed
    radius lie the particles' cores: touching particles meet at necks
@@ -68,6 +77,10 @@ MAX_GAP_RATIO = 0.5
 MIN_GAP_SPREAD = 0.9
 #: Fewest parts of a packed field.
 MIN_PARTS = 5
+#: Least share of the frame that filling the upper class's holes adds, for rings (bright rims) to be looked for.
+RING_GAIN = 0.1
+#: Windows (px) of the black top-hats that find the thin gaps between particles with bright rims.
+TOPHAT_SIZES_PX = (5, 9, 13)
 #: Largest coefficient of variation of the particles' areas.
 MAX_AREA_COV = 0.6
 #: Largest median ratio of a core's area to its inscribed disc's (a first look, before the watershed).
@@ -306,11 +319,55 @@ def _test(g: np.ndarray, min_area: float) -> PackedField:
     # the cut is made on the frame less its trend over many particles
     g = g - trend(g, TREND_SHARE * max(g.shape))
     upper = g > threshold_otsu(g)
+    out = _judge(upper, min_area)
+    if out.packed:
+        return out
+    # particles whose rims are brighter than their middles (an SEM's edge effect) make rings of the upper
+    # class, which then covers less than the particles do. Filled, the rings are the particles where the
+    # rims close; where they do not, the gaps are still the frame's thin dark valleys, which a black
+    # top-hat keeps (what is darker than its window's closing and narrower than the window). The
+    # candidate that passes every test with the most particles is taken
+    ringed = ndi.binary_fill_holes(upper)
+    if upper.mean() >= MIN_COVER or ringed.mean() - upper.mean() < RING_GAIN:
+        return out
+    best = _judge(ringed, min_area, bright=True)
+    for size in TOPHAT_SIZES_PX:
+        hat = ndi.grey_closing(g, size=(size, size)) - g
+        if float(hat.max()) == float(hat.min()):
+            continue
+        found = _judge(~(hat > threshold_otsu(hat)), min_area, bright=True)
+        if found.packed and (not best.packed or found.labels.max() > best.labels.max()):
+            best = found
+    return best if best.packed else out
+
+
+def _judge(upper: np.ndarray, min_area: float, bright: bool | None = None) -> PackedField:
+    """The tests of :func:`packed_field` on a two-class cut of the frame.
+
+    Parameters
+    ----------
+    upper : ndarray of bool
+        One class of the cut.
+    min_area : float
+        Smallest particle area, px.
+    bright : bool or None
+        None: ``upper`` is the brighter class, and the class with the larger
+        inscribed radii holds the particles. True / False: ``upper`` holds the
+        particles, which are brighter / darker than the gaps.
+    """
+    empty = np.zeros(upper.shape, np.int32)
+    if bright is not None and upper.mean() < MIN_COVER:
+        return PackedField(False, empty, bright, float(upper.mean()),
+                           reason=f"particles cover {upper.mean():.2f} < {MIN_COVER}")
     d_up, d_low = ndi.distance_transform_edt(upper), ndi.distance_transform_edt(~upper)
     r_up, r_low = inscribed_radius(d_up, upper), inscribed_radius(d_low, ~upper)
-    bright = bool(r_up >= r_low)
-    grains = upper if bright else ~upper
-    radius, gap_radius = max(r_up, r_low), min(r_up, r_low)
+    if bright is None:
+        bright = bool(r_up >= r_low)
+        grains = upper if bright else ~upper
+        radius, gap_radius = max(r_up, r_low), min(r_up, r_low)
+    else:
+        grains, radius, gap_radius = upper, r_up, r_low
+    up_is_grains = grains is upper
     out = PackedField(False, empty, bright, float(grains.mean()), radius, gap_radius)
     if out.cover < MIN_COVER:
         out.reason = f"particles cover {out.cover:.2f} < {MIN_COVER}"
@@ -325,7 +382,7 @@ def _test(g: np.ndarray, min_area: float) -> PackedField:
     holes = ndi.binary_fill_holes(grains) & ~grains
     small = holes & ~_large(holes, min_area)
     solid = grains | small
-    dist = ndi.distance_transform_edt(solid) if small.any() else (d_up if bright else d_low)
+    dist = ndi.distance_transform_edt(solid) if small.any() else (d_up if up_is_grains else d_low)
     # one core per particle where the necks are narrow: a cheap count before the watershed
     ratios = core_area_ratios(dist, max(1.0, H_SHARE * radius), min_area)
     if ratios.size < MIN_PARTS:
