@@ -501,15 +501,12 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
         np.bitwise_and(win, n - 1, out=win)          # modulo a power of two (also for negative offsets)
     else:
         np.remainder(win, n, out=win)
-    # window values laid out (window offset, shape, turn): the first minimum over the window is
-    # found by whole-row passes instead of one short argmin per (shape, turn) (same index)
-    vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
-    nw = vals.shape[0]
-    # descending scores: uint8 for windows of up to 255 samples (n_angles < 4096), else uint16
-    score = np.arange(nw, 0, -1, dtype=np.uint8 if nw < 256 else np.uint16)
-    first = nw - np.max((vals == vals.min(axis=0)) * score[:, None, None], axis=0)
+    # window values laid out (shape, turn, window offset) as gathered: the first minimum of each
+    # window is one argmin over its last axis (the same index as the first lowest of a whole-row
+    # scan; measured faster than those passes over the transposed layout on numpy 2)
+    first = d.ravel()[win + (np.arange(u) * n)[:, None, None]].argmin(axis=2)
     # the shift at that window position: k0 + turn offset + (position - n // 32), modulo n
-    best = k0[:, None] + tab.turn_off + (first.astype(np.int64) - n // 32)
+    best = k0[:, None] + tab.turn_off + (first - n // 32)
     if n & (n - 1) == 0:
         np.bitwise_and(best, n - 1, out=best)
     else:

@@ -1,0 +1,91 @@
+"""Habit kernels made faster, each tested equal to the slower kernel it replaces.
+
+The references below are the kernels as they stood before (kept here, not in the
+package), run on drawn grains (skimage.draw; invented test data), on noisy copies
+of the model library's own signatures and on regular polygons (handbook geometry).
+"""
+import numpy as np
+import pytest
+
+from grainhabit.plugins.habit import classify_habit as cl
+from grainhabit.plugins.habit import engine as gr
+from builders import body_and_rotation, draw_crystal_frame
+
+
+def _drawn_signature(alpha, face, rot_deg, ecd_px=70.0, contrast="bright", seed=0):
+    body, rot = body_and_rotation(alpha, face, rot_deg)
+    frame = draw_crystal_frame(body, rot, ecd_px=ecd_px, contrast=contrast, noise=0.02, seed=seed)
+    return gr.radial_signature(cl.frame_contours(frame)[0], 256)
+
+
+def _signatures():
+    """Signatures of drawn grains and noisy library signatures (every view)."""
+    lib = gr.model_library()
+    rng = np.random.default_rng(11)
+    sigs = [_drawn_signature(a, f, r) for a, f, r in
+            [(1.0, "100", 0.0), (1.3, "100", 4.0), (2.2, "111", 17.0), (3.6, "111", 50.0), (2.0, "110", 8.0)]]
+    m = lib.signatures.shape[1]
+    for j in rng.integers(0, m, 10):
+        sigs.append(lib.signatures[int(rng.integers(0, 7)), j] * (1 + 0.03 * rng.standard_normal(256)))
+    # exact copies of models, turned by a whole number of samples: ties between look-alike shifts
+    for j in rng.integers(0, m, 4):
+        sigs.append(np.roll(lib.signatures[0, j], int(rng.integers(0, 256))))
+    return sigs
+
+
+# --------------------------------------------------------------- references
+
+def _previous_outline_candidates(sig, tab, level=0):
+    """The kernel before (window minima by descending scores over the transposed window values)."""
+    a = np.asarray(sig, float)
+    n = a.size
+    d = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
+    if n & (n - 1) == 0:
+        np.multiply(d, -2.0 / n, out=d)
+        np.add(d, ((a @ a + tab.sig_sq[level]) / n)[:, None], out=d)
+    else:
+        np.multiply(d, 2.0, out=d)
+        np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
+        np.divide(d, n, out=d)
+    u = d.shape[0]
+    k0 = np.argmin(d, axis=1)
+    win = k0[:, None, None] + tab.turn_win
+    if n & (n - 1) == 0:
+        np.bitwise_and(win, n - 1, out=win)
+    else:
+        np.remainder(win, n, out=win)
+    vals = d.ravel()[(win + (np.arange(u) * n)[:, None, None]).transpose(2, 0, 1)]
+    nw = vals.shape[0]
+    score = np.arange(nw, 0, -1, dtype=np.uint8 if nw < 256 else np.uint16)
+    first = nw - np.max((vals == vals.min(axis=0)) * score[:, None, None], axis=0)
+    best = k0[:, None] + tab.turn_off + (first.astype(np.int64) - n // 32)
+    if n & (n - 1) == 0:
+        np.bitwise_and(best, n - 1, out=best)
+    else:
+        np.remainder(best, n, out=best)
+    shifts = np.empty((u, 4), np.int64)
+    valid = np.empty((u, 4), bool)
+    shifts[:, 0], valid[:, 0] = k0, True
+    shifts[:, 1:] = best
+    b0, b1, b2 = best[:, 0], best[:, 1], best[:, 2]
+    ok = tab.turn_ok
+    v1 = ok[:, 0] & (b0 != k0)
+    v2 = ok[:, 1] & ~((b1 == k0) | ((b1 == b0) & v1))
+    valid[:, 1], valid[:, 2] = v1, v2
+    valid[:, 3] = ok[:, 2] & ~((b2 == k0) | ((b2 == b0) & v1) | ((b2 == b1) & v2))
+    at = d.ravel()[shifts + (np.arange(u) * n)[:, None]]
+    return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
+
+
+# -------------------------------------------------------------------- tests
+
+def test_outline_candidates_bitwise_equal_the_score_kernel():
+    # every shift, distance and flag, unused slots included, at every rounding level
+    tab = gr.model_library().tables
+    for sig in _signatures():
+        for level in range(len(gr.ROUNDING_LEVELS)):
+            got = gr.outline_candidates(sig, tab, level)
+            ref = _previous_outline_candidates(sig, tab, level)
+            for x, y in zip(got, ref):
+                assert x.dtype == y.dtype
+                assert np.array_equal(x, y)
