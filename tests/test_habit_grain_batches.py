@@ -89,3 +89,18 @@ def test_outline_candidates_bitwise_equal_the_score_kernel():
             for x, y in zip(got, ref):
                 assert x.dtype == y.dtype
                 assert np.array_equal(x, y)
+
+
+def test_match_outline_signature_equals_radial_signature():
+    # match_outline reuses the centroid and area it has (radial_signature_about): the same bits as
+    # radial_signature, which computes them itself
+    lib = gr.model_library()
+    for a, f, r in [(1.0, "100", 0.0), (2.6, "111", 33.0), (2.0, "110", 12.0)]:
+        body, rot = body_and_rotation(a, f, r)
+        frame = draw_crystal_frame(body, rot, ecd_px=60.0, contrast="bright", noise=0.02, seed=1)
+        contour = cl.frame_contours(frame)[0]
+        match = gr.match_outline(contour, lib)
+        assert np.array_equal(match.signature, gr.radial_signature(contour, lib.signatures.shape[-1]))
+    # and a square of side 2 about its centre (handbook geometry: r(0) = s / 2, so 1 / 2 over sqrt(A) = 2)
+    sq = np.array([[-1.0, -1.0], [1.0, -1.0], [1.0, 1.0], [-1.0, 1.0]])
+    assert gr.radial_signature(sq, 8)[0] == pytest.approx(0.5)

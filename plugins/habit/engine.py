@@ -84,8 +84,8 @@ from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Inte
                                                plane_gap_inverse, round_request, round_rss, rss_requests,
                                                subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
-                                                radial_signature, rounded_outline, shift_distances,
-                                                smooth_residual)
+                                                radial_signature, radial_signature_about, rounded_outline,
+                                                shift_distances, smooth_residual)
 from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA, OCTAHEDRON_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
@@ -665,8 +665,8 @@ def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
     OutlineMatch
     """
     c = check_polygon(contour_xy, "contour_xy")
-    _, area = polygon_centroid(c)
-    sig = radial_signature(c, library.signatures.shape[-1])
+    cen, area = polygon_centroid(c)
+    sig = radial_signature_about(c, cen, area, library.signatures.shape[-1])
     tau = max(outline_noise_px * pixel_scale / math.sqrt(area), outline_noise_floor)
     ecd_px = math.sqrt(4.0 * area / math.pi) / pixel_scale
     level = int(np.argmin(np.abs(np.asarray(ROUNDING_LEVELS) - corner_radius_px / ecd_px)))
