@@ -104,3 +104,26 @@ def test_match_outline_signature_equals_radial_signature():
     # and a square of side 2 about its centre (handbook geometry: r(0) = s / 2, so 1 / 2 over sqrt(A) = 2)
     sq = np.array([[-1.0, -1.0], [1.0, -1.0], [1.0, 1.0], [-1.0, 1.0]])
     assert gr.radial_signature(sq, 8)[0] == pytest.approx(0.5)
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_classify_grain_given_its_outline_evidence_equals_computing_it(contrast):
+    # a completion's outline comparisons are computed once and handed to classify_grain_steps
+    # (outline=...): every column and fit field as when it computes them itself
+    p = cl.STEP.resolve({})
+    for a, f, r in [(1.0, "100", 5.0), (2.4, "111", 20.0), (3.5, "111", 40.0), (1.9, "110", 10.0)]:
+        body, rot = body_and_rotation(a, f, r)
+        frame = draw_crystal_frame(body, rot, ecd_px=60.0, contrast=contrast, noise=0.02, seed=2)
+        signal, mode = cl.interior_signal(frame)
+        contour, interior = gr.grain_evidence(frame.labels, signal, mode, cl.frame_contours(frame)[0], 1)
+        ref = gr.run_steps(cl.classify_grain_steps(contour, interior, p))
+        got = gr.run_steps(cl.classify_grain_steps(contour, interior, p, outline=cl.outline_evidence(contour, p)))
+        assert got[0] == ref[0] and got[1] == ref[1]
+        assert got[2].keys() == ref[2].keys()
+        for k in ref[2]:
+            assert got[2][k] == ref[2][k] or (got[2][k] != got[2][k] and ref[2][k] != ref[2][k]), k
+        for fld in ("alpha", "alpha_lo", "alpha_hi", "face", "rotation_deg", "outline_misfit", "note",
+                    "facet_chi2", "relief_chi2"):
+            x, y = getattr(got[3], fld), getattr(ref[3], fld)
+            assert x == y or (x != x and y != y), fld
+        assert np.array_equal(got[3].score, ref[3].score)
