@@ -64,23 +64,21 @@ def _trace_cracks(labels):
     k : ndarray of int, shape (N,)
         Direction of each crack from its grain pixel (0 +x, 1 +y, 2 -x, 3 -y).
     """
-    lab = np.pad(labels, 1)
+    lab = _padded(labels)
     width = lab.shape[1]
     flat = lab.ravel()
     step = np.array([1, width, -1, -width])
-    nz = lab != 0
-    horiz = lab[:, :-1] != lab[:, 1:]   # pixel (r, c) differs from (r, c + 1)
-    vert = lab[:-1, :] != lab[1:, :]    # pixel (r, c) differs from (r + 1, c)
-    i_e = np.flatnonzero(horiz & nz[:, :-1])
-    i_w = np.flatnonzero(horiz & nz[:, 1:])
-    i_s = np.flatnonzero(vert & nz[:-1, :])
-    i_n = np.flatnonzero(vert & nz[1:, :])
-    # back to flat indices of the padded image, times 4 plus the direction
+    # pairs of neighbours that differ (full-frame passes), then which of the two pixels of each pair is a
+    # grain pixel (gathers at the pairs only, which lie along outlines)
+    h_diff = np.flatnonzero(lab[:, :-1] != lab[:, 1:])   # pixel (r, c) differs from (r, c + 1)
+    v_diff = np.flatnonzero(lab[:-1, :] != lab[1:, :])   # pixel (r, c) differs from (r + 1, c)
+    h_left = h_diff // (width - 1) * width + h_diff % (width - 1)   # flat index of (r, c) in the padded image
+    # flat indices of the grain pixels of the cracks, times 4 plus the direction
     found = [
-        (i_e // (width - 1) * width + i_e % (width - 1)) * 4 + 0,
-        i_s * 4 + 1,
-        (i_w // (width - 1) * width + i_w % (width - 1) + 1) * 4 + 2,
-        (i_n + width) * 4 + 3,
+        h_left[flat[h_left] != 0] * 4 + 0,
+        v_diff[flat[v_diff] != 0] * 4 + 1,
+        (h_left[flat[h_left + 1] != 0] + 1) * 4 + 2,
+        (v_diff[flat[v_diff + width] != 0] + width) * 4 + 3,
     ]
     crack = np.sort(np.concatenate(found))
     p, k = np.divmod(crack, 4)
@@ -102,6 +100,18 @@ def _trace_cracks(labels):
     return succ, L, x, y, k
 
 
+def _padded(labels):
+    """``np.pad(labels, 1)`` (a border of zeros) in one pass over the frame."""
+    rows, cols = labels.shape
+    out = np.empty((rows + 2, cols + 2), labels.dtype)
+    out[0] = 0
+    out[-1] = 0
+    out[1:-1, 0] = 0
+    out[1:-1, -1] = 0
+    out[1:-1, 1:-1] = labels
+    return out
+
+
 def _rank_cycles(succ):
     """Cycle id (smallest member) and position from it, by pointer jumping."""
     n = len(succ)
@@ -115,16 +125,18 @@ def _rank_cycles(succ):
         span *= 2
         if np.array_equal(root[succ], root):
             break
-    # cut each cycle before its root and rank by list ranking
+    # cut each cycle before its root and rank by list ranking (Wyllie's pointer jumping): every list
+    # ends in one extra node n that points to itself with distance 0, so each pass updates all members
+    # at once (adding 0 and staying at n where a member has reached the end)
     is_root = root == np.arange(n)
-    nxt = np.where(is_root[succ], -1, succ)
-    dist = np.where(nxt >= 0, 1, 0)
-    cur = nxt.copy()
-    while np.any(cur >= 0):
-        live = cur >= 0
-        dist[live] += dist[cur[live]]
-        cur[live] = cur[cur[live]]
-    return root, dist
+    cur = np.append(np.where(is_root[succ], n, succ), n)
+    dist = (cur != n).astype(np.intp)
+    while True:
+        if not (cur != n).any():
+            break
+        dist = dist + dist[cur]
+        cur = cur[cur]
+    return root, dist[:n]
 
 
 class Outlines:
