@@ -127,3 +127,28 @@ def test_classify_grain_given_its_outline_evidence_equals_computing_it(contrast)
             x, y = getattr(got[3], fld), getattr(ref[3], fld)
             assert x == y or (x != x and y != y), fld
         assert np.array_equal(got[3].score, ref[3].score)
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_facet_fits_without_the_downward_planes_equal_those_with_them(contrast):
+    # a placement's request in 'facets' mode leaves the downward planes out (normal_equations reads
+    # only the upward ones there): the same RSS, bit for bit, as the request with them
+    tab = gr.model_library().tables
+    body, rot = body_and_rotation(2.3, "111", 21.0)
+    frame = draw_crystal_frame(body, rot, ecd_px=70.0, contrast=contrast, noise=0.02, seed=0)
+    signal, mode = cl.interior_signal(frame)
+    _, inner = gr.grain_evidence(frame.labels, signal, mode, cl.frame_contours(frame)[0], 1)
+    rng = np.random.default_rng(3)
+    u, k = rng.integers(0, tab.face.size, 40), rng.integers(0, 256, 40)
+    full = gr.placed_planes(tab, u, k, 256)
+    up = gr.placed_planes(tab, u, k, 256, down=False)
+    assert up[2] is None and up[3] is None
+    assert np.array_equal(up[0], full[0]) and np.array_equal(up[1], full[1])
+    if inner.mode == "facets":
+        got = gr.interior_rss_batch(inner, *up, gap_inv=tab.gap_inv[u])
+        ref = gr.interior_rss_batch(inner, *full, gap_inv=tab.gap_inv[u])
+        assert np.array_equal(got, ref)
+    # the request of a placement carries the downward planes in 'thickness' mode only
+    shifts = np.zeros((tab.face.size, 4), np.int64)
+    req = next(gr._rss_of(tab, shifts, np.column_stack([u, np.zeros_like(u)]), inner, (256, 2.0, 0.5)))
+    assert (req[3] is None) == (inner.mode == "facets")

@@ -526,7 +526,7 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
 
 
-def placed_planes(tab: _Tables, shape, shift, n: int):
+def placed_planes(tab: _Tables, shape, shift, n: int, down: bool = True):
     """Plane tables of shapes turned in-plane by ``2 pi shift / n``.
 
     Parameters
@@ -535,11 +535,14 @@ def placed_planes(tab: _Tables, shape, shift, n: int):
     shape, shift : ndarray of int, shape (c,)
     n : int
         Signature length.
+    down : bool
+        Also the downward planes (only a fit in 'thickness' mode uses them).
 
     Returns
     -------
     g_up, z_up, g_dn, z_dn : ndarray
-        As in :class:`_Tables`, for the c placed models.
+        As in :class:`_Tables`, for the c placed models; ``g_dn`` and ``z_dn`` None
+        where ``down`` is False.
 
     Notes
     -----
@@ -552,6 +555,8 @@ def placed_planes(tab: _Tables, shape, shift, n: int):
     def turn(g):
         return np.stack([c * g[..., 0] - s * g[..., 1], s * g[..., 0] + c * g[..., 1]], axis=-1)
 
+    if not down:
+        return turn(tab.g_up[shape]), tab.z_up[shape], None, None
     return turn(tab.g_up[shape]), tab.z_up[shape], turn(tab.g_dn[shape]), tab.z_dn[shape]
 
 
@@ -942,7 +947,9 @@ def _rss_of(tab, shifts, pairs, interior, geo):
         return np.zeros(0)
     n, edge_px, tem = geo
     u, j = pairs[:, 0], pairs[:, 1]
-    return (yield (interior, *placed_planes(tab, u, shifts[u, j], n), edge_px, tem, tab.gap_inv[u]))
+    # a fit in 'facets' mode reads the upward planes only (interior.normal_equations)
+    planes = placed_planes(tab, u, shifts[u, j], n, down=interior.mode != "facets")
+    return (yield (interior, *planes, edge_px, tem, tab.gap_inv[u]))
 
 
 #: Least interior noise, relative to the interior's level (mean magnitude plus spread): an
