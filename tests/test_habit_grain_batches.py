@@ -77,6 +77,34 @@ def _previous_outline_candidates(sig, tab, level=0):
     return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
 
 
+def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720):
+    """The support-function areas over all n_dir directions about the origin (the kernel before)."""
+    p = np.asarray(pts, float)
+    cen = np.asarray(centres, float).reshape(-1, 2)
+    n = int(n_dir)
+    u, du, (w_sq, w_next) = gr._support_tables(n, fold)
+    hk = (p @ u.T).max(axis=0)
+    rolled = [np.concatenate((hk[n - j * n // fold:], hk[:n - j * n // fold])) for j in range(1, fold)]
+    moved = [cen @ du[j - 1] for j in range(1, fold)]
+    out = np.empty(cen.shape[0])
+    rows = max(1, gr.HULL_CHUNK_ELEMENTS // n)
+    for a in range(0, cen.shape[0], rows):
+        h = None
+        for j in range(1, fold):
+            t = moved[j - 1][a:a + rows]
+            np.add(t, rolled[j - 1], out=t)
+            h = np.maximum(t, hk, out=t) if h is None else np.maximum(h, t, out=h)
+        if h is None:
+            h = np.empty((min(rows, cen.shape[0] - a), n))
+            h[:] = hk
+        nxt = np.concatenate((h[:, 1:], h[:, :1]), axis=1)
+        np.multiply(nxt, w_next, out=nxt)
+        q = h * w_sq
+        np.add(q, nxt, out=q)
+        out[a:a + rows] = 0.5 * np.abs(np.einsum("ci,ci->c", h, q))
+    return out
+
+
 # -------------------------------------------------------------------- tests
 
 def test_outline_candidates_bitwise_equal_the_score_kernel():
@@ -152,3 +180,65 @@ def test_facet_fits_without_the_downward_planes_equal_those_with_them(contrast):
     shifts = np.zeros((tab.face.size, 4), np.int64)
     req = next(gr._rss_of(tab, shifts, np.column_stack([u, np.zeros_like(u)]), inner, (256, 2.0, 0.5)))
     assert (req[3] is None) == (inner.mode == "facets")
+
+
+def _cut_outlines():
+    """Regular polygons (handbook geometry) and drawn grain outlines, cut by a straight line."""
+    rng = np.random.default_rng(8)
+    out = []
+    for k, r in ((4, 30.0), (6, 25.0), (3, 40.0), (8, 20.0)):
+        t = np.linspace(0, 2 * np.pi, 400, endpoint=False)
+        ang = np.floor(t / (2 * np.pi / k)) * (2 * np.pi / k) + np.pi / k
+        rad = r * np.cos(np.pi / k) / np.cos(t - ang)                 # a regular k-gon, densely sampled
+        out.append(np.column_stack([rad * np.cos(t + 0.3), rad * np.sin(t + 0.3)]) + rng.normal(0, 0.2, (400, 2)))
+    for a, f, r in [(1.0, "100", 10.0), (2.5, "111", 25.0), (3.8, "111", 3.0)]:
+        body, rot = body_and_rotation(a, f, r)
+        frame = draw_crystal_frame(body, rot, ecd_px=70.0, contrast="bright", noise=0.02, seed=4)
+        out.append(cl.frame_contours(frame)[0])
+    cut = []
+    for c in out:
+        d = c - c.mean(axis=0)
+        keep = d @ np.array([np.cos(0.7), np.sin(0.7)]) < 0.3 * np.abs(d).max()
+        cut.append(c[keep] + np.array([300.0, 200.0]))
+    return cut
+
+
+def test_symmetric_hull_areas_over_one_period_equal_the_full_form():
+    # reference: the areas over all directions about the origin, on the points and centres moved next
+    # to it (a translation moves no area): a relative 1e-9, and the same smallest centre on every grid
+    # of the centre search (9 x 9 centres at the search's widths)
+    from scipy.spatial import ConvexHull
+
+    rng = np.random.default_rng(6)
+    for c in _cut_outlines():
+        pts = c[ConvexHull(c).vertices]
+        m = pts.mean(axis=0)
+        scale = np.sqrt(gr.polygon_centroid(pts)[1])
+        g = np.linspace(-1.0, 1.0, 9)
+        grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
+        for fold in (2, 3, 6):
+            for half in (0.6, 0.2, 0.02, 0.002):
+                cand = m + rng.normal(0, 0.05, 2) * scale + half * scale * grid
+                for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
+                    got = gr.symmetric_hull_areas(pts, cand, fold, n)
+                    ref = _previous_symmetric_hull_areas(pts - m, cand - m, fold, n)
+                    np.testing.assert_allclose(got, ref, rtol=1e-9)
+                    assert np.argmin(got) == np.argmin(ref)
+        # and scipy's ConvexHull of the points with their copies (reference library), within the
+        # sampling error the docstring states
+        cen = m + 0.1 * scale
+        both = np.vstack([pts, 2 * cen - pts])
+        assert gr.symmetric_hull_areas(pts, cen[None], 2)[0] == pytest.approx(ConvexHull(both).volume, rel=5e-3)
+
+
+def test_completions_equal_those_of_the_full_form(monkeypatch):
+    # complete_by_symmetry with the one-period areas against the same search on the full form: the
+    # same completed outline, vertex for vertex, on cut polygons and cut drawn grains, every fold
+    done = {}
+    for i, c in enumerate(_cut_outlines()):
+        for fold in (2, 3, 6):
+            done[i, fold] = gr.complete_by_symmetry(c, None, fold)
+    monkeypatch.setattr(gr, "symmetric_hull_areas", _previous_symmetric_hull_areas)
+    for i, c in enumerate(_cut_outlines()):
+        for fold in (2, 3, 6):
+            assert np.array_equal(done[i, fold], gr.complete_by_symmetry(c, None, fold))

@@ -1331,47 +1331,46 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
 
     Notes
     -----
-    The support function of the union is h(u) = max_j [h_K(R_j^T u) + c . (u - R_j^T u)]
-    (h_K of the points; a copy turned by R_j about c is R_j (p - c) + c). Sampled at
-    ``n_dir`` directions it defines the polygon bounded by those support lines, whose
-    vertices are the crossings of neighbouring lines; its area (shoelace formula)
-    exceeds the hull's by a relative O(1 / n_dir^2) that grows with the sharpness of
-    the corners (0 for a square whose edge normals are sampled; under 0.5 % at 720
-    directions for hulls of random points; tested against ``scipy.spatial.ConvexHull``).
+    The union of the points and their copies turned about c, moved by -c, is the union of the
+    turned copies of K - c (K the points), whose support function is
+    h'(u) = max_j g(R_j^T u), g(u) = h_K(u) - c . u. Sampled at ``n_dir`` directions
+    u_i (angle 2 pi i / n_dir), R_j^T u_i = u_{i - j n_dir / fold}: h' is the maximum of
+    g over the ``fold`` blocks of n_dir / fold samples, and repeats with that period. The
+    support lines at those directions bound a polygon whose vertices are the crossings of
+    neighbouring lines; its area (shoelace formula, a quadratic form in neighbouring
+    support values) is ``fold`` times the sum over one period, and a translation leaves it
+    alone. It exceeds the hull's by a relative O(1 / n_dir^2) that grows with the
+    sharpness of the corners (0 for a square whose edge normals are sampled; under 0.5 %
+    at 720 directions for hulls of random points; tested against
+    ``scipy.spatial.ConvexHull``). The same area as the form over all n_dir directions
+    about the origin to a relative 1e-9 (tested; the centred support values are the
+    smaller numbers), in about a third of the time.
     """
     p = np.asarray(pts, float)
     cen = np.asarray(centres, float).reshape(-1, 2)
     n = int(n_dir)
     if n % fold:
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
-    u, du, cross = _support_tables(n, fold)
+    u, _, (w_sq, w_next) = _support_tables(n, fold)
+    period = n // fold
     hk = (p @ u.T).max(axis=0)                                         # (n,)
-    # R_j^T u_i = u_{i - s}: the support of the turned copy is np.roll(hk, s), s = j n / fold
-    rolled = [np.concatenate((hk[n - j * n // fold:], hk[:n - j * n // fold])) for j in range(1, fold)]
-    w_sq, w_next = cross
-    # c . (u - R_j^T u) of all centres in one product: BLAS picks its kernel by the matrix shape,
-    # so a product of fewer rows may round differently
-    moved = [cen @ du[j - 1] for j in range(1, fold)]
+    # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
+    # fewer rows may round differently: the chunks below give the floats of all centres at once)
+    cu = cen @ u.T                                                     # (c, n)
+    w_sq, w_next = w_sq[:period], w_next[:period]
     out = np.empty(cen.shape[0])
-    # then a few centres at a time: element-wise steps and a sum per centre (the same floats), with
-    # temporaries small enough to stay in cache and off fresh memory pages
     rows = max(1, HULL_CHUNK_ELEMENTS // n)
     for a in range(0, cen.shape[0], rows):
-        h = None
-        for j in range(1, fold):
-            t = moved[j - 1][a:a + rows]
-            np.add(t, rolled[j - 1], out=t)                            # hk turned, plus c . (u - R_j^T u)
-            h = np.maximum(t, hk, out=t) if h is None else np.maximum(h, t, out=h)
-        if h is None:
-            h = np.empty((min(rows, cen.shape[0] - a), n))
-            h[:] = hk
+        g = cu[a:a + rows]
+        np.subtract(hk, g, out=g)                                      # support of the points moved by -c
+        h = g.reshape(g.shape[0], fold, period).max(axis=1) if fold > 1 else g
         # vertex between the lines at i and i + 1: x . u_i = h_i, x . u_{i+1} = h_{i+1}; the shoelace
         # sum over neighbouring vertices is a quadratic form in (h_i, h_{i+1}): w_sq h_i + w_next h_{i+1}
         nxt = np.concatenate((h[:, 1:], h[:, :1]), axis=1)
         np.multiply(nxt, w_next, out=nxt)
         q = h * w_sq
         np.add(q, nxt, out=q)
-        out[a:a + rows] = 0.5 * np.abs(np.einsum("ci,ci->c", h, q))
+        out[a:a + rows] = (0.5 * fold) * np.abs(np.einsum("ci,ci->c", h, q))
     return out
 
 
