@@ -57,10 +57,13 @@ def _label_images():
     out.append(lab)
     out.append(rng.integers(0, 4, (40, 50)).astype(np.int32))   # noise: many tiny pieces
     out.append(np.ones((5, 6), np.int32))                       # one grain filling the frame
+    out.append(np.array([[0, 1, 1, 0, 2]], np.int32))            # one row
+    out.append(np.array([[1], [1], [0], [3]], np.int32))         # one column
+    out.append(np.array([[4]], np.int32))                        # one pixel
     return out
 
 
-@pytest.mark.parametrize("case", range(6))
+@pytest.mark.parametrize("case", range(9))
 def test_cracks_equal_the_full_frame_mask_kernel(case):
     lab = _label_images()[case]
     succ, L, x, y, k = co._trace_cracks(lab)
@@ -71,13 +74,6 @@ def test_cracks_equal_the_full_frame_mask_kernel(case):
     assert np.array_equal(codes, _previous_crack_codes(lab))
     assert np.array_equal(np.sort(succ), np.arange(len(succ)))      # a successor permutation
     assert np.array_equal(L, np.pad(lab, 1).ravel()[rows * width + cols])
-
-
-def test_padded_equals_np_pad():
-    for lab in _label_images():
-        got = co._padded(lab)
-        assert got.dtype == lab.dtype
-        assert np.array_equal(got, np.pad(lab, 1))
 
 
 def test_outlines_follow_skimage_find_contours():
