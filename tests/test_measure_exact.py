@@ -133,3 +133,96 @@ def test_cleaner_lines_equal_the_form_before():
         for a in range(0, m, 7):
             for b in range(0, m, 5):
                 assert cl.line(a, b) == _line_before(c, a, b)
+
+
+def _previous_douglas_peucker_packed(xy, offsets, tolerances):
+    """Douglas-Peucker of many closed contours, every pass over all their points (the kernel before)."""
+    xy = np.asarray(xy, dtype=np.float64)
+    off = np.asarray(offsets, dtype=np.intp)
+    tol = np.asarray(tolerances, dtype=np.float64)
+    n = len(off) - 1
+    counts = np.diff(off)
+    out = np.zeros(len(xy), dtype=bool)
+    if len(xy) == 0:
+        return out
+    # each contour followed by a copy of its first vertex (the closed chain)
+    ext_off = off + np.arange(n + 1)
+    gid = np.repeat(np.arange(n), counts + 1)
+    local = np.arange(len(xy) + n) - ext_off[:-1][gid]
+    src = off[:-1][gid] + np.where(local == counts[gid], 0, local)
+    src = np.minimum(src, len(xy) - 1)
+    ext = xy[src]
+    closing = local == counts[gid]
+    keep = np.zeros(len(ext), dtype=bool)
+    keep[ext_off[:-1]] = True
+    keep[closing] = True
+    # vertex farthest from the first one starts the recursion
+    d0 = ((ext - ext[ext_off[:-1][gid]]) ** 2).sum(axis=1)
+    pt_tol = tol[gid]
+    dmax = outline._first_argmax(d0, ext_off)
+    seed = dmax[(dmax >= 0)]
+    seed = seed[d0[seed] > pt_tol[seed] ** 2]
+    keep[seed] = True
+    small = counts < 3
+    pos = np.arange(len(ext))
+    while True:
+        kept = np.flatnonzero(keep)
+        seg = np.searchsorted(kept, pos, side="right") - 1
+        a_i = kept[seg]
+        b_i = kept[np.minimum(seg + 1, len(kept) - 1)]
+        a, b = ext[a_i], ext[b_i]
+        d = b - a
+        ln2 = (d**2).sum(axis=1)
+        rel = ext - a
+        proj = (rel * d).sum(axis=1)
+        inside = (proj > 0) & (proj < ln2)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            perp = np.abs(d[:, 0] * rel[:, 1] - d[:, 1] * rel[:, 0]) / np.sqrt(ln2)
+        ends = np.sqrt(np.minimum((rel**2).sum(axis=1), ((ext - b) ** 2).sum(axis=1)))
+        dist = np.where(inside, perp, ends)
+        dist[keep] = -1.0
+        dist[b_i < a_i] = -1.0
+        segmax = np.maximum.reduceat(dist, kept)
+        best = segmax[seg]
+        hit = (dist == best) & (dist > pt_tol)
+        cand = np.flatnonzero(hit)
+        if len(cand) == 0:
+            break
+        first = np.ones(len(cand), dtype=bool)
+        first[1:] = seg[cand][1:] != seg[cand][:-1]
+        keep[cand[first]] = True
+    keep_c = keep[~closing]
+    keep_c[np.repeat(small, counts)] = True
+    return keep_c
+
+
+def test_douglas_peucker_over_the_open_segments_equals_every_point_pass():
+    # reference: the passes over all points of all contours (kept above); the same kept vertices, on
+    # traced outlines of drawn grains (skimage.draw; invented test data), regular polygons (handbook
+    # geometry) and noisy circles, at several tolerances, tiny contours included
+    from skimage.draw import disk, polygon as draw_polygon
+
+    from grainhabit.plugins.common.contours import trace_outlines
+
+    rng = np.random.default_rng(12)
+    lab = np.zeros((300, 300), np.int32)
+    for i in range(1, 40):
+        r, c = rng.integers(10, 290, 2)
+        if i % 3:
+            rr, cc = draw_polygon(r + rng.normal(0, 14, 6), c + rng.normal(0, 14, 6), shape=lab.shape)
+        else:
+            rr, cc = disk((r, c), rng.uniform(1, 12), shape=lab.shape)
+        lab[rr, cc] = i
+    outl = trace_outlines(lab, None, 9)
+    t = np.linspace(0, 2 * np.pi, 300, endpoint=False)
+    extra = [np.column_stack([np.cos(t), np.sin(t)]) * 40 + rng.normal(0, 0.3, (300, 2)),
+             np.array([[0.0, 0.0], [10.0, 0.0], [10.0, 10.0], [0.0, 10.0]]),
+             np.array([[0.0, 0.0], [1.0, 0.0]]), np.array([[3.0, 3.0]])]
+    parts = [outl.xy[outl.offsets[i]:outl.offsets[i + 1]] for i in range(len(outl))] + extra
+    off = np.zeros(len(parts) + 1, np.intp)
+    np.cumsum([len(p) for p in parts], out=off[1:])
+    xy = np.concatenate(parts)
+    for scale in (0.005, 0.02, 0.08):
+        tol = np.maximum(scale * np.array([np.sqrt(max(len(p), 1)) * 3 for p in parts]), 0.5)
+        got = outline.douglas_peucker_packed(xy, off, tol)
+        assert np.array_equal(got, _previous_douglas_peucker_packed(xy, off, tol))

@@ -64,33 +64,55 @@ def _trace_cracks(labels):
     k : ndarray of int, shape (N,)
         Direction of each crack from its grain pixel (0 +x, 1 +y, 2 -x, 3 -y).
     """
-    lab = np.pad(labels, 1)
-    width = lab.shape[1]
-    flat = lab.ravel()
+    lab = np.asarray(labels)
+    rows_o, cols_o = lab.shape
+    flat_o = lab.ravel()
+    # cracks are coded on the frame padded by one background pixel all round (pixel index of the
+    # padded frame times 4 plus the direction); the padded frame itself is never built: its pixels
+    # are read from the frame where they lie inside it, 0 on the border
+    width = cols_o + 2
     step = np.array([1, width, -1, -width])
-    nz = lab != 0
-    horiz = lab[:, :-1] != lab[:, 1:]   # pixel (r, c) differs from (r, c + 1)
-    vert = lab[:-1, :] != lab[1:, :]    # pixel (r, c) differs from (r + 1, c)
-    i_e = np.flatnonzero(horiz & nz[:, :-1])
-    i_w = np.flatnonzero(horiz & nz[:, 1:])
-    i_s = np.flatnonzero(vert & nz[:-1, :])
-    i_n = np.flatnonzero(vert & nz[1:, :])
-    # back to flat indices of the padded image, times 4 plus the direction
+
+    def padded_at(idx):
+        r, c = np.divmod(idx, width)
+        inside = (r >= 1) & (r <= rows_o) & (c >= 1) & (c <= cols_o)
+        return np.where(inside, flat_o[np.where(inside, (r - 1) * cols_o + (c - 1), 0)], 0)
+
+    # neighbour pairs inside the frame that differ (full-frame passes), then which pixel of each pair
+    # is a grain pixel (gathers at the pairs only, which lie along outlines); grain pixels on the
+    # frame's edge meet the background border
+    h_diff = np.flatnonzero(lab[:, :-1] != lab[:, 1:])     # (r, c) differs from (r, c + 1)
+    hr, hc = np.divmod(h_diff, max(cols_o - 1, 1))
+    h_left = hr * cols_o + hc                                # frame index of (r, c)
+    h_pad = (hr + 1) * width + hc + 1                        # padded index of (r, c)
+    v_diff = np.flatnonzero(lab[:-1, :] != lab[1:, :])     # (r, c) differs from (r + 1, c)
+    vr, vc = np.divmod(v_diff, cols_o)
+    v_pad = (vr + 1) * width + vc + 1
+    edge_r = np.arange(rows_o)
+    edge_c = np.arange(cols_o)
+    first_col = edge_r[lab[:, 0] != 0]
+    last_col = edge_r[lab[:, -1] != 0]
+    first_row = edge_c[lab[0, :] != 0]
+    last_row = edge_c[lab[-1, :] != 0]
     found = [
-        (i_e // (width - 1) * width + i_e % (width - 1)) * 4 + 0,
-        i_s * 4 + 1,
-        (i_w // (width - 1) * width + i_w % (width - 1) + 1) * 4 + 2,
-        (i_n + width) * 4 + 3,
+        h_pad[flat_o[h_left] != 0] * 4 + 0,
+        (last_col + 1) * width * 4 + cols_o * 4 + 0,
+        v_pad[flat_o[v_diff] != 0] * 4 + 1,
+        (rows_o * width + last_row + 1) * 4 + 1,
+        (h_pad[flat_o[h_left + 1] != 0] + 1) * 4 + 2,
+        ((first_col + 1) * width + 1) * 4 + 2,
+        (v_pad[flat_o[v_diff + cols_o] != 0] + width) * 4 + 3,
+        (width + first_row + 1) * 4 + 3,
     ]
     crack = np.sort(np.concatenate(found))
     p, k = np.divmod(crack, 4)
-    L = flat[p]
+    L = padded_at(p)
     # walking direction t: the grain (on the -dir_k side) lies to its left
     tk = (k + 1) % 4
     ahead = p + step[tk]
     diag = ahead + step[k]
-    in_diag = flat[diag] == L
-    in_ahead = flat[ahead] == L
+    in_diag = padded_at(diag) == L
+    in_ahead = padded_at(ahead) == L
     # turn outwards if the diagonal pixel is L (8-connected), else go
     # straight if the pixel ahead is L, else turn inwards round p
     nxt_pix = np.where(in_diag, diag, np.where(in_ahead, ahead, p))
@@ -115,16 +137,18 @@ def _rank_cycles(succ):
         span *= 2
         if np.array_equal(root[succ], root):
             break
-    # cut each cycle before its root and rank by list ranking
+    # cut each cycle before its root and rank by list ranking (Wyllie's pointer jumping): every list
+    # ends in one extra node n that points to itself with distance 0, so each pass updates all members
+    # at once (adding 0 and staying at n where a member has reached the end)
     is_root = root == np.arange(n)
-    nxt = np.where(is_root[succ], -1, succ)
-    dist = np.where(nxt >= 0, 1, 0)
-    cur = nxt.copy()
-    while np.any(cur >= 0):
-        live = cur >= 0
-        dist[live] += dist[cur[live]]
-        cur[live] = cur[cur[live]]
-    return root, dist
+    cur = np.append(np.where(is_root[succ], n, succ), n)
+    dist = (cur != n).astype(np.intp)
+    while True:
+        if not (cur != n).any():
+            break
+        dist = dist + dist[cur]
+        cur = cur[cur]
+    return root, dist[:n]
 
 
 class Outlines:

@@ -394,7 +394,33 @@ def classify_grain(contour_lab, interior, params, pixel_scale=1.0, hull=None, sp
     return en.run_steps(classify_grain_steps(contour_lab, interior, params, pixel_scale, hull, split))
 
 
-def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False):
+def outline_evidence(contour_lab, params, pixel_scale=1.0):
+    """The outline comparisons of :func:`classify_grain_steps`: the Wulff library and the plate and rod families.
+
+    Parameters
+    ----------
+    contour_lab : ndarray, shape (k, 2)
+        Outline in lab axes (y up), pixels.
+    params : dict
+        Resolved parameters of this step.
+    pixel_scale : float
+        Pixel length in the contour's unit.
+
+    Returns
+    -------
+    match : engine.OutlineMatch
+        :func:`engine.match_outline` of the outline with the step's model library.
+    families : tuple
+        :func:`best_families` of its signature at its rounding level.
+    """
+    p = params
+    lib = en.fit_options(p)["library"]
+    match = en.match_outline(contour_lab, lib, pixel_scale, p["outline_noise_px"], p["outline_noise_floor"],
+                             p["corner_radius_px"])
+    return match, best_families(match.signature, match.level)
+
+
+def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False, outline=None):
     """Habit of one grain, with the Wulff fit it rests on (a generator of interior-fit requests).
 
     The placements of its interior fits are yielded as requests (:func:`engine.fit_alpha_steps`):
@@ -419,6 +445,9 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     split : bool
         The grain was cut from a touching neighbour: a cut outline is not judged
         rounded as a whole (:func:`classify_frame` judges its true edges).
+    outline : tuple, optional
+        :func:`outline_evidence` of ``contour_lab`` (with these parameters and
+        ``pixel_scale``) where the caller has it already; else computed here.
 
     Returns
     -------
@@ -432,14 +461,13 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     p = params
     kw = en.fit_options(p)
     lib = kw["library"]
-    match = en.match_outline(contour_lab, lib, pixel_scale, p["outline_noise_px"], p["outline_noise_floor"],
-                             p["corner_radius_px"])
+    match, families = outline_evidence(contour_lab, p, pixel_scale) if outline is None else outline
     tau = match.tau
     # outline first: the best Wulff outline alone
     fit = en.fit_alpha(contour_lab, None, **kw, match=match)
     sig = match.signature
     pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1], match.level)
-    (d_plate, ip, fp), (d_rod, ir, fr) = best_families(sig, match.level)
+    (d_plate, ip, fp), (d_rod, ir, fr) = families
     edge_ratio = float(np.interp(fp, np.arange(pe.size), pe))
     d_disc = float(np.sqrt(np.mean((sig - 1.0 / math.sqrt(math.pi)) ** 2)))
     if hull is None:
@@ -666,10 +694,11 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
             return None
         # the outline alone first: the interior fit only moves the outline misfit up, so a
         # completion whose outline misfit does not beat ``beat`` cannot win (and no interior is read)
-        if not _outline_misfit_ratio(contour2, p) < beat:
+        outline2 = outline_evidence(contour2, p)
+        if not _outline_misfit_ratio(outline2) < beat:
             return None
         interior2 = get_interior() if p["interior"] else None
-        res = yield from classify_grain_steps(contour2, interior2, p)
+        res = yield from classify_grain_steps(contour2, interior2, p, outline=outline2)
         if res[0] == "irregular" or res[2]["outline_misfit_ratio"] ** 2 - smooth_free ** 2 > p["smooth_margin"]:
             return None
         if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None
@@ -712,14 +741,13 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
     return habit, score, ev, fit
 
 
-def _outline_misfit_ratio(contour_lab, p) -> float:
-    """Best outline misfit of a closed outline over the Wulff, plate and rod families, in outline-noise units."""
-    lib = en.fit_options(p)["library"]
-    match = en.match_outline(contour_lab, lib, 1.0, p["outline_noise_px"], p["outline_noise_floor"],
-                             p["corner_radius_px"])
-    valid = match.valid
-    d_wulff = float(match.dist[valid].min())
-    (d_plate, _, _), (d_rod, _, _) = best_families(match.signature, match.level)
+def _outline_misfit_ratio(outline) -> float:
+    """Best outline misfit over the Wulff, plate and rod families, in outline-noise units.
+
+    ``outline`` is the :func:`outline_evidence` of a closed outline.
+    """
+    match, ((d_plate, _, _), (d_rod, _, _)) = outline
+    d_wulff = float(match.dist[match.valid].min())
     return min(d_wulff, d_plate, d_rod) / match.tau
 
 

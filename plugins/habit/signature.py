@@ -108,10 +108,33 @@ def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
     ray either side (an edge nearly through the centroid is tried against
     every ray), so the work grows as n + k rather than n k.
     """
-    n = check_n_angles(n_angles)
     p = check_polygon(poly)
     c, area = polygon_centroid(p)
-    q = p - c
+    return radial_signature_about(p, c, area, n_angles)
+
+
+def radial_signature_about(poly, centroid, area: float, n_angles: int = 256) -> np.ndarray:
+    """:func:`radial_signature` of an outline whose centroid and area are known already.
+
+    Parameters
+    ----------
+    poly : ndarray of float, shape (k, 2)
+        Closed outline, as checked by :func:`check_polygon`.
+    centroid : ndarray, shape (2,)
+        Its centroid, and
+    area : float
+        its unsigned area, both as :func:`polygon_centroid` gives them (the same numbers
+        give the same signature as :func:`radial_signature`).
+    n_angles : int
+        Number of ray directions.
+
+    Returns
+    -------
+    ndarray, shape (n_angles,)
+        As :func:`radial_signature`.
+    """
+    n = check_n_angles(n_angles)
+    q = poly - centroid
     e = _next(q) - q
     k = len(q)
     a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))        # vertex angle in ray steps

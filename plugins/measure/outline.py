@@ -363,6 +363,10 @@ def douglas_peucker_packed(xy, offsets, tolerances):
     seed = seed[d0[seed] > pt_tol[seed] ** 2]
     keep[seed] = True
     small = counts < 3
+    # the points whose segment may still split: all at first, then those of the segments split in the
+    # pass before (a segment with no point beyond its tolerance keeps its ends, its distances and so
+    # its verdict; every distance depends on its own segment's ends only, so the passes over the
+    # remaining points find the vertices of passes over all points)
     pos = np.arange(len(ext))
     while True:
         kept = np.flatnonzero(keep)
@@ -372,24 +376,30 @@ def douglas_peucker_packed(xy, offsets, tolerances):
         a, b = ext[a_i], ext[b_i]
         d = b - a
         ln2 = (d**2).sum(axis=1)
-        rel = ext - a
+        rel = ext[pos] - a
         proj = (rel * d).sum(axis=1)
         inside = (proj > 0) & (proj < ln2)
         with np.errstate(invalid="ignore", divide="ignore"):
             perp = np.abs(d[:, 0] * rel[:, 1] - d[:, 1] * rel[:, 0]) / np.sqrt(ln2)
-        ends = np.sqrt(np.minimum((rel**2).sum(axis=1), ((ext - b) ** 2).sum(axis=1)))
+        ends = np.sqrt(np.minimum((rel**2).sum(axis=1), ((ext[pos] - b) ** 2).sum(axis=1)))
         dist = np.where(inside, perp, ends)
-        dist[keep] = -1.0
+        dist[keep[pos]] = -1.0
         dist[b_i < a_i] = -1.0
-        segmax = np.maximum.reduceat(dist, kept)
-        best = segmax[seg]
-        hit = (dist == best) & (dist > pt_tol)
+        # segment maxima over the runs of equal seg (pos is increasing, so each segment is one run)
+        starts = np.flatnonzero(np.r_[True, seg[1:] != seg[:-1]])
+        segmax = np.maximum.reduceat(dist, starts)
+        best = np.repeat(segmax, np.diff(np.r_[starts, len(seg)]))
+        hit = (dist == best) & (dist > pt_tol[pos])
         cand = np.flatnonzero(hit)
         if len(cand) == 0:
             break
         first = np.ones(len(cand), dtype=bool)
         first[1:] = seg[cand][1:] != seg[cand][:-1]
-        keep[cand[first]] = True
+        keep[pos[cand[first]]] = True
+        # next pass: the points of the segments just split
+        split = np.zeros(len(kept), dtype=bool)
+        split[seg[cand[first]]] = True
+        pos = pos[split[seg]]
     keep_c = keep[~closing]
     keep_c[np.repeat(small, counts)] = True
     return keep_c
