@@ -175,3 +175,45 @@ def test_packing_of_particles_with_bright_rims():
     assert 0 not in hit and len(hit) == len(inside)
     areas = np.bincount(field.labels.ravel())[sorted(hit)]
     assert np.median(areas) == pytest.approx(np.pi * radius ** 2, rel=0.15)
+
+
+def raft_frame(radius=9, gap=3, rows=6, cols=8, gap_level=0.65, size=256, seed=0):
+    """A preprocessed frame (background 0, particles 1): an island of discs on a hexagonal lattice whose
+    thin gaps lie at ``gap_level`` (a raft: one object to any threshold below that level)."""
+    a = 2 * radius + gap
+    centres = [(60 + i * a * np.sqrt(3) / 2, 40 + j * a + (a / 2 if i % 2 else 0.0))
+               for i in range(rows) for j in range(cols)]
+    discs = np.zeros((size, size), bool)
+    for y, x in centres:
+        rr, cc = disk((y, x), radius, shape=discs.shape)
+        discs[rr, cc] = True
+    island = ndi.binary_closing(discs, np.ones((2 * gap + 3,) * 2, bool))
+    img = np.where(discs, 1.0, np.where(island, gap_level, 0.0))
+    img = ndi.gaussian_filter(img, 1.0) + np.random.default_rng(seed).normal(0, 0.03, img.shape)
+    return img.astype(np.float32), centres
+
+
+def test_raft_divided_into_its_particles():
+    # 48 discs of radius 9 px on a hexagonal lattice (3 px gaps at 0.65 of the particles' level), one object
+    # to the threshold: divided into one part per disc, each of about pi r^2 (handbook geometry)
+    from grainhabit.plugins.segment.segment_grains import segment_image
+    img, centres = raft_frame()
+    labels, split, notes = segment_image(img, 1.0)
+    hit = {int(labels[int(round(y)), int(round(x))]) for y, x in centres}
+    assert 0 not in hit and len(hit) == len(centres) == int(labels.max())
+    assert any("raft" in n for n in notes)
+    areas = np.bincount(labels.ravel())[1:]
+    assert np.median(areas) == pytest.approx(np.pi * 9 ** 2, rel=0.2)
+    assert split.all()
+
+
+def test_large_grain_with_texture_is_no_raft():
+    # one square grain of 120 px with a mottled interior (smoothed noise of sd 0.1): no valleys to divide at
+    from grainhabit.plugins.segment.segment_grains import segment_image
+    rng = np.random.default_rng(1)
+    img = np.zeros((256, 256))
+    img[60:180, 60:180] = 1.0 + ndi.gaussian_filter(rng.normal(0, 0.3, (120, 120)), 2.0)
+    img = ndi.gaussian_filter(img, 1.0) + rng.normal(0, 0.03, img.shape)
+    labels, _, notes = segment_image(img.astype(np.float32), 1.0)
+    assert labels.max() == 1
+    assert not any("raft" in n for n in notes)

@@ -79,6 +79,14 @@ MIN_GAP_SPREAD = 0.9
 MIN_PARTS = 5
 #: Least share of the frame that filling the upper class's holes adds, for rings (bright rims) to be looked for.
 RING_GAIN = 0.1
+#: A raft's gaps lie at most this fraction of its particles' median level (in the preprocessed frame) ...
+RAFT_GAP_LEVEL = 0.75
+#: ... and it holds at least this many particles.
+RAFT_MIN_PARTS = 10
+#: Parts of a raft smaller than this share of its median part are the interstices between particles.
+RAFT_PART_SHARE = 0.4
+#: An object is looked at as a raft when this share of its inner pixels lie in valleys (see split_rafts).
+RAFT_VALLEY_SHARE = 0.1
 #: Windows (px) of the black top-hats that find the thin gaps between particles with bright rims.
 TOPHAT_SIZES_PX = (5, 9, 13)
 #: Largest coefficient of variation of the particles' areas.
@@ -437,3 +445,137 @@ def _large(mask: np.ndarray, min_area: float) -> np.ndarray:
     big = areas >= min_area
     big[0] = False
     return big[lab]
+
+
+def split_raft(image: np.ndarray, mask: np.ndarray, min_area: float) -> np.ndarray | None:
+    """An island of packed particles (a raft) divided at the thin gaps inside it, or None.
+
+    A raft, a patch of a monolayer lying on the support, is one object to a
+    frame-wide threshold: its gaps are thin and shallow, and less of the frame
+    than :data:`MIN_COVER` is packed, so :func:`packed_field` does not apply.
+    Inside the object, the gaps are the thin valleys that a black top-hat of
+    :data:`TOPHAT_SIZES_PX` keeps (Otsu's cut of the top-hat over the object's
+    pixels); the rest is divided at the saddles of its distance map. The
+    division stands when the gaps are valleys (their median level at most
+    :data:`RAFT_GAP_LEVEL` of the parts': not the texture of one large grain)
+    and thin (radius at most :data:`MAX_GAP_RATIO` of the parts'), and there
+    are at least :data:`RAFT_MIN_PARTS` parts clear of the object's box, of
+    similar size and compact (the tests of a packed field); parts under
+    :data:`RAFT_PART_SHARE` of the median part are the wider interstices
+    between three particles and are dropped. The cores need
+    not be round: a raft's necks are wide. Of the windows that pass, the one
+    with the most parts is taken.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        The preprocessed frame around the object (grains bright).
+    mask : ndarray of bool, shape (rows, cols)
+        The object.
+    min_area : float
+        Smallest particle area, px.
+
+    Returns
+    -------
+    ndarray of int32 or None
+        The parts 1..n (0 outside them), or None when no window passes.
+    """
+    from skimage.filters import threshold_otsu
+
+    g = ndi.gaussian_filter(np.asarray(image, float), SMOOTH_PX)
+    best, best_n = None, 0
+    for size in TOPHAT_SIZES_PX:
+        hat = ndi.grey_closing(g, size=(size, size)) - g
+        vals = hat[mask]
+        if vals.size == 0 or float(vals.max()) == float(vals.min()):
+            continue
+        gaps = mask & (hat > threshold_otsu(vals))
+        parts = mask & ~gaps
+        holes = ndi.binary_fill_holes(parts) & ~parts & mask
+        solid = parts | (holes & ~_large(holes, min_area))
+        dist = ndi.distance_transform_edt(solid)
+        radius = inscribed_radius(dist, solid)
+        gap_radius = inscribed_radius(ndi.distance_transform_edt(gaps), gaps) if gaps.any() else 0.0
+        if radius <= 0 or gap_radius > MAX_GAP_RATIO * radius:
+            continue
+        if float(np.median(g[gaps])) > RAFT_GAP_LEVEL * float(np.median(g[parts])):
+            continue  # no valleys: texture on one large grain
+        labels = split_by_distance(dist, solid, radius, min_area)
+        sizes = np.bincount(labels.ravel())
+        if sizes.size > 1:
+            # the wider interstices between three particles, kept by a window narrower than them, are no particles
+            small = sizes < RAFT_PART_SHARE * np.median(sizes[1:])
+            small[0] = False
+            if small.any():
+                labels = renumber_raster(np.where(small[labels], 0, labels))[0]
+        areas, solidity = part_shapes(labels)
+        if (areas.size < RAFT_MIN_PARTS or float(areas.std() / areas.mean()) > MAX_AREA_COV
+                or float(np.median(solidity)) < MIN_SOLIDITY):
+            continue
+        if int(labels.max()) > best_n:
+            best, best_n = labels, int(labels.max())
+    return best
+
+
+def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float
+                ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Divide every labelled object that is a raft of packed particles (:func:`split_raft`).
+
+    An object is looked at when it has room for :data:`RAFT_MIN_PARTS`
+    smallest grains and at least :data:`RAFT_VALLEY_SHARE` of its inner pixels
+    (2 px in from its outline) lie below :data:`RAFT_GAP_LEVEL` of its upper
+    quartile level: the network of gaps inside a raft. A grain of even level
+    has no such valleys and costs one percentile.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Preprocessed frame (grains bright).
+    labels : ndarray of int, shape (rows, cols)
+        Objects 1..n in raster order.
+    split : ndarray of bool, shape (n,)
+        Whether each object was cut from a larger component.
+    min_area : float
+        Smallest particle area, px.
+
+    Returns
+    -------
+    labels : ndarray of int32
+        Renumbered 1..m in raster order, each raft replaced by its particles.
+    split : ndarray of bool, shape (m,)
+        The particles of a raft count as split.
+    rafts : int
+        Objects divided.
+    """
+    n = int(labels.max()) if labels.size else 0
+    if n == 0:
+        return labels, split, 0
+    areas = np.bincount(labels.ravel(), minlength=n + 1)
+    boxes = ndi.find_objects(labels)
+    out = np.asarray(labels, np.int32).copy()
+    was_split = np.r_[False, np.asarray(split, bool)]
+    next_id, rafts = n + 1, 0
+    for k, box in enumerate(boxes, start=1):
+        if box is None or areas[k] < RAFT_MIN_PARTS * min_area:
+            continue
+        grown = tuple(slice(max(s.start - 3, 0), s.stop + 3) for s in box)
+        mask = labels[grown] == k
+        inner = ndi.binary_erosion(mask, iterations=2)
+        vals = image[grown][inner]
+        if vals.size < RAFT_MIN_PARTS * min_area / 2:
+            continue
+        if np.mean(vals < RAFT_GAP_LEVEL * np.percentile(vals, 75)) < RAFT_VALLEY_SHARE:
+            continue
+        parts = split_raft(image[grown], mask, min_area)
+        if parts is None:
+            continue
+        view = out[grown]
+        view[mask] = 0
+        view[parts > 0] = parts[parts > 0] + (next_id - 1)
+        was_split = np.r_[was_split, np.ones(int(parts.max()), bool)]
+        next_id += int(parts.max())
+        rafts += 1
+    if not rafts:
+        return labels, split, 0
+    out, old = renumber_raster(out)
+    return out, was_split[old], rafts

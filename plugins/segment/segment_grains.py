@@ -82,7 +82,7 @@ from grainhabit.params import Param, StepInfo
 from grainhabit.plugins.segment import annotations, population, specks, tiling
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
-from grainhabit.plugins.segment.packed import packed_field
+from grainhabit.plugins.segment.packed import packed_field, split_rafts
 from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
 from grainhabit.plugins.segment.touching import split_component
 
@@ -506,7 +506,15 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         labels, clusters, flags = func(arr)
         split = flags["split"][1:]
         boxes, cluster_of = noted["boxes"], noted["cluster_of"]
-    return drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, flags.get("split"), dropped,
+    split_by_label = flags.get("split")
+    min_area = np.pi / 4.0 * max(p["min_ecd_px"], p["min_ecd_nm"] / pixel_size_nm) ** 2
+    labels, split, n_rafts = split_rafts(arr, labels, split, min_area)
+    if n_rafts:
+        notes.append(f"segment-grains: {n_rafts} raft(s) of packed particles divided at their gaps")
+        boxes = cluster_of = None
+        if clusters is not None:
+            split_by_label = np.r_[False, split]
+    return drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, split_by_label, dropped,
                                          notes, boxes, cluster_of), p)
 
 
