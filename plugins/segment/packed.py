@@ -83,6 +83,8 @@ RING_GAIN = 0.1
 RAFT_GAP_LEVEL = 0.75
 #: ... and it holds at least this many particles.
 RAFT_MIN_PARTS = 10
+#: Objects smaller than this many times the frame's median object are not looked at as rafts.
+RAFT_AREA_FACTOR = 4.0
 #: Parts of a raft smaller than this share of its median part are the interstices between particles.
 RAFT_PART_SHARE = 0.4
 #: An object is looked at as a raft when this share of its inner pixels lie in valleys (see split_rafts).
@@ -522,10 +524,15 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
     """Divide every labelled object that is a raft of packed particles (:func:`split_raft`).
 
     An object is looked at when it has room for :data:`RAFT_MIN_PARTS`
-    smallest grains and at least :data:`RAFT_VALLEY_SHARE` of its inner pixels
+    smallest grains and, in a frame of :data:`RAFT_MIN_PARTS` objects or
+    more, is :data:`RAFT_AREA_FACTOR` times their median or larger (a raft
+    among single particles; a frame of many rafts alone is left to
+    :func:`packed_field`), at least :data:`RAFT_VALLEY_SHARE` of its inner pixels
     (2 px in from its outline) lie below :data:`RAFT_GAP_LEVEL` of its upper
-    quartile level: the network of gaps inside a raft. A grain of even level
-    has no such valleys and costs one percentile.
+    quartile level, and those valleys cut its inner pixels into at least
+    :data:`RAFT_MIN_PARTS` cells of :data:`RAFT_PART_SHARE` of a smallest
+    grain or more: the network of gaps inside a raft. A grain of even level,
+    or one whose facets differ in brightness, costs a percentile and a label.
 
     Parameters
     ----------
@@ -551,12 +558,17 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
     if n == 0:
         return labels, split, 0
     areas = np.bincount(labels.ravel(), minlength=n + 1)
+    least = RAFT_MIN_PARTS * min_area
+    if n >= RAFT_MIN_PARTS:
+        least = max(least, RAFT_AREA_FACTOR * float(np.median(areas[1:])))
+    if not (areas[1:] >= least).any():
+        return labels, split, 0
     boxes = ndi.find_objects(labels)
     out = np.asarray(labels, np.int32).copy()
     was_split = np.r_[False, np.asarray(split, bool)]
     next_id, rafts = n + 1, 0
     for k, box in enumerate(boxes, start=1):
-        if box is None or areas[k] < RAFT_MIN_PARTS * min_area:
+        if box is None or areas[k] < least:
             continue
         grown = tuple(slice(max(s.start - 3, 0), s.stop + 3) for s in box)
         mask = labels[grown] == k
@@ -564,7 +576,13 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
         vals = image[grown][inner]
         if vals.size < RAFT_MIN_PARTS * min_area / 2:
             continue
-        if np.mean(vals < RAFT_GAP_LEVEL * np.percentile(vals, 75)) < RAFT_VALLEY_SHARE:
+        level = RAFT_GAP_LEVEL * np.percentile(vals, 75)
+        if np.mean(vals < level) < RAFT_VALLEY_SHARE:
+            continue
+        # the valleys must cut the object into many cells (one per particle), not a few facets
+        cells, n_cells = ndi.label(inner & (image[grown] >= level))
+        if n_cells < RAFT_MIN_PARTS or np.count_nonzero(
+                np.bincount(cells.ravel())[1:] >= RAFT_PART_SHARE * min_area) < RAFT_MIN_PARTS:
             continue
         parts = split_raft(image[grown], mask, min_area)
         if parts is None:
