@@ -312,17 +312,31 @@ def diffuse_parts(mask: np.ndarray, outer: np.ndarray | None = None) -> np.ndarr
     """
     from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
-    lab, n = ndi.label(mask, structure=_EIGHT)
     out = mask.copy()
+    rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+    if rows.size == 0:
+        return out
+    # labelled in the mask's bounding box: the same parts, in the same (row-major) order as over the frame
+    crop = (slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1))
+    lab, n = ndi.label(mask[crop], structure=_EIGHT)
     areas = np.bincount(lab.ravel(), minlength=n + 1)
-    for k, box in enumerate(ndi.find_objects(lab), start=1):
-        if box is None:
-            continue
-        part = lab[box] == k
-        if outer is not None and not (outer[box] & part).any():
-            out[box][part] = False
-        elif areas[k] >= PLATE_MIN_AREA_PX and areas[k] >= PLATE_SOLIDITY * convex_hull_mask(part).sum():
-            out[box][part] = False
+    # the parts that meet ``outer``, counted at once (most parts of a frame are small and decided here)
+    meets = np.ones(n + 1, bool)
+    if outer is not None:
+        meets[:] = False
+        meets[lab[outer[crop] & mask[crop]]] = True
+    drop = ~meets
+    big = np.flatnonzero(meets & (areas >= PLATE_MIN_AREA_PX))
+    big = big[big > 0]
+    if big.size:
+        boxes = ndi.find_objects(lab)
+        for k in big:
+            box = boxes[k - 1]
+            drop[k] = areas[k] >= PLATE_SOLIDITY * convex_hull_mask(lab[box] == k).sum()
+    drop[0] = False
+    if drop.any():
+        view = out[crop]
+        view[drop[lab]] = False
     return out
 
 
