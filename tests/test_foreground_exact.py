@@ -124,3 +124,17 @@ def test_sobel_magnitude_equals_scikit_image(dtype):
     np.testing.assert_array_equal(sobel_magnitude(window), sobel(window))
     strided = rng.random((20, 30)).astype(dtype)[::2, 1::3]  # a strided view
     np.testing.assert_array_equal(sobel_magnitude(strided), sobel(strided))
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_median3_equals_scipy_median_filter(dtype):
+    # reference library: scipy.ndimage.median_filter(size=3), reflect borders (the default), bit for bit
+    from grainhabit.plugins.segment.touching import median3
+
+    rng = np.random.default_rng(11)
+    for t in range(600):
+        h, w = (int(x) for x in rng.integers(1, 40, 2))
+        image = (rng.normal(0, 1, (h, w)) if t % 2 else rng.integers(0, 4, (h, w))).astype(dtype)  # ties too
+        got, want = median3(image), ndi.median_filter(image, size=3)
+        assert got.dtype == want.dtype and got.shape == want.shape
+        np.testing.assert_array_equal(got.view(np.uint8), want.view(np.uint8))
