@@ -149,7 +149,7 @@ def foreground_labels(image: np.ndarray, pixel_size_nm: float, levels: dict, met
         thin = np.flatnonzero(~has_seed[1:]) + 1
         if thin.size:
             seeds |= deepest_pixels(fg, comp, thin, w, boxes)
-    markers = np.zeros(arr.shape, np.int32)
+    markers = np.zeros(arr.shape, np.int8)  # 0, 1, 2: a quarter of the bytes of int32 (flood_band widens windows)
     markers[erode_disk(~fg, w, 1) | gaps] = 1
     markers[seeds] = 2
     # Flood only the undecided band and the marker pixels touching it: a marker pixel with no
