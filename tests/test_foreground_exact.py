@@ -138,3 +138,48 @@ def test_median3_equals_scipy_median_filter(dtype):
         got, want = median3(image), ndi.median_filter(image, size=3)
         assert got.dtype == want.dtype and got.shape == want.shape
         np.testing.assert_array_equal(got.view(np.uint8), want.view(np.uint8))
+
+
+def _check_frame_reference(arr, levels, p):
+    # the earlier form: the shares of the frame as numpy means of the masks
+    from grainhabit.plugins.segment import segment_grains as sg
+
+    t = levels["otsu"]
+    upper = arr > t
+    mean_up = float(arr[upper].mean()) if upper.any() else t
+    mean_low = float(arr[~upper].mean()) if not upper.all() else t
+    if mean_up - mean_low < p["min_contrast"]:
+        return "contrast"
+    otsu_frac = float(np.mean(upper))
+    if otsu_frac > sg.MAX_FOREGROUND:
+        return f"covers {otsu_frac!r}"
+    fg_frac = float(np.mean(arr > levels["noise"]))
+    if fg_frac < sg.NOISE_ONLY_FRACTION:
+        return f"noise {100 * fg_frac:.2f}"
+    return ""
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_check_frame_shares_equal_numpy_means(seed):
+    # reference: the earlier form above (numpy.mean of each mask); the share is the same correctly rounded
+    # quotient of two integers, so the decisions and the numbers in the notes agree
+    from grainhabit.plugins.segment import segment_grains as sg
+
+    rng = np.random.default_rng(seed)
+    arr = (rng.random((int(rng.integers(5, 300)), int(rng.integers(5, 300)))) ** rng.uniform(0.2, 8)).astype(np.float32)
+    p = sg.STEP.resolve({})
+    for otsu, noise in ((0.5, 0.2), (0.01, 0.999), (0.999, 0.99999), (0.3, 0.6)):
+        levels = {"otsu": otsu, "noise": noise, "background": 0.0}
+        try:
+            got = sg.check_frame(arr, levels, p)
+        except ValueError as exc:
+            got = str(exc)
+        want = _check_frame_reference(arr, levels, p)
+        if want.startswith("covers"):
+            assert f"{100 * float(want.split()[1]):.0f} %" in got
+        elif want.startswith("noise"):
+            assert f"only {want.split()[1]} %" in got
+        elif want == "contrast":
+            assert "contrast" in got
+        else:
+            assert got == "" or "most common level" in got
