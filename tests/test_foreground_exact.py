@@ -183,3 +183,27 @@ def test_check_frame_shares_equal_numpy_means(seed):
             assert "contrast" in got
         else:
             assert got == "" or "most common level" in got
+
+
+@pytest.mark.parametrize("kind, i", [("photo", 0), ("dark", 1)])
+def test_label_grains_clusters_are_the_components_of_the_grains_kept(kind, i):
+    # reference: np.where(labels > 0, component, 0) painted afresh from the grains kept (the earlier form painted
+    # the clusters from scratch; now the components painted for the text-row test are reused and the grains
+    # dropped as strokes since are taken out); hard-survey frames with letters and text (invented data)
+    from grainhabit.frame import FrameData
+    from grainhabit.plugins.preprocess import flatten_background as pp
+    from grainhabit.plugins.segment import segment_grains as sg
+    from grainhabit.plugins.segment.levels import frame_levels
+    from grainhabit.plugins.synthetic import hard
+
+    hf = hard.hard_field(kind, i, size=768, pixel_size_nm=5.0, n_grains=50, ecd_nm=300.0, ecd_gsd=1.2, noise=0.02,
+                         gradient=0.3, blur_px=1.0, seed=0)
+    frame = pp.grainhabit_preprocess(FrameData(source="t", sample="t", raw=hf.field.image, pixel_size_nm=5.0),
+                                     pp.STEP.resolve({}))
+    levels = frame_levels(frame.image, 5.0, faint_k=sg.STEP.resolve({})["faint_k"])
+    labels, clusters, flags = sg.label_grains(frame.image, 5.0, levels, method="auto")
+    assert flags["rejected"]["stroke"] > 0  # grains were dropped after the components were painted
+    want = np.zeros(labels.shape, np.int32)
+    for k, comp in enumerate(flags["cluster_of"], start=1):
+        want[labels == k] = comp
+    np.testing.assert_array_equal(clusters, want)
