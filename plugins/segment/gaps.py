@@ -198,6 +198,9 @@ def _lines_near_mask(bodies: np.ndarray, mask: np.ndarray, reach_px: float, near
             win = (slice(y0, y1), slice(x0, x1))
             own = np.zeros((y1 - y0, x1 - x0), bool)
             own[by0 - y0:by1 - y0, bx0 - x0:bx1 - x0] = own_box
+            if _one_body_all_near(bodies[win], mask[win]):
+                lines = None  # no line at the cluster's pixels, in the window or the frame (see the function)
+                break
             lines, ft = nearest_body_lines(bodies[win], mask[win], reach_px)
             if (y0, y1, x0, x1) == (0, rows, 0, cols):
                 break
@@ -217,8 +220,43 @@ def _lines_near_mask(bodies: np.ndarray, mask: np.ndarray, reach_px: float, near
                 if np.all(d2 < beyond.astype(np.int64) ** 2):
                     break
             margin *= 2
-        out[win] |= lines & own
+        if lines is not None:
+            out[win] |= lines & own
     return out
+
+
+def _one_body_all_near(bodies: np.ndarray, mask: np.ndarray) -> bool:
+    """Whether a window of :func:`_lines_near_mask` holds one body, with every pixel of ``mask`` beside it.
+
+    Parameters
+    ----------
+    bodies : ndarray of int, shape (h, w)
+        The window's body labels.
+    mask : ndarray of bool, shape (h, w)
+        The window's thresholded pixels.
+
+    Returns
+    -------
+    bool
+        True when the nonzero labels are all one body ``B`` and every pixel of ``mask`` is in ``B`` or
+        an 8-neighbour of it (within sqrt(2) px). Then the window's cluster needs no feature transform:
+        a pixel of the cluster lies within ``near_px`` of a pixel of ``mask`` (the zone), inside the
+        window since the margin exceeds ``near_px``; so it lies within ``near_px + sqrt(2)`` of ``B``, and
+        its 4-neighbours within ``near_px + 1 + sqrt(2)``, less than the first margin
+        ``ceil(near_px) + 3``. The window check then passes, and with one body there is no dividing
+        line: what :func:`nearest_body_lines` and the check would find. False decides nothing.
+    """
+    present = bodies != 0
+    held = bodies[present]
+    if held.size == 0 or held.min() != held.max():
+        return False
+    near = present.copy()
+    near[1:] |= present[:-1]
+    near[:-1] |= present[1:]
+    rows = near.copy()
+    near[:, 1:] |= rows[:, :-1]
+    near[:, :-1] |= rows[:, 1:]
+    return not (mask & ~near).any()
 
 
 def block_any(mask: np.ndarray, b: int) -> np.ndarray:

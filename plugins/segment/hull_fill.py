@@ -61,11 +61,11 @@ def hull_vertices2(mask: np.ndarray) -> np.ndarray | None:
     sub = m[r0:r1 + 1]
     has = present[r0:r1 + 1]
     far = np.int64(4 * (m.shape[0] + m.shape[1]) + 8)
-    left = np.where(has, sub.argmax(axis=1), far).astype(np.int64)
-    right = np.where(has, m.shape[1] - 1 - sub[:, ::-1].argmax(axis=1), -far).astype(np.int64)
+    left = np.where(has, sub.argmax(axis=1), far).astype(np.int64, copy=False)
+    right = np.where(has, m.shape[1] - 1 - sub[:, ::-1].argmax(axis=1), -far).astype(np.int64, copy=False)
     # odd line i (Y = 2 (r0 + i) - 1, i = 0 .. n): between row r0 + i - 1 and row r0 + i
-    lo = np.minimum(np.r_[far, left], np.r_[left, far])
-    hi = np.maximum(np.r_[-far, right], np.r_[right, -far])
+    # (np.r_[far, left] and np.r_[left, far], built directly: np.r_ costs several times more on short rows)
+    lo, hi = _ends(left, far, np.minimum), _ends(right, -far, np.maximum)
     y_odd = 2 * (r0 + np.arange(lo.size, dtype=np.int64)) - 1
     near = lo < far  # a line next to a row of the shape (rows of a shape in pieces may be empty)
     wide = hi > lo  # a line with one pixel's corner only gives one point
@@ -76,6 +76,17 @@ def hull_vertices2(mask: np.ndarray) -> np.ndarray | None:
     pts = np.stack([ys, xs], axis=1)
     hull = ConvexHull(pts.astype(np.float64))
     return pts[hull.vertices]
+
+
+def _ends(v: np.ndarray, pad, combine) -> np.ndarray:
+    """``combine(np.r_[pad, v], np.r_[v, pad])``: each line between two rows from the rows on either side."""
+    a = np.empty(v.size + 1, np.int64)
+    a[0] = pad
+    a[1:] = v
+    b = np.empty(v.size + 1, np.int64)
+    b[:-1] = v
+    b[-1] = pad
+    return combine(a, b, out=a)
 
 
 def convex_hull_mask(mask: np.ndarray) -> np.ndarray:

@@ -851,6 +851,44 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
     return None
 
 
+#: Devillard's 19 compare-exchanges that leave the median of 9 values in the 5th place (from memory; checked
+#: against scipy.ndimage.median_filter in tests/test_foreground_exact.py).
+_MEDIAN9_NET = ((1, 2), (4, 5), (7, 8), (0, 1), (3, 4), (6, 7), (1, 2), (4, 5), (7, 8), (0, 3), (5, 8), (4, 7),
+                (3, 6), (1, 4), (2, 5), (4, 7), (4, 2), (6, 4), (4, 2))
+
+
+def median3(image: np.ndarray) -> np.ndarray:
+    """``scipy.ndimage.median_filter(image, size=3)`` (reflect borders) of a 2-D float array without NaN.
+
+    Parameters
+    ----------
+    image : ndarray of float, shape (h, w)
+        No NaN.
+
+    Returns
+    -------
+    ndarray, same shape and dtype
+        The median of every pixel's 3 x 3 neighbourhood, the frame's edge mirrored
+        (``d c b a | a b c d``), by a sorting network of 19 compare-exchanges over the nine shifted
+        copies (J. Devillard, "Fast median search: an ANSI C implementation", 1998; P. Smith,
+        "Median finding on a 3x3 grid", Graphics Gems II, 1991; from memory). A median is one of the
+        values, so no rounding enters: the same numbers as scipy's rank filter, several times faster
+        on the small windows of a component (a zero's sign may differ where +0 and -0 tie).
+    """
+    a = np.asarray(image)
+    if a.ndim != 2 or a.dtype.kind != "f" or a.size == 0:
+        return ndi.median_filter(a, size=3)
+    h, w = a.shape
+    pad = np.pad(a, 1, mode="symmetric")  # numpy's symmetric is scipy's reflect
+    v = [pad[i:i + h, j:j + w] for i in range(3) for j in range(3)]
+    v = [x.copy() for x in v]
+    for i, j in _MEDIAN9_NET:
+        lo = np.minimum(v[i], v[j])
+        np.maximum(v[i], v[j], out=v[j])
+        v[i] = lo
+    return v[4]
+
+
 def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, image: np.ndarray | None,
                 min_area: float, fine_area: float) -> list[np.ndarray] | None:
     """A heap of many grains divided by the distance-map watershed [3]_, its concave parts cut further.
@@ -865,7 +903,7 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
     solid = mask
     if image is not None:
         # the dark gaps between packed grains (filled as holes) are background for the distance map
-        smooth = ndi.median_filter(np.asarray(image, np.float32), size=3)  # single noisy pixels are no gap
+        smooth = median3(np.asarray(image, np.float32))  # single noisy pixels are no gap
         solid = mask & (smooth >= GAP_LEVEL * float(np.median(smooth[mask])))
     dist = ndi.distance_transform_edt(solid)
     dmax = float(dist.max())
