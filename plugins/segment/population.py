@@ -6,7 +6,8 @@ substrate grain and film texture add specks far below it. An object whose
 area is under ``share`` times the frame's *typical grain area* is dropped,
 the typical area being the area-weighted median of the objects found: the
 area that halves the frame's total grain area (half of it lies in larger
-objects). Weighting by area keeps the reference on the grains even where
+objects), over the objects clear of the frame's edge (an object cut by the
+edge is part of one; a dark corner taken for an object lies on it). Weighting by area keeps the reference on the grains even where
 the specks outnumber them ten to one, as on a rough film; a plain median
 would fall to the specks.
 
@@ -82,7 +83,10 @@ def below_population(areas: np.ndarray, share: float = MIN_AREA_SHARE) -> np.nda
 
 def drop_below_population(labels: np.ndarray, split: np.ndarray, share: float = MIN_AREA_SHARE
                           ) -> tuple[np.ndarray, np.ndarray, int]:
-    """Remove the objects :func:`below_population` names from a label image.
+    """Remove the objects under ``share`` of the typical area of the objects clear of the frame's edge.
+
+    As :func:`below_population`, with the reference taken over the objects
+    that do not touch the frame's edge (all objects when every one does).
 
     Parameters
     ----------
@@ -105,7 +109,14 @@ def drop_below_population(labels: np.ndarray, split: np.ndarray, share: float = 
     if n == 0 or share <= 0:
         return labels, split, 0
     areas = np.bincount(labels.ravel(), minlength=n + 1)[1:]
-    drop = below_population(areas, share)
+    # the reference from the objects clear of the frame's edge: one cut by it is a part of its object, and a
+    # dark corner or a shading patch taken for an object lies on it
+    edge = np.zeros(n + 1, bool)
+    for side in (labels[0, :], labels[-1, :], labels[:, 0], labels[:, -1]):
+        edge[side] = True
+    inner = areas[~edge[1:]]
+    reference = typical_area(inner if inner.size else areas)
+    drop = areas < share * reference
     if not drop.any():
         return labels, split, 0
     keep = ~drop
