@@ -56,6 +56,13 @@ HEAP_MIN_GRAINS = 6.0
 #: Smallest part of a split, as a fraction of the whole component's area (the heap's floor), except for
 #: cuts between corners (see :data:`NOTCH_TURN_DEG`).
 MIN_PART_FRACTION = 0.1
+#: A part split again on its own keeps the split where it is this many times the median part of the cut ...
+ALONE_MIN_SIZE = 1.5
+#: ... or the new parts meet along at most this share of the thinner one's inscribed diameter ...
+ALONE_NECK = 0.8
+#: ... and only where every new part holds this share of the median
+#: part of the first cut.
+ALONE_MIN_SHARE = 0.25
 #: Extra concavity allowance of the parts of a split (ragged ends of the dividing line).
 PART_SLACK = 2.0
 #: Smallest (twice the shallower of the notches at its ends) / (its length) of a straight cut across a neck.
@@ -714,7 +721,59 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     parts = _split(mask, min_part, split_depth, 0, budget, image, min_area) or [mask]
     if len(parts) > 2:
         parts = _rejoin(parts, split_depth, image, min_part)
+    if len(parts) > 1:
+        parts = _split_parts_alone(parts, min_area, split_depth, image)
     return parts
+
+
+def _meet_at_necks(pieces: list[np.ndarray]) -> bool:
+    """Whether every two touching pieces meet along less than :data:`ALONE_NECK` of the thinner one's
+    inscribed diameter (the contact counted as the pixels of one 8-adjacent to the other)."""
+    radii = [float(ndi.distance_transform_edt(p).max()) for p in pieces]
+    for i, a in enumerate(pieces):
+        grown = ndi.binary_dilation(a, _EIGHT)
+        for j in range(i + 1, len(pieces)):
+            contact = int(np.count_nonzero(grown & pieces[j]))
+            if contact and contact > ALONE_NECK * 2.0 * min(radii[i], radii[j]):
+                return False
+    return True
+
+
+def _split_parts_alone(parts: list[np.ndarray], min_area: float, split_depth: float,
+                       image: np.ndarray | None) -> list[np.ndarray]:
+    """Split again, each on its own, the parts of a cut that are still concave.
+
+    Inside a long chain or a large group no part may be smaller than a tenth
+    of the whole (the heap's floor) and the cuts per component are bounded,
+    so pairs of grains along a chain stay joined. A part that is still
+    concave is taken on its own and split by the same rules as any component
+    of its size (segment-grains 2.7); the split is kept only where every new
+    part holds at least :data:`ALONE_MIN_SHARE` of the median part of the
+    first cut (grains of a pair or a short chain, not a sliver cut off one
+    grain), and where the part is at least :data:`ALONE_MIN_SIZE` times that
+    median (a pair among single grains) or the new parts meet at necks
+    (:func:`_meet_at_necks`): a rod among rods is not cut across its full width.
+    """
+    typical = float(np.median([int(q.sum()) for q in parts]))
+    out = []
+    for q in parts:
+        if q.sum() < 2 * min_area or is_convex(q, split_depth):
+            out.append(q)
+            continue
+        rows, cols = _box(q)
+        r0, c0 = max(rows.start - 1, 0), max(cols.start - 1, 0)
+        r1, c1 = min(rows.stop + 1, q.shape[0]), min(cols.stop + 1, q.shape[1])
+        sub = split_component(q[r0:r1, c0:c1], min_area, split_depth,
+                              image[r0:r1, c0:c1] if image is not None else None)
+        if (len(sub) == 1 or min(int(piece.sum()) for piece in sub) < ALONE_MIN_SHARE * typical
+                or not (q.sum() >= ALONE_MIN_SIZE * typical or _meet_at_necks(sub))):
+            out.append(q)
+            continue
+        for piece in sub:
+            full = np.zeros_like(q)
+            full[r0:r1, c0:c1] = piece
+            out.append(full)
+    return out
 
 
 def enclosed_pockets(mask: np.ndarray, image: np.ndarray, min_area: float) -> np.ndarray | None:
