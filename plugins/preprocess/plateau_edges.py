@@ -54,6 +54,9 @@ WEAK_VOTE = 0.2
 REACH_SIGMAS = 4
 #: Fewest kept edge pixels at one scale for that scale to vote.
 MIN_KEPT = 10
+#: The finer pair of scales (px of the working copy) of the second look: gaps between packed grains
+#: narrower than the reach at the ordinary scales are plateaus at these.
+FINE_SCALES_PX = (2.0, 4.0)
 
 
 def _scale_vote(arr: np.ndarray, sigma: float, edge_fraction: float, reach: int) -> float | None:
@@ -146,13 +149,17 @@ def decide_polarity(image: np.ndarray) -> tuple[str, float]:
     -----
     The ordinary convex-side vote decides unless it is weaker than
     :data:`WEAK_VOTE`; then the :func:`plateau_vote` decides if it points the
-    other way and is larger in size. A frame whose vote is at least
+    other way and is larger in size. The plateau vote is taken at the ordinary
+    scales and at :data:`FINE_SCALES_PX`, and the larger in size of the two
+    serves (the scale at which the frame's edges speak most clearly): at the
+    ordinary scales the dark gaps between packed spheres are narrower than the
+    reach, at the finer ones the textured inside of large grains breaks up. A frame whose vote is at least
     :data:`WEAK_VOTE` gets the same answer as
     :func:`~grainhabit.plugins.preprocess.polarity.detect_polarity`.
     """
     vote = convex_side_vote(image)
     if abs(vote) < WEAK_VOTE:
-        second = plateau_vote(image)
+        second = max(plateau_vote(image), plateau_vote(image, scales=FINE_SCALES_PX), key=abs)
         if (second * vote < 0 and abs(second) > abs(vote)) or (vote == 0 and second != 0):
             vote = second
     return ("bright" if vote >= 0 else "dark"), abs(vote)
