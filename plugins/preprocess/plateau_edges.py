@@ -16,7 +16,8 @@ side stays darker than the edge pixel over a distance; past the flank of a line
 the bright side falls back after the line's width. :func:`plateau_vote` keeps
 only the edge pixels whose profile stays on its side of the edge level at
 1, 2, ..., :data:`REACH_SIGMAS` Gaussian scales on both sides (a step edge at
-that scale), and casts the convex-side vote of those alone.
+that scale), and casts the convex-side vote of those alone. Specks, pits and
+gaps narrower than that reach drop out as well.
 
 :func:`decide_polarity` keeps the ordinary vote, and on a weak vote
 (``|vote| <`` :data:`WEAK_VOTE`) takes the plateau vote instead only when it
@@ -27,9 +28,10 @@ On the 357 EMPS training micrographs (B. Yildirim and J. M. Cole, J. Chem.
 Inf. Model. 61 (2021) 1136; polarity taken as the sign of the median inside
 the hand-drawn masks minus the median in a ring 2-6 px around them; measured
 on the raw frames for this module) the ordinary vote is wrong on 15 frames,
-14 of them among the 78 with ``|vote| < 0.2``; with this decision 11 and 10
-(5 frames of SEM rods, cubes and spheres with bright rims set right, 1 frame
-of one particle set wrong). See DEVELOPERS.md, "Polarity on weak votes".
+14 of them among the 78 with ``|vote| < 0.2``; with this decision 9 and 8
+(8 frames of SEM rods, cubes and packed spheres with bright rims set right,
+2 frames of one particle each set wrong). See DEVELOPERS.md, "Polarity on
+weak votes".
 
 References
 ----------
