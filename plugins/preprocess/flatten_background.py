@@ -53,7 +53,7 @@ from grainhabit.params import Param, StepInfo
 from grainhabit.plugins.preprocess.background_peak import (  # noqa: F401  (one_sided_sigma: used by tests)
     background_peak, one_sided_sigma, otsu_of, peak_sigma,
 )
-from grainhabit.plugins.preprocess.polarity import detect_polarity as convex_polarity
+from grainhabit.plugins.preprocess.plateau_edges import decide_polarity as convex_polarity
 from grainhabit.plugins.common.drawn_panels import drawn_panels
 from grainhabit.plugins.common.image_stats import (
     CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, regular_subsample,
@@ -64,7 +64,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.5",
+    version="1.6",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -825,7 +825,8 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         # more of the frame than the background (see grainhabit.plugins.preprocess.polarity); on the
         # preview grid (every pixel up to 4 Mpx), so a tiled frame decides as an untiled one. The vote
         # looks at derivatives only: the surface fitted without a grain side serves, without its
-        # level (a constant)
+        # level (a constant). A weak vote gets a second look at the edges between plateaus alone
+        # (grainhabit.plugins.preprocess.plateau_edges)
         surf = fit_surface(small, scale_px / f if scale_px > 0 else 0.0, 0)
         pol, conf = convex_polarity(x_s - upsample_bilinear(surf, shape, rs, cs))
     else:

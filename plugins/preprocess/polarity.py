@@ -23,7 +23,9 @@ and the sharp corners of gaps between packed grains from deciding.
 On the 357 EMPS training micrographs (B. Yildirim and J. M. Cole, J. Chem.
 Inf. Model. 61 (2021) 1136; polarity taken as the sign of the median inside
 the hand-drawn masks minus the median around them) this vote was wrong on 16
-frames, the histogram-tail test on 79 (measured for this module).
+frames, the histogram-tail test on 79 (measured for this module). Where the
+vote is weak, :mod:`grainhabit.plugins.preprocess.plateau_edges` counts again
+the edges between two plateaus alone.
 
 References
 ----------
