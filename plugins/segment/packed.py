@@ -87,6 +87,8 @@ RAFT_MIN_PARTS = 10
 RAFT_AREA_FACTOR = 4.0
 #: Parts of a raft smaller than this share of its median part are the interstices between particles.
 RAFT_PART_SHARE = 0.4
+#: ... and its valleys cut it into at least this many cells (a cut at one level joins some particles in rows).
+RAFT_MIN_CELLS = 5
 #: An object is looked at as a raft when this share of its inner pixels lie in valleys (see split_rafts).
 RAFT_VALLEY_SHARE = 0.1
 #: Windows (px) of the black top-hats that find the thin gaps between particles with bright rims.
@@ -530,7 +532,7 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
     :func:`packed_field`), at least :data:`RAFT_VALLEY_SHARE` of its inner pixels
     (2 px in from its outline) lie below :data:`RAFT_GAP_LEVEL` of its upper
     quartile level, and those valleys cut its inner pixels into at least
-    :data:`RAFT_MIN_PARTS` cells of :data:`RAFT_PART_SHARE` of a smallest
+    :data:`RAFT_MIN_CELLS` cells of :data:`RAFT_PART_SHARE` of a smallest
     grain or more: the network of gaps inside a raft. A grain of even level,
     or one whose facets differ in brightness, costs a percentile and a label.
 
@@ -579,10 +581,10 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
         level = RAFT_GAP_LEVEL * np.percentile(vals, 75)
         if np.mean(vals < level) < RAFT_VALLEY_SHARE:
             continue
-        # the valleys must cut the object into many cells (one per particle), not a few facets
+        # the valleys must cut the object into many cells (particles, or rows of them), not a few facets
         cells, n_cells = ndi.label(inner & (image[grown] >= level))
-        if n_cells < RAFT_MIN_PARTS or np.count_nonzero(
-                np.bincount(cells.ravel())[1:] >= RAFT_PART_SHARE * min_area) < RAFT_MIN_PARTS:
+        if n_cells < RAFT_MIN_CELLS or np.count_nonzero(
+                np.bincount(cells.ravel())[1:] >= RAFT_PART_SHARE * min_area) < RAFT_MIN_CELLS:
             continue
         parts = split_raft(image[grown], mask, min_area)
         if parts is None:
