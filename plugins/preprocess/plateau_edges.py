@@ -47,8 +47,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.preprocess.polarity import (EDGE_FRACTION, MAX_SIDE_PX, SCALES_PX, block_mean,
-                                                    convex_side_vote)
+from grainhabit.plugins.preprocess.polarity import EDGE_FRACTION, SCALES_PX, convex_side_vote, multiscale_vote
 
 #: Below this ``|vote|`` of the ordinary convex-side vote the plateau vote is consulted.
 WEAK_VOTE = 0.2
@@ -117,20 +116,7 @@ def plateau_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float = EDG
         (bright grains), -1 round its dark side; 0 when no scale keeps
         :data:`MIN_KEPT` edges.
     """
-    arr = block_mean(np.asarray(image), int(np.ceil(max(np.shape(image)) / MAX_SIDE_PX)))
-    if arr.size == 0 or float(arr.max()) == float(arr.min()):
-        return 0.0
-    half = None
-    votes = []
-    for s in scales:
-        if s >= 8 and min(arr.shape) >= 32:
-            half = block_mean(arr, 2) if half is None else half
-            v = _scale_vote(half, s / 2.0, edge_fraction, reach)
-        else:
-            v = _scale_vote(arr, s, edge_fraction, reach)
-        if v is not None:
-            votes.append(v)
-    return float(np.mean(votes)) if votes else 0.0
+    return multiscale_vote(image, scales, lambda arr, sigma: _scale_vote(arr, sigma, edge_fraction, reach))
 
 
 def decide_polarity(image: np.ndarray) -> tuple[str, float]:

@@ -111,6 +111,37 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
         In [-1, 1]: +1 when every edge bends round its bright side (bright
         grains), -1 round its dark side (dark grains); 0 for a flat frame.
     """
+    def tangent_vote(arr: np.ndarray, sigma: float) -> float | None:
+        itt, grad = tangent_second_derivative(arr, sigma)
+        t = np.partition(grad.ravel(), int((1.0 - edge_fraction) * (grad.size - 1)))[
+            int((1.0 - edge_fraction) * (grad.size - 1))]
+        edge = (grad >= t) & (grad > 0)
+        return float(np.mean(np.sign(-itt[edge]))) if edge.any() else None
+
+    return multiscale_vote(image, scales, tangent_vote)
+
+
+def multiscale_vote(image: np.ndarray, scales, vote_at) -> float:
+    """Mean over Gaussian scales of a per-scale edge vote, on a block-averaged working copy.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols)
+        Any intensities.
+    scales : sequence of float
+        Scales in pixels of the working copy (the frame block-averaged to at
+        most :data:`MAX_SIDE_PX` per side); a scale of 8 px or more is taken on
+        a copy halved again, at half the scale (the same scale-space level, a
+        quarter of the work).
+    vote_at : callable
+        ``vote_at(copy, sigma)``: the vote in [-1, 1] at one scale, or None
+        when the scale has no edges to count.
+
+    Returns
+    -------
+    float
+        The mean of the votes; 0 for a flat frame or when no scale votes.
+    """
     arr = block_mean(np.asarray(image), int(np.ceil(max(np.shape(image)) / MAX_SIDE_PX)))
     if arr.size == 0 or float(arr.max()) == float(arr.min()):
         return 0.0
@@ -119,14 +150,11 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
     for s in scales:
         if s >= 8 and min(arr.shape) >= 32:
             half = block_mean(arr, 2) if half is None else half
-            itt, grad = tangent_second_derivative(half, s / 2.0)
+            v = vote_at(half, s / 2.0)
         else:
-            itt, grad = tangent_second_derivative(arr, s)
-        t = np.partition(grad.ravel(), int((1.0 - edge_fraction) * (grad.size - 1)))[
-            int((1.0 - edge_fraction) * (grad.size - 1))]
-        edge = (grad >= t) & (grad > 0)
-        if edge.any():
-            votes.append(float(np.mean(np.sign(-itt[edge]))))
+            v = vote_at(arr, s)
+        if v is not None:
+            votes.append(v)
     return float(np.mean(votes)) if votes else 0.0
 
 
