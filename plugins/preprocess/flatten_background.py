@@ -53,7 +53,7 @@ from grainhabit.params import Param, StepInfo
 from grainhabit.plugins.preprocess.background_peak import (  # noqa: F401  (one_sided_sigma: used by tests)
     background_peak, one_sided_sigma, otsu_of, peak_sigma,
 )
-from grainhabit.plugins.preprocess.plateau_edges import decide_polarity as convex_polarity
+from grainhabit.plugins.preprocess.plateau_edges import decide_polarity
 from grainhabit.plugins.common.drawn_panels import drawn_panels
 from grainhabit.plugins.common.image_stats import (
     CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, regular_subsample,
@@ -828,7 +828,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         # level (a constant). A weak vote gets a second look at the edges between plateaus alone
         # (grainhabit.plugins.preprocess.plateau_edges)
         surf = fit_surface(small, scale_px / f if scale_px > 0 else 0.0, 0)
-        pol, conf = convex_polarity(x_s - upsample_bilinear(surf, shape, rs, cs))
+        pol, conf = decide_polarity(x_s - upsample_bilinear(surf, shape, rs, cs))
     else:
         pol, conf = polarity, 1.0
     sign = 1 if pol == "bright" else -1

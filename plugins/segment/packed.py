@@ -344,10 +344,10 @@ def _test(g: np.ndarray, min_area: float) -> PackedField:
         return out
     best = _judge(ringed, min_area, bright=True)
     for size in TOPHAT_SIZES_PX:
-        hat = ndi.grey_closing(g, size=(size, size)) - g
-        if float(hat.max()) == float(hat.min()):
+        gaps = valley_gaps(g, size)
+        if gaps is None:
             continue
-        found = _judge(~(hat > threshold_otsu(hat)), min_area, bright=True)
+        found = _judge(~gaps, min_area, bright=True)
         if found.packed and (not best.packed or found.labels.max() > best.labels.max()):
             best = found
     return best if best.packed else out
@@ -451,6 +451,33 @@ def _large(mask: np.ndarray, min_area: float) -> np.ndarray:
     return big[lab]
 
 
+def valley_gaps(g: np.ndarray, size: int, mask: np.ndarray | None = None) -> np.ndarray | None:
+    """The thin dark valleys of ``g``: Otsu's cut of its black top-hat of a ``size`` px window.
+
+    Parameters
+    ----------
+    g : ndarray of float, shape (rows, cols)
+        A smoothed frame or window.
+    size : int
+        Side (px) of the top-hat's square window: valleys narrower than it are kept.
+    mask : ndarray of bool, optional
+        Where to cut (the threshold from these pixels alone); the whole array by default.
+
+    Returns
+    -------
+    ndarray of bool or None
+        The valley pixels (within ``mask``), or None where the top-hat is flat there.
+    """
+    from skimage.filters import threshold_otsu
+
+    hat = ndi.black_tophat(g, size=(size, size))
+    vals = hat if mask is None else hat[mask]
+    if vals.size == 0 or float(vals.max()) == float(vals.min()):
+        return None
+    gaps = hat > threshold_otsu(vals)
+    return gaps if mask is None else gaps & mask
+
+
 def split_raft(image: np.ndarray, mask: np.ndarray, min_area: float) -> np.ndarray | None:
     """An island of packed particles (a raft) divided at the thin gaps inside it, or None.
 
@@ -484,16 +511,12 @@ def split_raft(image: np.ndarray, mask: np.ndarray, min_area: float) -> np.ndarr
     ndarray of int32 or None
         The parts 1..n (0 outside them), or None when no window passes.
     """
-    from skimage.filters import threshold_otsu
-
     g = ndi.gaussian_filter(np.asarray(image, float), SMOOTH_PX)
     best, best_n = None, 0
     for size in TOPHAT_SIZES_PX:
-        hat = ndi.grey_closing(g, size=(size, size)) - g
-        vals = hat[mask]
-        if vals.size == 0 or float(vals.max()) == float(vals.min()):
+        gaps = valley_gaps(g, size, mask)
+        if gaps is None:
             continue
-        gaps = mask & (hat > threshold_otsu(vals))
         parts = mask & ~gaps
         holes = ndi.binary_fill_holes(parts) & ~parts & mask
         solid = parts | (holes & ~_large(holes, min_area))

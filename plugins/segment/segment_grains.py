@@ -515,8 +515,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         split = flags["split"][1:]
         boxes, cluster_of = noted["boxes"], noted["cluster_of"]
     split_by_label = flags.get("split")
-    min_area = np.pi / 4.0 * max(p["min_ecd_px"], p["min_ecd_nm"] / pixel_size_nm) ** 2
-    labels, split, n_rafts = split_rafts(arr, labels, split, min_area)
+    labels, split, n_rafts = split_rafts(arr, labels, split, smallest_grain_area(p, pixel_size_nm))
     if n_rafts:
         notes.append(f"segment-grains: {n_rafts} raft(s) of packed particles divided at their gaps")
         boxes = cluster_of = None
@@ -537,6 +536,11 @@ def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, p: dict
         notes.append(f"segment-grains: {n} object(s) under {100 * p['min_area_share']:g} % of the frame's typical "
                      "grain area dropped (debris, substrate texture)")
     return labels, split, notes
+
+
+def smallest_grain_area(p: dict, pixel_size_nm: float) -> float:
+    """Area (px) of a disc of the smallest grain ECD the step keeps: ``min_ecd_px`` or ``min_ecd_nm``, the larger."""
+    return np.pi / 4.0 * max(p["min_ecd_px"], p["min_ecd_nm"] / pixel_size_nm) ** 2
 
 
 def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
@@ -597,8 +601,7 @@ def packed_test(arr: np.ndarray, raw: np.ndarray | None, pixel_size_nm: float, p
     """
     if raw is None or not p["packed_fields"] or max(arr.shape) > p["tile_px"]:
         return None
-    min_ecd = max(p["min_ecd_px"], p["min_ecd_nm"] / pixel_size_nm)
-    field = packed_field(raw, np.pi / 4.0 * min_ecd ** 2)
+    field = packed_field(raw, smallest_grain_area(p, pixel_size_nm))
     return field if field.packed else None
 
 

@@ -760,6 +760,8 @@ def _split_parts_alone(parts: list[np.ndarray], min_area: float, split_depth: fl
         if q.sum() < 2 * min_area or is_convex(q, split_depth):
             out.append(q)
             continue
+        # 2 px round the part (its _box grown by one): the image beyond the outline is read by the cut
+        # tests, and a 1 px crop gives other cuts on EMPS frames
         rows, cols = _box(q)
         r0, c0 = max(rows.start - 1, 0), max(cols.start - 1, 0)
         r1, c1 = min(rows.stop + 1, q.shape[0]), min(cols.stop + 1, q.shape[1])
