@@ -65,3 +65,18 @@ def test_noise_gets_no_second_look_grains():
         flat = rng.normal(0.0, 0.05, noise.shape).astype(np.float32)
         labels, _, notes = segment_image(flat, 1.0, {}, raw=noise)
         assert labels.max() == 0 and any("qc no-grains" in n for n in notes)
+
+
+def test_a_packing_with_a_few_parts_left_joined_still_counts_as_equal_particles():
+    # ce41e4e56d (EMPS): 11 spheres of ~13000 px and one part of four joined spheres (52551 px) gave
+    # std/mean 0.67 > 0.6 and the packed test turned the frame away
+    from grainhabit.plugins.segment.packed import MAX_AREA_COV, robust_cov
+
+    areas = np.array([11987, 11990, 12285, 12716, 12766, 13136, 13456, 13571, 13704, 13723, 13854, 52551.0])
+    assert areas.std() / areas.mean() > MAX_AREA_COV
+    assert robust_cov(areas) < 0.1
+    # for normally distributed areas the MAD form estimates std / mean (scipy.stats.norm: the MAD of a
+    # normal sample is 0.6745 sd)
+    rng = np.random.default_rng(4)
+    a = rng.normal(1000.0, 150.0, 20000)
+    assert abs(robust_cov(a) - 0.15) < 0.005
