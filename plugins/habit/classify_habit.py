@@ -415,8 +415,10 @@ def outline_evidence(contour_lab, params, pixel_scale=1.0):
     """
     p = params
     lib = en.fit_options(p)["library"]
+    # only the shapes the outline-only fit reads are compared at every shift, those of the interior
+    # gate where the interior is fitted (the same fits; engine.outline_candidates_within)
     match = en.match_outline(contour_lab, lib, pixel_scale, p["outline_noise_px"], p["outline_noise_floor"],
-                             p["corner_radius_px"])
+                             p["corner_radius_px"], within=float(p["tolerance"]))
     return match, best_families(match.signature, match.level)
 
 
