@@ -83,28 +83,31 @@ def test_bound_is_tight_for_a_turned_copy():
     assert abs(b.lb[j] + b.margin) < 1e-12 * (a @ a) / N          # the bound less its safety margin
 
 
+@pytest.mark.parametrize("faces", [gr.VIEWS, ("111",), ("100", "110")])
 @pytest.mark.parametrize("within", [0.0, 4.0, 29.0, 200.0])
-def test_compared_rows_equal_the_full_comparison_and_the_rest_cannot_matter(within):
+def test_compared_rows_equal_the_full_comparison_and_the_rest_cannot_matter(within, faces):
     lib = gr.model_library()
     tab = lib.tables
     cls = np.full(tab.face.size, -1)
-    cls[tab.model_shape] = np.where(lib.alphas <= 1.5, 0, np.where(lib.alphas < 3.0, 1, 2))
+    cls[tab.model_shape] = np.where(lib.alphas <= 1.5, 0, np.where(lib.alphas < 3.0, 1, 2))   # vocabulary's limits
+    ok = np.isin(tab.face, faces)
     for sig, tau, level in _signatures():
         s0, d0, v0 = gr.outline_candidates(sig, tab, level)
-        s1, d1, v1 = gr.outline_candidates_within(sig, lib, level, tau, within)
+        s1, d1, v1 = gr.outline_candidates_within(sig, lib, level, tau, within, faces)
         c = v1[:, 0]
         # every compared shape: the bits of the full comparison
         assert np.array_equal(s0[c], s1[c]) and np.array_equal(d0[c], d1[c]) and np.array_equal(v0[c], v1[c])
         assert np.all(np.isinf(d1[~c])) and not v1[~c].any()
-        # the shapes left out: their scores lie beyond `within`, beyond each class's least score,
-        # and their distances beyond the least distance
-        key = d0[:, 0] ** 2 + tau ** 2 * tab.prior
+        # the allowed shapes left out: their scores lie beyond `within` and beyond each class's least
+        # score; the least distance over all views and over the allowed ones is a compared shape's
+        key = np.where(ok, d0[:, 0] ** 2 + tau ** 2 * tab.prior, np.inf)
         kstar = key.min()
-        assert np.all(key[~c] > kstar + tau ** 2 * within)
+        assert np.all(key[~c & ok] > kstar + tau ** 2 * within)
         for k in range(3):
-            sel = cls == k
+            sel = (cls == k) & ok
             assert key[sel & c].min() == key[sel].min()
         assert d1[c, 0].min() == d0[:, 0].min()
+        assert d1[c & ok, 0].min() == d0[ok, 0].min()
 
 
 def test_resumed_comparison_equals_a_fresh_one():

@@ -926,7 +926,11 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
         Default: :func:`model_library` with its defaults.
     match : OutlineMatch, optional
         :func:`match_outline` of ``contour_xy`` with ``library`` when the
-        caller has it already (it is then not computed again).
+        caller has it already (it is then not computed again). A match of
+        fewer shapes (``within``) is taken on to the shapes this fit reads
+        (:meth:`OutlineMatch.reaching`: ``tolerance`` without the interior,
+        :func:`outline_reach` with it), or compared again in full where it
+        was made for other views.
     tolerance : float
         Score difference bounding ``alpha_lo``/``alpha_hi``.
     outline_noise_px, outline_noise_floor, corner_radius_px : float
@@ -1443,6 +1447,12 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
         NaN, e.g. a square: alpha <= 1.5). The full fit then names the same
         class (its best model is one of those) and could at most narrow a
         range that only bounds alpha; it is skipped.
+
+    Notes
+    -----
+    The classes of the models within the gate are those whose least score lies within it, so
+    a fit on a match that compared only the shapes within ``tolerance`` and the least of each
+    class (:func:`match_outline` with ``within``) gives the same answer.
     """
     near = fit.score <= tolerance + _INTERIOR_GATE
     cls = np.where(library.alphas <= CUBE_ALPHA_MAX, 0, np.where(library.alphas < OCTAHEDRON_ALPHA, 1, 2))
