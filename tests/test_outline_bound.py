@@ -196,3 +196,28 @@ def test_frame_columns_equal_those_with_every_shape_compared(contrast, monkeypat
     for k, v in now.items():
         a, b = np.asarray(v), np.asarray(before[k])
         assert (np.all(a == b) if a.dtype == object else np.array_equal(a, b, equal_nan=True)), k
+
+
+@pytest.mark.parametrize("n", [180, 255])
+def test_compared_rows_at_other_signature_lengths(n):
+    # a length that is no power of two (the other scaling branch) and an odd one (no Nyquist term
+    # in the half spectrum): the compared rows equal the full comparison, the least distance and
+    # each class's least score are a compared shape's
+    lib = gr.model_library(0.5, 4.0, 0.1, n)
+    tab = lib.tables
+    cls = np.full(tab.face.size, -1)
+    cls[tab.model_shape] = np.where(lib.alphas <= 1.5, 0, np.where(lib.alphas < 3.0, 1, 2))
+    rng = np.random.default_rng(9)
+    sigs = [gr.radial_signature(_random_star(rng), n) for _ in range(4)]
+    sigs += [np.roll(lib.signatures[2, j], 7) * (1 + 0.01 * rng.standard_normal(n)) for j in (3, 40, 90)]
+    for sig in sigs:
+        tau = 0.01
+        s0, d0, v0 = gr.outline_candidates(sig, tab, 2)
+        s1, d1, v1 = gr.outline_candidates_within(sig, lib, 2, tau, 4.0)
+        c = v1[:, 0]
+        assert np.array_equal(s0[c], s1[c]) and np.array_equal(d0[c], d1[c]) and np.array_equal(v0[c], v1[c])
+        key = d0[:, 0] ** 2 + tau ** 2 * tab.prior
+        assert np.all(key[~c] > key.min() + tau ** 2 * 4.0)
+        for k in range(3):
+            assert key[(cls == k) & c].min() == key[cls == k].min()
+        assert d1[c, 0].min() == d0[:, 0].min()
