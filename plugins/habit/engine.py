@@ -590,8 +590,9 @@ def outline_candidates_within(sig, library: ModelLibrary, level: int, tau: float
     The lower bound of every shape's least distance is the distance of the magnitude spectra
     (Parseval's theorem and the triangle inequality; :mod:`outline_bound`); the shapes compared
     are those of :func:`outline_bound.shapes_to_compare`: every shape whose outline score may lie
-    within ``within`` of the best (all the fit gates, ranges and ties), and the least score in every
-    (view, habit class) and the least distance in every view. What :func:`fit_alpha_steps`,
+    within ``within`` of the best (all the fit gates, ranges and ties), in every habit class the least
+    score and the least beyond that reach, and the least distance over all views and over the allowed
+    ones. What :func:`fit_alpha_steps`,
     :func:`class_scores`, :func:`polyhedral_class` and :func:`outline_settles` read of the
     others is at most that they lie above those least values, which a left-out shape does
     (its score is inf instead).

@@ -22,9 +22,10 @@ step applied term by term).
 :func:`shapes_to_compare` uses the bound to pick the shapes whose exact distances can reach what
 the fit reads from the outline match (:func:`engine.fit_alpha_steps`, :func:`engine.class_scores`,
 :func:`engine.outline_settles`): every shape whose outline score (with its view prior) may lie
-within ``within`` chi-square units of the best, and in every (view, habit class) the best shape
-among those beyond that, and in every view the shape of least distance. The others are left out;
-their distances are never read by a decision of the fit (see :func:`shapes_to_compare`).
+within ``within`` chi-square units of the best, in every habit class the best shape and the best
+among those beyond that, and the shape of least distance (over all views and over the allowed
+ones). The others are left out; no decision of the fit reads their distances (see
+:func:`shapes_to_compare`). Oppenheim & Schafer is cited from memory.
 """
 
 from __future__ import annotations
