@@ -415,8 +415,12 @@ def outline_evidence(contour_lab, params, pixel_scale=1.0):
     """
     p = params
     lib = en.fit_options(p)["library"]
+    # only the shapes the fits can read are compared at every shift (the same fits and the same columns;
+    # engine.outline_candidates_within). The interior gate's reach from the start: about half the grains
+    # fit their interior, and taking a match of the tolerance's reach on to the gate's costs more
+    # (bookkeeping of the rounds) than comparing the gate's shapes at once saves on the others
     match = en.match_outline(contour_lab, lib, pixel_scale, p["outline_noise_px"], p["outline_noise_floor"],
-                             p["corner_radius_px"])
+                             p["corner_radius_px"], within=en.outline_reach(p["tolerance"]))
     return match, best_families(match.signature, match.level)
 
 

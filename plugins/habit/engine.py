@@ -72,13 +72,13 @@ from __future__ import annotations
 
 import functools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
-from grainhabit.plugins.habit import disk_cache
+from grainhabit.plugins.habit import disk_cache, outline_bound
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
                                                grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_request, round_rss, rss_requests,
@@ -92,7 +92,7 @@ __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFi
            "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
            "symmetric_hull_areas", "fit_alpha", "fit_alpha_steps", "run_steps", "run_together", "fit_options", "grain_evidence", "grain_evidence_lazy",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
-           "outline_candidates", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
+           "outline_candidates", "outline_candidates_within", "BoundedOutline", "outline_reach", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
            "FAR_HEIGHT", "face_planes", "flat_rss", "round_rss", "check_n_angles", "check_polygon"]
 
@@ -230,11 +230,31 @@ class ModelLibrary:
         """(grid size, m) bool: which models have the alpha of each grid point (to 1e-9)."""
         return np.abs(self.alphas[None, :] - self.grid[:, None]) < 1e-9
 
+    @functools.cached_property
+    def spectral_bound(self) -> "outline_bound.SpectralBound":
+        """Tables of the outline match's lower bound (:mod:`outline_bound`; kept, not pickled)."""
+        tab = self.tables
+        shape_class = np.zeros(tab.face.size, np.int64)
+        shape_class[tab.model_shape] = np.where(self.alphas <= CUBE_ALPHA_MAX, 0,
+                                                np.where(self.alphas < OCTAHEDRON_ALPHA, 1, 2))
+        return outline_bound.spectral_bound(tab.sig_fft, tab.sig_sq, self.signatures.shape[-1], shape_class)
+
+    def compare_plan(self, faces: tuple) -> "outline_bound.ComparePlan":
+        """:func:`outline_bound.compare_plan` for the views ``faces`` (kept per views, not pickled)."""
+        plans = self.__dict__.setdefault("_compare_plans", {})
+        plan = plans.get(faces)
+        if plan is None:
+            plan = plans[faces] = outline_bound.compare_plan(self.spectral_bound, self.tables.prior,
+                                                             _allowed_views(faces)[self.tables.face_id])
+        return plan
+
     def __getstate__(self):
         # the cached tables above are rebuilt on use, not stored with the library on disk
         state = dict(self.__dict__)
         state.pop("grid_index", None)
         state.pop("at_grid", None)
+        state.pop("spectral_bound", None)
+        state.pop("_compare_plans", None)
         return state
 
 
@@ -481,22 +501,38 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     spectra: d^2[s] = (|a|^2 + |b|^2 - 2 C[s]) / n.
     """
     a = np.asarray(sig, float)
-    n = a.size
-    d = np.fft.irfft(np.fft.rfft(a)[None, :] * tab.sig_fft[level], n, axis=1)
+    return _candidates_of_rows(_distance_rows(np.fft.rfft(a), a @ a, tab.sig_fft[level], tab.sig_sq[level], a.size),
+                               tab.turn_win, tab.turn_off, tab.turn_ok)
+
+
+def _distance_rows(spec_a, aa, sig_fft, sig_sq, n):
+    """Squared RMS signature distances (k, n) of k shapes at every cyclic shift.
+
+    ``spec_a`` is the observed signature's ``rfft``, ``aa`` its squared norm, ``sig_fft`` (k, n/2+1)
+    and ``sig_sq`` (k,) the shapes' conjugate spectra and squared norms at one rounding level.
+    Each row is computed on its own (one inverse real FFT per row, element-wise scaling), so the
+    rows of any subset of shapes have the bits of the same rows of all shapes.
+    """
+    d = np.fft.irfft(spec_a[None, :] * sig_fft, n, axis=1)
     # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place
     if n & (n - 1) == 0:
         # n a power of two: scaling by -2/n and by 1/n is exact, and rounding commutes with it, so
         # (-2/n) C + (|a|^2 + |b|^2)/n is the same float as (|a|^2 + |b|^2 - 2 C) / n in two passes
         np.multiply(d, -2.0 / n, out=d)
-        np.add(d, ((a @ a + tab.sig_sq[level]) / n)[:, None], out=d)
+        np.add(d, ((aa + sig_sq) / n)[:, None], out=d)
     else:
         np.multiply(d, 2.0, out=d)
-        np.subtract((a @ a + tab.sig_sq[level])[:, None], d, out=d)
+        np.subtract((aa + sig_sq)[:, None], d, out=d)
         np.divide(d, n, out=d)
-    u = d.shape[0]
+    return d
+
+
+def _candidates_of_rows(d, turn_win, turn_off, turn_ok):
+    """Candidate shifts, distances and valid slots (:func:`outline_candidates`) from distance rows ``d`` (u, n)."""
+    u, n = d.shape
     k0 = np.argmin(d, axis=1)
     # the three windows of every shape at once: (u, 3, window), as flat indices into d
-    win = k0[:, None, None] + tab.turn_win
+    win = k0[:, None, None] + turn_win
     if n & (n - 1) == 0:
         np.bitwise_and(win, n - 1, out=win)          # modulo a power of two (also for negative offsets)
     else:
@@ -506,7 +542,7 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     # scan; measured faster than those passes over the transposed layout on numpy 2)
     first = d.ravel()[win + (np.arange(u) * n)[:, None, None]].argmin(axis=2)
     # the shift at that window position: k0 + turn offset + (position - n // 32), modulo n
-    best = k0[:, None] + tab.turn_off + (first - n // 32)
+    best = k0[:, None] + turn_off + (first - n // 32)
     if n & (n - 1) == 0:
         np.bitwise_and(best, n - 1, out=best)
     else:
@@ -517,13 +553,103 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     shifts[:, 1:] = best
     # a look-alike slot is valid where the turn exists and its shift repeats no valid slot before it
     b0, b1, b2 = best[:, 0], best[:, 1], best[:, 2]
-    ok = tab.turn_ok
+    ok = turn_ok
     v1 = ok[:, 0] & (b0 != k0)
     v2 = ok[:, 1] & ~((b1 == k0) | ((b1 == b0) & v1))
     valid[:, 1], valid[:, 2] = v1, v2
     valid[:, 3] = ok[:, 2] & ~((b2 == k0) | ((b2 == b0) & v1) | ((b2 == b1) & v2))
     at = d.ravel()[shifts + (np.arange(u) * n)[:, None]]
     return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
+
+
+def outline_candidates_within(sig, library: ModelLibrary, level: int, tau: float, within: float, faces=VIEWS):
+    """:func:`outline_candidates` of the shapes a fit can read, picked by a proven lower bound.
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+    library : ModelLibrary
+    level : int
+        Corner rounding level.
+    tau : float
+        Outline misfit unit of the grain.
+    within : float
+        Interior gate plus tolerance of the fit (chi-square units; :func:`fit_alpha_steps`).
+    faces : tuple of str
+        Views of the fit.
+
+    Returns
+    -------
+    shifts, dist, valid : ndarray, shape (u, 4)
+        As :func:`outline_candidates` for the shapes compared (the same bits: every row is
+        computed on its own); ``dist`` inf, ``valid`` False and ``shifts`` 0 for the others.
+
+    Notes
+    -----
+    The lower bound of every shape's least distance is the distance of the magnitude spectra
+    (Parseval's theorem and the triangle inequality; :mod:`outline_bound`); the shapes compared
+    are those of :func:`outline_bound.shapes_to_compare`: every shape whose outline score may lie
+    within ``within`` of the best (all the fit gates, ranges and ties), in every habit class the least
+    score and the least beyond that reach, and the least distance over all views and over the allowed
+    ones. What :func:`fit_alpha_steps`,
+    :func:`class_scores`, :func:`polyhedral_class` and :func:`outline_settles` read of the
+    others is at most that they lie above those least values, which a left-out shape does
+    (its score is inf instead).
+    """
+    return BoundedOutline(sig, library, level, tau, faces).upto(within)
+
+
+class BoundedOutline:
+    """One outline compared, shape by shape as needed, with a library (:func:`outline_candidates_within`).
+
+    The shapes compared for a smaller ``within`` are kept: :meth:`upto` with a larger one compares
+    only the shapes it adds (:func:`outline_bound.shapes_to_compare` goes on from its state).
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature.
+    library : ModelLibrary
+    level : int
+        Corner rounding level.
+    tau : float
+        Outline misfit unit of the grain.
+    faces : tuple of str
+        Views of the fit.
+    """
+
+    def __init__(self, sig, library: ModelLibrary, level: int, tau: float, faces=VIEWS):
+        tab = library.tables
+        bound = library.spectral_bound
+        a = np.asarray(sig, float)
+        self.n = n = a.size
+        self.spec, self.aa = np.fft.rfft(a), a @ a
+        self.sq, self.fft = tab.sig_sq[level], tab.sig_fft[level]
+        self.margin = outline_bound.BOUND_MARGIN * (self.aa + bound.sq_max[level]) / n
+        self.lb = outline_bound.lower_bounds(self.spec, self.aa, self.sq, bound.weighted_mag[level], n, self.margin)
+        self.plan = library.compare_plan(tuple(faces))
+        self.tab, self.tau2, self.state = tab, tau * tau, None
+        u = tab.face.size
+        self.shifts = np.zeros((u, 4), np.int64)
+        self.dist = np.full((u, 4), np.inf)
+        self.valid = np.zeros((u, 4), bool)
+        self.within = -math.inf
+
+    def _rows(self, r):
+        return _distance_rows(self.spec, self.aa, self.fft[r], self.sq[r], self.n)
+
+    def upto(self, within: float):
+        """(shifts, dist, valid) with every shape a fit of this ``within`` reads compared (fresh arrays)."""
+        if within > self.within:
+            rows, d, self.state = outline_bound.shapes_to_compare(self.lb, self.tau2, within, self.plan, self._rows,
+                                                                  self.margin, self.state)
+            self.within = within
+            if rows.size:
+                tab = self.tab
+                sh, di, va = _candidates_of_rows(d, tab.turn_win[rows], tab.turn_off[rows], tab.turn_ok[rows])
+                self.shifts[rows], self.dist[rows], self.valid[rows] = sh, di, va
+        return self.shifts.copy(), self.dist.copy(), self.valid.copy()
 
 
 def placed_planes(tab: _Tables, shape, shift, n: int, down: bool = True):
@@ -635,6 +761,12 @@ class OutlineMatch:
         Enclosed area in the contour's unit squared.
     level : int
         Rounding level of the models it was compared with (:data:`ROUNDING_LEVELS`).
+    within : float
+        inf where every shape was compared; else only the shapes :func:`outline_bound.shapes_to_compare`
+        picks for a fit whose interior gate plus tolerance is at most ``within`` (chi-square units) and
+        whose views are ``faces`` were compared, the others have ``dist`` inf and no valid slot.
+    faces : tuple of str
+        The views the best outline score was taken over (where ``within`` is finite).
     """
 
     signature: np.ndarray
@@ -644,12 +776,24 @@ class OutlineMatch:
     tau: float
     area: float
     level: int = 0
+    within: float = math.inf
+    faces: tuple = VIEWS
+    compared: "BoundedOutline | None" = field(default=None, compare=False, repr=False)
+
+    def reaching(self, within: float) -> "OutlineMatch | None":
+        """This match with every shape a fit of ``within`` reads compared; None where it cannot say."""
+        if within <= self.within:
+            return self
+        if self.compared is None:
+            return None
+        shifts, dist, valid = self.compared.upto(within)
+        return replace(self, shifts=shifts, dist=dist, valid=valid, within=float(within))
 
 
 def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
                   outline_noise_px: float = 0.25, outline_noise_floor: float = 0.003,
-                  corner_radius_px: float = 1.0) -> OutlineMatch:
-    """Compare a closed outline with every shape of ``library``.
+                  corner_radius_px: float = 1.0, within: float | None = None, faces=VIEWS) -> OutlineMatch:
+    """Compare a closed outline with every shape of ``library`` (or with those a fit can need).
 
     Parameters
     ----------
@@ -664,6 +808,13 @@ def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
     corner_radius_px : float
         Radius (pixels) to which blur and thresholding round the corners
         of an outline; the models are compared at the nearest rounding level.
+    within : float, optional
+        None compares every shape at every shift. A number compares only the shapes whose
+        exact distances a fit with interior gate plus tolerance up to ``within`` (chi-square
+        units) over the views ``faces`` can read (:func:`outline_candidates_within`); the fit's
+        result is the same as with every shape compared.
+    faces : tuple of str
+        With ``within``: the views of the fit.
 
     Returns
     -------
@@ -675,8 +826,13 @@ def match_outline(contour_xy, library: ModelLibrary, pixel_scale: float = 1.0,
     tau = max(outline_noise_px * pixel_scale / math.sqrt(area), outline_noise_floor)
     ecd_px = math.sqrt(4.0 * area / math.pi) / pixel_scale
     level = int(np.argmin(np.abs(np.asarray(ROUNDING_LEVELS) - corner_radius_px / ecd_px)))
-    shifts, dist, valid = outline_candidates(sig, library.tables, level)
-    return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area), level)
+    if within is None:
+        shifts, dist, valid = outline_candidates(sig, library.tables, level)
+        return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area), level)
+    compared = BoundedOutline(sig, library, level, tau, faces)
+    shifts, dist, valid = compared.upto(within)
+    return OutlineMatch(sig, shifts, dist, valid, float(tau), float(area), level, float(within), tuple(faces),
+                        compared)
 
 
 def fit_alpha(contour_xy, interior: Interior | None = None, **options) -> AlphaFit:
@@ -771,7 +927,11 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
         Default: :func:`model_library` with its defaults.
     match : OutlineMatch, optional
         :func:`match_outline` of ``contour_xy`` with ``library`` when the
-        caller has it already (it is then not computed again).
+        caller has it already (it is then not computed again). A match of
+        fewer shapes (``within``) is taken on to the shapes this fit reads
+        (:meth:`OutlineMatch.reaching`: ``tolerance`` without the interior,
+        :func:`outline_reach` with it), or compared again in full where it
+        was made for other views.
     tolerance : float
         Score difference bounding ``alpha_lo``/``alpha_hi``.
     outline_noise_px, outline_noise_floor, corner_radius_px : float
@@ -839,12 +999,18 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
     if search not in ("coarse", "exhaustive", "quick"):
         raise ValueError(f"search must be 'coarse', 'exhaustive' or 'quick', got {search!r}")
     tab = lib.tables
+    allowed = _allowed_views(tuple(faces))                   # the views asked for, by index
+    if match is not None and math.isfinite(match.within):
+        # a match of the shapes this fit can read: within the tolerance without the interior, within
+        # the interior gate plus the tolerance with it (the gated candidates), over the same views
+        use_int = interior is not None and interior.value.size >= 30
+        reach = outline_reach(tolerance) if use_int else float(tolerance)
+        match = match.reaching(reach) if np.array_equal(_allowed_views(match.faces), allowed) else None
     if match is None:
         match = match_outline(contour_xy, lib, pixel_scale, outline_noise_px, outline_noise_floor,
                               corner_radius_px)
     n = lib.signatures.shape[-1]
     sig, tau, shifts, dist = match.signature, match.tau, match.shifts, match.dist
-    allowed = _allowed_views(tuple(faces))                   # the views asked for, by index
     shape_ok = allowed[tab.face_id]
     if not shape_ok.any():
         raise ValueError(f"faces must include one of {VIEWS}, got {faces!r}")
@@ -937,6 +1103,16 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
 _QUICK_MODELS = 8
 #: Outline score (chi-square units) above the best beyond which a model's interior is never placed.
 _INTERIOR_GATE = 25.0
+
+
+def outline_reach(tolerance: float = 4.0) -> float:
+    """Outline score (chi-square units above the best) up to which a fit with ``tolerance`` reads single shapes.
+
+    The interior gate plus ``tolerance``: the ``within`` of :func:`match_outline` for a match that
+    :func:`fit_alpha_steps`, :func:`class_scores` and :func:`outline_settles` read as if every shape
+    had been compared.
+    """
+    return _INTERIOR_GATE + float(tolerance)
 def _rss_of(tab, shifts, pairs, interior, geo):
     """Interior RSS of the (shape, slot) ``pairs`` (k, 2) placed over ``interior`` (a generator).
 
@@ -1272,6 +1448,12 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
         NaN, e.g. a square: alpha <= 1.5). The full fit then names the same
         class (its best model is one of those) and could at most narrow a
         range that only bounds alpha; it is skipped.
+
+    Notes
+    -----
+    The classes of the models within the gate are those whose least score lies within it, so
+    a fit on a match that compared only the shapes within ``tolerance`` and the least of each
+    class (:func:`match_outline` with ``within``) gives the same answer.
     """
     near = fit.score <= tolerance + _INTERIOR_GATE
     cls = np.where(library.alphas <= CUBE_ALPHA_MAX, 0, np.where(library.alphas < OCTAHEDRON_ALPHA, 1, 2))
