@@ -42,9 +42,10 @@ not its histogram:
    over the whole frame (:data:`MIN_GAP_SPREAD` of an 8 x 8 grid of
    blocks); at least :data:`MIN_PARTS` cores and as many particles lie clear
    of the frame's edge; and those particles look like a packing: of similar
-   size (coefficient of variation of their areas, from the median absolute
-   deviation (:func:`robust_cov`, segment-grains 2.8: a few parts left joined
-   do not count), at most :data:`MAX_AREA_COV`) and compact (median solidity at least
+   size (coefficient of variation of their areas at most :data:`MAX_AREA_COV`;
+   since segment-grains 2.8 the smaller of std / mean and the median absolute
+   deviation's form, :func:`robust_cov`, so a few parts left joined do not
+   count) and compact (median solidity at least
    :data:`MIN_SOLIDITY`). The pockets of background between crossing rods,
    or a frame of sparse grains whose background is the thick class, fail
    the count, size or shape tests.
@@ -278,17 +279,21 @@ def split_by_distance(dist: np.ndarray, mask: np.ndarray, radius_px: float, min_
 
 
 def robust_cov(areas: np.ndarray) -> float:
-    """Coefficient of variation of areas from their median absolute deviation.
+    """Coefficient of variation of areas that a few outliers do not inflate.
 
-    ``1.4826 * median(|a - median(a)|) / median(a)``: for normally distributed
-    areas the same as ``std / mean`` (1.4826 = 1 / Phi^-1(3/4), the MAD
-    estimator of a normal sd; common practice), but a few parts that stayed
-    joined (two or four touching particles where the distance map has no
-    saddle) do not make a packing of equal particles look mixed.
+    The smaller of ``std / mean`` and ``1.4826 * median(|a - median(a)|) /
+    median(a)``: for normally distributed areas both estimate the same COV
+    (1.4826 = 1 / Phi^-1(3/4), the MAD estimator of a normal sd; common
+    practice). A few parts that stayed joined (two or four touching
+    particles where the distance map has no saddle) inflate the first, not
+    the second; a small sample of two sizes can inflate the second, not the
+    first.
     """
     a = np.asarray(areas, float)
     med = float(np.median(a))
-    return 1.4826 * float(np.median(np.abs(a - med))) / med if med > 0 else float("inf")
+    if a.size == 0 or med <= 0:
+        return float("inf")
+    return min(float(a.std() / a.mean()), 1.4826 * float(np.median(np.abs(a - med))) / med)
 
 
 def part_shapes(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
