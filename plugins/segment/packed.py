@@ -544,8 +544,8 @@ def split_raft(image: np.ndarray, mask: np.ndarray, min_area: float) -> np.ndarr
     return best
 
 
-def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float
-                ) -> tuple[np.ndarray, np.ndarray, int]:
+def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float,
+                boxes: list | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """Divide every labelled object that is a raft of packed particles (:func:`split_raft`).
 
     An object is looked at when it has room for :data:`RAFT_MIN_PARTS`
@@ -569,6 +569,9 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
         Whether each object was cut from a larger component.
     min_area : float
         Smallest particle area, px.
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)`` when the caller has it (every label present): the
+        areas are then counted in the boxes, not over the whole frame (the same result).
 
     Returns
     -------
@@ -579,16 +582,23 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
     rafts : int
         Objects divided.
     """
-    n = int(labels.max()) if labels.size else 0
+    if boxes is not None and all(b is not None for b in boxes):
+        n = len(boxes)  # areas[0] (the background) is never read
+        areas = np.array([0] + [np.count_nonzero(labels[b] == k) for k, b in enumerate(boxes, start=1)], np.int64)
+    else:
+        n = int(labels.max()) if labels.size else 0
+        boxes = None
     if n == 0:
         return labels, split, 0
-    areas = np.bincount(labels.ravel(), minlength=n + 1)
+    if boxes is None:
+        areas = np.bincount(labels.ravel(), minlength=n + 1)
     least = RAFT_MIN_PARTS * min_area
     if n >= RAFT_MIN_PARTS:
         least = max(least, RAFT_AREA_FACTOR * float(np.median(areas[1:])))
     if not (areas[1:] >= least).any():
         return labels, split, 0
-    boxes = ndi.find_objects(labels)
+    if boxes is None:
+        boxes = ndi.find_objects(labels)
     out = np.asarray(labels, np.int32).copy()
     was_split = np.r_[False, np.asarray(split, bool)]
     next_id, rafts = n + 1, 0

@@ -516,7 +516,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         split = flags["split"][1:]
         boxes, cluster_of = noted["boxes"], noted["cluster_of"]
     split_by_label = flags.get("split")
-    labels, split, n_rafts = split_rafts(arr, labels, split, smallest_grain_area(p, pixel_size_nm))
+    labels, split, n_rafts = split_rafts(arr, labels, split, smallest_grain_area(p, pixel_size_nm), boxes)
     if n_rafts:
         notes.append(f"segment-grains: {n_rafts} raft(s) of packed particles divided at their gaps")
         boxes = cluster_of = None
