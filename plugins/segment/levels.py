@@ -72,8 +72,9 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = LEV
         Above this many pixels a regular subsample is used (every k-th row and column: between a
         quarter of this and this many pixels). Frames of up to 600 000 px (774 px square) are taken
         whole, as before segment-grains 2.8; on a 2048 px frame every third row and column
-        (466 489 px instead of 1 048 576) moved the noise threshold by at most 0.2 background
-        sigmas and Otsu's threshold by at most 0.6 % on the profile frames, at less than half the cost.
+        (466 489 px instead of 1 048 576) moved the noise threshold by at most 0.25 background
+        sigmas and Otsu's threshold by at most 0.01 (image units, grains about 1) on rendered frames
+        (tests/test_segment_passes.py), at less than half the cost.
     faint_k : float, optional
         Background sigmas of the lower threshold at which objects wholly
         below the noise threshold are found (``faint``); None: none.
