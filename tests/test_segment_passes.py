@@ -180,3 +180,72 @@ def test_frame_levels_subsample_tolerance():
     assert abs(new["noise"] - old["noise"]) <= 0.25 * old["sigma"]
     assert abs(new["faint"] - old["faint"]) <= 0.25 * old["sigma"]
     assert new["otsu"] == pytest.approx(old["otsu"], abs=0.01)
+
+
+@pytest.mark.parametrize("radius", [1, 1.5, 3, 4.2])
+def test_dilation_read_at_pixels_equals_the_whole_dilation(radius):
+    # reference: disk_morphology.dilate_disk (equal to scipy's binary_dilation by the disk) read at the pixels
+    from grainhabit.plugins.segment.disk_morphology import dilate_disk
+    from grainhabit.plugins.segment.foreground import dilated_at
+
+    rng = np.random.default_rng(int(10 * radius))
+    for shape, few in (((300, 410), 0.002), ((300, 410), 0.2), ((9, 13), 0.3)):
+        m = rng.random(shape) > 0.97
+        at = np.flatnonzero(rng.random(shape) < few)
+        at = np.r_[at, 0, m.size - 1]  # corners: the frame's edge counts as nothing
+        np.testing.assert_array_equal(dilated_at(m, radius, at), dilate_disk(m, radius).ravel()[at])
+
+
+def _half_height_mask_reference(image, noise_level, edge_level=0.5, faint_level=None, faint_min_area=0.0):
+    """segment-grains 2.7's half_height_mask: the stain test over the whole frame (two frame dilations)."""
+    from grainhabit.plugins.segment import foreground as fg
+    from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
+
+    weak = image > noise_level
+    if faint_level is not None and faint_level < noise_level:
+        weak |= fg.faint_objects(image > faint_level, weak, faint_min_area)
+    lab, n = ndi.label(weak, structure=np.ones((3, 3), bool))
+    if n == 0:
+        return weak
+    peak = np.full(n + 1, -np.inf, np.float32)
+    at = np.flatnonzero(weak)
+    own, value = lab.ravel()[at], image.ravel()[at]
+    np.maximum.at(peak, own, value)
+    peak[0] = 0.0
+    deep = erode_disk(weak, fg.EDGE_BAND_PX, 1)
+    strong = np.zeros(weak.shape, bool)
+    strong.ravel()[at[value > edge_level * peak[own]]] = True
+    faint = np.zeros(weak.shape, bool)
+    faint.ravel()[at[value <= fg.STAIN_SHARE * peak[own]]] = True
+    stain = faint & deep & ~dilate_disk(strong, fg.STRONG_REACH_PX)
+    if stain.any():
+        deep &= ~fg.diffuse_parts(stain, dilate_disk(weak & ~deep, 1.5))
+    deep |= strong
+    return deep
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_stain_test_at_its_pixels_equals_the_whole_frame_test(seed):
+    # reference: the whole-frame form above on frames with faint stains beside bright grains (invented): a
+    # diffuse ring of low level round some grains and dark crevices inside others
+    from grainhabit.plugins.segment.foreground import half_height_mask
+
+    rng = np.random.default_rng(seed)
+    size = 400
+    yy, xx = np.mgrid[:size, :size]
+    img = np.zeros((size, size))
+    for _ in range(14):
+        y, x, r = rng.uniform(40, size - 40), rng.uniform(40, size - 40), rng.uniform(8, 22)
+        d = np.hypot(yy - y, xx - x)
+        img = np.maximum(img, np.where(d <= r, 1.0, 0.0))
+        if rng.random() < 0.5:  # a faint stain winding round the grain
+            img = np.maximum(img, np.where((d > r) & (d <= 2.2 * r) & (np.sin(3 * np.arctan2(yy - y, xx - x)) > 0),
+                                           0.15, 0.0))
+        elif rng.random() < 0.5:  # a dark crevice inside the grain
+            img = np.where((d < 0.5 * r) & (np.abs(yy - y) < 2), 0.12, img)
+    img = ndi.gaussian_filter(img, 1.0) + rng.normal(0, 0.01, img.shape)
+    img = img.astype(np.float32)
+    got = half_height_mask(img, 0.05, 0.5, 0.04, 30.0)
+    ref = _half_height_mask_reference(img, 0.05, 0.5, 0.04, 30.0)
+    np.testing.assert_array_equal(got, ref)
+    assert (got != (img > 0.05)).any()  # the skirts and stains were cut
