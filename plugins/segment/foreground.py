@@ -213,12 +213,10 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     # on 2048 px; equal to it, tests/test_speed_kernels.py)
     at = np.flatnonzero(weak)
     own, value = lab.ravel()[at], image.ravel()[at]
-    # grouped by label (a stable sort of the raster-ordered labels is mostly runs), one maximum per run:
-    # 3x cheaper than numpy's maximum.at on a frame's long runs of one label; a maximum is a maximum
-    order = np.argsort(own, kind="stable")
-    grouped = own[order]
-    starts = np.flatnonzero(np.r_[True, grouped[1:] != grouped[:-1]])
-    peak[grouped[starts]] = np.maximum.reduceat(value[order], starts)
+    # one maximum per run of one label along the rows (numpy's reduceat), then the runs' maxima gathered by
+    # label (numpy's maximum.at over ~1e4 runs, not ~6e5 pixels; no sort): a maximum is a maximum in any order
+    starts = np.flatnonzero(np.r_[True, own[1:] != own[:-1]])
+    np.maximum.at(peak, own[starts], np.maximum.reduceat(value, starts))
     peak[0] = 0.0
     # only the skirt of each component (within EDGE_BAND_PX of its outline) is cut at the level: inner
     # facet lines and texture deeper inside never split a grain
