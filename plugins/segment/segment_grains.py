@@ -479,9 +479,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
                      f"{100 * field.cover:.0f} % of the frame, gaps {field.gap_radius_px:.1f} px against "
                      f"{field.radius_px:.1f} px)")
         labels = field.labels
-        labels, split, notes, _ = drop_drawn_marks(arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool),
-                                                   None, np.zeros(int(labels.max()) + 1, bool), [], notes)
-        return drop_debris(labels, split, notes, p)
+        return drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool), None,
+                                             np.zeros(int(labels.max()) + 1, bool), [], notes), p)
     empty = check_frame(arr, levels, p)
     if empty:
         notes.append(empty)
@@ -522,17 +521,17 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         boxes = cluster_of = None
         if clusters is not None:
             split_by_label = np.r_[False, split]
-    labels, split, notes, boxes = drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, split_by_label,
-                                                   dropped, notes, boxes, cluster_of)
-    return drop_debris(labels, split, notes, p, boxes)
+    return drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters, split_by_label, dropped,
+                                         notes, boxes, cluster_of), p)
 
 
-def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, p: dict, boxes: list | None = None
+def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, boxes: list | None, p: dict
                 ) -> tuple[np.ndarray, np.ndarray, list[str]]:
     """Drop objects under ``min_area_share`` of the frame's typical grain area and note how many.
 
-    See :mod:`grainhabit.plugins.segment.population`. ``boxes`` (``find_objects(labels)``, labels
-    numbered in row-major order of their first pixel), when known, confine the work to them.
+    See :mod:`grainhabit.plugins.segment.population`. The first four arguments are what
+    :func:`drop_drawn_marks` returns: ``boxes`` (``find_objects(labels)``, labels numbered in row-major
+    order of their first pixel), when known, confine the work to them; None: the whole-frame path.
     """
     if boxes is not None and all(b is not None for b in boxes):
         labels, split, n = drop_below_population_boxed(labels, split, boxes, p["min_area_share"])
