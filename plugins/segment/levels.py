@@ -74,7 +74,8 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = LEV
         whole, as before segment-grains 2.8; on a 2048 px frame every third row and column
         (466 489 px instead of 1 048 576) moved the noise threshold by at most 0.25 background
         sigmas and Otsu's threshold by at most 0.01 (image units, grains about 1) on rendered frames
-        (tests/test_segment_passes.py), at less than half the cost.
+        (tests/test_segment_passes.py), at less than half the cost; the labels of four rendered 2048 px
+        frames kept their grain counts, with at most 27 of ~5e5 labelled pixels changed (ECD within 0.5 %).
     faint_k : float, optional
         Background sigmas of the lower threshold at which objects wholly
         below the noise threshold are found (``faint``); None: none.
