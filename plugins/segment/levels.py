@@ -54,7 +54,11 @@ def otsu_threshold(image: np.ndarray, max_samples: int = 2_000_000) -> float:
     return float(threshold_otsu(sub))
 
 
-def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_000_000,
+#: Pixels of the regular subsample the frame-wide levels are taken on (segment-grains 2.8; 2e6 before).
+LEVEL_MAX_SAMPLES = 600_000
+
+
+def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = LEVEL_MAX_SAMPLES,
                  faint_k: float | None = None) -> dict:
     """Frame-wide threshold levels, computed once and shared by all tiles.
 
@@ -65,7 +69,13 @@ def frame_levels(image: np.ndarray, noise_k: float = 5.0, max_samples: int = 2_0
     noise_k : float
         Background sigmas above the background mode for the noise threshold.
     max_samples : int
-        Above this many pixels a regular subsample is used.
+        Above this many pixels a regular subsample is used (every k-th row and column: between a
+        quarter of this and this many pixels). Frames of up to 600 000 px (774 px square) are taken
+        whole, as before segment-grains 2.8; on a 2048 px frame every third row and column
+        (466 489 px instead of 1 048 576) moved the noise threshold by at most 0.25 background
+        sigmas and Otsu's threshold by at most 0.01 (image units, grains about 1) on rendered frames
+        (tests/test_segment_passes.py), at less than half the cost; the labels of four rendered 2048 px
+        frames kept their grain counts, with at most 27 of ~5e5 labelled pixels changed (ECD within 0.5 %).
     faint_k : float, optional
         Background sigmas of the lower threshold at which objects wholly
         below the noise threshold are found (``faint``); None: none.

@@ -78,6 +78,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.foreground import fill_holes
 from grainhabit.plugins.segment.tiling import renumber_raster
 
 #: Least share of the frame covered by the thick class.
@@ -372,8 +373,10 @@ def _test(g: np.ndarray, min_area: float, thin_gaps: bool = True) -> PackedField
     # rims close; where they do not, the gaps are still the frame's thin dark valleys, which a black
     # top-hat keeps (what is darker than its window's closing and narrower than the window). The
     # candidate that passes every test with the most particles is taken
-    ringed = ndi.binary_fill_holes(upper)
-    if upper.mean() >= MIN_COVER or ringed.mean() - upper.mean() < RING_GAIN:
+    if upper.mean() >= MIN_COVER:
+        return out
+    ringed = fill_holes(upper)  # scipy's binary_fill_holes by one labelling (foreground.fill_holes)
+    if ringed.mean() - upper.mean() < RING_GAIN:
         return out
     best = _judge(ringed, min_area, bright=True, thin_gaps=thin_gaps)
     for size in TOPHAT_SIZES_PX:
@@ -426,7 +429,7 @@ def _judge(upper: np.ndarray, min_area: float, bright: bool | None = None, thin_
         out.reason = "gaps do not reach over the frame"
         return out
     # a speck of the gaps' class inside a particle (a dark core, a pit) is part of the particle
-    holes = ndi.binary_fill_holes(grains) & ~grains
+    holes = fill_holes(grains) & ~grains
     small = holes & ~_large(holes, min_area)
     solid = grains | small
     dist = ndi.distance_transform_edt(solid) if small.any() else (d_up if up_is_grains else d_low)
@@ -579,8 +582,8 @@ def split_raft(image: np.ndarray, mask: np.ndarray, min_area: float) -> np.ndarr
     return best
 
 
-def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float
-                ) -> tuple[np.ndarray, np.ndarray, int]:
+def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float,
+                boxes: list | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """Divide every labelled object that is a raft of packed particles (:func:`split_raft`).
 
     An object is looked at when it has room for :data:`RAFT_MIN_PARTS`
@@ -604,6 +607,9 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
         Whether each object was cut from a larger component.
     min_area : float
         Smallest particle area, px.
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)`` when the caller has it (every label present): the
+        areas are then counted in the boxes, not over the whole frame (the same result).
 
     Returns
     -------
@@ -614,16 +620,23 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
     rafts : int
         Objects divided.
     """
-    n = int(labels.max()) if labels.size else 0
+    if boxes is not None and all(b is not None for b in boxes):
+        n = len(boxes)  # areas[0] (the background) is never read
+        areas = np.array([0] + [np.count_nonzero(labels[b] == k) for k, b in enumerate(boxes, start=1)], np.int64)
+    else:
+        n = int(labels.max()) if labels.size else 0
+        boxes = None
     if n == 0:
         return labels, split, 0
-    areas = np.bincount(labels.ravel(), minlength=n + 1)
+    if boxes is None:
+        areas = np.bincount(labels.ravel(), minlength=n + 1)
     least = RAFT_MIN_PARTS * min_area
     if n >= RAFT_MIN_PARTS:
         least = max(least, RAFT_AREA_FACTOR * float(np.median(areas[1:])))
     if not (areas[1:] >= least).any():
         return labels, split, 0
-    boxes = ndi.find_objects(labels)
+    if boxes is None:
+        boxes = ndi.find_objects(labels)
     out = np.asarray(labels, np.int32).copy()
     was_split = np.r_[False, np.asarray(split, bool)]
     next_id, rafts = n + 1, 0
