@@ -482,10 +482,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
                      f"of the distance map ({'bright' if field.bright else 'dark'} particles covering "
                      f"{100 * field.cover:.0f} % of the frame, gaps {field.gap_radius_px:.1f} px against "
                      f"{field.radius_px:.1f} px)")
-        labels = field.labels
-        return place_outlines(arr, *drop_debris(*drop_drawn_marks(
-            arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool), None,
-            np.zeros(int(labels.max()) + 1, bool), [], notes), p), p)
+        return finish_field(arr, raw, levels, p, field.labels, notes)
     try:
         empty = check_frame(arr, levels, p)
     except ValueError:
@@ -496,10 +493,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     else:
         field = second_look(arr, raw, pixel_size_nm, p, "nothing stands above its noise", notes) if empty else None
     if field is not None:
-        labels = field.labels
-        return place_outlines(arr, *drop_debris(*drop_drawn_marks(
-            arr, raw, levels, p, labels, np.zeros(int(labels.max()), bool), None,
-            np.zeros(int(labels.max()) + 1, bool), [], notes), p), p)
+        return finish_field(arr, raw, levels, p, field.labels, notes)
     if empty:
         notes.append(empty)
         return np.zeros(arr.shape, np.int32), np.zeros(0, bool), notes
@@ -541,6 +535,14 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
             split_by_label = np.r_[False, split]
     return place_outlines(arr, *drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters,
                                                               split_by_label, dropped, notes, boxes, cluster_of), p), p)
+
+
+def finish_field(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict, labels: np.ndarray,
+                 notes: list) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """The last steps for the parts of a packed field (its own or a second look's): marks, debris, outlines."""
+    n = int(labels.max())
+    return place_outlines(arr, *drop_debris(*drop_drawn_marks(
+        arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p), p)
 
 
 def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict
