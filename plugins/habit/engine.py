@@ -567,17 +567,10 @@ def outline_candidates_within(sig, library: ModelLibrary, level: int, tau: float
 
     Parameters
     ----------
-    sig : ndarray, shape (n,)
-        Observed radial signature.
-    library : ModelLibrary
-    level : int
-        Corner rounding level.
-    tau : float
-        Outline misfit unit of the grain.
+    sig, library, level, tau, faces
+        As for :class:`BoundedOutline`.
     within : float
         Interior gate plus tolerance of the fit (chi-square units; :func:`fit_alpha_steps`).
-    faces : tuple of str
-        Views of the fit.
 
     Returns
     -------

@@ -79,6 +79,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.foreground import fill_holes
+from grainhabit.plugins.segment.population import box_areas
 from grainhabit.plugins.segment.tiling import renumber_raster
 
 #: Least share of the frame covered by the thick class.
@@ -622,7 +623,7 @@ def split_rafts(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_ar
     """
     if boxes is not None and all(b is not None for b in boxes):
         n = len(boxes)  # areas[0] (the background) is never read
-        areas = np.array([0] + [np.count_nonzero(labels[b] == k) for k, b in enumerate(boxes, start=1)], np.int64)
+        areas = np.r_[0, box_areas(labels, boxes)]
     else:
         n = int(labels.max()) if labels.size else 0
         boxes = None

@@ -594,8 +594,7 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
     n = len(boxes)
     if n == 0 or share <= 0:
         return labels, split, 0
-    areas = np.array([np.count_nonzero(labels[b] == k) for k, b in enumerate(boxes, start=1)], np.int64)
-    drop = population.below_population(areas, share)
+    drop = population.below_population(population.box_areas(labels, boxes), share)
     if not drop.any():
         return labels, split, 0
     keep = np.r_[False, ~drop]
