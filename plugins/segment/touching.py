@@ -34,6 +34,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.band_flood import watershed_window
+from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
 #: Fractions of the component's largest inscribed radius tried as h.
@@ -306,7 +308,6 @@ def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
 def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> list[np.ndarray] | None:
     """Cut a shape along the segment p-q; two parts or None."""
     from skimage.draw import line
-    from skimage.segmentation import watershed
 
     r0, c0 = np.clip(np.round(p).astype(int), 0, np.array(mask.shape) - 1)
     r1, c1 = np.clip(np.round(q).astype(int), 0, np.array(mask.shape) - 1)
@@ -327,7 +328,7 @@ def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> lis
     markers = np.zeros(mask.shape, np.int32)
     markers[pieces == order[0] + 1] = 1
     markers[pieces == order[1] + 1] = 2
-    ws = watershed(np.zeros(mask.shape, np.float32), markers, mask=mask)
+    ws = watershed_window(np.zeros(mask.shape, np.float32), markers, mask)  # skimage's watershed
     return [ws == 1, ws == 2]
 
 
@@ -994,18 +995,18 @@ def _distance_floods(dist: np.ndarray, mask: np.ndarray, budget: list | None = N
     n : int
         Number of parts.
     """
-    from skimage.morphology import h_maxima
-    from skimage.segmentation import watershed
-
     dmax = float(dist.max())
+    squared = squared_distances(dist)
     for frac in H_FRACTIONS:
         h = max(frac * dmax, H_MIN_PX)
         if h >= dmax:
             continue
-        markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
+        # skimage.morphology.h_maxima and skimage.segmentation.watershed, without their set-up costs
+        # (tests/test_split_kernels_exact.py)
+        markers, n = ndi.label(distance_h_maxima(dist, h, squared), structure=_EIGHT)
         if n < 2:
             continue
         if budget is not None:
             budget[0] -= 1
-        ws = watershed(-dist, markers, mask=mask)
+        ws = watershed_window(-dist, markers, mask)
         yield ws, [ws == k for k in range(1, n + 1)], n

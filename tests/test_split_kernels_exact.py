@@ -1,0 +1,170 @@
+"""Kernels of the splitting of touching grains (issue 19, eighth round), each against the form it replaces.
+
+References named beside each check: scikit-image's ``h_maxima`` and ``watershed`` (the distance-map
+floods), scipy's ``ConvexHull`` (Quickhull, which gave the hull's vertices before) and scikit-image's
+``convex_hull_image``. Shapes are invented (random blobs, discs in rows and heaps).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.segment import distance_maxima, hull_fill, touching
+
+
+def _blobs(seed, n=40):
+    """Random shapes: smoothed noise at several scales, touching discs, sparse pixels (invented)."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        shape = tuple(int(v) for v in rng.integers(2, 90, 2))
+        kind = rng.random()
+        if kind < 0.6:
+            m = ndi.gaussian_filter(rng.random(shape), rng.uniform(0.7, 6.0)) > rng.uniform(0.45, 0.55)
+        elif kind < 0.85:
+            yy, xx = np.mgrid[:shape[0], :shape[1]]
+            m = np.zeros(shape, bool)
+            for _ in range(int(rng.integers(1, 7))):
+                cy, cx = rng.uniform(0, shape[0]), rng.uniform(0, shape[1])
+                m |= np.hypot(yy - cy, xx - cx) < rng.uniform(2, 20)
+        else:
+            m = rng.random(shape) > rng.uniform(0.7, 0.97)
+        out.append(m)
+    return out
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_distance_h_maxima_equals_scikit_image_h_maxima(seed):
+    # reference library: skimage.morphology.h_maxima on the Euclidean distance map (scipy's
+    # distance_transform_edt), at the h values the splitter uses and at values on the map's own levels
+    # (sqrt of whole numbers: ties between seed and mask values)
+    from skimage.morphology import h_maxima
+
+    rng = np.random.default_rng(100 + seed)
+    checked = 0
+    for m in _blobs(seed):
+        dist = ndi.distance_transform_edt(m)
+        dmax = float(dist.max())
+        hs = [max(f * dmax, touching.H_MIN_PX) for f in touching.H_FRACTIONS]
+        hs += [1.0, 2.0, float(np.sqrt(5.0)), float(rng.uniform(0.1, 3.0)), dmax + 1.0]
+        squared = distance_maxima.squared_distances(dist)
+        assert squared is not None
+        for h in hs:
+            want = h_maxima(dist, h)
+            got = distance_maxima.distance_h_maxima(dist, h)
+            assert got.dtype == want.dtype
+            np.testing.assert_array_equal(got, want)
+            np.testing.assert_array_equal(distance_maxima.distance_h_maxima(dist, h, squared), want)
+            checked += 1
+    assert checked >= 200
+
+
+def test_distance_h_maxima_of_other_images_takes_scikit_image():
+    # reference library: skimage.morphology.h_maxima; an image that is no distance map goes the public way
+    from skimage.morphology import h_maxima
+
+    rng = np.random.default_rng(3)
+    image = ndi.gaussian_filter(rng.random((40, 50)), 2.0)
+    assert distance_maxima.squared_distances(image) is None
+    np.testing.assert_array_equal(distance_maxima.distance_h_maxima(image, 0.01), h_maxima(image, 0.01))
+    assert distance_maxima.squared_distances(np.float32(image)) is None
+
+
+def _floods_reference(dist, mask):
+    """touching._distance_floods as it was: scikit-image's h_maxima and watershed."""
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    dmax = float(dist.max())
+    for frac in touching.H_FRACTIONS:
+        h = max(frac * dmax, touching.H_MIN_PX)
+        if h >= dmax:
+            continue
+        markers, n = ndi.label(h_maxima(dist, h), structure=np.ones((3, 3), bool))
+        if n < 2:
+            continue
+        ws = watershed(-dist, markers, mask=mask)
+        yield ws, n
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_distance_floods_equal_scikit_image_floods(seed):
+    # reference library: skimage.morphology.h_maxima + skimage.segmentation.watershed (the form replaced)
+    floods = 0
+    for m in _blobs(50 + seed, n=30):
+        m = ndi.binary_fill_holes(m)
+        dist = ndi.distance_transform_edt(m)
+        want = list(_floods_reference(dist, m))
+        got = list(touching._distance_floods(dist, m))
+        assert len(got) == len(want)
+        for (ws, parts, n), (ws_ref, n_ref) in zip(got, want):
+            assert n == n_ref
+            assert ws.dtype == ws_ref.dtype
+            np.testing.assert_array_equal(ws, ws_ref)
+            floods += 1
+    assert floods > 5
+
+
+def _quickhull_vertices(mask):
+    """hull_fill.hull_vertices2 as it was: Quickhull (scipy.spatial.ConvexHull) over the same points."""
+    from scipy.spatial import ConvexHull
+
+    m = np.asarray(mask, bool)
+    rows, cols = np.nonzero(m)
+    # every pixel's four edge midpoints, doubled (a superset of the points hull_vertices2 keeps)
+    ys = np.concatenate([2 * rows - 1, 2 * rows + 1, 2 * rows, 2 * rows])
+    xs = np.concatenate([2 * cols, 2 * cols, 2 * cols - 1, 2 * cols + 1])
+    pts = np.unique(np.stack([ys, xs], axis=1), axis=0)
+    return pts[ConvexHull(pts.astype(float)).vertices]
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_hull_vertices_equal_quickhull(seed):
+    # reference library: scipy.spatial.ConvexHull (Quickhull) of the doubled edge midpoints of every pixel;
+    # the same vertex set, in order around the hull, and the same hull image as scikit-image's
+    # convex_hull_image
+    from skimage.morphology import convex_hull_image
+
+    shapes = _blobs(200 + seed) + [np.ones((1, 1), bool), np.ones((1, 7), bool), np.ones((6, 1), bool),
+                                   np.eye(5, dtype=bool), np.eye(6, dtype=bool)[::-1]]
+    for m in shapes:
+        if not m.any():
+            continue
+        got = hull_fill.hull_vertices2(m)
+        want = _quickhull_vertices(m)
+        assert set(map(tuple, got.tolist())) == set(map(tuple, want.tolist()))
+        # in order around the hull: every turn the same way (no collinear vertex kept)
+        if len(got) >= 3:
+            e = np.roll(got, -1, axis=0) - got
+            turn = e[:, 0] * np.roll(e, -1, axis=0)[:, 1] - e[:, 1] * np.roll(e, -1, axis=0)[:, 0]
+            assert (turn > 0).all() or (turn < 0).all()
+        np.testing.assert_array_equal(hull_fill.convex_hull_mask(m), convex_hull_image(m))
+
+
+def test_split_component_equals_the_scikit_image_kernels(monkeypatch):
+    # reference library: skimage.morphology.h_maxima and skimage.segmentation.watershed put back in the
+    # splitter; the parts of touching discs in chains and heaps (invented shapes) are the same
+    from skimage.morphology import h_maxima
+    from skimage.segmentation import watershed
+
+    rng = np.random.default_rng(9)
+    yy, xx = np.mgrid[:120, :160]
+    shapes = []
+    for _ in range(8):
+        m = np.zeros((120, 160), bool)
+        for _ in range(int(rng.integers(2, 9))):
+            m |= np.hypot(yy - rng.uniform(20, 100), xx - rng.uniform(20, 140)) < rng.uniform(8, 22)
+        lab, n = ndi.label(m)
+        big = np.argmax(np.bincount(lab.ravel())[1:]) + 1
+        shapes.append(ndi.binary_fill_holes(lab == big))
+    got = [touching.split_component(m, 30.0) for m in shapes]
+    monkeypatch.setattr(touching, "distance_h_maxima", lambda dist, h, squared=None: h_maxima(dist, h))
+    monkeypatch.setattr(touching, "watershed_window", lambda image, seeds, mask: watershed(image, seeds, mask=mask))
+    want = [touching.split_component(m, 30.0) for m in shapes]
+    assert sum(len(p) for p in want) > len(shapes)  # some were split
+    for g, w in zip(got, want):
+        assert len(g) == len(w)
+        for a, b in zip(g, w):
+            np.testing.assert_array_equal(a, b)
