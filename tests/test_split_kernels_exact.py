@@ -168,3 +168,28 @@ def test_split_component_equals_the_scikit_image_kernels(monkeypatch):
         assert len(g) == len(w)
         for a, b in zip(g, w):
             np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_inscribed_radius_in_the_box_equals_the_whole_transform(seed):
+    # reference library: scipy.ndimage.distance_transform_edt of the whole array (parts touching the array's
+    # edge, parts in pieces, single pixels)
+    for m in _blobs(300 + seed) + [np.ones((5, 7), bool), np.zeros((4, 4), bool)]:
+        want = float(ndi.distance_transform_edt(m).max())
+        assert touching._inscribed_radius(m) == want
+
+
+def test_distance_map_is_the_transform_and_remembered_read_only():
+    # reference library: scipy.ndimage.distance_transform_edt
+    for m in _blobs(400, n=10):
+        want = ndi.distance_transform_edt(m)
+        got = touching._distance_map(m)
+        np.testing.assert_array_equal(got, want)
+        assert touching._distance_map(m.copy()) is got  # the same shape again: not computed twice
+        assert not got.flags.writeable
+    a = np.zeros((6, 6), bool)
+    a[1:4, 1:4] = True
+    b = np.zeros((6, 6), bool)
+    b[2:5, 2:5] = True
+    np.testing.assert_array_equal(touching._distance_map(a), ndi.distance_transform_edt(a))
+    np.testing.assert_array_equal(touching._distance_map(b), ndi.distance_transform_edt(b))

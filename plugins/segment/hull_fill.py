@@ -53,7 +53,7 @@ def hull_vertices2(mask: np.ndarray) -> np.ndarray | None:
     Every line ``Y`` (odd and even) then has one leftmost and one rightmost
     point, in order of ``Y``: the hull's left side is the greatest convex
     function of ``Y`` below the leftmost points, its right side the least
-    concave one above the rightmost (:func:`_convex_minorant`, whole
+    concave one above the rightmost (:func:`_convex_turns`, whole
     numbers only). That gives the vertex set Quickhull [2]_ gave here
     before (``scipy.spatial.ConvexHull``; tests/test_split_kernels_exact.py),
     without its set-up cost on a few hundred points.
@@ -85,50 +85,56 @@ def hull_vertices2(mask: np.ndarray) -> np.ndarray | None:
     on = np.empty(n, bool)
     on[0::2], on[1::2] = near, has
     y_all, x_min, x_max = y_all[on], x_min[on], x_max[on]
-    left_chain = _convex_minorant(y_all, x_min)
-    right_chain = _convex_minorant(y_all, -x_max)
-    ys = np.concatenate([y_all[left_chain], y_all[right_chain[::-1]]])
-    xs = np.concatenate([x_min[left_chain], x_max[right_chain[::-1]]])
-    pts = np.stack([ys, xs], axis=1)
-    # a line with one point (top or bottom) ends both chains: keep it once
-    same = np.all(pts == np.roll(pts, 1, axis=0), axis=1)
-    if same.all():
-        return pts[:1]
-    return pts[~same]
+    # the leftmost points down the lines, then the rightmost ones back up, closed by the first point again
+    # (a top or bottom line with one point gives it once)
+    bottom = 1 if x_max[-1] == x_min[-1] else 0
+    top = 1 if x_max[0] == x_min[0] else 0
+    ys = np.concatenate([y_all, y_all[::-1][bottom:len(y_all) - top], y_all[:1]])
+    xs = np.concatenate([x_min, x_max[::-1][bottom:len(x_max) - top], x_min[:1]])
+    keep = _convex_turns(ys, xs)
+    if keep.size <= 2:
+        return np.stack([ys[:1], xs[:1]], axis=1)  # a single point
+    return np.stack([ys[keep[:-1]], xs[keep[:-1]]], axis=1)
 
 
-def _convex_minorant(y: np.ndarray, x: np.ndarray) -> np.ndarray:
-    """Indices of the vertices of the greatest convex function below the points ``(y_i, x_i)``.
+def _convex_turns(y: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """The vertices of a closed path of points that turns one way only, its straight and inward points left out.
 
     Parameters
     ----------
-    y : ndarray of int64, shape (n,)
-        Strictly increasing.
-    x : ndarray of int64, shape (n,)
+    y, x : ndarray of int64, shape (n,)
+        A shape's leftmost points line by line downwards (``y`` increasing), then its rightmost ones
+        upwards, the first point repeated at the end: the convex hull's left side is the greatest
+        convex function of ``y`` below the first run, its right side the least concave one above the
+        second.
 
     Returns
     -------
     ndarray of intp
-        Increasing indices: the first and the last point and every point where the lower boundary of
-        the points' convex hull (as a function of ``y``) turns; points on a straight stretch are left
-        out, as Quickhull [2]_ leaves them out of a hull's vertices.
+        Increasing indices of the points kept: the first and the last, and every point where the path
+        through the points kept turns strictly the hull's way; the hull's vertices in order around it,
+        points on a straight stretch left out as Quickhull [2]_ leaves them out.
 
     Notes
     -----
-    A point on or above the chord between two other points is no vertex of the minorant (the chord
-    lies on or above it), so every point on or above the chord of its two current neighbours is
-    dropped at once, and the passes repeat until none is: what is left turns strictly at every inner
-    point, which is the minorant's vertices. Exact: whole numbers only.
+    A point on or beyond the chord between two other points of its side is no vertex of that side (the
+    chord lies on or inside the hull), so every point that does not turn strictly the hull's way with
+    its two current neighbours is dropped at once, and the passes repeat until none is. The extreme
+    points (the first and last of each line's run, the ends of the path) always turn the hull's way,
+    so the two sides never mix. Exact: whole numbers only.
     """
     idx = np.arange(y.size)
-    while idx.size > 2:
-        ya, xa = y[idx[:-2]], x[idx[:-2]]
-        dy_i, dx_i = y[idx[1:-1]] - ya, x[idx[1:-1]] - xa
-        dy_b, dx_b = y[idx[2:]] - ya, x[idx[2:]] - xa
-        keep = dx_i * dy_b < dx_b * dy_i  # strictly below the chord (y increasing)
+    yy, xx = y, x
+    while yy.size > 2:
+        ya, xa = yy[:-2], xx[:-2]
+        # strictly left of the chord going down, strictly right of it going up: one cross-product sign
+        keep = (xx[1:-1] - xa) * (yy[2:] - ya) < (xx[2:] - xa) * (yy[1:-1] - ya)
         if keep.all():
             break
-        idx = np.concatenate([idx[:1], idx[1:-1][keep], idx[-1:]])
+        kept = np.empty(yy.size, bool)
+        kept[0] = kept[-1] = True
+        kept[1:-1] = keep
+        idx, yy, xx = idx[kept], yy[kept], xx[kept]
     return idx
 
 

@@ -103,6 +103,8 @@ CLEAR_CONCAVITY = 2.0
 _EIGHT = np.ones((3, 3), bool)
 #: The last shape given to concavity_depth and its depth (key: shape and packed pixels).
 _LAST_DEPTH: list = [None]
+#: The last shape given to _distance_map and its distance map (the same key).
+_LAST_DISTANCE: list = [None]
 
 
 def concavity_depth(mask: np.ndarray) -> float:
@@ -497,6 +499,34 @@ def _box(mask: np.ndarray) -> tuple[slice, slice]:
     return (slice(max(int(rows[0]) - 1, 0), int(rows[-1]) + 2), slice(max(int(cols[0]) - 1, 0), int(cols[-1]) + 2))
 
 
+def _inscribed_radius(part: np.ndarray) -> float:
+    """``distance_transform_edt(part).max()``, the transform taken in the part's box only.
+
+    The box with its margin of one pixel (:func:`_box`) holds every pixel's nearest background pixel
+    or ends at the array's edge: a background pixel beyond a margin row or column is farther than
+    the margin pixel in line with it, so the distances inside the box are those of the whole array.
+    """
+    if not part.any():
+        return 0.0
+    return float(ndi.distance_transform_edt(part[_box(part)]).max())
+
+
+def _distance_map(mask: np.ndarray) -> np.ndarray:
+    """``scipy.ndimage.distance_transform_edt(mask)``, remembered for the last shape asked (read only).
+
+    A component's transform is asked for its inscribed radius (:func:`split_component`) and again by
+    the heap test and the distance-map flood of the same shape (:func:`_split_heap`, :func:`_split`).
+    """
+    key = (mask.shape, np.packbits(mask).tobytes())
+    last = _LAST_DISTANCE[0]  # one tuple, read at once (tiles may run in threads)
+    if last is not None and last[0] == key:
+        return last[1]
+    dist = ndi.distance_transform_edt(mask)
+    dist.flags.writeable = False
+    _LAST_DISTANCE[0] = (key, dist)
+    return dist
+
+
 def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
                     image: np.ndarray | None, keep: bool, fine_area: float) -> list[np.ndarray] | None:
     """The parts of a cut, each concave one split again.
@@ -628,7 +658,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         # notches alone mark a neck only where the cut is narrower than the thicker part (a thin band,
         # a rim or a ring cut across has deep notches on its inner side but no neck)
         if narrow:
-            radii = [float(ndi.distance_transform_edt(part).max()) - 0.5 for part in parts]
+            radii = [_inscribed_radius(part) - 0.5 for part in parts]
             narrow = 0.5 * length <= NECK_WIDTH * max(radii)
             arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
             ends = [_corner(outline, arc, total, x, arm, y) for x, y in ((p, q), (q, p))] if pair else []
@@ -716,7 +746,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
             out.extend(split_component(piece, min_area, split_depth, image) if piece.sum() >= min_area else [piece])
         return out
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    radius = float(ndi.distance_transform_edt(mask).max())
+    radius = float(_distance_map(mask).max())
     grains = float(mask.sum()) / (np.pi * radius ** 2)  # how many of its thickest grain it could hold
     budget = [int(MAX_CUTS * max(1.0, grains / HEAP_GRAINS))]
     parts = _split(mask, min_part, split_depth, 0, budget, image, min_area) or [mask]
@@ -730,7 +760,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
 def _meet_at_necks(pieces: list[np.ndarray]) -> bool:
     """Whether every two touching pieces meet along less than :data:`ALONE_NECK` of the thinner one's
     inscribed diameter (the contact counted as the pixels of one 8-adjacent to the other)."""
-    radii = [float(ndi.distance_transform_edt(p).max()) for p in pieces]
+    radii = [_inscribed_radius(p) for p in pieces]
     for i, a in enumerate(pieces):
         grown = ndi.binary_dilation(a, _EIGHT)
         for j in range(i + 1, len(pieces)):
@@ -901,7 +931,7 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
     if mask.sum() < 2 * min_area:
         return None
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    dist = ndi.distance_transform_edt(mask)
+    dist = _distance_map(mask)
     for ws, parts, n in _distance_floods(dist, mask):
         if min(int(p.sum()) for p in parts) < min_part:
             continue
@@ -967,7 +997,7 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
         # the dark gaps between packed grains (filled as holes) are background for the distance map
         smooth = median3(np.asarray(image, np.float32))  # single noisy pixels are no gap
         solid = mask & (smooth >= GAP_LEVEL * float(np.median(smooth[mask])))
-    dist = ndi.distance_transform_edt(solid)
+    dist = _distance_map(solid)
     dmax = float(dist.max())
     if float(mask.sum()) < HEAP_MIN_GRAINS * np.pi * dmax ** 2:
         return None
