@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.segment import distance_maxima, hull_fill, touching
+from grainhabit.plugins.segment import band_flood, distance_maxima, foreground, hull_fill, touching
 
 
 def _blobs(seed, n=40):
@@ -193,3 +193,57 @@ def test_distance_map_is_the_transform_and_remembered_read_only():
     b[2:5, 2:5] = True
     np.testing.assert_array_equal(touching._distance_map(a), ndi.distance_transform_edt(a))
     np.testing.assert_array_equal(touching._distance_map(b), ndi.distance_transform_edt(b))
+
+
+def _band_case(seed):
+    """A rendered-like band: blobs (invented), their band of 3 px each side, markers 1/2 and stray 3s."""
+    rng = np.random.default_rng(seed)
+    image = ndi.gaussian_filter(rng.random((170, 230)), 2.0).astype(np.float32)
+    blobs = ndi.gaussian_filter(rng.random(image.shape), 4.0)
+    inside = blobs > np.quantile(blobs, 0.6)
+    markers = np.zeros(image.shape, np.int8)
+    markers[~ndi.binary_dilation(inside, iterations=3)] = 1
+    markers[ndi.binary_erosion(inside, iterations=3)] = 2
+    markers[rng.random(image.shape) > 0.995] = 3
+    near = ndi.binary_dilation(markers == 0, structure=ndi.generate_binary_structure(2, 1))
+    lab, _ = ndi.label(inside, structure=np.ones((3, 3), bool))
+    return image, markers, near, ndi.find_objects(lab)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_band_flood_by_box_clusters_equals_one_whole_frame_watershed(seed):
+    # reference library: skimage.segmentation.watershed on skimage.filters.sobel of the whole frame (the
+    # band within 4 px of the blobs' boxes: the clusters path; and with a reach too short: the labelled path)
+    from skimage.filters import sobel
+    from skimage.segmentation import watershed
+
+    image, markers, near, boxes = _band_case(seed)
+    assert len(band_flood.box_clusters(boxes, 4, near.shape)) < len(boxes)  # some clusters of several boxes
+    for label in (1, 2, 3):
+        want = watershed(sobel(image), np.where(near, markers, 0).astype(np.int32), mask=near) == label
+        for reach in (4, 1):
+            got = band_flood.flood_band(image, markers, near, label, boxes, reach)
+            np.testing.assert_array_equal(got, want)
+    clustered = band_flood._flood_clusters(image, markers, near, 2, boxes, 4)
+    assert clustered is not None  # the clusters path ran
+    assert band_flood._flood_clusters(image, markers, near, 2, boxes, 1) is None  # too short a reach: refused
+
+
+def test_box_clusters_join_boxes_that_touch_once_grown():
+    # reference: handbook geometry of rectangles (two boxes grown by g overlap or share an edge when at most
+    # 2 g pixels lie between them)
+    boxes = [(slice(0, 5), slice(0, 5)), None, (slice(0, 5), slice(9, 14)), (slice(30, 35), slice(30, 35))]
+    assert band_flood.box_clusters(boxes, 2, (100, 100)) == [[0, 2], [3]]  # 4 px between: 2 + 2
+    assert band_flood.box_clusters(boxes, 1, (100, 100)) == [[0], [2], [3]]  # 4 px > 1 + 1
+
+
+def test_markers_of_equals_two_boolean_assignments():
+    # reference: numpy boolean-mask assignment, the form replaced
+    rng = np.random.default_rng(5)
+    bg, grains = rng.random((50, 60)) > 0.5, rng.random((50, 60)) > 0.7
+    want = np.zeros(bg.shape, np.int8)
+    want[bg] = 1
+    want[grains] = 2
+    got = foreground.markers_of(bg, grains)
+    assert got.dtype == np.int8
+    np.testing.assert_array_equal(got, want)
