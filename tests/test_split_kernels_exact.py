@@ -247,3 +247,29 @@ def test_markers_of_equals_two_boolean_assignments():
     got = foreground.markers_of(bg, grains)
     assert got.dtype == np.int8
     np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_concavity_depth_equals_the_whole_array_reference(seed):
+    # reference library: skimage.morphology.convex_hull_image and scipy.ndimage.distance_transform_edt over the
+    # whole array, max over the hull's pocket; the same shapes placed at other offsets in larger arrays
+    from skimage.morphology import convex_hull_image
+
+    rng = np.random.default_rng(500 + seed)
+    touching._DEPTHS.clear()
+    for m in _blobs(500 + seed, n=25):
+        lab, n = ndi.label(m, structure=np.ones((3, 3), bool))
+        if n == 0:
+            continue
+        shape = lab == 1 + int(np.argmax(np.bincount(lab.ravel())[1:]))
+        if shape.sum() < 3:
+            continue
+        pocket = convex_hull_image(shape) & ~shape
+        want = float(ndi.distance_transform_edt(~shape)[pocket].max()) if pocket.any() else 0.0
+        assert touching.concavity_depth(shape) == want
+        big = np.zeros((shape.shape[0] + 9, shape.shape[1] + 14), bool)
+        dy, dx = int(rng.integers(0, 10)), int(rng.integers(0, 15))
+        big[dy:dy + shape.shape[0], dx:dx + shape.shape[1]] = shape
+        assert touching.concavity_depth(big) == want
+        touching._DEPTHS.clear()
+        assert touching.concavity_depth(big) == want  # computed afresh at the other offset

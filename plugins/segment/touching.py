@@ -101,8 +101,10 @@ GAP_LEVEL = 0.5
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
 _EIGHT = np.ones((3, 3), bool)
-#: The last shape given to concavity_depth and its depth (key: shape and packed pixels).
-_LAST_DEPTH: list = [None]
+#: Shapes given to concavity_depth lately and their depths (key: shape and packed pixels of the shape cut to
+#: its box); emptied when it holds _DEPTHS_KEPT.
+_DEPTHS: dict = {}
+_DEPTHS_KEPT = 64
 #: The last shape given to _distance_map and its distance map (the same key).
 _LAST_DISTANCE: list = [None]
 
@@ -121,17 +123,25 @@ def concavity_depth(mask: np.ndarray) -> float:
         ``max over (hull - shape) of the distance to the shape``; about 1
         pixel or less for a digitised convex shape.
     """
-    if mask.sum() < 3:
+    if np.count_nonzero(mask) < 3:
         return 0.0
-    # the same shape is often asked twice in a row (is the component convex? then: any seam?)
-    key = (mask.shape, np.packbits(mask).tobytes())
-    last = _LAST_DEPTH[0]  # one tuple, read at once (tiles may run in threads)
-    if last is not None and last[0] == key:
-        return last[1]
+    # the depth depends on the shape alone, not on where it lies in its array: the hull, its pocket and the
+    # pocket's distances to the shape all lie within the shape's own box, so the shape is cut to that box
+    # (a part of a cut is asked in its component's box, then in its own)
+    rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+    tight = mask[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    # the same shape is often asked again (is the component convex? then: any seam?; a part, then the part
+    # alone)
+    key = (tight.shape, np.packbits(tight).tobytes())
+    known = _DEPTHS.get(key)
+    if known is not None:
+        return known
     # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel)
-    pocket = convex_hull_mask(mask) & ~mask
-    depth = _pocket_depth(mask, pocket)
-    _LAST_DEPTH[0] = (key, depth)
+    pocket = convex_hull_mask(tight) & ~tight
+    depth = _pocket_depth(tight, pocket)
+    if len(_DEPTHS) >= _DEPTHS_KEPT:
+        _DEPTHS.clear()
+    _DEPTHS[key] = depth
     return depth
 
 
@@ -170,7 +180,7 @@ def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -
     the allowance follows the grain size (``sqrt(A / pi)`` is the radius of
     the equal-area circle) and never drops below the digitisation ripple.
     """
-    r_eq = np.sqrt(mask.sum() / np.pi)
+    r_eq = np.sqrt(np.count_nonzero(mask) / np.pi)  # the pixel count, as mask.sum() (a quicker count)
     return concavity_depth(mask) <= slack * max(MIN_DEPTH_PX, split_depth * r_eq)
 
 
@@ -564,7 +574,7 @@ def _split_at_seams(mask: np.ndarray, min_area: float, depth: int, budget: list,
     For shapes within the convexity allowance (grains face to face leave
     only shallow notches): nothing but a seam divides them.
     """
-    if depth > MAX_DEPTH or mask.sum() < 2 * min_area or concavity_depth(mask) <= MIN_DEPTH_PX:
+    if depth > MAX_DEPTH or np.count_nonzero(mask) < 2 * min_area or concavity_depth(mask) <= MIN_DEPTH_PX:
         return None
     parts = _split_at_defects(mask, min_area, 0.0, depth, budget, image, seam_only=True)
     if parts is None:
@@ -727,7 +737,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     of a tenth of the component at least). Neighbouring parts, one of them under the heap's floor,
     that meet at no neck and no seam are joined again (:func:`_rejoin`).
     """
-    if mask.sum() < 2 * min_area:
+    if np.count_nonzero(mask) < 2 * min_area:
         return [mask]
     if is_convex(mask, split_depth):
         # within the allowance: only a dark seam between two notches divides it
