@@ -273,3 +273,54 @@ def test_concavity_depth_equals_the_whole_array_reference(seed):
         assert touching.concavity_depth(big) == want
         touching._DEPTHS.clear()
         assert touching.concavity_depth(big) == want  # computed afresh at the other offset
+
+
+def _defects_reference(mask, min_depth):
+    """touching.convexity_defects as it was: every hull edge visited in turn."""
+    from scipy.spatial import ConvexHull
+    from skimage.measure import find_contours
+
+    contours = find_contours(np.pad(mask, 1).astype(np.float32), 0.5)
+    pts = max(contours, key=len)[:-1] - 1.0
+    if len(pts) < 8:
+        return []
+    hv = np.sort(ConvexHull(pts).vertices)
+    out = []
+    for k in range(len(hv)):
+        i, j = hv[k], hv[(k + 1) % len(hv)]
+        idx = np.arange(i, j + 1) if j > i else np.r_[np.arange(i, len(pts)), np.arange(0, j + 1)]
+        if len(idx) < 3:
+            continue
+        a, b = pts[i], pts[j]
+        ab = b - a
+        norm = float(np.hypot(*ab))
+        if norm == 0:
+            continue
+        seg = pts[idx]
+        dist = np.abs(ab[0] * (seg[:, 1] - a[1]) - ab[1] * (seg[:, 0] - a[0])) / norm
+        peaks = touching.find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)
+        out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
+    return out
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_convexity_defects_equal_the_edge_by_edge_loop(seed):
+    # reference: the loop over every hull edge (scipy.spatial.ConvexHull of skimage.measure.find_contours'
+    # outline, scipy.signal.find_peaks' rule through touching.find_peaks, itself checked against scipy)
+    found = 0
+    for m in _blobs(600 + seed, n=30):
+        lab, n = ndi.label(m, structure=np.ones((3, 3), bool))
+        if n == 0:
+            continue
+        shape = ndi.binary_fill_holes(lab == 1 + int(np.argmax(np.bincount(lab.ravel())[1:])))
+        if shape.sum() < 20:
+            continue
+        for min_depth in (0.5, 1.0, 2.0, 3.5):
+            got = touching.convexity_defects(shape, min_depth)
+            want = _defects_reference(shape, min_depth)
+            assert len(got) == len(want)
+            for (p, d), (q, e) in zip(got, want):
+                np.testing.assert_array_equal(p, q)
+                assert d == e
+            found += len(got)
+    assert found > 20

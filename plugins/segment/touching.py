@@ -242,7 +242,7 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
     if hv is None:
         return ([], pts) if outline else []
     out = []
-    for k in range(len(hv)):
+    for k in _edges_reaching(pts, hv, min_depth):
         i, j = hv[k], hv[(k + 1) % len(hv)]
         idx = np.arange(i, j + 1) if j > i else np.r_[np.arange(i, len(pts)), np.arange(0, j + 1)]
         if len(idx) < 3:
@@ -260,6 +260,41 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
         peaks = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)
         out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
     return (out, pts) if outline else out
+
+
+def _edges_reaching(pts: np.ndarray, hv: np.ndarray, min_depth: float) -> np.ndarray:
+    """The hull edges of an outline that some outline point between their ends lies ``min_depth`` or more from.
+
+    Parameters
+    ----------
+    pts : ndarray of float, shape (n, 2)
+        The closed outline.
+    hv : ndarray of int, shape (k,)
+        Increasing indices of the hull's vertices on the outline.
+    min_depth : float
+
+    Returns
+    -------
+    ndarray of int
+        Increasing edge numbers ``e`` (from ``hv[e]`` to ``hv[e + 1]``, the last one round to ``hv[0]``):
+        the edges whose largest distance, computed as :func:`convexity_defects` computes it, is not
+        below ``min_depth`` (less a relative 1e-9), or is not a number. All points at once, one edge
+        per point (the one starting at or before it; an edge's end point lies on it), instead of a
+        pass per edge. A superset of the edges the loop of :func:`convexity_defects` goes on with,
+        which then judges them as before (tests/test_split_kernels_exact.py).
+    """
+    n = len(pts)
+    edge = np.searchsorted(hv, np.arange(n), side="right") - 1
+    edge[edge < 0] = len(hv) - 1  # the points before the first vertex lie on the edge round from the last
+    start = pts[hv[edge]]
+    end = pts[hv[(edge + 1) % len(hv)]]
+    ab0, ab1 = end[:, 0] - start[:, 0], end[:, 1] - start[:, 1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dist = np.abs(ab0 * (pts[:, 1] - start[:, 1]) - ab1 * (pts[:, 0] - start[:, 0])) / np.hypot(ab0, ab1)
+    top = np.zeros(len(hv))
+    np.maximum.at(top, edge, dist)
+    # a hair below min_depth: a superset of the edges the loop keeps, whatever the last bit of a quotient
+    return np.flatnonzero(~(top < min_depth * (1.0 - 1e-9)))
 
 
 def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
