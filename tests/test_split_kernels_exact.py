@@ -324,3 +324,35 @@ def test_convexity_defects_equal_the_edge_by_edge_loop(seed):
                 assert d == e
             found += len(got)
     assert found > 20
+
+
+@pytest.mark.parametrize("margin", [1, 2, 8])
+def test_pocket_depth_in_a_window_equals_the_whole_transform(margin, monkeypatch):
+    # reference library: scipy.ndimage.distance_transform_edt of the whole array, max over the hull's pocket
+    # (skimage.morphology.convex_hull_image); blobs, a C, an L and a cross (invented shapes); small first
+    # margins make the window grow
+    from skimage.morphology import convex_hull_image
+
+    monkeypatch.setattr(touching, "POCKET_WINDOW_PX", margin)
+    yy, xx = np.mgrid[:90, :90]
+    ring = (np.hypot(yy - 45, xx - 45) < 40) & (np.hypot(yy - 45, xx - 45) > 28) & ~((xx > 45) & (abs(yy - 45) < 12))
+    ell = np.zeros((60, 60), bool)
+    ell[:, :8] = True
+    ell[-8:, :] = True
+    cross = np.zeros((61, 61), bool)
+    cross[27:34, :] = True
+    cross[:, 27:34] = True
+    shapes = [ring, ell, cross] + [m for m in _blobs(700 + margin, n=20)]
+    deep_cases = 0
+    for shape in shapes:
+        lab, n = ndi.label(shape, structure=np.ones((3, 3), bool))
+        if n == 0:
+            continue
+        shape = lab == 1 + int(np.argmax(np.bincount(lab.ravel())[1:]))
+        pocket = convex_hull_image(shape) & ~shape
+        if not pocket.any():
+            continue
+        want = float(ndi.distance_transform_edt(~shape)[pocket].max())
+        assert touching._pocket_depth(shape, pocket) == want
+        deep_cases += want >= 2.0
+    assert deep_cases >= 3

@@ -158,9 +158,44 @@ def _pocket_depth(mask: np.ndarray, pocket: np.ndarray) -> float:
     m[1:-1, 1:-1] = mask
     cross = m[:-2, 1:-1] | m[2:, 1:-1] | m[1:-1, :-2] | m[1:-1, 2:]
     diag = m[:-2, :-2] | m[:-2, 2:] | m[2:, :-2] | m[2:, 2:]
-    if (pocket & ~(cross | diag)).any():
-        return float(ndi.distance_transform_edt(~mask)[pocket].max())
+    deep = pocket & ~(cross | diag)
+    if deep.any():
+        # the deepest pocket pixel is one with no 8-neighbour in the shape (its distance is 2 or more)
+        return _deep_pocket_depth(mask, deep)
     return float(np.sqrt(2.0)) if (pocket & ~cross).any() else 1.0
+
+
+#: Margin (px) of the first window round a pocket's deep pixels in :func:`_deep_pocket_depth`.
+POCKET_WINDOW_PX = 8
+
+
+def _deep_pocket_depth(mask: np.ndarray, deep: np.ndarray) -> float:
+    """``max(distance_transform_edt(~mask)[deep])``, the transform taken in a window round ``deep`` only.
+
+    The window is the box of ``deep`` grown by :data:`POCKET_WINDOW_PX`. A pixel's distance to the
+    nearest shape pixel found in the window is its distance in the whole array when no pixel beyond
+    the window can be nearer: when it is at most the distance to the nearest pixel beyond a side of the
+    window cut out of the array. Checked at every deep pixel; otherwise the window grows (twice the
+    margin) and, at the array's size, is the whole array (tests/test_split_kernels_exact.py).
+    """
+    rows, cols = mask.shape
+    rr, cc = np.nonzero(deep)
+    margin = POCKET_WINDOW_PX
+    while True:
+        y0, y1 = max(int(rr.min()) - margin, 0), min(int(rr.max()) + margin + 1, rows)
+        x0, x1 = max(int(cc.min()) - margin, 0), min(int(cc.max()) + margin + 1, cols)
+        whole = (y0, y1, x0, x1) == (0, rows, 0, cols)
+        window = mask[y0:y1, x0:x1]
+        if whole or window.any():
+            d = ndi.distance_transform_edt(~window)[rr - y0, cc - x0]
+            if whole:
+                return float(d.max())
+            big = np.inf
+            beyond = np.minimum(np.minimum(rr - y0 + 1 if y0 > 0 else big, y1 - rr if y1 < rows else big),
+                                np.minimum(cc - x0 + 1 if x0 > 0 else big, x1 - cc if x1 < cols else big))
+            if np.all(d <= beyond):
+                return float(d.max())
+        margin *= 2
 
 
 def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -> bool:
@@ -675,11 +710,11 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         along = np.abs(arc - arc[ip])
         along = np.minimum(along, total - along)
         order = np.argsort(d)
+        # a cut is a short cut: much shorter than the way round the outline (tested for all points at once)
+        short = ~((d < 2 * MIN_DEPTH_PX) | (along < 3 * d))
         taken = []
-        for i in order:
-            # a cut is a short cut: much shorter than the way round the outline
-            if d[i] < 2 * MIN_DEPTH_PX or along[i] < 3 * d[i] \
-                    or any(np.hypot(*(outline[i] - t)) < 3 for t in taken):
+        for i in order[short[order]]:
+            if any(np.hypot(*(outline[i] - t)) < 3 for t in taken):
                 continue
             taken.append(outline[i])
             if len(taken) == 6:
