@@ -356,3 +356,51 @@ def test_pocket_depth_in_a_window_equals_the_whole_transform(margin, monkeypatch
         assert touching._pocket_depth(shape, pocket) == want
         deep_cases += want >= 2.0
     assert deep_cases >= 3
+
+
+def _seam_contrast_reference(image, mask, parts, rr, cc):
+    """touching.seam_contrast as it was: two distance transforms and a frame grey erosion."""
+    smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
+    dist = ndi.distance_transform_edt(mask)
+    on = dist[rr, cc] > touching.EDGE_PX
+    if on.sum() < 3:
+        return 0.0
+    darkest = ndi.grey_erosion(smooth, footprint=np.ones((3, 3), bool))
+    seam = float(darkest[rr[on], cc[on]].mean())
+    line = np.ones(mask.shape, bool)
+    line[rr, cc] = False
+    clear = ndi.distance_transform_edt(line) > touching.SEAM_CLEAR_PX
+    levels = []
+    for part in parts:
+        inner = part & (dist > touching.EDGE_PX) & clear
+        if inner.sum() < 3:
+            return 0.0
+        levels.append(float(np.median(smooth[inner])))
+    low = min(levels)
+    return 1.0 - seam / low if low > 0 else 0.0
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_seam_contrast_equals_the_distance_transform_form(seed):
+    # reference library: scipy.ndimage.distance_transform_edt and grey_erosion (the form replaced); two discs
+    # meeting at a seam (invented), cuts across them at random rows, some reaching the box's edge
+    from skimage.draw import line
+
+    rng = np.random.default_rng(800 + seed)
+    yy, xx = np.mgrid[:50, :80]
+    mask = (np.hypot(yy - 25, xx - 22) < 20) | (np.hypot(yy - 25, xx - 56) < 21)
+    if seed == 3:
+        mask = np.ones((50, 80), bool)  # no background in the box
+    image = (mask * 1.0 + rng.normal(0, 0.05, mask.shape)).astype(np.float32)
+    image[:, 38:41] *= 0.6  # a darker seam
+    seen = 0
+    for _ in range(12):
+        r0, r1 = int(rng.integers(0, 50)), int(rng.integers(0, 50))
+        c = int(rng.integers(30, 50))
+        rr, cc = line(r0, c + int(rng.integers(-3, 4)), r1, c)
+        parts = [mask & (xx < c), mask & (xx >= c)]
+        want = _seam_contrast_reference(image, mask, parts, rr, cc)
+        got = touching.seam_contrast(image, mask, parts, rr, cc)
+        assert got == want
+        seen += want != 0.0
+    assert seen > 0

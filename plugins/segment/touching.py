@@ -35,6 +35,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.band_flood import watershed_window
+from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
@@ -447,18 +448,28 @@ def seam_contrast(image: np.ndarray, mask: np.ndarray, parts: list[np.ndarray], 
     across one grain has the grain's own level.
     """
     smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
-    dist = ndi.distance_transform_edt(mask)
-    on = dist[rr, cc] > EDGE_PX
+    if mask.all():  # no background in the box: the transform's own convention (see distance_transform_edt)
+        deep = ndi.distance_transform_edt(mask) > EDGE_PX
+    else:
+        # distance_transform_edt(mask) > EDGE_PX: survives the erosion by that disk, the array's edge counting
+        # as neither kind (disk_morphology; the same pixels, several times cheaper on a component's box)
+        deep = erode_disk(mask, EDGE_PX, 1)
+    on = deep[rr, cc]
     if on.sum() < 3:
         return 0.0
-    darkest = ndi.grey_erosion(smooth, footprint=_EIGHT)
-    seam = float(darkest[rr[on], cc[on]].mean())
-    line = np.ones(mask.shape, bool)
-    line[rr, cc] = False
-    clear = ndi.distance_transform_edt(line) > SEAM_CLEAR_PX
+    # scipy.ndimage.grey_erosion(smooth, footprint=3x3) read at the cut's pixels only: the least of the
+    # 3 x 3 neighbours, the box's edge mirrored ('reflect': a pixel beyond the edge is the edge pixel)
+    r_on, c_on = rr[on], cc[on]
+    h, w = mask.shape
+    darkest = np.min([smooth[np.clip(r_on + dr, 0, h - 1), np.clip(c_on + dc, 0, w - 1)]
+                      for dr in (-1, 0, 1) for dc in (-1, 0, 1)], axis=0)
+    seam = float(darkest.mean())
+    cut = np.zeros(mask.shape, bool)
+    cut[rr, cc] = True
+    clear = ~dilate_disk(cut, SEAM_CLEAR_PX)  # distance_transform_edt(~cut) > SEAM_CLEAR_PX (disk_morphology)
     levels = []
     for part in parts:
-        inner = part & (dist > EDGE_PX) & clear
+        inner = part & deep & clear
         if inner.sum() < 3:
             return 0.0
         levels.append(float(np.median(smooth[inner])))
