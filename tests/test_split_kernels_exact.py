@@ -404,3 +404,17 @@ def test_seam_contrast_equals_the_distance_transform_form(seed):
         assert got == want
         seen += want != 0.0
     assert seen > 0
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_packed_euler_number_equals_scikit_image(seed):
+    # reference library: skimage.measure.euler_number (connectivity 2); widths round multiples of 64 (the packed
+    # words' edges), random masks and blobs with holes (invented)
+    from skimage.measure import euler_number
+
+    rng = np.random.default_rng(900 + seed)
+    for cols in (1, 2, 61, 62, 63, 64, 65, 126, 127, 128, 129, 200):
+        rows = int(rng.integers(1, 40))
+        for m in (rng.random((rows, cols)) > 0.5,
+                  ndi.gaussian_filter(rng.random((rows, cols)), 1.5) > 0.5, np.ones((rows, cols), bool)):
+            assert foreground._euler_number8_packed(m) == euler_number(m, connectivity=2)
