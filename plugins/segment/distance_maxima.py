@@ -131,6 +131,11 @@ def distance_h_maxima(dist: np.ndarray, h: float, squared: np.ndarray | None = N
     strides = np.array([dr * width + dc for dr, dc in _NEIGHBOURS], signed)
     value_rank = flat.astype(unsigned)
     image_stride = (rows + 2) * width
-    _reconstruction_loop(value_rank, prev, nxt, strides, order[0], image_stride)
+    try:
+        _reconstruction_loop(value_rank, prev, nxt, strides, order[0], image_stride)
+    except (TypeError, ValueError):  # pragma: no cover - the routine's signature changed: the public function
+        from skimage.morphology import h_maxima
+
+        return h_maxima(dist, h)
     rec = values[value_rank[:image_stride]].reshape(rows + 2, width)[1:-1, 1:-1]
     return ((dist - rec) >= h).astype(np.uint8)
