@@ -62,7 +62,7 @@ def _full_lines(mask, cores, near_px=None, **kw):
     return seg_gaps.gap_lines(mask, cores, **kw)
 
 
-def _whole_frame_flood(image, markers, band, label):
+def _whole_frame_flood(image, markers, band, label, boxes=None, reach=None):
     from skimage.filters import sobel
     from skimage.segmentation import watershed
 

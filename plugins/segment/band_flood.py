@@ -120,7 +120,52 @@ def sobel_magnitude(image: np.ndarray) -> np.ndarray:
     return out
 
 
-def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: int = 2) -> np.ndarray:
+#: Above this many boxes :func:`box_clusters` is not used (its overlap table grows with the square).
+MAX_CLUSTER_BOXES = 3000
+
+
+def box_clusters(boxes: list, grow: int, shape: tuple) -> list[list[int]] | None:
+    """Groups of boxes that overlap or touch once each is grown by ``grow`` pixels on every side.
+
+    Parameters
+    ----------
+    boxes : list of tuple of slice or None
+        Boxes (``scipy.ndimage.find_objects`` order); None entries are left out.
+    grow : int
+        Pixels added on every side (clipped to the frame).
+    shape : tuple of int
+        The frame's shape.
+
+    Returns
+    -------
+    list of list of int or None
+        Indices into ``boxes``, one list per group (connected through pairs of grown boxes that overlap
+        or share an edge); None when there are more than :data:`MAX_CLUSTER_BOXES` boxes.
+    """
+    from scipy.sparse import csr_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    idx = [i for i, b in enumerate(boxes) if b is not None]
+    if len(idx) > MAX_CLUSTER_BOXES:
+        return None
+    if not idx:
+        return []
+    rows, cols = shape
+    y0 = np.array([max(boxes[i][0].start - grow, 0) for i in idx])
+    y1 = np.array([min(boxes[i][0].stop + grow, rows) for i in idx])
+    x0 = np.array([max(boxes[i][1].start - grow, 0) for i in idx])
+    x1 = np.array([min(boxes[i][1].stop + grow, cols) for i in idx])
+    # overlapping or sharing an edge: the boxes grown by one more pixel overlap
+    near = ((y0[:, None] <= y1[None, :]) & (y0[None, :] <= y1[:, None])
+            & (x0[:, None] <= x1[None, :]) & (x0[None, :] <= x1[:, None]))
+    n, group = connected_components(csr_matrix(near), directed=False)
+    order = np.argsort(group, kind="stable")
+    cuts = np.flatnonzero(np.diff(group[order])) + 1
+    return [[idx[int(k)] for k in part] for part in np.split(order, cuts)]
+
+
+def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: int = 2,
+               boxes: list | None = None, reach: int | None = None) -> np.ndarray:
     """Pixels of ``band`` that the marker-controlled watershed gives to ``label``.
 
     Parameters
@@ -134,13 +179,37 @@ def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: 
     label : int
         The marker label asked for.
 
+    boxes : list of tuple of slice, optional
+        Boxes of objects (e.g. the grains' components) with every pixel of ``band`` within ``reach``
+        pixels of one of them: the band is then flooded cluster by cluster (:func:`box_clusters`)
+        without labelling its pieces. Where a pixel of the band lies outside every box so grown, the
+        pieces are labelled after all.
+    reach : int, optional
+        See ``boxes``.
+
     Returns
     -------
     ndarray of bool, shape (rows, cols)
         ``watershed(sobel(image), np.where(band, markers, 0), mask=band) == label``
         (scikit-image, connectivity 1).
+
+    Notes
+    -----
+    A flood never leaves the 4-connected piece of the band it starts in, and the pixels of one piece are
+    taken from the queue in the same order whatever other pieces are flooded in the same call (the
+    queue orders them by relief and then by the order they were put in, and a piece's pixels are put
+    in by its own pixels only). So the pieces can be flooded one window each (their boxes from one
+    labelling of the band), or several in one window. With ``boxes``, a window is the box of a cluster
+    of boxes grown by ``reach`` (overlapping or touching; grown by one more pixel for the 3x3
+    gradient), its mask the band within the cluster's grown boxes: a band pixel there is within
+    ``reach`` of a box of the cluster, and of no box of another cluster (the two grown boxes would
+    touch), so each piece is flooded whole, in one window only (tests/test_split_kernels_exact.py).
     """
     rows, cols = band.shape
+    if boxes is not None and reach is not None:
+        out = _flood_clusters(image, markers, band, label, boxes, int(reach))
+        if out is not None:
+            return out
     out = np.zeros(band.shape, bool)
     pieces, _ = ndi.label(band, structure=_CROSS)
     for j, box in enumerate(ndi.find_objects(pieces), start=1):
@@ -150,6 +219,45 @@ def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: 
         x0, x1 = max(box[1].start - 1, 0), min(box[1].stop + 1, cols)
         win = (slice(y0, y1), slice(x0, x1))
         own = pieces[win] == j
+        seeds = np.where(own, markers[win], 0)
+        if not (seeds == label).any():
+            continue
+        flooded = watershed_window(sobel_magnitude(image[win]), seeds.astype(np.int32, copy=False), own)
+        out[win] |= flooded == label
+    return out
+
+
+def _flood_clusters(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: int, boxes: list,
+                    reach: int) -> np.ndarray | None:
+    """:func:`flood_band` window by window over clusters of grown boxes; None where that does not apply."""
+    rows, cols = band.shape
+    clusters = box_clusters(boxes, reach, band.shape)
+    if clusters is None:
+        return None
+    grown = [None if b is None else (max(b[0].start - reach, 0), min(b[0].stop + reach, rows),
+                                     max(b[1].start - reach, 0), min(b[1].stop + reach, cols)) for b in boxes]
+    covered = np.zeros(band.shape, bool)
+    for g in grown:
+        if g is not None:
+            covered[g[0]:g[1], g[2]:g[3]] = True
+    if np.count_nonzero(band) != np.count_nonzero(band & covered):
+        return None  # a band pixel beyond every grown box: the pieces are labelled instead
+    out = np.zeros(band.shape, bool)
+    for members in clusters:
+        ys0, ys1, xs0, xs1 = (min(grown[i][0] for i in members), max(grown[i][1] for i in members),
+                              min(grown[i][2] for i in members), max(grown[i][3] for i in members))
+        # one pixel of real neighbours round the cluster's grown boxes (the 3x3 gradient)
+        y0, y1, x0, x1 = max(ys0 - 1, 0), min(ys1 + 1, rows), max(xs0 - 1, 0), min(xs1 + 1, cols)
+        win = (slice(y0, y1), slice(x0, x1))
+        if len(members) == 1:
+            own = np.zeros((y1 - y0, x1 - x0), bool)
+            own[ys0 - y0:ys1 - y0, xs0 - x0:xs1 - x0] = True
+        else:
+            own = np.zeros((y1 - y0, x1 - x0), bool)
+            for i in members:
+                g = grown[i]
+                own[g[0] - y0:g[1] - y0, g[2] - x0:g[3] - x0] = True
+        own &= band[win]
         seeds = np.where(own, markers[win], 0)
         if not (seeds == label).any():
             continue

@@ -128,16 +128,35 @@ def _shift_cols(words, d):
 
 
 def _cols_window(words, b, combine):
-    out = words.copy()
-    for d in range(1, b + 1):
-        combine(out, _shift_cols(words, d), out=out)
-        combine(out, _shift_cols(words, -d), out=out)
-    return out
+    """``combine`` over the columns ``x - b .. x + b`` of every column ``x``, by doubling.
+
+    The window ``0 .. s - 1`` combined with itself moved by ``t <= s`` covers ``0 .. s + t - 1``
+    (``combine`` is an AND or an OR: idempotent and associative), so ``0 .. b`` takes about
+    ``log2(b + 1)`` shifts and ``-b .. b`` one more, instead of ``2 b``. The same bits as one shift per
+    offset at every column whose window lies within the array (the frame padded by the largest half-width,
+    tests/test_segment_speed.py).
+    """
+    if b == 0:
+        return words.copy()
+    out, span = words, 1
+    while span < b + 1:
+        step = min(span, b + 1 - span)
+        out = combine(out, _shift_cols(out, step))  # a new array: words stays as it is
+        span += step
+    return combine(out, _shift_cols(out, -b), out=out)
 
 
 def _rows_window(words, a, combine):
-    out = words.copy()
-    for d in range(1, a + 1):
-        combine(out[:-d], words[d:], out=out[:-d])
-        combine(out[d:], words[:-d], out=out[d:])
+    """``combine`` over the rows ``y - a .. y + a`` of every row ``y``, by doubling (as :func:`_cols_window`)."""
+    out, span = words.copy(), 1
+    while span < a + 1:
+        step = min(span, a + 1 - span)
+        nxt = out.copy()
+        combine(nxt[:-step], out[step:], out=nxt[:-step])
+        out = nxt
+        span += step
+    if a:
+        nxt = out.copy()
+        combine(nxt[a:], out[:-a], out=nxt[a:])
+        out = nxt
     return out

@@ -34,6 +34,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.band_flood import watershed_window
+from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
+from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
 #: Fractions of the component's largest inscribed radius tried as h.
@@ -99,8 +102,12 @@ GAP_LEVEL = 0.5
 #: two convex parts is kept there without a neck or a seam.
 CLEAR_CONCAVITY = 2.0
 _EIGHT = np.ones((3, 3), bool)
-#: The last shape given to concavity_depth and its depth (key: shape and packed pixels).
-_LAST_DEPTH: list = [None]
+#: Shapes given to concavity_depth lately and their depths (key: shape and packed pixels of the shape cut to
+#: its box); emptied when it holds _DEPTHS_KEPT.
+_DEPTHS: dict = {}
+_DEPTHS_KEPT = 64
+#: The last shape given to _distance_map and its distance map (the same key).
+_LAST_DISTANCE: list = [None]
 
 
 def concavity_depth(mask: np.ndarray) -> float:
@@ -117,17 +124,25 @@ def concavity_depth(mask: np.ndarray) -> float:
         ``max over (hull - shape) of the distance to the shape``; about 1
         pixel or less for a digitised convex shape.
     """
-    if mask.sum() < 3:
+    if np.count_nonzero(mask) < 3:
         return 0.0
-    # the same shape is often asked twice in a row (is the component convex? then: any seam?)
-    key = (mask.shape, np.packbits(mask).tobytes())
-    last = _LAST_DEPTH[0]  # one tuple, read at once (tiles may run in threads)
-    if last is not None and last[0] == key:
-        return last[1]
+    # the depth depends on the shape alone, not on where it lies in its array: the hull, its pocket and the
+    # pocket's distances to the shape all lie within the shape's own box, so the shape is cut to that box
+    # (a part of a cut is asked in its component's box, then in its own)
+    rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+    tight = mask[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    # the same shape is often asked again (is the component convex? then: any seam?; a part, then the part
+    # alone)
+    key = (tight.shape, np.packbits(tight).tobytes())
+    known = _DEPTHS.get(key)
+    if known is not None:
+        return known
     # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel)
-    pocket = convex_hull_mask(mask) & ~mask
-    depth = _pocket_depth(mask, pocket)
-    _LAST_DEPTH[0] = (key, depth)
+    pocket = convex_hull_mask(tight) & ~tight
+    depth = _pocket_depth(tight, pocket)
+    if len(_DEPTHS) >= _DEPTHS_KEPT:
+        _DEPTHS.clear()
+    _DEPTHS[key] = depth
     return depth
 
 
@@ -144,9 +159,44 @@ def _pocket_depth(mask: np.ndarray, pocket: np.ndarray) -> float:
     m[1:-1, 1:-1] = mask
     cross = m[:-2, 1:-1] | m[2:, 1:-1] | m[1:-1, :-2] | m[1:-1, 2:]
     diag = m[:-2, :-2] | m[:-2, 2:] | m[2:, :-2] | m[2:, 2:]
-    if (pocket & ~(cross | diag)).any():
-        return float(ndi.distance_transform_edt(~mask)[pocket].max())
+    deep = pocket & ~(cross | diag)
+    if deep.any():
+        # the deepest pocket pixel is one with no 8-neighbour in the shape (its distance is 2 or more)
+        return _deep_pocket_depth(mask, deep)
     return float(np.sqrt(2.0)) if (pocket & ~cross).any() else 1.0
+
+
+#: Margin (px) of the first window round a pocket's deep pixels in :func:`_deep_pocket_depth`.
+POCKET_WINDOW_PX = 8
+
+
+def _deep_pocket_depth(mask: np.ndarray, deep: np.ndarray) -> float:
+    """``max(distance_transform_edt(~mask)[deep])``, the transform taken in a window round ``deep`` only.
+
+    The window is the box of ``deep`` grown by :data:`POCKET_WINDOW_PX`. A pixel's distance to the
+    nearest shape pixel found in the window is its distance in the whole array when no pixel beyond
+    the window can be nearer: when it is at most the distance to the nearest pixel beyond a side of the
+    window cut out of the array. Checked at every deep pixel; otherwise the window grows (twice the
+    margin) and, at the array's size, is the whole array (tests/test_split_kernels_exact.py).
+    """
+    rows, cols = mask.shape
+    rr, cc = np.nonzero(deep)
+    margin = POCKET_WINDOW_PX
+    while True:
+        y0, y1 = max(int(rr.min()) - margin, 0), min(int(rr.max()) + margin + 1, rows)
+        x0, x1 = max(int(cc.min()) - margin, 0), min(int(cc.max()) + margin + 1, cols)
+        whole = (y0, y1, x0, x1) == (0, rows, 0, cols)
+        window = mask[y0:y1, x0:x1]
+        if whole or window.any():
+            d = ndi.distance_transform_edt(~window)[rr - y0, cc - x0]
+            if whole:
+                return float(d.max())
+            big = np.inf
+            beyond = np.minimum(np.minimum(rr - y0 + 1 if y0 > 0 else big, y1 - rr if y1 < rows else big),
+                                np.minimum(cc - x0 + 1 if x0 > 0 else big, x1 - cc if x1 < cols else big))
+            if np.all(d <= beyond):
+                return float(d.max())
+        margin *= 2
 
 
 def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -> bool:
@@ -166,7 +216,7 @@ def is_convex(mask: np.ndarray, split_depth: float = 0.08, slack: float = 1.0) -
     the allowance follows the grain size (``sqrt(A / pi)`` is the radius of
     the equal-area circle) and never drops below the digitisation ripple.
     """
-    r_eq = np.sqrt(mask.sum() / np.pi)
+    r_eq = np.sqrt(np.count_nonzero(mask) / np.pi)  # the pixel count, as mask.sum() (a quicker count)
     return concavity_depth(mask) <= slack * max(MIN_DEPTH_PX, split_depth * r_eq)
 
 
@@ -228,7 +278,7 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
     if hv is None:
         return ([], pts) if outline else []
     out = []
-    for k in range(len(hv)):
+    for k in _edges_reaching(pts, hv, min_depth):
         i, j = hv[k], hv[(k + 1) % len(hv)]
         idx = np.arange(i, j + 1) if j > i else np.r_[np.arange(i, len(pts)), np.arange(0, j + 1)]
         if len(idx) < 3:
@@ -246,6 +296,41 @@ def convexity_defects(mask: np.ndarray, min_depth: float, outline: bool = False)
         peaks = find_peaks(np.r_[0.0, dist, 0.0], height=min_depth, prominence=0.5 * min_depth)
         out.extend((seg[m - 1], float(dist[m - 1])) for m in peaks)
     return (out, pts) if outline else out
+
+
+def _edges_reaching(pts: np.ndarray, hv: np.ndarray, min_depth: float) -> np.ndarray:
+    """The hull edges of an outline that some outline point between their ends lies ``min_depth`` or more from.
+
+    Parameters
+    ----------
+    pts : ndarray of float, shape (n, 2)
+        The closed outline.
+    hv : ndarray of int, shape (k,)
+        Increasing indices of the hull's vertices on the outline.
+    min_depth : float
+
+    Returns
+    -------
+    ndarray of int
+        Increasing edge numbers ``e`` (from ``hv[e]`` to ``hv[e + 1]``, the last one round to ``hv[0]``):
+        the edges whose largest distance, computed as :func:`convexity_defects` computes it, is not
+        below ``min_depth`` (less a relative 1e-9), or is not a number. All points at once, one edge
+        per point (the one starting at or before it; an edge's end point lies on it), instead of a
+        pass per edge. A superset of the edges the loop of :func:`convexity_defects` goes on with,
+        which then judges them as before (tests/test_split_kernels_exact.py).
+    """
+    n = len(pts)
+    edge = np.searchsorted(hv, np.arange(n), side="right") - 1
+    edge[edge < 0] = len(hv) - 1  # the points before the first vertex lie on the edge round from the last
+    start = pts[hv[edge]]
+    end = pts[hv[(edge + 1) % len(hv)]]
+    ab0, ab1 = end[:, 0] - start[:, 0], end[:, 1] - start[:, 1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dist = np.abs(ab0 * (pts[:, 1] - start[:, 1]) - ab1 * (pts[:, 0] - start[:, 0])) / np.hypot(ab0, ab1)
+    top = np.zeros(len(hv))
+    np.maximum.at(top, edge, dist)
+    # a hair below min_depth: a superset of the edges the loop keeps, whatever the last bit of a quotient
+    return np.flatnonzero(~(top < min_depth * (1.0 - 1e-9)))
 
 
 def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
@@ -306,7 +391,6 @@ def find_peaks(x: np.ndarray, height: float, prominence: float) -> np.ndarray:
 def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> list[np.ndarray] | None:
     """Cut a shape along the segment p-q; two parts or None."""
     from skimage.draw import line
-    from skimage.segmentation import watershed
 
     r0, c0 = np.clip(np.round(p).astype(int), 0, np.array(mask.shape) - 1)
     r1, c1 = np.clip(np.round(q).astype(int), 0, np.array(mask.shape) - 1)
@@ -327,7 +411,7 @@ def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> lis
     markers = np.zeros(mask.shape, np.int32)
     markers[pieces == order[0] + 1] = 1
     markers[pieces == order[1] + 1] = 2
-    ws = watershed(np.zeros(mask.shape, np.float32), markers, mask=mask)
+    ws = watershed_window(np.zeros(mask.shape, np.float32), markers, mask)  # skimage's watershed
     return [ws == 1, ws == 2]
 
 
@@ -364,18 +448,28 @@ def seam_contrast(image: np.ndarray, mask: np.ndarray, parts: list[np.ndarray], 
     across one grain has the grain's own level.
     """
     smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
-    dist = ndi.distance_transform_edt(mask)
-    on = dist[rr, cc] > EDGE_PX
+    if mask.all():  # no background in the box: the transform's own convention (see distance_transform_edt)
+        deep = ndi.distance_transform_edt(mask) > EDGE_PX
+    else:
+        # distance_transform_edt(mask) > EDGE_PX: survives the erosion by that disk, the array's edge counting
+        # as neither kind (disk_morphology; the same pixels, several times cheaper on a component's box)
+        deep = erode_disk(mask, EDGE_PX, 1)
+    on = deep[rr, cc]
     if on.sum() < 3:
         return 0.0
-    darkest = ndi.grey_erosion(smooth, footprint=_EIGHT)
-    seam = float(darkest[rr[on], cc[on]].mean())
-    line = np.ones(mask.shape, bool)
-    line[rr, cc] = False
-    clear = ndi.distance_transform_edt(line) > SEAM_CLEAR_PX
+    # scipy.ndimage.grey_erosion(smooth, footprint=3x3) read at the cut's pixels only: the least of the
+    # 3 x 3 neighbours, the box's edge mirrored ('reflect': a pixel beyond the edge is the edge pixel)
+    r_on, c_on = rr[on], cc[on]
+    h, w = mask.shape
+    darkest = np.min([smooth[np.clip(r_on + dr, 0, h - 1), np.clip(c_on + dc, 0, w - 1)]
+                      for dr in (-1, 0, 1) for dc in (-1, 0, 1)], axis=0)
+    seam = float(darkest.mean())
+    cut = np.zeros(mask.shape, bool)
+    cut[rr, cc] = True
+    clear = ~dilate_disk(cut, SEAM_CLEAR_PX)  # distance_transform_edt(~cut) > SEAM_CLEAR_PX (disk_morphology)
     levels = []
     for part in parts:
-        inner = part & (dist > EDGE_PX) & clear
+        inner = part & deep & clear
         if inner.sum() < 3:
             return 0.0
         levels.append(float(np.median(smooth[inner])))
@@ -496,6 +590,34 @@ def _box(mask: np.ndarray) -> tuple[slice, slice]:
     return (slice(max(int(rows[0]) - 1, 0), int(rows[-1]) + 2), slice(max(int(cols[0]) - 1, 0), int(cols[-1]) + 2))
 
 
+def _inscribed_radius(part: np.ndarray) -> float:
+    """``distance_transform_edt(part).max()``, the transform taken in the part's box only.
+
+    The box with its margin of one pixel (:func:`_box`) holds every pixel's nearest background pixel
+    or ends at the array's edge: a background pixel beyond a margin row or column is farther than
+    the margin pixel in line with it, so the distances inside the box are those of the whole array.
+    """
+    if not part.any():
+        return 0.0
+    return float(ndi.distance_transform_edt(part[_box(part)]).max())
+
+
+def _distance_map(mask: np.ndarray) -> np.ndarray:
+    """``scipy.ndimage.distance_transform_edt(mask)``, remembered for the last shape asked (read only).
+
+    A component's transform is asked for its inscribed radius (:func:`split_component`) and again by
+    the heap test and the distance-map flood of the same shape (:func:`_split_heap`, :func:`_split`).
+    """
+    key = (mask.shape, np.packbits(mask).tobytes())
+    last = _LAST_DISTANCE[0]  # one tuple, read at once (tiles may run in threads)
+    if last is not None and last[0] == key:
+        return last[1]
+    dist = ndi.distance_transform_edt(mask)
+    dist.flags.writeable = False
+    _LAST_DISTANCE[0] = (key, dist)
+    return dist
+
+
 def _divide_further(parts: list[np.ndarray], min_area: float, split_depth: float, depth: int, budget: list,
                     image: np.ndarray | None, keep: bool, fine_area: float) -> list[np.ndarray] | None:
     """The parts of a cut, each concave one split again.
@@ -533,7 +655,7 @@ def _split_at_seams(mask: np.ndarray, min_area: float, depth: int, budget: list,
     For shapes within the convexity allowance (grains face to face leave
     only shallow notches): nothing but a seam divides them.
     """
-    if depth > MAX_DEPTH or mask.sum() < 2 * min_area or concavity_depth(mask) <= MIN_DEPTH_PX:
+    if depth > MAX_DEPTH or np.count_nonzero(mask) < 2 * min_area or concavity_depth(mask) <= MIN_DEPTH_PX:
         return None
     parts = _split_at_defects(mask, min_area, 0.0, depth, budget, image, seam_only=True)
     if parts is None:
@@ -599,11 +721,11 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         along = np.abs(arc - arc[ip])
         along = np.minimum(along, total - along)
         order = np.argsort(d)
+        # a cut is a short cut: much shorter than the way round the outline (tested for all points at once)
+        short = ~((d < 2 * MIN_DEPTH_PX) | (along < 3 * d))
         taken = []
-        for i in order:
-            # a cut is a short cut: much shorter than the way round the outline
-            if d[i] < 2 * MIN_DEPTH_PX or along[i] < 3 * d[i] \
-                    or any(np.hypot(*(outline[i] - t)) < 3 for t in taken):
+        for i in order[short[order]]:
+            if any(np.hypot(*(outline[i] - t)) < 3 for t in taken):
                 continue
             taken.append(outline[i])
             if len(taken) == 6:
@@ -627,7 +749,7 @@ def _split_at_defects(mask: np.ndarray, min_area: float, split_depth: float, dep
         # notches alone mark a neck only where the cut is narrower than the thicker part (a thin band,
         # a rim or a ring cut across has deep notches on its inner side but no neck)
         if narrow:
-            radii = [float(ndi.distance_transform_edt(part).max()) - 0.5 for part in parts]
+            radii = [_inscribed_radius(part) - 0.5 for part in parts]
             narrow = 0.5 * length <= NECK_WIDTH * max(radii)
             arm = max(NOTCH_ARM_PX, NOTCH_ARM_FRACTION * length)
             ends = [_corner(outline, arc, total, x, arm, y) for x, y in ((p, q), (q, p))] if pair else []
@@ -696,7 +818,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
     of a tenth of the component at least). Neighbouring parts, one of them under the heap's floor,
     that meet at no neck and no seam are joined again (:func:`_rejoin`).
     """
-    if mask.sum() < 2 * min_area:
+    if np.count_nonzero(mask) < 2 * min_area:
         return [mask]
     if is_convex(mask, split_depth):
         # within the allowance: only a dark seam between two notches divides it
@@ -715,7 +837,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
             out.extend(split_component(piece, min_area, split_depth, image) if piece.sum() >= min_area else [piece])
         return out
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    radius = float(ndi.distance_transform_edt(mask).max())
+    radius = float(_distance_map(mask).max())
     grains = float(mask.sum()) / (np.pi * radius ** 2)  # how many of its thickest grain it could hold
     budget = [int(MAX_CUTS * max(1.0, grains / HEAP_GRAINS))]
     parts = _split(mask, min_part, split_depth, 0, budget, image, min_area) or [mask]
@@ -729,7 +851,7 @@ def split_component(mask: np.ndarray, min_area: float, split_depth: float = 0.08
 def _meet_at_necks(pieces: list[np.ndarray]) -> bool:
     """Whether every two touching pieces meet along less than :data:`ALONE_NECK` of the thinner one's
     inscribed diameter (the contact counted as the pixels of one 8-adjacent to the other)."""
-    radii = [float(ndi.distance_transform_edt(p).max()) for p in pieces]
+    radii = [_inscribed_radius(p) for p in pieces]
     for i, a in enumerate(pieces):
         grown = ndi.binary_dilation(a, _EIGHT)
         for j in range(i + 1, len(pieces)):
@@ -900,7 +1022,7 @@ def _split(mask: np.ndarray, min_area: float, split_depth: float, depth: int,
     if mask.sum() < 2 * min_area:
         return None
     min_part = max(min_area, MIN_PART_FRACTION * float(mask.sum()))
-    dist = ndi.distance_transform_edt(mask)
+    dist = _distance_map(mask)
     for ws, parts, n in _distance_floods(dist, mask):
         if min(int(p.sum()) for p in parts) < min_part:
             continue
@@ -966,7 +1088,7 @@ def _split_heap(mask: np.ndarray, split_depth: float, depth: int, budget: list, 
         # the dark gaps between packed grains (filled as holes) are background for the distance map
         smooth = median3(np.asarray(image, np.float32))  # single noisy pixels are no gap
         solid = mask & (smooth >= GAP_LEVEL * float(np.median(smooth[mask])))
-    dist = ndi.distance_transform_edt(solid)
+    dist = _distance_map(solid)
     dmax = float(dist.max())
     if float(mask.sum()) < HEAP_MIN_GRAINS * np.pi * dmax ** 2:
         return None
@@ -994,18 +1116,18 @@ def _distance_floods(dist: np.ndarray, mask: np.ndarray, budget: list | None = N
     n : int
         Number of parts.
     """
-    from skimage.morphology import h_maxima
-    from skimage.segmentation import watershed
-
     dmax = float(dist.max())
+    squared = squared_distances(dist)
     for frac in H_FRACTIONS:
         h = max(frac * dmax, H_MIN_PX)
         if h >= dmax:
             continue
-        markers, n = ndi.label(h_maxima(dist, h), structure=_EIGHT)
+        # skimage.morphology.h_maxima and skimage.segmentation.watershed, without their set-up costs
+        # (tests/test_split_kernels_exact.py)
+        markers, n = ndi.label(distance_h_maxima(dist, h, squared), structure=_EIGHT)
         if n < 2:
             continue
         if budget is not None:
             budget[0] -= 1
-        ws = watershed(-dist, markers, mask=mask)
+        ws = watershed_window(-dist, markers, mask)
         yield ws, [ws == k for k in range(1, n + 1)], n
