@@ -80,6 +80,7 @@ from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
 from grainhabit.plugins.segment import annotations, outer_edge, population, specks, tiling
+from grainhabit.plugins.segment.dark_seams import split_at_dark_seams
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.packed import packed_field, split_rafts
@@ -530,6 +531,12 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     labels, split, n_rafts = split_rafts(arr, labels, split, smallest_grain_area(p, pixel_size_nm), boxes)
     if n_rafts:
         notes.append(f"segment-grains: {n_rafts} raft(s) of packed particles divided at their gaps")
+        boxes = cluster_of = None
+        if clusters is not None:
+            split_by_label = np.r_[False, split]
+    labels, split, n_seamed = split_at_dark_seams(arr, labels, split, smallest_grain_area(p, pixel_size_nm))
+    if n_seamed:
+        notes.append(f"segment-grains: {n_seamed} grain(s) divided along dark seams")
         boxes = cluster_of = None
         if clusters is not None:
             split_by_label = np.r_[False, split]

@@ -1,0 +1,88 @@
+"""Grains divided along dark seams (plugins/segment/dark_seams.py).
+
+The references are handbook geometry (the area of a square, side^2) and the
+cases the module must leave alone (a convex grain, a grain with no seam).
+"""
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.segment.dark_seams import divide_at_seams, split_at_dark_seams
+from grainhabit.plugins.segment.segment_grains import segment_image
+
+SIDE = 40
+
+
+def _l_of_squares(seam_level=0.55, noise=0.02, seed=0):
+    """Three squares of SIDE px in an L, face to face, 2-px seams at ``seam_level`` between them.
+
+    Returns the blurred noisy image (background 0, squares 1) and the truth labels.
+    """
+    rng = np.random.default_rng(seed)
+    img = np.zeros((160, 160), np.float32)
+    truth = np.zeros(img.shape, np.int32)
+    corners = [(30, 30), (30, 30 + SIDE), (30 + SIDE, 30)]
+    for k, (r, c) in enumerate(corners, start=1):
+        img[r:r + SIDE, c:c + SIDE] = 1.0
+        truth[r:r + SIDE, c:c + SIDE] = k
+    # the seams: where two squares meet, two pixels darker
+    img[30:30 + SIDE, 30 + SIDE - 1:30 + SIDE + 1] = seam_level
+    img[30 + SIDE - 1:30 + SIDE + 1, 30:30 + SIDE] = seam_level
+    img = ndi.gaussian_filter(img, 1.0) + rng.normal(0, noise, img.shape).astype(np.float32)
+    return img, truth
+
+
+def test_l_of_squares_is_divided_into_its_squares():
+    img, truth = _l_of_squares()
+    mask = truth > 0
+    parts = divide_at_seams(img, mask, min_area=50)
+    assert parts is not None and len(parts) == 3
+    # each part one square: area side^2 within 10 % (handbook geometry), and on one truth square
+    for part in parts:
+        assert abs(part.sum() - SIDE ** 2) <= 0.1 * SIDE ** 2
+        ids, counts = np.unique(truth[part], return_counts=True)
+        assert counts.max() >= 0.9 * part.sum()
+    assert np.array_equal(np.logical_or.reduce(parts), mask)
+
+
+def test_no_seam_no_division():
+    # the same L without dark seams: one grain (an L-shaped crystal, or a twin), nothing to divide along
+    img, truth = _l_of_squares(seam_level=1.0)
+    assert divide_at_seams(img, truth > 0, min_area=50) is None
+
+
+def test_convex_textured_grain_is_never_divided():
+    # a disc of radius 45 px with dark speckle texture inside: solidity ~1, not looked at
+    rng = np.random.default_rng(3)
+    yy, xx = np.mgrid[:120, :120]
+    disc = (yy - 60) ** 2 + (xx - 60) ** 2 <= 45 ** 2
+    img = np.where(disc, 1.0, 0.0).astype(np.float32)
+    specks = ndi.gaussian_filter(rng.random(img.shape), 1.5) < 0.45
+    img[disc & specks] = 0.4
+    assert divide_at_seams(ndi.gaussian_filter(img, 1.0), disc, min_area=50) is None
+
+
+def test_frame_pass_renumbers_in_raster_order_and_marks_split():
+    img, truth = _l_of_squares()
+    labels = (truth > 0).astype(np.int32)
+    out, split, divided = split_at_dark_seams(img, labels, np.zeros(1, bool), min_area=50)
+    assert divided == 1 and out.max() == 3 and split.all()
+    # raster order: the label of each part's first pixel increases
+    first = [np.flatnonzero(out.ravel() == k)[0] for k in range(1, 4)]
+    assert first == sorted(first)
+
+
+def test_segment_step_finds_the_three_squares_among_single_ones():
+    # the L beside five single squares: the splitter leaves a convex pair of squares face to face, twice
+    # the frame's usual grain, which the seam pass divides; every grain one square (side^2 within 10 %)
+    rng = np.random.default_rng(1)
+    img = np.zeros((300, 300), np.float32)
+    l_img, _ = _l_of_squares(noise=0.0)
+    img[:160, :160] = l_img
+    for r, c in ((40, 200), (120, 220), (200, 40), (210, 130), (220, 230)):
+        img[r:r + SIDE, c:c + SIDE] = ndi.gaussian_filter(np.ones((SIDE, SIDE), np.float32), 1.0)
+    img = ndi.gaussian_filter(img, 0.5) + rng.normal(0, 0.02, img.shape).astype(np.float32)
+    labels, split, notes = segment_image(img, 5.0)
+    areas = np.bincount(labels.ravel())[1:]
+    assert labels.max() == 8, notes
+    assert np.all(np.abs(areas - SIDE ** 2) <= 0.12 * SIDE ** 2), areas
