@@ -629,6 +629,26 @@ class BoundedOutline:
         self.valid = np.zeros((u, 4), bool)
         self.within = -math.inf
 
+    @classmethod
+    def resumed(cls, sig, spec, aa, library: ModelLibrary, level: int, tau: float, faces, margin: float, lb, plan,
+                state, within: float, shifts, dist, valid) -> "BoundedOutline":
+        """A comparison in the state its own :meth:`upto` of ``within`` leaves (``outline_batch.match_outlines``).
+
+        ``spec``, ``aa``, ``margin``, ``lb`` and ``plan`` are what ``__init__`` computes of ``sig``; ``state``
+        (:class:`outline_bound.CompareState`), ``shifts``, ``dist`` and ``valid`` (u, 4) what :meth:`upto` leaves
+        (kept, not copied).
+        """
+        self = cls.__new__(cls)
+        tab = library.tables
+        self.n = np.asarray(sig).size
+        self.spec, self.aa = spec, aa
+        self.sq, self.fft = tab.sig_sq[level], tab.sig_fft[level]
+        self.margin, self.lb, self.plan = margin, lb, plan
+        self.tab, self.tau2, self.state = tab, tau * tau, state
+        self.shifts, self.dist, self.valid = shifts, dist, valid
+        self.within = within
+        return self
+
     def _rows(self, r):
         return _distance_rows(self.spec, self.aa, self.fft[r], self.sq[r], self.n)
 

@@ -1,0 +1,281 @@
+"""The outline matches of many grains at once: the same numbers as one grain at a time, fewer array calls.
+
+A grain's outline match (:func:`engine.match_outline` with a reach ``within``) is a few dozen numpy
+calls on arrays of a few hundred numbers: the radial signature, its spectrum, the lower bounds of
+every shape's distance, two or three rounds of choosing the shapes to compare
+(:func:`outline_bound.shapes_to_compare`) and the look-alike windows of the compared rows. Its cost
+is the calls, not the arithmetic. :func:`match_outlines` does the same for the outlines of many
+grains, each step one call over all of them:
+
+- the signatures from the edges of all outlines laid end to end (every element of the ray-edge
+  crossings is computed as for one outline; the farthest crossing of each ray of each grain by
+  one ``np.maximum.at``);
+- the spectra by one ``rfft`` of the (grains, n) signatures (each row transformed on its own:
+  the bits of one call per grain);
+- the choice of the shapes to compare by rounds over all grains at once, each grain's
+  conditions on its own row (minima, comparisons and ``nextafter`` only: exact);
+- the distance rows of every (grain, shape) pair a round adds by one inverse FFT (each row on its own),
+  and the look-alike windows of all compared rows of all grains by one
+  :func:`engine._candidates_of_rows` (row by row by construction).
+
+Each grain's :class:`engine.OutlineMatch` carries a :class:`engine.BoundedOutline` in the state that
+grain's own match leaves, so a fit that needs a wider reach goes on from it as before. Every
+number is the one :func:`engine.match_outline` gives (tested in ``tests/test_outline_batch.py``).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from grainhabit.plugins.habit import outline_bound
+from grainhabit.plugins.habit.signature import _ray_directions, check_n_angles, check_polygon, polygon_centroid
+
+
+def radial_signatures_about(polys, centroids, areas, n_angles: int = 256) -> np.ndarray:
+    """:func:`signature.radial_signature_about` of many outlines, one row each.
+
+    Parameters
+    ----------
+    polys : sequence of ndarray, shape (k_i, 2)
+        Closed outlines, as checked by :func:`signature.check_polygon`.
+    centroids : sequence of ndarray, shape (2,)
+        Their centroids, and
+    areas : sequence of float
+        their unsigned areas (:func:`signature.polygon_centroid`).
+    n_angles : int
+        Number of ray directions.
+
+    Returns
+    -------
+    ndarray, shape (len(polys), n_angles)
+        Row i the bits of ``radial_signature_about(polys[i], centroids[i], areas[i], n_angles)``:
+        every element is computed by the same operation on the same operands, the edges of all
+        outlines laid end to end (each edge's next vertex taken within its own outline).
+    """
+    n = check_n_angles(n_angles)
+    g = len(polys)
+    if g == 0:
+        return np.zeros((0, n))
+    k = np.array([len(p) for p in polys], np.int64)
+    q = np.concatenate([p - c for p, c in zip(polys, centroids)])
+    first = np.cumsum(k) - k
+    # the next vertex of each vertex within its own outline (the last one's is its outline's first)
+    nxt = np.arange(1, q.shape[0] + 1)
+    nxt[first + k - 1] = first
+    e = q[nxt] - q
+    a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))
+    da = a0[nxt] - a0
+    da = (da + n / 2) % n - n / 2
+    lo = np.floor(np.minimum(a0, a0 + da)).astype(np.int64) - 1
+    cnt = np.floor(np.maximum(a0, a0 + da)).astype(np.int64) + 2 - lo
+    wide = np.abs(da) > n / 2 - 2
+    lo[wide], cnt[wide] = 0, n
+    cnt = np.minimum(cnt, n)
+    edge = np.repeat(np.arange(q.shape[0]), cnt)
+    start = np.cumsum(cnt) - cnt
+    ray = (lo[edge] + np.arange(edge.size) - start[edge]) % n
+    cos_ray, sin_ray = _ray_directions(n)
+    dx, dy = cos_ray[ray], sin_ray[ray]
+    ex, ey, qx, qy = e[:, 0][edge], e[:, 1][edge], q[:, 0][edge], q[:, 1][edge]
+    det = -dx * ey + ex * dy
+    ok = np.abs(det) > 1e-14
+    det = np.where(ok, det, 1.0)
+    t = (-q[:, 0] * e[:, 1] + e[:, 0] * q[:, 1])[edge] / det
+    s = (dx * qy - dy * qx) / det
+    hit = ok & (s >= -1e-9) & (s <= 1 + 1e-9) & (t > 0)
+    grain = np.repeat(np.arange(g), k)[edge]
+    r = np.zeros(g * n)
+    np.maximum.at(r, (grain * n + ray)[hit], t[hit])
+    r = r.reshape(g, n)
+    return r / np.array([math.sqrt(a) for a in areas])[:, None]
+
+
+def distance_rows_of(spec, aa, sig_fft, sig_sq, n: int) -> np.ndarray:
+    """:func:`engine._distance_rows` of rows that each pair one outline with one shape.
+
+    Parameters
+    ----------
+    spec : ndarray, shape (k, n // 2 + 1)
+        ``rfft`` of the outline of each row; ``aa`` (k,) its squared norm.
+    sig_fft, sig_sq : ndarray, shape (k, n // 2 + 1) and (k,)
+        The conjugate spectrum and squared norm of the shape of each row.
+    n : int
+        Signature length.
+
+    Returns
+    -------
+    ndarray, shape (k, n)
+        Squared RMS distances at every cyclic shift: row j the bits of
+        ``_distance_rows(spec[j], aa[j], sig_fft[j:j+1], sig_sq[j:j+1], n)`` (the same
+        element-wise operations; the inverse FFT transforms each row on its own).
+    """
+    d = np.fft.irfft(spec * sig_fft, n, axis=1)
+    if n & (n - 1) == 0:
+        np.multiply(d, -2.0 / n, out=d)
+        np.add(d, ((aa + sig_sq) / n)[:, None], out=d)
+    else:
+        np.multiply(d, 2.0, out=d)
+        np.subtract((aa + sig_sq)[:, None], d, out=d)
+        np.divide(d, n, out=d)
+    return d
+
+
+def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
+    """:func:`outline_bound.shapes_to_compare` of many outlines at once, each from no earlier state.
+
+    Parameters
+    ----------
+    lb : ndarray, shape (g, u)
+        :func:`outline_bound.lower_bounds` of every outline (row) and shape.
+    tau2 : ndarray, shape (g,)
+        Squares of the outlines' misfit units.
+    within : float
+        As for :func:`outline_bound.shapes_to_compare` (the same for all outlines).
+    plan : outline_bound.ComparePlan
+        The same views for all outlines.
+    distances : callable
+        ``distances(grains, rows)`` -> (len(rows), n) squared distances at every shift of the
+        shape ``rows[j]`` to the outline ``grains[j]``.
+    margin : ndarray, shape (g,)
+        Each outline's margin.
+
+    Returns
+    -------
+    grains, rows : ndarray of int
+        The (outline, shape) pairs compared, each once.
+    d : ndarray, shape (len(rows), n)
+        Their distance rows.
+    comp, dmin : ndarray, shape (g, u)
+        The state each outline's own :func:`outline_bound.shapes_to_compare` leaves
+        (:class:`outline_bound.CompareState`).
+
+    Notes
+    -----
+    Each round applies, row by row, the conditions of :func:`outline_bound.shapes_to_compare`
+    (its ``more``) to every outline that is still adding shapes; the rounds of one outline are
+    those of its own call, so the same shapes are compared.
+    """
+    inf = np.inf
+    g, u = lb.shape
+    t2p = tau2[:, None] * plan.prior_ok[None, :]
+    lbk = lb + t2p
+    gate = tau2 * within + margin
+    d_free = not (plan.all_ok and within >= plan.prior_spread)
+    class_inf = plan.class_inf                                     # (classes, u)
+    cls = plan.cls
+    ok_view = np.isfinite(plan.prior_ok)
+
+    def more(live, comp, dmin):
+        # outline_bound.shapes_to_compare's ``more`` on the rows ``live``
+        key = dmin[live] + t2p[live]
+        top = key.min(axis=1) + gate[live]
+        m = (np.where(key > top[:, None], key, inf)[:, None, :] + class_inf[None]).min(axis=2)   # (l, classes)
+        lbk_open = np.where(comp[live], inf, lbk[live])
+        low = (lbk_open[:, None, :] + class_inf[None]).min(axis=2)
+        top_up = np.nextafter(top, inf)
+        lim = np.where(m < inf, m + margin[live][:, None], np.nextafter(low, inf))
+        lim = np.maximum(lim, top_up[:, None])
+        lim = np.concatenate([lim, top_up[:, None]], axis=1)        # the shapes of no allowed class
+        new = lbk_open < np.take_along_axis(lim, np.broadcast_to(cls, (live.size, u)), axis=1)
+        if d_free:
+            lb_open = np.where(comp[live], inf, lb[live])
+            dm = dmin[live]
+            new |= lb_open < (dm.min(axis=1) + margin[live])[:, None]
+            new |= (lb_open < (np.where(ok_view, dm, inf).min(axis=1) + margin[live])[:, None]) & ok_view
+        return new
+
+    comp = np.zeros((g, u), bool)
+    dmin = np.full((g, u), inf)
+    new = lbk <= (lbk.min(axis=1) + gate)[:, None]
+    new[np.arange(g)[:, None], (lbk[:, None, :] + class_inf[None]).argmin(axis=2)] = True
+    if d_free:
+        new[np.arange(g), lb.argmin(axis=1)] = True
+        new[np.arange(g), np.where(ok_view, lb, inf).argmin(axis=1)] = True
+    live = np.arange(g)
+    grains, rows, blocks = [], [], []
+    while live.size:
+        gi, ri = np.nonzero(new)
+        if gi.size == 0:
+            break
+        gi = live[gi]
+        d = distances(gi, ri)
+        dmin[gi, ri] = d.min(axis=1)
+        comp[gi, ri] = True
+        grains.append(gi)
+        rows.append(ri)
+        blocks.append(d)
+        # an outline goes on while it added shapes and has shapes left (its own call's loop)
+        live = np.unique(gi)
+        live = live[~comp[live].all(axis=1)]
+        if live.size == 0:
+            break
+        new = more(live, comp, dmin)
+    if not rows:
+        return np.zeros(0, np.intp), np.zeros(0, np.intp), np.zeros((0, 0)), comp, dmin
+    return np.concatenate(grains), np.concatenate(rows), np.concatenate(blocks), comp, dmin
+
+
+def match_outlines(contours, library, pixel_scale: float, outline_noise_px: float, outline_noise_floor: float,
+                   corner_radius_px: float, within: float, faces) -> list:
+    """:func:`engine.match_outline` (with ``within``) of many outlines: the same matches, fewer array calls.
+
+    Parameters
+    ----------
+    contours : sequence of array_like, shape (k_i, 2)
+        Closed outlines in lab axes.
+    library, pixel_scale, outline_noise_px, outline_noise_floor, corner_radius_px, within, faces
+        As for :func:`engine.match_outline` (the same for all outlines; ``within`` a number).
+
+    Returns
+    -------
+    list of engine.OutlineMatch
+        Entry i equal, field by field and bit by bit, to ``match_outline(contours[i], ...)``,
+        its ``compared`` in the state that call leaves.
+    """
+    from grainhabit.plugins.habit import engine as en
+
+    if not contours:
+        return []
+    n = library.signatures.shape[-1]
+    polys = [check_polygon(c, "contour_xy") for c in contours]
+    cen_area = [polygon_centroid(c) for c in polys]
+    sigs = radial_signatures_about(polys, [ca[0] for ca in cen_area], [ca[1] for ca in cen_area], n)
+    g = len(polys)
+    areas = [ca[1] for ca in cen_area]
+    taus = [max(outline_noise_px * pixel_scale / math.sqrt(a), outline_noise_floor) for a in areas]
+    levels_at = np.asarray(en.ROUNDING_LEVELS)
+    levels = np.array([int(np.argmin(np.abs(levels_at - corner_radius_px / (math.sqrt(4.0 * a / math.pi)
+                                                                                 / pixel_scale))))
+                       for a in areas], np.intp)
+    tab = library.tables
+    bound = library.spectral_bound
+    plan = library.compare_plan(tuple(faces))
+    spec = np.fft.rfft(sigs, axis=1)
+    aa = np.array([s @ s for s in sigs])
+    margin = outline_bound.BOUND_MARGIN * (aa + bound.sq_max[levels]) / n
+    lb = np.stack([outline_bound.lower_bounds(spec[i], aa[i], tab.sig_sq[levels[i]], bound.weighted_mag[levels[i]],
+                                              n, margin[i]) for i in range(g)])
+    tau2 = np.array([t * t for t in taus])
+
+    def distances(gi, ri):
+        lv = levels[gi]
+        return distance_rows_of(spec[gi], aa[gi], tab.sig_fft[lv, ri], tab.sig_sq[lv, ri], n)
+
+    gi, ri, d, comp, dmin = choose_and_compare(lb, tau2, float(within), plan, distances, margin)
+    u = tab.face.size
+    shifts = np.zeros((g, u, 4), np.int64)
+    dist = np.full((g, u, 4), np.inf)
+    valid = np.zeros((g, u, 4), bool)
+    if ri.size:
+        sh, di, va = en._candidates_of_rows(d, tab.turn_win[ri], tab.turn_off[ri], tab.turn_ok[ri])
+        shifts[gi, ri], dist[gi, ri], valid[gi, ri] = sh, di, va
+    out = []
+    for i in range(g):
+        compared = en.BoundedOutline.resumed(sigs[i], spec[i], aa[i], library, int(levels[i]), taus[i], faces,
+                                             float(margin[i]), lb[i], plan,
+                                             outline_bound.CompareState(comp[i], dmin[i]), float(within),
+                                             shifts[i], dist[i], valid[i])
+        out.append(en.OutlineMatch(sigs[i], shifts[i].copy(), dist[i].copy(), valid[i].copy(), float(taus[i]),
+                                   float(areas[i]), int(levels[i]), float(within), tuple(faces), compared))
+    return out
