@@ -425,9 +425,9 @@ def outline_evidence(contour_lab, params, pixel_scale=1.0):
     return match, best_families(match.signature, match.level)
 
 
-#: Outlines matched together by :func:`outline_evidence_many` (their distance rows, about 100 of
-#: n = 256 per outline, stay in cache; measured faster than 8 or 64 at a time).
-OUTLINES_AT_ONCE = 32
+#: Outlines matched together by :func:`outline_evidence_many` (the inverse FFTs go by blocks of
+#: ``outline_batch.ROWS_AT_ONCE`` rows, so a larger number costs no cache).
+OUTLINES_AT_ONCE = 64
 
 
 def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:

@@ -32,6 +32,11 @@ from grainhabit.plugins.habit import outline_bound
 from grainhabit.plugins.habit.signature import _ray_directions, check_n_angles, check_polygon, polygon_centroid
 
 
+#: Distance rows computed by one inverse FFT: a block's spectra and rows (about 1 MB) stay in cache
+#: (measured: 256-512 rows 0.28-0.31 ms per outline, every row at once 0.33-0.56).
+ROWS_AT_ONCE = 256
+
+
 def radial_signatures_about(polys, centroids, areas, n_angles: int = 256) -> np.ndarray:
     """:func:`signature.radial_signature_about` of many outlines, one row each.
 
@@ -260,7 +265,13 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
 
     def distances(gi, ri):
         lv = levels[gi]
-        return distance_rows_of(spec[gi], aa[gi], tab.sig_fft[lv, ri], tab.sig_sq[lv, ri], n)
+        if gi.size <= ROWS_AT_ONCE:
+            return distance_rows_of(spec[gi], aa[gi], tab.sig_fft[lv, ri], tab.sig_sq[lv, ri], n)
+        d = np.empty((gi.size, n))
+        for a in range(0, gi.size, ROWS_AT_ONCE):
+            g_, r_, l_ = gi[a:a + ROWS_AT_ONCE], ri[a:a + ROWS_AT_ONCE], lv[a:a + ROWS_AT_ONCE]
+            d[a:a + ROWS_AT_ONCE] = distance_rows_of(spec[g_], aa[g_], tab.sig_fft[l_, r_], tab.sig_sq[l_, r_], n)
+        return d
 
     gi, ri, d, comp, dmin = choose_and_compare(lb, tau2, float(within), plan, distances, margin)
     u = tab.face.size
