@@ -231,6 +231,11 @@ class ModelLibrary:
         return np.abs(self.alphas[None, :] - self.grid[:, None]) < 1e-9
 
     @functools.cached_property
+    def habit_class(self) -> np.ndarray:
+        """(m,) habit class of every model: 0 cube (alpha <= 1.5), 1 cuboctahedron, 2 octahedron (alpha >= 3)."""
+        return np.where(self.alphas <= CUBE_ALPHA_MAX, 0, np.where(self.alphas < OCTAHEDRON_ALPHA, 1, 2))
+
+    @functools.cached_property
     def spectral_bound(self) -> "outline_bound.SpectralBound":
         """Tables of the outline match's lower bound (:mod:`outline_bound`; kept, not pickled)."""
         tab = self.tables
@@ -253,6 +258,7 @@ class ModelLibrary:
         state = dict(self.__dict__)
         state.pop("grid_index", None)
         state.pop("at_grid", None)
+        state.pop("habit_class", None)
         state.pop("spectral_bound", None)
         state.pop("_compare_plans", None)
         return state
@@ -1468,9 +1474,12 @@ def outline_settles(fit: AlphaFit, library: ModelLibrary, tolerance: float = 4.0
     a fit on a match that compared only the shapes within ``tolerance`` and the least of each
     class (:func:`match_outline` with ``within``) gives the same answer.
     """
+    if not np.isnan(fit.alpha):
+        return False
     near = fit.score <= tolerance + _INTERIOR_GATE
-    cls = np.where(library.alphas <= CUBE_ALPHA_MAX, 0, np.where(library.alphas < OCTAHEDRON_ALPHA, 1, 2))
-    return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
+    cls = library.habit_class
+    # one class among the near models: the least and the largest class number agree
+    return bool(near.any() and cls[near].min() == cls[near].max())
 
 
 #: Directions of the support function sampled by :func:`complete_by_symmetry` (a multiple of 6,
@@ -1506,7 +1515,7 @@ def _turns(fold: int):
     return out
 
 
-def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS) -> np.ndarray:
+def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS, support=None) -> np.ndarray:
     """Areas of the convex hulls of ``pts`` and their copies turned about each of many centres.
 
     Parameters
@@ -1519,6 +1528,9 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         The copies are turned by 360 j / ``fold`` degrees, j = 1 ... fold - 1.
     n_dir : int
         Directions of the support function (a multiple of ``fold``).
+    support : ndarray, shape (n_dir,), optional
+        :func:`support_function` ``(pts, n_dir)`` where the caller has it (a search calls this
+        for many grids of centres about the same points).
 
     Returns
     -------
@@ -1548,7 +1560,7 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, _, (w_sq, w_next) = _support_tables(n, fold)
     period = n // fold
-    hk = (p @ u.T).max(axis=0)                                         # (n,)
+    hk = support_function(p, n) if support is None else support      # (n,)
     # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
     # fewer rows may round differently: the chunks below give the floats of all centres at once)
     cu = cen @ u.T                                                     # (c, n)
@@ -1567,6 +1579,12 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         np.add(q, nxt, out=q)
         out[a:a + rows] = (0.5 * fold) * np.abs(np.einsum("ci,ci->c", h, q))
     return out
+
+
+def support_function(pts, n_dir: int) -> np.ndarray:
+    """Support function h(u_i) = max_k p_k . u_i of points at ``n_dir`` directions u_i (angle 2 pi i / n_dir)."""
+    u = _support_tables(int(n_dir), 1)[0]
+    return (np.asarray(pts, float) @ u.T).max(axis=0)
 
 
 #: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
@@ -1657,11 +1675,14 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> n
     best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
     if centre is not None:
         best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
+    support = {}                                   # the support function of the points, per direction count
     while half > stop:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
-        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
+        if n_dir not in support:
+            support[n_dir] = support_function(pts, n_dir)
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir, support[n_dir])))]
         half /= 3.0
     both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
     return both[ConvexHull(both).vertices]

@@ -1,0 +1,57 @@
+"""Small habit kernels against the slower forms they replace (numpy's median, the support function
+recomputed per grid, the class test by np.unique), bit for bit. Test data: random numbers and random
+polygons (invented), drawn grains through the test builders."""
+import numpy as np
+import pytest
+
+from grainhabit.plugins.habit import engine as gr
+from grainhabit.plugins.habit import interior as gi
+from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, OCTAHEDRON_ALPHA
+
+
+def test_median_of_equals_numpy_median():
+    rng = np.random.default_rng(4)
+    for _ in range(3000):
+        k = int(rng.integers(1, 400))
+        v = rng.standard_normal(k) * rng.choice([1.0, 1e-3, 1e5]) + rng.choice([0.0, 1e3])
+        if rng.uniform() < 0.3:
+            v = np.round(v, 1)                                  # many ties
+        if rng.uniform() < 0.2:
+            v = v.astype(np.float32)
+        got, ref = gi.median_of(v), float(np.median(v))
+        assert got == ref and type(got) is float
+    assert np.isnan(gi.median_of(np.array([1.0, np.nan, 2.0])))
+    assert gi.median_of(np.array([3, 1, 2])) == 2.0             # integers go to numpy's median
+
+
+def test_hull_areas_with_the_support_given_equal_those_computing_it():
+    rng = np.random.default_rng(6)
+    for _ in range(40):
+        pts = rng.uniform(-50, 50, (int(rng.integers(3, 60)), 2)) + rng.uniform(-300, 300, 2)
+        cen = pts.mean(axis=0) + rng.uniform(-5, 5, (81, 2))
+        for fold in (2, 3, 6):
+            for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
+                ref = gr.symmetric_hull_areas(pts, cen, fold, n)
+                got = gr.symmetric_hull_areas(pts, cen, fold, n, gr.support_function(pts, n))
+                assert np.array_equal(got, ref)
+
+
+def _settles_before(fit, library, tolerance=4.0):
+    # the form replaced: the classes of the near models by np.unique, built per call
+    near = fit.score <= tolerance + gr._INTERIOR_GATE
+    cls = np.where(library.alphas <= CUBE_ALPHA_MAX, 0, np.where(library.alphas < OCTAHEDRON_ALPHA, 1, 2))
+    return bool(np.isnan(fit.alpha) and np.unique(cls[near]).size == 1)
+
+
+def test_outline_settles_equals_the_previous_form():
+    lib = gr.model_library()
+    rng = np.random.default_rng(1)
+    m = lib.alphas.size
+    for _ in range(500):
+        score = rng.exponential(rng.choice([2.0, 20.0, 200.0]), m)
+        score[rng.integers(0, m)] = 0.0
+        if rng.uniform() < 0.2:
+            score[:] = np.inf
+        fit = gr.AlphaFit(float(rng.choice([np.nan, 2.0])), 1.0, 2.0, 2.0, "100", 0.0, 0.1, "", score)
+        for tol in (0.0, 4.0, 9.0):
+            assert gr.outline_settles(fit, lib, tol) == _settles_before(fit, lib, tol)
