@@ -127,3 +127,29 @@ def test_frame_columns_equal_those_with_outlines_matched_one_at_a_time(contrast,
     for k, v in now.items():
         a, b = np.asarray(v), np.asarray(before[k])
         assert (np.all(a == b) if a.dtype == object else np.array_equal(a, b, equal_nan=True)), k
+
+
+def _same_fit(a, b):
+    for f in ("alpha", "alpha_lo", "alpha_hi", "alpha_best", "face", "rotation_deg", "outline_misfit", "note",
+              "facet_chi2", "interior_level", "relief_chi2"):
+        x, y = getattr(a, f), getattr(b, f)
+        assert x == y or (np.isnan(x) and np.isnan(y)), f
+    assert np.array_equal(a.score, b.score) and np.array_equal(a.signature, b.signature)
+
+
+@pytest.mark.parametrize("tolerance", [0.0, 4.0, 25.0])
+def test_outline_fits_of_many_matches_equal_one_at_a_time(tolerance):
+    # every field of fit_alpha without interior, on matches of the gate's reach and on full matches;
+    # near-ties of the score, the tied runs and the squares of scalars (numpy's pow) included
+    lib = gr.model_library()
+    contours = _outlines(seed=11)
+    bounded = ob.match_outlines(contours, lib, 1.0, 0.25, 0.003, 1.0, gr.outline_reach(4.0), gr.VIEWS)
+    full = [gr.match_outline(c, lib) for c in contours]
+    small = ob.match_outlines(contours, lib, 1.0, 0.25, 0.003, 1.0, 0.0, gr.VIEWS)
+    for matches in (bounded, full, small):
+        got = ob.outline_fits(matches, lib, tolerance)
+        for c, m, fit in zip(contours, matches, got):
+            _same_fit(fit, gr.fit_alpha(c, None, library=lib, tolerance=tolerance, match=m))
+    assert ob.outline_fits([], lib, 4.0) == []
+    with pytest.raises(ValueError):
+        ob.outline_fits(ob.match_outlines(contours[:2], lib, 1.0, 0.25, 0.003, 1.0, 4.0, ("111",)), lib, 4.0)

@@ -458,7 +458,8 @@ def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
     return out
 
 
-def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False, outline=None):
+def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False, outline=None,
+                         outline_fit=None):
     """Habit of one grain, with the Wulff fit it rests on (a generator of interior-fit requests).
 
     The placements of its interior fits are yielded as requests (:func:`engine.fit_alpha_steps`):
@@ -486,6 +487,9 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     outline : tuple, optional
         :func:`outline_evidence` of ``contour_lab`` (with these parameters and
         ``pixel_scale``) where the caller has it already; else computed here.
+    outline_fit : AlphaFit, optional
+        :func:`engine.fit_alpha` of ``contour_lab`` without interior on ``outline``'s match
+        (the step's fit options) where the caller has it (:func:`outline_batch.outline_fits`).
 
     Returns
     -------
@@ -502,7 +506,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     match, families = outline_evidence(contour_lab, p, pixel_scale) if outline is None else outline
     tau = match.tau
     # outline first: the best Wulff outline alone
-    fit = en.fit_alpha(contour_lab, None, **kw, match=match)
+    fit = en.fit_alpha(contour_lab, None, **kw, match=match) if outline_fit is None else outline_fit
     sig = match.signature
     pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1], match.level)
     (d_plate, ip, fp), (d_rod, ir, fr) = families
@@ -793,23 +797,25 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p,
     """Habit, score, evidence columns and fit of grain row ``i`` (None if its outline is too small).
 
     A generator of interior-fit requests (:func:`classify_grain_steps`); see :func:`classify_frame`.
-    ``evidence`` is ``(contour, interior, outline)`` of the grain where the caller has them
-    (:func:`engine.grain_evidence_lazy`, :func:`outline_evidence`); else they are computed here.
+    ``evidence`` is ``(contour, interior, outline, outline_fit)`` of the grain where the caller has them
+    (:func:`engine.grain_evidence_lazy`, :func:`outline_evidence`, :func:`outline_batch.outline_fits`;
+    ``outline`` or ``outline_fit`` may be None); else they are computed here.
     """
     g = frame.grains
     lab = int(frame.grains["label"][i])
     if evidence is None:
         contour, interior = en.grain_evidence_lazy(labels, signal, mode, outline_px, lab, p["erode_px"])
-        outline = None
+        outline = outline_fit = None
     else:
-        contour, interior, outline = evidence
+        contour, interior, outline, outline_fit = evidence
     if contour is None or len(contour) < 8:
         return None
     hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
     if hull is not None and not all(np.isfinite(hull)):
         hull = None
     habit, score, ev, fit = yield from classify_grain_steps(contour, interior if p["interior"] else None, p,
-                                                            hull=hull, split=bool(split[i]), outline=outline)
+                                                            hull=hull, split=bool(split[i]), outline=outline,
+                                                            outline_fit=outline_fit)
     fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
     if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])
                      or (habit == "octahedron" and score <= 0.5)):
@@ -884,9 +890,14 @@ def classify_frame(frame, params=None) -> dict:
         evidence = [en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"])
                     for i in rows]
         usable = [k for k, (contour, _) in enumerate(evidence) if contour is not None and len(contour) >= 8]
-        outlines = dict(zip(usable, outline_evidence_many([evidence[k][0] for k in usable], p)))
+        found = outline_evidence_many([evidence[k][0] for k in usable], p)
+        outlines = dict(zip(usable, found))
+        # and their outline-only fits (outline_batch.outline_fits: the same fits as one at a time)
+        fits = {} if any(o is None for o in found) else \
+            dict(zip(usable, outline_batch.outline_fits([o[0] for o in found], en.fit_options(p)["library"],
+                                                        p["tolerance"])))
         results += en.run_together([_grain_steps(frame, i, contours[i], labels, signal, mode, split, measured, p,
-                                                 evidence=(*evidence[k], outlines.get(k)))
+                                                 evidence=(*evidence[k], outlines.get(k), fits.get(k)))
                                     for k, i in enumerate(rows)])
     for i, res in enumerate(results):
         if res is None:

@@ -290,3 +290,94 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
         out.append(en.OutlineMatch(sigs[i], shifts[i].copy(), dist[i].copy(), valid[i].copy(), float(taus[i]),
                                    float(areas[i]), int(levels[i]), float(within), tuple(faces), compared))
     return out
+
+
+def outline_fits(matches, library, tolerance: float) -> list:
+    """:func:`engine.fit_alpha` without interior of many matches: alpha from the outline alone, together.
+
+    Parameters
+    ----------
+    matches : sequence of engine.OutlineMatch
+        Made over every view (``faces``).
+    library : engine.ModelLibrary
+        The library the matches were made with.
+    tolerance : float
+        As for :func:`engine.fit_alpha`.
+
+    Returns
+    -------
+    list of engine.AlphaFit
+        Entry i equal, field by field and bit by bit, to ``fit_alpha(contour_i, None,
+        library=library, tolerance=tolerance, match=matches[i])`` (whose other options an
+        outline-only fit does not read). The steps of that fit, each over all matches at once:
+        element-wise arithmetic, minima and first or middle positions (no sums).
+    """
+    from grainhabit.plugins.habit import engine as en
+
+    g = len(matches)
+    if g == 0:
+        return []
+    if any(m.faces != en.VIEWS for m in matches):
+        raise ValueError("outline_fits takes matches made over every view")
+    if any(m.within < tolerance for m in matches):
+        # matches of a smaller reach: each fit takes its own on (engine.OutlineMatch.reaching)
+        return [en.fit_alpha(None, None, library=library, tolerance=tolerance, match=m) for m in matches]
+    lib, inf = library, np.inf
+    tab = lib.tables
+    n = lib.signatures.shape[-1]
+    valid = np.stack([m.valid for m in matches])                          # (g, u, 4)
+    dist = np.stack([m.dist for m in matches])
+    shifts = np.stack([m.shifts for m in matches])
+    ax = (1, 2)
+    dmin = np.where(valid, dist, inf).min(axis=ax)
+    # squares of scalars as the fit of one grain forms them: numpy's power of a float64 scalar (the C
+    # library's pow, which can differ from x * x by one unit in the last place) and Python's of a float
+    dmin2 = np.array([d ** 2 for d in dmin])
+    tau2 = np.array([m.tau ** 2 for m in matches])
+    with np.errstate(invalid="ignore"):
+        osc = np.where(valid, (dist ** 2 - dmin2[:, None, None]) / tau2[:, None, None]
+                       + tab.prior[None, :, None], inf)
+    osc = osc - np.where(valid, osc, inf).min(axis=ax)[:, None, None]
+    tot = np.where(valid, osc, inf)
+    ms = tab.model_shape
+    score = tot.min(axis=2)[:, ms]                                        # (g, m)
+    score = score - score.min(axis=1)[:, None]
+    grid = lib.grid
+    prof = np.full((g, grid.size), inf)
+    np.minimum.at(prof, (np.arange(g)[:, None], lib.grid_index[None, :]), score)
+    inside = prof <= tolerance
+    if not inside.any(axis=1).all():
+        return [en.fit_alpha(None, None, library=library, tolerance=tolerance, match=m) for m in matches]
+    best_val = prof.min(axis=1)
+    ties = prof <= (best_val + 1e-9)[:, None]
+    # the middle of each tied run: the (count // 2)-th tie, counted from 0
+    ib = np.argmax(np.cumsum(ties, axis=1) > (ties.sum(axis=1) // 2)[:, None], axis=1)
+    mbest = np.argmax(lib.at_grid[ib] & (score <= (best_val + 1e-9)[:, None]), axis=1)
+    rows = np.arange(g)
+    ub = ms[mbest]
+    row = tot[rows, ub]                                                   # (g, 4), inf where not finite
+    sh = shifts[rows, ub]
+    # lowest score, then the smallest shift, then the first slot (np.lexsort is stable)
+    low = row == row.min(axis=1)[:, None]
+    jb = np.argmax(low & (sh == np.where(low, sh, np.iinfo(sh.dtype).max).min(axis=1)[:, None]), axis=1)
+    kbest, dbest = sh[rows, jb], dist[rows, ub, jb]
+    i_lo = np.argmax(inside, axis=1)
+    i_hi = grid.size - 1 - np.argmax(inside[:, ::-1], axis=1)
+    half = 0.5 * (grid[1] - grid[0]) if grid.size > 1 else 0.0
+    out = []
+    for i, m in enumerate(matches):
+        a, b = int(i_lo[i]), int(i_hi[i])
+        lo = float(max(grid[a] - half, grid[0]))
+        hi = float(min(grid[b] + half, grid[-1]))
+        notes = []
+        bounded = a == 0 or b == grid.size - 1
+        if a == 0:
+            notes.append(f"only bounded: alpha <= {hi:.2f} (alpha_lo is the grid minimum {grid[0]:g})")
+        if b == grid.size - 1:
+            notes.append(f"only bounded: alpha >= {lo:.2f} (alpha_hi is the grid maximum {grid[-1]:g})")
+        notes.append("outline only")
+        alpha = float(grid[ib[i]])
+        out.append(en.AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[int(mbest[i])],
+                               360.0 * int(kbest[i]) / n, float(dbest[i]), "; ".join(notes), score[i].copy(),
+                               float("nan"), float("nan"), m.signature, float("nan")))
+    return out
