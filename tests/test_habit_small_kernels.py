@@ -1,5 +1,5 @@
-"""Small habit kernels against the slower forms they replace (numpy's median, the support function
-recomputed per grid, the class test by np.unique), bit for bit. Test data: random numbers and random
+"""Small habit kernels against the slower forms they replace (numpy's median, the class test by
+np.unique), bit for bit. Test data: random numbers and random
 polygons (invented), drawn grains through the test builders."""
 import numpy as np
 import pytest
@@ -22,18 +22,6 @@ def test_median_of_equals_numpy_median():
         assert got == ref and type(got) is float
     assert np.isnan(gi.median_of(np.array([1.0, np.nan, 2.0])))
     assert gi.median_of(np.array([3, 1, 2])) == 2.0             # integers go to numpy's median
-
-
-def test_hull_areas_with_the_support_given_equal_those_computing_it():
-    rng = np.random.default_rng(6)
-    for _ in range(40):
-        pts = rng.uniform(-50, 50, (int(rng.integers(3, 60)), 2)) + rng.uniform(-300, 300, 2)
-        cen = pts.mean(axis=0) + rng.uniform(-5, 5, (81, 2))
-        for fold in (2, 3, 6):
-            for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
-                ref = gr.symmetric_hull_areas(pts, cen, fold, n)
-                got = gr.symmetric_hull_areas(pts, cen, fold, n, gr.support_function(pts, n))
-                assert np.array_equal(got, ref)
 
 
 def _settles_before(fit, library, tolerance=4.0):

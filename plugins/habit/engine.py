@@ -636,11 +636,12 @@ class BoundedOutline:
         self.within = -math.inf
 
     @classmethod
-    def resumed(cls, sig, spec, aa, library: ModelLibrary, level: int, tau: float, faces, margin: float, lb, plan,
+    def resumed(cls, sig, spec, aa, library: ModelLibrary, level: int, tau: float, margin: float, lb, plan,
                 state, within: float, shifts, dist, valid) -> "BoundedOutline":
         """A comparison in the state its own :meth:`upto` of ``within`` leaves (``outline_batch.match_outlines``).
 
-        ``spec``, ``aa``, ``margin``, ``lb`` and ``plan`` are what ``__init__`` computes of ``sig``; ``state``
+        ``spec``, ``aa``, ``margin``, ``lb`` and ``plan`` are what ``__init__`` computes of ``sig`` (``plan`` for
+        the views of the fit); ``state``
         (:class:`outline_bound.CompareState`), ``shifts``, ``dist`` and ``valid`` (u, 4) what :meth:`upto` leaves
         (kept, not copied).
         """
@@ -1515,7 +1516,7 @@ def _turns(fold: int):
     return out
 
 
-def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS, support=None) -> np.ndarray:
+def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS) -> np.ndarray:
     """Areas of the convex hulls of ``pts`` and their copies turned about each of many centres.
 
     Parameters
@@ -1528,9 +1529,6 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         The copies are turned by 360 j / ``fold`` degrees, j = 1 ... fold - 1.
     n_dir : int
         Directions of the support function (a multiple of ``fold``).
-    support : ndarray, shape (n_dir,), optional
-        :func:`support_function` ``(pts, n_dir)`` where the caller has it (a search calls this
-        for many grids of centres about the same points).
 
     Returns
     -------
@@ -1560,7 +1558,7 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, _, (w_sq, w_next) = _support_tables(n, fold)
     period = n // fold
-    hk = support_function(p, n) if support is None else support      # (n,)
+    hk = (p @ u.T).max(axis=0)                                         # (n,)
     # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
     # fewer rows may round differently: the chunks below give the floats of all centres at once)
     cu = cen @ u.T                                                     # (c, n)
@@ -1579,12 +1577,6 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         np.add(q, nxt, out=q)
         out[a:a + rows] = (0.5 * fold) * np.abs(np.einsum("ci,ci->c", h, q))
     return out
-
-
-def support_function(pts, n_dir: int) -> np.ndarray:
-    """Support function h(u_i) = max_k p_k . u_i of points at ``n_dir`` directions u_i (angle 2 pi i / n_dir)."""
-    u = _support_tables(int(n_dir), 1)[0]
-    return (np.asarray(pts, float) @ u.T).max(axis=0)
 
 
 #: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
@@ -1675,14 +1667,11 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> n
     best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
     if centre is not None:
         best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
-    support = {}                                   # the support function of the points, per direction count
     while half > stop:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
-        if n_dir not in support:
-            support[n_dir] = support_function(pts, n_dir)
-        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir, support[n_dir])))]
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
         half /= 3.0
     both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
     return both[ConvexHull(both).vertices]

@@ -283,7 +283,7 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
         shifts[gi, ri], dist[gi, ri], valid[gi, ri] = sh, di, va
     out = []
     for i in range(g):
-        compared = en.BoundedOutline.resumed(sigs[i], spec[i], aa[i], library, int(levels[i]), taus[i], faces,
+        compared = en.BoundedOutline.resumed(sigs[i], spec[i], aa[i], library, int(levels[i]), taus[i],
                                              float(margin[i]), lb[i], plan,
                                              outline_bound.CompareState(comp[i], dmin[i]), float(within),
                                              shifts[i], dist[i], valid[i])
