@@ -507,7 +507,7 @@ def outline_candidates(sig, tab: _Tables, level: int = 0):
     spectra: d^2[s] = (|a|^2 + |b|^2 - 2 C[s]) / n.
     """
     a = np.asarray(sig, float)
-    return _candidates_of_rows(_distance_rows(np.fft.rfft(a), a @ a, tab.sig_fft[level], tab.sig_sq[level], a.size),
+    return candidates_of_rows(_distance_rows(np.fft.rfft(a), a @ a, tab.sig_fft[level], tab.sig_sq[level], a.size),
                                tab.turn_win, tab.turn_off, tab.turn_ok)
 
 
@@ -533,7 +533,7 @@ def _distance_rows(spec_a, aa, sig_fft, sig_sq, n):
     return d
 
 
-def _candidates_of_rows(d, turn_win, turn_off, turn_ok):
+def candidates_of_rows(d, turn_win, turn_off, turn_ok):
     """Candidate shifts, distances and valid slots (:func:`outline_candidates`) from distance rows ``d`` (u, n)."""
     u, n = d.shape
     k0 = np.argmin(d, axis=1)
@@ -667,7 +667,7 @@ class BoundedOutline:
             self.within = within
             if rows.size:
                 tab = self.tab
-                sh, di, va = _candidates_of_rows(d, tab.turn_win[rows], tab.turn_off[rows], tab.turn_ok[rows])
+                sh, di, va = candidates_of_rows(d, tab.turn_win[rows], tab.turn_off[rows], tab.turn_ok[rows])
                 self.shifts[rows], self.dist[rows], self.valid[rows] = sh, di, va
         return self.shifts.copy(), self.dist.copy(), self.valid.copy()
 

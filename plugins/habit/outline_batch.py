@@ -16,7 +16,7 @@ grains, each step one call over all of them:
   conditions on its own row (minima, comparisons and ``nextafter`` only: exact);
 - the distance rows of every (grain, shape) pair a round adds by one inverse FFT (each row on its own),
   and the look-alike windows of all compared rows of all grains by one
-  :func:`engine._candidates_of_rows` (row by row by construction).
+  :func:`engine.candidates_of_rows` (row by row by construction).
 
 Each grain's :class:`engine.OutlineMatch` carries a :class:`engine.BoundedOutline` in the state that
 grain's own match leaves, so a fit that needs a wider reach goes on from it as before. Every
@@ -29,7 +29,7 @@ import math
 import numpy as np
 
 from grainhabit.plugins.habit import outline_bound
-from grainhabit.plugins.habit.signature import _ray_directions, check_n_angles, check_polygon, polygon_centroid
+from grainhabit.plugins.habit.signature import check_n_angles, check_polygon, polygon_centroid, ray_directions
 
 
 #: Distance rows computed by one inverse FFT: a block's spectra and rows (about 1 MB) stay in cache
@@ -80,7 +80,7 @@ def radial_signatures_about(polys, centroids, areas, n_angles: int = 256) -> np.
     edge = np.repeat(np.arange(q.shape[0]), cnt)
     start = np.cumsum(cnt) - cnt
     ray = (lo[edge] + np.arange(edge.size) - start[edge]) % n
-    cos_ray, sin_ray = _ray_directions(n)
+    cos_ray, sin_ray = ray_directions(n)
     dx, dy = cos_ray[ray], sin_ray[ray]
     ex, ey, qx, qy = e[:, 0][edge], e[:, 1][edge], q[:, 0][edge], q[:, 1][edge]
     det = -dx * ey + ex * dy
@@ -279,7 +279,7 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
     dist = np.full((g, u, 4), np.inf)
     valid = np.zeros((g, u, 4), bool)
     if ri.size:
-        sh, di, va = en._candidates_of_rows(d, tab.turn_win[ri], tab.turn_off[ri], tab.turn_ok[ri])
+        sh, di, va = en.candidates_of_rows(d, tab.turn_win[ri], tab.turn_off[ri], tab.turn_ok[ri])
         shifts[gi, ri], dist[gi, ri], valid[gi, ri] = sh, di, va
     out = []
     for i in range(g):
