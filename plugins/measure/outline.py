@@ -583,7 +583,9 @@ class _Cleaner:
         # rows are turned into Python floats when a line needs them (two rows a line): the whole table of a
         # contour of m vertices, 10 m + 5 floats, cost more than the clean-up itself
         self.cum = cum
-        self.pts = c.tolist()
+        # the vertices as Python floats, each turned when first read (a clean-up reads a few dozen of the
+        # hundreds of a contour; the whole list cost about as much as the rest of this set-up)
+        self.pts = _VertexFloats(c)
         self.cache = {}
         # a corner depends on its two neighbours, a turn and the edge after it on two corners to each side:
         # each clean-up step changes one or two corners, so most of them are looked up, not computed again
@@ -672,6 +674,22 @@ class _Cleaner:
     def distance_to_contour(self, p):
         d = self.c - p
         return float(np.sqrt((d * d).sum(axis=1).min()))
+
+
+class _VertexFloats:
+    """``c.tolist()`` of a contour's (m, 2) vertices, each row made when first indexed (the same floats)."""
+
+    __slots__ = ("c", "rows")
+
+    def __init__(self, c):
+        self.c = c
+        self.rows = {}
+
+    def __getitem__(self, i):
+        row = self.rows.get(i)
+        if row is None:
+            row = self.rows[i] = self.c[i].tolist()
+        return row
 
 
 def _turns_and_edges(poly):

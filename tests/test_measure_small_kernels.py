@@ -1,0 +1,44 @@
+"""Measure-grains' corner clean-up reading its contour's vertices as it needs them, against the whole
+list of Python floats it made before (``ndarray.tolist``), bit for bit. Outlines of invented shapes
+drawn with scikit-image (``skimage.draw``) and traced by ``skimage.measure.find_contours``."""
+import numpy as np
+from skimage.draw import ellipse, polygon
+from skimage.measure import find_contours
+
+from grainhabit.plugins.measure import outline
+
+
+def _contours():
+    out = []
+    rng = np.random.default_rng(3)
+    for _ in range(25):
+        img = np.zeros((120, 120))
+        k = int(rng.integers(3, 9))
+        t = np.sort(rng.uniform(0, 2 * np.pi, k))
+        r = rng.uniform(15, 50)
+        rr, cc = polygon(60 + r * np.sin(t), 60 + r * np.cos(t), img.shape)
+        img[rr, cc] = 1
+        out.append(np.ascontiguousarray(find_contours(img, 0.5)[0][:-1, ::-1]))
+    img = np.zeros((120, 120))
+    rr, cc = ellipse(60, 60, 30, 45, img.shape)
+    img[rr, cc] = 1
+    out.append(np.ascontiguousarray(find_contours(img, 0.5)[0][:-1, ::-1]))
+    return out
+
+
+def test_vertex_floats_equal_tolist():
+    for c in _contours():
+        v, ref = outline._VertexFloats(c), c.tolist()
+        for i in list(range(len(c))) + [np.int64(2), 0, len(c) - 1]:
+            assert v[i] == ref[i] and type(v[i][0]) is float
+
+
+def test_polygons_equal_those_with_the_whole_vertex_list(monkeypatch):
+    cs = _contours()
+    sizes = [float(np.sqrt(4 * abs(outline.polygon_area(c)) / np.pi)) for c in cs]
+    for refine in (True, False):
+        now = outline.fit_polygons(cs, sizes, refine=refine)
+        monkeypatch.setattr(outline, "_VertexFloats", lambda c: c.tolist())
+        before = outline.fit_polygons(cs, sizes, refine=refine)
+        monkeypatch.undo()
+        assert all(np.array_equal(a, b) for a, b in zip(now, before))
