@@ -43,3 +43,23 @@ def test_outline_settles_equals_the_previous_form():
         fit = gr.AlphaFit(float(rng.choice([np.nan, 2.0])), 1.0, 2.0, 2.0, "100", 0.0, 0.1, "", score)
         for tol in (0.0, 4.0, 9.0):
             assert gr.outline_settles(fit, lib, tol) == _settles_before(fit, lib, tol)
+
+
+def test_slot_reductions_equal_numpy_along_the_last_axis():
+    # the minimum and the or of a short last axis (the candidate rotations of each shape): the same
+    # numbers as numpy's reductions, infinities and NaN included, on (u, 4) and (g, u, 4) arrays
+    rng = np.random.default_rng(8)
+    for shape in ((303, 4), (7, 303, 4), (5, 1), (9, 3), (2, 0, 4)):
+        for _ in range(30):
+            a = rng.standard_normal(shape) * rng.choice([1.0, 1e9])
+            a[rng.uniform(size=shape) < 0.3] = np.inf
+            if rng.uniform() < 0.3:
+                a[rng.uniform(size=shape) < 0.05] = np.nan
+            ref = a.min(axis=-1)
+            got = gr.slot_min(a)
+            assert got.shape == ref.shape and np.array_equal(got, ref, equal_nan=True)
+            assert np.array_equal(got.view(np.int64) == ref.view(np.int64), ~(np.isnan(ref)) | np.isnan(got))
+            b = rng.uniform(size=shape) < rng.choice([0.05, 0.5])
+            assert np.array_equal(gr.slot_any(b), b.any(axis=-1))
+    ints = rng.integers(0, 256, (50, 4))
+    assert np.array_equal(gr.slot_min(ints), ints.min(axis=-1))

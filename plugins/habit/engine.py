@@ -1074,7 +1074,7 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
             tot, shape_best, rmin, s2 = res
             evidence = True
     if shape_best is None:
-        shape_best = tot.min(axis=1)
+        shape_best = slot_min(tot)
 
     ms = tab.model_shape
     score = np.where(shape_ok[ms], shape_best[ms], np.inf)
@@ -1180,14 +1180,37 @@ def _place_all(tab, shifts, osc, gated, interior, geo, w):
     tot, rmin, s2 = r
     # candidates the outline ruled out keep a prohibitive score, as before
     tot = np.where(np.isfinite(osc) & ~gated, osc + 1e9, tot)
-    return tot, tot.min(axis=1), rmin, s2
+    return tot, slot_min(tot), rmin, s2
+
+
+def slot_min(a) -> np.ndarray:
+    """``a.min(axis=-1)`` of an array whose last axis is short (a shape's candidate rotations, 4).
+
+    numpy reduces a short last axis row by row (about 14 us for 303 x 4 against 4 us here);
+    the minima of the columns taken in order, ``minimum(minimum(minimum(a0, a1), a2), a3)``,
+    are the same numbers (a minimum is one of its operands; NaN wins in both forms).
+    """
+    a = np.asarray(a)
+    out = a[..., 0].copy()
+    for j in range(1, a.shape[-1]):
+        np.minimum(out, a[..., j], out=out)
+    return out
+
+
+def slot_any(a) -> np.ndarray:
+    """``a.any(axis=-1)`` of a bool array whose last axis is short: the columns or-ed in order (see :func:`slot_min`)."""
+    a = np.asarray(a, bool)
+    out = a[..., 0].copy()
+    for j in range(1, a.shape[-1]):
+        np.logical_or(out, a[..., j], out=out)
+    return out
 
 
 def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weight,
                    search_samples, every, margin):
     """Coarse-to-fine interior fit (see :func:`fit_alpha`); None falls back to the exhaustive one."""
     u = osc.shape[0]
-    gshape = gated.any(axis=1)
+    gshape = slot_any(gated)
     if not gshape.any():
         return None
     seqs = []                                   # gated shapes of each face, by alpha
@@ -1208,7 +1231,7 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     if r1 is None:
         return None
     tot1 = r1[0]
-    sb1 = tot1.min(axis=1)
+    sb1 = slot_min(tot1)
     best1 = sb1.min()
     won1 = tot1 <= sb1[:, None] + margin / 2              # rotations worth refining, per coarse shape
     # seeds: coarse local minima (one per basin) within the margin, and the least-RSS model
@@ -1247,7 +1270,7 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         # per shape of the run: the slots asked for among its gated ones, or all its gated ones
         g = gated[run]
         w = slots & g
-        want[run] |= np.where(w.any(axis=1)[:, None], w, g)
+        want[run] |= np.where(slot_any(w)[:, None], w, g)
         taken[k] = True
 
     for s in np.flatnonzero(seeds).tolist():
@@ -1265,9 +1288,9 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         if res is None:
             return None
         tot2 = res[0]
-        sb2 = tot2.min(axis=1)
+        sb2 = slot_min(tot2)
         grew = False
-        placed_any = done.any(axis=1)             # take() changes want and taken, not done
+        placed_any = slot_any(done)             # take() changes want and taken, not done
         for s in np.flatnonzero(sb2 <= sb2.min() + tolerance).tolist():
             q, i = seqs[seq_of[s]], int(pos_in[s])
             for k in (i - 1, i + 1):
@@ -1279,20 +1302,20 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
         if not grew:
             break
     tot2, rmin, s2 = res
-    sb2 = tot2.min(axis=1)
+    sb2 = slot_min(tot2)
     best2 = sb2.min()
     # scores of shapes not placed over the full sample (outside the range)
-    placed = done.any(axis=1)
+    placed = slot_any(done)
     est = np.where(placed, sb2, np.where(coarse & gshape, sb1 - best1 + best2, np.nan))
     for q in seqs:
         known = np.isfinite(est[q])
         if not known.all():
             idx = np.arange(q.size)
             est[q[~known]] = np.interp(idx[~known], idx[known], est[q][known])
-    lower = np.where(gated, osc, np.inf).min(axis=1)
+    lower = slot_min(np.where(gated, osc, np.inf))
     est = np.where(placed, est, np.maximum(est, lower))
     # shapes the outline ruled out keep a prohibitive score, as in the exhaustive fit
-    ruled_out = np.where(np.isfinite(osc), osc, np.inf).min(axis=1) + 1e9
+    ruled_out = slot_min(np.where(np.isfinite(osc), osc, np.inf)) + 1e9
     shape_best = np.where(gshape, est, ruled_out)
     tot = np.where(done, tot2, np.where(np.isfinite(osc) & ~gated, osc + 1e9, np.inf))
     return tot, shape_best, rmin, s2

@@ -340,7 +340,7 @@ def outline_fits(matches, library, tolerance: float) -> list:
     osc = osc - np.where(valid, osc, inf).min(axis=ax)[:, None, None]
     tot = np.where(valid, osc, inf)
     ms = tab.model_shape
-    score = tot.min(axis=2)[:, ms]                                        # (g, m)
+    score = en.slot_min(tot)[:, ms]                                        # (g, m)
     score = score - score.min(axis=1)[:, None]
     grid = lib.grid
     prof = np.full((g, grid.size), inf)
@@ -358,8 +358,8 @@ def outline_fits(matches, library, tolerance: float) -> list:
     row = tot[rows, ub]                                                   # (g, 4), inf where not finite
     sh = shifts[rows, ub]
     # lowest score, then the smallest shift, then the first slot (np.lexsort is stable)
-    low = row == row.min(axis=1)[:, None]
-    jb = np.argmax(low & (sh == np.where(low, sh, np.iinfo(sh.dtype).max).min(axis=1)[:, None]), axis=1)
+    low = row == en.slot_min(row)[:, None]
+    jb = np.argmax(low & (sh == en.slot_min(np.where(low, sh, np.iinfo(sh.dtype).max))[:, None]), axis=1)
     kbest, dbest = sh[rows, jb], dist[rows, ub, jb]
     i_lo = np.argmax(inside, axis=1)
     i_hi = grid.size - 1 - np.argmax(inside[:, ::-1], axis=1)
