@@ -63,3 +63,23 @@ def test_slot_reductions_equal_numpy_along_the_last_axis():
             assert np.array_equal(gr.slot_any(b), b.any(axis=-1))
     ints = rng.integers(0, 256, (50, 4))
     assert np.array_equal(gr.slot_min(ints), ints.min(axis=-1))
+
+
+@pytest.mark.parametrize("args", [(), (0.5, 4.0, 0.1, 180), (0.6, 3.5, 0.05, 64)])
+def test_profile_over_faces_equals_minimum_at(args):
+    # the least score of each grid cell by the columns of the library's members table against
+    # np.minimum.at into infinities (the form replaced), one row and many rows at once
+    lib = gr.model_library(*args)
+    rng = np.random.default_rng(2)
+    for _ in range(100):
+        sc = rng.exponential(5.0, (3, lib.alphas.size))
+        sc[rng.uniform(size=sc.shape) < 0.4] = np.inf
+        for row in sc:
+            ref = np.full(lib.grid.size, np.inf)
+            np.minimum.at(ref, lib.grid_index, row)
+            assert np.array_equal(lib.profile_over_faces(row), ref)
+        ref = np.full((3, lib.grid.size), np.inf)
+        np.minimum.at(ref, (np.arange(3)[:, None], lib.grid_index[None, :]), sc)
+        assert np.array_equal(lib.profile_over_faces(sc), ref)
+    members = lib.grid_members
+    assert sorted(members[members < lib.alphas.size].tolist()) == list(range(lib.alphas.size))

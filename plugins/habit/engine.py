@@ -231,6 +231,36 @@ class ModelLibrary:
         return np.abs(self.alphas[None, :] - self.grid[:, None]) < 1e-9
 
     @functools.cached_property
+    def grid_members(self) -> np.ndarray:
+        """(grid size, k) the models of each grid cell (:attr:`grid_index`) in model order, padded with m.
+
+        ``profile_over_faces`` reads a score of every model, and m indexes the +inf after them.
+        """
+        cell = self.grid_index
+        counts = np.bincount(cell, minlength=self.grid.size)
+        out = np.full((self.grid.size, max(int(counts.max(initial=0)), 1)), self.alphas.size, np.intp)
+        order = np.argsort(cell, kind="stable")
+        start = np.cumsum(counts) - counts
+        out[cell[order], np.arange(order.size) - start[cell[order]]] = order
+        return out
+
+    def profile_over_faces(self, score) -> np.ndarray:
+        """The least score of each grid cell's models (inf for none): ``np.minimum.at`` of ``score`` by
+        :attr:`grid_index` into infinities, by the columns of :attr:`grid_members` (the same numbers).
+
+        Parameters
+        ----------
+        score : ndarray, shape (..., m)
+
+        Returns
+        -------
+        ndarray, shape (..., grid size)
+        """
+        score = np.asarray(score, float)
+        ext = np.concatenate([score, np.full(score.shape[:-1] + (1,), np.inf)], axis=-1)
+        return slot_min(ext[..., self.grid_members])
+
+    @functools.cached_property
     def habit_class(self) -> np.ndarray:
         """(m,) habit class of every model: 0 cube (alpha <= 1.5), 1 cuboctahedron, 2 octahedron (alpha >= 3)."""
         return np.where(self.alphas <= CUBE_ALPHA_MAX, 0, np.where(self.alphas < OCTAHEDRON_ALPHA, 1, 2))
@@ -259,6 +289,7 @@ class ModelLibrary:
         state.pop("grid_index", None)
         state.pop("at_grid", None)
         state.pop("habit_class", None)
+        state.pop("grid_members", None)
         state.pop("spectral_bound", None)
         state.pop("_compare_plans", None)
         return state
@@ -1082,8 +1113,7 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
 
     # profile over faces: score(alpha) = min over faces
     grid = lib.grid
-    prof = np.full(grid.size, np.inf)
-    np.minimum.at(prof, lib.grid_index, score)
+    prof = lib.profile_over_faces(score)
     inside = np.flatnonzero(prof <= tolerance)
     best_val = prof.min()
     ties = np.flatnonzero(prof <= best_val + 1e-9)

@@ -343,8 +343,7 @@ def outline_fits(matches, library, tolerance: float) -> list:
     score = en.slot_min(tot)[:, ms]                                        # (g, m)
     score = score - score.min(axis=1)[:, None]
     grid = lib.grid
-    prof = np.full((g, grid.size), inf)
-    np.minimum.at(prof, (np.arange(g)[:, None], lib.grid_index[None, :]), score)
+    prof = lib.profile_over_faces(score)
     inside = prof <= tolerance
     if not inside.any(axis=1).all():
         return [en.fit_alpha(None, None, library=library, tolerance=tolerance, match=m) for m in matches]
