@@ -42,3 +42,17 @@ def test_polygons_equal_those_with_the_whole_vertex_list(monkeypatch):
         before = outline.fit_polygons(cs, sizes, refine=refine)
         monkeypatch.undo()
         assert all(np.array_equal(a, b) for a, b in zip(now, before))
+
+
+def test_sum_xy_equals_numpy_sum_along_the_pairs():
+    # the sum of each (x, y) pair by one addition against numpy's row-by-row reduction, bit for bit
+    # (signed zeros, infinities and NaN included)
+    rng = np.random.default_rng(5)
+    for n in (0, 1, 7, 1000, 90000):
+        v = rng.standard_normal((n, 2)) * rng.choice([1.0, 1e-8, 1e12], (n, 2))
+        special = rng.choice([0.0, -0.0, np.inf, -np.inf, np.nan], (n, 2))
+        pick = rng.uniform(size=(n, 2)) < 0.05
+        v[pick] = special[pick]
+        got, ref = outline.sum_xy(v), v.sum(axis=1)
+        same = (got.view(np.int64) == ref.view(np.int64)) | (np.isnan(got) & np.isnan(ref))
+        assert same.all()
