@@ -47,12 +47,15 @@ def test_outline_settles_equals_the_previous_form():
 
 def test_slot_reductions_equal_numpy_along_the_last_axis():
     # the minimum and the or of a short last axis (the candidate rotations of each shape): the same
-    # numbers as numpy's reductions, infinities and NaN included, on (u, 4) and (g, u, 4) arrays
+    # numbers as numpy's reductions, bit for bit (signed zeros, infinities and NaN included), on
+    # (u, 4) and (g, u, 4) arrays
     rng = np.random.default_rng(8)
     for shape in ((303, 4), (7, 303, 4), (5, 1), (9, 3), (2, 0, 4)):
         for _ in range(30):
             a = rng.standard_normal(shape) * rng.choice([1.0, 1e9])
             a[rng.uniform(size=shape) < 0.3] = np.inf
+            a[rng.uniform(size=shape) < 0.1] = 0.0
+            a[rng.uniform(size=shape) < 0.1] = -0.0
             if rng.uniform() < 0.3:
                 a[rng.uniform(size=shape) < 0.05] = np.nan
             ref = a.min(axis=-1)
