@@ -56,3 +56,11 @@ def test_sum_xy_equals_numpy_sum_along_the_pairs():
         got, ref = outline.sum_xy(v), v.sum(axis=1)
         same = (got.view(np.int64) == ref.view(np.int64)) | (np.isnan(got) & np.isnan(ref))
         assert same.all()
+
+
+def test_shifted_equals_roll():
+    rng = np.random.default_rng(1)
+    for n in (0, 1, 2, 5, 300):
+        for a in (rng.standard_normal(n), rng.standard_normal((n, 2))):
+            for step in (-1, 1):
+                assert np.array_equal(outline._shifted(a, step), np.roll(a, step, axis=0))

@@ -55,6 +55,13 @@ def _as_closed(points, name="contour_xy", min_vertices=1):
     return arr
 
 
+def _shifted(a, step: int) -> np.ndarray:
+    """``np.roll(a, step, axis=0)`` for step -1 or 1 (the same array), without roll's general-case overhead."""
+    if len(a) == 0:
+        return a.copy()
+    return np.concatenate((a[1:], a[:1])) if step == -1 else np.concatenate((a[-1:], a[:-1]))
+
+
 def polygon_area(poly):
     """Signed area of a closed polygon (shoelace formula).
 
@@ -80,7 +87,7 @@ def polygon_area(poly):
     """
     p = _as_closed(poly, "poly")
     x, y = p[:, 0], p[:, 1]
-    return 0.5 * float(np.dot(x, np.roll(y, -1)) - np.dot(np.roll(x, -1), y))
+    return 0.5 * float(np.dot(x, _shifted(y, -1)) - np.dot(_shifted(x, -1), y))
 
 
 def closed_length(poly):
@@ -114,7 +121,7 @@ def polygon_edges(poly):
         ``i + 1`` (modulo k), in the input unit.
     """
     p = _as_closed(poly, "poly")
-    d = np.roll(p, -1, axis=0) - p
+    d = _shifted(p, -1) - p
     return np.hypot(d[:, 0], d[:, 1])
 
 
@@ -135,8 +142,8 @@ def turning_angles(poly):
         positive area.
     """
     p = _as_closed(poly, "poly")
-    d_in = p - np.roll(p, 1, axis=0)
-    d_out = np.roll(p, -1, axis=0) - p
+    d_in = p - _shifted(p, 1)
+    d_out = _shifted(p, -1) - p
     cross = d_in[:, 0] * d_out[:, 1] - d_in[:, 1] * d_out[:, 0]
     dot = sum_xy(d_in * d_out)
     return np.degrees(np.arctan2(cross, dot))
