@@ -279,7 +279,7 @@ def _families_stacked(n_angles: int, level: int = 0):
     return spec, sq, (0, len(plate[2]), len(sq))
 
 
-def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
+def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
     """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
 
     Parameters
@@ -288,8 +288,6 @@ def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int,
         Observed radial signature.
     level : int
         Corner rounding of the family outlines (:func:`family_signatures`).
-    spectrum : ndarray, shape (n // 2 + 1,), optional
-        ``np.fft.rfft(sig)`` where the caller has it (the outline match computes it).
 
     Returns
     -------
@@ -301,7 +299,7 @@ def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int,
     a = np.asarray(sig, float)
     spec, sq, cut = _families_stacked(a.size, int(level))
     n = a.size
-    cc = np.fft.irfft((np.fft.rfft(a) if spectrum is None else spectrum)[None, :] * spec, n, axis=1)
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, n, axis=1)
     if n & (n - 1) == 0:
         # (|a|^2 + |b|^2 - 2 C) / n in two passes in place: scaling by a power of two is exact
         # and commutes with rounding, so these are the same floats (engine.outline_candidates)
@@ -456,7 +454,7 @@ def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
         matches = outline_batch.match_outlines(contours[start:start + OUTLINES_AT_ONCE], lib, pixel_scale,
                                                p["outline_noise_px"], p["outline_noise_floor"],
                                                p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS)
-        out += [(m, best_families(m.signature, m.level, m.compared.spec)) for m in matches]
+        out += [(m, best_families(m.signature, m.level)) for m in matches]
     return out
 
 
