@@ -14,8 +14,8 @@ grains, each step one call over all of them:
   the bits of one call per grain);
 - the choice of the shapes to compare by rounds over all grains at once, each grain's
   conditions on its own row (minima, comparisons and ``nextafter`` only: exact);
-- the distance rows of every (grain, shape) pair a round adds by one inverse FFT (each row on its own),
-  and the look-alike windows of all compared rows of all grains by one
+- the distance rows of every (grain, shape) pair a round adds by inverse FFTs of :data:`ROWS_AT_ONCE`
+  rows (each row on its own), and the look-alike windows of all compared rows of all grains by one
   :func:`engine.candidates_of_rows` (row by row by construction).
 
 Each grain's :class:`engine.OutlineMatch` carries a :class:`engine.BoundedOutline` in the state that
