@@ -167,16 +167,19 @@ def test_outline_shortcut_gives_the_same_habit_as_the_full_fit(monkeypatch):
               draw_crystal_frame(body, brot, contrast="dark", facets=False, mu_per_ecd=0.5),
               draw_crystal_frame(cube, crot, contrast="dark", noise=0.02),
               draw_crystal_frame(cube, crot, contrast="bright", noise=0.02)]
-    placed = []
+    placed = []                                     # per frame: whether each fit placed the interior
     real = cl.en.fit_alpha_steps
 
     def spy(contour, interior=None, **kw):
-        placed.append(interior is not None and kw.get("search") != "quick")
+        placed[-1].append(interior is not None and kw.get("search") != "quick")
         return real(contour, interior, **kw)
 
     monkeypatch.setattr(cl.en, "fit_alpha_steps", spy)
-    short = [cl.classify_frame(f) for f in frames]
-    assert not any(placed[:3])                      # plate and rod outlines decided alone
+    short = []
+    for f in frames:
+        placed.append([])
+        short.append(cl.classify_frame(f))
+    assert not any(any(p) for p in placed[:3])      # plate and rod outlines decided alone
     monkeypatch.setattr(cl, "outline_decides", lambda *a, **k: False)
     monkeypatch.setattr(cl.en, "outline_settles", lambda *a, **k: False)
     full = [cl.classify_frame(f) for f in frames]

@@ -143,6 +143,7 @@ from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit import engine as en
+from grainhabit.plugins.habit import outline_batch
 from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
 GRAINHABIT_API = 1
@@ -424,7 +425,41 @@ def outline_evidence(contour_lab, params, pixel_scale=1.0):
     return match, best_families(match.signature, match.level)
 
 
-def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False, outline=None):
+#: Outlines matched together by :func:`outline_evidence_many` (the inverse FFTs go by blocks of
+#: ``outline_batch.ROWS_AT_ONCE`` rows, so a larger number costs no cache).
+OUTLINES_AT_ONCE = 64
+
+
+def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
+    """:func:`outline_evidence` of many outlines (the same numbers; :func:`outline_batch.match_outlines`).
+
+    Parameters
+    ----------
+    contours : sequence of ndarray, shape (k_i, 2)
+        Outlines in lab axes (y up), pixels.
+    params : dict
+        Resolved parameters of this step.
+    pixel_scale : float
+        Pixel length in the contours' unit.
+
+    Returns
+    -------
+    list of tuple
+        ``(match, families)`` of each outline, as :func:`outline_evidence` gives them.
+    """
+    p = params
+    lib = en.fit_options(p)["library"]
+    out = []
+    for start in range(0, len(contours), OUTLINES_AT_ONCE):
+        matches = outline_batch.match_outlines(contours[start:start + OUTLINES_AT_ONCE], lib, pixel_scale,
+                                               p["outline_noise_px"], p["outline_noise_floor"],
+                                               p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS)
+        out += [(m, best_families(m.signature, m.level)) for m in matches]
+    return out
+
+
+def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=None, split=False, outline=None,
+                         outline_fit=None):
     """Habit of one grain, with the Wulff fit it rests on (a generator of interior-fit requests).
 
     The placements of its interior fits are yielded as requests (:func:`engine.fit_alpha_steps`):
@@ -452,6 +487,9 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     outline : tuple, optional
         :func:`outline_evidence` of ``contour_lab`` (with these parameters and
         ``pixel_scale``) where the caller has it already; else computed here.
+    outline_fit : AlphaFit, optional
+        :func:`engine.fit_alpha` of ``contour_lab`` without interior on ``outline``'s match
+        (the step's fit options) where the caller has it (:func:`outline_batch.outline_fits`).
 
     Returns
     -------
@@ -468,7 +506,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     match, families = outline_evidence(contour_lab, p, pixel_scale) if outline is None else outline
     tau = match.tau
     # outline first: the best Wulff outline alone
-    fit = en.fit_alpha(contour_lab, None, **kw, match=match)
+    fit = en.fit_alpha(contour_lab, None, **kw, match=match) if outline_fit is None else outline_fit
     sig = match.signature
     pe, plate, ra, rod = family_signatures(lib.signatures.shape[-1], match.level)
     (d_plate, ip, fp), (d_rod, ir, fr) = families
@@ -755,21 +793,29 @@ def _outline_misfit_ratio(outline) -> float:
     return min(d_wulff, d_plate, d_rod) / match.tau
 
 
-def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p):
+def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p, evidence=None):
     """Habit, score, evidence columns and fit of grain row ``i`` (None if its outline is too small).
 
     A generator of interior-fit requests (:func:`classify_grain_steps`); see :func:`classify_frame`.
+    ``evidence`` is ``(contour, interior, outline, outline_fit)`` of the grain where the caller has them
+    (:func:`engine.grain_evidence_lazy`, :func:`outline_evidence`, :func:`outline_batch.outline_fits`;
+    ``outline`` or ``outline_fit`` may be None); else they are computed here.
     """
     g = frame.grains
     lab = int(frame.grains["label"][i])
-    contour, interior = en.grain_evidence_lazy(labels, signal, mode, outline_px, lab, p["erode_px"])
+    if evidence is None:
+        contour, interior = en.grain_evidence_lazy(labels, signal, mode, outline_px, lab, p["erode_px"])
+        outline = outline_fit = None
+    else:
+        contour, interior, outline, outline_fit = evidence
     if contour is None or len(contour) < 8:
         return None
     hull = (float(g["solidity"][i]), float(g["feret_ratio"][i])) if measured else None
     if hull is not None and not all(np.isfinite(hull)):
         hull = None
     habit, score, ev, fit = yield from classify_grain_steps(contour, interior if p["interior"] else None, p,
-                                                            hull=hull, split=bool(split[i]))
+                                                            hull=hull, split=bool(split[i]), outline=outline,
+                                                            outline_fit=outline_fit)
     fchi0 = ev["facet_chi2"] if np.isfinite(ev["facet_chi2"]) else 0.0
     if split[i] and (habit == "irregular" or (habit in POLYHEDRAL_HABITS and fchi0 < p["facet_chi2_min"])
                      or (habit == "octahedron" and score <= 0.5)):
@@ -836,10 +882,23 @@ def classify_frame(frame, params=None) -> dict:
     measured = "solidity" in g and "feret_ratio" in g
     # the grains' interior fits run in step, GRAINS_IN_STEP at a time: each round's placements of
     # those grains in one solve (a bound on the interiors held at once)
+    # the outlines of the grains in step are compared with the library together (outline_evidence_many:
+    # the same matches as one grain at a time)
     results = []
     for start in range(0, n, GRAINS_IN_STEP):
-        results += en.run_together([_grain_steps(frame, i, contours[i], labels, signal, mode, split, measured, p)
-                                    for i in range(start, min(start + GRAINS_IN_STEP, n))])
+        rows = range(start, min(start + GRAINS_IN_STEP, n))
+        evidence = [en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"])
+                    for i in rows]
+        usable = [k for k, (contour, _) in enumerate(evidence) if contour is not None and len(contour) >= 8]
+        found = outline_evidence_many([evidence[k][0] for k in usable], p)
+        outlines = dict(zip(usable, found))
+        # and their outline-only fits (outline_batch.outline_fits: the same fits as one at a time)
+        fits = {} if any(o is None for o in found) else \
+            dict(zip(usable, outline_batch.outline_fits([o[0] for o in found], en.fit_options(p)["library"],
+                                                        p["tolerance"])))
+        results += en.run_together([_grain_steps(frame, i, contours[i], labels, signal, mode, split, measured, p,
+                                                 evidence=(*evidence[k], outlines.get(k), fits.get(k)))
+                                    for k, i in enumerate(rows)])
     for i, res in enumerate(results):
         if res is None:
             cols["habit_note"][i] = "outline too small"

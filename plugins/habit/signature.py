@@ -80,6 +80,11 @@ def _ray_directions(n: int) -> tuple[np.ndarray, np.ndarray]:
     return out
 
 
+def ray_directions(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """cos and sin of the ray angles 2 pi j / n of the signatures (read-only; the same floats for any subset)."""
+    return _ray_directions(int(n))
+
+
 def radial_signature(poly, n_angles: int = 256) -> np.ndarray:
     """Centroid-distance signature of a closed outline, normalised by sqrt(area).
 

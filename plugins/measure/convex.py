@@ -15,6 +15,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial import ConvexHull, QhullError
 
+from grainhabit.plugins.measure.outline import sum_xy
+
 def _segment_reduce(values, offsets, op):
     """``op.reduceat`` over consecutive groups; NaN for empty groups."""
     n = len(offsets) - 1
@@ -94,7 +96,7 @@ def feret_diameters(hull_xy, hull_offsets):
     hit = np.searchsorted(key, query, side="left")
     s_local = (hit - sub_off[:-1][gid]) % kk[gid]
     s = sub_off[:-1][gid] + s_local
-    width = ((v - v[s]) * normal).sum(axis=1)
+    width = sum_xy((v - v[s]) * normal)
     d1 = np.hypot(*(v - v[s]).T)
     d2 = np.hypot(*(v[nxt] - v[s]).T)
     fmin[gsel] = _segment_reduce(width, sub_off, np.minimum)
@@ -110,8 +112,8 @@ def _hull(xy):
         return xy[ConvexHull(xy).vertices]
     except (QhullError, ValueError):
         # all points on a line: the hull is the segment between its ends
-        a = xy[int(np.argmax(((xy - xy[0]) ** 2).sum(axis=1)))]
-        b = xy[int(np.argmax(((xy - a) ** 2).sum(axis=1)))]
+        a = xy[int(np.argmax(sum_xy((xy - xy[0]) ** 2)))]
+        b = xy[int(np.argmax(sum_xy((xy - a) ** 2)))]
         return np.array([a, b]) if np.any(a != b) else xy[:1]
 
 
@@ -174,7 +176,8 @@ def convex_hulls(xy, offsets, max_passes=200):
         # drop vertices that repeat their (cyclic) predecessor: a zero-length
         # edge hides the turn; a polygon of one repeated point keeps one
         _, prv, _ = _cyclic_neighbours(cur_off)
-        distinct = np.any(cur != cur[prv], axis=1)
+        before = cur[prv]
+        distinct = (cur[:, 0] != before[:, 0]) | (cur[:, 1] != before[:, 1])
         lone = np.bincount(cur_gid[distinct], minlength=n) == 0
         starts = cur_off[:-1][lone & (np.diff(cur_off) > 0)]
         distinct[starts] = True
@@ -229,7 +232,7 @@ def _turns_once(poly, off):
     gid, prv, nxt = _cyclic_neighbours(off)
     a = poly - poly[prv]
     b = poly[nxt] - poly
-    ang = np.arctan2(a[:, 0] * b[:, 1] - a[:, 1] * b[:, 0], (a * b).sum(axis=1))
+    ang = np.arctan2(a[:, 0] * b[:, 1] - a[:, 1] * b[:, 0], sum_xy(a * b))
     total = np.bincount(gid, ang, minlength=n)
     return np.abs(total - 2.0 * np.pi) < 1e-6
 
@@ -255,7 +258,8 @@ def _contains_all(hull, h_off, pts, p_off, eps):
     key = hg * 8.0 + theta + 4.0
     pg = np.repeat(np.arange(n), np.diff(p_off))
     prel = pts - h0[pg]
-    at_h0 = (np.abs(prel) <= 1e-12 * max(1.0, float(np.abs(pts).max()))).all(axis=1)
+    near = np.abs(prel) <= 1e-12 * max(1.0, float(np.abs(pts).max()))
+    at_h0 = near[:, 0] & near[:, 1]
     pth = np.mod(np.arctan2(prel[:, 1], prel[:, 0]) - base[pg] + np.pi, 2 * np.pi) - np.pi
     # wedge j: between rays h0->h_j and h0->h_j+1, j = 1..k-2
     last = h_off[1:] - 1

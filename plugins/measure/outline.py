@@ -55,6 +55,13 @@ def _as_closed(points, name="contour_xy", min_vertices=1):
     return arr
 
 
+def _shifted(a, step: int) -> np.ndarray:
+    """``np.roll(a, step, axis=0)`` for step -1 or 1 (the same array), without roll's general-case overhead."""
+    if len(a) == 0:
+        return a.copy()
+    return np.concatenate((a[1:], a[:1])) if step == -1 else np.concatenate((a[-1:], a[:-1]))
+
+
 def polygon_area(poly):
     """Signed area of a closed polygon (shoelace formula).
 
@@ -80,7 +87,7 @@ def polygon_area(poly):
     """
     p = _as_closed(poly, "poly")
     x, y = p[:, 0], p[:, 1]
-    return 0.5 * float(np.dot(x, np.roll(y, -1)) - np.dot(np.roll(x, -1), y))
+    return 0.5 * float(np.dot(x, _shifted(y, -1)) - np.dot(_shifted(x, -1), y))
 
 
 def closed_length(poly):
@@ -114,7 +121,7 @@ def polygon_edges(poly):
         ``i + 1`` (modulo k), in the input unit.
     """
     p = _as_closed(poly, "poly")
-    d = np.roll(p, -1, axis=0) - p
+    d = _shifted(p, -1) - p
     return np.hypot(d[:, 0], d[:, 1])
 
 
@@ -135,10 +142,10 @@ def turning_angles(poly):
         positive area.
     """
     p = _as_closed(poly, "poly")
-    d_in = p - np.roll(p, 1, axis=0)
-    d_out = np.roll(p, -1, axis=0) - p
+    d_in = p - _shifted(p, 1)
+    d_out = _shifted(p, -1) - p
     cross = d_in[:, 0] * d_out[:, 1] - d_in[:, 1] * d_out[:, 0]
-    dot = (d_in * d_out).sum(axis=1)
+    dot = sum_xy(d_in * d_out)
     return np.degrees(np.arctan2(cross, dot))
 
 
@@ -311,6 +318,18 @@ def douglas_peucker_closed(contour_xy, tolerance):
     return np.flatnonzero(keep)
 
 
+def sum_xy(v) -> np.ndarray:
+    """``v.sum(axis=1)`` of an (N, 2) array by columns: ``(v[:, 0] + v[:, 1]) + 0.0``, the same numbers.
+
+    numpy reduces a length-2 axis row by row, about 25x slower on a frame's outline vertices. Its
+    sum starts from +0, so two negative zeros sum to +0 there; adding +0 does the same here and
+    leaves every other sum as it is (tested bit for bit, signed zeros and NaN included).
+    """
+    out = v[:, 0] + v[:, 1]
+    out += 0.0
+    return out
+
+
 def douglas_peucker_packed(xy, offsets, tolerances):
     """Douglas-Peucker simplification of many closed contours at once.
 
@@ -356,7 +375,7 @@ def douglas_peucker_packed(xy, offsets, tolerances):
     keep[ext_off[:-1]] = True
     keep[closing] = True
     # vertex farthest from the first one starts the recursion
-    d0 = ((ext - ext[ext_off[:-1][gid]]) ** 2).sum(axis=1)
+    d0 = sum_xy((ext - ext[ext_off[:-1][gid]]) ** 2)
     pt_tol = tol[gid]
     dmax = _first_argmax(d0, ext_off)
     seed = dmax[(dmax >= 0)]
@@ -375,13 +394,13 @@ def douglas_peucker_packed(xy, offsets, tolerances):
         b_i = kept[np.minimum(seg + 1, len(kept) - 1)]
         a, b = ext[a_i], ext[b_i]
         d = b - a
-        ln2 = (d**2).sum(axis=1)
+        ln2 = sum_xy(d**2)
         rel = ext[pos] - a
-        proj = (rel * d).sum(axis=1)
+        proj = sum_xy(rel * d)
         inside = (proj > 0) & (proj < ln2)
         with np.errstate(invalid="ignore", divide="ignore"):
             perp = np.abs(d[:, 0] * rel[:, 1] - d[:, 1] * rel[:, 0]) / np.sqrt(ln2)
-        ends = np.sqrt(np.minimum((rel**2).sum(axis=1), ((ext[pos] - b) ** 2).sum(axis=1)))
+        ends = np.sqrt(np.minimum(sum_xy(rel**2), sum_xy((ext[pos] - b) ** 2)))
         dist = np.where(inside, perp, ends)
         dist[keep[pos]] = -1.0
         dist[b_i < a_i] = -1.0
@@ -544,7 +563,7 @@ def fit_polygons(
                 c = c[::-1]
             # start at the vertex farthest from the mean: a true corner of
             # any convex polygon, never a false one
-            i0 = int(np.argmax(((c - c.mean(axis=0)) ** 2).sum(axis=1)))
+            i0 = int(np.argmax(sum_xy((c - c.mean(axis=0)) ** 2)))
             c = np.concatenate([c[i0:], c[:i0]])
         prepared.append(c)
     tol = np.maximum(rel_tolerance * sizes, min_tolerance)
@@ -583,7 +602,9 @@ class _Cleaner:
         # rows are turned into Python floats when a line needs them (two rows a line): the whole table of a
         # contour of m vertices, 10 m + 5 floats, cost more than the clean-up itself
         self.cum = cum
-        self.pts = c.tolist()
+        # the vertices as Python floats, each turned when first read (a clean-up reads a few dozen of the
+        # hundreds of a contour; the whole list cost about as much as the rest of this set-up)
+        self.pts = _VertexFloats(c)
         self.cache = {}
         # a corner depends on its two neighbours, a turn and the edge after it on two corners to each side:
         # each clean-up step changes one or two corners, so most of them are looked up, not computed again
@@ -671,7 +692,23 @@ class _Cleaner:
 
     def distance_to_contour(self, p):
         d = self.c - p
-        return float(np.sqrt((d * d).sum(axis=1).min()))
+        return float(np.sqrt(sum_xy(d * d).min()))
+
+
+class _VertexFloats:
+    """``c.tolist()`` of a contour's (m, 2) vertices, each row made when first indexed (the same floats)."""
+
+    __slots__ = ("c", "rows")
+
+    def __init__(self, c):
+        self.c = c
+        self.rows = {}
+
+    def __getitem__(self, i):
+        row = self.rows.get(i)
+        if row is None:
+            row = self.rows[i] = self.c[i].tolist()
+        return row
 
 
 def _turns_and_edges(poly):
