@@ -218,13 +218,18 @@ def flood_band(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: 
         y0, y1 = max(box[0].start - 1, 0), min(box[0].stop + 1, rows)
         x0, x1 = max(box[1].start - 1, 0), min(box[1].stop + 1, cols)
         win = (slice(y0, y1), slice(x0, x1))
-        own = pieces[win] == j
-        seeds = np.where(own, markers[win], 0)
-        if not (seeds == label).any():
-            continue
-        flooded = watershed_window(sobel_magnitude(image[win]), seeds.astype(np.int32, copy=False), own)
-        out[win] |= flooded == label
+        _flood_window(image, markers, pieces[win] == j, win, label, out)
     return out
+
+
+def _flood_window(image: np.ndarray, markers: np.ndarray, own: np.ndarray, win: tuple, label: int,
+                  out: np.ndarray) -> None:
+    """Flood one window's band pixels ``own`` from its markers; set ``out`` where ``label`` won."""
+    seeds = np.where(own, markers[win], 0)
+    if not (seeds == label).any():
+        return
+    flooded = watershed_window(sobel_magnitude(image[win]), seeds.astype(np.int32, copy=False), own)
+    out[win] |= flooded == label
 
 
 def _flood_clusters(image: np.ndarray, markers: np.ndarray, band: np.ndarray, label: int, boxes: list,
@@ -258,9 +263,5 @@ def _flood_clusters(image: np.ndarray, markers: np.ndarray, band: np.ndarray, la
                 g = grown[i]
                 own[g[0] - y0:g[1] - y0, g[2] - x0:g[3] - x0] = True
         own &= band[win]
-        seeds = np.where(own, markers[win], 0)
-        if not (seeds == label).any():
-            continue
-        flooded = watershed_window(sobel_magnitude(image[win]), seeds.astype(np.int32, copy=False), own)
-        out[win] |= flooded == label
+        _flood_window(image, markers, own, win, label, out)
     return out

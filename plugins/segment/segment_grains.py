@@ -52,7 +52,12 @@
    saddles of the distance map of the particles' Otsu class instead, whatever
    polarity the preprocessing chose; its drawn marks are dropped by ink as
    below, and a note says so (``packed_fields: false`` turns the test off).
-5. Labels are numbered 1..n in row-major order of their first pixel, so a
+5. Seams (segment-grains 2.9, :mod:`grainhabit.plugins.segment.dark_seams`): after the
+   splitting, a grain that is not convex, or is 1.8 times the frame's median grain or larger, is
+   divided along the thin dark lines inside it (black top-hat) by a marker-controlled watershed,
+   kept only where every boundary between its parts is 15 % darker than both and every part is
+   convex; the note counts the grains divided.
+6. Labels are numbered 1..n in row-major order of their first pixel, so a
    tiled run (see :mod:`grainhabit.plugins.segment.tiling`) numbers them as an untiled one.
 
 References
@@ -92,7 +97,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.8",
+    version="2.9",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
