@@ -44,12 +44,12 @@ def test_tiled_equals_untiled():
     shape = (480, 460)
     raw, _ = draw_faceted_frame(shape, grains=scattered_grains(60, shape, seed=4), seed=4)
     image = preprocess.flatten(raw, 5.0)[0]
-    untiled, split_u, _ = segment.segment_image(image, 5.0, {})
+    untiled, split_u, notes_u = segment.segment_image(image, 5.0, {})
     # small cores and the smallest halo: many clusters are cut by tile edges and segmented again
     tiled, split_t, notes = segment.segment_image(image, 5.0, {"tile_px": 100, "tile_overlap_nm": 0.0,
                                                                "tile_workers": 2})
     assert untiled.max() > 20 and split_u.any()
-    assert notes == []
+    assert notes == notes_u  # no note of pixels lost at tile edges
     # same partition: the contingency table is a permutation (here even the numbering agrees)
     table = contingency_table(untiled, tiled).toarray()
     assert ((table[1:, 1:] > 0).sum(axis=1) == 1).all()
@@ -123,9 +123,9 @@ def test_tiled_on_the_cluster_equals_untiled(two_worker_client):
     raw, _ = draw_faceted_frame(shape, grains=scattered_grains(60, shape, seed=6), seed=6)
     image = preprocess.flatten(raw, 5.0)[0]
     params = {"tile_overlap_nm": 0.0}
-    untiled, split_u, _ = segment.segment_image(image, 5.0, params)
+    untiled, split_u, notes_u = segment.segment_image(image, 5.0, params)
     tiled, split_t, notes = two_worker_client.submit(_segment_task, image, dict(params, tile_px=120),
                                                      pure=False).result(timeout=120)
-    assert untiled.max() > 20 and notes == []
+    assert untiled.max() > 20 and notes == notes_u
     np.testing.assert_array_equal(tiled, untiled)
     np.testing.assert_array_equal(split_t, split_u)

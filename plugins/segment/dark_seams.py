@@ -24,9 +24,12 @@ is not convex is looked at once more:
 4. the division is kept only when every boundary between two parts is darker
    than both parts by ``SEAM_DIP`` (as
    :func:`~grainhabit.plugins.segment.touching.seam_contrast` measures a
-   cut) and every part is convex (solidity at least :data:`PART_SOLIDITY`):
-   the texture inside one grain gives wandering boundaries and parts that
-   are not convex.
+   cut) and meets the outline at a notch (:data:`NOTCH_PX` deep, within
+   :data:`NOTCH_REACH_PX`), and every part is convex (solidity at least
+   :data:`PART_SOLIDITY`): the texture inside one grain gives wandering
+   boundaries and parts that are not convex, and the edges between the
+   facets of one crystal, dark as they may be, meet its outline at corners,
+   not in notches.
 
 Only grains whose solidity (ISO 9276-6) is under :data:`GRAIN_SOLIDITY`,
 or that are :data:`LARGE_FACTOR` times the frame's median grain or larger,
@@ -72,6 +75,10 @@ LARGE_FACTOR = 1.8
 LARGE_MIN_GRAINS = 5
 #: Grains under this many smallest grains are not looked at.
 MIN_GRAINS = 4
+#: A notch of the outline: pixels of the convex hull at least this far (px) outside the grain ...
+NOTCH_PX = 1.5
+#: ... within this distance (px) of where a boundary between two parts meets the outline.
+NOTCH_REACH_PX = 4.0
 #: Pixels nearer the outline than this (px) take no part in the levels and the seams' contrast.
 EDGE_PX = 2.0
 _EIGHT = np.ones((3, 3), bool)
@@ -110,8 +117,10 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     from grainhabit.plugins.segment.distance_maxima import distance_h_maxima
 
     area = float(np.count_nonzero(mask))
-    if area < MIN_GRAINS * min_area or (not large and area >= GRAIN_SOLIDITY
-                                        * float(np.count_nonzero(convex_hull_mask(mask)))):
+    if area < MIN_GRAINS * min_area:
+        return None
+    hull = convex_hull_mask(mask)
+    if not large and area >= GRAIN_SOLIDITY * float(np.count_nonzero(hull)):
         return None
     smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
     dist = ndi.distance_transform_edt(mask)
@@ -152,14 +161,22 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
             k = root[k]
         return k
 
+    # where the outline is notched: pixels of the convex hull outside the grain, NOTCH_PX deep or more
+    notched = hull & ~mask
+    notched &= ndi.distance_transform_edt(~mask) >= NOTCH_PX
+    near_notch = ndi.distance_transform_edt(~notched) <= NOTCH_REACH_PX if notched.any() else notched
     for i, a in enumerate(big):
         grown = ndi.binary_dilation(flooded == a, structure=_EIGHT)
         for b in big[i + 1:]:
-            line = grown & (flooded == b) & (dist > EDGE_PX)
+            meet = grown & (flooded == b)
+            line = meet & (dist > EDGE_PX)
             if np.count_nonzero(line) < 3:
                 continue
             low = min(levels[a], levels[b])
-            if not (low > 0 and 1.0 - float(darkest[line].mean()) / low >= SEAM_DIP):
+            seam = low > 0 and 1.0 - float(darkest[line].mean()) / low >= SEAM_DIP
+            # two particles side by side leave a notch where their seam meets the outline; the edge between
+            # two facets of one crystal meets it at a corner of a convex outline
+            if not (seam and (meet & (dist <= EDGE_PX) & near_notch).any()):
                 root[find(int(b))] = find(int(a))
     groups: dict[int, list[int]] = {}
     for k in big:
