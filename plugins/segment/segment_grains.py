@@ -133,6 +133,11 @@ STEP = StepInfo(
                   "are background texture, not grains."),
         Param("reject_annotations", bool, True,
               doc="Drop thin line-like or stroke-like objects (scale bars, panel letters, text, scratches)."),
+        Param("ink_marks", str, "auto", choices=("auto", "on", "off"),
+              doc="Also drop objects drawn in flat black or white ink (annotations.py): 'auto' does so unless "
+                  "the frame's pixel size comes from its instrument's own metadata (a file as the microscope "
+                  "wrote it, whose reader has already masked the marks drawn in its stored values; there a "
+                  "grain clipped to white is a grain)."),
         Param("close_nm", float, None, unit="nm", low=0.0,
               doc="Radius of the closing that bridges facet lines at the outline; unset means 2 pixels."),
         Param("refine_nm", float, None, unit="nm", low=0.0,
@@ -747,7 +752,7 @@ def drop_drawn_marks(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: d
     n_stroke = sum(d["stroke"] for d in dropped)
     given = boxes
     n_labels = len(boxes) if boxes is not None else int(labels.max())
-    if raw is not None and p["reject_annotations"] and n_labels > 0:
+    if raw is not None and p["reject_annotations"] and p["ink_marks"] != "off" and n_labels > 0:
         ink = annotations.frame_ink(raw)  # ink levels, ink pixels and grey-level counts, shared by both calls
         inked = annotations.drawn_labels(labels, raw, boxes=boxes, ink=ink)
         if clusters is not None and split_by_label is not None and np.any(split_by_label):
@@ -805,6 +810,8 @@ def grainhabit_segment(frame, params):
     if frame.image is None:
         raise ValueError("segment-grains needs frame.image: run a preprocess step (flatten-background) first")
     raw = frame.raw if frame.raw is not None and np.shape(frame.raw) == np.shape(frame.image) else None
+    if STEP.resolve(params)["ink_marks"] == "auto":
+        params = dict(params, ink_marks="off" if frame.calibration == "instrument" else "on")
     labels, split, notes = segment_image(frame.image, frame.pixel_size_nm, params, raw)
     n = int(labels.max())
     new = frame.replace(labels=labels, grains={})
