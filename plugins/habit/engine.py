@@ -550,16 +550,21 @@ def _distance_rows(spec_a, aa, sig_fft, sig_sq, n):
     Each row is computed on its own (one inverse real FFT per row, element-wise scaling), so the
     rows of any subset of shapes have the bits of the same rows of all shapes.
     """
-    d = np.fft.irfft(spec_a[None, :] * sig_fft, n, axis=1)
-    # squared distances (|a|^2 + |b|^2 - 2 C) / n, in place
+    return squared_distances_in_place(np.fft.irfft(spec_a[None, :] * sig_fft, n, axis=1), aa + sig_sq, n)
+
+
+def squared_distances_in_place(d: np.ndarray, norms: np.ndarray, n: int) -> np.ndarray:
+    """Cross-correlations ``d`` (rows, n) turned in place into squared distances ``(|a|^2 + |b|^2 - 2 C) / n``.
+
+    ``norms`` (rows,) is ``|a|^2 + |b|^2`` of each row. For n a power of two, scaling by -2/n and by 1/n is
+    exact and rounding commutes with it, so ``(-2/n) C + (|a|^2 + |b|^2) / n`` is the same float in two passes.
+    """
     if n & (n - 1) == 0:
-        # n a power of two: scaling by -2/n and by 1/n is exact, and rounding commutes with it, so
-        # (-2/n) C + (|a|^2 + |b|^2)/n is the same float as (|a|^2 + |b|^2 - 2 C) / n in two passes
         np.multiply(d, -2.0 / n, out=d)
-        np.add(d, ((aa + sig_sq) / n)[:, None], out=d)
+        np.add(d, (norms / n)[:, None], out=d)
     else:
         np.multiply(d, 2.0, out=d)
-        np.subtract((aa + sig_sq)[:, None], d, out=d)
+        np.subtract(norms[:, None], d, out=d)
         np.divide(d, n, out=d)
     return d
 

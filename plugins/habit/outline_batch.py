@@ -115,15 +115,9 @@ def distance_rows_of(spec, aa, sig_fft, sig_sq, n: int) -> np.ndarray:
         ``_distance_rows(spec[j], aa[j], sig_fft[j:j+1], sig_sq[j:j+1], n)`` (the same
         element-wise operations; the inverse FFT transforms each row on its own).
     """
-    d = np.fft.irfft(spec * sig_fft, n, axis=1)
-    if n & (n - 1) == 0:
-        np.multiply(d, -2.0 / n, out=d)
-        np.add(d, ((aa + sig_sq) / n)[:, None], out=d)
-    else:
-        np.multiply(d, 2.0, out=d)
-        np.subtract((aa + sig_sq)[:, None], d, out=d)
-        np.divide(d, n, out=d)
-    return d
+    from grainhabit.plugins.habit.engine import squared_distances_in_place
+
+    return squared_distances_in_place(np.fft.irfft(spec * sig_fft, n, axis=1), aa + sig_sq, n)
 
 
 def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
