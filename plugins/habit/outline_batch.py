@@ -28,6 +28,7 @@ import math
 
 import numpy as np
 
+from grainhabit.plugins.habit import engine as en
 from grainhabit.plugins.habit import outline_bound
 from grainhabit.plugins.habit.signature import check_n_angles, check_polygon, polygon_centroid, ray_directions
 
@@ -115,9 +116,7 @@ def distance_rows_of(spec, aa, sig_fft, sig_sq, n: int) -> np.ndarray:
         ``_distance_rows(spec[j], aa[j], sig_fft[j:j+1], sig_sq[j:j+1], n)`` (the same
         element-wise operations; the inverse FFT transforms each row on its own).
     """
-    from grainhabit.plugins.habit.engine import squared_distances_in_place
-
-    return squared_distances_in_place(np.fft.irfft(spec * sig_fft, n, axis=1), aa + sig_sq, n)
+    return en.squared_distances_in_place(np.fft.irfft(spec * sig_fft, n, axis=1), aa + sig_sq, n)
 
 
 def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
@@ -232,8 +231,6 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
         Entry i equal, field by field and bit by bit, to ``match_outline(contours[i], ...)``,
         its ``compared`` in the state that call leaves.
     """
-    from grainhabit.plugins.habit import engine as en
-
     if not contours:
         return []
     n = library.signatures.shape[-1]
@@ -306,8 +303,6 @@ def outline_fits(matches, library, tolerance: float) -> list:
         outline-only fit does not read). The steps of that fit, each over all matches at once:
         element-wise arithmetic, minima and first or middle positions (no sums).
     """
-    from grainhabit.plugins.habit import engine as en
-
     g = len(matches)
     if g == 0:
         return []

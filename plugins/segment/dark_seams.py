@@ -56,7 +56,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.foreground import disk_structure
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+from grainhabit.plugins.segment.population import box_areas
 from grainhabit.plugins.segment.touching import SEAM_DIP
 
 #: Grains less solid than this are looked at (two touching discs: 0.88; one disc: 1).
@@ -82,11 +84,6 @@ NOTCH_REACH_PX = 4.0
 #: Pixels nearer the outline than this (px) take no part in the levels and the seams' contrast.
 EDGE_PX = 2.0
 _EIGHT = np.ones((3, 3), bool)
-
-
-def _disc(radius: int) -> np.ndarray:
-    yy, xx = np.mgrid[-radius:radius + 1, -radius:radius + 1]
-    return xx * xx + yy * yy <= radius * radius
 
 
 def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
@@ -130,7 +127,7 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     level = float(np.median(smooth[inner]))
     if level <= 0:
         return None
-    tophat = ndi.grey_closing(smooth, footprint=_disc(SEAM_RADIUS_PX)) - smooth
+    tophat = ndi.grey_closing(smooth, footprint=disk_structure(SEAM_RADIUS_PX)) - smooth
     seams = (tophat > SEAM_DIP * level) & (dist > 1) & mask
     if not seams.any():
         return None
@@ -189,8 +186,8 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     return parts
 
 
-def split_at_dark_seams(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float
-                        ) -> tuple[np.ndarray, np.ndarray, int]:
+def split_at_dark_seams(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float,
+                        boxes: list | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """Divide every grain of a frame that :func:`divide_at_seams` divides.
 
     Parameters
@@ -203,6 +200,9 @@ def split_at_dark_seams(image: np.ndarray, labels: np.ndarray, split: np.ndarray
         Whether each grain was cut from a larger component.
     min_area : float
         Smallest grain area, px.
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)`` when the caller has it (every label present): the areas
+        are then counted in the boxes, not over the whole frame (the same result).
 
     Returns
     -------
@@ -218,8 +218,11 @@ def split_at_dark_seams(image: np.ndarray, labels: np.ndarray, split: np.ndarray
     n = int(labels.max()) if labels.size else 0
     if n == 0:
         return labels, split, 0
-    boxes = ndi.find_objects(labels)
-    areas = np.bincount(labels.ravel(), minlength=n + 1)
+    if boxes is not None and len(boxes) == n and all(b is not None for b in boxes):
+        areas = np.r_[0, box_areas(labels, boxes)]
+    else:
+        boxes = ndi.find_objects(labels)
+        areas = np.bincount(labels.ravel(), minlength=n + 1)
     typical = float(np.median(areas[1:][areas[1:] > 0])) if n >= LARGE_MIN_GRAINS else np.inf
     out = None
     was_split = np.r_[False, np.asarray(split, bool)]

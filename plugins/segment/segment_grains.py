@@ -55,7 +55,8 @@
 5. Seams (segment-grains 2.9, :mod:`grainhabit.plugins.segment.dark_seams`): after the
    splitting, a grain that is not convex, or is 1.8 times the frame's median grain or larger, is
    divided along the thin dark lines inside it (black top-hat) by a marker-controlled watershed,
-   kept only where every boundary between its parts is 15 % darker than both and every part is
+   kept only where every boundary between its parts is 15 % darker than both and meets the outline
+   in a notch (the edges between the facets of one crystal meet it at corners), and every part is
    convex; the note counts the grains divided.
 6. Labels are numbered 1..n in row-major order of their first pixel, so a
    tiled run (see :mod:`grainhabit.plugins.segment.tiling`) numbers them as an untiled one.
@@ -538,16 +539,18 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         split = flags["split"][1:]
         boxes, cluster_of = noted["boxes"], noted["cluster_of"]
     split_by_label = flags.get("split")
-    labels, split, n_rafts = split_rafts(arr, labels, split, smallest_grain_area(p, pixel_size_nm), boxes)
+    least = smallest_grain_area(p, pixel_size_nm)
+    labels, split, n_rafts = split_rafts(arr, labels, split, least, boxes)
     if n_rafts:
         notes.append(f"segment-grains: {n_rafts} raft(s) of packed particles divided at their gaps")
-        boxes = cluster_of = None
-        if clusters is not None:
-            split_by_label = np.r_[False, split]
-    labels, split, n_seamed = split_at_dark_seams(arr, labels, split, smallest_grain_area(p, pixel_size_nm))
+        boxes = None
+    labels, split, n_seamed = split_at_dark_seams(arr, labels, split, least, boxes)
     if n_seamed:
         notes.append(f"segment-grains: {n_seamed} grain(s) divided along dark seams")
-        boxes = cluster_of = None
+        boxes = None
+    if n_rafts or n_seamed:
+        # the labels were renumbered: the boxes and components noted by label_grains no longer apply
+        cluster_of = None
         if clusters is not None:
             split_by_label = np.r_[False, split]
     return place_outlines(arr, *drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters,
