@@ -172,3 +172,66 @@ def test_memo_skips_label_images_above_its_size_limit(monkeypatch):
     lab = _label_images()[0]
     memo.get(lab, int(lab.max()))
     assert memo.labels is None and memo.result is None
+
+
+# ------------------------------------------------------------------ measure: coordinate sums over row runs
+
+
+def _label_moments_reference(labels, image=None, n_labels=None):
+    """``measure_grains.label_moments`` as it stood before: one ``np.bincount`` per moment over the pixels."""
+    lab = np.asarray(labels)
+    n = int(lab.max()) if n_labels is None else int(n_labels)
+    flat = lab.ravel()
+    fg = np.flatnonzero(flat != 0)
+    ids = flat[fg].astype(np.intp)
+    rows, cols = np.divmod(fg, lab.shape[1])
+    x = cols.astype(np.float64)
+    y = rows.astype(np.float64)
+    size = n + 1
+
+    def total(w=None):
+        return np.bincount(ids, w, size)[1:size]
+
+    area = total().astype(np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inv = 1.0 / area
+        mx, my = total(x) * inv, total(y) * inv
+        mxx = total(x * x) * inv - mx * mx + 1.0 / 12.0
+        myy = total(y * y) * inv - my * my + 1.0 / 12.0
+        mxy = total(x * y) * inv - mx * my
+        out = {"area": area, "cx": mx + 0.5, "cy": my + 0.5, "mxx": mxx, "myy": myy, "mxy": mxy}
+        if image is not None:
+            vals = np.asarray(image).ravel()[fg].astype(np.float64)
+            mean = total(vals) * inv
+            dv = vals - np.concatenate([[0.0], mean])[ids]
+            out["mean"] = mean
+            out["std"] = np.sqrt(total(dv * dv) * inv)
+    return out
+
+
+def test_moments_from_row_runs_equal_the_per_pixel_sums():
+    from grainhabit.plugins.measure import measure_grains as mg
+
+    rng = np.random.default_rng(5)
+    images = _label_images()
+    big = np.zeros((1500, 1300), np.int32)           # sums of x^2 near 1e12: still exact, still equal
+    big[200:1450, 3:1290] = 2
+    big[5:40, 1250:1300] = 1
+    images += [big, np.zeros((30, 40), np.int32), np.ones((1, 7), np.int64), np.ones((9, 1), np.uint8)]
+    for lab in images:
+        img = rng.normal(100.0, 20.0, lab.shape).astype(np.float32)
+        for image, n in ((None, None), (img, None), (img, int(lab.max()) + 2)):
+            got = mg.label_moments(lab, image, n)
+            want = _label_moments_reference(lab, image, n)
+            assert got.keys() == want.keys()
+            for k in want:
+                assert got[k].dtype == want[k].dtype and np.array_equal(got[k], want[k], equal_nan=True), k
+
+
+def test_moments_fall_back_to_pixel_sums_where_run_sums_could_round(monkeypatch):
+    from grainhabit.plugins.measure import measure_grains as mg
+
+    monkeypatch.setattr(mg, "_EXACT_INTEGER_SUM", 10)  # every frame counts as too large: the per-pixel form
+    lab = _label_images()[1]
+    got, want = mg.label_moments(lab), _label_moments_reference(lab)
+    assert all(np.array_equal(got[k], want[k], equal_nan=True) for k in want)
