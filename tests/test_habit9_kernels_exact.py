@@ -8,6 +8,8 @@ label images drawn with scikit-image (``skimage.draw``); the outlines keep their
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from builders import noisy, with_info_strip
@@ -235,3 +237,55 @@ def test_moments_fall_back_to_pixel_sums_where_run_sums_could_round(monkeypatch)
     lab = _label_images()[1]
     got, want = mg.label_moments(lab), _label_moments_reference(lab)
     assert all(np.array_equal(got[k], want[k], equal_nan=True) for k in want)
+
+
+# ------------------------------------------------------------------ measure: the corner clean-up's tables
+
+
+def _cleaner_contours():
+    rng = np.random.default_rng(17)
+    out = []
+    for m in (12, 40, 97, 256, 611):
+        t = np.sort(rng.uniform(0, 2 * np.pi, m))
+        r = 20.0 + 3.0 * np.cos(4 * t) + rng.normal(0, 0.3, m)
+        out.append(np.column_stack([300.5 + r * np.cos(t), 41.25 + r * np.sin(t)]))
+    lab = _label_images()[0]
+    outl = co.trace_outlines(lab, int(lab.max()), 9)
+    out += [outl[i] for i in range(len(outl)) if len(outl[i]) >= 8]
+    return out
+
+
+def test_cleaner_running_sums_equal_the_vertex_by_sum_table():
+    from grainhabit.plugins.measure import outline as ol
+
+    for c in _cleaner_contours():
+        cl = ol._Cleaner(c)
+        # the table as it stood before: (vertex, sum), cumulative sums down the columns
+        cx, cy = (float(v) for v in c.mean(axis=0))
+        cc = np.concatenate([c, c]) - (cx, cy)
+        x, y = cc[:, 0], cc[:, 1]
+        before = np.zeros((2 * len(c) + 1, 5))
+        np.cumsum(np.stack([x, y, x * x, y * y, x * y], axis=1), axis=0, out=before[1:])
+        assert np.array_equal(cl.cum.T, before)
+
+
+def test_cleaner_polygon_equals_the_line_by_line_form():
+    from grainhabit.plugins.measure import outline as ol
+
+    rng = np.random.default_rng(23)
+    for c in _cleaner_contours():
+        m = len(c)
+        fast, slow = ol._Cleaner(c), ol._Cleaner(c)
+        for _ in range(12):            # several index sets on one cleaner: lines and corners come from its caches
+            k = int(rng.integers(3, min(m, 14) + 1))
+            idx = sorted(int(i) for i in rng.choice(m, k, replace=False))
+            reach = float(rng.uniform(1.0, 6.0))
+            poly, lines = fast.polygon(idx, True, reach)
+            # the form before: one line() call per edge, corners as in polygon()
+            want_lines = [slow.line(idx[j], idx[(j + 1) % k]) for j in range(k)]
+            want = []
+            for j in range(k):
+                vx, vy = slow.pts[idx[j]]
+                p = slow.meet(want_lines[j - 1], want_lines[j])
+                want.append(p if p is not None and math.hypot(p[0] - vx, p[1] - vy) <= reach else (vx, vy))
+            assert lines == want_lines and poly == want
