@@ -37,6 +37,13 @@ FAINT_SHOWN_SHARE = 0.5
 #: ... and those smaller than this share of the smallest grain's area at the low level (specks of noise;
 #: a faint grain's core there is smaller than its outline, which the refinement moves onto its edge).
 FAINT_AREA_SHARE = 0.25
+#: A frame whose background sigma is more than this share of the grain level (grains under about 17 background
+#: sigmas: noisy TEM fields, fast SEM scans) has many grain pixels below the noise threshold; there the noise
+#: threshold's objects grow into the connected pixels above HYSTERESIS_SIGMAS (see half_height_mask).
+NOISY_SIGMA_SHARE = 0.06
+#: Low level of that growth, background sigmas (half the noise threshold's 5: the two-to-one hysteresis of
+#: J. Canny, 1986, common practice).
+HYSTERESIS_SIGMAS = 2.5
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -108,7 +115,8 @@ def foreground_labels(image: np.ndarray, pixel_size_nm: float, levels: dict, met
 
     arr = check_image(image)
     if method == "auto":
-        fg = half_height_mask(arr, levels["noise"], edge_level, levels.get("faint"), faint_min_area)
+        fg = half_height_mask(arr, levels["noise"], edge_level, levels.get("faint"), faint_min_area,
+                              hysteresis_level(levels))
     elif method == "noise":
         fg = arr > levels["noise"]
     elif method == "otsu":
@@ -184,8 +192,57 @@ def markers_of(background: np.ndarray, grains: np.ndarray) -> np.ndarray:
     return out
 
 
+def hysteresis_level(levels: dict) -> float | None:
+    """The low level to which the noise threshold's objects grow on a noisy frame, or None.
+
+    Parameters
+    ----------
+    levels : dict
+        Frame-wide levels (:func:`~grainhabit.plugins.segment.levels.frame_levels`): ``background`` and
+        ``sigma`` in image units (grains about 1).
+
+    Returns
+    -------
+    float or None
+        ``background + HYSTERESIS_SIGMAS * sigma`` where ``sigma`` exceeds
+        :data:`NOISY_SIGMA_SHARE` of the grain level (1), else None.
+
+    Notes
+    -----
+    On the 357 EMPS training pictures (B. Yildirim and J. M. Cole, J. Chem. Inf. Model. 61 (2021) 1136)
+    the growth took the precision from 0.847 to 0.865 and the median ECD error from 8.6 to 8.2 %, recall
+    0.850 -> 0.848: grains of noisy or textured frames were found in fragments (pixels of the grain below
+    the noise threshold cut it up), and the splitter and the pocket test made several grains of one.
+    """
+    sigma = float(levels.get("sigma", 0.0))
+    if sigma <= NOISY_SIGMA_SHARE:
+        return None
+    return float(levels["background"]) + HYSTERESIS_SIGMAS * sigma
+
+
+def grown_to(seeds: np.ndarray, low: np.ndarray) -> np.ndarray:
+    """``seeds`` with every 8-connected component of ``low`` that holds a seed pixel (hysteresis).
+
+    Parameters
+    ----------
+    seeds, low : ndarray of bool, shape (rows, cols)
+
+    Returns
+    -------
+    ndarray of bool
+        ``seeds | reconstruction of low from seeds`` (scikit-image's ``apply_hysteresis_threshold`` keeps
+        the components of the low mask that hold a high pixel; tests/test_noisy_growth.py checks against it).
+    """
+    lab, n = ndi.label(low, structure=_EIGHT)
+    keep = np.zeros(n + 1, bool)
+    keep[lab[seeds]] = True
+    keep[0] = False
+    return seeds | keep[lab]
+
+
 def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 0.5,
-                     faint_level: float | None = None, faint_min_area: float = 0.0) -> np.ndarray:
+                     faint_level: float | None = None, faint_min_area: float = 0.0,
+                     grow_level: float | None = None) -> np.ndarray:
     """Foreground cut at a fixed fraction of each object's own peak.
 
     Parameters
@@ -205,6 +262,10 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
         clear of ``noise_level`` keep the extent that threshold gives them.
     faint_min_area : float
         Smallest grain area (px), for :func:`faint_objects`.
+    grow_level : float, optional
+        On a noisy frame (:func:`hysteresis_level`): the objects above
+        ``noise_level`` (and the faint ones) first take every pixel above
+        this level connected to them (:func:`grown_to`).
 
     Returns
     -------
@@ -228,6 +289,8 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
     weak = image > noise_level
     if faint_level is not None and faint_level < noise_level:
         weak |= faint_objects(image > faint_level, weak, faint_min_area)
+    if grow_level is not None and grow_level < noise_level:
+        weak = grown_to(weak, image > grow_level)
     lab, n = ndi.label(weak, structure=_EIGHT)
     if n == 0:
         return weak
