@@ -73,9 +73,9 @@ STEP = StepInfo(
         Param("denoise", str, "gaussian", choices=("gaussian", "bilateral", "nlmeans", "none"),
               doc="Filter applied after variance stabilisation."),
         Param("smooth_nm", float, None, unit="nm", low=0.0,
-              doc="Gaussian denoising sigma; unset: one pixel, or up to 3 px where the grains stand less "
-                  "than 10 background sigmas above a noisy background and a wider Gaussian lifts them "
-                  "clearly (chosen per frame)."),
+              doc="Gaussian denoising sigma; unset: one pixel, or 2 or 3 px on a noisy frame whose grains "
+                  "stand under 10 background sigmas at one pixel and reach 10 at the wider scale (chosen "
+                  "per frame)."),
         Param("polarity", str, "auto", choices=("auto", "bright", "dark"),
               doc="Contrast of grains in the raw frame: detect, or force bright-on-dark / dark-on-bright."),
     ),

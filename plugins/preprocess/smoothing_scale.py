@@ -117,6 +117,10 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     tried = {scales[0]: lv}
     if denoise_method == "gaussian" and lv["grain_snr"] < ENOUGH_SNR:
         for s in scales[1:]:
+            for earlier in tried.values():
+                # one denoised frame held at a time (a whole frame of float32 each); the step denoises again
+                # for the output when the chosen levels have none
+                earlier.pop("denoised", None)
             tried[s] = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, s, polarity)
             scores[s] = tried[s]["grain_snr"]
             if pick_scale(scores) == s and scores[s] >= ENOUGH_SNR:
