@@ -235,3 +235,30 @@ def test_tiles_spread_over_a_local_cluster_give_the_serial_whole_frame_result(tm
     for k in ("area_nm2", "centroid_x_nm", "centroid_y_nm", "ecd_nm", "alpha_lo"):
         np.testing.assert_allclose(b[k].values, a[k].values, rtol=TOL, atol=TOL, equal_nan=True, err_msg=k)
     np.testing.assert_array_equal(b["habit"].values, a["habit"].values)
+
+
+def test_a_noisy_frame_gets_the_same_smoothing_scale_and_grains_by_tiles(tmp_path):
+    # dark discs under noise as strong as their contrast (invented): flatten-background chooses a wider
+    # Gaussian (smoothing_scale); the tiles must get the scale the whole frame gets, and the same grains
+    rng = np.random.default_rng(7)
+    yy, xx = np.mgrid[0:768, 0:768]
+    img = np.full((768, 768), 2000.0)
+    for cy in range(60, 768, 110):
+        for cx in range(60, 768, 110):
+            img[(yy - cy) ** 2 + (xx - cx) ** 2 <= 14 ** 2] -= 400.0
+    img = np.clip(img + rng.normal(0, 400.0, img.shape), 0, 65535).astype(np.uint16)
+    path = write_tiff(tmp_path / "noisy.tif", img, PX)
+    from grainhabit.plugins.preprocess.smoothing_scale import levels_at_best_scale
+    levels = levels_at_best_scale(fb.frame_levels, fb.whole_frame_regions(img.astype(np.float32)), img.shape, PX,
+                                  4000.0, "gaussian", "auto")
+    assert levels["smooth_scores"][1.0] < 10 and levels["smooth_px"] > 1.0
+    ref = _ref(path)
+    opts = {"pixel_size_nm": PX}
+    whole = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts))
+    tiled = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts, frame_memory=13_000_000))
+    a, b = whole["record"], tiled["record"]
+    assert a["status"] == b["status"] == "ok", (a["error"], b["error"])
+    assert "tiles of 256 px" in b["notes"]
+    assert b["grain_count"] == a["grain_count"] >= 40
+    np.testing.assert_allclose(np.sort(tiled["columns"]["ecd_nm"]), np.sort(whole["columns"]["ecd_nm"]),
+                               rtol=TOL, atol=TOL)
