@@ -1,0 +1,100 @@
+"""Segmentation and preprocessing kernels of the ninth speed round (issue 19), each against the form it replaces.
+
+Every check compares a kernel with the general-purpose library call (numpy, scipy.ndimage) or the
+code it stands in for, bit for bit, on invented masks and images (random blobs, noise fields, values
+with both signs of zero).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.preprocess import polarity
+from grainhabit.plugins.segment import packed, runs
+
+_EIGHT = np.ones((3, 3), bool)
+
+
+def _fields(seed, n=12, side=(8, 160)):
+    """Invented masks: thresholded smoothed noise at several scales, sparse pixels, full and empty frames."""
+    rng = np.random.default_rng(seed)
+    out = [np.zeros((5, 7), bool), np.ones((6, 4), bool), np.eye(9, dtype=bool)]
+    for _ in range(n):
+        shape = tuple(int(v) for v in rng.integers(side[0], side[1], 2))
+        if rng.random() < 0.8:
+            m = ndi.gaussian_filter(rng.random(shape), rng.uniform(0.6, 5.0)) > rng.uniform(0.45, 0.56)
+        else:
+            m = rng.random(shape) > rng.uniform(0.5, 0.97)
+        out.append(m)
+    return out
+
+
+@pytest.mark.parametrize("shape", [(2, 2), (6, 10), (7, 11), (512, 512), (1000, 1536), (2048, 2048)])
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_block_mean_pairs_equals_numpy_mean_of_blocks(shape, dtype):
+    # reference: numpy's float32 mean over the two block axes (the form polarity.block_mean took before),
+    # on values of every magnitude and with zeros of both signs (numpy's sum never gives -0)
+    rng = np.random.default_rng(shape[0] * 7 + shape[1])
+    x = rng.standard_normal(shape) * 10.0 ** rng.uniform(-6, 6, shape)
+    x[rng.random(shape) < 0.1] = 0.0
+    x[rng.random(shape) < 0.1] = -0.0
+    x = x.astype(dtype)
+    rows, cols = (shape[0] // 2) * 2, (shape[1] // 2) * 2
+    want = np.asarray(x[:rows, :cols], np.float32).reshape(rows // 2, 2, cols // 2, 2).mean(axis=(1, 3))
+    got = polarity.block_mean(x, 2)
+    assert got.dtype == want.dtype == np.float32
+    np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(np.signbit(got), np.signbit(want))
+    # all four pixels negative zeros: numpy's sum starts from +0
+    z = np.full((4, 6), -0.0, dtype)
+    assert not np.signbit(polarity.block_mean(z, 2)).any()
+
+
+@pytest.mark.parametrize("f", [3, 4])
+def test_block_mean_other_factors_keep_numpy(f):
+    x = np.random.default_rng(f).random((37, 45))
+    rows, cols = (37 // f) * f, (45 // f) * f
+    want = np.asarray(x[:rows, :cols], np.float32).reshape(rows // f, f, cols // f, f).mean(axis=(1, 3))
+    np.testing.assert_array_equal(polarity.block_mean(x, f), want)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_labelled_maxima_equal_scipy_maximum(seed):
+    # reference: scipy.ndimage.maximum(values, labels, index) over every label
+    rng = np.random.default_rng(seed)
+    for m in _fields(seed):
+        lab, n = ndi.label(m, _EIGHT)
+        values = rng.standard_normal(m.shape)
+        values[rng.random(m.shape) < 0.05] = -0.0
+        at = np.flatnonzero(m)
+        for v in (values, values.astype(np.float32), rng.integers(-50, 50, m.shape)):
+            got = runs.labelled_maxima(v.ravel()[at], lab.ravel()[at], n)
+            assert got.shape == (n + 1,) and got[0] == -np.inf
+            if n:
+                want = np.asarray(ndi.maximum(v, lab, np.arange(1, n + 1)), got.dtype)
+                np.testing.assert_array_equal(got[1:], want)
+
+
+def _core_area_ratios_scipy(dist, cut, min_area):
+    """packed.core_area_ratios as it was: whole-frame bincount and scipy's labelled maximum."""
+    cores, n = ndi.label(dist > cut, _EIGHT)
+    if n == 0:
+        return np.zeros(0)
+    areas = np.bincount(cores.ravel(), minlength=n + 1)
+    keep = [k for k, box in enumerate(ndi.find_objects(cores), start=1)
+            if areas[k] >= min_area and packed._clear_of_edge(box, cores.shape)]
+    if not keep:
+        return np.zeros(0)
+    inner = np.asarray(ndi.maximum(dist, cores, keep), float) - cut
+    return areas[keep] / (np.pi * np.maximum(inner, 0.5) ** 2)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_core_area_ratios_equal_the_scipy_form(seed):
+    for m in _fields(seed, side=(20, 200)):
+        dist = ndi.distance_transform_edt(m)
+        for cut, min_area in ((1.0, 1.0), (2.0, 10.0), (0.5, 0.0)):
+            np.testing.assert_array_equal(packed.core_area_ratios(dist, cut, min_area),
+                                          _core_area_ratios_scipy(dist, cut, min_area))
