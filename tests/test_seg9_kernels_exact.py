@@ -98,3 +98,23 @@ def test_core_area_ratios_equal_the_scipy_form(seed):
         for cut, min_area in ((1.0, 1.0), (2.0, 10.0), (0.5, 0.0)):
             np.testing.assert_array_equal(packed.core_area_ratios(dist, cut, min_area),
                                           _core_area_ratios_scipy(dist, cut, min_area))
+
+
+@pytest.mark.parametrize("n", [10, 1 << 16, 300_001])
+def test_kth_smallest_equals_numpy_partition(n):
+    # reference: numpy.partition(values, k)[k], the polarity votes' edge level before
+    from grainhabit.plugins.common.image_stats import kth_smallest
+
+    rng = np.random.default_rng(n)
+    g = np.sqrt(rng.standard_normal(n).astype(np.float32) ** 2 * 10.0 ** rng.integers(-3, 3, n).astype(np.float32))
+    g[rng.random(n) < 0.05] = 0.0
+    g[: n // 10] = g[n // 10: 2 * (n // 10)]  # ties
+    neg = g - np.float32(0.5)
+    withnan = neg.copy()
+    withnan[n // 2] = np.nan
+    for v in (g, neg, withnan, g.astype(np.float64), g.reshape(-1, 2) if n % 2 == 0 else g):
+        for k in sorted({0, 1, n // 3, int(0.9 * (n - 1)), n - 1}):
+            want = np.partition(v.ravel(), k)[k]
+            got = kth_smallest(v, k)
+            assert got.dtype == want.dtype
+            assert got == want or (np.isnan(got) and np.isnan(want))

@@ -39,6 +39,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.common.image_stats import kth_smallest
+
 #: Gaussian scales (px of the working copy) of the derivatives; votes of both are averaged.
 SCALES_PX = (4.0, 8.0)
 #: Fraction of pixels with the largest gradient magnitude that vote.
@@ -144,8 +146,7 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
     """
     def tangent_vote(arr: np.ndarray, sigma: float) -> float | None:
         itt, grad = tangent_second_derivative(arr, sigma)
-        t = np.partition(grad.ravel(), int((1.0 - edge_fraction) * (grad.size - 1)))[
-            int((1.0 - edge_fraction) * (grad.size - 1))]
+        t = kth_smallest(grad, int((1.0 - edge_fraction) * (grad.size - 1)))  # np.partition's value
         edge = (grad >= t) & (grad > 0)
         return float(np.mean(np.sign(-itt[edge]))) if edge.any() else None
 
