@@ -118,3 +118,52 @@ def test_kth_smallest_equals_numpy_partition(n):
             got = kth_smallest(v, k)
             assert got.dtype == want.dtype
             assert got == want or (np.isnan(got) and np.isnan(want))
+
+
+@pytest.mark.parametrize("seed", range(5))
+@pytest.mark.parametrize("eight", [True, False])
+def test_run_labels_equal_scipy_label_and_find_objects(seed, eight):
+    # reference: scipy.ndimage.label (8- or 4-connectivity) and scipy.ndimage.find_objects
+    structure = _EIGHT if eight else None
+    masks = _fields(seed, n=10, side=(2, 300))
+    rng = np.random.default_rng(seed)
+    masks += [rng.random((200, 257)) > 0.5, ~masks[-1], np.ones((130, 140), bool), np.zeros((150, 150), bool)]
+    diag = np.zeros((160, 160), bool)
+    diag[np.arange(160), np.arange(160)] = True  # 8-connected only
+    masks.append(diag | np.fliplr(diag))
+    for m in masks:
+        want, n = ndi.label(m, structure)
+        rows, starts, stops = runs.row_runs(m)
+        np.testing.assert_array_equal(runs.run_pixels(rows, starts, stops, m.shape[1]), np.flatnonzero(m))
+        lab, k = runs.connect_runs(rows, starts, stops, m.shape[1], eight)
+        assert k == n
+        got = runs.paint_runs(m.shape, rows, starts, stops, lab)
+        assert got.dtype == want.dtype
+        np.testing.assert_array_equal(got, want)
+        assert runs.run_boxes(rows, starts, stops, lab, k) == ndi.find_objects(want)
+        for f in (runs.label, runs.label_with_boxes):
+            out = f(m, eight)
+            np.testing.assert_array_equal(out[0], want)
+            assert out[1] == n
+        assert runs.label_with_boxes(m, eight)[2] == ndi.find_objects(want)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_gap_components_at_mask_equal_scipy_labels(seed):
+    # reference: scipy.ndimage.label of the cores and of the mask (8-connected), read at np.flatnonzero(mask),
+    # as gaps.gap_lines took them before
+    from grainhabit.plugins.segment import gaps
+
+    rng = np.random.default_rng(seed)
+    for m in _fields(seed, side=(2, 260)):
+        level = ndi.gaussian_filter(rng.random(m.shape), 2.0)
+        for cores in (m & (level > np.median(level)), m, np.zeros(m.shape, bool), m & (rng.random(m.shape) > 0.7)):
+            at, core_of, comp_of, n, n_mask = gaps._components_at_mask(m, cores)
+            comp, k = ndi.label(cores, _EIGHT)
+            whole, k_mask = ndi.label(m, _EIGHT)
+            want_at = np.flatnonzero(m)
+            np.testing.assert_array_equal(at, want_at)
+            assert (n, n_mask) == (k, k_mask)
+            assert core_of.dtype == comp.dtype and comp_of.dtype == whole.dtype
+            np.testing.assert_array_equal(core_of, comp.ravel()[want_at])
+            np.testing.assert_array_equal(comp_of, whole.ravel()[want_at])
