@@ -167,3 +167,91 @@ def test_gap_components_at_mask_equal_scipy_labels(seed):
             assert core_of.dtype == comp.dtype and comp_of.dtype == whole.dtype
             np.testing.assert_array_equal(core_of, comp.ravel()[want_at])
             np.testing.assert_array_equal(comp_of, whole.ravel()[want_at])
+
+
+def _faint_objects_scipy(low, high, min_area=0.0):
+    """foreground.faint_objects as it was: scipy's labelling, bincounts and find_objects over the frame."""
+    from grainhabit.plugins.segment import foreground as fg
+    from grainhabit.plugins.segment.disk_morphology import dilate_disk
+
+    out = np.zeros(low.shape, bool)
+    lab, n = ndi.label(low, structure=_EIGHT)
+    if n == 0:
+        return out
+    areas = np.bincount(lab[low], minlength=n + 1)
+    shown_px = np.bincount(lab[high], minlength=n + 1)
+    cand = (areas >= max(fg.FAINT_AREA_SHARE * min_area, 1.0)) & (shown_px < fg.FAINT_SHOWN_SHARE * areas)
+    cand[0] = False
+    if not cand.any():
+        return out
+    reach = int(np.ceil(fg.FAINT_CLEARANCE_PX))
+    rows, cols = low.shape
+    boxes = ndi.find_objects(lab)
+    for k in np.flatnonzero(cand):
+        box = boxes[k - 1]
+        r0, r1 = max(box[0].start - reach, 0), min(box[0].stop + reach, rows)
+        c0, c1 = max(box[1].start - reach, 0), min(box[1].stop + reach, cols)
+        own = lab[r0:r1, c0:c1] == k
+        hi = high[r0:r1, c0:c1]
+        if hi.any():
+            parts, m = ndi.label(hi, structure=_EIGHT)
+            big = np.bincount(parts.ravel(), minlength=m + 1) >= max(min_area, 1.0)
+            for side in (parts[0], parts[-1], parts[:, 0], parts[:, -1]):
+                big[side] = True
+            big[0] = False
+            if (big[parts] & dilate_disk(own, fg.FAINT_CLEARANCE_PX)).any():
+                continue
+        out[r0:r1, c0:c1] |= own
+    return out
+
+
+def _diffuse_parts_scipy(mask, outer=None):
+    """foreground.diffuse_parts as it was: scipy's labelling and find_objects of the mask's box."""
+    from grainhabit.plugins.segment import foreground as fg
+    from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+
+    out = mask.copy()
+    rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+    if rows.size == 0:
+        return out
+    crop = (slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1))
+    part = mask[crop]
+    lab, n = ndi.label(part, structure=_EIGHT)
+    areas = np.bincount(lab[part], minlength=n + 1)
+    meets = np.ones(n + 1, bool)
+    if outer is not None:
+        meets[:] = False
+        meets[lab[outer[crop] & part]] = True
+    drop = ~meets
+    big = np.flatnonzero(meets & (areas >= fg.PLATE_MIN_AREA_PX))
+    big = big[big > 0]
+    if big.size:
+        boxes = ndi.find_objects(lab)
+        for k in big:
+            drop[k] = areas[k] >= fg.PLATE_SOLIDITY * convex_hull_mask(lab[boxes[k - 1]] == k).sum()
+    drop[0] = False
+    if drop.any():
+        view = out[crop]
+        view[drop[lab]] = False
+    return out
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_faint_objects_and_diffuse_parts_equal_the_scipy_forms(seed):
+    from grainhabit.plugins.segment import foreground as fg
+
+    rng = np.random.default_rng(seed)
+    for shape in ((40, 60), (150, 170), (300, 260)):
+        img = ndi.gaussian_filter(rng.standard_normal(shape), rng.uniform(1.0, 4.0))
+        img /= img.std()
+        for lo_level, hi_level in ((0.3, 1.0), (0.8, 1.2), (0.0, 2.0)):
+            low, high = img > lo_level, img > hi_level
+            for min_area in (0.0, 20.0, 200.0):
+                np.testing.assert_array_equal(fg.faint_objects(low, high, min_area),
+                                              _faint_objects_scipy(low, high, min_area))
+            # high not within low: its pixels outside low count for no component
+            other = img + 0.5 * rng.standard_normal(shape) > hi_level
+            np.testing.assert_array_equal(fg.faint_objects(low, other, 20.0), _faint_objects_scipy(low, other, 20.0))
+            outer = rng.random(shape) > 0.9
+            for o in (None, outer):
+                np.testing.assert_array_equal(fg.diffuse_parts(low & ~high, o), _diffuse_parts_scipy(low & ~high, o))
