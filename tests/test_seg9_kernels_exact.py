@@ -255,3 +255,27 @@ def test_faint_objects_and_diffuse_parts_equal_the_scipy_forms(seed):
             outer = rng.random(shape) > 0.9
             for o in (None, outer):
                 np.testing.assert_array_equal(fg.diffuse_parts(low & ~high, o), _diffuse_parts_scipy(low & ~high, o))
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_hull_pixel_count_equals_the_hull_image_wherever_the_shape_lies(seed):
+    # reference: scikit-image's convex_hull_image (the hull_fill module's own reference), pixels counted
+    from skimage.morphology import convex_hull_image
+
+    from grainhabit.plugins.segment import hull_fill, touching
+
+    rng = np.random.default_rng(seed)
+    hull_fill._COUNTS.clear()
+    for m in _fields(seed, n=20, side=(3, 70)):
+        want = int(np.count_nonzero(convex_hull_image(m))) if m.any() else 0
+        pad = tuple(int(v) for v in rng.integers(0, 6, 4))
+        placed = np.pad(m, ((pad[0], pad[1]), (pad[2], pad[3])))
+        assert hull_fill.hull_pixel_count(placed) == want
+        assert hull_fill.hull_pixel_count(m) == want  # read back from the note
+        # a count noted by the splitter's concavity depth is read back for the same shape elsewhere
+        hull_fill._COUNTS.clear()
+        touching._DEPTHS.clear()
+        touching.concavity_depth(m)
+        if np.count_nonzero(m) >= 3:
+            assert len(hull_fill._COUNTS) == 1
+        assert hull_fill.hull_pixel_count(placed) == want

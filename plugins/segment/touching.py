@@ -37,7 +37,7 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.segment.band_flood import watershed_window
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask, remember_hull_count, shape_key
 
 #: Fractions of the component's largest inscribed radius tried as h.
 H_FRACTIONS = (0.5, 0.35, 0.25, 0.15, 0.1)
@@ -133,12 +133,15 @@ def concavity_depth(mask: np.ndarray) -> float:
     tight = mask[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
     # the same shape is often asked again (is the component convex? then: any seam?; a part, then the part
     # alone)
-    key = (tight.shape, np.packbits(tight).tobytes())
+    key = shape_key(tight)
     known = _DEPTHS.get(key)
     if known is not None:
         return known
-    # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel)
-    pocket = convex_hull_mask(tight) & ~tight
+    # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel); its pixel
+    # count noted for hull_fill.hull_pixel_count (the seam pass asks for the same grains' hulls)
+    hull = convex_hull_mask(tight)
+    remember_hull_count(key, int(np.count_nonzero(hull)))
+    pocket = hull & ~tight
     depth = _pocket_depth(tight, pocket)
     if len(_DEPTHS) >= _DEPTHS_KEPT:
         _DEPTHS.clear()
