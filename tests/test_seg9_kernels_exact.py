@@ -279,3 +279,71 @@ def test_hull_pixel_count_equals_the_hull_image_wherever_the_shape_lies(seed):
         if np.count_nonzero(m) >= 3:
             assert len(hull_fill._COUNTS) == 1
         assert hull_fill.hull_pixel_count(placed) == want
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_quantile_bins_equal_numpy_searchsorted(seed):
+    # reference: the form noise_model_from_pairs took before (numpy.searchsorted, clipped, int16)
+    from grainhabit.plugins.preprocess.flatten_background import quantile_bins
+
+    rng = np.random.default_rng(seed)
+    for n in (5, 1000, 300_000):
+        m = rng.random(n) * rng.uniform(0.1, 10) - rng.uniform(0, 1)
+        m[: n // 5] = np.round(m[: n // 5], 1)  # ties with the edges
+        for edges in (np.unique(np.quantile(m, np.linspace(0, 1, 17))), np.unique(np.round(m[:40], 1)),
+                      np.array([m.min() - 1.0, m.max() + 1.0]), np.array([0.0, 0.2, 0.2 + 1e-12, 5.0])):
+            for v in (m, np.r_[m, np.nan, -np.inf, np.inf]):
+                want = np.clip(np.searchsorted(edges, v, side="right") - 1, 0, len(edges) - 2).astype(np.int16)
+                got = quantile_bins(edges, v)
+                assert got.dtype == np.int16
+                np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_nearest_body_lines_equal_the_two_array_gather(seed):
+    # reference: the lines with numpy's two-array gather bodies[ri, ci] of scipy's feature transform
+    from grainhabit.plugins.segment import gaps
+
+    rng = np.random.default_rng(seed)
+    for m in _fields(seed, side=(10, 200)):
+        bodies, _ = ndi.label(m & (rng.random(m.shape) > 0.3), _EIGHT)
+        frame = np.zeros((m.shape[0] + 6, m.shape[1] + 9), np.int32)
+        frame[3:-3, 4:-5] = bodies
+        window = frame[3:-3, 4:-5]  # a view, as _lines_near_mask passes
+        got, ft = gaps.nearest_body_lines(window, m, 4.0)
+        free = bodies == 0
+        want = np.zeros(m.shape, bool)
+        if not free.all() and bodies[~free].min() != bodies[~free].max():
+            ri, ci = ndi.distance_transform_edt(free, return_distances=False, return_indices=True)
+            nearest = bodies[ri, ci]
+            down, right = nearest[1:] != nearest[:-1], nearest[:, 1:] != nearest[:, :-1]
+            want[1:] |= down
+            want[:-1] |= down
+            want[:, 1:] |= right
+            want[:, :-1] |= right
+            want &= free
+            r, c = np.nonzero(want & m)
+            d = np.sqrt((ri[r, c] - r).astype(np.float64) ** 2 + (ci[r, c] - c).astype(np.float64) ** 2)
+            want[r[d > 4.0], c[d > 4.0]] = False
+        np.testing.assert_array_equal(got, want)
+
+
+def test_paint_boxes_equals_the_whole_frame_lookup():
+    # reference: np.where(take[labels], value[labels], 0), the form paint_boxes stands in for
+    from grainhabit.plugins.segment.segment_grains import paint_boxes
+
+    rng = np.random.default_rng(5)
+    for m in _fields(5, side=(20, 200)):
+        labels, n = ndi.label(m, _EIGHT)
+        boxes = [None] + ndi.find_objects(labels)
+        for value in (rng.integers(-5, 2 ** 31 - 1, n + 1), list(rng.integers(0, 50, n + 1).tolist()),
+                      np.arange(n + 1, dtype=np.int32)):
+            take = rng.random(n + 1) > 0.3
+            take[0] = False
+            want = np.where(take[labels], np.asarray(value)[labels], 0).astype(np.int32)
+            got = paint_boxes(labels, boxes, value, take)
+            assert got.dtype == np.int32
+            np.testing.assert_array_equal(got, want)
+            base = rng.integers(0, 9, labels.shape).astype(np.int32)
+            want_over = np.where(take[labels], np.asarray(value)[labels], base).astype(np.int32)
+            np.testing.assert_array_equal(paint_boxes(labels, boxes, value, take, base.copy()), want_over)
