@@ -347,3 +347,44 @@ def test_paint_boxes_equals_the_whole_frame_lookup():
             base = rng.integers(0, 9, labels.shape).astype(np.int32)
             want_over = np.where(take[labels], np.asarray(value)[labels], base).astype(np.int32)
             np.testing.assert_array_equal(paint_boxes(labels, boxes, value, take, base.copy()), want_over)
+
+
+def test_frame_levels_without_preview_give_the_same_levels_and_flatten_the_same_image():
+    # reference: frame_levels with its preview (the form flatten took before) and apply_levels on it
+    from grainhabit.plugins.preprocess import flatten_background as fb
+    from grainhabit.plugins.synthetic.render import make_field
+
+    for seed, size in ((0, 256), (1, 300)):
+        img = make_field(12, (size, size), 5.0, {"cube": 1.0, "octahedron": 1.0}, 60.0, seed=seed).image
+        for polarity in ("auto", "dark"):
+            with_preview = fb.frame_levels(fb.whole_frame_regions(img), img.shape, 5.0, polarity=polarity)
+            without = fb.frame_levels(fb.whole_frame_regions(img), img.shape, 5.0, polarity=polarity, preview=False)
+            assert "preview" in with_preview and "preview" not in without
+            for key, value in without.items():
+                if isinstance(value, np.ndarray):
+                    np.testing.assert_array_equal(value, with_preview[key])
+                else:
+                    assert value == with_preview[key], key
+            full = (slice(0, img.shape[0]), slice(0, img.shape[1]))
+            out, pol, conf = fb.flatten(img, 5.0, polarity=polarity)
+            np.testing.assert_array_equal(out, fb.apply_levels(img, full, with_preview))
+            assert (pol, conf) == (with_preview["polarity"], with_preview["confidence"])
+
+
+def test_signed_residual_in_place_equals_the_expression():
+    # reference: sign * (x - (b + m)) as numpy evaluates it (float32 x, float64 b)
+    rng = np.random.default_rng(3)
+    x = rng.standard_normal((50, 70)).astype(np.float32)
+    b = rng.standard_normal((50, 70))
+    x[0, :5] = 0.0
+    b[0, :5] = 0.0
+    for m in (0.0, -0.0, 0.37, -1e-9):
+        for sign in (1, -1):
+            want = sign * (x - (b + m))
+            r = b.copy()
+            r += m
+            np.subtract(x, r, out=r)
+            if sign < 0:
+                np.negative(r, out=r)
+            np.testing.assert_array_equal(r, want)
+            np.testing.assert_array_equal(np.signbit(r), np.signbit(want))

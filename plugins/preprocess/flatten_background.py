@@ -720,7 +720,7 @@ def denoise_reach(method: str, smooth_px: float) -> int:
 
 def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: float = 4000.0,
                  denoise_method: str = "gaussian", smooth_px: float = 1.0, polarity: str = "auto",
-                 whole: np.ndarray | None = None) -> dict:
+                 whole: np.ndarray | None = None, preview: bool = True) -> dict:
     """Frame-wide quantities of the step, from a stream of regions of the frame.
 
     Parameters
@@ -739,6 +739,9 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         The denoised frame, when one region is the whole frame and it has
         been computed already (bilateral and non-local-means denoising need
         the whole frame: their noise estimate and range are frame-wide).
+    preview : bool
+        Also return ``preview`` and ``preview_step`` (for the steps after a frame processed by
+        tiles); :func:`flatten`, which computes the whole output itself, leaves them out.
 
     Returns
     -------
@@ -856,12 +859,18 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         # level (a constant). A weak vote gets a second look at the edges between plateaus alone
         # (grainhabit.plugins.preprocess.plateau_edges)
         surf = fit_surface(small, scale_px / f if scale_px > 0 else 0.0, 0)
-        pol, conf = decide_polarity(x_s - upsample_bilinear(surf, shape, rs, cs))
+        relief = upsample_bilinear(surf, shape, rs, cs)
+        pol, conf = decide_polarity(np.subtract(x_s, relief, out=relief))  # x_s - surface, in one frame array
     else:
         pol, conf = polarity, 1.0
     sign = 1 if pol == "bright" else -1
     surf, m, sd, _ = background(sign)
-    r = sign * (x_s - (upsample_bilinear(surf, shape, rs, cs) + m))
+    # sign * (x_s - (surface + m)), written into the interpolated surface (the same operations in float64)
+    r = upsample_bilinear(surf, shape, rs, cs)
+    r += m
+    np.subtract(x_s, r, out=r)
+    if sign < 0:
+        np.negative(r, out=r)
     grain_side = r > CLIP_SIGMAS * sd
     panels = drawn_panels(raw_s)
     if panels.any():
@@ -872,8 +881,9 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     # never stretch pure noise up to grain level
     level = max(level, NOISE_FLOOR_SIGMAS * sd)
     lv.update(surface=surf, offset=float(m), sign=sign, polarity=pol, confidence=float(conf), level=level,
-              sigma=float(sd), preview_step=k_s,
-              preview=np.clip(r / level, LOW_CLIP, 1.0).astype(np.float32))
+              sigma=float(sd))
+    if preview:
+        lv.update(preview_step=k_s, preview=np.clip(r / level, LOW_CLIP, 1.0).astype(np.float32))
     return lv
 
 
@@ -1012,7 +1022,7 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
         whole, _ = denoise(normalise(arr), denoise_method, smooth_px)
         whole = whole.astype(WORK_DTYPE)
     lv = frame_levels(whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm, denoise_method,
-                      smooth_px, polarity, whole=whole)
+                      smooth_px, polarity, whole=whole, preview=False)
     full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
     out = apply_levels(arr, full, lv, denoised=whole if whole is not None else lv.pop("denoised", None))
     return out, lv["polarity"], lv["confidence"]
