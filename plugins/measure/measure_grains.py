@@ -210,33 +210,89 @@ def label_moments(labels, image=None, n_labels=None):
     lab = check_labels(labels, image)
     n = int(lab.max()) if n_labels is None else int(n_labels)
     flat = lab.ravel()
-    fg = np.flatnonzero(flat != 0)  # the same indices; numpy finds them about 3x faster in a bool array
-    ids = flat[fg].astype(np.intp)
-    rows, cols = np.divmod(fg, lab.shape[1])
-    x = cols.astype(np.float64)
-    y = rows.astype(np.float64)
     size = n + 1
-
-    def total(w=None):
-        return np.bincount(ids, w, size)[1:size]
-
-    area = total().astype(np.float64)
+    if lab.size and max(lab.shape) ** 2 * lab.size < _EXACT_INTEGER_SUM:
+        # every coordinate sum is an integer below 2**53, so float64 holds each partial sum exactly
+        # and any order of summation gives the same number: sums over the rows' runs of one label
+        s1, sx, sy, sxx, syy, sxy = _run_coordinate_sums(lab, size)
+    else:
+        fg = np.flatnonzero(flat != 0)
+        ids = flat[fg].astype(np.intp)
+        rows, cols = np.divmod(fg, lab.shape[1])
+        x = cols.astype(np.float64)
+        y = rows.astype(np.float64)
+        s1, sx, sy, sxx, syy, sxy = (np.bincount(ids, w, size)[1:size] for w in (None, x, y, x * x, y * y, x * y))
+    area = s1.astype(np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         inv = 1.0 / area
-        mx, my = total(x) * inv, total(y) * inv
+        mx, my = sx * inv, sy * inv
         # raw second moments minus squared means: coordinates are below 1e5
         # px, so float64 keeps the variances to about 1e-6 px^2
-        mxx = total(x * x) * inv - mx * mx + 1.0 / 12.0
-        myy = total(y * y) * inv - my * my + 1.0 / 12.0
-        mxy = total(x * y) * inv - mx * my
+        mxx = sxx * inv - mx * mx + 1.0 / 12.0
+        myy = syy * inv - my * my + 1.0 / 12.0
+        mxy = sxy * inv - mx * my
         out = {"area": area, "cx": mx + 0.5, "cy": my + 0.5, "mxx": mxx, "myy": myy, "mxy": mxy}
         if image is not None:
+            fg = np.flatnonzero(flat != 0)  # the same indices; numpy finds them about 3x faster in a bool array
+            ids = flat[fg].astype(np.intp)
+
+            def total(w=None):
+                return np.bincount(ids, w, size)[1:size]
+
             vals = np.asarray(image).ravel()[fg].astype(np.float64)
             mean = total(vals) * inv
             dv = vals - np.concatenate([[0.0], mean])[ids]
             out["mean"] = mean
             out["std"] = np.sqrt(total(dv * dv) * inv)
     return out
+
+
+#: 2**53: integers below it are exact in float64 (coordinate sums of a frame stay below it when
+#: max(rows, cols)**2 * rows * cols does).
+_EXACT_INTEGER_SUM = 2 ** 53
+
+
+def _run_coordinate_sums(lab, size):
+    """Per-label sums of 1, x, y, x^2, y^2 and x y over the pixels (x column, y row index), from row runs.
+
+    Parameters
+    ----------
+    lab : ndarray of int, shape (rows, cols)
+    size : int
+        n + 1 (labels 1..n; larger labels are not allowed).
+
+    Returns
+    -------
+    tuple of ndarray, shape (n,)
+        Pixel counts (int) and the five coordinate sums (float64) of labels 1..n.
+
+    Notes
+    -----
+    A run of label L in row y over columns c0 .. c1 - 1 (length l) adds l, l c0 + l (l - 1) / 2,
+    y l, S(c1 - 1) - S(c0 - 1) with S(k) = k (k + 1) (2 k + 1) / 6, y^2 l and y times its x sum,
+    all integers (int64). The caller uses this only where every sum stays below 2**53, so the
+    float64 totals equal the per-pixel sums in raster order (``np.bincount`` of x, y, x x, ...)
+    bit for bit: no partial sum is ever rounded.
+    """
+    rows_n, cols_n = lab.shape
+    change = np.empty(lab.shape, bool)
+    change[:, 0] = True
+    np.not_equal(lab[:, 1:], lab[:, :-1], out=change[:, 1:])
+    starts = np.flatnonzero(change)                      # every row starts a run, so a run ends at the next start
+    length = np.diff(starts, append=lab.size)
+    run_lab = lab.ravel()[starts]
+    keep = run_lab != 0
+    starts, length, run_lab = starts[keep], length[keep], run_lab[keep].astype(np.intp)
+    y, c0 = np.divmod(starts, cols_n)
+    c1 = c0 + length - 1                                 # last column of the run
+    sx = length * c0 + (length * (length - 1)) // 2
+    sxx = (c1 * (c1 + 1) * (2 * c1 + 1) - (c0 - 1) * c0 * (2 * c0 - 1)) // 6
+
+    def per_label(w=None):
+        return np.bincount(run_lab, None if w is None else w.astype(np.float64), size)[1:size]
+
+    s1 = np.bincount(run_lab, length, size)[1:size].astype(np.int64)
+    return s1, per_label(sx), per_label(y * length), per_label(sxx), per_label(y * y * length), per_label(y * sx)
 
 
 def ellipse_axes(mxx, myy, mxy):

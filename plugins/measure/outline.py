@@ -583,6 +583,10 @@ def fit_polygons(
     return out
 
 
+#: Marks a line not yet in :class:`_Cleaner`'s cache (a cached line may be None).
+_MISSING = object()
+
+
 class _Cleaner:
     """Corner clean-up on one contour with scalar arithmetic.
 
@@ -597,9 +601,11 @@ class _Cleaner:
         self.cx, self.cy = (float(v) for v in c.mean(axis=0))
         cc = np.concatenate([c, c]) - (self.cx, self.cy)
         x, y = cc[:, 0], cc[:, 1]
-        cum = np.zeros((2 * m + 1, 5))
-        np.cumsum(np.stack([x, y, x * x, y * y, x * y], axis=1), axis=0, out=cum[1:])
-        # rows are turned into Python floats when a line needs them (two rows a line): the whole table of a
+        # running sums laid out (sum, vertex): each cumulative sum runs along a contiguous row (numpy's
+        # cumsum adds in sequence along either axis, so these are the floats of the (vertex, sum) table)
+        cum = np.zeros((5, 2 * m + 1))
+        np.cumsum(np.stack([x, y, x * x, y * y, x * y]), axis=1, out=cum[:, 1:])
+        # columns are turned into Python floats when a line needs them (two a line): the whole table of a
         # contour of m vertices, 10 m + 5 floats, cost more than the clean-up itself
         self.cum = cum
         # the vertices as Python floats, each turned when first read (a clean-up reads a few dozen of the
@@ -624,7 +630,7 @@ class _Cleaner:
         if span - 2 * trim >= 3:
             s0 = (a + trim) % m
             n = span - 2 * trim + 1
-            lo, hi = self.cum[s0].tolist(), self.cum[s0 + n].tolist()
+            lo, hi = self.cum[:, s0].tolist(), self.cum[:, s0 + n].tolist()
             mx, my = (hi[0] - lo[0]) / n, (hi[1] - lo[1]) / n
             sxx = (hi[2] - lo[2]) / n - mx * mx
             syy = (hi[3] - lo[3]) / n - my * my
@@ -654,7 +660,13 @@ class _Cleaner:
         k = len(idx)
         if not refine:
             return [tuple(self.pts[i]) for i in idx], None
-        lines = [self.line(idx[j], idx[(j + 1) % k]) for j in range(k)]
+        # the cached lines and corners are looked up here, without a method call per edge
+        known = self.cache.get
+        lines = []
+        for j in range(k):
+            a, b = idx[j], idx[(j + 1) % k]
+            ln = known((a, b), _MISSING)
+            lines.append(self.line(a, b) if ln is _MISSING else ln)
         poly = []
         corners = self.corners
         for j in range(k):

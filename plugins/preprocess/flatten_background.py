@@ -53,6 +53,7 @@ from grainhabit.params import Param, StepInfo
 from grainhabit.plugins.preprocess.background_peak import (  # noqa: F401  (one_sided_sigma: used by tests)
     background_peak, one_sided_sigma, otsu_of, peak_sigma,
 )
+from grainhabit.plugins.preprocess import smoothing_scale
 from grainhabit.plugins.preprocess.plateau_edges import decide_polarity
 from grainhabit.plugins.common.drawn_panels import drawn_panels
 from grainhabit.plugins.common.image_stats import (
@@ -64,7 +65,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.6",
+    version="1.7",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -72,7 +73,9 @@ STEP = StepInfo(
         Param("denoise", str, "gaussian", choices=("gaussian", "bilateral", "nlmeans", "none"),
               doc="Filter applied after variance stabilisation."),
         Param("smooth_nm", float, None, unit="nm", low=0.0,
-              doc="Gaussian denoising sigma; unset means one pixel."),
+              doc="Gaussian denoising sigma; unset: one pixel, or up to 3 px where the grains stand less "
+                  "than 10 background sigmas above a noisy background and a wider Gaussian lifts them "
+                  "clearly (chosen per frame)."),
         Param("polarity", str, "auto", choices=("auto", "bright", "dark"),
               doc="Contrast of grains in the raw frame: detect, or force bright-on-dark / dark-on-bright."),
     ),
@@ -878,6 +881,8 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         grain_side &= ~panels
     fg = r[grain_side]
     level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
+    # how far the grains stand above the background's noise at this smoothing (smoothing_scale)
+    lv["grain_snr"] = level / sd if sd > 0 else float("inf")
     # never stretch pure noise up to grain level
     level = max(level, NOISE_FLOOR_SIGMAS * sd)
     lv.update(surface=surf, offset=float(m), sign=sign, polarity=pol, confidence=float(conf), level=level,
@@ -967,7 +972,7 @@ def whole_frame_regions(image: np.ndarray):
 
 
 def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000.0,
-            denoise_method: str = "gaussian", smooth_px: float = 1.0,
+            denoise_method: str = "gaussian", smooth_px: float | None = 1.0,
             polarity: str = "auto") -> tuple[np.ndarray, str, float]:
     """The whole step on an array: grains bright on a flat zero background.
 
@@ -981,8 +986,10 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
         Background scale in nm (see :func:`estimate_background`).
     denoise_method : str
         See :func:`denoise`.
-    smooth_px : float
-        Denoising sigma in pixels.
+    smooth_px : float or None
+        Denoising sigma in pixels; None: chosen by
+        :func:`~grainhabit.plugins.preprocess.smoothing_scale.levels_at_best_scale` (Gaussian denoising;
+        one pixel with the other methods).
     polarity : {"auto", "bright", "dark"}
         Grain contrast in ``image``; "auto" detects it.
 
@@ -1019,10 +1026,16 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
             raise ValueError(f"image must be 2-D (rows, cols), got shape {arr.shape}")
     else:
         arr = _check_image(image)
-        whole, _ = denoise(normalise(arr), denoise_method, smooth_px)
+        whole, _ = denoise(normalise(arr), denoise_method, 1.0 if smooth_px is None else smooth_px)
         whole = whole.astype(WORK_DTYPE)
-    lv = frame_levels(whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm, denoise_method,
-                      smooth_px, polarity, whole=whole, preview=False)
+    # flatten computes its output itself: the levels without the preview (frame_levels' preview=False)
+    if smooth_px is None and whole is None:
+        lv = smoothing_scale.levels_at_best_scale(functools.partial(frame_levels, preview=False),
+                                                  whole_frame_regions(arr), arr.shape, pixel_size_nm,
+                                                  background_nm, denoise_method, polarity)
+    else:
+        lv = frame_levels(whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm, denoise_method,
+                          1.0 if smooth_px is None else smooth_px, polarity, whole=whole, preview=False)
     full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
     out = apply_levels(arr, full, lv, denoised=whole if whole is not None else lv.pop("denoised", None))
     return out, lv["polarity"], lv["confidence"]
@@ -1151,7 +1164,7 @@ def grainhabit_preprocess(frame, params):
     p = STEP.resolve(params)
     px = _check_positive("pixel_size_nm", frame.pixel_size_nm)
     src = frame.image if frame.image is not None else frame.raw
-    smooth_px = 1.0 if p["smooth_nm"] is None else p["smooth_nm"] / px
+    smooth_px = None if p["smooth_nm"] is None else p["smooth_nm"] / px
     shared = frame.meta.get("tile_levels", {}).get(STEP.name)
     if shared is not None:
         out, pol, conf = apply_levels(src, frame.meta["tile_window"], shared), shared["polarity"], shared["confidence"]
@@ -1175,12 +1188,16 @@ def grainhabit_tile_levels(step, sample, params):
                          "preprocess step cannot be combined with it there")
     p = STEP.resolve(params)
     px = _check_positive("pixel_size_nm", sample.pixel_size_nm)
-    smooth_px = 1.0 if p["smooth_nm"] is None else p["smooth_nm"] / px
+    smooth_px = None if p["smooth_nm"] is None else p["smooth_nm"] / px
     if p["denoise"] not in ("gaussian", "none"):
         raise ValueError(f"denoise {p['denoise']!r} needs the whole frame (its noise estimate and range are "
                          "frame-wide); a frame processed by tiles takes 'gaussian' or 'none'")
-    lv = frame_levels(sample.regions, sample.shape, px, p["background_nm"], p["denoise"], smooth_px,
-                      p["polarity"])
+    if smooth_px is None:
+        lv = smoothing_scale.levels_at_best_scale(frame_levels, sample.regions, sample.shape, px,
+                                                  p["background_nm"], p["denoise"], p["polarity"])
+    else:
+        lv = frame_levels(sample.regions, sample.shape, px, p["background_nm"], p["denoise"], smooth_px,
+                          p["polarity"])
     lv.pop("denoised", None)
     return lv
 
