@@ -415,3 +415,20 @@ def test_central_difference_and_tangent_derivative_equal_numpy(dtype):
         assert itt.dtype == want.dtype and grad.dtype == np.sqrt(g2).dtype
         np.testing.assert_array_equal(itt, want)
         np.testing.assert_array_equal(grad, np.sqrt(g2))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_maxima_by_label_equal_scipy_maximum(seed):
+    # reference: scipy.ndimage.maximum(values, labels, index=np.arange(1, n + 1)), missing labels giving 0
+    rng = np.random.default_rng(seed)
+    for m in _fields(seed, side=(2, 120)):
+        lab, k = ndi.label(m, _EIGHT)
+        for n in (k, k + 3, max(k - 1, 1)):
+            for v in (ndi.distance_transform_edt(m), -rng.random(m.shape), rng.standard_normal(m.shape).astype(np.float32)):
+                want = ndi.maximum(v, lab, index=np.arange(1, n + 1))
+                got = runs.maxima_by_label(v, lab, n)
+                assert got.dtype == np.asarray(want).dtype and got.shape == (n,)
+                np.testing.assert_array_equal(got, want)
+        ws = rng.integers(0, 5, m.shape)  # labels in any order, not connected
+        v = rng.standard_normal(m.shape)
+        np.testing.assert_array_equal(runs.maxima_by_label(v, ws, 4), ndi.maximum(v, ws, index=np.arange(1, 5)))

@@ -204,3 +204,37 @@ def _label(mask, eight, boxes):
     run_labels, n = connect_runs(rows, starts, stops, m.shape[1], eight)
     lab = paint_runs(m.shape, rows, starts, stops, run_labels)
     return lab, n, (run_boxes(rows, starts, stops, run_labels, n) if boxes else None)
+
+
+def maxima_by_label(values: np.ndarray, labels: np.ndarray, n: int) -> np.ndarray:
+    """``scipy.ndimage.maximum(values, labels, index=np.arange(1, n + 1))`` for float images.
+
+    Parameters
+    ----------
+    values : ndarray of float, shape (h, w)
+    labels : ndarray of int, shape (h, w)
+    n : int
+        Labels 1..n are asked for.
+
+    Returns
+    -------
+    ndarray, shape (n,), dtype of ``values``
+        The largest value of each label; 0 for a label without pixels (as scipy). scipy sorts the labels of
+        every pixel for it (its ``_select``); here the labelled pixels are reduced run by run
+        (:func:`labelled_maxima`). Integer images and values with NaN go to scipy
+        (tests/test_seg9_kernels_exact.py).
+    """
+    from scipy import ndimage as ndi
+
+    v = np.asarray(values)
+    lab = np.asarray(labels)
+    if v.dtype.kind != "f" or v.shape != lab.shape or n < 1:
+        return ndi.maximum(v, lab, index=np.arange(1, n + 1))
+    at = np.flatnonzero((lab > 0) & (lab <= n))
+    own = lab.ravel()[at]
+    vals = v.ravel()[at]
+    if np.isnan(vals).any():
+        return ndi.maximum(v, lab, index=np.arange(1, n + 1))
+    out = labelled_maxima(vals, own, n)[1:]
+    out[np.bincount(own, minlength=n + 1)[1:] == 0] = 0
+    return out
