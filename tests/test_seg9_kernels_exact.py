@@ -390,33 +390,6 @@ def test_signed_residual_in_place_equals_the_expression():
             np.testing.assert_array_equal(np.signbit(r), np.signbit(want))
 
 
-@pytest.mark.parametrize("dtype", [np.float32, np.float64])
-def test_central_difference_and_tangent_derivative_equal_numpy(dtype):
-    # reference: numpy.gradient (unit spacing, first-order edges) and the expressions of the polarity vote
-    rng = np.random.default_rng(9)
-    for shape in ((3, 3), (4, 9), (64, 80), (257, 300), (2, 5)):
-        f = (rng.standard_normal(shape) * 10.0 ** rng.uniform(-3, 3, shape)).astype(dtype)
-        f[0, 0] = -0.0
-        for axis in (0, 1):
-            want = np.gradient(f, axis=axis)
-            got = polarity.central_difference(f, axis)
-            assert got.dtype == want.dtype
-            np.testing.assert_array_equal(got, want)
-            np.testing.assert_array_equal(np.signbit(got), np.signbit(want))
-    img = rng.random((200, 230)).astype(np.float32)
-    for sigma in (1.0, 4.0):
-        g = ndi.gaussian_filter(img, sigma)
-        iy, ix = np.gradient(g)
-        iyy, iyx = np.gradient(iy)
-        ixx = np.gradient(ix, axis=1)
-        g2 = ix * ix + iy * iy
-        want = (ixx * iy * iy - 2.0 * iyx * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30)
-        itt, grad = polarity.tangent_second_derivative(img, sigma)
-        assert itt.dtype == want.dtype and grad.dtype == np.sqrt(g2).dtype
-        np.testing.assert_array_equal(itt, want)
-        np.testing.assert_array_equal(grad, np.sqrt(g2))
-
-
 @pytest.mark.parametrize("seed", range(4))
 def test_maxima_by_label_equal_scipy_maximum(seed):
     # reference: scipy.ndimage.maximum(values, labels, index=np.arange(1, n + 1)), missing labels giving 0

@@ -76,58 +76,12 @@ def tangent_second_derivative(image: np.ndarray, sigma: float) -> tuple[np.ndarr
     ``sigma`` is a few pixels.
     """
     g = ndi.gaussian_filter(np.asarray(image, np.float32), sigma)
-    iy, ix = central_difference(g, 0), central_difference(g, 1)  # np.gradient(g)
-    iyy, iyx = central_difference(iy, 0), central_difference(iy, 1)  # np.gradient(iy)
-    ixx = central_difference(ix, 1)  # np.gradient(ix, axis=1)
-    # ix * ix + iy * iy and (ixx * iy * iy - 2.0 * iyx * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30):
-    # the same operations in the same order, written into three arrays instead of ten temporaries
-    g2 = ix * ix
-    t = iy * iy
-    g2 += t
-    itt = ixx * iy
-    itt *= iy
-    np.multiply(iyx, 2.0, out=t)
-    t *= ix
-    t *= iy
-    itt -= t
-    np.multiply(iyy, ix, out=t)
-    t *= ix
-    itt += t
-    itt /= np.maximum(g2, 1e-30, out=t)
-    return itt, np.sqrt(g2, out=g2)
-
-
-def central_difference(f: np.ndarray, axis: int) -> np.ndarray:
-    """``numpy.gradient(f, axis=axis)`` (unit spacing, first-order edges) of a 2-D array, into one array.
-
-    Parameters
-    ----------
-    f : ndarray, shape (rows, cols)
-    axis : {0, 1}
-
-    Returns
-    -------
-    ndarray, dtype of ``f`` (float64 for integers, as numpy)
-        ``(f[i + 1] - f[i - 1]) / 2`` inside, ``f[1] - f[0]`` and ``f[-1] - f[-2]`` at the two ends (divided
-        by 1), as numpy computes them; the differences are written into the result and halved in place
-        instead of through numpy's temporaries (tests/test_seg9_kernels_exact.py). Arrays with fewer than
-        3 elements along ``axis``, and other dtypes than float32 and float64, go to numpy.
-    """
-    if f.ndim != 2 or f.shape[axis] < 3 or f.dtype not in (np.float32, np.float64):
-        return np.gradient(f, axis=axis)
-    out = np.empty_like(f)
-    if axis == 0:
-        inner, ahead, behind = out[1:-1], f[2:], f[:-2]
-        first, last = (out[0], f[1], f[0]), (out[-1], f[-1], f[-2])
-    else:
-        inner, ahead, behind = out[:, 1:-1], f[:, 2:], f[:, :-2]
-        first, last = (out[:, 0], f[:, 1], f[:, 0]), (out[:, -1], f[:, -1], f[:, -2])
-    np.subtract(ahead, behind, out=inner)
-    np.divide(inner, 2.0, out=inner)
-    for o, a, b in (first, last):
-        np.subtract(a, b, out=o)
-        np.divide(o, 1.0, out=o)
-    return out
+    iy, ix = np.gradient(g)
+    iyy, iyx = np.gradient(iy)
+    ixx = np.gradient(ix, axis=1)
+    g2 = ix * ix + iy * iy
+    itt = (ixx * iy * iy - 2.0 * iyx * ix * iy + iyy * ix * ix) / np.maximum(g2, 1e-30)
+    return itt, np.sqrt(g2)
 
 
 def block_mean(image: np.ndarray, f: int) -> np.ndarray:
