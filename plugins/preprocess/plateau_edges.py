@@ -47,6 +47,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.common.image_stats import kth_smallest
 from grainhabit.plugins.preprocess.polarity import EDGE_FRACTION, SCALES_PX, convex_side_vote, multiscale_vote
 
 #: Below this ``|vote|`` of the ordinary convex-side vote the plateau vote is consulted.
@@ -69,7 +70,7 @@ def _scale_vote(arr: np.ndarray, sigma: float, edge_fraction: float, reach: int)
     g2 = ix * ix + iy * iy
     grad = np.sqrt(g2)
     k = int((1.0 - edge_fraction) * (grad.size - 1))
-    t = np.partition(grad.ravel(), k)[k]
+    t = kth_smallest(grad, k)  # np.partition's value
     r, c = np.nonzero((grad >= t) & (grad > 0))
     if r.size < MIN_KEPT:
         return None

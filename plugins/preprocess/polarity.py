@@ -39,6 +39,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.common.image_stats import kth_smallest
+
 #: Gaussian scales (px of the working copy) of the derivatives; votes of both are averaged.
 SCALES_PX = (4.0, 8.0)
 #: Fraction of pixels with the largest gradient magnitude that vote.
@@ -83,11 +85,42 @@ def tangent_second_derivative(image: np.ndarray, sigma: float) -> tuple[np.ndarr
 
 
 def block_mean(image: np.ndarray, f: int) -> np.ndarray:
-    """Mean of ``f x f`` blocks (the last partial row and column of blocks dropped)."""
+    """Mean of ``f x f`` blocks (the last partial row and column of blocks dropped), in float32.
+
+    For ``f = 2`` (frames of 1025-2048 px per side, and the halved copy of every frame) the four
+    pixels of a block are added as numpy's ``mean(axis=(1, 3))`` of the float32 blocks adds them, by
+    shifted slices (:func:`block_mean_pairs`: the same bits, several times cheaper than numpy's reduction
+    over two axes of length 2); other ``f`` take numpy's mean.
+    """
     if f <= 1:
         return np.asarray(image, np.float32)
     rows, cols = (image.shape[0] // f) * f, (image.shape[1] // f) * f
+    if f == 2:
+        return block_mean_pairs(np.asarray(image[:rows, :cols], np.float32))
     return np.asarray(image[:rows, :cols], np.float32).reshape(rows // f, f, cols // f, f).mean(axis=(1, 3))
+
+
+def block_mean_pairs(x: np.ndarray) -> np.ndarray:
+    """``x.reshape(r // 2, 2, c // 2, 2).mean(axis=(1, 3))`` of a float32 array of even sides, bit for bit.
+
+    Parameters
+    ----------
+    x : ndarray of float32, shape (r, c), r and c even
+
+    Returns
+    -------
+    ndarray of float32, shape (r // 2, c // 2)
+        ``((a + b) + (c + d)) + 0`` divided by 4, with ``a b`` the block's upper pixels and ``c d`` its
+        lower ones: numpy reduces the contiguous axis first (each row's pair), then the two rows, in the
+        float32 accumulator of a float32 mean; its sum starts from +0, so a block of four negative zeros
+        gives +0 (the ``+ 0``). Division by 4 is exact. Checked against numpy in
+        tests/test_seg9_kernels_exact.py.
+    """
+    pairs = np.add(x[:, 0::2], x[:, 1::2])  # a + b in every row
+    out = np.add(pairs[0::2], pairs[1::2])
+    out += np.float32(0.0)
+    out /= np.float32(4.0)
+    return out
 
 
 def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float = EDGE_FRACTION) -> float:
@@ -113,8 +146,7 @@ def convex_side_vote(image: np.ndarray, scales=SCALES_PX, edge_fraction: float =
     """
     def tangent_vote(arr: np.ndarray, sigma: float) -> float | None:
         itt, grad = tangent_second_derivative(arr, sigma)
-        t = np.partition(grad.ravel(), int((1.0 - edge_fraction) * (grad.size - 1)))[
-            int((1.0 - edge_fraction) * (grad.size - 1))]
+        t = kth_smallest(grad, int((1.0 - edge_fraction) * (grad.size - 1)))  # np.partition's value
         edge = (grad >= t) & (grad > 0)
         return float(np.mean(np.sign(-itt[edge]))) if edge.any() else None
 

@@ -57,7 +57,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.foreground import disk_structure
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask, hull_pixel_count
 from grainhabit.plugins.segment.population import box_areas
 from grainhabit.plugins.segment.touching import SEAM_DIP
 
@@ -116,8 +116,8 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     area = float(np.count_nonzero(mask))
     if area < MIN_GRAINS * min_area:
         return None
-    hull = convex_hull_mask(mask)
-    if not large and area >= GRAIN_SOLIDITY * float(np.count_nonzero(hull)):
+    # the hull's pixel count, remembered from the splitting for most grains (hull_fill.hull_pixel_count)
+    if not large and area >= GRAIN_SOLIDITY * float(hull_pixel_count(mask)):
         return None
     smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
     dist = ndi.distance_transform_edt(mask)
@@ -159,7 +159,7 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
         return k
 
     # where the outline is notched: pixels of the convex hull outside the grain, NOTCH_PX deep or more
-    notched = hull & ~mask
+    notched = convex_hull_mask(mask) & ~mask
     notched &= ndi.distance_transform_edt(~mask) >= NOTCH_PX
     near_notch = ndi.distance_transform_edt(~notched) <= NOTCH_REACH_PX if notched.any() else notched
     for i, a in enumerate(big):
@@ -181,7 +181,7 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     if len(groups) < 2:
         return None
     parts = [np.isin(flooded, g) for g in groups.values()]
-    if any(np.count_nonzero(p) < PART_SOLIDITY * np.count_nonzero(convex_hull_mask(p)) for p in parts):
+    if any(np.count_nonzero(p) < PART_SOLIDITY * hull_pixel_count(p) for p in parts):
         return None
     return parts
 

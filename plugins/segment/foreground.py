@@ -16,6 +16,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment import runs
 from grainhabit.plugins.segment.band_flood import flood_band
 from grainhabit.plugins.segment.disk_morphology import close_disk, dilate_disk, erode_disk
 from grainhabit.plugins.segment.gaps import gap_lines
@@ -392,20 +393,26 @@ def faint_objects(low: np.ndarray, high: np.ndarray, min_area: float = 0.0) -> n
     ``high`` cut by the box's edge counted as large.
     """
     out = np.zeros(low.shape, bool)
-    lab, n = ndi.label(low, structure=_EIGHT)
+    # the 8-connected components of low from its runs along the rows (runs.connect_runs: scipy's labels)
+    cols = low.shape[1]
+    l_rows, l_starts, l_stops = runs.row_runs(low)
+    run_lab, n = runs.connect_runs(l_rows, l_starts, l_stops, cols)
     if n == 0:
         return out
-    # the labels of low's pixels only (numpy's bincount of a whole int32 frame casts it to int64 first:
-    # ~10x dearer); the background's count (entry 0) is never read
-    areas = np.bincount(lab[low], minlength=n + 1)
-    shown_px = np.bincount(lab[high], minlength=n + 1)
+    # each component's pixels in low and in high, counted from the runs: a run of high & low lies in one run
+    # of low (np.bincount(lab[low]) and np.bincount(lab[high]), the background's entry 0 never read)
+    areas = np.bincount(np.repeat(run_lab, l_stops - l_starts), minlength=n + 1)
+    h_rows, h_starts, h_stops = runs.row_runs(high & low)
+    host = np.searchsorted(l_rows * (cols + 1) + l_starts, h_rows * (cols + 1) + h_starts, side="right") - 1
+    shown_px = np.bincount(np.repeat(run_lab[host], h_stops - h_starts), minlength=n + 1)
     cand = (areas >= max(FAINT_AREA_SHARE * min_area, 1.0)) & (shown_px < FAINT_SHOWN_SHARE * areas)
     cand[0] = False
     if not cand.any():
         return out
     reach = int(np.ceil(FAINT_CLEARANCE_PX))
     rows, cols = low.shape
-    boxes = ndi.find_objects(lab)
+    lab = runs.paint_runs(low.shape, l_rows, l_starts, l_stops, run_lab)
+    boxes = runs.run_boxes(l_rows, l_starts, l_stops, run_lab, n)
     for k in np.flatnonzero(cand):
         box = boxes[k - 1]
         r0, r1 = max(box[0].start - reach, 0), min(box[0].stop + reach, rows)
@@ -443,7 +450,7 @@ def diffuse_parts(mask: np.ndarray, outer: np.ndarray | None = None) -> np.ndarr
     # labelled in the mask's bounding box: the same parts, in the same (row-major) order as over the frame
     crop = (slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1))
     part = mask[crop]
-    lab, n = ndi.label(part, structure=_EIGHT)
+    lab, n, boxes = runs.label_with_boxes(part)  # ndi.label(part, _EIGHT) and its find_objects
     areas = np.bincount(lab[part], minlength=n + 1)  # entry 0 (the background) is never read
     # the parts that meet ``outer``, counted at once (most parts of a frame are small and decided here)
     meets = np.ones(n + 1, bool)
@@ -454,7 +461,6 @@ def diffuse_parts(mask: np.ndarray, outer: np.ndarray | None = None) -> np.ndarr
     big = np.flatnonzero(meets & (areas >= PLATE_MIN_AREA_PX))
     big = big[big > 0]
     if big.size:
-        boxes = ndi.find_objects(lab)
         for k in big:
             box = boxes[k - 1]
             drop[k] = areas[k] >= PLATE_SOLIDITY * convex_hull_mask(lab[box] == k).sum()
@@ -526,8 +532,7 @@ def fill_label(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, int, list]:
     and a hole never precedes its component's first row. Equal to the two labellings
     (tests/test_segment_exact.py).
     """
-    lab, n0 = ndi.label(mask, structure=_EIGHT)
-    boxes0 = ndi.find_objects(lab)
+    lab, n0, boxes0 = runs.label_with_boxes(mask)  # ndi.label(mask, _EIGHT) and find_objects, from the row runs
     if n0 == euler_number8(mask):  # components less holes: no hole anywhere (grains seldom have one)
         return mask.copy(), lab, int(n0), boxes0
     holes = {}

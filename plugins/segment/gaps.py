@@ -14,6 +14,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment import runs
 from grainhabit.plugins.segment.disk_morphology import dilate_disk
 
 #: Components of the thresholded mask smaller than this (pixels) are specks, not grains kept apart.
@@ -85,14 +86,11 @@ def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_P
     two against each other).
     """
     cores = cores & mask
-    comp, n = ndi.label(cores, structure=_EIGHT)
-    faint, n_faint = ndi.label(mask, structure=_EIGHT)
+    # the bodies, worked out on the mask's pixels only (the rest of the frame is no body): the 8-connected
+    # components of the cores and of the mask at those pixels, in the order of np.flatnonzero(mask)
+    at, core_of, comp_of, n, n_faint = _components_at_mask(mask, cores)
     if n + n_faint < 2:
         return np.zeros(mask.shape, bool)
-    # the bodies, worked out on the mask's pixels only (the rest of the frame is no body)
-    at = np.flatnonzero(mask)
-    core_of = comp.ravel()[at]
-    comp_of = faint.ravel()[at]
     # components of the mask without a core are bodies of their own
     has_core = np.zeros(n_faint + 1, bool)
     has_core[comp_of[core_of > 0]] = True
@@ -108,6 +106,51 @@ def gap_lines(mask: np.ndarray, cores: np.ndarray, reach_px: float = GAP_REACH_P
     if near_px is None:
         return nearest_body_lines(bodies, mask, reach_px)[0]
     return _lines_near_mask(bodies, mask, reach_px, near_px)
+
+
+def _components_at_mask(mask: np.ndarray, cores: np.ndarray) -> tuple:
+    """The 8-connected components of ``cores`` (within ``mask``) and of ``mask``, read at the mask's pixels.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (rows, cols)
+    cores : ndarray of bool, shape (rows, cols)
+        A subset of ``mask``.
+
+    Returns
+    -------
+    at : ndarray of int
+        ``numpy.flatnonzero(mask)``.
+    core_of, comp_of : ndarray of int32, shape (len(at),)
+        ``scipy.ndimage.label(cores, structure=np.ones((3, 3)))[0].ravel()[at]`` and the same of ``mask``.
+    n, n_mask : int
+        The numbers of components.
+
+    Notes
+    -----
+    Both labellings come from the masks' runs along the rows (:mod:`~grainhabit.plugins.segment.runs`):
+    the mask's labels are its runs' labels repeated over their lengths; a run of the cores lies inside one
+    run of the mask, found by a binary search, and its labels are written at its place among the mask's
+    pixels. No pass over the frame but the two run searches (three whole-frame passes and two labellings
+    before; equal, tests/test_seg9_kernels_exact.py).
+    """
+    cols = mask.shape[1]
+    rows, starts, stops = runs.row_runs(mask)
+    comp_run, n_mask = runs.connect_runs(rows, starts, stops, cols)
+    lengths = stops - starts
+    at = runs.run_pixels(rows, starts, stops, cols)
+    comp_of = np.repeat(comp_run, lengths)
+    core_of = np.zeros(at.size, np.int32)
+    c_rows, c_starts, c_stops = runs.row_runs(cores)
+    core_run, n = runs.connect_runs(c_rows, c_starts, c_stops, cols)
+    if n:
+        width = cols + 1
+        host = np.searchsorted(rows * width + starts, c_rows * width + c_starts, side="right") - 1
+        offset = (np.cumsum(lengths) - lengths)[host] + (c_starts - starts[host])
+        c_len = c_stops - c_starts
+        place = np.repeat(offset - (np.cumsum(c_len) - c_len), c_len) + np.arange(int(c_len.sum()))
+        core_of[place] = np.repeat(core_run, c_len)
+    return at, core_of, comp_of, n, n_mask
 
 
 def nearest_body_lines(bodies: np.ndarray, mask: np.ndarray,
@@ -149,7 +192,8 @@ def nearest_body_lines(bodies: np.ndarray, mask: np.ndarray,
     if held.min() == held.max():
         return out, ft  # one body: the same nearest body everywhere, no line
     ri, ci = ft
-    nearest = bodies[ri, ci]
+    # bodies[ri, ci] by flat indices (one index array instead of numpy's two-array gather; the same values)
+    nearest = np.ascontiguousarray(bodies).ravel().take(ri * np.intp(bodies.shape[1]) + ci)
     down = nearest[1:, :] != nearest[:-1, :]
     right = nearest[:, 1:] != nearest[:, :-1]
     out[1:, :] |= down

@@ -201,3 +201,50 @@ def convex_hull_mask(mask: np.ndarray) -> np.ndarray:
     cols = np.arange(m.shape[1])
     out[r0:r1 + 1] = (cols[None, :] >= lo[:, None]) & (cols[None, :] <= hi[:, None])
     return out
+
+
+#: Pixel counts of convex hull images lately worked out (:func:`hull_pixel_count`), keyed by :func:`shape_key`
+#: of the shape cut to its box; emptied when it holds _COUNTS_KEPT.
+_COUNTS: dict = {}
+_COUNTS_KEPT = 4096
+
+
+def shape_key(tight: np.ndarray) -> tuple:
+    """A dictionary key of a shape cut to its box: its size and its packed pixels."""
+    return tight.shape, np.packbits(tight).tobytes()
+
+
+def remember_hull_count(key: tuple, count: int) -> None:
+    """Note the pixel count of the convex hull image of the shape of ``key`` (:func:`shape_key`)."""
+    if len(_COUNTS) >= _COUNTS_KEPT:
+        _COUNTS.clear()
+    _COUNTS[key] = int(count)
+
+
+def hull_pixel_count(mask: np.ndarray) -> int:
+    """``numpy.count_nonzero(convex_hull_mask(mask))``, remembered per shape.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+
+    Returns
+    -------
+    int
+        Pixels of the convex hull image (0 for an empty mask). The hull lies within the shape's bounding
+        box (its vertices are at most half a pixel beyond the outer pixels' centres), so the count depends
+        on the shape cut to its box alone, wherever it lies in ``mask``: the splitting of touching grains
+        notes the count of every shape whose hull it fills (``touching.concavity_depth``), and the seam
+        pass, which asks again for most of the same grains, reads it back.
+    """
+    m = np.asarray(mask, bool)
+    rows, cols = np.flatnonzero(m.any(axis=1)), np.flatnonzero(m.any(axis=0))
+    if rows.size == 0:
+        return 0
+    tight = m[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    key = shape_key(tight)
+    count = _COUNTS.get(key)
+    if count is None:
+        count = int(np.count_nonzero(convex_hull_mask(tight)))
+        remember_hull_count(key, count)
+    return count

@@ -80,6 +80,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.foreground import fill_holes
 from grainhabit.plugins.segment.population import box_areas
+from grainhabit.plugins.segment.runs import labelled_maxima
 from grainhabit.plugins.segment.tiling import renumber_raster
 
 #: Least share of the frame covered by the thick class.
@@ -235,15 +236,20 @@ def core_area_ratios(dist: np.ndarray, cut: float, min_area: float) -> np.ndarra
         is one particle), several for the winding pockets the background of a
         frame of scattered grains leaves. A cheap look, made before the watershed.
     """
-    cores, n = ndi.label(dist > cut, _EIGHT)
+    above = dist > cut
+    cores, n = ndi.label(above, _EIGHT)
     if n == 0:
         return np.zeros(0)
-    areas = np.bincount(cores.ravel(), minlength=n + 1)
+    # areas and largest distances from the cores' pixels alone (scipy's labelled maximum sorts the labels of
+    # the whole frame: ~20 ms on a 512 px copy); entry 0 (the background) is never read
+    at = np.flatnonzero(above)
+    own = cores.ravel()[at]
+    areas = np.bincount(own, minlength=n + 1)
     keep = [k for k, box in enumerate(ndi.find_objects(cores), start=1)
             if areas[k] >= min_area and _clear_of_edge(box, cores.shape)]
     if not keep:
         return np.zeros(0)
-    inner = np.asarray(ndi.maximum(dist, cores, keep), float) - cut
+    inner = labelled_maxima(np.asarray(dist, float).ravel()[at], own, n)[keep] - cut
     return areas[keep] / (np.pi * np.maximum(inner, 0.5) ** 2)
 
 

@@ -386,12 +386,11 @@ def paint_boxes(labels: np.ndarray, boxes: list, value, take: np.ndarray, out: n
     """
     if out is None:
         out = np.zeros(labels.shape, np.int32)
-    for i in np.flatnonzero(take):
+    for i in np.flatnonzero(take).tolist():
         b = boxes[i] if i < len(boxes) else None
         if b is None:
             continue
-        view = out[b]
-        view[labels[b] == i] = value[i]
+        np.copyto(out[b], value[i], where=labels[b] == i)  # view[labels[b] == i] = value[i], without the gather
     return out
 
 

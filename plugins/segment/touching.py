@@ -37,7 +37,8 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.segment.band_flood import watershed_window
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask, remember_hull_count, shape_key
+from grainhabit.plugins.segment.runs import maxima_by_label
 
 #: Fractions of the component's largest inscribed radius tried as h.
 H_FRACTIONS = (0.5, 0.35, 0.25, 0.15, 0.1)
@@ -133,12 +134,15 @@ def concavity_depth(mask: np.ndarray) -> float:
     tight = mask[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
     # the same shape is often asked again (is the component convex? then: any seam?; a part, then the part
     # alone)
-    key = (tight.shape, np.packbits(tight).tobytes())
+    key = shape_key(tight)
     known = _DEPTHS.get(key)
     if known is not None:
         return known
-    # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel)
-    pocket = convex_hull_mask(tight) & ~tight
+    # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel); its pixel
+    # count noted for hull_fill.hull_pixel_count (the seam pass asks for the same grains' hulls)
+    hull = convex_hull_mask(tight)
+    remember_hull_count(key, int(np.count_nonzero(hull)))
+    pocket = hull & ~tight
     depth = _pocket_depth(tight, pocket)
     if len(_DEPTHS) >= _DEPTHS_KEPT:
         _DEPTHS.clear()
@@ -228,7 +232,7 @@ def _necks_are_narrow(ws: np.ndarray, dist: np.ndarray, n: int) -> bool:
     meet at a neck narrower than either, while ripples along the ridge of
     one elongated grain leave saddles almost as high as the peaks.
     """
-    peaks = ndi.maximum(dist, ws, index=np.arange(1, n + 1))
+    peaks = maxima_by_label(dist, ws, n)  # ndi.maximum(dist, ws, index=np.arange(1, n + 1)), from the runs
     for i, sl in enumerate(ndi.find_objects(ws, max_label=n), start=1):
         if sl is None:
             continue
@@ -954,7 +958,7 @@ def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
     if not pocket.any():
         return False
     pockets, n_pockets = ndi.label(pocket, structure=_EIGHT)
-    deepest = np.r_[0.0, ndi.maximum(ndi.distance_transform_edt(outside), pockets, index=np.arange(1, n_pockets + 1))]
+    deepest = np.r_[0.0, maxima_by_label(ndi.distance_transform_edt(outside), pockets, n_pockets)]  # ndi.maximum
     notch = np.sort([deepest[np.unique(pockets[ndi.binary_dilation(end_labels == k, structure=_EIGHT)])].max()
                      for k in range(1, n_ends + 1)])[::-1]
     rows, cols = np.nonzero(border)
