@@ -64,3 +64,32 @@ def test_rough_discs_in_noise_are_found_whole(monkeypatch):
 def test_a_clean_frame_does_not_grow():
     assert foreground.hysteresis_level({"background": 0.0, "sigma": 0.02}) is None
     assert foreground.hysteresis_level({"background": 0.01, "sigma": 0.1}) == 0.01 + 0.25
+
+
+def test_a_component_whose_parts_are_all_below_the_threshold_stays_one_grain():
+    # two overlapping discs whose pixels lie mostly between 2.5 and 5 background sigmas, each with a small core
+    # above 5 (a noisy frame's grains): the splitter cuts the pair at its neck, and the pocket test (a split
+    # part mostly below the threshold is background enclosed between grains) would drop both parts; with no
+    # part left there is no grain to enclose a pocket, so the component is kept whole
+    from grainhabit.plugins.segment import segment_grains as sg
+    from grainhabit.plugins.segment.levels import frame_levels
+
+    yy, xx = np.mgrid[0:120, 0:160]
+    img = np.zeros((120, 160))
+    r = 18.0
+    d = 1.8 * r
+    for cx in (56.0, 56.0 + d):
+        dist2 = (yy - 60.0) ** 2 + (xx - cx) ** 2
+        img[dist2 <= r ** 2] = 0.42
+        img[dist2 <= 4.0 ** 2] = 0.65
+    img = ndi.gaussian_filter(img, 1.0).astype(np.float32)
+    levels = frame_levels(img, 5.0, faint_k=4.0)
+    levels.update(background=0.0, sigma=0.1, noise=0.5, faint=0.4)  # a noisy frame's levels (sigma 0.1)
+    labels, _, flags = sg.label_grains(img, 1.0, levels, method="auto", min_ecd_nm=6.0, min_ecd_px=6.0,
+                                       min_peak=0.3)
+    left, right = int(labels[60, 56]), int(labels[60, 92])
+    assert left > 0 and left == right and labels.max() == 1
+    assert not flags["split"][left]
+    # its area that of the two discs' union (handbook geometry: circle-circle intersection), within 10 %
+    lens = 2 * r ** 2 * np.arccos(d / (2 * r)) - d / 2 * np.sqrt(4 * r ** 2 - d ** 2)
+    assert abs((labels == left).sum() / (2 * np.pi * r ** 2 - lens) - 1) < 0.10

@@ -231,10 +231,11 @@ def grown_to(seeds: np.ndarray, low: np.ndarray) -> np.ndarray:
     Returns
     -------
     ndarray of bool
-        ``seeds | reconstruction of low from seeds`` (scikit-image's ``apply_hysteresis_threshold`` keeps
-        the components of the low mask that hold a high pixel; tests/test_noisy_growth.py checks against it).
+        ``seeds |`` the morphological reconstruction of ``low`` from ``seeds`` with the 3 x 3 square (what
+        scikit-image's ``apply_hysteresis_threshold`` does with 4-connected components;
+        tests/test_noisy_growth.py checks against both).
     """
-    lab, n = ndi.label(low, structure=_EIGHT)
+    lab, n = runs.label(low)  # ndi.label(low, _EIGHT), from the runs along the rows
     keep = np.zeros(n + 1, bool)
     keep[lab[seeds]] = True
     keep[0] = False
