@@ -109,8 +109,8 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     -----
     Only Gaussian denoising has a scale to choose; other methods take the
     first scale. The wider scales are tried only when the first leaves the
-    ratio below ``ENOUGH_SNR``, one at a time, stopping at the first that
-    reaches it.
+    ratio below ``ENOUGH_SNR``, one at a time, stopping at the first
+    plausible one that reaches it.
     """
     lv = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, scales[0], polarity)
     scores = {scales[0]: lv["grain_snr"]}
