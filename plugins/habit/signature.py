@@ -138,19 +138,50 @@ def radial_signature_about(poly, centroid, area: float, n_angles: int = 256) -> 
     ndarray, shape (n_angles,)
         As :func:`radial_signature`.
     """
+    return radial_signatures_about([poly], [centroid], [area], n_angles)[0]
+
+
+def radial_signatures_about(polys, centroids, areas, n_angles: int = 256) -> np.ndarray:
+    """:func:`radial_signature_about` of many outlines, one row each.
+
+    Parameters
+    ----------
+    polys : sequence of ndarray, shape (k_i, 2)
+        Closed outlines, as checked by :func:`check_polygon`.
+    centroids : sequence of ndarray, shape (2,)
+        Their centroids, and
+    areas : sequence of float
+        their unsigned areas (:func:`polygon_centroid`).
+    n_angles : int
+        Number of ray directions.
+
+    Returns
+    -------
+    ndarray, shape (len(polys), n_angles)
+        Row i the signature of outline i alone, whatever the others (the one-outline form is the
+        one-row case): every element is computed by the same operation on the same operands, the
+        edges of all outlines laid end to end (each edge's next vertex taken within its own outline).
+    """
     n = check_n_angles(n_angles)
-    q = poly - centroid
-    e = _next(q) - q
-    k = len(q)
-    a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))        # vertex angle in ray steps
-    da = _next(a0) - a0
-    da = (da + n / 2) % n - n / 2                                    # signed, in [-n/2, n/2)
+    g = len(polys)
+    if g == 0:
+        return np.zeros((0, n))
+    k = np.array([len(p) for p in polys], np.int64)
+    q = np.concatenate([p - c for p, c in zip(polys, centroids)])
+    first = np.cumsum(k) - k
+    # the next vertex of each vertex within its own outline (the last one's is its outline's first)
+    nxt = np.arange(1, q.shape[0] + 1)
+    nxt[first + k - 1] = first
+    e = q[nxt] - q
+    a0 = np.arctan2(q[:, 1], q[:, 0]) * (n / (2.0 * np.pi))
+    da = a0[nxt] - a0
+    da = (da + n / 2) % n - n / 2
     lo = np.floor(np.minimum(a0, a0 + da)).astype(np.int64) - 1
     cnt = np.floor(np.maximum(a0, a0 + da)).astype(np.int64) + 2 - lo
     wide = np.abs(da) > n / 2 - 2
     lo[wide], cnt[wide] = 0, n
     cnt = np.minimum(cnt, n)
-    edge = np.repeat(np.arange(k), cnt)
+    edge = np.repeat(np.arange(q.shape[0]), cnt)
     start = np.cumsum(cnt) - cnt
     ray = (lo[edge] + np.arange(edge.size) - start[edge]) % n
     cos_ray, sin_ray = _ray_directions(n)
@@ -159,13 +190,14 @@ def radial_signature_about(poly, centroid, area: float, n_angles: int = 256) -> 
     det = -dx * ey + ex * dy
     ok = np.abs(det) > 1e-14
     det = np.where(ok, det, 1.0)
-    # the numerator of t is one number per edge: computed per edge, then spread over its rays
     t = (-q[:, 0] * e[:, 1] + e[:, 0] * q[:, 1])[edge] / det
     s = (dx * qy - dy * qx) / det
     hit = ok & (s >= -1e-9) & (s <= 1 + 1e-9) & (t > 0)
-    r = np.zeros(n)
-    np.maximum.at(r, ray[hit], t[hit])
-    return r / math.sqrt(area)
+    grain = np.repeat(np.arange(g), k)[edge]
+    r = np.zeros(g * n)
+    np.maximum.at(r, (grain * n + ray)[hit], t[hit])
+    r = r.reshape(g, n)
+    return r / np.array([math.sqrt(a) for a in areas])[:, None]
 
 
 def shift_distances(sig_obs, sig_model) -> np.ndarray:

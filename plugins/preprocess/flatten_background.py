@@ -1026,16 +1026,12 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
             raise ValueError(f"image must be 2-D (rows, cols), got shape {arr.shape}")
     else:
         arr = _check_image(image)
-        whole, _ = denoise(normalise(arr), denoise_method, 1.0 if smooth_px is None else smooth_px)
+        whole, _ = denoise(normalise(arr), denoise_method, smoothing_scale.scales_for(smooth_px)[0])
         whole = whole.astype(WORK_DTYPE)
     # flatten computes its output itself: the levels without the preview (frame_levels' preview=False)
-    if smooth_px is None and whole is None:
-        lv = smoothing_scale.levels_at_best_scale(functools.partial(frame_levels, preview=False),
-                                                  whole_frame_regions(arr), arr.shape, pixel_size_nm,
-                                                  background_nm, denoise_method, polarity)
-    else:
-        lv = frame_levels(whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm, denoise_method,
-                          1.0 if smooth_px is None else smooth_px, polarity, whole=whole, preview=False)
+    lv = smoothing_scale.levels_at_best_scale(functools.partial(frame_levels, preview=False, whole=whole),
+                                              whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm,
+                                              denoise_method, polarity, smoothing_scale.scales_for(smooth_px))
     full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
     out = apply_levels(arr, full, lv, denoised=whole if whole is not None else lv.pop("denoised", None))
     return out, lv["polarity"], lv["confidence"]
@@ -1192,12 +1188,8 @@ def grainhabit_tile_levels(step, sample, params):
     if p["denoise"] not in ("gaussian", "none"):
         raise ValueError(f"denoise {p['denoise']!r} needs the whole frame (its noise estimate and range are "
                          "frame-wide); a frame processed by tiles takes 'gaussian' or 'none'")
-    if smooth_px is None:
-        lv = smoothing_scale.levels_at_best_scale(frame_levels, sample.regions, sample.shape, px,
-                                                  p["background_nm"], p["denoise"], p["polarity"])
-    else:
-        lv = frame_levels(sample.regions, sample.shape, px, p["background_nm"], p["denoise"], smooth_px,
-                          p["polarity"])
+    lv = smoothing_scale.levels_at_best_scale(frame_levels, sample.regions, sample.shape, px, p["background_nm"],
+                                              p["denoise"], p["polarity"], smoothing_scale.scales_for(smooth_px))
     lv.pop("denoised", None)
     return lv
 

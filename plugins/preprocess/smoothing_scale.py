@@ -56,6 +56,12 @@ ENOUGH_SNR = 10.0
 PLAUSIBLE_GAIN = 1.5
 
 
+def scales_for(smooth_px: float | None) -> tuple:
+    """The scales :func:`levels_at_best_scale` tries: :data:`TRIAL_SCALES_PX` when the smoothing is left to
+    the step (``smooth_px`` None), else the one scale asked for (px)."""
+    return TRIAL_SCALES_PX if smooth_px is None else (float(smooth_px),)
+
+
 def pick_scale(snr_by_scale: dict[float, float], enough: float = ENOUGH_SNR,
                plausible_gain: float = PLAUSIBLE_GAIN) -> float:
     """The smoothing scale to keep, from the grain-to-noise ratio at each trial scale.
@@ -108,7 +114,7 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     Notes
     -----
     Only Gaussian denoising has a scale to choose; other methods take the
-    first scale. The wider scales are tried only when the first leaves the
+    first scale (and a frame denoised already, ``frame_levels``' ``whole``, is levelled at it). The wider scales are tried only when the first leaves the
     ratio below ``ENOUGH_SNR``, one at a time, stopping at the first
     plausible one that reaches it.
     """
