@@ -104,3 +104,30 @@ def test_facets_of_one_convex_crystal_are_not_divided():
     labels = ndi.label(img > 0.3)[0]
     out, split, divided = split_at_dark_seams(img, labels, np.zeros(labels.max(), bool), min_area=50)
     assert divided == 0 and out.max() == 5
+
+
+def test_a_staircase_of_eight_squares_is_divided_into_eight():
+    # each square is an eighth of the grain: a part floor set as a share of the grain (0.15) kept such a
+    # heap whole; the floor is a share of the largest part now. Areas: side^2 (handbook geometry)
+    rng = np.random.default_rng(5)
+    side = 30
+    cells = [(0, 0), (0, 1), (1, 1), (1, 2), (2, 2), (2, 3), (3, 3), (3, 4)]
+    img = np.zeros((4 * side + 40, 5 * side + 40), np.float32)
+    truth = np.zeros(img.shape, np.int32)
+    for k, (i, j) in enumerate(cells, start=1):
+        r, c = 20 + i * side, 20 + j * side
+        img[r:r + side, c:c + side] = 1.0
+        truth[r:r + side, c:c + side] = k
+    # two-pixel seams at 0.55 wherever two squares meet
+    seam = np.zeros(img.shape, bool)
+    seam[:, 1:] |= (truth[:, 1:] != truth[:, :-1]) & (truth[:, 1:] > 0) & (truth[:, :-1] > 0)
+    seam[1:, :] |= (truth[1:, :] != truth[:-1, :]) & (truth[1:, :] > 0) & (truth[:-1, :] > 0)
+    seam = ndi.binary_dilation(seam, structure=np.array([[0, 0, 0], [0, 1, 1], [0, 1, 1]], bool)) & (truth > 0)
+    img[seam] = 0.55
+    img = ndi.gaussian_filter(img, 1.0) + rng.normal(0, 0.02, img.shape).astype(np.float32)
+    parts = divide_at_seams(img, truth > 0, min_area=50)
+    assert parts is not None and len(parts) == len(cells)
+    for part in parts:
+        assert abs(part.sum() - side ** 2) <= 0.12 * side ** 2
+        ids, counts = np.unique(truth[part], return_counts=True)
+        assert counts.max() >= 0.9 * part.sum()

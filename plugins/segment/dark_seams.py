@@ -19,8 +19,8 @@ is not convex is looked at once more:
 3. a marker-controlled watershed [2]_ from those markers of the top-hat (in
    units of the seam threshold) less the seam-free distance map (in units of
    its deepest distance): high on the seams, lowest at the parts' centres; the
-   parts under :data:`MIN_PART_FRACTION` of the grain (or under the smallest
-   grain) given to their neighbours;
+   parts under :data:`MIN_PART_FRACTION` of the largest part (or under the
+   smallest grain) given to their neighbours;
 4. the division is kept only when every boundary between two parts is darker
    than both parts by ``SEAM_DIP`` (as
    :func:`~grainhabit.plugins.segment.touching.seam_contrast` measures a
@@ -69,8 +69,9 @@ PART_SOLIDITY = 0.85
 SEAM_RADIUS_PX = 3
 #: h of the h-maxima of the seam-free distance map, as a share of its deepest distance.
 H_FRACTION = 0.3
-#: Smallest part, as a share of the grain's area.
-MIN_PART_FRACTION = 0.15
+#: Smallest part, as a share of the largest part's area (of the grain's area, a heap of nine spheres
+#: could not be divided at all: each sphere is a ninth of it).
+MIN_PART_FRACTION = 0.2
 #: A convex grain is looked at when its area is this many times the median of its frame's grains ...
 LARGE_FACTOR = 1.8
 #: ... in a frame of at least this many grains.
@@ -140,7 +141,7 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     relief = tophat / (SEAM_DIP * level) - free / float(free.max())
     flooded = watershed(relief, peaks, mask=mask)
     sizes = np.bincount(flooded.ravel(), minlength=n + 1)
-    big = np.flatnonzero(sizes[1:] >= max(min_area, MIN_PART_FRACTION * area)) + 1
+    big = np.flatnonzero(sizes[1:] >= max(min_area, MIN_PART_FRACTION * float(sizes[1:].max()))) + 1
     if big.size < 2:
         return None
     if big.size < n:

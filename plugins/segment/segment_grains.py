@@ -98,7 +98,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.10",
+    version="2.11",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -166,6 +166,12 @@ STEP = StepInfo(
 
 #: A foreground covering more of the frame than this has no background to work with.
 MAX_FOREGROUND = 0.95
+#: Where Otsu's classes find no background, a frame with at most this share of its pixels above the noise
+#: threshold is taken to have a textured background and a few grains (:func:`few_above_noise`).
+FEW_ABOVE_NOISE = 0.05
+#: ... and the grains found there must be at least this many: one or two objects (a caption left, a
+#: highlight) do not show that the frame has a background.
+FEW_GRAINS_MIN = 3
 #: A frame with a smaller fraction of pixels above the noise threshold holds noise only (Gaussian noise
 #: exceeds 5 sigma in 3e-7 of the pixels).
 NOISE_ONLY_FRACTION = 1e-4
@@ -499,13 +505,14 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
                      f"{100 * field.cover:.0f} % of the frame, gaps {field.gap_radius_px:.1f} px against "
                      f"{field.radius_px:.1f} px)")
         return finish_field(arr, raw, levels, p, field.labels, notes)
+    no_background = ""
     try:
         empty = check_frame(arr, levels, p)
-    except ValueError:
+    except ValueError as err:
         field = second_look(arr, raw, pixel_size_nm, p, "no level free of grains", notes)
         if field is None:
-            raise
-        empty = ""
+            empty = few_above_noise(arr, levels, p, str(err), notes)
+            no_background = str(err)
     else:
         field = second_look(arr, raw, pixel_size_nm, p, "nothing stands above its noise", notes) if empty else None
     if field is not None:
@@ -557,8 +564,12 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         cluster_of = None
         if clusters is not None:
             split_by_label = np.r_[False, split]
-    return place_outlines(arr, *drop_debris(*drop_drawn_marks(arr, raw, levels, p, labels, split, clusters,
-                                                              split_by_label, dropped, notes, boxes, cluster_of), p), p)
+    labels, split, notes = place_outlines(arr, *drop_debris(*drop_drawn_marks(
+        arr, raw, levels, p, labels, split, clusters, split_by_label, dropped, notes, boxes, cluster_of), p), p)
+    if no_background and int(labels.max()) < FEW_GRAINS_MIN:
+        # one or two objects do not show a background under grains (few_above_noise): the error stands
+        raise ValueError(no_background)
+    return labels, split, notes
 
 
 def finish_field(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict, labels: np.ndarray,
@@ -677,6 +688,40 @@ def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
         raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
                          "common level is not background; no background to separate grains from "
                          "(check polarity and threshold)")
+    return ""
+
+
+def few_above_noise(arr: np.ndarray, levels: dict, p: dict, error: str, notes: list) -> str:
+    """Go on with the usual path where few pixels stand above the noise threshold, else raise ``error``.
+
+    :func:`check_frame` judges by Otsu's two classes whether the frame has a
+    background. On a frame of a few small grains (under a hundredth of it)
+    over a textured or mottled background, Otsu's threshold divides the
+    background's own texture in two and the most common level falls in the
+    upper half, although nearly every pixel lies within the noise of the
+    background: the frame has a background, and the grains stand far above
+    it. Where at most :data:`FEW_ABOVE_NOISE` of the frame lies above the
+    noise threshold (and more than noise alone puts there), the usual path is
+    taken with a ``qc no-background`` note; otherwise the error stands. The
+    caller raises it too where the usual path then finds fewer than
+    :data:`FEW_GRAINS_MIN` grains.
+
+    Returns
+    -------
+    str
+        "" (go on); the note is appended to ``notes``.
+
+    Raises
+    ------
+    ValueError
+        With ``error``, where the test does not hold.
+    """
+    share = np.count_nonzero(arr > levels["noise"]) / arr.size
+    if not NOISE_ONLY_FRACTION <= share <= FEW_ABOVE_NOISE:
+        raise ValueError(error)
+    notes.append(f"segment-grains: qc no-background: Otsu's classes found no background, but only "
+                 f"{100 * share:.2f} % of the frame stands {p['noise_k']:g} background sigmas above the most "
+                 "common level: grains taken above it (a textured background; check the frame)")
     return ""
 
 

@@ -323,8 +323,13 @@ def grainhabit_tile_levels(step, sample, params):
                          "preview of the frame (flatten-background)")
     arr = np.asarray(sample.preview, np.float32)
     levels = frame_levels(arr, p["noise_k"], faint_k=p["faint_k"])
-    empty = sg.check_frame(arr, levels, p)
-    return {"levels": levels, "empty": empty, "notes": [empty] if empty else []}
+    notes = []
+    try:
+        empty = sg.check_frame(arr, levels, p)
+    except ValueError as err:
+        # as on a whole frame (segment_grains.segment_image), without its packed-field second look
+        empty = sg.few_above_noise(arr, levels, p, str(err), notes)
+    return {"levels": levels, "empty": empty, "notes": notes + ([empty] if empty else [])}
 
 
 def segment_tile(frame, params):
