@@ -131,3 +131,28 @@ def test_a_staircase_of_eight_squares_is_divided_into_eight():
         assert abs(part.sum() - side ** 2) <= 0.12 * side ** 2
         ids, counts = np.unique(truth[part], return_counts=True)
         assert counts.max() >= 0.9 * part.sum()
+
+
+def test_parts_are_looked_at_again_as_grains_of_their_own(monkeypatch):
+    # the recursion alone: a stand-in division that halves a mask along its longer side while it is over
+    # 100 px; three levels give eight parts of a 32 x 32 square, each an eighth of it
+    import grainhabit.plugins.segment.dark_seams as ds
+
+    def halve(image, mask, min_area, large=False):
+        if mask.sum() <= 100:
+            return None
+        rr, cc = np.nonzero(mask)
+        first = mask.copy()
+        if np.ptp(rr) >= np.ptp(cc):
+            first[rr.min() + (np.ptp(rr) + 1) // 2:, :] = False
+        else:
+            first[:, cc.min() + (np.ptp(cc) + 1) // 2:] = False
+        return [first, mask & ~first]
+
+    monkeypatch.setattr(ds, "divide_at_seams", halve)
+    mask = np.zeros((40, 40), bool)
+    mask[4:36, 4:36] = True
+    parts = ds.divide_again(np.zeros(mask.shape), mask, 10.0, np.inf, rounds=3)
+    assert len(parts) == 8 and all(p.sum() == 128 for p in parts)
+    assert np.array_equal(np.logical_or.reduce(parts), mask)
+    assert len(ds.divide_again(np.zeros(mask.shape), mask, 10.0, np.inf, rounds=1)) == 2

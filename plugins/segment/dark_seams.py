@@ -29,7 +29,9 @@ is not convex is looked at once more:
    :data:`PART_SOLIDITY`): the texture inside one grain gives wandering
    boundaries and parts that are not convex, and the edges between the
    facets of one crystal, dark as they may be, meet its outline at corners,
-   not in notches.
+   not in notches;
+5. each part is looked at again by the same steps, as a grain of its own, up
+   to :data:`ROUNDS` levels (:func:`divide_again`).
 
 Only grains whose solidity (ISO 9276-6) is under :data:`GRAIN_SOLIDITY`,
 or that are :data:`LARGE_FACTOR` times the frame's median grain or larger,
@@ -76,6 +78,8 @@ MIN_PART_FRACTION = 0.2
 LARGE_FACTOR = 1.8
 #: ... in a frame of at least this many grains.
 LARGE_MIN_GRAINS = 5
+#: Levels of division: the parts of a division are looked at again, as grains of their own (divide_again).
+ROUNDS = 3
 #: Grains under this many smallest grains are not looked at.
 MIN_GRAINS = 4
 #: A notch of the outline: pixels of the convex hull at least this far (px) outside the grain ...
@@ -187,6 +191,41 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     return parts
 
 
+def divide_again(image: np.ndarray, mask: np.ndarray, min_area: float, large_area: float,
+                 rounds: int = ROUNDS) -> list[np.ndarray] | None:
+    """:func:`divide_at_seams`, and each part it gives looked at again, ``rounds`` levels deep.
+
+    Parameters
+    ----------
+    image, mask, min_area
+        As :func:`divide_at_seams`.
+    large_area : float
+        Area (px) from which a grain or part counts as large (looked at even when convex).
+    rounds : int
+        Levels of division.
+
+    Returns
+    -------
+    list of ndarray of bool, or None
+        The parts (covering ``mask``), or None where the grain stays whole.
+
+    Notes
+    -----
+    A part of a first division can still hold particles joined along a seam that
+    the first division's tests did not let through with the rest (a seam whose
+    relief the flood of the whole heap ran round, a part joined back because one
+    of its boundaries was no seam); the same tests on that part alone decide it.
+    """
+    parts = divide_at_seams(image, mask, min_area, large=bool(np.count_nonzero(mask) >= large_area))
+    if parts is None or rounds <= 1:
+        return parts
+    out = []
+    for part in parts:
+        again = divide_again(image, part, min_area, large_area, rounds - 1)
+        out.extend(again if again is not None else [part])
+    return out
+
+
 def split_at_dark_seams(image: np.ndarray, labels: np.ndarray, split: np.ndarray, min_area: float,
                         boxes: list | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """Divide every grain of a frame that :func:`divide_at_seams` divides.
@@ -237,7 +276,7 @@ def split_at_dark_seams(image: np.ndarray, labels: np.ndarray, split: np.ndarray
             continue
         grown = tuple(slice(max(s.start - SEAM_RADIUS_PX, 0), s.stop + SEAM_RADIUS_PX) for s in box)
         mask = labels[grown] == k
-        parts = divide_at_seams(image[grown], mask, min_area, large=bool(areas[k] >= LARGE_FACTOR * typical))
+        parts = divide_again(image[grown], mask, min_area, LARGE_FACTOR * typical)
         if parts is None:
             continue
         if out is None:
