@@ -3,6 +3,8 @@
 - ``classify_habit.best_families`` compares only the family members the spectral lower bound
   cannot rule out (``outline_bound``, the correlation theorem and Parseval's relation); its
   reference compares every member at every shift.
+- ``engine.complete_by_symmetry`` takes the points' support function once per direction count
+  (``engine.point_support``) instead of in every grid's ``symmetric_hull_areas`` call.
 - flatten-background's trial smoothing scales share one raw pass (``flatten_background.raw_levels``:
   normalisation percentiles and noise model); the reference makes that pass at every scale.
 
@@ -120,3 +122,35 @@ def test_flatten_of_a_noisy_frame_is_unchanged_by_the_shared_raw_pass(monkeypatc
     monkeypatch.setattr(ss, "levels_at_best_scale", lambda *a, raw_levels=None, **k: real(*a, **k))
     ref = fb.flatten(frame, 1.0, smooth_px=None)
     assert np.array_equal(got[0], ref[0]) and got[1:] == ref[1:]
+
+
+def test_symmetric_hull_areas_with_the_support_handed_in_are_the_same():
+    rng = np.random.default_rng(11)
+    for _ in range(20):
+        pts = rng.normal(size=(int(rng.integers(3, 40)), 2)) * rng.uniform(1, 50)
+        cen = rng.normal(size=(81, 2))
+        for fold in (2, 3, 6):
+            for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
+                assert np.array_equal(gr.symmetric_hull_areas(pts, cen, fold, n),
+                                      gr.symmetric_hull_areas(pts, cen, fold, n, gr.point_support(pts, n)))
+
+
+def test_complete_by_symmetry_is_unchanged_by_the_kept_support(monkeypatch):
+    rng = np.random.default_rng(12)
+    outlines = []
+    for _ in range(8):                                    # hexagons and squares cut by a straight line
+        k = int(rng.choice([4, 6]))
+        t = np.arange(k) * 2 * np.pi / k + rng.uniform(0, np.pi)
+        poly = np.column_stack([np.cos(t), np.sin(t)]) * rng.uniform(10, 60)
+        dense = np.concatenate([poly[i] + np.linspace(0, 1, 12, endpoint=False)[:, None] * (poly[(i + 1) % k] - poly[i])
+                                for i in range(k)])
+        keep = dense[:, 0] < rng.uniform(0.2, 0.6) * np.abs(dense[:, 0]).max()
+        outlines.append(dense[keep])
+    got = [[gr.complete_by_symmetry(c, None, fold) for fold in (2, 3, 6)] for c in outlines]
+    real = gr.symmetric_hull_areas
+    monkeypatch.setattr(gr, "symmetric_hull_areas", lambda pts, cen, fold=2, n_dir=720, support=None:
+                        real(pts, cen, fold, n_dir))
+    ref = [[gr.complete_by_symmetry(c, None, fold) for fold in (2, 3, 6)] for c in outlines]
+    for g, r in zip(got, ref):
+        for a, b in zip(g, r):
+            assert np.array_equal(a, b)

@@ -90,7 +90,7 @@ from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
-           "symmetric_hull_areas", "fit_alpha", "fit_alpha_steps", "run_steps", "run_together", "fit_options", "grain_evidence", "grain_evidence_lazy",
+           "symmetric_hull_areas", "point_support", "fit_alpha", "fit_alpha_steps", "run_steps", "run_together", "fit_options", "grain_evidence", "grain_evidence_lazy",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_candidates_within", "BoundedOutline", "outline_reach", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
@@ -1574,7 +1574,8 @@ def _turns(fold: int):
     return out
 
 
-def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS) -> np.ndarray:
+def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS,
+                         support=None) -> np.ndarray:
     """Areas of the convex hulls of ``pts`` and their copies turned about each of many centres.
 
     Parameters
@@ -1587,6 +1588,9 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         The copies are turned by 360 j / ``fold`` degrees, j = 1 ... fold - 1.
     n_dir : int
         Directions of the support function (a multiple of ``fold``).
+    support : ndarray, shape (n_dir,), optional
+        :func:`point_support` of ``pts`` at ``n_dir`` directions, when the caller keeps it (a
+        search asks for many grids of centres of the same points); computed here otherwise.
 
     Returns
     -------
@@ -1616,7 +1620,7 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, _, (w_sq, w_next) = _support_tables(n, fold)
     period = n // fold
-    hk = (p @ u.T).max(axis=0)                                         # (n,)
+    hk = point_support(p, n) if support is None else support           # (n,)
     # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
     # fewer rows may round differently: the chunks below give the floats of all centres at once)
     cu = cen @ u.T                                                     # (c, n)
@@ -1635,6 +1639,24 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         np.add(q, nxt, out=q)
         out[a:a + rows] = (0.5 * fold) * np.abs(np.einsum("ci,ci->c", h, q))
     return out
+
+
+def point_support(pts, n_dir: int) -> np.ndarray:
+    """Support function of points at ``n_dir`` directions (angles 2 pi i / n_dir): max over points of p . u_i.
+
+    Parameters
+    ----------
+    pts : ndarray, shape (k, 2)
+    n_dir : int
+
+    Returns
+    -------
+    ndarray, shape (n_dir,)
+        The values :func:`symmetric_hull_areas` computes when it is given no ``support`` (the same
+        product and maximum).
+    """
+    u = _support_tables(int(n_dir), 1)[0]
+    return (np.asarray(pts, float) @ u.T).max(axis=0)
 
 
 #: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
@@ -1725,11 +1747,14 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> n
     best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
     if centre is not None:
         best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
+    support = {}                                           # the points' support function, per direction count
     while half > stop:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
-        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
+        if n_dir not in support:
+            support[n_dir] = point_support(pts, n_dir)
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir, support[n_dir])))]
         half /= 3.0
     both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
     return both[ConvexHull(both).vertices]
