@@ -3,8 +3,9 @@
 - ``classify_habit.best_families`` compares only the family members the spectral lower bound
   cannot rule out (``outline_bound``, the correlation theorem and Parseval's relation); its
   reference compares every member at every shift.
-- ``engine.complete_by_symmetry`` takes the points' support function once per direction count
-  (``engine.point_support``) instead of in every grid's ``symmetric_hull_areas`` call.
+- ``engine.symmetric_hull_areas`` takes the points' support function from ``engine.point_support``,
+  which keeps its last answer per direction count (``complete_by_symmetry`` asks for many grids of
+  centres of the same points); tested against the product and maximum made at every call.
 - flatten-background's trial smoothing scales share one raw pass (``flatten_background.raw_levels``:
   normalisation percentiles and noise model); the reference makes that pass at every scale.
 
@@ -124,15 +125,22 @@ def test_flatten_of_a_noisy_frame_is_unchanged_by_the_shared_raw_pass(monkeypatc
     assert np.array_equal(got[0], ref[0]) and got[1:] == ref[1:]
 
 
-def test_symmetric_hull_areas_with_the_support_handed_in_are_the_same():
+def _support_without_memo(pts, n_dir):
+    u = gr._support_tables(int(n_dir), 1)[0]
+    return (np.asarray(pts, float) @ u.T).max(axis=0)
+
+
+def test_point_support_is_the_product_and_maximum_also_when_kept():
     rng = np.random.default_rng(11)
-    for _ in range(20):
-        pts = rng.normal(size=(int(rng.integers(3, 40)), 2)) * rng.uniform(1, 50)
-        cen = rng.normal(size=(81, 2))
-        for fold in (2, 3, 6):
-            for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
-                assert np.array_equal(gr.symmetric_hull_areas(pts, cen, fold, n),
-                                      gr.symmetric_hull_areas(pts, cen, fold, n, gr.point_support(pts, n)))
+    sets = [rng.normal(size=(int(rng.integers(3, 40)), 2)) * rng.uniform(1, 50) for _ in range(10)]
+    for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
+        for pts in sets + sets[::-1] + [sets[0], sets[0][::-1], sets[0] + 1e-12]:
+            got = gr.point_support(pts, n)
+            assert np.array_equal(got, _support_without_memo(pts, n))
+            assert np.array_equal(gr.point_support(pts.copy(), n), got)
+            # the old form inside symmetric_hull_areas, with direction tables of any fold
+            for fold in (2, 3, 6):
+                assert np.array_equal(got, (pts @ gr._support_tables(n, fold)[0].T).max(axis=0))
 
 
 def test_complete_by_symmetry_is_unchanged_by_the_kept_support(monkeypatch):
@@ -147,9 +155,7 @@ def test_complete_by_symmetry_is_unchanged_by_the_kept_support(monkeypatch):
         keep = dense[:, 0] < rng.uniform(0.2, 0.6) * np.abs(dense[:, 0]).max()
         outlines.append(dense[keep])
     got = [[gr.complete_by_symmetry(c, None, fold) for fold in (2, 3, 6)] for c in outlines]
-    real = gr.symmetric_hull_areas
-    monkeypatch.setattr(gr, "symmetric_hull_areas", lambda pts, cen, fold=2, n_dir=720, support=None:
-                        real(pts, cen, fold, n_dir))
+    monkeypatch.setattr(gr, "point_support", _support_without_memo)
     ref = [[gr.complete_by_symmetry(c, None, fold) for fold in (2, 3, 6)] for c in outlines]
     for g, r in zip(got, ref):
         for a, b in zip(g, r):

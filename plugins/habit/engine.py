@@ -1574,8 +1574,7 @@ def _turns(fold: int):
     return out
 
 
-def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS,
-                         support=None) -> np.ndarray:
+def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS) -> np.ndarray:
     """Areas of the convex hulls of ``pts`` and their copies turned about each of many centres.
 
     Parameters
@@ -1588,9 +1587,6 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         The copies are turned by 360 j / ``fold`` degrees, j = 1 ... fold - 1.
     n_dir : int
         Directions of the support function (a multiple of ``fold``).
-    support : ndarray, shape (n_dir,), optional
-        :func:`point_support` of ``pts`` at ``n_dir`` directions, when the caller keeps it (a
-        search asks for many grids of centres of the same points); computed here otherwise.
 
     Returns
     -------
@@ -1620,7 +1616,7 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, _, (w_sq, w_next) = _support_tables(n, fold)
     period = n // fold
-    hk = point_support(p, n) if support is None else support           # (n,)
+    hk = point_support(p, n)                                           # (n,)
     # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
     # fewer rows may round differently: the chunks below give the floats of all centres at once)
     cu = cen @ u.T                                                     # (c, n)
@@ -1651,12 +1647,26 @@ def point_support(pts, n_dir: int) -> np.ndarray:
 
     Returns
     -------
-    ndarray, shape (n_dir,)
-        The values :func:`symmetric_hull_areas` computes when it is given no ``support`` (the same
-        product and maximum).
+    ndarray, shape (n_dir,), read-only
+        The same product and maximum for the same points; the answer for the last points asked
+        for at each ``n_dir`` is kept (:func:`complete_by_symmetry` asks for many grids of centres
+        of one set of points), keyed by the points' bytes, so a kept answer is that of equal points.
     """
-    u = _support_tables(int(n_dir), 1)[0]
-    return (np.asarray(pts, float) @ u.T).max(axis=0)
+    p = np.asarray(pts, float)
+    n = int(n_dir)
+    key = (p.shape, p.tobytes())
+    got = _SUPPORT_MEMO.get(n)
+    if got is not None and got[0] == key:
+        return got[1]
+    u = _support_tables(n, 1)[0]
+    hk = (p @ u.T).max(axis=0)
+    hk.setflags(write=False)
+    _SUPPORT_MEMO[n] = (key, hk)
+    return hk
+
+
+#: The last answer of :func:`point_support` per direction count: n_dir -> ((shape, bytes), support).
+_SUPPORT_MEMO: dict = {}
 
 
 #: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
@@ -1747,14 +1757,11 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> n
     best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
     if centre is not None:
         best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
-    support = {}                                           # the points' support function, per direction count
     while half > stop:
         cand = best + half * grid
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
-        if n_dir not in support:
-            support[n_dir] = point_support(pts, n_dir)
-        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir, support[n_dir])))]
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
         half /= 3.0
     both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
     return both[ConvexHull(both).vertices]
