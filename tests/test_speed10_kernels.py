@@ -22,8 +22,20 @@ from grainhabit.plugins.habit import engine as gr
 from grainhabit.plugins.habit import signature as sg
 from grainhabit.plugins.preprocess import flatten_background as fb
 from grainhabit.plugins.preprocess import smoothing_scale as ss
+from scipy import ndimage as ndi
+
 from builders import body_and_rotation, draw_crystal_frame
-from test_smoothing_scale import noisy_discs
+
+
+def noisy_discs(radius=14.0, contrast=40.0, noise_sd=40.0, shape=(320, 320), seed=0):
+    """Dark discs on a brighter background under white Gaussian noise (a low-dose TEM field; invented)."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+    frame = np.full(shape, 150.0)
+    centres = [(60 + 100 * i, 60 + 100 * j) for i in range(3) for j in range(3)]
+    for cy, cx in centres:
+        frame[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius ** 2] -= contrast
+    return ndi.gaussian_filter(frame, 0.7) + rng.normal(0, noise_sd, shape), centres
 
 
 def _drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
