@@ -3,9 +3,6 @@
 - ``classify_habit.best_families`` compares only the family members the spectral lower bound
   cannot rule out (``outline_bound``, the correlation theorem and Parseval's relation); its
   reference compares every member at every shift.
-- ``engine.symmetric_hull_areas`` takes the points' support function from ``engine.point_support``,
-  which keeps its last answer per direction count (``complete_by_symmetry`` asks for many grids of
-  centres of the same points); tested against the product and maximum made at every call.
 - flatten-background's trial smoothing scales share one raw pass (``flatten_background.raw_levels``:
   normalisation percentiles and noise model); the reference makes that pass at every scale.
 
@@ -135,40 +132,3 @@ def test_flatten_of_a_noisy_frame_is_unchanged_by_the_shared_raw_pass(monkeypatc
     monkeypatch.setattr(ss, "levels_at_best_scale", lambda *a, raw_levels=None, **k: real(*a, **k))
     ref = fb.flatten(frame, 1.0, smooth_px=None)
     assert np.array_equal(got[0], ref[0]) and got[1:] == ref[1:]
-
-
-def _support_without_memo(pts, n_dir):
-    u = gr._support_tables(int(n_dir), 1)[0]
-    return (np.asarray(pts, float) @ u.T).max(axis=0)
-
-
-def test_point_support_is_the_product_and_maximum_also_when_kept():
-    rng = np.random.default_rng(11)
-    sets = [rng.normal(size=(int(rng.integers(3, 40)), 2)) * rng.uniform(1, 50) for _ in range(10)]
-    for n in (gr.SUPPORT_DIRECTIONS, gr.FINE_SUPPORT_DIRECTIONS):
-        for pts in sets + sets[::-1] + [sets[0], sets[0][::-1], sets[0] + 1e-12]:
-            got = gr.point_support(pts, n)
-            assert np.array_equal(got, _support_without_memo(pts, n))
-            assert np.array_equal(gr.point_support(pts.copy(), n), got)
-            # the old form inside symmetric_hull_areas, with direction tables of any fold
-            for fold in (2, 3, 6):
-                assert np.array_equal(got, (pts @ gr._support_tables(n, fold)[0].T).max(axis=0))
-
-
-def test_complete_by_symmetry_is_unchanged_by_the_kept_support(monkeypatch):
-    rng = np.random.default_rng(12)
-    outlines = []
-    for _ in range(8):                                    # hexagons and squares cut by a straight line
-        k = int(rng.choice([4, 6]))
-        t = np.arange(k) * 2 * np.pi / k + rng.uniform(0, np.pi)
-        poly = np.column_stack([np.cos(t), np.sin(t)]) * rng.uniform(10, 60)
-        dense = np.concatenate([poly[i] + np.linspace(0, 1, 12, endpoint=False)[:, None] * (poly[(i + 1) % k] - poly[i])
-                                for i in range(k)])
-        keep = dense[:, 0] < rng.uniform(0.2, 0.6) * np.abs(dense[:, 0]).max()
-        outlines.append(dense[keep])
-    got = [[gr.complete_by_symmetry(c, None, fold) for fold in (2, 3, 6)] for c in outlines]
-    monkeypatch.setattr(gr, "point_support", _support_without_memo)
-    ref = [[gr.complete_by_symmetry(c, None, fold) for fold in (2, 3, 6)] for c in outlines]
-    for g, r in zip(got, ref):
-        for a, b in zip(g, r):
-            assert np.array_equal(a, b)

@@ -90,7 +90,7 @@ from grainhabit.plugins.habit.vocabulary import CUBE_ALPHA_MAX, CUBE_SHAPE_ALPHA
 
 __all__ = ["FIT_PARAMS", "VIEWS", "ROUNDING_LEVELS", "TILT_GAIN_RANGE", "AlphaFit", "Interior", "ModelLibrary",
            "OutlineMatch", "class_scores", "complete_by_symmetry", "complete_by_symmetry_reference",
-           "symmetric_hull_areas", "point_support", "fit_alpha", "fit_alpha_steps", "run_steps", "run_together", "fit_options", "grain_evidence", "grain_evidence_lazy",
+           "symmetric_hull_areas", "fit_alpha", "fit_alpha_steps", "run_steps", "run_together", "fit_options", "grain_evidence", "grain_evidence_lazy",
            "grain_interior", "interior_rss", "interior_rss_batch", "match_outline", "model_library",
            "outline_candidates", "outline_candidates_within", "BoundedOutline", "outline_reach", "outline_settles", "resolvable_alpha", "placed_planes", "polygon_centroid", "polyhedral_class",
            "radial_signature", "rounded_outline", "shift_distances", "smooth_residual", "subsample_interior", "view_probability",
@@ -1616,7 +1616,7 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, _, (w_sq, w_next) = _support_tables(n, fold)
     period = n // fold
-    hk = point_support(p, n)                                           # (n,)
+    hk = (p @ u.T).max(axis=0)                                         # (n,)
     # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
     # fewer rows may round differently: the chunks below give the floats of all centres at once)
     cu = cen @ u.T                                                     # (c, n)
@@ -1635,38 +1635,6 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         np.add(q, nxt, out=q)
         out[a:a + rows] = (0.5 * fold) * np.abs(np.einsum("ci,ci->c", h, q))
     return out
-
-
-def point_support(pts, n_dir: int) -> np.ndarray:
-    """Support function of points at ``n_dir`` directions (angles 2 pi i / n_dir): max over points of p . u_i.
-
-    Parameters
-    ----------
-    pts : ndarray, shape (k, 2)
-    n_dir : int
-
-    Returns
-    -------
-    ndarray, shape (n_dir,), read-only
-        The same product and maximum for the same points; the answer for the last points asked
-        for at each ``n_dir`` is kept (:func:`complete_by_symmetry` asks for many grids of centres
-        of one set of points), keyed by the points' bytes, so a kept answer is that of equal points.
-    """
-    p = np.asarray(pts, float)
-    n = int(n_dir)
-    key = (p.shape, p.tobytes())
-    got = _SUPPORT_MEMO.get(n)
-    if got is not None and got[0] == key:
-        return got[1]
-    u = _support_tables(n, 1)[0]
-    hk = (p @ u.T).max(axis=0)
-    hk.setflags(write=False)
-    _SUPPORT_MEMO[n] = (key, hk)
-    return hk
-
-
-#: The last answer of :func:`point_support` per direction count: n_dir -> ((shape, bytes), support).
-_SUPPORT_MEMO: dict = {}
 
 
 #: Support-function samples (centres x directions) :func:`symmetric_hull_areas` handles at once.
