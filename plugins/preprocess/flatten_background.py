@@ -721,61 +721,34 @@ def denoise_reach(method: str, smooth_px: float) -> int:
     return 0
 
 
-def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: float = 4000.0,
-                 denoise_method: str = "gaussian", smooth_px: float = 1.0, polarity: str = "auto",
-                 whole: np.ndarray | None = None, preview: bool = True) -> dict:
-    """Frame-wide quantities of the step, from a stream of regions of the frame.
+def raw_levels(regions, shape: tuple) -> dict:
+    """The first pass of :func:`frame_levels`: what the raw values alone give (no smoothing scale).
 
     Parameters
     ----------
     regions : callable
-        ``regions(halo)`` yields ``(core, window, raw)`` for cores that
-        partition the frame, each window its core grown by ``halo`` px
-        (clipped to the frame), ``raw`` the frame's pixels in the window;
-        cores start on even rows.
+        As for :func:`frame_levels` (read with no halo).
     shape : tuple of int
         (rows, cols) of the whole frame.
-    pixel_size_nm : float
-    background_nm, denoise_method, smooth_px, polarity
-        As for :func:`flatten`.
-    whole : ndarray, optional
-        The denoised frame, when one region is the whole frame and it has
-        been computed already (bilateral and non-local-means denoising need
-        the whole frame: their noise estimate and range are frame-wide).
-    preview : bool
-        Also return ``preview`` and ``preview_step`` (for the steps after a frame processed by
-        tiles); :func:`flatten`, which computes the whole output itself, leaves them out.
 
     Returns
     -------
     dict
-        ``lo``, ``span`` (normalisation), ``a``, ``b``, ``use_vst`` (noise
-        model), ``method``, ``smooth_px``, ``surface`` (background on the
-        block grid) and ``offset`` (its mode correction), ``sign`` (+1
-        bright grains, -1 dark), ``polarity``, ``confidence``, ``level``
-        (grain level), ``shape``, ``preview_step`` and ``preview`` (the
-        step's output at every ``preview_step``-th row and column, float32).
+        ``lo``, ``span`` (normalisation), ``a``, ``b``, ``use_vst`` (noise model), ``shape`` and
+        ``raw_sample`` (the raw values on the grid of :data:`SAMPLE_PIXELS` pixels, float64).
 
     Notes
     -----
-    Two passes over the regions: raw values on a regular grid of at most
-    :data:`SAMPLE_PIXELS` pixels (percentiles, from its subgrid of about
-    :data:`LEVEL_SAMPLES` pixels unless that sees one value only), the row
-    pairs of :func:`noise_model` and the frame's mean; then the denoised
-    frame's block sums in a fixed order (:func:`block_sums`, background fit), its values on the grid of
-    :data:`LEVEL_SAMPLES` pixels (background mode and sigma) and on the
-    sample grid (polarity and grain level). Every grid is indexed by frame
-    coordinates, so the result does not depend on how the frame was cut into
-    regions.
+    Raw values on a regular grid of at most :data:`SAMPLE_PIXELS` pixels (percentiles, from its
+    subgrid of about :data:`LEVEL_SAMPLES` pixels unless that sees one value only), the row pairs of
+    :func:`noise_model` and the frame's mean. None of it depends on the denoising, so the trial
+    scales of :func:`~grainhabit.plugins.preprocess.smoothing_scale.levels_at_best_scale` share one
+    pass (the same numbers as a pass per scale).
     """
-    px = _check_positive("pixel_size_nm", pixel_size_nm)
     rows_f, cols_f = int(shape[0]), int(shape[1])
     if min(rows_f, cols_f) < 8:
         raise ValueError(f"image must be at least 8 x 8 pixels, got shape {tuple(shape)}")
-    if background_nm < 0 or not np.isfinite(background_nm):
-        raise ValueError(f"background_nm must be >= 0, got {background_nm!r}")
     k_s = sample_step(shape, SAMPLE_PIXELS)
-    k_l = sample_step(shape, LEVEL_SAMPLES)
     cstep = pair_column_step(shape)
     n_pairs = rows_f // 2
     raw_s = np.zeros(_grid_shape(shape, k_s))
@@ -809,12 +782,75 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     span = float(hi - lo)
     if span <= 0:
         lo, span = float(lo), 0.0
-    lv = {"lo": float(lo), "span": span, "method": denoise_method, "smooth_px": float(smooth_px),
-          "shape": (rows_f, cols_f)}
+    lv = {"lo": float(lo), "span": span, "shape": (rows_f, cols_f), "raw_sample": raw_s}
     norm = (lambda v: (v - lo) / span) if span > 0 else (lambda v: np.zeros_like(v))
     a, b = noise_model_from_pairs(norm(top), norm(bottom)) if n_pairs else (0.0, 0.0)
     mean = float(norm(np.float64(total / (rows_f * cols_f))))
     lv.update(a=a, b=b, use_vst=bool(a > 1e-9 and a > 1e-3 * b / max(mean, 1e-6)))
+    return lv
+
+
+def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: float = 4000.0,
+                 denoise_method: str = "gaussian", smooth_px: float = 1.0, polarity: str = "auto",
+                 whole: np.ndarray | None = None, preview: bool = True, raw_pass: dict | None = None) -> dict:
+    """Frame-wide quantities of the step, from a stream of regions of the frame.
+
+    Parameters
+    ----------
+    regions : callable
+        ``regions(halo)`` yields ``(core, window, raw)`` for cores that
+        partition the frame, each window its core grown by ``halo`` px
+        (clipped to the frame), ``raw`` the frame's pixels in the window;
+        cores start on even rows.
+    shape : tuple of int
+        (rows, cols) of the whole frame.
+    pixel_size_nm : float
+    background_nm, denoise_method, smooth_px, polarity
+        As for :func:`flatten`.
+    whole : ndarray, optional
+        The denoised frame, when one region is the whole frame and it has
+        been computed already (bilateral and non-local-means denoising need
+        the whole frame: their noise estimate and range are frame-wide).
+    preview : bool
+        Also return ``preview`` and ``preview_step`` (for the steps after a frame processed by
+        tiles); :func:`flatten`, which computes the whole output itself, leaves them out.
+    raw_pass : dict, optional
+        :func:`raw_levels` of the same regions, when the caller has it (it does not depend on the
+        smoothing: :func:`~grainhabit.plugins.preprocess.smoothing_scale.levels_at_best_scale`
+        computes it once for all trial scales); computed here otherwise.
+
+    Returns
+    -------
+    dict
+        ``lo``, ``span`` (normalisation), ``a``, ``b``, ``use_vst`` (noise
+        model), ``method``, ``smooth_px``, ``surface`` (background on the
+        block grid) and ``offset`` (its mode correction), ``sign`` (+1
+        bright grains, -1 dark), ``polarity``, ``confidence``, ``level``
+        (grain level), ``shape``, ``preview_step`` and ``preview`` (the
+        step's output at every ``preview_step``-th row and column, float32).
+
+    Notes
+    -----
+    Two passes over the regions: raw values on a regular grid of at most
+    :data:`SAMPLE_PIXELS` pixels (percentiles, from its subgrid of about
+    :data:`LEVEL_SAMPLES` pixels unless that sees one value only), the row
+    pairs of :func:`noise_model` and the frame's mean; then the denoised
+    frame's block sums in a fixed order (:func:`block_sums`, background fit), its values on the grid of
+    :data:`LEVEL_SAMPLES` pixels (background mode and sigma) and on the
+    sample grid (polarity and grain level). Every grid is indexed by frame
+    coordinates, so the result does not depend on how the frame was cut into
+    regions.
+    """
+    px = _check_positive("pixel_size_nm", pixel_size_nm)
+    if background_nm < 0 or not np.isfinite(background_nm):
+        raise ValueError(f"background_nm must be >= 0, got {background_nm!r}")
+    first = raw_levels(regions, shape) if raw_pass is None else raw_pass
+    rows_f, cols_f = first["shape"]
+    k_s = sample_step(shape, SAMPLE_PIXELS)
+    k_l = sample_step(shape, LEVEL_SAMPLES)
+    raw_s = first["raw_sample"]
+    lv = {"lo": first["lo"], "span": first["span"], "method": denoise_method, "smooth_px": float(smooth_px),
+          "shape": (rows_f, cols_f), "a": first["a"], "b": first["b"], "use_vst": first["use_vst"]}
 
     scale_px = background_nm / px
     f = block_factor(shape, scale_px)
@@ -1031,7 +1067,8 @@ def flatten(image: np.ndarray, pixel_size_nm: float, background_nm: float = 4000
     # flatten computes its output itself: the levels without the preview (frame_levels' preview=False)
     lv = smoothing_scale.levels_at_best_scale(functools.partial(frame_levels, preview=False, whole=whole),
                                               whole_frame_regions(arr), arr.shape, pixel_size_nm, background_nm,
-                                              denoise_method, polarity, smoothing_scale.scales_for(smooth_px))
+                                              denoise_method, polarity, smoothing_scale.scales_for(smooth_px),
+                                              raw_levels=raw_levels)
     full = (slice(0, arr.shape[0]), slice(0, arr.shape[1]))
     out = apply_levels(arr, full, lv, denoised=whole if whole is not None else lv.pop("denoised", None))
     return out, lv["polarity"], lv["confidence"]
@@ -1189,7 +1226,8 @@ def grainhabit_tile_levels(step, sample, params):
         raise ValueError(f"denoise {p['denoise']!r} needs the whole frame (its noise estimate and range are "
                          "frame-wide); a frame processed by tiles takes 'gaussian' or 'none'")
     lv = smoothing_scale.levels_at_best_scale(frame_levels, sample.regions, sample.shape, px, p["background_nm"],
-                                              p["denoise"], p["polarity"], smoothing_scale.scales_for(smooth_px))
+                                              p["denoise"], p["polarity"], smoothing_scale.scales_for(smooth_px),
+                                              raw_levels=raw_levels)
     lv.pop("denoised", None)
     return lv
 

@@ -92,7 +92,7 @@ def pick_scale(snr_by_scale: dict[float, float], enough: float = ENOUGH_SNR,
 
 def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tuple, pixel_size_nm: float,
                          background_nm: float, denoise_method: str, polarity: str,
-                         scales=TRIAL_SCALES_PX) -> dict:
+                         scales=TRIAL_SCALES_PX, raw_levels: Callable[..., dict] | None = None) -> dict:
     """The step's frame levels at the denoising scale :func:`pick_scale` chooses.
 
     Parameters
@@ -104,6 +104,10 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
         As for ``frame_levels``.
     scales : sequence of float
         Trial Gaussian sigmas (px), smallest first.
+    raw_levels : callable, optional
+        :func:`grainhabit.plugins.preprocess.flatten_background.raw_levels`: ``frame_levels``' first
+        pass (normalisation and noise model from the raw values), which no scale changes; taken once
+        and handed to every ``frame_levels`` call (``raw_pass``). None: each call makes its own.
 
     Returns
     -------
@@ -118,7 +122,8 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     ratio below ``ENOUGH_SNR``, one at a time, stopping at the first
     plausible one that reaches it.
     """
-    lv = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, scales[0], polarity)
+    once = {} if raw_levels is None else {"raw_pass": raw_levels(regions, shape)}
+    lv = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, scales[0], polarity, **once)
     scores = {scales[0]: lv["grain_snr"]}
     tried = {scales[0]: lv}
     if denoise_method == "gaussian" and lv["grain_snr"] < ENOUGH_SNR:
@@ -127,7 +132,8 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
                 # one denoised frame held at a time (a whole frame of float32 each); the step denoises again
                 # for the output when the chosen levels have none
                 earlier.pop("denoised", None)
-            tried[s] = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, s, polarity)
+            tried[s] = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, s, polarity,
+                                    **once)
             scores[s] = tried[s]["grain_snr"]
             if pick_scale(scores) == s and scores[s] >= ENOUGH_SNR:
                 break
