@@ -558,3 +558,28 @@ def classified_on_truth(grains, shape, contrast, px=5.0, seed=3):
         label=np.arange(1, n + 1), split=np.array([k in touch for k in range(1, n + 1)]), edge_cut=edge_cut(lab))
     f = measure.grainhabit_measure(f, measure.STEP.resolve({}))
     return cl.classify_frame(f, cl.STEP.resolve({}))
+
+
+def noisy_discs(radius=14.0, contrast=40.0, noise_sd=40.0, shape=(320, 320), seed=0):
+    """Nine dark discs on a brighter background under white Gaussian noise (a low-dose TEM field; invented).
+
+    Returns the frame (grey levels about 150, discs ``contrast`` darker, blurred by 0.7 px) and the centres.
+    """
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+    frame = np.full(shape, 150.0)
+    centres = [(60 + 100 * i, 60 + 100 * j) for i in range(3) for j in range(3)]
+    for cy, cx in centres:
+        frame[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius ** 2] -= contrast
+    return ndi.gaussian_filter(frame, 0.7) + rng.normal(0, noise_sd, shape), centres
+
+
+def drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
+    """The habit engine's contour of one rendered crystal (Wulff body of ``alpha`` seen along ``face``)."""
+    from grainhabit.plugins.habit import classify_habit as cl
+    from grainhabit.plugins.habit import engine as gr
+
+    body, rot = body_and_rotation(alpha, face, rot_deg)
+    frame = draw_crystal_frame(body, rot, ecd_px=ecd_px, noise=0.02, seed=1)
+    contour, _ = gr.grain_evidence(frame.labels, *cl.interior_signal(frame), cl.frame_contours(frame)[0], 1)
+    return contour

@@ -14,7 +14,7 @@ import pytest
 from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import engine as gr
 from grainhabit.plugins.habit import signature as sg
-from builders import body_and_rotation, draw_crystal_frame, habit_chain_frame
+from builders import body_and_rotation, draw_crystal_frame, drawn_outline, habit_chain_frame
 
 
 # --------------------------------------------------------------- references
@@ -138,12 +138,6 @@ def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720):
     return 0.5 * np.abs(np.einsum("ci,ci->c", h, w_sq * h + w_next * np.concatenate((h[:, 1:], h[:, :1]), axis=1)))
 
 
-def _drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
-    body, rot = body_and_rotation(alpha, face, rot_deg)
-    frame = draw_crystal_frame(body, rot, ecd_px=ecd_px, noise=0.02, seed=1)
-    contour, _ = gr.grain_evidence(frame.labels, *cl.interior_signal(frame), cl.frame_contours(frame)[0], 1)
-    return contour
-
 
 # -------------------------------------------------------------------- tests
 
@@ -161,7 +155,7 @@ def test_ray_direction_table_equals_cos_and_sin_of_any_subset():
 
 def test_radial_signature_bitwise_equals_the_previous_kernel():
     rng = np.random.default_rng(1)
-    polys = [_drawn_outline(a, f, r) for a, f, r in [(1.0, "100", 4.0), (2.2, "111", 29.0), (2.0, "110", 11.0)]]
+    polys = [drawn_outline(a, f, r) for a, f, r in [(1.0, "100", 4.0), (2.2, "111", 29.0), (2.0, "110", 11.0)]]
     for _ in range(30):                                   # random star-shaped and convex polygons
         k = int(rng.integers(3, 60))
         t = np.sort(rng.uniform(0, 2 * np.pi, k))
@@ -189,7 +183,7 @@ def test_outline_candidates_and_families_bitwise_equal_the_previous_kernels():
     # every shift, distance and flag, also of unused slots; drawn grains and noisy library signatures
     lib = gr.model_library()
     rng = np.random.default_rng(2)
-    sigs = [gr.radial_signature(_drawn_outline(a, f, r), 256)
+    sigs = [gr.radial_signature(drawn_outline(a, f, r), 256)
             for a, f, r in [(1.3, "100", 8.0), (2.5, "111", 44.0), (3.4, "111", 2.0), (1.8, "110", 70.0)]]
     for j in rng.integers(0, lib.signatures.shape[1], 10):
         sigs.append(lib.signatures[int(rng.integers(0, 7)), j] * (1 + 0.02 * rng.standard_normal(256)))

@@ -187,3 +187,43 @@ def test_faceted_grains_with_clipped_facets_are_not_drawn_marks():
     image, _, _ = flatten_background.flatten(raw, 5.0)
     labels, _, notes = segment_grains.segment_image(image, 5.0, {}, raw)
     assert labels.max() == 6, notes
+
+
+def test_bars_and_ink_rectangles_are_drawn_clipped_rods_and_cubes_are_not():
+    # handbook geometry of the shapes: a spherocylinder of length L and width d fills 1 - (1 - pi/4) d / L
+    # of its box (0.93 at L = 3d), a rectangle all of it
+    rng = np.random.default_rng(7)
+    shape = (120, 200)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+
+    def judged(part, raw):
+        low, high = annotations.ink_levels(raw)
+        return annotations.is_drawn(part, raw, low, high)
+
+    backdrop = np.clip(rng.normal(120.0, 6.0, shape), 0, 255)
+    # a thin black scale bar, 7 x 120 px, with a caption in white across its middle: 70 % of it ink
+    bar = (yy >= 50) & (yy < 57) & (xx >= 40) & (xx < 160)
+    raw = backdrop.copy()
+    raw[bar] = 0.0
+    raw[52:55, 65:135] = 255.0
+    assert judged(bar, raw)
+    # a white label box of 22 x 85 px (longer than wide by 3.9, under the bar test's 5)
+    box = (yy >= 40) & (yy < 62) & (xx >= 50) & (xx < 135)
+    raw = backdrop.copy()
+    raw[box] = 255.0
+    assert judged(box, raw)
+    # a rod clipped to white over its whole width, 30 x 90 px with round ends: an imaged grain
+    d, length = 30.0, 90.0
+    cy, x0, x1 = 60.0, 55.0 + d / 2, 55.0 + length - d / 2
+    along = np.clip(xx, x0, x1)
+    rod = (yy - cy) ** 2 + (xx - along) ** 2 <= (d / 2) ** 2
+    raw = backdrop.copy()
+    raw[rod] = 255.0
+    fill = rod.sum() / (np.ptp(np.nonzero(rod)[0]) + 1) / (np.ptp(np.nonzero(rod)[1]) + 1)
+    assert abs(fill - (1 - (1 - np.pi / 4) * d / length)) < 0.02
+    assert not judged(rod, raw)
+    # a cube face clipped to black, square: a grain
+    cube = (yy >= 35) & (yy < 85) & (xx >= 70) & (xx < 120)
+    raw = backdrop.copy()
+    raw[cube] = 0.0
+    assert not judged(cube, raw)

@@ -7,18 +7,10 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.preprocess import flatten_background as fb
 from grainhabit.plugins.preprocess.smoothing_scale import ENOUGH_SNR, pick_scale
 from grainhabit.plugins.segment.levels import frame_levels as segment_levels
+
+from builders import noisy_discs
 from grainhabit.plugins.segment.segment_grains import segment_image
 
-
-def noisy_discs(radius=14.0, contrast=40.0, noise_sd=40.0, shape=(320, 320), seed=0):
-    """Dark discs on a brighter background under white Gaussian noise as strong as their contrast (low-dose TEM)."""
-    rng = np.random.default_rng(seed)
-    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
-    frame = np.full(shape, 150.0)
-    centres = [(60 + 100 * i, 60 + 100 * j) for i in range(3) for j in range(3)]
-    for cy, cx in centres:
-        frame[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius ** 2] -= contrast
-    return ndi.gaussian_filter(frame, 0.7) + rng.normal(0, noise_sd, shape), centres
 
 
 def test_pick_scale_takes_the_smallest_scale_that_is_good_enough():

@@ -19,32 +19,15 @@ from grainhabit.plugins.habit import engine as gr
 from grainhabit.plugins.habit import signature as sg
 from grainhabit.plugins.preprocess import flatten_background as fb
 from grainhabit.plugins.preprocess import smoothing_scale as ss
-from scipy import ndimage as ndi
 
-from builders import body_and_rotation, draw_crystal_frame
-
-
-def noisy_discs(radius=14.0, contrast=40.0, noise_sd=40.0, shape=(320, 320), seed=0):
-    """Dark discs on a brighter background under white Gaussian noise (a low-dose TEM field; invented)."""
-    rng = np.random.default_rng(seed)
-    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
-    frame = np.full(shape, 150.0)
-    centres = [(60 + 100 * i, 60 + 100 * j) for i in range(3) for j in range(3)]
-    for cy, cx in centres:
-        frame[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius ** 2] -= contrast
-    return ndi.gaussian_filter(frame, 0.7) + rng.normal(0, noise_sd, shape), centres
+from builders import drawn_outline, noisy_discs
 
 
-def _drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
-    body, rot = body_and_rotation(alpha, face, rot_deg)
-    frame = draw_crystal_frame(body, rot, ecd_px=ecd_px, noise=0.02, seed=1)
-    contour, _ = gr.grain_evidence(frame.labels, *cl.interior_signal(frame), cl.frame_contours(frame)[0], 1)
-    return contour
 
 
 def _signatures():
     rng = np.random.default_rng(10)
-    sigs = [sg.radial_signature(_drawn_outline(a, f, r), 256)
+    sigs = [sg.radial_signature(drawn_outline(a, f, r), 256)
             for a, f, r in [(1.2, "100", 8.0), (2.6, "111", 40.0), (3.5, "111", 3.0), (1.8, "110", 70.0)]]
     # plates and rods themselves (exact members and in between), squashed and noisy
     for e in (0.0, 0.37, 0.5, 1.0):
