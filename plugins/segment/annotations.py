@@ -17,9 +17,12 @@ filled convex body: either the ink covers less than :data:`SOLID_INK` of the
 inner pixels and at least :data:`HOLE_FRACTION` of them are far from the ink
 (the background seen through the hole of a "0", "8", "a"), or the object
 is not convex (solidity under :data:`GLYPH_SOLIDITY`: most letters and
-digits; objects of :data:`GLYPH_MIN_AREA_PX` or more), or it is a bar: it fills
-its axis-aligned bounding box (over :data:`BOX_FILL`) and is at least
-:data:`BAR_ASPECT` times longer than wide. Objects in ink within half a mark's
+digits; objects of :data:`GLYPH_MIN_AREA_PX` or more). A bar is a drawn mark
+whatever share of it is ink (over :data:`MIN_INK`): it fills its axis-aligned
+bounding box (over :data:`BOX_FILL`) and is at least :data:`BAR_ASPECT` times
+longer than wide; so is a rectangle mostly in ink (:data:`SOLID_INK`) filling
+its box to the pixel (:data:`RECT_FILL`) and :data:`RECT_ASPECT` times longer
+than wide (a thick bar, a label's box). Objects in ink within half a mark's
 length of a mark (a glyph cut in two, the small digits under a scale bar) go
 with it. A scale bar pasted in a grey that is no end of the scale is told by
 its flat colour instead: it fills its axis-aligned box like a bar and varies
@@ -54,6 +57,10 @@ GLYPH_SOLIDITY = 0.9
 #: than wide, are bars (a clipped rod is seldom that long and that well aligned with the frame).
 BOX_FILL = 0.95
 BAR_ASPECT = 5.0
+#: An object mostly in ink that fills more than this of its box and is at least RECT_ASPECT times longer
+#: than wide is a drawn rectangle (a thick bar, a label's box): a spherocylinder of aspect 2.5 fills 0.91.
+RECT_FILL = 0.97
+RECT_ASPECT = 2.5
 #: Bars told by their flat colour (:func:`is_flat_bar`) are at most this wide (px).
 BAR_MAX_WIDTH_PX = 24
 #: A drawn bar varies along its length by at most this fraction of the background noise.
@@ -125,6 +132,18 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
     if part.sum() < GLYPH_MIN_AREA_PX:
         # too small to tell a glyph's shape from a digitised grain's (rows of small text: text_rows)
         return False
+    rows, cols = np.nonzero(part)
+    h, w = rows.max() - rows.min() + 1, cols.max() - cols.min() + 1
+    area = float(part.sum())
+    long_side = max(h, w) / min(h, w)
+    if area >= BOX_FILL * h * w and long_side >= BAR_ASPECT:
+        # a bar whatever share of it is ink: a thin bar's resampled edges and a caption printed on it in the
+        # other ink leave under SOLID_INK of its pixels at the ink level
+        return True
+    if ink >= SOLID_INK and area >= RECT_FILL * h * w and long_side >= RECT_ASPECT:
+        # a rectangle of ink to the pixel: a thick scale bar or a label's box (a clipped rod's round ends
+        # leave a tenth of its box or so empty)
+        return True
     if ink < SOLID_INK:
         # a hollow glyph shows the background through its hole; a grain partly clipped is dark (or
         # bright) all over
@@ -136,11 +155,6 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
         if background is not None:
             hole &= np.abs(vals - background) <= HOLE_CONTRAST * span
         return float(np.mean(hole)) >= HOLE_FRACTION
-    rows, cols = np.nonzero(part)
-    h, w = rows.max() - rows.min() + 1, cols.max() - cols.min() + 1
-    area = float(part.sum())
-    if area >= BOX_FILL * h * w and max(h, w) >= BAR_ASPECT * min(h, w):
-        return True
     return area < GLYPH_SOLIDITY * float(convex_hull_image(part).sum())
 
 
