@@ -706,6 +706,19 @@ def few_above_noise(arr: np.ndarray, levels: dict, p: dict, error: str, notes: l
     caller raises it too where the usual path then finds fewer than
     :data:`FEW_GRAINS_MIN` grains.
 
+    Parameters
+    ----------
+    arr : ndarray
+        Preprocessed frame (grains bright).
+    levels : dict
+        :func:`frame_levels` of ``arr`` (``noise``: the noise threshold, image units).
+    p : dict
+        Resolved step parameters (``noise_k`` for the note).
+    error : str
+        The message of :func:`check_frame`'s error.
+    notes : list of str
+        The frame's notes; the ``qc no-background`` note is appended.
+
     Returns
     -------
     str
