@@ -128,12 +128,13 @@ def grains_for_decision(n: int, value: float, ci_lo: float, ci_hi: float, lower:
         if ratio <= 1:
             continue
         if frames >= 2:
-            from scipy.stats import t as student
+            # Student's t quantiles without loading scipy.stats in the main process (intervals.t_quantile)
+            from grainhabit.plugins.survey.intervals import t_quantile
 
             q = 0.5 + confidence / 2
-            target = student.ppf(q, frames - 1) / math.sqrt(frames) / ratio
+            target = t_quantile(q, frames - 1) / math.sqrt(frames) / ratio
             f = frames
-            while student.ppf(q, f - 1) / math.sqrt(f) > target and f < 10**6:
+            while t_quantile(q, f - 1) / math.sqrt(f) > target and f < 10**6:
                 f = f + 1 if f < 64 else int(f * 1.05) + 1
             need = max(need, n * f / frames)
         else:
