@@ -143,7 +143,7 @@ from grainhabit.params import Column, Param, StepInfo
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache
 from grainhabit.plugins.habit import engine as en
-from grainhabit.plugins.habit import outline_batch, outline_bound
+from grainhabit.plugins.habit import outline_batch
 from grainhabit.plugins.habit.vocabulary import POLYHEDRAL_HABITS, TABULAR_HABITS
 
 GRAINHABIT_API = 1
@@ -279,21 +279,6 @@ def _families_stacked(n_angles: int, level: int = 0):
     return spec, sq, (0, len(plate[2]), len(sq))
 
 
-@functools.lru_cache(maxsize=16)
-def _families_bound(n_angles: int, level: int = 0):
-    """:attr:`outline_bound.SpectralBound.weighted_mag` of the stacked families, their largest squared norm,
-    the family of every member and the first member of every family."""
-    spec, sq, cut = _families_stacked(n_angles, level)
-    k = spec.shape[-1]
-    w = np.full(k, 2.0)
-    w[0] = 1.0
-    if n_angles % 2 == 0:
-        w[-1] = 1.0
-    starts = np.asarray(cut[:-1], np.intp)
-    member_of = np.repeat(np.arange(starts.size), np.diff(cut))
-    return np.ascontiguousarray(np.abs(spec) * (w * (2.0 / n_angles))), float(sq.max()), member_of, starts
-
-
 def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
     """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
 
@@ -310,66 +295,19 @@ def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[
     is the index refined between grid members, the vertex of the parabola through the
     squared distances of the best member and its two neighbours (the index itself at
     either end of the family or where the three do not curve upwards).
-
-    Notes
-    -----
-    Only the members that can matter are compared at every shift: the spectral lower bound of
-    every member's distance (:func:`outline_bound.lower_bounds`, no inverse FFT) picks, per
-    family, the member of least bound, then every member whose bound is not above the best
-    distance found (with a relative 1e-12 to spare, so that no member left out could round to
-    the same distance), then the two neighbours of the best. Each compared member's row is
-    the bits of :func:`best_families_reference` (the inverse FFT transforms each row on its
-    own and the rest is element-wise), so the answer is the same; a signature that is not
-    finite goes to the reference.
     """
     a = np.asarray(sig, float)
     spec, sq, cut = _families_stacked(a.size, int(level))
     n = a.size
-    wmag, sq_max, member_of, starts = _families_bound(n, int(level))
-    fa = np.fft.rfft(a)
-    aa = a @ a
-    lb = (aa + sq - wmag @ np.abs(fa)) / n - outline_bound.BOUND_MARGIN * (aa + sq_max) / n
-    if not np.isfinite(lb).all():
-        return best_families_reference(sig, level)
-    d2 = np.full(sq.size, np.inf)
-    # the FIRST_MEMBERS members of least bound of each family, then those the bound cannot rule out
-    rows = np.concatenate([lo + np.argsort(lb[lo:hi], kind="stable")[:FIRST_MEMBERS]
-                           for lo, hi in zip(cut[:-1], cut[1:])])
-    d2[rows] = _family_distances(a, aa, fa, spec[rows], sq[rows], n)
-    for _ in range(2):
-        top = np.minimum.reduceat(d2, starts)
-        if not np.isfinite(top).all():
-            return best_families_reference(sig, level)
-        want = (lb <= (top * (1.0 + 1e-12))[member_of]) & np.isinf(d2)
-        for lo, hi in zip(cut[:-1], cut[1:]):
-            # the best member's neighbours (the parabola through three squared distances)
-            i = lo + int(np.argmin(d2[lo:hi]))
-            want[max(i - 1, lo):min(i + 2, hi)] |= np.isinf(d2[max(i - 1, lo):min(i + 2, hi)])
-        rows = np.flatnonzero(want)
-        if rows.size == 0:
-            break
-        d2[rows] = _family_distances(a, aa, fa, spec[rows], sq[rows], n)
-    return _family_answers(d2, cut)
-
-
-#: Members of each family compared first by :func:`best_families` (those of least lower bound).
-FIRST_MEMBERS = 3
-
-
-def _family_distances(a, aa, fa, spec, sq, n: int) -> np.ndarray:
-    """Least squared distance over the cyclic shifts of ``a`` to each family member (rows of ``spec``, ``sq``)."""
-    cc = np.fft.irfft(fa[None, :] * spec, n, axis=1)
+    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, n, axis=1)
     if n & (n - 1) == 0:
         # (|a|^2 + |b|^2 - 2 C) / n in two passes in place: scaling by a power of two is exact
         # and commutes with rounding, so these are the same floats (engine.outline_candidates)
         np.multiply(cc, -2.0 / n, out=cc)
-        np.add(cc, ((aa + sq) / n)[:, None], out=cc)
-        return np.maximum(cc.min(axis=1), 0.0)
-    return np.maximum(((aa + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
-
-
-def _family_answers(d2, cut) -> tuple:
-    """(distance, index, position) of each family from its members' squared distances (inf: not compared)."""
+        np.add(cc, ((a @ a + sq) / n)[:, None], out=cc)
+        d2 = np.maximum(cc.min(axis=1), 0.0)
+    else:
+        d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
     d = np.sqrt(d2)
     out = []
     for lo, hi in zip(cut[:-1], cut[1:]):
@@ -382,13 +320,6 @@ def _family_answers(d2, cut) -> tuple:
                 pos = i + float(np.clip(0.5 * (y0 - y2) / curve, -0.5, 0.5))
         out.append((float(d[lo + i]), i, pos))
     return tuple(out)
-
-
-def best_families_reference(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
-    """:func:`best_families` with every member compared at every shift (the reference it is tested against)."""
-    a = np.asarray(sig, float)
-    spec, sq, cut = _families_stacked(a.size, int(level))
-    return _family_answers(_family_distances(a, a @ a, np.fft.rfft(a), spec, sq, a.size), cut)
 
 
 def hull_shape(contour) -> tuple[float, float, float]:
@@ -998,4 +929,3 @@ def grainhabit_prepare_worker(steps):
     lib = en.fit_options(STEP.resolve(steps[STEP.name]))["library"]
     for level in range(len(en.ROUNDING_LEVELS)):
         _families_stacked(lib.signatures.shape[-1], level)
-        _families_bound(lib.signatures.shape[-1], level)
