@@ -583,3 +583,39 @@ def drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
     frame = draw_crystal_frame(body, rot, ecd_px=ecd_px, noise=0.02, seed=1)
     contour, _ = gr.grain_evidence(frame.labels, *cl.interior_signal(frame), cl.frame_contours(frame)[0], 1)
     return contour
+
+
+def faint_objects_reference(low, high, min_area=0.0):
+    """``foreground.faint_objects`` as it was: scipy's labelling, bincounts and find_objects over the frame."""
+    from grainhabit.plugins.segment import foreground
+
+    out = np.zeros(low.shape, bool)
+    lab, n = ndi.label(low, structure=np.ones((3, 3), bool))
+    if n == 0:
+        return out
+    areas = np.bincount(lab.ravel(), minlength=n + 1)
+    shown_px = np.bincount(lab[high], minlength=n + 1)
+    cand = ((areas >= max(foreground.FAINT_AREA_SHARE * min_area, 1.0))
+            & (shown_px < foreground.FAINT_SHOWN_SHARE * areas))
+    cand[0] = False
+    if not cand.any():
+        return out
+    reach = int(np.ceil(foreground.FAINT_CLEARANCE_PX))
+    rows, cols = low.shape
+    boxes = ndi.find_objects(lab)
+    for k in np.flatnonzero(cand):
+        box = boxes[k - 1]
+        r0, r1 = max(box[0].start - reach, 0), min(box[0].stop + reach, rows)
+        c0, c1 = max(box[1].start - reach, 0), min(box[1].stop + reach, cols)
+        own = lab[r0:r1, c0:c1] == k
+        hi = high[r0:r1, c0:c1]
+        if hi.any():
+            parts, m = ndi.label(hi, structure=np.ones((3, 3), bool))
+            big = np.bincount(parts.ravel(), minlength=m + 1) >= max(min_area, 1.0)
+            for side in (parts[0], parts[-1], parts[:, 0], parts[:, -1]):
+                big[side] = True
+            big[0] = False
+            if (big[parts] & foreground.dilate_disk(own, foreground.FAINT_CLEARANCE_PX)).any():
+                continue
+        out[r0:r1, c0:c1] |= own
+    return out

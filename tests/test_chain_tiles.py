@@ -33,6 +33,15 @@ def _ref(path):
     return host.first_answer("grainhabit_list_frames", path=str(path), options={"pixel_size_nm": PX})[0]
 
 
+def _whole_and_tiled(path):
+    """The chain on a frame in one piece and by tiles (a budget that holds a tile of 256 px + halo, not the frame)."""
+    ref = _ref(path)
+    opts = {"pixel_size_nm": PX}
+    whole = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts))
+    tiled = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts, frame_memory=13_000_000))
+    return whole, tiled
+
+
 @pytest.fixture(scope="module")
 def field_path(tmp_path_factory):
     """A rendered 1024 px field of invented grains (the benchmarks' density), as a uint16 TIFF."""
@@ -92,11 +101,7 @@ def test_region_reads_equal_the_whole_read(tmp_path):
 
 
 def test_chain_by_tiles_equals_the_whole_frame(field_path):
-    ref = _ref(field_path)
-    opts = {"pixel_size_nm": PX}
-    whole = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts))
-    # a budget that holds a tile of 256 px + halo, not the frame: 16 tiles
-    tiled = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts, frame_memory=13_000_000))
+    whole, tiled = _whole_and_tiled(field_path)  # 16 tiles
     a, b = whole["record"], tiled["record"]
     assert a["status"] == b["status"] == "ok", (a["error"], b["error"])
     assert "processed in 16 tiles of 256 px" in b["notes"]
@@ -125,10 +130,7 @@ def test_cluster_cut_by_a_tile_edge_is_processed_again(tmp_path):
     row = tuple((128, 215 + 30 * i, 22, 4, 0.0) for i in range(5))
     img, _ = draw_faceted_frame((512, 512), grains=row + ((400, 100, 18, 4, 20.0),), seed=3)
     path = write_tiff(tmp_path / "pair.tif", (np.clip(img, 0, 1) * 60000).astype(np.uint16), PX)
-    ref = _ref(path)
-    opts = {"pixel_size_nm": PX}
-    whole = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts))
-    tiled = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts, frame_memory=13_000_000))
+    whole, tiled = _whole_and_tiled(path)
     assert tiled["record"]["status"] == "ok", tiled["record"]["error"]
     assert "1 cluster(s) cut by tile edges processed again" in tiled["record"]["notes"]
     assert tiled["record"]["grain_count"] == whole["record"]["grain_count"] >= 2
@@ -252,10 +254,7 @@ def test_a_noisy_frame_gets_the_same_smoothing_scale_and_grains_by_tiles(tmp_pat
     levels = levels_at_best_scale(fb.frame_levels, fb.whole_frame_regions(img.astype(np.float32)), img.shape, PX,
                                   4000.0, "gaussian", "auto")
     assert levels["smooth_scores"][1.0] < 10 and levels["smooth_px"] > 1.0
-    ref = _ref(path)
-    opts = {"pixel_size_nm": PX}
-    whole = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts))
-    tiled = process_frame(ref, "s", FrameJob(steps=_steps(), input_options=opts, frame_memory=13_000_000))
+    whole, tiled = _whole_and_tiled(path)
     a, b = whole["record"], tiled["record"]
     assert a["status"] == b["status"] == "ok", (a["error"], b["error"])
     assert "tiles of 256 px" in b["notes"]

@@ -13,6 +13,8 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.segment import foreground
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask
 
+from builders import faint_objects_reference
+
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -59,40 +61,6 @@ def test_diffuse_parts_equals_the_frame_wide_loop(seed):
     np.testing.assert_array_equal(foreground.diffuse_parts(empty, outer), empty)
 
 
-def _faint_objects_reference(low, high, min_area=0.0):
-    # the earlier form: the areas from numpy's bincount of the whole label image
-    out = np.zeros(low.shape, bool)
-    lab, n = ndi.label(low, structure=_EIGHT)
-    if n == 0:
-        return out
-    areas = np.bincount(lab.ravel(), minlength=n + 1)
-    shown_px = np.bincount(lab[high], minlength=n + 1)
-    cand = ((areas >= max(foreground.FAINT_AREA_SHARE * min_area, 1.0))
-            & (shown_px < foreground.FAINT_SHOWN_SHARE * areas))
-    cand[0] = False
-    if not cand.any():
-        return out
-    reach = int(np.ceil(foreground.FAINT_CLEARANCE_PX))
-    rows, cols = low.shape
-    boxes = ndi.find_objects(lab)
-    for k in np.flatnonzero(cand):
-        box = boxes[k - 1]
-        r0, r1 = max(box[0].start - reach, 0), min(box[0].stop + reach, rows)
-        c0, c1 = max(box[1].start - reach, 0), min(box[1].stop + reach, cols)
-        own = lab[r0:r1, c0:c1] == k
-        hi = high[r0:r1, c0:c1]
-        if hi.any():
-            parts, m = ndi.label(hi, structure=_EIGHT)
-            big = np.bincount(parts.ravel(), minlength=m + 1) >= max(min_area, 1.0)
-            for side in (parts[0], parts[-1], parts[:, 0], parts[:, -1]):
-                big[side] = True
-            big[0] = False
-            if (big[parts] & foreground.dilate_disk(own, foreground.FAINT_CLEARANCE_PX)).any():
-                continue
-        out[r0:r1, c0:c1] |= own
-    return out
-
-
 @pytest.mark.parametrize("seed", range(20))
 def test_faint_objects_equal_the_whole_frame_counts(seed):
     # reference: the earlier form above (areas counted over the whole label image)
@@ -103,7 +71,7 @@ def test_faint_objects_equal_the_whole_frame_counts(seed):
         low, high = image > lo_t, image > hi_t
         for area in (0.0, 20.0, 200.0):
             np.testing.assert_array_equal(foreground.faint_objects(low, high, area),
-                                          _faint_objects_reference(low, high, area))
+                                          faint_objects_reference(low, high, area))
 
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])

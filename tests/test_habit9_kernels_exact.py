@@ -21,43 +21,14 @@ from grainhabit.plugins.readers import overlays
 
 
 def _find_info_strip_reference(image):
-    """``overlays.find_info_strip`` as it stood before: the flatness of every candidate row up front."""
+    """``overlays.find_info_strip`` as it stood before: the flatness of every candidate row worked out up front."""
     if image.ndim != 2 or image.dtype.kind not in "ui" or image.shape[0] < 50 or image.shape[1] < 50:
         return 0
     n_rows = image.shape[0]
     lowest = max(0, n_rows - int(overlays.MAX_STRIP_FRACTION * n_rows) - 6)
     flat = {r: f >= overlays.FLAT_ROW_FRACTION
             for r, f in overlays._row_flatness(image, range(lowest, n_rows)).items()}
-    r = n_rows - 1
-    skipped = 0
-    while r >= lowest and not flat[r] and skipped < 2:
-        r, skipped = r - 1, skipped + 1
-    bottom = r
-    top = None
-    run_noisy = 0
-    while r >= lowest:
-        if flat[r]:
-            top, run_noisy = r, 0
-        else:
-            run_noisy += 1
-            if run_noisy >= 4:
-                break
-        r -= 1
-    if top is None:
-        return 0
-    height = n_rows - top
-    block = [flat[i] for i in range(top, bottom + 1)]
-    if height < max(overlays.MIN_STRIP_ROWS, 0.02 * n_rows) or height > overlays.MAX_STRIP_FRACTION * n_rows:
-        return 0
-    if sum(block) < 0.85 * len(block):
-        return 0
-    flatness = np.array(list(overlays._row_flatness(image, range(top, n_rows)).values()))
-    if flatness.min() >= 0.999 or np.median(flatness) < overlays.MOSTLY_FLAT:
-        return 0
-    above = overlays._row_flatness(image, range(max(0, top - 40), top))
-    if not above or np.median(list(above.values())) >= 0.25:
-        return 0
-    return int(height)
+    return overlays.find_info_strip(image, flat_rows=flat)
 
 
 def _strip_images():

@@ -14,6 +14,8 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.preprocess import polarity
 from grainhabit.plugins.segment import packed, runs
 
+from builders import faint_objects_reference
+
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -169,42 +171,6 @@ def test_gap_components_at_mask_equal_scipy_labels(seed):
             np.testing.assert_array_equal(comp_of, whole.ravel()[want_at])
 
 
-def _faint_objects_scipy(low, high, min_area=0.0):
-    """foreground.faint_objects as it was: scipy's labelling, bincounts and find_objects over the frame."""
-    from grainhabit.plugins.segment import foreground as fg
-    from grainhabit.plugins.segment.disk_morphology import dilate_disk
-
-    out = np.zeros(low.shape, bool)
-    lab, n = ndi.label(low, structure=_EIGHT)
-    if n == 0:
-        return out
-    areas = np.bincount(lab[low], minlength=n + 1)
-    shown_px = np.bincount(lab[high], minlength=n + 1)
-    cand = (areas >= max(fg.FAINT_AREA_SHARE * min_area, 1.0)) & (shown_px < fg.FAINT_SHOWN_SHARE * areas)
-    cand[0] = False
-    if not cand.any():
-        return out
-    reach = int(np.ceil(fg.FAINT_CLEARANCE_PX))
-    rows, cols = low.shape
-    boxes = ndi.find_objects(lab)
-    for k in np.flatnonzero(cand):
-        box = boxes[k - 1]
-        r0, r1 = max(box[0].start - reach, 0), min(box[0].stop + reach, rows)
-        c0, c1 = max(box[1].start - reach, 0), min(box[1].stop + reach, cols)
-        own = lab[r0:r1, c0:c1] == k
-        hi = high[r0:r1, c0:c1]
-        if hi.any():
-            parts, m = ndi.label(hi, structure=_EIGHT)
-            big = np.bincount(parts.ravel(), minlength=m + 1) >= max(min_area, 1.0)
-            for side in (parts[0], parts[-1], parts[:, 0], parts[:, -1]):
-                big[side] = True
-            big[0] = False
-            if (big[parts] & dilate_disk(own, fg.FAINT_CLEARANCE_PX)).any():
-                continue
-        out[r0:r1, c0:c1] |= own
-    return out
-
-
 def _diffuse_parts_scipy(mask, outer=None):
     """foreground.diffuse_parts as it was: scipy's labelling and find_objects of the mask's box."""
     from grainhabit.plugins.segment import foreground as fg
@@ -248,10 +214,10 @@ def test_faint_objects_and_diffuse_parts_equal_the_scipy_forms(seed):
             low, high = img > lo_level, img > hi_level
             for min_area in (0.0, 20.0, 200.0):
                 np.testing.assert_array_equal(fg.faint_objects(low, high, min_area),
-                                              _faint_objects_scipy(low, high, min_area))
+                                              faint_objects_reference(low, high, min_area))
             # high not within low: its pixels outside low count for no component
             other = img + 0.5 * rng.standard_normal(shape) > hi_level
-            np.testing.assert_array_equal(fg.faint_objects(low, other, 20.0), _faint_objects_scipy(low, other, 20.0))
+            np.testing.assert_array_equal(fg.faint_objects(low, other, 20.0), faint_objects_reference(low, other, 20.0))
             outer = rng.random(shape) > 0.9
             for o in (None, outer):
                 np.testing.assert_array_equal(fg.diffuse_parts(low & ~high, o), _diffuse_parts_scipy(low & ~high, o))

@@ -37,6 +37,7 @@ import numpy as np
 from grainhabit.lazy import lazy_module
 
 from . import control_charts as cc
+from .intervals import t_quantile  # Student's t quantiles without loading scipy.stats in the main process
 from .specs import EXACT_VARIABLES, Criterion, Specs  # noqa: F401 (Criterion: type of Product.criteria)
 
 xr = lazy_module("xarray")
@@ -128,9 +129,6 @@ def grains_for_decision(n: int, value: float, ci_lo: float, ci_hi: float, lower:
         if ratio <= 1:
             continue
         if frames >= 2:
-            # Student's t quantiles without loading scipy.stats in the main process (intervals.t_quantile)
-            from grainhabit.plugins.survey.intervals import t_quantile
-
             q = 0.5 + confidence / 2
             target = t_quantile(q, frames - 1) / math.sqrt(frames) / ratio
             f = frames
