@@ -19,6 +19,7 @@ from typing import Any
 
 import yaml
 
+from .executors import START_METHODS
 from .hpc import BATCH_SYSTEMS, check_jobqueue
 from .inputs import FoundInputs, find_files
 from .manager import DEFAULT_CHAIN, Host
@@ -83,6 +84,7 @@ SCHEMA: dict[str, Any] = {
         "frame_memory": (str, False, "auto"),
         "max_in_flight": (int, False, 0),
         "dashboard": (bool, False, False),
+        "start_method": (str, False, "auto"),
         "jobqueue": (dict, False, None),
     },
 }
@@ -434,6 +436,9 @@ def _check_execution(path: str, ex: dict, errs: list) -> None:
         frame_memory_bytes(ex.get("frame_memory", "auto"))
     except ValueError as exc:
         errs.append(WorkflowError(path, "execution.frame_memory", str(exc)))
+    if ex.get("start_method", "auto") not in START_METHODS:
+        errs.append(WorkflowError(path, "execution.start_method",
+                                  f"expected one of {', '.join(START_METHODS)}, got {ex['start_method']!r}"))
     sch = ex["scheduler"]
     if not (sch in ("local", "serial") or sch in BATCH_SYSTEMS or sch.startswith("tcp://")
             or sch.startswith("tls://")):

@@ -129,6 +129,18 @@ def test_rerun_reuses_staged_frames(local_run):
     xr.testing.assert_identical(before.drop_attrs(), after.drop_attrs())
 
 
+def test_spawned_workers_give_the_forked_workers_results(local_run):
+    # execution.start_method: the fixture's run forks its workers on Linux (auto); fresh interpreters
+    # must find the same grains to the bit (both compute with one BLAS thread)
+    root, _ = local_run
+    body = WF.format(scheduler="local").replace("out/survey.zarr", "out/spawned.zarr") + "  start_method: spawn\n"
+    proc = run_cli("run", write_workflow(root / "wf_spawn.yaml", body))
+    assert proc.returncode == 0, proc.stderr
+    forked = xr.open_zarr(root / "out" / "survey.zarr", group="grains").load()
+    spawned = xr.open_zarr(root / "out" / "spawned.zarr", group="grains").load()
+    xr.testing.assert_identical(forked.drop_attrs(), spawned.drop_attrs())
+
+
 def test_failed_frame_is_recorded_and_run_goes_on(tmp_path, small_survey):
     bad = small_survey / "data" / "alpha-batch" / "broken.tif"
     bad.write_bytes(b"not a tiff at all")

@@ -50,6 +50,8 @@ def test_good_workflow_resolves_defaults(tmp_path, host):
     (("{min_ecd_nm: 40}", "{min_ecd: 40}"), "steps[0].params.min_ecd", "unknown parameter"),
     (("{min_ecd_nm: 40}", "{min_ecd_nm: big}"), "steps[0].params.min_ecd_nm", "expected number"),
     (("  scheduler: serial", "  scheduler: moon"), "execution.scheduler", "expected"),
+    (("  scheduler: serial", "  scheduler: serial\n  start_method: thread"), "execution.start_method",
+     "expected one of auto, fork, spawn"),
     (("  results: out/r.zarr", "  report: out/rep"), "output.results", "required"),
     (('  paths: ["data/**/*.tif"]', '  paths: ["data/**/*.tif"]\n  sample: "{batch}"'), "input.sample",
      "unknown placeholder"),
