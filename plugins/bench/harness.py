@@ -49,6 +49,7 @@ output:
 execution:
   scheduler: {scheduler}
   workers: {workers}
+  start_method: {start_method}
 """
 
 
@@ -181,13 +182,14 @@ def write_frames(folder: str | os.PathLike, images, n: int | None = None, *, sta
 
 
 def write_workflow(path: str | os.PathLike, data: str | os.PathLike, results: str | os.PathLike, *,
-                   workers: int | str = "auto", scheduler: str = "local", name: str = "bench") -> Path:
+                   workers: int | str = "auto", scheduler: str = "local", name: str = "bench",
+                   start_method: str = "auto") -> Path:
     """Write a workflow (default chain) over ``data/**/*.tif`` into ``results``."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(WORKFLOW_TEMPLATE.format(name=name, data=Path(data).resolve().as_posix(),
                                              results=Path(results).resolve().as_posix(),
-                                             scheduler=scheduler, workers=workers))
+                                             scheduler=scheduler, workers=workers, start_method=start_method))
     return path
 
 

@@ -190,6 +190,53 @@ def render_fields(n: int, size_px: int, grains: int, seed: int) -> list:
             for i in range(n)]
 
 
+def fresh_pipeline_case(workflow, workers: int, malloc_trim: int | None = None) -> dict:
+    """:func:`~grainhabit.plugins.bench.throughput.pipeline_case` in a new Python process.
+
+    The process imports grainhabit and builds its plugin host (not timed, as the
+    script's imports are not), then times the whole run: cluster start, workers,
+    frames, and every import the run itself makes on the way (xarray's first dataset
+    loads dask.array and, where installed, pint). A run in the benchmark's own
+    process would find those already loaded by an earlier round, and its forked
+    workers would start from everything the benchmark has loaded.
+
+    Returns
+    -------
+    dict
+        The figures of ``pipeline_case`` (through JSON: tuples come back as lists).
+    """
+    import json
+    import subprocess
+    import sys
+    import tempfile
+    from pathlib import Path
+
+    with tempfile.TemporaryDirectory() as tmp:
+        answer = Path(tmp) / "figures.json"
+        code = "from grainhabit.plugins.bench.reference_script import _child_round; _child_round()"
+        proc = subprocess.run([sys.executable, "-c", code, str(workflow), str(int(workers)),
+                               "" if malloc_trim is None else str(int(malloc_trim)), str(answer)],
+                              capture_output=True, text=True)
+        if proc.returncode != 0 or not answer.exists():
+            tail = (proc.stderr or "").strip().splitlines()[-1:] or ["no output"]
+            raise RuntimeError(f"grainhabit run in a fresh process failed (exit {proc.returncode}): {tail[0]}")
+        return json.loads(answer.read_text())
+
+
+def _child_round() -> None:
+    """Entry of :func:`fresh_pipeline_case`'s process: argv = workflow, workers, malloc_trim, answer file."""
+    import json
+    import sys
+    from pathlib import Path
+
+    from grainhabit.manager import make_host
+    from grainhabit.plugins.bench.throughput import pipeline_case
+
+    workflow, workers, trim, answer = sys.argv[1:5]
+    figures = pipeline_case(Path(workflow), make_host(), int(workers), int(trim) if trim else None)
+    Path(answer).write_text(json.dumps(figures))
+
+
 def versus_script(args, root, workers: int, out) -> dict:
     """Interleaved rounds of the script and ``grainhabit run``; print throughputs, ratio and accuracy.
 
@@ -209,8 +256,6 @@ def versus_script(args, root, workers: int, out) -> dict:
     dict
         Figures (``script``, ``pipeline`` rounds, ``ratio``, ``accuracy``, ``ok``).
     """
-    from grainhabit.manager import make_host
-    from grainhabit.plugins.bench.throughput import pipeline_case
     from grainhabit.plugins.synthetic.render import to_uint16
 
     t0 = time.perf_counter()
@@ -221,16 +266,15 @@ def versus_script(args, root, workers: int, out) -> dict:
           f"{bu.load_text()}", file=out)
     warm = bu.write_frames(root / "warm" / "bench", [to_uint16(fields[0].image)], 1, start=1)
     script_loop(warm)  # imports and first calls, untimed (a script's own start-up is not charged to it)
-    host = make_host()
     flow = bu.write_workflow(root / "all.yaml", root / "data", root / "out" / "all.zarr", workers=workers,
-                             name="bench-versus")
+                             name="bench-versus", start_method=args.start_method)
     scripts, runs = [], []
     for r in range(args.repeat):
         l0 = bu.load_average()
         s = script_loop(paths)
         s.update(load_before=l0, load_after=bu.load_average())
         scripts.append(s)
-        c = pipeline_case(flow, host, workers, args.malloc_trim)
+        c = fresh_pipeline_case(flow, workers, args.malloc_trim)
         runs.append(c)
         print(f"  round {r + 1}: script {s['wall']:.1f} s ({s['grains']} grains), grainhabit run "
               f"{c['wall']:.1f} s with cold start ({c['grains']} grains, {c['frames_ok']}/{c['frames']} frames ok); "
@@ -242,13 +286,20 @@ def versus_script(args, root, workers: int, out) -> dict:
     fps_s, fps_c = args.frames / s["wall"], args.frames / c["wall"]
     print(f"hand-written serial script, 1 core: {fps_s:.3f} frames/s ({s['wall']:.1f} s, best of {args.repeat})",
           file=out)
-    print(f"grainhabit run, {c['workers']} workers, cold start included: {fps_c:.3f} frames/s ({c['wall']:.1f} s; "
+    from grainhabit.executors import start_method
+
+    print(f"grainhabit run, {c['workers']} workers ({start_method(args.start_method)}ed), cold start included: "
+          f"{fps_c:.3f} frames/s ({c['wall']:.1f} s; "
           f"cluster start {c['host'].get('cluster_start', 0.0):.1f} s, worker preparation "
           f"{c['host'].get('worker_prepare', 0.0):.1f} s)", file=out)
+    from grainhabit.plugins.bench.throughput import HOST_PHASES
+
+    print("  its phases, s: " + ", ".join(f"{k.replace('_', ' ')} {c['host'].get(k, 0.0):.2f}" for k in HOST_PHASES)
+          + f"; frames (workers ready to the last result) {c['processing']:.2f}", file=out)
     from grainhabit.plugins.habit.disk_cache import cache_folder
 
     folder = cache_folder()
-    print("  (workers are fresh processes every round; the habit model tables "
+    print("  (each round runs in a new Python process, its workers forked or spawned from it; the habit model tables "
           + (f"are read from the disk cache in {folder}, as on any machine after its first run)" if folder else
              "are built by every worker: GRAINHABIT_CACHE=off)"), file=out)
     ok = ratio >= TARGET_RATIO

@@ -351,6 +351,9 @@ def run(argv: list[str]) -> int:
                     help="also run 4x the frames and 4x the pixels with all workers and check <= 4.4x the time")
     ap.add_argument("--workdir", metavar="DIR", help="write frames and results here and keep them "
                                                      "(default: a temporary folder, removed)")
+    ap.add_argument("--start-method", choices=("auto", "fork", "spawn"), default="auto",
+                    help="how the local cluster starts its workers (the workflow's execution.start_method; "
+                         "default auto: fork on Linux)")
     ap.add_argument("--malloc-trim", type=int, metavar="BYTES",
                     help="glibc MALLOC_TRIM_THRESHOLD_ of the local workers (default: unset, glibc's own "
                          "thresholds; 65536, dask's own default, makes every large array a fresh mmap)")
@@ -410,9 +413,9 @@ def run(argv: list[str]) -> int:
         warm = bu.write_frames(root / "warm" / "bench", images[:1], 1, start=1)
         serial_loop(warm)
         one = bu.write_workflow(root / "one.yaml", root / "data", root / "out" / "one.zarr", workers=1,
-                                name="bench-one")
+                                name="bench-one", start_method=args.start_method)
         every = bu.write_workflow(root / "all.yaml", root / "data", root / "out" / "all.zarr", workers=workers,
-                                  name="bench-all")
+                                  name="bench-all", start_method=args.start_method)
         rounds = {"a": [], "b": [], "c": [], "d": []}
         for _ in range(args.repeat):  # interleaved rounds: a slow spell of the machine hits every case alike
             l0 = bu.load_average()
