@@ -227,3 +227,48 @@ def test_bars_and_ink_rectangles_are_drawn_clipped_rods_and_cubes_are_not():
     raw = backdrop.copy()
     raw[cube] = 0.0
     assert not judged(cube, raw)
+
+
+def test_ragged_bars_are_drawn_and_their_captions_go_with_them():
+    # figure crops resample a scale bar: its edge rows turn grey and the feet of its caption touch it, so
+    # the object found fills 0.90-0.94 of its box (EMPS 97e645b56e, 0289bd97e6); a noisy rod lying along
+    # the axis with round ends does not become a bar (handbook geometry: 1 - (1 - pi/4) d / L of its box)
+    from grainhabit.plugins.segment.mark_shapes import aligned_bar, bar_core
+
+    rng = np.random.default_rng(11)
+    shape = (160, 240)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+    raw = np.clip(rng.normal(200.0, 4.0, shape), 0, 255)
+    # a flat bar, 10 x 140 px, in a grey of 34 (not the frame's darkest: a dark speck of 8 sets the ink)
+    bar = (yy >= 100) & (yy < 110) & (xx >= 50) & (xx < 190)
+    raw[bar] = 34.0
+    raw[20:23, 20:23] = 8.0
+    edge = (yy == 99) & (xx >= 60) & (xx < 120)         # an anti-aliased row over part of the bar's top
+    feet = (yy == 110) & (((xx >= 70) & (xx < 74)) | ((xx >= 90) & (xx < 95)) | ((xx >= 150) & (xx < 156)))
+    raw[edge | feet] = 34.0
+    found = bar | edge | feet
+    fill = found.sum() / ((np.ptp(np.nonzero(found)[0]) + 1) * (np.ptp(np.nonzero(found)[1]) + 1))
+    assert fill < annotations.BOX_FILL  # the box test alone misses it
+    assert bar_core(found) == (100, 110, 50, 190)
+    assert aligned_bar(found, annotations.BAR_MAX_WIDTH_PX, annotations.BAR_ASPECT) is None
+    assert aligned_bar(found, annotations.BAR_MAX_WIDTH_PX, annotations.BAR_ASPECT, trim=True) is not None
+    # the caption "50 nm" above it: three small glyph-like blobs in the bar's grey
+    labels = np.zeros(shape, np.int32)
+    labels[found] = 1
+    for k, c in enumerate((95, 110, 125), start=2):
+        glyph = (np.abs(yy - 88) <= 5) & (np.abs(xx - c) <= 4)
+        raw[glyph] = 34.0
+        labels[glyph] = k
+    drawn = annotations.drawn_labels(labels, raw)
+    assert 1 in drawn.tolist()
+    # the same shape imaged: a rod along the axis carrying the frame's noise, round ends
+    d, length = 10.0, 140.0
+    along = np.clip(xx, 50 + d / 2, 50 + length - d / 2)
+    rod = (yy - 104.5) ** 2 + (xx - along) ** 2 <= (d / 2) ** 2
+    rod_fill = rod.sum() / ((np.ptp(np.nonzero(rod)[0]) + 1) * (np.ptp(np.nonzero(rod)[1]) + 1))
+    assert abs(rod_fill - (1 - (1 - np.pi / 4) * d / length)) < 0.02
+    imaged = np.clip(rng.normal(200.0, 4.0, shape), 0, 255)
+    imaged[rod] = np.clip(rng.normal(60.0, 4.0, int(rod.sum())), 0, 255)
+    imaged[20:23, 20:23] = 8.0
+    rod_labels = rod.astype(np.int32)
+    assert annotations.drawn_labels(rod_labels, imaged).size == 0

@@ -140,7 +140,7 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
         # a bar whatever share of it is ink: a thin bar's resampled edges and a caption printed on it in the
         # other ink leave under SOLID_INK of its pixels at the ink level
         return True
-    if ink >= SOLID_INK and area >= RECT_FILL * h * w and long_side >= RECT_ASPECT:
+    if ink >= SOLID_INK and long_side >= RECT_ASPECT and is_rectangle(part, RECT_FILL, RECT_ASPECT):
         # a rectangle of ink to the pixel: a thick scale bar or a label's box (a clipped rod's round ends
         # leave a tenth of its box or so empty)
         return True
@@ -265,6 +265,36 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1, boxes: list 
     return np.asarray(sorted(out), np.int64)
 
 
+def is_rectangle(part: np.ndarray, fill: float, aspect: float) -> bool:
+    """Whether an object is an axis-aligned rectangle up to a ragged line or two at its ends.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+        The object, cropped to its bounding box.
+    fill : float
+        Least share of the rectangle's pixels the object covers.
+    aspect : float
+        Least long side over short side of the rectangle.
+
+    Returns
+    -------
+    bool
+        True when the box of :func:`~grainhabit.plugins.segment.mark_shapes.bar_core`
+        (up to two thin lines along each long edge left out: a resampled edge
+        row, the feet of a caption touching a bar) holds :data:`~grainhabit.plugins.segment.mark_shapes.BAR_CORE_SHARE` of
+        the object, is filled over ``fill`` and is ``aspect`` times longer than wide.
+    """
+    from grainhabit.plugins.segment.mark_shapes import BAR_CORE_SHARE, bar_core
+
+    top, bottom, left, right = bar_core(part)
+    h, w = bottom - top, right - left
+    if h <= 0 or w <= 0 or max(h, w) < aspect * min(h, w):
+        return False
+    inside = float(np.count_nonzero(part[top:bottom, left:right]))
+    return inside >= fill * h * w and inside >= BAR_CORE_SHARE * float(np.count_nonzero(part))
+
+
 def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
     """Which labels fill their bounding box like a bar along a frame axis.
 
@@ -279,16 +309,23 @@ def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
     ndarray of bool, shape (len(boxes) + 1,)
         True where the object fills over :data:`BOX_FILL` of its box, which
         is at least :data:`BAR_ASPECT` times longer than wide and at most
-        :data:`BAR_MAX_WIDTH_PX` wide.
+        :data:`BAR_MAX_WIDTH_PX` wide; the box is that of
+        :func:`~grainhabit.plugins.segment.mark_shapes.bar_core` (up to two
+        thin lines along each long edge left out: a bar's anti-aliased edge
+        rows, the feet of a caption touching it), holding 80 % of the object.
     """
+    from grainhabit.plugins.segment.mark_shapes import BAR_RAGGED_LINES, aligned_bar
+
     out = np.zeros(len(boxes) + 1, bool)
     for k, sl in enumerate(boxes, start=1):
         if sl is None:
             continue
         h, w = sl[0].stop - sl[0].start, sl[1].stop - sl[1].start
-        # the box's shape first: the area is counted only for the few bar-shaped boxes
-        out[k] = (min(h, w) <= BAR_MAX_WIDTH_PX and max(h, w) >= BAR_ASPECT * min(h, w)
-                  and int(np.count_nonzero(labels[sl] == k)) >= BOX_FILL * h * w)
+        # the box's shape first (a ragged line or two at each end allowed): the pixels are looked at only
+        # for the few long boxes
+        if max(h, w) < BAR_ASPECT * max(min(h, w) - 2 * BAR_RAGGED_LINES, 1):
+            continue
+        out[k] = aligned_bar(labels[sl] == k, BAR_MAX_WIDTH_PX, BAR_ASPECT, trim=True) is not None
     return out
 
 

@@ -23,6 +23,12 @@ STROKE_MAX_HALF_WIDTH_PX = 4.0
 #: frame axis, that thin and that square-ended is rare; a drawn bar always is).
 BAR_BOX_FILL = 0.95
 ALIGNED_BAR_ASPECT = 8.0
+#: A bar with ragged edges (anti-aliased rows, the feet of a caption touching it): up to BAR_RAGGED_LINES
+#: lines along it at each edge, filled under BAR_LINE_FILL of its length, are left out before the box tests,
+#: if the rest holds BAR_CORE_SHARE of it.
+BAR_LINE_FILL = 0.75
+BAR_RAGGED_LINES = 2
+BAR_CORE_SHARE = 0.8
 #: Text rows: at least this many glyphs, bottoms (or tops) within this many pixels, glyphs less solid than this.
 TEXT_MIN_GLYPHS = 3
 TEXT_BASELINE_PX = 2
@@ -94,7 +100,7 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
 
 
 def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_PX,
-                aspect: float = ALIGNED_BAR_ASPECT) -> tuple[int, int, int, int] | None:
+                aspect: float = ALIGNED_BAR_ASPECT, trim: bool = False) -> tuple[int, int, int, int] | None:
     """The box of a thin bar drawn along a frame axis (a scale bar), or None.
 
     Parameters
@@ -105,6 +111,9 @@ def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_P
         Widest bar (px).
     aspect : float
         Least length over width.
+    trim : bool
+        Judge the box of :func:`bar_core` (ragged edge lines trimmed), which
+        must then also hold :data:`BAR_CORE_SHARE` of the object.
 
     Returns
     -------
@@ -118,11 +127,54 @@ def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_P
     if rows.size == 0:
         return None
     top, bottom, left, right = int(rows[0]), int(rows[-1]) + 1, int(cols[0]), int(cols[-1]) + 1
+    area = float(np.count_nonzero(part))
+    if trim:
+        top, bottom, left, right = bar_core(part)
     h, w = bottom - top, right - left
-    if (min(h, w) > max_width or max(h, w) < aspect * min(h, w)
-            or float(part.sum()) < BAR_BOX_FILL * h * w):
+    if h <= 0 or w <= 0 or min(h, w) > max_width or max(h, w) < aspect * min(h, w):
+        return None
+    inside = float(np.count_nonzero(part[top:bottom, left:right]))
+    if inside < BAR_BOX_FILL * h * w or (trim and inside < BAR_CORE_SHARE * area):
         return None
     return top, bottom, left, right
+
+
+def bar_core(part: np.ndarray) -> tuple[int, int, int, int]:
+    """The bounding box of an object less thin lines along its long side at both edges.
+
+    Parameters
+    ----------
+    part : ndarray of bool, shape (h, w)
+        The object.
+
+    Returns
+    -------
+    (top, bottom, left, right)
+        Within ``part``, bottom and right exclusive; an empty box for an empty
+        object. For an object wider than tall, up to :data:`BAR_RAGGED_LINES`
+        rows at its top and at its bottom filled under :data:`BAR_LINE_FILL`
+        of its width are left out (for a taller one, columns): a scale bar
+        whose edge rows were resampled to grey, or whose caption's feet
+        touch it, keeps the box of its flat part. Its ends are not trimmed:
+        a rod's round ends still leave its box partly empty.
+    """
+    rows, cols = np.flatnonzero(part.any(axis=1)), np.flatnonzero(part.any(axis=0))
+    if rows.size == 0:
+        return 0, 0, 0, 0
+    top, bottom, left, right = int(rows[0]), int(rows[-1]) + 1, int(cols[0]), int(cols[-1]) + 1
+    box = part[top:bottom, left:right]
+    tall = box.shape[0] > box.shape[1]
+    m = box.T if tall else box
+    thin = m.sum(axis=1) < BAR_LINE_FILL * m.shape[1]
+    first = 0
+    while first < min(BAR_RAGGED_LINES, m.shape[0] - 1) and thin[first]:
+        first += 1
+    last = m.shape[0]
+    while last > first + 1 and m.shape[0] - last < BAR_RAGGED_LINES and thin[last - 1]:
+        last -= 1
+    if tall:
+        return top, bottom, left + first, left + last
+    return top + first, top + last, left, right
 
 
 def inscribed_radii(first: np.ndarray, second: np.ndarray) -> tuple[float, float]:

@@ -98,7 +98,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.11",
+    version="2.12",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -838,7 +838,7 @@ def drop_drawn_marks(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: d
             if boxes is None:
                 boxes = ndi.find_objects(labels)
             bars = [b for b in (_frame_box(aligned_bar(labels[boxes[k - 1]] == k, annotations.BAR_MAX_WIDTH_PX,
-                                                      annotations.BAR_ASPECT), boxes[k - 1]) for k in inked)
+                                                      annotations.BAR_ASPECT, trim=True), boxes[k - 1]) for k in inked)
                     if b is not None]
             if bars:
                 inked = np.union1d(inked, bar_captions(labels, bars, arr > levels["noise"])).astype(np.int64)
