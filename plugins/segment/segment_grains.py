@@ -91,6 +91,7 @@ from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.packed import packed_field, split_rafts
 from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
+from grainhabit.plugins.segment.rim_interior import fill_rim_interiors
 from grainhabit.plugins.segment.touching import split_component
 
 GRAINHABIT_API = 1
@@ -235,6 +236,8 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
     min_area = np.pi / 4.0 * max(min_ecd_nm / pixel_size_nm, min_ecd_px) ** 2
     fg, comp, n, comp_boxes = foreground_labels(arr, pixel_size_nm, levels, method, local_block_nm, local_offset,
                                                 close_nm, refine_nm, gap_level, edge_level, min_area)
+    # rods and plates seen by their bright rims: the open inside of a C-shaped rim joins it
+    fill_rim_interiors(arr, fg, comp, comp_boxes, levels["noise"])
     above = arr > levels["noise"]
     rejected = {"line": 0, "stroke": 0}
     bars = []  # frame boxes of scale bars dropped, for their captions
