@@ -38,6 +38,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.common.image_stats import median, median_of_counts, robust_sd
+from grainhabit.plugins.segment.mark_shapes import BAR_RAGGED_LINES, aligned_bar
 
 #: Fraction of the frame's grey range, from either end, counted as ink.
 INK_TOLERANCE = 0.02
@@ -140,7 +141,8 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
         # a bar whatever share of it is ink: a thin bar's resampled edges and a caption printed on it in the
         # other ink leave under SOLID_INK of its pixels at the ink level
         return True
-    if ink >= SOLID_INK and long_side >= RECT_ASPECT and is_rectangle(part, RECT_FILL, RECT_ASPECT):
+    if ink >= SOLID_INK and long_side >= RECT_ASPECT and \
+            aligned_bar(part, np.inf, RECT_ASPECT, trim=True, fill=RECT_FILL) is not None:
         # a rectangle of ink to the pixel: a thick scale bar or a label's box (a clipped rod's round ends
         # leave a tenth of its box or so empty)
         return True
@@ -265,36 +267,6 @@ def drawn_labels(labels: np.ndarray, raw: np.ndarray, rim: int = 1, boxes: list 
     return np.asarray(sorted(out), np.int64)
 
 
-def is_rectangle(part: np.ndarray, fill: float, aspect: float) -> bool:
-    """Whether an object is an axis-aligned rectangle up to a ragged line or two at its ends.
-
-    Parameters
-    ----------
-    part : ndarray of bool, shape (h, w)
-        The object, cropped to its bounding box.
-    fill : float
-        Least share of the rectangle's pixels the object covers.
-    aspect : float
-        Least long side over short side of the rectangle.
-
-    Returns
-    -------
-    bool
-        True when the box of :func:`~grainhabit.plugins.segment.mark_shapes.bar_core`
-        (up to two thin lines along each long edge left out: a resampled edge
-        row, the feet of a caption touching a bar) holds :data:`~grainhabit.plugins.segment.mark_shapes.BAR_CORE_SHARE` of
-        the object, is filled over ``fill`` and is ``aspect`` times longer than wide.
-    """
-    from grainhabit.plugins.segment.mark_shapes import BAR_CORE_SHARE, bar_core
-
-    top, bottom, left, right = bar_core(part)
-    h, w = bottom - top, right - left
-    if h <= 0 or w <= 0 or max(h, w) < aspect * min(h, w):
-        return False
-    inside = float(np.count_nonzero(part[top:bottom, left:right]))
-    return inside >= fill * h * w and inside >= BAR_CORE_SHARE * float(np.count_nonzero(part))
-
-
 def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
     """Which labels fill their bounding box like a bar along a frame axis.
 
@@ -314,8 +286,6 @@ def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
         thin lines along each long edge left out: a bar's anti-aliased edge
         rows, the feet of a caption touching it), holding 80 % of the object.
     """
-    from grainhabit.plugins.segment.mark_shapes import BAR_RAGGED_LINES, aligned_bar
-
     out = np.zeros(len(boxes) + 1, bool)
     for k, sl in enumerate(boxes, start=1):
         if sl is None:
@@ -325,7 +295,7 @@ def bar_candidates(labels: np.ndarray, boxes: list) -> np.ndarray:
         # for the few long boxes
         if max(h, w) < BAR_ASPECT * max(min(h, w) - 2 * BAR_RAGGED_LINES, 1):
             continue
-        out[k] = aligned_bar(labels[sl] == k, BAR_MAX_WIDTH_PX, BAR_ASPECT, trim=True) is not None
+        out[k] = aligned_bar(labels[sl] == k, BAR_MAX_WIDTH_PX, BAR_ASPECT, trim=True, fill=BOX_FILL) is not None
     return out
 
 

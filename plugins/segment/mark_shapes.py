@@ -100,7 +100,8 @@ def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
 
 
 def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_PX,
-                aspect: float = ALIGNED_BAR_ASPECT, trim: bool = False) -> tuple[int, int, int, int] | None:
+                aspect: float = ALIGNED_BAR_ASPECT, trim: bool = False,
+                fill: float = BAR_BOX_FILL) -> tuple[int, int, int, int] | None:
     """The box of a thin bar drawn along a frame axis (a scale bar), or None.
 
     Parameters
@@ -114,12 +115,14 @@ def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_P
     trim : bool
         Judge the box of :func:`bar_core` (ragged edge lines trimmed), which
         must then also hold :data:`BAR_CORE_SHARE` of the object.
+    fill : float
+        Least share of the box the object fills.
 
     Returns
     -------
     (top, bottom, left, right) or None
         The object's bounding box within ``part`` (bottom and right
-        exclusive) when it fills over :data:`BAR_BOX_FILL` of it, is at least
+        exclusive) when it fills over ``fill`` of it, is at least
         ``aspect`` times longer than wide and at most ``max_width`` wide;
         else None. The defaults are the shape test of :func:`annotation_kind`.
     """
@@ -134,7 +137,7 @@ def aligned_bar(part: np.ndarray, max_width: float = 2 * STROKE_MAX_HALF_WIDTH_P
     if h <= 0 or w <= 0 or min(h, w) > max_width or max(h, w) < aspect * min(h, w):
         return None
     inside = float(np.count_nonzero(part[top:bottom, left:right]))
-    if inside < BAR_BOX_FILL * h * w or (trim and inside < BAR_CORE_SHARE * area):
+    if inside < fill * h * w or (trim and inside < BAR_CORE_SHARE * area):
         return None
     return top, bottom, left, right
 
