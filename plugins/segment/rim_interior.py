@@ -30,7 +30,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask, hull_pixel_count
 
 #: Components less solid than this (area over convex hull area, ISO 9276-6) are looked at.
 RIM_SOLIDITY = 0.8
@@ -80,9 +80,10 @@ def fill_rim_interiors(image: np.ndarray, fg: np.ndarray, comp: np.ndarray, boxe
         area = int(np.count_nonzero(m))
         if area < MIN_AREA_PX:
             continue
-        hull = convex_hull_mask(m)
-        if area >= RIM_SOLIDITY * int(np.count_nonzero(hull)):
+        # the hull's pixel count is remembered per shape: the seam pass asks again for the grains left whole
+        if area >= RIM_SOLIDITY * hull_pixel_count(m):
             continue
+        hull = convex_hull_mask(m)
         missing = hull & ~m & (view == 0)
         n_missing = int(np.count_nonzero(missing))
         if n_missing == 0:
