@@ -221,6 +221,42 @@ def remember_hull_count(key: tuple, count: int) -> None:
     _COUNTS[key] = int(count)
 
 
+#: Hull images lately worked out by :func:`tight_hull`, keyed by :func:`shape_key`; emptied when their pixels
+#: pass _HULLS_KEPT_PX (16 MiB of booleans).
+_HULLS: dict = {}
+_HULLS_PX = [0]
+_HULLS_KEPT_PX = 1 << 24
+
+
+def tight_hull(tight: np.ndarray, key: tuple | None = None) -> np.ndarray:
+    """:func:`convex_hull_mask` of a shape cut to its box, remembered per shape (do not write to it).
+
+    Parameters
+    ----------
+    tight : ndarray of bool, shape (h, w)
+        The shape, cut to its bounding box.
+    key : tuple, optional
+        :func:`shape_key` of ``tight``, when the caller has it.
+
+    Returns
+    -------
+    ndarray of bool, shape (h, w)
+        The hull image. The segment step asks for the hull of each component twice (the rim
+        interiors of every component first, then the splitter's concavity depth of each): the second
+        asking reads it back.
+    """
+    key = shape_key(tight) if key is None else key
+    hull = _HULLS.get(key)
+    if hull is None:
+        hull = convex_hull_mask(tight)
+        if _HULLS_PX[0] + hull.size > _HULLS_KEPT_PX:
+            _HULLS.clear()
+            _HULLS_PX[0] = 0
+        _HULLS[key] = hull
+        _HULLS_PX[0] += hull.size
+    return hull
+
+
 def hull_pixel_count(mask: np.ndarray) -> int:
     """``numpy.count_nonzero(convex_hull_mask(mask))``, remembered per shape.
 

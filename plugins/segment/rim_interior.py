@@ -30,7 +30,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask, hull_pixel_count
+from grainhabit.plugins.segment.hull_fill import tight_hull
 
 #: Components less solid than this (area over convex hull area, ISO 9276-6) are looked at.
 RIM_SOLIDITY = 0.8
@@ -80,10 +80,14 @@ def fill_rim_interiors(image: np.ndarray, fg: np.ndarray, comp: np.ndarray, boxe
         area = int(np.count_nonzero(m))
         if area < MIN_AREA_PX:
             continue
-        # the hull's pixel count is remembered per shape: the seam pass asks again for the grains left whole
-        if area >= RIM_SOLIDITY * hull_pixel_count(m):
+        # the hull is remembered per shape: the splitter asks for it again (touching.concavity_depth)
+        rows, cols = np.flatnonzero(m.any(axis=1)), np.flatnonzero(m.any(axis=0))
+        tight = (slice(rows[0], rows[-1] + 1), slice(cols[0], cols[-1] + 1))
+        hull_t = tight_hull(m[tight])
+        if area >= RIM_SOLIDITY * int(np.count_nonzero(hull_t)):
             continue
-        hull = convex_hull_mask(m)
+        hull = np.zeros(m.shape, bool)
+        hull[tight] = hull_t
         missing = hull & ~m & (view == 0)
         n_missing = int(np.count_nonzero(missing))
         if n_missing == 0:

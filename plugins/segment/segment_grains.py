@@ -514,8 +514,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
     except ValueError as err:
         field = second_look(arr, raw, pixel_size_nm, p, "no level free of grains", notes)
         if field is None:
-            empty = few_above_noise(arr, levels, p, str(err), notes)
-            no_background = str(err)
+            few_above_noise(arr, levels, p, str(err), notes)
+            empty, no_background = "", str(err)
     else:
         field = second_look(arr, raw, pixel_size_nm, p, "nothing stands above its noise", notes) if empty else None
     if field is not None:
@@ -694,7 +694,7 @@ def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
     return ""
 
 
-def few_above_noise(arr: np.ndarray, levels: dict, p: dict, error: str, notes: list) -> str:
+def few_above_noise(arr: np.ndarray, levels: dict, p: dict, error: str, notes: list) -> None:
     """Go on with the usual path where few pixels stand above the noise threshold, else raise ``error``.
 
     :func:`check_frame` judges by Otsu's two classes whether the frame has a
@@ -722,15 +722,11 @@ def few_above_noise(arr: np.ndarray, levels: dict, p: dict, error: str, notes: l
     notes : list of str
         The frame's notes; the ``qc no-background`` note is appended.
 
-    Returns
-    -------
-    str
-        "" (go on); the note is appended to ``notes``.
-
     Raises
     ------
     ValueError
-        With ``error``, where the test does not hold.
+        With ``error``, where the test does not hold (otherwise the note is appended and the frame
+        goes on as one with a background).
     """
     share = np.count_nonzero(arr > levels["noise"]) / arr.size
     if not NOISE_ONLY_FRACTION <= share <= FEW_ABOVE_NOISE:
@@ -738,7 +734,6 @@ def few_above_noise(arr: np.ndarray, levels: dict, p: dict, error: str, notes: l
     notes.append(f"segment-grains: qc no-background: Otsu's classes found no background, but only "
                  f"{100 * share:.2f} % of the frame stands {p['noise_k']:g} background sigmas above the most "
                  "common level: grains taken above it (a textured background; check the frame)")
-    return ""
 
 
 def second_look(arr: np.ndarray, raw: np.ndarray | None, pixel_size_nm: float, p: dict, why: str,

@@ -328,7 +328,8 @@ def grainhabit_tile_levels(step, sample, params):
         empty = sg.check_frame(arr, levels, p)
     except ValueError as err:
         # as on a whole frame (segment_grains.segment_image), without its packed-field second look
-        empty = sg.few_above_noise(arr, levels, p, str(err), notes)
+        sg.few_above_noise(arr, levels, p, str(err), notes)
+        empty = ""
     return {"levels": levels, "empty": empty, "notes": notes + ([empty] if empty else [])}
 
 

@@ -37,7 +37,7 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.segment.band_flood import watershed_window
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask, remember_hull_count, shape_key
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask, remember_hull_count, shape_key, tight_hull
 from grainhabit.plugins.segment.runs import maxima_by_label
 
 #: Fractions of the component's largest inscribed radius tried as h.
@@ -140,7 +140,7 @@ def concavity_depth(mask: np.ndarray) -> float:
         return known
     # skimage.morphology.convex_hull_image, filled row by row (hull_fill; equal pixel for pixel); its pixel
     # count noted for hull_fill.hull_pixel_count (the seam pass asks for the same grains' hulls)
-    hull = convex_hull_mask(tight)
+    hull = tight_hull(tight, key)
     remember_hull_count(key, int(np.count_nonzero(hull)))
     pocket = hull & ~tight
     depth = _pocket_depth(tight, pocket)
