@@ -83,6 +83,46 @@ def _check_columns(frame: FrameData) -> None:
         raise ValueError(f"{len(frame.outlines)} outlines for {n} grains")
 
 
+def read_calibrated(host, ref: FrameRef, input_options: dict) -> FrameData:
+    """Read one frame with the readers and give it the pixel size the workflow's ``input`` section decides.
+
+    Parameters
+    ----------
+    host : grainhabit host
+    ref : FrameRef
+        As a reader listed it.
+    input_options : dict
+        The workflow's ``input`` section: ``calibration`` (``override``
+        replaces the file's own pixel size by ``pixel_size_nm``) and
+        ``pixel_size_nm`` (also the fallback for files that state none).
+
+    Returns
+    -------
+    FrameData
+        With a finite ``pixel_size_nm`` (nm per pixel).
+
+    Raises
+    ------
+    ValueError
+        If no reader answers, or neither the file nor the options give a pixel size.
+    """
+    frame = host.first_answer("grainhabit_read_frame", ref=ref, options=input_options)
+    if frame is None:
+        raise ValueError(f"no reader plugin for {ref.source} (listed by {ref.reader or '?'})")
+    if not isinstance(frame, FrameData):
+        raise TypeError(f"reader returned {type(frame).__name__}, expected FrameData")
+    fallback = input_options.get("pixel_size_nm")
+    if input_options.get("calibration") == "override" and frame.calibration != "workflow":
+        # input.calibration: override applies to every reader, also one that does not know the key
+        frame = frame.replace(pixel_size_nm=float(fallback), calibration="workflow").with_note(
+            f"input.calibration: override: {fallback:g} nm used instead of the file's own")
+    if not (frame.pixel_size_nm and np.isfinite(frame.pixel_size_nm)):
+        if fallback is None:
+            raise ValueError(f"{ref.source}: the file carries no pixel size and input.pixel_size_nm is not set")
+        frame = frame.replace(pixel_size_nm=float(fallback), calibration="workflow")
+    return frame
+
+
 def _fail(record: dict, where: str, exc: BaseException) -> dict:
     record["status"] = "failed"
     record["error"] = f"{where}: {exc.__class__.__name__}: {exc}".replace("\n", " ")[:500]
@@ -167,21 +207,7 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
         return chain_tiles.run_by_tiles(ref, sample, job, host, budget, record, result, t_start)
     try:
         t0, c0 = time.perf_counter(), time.thread_time()
-        frame = host.first_answer("grainhabit_read_frame", ref=ref, options=job.input_options)
-        if frame is None:
-            raise ValueError(f"no reader plugin for {ref.source} (listed by {ref.reader or '?'})")
-        if not isinstance(frame, FrameData):
-            raise TypeError(f"reader returned {type(frame).__name__}, expected FrameData")
-        fallback = job.input_options.get("pixel_size_nm")
-        if job.input_options.get("calibration") == "override" and frame.calibration != "workflow":
-            # input.calibration: override applies to every reader, also one that does not know the key
-            frame = frame.replace(pixel_size_nm=float(fallback), calibration="workflow").with_note(
-                f"input.calibration: override: {fallback:g} nm used instead of the file's own")
-        if not (frame.pixel_size_nm and np.isfinite(frame.pixel_size_nm)):
-            if fallback is None:
-                raise ValueError(f"{ref.source}: the file carries no pixel size and input.pixel_size_nm is not set")
-            frame = frame.replace(pixel_size_nm=float(fallback), calibration="workflow")
-        frame = frame.replace(sample=sample)
+        frame = read_calibrated(host, ref, job.input_options).replace(sample=sample)
         record.update(pixel_size_nm=float(frame.pixel_size_nm), calibration=frame.calibration,
                       rows=int(frame.raw.shape[0]), cols=int(frame.raw.shape[1]))
         result["thumb"], result["thumb_factor"] = thumbnail(frame.raw)

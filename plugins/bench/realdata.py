@@ -4,7 +4,8 @@ Scores the default preprocess and segment steps with
 :func:`grainhabit.plugins.survey.score_masks.score_folder` (centroid inside
 the particle's mask, at most one grain per particle, border objects left
 out, median ECD error; frames with particles, no grain and no QC flag are
-*silently empty*). By default it reads the EMPS training images kept beside
+*silently empty*); pictures are read as ``grainhabit run`` reads them (an info
+strip cropped, drawn marks masked, the file's own calibration). By default it reads the EMPS training images kept beside
 the repository (``../shared/realdata/emps_train``: images and instance masks;
 B. Yildirim and J. M. Cole, J. Chem. Inf. Model. 61 (2021) 1136,
 doi:10.1021/acs.jcim.0c01455), scored in pixels; any other folder pair can
@@ -46,7 +47,9 @@ def run(argv) -> int:
     ap.add_argument("--every", type=int, default=1, help="every N-th picture only (default 1: all)")
     ap.add_argument("--offset", type=int, default=0,
                     help="start the every-N-th selection at this picture (default 0), for a second subset")
-    ap.add_argument("--pixel-size-nm", type=float, default=1.0, help="pixel size given (default 1: pixels)")
+    ap.add_argument("--pixel-size-nm", type=float, default=None,
+                    help="pixel size used instead of the files' own (default: each file's own, 1 where a file "
+                         "states none: pixels)")
     ap.add_argument("--outline", choices=("half-height", "outer"), default="half-height",
                     help="segment-grains' outline convention (default half-height; outer: drawn to the edge's foot, "
                          "as hand-drawn masks are)")

@@ -38,6 +38,8 @@ GRAINHABIT_API = 1
 
 #: Picture suffixes looked for in the image folder.
 IMAGE_SUFFIXES = (".png", ".tif", ".tiff", ".jpg", ".jpeg", ".bmp")
+#: Files beside pictures that hold no pixels of their own (calibration text, a TIA series' index).
+COMPANION_SUFFIXES = (".txt", ".hdr", ".emi", ".xml", ".json", ".csv", ".md")
 
 
 def border_ids(labels: np.ndarray) -> np.ndarray:
@@ -143,17 +145,29 @@ def summarise(frames: list[dict]) -> dict:
 def pair_files(images: Path, masks: Path) -> list[tuple[Path, Path]]:
     """Pictures of ``images`` with a mask of the same stem in ``masks``.
 
+    A picture may be in any format the readers read (TIFF, PNG, DM3/DM4,
+    EMD, MRC, ...); companion files that hold no pixels (:data:`COMPANION_SUFFIXES`:
+    calibration text beside a bitmap, a TIA ``.emi``) are not pictures.
+
     Raises
     ------
     ValueError
-        If a folder is missing or no picture has a mask.
+        If a folder is missing, no picture has a mask, or two pictures share a mask.
     """
     for d in (images, masks):
         if not d.is_dir():
             raise ValueError(f"{d}: not a folder")
     by_stem = {p.stem: p for p in masks.iterdir() if p.suffix.lower() in IMAGE_SUFFIXES}
-    pairs = [(p, by_stem[p.stem]) for p in sorted(images.iterdir())
-             if p.suffix.lower() in IMAGE_SUFFIXES and p.stem in by_stem]
+    pairs, seen = [], {}
+    for p in sorted(images.iterdir()):
+        if p.name.startswith(".") or not p.is_file() or p.suffix.lower() in COMPANION_SUFFIXES:
+            continue
+        if p.stem in by_stem:
+            if p.stem in seen:
+                raise ValueError(f"{images}: two pictures for the mask {by_stem[p.stem].name}: "
+                                 f"{seen[p.stem].name} and {p.name}")
+            seen[p.stem] = p
+            pairs.append((p, by_stem[p.stem]))
     if not pairs:
         raise ValueError(f"{images}: no picture has a mask of the same name in {masks}")
     return pairs
@@ -201,62 +215,131 @@ def read_mask(path: Path) -> np.ndarray:
     return arr.astype(np.int64)
 
 
-def find_grains(host, image: np.ndarray, pixel_size_nm: float, steps: list[tuple[str, dict]],
-                source: str = "") -> tuple[np.ndarray, list[str]]:
-    """Run the preprocess and segment steps on one picture.
+def read_picture(host, path: Path, input_options: dict):
+    """A picture read the way ``grainhabit run`` reads it.
+
+    The readers that would list and read the file in a run do so here: an
+    instrument's own format and calibration, an info strip cropped, drawn
+    marks masked (:mod:`grainhabit.plugins.readers`); the pixel size follows
+    ``input_options`` as in a run (:func:`grainhabit.task.read_calibrated`).
+    Of a file holding several frames, the first is read.
 
     Parameters
     ----------
     host : grainhabit host
-    image : ndarray, shape (rows, cols)
-    pixel_size_nm : float
+    path : Path
+    input_options : dict
+        A workflow's ``input`` section (``calibration``, ``pixel_size_nm``, ...).
+
+    Returns
+    -------
+    FrameData
+
+    Raises
+    ------
+    ValueError
+        If no reader lists the file, or it cannot be read.
+    """
+    from grainhabit.task import read_calibrated
+
+    refs = host.first_answer("grainhabit_list_frames", path=str(path), options=input_options)
+    if not refs:
+        raise ValueError(f"{path}: no reader recognises this file")
+    return read_calibrated(host, refs[0], input_options)
+
+
+def find_grains(host, frame, steps: list[tuple[str, dict]]) -> tuple[np.ndarray, list[str]]:
+    """Run the preprocess and segment steps on one frame as read (:func:`read_picture`).
+
+    Parameters
+    ----------
+    host : grainhabit host
+    frame : FrameData
     steps : list of (step name, params)
         In chain order, e.g. ``[("flatten-background", {}), ("segment-grains", {})]``.
 
     Returns
     -------
-    labels : ndarray of int32, shape (rows, cols)
+    labels : ndarray of int32, shape of ``frame.raw``
     notes : list of str
         The frame's notes (QC flags among them).
     """
-    from grainhabit.frame import FrameData
-
-    frame = FrameData(source=source, sample="score", raw=image, pixel_size_nm=float(pixel_size_nm),
-                      calibration="command line")
     for name, params in steps:
         frame = host.call_step(name, frame=frame, params=params)
-    labels = frame.labels if frame.labels is not None else np.zeros(image.shape, np.int32)
+    labels = frame.labels if frame.labels is not None else np.zeros(np.shape(frame.raw)[:2], np.int32)
     return labels, list(frame.notes)
 
 
-def score_folder(images: Path, masks: Path, pixel_size_nm: float = 1.0, every: int = 1,
+def on_mask_grid(labels: np.ndarray, shape: tuple, source: str) -> np.ndarray:
+    """Labels of a frame as read, placed on the grid of the picture's mask.
+
+    A reader crops an info strip off the bottom of a picture; those rows get
+    no grain. A frame resampled to square pixels cannot be compared with a
+    mask drawn on the stored grid.
+
+    Raises
+    ------
+    ValueError
+        If the frame is not the picture's top rows.
+    """
+    rows, cols = labels.shape
+    if (rows, cols) == tuple(shape):
+        return labels
+    if cols == shape[1] and rows < shape[0]:
+        out = np.zeros(shape, labels.dtype)
+        out[:rows] = labels
+        return out
+    raise ValueError(f"{source}: read as {rows} x {cols} pixels (resampled), the mask is {shape[0]} x {shape[1]}")
+
+
+def score_folder(images: Path, masks: Path, pixel_size_nm: float | None = None, every: int = 1,
                  steps: list[tuple[str, dict]] | None = None, host=None, progress=None,
-                 offset: int = 0) -> dict:
+                 offset: int = 0, input_options: dict | None = None) -> dict:
     """Score the chain on every ``every``-th annotated picture of a folder, from the ``offset``-th.
+
+    Pictures are read as a run reads them (:func:`read_picture`).
+
+    Parameters
+    ----------
+    images, masks : Path
+        Folders; a picture is scored when ``masks`` holds a file of the same stem.
+    pixel_size_nm : float, optional
+        Pixel size (nm) used instead of the files' own; None: each file's own, and 1 nm (sizes in
+        pixels) where a file states none.
+    input_options : dict, optional
+        A workflow's ``input`` section (its calibration settings apply).
 
     Returns
     -------
     dict
         :func:`summarise` totals plus ``per_frame`` (name, counts, qc, error).
-        A picture whose steps fail counts as found nothing, with its error
-        recorded (and as flagged, since the run would record it as failed).
+        A picture whose reading or steps fail counts as found nothing, with its
+        error recorded (and as flagged, since the run would record it as failed).
     """
     from grainhabit.manager import make_host
     from grainhabit.task import qc_codes
 
     if every < 1:
         raise ValueError(f"every must be >= 1, got {every}")
+    options = dict(input_options or {})
+    if pixel_size_nm is not None:
+        if not pixel_size_nm > 0:
+            raise ValueError(f"pixel_size_nm must be > 0, got {pixel_size_nm}")
+        options.update(calibration="override", pixel_size_nm=float(pixel_size_nm))
+    elif options.get("pixel_size_nm") is None:
+        options["pixel_size_nm"] = 1.0
     host = host or make_host()
     steps = steps or [("flatten-background", {}), ("segment-grains", {})]
     frames = []
     for img_path, mask_path in pair_files(Path(images), Path(masks))[offset::every]:
-        image, truth = read_gray(img_path), read_mask(mask_path)
+        truth = read_mask(mask_path)
         t0 = time.perf_counter()
         error = ""
         try:
-            labels, notes = find_grains(host, image, pixel_size_nm, steps, str(img_path))
+            labels, notes = find_grains(host, read_picture(host, img_path, options), steps)
+            labels = on_mask_grid(labels, truth.shape, str(img_path))
         except ValueError as exc:
-            labels, notes, error = np.zeros(image.shape, np.int32), [], str(exc)
+            labels, notes, error = np.zeros(truth.shape, np.int32), [], str(exc)
         s = score_frame(truth, labels)
         s.update(name=img_path.name, found_any=bool(labels.max() > 0), error=error,
                  qc=qc_codes(notes, labels.max() == 0) if not error else "failed",
@@ -279,6 +362,7 @@ def format_summary(res: dict) -> str:
 
 def _run(args) -> int:
     steps = [("flatten-background", {}), ("segment-grains", {})]
+    options = None
     try:
         if args.workflow:
             from grainhabit.manager import make_host
@@ -287,9 +371,10 @@ def _run(args) -> int:
             host = make_host(tuple(plugin_specs(args.workflow)))
             plan = validate(args.workflow, host)
             steps = [(s.name, dict(s.params)) for s in plan.frame_steps if s.stage in ("preprocess", "segment")]
+            options = dict(plan.config.get("input") or {})
         else:
             host = None
-        if args.pixel_size_nm <= 0:
+        if args.pixel_size_nm is not None and args.pixel_size_nm <= 0:
             raise ValueError(f"--pixel-size-nm must be > 0, got {args.pixel_size_nm}")
 
         def progress(s):
@@ -299,7 +384,7 @@ def _run(args) -> int:
                       file=sys.stderr)
 
         res = score_folder(Path(args.images), Path(args.masks), args.pixel_size_nm, args.every, steps, host,
-                           progress)
+                           progress, input_options=options)
     except (ValueError, OSError) as exc:
         if getattr(args, "debug", False):
             raise
@@ -317,15 +402,19 @@ def grainhabit_add_commands(subparsers):
     """Add ``grainhabit score-masks``."""
     p = subparsers.add_parser(
         "score-masks", help="score grain finding against your own annotated pictures",
-        description="Run the preprocess and segment steps on every picture of IMAGES that has a mask of the "
-                    "same name in MASKS (0 background, one integer per particle) and print recall, precision "
-                    "(a grain counts when its centroid lies in a particle, one per particle; border objects "
-                    "left out) and the median ECD error.")
-    p.add_argument("images", help="folder of pictures (PNG, TIFF, JPEG)")
-    p.add_argument("masks", help="folder of instance masks with the same file stems")
-    p.add_argument("--pixel-size-nm", type=float, default=1.0,
-                   help="pixel size given to the steps (default 1: sizes are then in pixels)")
-    p.add_argument("--workflow", default=None, help="take the preprocess and segment steps from this workflow")
+        description="Read every picture of IMAGES that has a mask of the same name in MASKS (0 background, one "
+                    "integer per particle) as a run reads it, run the preprocess and segment steps and print "
+                    "recall, precision (a grain counts when its centroid lies in a particle, one per particle; "
+                    "border objects left out) and the median ECD error.")
+    p.add_argument("images", help="folder of pictures in any format the readers read (TIFF, PNG, JPEG, DM3/DM4, "
+                                  "EMD, MRC, ...)")
+    p.add_argument("masks", help="folder of instance masks (PNG or TIFF) with the same file stems")
+    p.add_argument("--pixel-size-nm", type=float, default=None,
+                   help="pixel size used instead of the files' own (default: each file's own, and 1 where a file "
+                        "states none, so that sizes are in pixels)")
+    p.add_argument("--workflow", default=None,
+                   help="take the preprocess and segment steps and the input section's calibration settings from "
+                        "this workflow")
     p.add_argument("--every", type=int, default=1, help="score every N-th picture only (default 1)")
     p.add_argument("--json", action="store_true", help="print JSON with per-frame counts")
     p.add_argument("--verbose", action="store_true", help="print one line per picture on stderr")
