@@ -60,3 +60,57 @@ def test_clipped_bright_bottom_with_grains_is_not_a_strip():
     rr, cc = disk((380, 300), 50, shape=img.shape)
     img[rr, cc] = 25000
     assert overlays.find_info_strip(img.astype(np.uint16)) == 0
+
+
+def _jpeg(img: np.ndarray, quality: int = 75) -> np.ndarray:
+    """``img`` after a round trip through JPEG (Pillow), as a figure exported for a paper carries it."""
+    import io
+
+    from PIL import Image
+
+    buf = io.BytesIO()
+    Image.fromarray(img).save(buf, format="JPEG", quality=quality)
+    buf.seek(0)
+    return np.asarray(Image.open(buf).convert("L"))
+
+
+def test_info_strip_of_a_jpeg_figure_is_found_within_its_compression_noise():
+    # a smooth SEM-like field (noise sd 3 levels) over a black data bar with white text, saved as JPEG: the
+    # bar's fill is no longer one value, so the exact walk finds nothing; the lossy walk finds the bar's top
+    # within a row (invented test data)
+    field = ndimage_smooth(noisy((240, 320), seed=7, mean=80, sd=12))
+    img = with_info_strip(field, 30, background=5, ink=250)
+    img[241:, :] = 5  # no frame line: the bar starts where the field ends
+    for c0 in range(10, 300, 14):  # text: 2-px strokes
+        img[250:262, c0:c0 + 2] = 250
+        img[255:257, c0:c0 + 8] = 250
+    lossy = _jpeg(img)
+    assert overlays.exact_info_strip(lossy) == 0
+    assert abs(overlays.find_info_strip(lossy) - 30) <= 1
+
+
+def test_smooth_background_under_particles_with_a_caption_is_no_strip():
+    # the dark, smooth background between large particles along the bottom of a JPEG figure, with a caption
+    # written on it: flat within the compression noise, of its own colour, holding something drawn; but the
+    # particles end along a wavy line, not a straight full-width edge (invented test data)
+    rows, cols = 256, 320
+    img = noisy((rows, cols), seed=8, mean=150, sd=12)
+    edge = 200 + 15 * np.sin(2 * np.pi * np.arange(cols) / 80.0)
+    below = np.arange(rows)[:, None] >= edge[None, :]
+    img[below] = ndimage_smooth(noisy((rows, cols), seed=9, mean=20, sd=12))[below]
+    for c0 in range(20, 200, 12):  # the caption
+        img[236:248, c0:c0 + 2] = 250
+        img[241:243, c0:c0 + 7] = 250
+    lossy = _jpeg(img)
+    assert overlays.find_info_strip(lossy) == 0
+    straight = img.copy()  # the same with the particles ending along a straight row: a strip
+    straight[200:] = np.where(below[200:], img[200:], ndimage_smooth(noisy((rows, cols), seed=9, mean=20, sd=12))[200:])
+    straight[:200] = noisy((200, cols), seed=8, mean=150, sd=12)
+    assert abs(overlays.find_info_strip(_jpeg(straight)) - 56) <= 2
+
+
+def ndimage_smooth(img: np.ndarray) -> np.ndarray:
+    """``img`` smoothed by a 2 px Gaussian (scipy), as a noise-reduced SEM field looks."""
+    from scipy import ndimage
+
+    return np.clip(ndimage.gaussian_filter(img.astype(float), 2.0), 0, 255).astype(np.uint8)

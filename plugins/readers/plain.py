@@ -19,7 +19,7 @@ from . import sidecar
 from .common import check_size, describe, finish, has_magic, refs_for
 
 GRAINHABIT_API = 1
-__version__ = "1.0"
+__version__ = "1.1"
 NAME = "read-bitmap"
 
 

@@ -38,7 +38,7 @@ from .calibration import Calibration, is_screen_dpi, make, unit_to_nm
 from .common import check_size, describe, finish, has_magic, refs_for, suffix
 
 GRAINHABIT_API = 1
-__version__ = "2.0"
+__version__ = "2.1"
 NAME = "read-tiff"
 SUFFIXES = (".tif", ".tiff", ".btf", ".tf8", ".tf2")
 
