@@ -380,7 +380,8 @@ def _run(args) -> int:
         def progress(s):
             if args.verbose:
                 print(f"{s['name']}: {s['particles_found']}/{s['particles']} particles, "
-                      f"{s['grains_true']}/{s['grains']} grains true{'  qc ' + s['qc'] if s['qc'] else ''}",
+                      f"{s['grains_true']}/{s['grains']} grains true{'  qc ' + s['qc'] if s['qc'] else ''}"
+                      f"{': ' + s['error'] if s['error'] else ''}",
                       file=sys.stderr)
 
         res = score_folder(Path(args.images), Path(args.masks), args.pixel_size_nm, args.every, steps, host,
