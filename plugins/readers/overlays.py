@@ -138,16 +138,7 @@ def exact_info_strip(image: np.ndarray, flat_rows=None) -> int:
     while r >= lowest and not flat[r] and skipped < 2:
         r, skipped = r - 1, skipped + 1
     bottom = r
-    top = None
-    run_noisy = 0
-    while r >= lowest:
-        if flat[r]:
-            top, run_noisy = r, 0
-        else:
-            run_noisy += 1
-            if run_noisy >= 4:
-                break
-        r -= 1
+    top = _strip_top(flat, r, lowest)
     if top is None:
         return 0
     height = n_rows - top
@@ -165,6 +156,23 @@ def exact_info_strip(image: np.ndarray, flat_rows=None) -> int:
     if not above or np.median(list(above.values())) >= 0.25:
         return 0  # the image above is as flat as the strip: no boundary to trust
     return int(height)
+
+
+def _strip_top(of_strip, r: int, lowest: int) -> int | None:
+    """Walk up from row ``r`` to ``lowest``: the highest row of the strip's kind before 4 rows of another kind.
+
+    ``of_strip[row]`` tells whether a row is of the strip's kind; None when no row from ``r`` up is.
+    """
+    top, other = None, 0
+    while r >= lowest:
+        if of_strip[r]:
+            top, other = r, 0
+        else:
+            other += 1
+            if other >= 4:
+                break
+        r -= 1
+    return top
 
 
 def _row_modes(block: np.ndarray, tolerance: int) -> tuple[np.ndarray, np.ndarray]:
@@ -230,15 +238,7 @@ def lossy_info_strip(image: np.ndarray) -> int:
         i, skipped = i - 1, skipped + 1
     background = int(modes[i])
     of_strip = (np.abs(modes - background) <= 2 * tol) & (near >= LOSSY_MIN_BACKGROUND)
-    top, other = None, 0
-    while i >= 0:
-        if of_strip[i]:
-            top, other = i, 0
-        else:
-            other += 1
-            if other >= 4:
-                break
-        i -= 1
+    top = _strip_top(of_strip, i, 0)
     if top is None:
         return 0
     height = len(modes) - top
