@@ -42,7 +42,7 @@ from .inputs import find_files
 from .listing import ListingIndex, index_path, listing_key, vanished_roots
 from .night import build_night, commit_night, merge_summaries, plan_night, touched_part
 from .results import recover, root_attrs
-from .staging import clean_temporaries, frame_key, is_staged, staging_dir, write_staged
+from .staging import clean_temporaries, frame_key, is_staged, staged_arrays, staged_view, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
 from .workflow import Plan, expand, find_inputs, frame_memory_bytes, template_values
 
@@ -259,6 +259,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             log.info("%d frames already staged for this workflow: reused (use --fresh to redo)",
                      outcome.frames_reused)
         transient: dict[str, dict] = {}
+        kept: dict[str, dict] = {}  # staged results of tonight's frames, as read_staged would give them
         processed: set = set()
         steps = tuple((s.name, s.stage, s.params) for s in plan.frame_steps)
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]),
@@ -297,7 +298,9 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                         continue
                     rec = res["record"]
                     with obs.phase("stage_write"):
-                        write_staged(stage, key, res)
+                        arrays = staged_arrays(res)
+                        write_staged(stage, key, res, arrays)
+                        kept[key] = staged_view(arrays)  # as read back from the file: consolidated from memory
                     outcome.frames_processed += 1
                     if rec["status"] != "ok":
                         log.error("frame %s failed: %s", f.ref.source, rec["error"])
@@ -309,7 +312,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 closer.close(executor)  # beside consolidation; the run waits for it before it returns
 
         with obs.phase("consolidate"):
-            night = plan_night(results, frames, problems, transient, stage, processed,
+            night = plan_night(results, frames, problems, {**kept, **transient}, stage, processed,
                                plan.config["input"]["on_missing"], _failed_result, fresh=fresh,
                                sample_of=lambda path: _problem_sample(plan, path))
             built = build_night(results, night, extra_columns=_declared_columns(host, plan))
