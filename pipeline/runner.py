@@ -291,7 +291,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 # once fewer frames are left than the workers can run at once, a core is idle until the last
                 # frame ends: the main process warms up for the consolidation there (never in-process frames)
                 slots = max(1, int(getattr(executor, "n_workers", 1) or 1) * int(getattr(executor, "threads", 1) or 1))
-                warm_after = None if getattr(executor, "in_process", True) else max(0, len(items) - slots)
+                warm_after = None if getattr(executor, "in_process", True) else max(0, len(items) - slots + 1)
                 if warm_after == 0:
                     warm = _Background(_warm_for_consolidation, host)
                 for done, (key, res) in enumerate(executor.map_unordered(process_frame, items), start=1):
