@@ -23,7 +23,6 @@ from __future__ import annotations
 import json
 import os
 import shutil
-import threading
 import uuid
 import warnings
 from pathlib import Path
@@ -88,8 +87,7 @@ def _spill(held: dict, folder: Path, made: set, metadata_too: bool) -> None:
         if target.parent not in made:
             target.parent.mkdir(parents=True, exist_ok=True)
             made.add(target.parent)
-        data = held.pop(key)
-        target.write_bytes(data if isinstance(data, bytes) else data.to_bytes())
+        target.write_bytes(held.pop(key).to_bytes())
 
 
 def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:
@@ -102,9 +100,7 @@ def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_at
     checks them identical), in about half the time: zarr's per-array cost of
     going through its event loop to the file system (about 4 ms an array on
     the development machine, a results store has about 110 arrays) is paid
-    against memory. The files are written by a thread of their own
-    (:class:`_Spiller`) while the next group is encoded; at most two groups'
-    chunks are held in memory at a time.
+    against memory. At most one group's chunks are held in memory at a time.
 
     Parameters
     ----------
@@ -126,82 +122,12 @@ def write_groups(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_at
     store = zarr.storage.MemoryStore(held)
     root = zarr.open_group(store, mode="w-", zarr_format=3)
     root.attrs.update(root_attrs or {})
-    with _Spiller(folder) as spiller:
-        for name, ds in groups.items():
-            as_stored(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
-            spiller.spill(held, metadata_too=False)
-        consolidate(store)
-        spiller.spill(held, metadata_too=True)
-
-
-class _Spiller:
-    """Writes the objects of an in-memory zarr store to files in a thread of its own (see :func:`_spill`).
-
-    Creating a folder or a file costs about 0.2-0.3 ms on the development
-    machine's disk, some 0.15 s for a results store, spent in the kernel
-    without Python's global lock; in this thread it overlaps the encoding of
-    the next group (Python). The metadata documents are written as soon as
-    their group is encoded (a copy; the in-memory store keeps them for the
-    consolidation), and again at the end only where the consolidation changed
-    them (the root document), so little is left to write after the last group.
-    :meth:`spill` moves the chunks out of the in-memory store at once (as
-    :func:`_spill` drops them); leaving the ``with`` block waits until every
-    file is written and raises the thread's error, if any. The files are
-    those :func:`_spill` writes, byte for byte.
-    """
-
-    def __init__(self, folder: Path):
-        import queue
-
-        self.folder = folder
-        self.made = {folder}
-        self.written: dict[str, bytes] = {}
-        self.error: BaseException | None = None
-        self.todo: queue.Queue = queue.Queue()
-        self.thread = threading.Thread(target=self._run, name="grainhabit-spill", daemon=True)
-
-    def __enter__(self):
-        self.thread.start()
-        return self
-
-    def spill(self, held: dict, metadata_too: bool) -> None:
-        """Hand the objects of ``held`` to the thread: all, or the chunks and a copy of the metadata documents.
-
-        The metadata documents stay in memory until ``metadata_too`` (they are
-        consolidated at the end); a copy of each is written at once, and a
-        document is written again at the end only if its bytes changed since.
-        """
-        if self.error is not None:
-            raise self.error
-        taken = {}
-        for key in list(held):
-            if not key.endswith(METADATA_FILE):
-                taken[key] = held.pop(key)
-                continue
-            doc = held.pop(key) if metadata_too else held[key]
-            data = doc.to_bytes()
-            if self.written.get(key) != data:
-                self.written[key] = data
-                taken[key] = data
-        self.todo.put(taken)
-
-    def _run(self) -> None:
-        while True:
-            taken = self.todo.get()
-            if taken is None:
-                return
-            if self.error is None:
-                try:
-                    _spill(taken, self.folder, self.made, metadata_too=True)
-                except BaseException as exc:  # raised in the writing thread by spill() or on leaving
-                    self.error = exc
-
-    def __exit__(self, *exc):
-        self.todo.put(None)
-        self.thread.join()
-        if self.error is not None and exc[0] is None:
-            raise self.error
-        return False
+    made = {folder}
+    for name, ds in groups.items():
+        as_stored(ds).to_zarr(store, group=name, mode="a", zarr_format=3, consolidated=False)
+        _spill(held, folder, made, metadata_too=False)
+    consolidate(store)
+    _spill(held, folder, made, metadata_too=True)
 
 
 def warm_up() -> None:

@@ -94,16 +94,3 @@ def test_staged_view_equals_the_staged_file_read_back(tmp_path, n):
     for mine, read in pairs:
         assert mine.dtype == read.dtype and mine.shape == read.shape
         np.testing.assert_array_equal(mine, read)
-
-
-def test_results_writer_raises_what_its_file_thread_met(tmp_path, monkeypatch):
-    import xarray as xr
-
-    from grainhabit import results
-
-    def refuse(*args, **kwargs):
-        raise OSError(28, "No space left on device")
-
-    monkeypatch.setattr(results, "_spill", refuse)
-    with pytest.raises(OSError, match="No space left"):
-        results.write_groups(tmp_path / "full.zarr", {"grains": xr.Dataset({"ecd_nm": ("grain", np.ones(3))})})
