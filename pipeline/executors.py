@@ -75,6 +75,8 @@ class SerialExecutor:
     n_workers = 1
     description = "serial (in-process)"
     advice: tuple = ()
+    #: The frames run in the calling thread (work beside them would not overlap them).
+    in_process = True
 
     def start(self) -> None:
         pass
@@ -119,6 +121,9 @@ class DaskExecutor:
     start_method : {"auto", "fork", "spawn"}
         How a local cluster starts its worker processes (:func:`start_method`).
     """
+
+    #: The frames run in other processes (the caller's process is free while they run).
+    in_process = False
 
     def __init__(self, address=None, workers="auto", threads_per_worker=1, memory_limit="auto",
                  upload=(), max_in_flight=0, dashboard=False, batch=None, start_method="auto"):

@@ -41,8 +41,8 @@ from .observe import RunObserver
 from .inputs import find_files
 from .listing import ListingIndex, index_path, listing_key, vanished_roots
 from .night import build_night, commit_night, merge_summaries, plan_night, touched_part
-from .results import recover, root_attrs
-from .staging import clean_temporaries, frame_key, is_staged, staging_dir, write_staged
+from .results import recover, root_attrs, warm_up
+from .staging import clean_temporaries, frame_key, is_staged, staged_arrays, staged_view, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
 from .workflow import Plan, expand, find_inputs, frame_memory_bytes, template_values
 
@@ -259,10 +259,12 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             log.info("%d frames already staged for this workflow: reused (use --fresh to redo)",
                      outcome.frames_reused)
         transient: dict[str, dict] = {}
+        kept: dict[str, dict] = {}  # staged results of tonight's frames, as read_staged would give them
         processed: set = set()
         steps = tuple((s.name, s.stage, s.params) for s in plan.frame_steps)
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]),
                        frame_memory=frame_memory_bytes(plan.config["execution"].get("frame_memory", "auto")))
+        warm = None
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
             executor = obs.executor(make_executor(plan.config["execution"], upload=upload))
@@ -286,7 +288,15 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                     by_key.setdefault(f.key, f)
                 for key, f in by_key.items():
                     items.append((key, (f.ref, f.sample, job)))
-                for key, res in executor.map_unordered(process_frame, items):
+                # once fewer frames are left than the workers can run at once, a core is idle until the last
+                # frame ends: the main process warms up for the consolidation there (never in-process frames)
+                slots = max(1, int(getattr(executor, "n_workers", 1) or 1) * int(getattr(executor, "threads", 1) or 1))
+                warm_after = None if getattr(executor, "in_process", True) else max(0, len(items) - slots + 1)
+                if warm_after == 0:
+                    warm = _Background(_warm_for_consolidation, host)
+                for done, (key, res) in enumerate(executor.map_unordered(process_frame, items), start=1):
+                    if done == warm_after:
+                        warm = _Background(_warm_for_consolidation, host)
                     f = by_key[key]
                     processed.add(key)
                     if isinstance(res, Exception):
@@ -297,7 +307,9 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                         continue
                     rec = res["record"]
                     with obs.phase("stage_write"):
-                        write_staged(stage, key, res)
+                        arrays = staged_arrays(res)
+                        write_staged(stage, key, res, arrays)
+                        kept[key] = staged_view(arrays)  # as read back from the file: consolidated from memory
                     outcome.frames_processed += 1
                     if rec["status"] != "ok":
                         log.error("frame %s failed: %s", f.ref.source, rec["error"])
@@ -308,8 +320,10 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 progress.close()
                 closer.close(executor)  # beside consolidation; the run waits for it before it returns
 
+        if warm is not None:
+            warm.join()
         with obs.phase("consolidate"):
-            night = plan_night(results, frames, problems, transient, stage, processed,
+            night = plan_night(results, frames, problems, {**kept, **transient}, stage, processed,
                                plan.config["input"]["on_missing"], _failed_result, fresh=fresh,
                                sample_of=lambda path: _problem_sample(plan, path))
             built = build_night(results, night, extra_columns=_declared_columns(host, plan))
@@ -406,6 +420,43 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 log.info("report written to %s", outcome.report)
     outcome.seconds = time.monotonic() - t_start
     return outcome
+
+
+def _warm_for_consolidation(host: Host) -> None:
+    """What the main process first does after the last frame, done early on throwaway data.
+
+    Runs in a :class:`_Background` thread once fewer frames are left than
+    the workers can run at once, so that it takes a core the last frames
+    leave idle (the main process only waits for their results meanwhile):
+    the imports and first calls of xarray and zarr (:func:`grainhabit.results.warm_up`),
+    the distributions' metadata read for the store's ``versions``
+    attribute, and the verdict module that prints the closing lines.
+    Nothing it does changes what the run writes.
+    """
+    warm_up()
+    versions(host)
+    importlib.import_module("grainhabit.plugins.survey.verdicts")
+
+
+class _Background:
+    """Runs ``func(*args)`` in a daemon thread; :meth:`join` waits for it, and logs (never raises) its error."""
+
+    def __init__(self, func, *args):
+        self._error = None
+
+        def target():
+            try:
+                func(*args)
+            except BaseException as exc:  # a warm-up that fails costs only the time it saves
+                self._error = exc
+
+        self._thread = threading.Thread(target=target, name=f"grainhabit-{func.__name__}", daemon=True)
+        self._thread.start()
+
+    def join(self) -> None:
+        self._thread.join()
+        if self._error is not None:
+            log.debug("background %s: %s: %s", self._thread.name, self._error.__class__.__name__, self._error)
 
 
 class _Closer:

@@ -34,11 +34,27 @@ def frame_key(content_hash: str, source: str, sample: str, processing_key: str) 
     return hashlib.sha256(f"{ident}|{sample}|{processing_key}".encode()).hexdigest()[:24]
 
 
-def write_staged(folder: Path, key: str, result: dict) -> Path:
-    """Write one frame's result atomically; return its path."""
+def write_staged(folder: Path, key: str, result: dict, arrays: dict | None = None) -> Path:
+    """Write one frame's result atomically; return its path.
+
+    ``arrays``, if given, is :func:`staged_arrays` of ``result`` (computed
+    once by a caller that also keeps :func:`staged_view` of it).
+    """
     folder.mkdir(parents=True, exist_ok=True)
     final = folder / f"{key}.npz"
     tmp = folder / f".{key}.{os.getpid()}.tmp"
+    if arrays is None:
+        arrays = staged_arrays(result)
+    with open(tmp, "wb") as fh:
+        np.savez(fh, **arrays)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, final)
+    return final
+
+
+def staged_arrays(result: dict) -> dict[str, np.ndarray]:
+    """The arrays a frame's result is staged as (the members of its ``.npz`` file, in order)."""
     arrays = {}
     for name, values in result["columns"].items():
         arr = np.asarray(values)
@@ -51,26 +67,30 @@ def write_staged(folder: Path, key: str, result: dict) -> Path:
     arrays["outline_offsets"] = np.asarray(result["outline_offsets"], dtype=np.int64)
     arrays["thumb"] = np.asarray(result["thumb"], dtype=np.uint8)
     arrays["thumb_factor"] = np.array(float(result.get("thumb_factor", 1.0)))
-    with open(tmp, "wb") as fh:
-        np.savez(fh, **arrays)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, final)
-    return final
+    return arrays
 
 
 def read_staged(path: Path) -> dict:
     """Read a staged frame result written by :func:`write_staged`."""
     with np.load(path, allow_pickle=False) as data:
-        columns = {k[5:]: data[k] for k in data.files if k.startswith("col__")}
-        return {
-            "record": json.loads(str(data["record"])),
-            "columns": columns,
-            "outline_xy": data["outline_xy"],
-            "outline_offsets": data["outline_offsets"],
-            "thumb": data["thumb"],
-            "thumb_factor": float(data["thumb_factor"]),
-        }
+        return staged_view({k: data[k] for k in data.files})
+
+
+def staged_view(arrays: dict[str, np.ndarray]) -> dict:
+    """The result :func:`read_staged` gives for a file of these :func:`staged_arrays`, without the file.
+
+    ``np.savez`` and ``np.load`` give back every array with its dtype,
+    shape and values, so a run keeps this view of each frame it stages and
+    consolidates from it instead of reading the file again.
+    """
+    return {
+        "record": json.loads(str(arrays["record"])),
+        "columns": {k[5:]: arrays[k] for k in arrays if k.startswith("col__")},
+        "outline_xy": arrays["outline_xy"],
+        "outline_offsets": arrays["outline_offsets"],
+        "thumb": arrays["thumb"],
+        "thumb_factor": float(arrays["thumb_factor"]),
+    }
 
 
 def is_staged(folder: Path, key: str) -> bool:

@@ -102,7 +102,7 @@ def test_second_night_opens_only_new_files_and_appends_in_place(tmp_path):
     data = {p for p in opens.paths if p.startswith(str(tmp_path / "data"))}
     assert data == {str(p.resolve()) for p in new}  # no old file opened
     staged = {p for p in opens.paths if p.endswith(".npz")}
-    assert len(staged) == 2  # only the new frames' staged results are read back
+    assert len(staged) == 0  # no staged result read back: the new frames are consolidated from memory
     assert "results appended" in res.stderr
     assert store.stat().st_ino == inode  # updated in place, not a new store swapped in
     after = xr.open_zarr(store, group="grains").load()
@@ -417,5 +417,5 @@ def test_nightly_benchmark_prints_the_ratio_table(tmp_path, capsys):
     rows = [ln.split() for ln in out.splitlines() if ln.strip() and ln.split()[0] in ("3", "9")]
     table = {r[0]: r for r in rows if len(r) == 7}
     assert set(table) == {"3", "9"} and float(table["3"][2]) == 1.0 and float(table["9"][2]) > 0
-    assert table["9"][4] == "0" and table["9"][5] == "2" and table["9"][6] == "0"  # no old file; 2 staged read
+    assert table["9"][4] == "0" and table["9"][5] == "0" and table["9"][6] == "0"  # no old file, no staged read
     assert (tmp_path / "archive-9" / "out" / "r.zarr").exists()
