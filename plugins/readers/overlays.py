@@ -257,7 +257,7 @@ def lossy_info_strip(image: np.ndarray) -> int:
     above_modes, above_near = _row_modes(above, tol)
     if ((np.abs(above_modes - background) <= 2 * tol) & (above_near >= LOSSY_MIN_BACKGROUND)).mean() >= 0.25:
         return 0  # the image above is of the strip's colour: no boundary to trust
-    if np.median(_row_modes(above, 0)[1]) >= 0.9:
+    if np.median(list(_row_flatness(image, range(max(0, start - 40), start)).values())) >= 0.9:
         return 0  # a blank image above (flat to the stored value): nothing imaged to tell the strip from
     up = image[max(0, start - 3):start].astype(np.float64).mean(axis=0)
     down = image[start:start + 3].astype(np.float64).mean(axis=0)
