@@ -106,3 +106,55 @@ def test_compact_particle_on_a_streaked_background_is_no_speck():
     for name, c, speck in seen:
         if specks.COMPACT_MIN_CONTRAST <= c < specks.MIN_CONTRAST:
             assert speck == (name != "disc"), (name, c)
+
+
+def test_least_contrast_grows_as_the_noise_of_a_mean():
+    # the sd of the mean of n independent pixels is sd / sqrt(n) (handbook), and n grows as ECD^2, so the
+    # margin below COMPACT_MIN_ECD_PX scales as 1 / ECD: the product is constant there, MIN_CONTRAST above
+    for ecd in (4.0, 5.0, 7.5, 9.9):
+        assert specks.least_contrast(ecd) * ecd == pytest.approx(specks.MIN_CONTRAST * specks.COMPACT_MIN_ECD_PX)
+    for ecd in (10.0, 14.0, 23.0):
+        assert specks.least_contrast(ecd) == specks.MIN_CONTRAST
+
+
+def _tiny_grain_field(seed, shape=(240, 240), radius=2.5, noise=0.08):
+    """Preprocessed frame (background 0, grains 1) of 49 discs of about 5 px ECD on white noise: a
+    low-magnification field whose grains are all near the smallest outline (as in an SEM survey image)."""
+    rng = np.random.default_rng(seed)
+    img = rng.normal(0.0, noise, shape)
+    centres = [(20 + 33 * i, 20 + 33 * j) for i in range(7) for j in range(7)]
+    for r, c in centres:
+        img[disk((r, c), radius, shape=shape)] += 1.0
+    return img.astype(np.float32), centres
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_field_of_five_pixel_grains_found(seed):
+    img, centres = _tiny_grain_field(seed)
+    # skimage.draw.disk of radius 2.5 covers 21 px: ECD sqrt(4 * 21 / pi) = 5.2 px (handbook pi r^2 geometry)
+    assert int(np.count_nonzero(_tiny_grain_field(seed, noise=0.0)[0] > 0.5)) == 21 * len(centres)
+    labels, _, _ = segment_image(img, 1.0, {})
+    found = [int(labels[r, c]) for r, c in centres]
+    assert sum(1 for f in found if f) >= len(centres) - 1
+    assert len(set(f for f in found if f)) == sum(1 for f in found if f)
+    assert int(labels.max()) <= len(centres)
+    # the floor of earlier versions (6 px) lost the field: the new floor is what finds it
+    old, _, _ = segment_image(img, 1.0, {"min_ecd_px": 6.0})
+    assert int(old.max()) < len(centres) // 2
+
+
+def test_five_pixel_object_needs_twice_the_margin():
+    # discs on white Gaussian noise of sd 0.1 (ring contrast = amplitude / sd, 1.4826 MAD estimating the sd;
+    # handbook): at 6 sds a disc of 12 px ECD is a grain and one of 5 px a speck (it needs 8); at 12 sds both
+    # are grains
+    shape = (80, 80)
+    rng = np.random.default_rng(5)
+    for radius, sds, speck in ((6, 6.0, False), (2.5, 6.0, True), (2.5, 12.0, False), (6, 12.0, False)):
+        part = np.zeros(shape, bool)
+        part[disk((40, 40), radius, shape=shape)] = True
+        for _ in range(3):
+            img = rng.normal(0.0, 0.1, shape)
+            img[part] += sds * 0.1
+            c, is_speck = _judge(img, part)
+            assert abs(c - sds) < 2.0, (radius, sds, c)
+            assert is_speck == speck, (radius, sds, c)

@@ -99,7 +99,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.13",
+    version="2.14",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -123,9 +123,10 @@ STEP = StepInfo(
                   "as hand-drawn masks are (for comparison with hand measurements; see outer_edge.py)."),
         Param("min_ecd_nm", float, 0.0, unit="nm", low=0.0,
               doc="Grains (and split parts) with a smaller equivalent circle diameter are dropped (0: no nm limit)."),
-        Param("min_ecd_px", float, 6.0, unit="px", low=1.0,
+        Param("min_ecd_px", float, 4.0, unit="px", low=1.0,
               doc="Grains smaller than this equivalent circle diameter in pixels are dropped (below it no "
-                  "outline can be measured), whatever the pixel size."),
+                  "outline can be measured), whatever the pixel size; small objects must also stand out of "
+                  "their surroundings, the more the smaller they are (specks.py)."),
         Param("min_area_share", float, population.MIN_AREA_SHARE, low=0.0, high=1.0,
               doc="Objects smaller than this fraction of the frame's typical grain area (the area-weighted median: "
                   "half the grain area lies in larger objects) are dropped as debris or substrate texture (0: off; "
@@ -185,7 +186,7 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
                  local_block_nm: float = 2000.0, local_offset: float = 0.0, min_ecd_nm: float = 40.0,
                  close_nm: float | None = None, refine_nm: float | None = None, gap_level: float = 0.25,
                  split: bool = True, split_depth: float = 0.08, edge_level: float = 0.5,
-                 min_ecd_px: float = 6.0, min_peak: float = 0.3,
+                 min_ecd_px: float = 4.0, min_peak: float = 0.3,
                  reject_annotations: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
     """Label grains in one image (a whole frame or one tile).
 
