@@ -99,7 +99,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.14",
+    version="2.15",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -179,6 +179,12 @@ FEW_GRAINS_MIN = 3
 NOISE_ONLY_FRACTION = 1e-4
 #: Objects below min_peak are kept when at least this many times the smallest grain area (faint plates).
 FAINT_MIN_AREA_FACTOR = 16.0
+#: A low part enclosed by one grain joins it when the two together are at least this solid (interiors_rejoined).
+FACE_SOLIDITY = 0.9
+#: ... and it is at least this share of the two together (interiors_rejoined).
+FACE_SHARE = 0.1
+#: ... and its centre lies within this share of their equal-area radius of theirs (interiors_rejoined).
+FACE_OFFSET = 0.35
 _EIGHT = np.ones((3, 3), bool)
 
 
@@ -281,6 +287,8 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # outline of a faint grain lies outside the few pixels above the threshold, on its edge's gradient)
         if was_split:
             kept = [q for q in parts if above[box][q].mean() >= 0.5]
+            if len(kept) < len(parts):
+                kept = interiors_rejoined(parts, kept, m)
             # every part a "pocket": nothing round it is a grain to enclose it, so the component is one grain
             # that the threshold shows little of (faint, or noisy: on a noisy frame a grain's pixels dip below
             # the threshold in numbers), cut where it is not (a crystal of the Tescan 50000x test file of
@@ -582,6 +590,61 @@ def finish_field(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict,
     n = int(labels.max())
     return place_outlines(arr, *drop_debris(*drop_drawn_marks(
         arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p), p)
+
+
+def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
+    """The kept parts of a split component, each with the low parts it alone encloses as a convex whole.
+
+    :func:`~grainhabit.plugins.segment.touching.enclosed_pockets` takes pixels far below a component's
+    median level, away from its outline, for background enclosed by a ring of grains. A particle seen by
+    its bright rim (the edge effect of secondary-electron images) encloses its own dim face the same
+    way, as dark as the substrate at its centre: dropped as a pocket, it left the particle a ring, its
+    area and ECD a fraction of the particle's (EMPS 226dc58f03: 10 of 24 spheres). A low part is such a
+    face, and joins the part round it, when that one kept part is all it touches within the component
+    and the two together are convex (solidity at least :data:`FACE_SOLIDITY`, ISO 9276-6): a gap
+    enclosed by a heap touches several grains, or leaves the heap with it concave.
+
+    Parameters
+    ----------
+    parts : list of ndarray of bool
+        Every part of the component (masks over its box).
+    kept : list of ndarray of bool
+        The parts mostly above the noise threshold (a sublist of ``parts``).
+    component : ndarray of bool
+        The whole component.
+
+    Returns
+    -------
+    list of ndarray of bool
+        ``kept``, some of them grown by the faces they enclose.
+    """
+    if not kept:
+        return kept
+    owner = np.zeros(component.shape, np.int32)
+    for k, q in enumerate(kept, start=1):
+        owner[q] = k
+    grown = [q.copy() for q in kept]
+    kept_ids = {id(q) for q in kept}
+    for q in parts:
+        if id(q) in kept_ids or not q.any():
+            continue
+        ring = ndi.binary_dilation(q, structure=_EIGHT) & ~q
+        if (ring & ~component).any():
+            continue
+        around = np.unique(owner[ring])
+        if around.size != 1 or around[0] == 0:
+            continue
+        whole = grown[int(around[0]) - 1] | q
+        # a face is a good share of its particle; a gap left in a heap the splitter has not divided yet
+        # (dark_seams, packed fields do later) is a small share of it
+        if np.count_nonzero(q) < FACE_SHARE * np.count_nonzero(whole) or specks.solidity(whole) < FACE_SOLIDITY:
+            continue
+        # a face lies about the middle of its particle; a gap left between two grains of a part the
+        # splitter did not divide lies on their seam, off the part's centre
+        (fr, fc), (wr, wc) = ndi.center_of_mass(q), ndi.center_of_mass(whole)
+        if np.hypot(fr - wr, fc - wc) <= FACE_OFFSET * np.sqrt(np.count_nonzero(whole) / np.pi):
+            grown[int(around[0]) - 1] = whole
+    return grown
 
 
 def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict
