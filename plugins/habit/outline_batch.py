@@ -15,8 +15,9 @@ grains, each step one call over all of them:
 - the choice of the shapes to compare by rounds over all grains at once, each grain's
   conditions on its own row (minima, comparisons and ``nextafter`` only: exact);
 - the distance rows of every (grain, shape) pair a round adds by inverse FFTs of :data:`ROWS_AT_ONCE`
-  rows (each row on its own), and the look-alike windows of all compared rows of all grains by one
-  :func:`engine.candidates_of_rows` (row by row by construction).
+  rows (each row on its own), each block's row minima and look-alike windows
+  (:func:`engine.candidates_of_rows`, row by row by construction) taken while the block is in cache;
+  only their (rows, 4) results are kept, not the (rows, n) distance rows.
 
 Each grain's :class:`engine.OutlineMatch` carries a :class:`engine.BoundedOutline` in the state that
 grain's own match leaves, so a fit that needs a wider reach goes on from it as before. Every
@@ -62,7 +63,7 @@ def distance_rows_of(spec, aa, sig_fft, sig_sq, n: int) -> np.ndarray:
     return en.squared_distances_in_place(np.fft.irfft(spec * sig_fft, n, axis=1), aa + sig_sq, n)
 
 
-def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
+def choose_and_compare(lb, tau2, within: float, plan, compare, margin):
     """:func:`outline_bound.shapes_to_compare` of many outlines at once, each from no earlier state.
 
     Parameters
@@ -75,9 +76,10 @@ def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
         As for :func:`outline_bound.shapes_to_compare` (the same for all outlines).
     plan : outline_bound.ComparePlan
         The same views for all outlines.
-    distances : callable
-        ``distances(grains, rows)`` -> (len(rows), n) squared distances at every shift of the
-        shape ``rows[j]`` to the outline ``grains[j]``.
+    compare : callable
+        ``compare(grains, rows)`` -> ``(least, found)``: ``least`` (len(rows),) the least squared
+        distance over every shift of the shape ``rows[j]`` to the outline ``grains[j]``, ``found``
+        a tuple of arrays with one row per pair (what the caller keeps of each distance row).
     margin : ndarray, shape (g,)
         Each outline's margin.
 
@@ -85,8 +87,8 @@ def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
     -------
     grains, rows : ndarray of int
         The (outline, shape) pairs compared, each once.
-    d : ndarray, shape (len(rows), n)
-        Their distance rows.
+    found : tuple of ndarray
+        ``compare``'s ``found`` of those pairs, in that order (``None`` where no pair was compared).
     comp, dmin : ndarray, shape (g, u)
         The state each outline's own :func:`outline_bound.shapes_to_compare` leaves
         (:class:`outline_bound.CompareState`).
@@ -140,12 +142,12 @@ def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
         if gi.size == 0:
             break
         gi = live[gi]
-        d = distances(gi, ri)
-        dmin[gi, ri] = d.min(axis=1)
+        least, found = compare(gi, ri)
+        dmin[gi, ri] = least
         comp[gi, ri] = True
         grains.append(gi)
         rows.append(ri)
-        blocks.append(d)
+        blocks.append(found)
         # an outline goes on while it added shapes and has shapes left (its own call's loop)
         live = np.unique(gi)
         live = live[~comp[live].all(axis=1)]
@@ -153,8 +155,9 @@ def choose_and_compare(lb, tau2, within: float, plan, distances, margin):
             break
         new = more(live, comp, dmin)
     if not rows:
-        return np.zeros(0, np.intp), np.zeros(0, np.intp), np.zeros((0, 0)), comp, dmin
-    return np.concatenate(grains), np.concatenate(rows), np.concatenate(blocks), comp, dmin
+        return np.zeros(0, np.intp), np.zeros(0, np.intp), None, comp, dmin
+    return (np.concatenate(grains), np.concatenate(rows), tuple(np.concatenate(f) for f in zip(*blocks)),
+            comp, dmin)
 
 
 def match_outlines(contours, library, pixel_scale: float, outline_noise_px: float, outline_noise_floor: float,
@@ -197,24 +200,27 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
                                               n, margin[i]) for i in range(g)])
     tau2 = np.array([t * t for t in taus])
 
-    def distances(gi, ri):
+    def compare(gi, ri):
+        # each block of distance rows gives its row minima and look-alike windows while in cache
+        # (both row by row: the bits of taking them from all rows at once)
         lv = levels[gi]
-        if gi.size <= ROWS_AT_ONCE:
-            return distance_rows_of(spec[gi], aa[gi], tab.sig_fft[lv, ri], tab.sig_sq[lv, ri], n)
-        d = np.empty((gi.size, n))
+        least, found = [], []
         for a in range(0, gi.size, ROWS_AT_ONCE):
             g_, r_, l_ = gi[a:a + ROWS_AT_ONCE], ri[a:a + ROWS_AT_ONCE], lv[a:a + ROWS_AT_ONCE]
-            d[a:a + ROWS_AT_ONCE] = distance_rows_of(spec[g_], aa[g_], tab.sig_fft[l_, r_], tab.sig_sq[l_, r_], n)
-        return d
+            d = distance_rows_of(spec[g_], aa[g_], tab.sig_fft[l_, r_], tab.sig_sq[l_, r_], n)
+            least.append(d.min(axis=1))
+            found.append(en.candidates_of_rows(d, tab.turn_win[r_], tab.turn_off[r_], tab.turn_ok[r_]))
+        if len(least) == 1:
+            return least[0], found[0]
+        return np.concatenate(least), tuple(np.concatenate(f) for f in zip(*found))
 
-    gi, ri, d, comp, dmin = choose_and_compare(lb, tau2, float(within), plan, distances, margin)
+    gi, ri, found, comp, dmin = choose_and_compare(lb, tau2, float(within), plan, compare, margin)
     u = tab.face.size
     shifts = np.zeros((g, u, 4), np.int64)
     dist = np.full((g, u, 4), np.inf)
     valid = np.zeros((g, u, 4), bool)
     if ri.size:
-        sh, di, va = en.candidates_of_rows(d, tab.turn_win[ri], tab.turn_off[ri], tab.turn_ok[ri])
-        shifts[gi, ri], dist[gi, ri], valid[gi, ri] = sh, di, va
+        shifts[gi, ri], dist[gi, ri], valid[gi, ri] = found
     out = []
     for i in range(g):
         compared = en.BoundedOutline.resumed(sigs[i], spec[i], aa[i], library, int(levels[i]), taus[i],
