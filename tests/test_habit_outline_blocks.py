@@ -12,9 +12,26 @@ brute-force shifts in tests/test_outline_bound.py. Outlines: drawn grains and ra
 import numpy as np
 import pytest
 
+from grainhabit.plugins.habit import classify_habit as cl
 from grainhabit.plugins.habit import engine as gr
 from grainhabit.plugins.habit import outline_batch as ob
-from test_outline_batch import _outlines
+from builders import body_and_rotation, draw_crystal_frame
+
+
+def _outlines(seed):
+    """Drawn grains of the three views and random star polygons of many sizes and places (invented)."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for a, f, r, ecd in [(1.0, "100", 3.0, 70.0), (2.3, "111", 11.0, 90.0), (3.5, "111", 5.0, 25.0),
+                         (1.8, "110", 20.0, 50.0)]:
+        body, rot = body_and_rotation(a, f, r)
+        out.append(cl.frame_contours(draw_crystal_frame(body, rot, ecd_px=ecd, noise=0.02, seed=1))[0])
+    for _ in range(24):
+        k = int(rng.integers(3, 60))
+        t = np.sort(rng.uniform(0, 2 * np.pi, k))
+        rad = float(rng.uniform(5, 80)) * (1.0 + 0.6 * rng.uniform(-1, 1, k))
+        out.append(np.column_stack([rad * np.cos(t), rad * np.sin(t)]) + rng.uniform(-500, 500, 2))
+    return out
 
 
 def _previous_candidates(matches, lib):
