@@ -77,8 +77,12 @@ def _previous_outline_candidates(sig, tab, level=0):
     return shifts, np.sqrt(np.maximum(at, 0.0, out=at), out=at), valid
 
 
-def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720):
-    """The support-function areas over all n_dir directions about the origin (the kernel before)."""
+def _previous_symmetric_hull_areas(pts, centres, fold=2, n_dir=720, support=None):
+    """The support-function areas over all n_dir directions about the origin (the kernel before).
+
+    ``support`` (the points' support values, which the search now hands on) is not read: this form
+    computes them from ``pts`` itself, as it did.
+    """
     p = np.asarray(pts, float)
     cen = np.asarray(centres, float).reshape(-1, 2)
     n = int(n_dir)

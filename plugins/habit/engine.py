@@ -1548,6 +1548,26 @@ SUPPORT_DIRECTIONS = 720
 FINE_SUPPORT_DIRECTIONS = 2016
 
 
+#: The last few :func:`_true_edge_hull` results, by outline and true-edge flags: a split grain's
+#: completions by two-, three- and six-fold symmetry start from the same hull.
+_EDGE_HULLS: dict = {}
+_EDGE_HULLS_KEPT = 8
+
+
+def _true_edge_hull_kept(contour_xy, free):
+    """:func:`_true_edge_hull`, read-only, from :data:`_EDGE_HULLS` where the same outline and flags were given."""
+    c = check_polygon(contour_xy, "contour_xy")
+    key = (c.shape, c.tobytes(), None if free is None else np.asarray(free, bool).tobytes())
+    got = _EDGE_HULLS.get(key)
+    if got is None:
+        got = _true_edge_hull(c, free)
+        got.setflags(write=False)
+        if len(_EDGE_HULLS) >= _EDGE_HULLS_KEPT:
+            _EDGE_HULLS.pop(next(iter(_EDGE_HULLS)), None)
+        _EDGE_HULLS[key] = got
+    return got
+
+
 def _true_edge_hull(contour_xy, free):
     """Hull vertices of the true edges of a cut outline (all of it where they span under half its area)."""
     from scipy.spatial import ConvexHull
@@ -1574,7 +1594,7 @@ def _turns(fold: int):
     return out
 
 
-def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS) -> np.ndarray:
+def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIRECTIONS, support=None) -> np.ndarray:
     """Areas of the convex hulls of ``pts`` and their copies turned about each of many centres.
 
     Parameters
@@ -1587,6 +1607,9 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         The copies are turned by 360 j / ``fold`` degrees, j = 1 ... fold - 1.
     n_dir : int
         Directions of the support function (a multiple of ``fold``).
+    support : ndarray, shape (n_dir,), optional
+        :func:`support_values` of ``pts`` at ``n_dir`` directions, where the caller has them
+        (the centre search asks for the same points at every step); computed here otherwise.
 
     Returns
     -------
@@ -1616,7 +1639,7 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
         raise ValueError(f"n_dir must be a multiple of fold, got {n_dir!r} and {fold!r}")
     u, _, (w_sq, w_next) = _support_tables(n, fold)
     period = n // fold
-    hk = (p @ u.T).max(axis=0)                                         # (n,)
+    hk = support_values(p, n) if support is None else support          # (n,)
     # c . u of all centres in one product (BLAS picks its kernel by the matrix shape, so a product of
     # fewer rows may round differently: the chunks below give the floats of all centres at once)
     cu = cen @ u.T                                                     # (c, n)
@@ -1641,7 +1664,24 @@ def symmetric_hull_areas(pts, centres, fold: int = 2, n_dir: int = SUPPORT_DIREC
 HULL_CHUNK_ELEMENTS = 32768
 
 
-@functools.lru_cache(maxsize=8)
+def support_values(pts, n_dir: int) -> np.ndarray:
+    """Support function h(u_i) = max_k p_k . u_i of points at ``n_dir`` directions (angle 2 pi i / n_dir).
+
+    Parameters
+    ----------
+    pts : ndarray, shape (k, 2)
+    n_dir : int
+
+    Returns
+    -------
+    ndarray, shape (n_dir,)
+        The values :func:`symmetric_hull_areas` works from (one product with its direction table).
+    """
+    u = _support_tables(int(n_dir), 1)[0]
+    return (np.asarray(pts, float) @ u.T).max(axis=0)
+
+
+@functools.lru_cache(maxsize=16)
 def _support_tables(n: int, fold: int):
     """Directions (n, 2), their differences to the turned directions (fold - 1, 2, n), shoelace weights (2, n)."""
     th = 2.0 * np.pi * np.arange(n) / n
@@ -1661,6 +1701,11 @@ def _support_tables(n: int, fold: int):
 
     bm = np.roll(b, 1, axis=0)
     return u, du, (cr(bm, a), cr(a, np.roll(a, -1, axis=0)) + cr(bm, b))
+
+
+#: Offsets of the 9 x 9 candidate centres of one step of the centre search (units of the step's half-width).
+_CENTRE_GRID = np.stack(np.meshgrid(np.linspace(-1.0, 1.0, 9), np.linspace(-1.0, 1.0, 9)), axis=-1).reshape(-1, 2)
+_CENTRE_GRID.setflags(write=False)
 
 
 def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> np.ndarray:
@@ -1717,19 +1762,20 @@ def complete_by_symmetry(contour_xy, free=None, fold: int = 2, centre=None) -> n
 
     if fold not in (2, 3, 6):
         raise ValueError(f"fold must be 2, 3 or 6, got {fold!r}")
-    pts = _true_edge_hull(contour_xy, free)
+    pts = _true_edge_hull_kept(contour_xy, free)
     cen, area = polygon_centroid(pts)
     scale = math.sqrt(area)
-    g = np.linspace(-1.0, 1.0, 9)
-    grid = np.stack(np.meshgrid(g, g), axis=-1).reshape(-1, 2)
     best, half, stop = np.asarray(cen, float), 0.6 * scale, 1e-3 * scale
     if centre is not None:
         best, half, stop = np.asarray(centre, float).reshape(2), 0.6 / 9.0 * scale, 1e-2 * scale
+    support = {}                        # the points' support values, once per direction count
     while half > stop:
-        cand = best + half * grid
+        cand = best + half * _CENTRE_GRID
         # finely sampled directions for the last steps, where the areas differ least
         n_dir = SUPPORT_DIRECTIONS if half > 0.01 * scale else FINE_SUPPORT_DIRECTIONS
-        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir)))]
+        if n_dir not in support:
+            support[n_dir] = support_values(pts, n_dir)
+        best = cand[int(np.argmin(symmetric_hull_areas(pts, cand, fold, n_dir, support=support[n_dir])))]
         half /= 3.0
     both = np.vstack([pts] + [(pts - best) @ r.T + best for r in _turns(fold)])
     return both[ConvexHull(both).vertices]
