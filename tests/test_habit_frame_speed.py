@@ -77,8 +77,12 @@ def _previous_outline_candidates(sig, tab, level=0):
     return shifts, np.sqrt(np.maximum(np.take_along_axis(d, shifts, axis=1), 0.0)), valid
 
 
-def _previous_best_families(sig, level=0):
-    """Distances as one expression (|a|^2 + |b|^2 - 2 C) / n, then the parabola refinement."""
+def _previous_best_families(sig, level=0, spectrum=None):
+    """Distances as one expression (|a|^2 + |b|^2 - 2 C) / n, then the parabola refinement.
+
+    ``spectrum`` (the match's spectrum, which classify-habit now hands on) is not read: this form
+    takes its own ``rfft`` of the signature, as it did.
+    """
     a = np.asarray(sig, float)
     spec, sq, cut = cl._families_stacked(a.size, int(level))
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)

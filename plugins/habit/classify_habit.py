@@ -279,7 +279,7 @@ def _families_stacked(n_angles: int, level: int = 0):
     return spec, sq, (0, len(plate[2]), len(sq))
 
 
-def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
+def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int, float], tuple[float, int, float]]:
     """:func:`best_family` of the plate and the rod family at once (one pair of FFTs).
 
     Parameters
@@ -288,6 +288,9 @@ def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[
         Observed radial signature.
     level : int
         Corner rounding of the family outlines (:func:`family_signatures`).
+    spectrum : ndarray, shape (n // 2 + 1,), optional
+        ``numpy.fft.rfft(sig)`` where the caller has it (the outline match made it); computed here
+        otherwise.
 
     Returns
     -------
@@ -299,13 +302,13 @@ def best_families(sig, level: int = 0) -> tuple[tuple[float, int, float], tuple[
     a = np.asarray(sig, float)
     spec, sq, cut = _families_stacked(a.size, int(level))
     n = a.size
-    cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, n, axis=1)
+    cc = np.fft.irfft((np.fft.rfft(a) if spectrum is None else spectrum)[None, :] * spec, n, axis=1)
     if n & (n - 1) == 0:
-        # (|a|^2 + |b|^2 - 2 C) / n in two passes in place: scaling by a power of two is exact
-        # and commutes with rounding, so these are the same floats (engine.outline_candidates)
-        np.multiply(cc, -2.0 / n, out=cc)
-        np.add(cc, ((a @ a + sq) / n)[:, None], out=cc)
-        d2 = np.maximum(cc.min(axis=1), 0.0)
+        # the least of (|a|^2 + |b|^2 - 2 C) / n over the shifts, from the largest C of each row: the
+        # scaling by -2 / n (a power of two) is exact and reverses the order, and adding a row's
+        # (|a|^2 + |b|^2) / n rounds monotonically, so the least distance of a row is
+        # fl(-2/n max C + (|a|^2 + |b|^2) / n), the float of the whole-row form (engine.outline_candidates)
+        d2 = np.maximum(cc.max(axis=1) * (-2.0 / n) + (a @ a + sq) / n, 0.0)
     else:
         d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
     d = np.sqrt(d2)
@@ -422,7 +425,12 @@ def outline_evidence(contour_lab, params, pixel_scale=1.0):
     # (bookkeeping of the rounds) than comparing the gate's shapes at once saves on the others
     match = en.match_outline(contour_lab, lib, pixel_scale, p["outline_noise_px"], p["outline_noise_floor"],
                              p["corner_radius_px"], within=en.outline_reach(p["tolerance"]))
-    return match, best_families(match.signature, match.level)
+    return match, best_families(match.signature, match.level, _spectrum_of(match))
+
+
+def _spectrum_of(match):
+    """``numpy.fft.rfft`` of a match's signature where its comparison keeps it (the same floats), else None."""
+    return None if match.compared is None else match.compared.spec
 
 
 #: Outlines matched together by :func:`outline_evidence_many` (the inverse FFTs go by blocks of
@@ -454,7 +462,7 @@ def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
         matches = outline_batch.match_outlines(contours[start:start + OUTLINES_AT_ONCE], lib, pixel_scale,
                                                p["outline_noise_px"], p["outline_noise_floor"],
                                                p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS)
-        out += [(m, best_families(m.signature, m.level)) for m in matches]
+        out += [(m, best_families(m.signature, m.level, _spectrum_of(m))) for m in matches]
     return out
 
 
