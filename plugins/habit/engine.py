@@ -1241,6 +1241,9 @@ def slot_any(a) -> np.ndarray:
     return out
 
 
+_INF1 = np.array([np.inf])
+
+
 def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weight,
                    search_samples, every, margin):
     """Coarse-to-fine interior fit (see :func:`fit_alpha`); None falls back to the exhaustive one."""
@@ -1274,8 +1277,8 @@ def _coarse_search(tab, shifts, osc, gated, interior, full, geo, tolerance, weig
     for q in seqs:
         cq = q[coarse[q]]
         val = sb1[cq]
-        left = np.r_[np.inf, val[:-1]]
-        right = np.r_[val[1:], np.inf]
+        left = np.concatenate((_INF1, val[:-1]))          # the neighbours' values (np.r_'s, without its parsing)
+        right = np.concatenate((val[1:], _INF1))
         seeds[cq[(val <= left) & (val <= right) & (val <= best1 + margin)]] = True
     seeds[np.unravel_index(np.argmin(np.where(m1, rss1, np.inf)), rss1.shape)[0]] = True
     # brackets: runs of shapes from one coarse shape to the next; a shape lies in one run, or in
