@@ -87,18 +87,7 @@ def _previous_best_families(sig, level=0, spectrum=None):
     spec, sq, cut = cl._families_stacked(a.size, int(level))
     cc = np.fft.irfft(np.fft.rfft(a)[None, :] * spec, a.size, axis=1)
     d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / a.size).min(axis=1), 0.0)
-    d = np.sqrt(d2)
-    out = []
-    for lo, hi in zip(cut[:-1], cut[1:]):
-        i = int(np.argmin(d[lo:hi]))
-        pos = float(i)
-        if 0 < i < hi - lo - 1:
-            y0, y1, y2 = d2[lo + i - 1], d2[lo + i], d2[lo + i + 1]
-            curve = y0 - 2.0 * y1 + y2
-            if curve > 0:
-                pos = i + float(np.clip(0.5 * (y0 - y2) / curve, -0.5, 0.5))
-        out.append((float(d[lo + i]), i, pos))
-    return tuple(out)
+    return cl.family_minima(d2, cut)
 
 
 def _previous_interior_signal(frame):

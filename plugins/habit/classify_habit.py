@@ -311,6 +311,25 @@ def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int,
         d2 = np.maximum(cc.max(axis=1) * (-2.0 / n) + (a @ a + sq) / n, 0.0)
     else:
         d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
+    return family_minima(d2, cut)
+
+
+def family_minima(d2: np.ndarray, cut) -> tuple:
+    """The best member of each family from the squared distances of all members.
+
+    Parameters
+    ----------
+    d2 : ndarray, shape (members,)
+        Least squared signature distance of every member, the families one after the other.
+    cut : sequence of int
+        Where each family starts, and the end of the last.
+
+    Returns
+    -------
+    tuple of (distance, index, position), one per family: ``position`` is the index refined between
+    members, the vertex of the parabola through the squared distances of the best member and its two
+    neighbours (the index itself at either end of the family or where the three do not curve upwards).
+    """
     d = np.sqrt(d2)
     out = []
     for lo, hi in zip(cut[:-1], cut[1:]):
