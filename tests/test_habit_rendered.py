@@ -59,7 +59,7 @@ def test_tiny_grain_is_not_confidently_labelled(ecd_px):
     for alpha, face in ((1.0, "100"), (3.2, "111")):
         row = bh.single_grain(alpha, face, ecd_px, "bright", np.random.default_rng(ecd_px))
         assert row["habit"] == "irregular" and row["habit_score"] <= 0.25
-        assert "unresolved" in row["habit_note"]
+        assert "unresolved" in row["habit_note"] or "too small to resolve" in row["habit_note"]
 
 
 @pytest.mark.parametrize("contrast", ["bright", "dark"])
@@ -108,3 +108,22 @@ def test_view_prior_follows_the_faces_of_the_body():
     share = p.face_areas[fam == "100"].sum() / p.surface_area
     assert en.view_probability(2.0, "100") + en.view_probability(2.0, "111") == pytest.approx(1.0)
     assert en.view_probability(2.0, "100") == pytest.approx(share)
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+def test_grain_under_the_resolved_size_gets_no_habit(contrast):
+    # a rod of aspect 3 rendered at 5 px ECD (its width about 2.5 px) is kept by segment-grains (floor 4 px)
+    # but its outline's pixel steps are as large as what tells a rod from a plate or a prism: irregular with
+    # habit_score 0; the same rod at 16 px is a rod (the rule follows size, it does not hide rods)
+    px = 10.0
+    for ecd_px, habit in ((5.0, "irregular"), (16.0, "rod")):
+        g = [sy.GrainSpec("rod", ecd_px * px, 400.0, 400.0, rotation_deg=30.0, aspect=3.0)]
+        field = sy.render_field(g, (80, 80), px, contrast, seed=5)
+        out = bh.run_chain(FrameData(source="tiny-rod", sample="invented", raw=field.image, pixel_size_nm=px,
+                                     calibration="synthetic"))
+        assert out.n_grains == 1
+        assert (out.grains["ecd_nm"][0] / px < 8.0) == (habit == "irregular")  # measured below / above 8 px
+        assert str(out.grains["habit"][0]) == habit, (ecd_px, out.grains["habit"][0])
+        if habit == "irregular":
+            assert out.grains["habit_score"][0] == 0.0
+            assert "too small to resolve" in str(out.grains["habit_note"][0])
