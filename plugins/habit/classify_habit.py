@@ -930,13 +930,13 @@ def classify_frame(frame, params=None) -> dict:
     unresolved = set()
     for start in range(0, n, GRAINS_IN_STEP):
         rows = range(start, min(start + GRAINS_IN_STEP, n))
-        evidence = [en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"])
-                    for i in rows]
-        # outlines of too few points, or of a grain under min_resolved_px, are not judged
+        # a grain under min_resolved_px is not judged: no evidence is read for it
         small = {k for k, i in enumerate(rows) if contours[i] is not None and len(contours[i]) >= 3
                  and math.sqrt(4.0 * abs(en.polygon_centroid(contours[i])[1]) / math.pi) < p["min_resolved_px"]}
-        evidence = [(None, None) if k in small else ev for k, ev in enumerate(evidence)]
         unresolved.update(start + k for k in small)
+        evidence = [(None, None) if k in small else
+                    en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"])
+                    for k, i in enumerate(rows)]
         usable = [k for k, (contour, _) in enumerate(evidence) if contour is not None and len(contour) >= 8]
         found = outline_evidence_many([evidence[k][0] for k in usable], p)
         outlines = dict(zip(usable, found))

@@ -50,7 +50,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.common.image_stats import robust_sd
-from grainhabit.plugins.segment.hull_fill import tight_hull
+from grainhabit.plugins.segment.hull_fill import hull_pixel_count
 
 #: Objects with an equivalent circle diameter below this (px) are judged; larger ones are never specks.
 SMALL_ECD_PX = 24.0
@@ -137,9 +137,7 @@ def is_speck(part: np.ndarray, box: tuple, image: np.ndarray, occupied: np.ndarr
 
 def solidity(part: np.ndarray) -> float:
     """Pixels of ``part`` over the pixels of its convex hull (ISO 9276-6 solidity, on the pixel grid)."""
-    rows, cols = np.flatnonzero(part.any(axis=1)), np.flatnonzero(part.any(axis=0))
-    tight = part[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
-    return float(tight.sum()) / max(float(tight_hull(tight).sum()), 1.0)
+    return float(np.count_nonzero(part)) / max(float(hull_pixel_count(part)), 1.0)
 
 
 def drop_specks(parts: list, box: tuple, image: np.ndarray, occupied: np.ndarray) -> list:
