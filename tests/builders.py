@@ -574,6 +574,23 @@ def noisy_discs(radius=14.0, contrast=40.0, noise_sd=40.0, shape=(320, 320), see
     return ndi.gaussian_filter(frame, 0.7) + rng.normal(0, noise_sd, shape), centres
 
 
+def resampled_discs(radius=22.0, contrast=80.0, noise_sd=37.0, zoom=2.5, shape=(320, 320), seed=0):
+    """Nine bright discs, placed near a 3 x 3 grid with a random jitter, under a noise correlated over a few
+    pixels: white noise drawn on a grid ``zoom`` times coarser and resampled by cubic interpolation (a figure
+    scaled up for print, or a grainy film; invented). Returns the frame and the disc centres (row, col).
+    """
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]]
+    frame = np.full(shape, 110.0)
+    centres = [(60 + 100 * i + int(rng.integers(-15, 16)), 60 + 100 * j + int(rng.integers(-15, 16)))
+               for i in range(3) for j in range(3)]
+    for cy, cx in centres:
+        frame[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius ** 2] += contrast
+    coarse = rng.normal(0, 1, (int(shape[0] / zoom) + 2, int(shape[1] / zoom) + 2))
+    noise = ndi.zoom(coarse, zoom, order=3)[:shape[0], :shape[1]]
+    return ndi.gaussian_filter(frame, 0.7) + noise_sd * noise / noise.std(), centres
+
+
 def drawn_outline(alpha, face, rot_deg, ecd_px=70.0):
     """The habit engine's contour of one rendered crystal (Wulff body of ``alpha`` seen along ``face``)."""
     from grainhabit.plugins.habit import classify_habit as cl

@@ -5,10 +5,10 @@ import pytest
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.preprocess import flatten_background as fb
-from grainhabit.plugins.preprocess.smoothing_scale import ENOUGH_SNR, pick_scale
+from grainhabit.plugins.preprocess.smoothing_scale import ENOUGH_SNR, SHOWN_GAIN, SHOWN_SHARE, pick_scale
 from grainhabit.plugins.segment.levels import frame_levels as segment_levels
 
-from builders import noisy_discs
+from builders import noisy_discs, resampled_discs
 from grainhabit.plugins.segment.segment_grains import segment_image
 
 
@@ -89,3 +89,53 @@ def test_small_grains_in_noise_keep_one_pixel():
     assert sorted(scores) == [1.0, 2.0, 3.0] and scores[1.0] < ENOUGH_SNR
     assert max(scores.values()) < 1.3 * scores[1.0] and max(scores.values()) < ENOUGH_SNR
     assert auto["smooth_px"] == 1.0
+
+
+def test_pick_scale_takes_the_scale_where_the_grains_show_when_none_reaches_the_ratio():
+    ratios = {1.0: 3.6, 2.0: 5.7, 3.0: 5.9}
+    # nothing shows at one pixel, 5 % of the frame at 2 px and 6 % at 3 px: the largest share
+    assert pick_scale(ratios, share_by_scale={1.0: 0.0, 2.0: 0.046, 3.0: 0.058}) == 3.0
+    assert pick_scale(ratios, share_by_scale={1.0: 0.0, 2.0: 0.046, 3.0: 0.040}) == 2.0
+    # noise alone: a share no larger than SHOWN_SHARE, however it grows
+    assert pick_scale(ratios, share_by_scale={1.0: 0.0, 2.0: 0.0, 3.0: 0.5 * SHOWN_SHARE}) == 1.0
+    # grains that show at one pixel already, and not SHOWN_GAIN times more at the wider scales
+    assert pick_scale(ratios, share_by_scale={1.0: 0.05, 2.0: 0.06, 3.0: 0.9 * SHOWN_GAIN * 0.05}) == 1.0
+    # a scale that reaches the ratio comes first; an implausible one is never taken
+    assert pick_scale({1.0: 3.6, 2.0: 10.5, 3.0: 5.9}, share_by_scale={1.0: 0.0, 2.0: 0.02, 3.0: 0.2}) == 2.0
+    assert pick_scale({1.0: 3.0, 2.0: 12.0}, share_by_scale={1.0: 0.0, 2.0: 0.2}) == 1.0
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+def test_wide_grains_in_correlated_noise_get_the_scale_at_which_they_show(seed):
+    # noise correlated over ~2.5 px falls less than 1 / sigma under smoothing, so no scale reaches ENOUGH_SNR;
+    # the share of the frame over segmentation's noise threshold still grows many times at 3 px
+    from grainhabit.plugins.preprocess.smoothing_scale import levels_at_best_scale
+    frame, centres = resampled_discs(seed=seed)
+    auto = levels_at_best_scale(fb.frame_levels, fb.whole_frame_regions(frame), frame.shape, 1.0, 4000.0,
+                                "gaussian", "auto")
+    assert max(auto["smooth_scores"].values()) < ENOUGH_SNR
+    assert auto["smooth_px"] > 1.0
+    out, pol, _ = fb.flatten(frame, 1.0, smooth_px=None)
+    assert pol == "bright"
+    labels, _, _ = segment_image(out, 1.0, {})
+    found = {int(labels[cy, cx]) for cy, cx in centres}
+    assert 0 not in found and len(found) == len(centres) == labels.max()
+    # areas against pi r^2 (handbook geometry): each within 12 %, the median within 5 %
+    areas = np.bincount(labels.ravel())[sorted(found)] / (np.pi * 22.0 ** 2)
+    assert np.all(np.abs(areas - 1) < 0.12) and abs(np.median(areas) - 1) < 0.05
+    # at one pixel of smoothing, as before, some discs were lost on every one of these frames
+    one, _, _ = fb.flatten(frame, 1.0, smooth_px=1.0)
+    labels_one, _, _ = segment_image(one, 1.0, {})
+    assert len({int(labels_one[cy, cx]) for cy, cx in centres} - {0}) < len(centres)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_correlated_noise_alone_keeps_one_pixel_and_gives_no_grain(seed):
+    from grainhabit.plugins.preprocess.smoothing_scale import levels_at_best_scale
+    noise, _ = resampled_discs(contrast=0.0, seed=seed)
+    auto = levels_at_best_scale(fb.frame_levels, fb.whole_frame_regions(noise), noise.shape, 1.0, 4000.0,
+                                "gaussian", "auto")
+    assert auto["smooth_px"] == 1.0 and max(auto["smooth_shares"].values()) < SHOWN_SHARE
+    out, _, _ = fb.flatten(noise, 1.0, smooth_px=None)
+    labels, _, _ = segment_image(out, 1.0, {})
+    assert labels.max() == 0

@@ -65,7 +65,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.7",
+    version="1.8",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -919,6 +919,11 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
     # how far the grains stand above the background's noise at this smoothing (smoothing_scale)
     lv["grain_snr"] = level / sd if sd > 0 else float("inf")
+    # and on how much of the frame they show at segmentation's noise threshold
+    shown = r > smoothing_scale.SEEN_SIGMAS * sd
+    if panels.any():
+        shown &= ~panels
+    lv["grain_share"] = float(np.count_nonzero(shown)) / shown.size
     # never stretch pure noise up to grain level
     level = max(level, NOISE_FLOOR_SIGMAS * sd)
     lv.update(surface=surf, offset=float(m), sign=sign, polarity=pol, confidence=float(conf), level=level,

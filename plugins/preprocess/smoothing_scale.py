@@ -30,6 +30,19 @@ failing that, one pixel. The ratio protects what smoothing would harm:
 - a background textured at scales of several pixels (stain, substrate) keeps
   its sigma under smoothing, and again the ratio does not grow.
 
+The ratio misses one kind of frame: grains wide and plain to the eye in a
+noise that is not white (a grainy film, a resampled figure: a texture a few
+pixels across), which smoothing lowers by less than ``1 / sigma``; the grains'
+95th percentile then gains no more than noise alone does (3.6, 5.7, 5.9 at 1, 2,
+3 px on an EMPS picture of seven particles of 45 px). What tells them apart is
+how much of the frame the grains lift above segmentation's noise threshold
+(:data:`SEEN_SIGMAS`): on that picture none at one pixel, 4.6 % at 2 px; on
+frames of noise alone, white or smoothed over 2 px, at most 0.03 % at any scale.
+So when no scale reaches the ratio, the wider scale at which the grains show on
+the largest share of the frame is taken, if that share is at least
+:data:`SHOWN_SHARE` and :data:`SHOWN_GAIN` times the first scale's
+(:func:`pick_scale`'s ``share_by_scale``).
+
 Only frames whose ratio at one pixel is below the floor are looked at again,
 so clean frames cost nothing extra.
 
@@ -54,6 +67,18 @@ ENOUGH_SNR = 10.0
 #: gain means the grains and the background were told apart differently (thin gaps between packed grains
 #: smoothed shut), not that the noise fell. The factor allows for the estimates' own scatter.
 PLAUSIBLE_GAIN = 1.5
+#: Background sigmas above the background at which a pixel shows as grain: segment-grains' default noise
+#: threshold (its ``noise_k``).
+SEEN_SIGMAS = 5.0
+#: A share of the frame's pixels above SEEN_SIGMAS on the grain side that noise does not reach: pure-noise frames
+#: of 300 and 400 px (white, and white smoothed at 2 px) reach at most 3e-4 at Gaussian scales of 1 to 4 px,
+#: the noise estimate of a smoothed frame being a little low; 17 times that.
+SHOWN_SHARE = 0.005
+#: ... and a wider scale is taken for it only when it shows at least this many times the share the first scale
+#: shows: the grains then stand out of a noise the wider Gaussian lowered (on rendered discs of 22 px radius in
+#: noise correlated over 1.5-3 px the share grew 3-100 times from 1 to 3 px, and the discs found from a median
+#: 6 to 9 of 9); a frame whose grains show at the first scale already keeps it.
+SHOWN_GAIN = 3.0
 
 
 def scales_for(smooth_px: float | None) -> tuple:
@@ -63,7 +88,8 @@ def scales_for(smooth_px: float | None) -> tuple:
 
 
 def pick_scale(snr_by_scale: dict[float, float], enough: float = ENOUGH_SNR,
-               plausible_gain: float = PLAUSIBLE_GAIN) -> float:
+               plausible_gain: float = PLAUSIBLE_GAIN, share_by_scale: dict[float, float] | None = None,
+               shown: float = SHOWN_SHARE) -> float:
     """The smoothing scale to keep, from the grain-to-noise ratio at each trial scale.
 
     Parameters
@@ -77,17 +103,35 @@ def pick_scale(snr_by_scale: dict[float, float], enough: float = ENOUGH_SNR,
         A wider scale ``s`` whose ratio exceeds ``plausible_gain * s / s0``
         times the smallest scale ``s0``'s is not considered (see
         :data:`PLAUSIBLE_GAIN`).
+    share_by_scale : dict, optional
+        ``{sigma_px: share}``: the fraction of the frame's pixels more than
+        :data:`SEEN_SIGMAS` background sigmas out on the grain side, at the
+        scales of ``snr_by_scale``.
+    shown : float
+        A share at which grains show (:data:`SHOWN_SHARE`).
 
     Returns
     -------
     float
         Among the smallest scale and the plausible wider ones, the smallest
-        reaching ``enough``; else the smallest scale.
+        reaching ``enough``; else the plausible wider scale at which the
+        grains show on the largest share of the frame, if that share is at
+        least ``shown`` and :data:`SHOWN_GAIN` times the smallest scale's;
+        else the smallest scale.
     """
     first = min(snr_by_scale)
     scales = [s for s in sorted(snr_by_scale)
               if s == first or snr_by_scale[s] <= plausible_gain * (s / first) * snr_by_scale[first]]
-    return next((s for s in scales if snr_by_scale[s] >= enough), first)
+    good = next((s for s in scales if snr_by_scale[s] >= enough), None)
+    if good is not None:
+        return good
+    wider = [s for s in scales if s != first]
+    if share_by_scale and wider:
+        best = max(wider, key=lambda s: share_by_scale.get(s, 0.0))
+        shown_best = share_by_scale.get(best, 0.0)
+        if shown_best >= shown and shown_best >= SHOWN_GAIN * share_by_scale.get(first, 0.0):
+            return best
+    return first
 
 
 def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tuple, pixel_size_nm: float,
@@ -125,6 +169,7 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     once = {} if raw_levels is None else {"raw_pass": raw_levels(regions, shape)}
     lv = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, scales[0], polarity, **once)
     scores = {scales[0]: lv["grain_snr"]}
+    shares = {scales[0]: lv["grain_share"]}
     tried = {scales[0]: lv}
     if denoise_method == "gaussian" and lv["grain_snr"] < ENOUGH_SNR:
         for s in scales[1:]:
@@ -135,8 +180,10 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
             tried[s] = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, s, polarity,
                                     **once)
             scores[s] = tried[s]["grain_snr"]
+            shares[s] = tried[s]["grain_share"]
             if pick_scale(scores) == s and scores[s] >= ENOUGH_SNR:
                 break
-    chosen = tried[pick_scale(scores)]
+    chosen = tried[pick_scale(scores, share_by_scale=shares)]
     chosen["smooth_scores"] = scores
+    chosen["smooth_shares"] = shares
     return chosen
