@@ -74,8 +74,8 @@ STEP = StepInfo(
               doc="Filter applied after variance stabilisation."),
         Param("smooth_nm", float, None, unit="nm", low=0.0,
               doc="Gaussian denoising sigma; unset: one pixel, or 2 or 3 px on a noisy frame whose grains "
-                  "stand under 10 background sigmas at one pixel and reach 10 at the wider scale (chosen "
-                  "per frame)."),
+                  "stand under 10 background sigmas at one pixel and reach 10 at the wider scale, or show on "
+                  "far more of the frame there (chosen per frame)."),
         Param("polarity", str, "auto", choices=("auto", "bright", "dark"),
               doc="Contrast of grains in the raw frame: detect, or force bright-on-dark / dark-on-bright."),
     ),
