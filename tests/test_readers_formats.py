@@ -195,3 +195,33 @@ def test_colour_records_become_rgb():
     rec["G"] = 200
     out = signals.pixels({"data": rec}, 0)
     assert out.shape == (4, 5, 3) and out[..., 1].max() == 200
+
+
+def test_pixels_without_a_finite_value_are_filled_and_excluded(tmp_path):
+    # a corrected float image with dead pixels stored as NaN and a division by zero stored as inf (invented):
+    # the frame is read, its non-finite pixels take the grey level around them and are marked invalid
+    img = np.full((64, 80), 100.0, np.float32)
+    img[20:40, 30:50] = 180.0
+    img[5:8, 5:9] = np.nan
+    img[50, 60] = np.inf
+    img[25, 35] = -np.inf
+    tifffile.imwrite(tmp_path / "corrected.tif", img)
+    _, [f] = _read_all(tiff, tmp_path / "corrected.tif")
+    assert np.all(np.isfinite(f.raw))
+    bad = ~np.isfinite(img)
+    assert f.valid is not None and np.array_equal(~f.valid, bad)
+    assert np.all(f.raw[5:8, 5:9] == 100.0) and f.raw[50, 60] == 100.0 and f.raw[25, 35] == 180.0
+    assert any("14 px without a finite value" in n for n in f.notes)
+    # the same through MRC, whose float sections are the common case
+    with mrcfile.new(tmp_path / "dead.mrc", overwrite=True) as m:
+        m.set_data(img[None])
+        m.voxel_size = (5.0, 5.0, 5.0)
+    _, [g] = _read_all(mrc, tmp_path / "dead.mrc")
+    assert np.array_equal(~g.valid, bad) and np.all(np.isfinite(g.raw))
+
+
+def test_a_frame_without_any_finite_pixel_is_refused_in_one_line(tmp_path):
+    tifffile.imwrite(tmp_path / "empty.tif", np.full((16, 16), np.nan, np.float32))
+    with pytest.raises(ValueError, match=r"empty\.tif: no pixel holds a finite value") as err:
+        _read_all(tiff, tmp_path / "empty.tif")
+    assert "\n" not in str(err.value)

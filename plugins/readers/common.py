@@ -143,13 +143,14 @@ def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: 
     FrameData
         ``raw`` float32; ``pixel_size_nm`` NaN where neither the file nor an
         override gives one (the host then applies ``input.pixel_size_nm``);
-        ``valid`` False on drawn marks (None if there are none).
+        ``valid`` False on drawn marks and on pixels without a finite value
+        (None if there are none).
 
     Raises
     ------
     ValueError
-        If the pixel size contradicts the file's magnification, or pixels are
-        too far from square to be resampled.
+        If the pixel size contradicts the file's magnification, pixels are
+        too far from square to be resampled, or no pixel holds a finite value.
     """
     notes = list(notes)
     data = np.asarray(stored)
@@ -165,6 +166,17 @@ def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: 
         raise ValueError(f"{ref.source}: expected a 2-D frame, got shape {data.shape}")
     if data.dtype.kind not in "uifb":
         raise ValueError(f"{ref.source}: unsupported pixel type {data.dtype}")
+    bad = None
+    if data.dtype.kind == "f":
+        finite = np.isfinite(data)
+        if not finite.any():
+            raise ValueError(f"{ref.source}: no pixel holds a finite value (all NaN or infinite)")
+        if not finite.all():
+            # dead or masked pixels of a corrected float image (NaN, +-inf): excluded and filled like drawn marks
+            bad = ~finite
+            data = overlays.fill_marks(data, bad)
+            notes.append(f"{int(bad.sum())} px without a finite value (NaN or infinite) excluded from analysis "
+                         "and filled with the grey level around them")
     rows = data.shape[0]
     cut = 0
     if image_rows and 0 < image_rows < rows:
@@ -179,10 +191,12 @@ def finish(ref: FrameRef, stored: np.ndarray, cal: Calibration | None, options: 
     if cut:
         data = data[: rows - cut]
         notes.append(f"info strip removed: bottom {cut} of {rows} rows ({how})")
+        if bad is not None:
+            bad = bad[: rows - cut]
     marks = overlays.annotation_mask(data) if look_for_overlays else None
-    valid = None
+    valid = None if bad is None or not bad.any() else ~bad
     if marks is not None:
-        valid = ~marks
+        valid = ~marks if valid is None else valid & ~marks
         data = overlays.fill_marks(data, marks)
         notes.append(f"drawn marks (scale bar, text) masked: {int(marks.sum())} px excluded from analysis "
                      "and filled with the grey level around them")

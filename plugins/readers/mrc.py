@@ -21,7 +21,7 @@ from .calibration import Calibration, make
 from .common import check_size, describe, finish, head, refs_for, suffix
 
 GRAINHABIT_API = 1
-__version__ = "1.0"
+__version__ = "1.1"
 NAME = "read-mrc"
 SUFFIXES = (".mrc", ".mrcs", ".st", ".ali", ".rec", ".map")
 

@@ -23,6 +23,7 @@ scale bars and text are masked (:mod:`.overlays`).
 
 from __future__ import annotations
 
+import logging
 import os
 import re
 import xml.etree.ElementTree as ET
@@ -37,8 +38,12 @@ from . import sidecar, vendor_tiff
 from .calibration import Calibration, is_screen_dpi, make, unit_to_nm
 from .common import check_size, describe, finish, has_magic, refs_for, suffix
 
+# tifffile logs what it cannot parse ("invalid offset to first page ...") as a bare line outside the run's log;
+# the reader reports such a file itself, in one line naming it
+logging.getLogger("tifffile").setLevel(logging.CRITICAL)
+
 GRAINHABIT_API = 1
-__version__ = "2.1"
+__version__ = "2.2"
 NAME = "read-tiff"
 SUFFIXES = (".tif", ".tiff", ".btf", ".tf8", ".tf2")
 
