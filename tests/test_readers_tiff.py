@@ -214,3 +214,24 @@ def test_zeiss_pixel_size_scaled_from_the_image_store_without_a_field_width(tmp_
     tifffile.imwrite(tmp_path / "z.tif", noisy((48, 64)), extratags=[(34118, "s", 0, text.encode("latin-1"), True)])
     f = _one(tmp_path / "z.tif")
     assert f.pixel_size_nm == pytest.approx(5.825 * 1024 / 64) and f.calibration == "instrument"
+
+
+def test_colour_planes_stored_separately_make_one_frame(tmp_path):
+    # TIFF's separate planar configuration (TIFF 6.0, PlanarConfiguration = 2): the red, green and blue planes one
+    # after the other are one colour image, read as one frame like the same image stored pixel by pixel
+    rng = np.random.default_rng(2)
+    grey = rng.integers(0, 256, (40, 50), dtype=np.uint8)
+    colour = np.stack([grey, grey // 2, 255 - grey])
+    tifffile.imwrite(tmp_path / "planar.tif", colour, photometric="rgb", planarconfig="separate")
+    tifffile.imwrite(tmp_path / "contig.tif", np.moveaxis(colour, 0, -1), photometric="rgb")
+    refs, frames = _read_all(tmp_path / "planar.tif")
+    assert len(refs) == 1 and frames[0].raw.shape == (40, 50)
+    _, [contig] = _read_all(tmp_path / "contig.tif")
+    assert np.array_equal(frames[0].raw, contig.raw)
+    assert any("luminance" in n for n in frames[0].notes)
+    # two such images in one file: two frames, in order
+    tifffile.imwrite(tmp_path / "two.tif", np.stack([colour, colour[:, ::-1]]), photometric="rgb",
+                     planarconfig="separate")
+    refs, frames = _read_all(tmp_path / "two.tif")
+    assert len(refs) == 2 and np.array_equal(frames[0].raw, contig.raw)
+    assert np.array_equal(frames[1].raw, contig.raw[::-1])

@@ -66,11 +66,22 @@ def recognises(path: str) -> bool:
 
 
 def _frames_of_series(series) -> tuple[int, tuple, bool]:
-    """Number of 2-D frames in a series, frame shape, and whether it is RGB."""
+    """Number of 2-D frames in a series, frame shape (rows, cols[, samples]), and whether it is RGB.
+
+    Colour samples stored pixel by pixel (axes ending ``YXS``) or plane by plane (``SYX``, TIFF's
+    separate planar configuration) make one colour frame, not three frames.
+    """
     shape = tuple(series.shape)
-    rgb = series.axes.endswith("S") and shape[-1] in (3, 4)
-    frame_shape, lead = (shape[-3:], shape[:-3]) if rgb else (shape[-2:], shape[:-2])
-    return (int(np.prod(lead)) if lead else 1), frame_shape, rgb
+    if series.axes.endswith("S") and shape[-1] in (3, 4):
+        return (int(np.prod(shape[:-3])) if shape[:-3] else 1), shape[-3:], True
+    if _planar_rgb(series):
+        return (int(np.prod(shape[:-3])) if shape[:-3] else 1), shape[-2:] + shape[-3:-2], True
+    return (int(np.prod(shape[:-2])) if shape[:-2] else 1), shape[-2:], False
+
+
+def _planar_rgb(series) -> bool:
+    """Whether a series stores its colour samples plane by plane (axes ending ``SYX``)."""
+    return series.axes.endswith("SYX") and tuple(series.shape)[-3] in (3, 4)
 
 
 def _ratio(tag) -> float:
@@ -231,12 +242,16 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
         si, series, local, fshape, rgb = _locate(tif, ref.page)
         check_size(ref.source, fshape, options)
         n, _, _ = _frames_of_series(series)
+        planar = _planar_rgb(series)
+        stored_shape = tuple(series.shape)[-3:] if planar else tuple(fshape)
         if n == 1:
             data = series.asarray()
         elif len(series.pages) == n:
             data = series.asarray(key=local)
         else:
-            data = series.asarray().reshape((n,) + tuple(fshape))[local]
+            data = series.asarray().reshape((n,) + stored_shape)[local]
+        if planar:
+            data = np.moveaxis(np.asarray(data).reshape(stored_shape), 0, -1)  # samples last, as finish expects
         page = series.pages[0] if series.pages else tif.pages[0]
         cal, info, notes = calibrate(tif, page, ref.path, si)
         meta = {"tiff_series": series.name or "", "dtype": str(data.dtype)}
