@@ -272,3 +272,43 @@ def test_ragged_bars_are_drawn_and_their_captions_go_with_them():
     imaged[20:23, 20:23] = 8.0
     rod_labels = rod.astype(np.int32)
     assert annotations.drawn_labels(rod_labels, imaged).size == 0
+
+
+def test_glyphs_of_a_compressed_figure_are_drawn_touching_clipped_grains_are_not():
+    # bold capitals in white ink, the figure scaled down by half and saved as JPEG of quality 50 (as journal
+    # figures are; invented): the compression leaves only 43-76 % of each letter at the ink level, and letters
+    # without a counter ("K", "X", "Y", "F", "E") show no hole; they are told by their shape (solidity under
+    # PARTLY_INKED_SOLIDITY; solidity as in ISO 9276-6)
+    import io
+
+    from PIL import Image
+
+    def jpeg(a, quality):
+        buf = io.BytesIO()
+        Image.fromarray(a.astype(np.uint8)).save(buf, "JPEG", quality=quality)
+        return np.asarray(Image.open(buf)).astype(np.float32)
+
+    rng = np.random.default_rng(0)
+    for letter in "KXYFEAB":
+        img = 120.0 + 135.0 * draw_text((120, 120), letter, (20, 15), 60, "black")
+        img = ndi.zoom(img, 0.5, order=1)
+        img += rng.normal(0, 3, img.shape) * (img < 250)
+        raw = jpeg(np.clip(np.round(img), 0, 255), 50)
+        lab, _ = ndi.label(ndi.binary_fill_holes(raw > 120 + 135 / 2))
+        part = lab == np.bincount(lab.ravel())[1:].argmax() + 1
+        low, high = annotations.ink_levels(raw)
+        _, core = annotations.core_pixels(part, 1)
+        assert annotations.ink_shares(raw[core], low, high)[1] < annotations.SOLID_INK
+        assert annotations.is_drawn(part, raw, low, high), letter
+    # two touching bright grains whose tops the exposure clipped to white: solidity 2 pi / (pi + 4) = 0.88
+    # (handbook geometry of two tangent discs and their hull), half of them at the ink level: kept
+    yy, xx = np.mgrid[0:80, 0:120]
+    r = 20.0
+    discs = ((yy - 40) ** 2 + (xx - 40) ** 2 <= r ** 2) | ((yy - 40) ** 2 + (xx - 80) ** 2 <= r ** 2)
+    dome = np.maximum(np.sqrt(np.clip(r ** 2 - (yy - 40) ** 2 - (xx - 40) ** 2, 0, None)),
+                      np.sqrt(np.clip(r ** 2 - (yy - 40) ** 2 - (xx - 80) ** 2, 0, None))) / r
+    raw = np.clip(100.0 + 250.0 * dome + rng.normal(0, 3, dome.shape), 0, 255)
+    low, high = annotations.ink_levels(raw)
+    _, core = annotations.core_pixels(discs, 1)
+    assert 0.3 < annotations.ink_shares(raw[core], low, high)[1] < annotations.SOLID_INK
+    assert not annotations.is_drawn(discs, raw, low, high)

@@ -15,9 +15,12 @@ frame's range from its darkest or brightest level, and, so that a real grain
 whose core is clipped to black or white is kept, its shape is not that of a
 filled convex body: either the ink covers less than :data:`SOLID_INK` of the
 inner pixels and at least :data:`HOLE_FRACTION` of them are far from the ink
-(the background seen through the hole of a "0", "8", "a"), or the object
-is not convex (solidity under :data:`GLYPH_SOLIDITY`: most letters and
-digits; objects of :data:`GLYPH_MIN_AREA_PX` or more). A bar is a drawn mark
+(the background seen through the hole of a "0", "8", "a") or, for a single
+object, its solidity is under :data:`PARTLY_INKED_SOLIDITY` (a letter without
+a counter in a compressed figure, "K", "F", whose blurred strokes keep their ink
+only inside), or the object is not convex (solidity under
+:data:`GLYPH_SOLIDITY`: most letters and digits; objects of
+:data:`GLYPH_MIN_AREA_PX` or more). A bar is a drawn mark
 whatever share of it is ink (over :data:`MIN_INK`): it fills its axis-aligned
 bounding box (over :data:`BOX_FILL`) and is at least :data:`BAR_ASPECT` times
 longer than wide; so is a rectangle mostly in ink (:data:`SOLID_INK`) filling
@@ -54,6 +57,9 @@ HOLE_CONTRAST = 0.3
 HOLE_FRACTION = 0.15
 #: Objects less solid than this (area over convex hull area, ISO 9276-6) are glyph-like.
 GLYPH_SOLIDITY = 0.9
+#: A glyph of a compressed or resampled figure keeps its ink only inside its strokes: one object under SOLID_INK
+#: of it in ink and less solid than this is a glyph too, hole or no hole (two tangent discs have 0.88).
+PARTLY_INKED_SOLIDITY = 0.85
 #: Objects filling more than this of their axis-aligned bounding box, and at least BAR_ASPECT times longer
 #: than wide, are bars (a clipped rod is seldom that long and that well aligned with the frame).
 BOX_FILL = 0.95
@@ -158,7 +164,11 @@ def is_drawn(part: np.ndarray, raw: np.ndarray, low: float, high: float, backgro
             background = background()
         if background is not None:
             hole &= np.abs(vals - background) <= HOLE_CONTRAST * span
-        return float(np.mean(hole)) >= HOLE_FRACTION
+        if float(np.mean(hole)) >= HOLE_FRACTION:
+            return True
+        # one object less solid than a glyph's least: a letter without a counter ("K", "F"); never a whole
+        # cluster (rim > 1), whose touching grains, partly clipped, leave notches between them
+        return rim == 1 and area < PARTLY_INKED_SOLIDITY * float(convex_hull_image(part).sum())
     return area < GLYPH_SOLIDITY * float(convex_hull_image(part).sum())
 
 
