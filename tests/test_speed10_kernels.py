@@ -17,6 +17,8 @@ def _same_levels(a, b):
     for k in a:
         if isinstance(a[k], np.ndarray):
             assert np.array_equal(a[k], b[k]), k
+        elif isinstance(a[k], dict):  # per-scale scores and shares (a share not measured is NaN in both)
+            _same_levels(a[k], b[k])
         else:
             assert a[k] == b[k] or (a[k] != a[k] and b[k] != b[k]), k
 

@@ -107,7 +107,8 @@ def pick_scale(snr_by_scale: dict[float, float], enough: float = ENOUGH_SNR,
     share_by_scale : dict, optional
         ``{sigma_px: share}``: the fraction of the frame's pixels more than
         :data:`SEEN_SIGMAS` background sigmas out on the grain side, at the
-        scales of ``snr_by_scale``.
+        scales of ``snr_by_scale`` (NaN where not measured: a scale whose
+        ratio reaches ``enough`` needs none).
     shown : float
         A share at which grains show (:data:`SHOWN_SHARE`).
 
