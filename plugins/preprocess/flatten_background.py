@@ -920,8 +920,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     # how far the grains stand above the background's noise at this smoothing (smoothing_scale)
     lv["grain_snr"] = level / sd if sd > 0 else float("inf")
     # and on how much of the frame they show at segmentation's noise threshold (wanted only where the ratio
-    # falls short; NaN, not measured, elsewhere)
-    lv["grain_share"] = float("nan")
+    # falls short; not measured, and no key, elsewhere)
     if lv["grain_snr"] < smoothing_scale.ENOUGH_SNR:
         shown = r > smoothing_scale.SEEN_SIGMAS * sd
         if panels.any():

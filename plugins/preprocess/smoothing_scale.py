@@ -171,7 +171,7 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     once = {} if raw_levels is None else {"raw_pass": raw_levels(regions, shape)}
     lv = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, scales[0], polarity, **once)
     scores = {scales[0]: lv["grain_snr"]}
-    shares = {scales[0]: lv["grain_share"]}
+    shares = {scales[0]: lv.get("grain_share", float("nan"))}
     tried = {scales[0]: lv}
     if denoise_method == "gaussian" and lv["grain_snr"] < ENOUGH_SNR:
         for s in scales[1:]:
@@ -182,7 +182,7 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
             tried[s] = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, s, polarity,
                                     **once)
             scores[s] = tried[s]["grain_snr"]
-            shares[s] = tried[s]["grain_share"]
+            shares[s] = tried[s].get("grain_share", float("nan"))
             if pick_scale(scores) == s and scores[s] >= ENOUGH_SNR:
                 break
     chosen = tried[pick_scale(scores, share_by_scale=shares)]
