@@ -89,3 +89,23 @@ def score_masks_host():
     from grainhabit.manager import make_host
 
     return make_host()
+
+
+def test_the_command_names_pictures_it_could_not_score_and_pictures_without_a_mask(tmp_path):
+    # a mask drawn on another grid fails that picture in one line naming it; a picture without a mask of the
+    # same name is named as not scored; the others are scored as usual
+    from builders import run_cli
+
+    img, truth = discs()
+    imgs, msks = folders(tmp_path)
+    for name in ("a", "b", "c"):
+        Image.fromarray(img).save(imgs / f"{name}.png")
+    Image.fromarray(truth).save(msks / "a.png")
+    Image.fromarray(truth[:40, :40]).save(msks / "b.png")
+    res = run_cli("score-masks", imgs, msks)
+    assert res.returncode == 0
+    err = res.stderr.splitlines()
+    assert any(line.startswith("grainhabit score-masks: b.png failed: ") and "the mask is 40 x 40" in line
+               for line in err)
+    assert any("1 picture(s) without a mask of the same name" in line and "(c.png)" in line for line in err)
+    assert "frames 2" in res.stdout and "recall 1.000" in res.stdout

@@ -142,12 +142,19 @@ def summarise(frames: list[dict]) -> dict:
             "flagged": sum(1 for f in frames if f["qc"])}
 
 
-def pair_files(images: Path, masks: Path) -> list[tuple[Path, Path]]:
+def pair_files(images: Path, masks: Path, unpaired: list | None = None) -> list[tuple[Path, Path]]:
     """Pictures of ``images`` with a mask of the same stem in ``masks``.
 
     A picture may be in any format the readers read (TIFF, PNG, DM3/DM4,
     EMD, MRC, ...); companion files that hold no pixels (:data:`COMPANION_SUFFIXES`:
     calibration text beside a bitmap, a TIA ``.emi``) are not pictures.
+
+    Parameters
+    ----------
+    images, masks : Path
+        Folders.
+    unpaired : list, optional
+        Filled with the pictures that have no mask (they are not scored).
 
     Raises
     ------
@@ -162,6 +169,8 @@ def pair_files(images: Path, masks: Path) -> list[tuple[Path, Path]]:
     for p in sorted(images.iterdir()):
         if p.name.startswith(".") or not p.is_file() or p.suffix.lower() in COMPANION_SUFFIXES:
             continue
+        if p.stem not in by_stem and unpaired is not None:
+            unpaired.append(p)
         if p.stem in by_stem:
             if p.stem in seen:
                 raise ValueError(f"{images}: two pictures for the mask {by_stem[p.stem].name}: "
@@ -289,7 +298,8 @@ def on_mask_grid(labels: np.ndarray, shape: tuple, source: str) -> np.ndarray:
         out = np.zeros(shape, labels.dtype)
         out[:rows] = labels
         return out
-    raise ValueError(f"{source}: read as {rows} x {cols} pixels (resampled), the mask is {shape[0]} x {shape[1]}")
+    raise ValueError(f"{source}: read as {rows} x {cols} pixels, the mask is {shape[0]} x {shape[1]} (a mask is "
+                     "drawn on the picture's stored grid; a frame resampled to square pixels cannot be scored)")
 
 
 def score_folder(images: Path, masks: Path, pixel_size_nm: float | None = None, every: int = 1,
@@ -331,7 +341,8 @@ def score_folder(images: Path, masks: Path, pixel_size_nm: float | None = None, 
     host = host or make_host()
     steps = steps or [("flatten-background", {}), ("segment-grains", {})]
     frames = []
-    for img_path, mask_path in pair_files(Path(images), Path(masks))[offset::every]:
+    unpaired: list = []
+    for img_path, mask_path in pair_files(Path(images), Path(masks), unpaired)[offset::every]:
         truth = read_mask(mask_path)
         t0 = time.perf_counter()
         error = ""
@@ -349,6 +360,7 @@ def score_folder(images: Path, masks: Path, pixel_size_nm: float | None = None, 
             progress(s)
     out = summarise(frames)
     out["per_frame"] = [{k: v for k, v in f.items() if k != "ecd_errors"} for f in frames]
+    out["without_mask"] = [p.name for p in unpaired]
     return out
 
 
@@ -383,6 +395,9 @@ def _run(args) -> int:
                       f"{s['grains_true']}/{s['grains']} grains true{'  qc ' + s['qc'] if s['qc'] else ''}"
                       f"{': ' + s['error'] if s['error'] else ''}",
                       file=sys.stderr)
+            elif s["error"]:
+                # a picture that could not be scored is counted as failed; say why, in one line naming it
+                print(f"grainhabit score-masks: {s['name']} failed: {s['error']}", file=sys.stderr)
 
         res = score_folder(Path(args.images), Path(args.masks), args.pixel_size_nm, args.every, steps, host,
                            progress, input_options=options)
@@ -391,6 +406,10 @@ def _run(args) -> int:
             raise
         print(f"grainhabit score-masks: {exc}", file=sys.stderr)
         return 2
+    if res["without_mask"]:
+        names = res["without_mask"]
+        print(f"grainhabit score-masks: {len(names)} picture(s) without a mask of the same name in {args.masks} "
+              f"not scored ({', '.join(names[:3])}{', ...' if len(names) > 3 else ''})", file=sys.stderr)
     if args.json:
         print(json.dumps(res, indent=1, allow_nan=True))
     else:
