@@ -37,7 +37,7 @@ DEFAULT_DATA = Path(__file__).resolve().parents[2].parent / "shared" / "realdata
 
 def run(argv) -> int:
     """Entry point of ``grainhabit bench realdata``; returns the exit code."""
-    from grainhabit.plugins.survey.score_masks import format_summary, score_folder
+    from grainhabit.plugins.survey.score_masks import format_summary, score_folder, unscored_lines
 
     ap = argparse.ArgumentParser(prog="grainhabit bench realdata",
                                  description="Recall, precision and ECD error of the default chain on real "
@@ -67,6 +67,8 @@ def run(argv) -> int:
                        offset=args.offset)
     print(f"grain finding on {args.images} (every {args.every}, offset {args.offset}, {args.outline} outlines):")
     print(format_summary(res))
+    for line in unscored_lines(res, args.masks):
+        print(f"  {line}")
     ok = (res["recall"] >= TARGETS["recall"] and res["precision"] >= TARGETS["precision"]
           and res["ecd_error_median"] <= TARGETS["ecd_error_median"]
           and res["silently_empty"] <= TARGETS["silently_empty"])

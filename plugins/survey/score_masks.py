@@ -364,6 +364,17 @@ def score_folder(images: Path, masks: Path, pixel_size_nm: float | None = None, 
     return out
 
 
+def unscored_lines(res: dict, masks) -> list[str]:
+    """One line per picture of a :func:`score_folder` result that failed (its name and why), and one naming
+    the pictures without a mask (not scored)."""
+    lines = [f"{f['name']} failed: {f['error']}" for f in res.get("per_frame", ()) if f.get("error")]
+    names = res.get("without_mask") or []
+    if names:
+        lines.append(f"{len(names)} picture(s) without a mask of the same name in {masks} not scored "
+                     f"({', '.join(names[:3])}{', ...' if len(names) > 3 else ''})")
+    return lines
+
+
 def format_summary(res: dict) -> str:
     """Human-readable lines of a :func:`score_folder` result."""
     return (f"frames {res['frames']}  particles {res['particles']}  grains {res['grains']}\n"
@@ -395,9 +406,6 @@ def _run(args) -> int:
                       f"{s['grains_true']}/{s['grains']} grains true{'  qc ' + s['qc'] if s['qc'] else ''}"
                       f"{': ' + s['error'] if s['error'] else ''}",
                       file=sys.stderr)
-            elif s["error"]:
-                # a picture that could not be scored is counted as failed; say why, in one line naming it
-                print(f"grainhabit score-masks: {s['name']} failed: {s['error']}", file=sys.stderr)
 
         res = score_folder(Path(args.images), Path(args.masks), args.pixel_size_nm, args.every, steps, host,
                            progress, input_options=options)
@@ -406,10 +414,9 @@ def _run(args) -> int:
             raise
         print(f"grainhabit score-masks: {exc}", file=sys.stderr)
         return 2
-    if res["without_mask"]:
-        names = res["without_mask"]
-        print(f"grainhabit score-masks: {len(names)} picture(s) without a mask of the same name in {args.masks} "
-              f"not scored ({', '.join(names[:3])}{', ...' if len(names) > 3 else ''})", file=sys.stderr)
+    for line in unscored_lines(res, args.masks):
+        # a picture that could not be scored counts as failed: say which and why, one line each
+        print(f"grainhabit score-masks: {line}", file=sys.stderr)
     if args.json:
         print(json.dumps(res, indent=1, allow_nan=True))
     else:
