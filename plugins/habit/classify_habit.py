@@ -905,6 +905,14 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p,
     return habit, score, ev, fit
 
 
+def outline_ecd_px(contour) -> float:
+    """Equivalent circle diameter (px) of the area a grain's outline polygon encloses (ISO 9276-6); inf for a
+    missing outline or one of under 3 points (never judged too small here: it has no habit to judge)."""
+    if contour is None or len(contour) < 3:
+        return math.inf
+    return math.sqrt(4.0 * abs(en.polygon_centroid(contour)[1]) / math.pi)
+
+
 def classify_frame(frame, params=None) -> dict:
     """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
@@ -931,8 +939,7 @@ def classify_frame(frame, params=None) -> dict:
     for start in range(0, n, GRAINS_IN_STEP):
         rows = range(start, min(start + GRAINS_IN_STEP, n))
         # a grain under min_resolved_px is not judged: no evidence is read for it
-        small = {k for k, i in enumerate(rows) if contours[i] is not None and len(contours[i]) >= 3
-                 and math.sqrt(4.0 * abs(en.polygon_centroid(contours[i])[1]) / math.pi) < p["min_resolved_px"]}
+        small = {k for k, i in enumerate(rows) if outline_ecd_px(contours[i]) < p["min_resolved_px"]}
         unresolved.update(start + k for k in small)
         evidence = [(None, None) if k in small else
                     en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"])

@@ -919,13 +919,9 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
     level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
     # how far the grains stand above the background's noise at this smoothing (smoothing_scale)
     lv["grain_snr"] = level / sd if sd > 0 else float("inf")
-    # and on how much of the frame they show at segmentation's noise threshold (wanted only where the ratio
-    # falls short; not measured, and no key, elsewhere)
-    if lv["grain_snr"] < smoothing_scale.ENOUGH_SNR:
-        shown = r > smoothing_scale.SEEN_SIGMAS * sd
-        if panels.any():
-            shown &= ~panels
-        lv["grain_share"] = float(np.count_nonzero(shown)) / shown.size
+    # and on how much of the frame they show at segmentation's noise threshold (SEEN_SIGMAS is above
+    # CLIP_SIGMAS, so those pixels are all on the grain side: counted among fg)
+    lv["grain_share"] = float(np.count_nonzero(fg > smoothing_scale.SEEN_SIGMAS * sd)) / r.size
     # never stretch pure noise up to grain level
     level = max(level, NOISE_FLOOR_SIGMAS * sd)
     lv.update(surface=surf, offset=float(m), sign=sign, polarity=pol, confidence=float(conf), level=level,

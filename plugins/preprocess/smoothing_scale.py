@@ -107,8 +107,7 @@ def pick_scale(snr_by_scale: dict[float, float], enough: float = ENOUGH_SNR,
     share_by_scale : dict, optional
         ``{sigma_px: share}``: the fraction of the frame's pixels more than
         :data:`SEEN_SIGMAS` background sigmas out on the grain side, at the
-        scales of ``snr_by_scale`` (NaN where not measured: a scale whose
-        ratio reaches ``enough`` needs none).
+        scales of ``snr_by_scale``.
     shown : float
         A share at which grains show (:data:`SHOWN_SHARE`).
 
@@ -171,7 +170,7 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
     once = {} if raw_levels is None else {"raw_pass": raw_levels(regions, shape)}
     lv = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, scales[0], polarity, **once)
     scores = {scales[0]: lv["grain_snr"]}
-    shares = {scales[0]: lv.get("grain_share", float("nan"))}
+    shares = {scales[0]: lv["grain_share"]}
     tried = {scales[0]: lv}
     if denoise_method == "gaussian" and lv["grain_snr"] < ENOUGH_SNR:
         for s in scales[1:]:
@@ -182,7 +181,7 @@ def levels_at_best_scale(frame_levels: Callable[..., dict], regions, shape: tupl
             tried[s] = frame_levels(regions, shape, pixel_size_nm, background_nm, denoise_method, s, polarity,
                                     **once)
             scores[s] = tried[s]["grain_snr"]
-            shares[s] = tried[s].get("grain_share", float("nan"))
+            shares[s] = tried[s]["grain_share"]
             if pick_scale(scores) == s and scores[s] >= ENOUGH_SNR:
                 break
     chosen = tried[pick_scale(scores, share_by_scale=shares)]

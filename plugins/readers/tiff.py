@@ -73,10 +73,10 @@ def _frames_of_series(series) -> tuple[int, tuple, bool]:
     """
     shape = tuple(series.shape)
     if series.axes.endswith("S") and shape[-1] in (3, 4):
-        return (int(np.prod(shape[:-3])) if shape[:-3] else 1), shape[-3:], True
+        return int(np.prod(shape[:-3])), shape[-3:], True
     if _planar_rgb(series):
-        return (int(np.prod(shape[:-3])) if shape[:-3] else 1), shape[-2:] + shape[-3:-2], True
-    return (int(np.prod(shape[:-2])) if shape[:-2] else 1), shape[-2:], False
+        return int(np.prod(shape[:-3])), shape[-2:] + shape[-3:-2], True
+    return int(np.prod(shape[:-2])), shape[-2:], False  # the product of no lead axes is 1
 
 
 def _planar_rgb(series) -> bool:
