@@ -33,6 +33,10 @@ BAR_CORE_SHARE = 0.8
 TEXT_MIN_GLYPHS = 3
 TEXT_BASELINE_PX = 2
 TEXT_SOLIDITY = 0.85
+#: A member of a row is judged by its pixels above the noise threshold only where they (holes filled) cover
+#: at least this share of it: text is drawn in ink, all of it far above the noise; of a faint grain (its
+#: average below the threshold) the pixels above are a noise-ridden sample, less solid than any glyph.
+TEXT_MIN_COVER = 0.5
 
 
 def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
@@ -262,7 +266,12 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
     horizontal gaps under 1.5 heights: the layout of printed text (common
     practice). It is dropped when most of its members are not convex (drawn
     pixels fill under :data:`TEXT_SOLIDITY` of their convex hull), as
-    letters and digits are and a row of touching grains is not. Smaller
+    letters and digits are and a row of touching grains is not. A member
+    whose drawn pixels, holes filled, cover under :data:`TEXT_MIN_COVER` of
+    it is a faint object, not a glyph drawn in ink, and counts as convex
+    (EMPS 482193653a, ../shared/realdata: 22 faint particles of a noisy
+    field in rows of three were dropped as text; their drawn pixels covered
+    0-47 % of them, the glyphs of the 357 pictures' rows 63-100 %). Smaller
     objects inside the band of a dropped row (pieces of split glyphs) are
     dropped with it.
     """
@@ -278,8 +287,12 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
     def solidity(i):
         if i not in solid:
             k, b = items[i]
-            m = (labels[b] == k) & drawn[b]
-            solid[i] = float(m.sum()) / max(float(convex_hull_image(m).sum()), 1.0) if m.any() else 1.0
+            whole = labels[b] == k
+            m = whole & drawn[b]
+            # a faint object (under TEXT_MIN_COVER of it above the threshold, the counter of a "0" counted
+            # as covered) is no glyph: it counts as convex
+            shown = m.any() and float((ndi.binary_fill_holes(m) & whole).sum()) >= TEXT_MIN_COVER * float(whole.sum())
+            solid[i] = float(m.sum()) / max(float(convex_hull_image(m).sum()), 1.0) if shown else 1.0
         return solid[i]
 
     for edge, at_frame_edge in ((bottom, bottom >= labels.shape[0]), (top, top <= 0)):
