@@ -266,3 +266,30 @@ def test_faint_grains_in_a_row_are_not_text_thin_zeros_are():
     sparse = (labels > 0) & (rng.random(labels.shape) < 0.3)
     assert text_rows(labels, sparse).size == 0
     assert sorted(text_rows(labels, rings).tolist()) == [1, 2, 3]
+
+
+def test_a_bar_beside_a_caption_dropped_as_text_is_a_scale_bar():
+    # A scale bar with its caption above it ("100 nm": the layout of figure scale bars, common practice).
+    # When the caption's glyphs were dropped as text, the bar goes too; the same bar with no caption beside
+    # it, the bar with the glyphs over twice their height away, and a rod of aspect 4.5 beside the caption
+    # (under the bar's 5; a long rod as well aligned with the frame would go), stay.
+    from grainhabit.plugins.segment.mark_shapes import captioned_bars
+
+    labels = np.zeros((80, 160), np.int32)
+    labels[50:56, 30:130] = 1                    # the bar, 100 x 6 px
+    for k, c0 in enumerate((50, 65, 80), start=2):
+        labels[30:44, c0:c0 + 10] = k              # three glyphs, 14 px tall, 6 px above the bar
+    bars, boxes = captioned_bars(labels, np.array([2, 3, 4]))
+    assert bars.tolist() == [1] and boxes == [(50, 56, 30, 130)]
+    assert captioned_bars(labels, np.array([], np.int64))[0].size == 0
+    far = labels.copy()
+    far[far > 1] = 0
+    far[2:16, 50:60], far[2:16, 65:75] = 2, 3     # two glyphs 34 px above: over twice their height away
+    assert captioned_bars(far, np.array([2, 3]))[0].size == 0
+    rr, cc = np.mgrid[:80, :160]
+    rod = labels.copy()
+    rod[rod == 1] = 0
+    # a spherocylinder of radius 8 and straight part 60 px: 77 x 17 px
+    d = np.where(cc < 40, np.hypot(rr - 60, cc - 40), np.where(cc > 100, np.hypot(rr - 60, cc - 100), np.abs(rr - 60)))
+    rod[d <= 8] = 1
+    assert captioned_bars(rod, np.array([2, 3, 4]))[0].size == 0

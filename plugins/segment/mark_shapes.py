@@ -388,6 +388,73 @@ def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
     return np.asarray(sorted(drop), np.int64)
 
 
+def captioned_bars(labels: np.ndarray, glyphs: np.ndarray, boxes: list | None = None,
+                   max_width: float = 24.0, aspect: float = 5.0,
+                   fill: float = 0.95) -> tuple[np.ndarray, list[tuple[int, int, int, int]]]:
+    """Labels of bars beside a caption that was dropped as text: the scale bar under (or over) "100 nm".
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Objects 1..n: the grains kept and the glyphs dropped.
+    glyphs : ndarray of int
+        The labels dropped as glyphs (letters, digits, rows of text).
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)``, when the caller has it already.
+    max_width, aspect, fill : float
+        A bar is at most ``max_width`` px wide, ``aspect`` times longer than
+        wide and fills ``fill`` of its box (ragged edge lines trimmed; see
+        :func:`aligned_bar`).
+
+    Returns
+    -------
+    bars : ndarray of int
+        The kept labels that are such bars.
+    frame_boxes : list of (top, bottom, left, right)
+        Their boxes (bottom and right exclusive), for :func:`bar_captions`.
+
+    Notes
+    -----
+    A horizontal bar goes when at least two of the glyphs lie beside it:
+    overlapping its columns widened each side by a quarter of its length or
+    twice their height, whichever is more (a caption is often set off to one
+    side of a short bar), at most half its length tall, within twice their
+    height (or that quarter length) above or below it. A scale bar in a grey that is no end of the grey scale and carries
+    the figure's compression noise passes neither the ink nor the flatness
+    test (:mod:`grainhabit.plugins.segment.annotations`), but its caption,
+    drawn as text, is found; a rod lying beside two dropped glyphs and
+    that well aligned with the frame is rare.
+    """
+    glyphs = np.asarray(glyphs, np.int64)
+    out, frame_boxes = [], []
+    if glyphs.size < 2:
+        return np.zeros(0, np.int64), frame_boxes
+    items, ids, top, bottom, left, right = box_table(labels, boxes)
+    is_glyph = np.isin(ids, glyphs)
+    if is_glyph.sum() < 2:
+        return np.zeros(0, np.int64), frame_boxes
+    height = (bottom - top).astype(float)
+    for i in np.flatnonzero(~is_glyph):
+        h, w = height[i], float(right[i] - left[i])
+        if w < aspect * max(h - 2 * BAR_RAGGED_LINES, 1):
+            continue  # not a horizontal bar by its box (pixels looked at only for the few long boxes)
+        k, b = items[i]
+        bar = aligned_bar(labels[b] == k, max_width, aspect, trim=True, fill=fill)
+        if bar is None:
+            continue
+        b_top, b_bottom = top[i] + bar[0], top[i] + bar[1]
+        b_left, b_right = left[i] + bar[2], left[i] + bar[3]
+        length = b_right - b_left
+        reach = np.maximum(0.25 * length, 2.0 * height)
+        gap = np.maximum(b_top - bottom, top - b_bottom)
+        beside = (is_glyph & (right > b_left - reach) & (left < b_right + reach) & (gap >= 0)
+                  & (gap <= np.maximum(2.0 * height, 0.25 * length)) & (height <= 0.5 * length))
+        if beside.sum() >= 2:
+            out.append(int(k))
+            frame_boxes.append((int(b_top), int(b_bottom), int(b_left), int(b_right)))
+    return np.asarray(out, np.int64), frame_boxes
+
+
 def box_table(labels: np.ndarray, boxes: list | None = None) -> tuple[list, np.ndarray, np.ndarray, np.ndarray,
                                                                        np.ndarray, np.ndarray]:
     """The labels present and their bounding boxes as columns.

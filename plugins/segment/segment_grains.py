@@ -90,7 +90,7 @@ from grainhabit.plugins.segment.dark_seams import split_at_dark_seams
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.packed import packed_field, split_rafts
-from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, text_rows
+from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, captioned_bars, text_rows
 from grainhabit.plugins.segment.rim_interior import fill_rim_interiors
 from grainhabit.plugins.segment.touching import split_component
 
@@ -335,8 +335,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         # the glyphs already dropped stay in the rows and captions looked for, as numbers past the grains'
         page = labels
         page_boxes = part_box[1:] if boxes_ok else None
+        n_marks = 0
         if marks.any():
-            glyphs, _ = ndi.label(marks & (labels == 0), structure=_EIGHT)
+            glyphs, n_marks = ndi.label(marks & (labels == 0), structure=_EIGHT)
             page = np.where(glyphs > 0, glyphs + (nxt - 1), labels)
             if page_boxes is not None:
                 page_boxes = page_boxes + ndi.find_objects(glyphs)
@@ -352,6 +353,12 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             gone = np.union1d(gone, np.unique(labels[np.isin(whole, whole_rows)])).astype(np.int64)
         else:
             gone = np.union1d(gone, np.zeros(0, np.int64)).astype(np.int64)
+        # a bar beside a caption dropped here (a grey scale bar under "100 nm"; the glyphs dropped by their
+        # shape alone, numbered from nxt in page, counted as well), and then the rest of its caption
+        captioned, captioned_boxes = captioned_bars(page, np.union1d(gone, np.arange(nxt, nxt + n_marks)),
+                                                    page_boxes)
+        gone = np.union1d(gone, captioned).astype(np.int64)
+        bars += captioned_boxes
         gone = np.union1d(gone, bar_captions(page, bars, above, page_boxes)).astype(np.int64)
         gone = gone[(gone > 0) & (gone < nxt)]
         if gone.size:
