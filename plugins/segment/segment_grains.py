@@ -526,7 +526,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         return finish_field(arr, raw, levels, p, field.labels, notes)
     no_background = ""
     try:
-        empty = check_frame(arr, levels, p)
+        empty = check_frame(arr, levels, p, smallest_grain_area(p, pixel_size_nm))
     except ValueError as err:
         field = second_look(arr, raw, pixel_size_nm, p, "no level free of grains", notes)
         if field is None:
@@ -717,7 +717,7 @@ def smallest_grain_area(p: dict, pixel_size_nm: float) -> float:
     return np.pi / 4.0 * max(p["min_ecd_px"], p["min_ecd_nm"] / pixel_size_nm) ** 2
 
 
-def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
+def check_frame(arr: np.ndarray, levels: dict, p: dict, least_area: float = 0.0) -> str:
     """Whether the frame can hold grains at all, from its frame-wide levels.
 
     Parameters
@@ -728,13 +728,20 @@ def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
         :func:`frame_levels` of ``arr``.
     p : dict
         Resolved step parameters (``min_contrast``, ``noise_k``).
+    least_area : float
+        Area (px) of the smallest grain kept (:func:`smallest_grain_area`):
+        fewer pixels than that above the noise threshold cannot make a grain,
+        however small the frame (on a 68 x 68 px frame one stray pixel is
+        already more than :data:`NOISE_ONLY_FRACTION` of it).
 
     Returns
     -------
     str
         A ``qc no-grains`` note when the Otsu classes differ by less than
-        ``min_contrast`` or almost nothing stands above the noise threshold;
-        "" otherwise.
+        ``min_contrast`` or almost nothing stands above the noise threshold
+        (under :data:`NOISE_ONLY_FRACTION` of the frame or under
+        ``least_area`` pixels; judged before the share of Otsu's upper class,
+        which on noise alone is about half the frame); "" otherwise.
 
     Raises
     ------
@@ -750,14 +757,15 @@ def check_frame(arr: np.ndarray, levels: dict, p: dict) -> str:
     if mean_up - mean_low < p["min_contrast"]:
         return (f"segment-grains: qc no-grains: no grains found (contrast {mean_up - mean_low:.3f} between the "
                 f"Otsu classes is below min_contrast {p['min_contrast']})")
+    n_above = np.count_nonzero(arr > levels["noise"])
+    fg_frac = n_above / arr.size
+    if fg_frac < NOISE_ONLY_FRACTION or n_above < least_area:
+        return (f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
+                f"{p['noise_k']:g} background sigmas above the background: noise only)")
     otsu_frac = np.count_nonzero(upper) / upper.size  # np.mean of the mask: the same correctly rounded quotient
     if otsu_frac > MAX_FOREGROUND:
         raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
                          "to separate grains from (check polarity and threshold)")
-    fg_frac = np.count_nonzero(arr > levels["noise"]) / arr.size
-    if fg_frac < NOISE_ONLY_FRACTION:
-        return (f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
-                f"{p['noise_k']:g} background sigmas above the background: noise only)")
     if abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
         raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
                          "common level is not background; no background to separate grains from "
