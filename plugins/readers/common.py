@@ -30,6 +30,10 @@ MAGIC = {
     "dm3": (b"\x00\x00\x00\x03",),
     "dm4": (b"\x00\x00\x00\x04",),
     "ser": (b"II\x97\x01",),
+    "jeol-img": (b"4\x00\x00\x00",),
+    "bcf": (b"AAMVHFSS",),
+    "digitalsurf": (b"DIGITAL SURF", b"DSCOMPRESSED"),
+    "tvips": (b"\x00\x01\x00\x00",),
 }
 
 

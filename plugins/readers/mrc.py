@@ -18,7 +18,7 @@ from grainhabit import hookimpl
 from grainhabit.frame import FrameRef
 
 from .calibration import Calibration, make
-from .common import check_size, describe, finish, head, refs_for, suffix
+from .common import MAGIC, check_size, describe, finish, head, refs_for, suffix
 
 GRAINHABIT_API = 1
 __version__ = "1.1"
@@ -27,11 +27,16 @@ SUFFIXES = (".mrc", ".mrcs", ".st", ".ali", ".rec", ".map")
 
 
 def recognises(path: str) -> bool:
-    """MRC suffixes, or the ``MAP`` word at byte 208 of an MRC2014 header."""
-    if suffix(path) in SUFFIXES:
-        return True
+    """MRC suffixes, or the ``MAP`` word at byte 208 of an MRC2014 header.
+
+    A ``.map`` file that starts with the JEOL image signature and lacks that word is a JEOL element map
+    (``read-jeol``), not an MRC map.
+    """
     start = head(path, 212)
-    return len(start) == 212 and start[208:211] == b"MAP"
+    has_word = len(start) == 212 and start[208:211] == b"MAP"
+    if suffix(path) in SUFFIXES:
+        return has_word or not (suffix(path) == ".map" and any(start.startswith(m) for m in MAGIC["jeol-img"]))
+    return has_word
 
 
 def calibration(mrc) -> tuple[Calibration | None, str]:

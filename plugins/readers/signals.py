@@ -48,7 +48,7 @@ def read_signals(file_reader, path: str, lazy: bool = True) -> list[dict]:
         warnings.simplefilter("ignore")
         try:
             return list(file_reader(path, lazy=lazy))
-        except TypeError:  # a reader without the lazy option
+        except (TypeError, NotImplementedError):  # a reader without the lazy option, or one refusing it
             return list(file_reader(path))
 
 
@@ -118,7 +118,9 @@ def pixels(sig: dict, stack_index: int) -> np.ndarray:
     shape = tuple(data.shape)
     if len(shape) > 2:
         data = data.reshape((-1,) + shape[-2:])[stack_index]
-    arr = np.asarray(data.compute() if hasattr(data, "compute") else data)
+    # a lazy (dask) array is computed here, in this thread: inside a worker of a cluster the default would
+    # hand the read to the cluster's scheduler, which cannot ship every reader's graph (Semper's failed)
+    arr = np.asarray(data.compute(scheduler="synchronous") if hasattr(data, "compute") else data)
     if arr.dtype.names and all(c in arr.dtype.names for c in "RGB"):  # colour images as records
         arr = np.stack([arr[c] for c in "RGB"], axis=-1)
     return arr

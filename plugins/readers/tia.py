@@ -35,7 +35,9 @@ def series_of(emi_path: str) -> list[str]:
     return sorted(glob.glob(glob.escape(stem) + "_*.ser") + glob.glob(glob.escape(stem) + "_*.SER"))
 
 
-_list_ser, grainhabit_read_frame = reader_hooks(NAME, "tia", lambda p: "SER", recognises, "SER calibration")
+# a tuple, so that the plugin manager does not take the listing hook made here for a hook of its own
+_SER_HOOKS = reader_hooks(NAME, "tia", lambda p: "SER", recognises, "SER calibration")
+grainhabit_read_frame = _SER_HOOKS[1]
 
 
 @hookimpl
@@ -45,4 +47,4 @@ def grainhabit_list_frames(path: str, options: dict):
         if not series_of(path):
             raise ValueError(f"{path}: an EMI file holds settings only; its .ser data files are missing")
         return []
-    return _list_ser(path, options)
+    return _SER_HOOKS[0](path, options)
