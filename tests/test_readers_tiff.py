@@ -235,3 +235,24 @@ def test_colour_planes_stored_separately_make_one_frame(tmp_path):
     refs, frames = _read_all(tmp_path / "two.tif")
     assert len(refs) == 2 and np.array_equal(frames[0].raw, contig.raw)
     assert np.array_equal(frames[1].raw, contig.raw[::-1])
+
+
+@pytest.mark.parametrize("pixel_nm, stored", [(1.4208, 1.4208), (1.4208, 1.4208e-9)])
+def test_tvips_camera_header_pixel_size(tmp_path, pixel_nm, stored):
+    # A TVIPS camera TIFF: the EM-MENU header (version 2) in tag 37706, built from tifffile's own record
+    # layout (tifffile.TIFF.TVIPS_HEADER_V1/V2); its PixelSizeX/Y is in nm (1.4208 nm: the value stated for
+    # the TVIPS test file in the tests of RosettaSciIO, an open EM file reader). tifffile before 2023 handed
+    # it on in m: the size tells which.
+    T = tifffile.TIFF
+    v1, v2 = np.zeros(1, np.dtype(T.TVIPS_HEADER_V1)), np.zeros(1, np.dtype(T.TVIPS_HEADER_V2))
+    v1["Version"], v2["Magic"], v2["PixelSizeX"], v2["PixelSizeY"] = 2, 0xAAAAAAAA, stored, stored
+    blob = v1.tobytes() + v2.tobytes()
+    tifffile.imwrite(tmp_path / "cam.tif", noisy((40, 48)), extratags=[(37706, "B", len(blob), blob, True)])
+    f = _one(tmp_path / "cam.tif")
+    assert f.calibration == "instrument" and f.pixel_size_nm == pytest.approx(pixel_nm, rel=1e-5)
+    # a version-1 header states no pixel size: no instrument scale from it
+    v1["Version"] = 1
+    blob = v1.tobytes()
+    tifffile.imwrite(tmp_path / "old.tif", noisy((40, 48)), extratags=[(37706, "B", len(blob), blob, True)])
+    g = _one(tmp_path / "old.tif")
+    assert g.calibration != "instrument" and math.isnan(g.pixel_size_nm)

@@ -43,7 +43,7 @@ from .common import check_size, describe, finish, has_magic, refs_for, suffix
 logging.getLogger("tifffile").setLevel(logging.CRITICAL)
 
 GRAINHABIT_API = 1
-__version__ = "2.2"
+__version__ = "2.3"
 NAME = "read-tiff"
 SUFFIXES = (".tif", ".tiff", ".btf", ".tf8", ".tf2")
 

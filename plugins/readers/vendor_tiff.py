@@ -24,6 +24,8 @@ Formats (all state the pixel size of the specimen, so the source is
   (x/y scale per pixel).
 - Olympus soft-imaging TIFF: tags 33560/33471 (``sis_metadata``,
   ``pixelsizex/y`` in m).
+- TVIPS camera TIFF: tag 37706 (``tvips_metadata``), version-2 header
+  ``PixelSizeX/Y`` in nm.
 """
 
 from __future__ import annotations
@@ -263,10 +265,35 @@ def olympus_sis(tif) -> VendorInfo | None:
                       None, None, "Olympus soft-imaging tags")
 
 
+# -- TVIPS ------------------------------------------------------------------------
+
+#: A TVIPS pixel size under this is in m (tifffile before 2023 converted the header's nm to m), else in nm.
+TVIPS_METRE_BELOW = 1e-3
+
+
+def tvips(tif) -> VendorInfo | None:
+    """TVIPS camera header in tag 37706 via ``TiffFile.tvips_metadata``: ``PixelSizeX/Y`` (version 2).
+
+    The header's version 2 states the pixel size in nm (tifffile since 2023 passes it on as is; earlier
+    releases converted it to m, told here by its size); a version-1 header states none.
+    """
+    if not getattr(tif, "is_tvips", False):
+        return None
+    meta = tif.tvips_metadata or {}
+    px, py = _float(meta.get("PixelSizeX")), _float(meta.get("PixelSizeY"))
+    if not (px > 0):
+        return VendorInfo(None, None, None, "TVIPS header")
+    if not (py > 0):
+        py = px
+    factor = 1e9 if px < TVIPS_METRE_BELOW else 1.0
+    return VendorInfo(make(px * factor, py * factor, "instrument", "TVIPS header tag 37706, PixelSizeX"),
+                      None, None, "TVIPS header")
+
+
 def read(tif, page) -> VendorInfo | None:
     """The first maker's metadata found in a TIFF page, or None."""
     for probe in (lambda: fei(tif), lambda: zeiss(tif, page), lambda: tescan(page), lambda: jeol(tif, page),
-                  lambda: gatan(page), lambda: olympus_sis(tif)):
+                  lambda: gatan(page), lambda: olympus_sis(tif), lambda: tvips(tif)):
         info = probe()
         if info is not None:
             return info
