@@ -154,3 +154,20 @@ def test_a_jeol_element_map_is_not_taken_for_an_mrc_map(tmp_path):
     with mrcfile.new(tmp_path / "density.map") as m:
         m.set_data(np.zeros((4, 52, 52), np.float32))  # 52 columns: its first word is JEOL's signature too
     assert mrc.recognises(str(tmp_path / "density.map")) and not jeol.recognises(str(tmp_path / "density.map"))
+
+
+def test_images_of_one_scan_through_several_detectors_are_one_frame():
+    # A scanning microscope's file with the HAADF and the BF image of one scan (same size, same calibration):
+    # one field, its grains counted once; an image of another size and a stack of a series are frames each.
+    from grainhabit.plugins.readers import signals
+
+    def axis(name, size, scale=0.5, nav=False):
+        return {"name": name, "size": size, "scale": scale, "units": "nm", "navigate": nav}
+
+    haadf = {"data": np.zeros((8, 9)), "axes": [axis("y", 8), axis("x", 9)]}
+    bf = {"data": np.ones((8, 9)), "axes": [axis("y", 8), axis("x", 9)]}
+    finer = {"data": np.zeros((8, 9)), "axes": [axis("y", 8, 0.25), axis("x", 9, 0.25)]}
+    series = {"data": np.zeros((2, 8, 9)), "axes": [axis("t", 2, 1.0, True), axis("y", 8), axis("x", 9)]}
+    frames, skipped = signals.index([haadf, bf, finer, series])
+    assert [(s, k) for s, k, _ in frames] == [(0, 0), (2, 0), (3, 0), (3, 1)]
+    assert len(skipped) == 1 and "same field as signal 0" in skipped[0]

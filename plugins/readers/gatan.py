@@ -14,7 +14,7 @@ from .common import has_magic, suffix
 from .signals import reader_hooks
 
 GRAINHABIT_API = 1
-__version__ = "1.1"
+__version__ = "1.2"
 NAME = "read-gatan-dm"
 
 

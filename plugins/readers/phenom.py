@@ -12,7 +12,7 @@ from .common import suffix
 from .signals import reader_hooks
 
 GRAINHABIT_API = 1
-__version__ = "1.1"
+__version__ = "1.2"
 NAME = "read-phenom-elid"
 
 

@@ -70,9 +70,20 @@ def index(signals: list[dict]) -> tuple[list[tuple[int, int, tuple]], list[str]]
     frames : list of (signal index, stack index, (rows, cols))
         In file order.
     skipped : list of str
-        One description per signal that is not an image.
+        One description per signal that is not an image, and per single
+        image of the same field as an earlier one.
+
+    Notes
+    -----
+    A scanning microscope records one scan through several detectors at
+    once (a Velox file's HAADF, DF and BF images): single images of one
+    size and one calibration (the same axes' scales and units) are views of
+    one field, and its grains would be counted once per detector. The
+    first is the frame; the others are skipped with a note. Images of a
+    stack (a series, a recording) are frames each.
     """
     frames, skipped = [], []
+    fields = {}  # (shape, axes' scales and units) of single images -> the signal that is that field's frame
     for i, sig in enumerate(signals):
         data = sig.get("data")
         if not is_image(sig):
@@ -81,6 +92,13 @@ def index(signals: list[dict]) -> tuple[list[tuple[int, int, tuple]], list[str]]
             skipped.append(f"signal {i} ({dims}-D signal, shape {shape})")
             continue
         shape = tuple(int(x) for x in data.shape)
+        if len(shape) == 2:
+            field = (shape, tuple((str(ax.get("scale")), str(ax.get("units"))) for ax in _signal_axes(sig)))
+            if field in fields:
+                skipped.append(f"signal {i} (an image of the same field as signal {fields[field]}: same size "
+                               "and scale, another detector; not counted twice)")
+                continue
+            fields[field] = i
         n = int(np.prod(shape[:-2])) if len(shape) > 2 else 1
         frames.extend((i, k, shape[-2:]) for k in range(n))
     return frames, skipped
