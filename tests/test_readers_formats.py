@@ -19,7 +19,8 @@ import tifffile
 from PIL import Image
 from builders import OPTS, noisy, with_info_strip
 
-from grainhabit.plugins.readers import emd, gatan, mrc, phenom, plain, sidecar, signals, tia, tiff
+from grainhabit.plugins.readers import (bruker, digitalsurf, emd, gatan, hspy, jeol, mrc, phenom, plain, semper, sidecar,
+                                        signals, tia, tiff, tvips)
 
 READERS = (tiff, mrc, gatan, emd, tia, phenom, plain)
 
@@ -133,6 +134,13 @@ def test_signals_to_frames_stacks_and_skipped_signals():
     (gatan, "digitalmicrograph", "x.dm4", b"\x00\x00\x00\x04", "DM4"),
     (tia, "tia", "x_1.ser", b"II\x97\x01", "SER"),
     (phenom, "phenom", "x.elid", b"\x00", "ELID"),
+    (jeol, "jeol", "x.img", b"4\x00\x00\x00", "JEOL IMG"),
+    (jeol, "jeol", "x.map", b"4\x00\x00\x00", "JEOL MAP"),
+    (bruker, "bruker", "x.bcf", b"AAMVHFSS", "BCF"),
+    (tvips, "tvips", "x_000.tvips", b"\x00\x01\x00\x00", "TVIPS"),
+    (semper, "semper", "x.unf", b"\x0c\x00\x00\x00", "Semper UNF"),
+    (digitalsurf, "digitalsurf", "x.sur", b"DIGITAL SURF", "Digital Surf SUR"),
+    (hspy, "hspy", "x.hspy", b"\x89HDF\r\n\x1a\n", "HSPY"),
 ])
 def test_missing_optional_library_gives_one_line(tmp_path, monkeypatch, module, library, name, start, fmt):
     path = tmp_path / name

@@ -3,14 +3,13 @@
 The files are written here by the optional library's own writers (Semper, Digital Surf, HyperSpy, TVIPS),
 with a pixel size stated in nm, and read back through the reader plugins: the frames, their pixels and the
 pixel size the file states (source ``instrument``). JEOL image files and Bruker composite files cannot be
-written by any library at hand: for those (and all six) the one-line message when the optional library is
-missing, and that foreign files are passed over.
+written by any library at hand: for those (and all six) that foreign files are passed over; the one-line
+message when the optional library is missing is tested with the other readers' in test_readers_formats.py.
 """
 
 from __future__ import annotations
 
 import math
-import sys
 import warnings
 
 import numpy as np
@@ -83,24 +82,6 @@ def test_a_tvips_recording_is_read_from_its_first_part(tmp_path):
     # a later part of the same recording lists no frames of its own (they are read through the first)
     (tmp_path / "movie_001.tvips").write_bytes(first.read_bytes()[:256])
     assert tvips.grainhabit_list_frames(path=str(tmp_path / "movie_001.tvips"), options=OPTS) == []
-
-
-@pytest.mark.parametrize("module,library,name,start,fmt", [
-    (jeol, "jeol", "x.img", b"4\x00\x00\x00", "JEOL IMG"),
-    (jeol, "jeol", "x.map", b"4\x00\x00\x00", "JEOL MAP"),
-    (bruker, "bruker", "x.bcf", b"AAMVHFSS", "BCF"),
-    (tvips, "tvips", "x_000.tvips", b"\x00\x01\x00\x00", "TVIPS"),
-    (semper, "semper", "x.unf", b"\x0c\x00\x00\x00", "Semper UNF"),
-    (digitalsurf, "digitalsurf", "x.sur", b"DIGITAL SURF", "Digital Surf SUR"),
-    (hspy, "hspy", "x.hspy", b"\x89HDF\r\n\x1a\n", "HSPY"),
-])
-def test_missing_optional_library_gives_one_line(tmp_path, monkeypatch, module, library, name, start, fmt):
-    path = tmp_path / name
-    path.write_bytes(start + bytes(60))
-    monkeypatch.setitem(sys.modules, f"rsciio.{library}", None)  # import fails as if not installed
-    with pytest.raises(ValueError) as err:
-        module.grainhabit_list_frames(path=str(path), options=OPTS)
-    assert str(err.value) == f"install grainhabit[all] to read {fmt} (the optional reader library is missing)"
 
 
 def test_the_new_readers_pass_over_foreign_files(tmp_path):
