@@ -256,3 +256,43 @@ def test_tvips_camera_header_pixel_size(tmp_path, pixel_nm, stored):
     tifffile.imwrite(tmp_path / "old.tif", noisy((40, 48)), extratags=[(37706, "B", len(blob), blob, True)])
     g = _one(tmp_path / "old.tif")
     assert g.calibration != "instrument" and math.isnan(g.pixel_size_nm)
+
+
+def _olympus_sis(path, pixel_m, pages):
+    """An Olympus soft-imaging TIFF: tag 33560 laid out as tifffile's reader expects it (a 'SIS0' header, one
+    entry of type 1 pointing, by file offset, at the general block with the pixel size as a mantissa and a
+    power of ten), on the first of ``pages``."""
+    import struct
+
+    header = struct.pack("<4s6xhhhhh6x32sH", b"SIS0", 0, 10, 1, 0, 126, b"field".ljust(32, b"\0"), 1)
+    general = struct.pack("<10xhdd8xd2x34s32s", -9, pixel_m / 1e-9, pixel_m / 1e-9, 50000.0,
+                          b"camera".ljust(34, b"\0"), b"image".ljust(32, b"\0"))
+    blob = header + struct.pack("<hhI", 1, 1, 0) + general
+    for k, page in enumerate(pages):
+        extra = [(33560, "B", len(blob), blob, True)] if k == 0 else []
+        tifffile.imwrite(path, page, append=k > 0, metadata=None, extratags=extra,
+                         photometric="rgb" if page.ndim == 3 else "minisblack")
+    with tifffile.TiffFile(path) as tif:
+        offset = tif.pages[0].tags[33560].valueoffset
+    with open(path, "r+b") as fh:  # the entry's pointer to the general block, now that its place is known
+        fh.seek(offset + len(header) + 4)
+        fh.write(struct.pack("<I", offset + len(header) + 8))
+    return path
+
+
+def test_olympus_sis_colour_preview_is_not_a_second_field(tmp_path):
+    # Such a file can hold an 8-bit RGB rendering first and the 16-bit data after it (the layout described for
+    # the Olympus soft-imaging test file of RosettaSciIO's tests: two images of 112 x 101 px, only the
+    # second the data). tifffile reads it as one series of the first page's shape; the data page is the
+    # frame, at the file's pixel size (0.023928 nm), and the preview is skipped with a note.
+    preview = np.random.default_rng(0).integers(0, 255, (40, 48, 3)).astype(np.uint8)
+    data = noisy((40, 48), mean=3000, sd=300, dtype=np.uint16)
+    refs, frames = _read_all(_olympus_sis(tmp_path / "sis.tif", 0.023928e-9, [preview, data]))
+    assert len(refs) == 1
+    [f] = frames
+    assert f.calibration == "instrument" and f.pixel_size_nm == pytest.approx(0.023928)
+    assert np.array_equal(f.raw, data.astype(np.float32))
+    assert any("colour preview" in n for n in f.notes)
+    # two grey pages of one file stay two frames
+    refs, frames = _read_all(_olympus_sis(tmp_path / "two.tif", 0.5e-9, [data, data[::-1].copy()]))
+    assert len(frames) == 2 and np.array_equal(frames[1].raw, data[::-1].astype(np.float32))

@@ -79,6 +79,21 @@ def _frames_of_series(series) -> tuple[int, tuple, bool]:
     return int(np.prod(shape[:-2])), shape[-2:], False  # the product of no lead axes is 1
 
 
+def sis_pages(tif: tifffile.TiffFile) -> list[int] | None:
+    """The pages of an Olympus soft-imaging TIFF that are frames; None for any other file.
+
+    tifffile reads such a file as one series of its first page's shape, but one can hold an 8-bit RGB
+    rendering of its image (first) beside the data (16-bit grey, the page the calibration belongs to): the
+    pages are taken one by one, and a colour page of the same size as a grey page is that preview, not a
+    second field (its grains would be counted twice).
+    """
+    if not getattr(tif, "is_sis", False):
+        return None
+    pages = list(tif.pages)
+    grey = {tuple(p.shape[:2]) for p in pages if p.samplesperpixel == 1}
+    return [i for i, p in enumerate(pages) if p.samplesperpixel == 1 or tuple(p.shape[:2]) not in grey]
+
+
 def _planar_rgb(series) -> bool:
     """Whether a series stores its colour samples plane by plane (axes ending ``SYX``)."""
     return series.axes.endswith("SYX") and tuple(series.shape)[-3] in (3, 4)
@@ -210,7 +225,13 @@ def grainhabit_list_frames(path: str, options: dict):
     try:
         with tifffile.TiffFile(path) as tif:
             shapes, dtype = [], ""
-            for s in tif.series:
+            sis = sis_pages(tif)
+            if sis is not None:
+                shapes = [tuple(tif.pages[i].shape) for i in sis]
+                dtype = str(tif.pages[sis[0]].dtype) if sis else ""
+                for fshape in shapes:
+                    check_size(path, fshape, options)
+            for s in tif.series if sis is None else ():
                 n, fshape, _ = _frames_of_series(s)
                 check_size(path, fshape, options)
                 shapes.extend([fshape] * n)
@@ -239,6 +260,9 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
     if ref.reader != NAME:
         return None
     with tifffile.TiffFile(ref.path) as tif:
+        sis = sis_pages(tif)
+        if sis is not None:
+            return _read_sis_page(tif, ref, options, sis)
         si, series, local, fshape, rgb = _locate(tif, ref.page)
         check_size(ref.source, fshape, options)
         n, _, _ = _frames_of_series(series)
@@ -263,6 +287,21 @@ def grainhabit_read_frame(ref: FrameRef, options: dict):
     return finish(ref, data, cal, options, notes=tuple(notes), meta=meta,
                   image_rows=getattr(info, "image_rows", None), strip_rows=getattr(info, "strip_rows", None),
                   strip_detail=maker, look_for_overlays=True)
+
+
+def _read_sis_page(tif: tifffile.TiffFile, ref: FrameRef, options: dict, sis: list[int]):
+    """One frame of an Olympus soft-imaging TIFF: its page (:func:`sis_pages`), at the file's calibration."""
+    if ref.page >= len(sis):
+        raise ValueError(f"{ref.source}: the file has {len(sis)} images, not {ref.page + 1}")
+    page = tif.pages[sis[ref.page]]
+    check_size(ref.source, tuple(page.shape), options)
+    data = page.asarray()
+    cal, info, notes = calibrate(tif, page, ref.path)
+    if len(sis) < len(tif.pages):
+        notes.append(f"{len(tif.pages) - len(sis)} colour preview page(s) of the same image skipped (not a second field)")
+    meta = {"tiff_series": "sis", "dtype": str(data.dtype)}
+    return finish(ref, data, cal, options, notes=tuple(notes), meta=meta, strip_detail=getattr(info, "maker", ""),
+                  look_for_overlays=True)
 
 
 @hookimpl
