@@ -311,6 +311,9 @@ def grainhabit_open_regions(ref: FrameRef, options: dict):
         return None
     from .regions import open_tiff
 
+    with tifffile.TiffFile(ref.path) as tif:
+        if sis_pages(tif) is not None:
+            return None  # read page by page (sis_pages); no region reads for such files
     try:
         return open_tiff(ref, options, _locate, calibrate)
     except tifffile.TiffFileError as exc:
