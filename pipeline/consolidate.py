@@ -202,7 +202,8 @@ def select_frames(groups: dict[str, xr.Dataset], keep: np.ndarray) -> dict[str, 
     Parameters
     ----------
     groups : dict of str -> xarray.Dataset
-        ``frames``, ``grains``, ``outlines``, ``thumbnails`` (loaded).
+        ``frames``, ``grains``, ``outlines``, ``thumbnails`` (loaded, or opened lazily where no
+        frame is kept: their values are then never read).
     keep : ndarray of bool, shape (n_frames,)
         Frames to keep.
 
@@ -219,16 +220,24 @@ def select_frames(groups: dict[str, xr.Dataset], keep: np.ndarray) -> dict[str, 
     if "thumbnails" in groups and groups["thumbnails"].sizes.get("frame", 0) == keep.size:
         out["thumbnails"] = groups["thumbnails"].isel(frame=np.flatnonzero(keep))
     grains = groups["grains"]
-    frame_of = grains["frame"].values.astype(np.int64) if grains.sizes.get("grain", 0) else np.zeros(0, np.int64)
-    grain_keep = keep[frame_of] if frame_of.size else np.zeros(0, bool)
+    if not keep.any():  # no row stays: the owners need not be read (the groups may be opened lazily)
+        frame_of = np.zeros(0, np.int64)
+        grain_keep = np.zeros(grains.sizes.get("grain", 0), bool)
+    else:
+        frame_of = grains["frame"].values.astype(np.int64) if grains.sizes.get("grain", 0) else np.zeros(0, np.int64)
+        grain_keep = keep[frame_of] if frame_of.size else np.zeros(0, bool)
     g = grains.isel(grain=np.flatnonzero(grain_keep))
     if g.sizes.get("grain", 0):
         g["frame"] = g["frame"].copy(data=new_frame[frame_of[grain_keep]].astype(np.int64))
     out["grains"] = g
     if "outlines" in groups:
         ol = groups["outlines"]
-        owner = ol["grain"].values.astype(np.int64)
-        vkeep = grain_keep[owner] if owner.size else np.zeros(0, bool)
+        if not keep.any():
+            owner = np.zeros(0, np.int64)
+            vkeep = np.zeros(ol.sizes.get("vertex", 0), bool)
+        else:
+            owner = ol["grain"].values.astype(np.int64)
+            vkeep = grain_keep[owner] if owner.size else np.zeros(0, bool)
         new_grain = np.cumsum(grain_keep) - 1
         o = ol.isel(vertex=np.flatnonzero(vkeep))
         if o.sizes.get("vertex", 0):
