@@ -123,7 +123,9 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
         px = float(rec.get("pixel_size_nm") or np.nan)
         thumb_meta.append((px * staged.get("thumb_factor", 1.0), *staged["thumb"].shape))
 
-    grains = xr.Dataset()
+    # the variables first, then one Dataset: adding them one by one merges the dataset again at every
+    # column (quadratic in the columns); the same dataset (tests/test_host_datasets.py)
+    grain_vars = {}
     for k in names:
         parts = per_col[k]
         if parts:
@@ -135,9 +137,10 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
                     pass
         else:
             values = np.zeros(0, dtype=_empty_dtype(k, examples.get(k)))
-        grains[k] = _as_var("grain", values, known.get(k))
+        grain_vars[k] = _as_var("grain", values, known.get(k))
+    grains = xr.Dataset(grain_vars)
 
-    frames = xr.Dataset()
+    frame_vars = {}
     for k, values in frame_rows.items():
         col = frame_known.get(k)
         arr = np.asarray(values, dtype=object)
@@ -147,7 +150,8 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
                 arr = np.nan_to_num(arr, nan=0).astype(np.int64)
         else:
             arr = np.asarray(["" if v is None else str(v) for v in values], dtype=object)
-        frames[k] = _as_var("frame", arr, col or Column(k, "", f"frame field {k}"))
+        frame_vars[k] = _as_var("frame", arr, col or Column(k, "", f"frame field {k}"))
+    frames = xr.Dataset(frame_vars)
 
     vertex_grain = np.concatenate(outl_grain) if outl_grain else np.zeros(0, np.int64)
     vertex_xy = np.concatenate(outl_xy) if outl_xy else np.zeros((0, 2))
