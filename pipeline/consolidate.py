@@ -123,7 +123,9 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
         px = float(rec.get("pixel_size_nm") or np.nan)
         thumb_meta.append((px * staged.get("thumb_factor", 1.0), *staged["thumb"].shape))
 
-    grains = xr.Dataset()
+    # the variables first, then one Dataset: adding them one by one merges the dataset again at every
+    # column (quadratic in the columns); the same dataset (tests/test_host_datasets.py)
+    grain_vars = {}
     for k in names:
         parts = per_col[k]
         if parts:
@@ -135,9 +137,10 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
                     pass
         else:
             values = np.zeros(0, dtype=_empty_dtype(k, examples.get(k)))
-        grains[k] = _as_var("grain", values, known.get(k))
+        grain_vars[k] = _as_var("grain", values, known.get(k))
+    grains = xr.Dataset(grain_vars)
 
-    frames = xr.Dataset()
+    frame_vars = {}
     for k, values in frame_rows.items():
         col = frame_known.get(k)
         arr = np.asarray(values, dtype=object)
@@ -147,7 +150,8 @@ def build_datasets(entries: list[tuple[dict, dict]], extra_columns=()) -> dict[s
                 arr = np.nan_to_num(arr, nan=0).astype(np.int64)
         else:
             arr = np.asarray(["" if v is None else str(v) for v in values], dtype=object)
-        frames[k] = _as_var("frame", arr, col or Column(k, "", f"frame field {k}"))
+        frame_vars[k] = _as_var("frame", arr, col or Column(k, "", f"frame field {k}"))
+    frames = xr.Dataset(frame_vars)
 
     vertex_grain = np.concatenate(outl_grain) if outl_grain else np.zeros(0, np.int64)
     vertex_xy = np.concatenate(outl_xy) if outl_xy else np.zeros((0, 2))
@@ -202,7 +206,8 @@ def select_frames(groups: dict[str, xr.Dataset], keep: np.ndarray) -> dict[str, 
     Parameters
     ----------
     groups : dict of str -> xarray.Dataset
-        ``frames``, ``grains``, ``outlines``, ``thumbnails`` (loaded).
+        ``frames``, ``grains``, ``outlines``, ``thumbnails`` (loaded, or opened lazily where no
+        frame is kept: their values are then never read).
     keep : ndarray of bool, shape (n_frames,)
         Frames to keep.
 
@@ -219,16 +224,24 @@ def select_frames(groups: dict[str, xr.Dataset], keep: np.ndarray) -> dict[str, 
     if "thumbnails" in groups and groups["thumbnails"].sizes.get("frame", 0) == keep.size:
         out["thumbnails"] = groups["thumbnails"].isel(frame=np.flatnonzero(keep))
     grains = groups["grains"]
-    frame_of = grains["frame"].values.astype(np.int64) if grains.sizes.get("grain", 0) else np.zeros(0, np.int64)
-    grain_keep = keep[frame_of] if frame_of.size else np.zeros(0, bool)
+    if not keep.any():  # no row stays: the owners need not be read (the groups may be opened lazily)
+        frame_of = np.zeros(0, np.int64)
+        grain_keep = np.zeros(grains.sizes.get("grain", 0), bool)
+    else:
+        frame_of = grains["frame"].values.astype(np.int64) if grains.sizes.get("grain", 0) else np.zeros(0, np.int64)
+        grain_keep = keep[frame_of] if frame_of.size else np.zeros(0, bool)
     g = grains.isel(grain=np.flatnonzero(grain_keep))
     if g.sizes.get("grain", 0):
         g["frame"] = g["frame"].copy(data=new_frame[frame_of[grain_keep]].astype(np.int64))
     out["grains"] = g
     if "outlines" in groups:
         ol = groups["outlines"]
-        owner = ol["grain"].values.astype(np.int64)
-        vkeep = grain_keep[owner] if owner.size else np.zeros(0, bool)
+        if not keep.any():
+            owner = np.zeros(0, np.int64)
+            vkeep = np.zeros(ol.sizes.get("vertex", 0), bool)
+        else:
+            owner = ol["grain"].values.astype(np.int64)
+            vkeep = grain_keep[owner] if owner.size else np.zeros(0, bool)
         new_grain = np.cumsum(grain_keep) - 1
         o = ol.isel(vertex=np.flatnonzero(vkeep))
         if o.sizes.get("vertex", 0):

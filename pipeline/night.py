@@ -54,7 +54,8 @@ class NightPlan:
     new_entries : list of (info, staged)
         Rows to add, in order, for :func:`grainhabit.consolidate.build_datasets`.
     stored : dict of str -> xarray.Dataset
-        The stored ``frames`` and ``grains`` (loaded), for the summaries.
+        The stored ``frames`` and ``grains`` (loaded), for the summaries; opened lazily
+        (never loaded) where ``keep`` holds no row.
     counts : dict
         ``unchanged``, ``added``, ``replaced``, ``removed``, ``kept_missing`` rows.
     """
@@ -185,7 +186,11 @@ def plan_night(results: str, frames: list, problems: list, transient: dict, stag
             log.warning("%d frames of earlier runs are no longer found in the inputs: kept "
                         "(input.on_missing=keep)", len(gone))
     mode = "append" if keep.all() else "rewrite"
-    stored = {"frames": stored_frames.load(), "grains": _open_group(results, "grains").load()}
+    if mode == "append" or keep.any():
+        stored = {"frames": stored_frames.load(), "grains": _open_group(results, "grains").load()}
+    else:
+        # every stored row is replaced (--fresh, or all frames changed): only the groups' layout is read
+        stored = {"frames": stored_frames, "grains": _open_group(results, "grains")}
     return NightPlan(mode, keep=keep, new_entries=new_entries, stored=stored, counts=counts)
 
 
@@ -196,10 +201,19 @@ def _unresolved(source: str) -> bool:
 
 
 def _full_groups(results: str, night: NightPlan, new: dict) -> dict:
-    """Stored rows that stay, then the new rows: every appendable group, in memory."""
-    old = {name: (night.stored[name] if name in night.stored else _open_group(results, name).load())
-           for name in APPEND_DIMS}
+    """Stored rows that stay, then the new rows: every appendable group, in memory.
+
+    Where no stored row stays, the stored groups are opened lazily and cut to no rows
+    before they are loaded: the same (empty) datasets, with their variables, types and
+    encodings, as loading them whole first, without reading their values.
+    """
+    lazy = not np.asarray(night.keep, bool).any()
+    old = {name: (night.stored[name] if name in night.stored else _open_group(results, name)) for name in APPEND_DIMS}
+    if not lazy:
+        old = {name: ds.load() for name, ds in old.items()}
     old = select_frames(old, night.keep)
+    if lazy:
+        old = {name: ds.load() for name, ds in old.items()}
     offset_indices(new, old["frames"].sizes.get("frame", 0), old["grains"].sizes.get("grain", 0))
     return concat_rows(old, new)
 

@@ -38,12 +38,14 @@ def text_array(values) -> np.ndarray:
 
 
 def as_stored(ds: xr.Dataset) -> xr.Dataset:
-    """``ds`` with fixed-width or object text variables as variable-length strings (as the store keeps them)."""
-    out = ds.copy()
-    for name, var in list(out.variables.items()):
-        if var.dtype.kind in ("U", "S", "O"):
-            out[name] = var.copy(data=text_array(np.asarray(var.values).ravel()).reshape(var.shape))
-    return out
+    """``ds`` with fixed-width or object text variables as variable-length strings (as the store keeps them).
+
+    The text variables are replaced in one ``assign`` (one merge of the dataset, not one per variable);
+    the same dataset as replacing them one by one (tests/test_host_datasets.py).
+    """
+    changed = {name: var.copy(data=text_array(np.asarray(var.values).ravel()).reshape(var.shape))
+               for name, var in ds.variables.items() if var.dtype.kind in ("U", "S", "O")}
+    return ds.assign(changed) if changed else ds.copy()
 
 
 _prepare = as_stored  # the name used before it was public
