@@ -16,8 +16,10 @@ models (:func:`engine.fit_alpha`): facet brightness following the facet tilt
 in secondary-electron contrast, attenuation following the projected
 thickness in transmission contrast. ``facet_chi2`` is how much better the
 best model explains the interior than a featureless one (one level and a
-plane): large for an octahedron on {111} (inclined facets, or thickness
-peaking in the middle), near zero for a flat plate or a cube's top face.
+plane, a round body, or a smooth cubic surface: a bead or a lump shaded by a
+detector off to one side is smooth, facets leave steps at their edges): large
+for an octahedron on {111} (inclined facets, or thickness peaking in the
+middle), near zero for a flat plate or a cube's top face.
 
 Decision
 --------
@@ -163,7 +165,7 @@ MIN_RESOLVED_PX = 8.0
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.4",
+    version="2.5",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,

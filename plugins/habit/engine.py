@@ -81,7 +81,7 @@ from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache, outline_bound
 from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
                                                grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
-                                               plane_gap_inverse, round_request, round_rss, rss_requests,
+                                               plane_gap_inverse, round_request, round_rss, rss_requests, smooth_rss,
                                                subsample_interior)
 from grainhabit.plugins.habit.signature import (check_n_angles, check_polygon, polygon_centroid,
                                                 radial_signature, radial_signature_about, rounded_outline,
@@ -772,8 +772,9 @@ class AlphaFit:
     facet_chi2 : float
         Interior evidence for facets: ``w (RSS_0 - RSS_best) / s^2``, the
         score by which the best placed model beats a featureless interior
-        (the better of one level plus a plane, and a round body); NaN
-        without interior samples.
+        (the best of one level plus a plane, a round body, and a smooth
+        cubic surface: :func:`~grainhabit.plugins.habit.interior.smooth_rss`);
+        NaN without interior samples.
     interior_level : float
         Mean interior value (brightness, or attenuation for TEM); NaN without.
     signature : ndarray, shape (n_angles,)
@@ -1149,7 +1150,7 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
         if evidence:
             # the round body's RSS (:func:`round_rss`) as one more request
             flat, rnd = flat_rss(full), float((yield round_request(full, tem_offset_max))[0])
-            fchi = max(w_eff * (min(flat, rnd) - rmin) / s2, 0.0)
+            fchi = max(w_eff * (min(flat, rnd, smooth_rss(full)) - rmin) / s2, 0.0)
             relief = max(w_eff * (flat - min(rnd, rmin)) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
                     dbest, "; ".join(notes), score, fchi, level, sig, relief)

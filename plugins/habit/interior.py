@@ -781,6 +781,28 @@ def round_request(interior: Interior, tem_offset_max: float) -> tuple:
     return (interior, *_round_planes(), 0.0, tem_offset_max, None)
 
 
+#: Degree of the smooth surface a featureless interior may follow (:func:`smooth_rss`).
+SMOOTH_INTERIOR_DEGREE = 3
+
+
+def smooth_rss(interior: Interior, degree: int = SMOOTH_INTERIOR_DEGREE) -> float:
+    """RSS of a smooth, featureless interior: a polynomial surface in x and y of ``degree`` (10 terms for 3).
+
+    A round body need not be the sphere of :func:`round_rss`: a bead, a lump or a ripened grain, lit by a
+    detector off to one side, charges, and shades as no ideal law says. Its interior is still smooth, and a
+    cubic surface follows it; facets leave steps and kinks at their edges that no such surface follows.
+    Facet evidence is counted against the best of this, :func:`round_rss` and :func:`flat_rss`.
+    """
+    x, y = interior.x, interior.y
+    cols = [x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
+    a = np.column_stack(cols)
+    nm = a.T @ a
+    rhs = a.T @ interior.value
+    coef = np.linalg.solve(nm + np.eye(len(cols)) * 1e-12 * np.trace(nm), rhs)
+    v = interior.value
+    return float(max(v @ v - coef @ rhs, 0.0))
+
+
 def flat_rss(interior: Interior) -> float:
     """RSS of a featureless interior: one level plus a plane a x + b y."""
     a = np.column_stack([np.ones_like(interior.x), interior.x, interior.y])
