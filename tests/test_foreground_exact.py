@@ -118,14 +118,12 @@ def _check_frame_reference(arr, levels, p):
     mean_low = float(arr[~upper].mean()) if not upper.all() else t
     if mean_up - mean_low < p["min_contrast"]:
         return "contrast"
-    # noise only is judged before the share of Otsu's upper class (segment-grains 2.17: on noise alone that
-    # class is about half the frame)
-    fg_frac = float(np.mean(arr > levels["noise"]))
-    if fg_frac < sg.NOISE_ONLY_FRACTION:
-        return f"noise {100 * fg_frac:.2f}"
     otsu_frac = float(np.mean(upper))
     if otsu_frac > sg.MAX_FOREGROUND:
         return f"covers {otsu_frac!r}"
+    fg_frac = float(np.mean(arr > levels["noise"]))
+    if fg_frac < sg.NOISE_ONLY_FRACTION:
+        return f"noise {100 * fg_frac:.2f}"
     return ""
 
 

@@ -740,8 +740,7 @@ def check_frame(arr: np.ndarray, levels: dict, p: dict, least_area: float = 0.0)
         A ``qc no-grains`` note when the Otsu classes differ by less than
         ``min_contrast`` or almost nothing stands above the noise threshold
         (under :data:`NOISE_ONLY_FRACTION` of the frame or under
-        ``least_area`` pixels; judged before the share of Otsu's upper class,
-        which on noise alone is about half the frame); "" otherwise.
+        ``least_area`` pixels); "" otherwise.
 
     Raises
     ------
@@ -757,15 +756,15 @@ def check_frame(arr: np.ndarray, levels: dict, p: dict, least_area: float = 0.0)
     if mean_up - mean_low < p["min_contrast"]:
         return (f"segment-grains: qc no-grains: no grains found (contrast {mean_up - mean_low:.3f} between the "
                 f"Otsu classes is below min_contrast {p['min_contrast']})")
+    otsu_frac = np.count_nonzero(upper) / upper.size  # np.mean of the mask: the same correctly rounded quotient
+    if otsu_frac > MAX_FOREGROUND:
+        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
+                         "to separate grains from (check polarity and threshold)")
     n_above = np.count_nonzero(arr > levels["noise"])
     fg_frac = n_above / arr.size
     if fg_frac < NOISE_ONLY_FRACTION or n_above < least_area:
         return (f"segment-grains: qc no-grains: no grains found (only {100 * fg_frac:.2f} % of the frame is "
                 f"{p['noise_k']:g} background sigmas above the background: noise only)")
-    otsu_frac = np.count_nonzero(upper) / upper.size  # np.mean of the mask: the same correctly rounded quotient
-    if otsu_frac > MAX_FOREGROUND:
-        raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame; no background "
-                         "to separate grains from (check polarity and threshold)")
     if abs(levels["background"] - mean_up) < abs(levels["background"] - mean_low):
         raise ValueError(f"segment-grains: foreground covers {100 * otsu_frac:.0f} % of the frame and the most "
                          "common level is not background; no background to separate grains from "
