@@ -85,3 +85,42 @@ def test_half_height_mask_edge_cases_equal_the_scipy_labelling():
              np.ones((30, 1), np.float32), np.eye(40, 50, dtype=np.float32)]
     for img in cases:
         np.testing.assert_array_equal(fg.half_height_mask(img, 0.05, 0.5), _half_height_mask_reference(img, 0.05, 0.5))
+
+
+def _masks(seed):
+    """Invented masks of several shapes, densities and dtypes (all and none set among them)."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for shape in [(1,), (9,), (5, 9), (64, 80), (1, 40), (40, 1), (3, 4, 5)]:
+        for p in (0.0, 0.03, 0.5, 0.97, 1.0):
+            out.append(rng.random(shape) < p)
+    blobs = ndi.gaussian_filter(rng.random((120, 90)), 4) > 0.5
+    out += [blobs, ~blobs, blobs[::2, ::3], rng.random((20, 30)), np.where(rng.random((20, 20)) < 0.5, np.nan, 0.0)]
+    return out
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_distance_map_equals_scipy_bit_for_bit(seed):
+    # reference library: scipy.ndimage.distance_transform_edt (distances, and feature indices alone)
+    from grainhabit.plugins.segment.distance import distance_map, feature_transform
+
+    for m in _masks(seed):
+        want = ndi.distance_transform_edt(m)
+        got = distance_map(m)
+        assert got.dtype == want.dtype == np.float64 and got.shape == want.shape
+        np.testing.assert_array_equal(got.view(np.uint64), want.view(np.uint64))
+        ft = feature_transform(m)
+        want_ft = ndi.distance_transform_edt(m, return_distances=False, return_indices=True)
+        assert ft.dtype == want_ft.dtype
+        np.testing.assert_array_equal(ft, want_ft)
+
+
+def test_distances_from_features_sum_in_int64_beyond_int32():
+    # reference: scipy's float64 sum of squares, on index grids too long for an int32 sum (a 1 x 50000 strip
+    # with its only zero pixel at one end: squared reach 2.5e9 > 2**31)
+    from grainhabit.plugins.segment.distance import distance_map
+
+    m = np.ones((1, 50_000), bool)
+    m[0, 0] = False
+    np.testing.assert_array_equal(distance_map(m), ndi.distance_transform_edt(m))
+    assert distance_map(m)[0, -1] == 49_999.0
