@@ -143,3 +143,32 @@ def test_sobel_magnitude_by_the_compiled_correlation_equals_scipy_and_scikit_ima
             want = ndi.convolve(w, band_flood._SOBEL_KERNELS[which], mode="reflect", cval=0.0)
             np.testing.assert_array_equal(band_flood._convolve_reflect(w, which), want)
         np.testing.assert_array_equal(band_flood.sobel_magnitude(w), sobel(w))
+
+
+def _survives_disk_erosion_reference(mask, radius):
+    """segment-grains 2.17's survives_disk_erosion: the square's running minima first, then the disk."""
+    from grainhabit.plugins.segment.disk_morphology import erode_disk
+
+    k = int(np.floor(radius))
+    m = np.asarray(mask, bool)
+    if m.size and ndi.minimum_filter(m.view(np.uint8), size=2 * k + 1, mode="constant", cval=0).any():
+        return True
+    return bool(erode_disk(np.pad(m, 1), radius, 0).any())
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_survives_disk_erosion_with_the_middle_square_first_equals_the_previous_form(seed):
+    # reference: the 2.17 form above (scipy's minimum filter, then the disk erosion); invented discs, rings,
+    # bars, masks filling their array to the edge and noise
+    from grainhabit.plugins.segment.mark_shapes import survives_disk_erosion
+
+    rng = np.random.default_rng(seed)
+    for _ in range(40):
+        h, w = rng.integers(1, 60, 2)
+        yy, xx = np.mgrid[:h, :w]
+        d = np.hypot(yy - rng.uniform(0, h), xx - rng.uniform(0, w))
+        r = rng.uniform(0, 30)
+        kind = rng.integers(0, 4)
+        m = [d < r, (d < r) & (d > 0.6 * r), rng.random((h, w)) < 0.9, np.ones((h, w), bool)][kind]
+        for radius in (0.0, 1.5, 4.0, 5.3, 8.0):
+            assert survives_disk_erosion(m, radius) == _survives_disk_erosion_reference(m, radius)
