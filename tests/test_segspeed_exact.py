@@ -126,25 +126,6 @@ def test_distances_from_features_sum_in_int64_beyond_int32():
     assert distance_map(m)[0, -1] == 49_999.0
 
 
-@pytest.mark.parametrize("dtype", [np.float32, np.float64])
-def test_sobel_magnitude_by_the_compiled_correlation_equals_scipy_and_scikit_image(dtype):
-    # reference libraries: scipy.ndimage.convolve (each kernel) and skimage.filters.sobel (the magnitude), on
-    # invented windows of several sizes, strided views of a larger array among them
-    from skimage.filters import sobel
-
-    from grainhabit.plugins.segment import band_flood
-
-    rng = np.random.default_rng(5)
-    big = ndi.gaussian_filter(rng.random((300, 260)), 2).astype(dtype)
-    windows = [big, big[10:13, 20:24], big[5:6, :], big[:, 7:8], big[3:200:2, 1:250:3], big[40:140, 30:90],
-               rng.normal(size=(17, 23)).astype(dtype)]
-    for w in windows:
-        for which in (0, 1):
-            want = ndi.convolve(w, band_flood._SOBEL_KERNELS[which], mode="reflect", cval=0.0)
-            np.testing.assert_array_equal(band_flood._convolve_reflect(w, which), want)
-        np.testing.assert_array_equal(band_flood.sobel_magnitude(w), sobel(w))
-
-
 def _survives_disk_erosion_reference(mask, radius):
     """segment-grains 2.17's survives_disk_erosion: the square's running minima first, then the disk."""
     from grainhabit.plugins.segment.disk_morphology import erode_disk

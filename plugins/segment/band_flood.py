@@ -110,44 +110,14 @@ def sobel_magnitude(image: np.ndarray) -> np.ndarray:
         from skimage.filters import sobel
 
         return sobel(image)
-    out = _convolve_reflect(image, 0)
+    out = ndi.convolve(image, _SOBEL_KERNELS[0], mode="reflect", cval=0.0)
     out *= out
-    g = _convolve_reflect(image, 1)
+    g = ndi.convolve(image, _SOBEL_KERNELS[1], mode="reflect", cval=0.0)
     g *= g
     out += g
     np.sqrt(out, out=out)
     out /= np.sqrt(2, dtype=out.dtype)
     return out
-
-
-try:  # the compiled correlation behind scipy.ndimage.convolve (checked against it in the tests)
-    from scipy.ndimage import _nd_image as _ndi_compiled
-    from scipy.ndimage._ni_support import _extend_mode_to_code
-
-    _REFLECT = _extend_mode_to_code("reflect")
-except ImportError:  # pragma: no cover - another scipy layout: the public function is used
-    _ndi_compiled = None
-#: The two kernels as ``scipy.ndimage.convolve`` hands them to its compiled correlation: flipped along
-#: both axes, float64, contiguous (the origins of a 3 x 3 kernel stay 0).
-_SOBEL_FLIPPED = tuple(np.ascontiguousarray(k[::-1, ::-1], dtype=np.float64) for k in _SOBEL_KERNELS)
-
-
-def _convolve_reflect(image: np.ndarray, which: int) -> np.ndarray:
-    """``scipy.ndimage.convolve(image, _SOBEL_KERNELS[which], mode="reflect", cval=0.0)`` for a 2-D float array.
-
-    The same compiled routine with the same arguments as scipy's public function, called directly: the
-    public function's argument handling (axes, origins, the kernel's flip and copy, the output's
-    allocation checks) costs more than the correlation on the ~150 small windows of a frame. The same
-    values (tests/test_segspeed_exact.py); the public function where the routine is missing or refuses.
-    """
-    if _ndi_compiled is not None:
-        out = np.empty(image.shape, image.dtype)
-        try:
-            _ndi_compiled.correlate(image, _SOBEL_FLIPPED[which], out, _REFLECT, 0.0, [0, 0])
-            return out
-        except (TypeError, ValueError, RuntimeError):  # pragma: no cover - the routine's signature changed
-            pass
-    return ndi.convolve(image, _SOBEL_KERNELS[which], mode="reflect", cval=0.0)
 
 
 #: Above this many boxes :func:`box_clusters` is not used (its overlap table grows with the square).
