@@ -58,6 +58,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.distance import distance_map
 from grainhabit.plugins.segment.foreground import disk_structure
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask, hull_pixel_count
 from grainhabit.plugins.segment.population import box_areas
@@ -125,7 +126,7 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     if not large and area >= GRAIN_SOLIDITY * float(hull_pixel_count(mask)):
         return None
     smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
-    dist = ndi.distance_transform_edt(mask)
+    dist = distance_map(mask)
     inner = mask & (dist > EDGE_PX)
     if np.count_nonzero(inner) < 20:
         return None
@@ -136,7 +137,7 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     seams = (tophat > SEAM_DIP * level) & (dist > 1) & mask
     if not seams.any():
         return None
-    free = ndi.distance_transform_edt(mask & ~seams)
+    free = distance_map(mask & ~seams)
     peaks, n = ndi.label(distance_h_maxima(free, max(2.0, H_FRACTION * float(free.max()))), structure=_EIGHT)
     if n < 2:
         return None
@@ -165,8 +166,8 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
 
     # where the outline is notched: pixels of the convex hull outside the grain, NOTCH_PX deep or more
     notched = convex_hull_mask(mask) & ~mask
-    notched &= ndi.distance_transform_edt(~mask) >= NOTCH_PX
-    near_notch = ndi.distance_transform_edt(~notched) <= NOTCH_REACH_PX if notched.any() else notched
+    notched &= distance_map(~mask) >= NOTCH_PX
+    near_notch = distance_map(~notched) <= NOTCH_REACH_PX if notched.any() else notched
     for i, a in enumerate(big):
         grown = ndi.binary_dilation(flooded == a, structure=_EIGHT)
         for b in big[i + 1:]:

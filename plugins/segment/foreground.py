@@ -293,18 +293,22 @@ def half_height_mask(image: np.ndarray, noise_level: float, edge_level: float = 
         weak |= faint_objects(image > faint_level, weak, faint_min_area)
     if grow_level is not None and grow_level < noise_level:
         weak = grown_to(weak, image > grow_level)
-    lab, n = ndi.label(weak, structure=_EIGHT)
+    # the 8-connected components of weak from its runs along the rows (runs.connect_runs: scipy's labels, in
+    # scipy's numbering), read at weak's pixels only: no whole-frame label image and no gather from it
+    # (tests/test_segspeed_exact.py keeps the scipy form)
+    w_rows, w_starts, w_stops = runs.row_runs(weak)
+    run_lab, n = runs.connect_runs(w_rows, w_starts, w_stops, weak.shape[1])
     if n == 0:
         return weak
     peak = np.full(n + 1, -np.inf, np.float32)
-    # each component's peak over its own pixels (scipy's labelled maximum visits the whole frame: 0.2-0.7 s
-    # on 2048 px; equal to it, tests/test_speed_kernels.py)
-    at = np.flatnonzero(weak)
-    own, value = lab.ravel()[at], image.ravel()[at]
-    # one maximum per run of one label along the rows (numpy's reduceat), then the runs' maxima gathered by
-    # label (numpy's maximum.at over ~1e4 runs, not ~6e5 pixels; no sort): a maximum is a maximum in any order
-    starts = np.flatnonzero(np.r_[True, own[1:] != own[:-1]])
-    np.maximum.at(peak, own[starts], np.maximum.reduceat(value, starts))
+    # each component's pixels in row-major order (numpy.flatnonzero(weak)) and their labels
+    at = runs.run_pixels(w_rows, w_starts, w_stops, weak.shape[1])
+    lengths = w_stops - w_starts
+    own, value = np.repeat(run_lab, lengths), image.ravel()[at]
+    # each component's peak over its own pixels: one maximum per run (numpy's reduceat), then the runs'
+    # maxima gathered by label (numpy's maximum.at over ~1e4 runs, not ~6e5 pixels; no sort): a maximum is a
+    # maximum in any order (equal to scipy's labelled maximum, tests/test_speed_kernels.py)
+    np.maximum.at(peak, run_lab, np.maximum.reduceat(value, np.cumsum(lengths) - lengths))
     peak[0] = 0.0
     # only the skirt of each component (within EDGE_BAND_PX of its outline) is cut at the level: inner
     # facet lines and texture deeper inside never split a grain

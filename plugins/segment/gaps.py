@@ -16,6 +16,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment import runs
 from grainhabit.plugins.segment.disk_morphology import dilate_disk
+from grainhabit.plugins.segment.distance import feature_transform
 
 #: Components of the thresholded mask smaller than this (pixels) are specks, not grains kept apart.
 GAP_MIN_AREA_PX = 20
@@ -186,7 +187,7 @@ def nearest_body_lines(bodies: np.ndarray, mask: np.ndarray,
     free = bodies == 0
     if free.all():  # no body at all: no nearest body anywhere
         return np.zeros(bodies.shape, bool), None
-    ft = ndi.distance_transform_edt(free, return_distances=False, return_indices=True)
+    ft = feature_transform(free)  # scipy's distance_transform_edt(free, return_distances=False, return_indices=True)
     out = np.zeros(bodies.shape, bool)
     held = bodies[~free]
     if held.min() == held.max():

@@ -78,6 +78,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.distance import distance_map
 from grainhabit.plugins.segment.foreground import fill_holes
 from grainhabit.plugins.segment.population import box_areas
 from grainhabit.plugins.segment.runs import labelled_maxima
@@ -416,7 +417,7 @@ def _judge(upper: np.ndarray, min_area: float, bright: bool | None = None, thin_
     if bright is not None and upper.mean() < MIN_COVER:
         return PackedField(False, empty, bright, float(upper.mean()),
                            reason=f"particles cover {upper.mean():.2f} < {MIN_COVER}")
-    d_up, d_low = ndi.distance_transform_edt(upper), ndi.distance_transform_edt(~upper)
+    d_up, d_low = distance_map(upper), distance_map(~upper)  # scipy's distance_transform_edt (segment.distance)
     r_up, r_low = inscribed_radius(d_up, upper), inscribed_radius(d_low, ~upper)
     if bright is None:
         bright = bool(r_up >= r_low)
@@ -439,7 +440,7 @@ def _judge(upper: np.ndarray, min_area: float, bright: bool | None = None, thin_
     holes = fill_holes(grains) & ~grains
     small = holes & ~_large(holes, min_area)
     solid = grains | small
-    dist = ndi.distance_transform_edt(solid) if small.any() else (d_up if up_is_grains else d_low)
+    dist = distance_map(solid) if small.any() else (d_up if up_is_grains else d_low)
     # one core per particle where the necks are narrow: a cheap count before the watershed
     ratios = core_area_ratios(dist, max(1.0, H_SHARE * radius), min_area)
     if ratios.size < MIN_PARTS:
@@ -565,9 +566,9 @@ def split_raft(image: np.ndarray, mask: np.ndarray, min_area: float) -> np.ndarr
         parts = mask & ~gaps
         holes = ndi.binary_fill_holes(parts) & ~parts & mask
         solid = parts | (holes & ~_large(holes, min_area))
-        dist = ndi.distance_transform_edt(solid)
+        dist = distance_map(solid)
         radius = inscribed_radius(dist, solid)
-        gap_radius = inscribed_radius(ndi.distance_transform_edt(gaps), gaps) if gaps.any() else 0.0
+        gap_radius = inscribed_radius(distance_map(gaps), gaps) if gaps.any() else 0.0
         if radius <= 0 or gap_radius > MAX_GAP_RATIO * radius:
             continue
         if float(np.median(g[gaps])) > RAFT_GAP_LEVEL * float(np.median(g[parts])):

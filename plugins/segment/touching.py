@@ -36,6 +36,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.band_flood import watershed_window
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
+from grainhabit.plugins.segment.distance import distance_map
 from grainhabit.plugins.segment.distance_maxima import distance_h_maxima, squared_distances
 from grainhabit.plugins.segment.hull_fill import convex_hull_mask, remember_hull_count, shape_key, tight_hull
 from grainhabit.plugins.segment.runs import maxima_by_label
@@ -192,7 +193,7 @@ def _deep_pocket_depth(mask: np.ndarray, deep: np.ndarray) -> float:
         whole = (y0, y1, x0, x1) == (0, rows, 0, cols)
         window = mask[y0:y1, x0:x1]
         if whole or window.any():
-            d = ndi.distance_transform_edt(~window)[rr - y0, cc - x0]
+            d = distance_map(~window)[rr - y0, cc - x0]
             if whole:
                 return float(d.max())
             big = np.inf
@@ -453,7 +454,7 @@ def seam_contrast(image: np.ndarray, mask: np.ndarray, parts: list[np.ndarray], 
     """
     smooth = ndi.gaussian_filter(np.asarray(image, np.float32), 1.0)
     if mask.all():  # no background in the box: the transform's own convention (see distance_transform_edt)
-        deep = ndi.distance_transform_edt(mask) > EDGE_PX
+        deep = distance_map(mask) > EDGE_PX
     else:
         # distance_transform_edt(mask) > EDGE_PX: survives the erosion by that disk, the array's edge counting
         # as neither kind (disk_morphology; the same pixels, several times cheaper on a component's box)
@@ -603,7 +604,7 @@ def _inscribed_radius(part: np.ndarray) -> float:
     """
     if not part.any():
         return 0.0
-    return float(ndi.distance_transform_edt(part[_box(part)]).max())
+    return float(distance_map(part[_box(part)]).max())
 
 
 def _distance_map(mask: np.ndarray) -> np.ndarray:
@@ -616,7 +617,7 @@ def _distance_map(mask: np.ndarray) -> np.ndarray:
     last = _LAST_DISTANCE[0]  # one tuple, read at once (tiles may run in threads)
     if last is not None and last[0] == key:
         return last[1]
-    dist = ndi.distance_transform_edt(mask)
+    dist = distance_map(mask)  # scipy's distance_transform_edt (segment.distance)
     dist.flags.writeable = False
     _LAST_DISTANCE[0] = (key, dist)
     return dist
@@ -958,7 +959,7 @@ def _meet_at_neck(a: np.ndarray, b: np.ndarray) -> bool:
     if not pocket.any():
         return False
     pockets, n_pockets = ndi.label(pocket, structure=_EIGHT)
-    deepest = np.r_[0.0, maxima_by_label(ndi.distance_transform_edt(outside), pockets, n_pockets)]  # ndi.maximum
+    deepest = np.r_[0.0, maxima_by_label(distance_map(outside), pockets, n_pockets)]  # ndi.maximum
     notch = np.sort([deepest[np.unique(pockets[ndi.binary_dilation(end_labels == k, structure=_EIGHT)])].max()
                      for k in range(1, n_ends + 1)])[::-1]
     rows, cols = np.nonzero(border)
