@@ -411,7 +411,8 @@ def captioned_bars(labels: np.ndarray, glyphs: np.ndarray, boxes: list | None = 
     max_width, aspect, fill : float
         A bar is at most ``max_width`` px wide, ``aspect`` times longer than
         wide and fills ``fill`` of its box (ragged edge lines trimmed; see
-        :func:`aligned_bar`).
+        :func:`aligned_bar`); segment-grains passes the bar shape of its ink
+        test (``annotations.BAR_MAX_WIDTH_PX``, ``BAR_ASPECT``, ``BOX_FILL``).
 
     Returns
     -------
@@ -426,11 +427,12 @@ def captioned_bars(labels: np.ndarray, glyphs: np.ndarray, boxes: list | None = 
     overlapping its columns widened each side by a quarter of its length or
     twice their height, whichever is more (a caption is often set off to one
     side of a short bar), at most half its length tall, within twice their
-    height (or that quarter length) above or below it. A scale bar in a grey that is no end of the grey scale and carries
-    the figure's compression noise passes neither the ink nor the flatness
-    test (:mod:`grainhabit.plugins.segment.annotations`), but its caption,
-    drawn as text, is found; a rod lying beside two dropped glyphs and
-    that well aligned with the frame is rare.
+    height (or that quarter length) above or below it. A scale bar in a
+    grey that is no end of the grey scale and carries the figure's
+    compression noise passes neither the ink nor the flatness test
+    (:mod:`grainhabit.plugins.segment.annotations`), but its caption, drawn
+    as text, is found; a rod lying beside two dropped glyphs and that well
+    aligned with the frame is rare.
     """
     glyphs = np.asarray(glyphs, np.int64)
     out, frame_boxes = [], []

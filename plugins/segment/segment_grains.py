@@ -355,8 +355,9 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
             gone = np.union1d(gone, np.zeros(0, np.int64)).astype(np.int64)
         # a bar beside a caption dropped here (a grey scale bar under "100 nm"; the glyphs dropped by their
         # shape alone, numbered from nxt in page, counted as well), and then the rest of its caption
-        captioned, captioned_boxes = captioned_bars(page, np.union1d(gone, np.arange(nxt, nxt + n_marks)),
-                                                    page_boxes)
+        captioned, captioned_boxes = captioned_bars(
+            page, np.union1d(gone, np.arange(nxt, nxt + n_marks)), page_boxes, annotations.BAR_MAX_WIDTH_PX,
+            annotations.BAR_ASPECT, annotations.BOX_FILL)  # the bar of the ink test's shape
         gone = np.union1d(gone, captioned).astype(np.int64)
         bars += captioned_boxes
         gone = np.union1d(gone, bar_captions(page, bars, above, page_boxes)).astype(np.int64)
