@@ -224,24 +224,19 @@ def select_frames(groups: dict[str, xr.Dataset], keep: np.ndarray) -> dict[str, 
     if "thumbnails" in groups and groups["thumbnails"].sizes.get("frame", 0) == keep.size:
         out["thumbnails"] = groups["thumbnails"].isel(frame=np.flatnonzero(keep))
     grains = groups["grains"]
-    if not keep.any():  # no row stays: the owners need not be read (the groups may be opened lazily)
-        frame_of = np.zeros(0, np.int64)
-        grain_keep = np.zeros(grains.sizes.get("grain", 0), bool)
-    else:
-        frame_of = grains["frame"].values.astype(np.int64) if grains.sizes.get("grain", 0) else np.zeros(0, np.int64)
-        grain_keep = keep[frame_of] if frame_of.size else np.zeros(0, bool)
+    # the owners are read only where a row may stay (where none does, the groups may be opened lazily)
+    n_grains = grains.sizes.get("grain", 0)
+    frame_of = grains["frame"].values.astype(np.int64) if n_grains and keep.any() else np.zeros(0, np.int64)
+    grain_keep = keep[frame_of] if frame_of.size else np.zeros(n_grains, bool)
     g = grains.isel(grain=np.flatnonzero(grain_keep))
     if g.sizes.get("grain", 0):
         g["frame"] = g["frame"].copy(data=new_frame[frame_of[grain_keep]].astype(np.int64))
     out["grains"] = g
     if "outlines" in groups:
         ol = groups["outlines"]
-        if not keep.any():
-            owner = np.zeros(0, np.int64)
-            vkeep = np.zeros(ol.sizes.get("vertex", 0), bool)
-        else:
-            owner = ol["grain"].values.astype(np.int64)
-            vkeep = grain_keep[owner] if owner.size else np.zeros(0, bool)
+        n_vertices = ol.sizes.get("vertex", 0)
+        owner = ol["grain"].values.astype(np.int64) if n_vertices and grain_keep.any() else np.zeros(0, np.int64)
+        vkeep = grain_keep[owner] if owner.size else np.zeros(n_vertices, bool)
         new_grain = np.cumsum(grain_keep) - 1
         o = ol.isel(vertex=np.flatnonzero(vkeep))
         if o.sizes.get("vertex", 0):

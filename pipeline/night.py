@@ -207,13 +207,11 @@ def _full_groups(results: str, night: NightPlan, new: dict) -> dict:
     before they are loaded: the same (empty) datasets, with their variables, types and
     encodings, as loading them whole first, without reading their values.
     """
-    lazy = not np.asarray(night.keep, bool).any()
     old = {name: (night.stored[name] if name in night.stored else _open_group(results, name)) for name in APPEND_DIMS}
-    if not lazy:
+    if np.asarray(night.keep, bool).any():
         old = {name: ds.load() for name, ds in old.items()}
-    old = select_frames(old, night.keep)
-    if lazy:
-        old = {name: ds.load() for name, ds in old.items()}
+    # loading what select_frames kept reads nothing more where the groups were loaded above
+    old = {name: ds.load() for name, ds in select_frames(old, night.keep).items()}
     offset_indices(new, old["frames"].sizes.get("frame", 0), old["grains"].sizes.get("grain", 0))
     return concat_rows(old, new)
 

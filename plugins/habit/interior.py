@@ -794,22 +794,21 @@ def smooth_rss(interior: Interior, degree: int = SMOOTH_INTERIOR_DEGREE) -> floa
     Facet evidence is counted against the best of this, :func:`round_rss` and :func:`flat_rss`.
     """
     x, y = interior.x, interior.y
-    cols = [x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
-    a = np.column_stack(cols)
-    nm = a.T @ a
-    rhs = a.T @ interior.value
-    coef = np.linalg.solve(nm + np.eye(len(cols)) * 1e-12 * np.trace(nm), rhs)
-    v = interior.value
-    return float(max(v @ v - coef @ rhs, 0.0))
+    return _surface_rss([x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)], interior.value)
 
 
 def flat_rss(interior: Interior) -> float:
     """RSS of a featureless interior: one level plus a plane a x + b y."""
-    a = np.column_stack([np.ones_like(interior.x), interior.x, interior.y])
+    return _surface_rss([np.ones_like(interior.x), interior.x, interior.y], interior.value)
+
+
+def _surface_rss(columns: list, v: np.ndarray) -> float:
+    """Residual sum of squares of the least-squares fit of ``v`` by the ``columns`` (normal equations,
+    a relative ridge of 1e-12 of their trace against a singular system)."""
+    a = np.column_stack(columns)
     nm = a.T @ a
-    rhs = a.T @ interior.value
-    coef = np.linalg.solve(nm + np.eye(3) * 1e-12 * np.trace(nm), rhs)
-    v = interior.value
+    rhs = a.T @ v
+    coef = np.linalg.solve(nm + np.eye(len(columns)) * 1e-12 * np.trace(nm), rhs)
     return float(max(v @ v - coef @ rhs, 0.0))
 
 

@@ -32,10 +32,13 @@ def recognises(path: str) -> bool:
     A ``.map`` file that starts with the JEOL image signature and lacks that word is a JEOL element map
     (``read-jeol``), not an MRC map.
     """
+    ext = suffix(path)
+    if ext in SUFFIXES and ext != ".map":
+        return True
     start = head(path, 212)
     has_word = len(start) == 212 and start[208:211] == b"MAP"
-    if suffix(path) in SUFFIXES:
-        return has_word or not (suffix(path) == ".map" and any(start.startswith(m) for m in MAGIC["jeol-img"]))
+    if ext == ".map":
+        return has_word or not any(start.startswith(m) for m in MAGIC["jeol-img"])
     return has_word
 
 

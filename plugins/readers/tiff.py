@@ -226,16 +226,16 @@ def grainhabit_list_frames(path: str, options: dict):
         with tifffile.TiffFile(path) as tif:
             shapes, dtype = [], ""
             sis = sis_pages(tif)
-            if sis is not None:
+            if sis is not None:  # page by page
                 shapes = [tuple(tif.pages[i].shape) for i in sis]
                 dtype = str(tif.pages[sis[0]].dtype) if sis else ""
-                for fshape in shapes:
-                    check_size(path, fshape, options)
-            for s in tif.series if sis is None else ():
-                n, fshape, _ = _frames_of_series(s)
+            else:
+                for s in tif.series:
+                    n, fshape, _ = _frames_of_series(s)
+                    shapes.extend([fshape] * n)
+                    dtype = dtype or str(s.dtype)
+            for fshape in shapes:
                 check_size(path, fshape, options)
-                shapes.extend([fshape] * n)
-                dtype = dtype or str(s.dtype)
             if not shapes:
                 raise ValueError(f"{path}: the file holds no image")
             page = tif.series[0].pages[0] if tif.series[0].pages else tif.pages[0]
