@@ -293,3 +293,36 @@ def test_a_bar_beside_a_caption_dropped_as_text_is_a_scale_bar():
     d = np.where(cc < 40, np.hypot(rr - 60, cc - 40), np.where(cc > 100, np.hypot(rr - 60, cc - 100), np.abs(rr - 60)))
     rod[d <= 8] = 1
     assert captioned_bars(rod, np.array([2, 3, 4]))[0].size == 0
+
+
+def test_a_line_of_solid_print_is_text_a_row_of_a_packing_is_not():
+    # A printed data line in bold or blurred letters: solid pieces (solidity = area / convex hull area ~ 1,
+    # ISO 9276-6) of one height on one baseline, their widths spread from a letter to a word (EMPS 9dc60257e5
+    # of ../shared/realdata: 19 such pieces, 11-44 px wide, 15-17 px tall). Alone in its band: dropped. The
+    # same pieces as the middle row of a packed array (rows above and below), or a row of equal squares
+    # alone (a row of cubes), are kept (the layout of printed text, common practice).
+    from grainhabit.plugins.segment.mark_shapes import text_rows
+
+    widths = (11, 44, 12, 19, 26, 11, 39, 15)
+
+    def line(labels, top, first):
+        c, k = 5, first
+        for w in widths:
+            labels[top:top + 16, c:c + w] = k
+            c, k = c + w + 4, k + 1
+        return k
+
+    alone = np.zeros((120, 260), np.int32)
+    line(alone, 50, 1)
+    assert sorted(text_rows(alone, alone > 0).tolist()) == list(range(1, 9))
+    packed = np.zeros((120, 260), np.int32)
+    k = line(packed, 50, 1)
+    for top in (30, 70):                           # rows of grains 4 px above and below the line
+        for c0 in range(5, 245, 20):
+            packed[top:top + 16, c0:c0 + 16] = k
+            k += 1
+    assert not set(text_rows(packed, packed > 0).tolist()) & set(range(1, 9))
+    cubes = np.zeros((120, 260), np.int32)
+    for k, c0 in enumerate(range(5, 245, 20), start=1):
+        cubes[50:66, c0:c0 + 16] = k
+    assert text_rows(cubes, cubes > 0).size == 0

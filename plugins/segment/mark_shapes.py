@@ -37,6 +37,14 @@ TEXT_SOLIDITY = 0.85
 #: at least this share of it: text is drawn in ink, all of it far above the noise; of a faint grain (its
 #: average below the threshold) the pixels above are a noise-ridden sample, less solid than any glyph.
 TEXT_MIN_COVER = 0.5
+#: A line of at least this many members is text also when its glyphs are solid (bold or blurred print) ...
+TEXT_LINE_GLYPHS = 6
+#: ... where the widest member is this many times the narrowest (words and letters of a printed line; the
+#: grains of one row of a packing are of one width) ...
+TEXT_WIDTH_SPREAD = 2.5
+#: ... and the bands one line height above and below it hold fewer objects than this share of its members
+#: (a line of print stands alone; a row of a packed array has rows of grains above and below it).
+TEXT_LINE_NEIGHBOURS = 0.5
 
 
 def annotation_kind(part: np.ndarray, raw: np.ndarray) -> str | None:
@@ -273,7 +281,12 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
     horizontal gaps under 1.5 heights: the layout of printed text (common
     practice). It is dropped when most of its members are not convex (drawn
     pixels fill under :data:`TEXT_SOLIDITY` of their convex hull), as
-    letters and digits are and a row of touching grains is not. A member
+    letters and digits are and a row of touching grains is not, or when it
+    is a line of print whose glyphs are solid (bold or blurred letters,
+    run-together words of an instrument's data line: EMPS 9dc60257e5, 19
+    pieces of one line): at least :data:`TEXT_LINE_GLYPHS` members of widths
+    spread :data:`TEXT_WIDTH_SPREAD` times or more, alone in their band
+    (:func:`alone_in_band`). A member
     whose drawn pixels, holes filled, cover under :data:`TEXT_MIN_COVER` of
     it is a faint object, not a glyph drawn in ink, and counts as convex
     (EMPS 482193653a, ../shared/realdata: 22 faint particles of a noisy
@@ -314,7 +327,10 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
             group = chain_holding(a, same, left, right, 1.5 * max(height[a], 1))
             if len(group) < TEXT_MIN_GLYPHS:
                 continue
-            if sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group):
+            if (sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group)
+                    or (len(group) >= TEXT_LINE_GLYPHS
+                        and (right - left)[group].max() >= TEXT_WIDTH_SPREAD * max((right - left)[group].min(), 1)
+                        and alone_in_band(group, top, bottom, left, right))):
                 drop.update(int(ids[i]) for i in group)
                 # pieces of glyphs (a split letter, a dot) inside the line's band go with it
                 g = np.asarray(group)
@@ -323,6 +339,34 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
                 inside = (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
                 drop.update(int(k) for k in ids[inside])
     return np.asarray(sorted(drop), np.int64)
+
+
+def alone_in_band(group: list, top: np.ndarray, bottom: np.ndarray, left: np.ndarray, right: np.ndarray) -> bool:
+    """Whether a line of boxes has few other boxes in the bands one line height above and below it.
+
+    Parameters
+    ----------
+    group : list of int
+        Indices of the line's boxes.
+    top, bottom, left, right : ndarray of int, shape (n,)
+        All boxes (:func:`box_table`), pixel rows and columns, bottom and right exclusive.
+
+    Returns
+    -------
+    bool
+        True when the boxes outside ``group`` that overlap the line's columns
+        and the rows within one line height above its top or below its
+        bottom number under :data:`TEXT_LINE_NEIGHBOURS` times its members.
+    """
+    g = np.asarray(group)
+    t0, t1, c0, c1 = top[g].min(), bottom[g].max(), left[g].min(), right[g].max()
+    h = t1 - t0
+    other = np.ones(top.size, bool)
+    other[g] = False
+    beside = other & (left < c1) & (right > c0)
+    above = beside & (bottom > t0 - h) & (bottom <= t0 + 1)
+    below = beside & (top < t1 + h) & (top >= t1 - 1)
+    return int(np.count_nonzero(above | below)) < TEXT_LINE_NEIGHBOURS * len(group)
 
 
 def bar_captions(labels: np.ndarray, bars: list[tuple[int, int, int, int]],
