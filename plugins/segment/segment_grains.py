@@ -85,7 +85,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
-from grainhabit.plugins.segment import annotations, outer_edge, population, specks, tiling
+from grainhabit.plugins.segment import annotations, cut_edges, outer_edge, population, specks, tiling
 from grainhabit.plugins.segment.dark_seams import split_at_dark_seams
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
@@ -99,7 +99,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.18",
+    version="2.19",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -657,7 +657,18 @@ def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
 
 def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict
                    ) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Move the outlines out to the edge's foot where ``outline`` is ``outer`` (:mod:`~grainhabit.plugins.segment.outer_edge`)."""
+    """Cuts between grains of different levels onto their edge; outlines out to the edge's foot where asked.
+
+    The cuts: :func:`~grainhabit.plugins.segment.cut_edges.snap_cuts` (the labels are numbered again in
+    raster order of their first pixels where a cut moved). The foot: where ``outline`` is ``outer``
+    (:mod:`~grainhabit.plugins.segment.outer_edge`).
+    """
+    labels, moved = cut_edges.snap_cuts(arr, labels, split)
+    if moved:
+        notes.append(f"segment-grains: {moved} cut(s) between grains of different levels moved onto the edge "
+                     "between them")
+        labels, old = tiling.renumber_raster(labels)
+        split = split[old - 1]
     if p["outline"] == "outer":
         labels = outer_edge.grow_to_level(arr, labels)
     return labels, split, notes
