@@ -59,8 +59,21 @@ def test_grains_of_one_level_and_uncut_grains_keep_their_cut():
     assert moved == 0 and np.array_equal(out, labels)
 
 
-def test_touching_pairs_are_the_labels_that_meet():
+def test_neighbours_are_the_labels_that_meet_a_grain():
     lab = np.array([[1, 1, 0, 3, 3],
                     [0, 2, 0, 0, 4],
                     [5, 0, 0, 0, 0]])
-    assert cut_edges.touching_pairs(lab) == {(1, 2), (3, 4), (2, 5)}
+    boxes = ndi.find_objects(lab)
+    assert cut_edges.neighbours(lab, 2, boxes[1]) == [1, 5]
+    assert cut_edges.neighbours(lab, 3, boxes[2]) == [4]
+    assert cut_edges.neighbours(lab, 1, boxes[0]) == [2]
+
+
+def test_a_part_level_reads_the_pixels_over_2_px_inside():
+    # the erosion by a disk of radius 2 keeps the pixels whose Euclidean distance to the outside exceeds 2
+    # (scipy.ndimage.distance_transform_edt as the reference)
+    rng = np.random.default_rng(5)
+    smooth = rng.random((40, 50)).astype(np.float32)
+    mask = ndi.binary_opening(rng.random((40, 50)) < 0.7, iterations=1)
+    inner = ndi.distance_transform_edt(np.pad(mask, 1))[1:-1, 1:-1] > 2.0
+    assert cut_edges.part_level(smooth, mask) == float(np.median(smooth[inner]))

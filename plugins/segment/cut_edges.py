@@ -39,6 +39,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.disk_morphology import erode_disk
+
 #: Widest band (px) each side of a cut in which pixels may change part ...
 BAND_PX = 12.0
 #: ... and at most this share of the thinner part's inscribed radius.
@@ -51,35 +53,9 @@ MAX_AREA_CHANGE = 0.3
 INNER_PX = 2.0
 #: Margin (px) of a pair's box: a grain may have grown by a band at an earlier pair's cut.
 PAD_PX = int(BAND_PX) + 2
+#: Margin (px) over which a Gaussian of 1 px reads (scipy's default truncation at 4 sd).
+SMOOTH_MARGIN_PX = 4
 _EIGHT = np.ones((3, 3), bool)
-
-
-def touching_pairs(labels: np.ndarray) -> set[tuple[int, int]]:
-    """Pairs ``(a, b)``, ``a < b``, of labels that touch (8-connected).
-
-    Parameters
-    ----------
-    labels : ndarray of int, shape (rows, cols)
-        0 background, grains 1..n.
-
-    Returns
-    -------
-    set of tuple of int
-
-    Examples
-    --------
-    >>> lab = np.array([[1, 1, 0, 3], [0, 2, 0, 3]])
-    >>> sorted(touching_pairs(lab))
-    [(1, 2)]
-    """
-    pairs = set()
-    for first, second in ((labels[:, :-1], labels[:, 1:]), (labels[:-1, :], labels[1:, :]),
-                          (labels[:-1, :-1], labels[1:, 1:]), (labels[:-1, 1:], labels[1:, :-1])):
-        meet = (first > 0) & (second > 0) & (first != second)
-        if meet.any():
-            a, b = first[meet], second[meet]
-            pairs.update(zip(np.minimum(a, b).tolist(), np.maximum(a, b).tolist()))
-    return pairs
 
 
 def _inside_distance(mask: np.ndarray) -> np.ndarray:
@@ -87,8 +63,21 @@ def _inside_distance(mask: np.ndarray) -> np.ndarray:
     return ndi.distance_transform_edt(np.pad(mask, 1))[1:-1, 1:-1]
 
 
-def snap_pair(grad: np.ndarray, smooth: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray
-              ) -> tuple[np.ndarray, np.ndarray] | None:
+def part_level(smooth: np.ndarray, mask: np.ndarray) -> float:
+    """A part's level: the median of ``smooth`` over its pixels more than :data:`INNER_PX` inside; NaN if under 10."""
+    # _inside_distance(mask) > INNER_PX: the pixels that survive the erosion by that disk (disk_morphology)
+    inner = erode_disk(mask, INNER_PX, 0)
+    return float(np.median(smooth[inner])) if np.count_nonzero(inner) >= 10 else float("nan")
+
+
+def levels_differ(lev_a: float, lev_b: float) -> bool:
+    """Whether two levels differ by :data:`LEVEL_STEP` of the higher one or more (False where either is NaN)."""
+    high = max(lev_a, lev_b)
+    return bool(high > 0 and abs(lev_a - lev_b) >= LEVEL_STEP * high)
+
+
+def snap_pair(grad: np.ndarray, smooth: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray,
+              lev_a: float, lev_b: float) -> tuple[np.ndarray, np.ndarray] | None:
     """Two touching parts with their common cut moved onto the edge between their levels, or None.
 
     Parameters
@@ -99,6 +88,8 @@ def snap_pair(grad: np.ndarray, smooth: np.ndarray, a_mask: np.ndarray, b_mask: 
         The image smoothed by a Gaussian of 1 px (grains bright, image units).
     a_mask, b_mask : ndarray of bool, shape (h, w)
         The two parts (disjoint, touching).
+    lev_a, lev_b : float
+        Their levels (:func:`part_level`).
 
     Returns
     -------
@@ -109,14 +100,9 @@ def snap_pair(grad: np.ndarray, smooth: np.ndarray, a_mask: np.ndarray, b_mask: 
     """
     from skimage.segmentation import watershed
 
+    if not levels_differ(lev_a, lev_b):
+        return None
     d_a, d_b = _inside_distance(a_mask), _inside_distance(b_mask)
-    inner_a, inner_b = d_a > INNER_PX, d_b > INNER_PX
-    if np.count_nonzero(inner_a) < 10 or np.count_nonzero(inner_b) < 10:
-        return None
-    lev_a, lev_b = float(np.median(smooth[inner_a])), float(np.median(smooth[inner_b]))
-    high = max(lev_a, lev_b)
-    if high <= 0 or abs(lev_a - lev_b) < LEVEL_STEP * high:
-        return None
     band = min(BAND_PX, BAND_SHARE * min(float(d_a.max()), float(d_b.max())))
     if band < 1.0:
         return None
@@ -166,14 +152,24 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
     n = int(labels.max()) if labels.size else 0
     if n < 2 or not np.any(split):
         return labels, 0
-    pairs = [(a, b) for a, b in sorted(touching_pairs(labels)) if split[a - 1] or split[b - 1]]
-    if not pairs:
-        return labels, 0
     boxes = ndi.find_objects(labels)
-    out = labels.copy()
     img = np.asarray(image, np.float32)
+    levels = {}
+
+    def level(k):
+        # on the grain's box grown by SMOOTH_MARGIN_PX: the smoothing there is the whole frame's
+        if k not in levels:
+            box = _grown(boxes[k - 1], labels.shape, SMOOTH_MARGIN_PX)
+            levels[k] = part_level(ndi.gaussian_filter(img[box], 1.0), labels[box] == k)
+        return levels[k]
+
+    pairs = sorted({(min(a, b), max(a, b)) for a in np.flatnonzero(split[:n]) + 1 if boxes[a - 1] is not None
+                    for b in neighbours(labels, int(a), boxes[a - 1])})
+    out = labels
     moved = 0
     for a, b in pairs:
+        if not levels_differ(level(a), level(b)):
+            continue
         box_a, box_b = boxes[a - 1], boxes[b - 1]
         r0 = max(min(box_a[0].start, box_b[0].start) - PAD_PX, 0)
         r1 = min(max(box_a[0].stop, box_b[0].stop) + PAD_PX, labels.shape[0])
@@ -182,10 +178,40 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
         window = out[r0:r1, c0:c1]
         patch = img[r0:r1, c0:c1]
         a_mask, b_mask = window == a, window == b
-        res = snap_pair(ndi.gaussian_gradient_magnitude(patch, 1.0), ndi.gaussian_filter(patch, 1.0), a_mask, b_mask)
+        res = snap_pair(ndi.gaussian_gradient_magnitude(patch, 1.0), ndi.gaussian_filter(patch, 1.0), a_mask, b_mask,
+                        level(a), level(b))
         if res is None or not (res[0] != a_mask).any():
             continue
+        if out is labels:  # the caller's labels are left as they are
+            out = labels.copy()
+            window = out[r0:r1, c0:c1]
         window[res[0]] = a
         window[res[1]] = b
         moved += 1
     return out, moved
+
+
+def _grown(box: tuple, shape: tuple, margin: int) -> tuple:
+    """A box grown by ``margin`` px each side, clipped to the frame."""
+    return tuple(slice(max(b.start - margin, 0), min(b.stop + margin, size)) for b, size in zip(box, shape))
+
+
+def neighbours(labels: np.ndarray, k: int, box: tuple) -> list[int]:
+    """The labels that touch label ``k`` (8-connected), read in its box grown by one pixel.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+    k : int
+    box : tuple of slice
+        ``scipy.ndimage.find_objects(labels)[k - 1]``.
+
+    Returns
+    -------
+    list of int
+    """
+    grown = _grown(box, labels.shape, 1)
+    window = labels[grown]
+    around = ndi.binary_dilation(window == k, structure=_EIGHT)
+    found = np.unique(window[around])
+    return [int(v) for v in found if v != 0 and v != k]
