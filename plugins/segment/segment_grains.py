@@ -85,7 +85,7 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
-from grainhabit.plugins.segment import annotations, cut_edges, outer_edge, population, specks, tiling
+from grainhabit.plugins.segment import annotations, cut_edges, faint_outline, outer_edge, population, specks, tiling
 from grainhabit.plugins.segment.dark_seams import split_at_dark_seams
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
@@ -99,7 +99,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.19",
+    version="2.20",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -585,7 +585,8 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         if clusters is not None:
             split_by_label = np.r_[False, split]
     labels, split, notes = place_outlines(arr, *drop_debris(*drop_drawn_marks(
-        arr, raw, levels, p, labels, split, clusters, split_by_label, dropped, notes, boxes, cluster_of), p), p)
+        arr, raw, levels, p, labels, split, clusters, split_by_label, dropped, notes, boxes, cluster_of), p), p,
+        noise_sd=levels["sigma"])
     if no_background and int(labels.max()) < FEW_GRAINS_MIN:
         # one or two objects do not show a background under grains (few_above_noise): the error stands
         raise ValueError(no_background)
@@ -597,7 +598,8 @@ def finish_field(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict,
     """The last steps for the parts of a packed field (its own or a second look's): marks, debris, outlines."""
     n = int(labels.max())
     return place_outlines(arr, *drop_debris(*drop_drawn_marks(
-        arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p), p)
+        arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p), p,
+        noise_sd=levels["sigma"])
 
 
 def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
@@ -655,18 +657,27 @@ def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
     return grown
 
 
-def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict
-                   ) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Cuts between grains of different levels onto their edge; outlines out to the edge's foot where asked.
+def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict,
+                   noise_sd: float | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Faint grains' dents filled, cuts onto the edges between levels, outlines to the foot where asked.
 
-    The cuts: :func:`~grainhabit.plugins.segment.cut_edges.snap_cuts` (the labels are numbered again in
-    raster order of their first pixels where a cut moved). The foot: where ``outline`` is ``outer``
+    Faint grains (with ``noise_sd``, the background's standard deviation):
+    :func:`~grainhabit.plugins.segment.faint_outline.fill_faint_dents`. The cuts:
+    :func:`~grainhabit.plugins.segment.cut_edges.snap_cuts`. The labels are numbered again in raster
+    order of their first pixels where either moved a pixel. The foot: where ``outline`` is ``outer``
     (:mod:`~grainhabit.plugins.segment.outer_edge`).
     """
+    filled = 0
+    if noise_sd is not None:
+        labels, filled = faint_outline.fill_faint_dents(arr, labels, noise_sd)
+        if filled:
+            notes.append(f"segment-grains: the dents of {filled} faint grain(s) filled from the image smoothed by "
+                         f"{faint_outline.SMOOTH_PX:g} px")
     labels, moved = cut_edges.snap_cuts(arr, labels, split)
     if moved:
         notes.append(f"segment-grains: {moved} cut(s) between grains of different levels moved onto the edge "
                      "between them")
+    if filled or moved:
         labels, old = tiling.renumber_raster(labels)
         split = split[old - 1]
     if p["outline"] == "outer":
