@@ -40,7 +40,7 @@ from .manager import Host
 from .observe import RunObserver
 from .inputs import find_files
 from .listing import ListingIndex, index_path, listing_key, vanished_roots
-from .night import build_night, commit_night, merge_summaries, plan_night, touched_part
+from .night import StoreSnapshot, build_night, commit_night, merge_summaries, plan_night, touched_part
 from .results import recover, root_attrs, warm_up
 from .staging import clean_temporaries, frame_key, is_staged, staged_arrays, staged_view, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
@@ -265,6 +265,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]),
                        frame_memory=frame_memory_bytes(plan.config["execution"].get("frame_memory", "auto")))
         warm = None
+        snapshot = StoreSnapshot(results)  # the stored groups the consolidation reads (read ahead below)
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
             executor = obs.executor(make_executor(plan.config["execution"], upload=upload))
@@ -293,10 +294,10 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 slots = max(1, int(getattr(executor, "n_workers", 1) or 1) * int(getattr(executor, "threads", 1) or 1))
                 warm_after = None if getattr(executor, "in_process", True) else max(0, len(items) - slots + 1)
                 if warm_after == 0:
-                    warm = _Background(_warm_for_consolidation, host)
+                    warm = _Background(_warm_for_consolidation, host, snapshot)
                 for done, (key, res) in enumerate(executor.map_unordered(process_frame, items), start=1):
                     if done == warm_after:
-                        warm = _Background(_warm_for_consolidation, host)
+                        warm = _Background(_warm_for_consolidation, host, snapshot)
                     f = by_key[key]
                     processed.add(key)
                     if isinstance(res, Exception):
@@ -325,7 +326,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         with obs.phase("consolidate"):
             night = plan_night(results, frames, problems, {**kept, **transient}, stage, processed,
                                plan.config["input"]["on_missing"], _failed_result, fresh=fresh,
-                               sample_of=lambda path: _problem_sample(plan, path))
+                               sample_of=lambda path: _problem_sample(plan, path), snapshot=snapshot)
             built = build_night(results, night, extra_columns=_declared_columns(host, plan))
         grains, frames_ds = built["grains"], built["frames"]
         ok_frames = [i for i, s in enumerate(frames_ds["status"].values) if str(s) == "ok"]
@@ -422,17 +423,21 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
     return outcome
 
 
-def _warm_for_consolidation(host: Host) -> None:
+def _warm_for_consolidation(host: Host, snapshot: StoreSnapshot | None = None) -> None:
     """What the main process first does after the last frame, done early on throwaway data.
 
     Runs in a :class:`_Background` thread once fewer frames are left than
     the workers can run at once, so that it takes a core the last frames
     leave idle (the main process only waits for their results meanwhile):
-    the imports and first calls of xarray and zarr (:func:`grainhabit.results.warm_up`),
+    reading the stored groups the consolidation compares the night with
+    (:meth:`grainhabit.night.StoreSnapshot.read_ahead`), the imports and
+    first calls of xarray and zarr (:func:`grainhabit.results.warm_up`),
     the distributions' metadata read for the store's ``versions``
     attribute, and the verdict module that prints the closing lines.
     Nothing it does changes what the run writes.
     """
+    if snapshot is not None:
+        snapshot.read_ahead()
     warm_up()
     versions(host)
     importlib.import_module("grainhabit.plugins.survey.verdicts")
