@@ -36,7 +36,7 @@ import xarray as xr
 
 from .append import APPEND_DIMS, CannotAppend, append_groups, set_chunking
 from .consolidate import build_datasets, concat_rows, offset_indices, select_frames
-from .results import write_results
+from .results import root_attrs, write_results
 from .staging import read_staged
 
 log = logging.getLogger("grainhabit")
@@ -103,6 +103,7 @@ class StoreSnapshot:
         self._groups: dict[str, xr.Dataset | None] = {}
         self._keys = None
         self._none_kept = None
+        self._root = None
         self._lock = threading.Lock()
 
     def group(self, name: str) -> xr.Dataset | None:
@@ -131,8 +132,19 @@ class StoreSnapshot:
                 self._none_kept = {name: ds.load() for name, ds in select_frames(old, keep).items()}
             return dict(self._none_kept)
 
+    def root_attrs(self) -> dict:
+        """The store's root attributes (:func:`grainhabit.results.root_attrs`); empty where unreadable."""
+        with self._lock:
+            if self._root is None:
+                try:
+                    self._root = root_attrs(self.results) if os.path.exists(self.results) else {}
+                except Exception:
+                    self._root = {}
+            return self._root
+
     def read_ahead(self) -> None:
         """Open and read what a night of this store reads whatever its frames gave."""
+        self.root_attrs()
         if self.frame_keys() is None:
             return
         if all(self.group(name) is not None for name in APPEND_DIMS):
@@ -314,7 +326,7 @@ def build_night(results: str, night: NightPlan, extra_columns=()) -> dict:
 
 
 def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attrs: dict,
-                 extra_columns=()) -> str:
+                 extra_columns=(), cleanup: list | None = None) -> str:
     """Write tonight's results: append in place, or write the whole store and swap it in.
 
     Parameters
@@ -328,6 +340,10 @@ def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attr
         Groups of the summarise steps (written anew).
     attrs : dict
         Root attributes.
+    cleanup : list, optional
+        Threads that remove a replaced store are appended here for the caller
+        to join (:func:`grainhabit.results.swap_in`); by default it is removed
+        before this returns.
 
     Returns
     -------
@@ -348,7 +364,7 @@ def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attr
     else:
         groups = dict(built["groups"])
     groups.update(survey)
-    write_results(results, set_chunking(groups), attrs)
+    write_results(results, set_chunking(groups), attrs, cleanup=cleanup)
     return "written"
 
 

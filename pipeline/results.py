@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import threading
 import uuid
 import warnings
 from pathlib import Path
@@ -181,7 +182,8 @@ def warm_up() -> None:
     xr.open_zarr(store, group="warm", chunks=None).load()
 
 
-def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None) -> None:
+def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_attrs: dict | None = None,
+                  cleanup: list | None = None) -> None:
     """Write a results store atomically, replacing any store at ``path``.
 
     The new store is written completely under a temporary name in the same
@@ -196,6 +198,9 @@ def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_a
         Group name to dataset (``grains``, ``frames``, ``summary``, ...).
     root_attrs : dict, optional
         Root attributes (workflow text and hash, versions, run records).
+    cleanup : list, optional
+        Given, the replaced store is removed by a thread appended to it
+        (:func:`swap_in`), which the caller joins; otherwise before returning.
     """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
@@ -203,14 +208,22 @@ def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_a
     tmp = target.with_name(f".{target.name}.writing-{uuid.uuid4().hex[:8]}")
     try:
         write_groups(tmp, groups, root_attrs)
-        swap_in(tmp, target)
+        swap_in(tmp, target, cleanup)
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
 
 
-def swap_in(new: Path, target: Path) -> None:
-    """Replace ``target`` by the complete store ``new`` with two renames."""
+def swap_in(new: Path, target: Path, cleanup: list | None = None) -> None:
+    """Replace ``target`` by the complete store ``new`` with two renames.
+
+    The replaced store, renamed ``<target>.previous``, is removed after the
+    second rename: here, or by a thread appended to ``cleanup`` (a results
+    store of a few hundred files takes some 0.05 s to remove; the run joins
+    the thread before it releases the store's lock). Stopped before that
+    removal, the next run finds ``<target>.previous`` beside ``target`` and
+    removes it (:func:`recover`).
+    """
     previous = target.with_name(target.name + ".previous")
     if previous.exists():
         shutil.rmtree(previous)
@@ -218,7 +231,13 @@ def swap_in(new: Path, target: Path) -> None:
         os.replace(target, previous)
     os.replace(new, target)
     if previous.exists():
-        shutil.rmtree(previous, ignore_errors=True)
+        if cleanup is None:
+            shutil.rmtree(previous, ignore_errors=True)
+        else:
+            thread = threading.Thread(target=shutil.rmtree, args=(previous,), kwargs={"ignore_errors": True},
+                                      name="grainhabit-remove-previous", daemon=True)
+            thread.start()
+            cleanup.append(thread)
 
 
 def recover(path: str | os.PathLike) -> bool:

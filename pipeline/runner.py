@@ -41,7 +41,7 @@ from .observe import RunObserver
 from .inputs import find_files
 from .listing import ListingIndex, index_path, listing_key, vanished_roots
 from .night import StoreSnapshot, build_night, commit_night, merge_summaries, plan_night, touched_part
-from .results import recover, root_attrs, warm_up
+from .results import recover, warm_up
 from .staging import clean_temporaries, frame_key, is_staged, staged_arrays, staged_view, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
 from .workflow import Plan, expand, find_inputs, frame_memory_bytes, template_values
@@ -379,7 +379,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             log.info("summaries recomputed for the %d samples that got frames tonight (%s); the others kept",
                      len(part.samples), ", ".join(part.samples[:5]) + (", ..." if len(part.samples) > 5 else ""))
 
-        previous_runs = _previous_runs(results)
+        previous_runs = _previous_runs(snapshot)
         outcome.seconds = time.monotonic() - t_start
         outcome.exit_code = 1 if (outcome.frames_failed or survey_errors) else 0
         record = {"started": started, "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -395,7 +395,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                  "spec_file": plan.config.get("specs") or "", "spec_text": _spec_text(plan),
                  "conventions": "origin at the top-left corner of the top-left pixel; x along columns, y along rows; nm"}
         with obs.phase("results_write"), interrupts_deferred():
-            how = commit_night(results, night, built, summary, attrs, extra_columns=_declared_columns(host, plan))
+            how = commit_night(results, night, built, summary, attrs, extra_columns=_declared_columns(host, plan),
+                               cleanup=closer.cleanup)
             if index is not None:
                 index.save()
         c = night.counts
@@ -472,11 +473,14 @@ class _Closer:
     the frames, summarises and writes the results store, so on a machine with
     a free core the close costs the run no time. Leaving the ``with`` block,
     normally or by an exception (Ctrl-C), always waits for the close, so the
-    run never returns with workers still alive.
+    run never returns with workers still alive. It waits as well for the
+    threads in :attr:`cleanup` (the removal of a replaced results store,
+    :func:`grainhabit.results.swap_in`), before the store's lock is released.
     """
 
     def __init__(self):
         self._thread = None
+        self.cleanup: list[threading.Thread] = []
 
     def __enter__(self):
         return self
@@ -488,6 +492,8 @@ class _Closer:
     def __exit__(self, *exc):
         if self._thread is not None:
             self._thread.join()
+        for thread in self.cleanup:
+            thread.join()
         return False
 
 
@@ -542,12 +548,9 @@ def interrupts_deferred():
         raise KeyboardInterrupt
 
 
-def _previous_runs(results: str) -> list:
-    try:
-        runs = root_attrs(results).get("runs", [])
-        return runs if isinstance(runs, list) else []
-    except Exception:
-        return []
+def _previous_runs(snapshot: StoreSnapshot) -> list:
+    runs = snapshot.root_attrs().get("runs", [])
+    return runs if isinstance(runs, list) else []
 
 
 def _declared_columns(host: Host, plan: Plan):
