@@ -341,9 +341,9 @@ def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attr
     attrs : dict
         Root attributes.
     cleanup : list, optional
-        Threads that remove a replaced store are appended here for the caller
-        to join (:func:`grainhabit.results.swap_in`); by default it is removed
-        before this returns.
+        Given, a replaced store is removed without waiting for it
+        (:func:`grainhabit.results.discard`; threads the caller must join are
+        appended here); by default it is removed before this returns.
 
     Returns
     -------

@@ -20,9 +20,11 @@ Format decisions (see DEVELOPERS.md, "Results store"):
 
 from __future__ import annotations
 
+import glob
 import json
 import os
 import shutil
+import subprocess
 import threading
 import uuid
 import warnings
@@ -199,8 +201,9 @@ def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_a
     root_attrs : dict, optional
         Root attributes (workflow text and hash, versions, run records).
     cleanup : list, optional
-        Given, the replaced store is removed by a thread appended to it
-        (:func:`swap_in`), which the caller joins; otherwise before returning.
+        Given, the replaced store is removed without the caller waiting
+        (:func:`discard`; threads the caller must join are appended to it);
+        otherwise before returning.
     """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
@@ -217,12 +220,11 @@ def write_results(path: str | os.PathLike, groups: dict[str, xr.Dataset], root_a
 def swap_in(new: Path, target: Path, cleanup: list | None = None) -> None:
     """Replace ``target`` by the complete store ``new`` with two renames.
 
-    The replaced store, renamed ``<target>.previous``, is removed after the
-    second rename: here, or by a thread appended to ``cleanup`` (a results
-    store of a few hundred files takes some 0.05 s to remove; the run joins
-    the thread before it releases the store's lock). Stopped before that
-    removal, the next run finds ``<target>.previous`` beside ``target`` and
-    removes it (:func:`recover`).
+    The replaced store, renamed ``<target>.previous`` between the two
+    renames, is removed after the second: here, or, given ``cleanup``, off
+    the caller's path (:func:`discard`). Stopped before that, the next run
+    finds ``<target>.previous`` beside ``target`` and removes it
+    (:func:`recover`).
     """
     previous = target.with_name(target.name + ".previous")
     if previous.exists():
@@ -234,14 +236,65 @@ def swap_in(new: Path, target: Path, cleanup: list | None = None) -> None:
         if cleanup is None:
             shutil.rmtree(previous, ignore_errors=True)
         else:
-            thread = threading.Thread(target=shutil.rmtree, args=(previous,), kwargs={"ignore_errors": True},
-                                      name="grainhabit-remove-previous", daemon=True)
-            thread.start()
-            cleanup.append(thread)
+            discard(previous, target, cleanup)
+
+
+#: Name part of a replaced store's folder while it is being removed (:func:`discard`).
+REMOVING = ".removing-"
+
+#: Removal processes started by :func:`discard` that had not ended at its last call.
+_REMOVERS: list = []
+
+
+def discard(folder: Path, target: Path, cleanup: list) -> None:
+    """Remove a replaced store's folder without waiting for it.
+
+    Removing a store of a few hundred files took 0.05 s on an idle
+    development machine and 1-2 s on a busy one (its file system discards
+    the freed blocks), on the run's path after the commit. The folder is
+    renamed ``.<target name>.removing-<random>`` (a name :func:`recover`
+    never restores, and sweeps where it is left), then removed by a
+    detached ``rm -rf`` process where the system has one: the run returns
+    without waiting for it. Elsewhere a thread removes it, appended to
+    ``cleanup`` for the caller to join.
+
+    Parameters
+    ----------
+    folder : Path
+        The folder to remove (``<target>.previous``).
+    target : Path
+        The results store it was replaced by (names the renamed folder).
+    cleanup : list
+        Threads the caller joins.
+    """
+    gone = target.with_name(f".{target.name}{REMOVING}{uuid.uuid4().hex[:8]}")
+    try:
+        os.replace(folder, gone)
+    except OSError:
+        gone = folder
+    remover = shutil.which("rm") if os.name == "posix" else None
+    if remover:
+        try:
+            proc = subprocess.Popen([remover, "-rf", "--", str(gone)], stdin=subprocess.DEVNULL,
+                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+        except OSError:
+            pass
+        else:
+            # kept until it has ended (polled at the next call), so that no unfinished process object is dropped
+            _REMOVERS[:] = [p for p in _REMOVERS if p.poll() is None] + [proc]
+            return
+    thread = threading.Thread(target=shutil.rmtree, args=(gone,), kwargs={"ignore_errors": True},
+                              name="grainhabit-remove-previous", daemon=True)
+    thread.start()
+    cleanup.append(thread)
 
 
 def recover(path: str | os.PathLike) -> bool:
     """Restore ``<path>.previous`` if a crash happened between the two renames.
+
+    Also removes ``<path>.previous`` beside a store (a run stopped before it
+    removed it) and folders of replaced stores whose removal was cut short
+    (``.<name>.removing-*``, :func:`discard`).
 
     Returns
     -------
@@ -250,6 +303,8 @@ def recover(path: str | os.PathLike) -> bool:
     """
     target = Path(path)
     previous = target.with_name(target.name + ".previous")
+    for left in target.parent.glob(f".{glob.escape(target.name)}{REMOVING}*"):
+        shutil.rmtree(left, ignore_errors=True)
     if previous.exists() and not target.exists():
         os.replace(previous, target)
         return True

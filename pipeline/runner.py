@@ -474,8 +474,9 @@ class _Closer:
     a free core the close costs the run no time. Leaving the ``with`` block,
     normally or by an exception (Ctrl-C), always waits for the close, so the
     run never returns with workers still alive. It waits as well for the
-    threads in :attr:`cleanup` (the removal of a replaced results store,
-    :func:`grainhabit.results.swap_in`), before the store's lock is released.
+    threads in :attr:`cleanup` (where a replaced results store is removed by
+    a thread, not a detached process: :func:`grainhabit.results.discard`),
+    before the store's lock is released.
     """
 
     def __init__(self):
