@@ -321,9 +321,9 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 progress.close()
                 closer.close(executor)  # beside consolidation; the run waits for it before it returns
 
-        if warm is not None:
-            warm.join()
         with obs.phase("consolidate"):
+            if warm is not None:
+                warm.join()  # the stored groups read ahead there (and the warm-up), if not done yet
             night = plan_night(results, frames, problems, {**kept, **transient}, stage, processed,
                                plan.config["input"]["on_missing"], _failed_result, fresh=fresh,
                                sample_of=lambda path: _problem_sample(plan, path), snapshot=snapshot)
