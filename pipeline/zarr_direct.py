@@ -14,7 +14,8 @@ then zstd level 0 without checksum; edge chunks padded with the fill value
 to the full chunk shape; chunks equal to the fill value throughout not
 written, zarr's ``write_empty_chunks: false``). A group with anything else
 (another dtype, encodings beyond ``chunks``, non-index coordinates, numpy
-values in attributes) is left to xarray: :func:`encode_group` returns None.
+values in attributes), or zarr configured to write chunks of the fill value
+or in Fortran order, is left to xarray: :func:`encode_group` returns None.
 ``tests/test_zarr_direct.py`` checks stores written both ways file for file.
 """
 
@@ -61,6 +62,14 @@ def _plain_json(value) -> bool:
     if isinstance(value, list):
         return all(_plain_json(v) for v in value)
     return False
+
+
+def _zarr_defaults_in_force() -> bool:
+    """True where zarr's settings that shape the files are its defaults (C order, no chunks of the fill value)."""
+    import zarr
+
+    return (not zarr.config.get("array.write_empty_chunks", False)
+            and zarr.config.get("array.order", "C") == "C")
 
 
 def _chunk_keys(shape, chunks):
@@ -125,6 +134,8 @@ def encode_group(ds, indent=2) -> dict[str, bytes] | None:
         ``<var>/c/0``, ...) to the file's bytes; None where a variable or
         attribute is of a kind this module does not write (use xarray).
     """
+    if not _zarr_defaults_in_force():
+        return None
     if any(name not in ds.dims for name in ds.coords) or not all(
             isinstance(k, str) and _plain_json(v) for k, v in ds.attrs.items()):
         return None

@@ -139,3 +139,14 @@ def test_stored_groups_read_back_and_written_again(tmp_path):
     write_groups(tmp_path / "again.zarr", _copy(back), root, direct=True)
     a, b = _files(tmp_path / "first.zarr"), _files(tmp_path / "again.zarr")
     assert sorted(a) == sorted(b) and [k for k in a if a[k] != b[k]] == []
+
+
+def test_zarr_settings_that_change_the_files_go_through_xarray(tmp_path):
+    """With zarr set to write chunks of the fill value, the direct encoding steps aside (same store as xarray's)."""
+    import zarr
+
+    groups = build_datasets(_entries(3))
+    with zarr.config.set({"array.write_empty_chunks": True}):
+        assert encode_group(as_stored(_copy({"grains": groups["grains"]})["grains"])) is None
+        files = _both_ways(tmp_path, groups)
+    assert "grains/thickness_nm/c/0" in files  # NaN throughout, written as zarr was told
