@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import logging
 import os
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -35,7 +36,7 @@ import xarray as xr
 
 from .append import APPEND_DIMS, CannotAppend, append_groups, set_chunking
 from .consolidate import build_datasets, concat_rows, offset_indices, select_frames
-from .results import write_results
+from .results import root_attrs, write_results
 from .staging import read_staged
 
 log = logging.getLogger("grainhabit")
@@ -58,6 +59,8 @@ class NightPlan:
         (never loaded) where ``keep`` holds no row.
     counts : dict
         ``unchanged``, ``added``, ``replaced``, ``removed``, ``kept_missing`` rows.
+    snapshot : StoreSnapshot or None
+        The stored groups as opened for this plan (None for a new store).
     """
 
     mode: str
@@ -65,6 +68,7 @@ class NightPlan:
     new_entries: list = field(default_factory=list)
     stored: dict = field(default_factory=dict)
     counts: dict = field(default_factory=dict)
+    snapshot: "StoreSnapshot | None" = None
 
 
 def _open_group(path: str, name: str) -> xr.Dataset | None:
@@ -75,13 +79,86 @@ def _open_group(path: str, name: str) -> xr.Dataset | None:
         return None
 
 
+class StoreSnapshot:
+    """The stored groups a night reads, each opened once; may be read ahead in a background thread.
+
+    :func:`plan_night` and :func:`build_night` open the stored ``frames``
+    group, read its ``source``, ``stage_key`` and ``error`` columns, and open
+    the other appendable groups; where no stored row stays (``--fresh``, or
+    every frame changed) they load those groups cut to no rows. None of this
+    depends on the night's results, so the run reads it while its last
+    frames are computed (:meth:`read_ahead`), on the core those frames leave
+    idle, instead of after them. The run holds the store's lock from before
+    the read until after its commit, so nothing changes the store between.
+    Read on demand, the snapshot gives what opening the groups there gives.
+
+    Parameters
+    ----------
+    results : str
+        Results store (may not exist).
+    """
+
+    def __init__(self, results: str):
+        self.results = results
+        self._groups: dict[str, xr.Dataset | None] = {}
+        self._keys = None
+        self._none_kept = None
+        self._root = None
+        self._lock = threading.Lock()
+
+    def group(self, name: str) -> xr.Dataset | None:
+        """Group ``name`` opened lazily (None where the store or the group is missing)."""
+        with self._lock:
+            if name not in self._groups:
+                self._groups[name] = _open_group(self.results, name) if os.path.exists(self.results) else None
+            return self._groups[name]
+
+    def frame_keys(self) -> xr.Dataset | None:
+        """The stored ``frames`` group's ``source``, ``stage_key`` and ``error``, loaded; None without them."""
+        fr = self.group("frames")
+        if fr is None or "source" not in fr or "stage_key" not in fr:
+            return None
+        with self._lock:
+            if self._keys is None:
+                self._keys = fr[["source", "stage_key", "error"]].load()
+            return self._keys
+
+    def none_kept(self) -> dict[str, xr.Dataset]:
+        """Every appendable group cut to no rows and loaded (:func:`select_frames` keeping no frame)."""
+        old = {name: self.group(name) for name in APPEND_DIMS}
+        with self._lock:
+            if self._none_kept is None:
+                keep = np.zeros(old["frames"].sizes.get("frame", 0), dtype=bool)
+                self._none_kept = {name: ds.load() for name, ds in select_frames(old, keep).items()}
+            return dict(self._none_kept)
+
+    def root_attrs(self) -> dict:
+        """The store's root attributes (:func:`grainhabit.results.root_attrs`); empty where unreadable."""
+        with self._lock:
+            if self._root is None:
+                try:
+                    self._root = root_attrs(self.results) if os.path.exists(self.results) else {}
+                except Exception:
+                    self._root = {}
+            return self._root
+
+    def read_ahead(self) -> None:
+        """Open and read what a night of this store reads whatever its frames gave."""
+        self.root_attrs()
+        if self.frame_keys() is None:
+            return
+        if all(self.group(name) is not None for name in APPEND_DIMS):
+            self.none_kept()
+
+
 def _problem_row(path: str, reason: str, failed, sample_of=None) -> tuple[dict, dict]:
     sample = sample_of(path) if sample_of is not None else ""
     return ({"source": path, "sample": sample, "content_hash": "", "stage_key": ""}, failed(path, sample, reason))
 
 
 def plan_night(results: str, frames: list, problems: list, transient: dict, stage, processed: set,
-               on_missing: str, failed_result, fresh: bool = False, sample_of=None) -> NightPlan:
+               on_missing: str, failed_result, fresh: bool = False, sample_of=None,
+               snapshot: StoreSnapshot | None = None) -> NightPlan:
     """Compare tonight's listing with the stored frames (see the module docstring).
 
     Parameters
@@ -107,6 +184,8 @@ def plan_night(results: str, frames: list, problems: list, transient: dict, stag
         ``(source, sample, reason) -> staged-like result`` for problem rows.
     fresh : bool
         ``--fresh``: every row is replaced.
+    snapshot : StoreSnapshot, optional
+        The stored groups, perhaps read ahead; default: opened here.
     """
     def result_of(f):
         res = transient.get(f.key)
@@ -123,12 +202,12 @@ def plan_night(results: str, frames: list, problems: list, transient: dict, stag
                 "stage_key": f.key, **f.fields}
         return info, result_of(f)
 
-    stored_frames = _open_group(results, "frames") if os.path.exists(results) else None
-    if stored_frames is None or "source" not in stored_frames or "stage_key" not in stored_frames:
+    snapshot = snapshot if snapshot is not None else StoreSnapshot(results)
+    fr = snapshot.frame_keys()
+    if fr is None:
         entries = [_problem_row(p, r, failed_result, sample_of) for p, r in problems] + [entry(f) for f in frames]
         return NightPlan("new", new_entries=entries, counts={"added": len(entries)})
-
-    fr = stored_frames[["source", "stage_key", "error"]].load()
+    stored_frames = snapshot.group("frames")
     sources = [str(s) for s in fr["source"].values]
     keys = [str(k) for k in fr["stage_key"].values]
     errors = [str(e) for e in fr["error"].values]
@@ -187,11 +266,11 @@ def plan_night(results: str, frames: list, problems: list, transient: dict, stag
                         "(input.on_missing=keep)", len(gone))
     mode = "append" if keep.all() else "rewrite"
     if mode == "append" or keep.any():
-        stored = {"frames": stored_frames.load(), "grains": _open_group(results, "grains").load()}
+        stored = {"frames": stored_frames.load(), "grains": snapshot.group("grains").load()}
     else:
         # every stored row is replaced (--fresh, or all frames changed): only the groups' layout is read
-        stored = {"frames": stored_frames, "grains": _open_group(results, "grains")}
-    return NightPlan(mode, keep=keep, new_entries=new_entries, stored=stored, counts=counts)
+        stored = {"frames": stored_frames, "grains": snapshot.group("grains")}
+    return NightPlan(mode, keep=keep, new_entries=new_entries, stored=stored, counts=counts, snapshot=snapshot)
 
 
 def _unresolved(source: str) -> bool:
@@ -207,6 +286,13 @@ def _full_groups(results: str, night: NightPlan, new: dict) -> dict:
     before they are loaded: the same (empty) datasets, with their variables, types and
     encodings, as loading them whole first, without reading their values.
     """
+    snapshot = night.snapshot
+    if not np.asarray(night.keep, bool).any() and snapshot is not None and all(
+            snapshot.group(name) is not None for name in APPEND_DIMS):
+        # no stored row stays: the groups cut to no rows, perhaps read ahead
+        old = snapshot.none_kept()
+        offset_indices(new, 0, 0)
+        return concat_rows(old, new)
     old = {name: (night.stored[name] if name in night.stored else _open_group(results, name)) for name in APPEND_DIMS}
     if np.asarray(night.keep, bool).any():
         old = {name: ds.load() for name, ds in old.items()}
@@ -240,7 +326,7 @@ def build_night(results: str, night: NightPlan, extra_columns=()) -> dict:
 
 
 def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attrs: dict,
-                 extra_columns=()) -> str:
+                 extra_columns=(), cleanup: list | None = None) -> str:
     """Write tonight's results: append in place, or write the whole store and swap it in.
 
     Parameters
@@ -254,6 +340,10 @@ def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attr
         Groups of the summarise steps (written anew).
     attrs : dict
         Root attributes.
+    cleanup : list, optional
+        Given, a replaced store is removed without waiting for it
+        (:func:`grainhabit.results.discard`; threads the caller must join are
+        appended here); by default it is removed before this returns.
 
     Returns
     -------
@@ -274,7 +364,7 @@ def commit_night(results: str, night: NightPlan, built: dict, survey: dict, attr
     else:
         groups = dict(built["groups"])
     groups.update(survey)
-    write_results(results, set_chunking(groups), attrs)
+    write_results(results, set_chunking(groups), attrs, cleanup=cleanup)
     return "written"
 
 

@@ -40,8 +40,8 @@ from .manager import Host
 from .observe import RunObserver
 from .inputs import find_files
 from .listing import ListingIndex, index_path, listing_key, vanished_roots
-from .night import build_night, commit_night, merge_summaries, plan_night, touched_part
-from .results import recover, root_attrs, warm_up
+from .night import StoreSnapshot, build_night, commit_night, merge_summaries, plan_night, touched_part
+from .results import recover, warm_up
 from .staging import clean_temporaries, frame_key, is_staged, staged_arrays, staged_view, staging_dir, write_staged
 from .task import FrameJob, prepare_worker, process_frame
 from .workflow import Plan, expand, find_inputs, frame_memory_bytes, template_values
@@ -265,6 +265,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
         job = FrameJob(steps=steps, input_options=dict(plan.config["input"]), plugins=tuple(plan.config["plugins"]),
                        frame_memory=frame_memory_bytes(plan.config["execution"].get("frame_memory", "auto")))
         warm = None
+        snapshot = StoreSnapshot(results)  # the stored groups the consolidation reads (read ahead below)
         if todo:
             upload = [p for p in plan.config["plugins"] if p.endswith(".py")]
             executor = obs.executor(make_executor(plan.config["execution"], upload=upload))
@@ -293,10 +294,10 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 slots = max(1, int(getattr(executor, "n_workers", 1) or 1) * int(getattr(executor, "threads", 1) or 1))
                 warm_after = None if getattr(executor, "in_process", True) else max(0, len(items) - slots + 1)
                 if warm_after == 0:
-                    warm = _Background(_warm_for_consolidation, host)
+                    warm = _Background(_warm_for_consolidation, host, snapshot)
                 for done, (key, res) in enumerate(executor.map_unordered(process_frame, items), start=1):
                     if done == warm_after:
-                        warm = _Background(_warm_for_consolidation, host)
+                        warm = _Background(_warm_for_consolidation, host, snapshot)
                     f = by_key[key]
                     processed.add(key)
                     if isinstance(res, Exception):
@@ -320,12 +321,12 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 progress.close()
                 closer.close(executor)  # beside consolidation; the run waits for it before it returns
 
-        if warm is not None:
-            warm.join()
         with obs.phase("consolidate"):
+            if warm is not None:
+                warm.join()  # the stored groups read ahead there (and the warm-up), if not done yet
             night = plan_night(results, frames, problems, {**kept, **transient}, stage, processed,
                                plan.config["input"]["on_missing"], _failed_result, fresh=fresh,
-                               sample_of=lambda path: _problem_sample(plan, path))
+                               sample_of=lambda path: _problem_sample(plan, path), snapshot=snapshot)
             built = build_night(results, night, extra_columns=_declared_columns(host, plan))
         grains, frames_ds = built["grains"], built["frames"]
         ok_frames = [i for i, s in enumerate(frames_ds["status"].values) if str(s) == "ok"]
@@ -378,7 +379,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             log.info("summaries recomputed for the %d samples that got frames tonight (%s); the others kept",
                      len(part.samples), ", ".join(part.samples[:5]) + (", ..." if len(part.samples) > 5 else ""))
 
-        previous_runs = _previous_runs(results)
+        previous_runs = _previous_runs(snapshot)
         outcome.seconds = time.monotonic() - t_start
         outcome.exit_code = 1 if (outcome.frames_failed or survey_errors) else 0
         record = {"started": started, "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -394,7 +395,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                  "spec_file": plan.config.get("specs") or "", "spec_text": _spec_text(plan),
                  "conventions": "origin at the top-left corner of the top-left pixel; x along columns, y along rows; nm"}
         with obs.phase("results_write"), interrupts_deferred():
-            how = commit_night(results, night, built, summary, attrs, extra_columns=_declared_columns(host, plan))
+            how = commit_night(results, night, built, summary, attrs, extra_columns=_declared_columns(host, plan),
+                               cleanup=closer.cleanup)
             if index is not None:
                 index.save()
         c = night.counts
@@ -422,17 +424,21 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
     return outcome
 
 
-def _warm_for_consolidation(host: Host) -> None:
+def _warm_for_consolidation(host: Host, snapshot: StoreSnapshot | None = None) -> None:
     """What the main process first does after the last frame, done early on throwaway data.
 
     Runs in a :class:`_Background` thread once fewer frames are left than
     the workers can run at once, so that it takes a core the last frames
     leave idle (the main process only waits for their results meanwhile):
-    the imports and first calls of xarray and zarr (:func:`grainhabit.results.warm_up`),
+    reading the stored groups the consolidation compares the night with
+    (:meth:`grainhabit.night.StoreSnapshot.read_ahead`), the imports and
+    first calls of xarray and zarr (:func:`grainhabit.results.warm_up`),
     the distributions' metadata read for the store's ``versions``
     attribute, and the verdict module that prints the closing lines.
     Nothing it does changes what the run writes.
     """
+    if snapshot is not None:
+        snapshot.read_ahead()
     warm_up()
     versions(host)
     importlib.import_module("grainhabit.plugins.survey.verdicts")
@@ -467,11 +473,15 @@ class _Closer:
     the frames, summarises and writes the results store, so on a machine with
     a free core the close costs the run no time. Leaving the ``with`` block,
     normally or by an exception (Ctrl-C), always waits for the close, so the
-    run never returns with workers still alive.
+    run never returns with workers still alive. It waits as well for the
+    threads in :attr:`cleanup` (where a replaced results store is removed by
+    a thread, not a detached process: :func:`grainhabit.results.discard`),
+    before the store's lock is released.
     """
 
     def __init__(self):
         self._thread = None
+        self.cleanup: list[threading.Thread] = []
 
     def __enter__(self):
         return self
@@ -483,6 +493,8 @@ class _Closer:
     def __exit__(self, *exc):
         if self._thread is not None:
             self._thread.join()
+        for thread in self.cleanup:
+            thread.join()
         return False
 
 
@@ -537,12 +549,9 @@ def interrupts_deferred():
         raise KeyboardInterrupt
 
 
-def _previous_runs(results: str) -> list:
-    try:
-        runs = root_attrs(results).get("runs", [])
-        return runs if isinstance(runs, list) else []
-    except Exception:
-        return []
+def _previous_runs(snapshot: StoreSnapshot) -> list:
+    runs = snapshot.root_attrs().get("runs", [])
+    return runs if isinstance(runs, list) else []
 
 
 def _declared_columns(host: Host, plan: Plan):

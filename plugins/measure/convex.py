@@ -175,7 +175,7 @@ def convex_hulls(xy, offsets, max_passes=200):
     for _ in range(max_passes):
         # drop vertices that repeat their (cyclic) predecessor: a zero-length
         # edge hides the turn; a polygon of one repeated point keeps one
-        _, prv, _ = _cyclic_neighbours(cur_off)
+        _, prv, nxt = _cyclic_neighbours(cur_off)
         before = cur[prv]
         distinct = (cur[:, 0] != before[:, 0]) | (cur[:, 1] != before[:, 1])
         lone = np.bincount(cur_gid[distinct], minlength=n) == 0
@@ -185,8 +185,10 @@ def convex_hulls(xy, offsets, max_passes=200):
             cur, cur_gid = cur[distinct], cur_gid[distinct]
             cur_off = np.zeros(n + 1, dtype=np.intp)
             np.cumsum(np.bincount(cur_gid, minlength=n), out=cur_off[1:])
-        _, prv, nxt = _cyclic_neighbours(cur_off)
-        a = cur - cur[prv]
+            _, prv, nxt = _cyclic_neighbours(cur_off)
+            before = cur[prv]
+        # (where no repeat was dropped, the neighbours found above stand)
+        a = cur - before
         b = cur[nxt] - cur
         cross = a[:, 0] * b[:, 1] - a[:, 1] * b[:, 0]
         drop = cross <= eps
