@@ -563,6 +563,63 @@ class NormalEquations(NamedTuple):
     extra: np.ndarray
 
 
+class FacetSums(NamedTuple):
+    """What the facet-mode normal equations of c placed models take from their samples (:func:`normal_equations`).
+
+    Attributes
+    ----------
+    g_up : ndarray, shape (c, M, 2)
+        Height gradients of the models' upward planes.
+    cnt, sx, sy, sv : ndarray, shape (c, M)
+        Weighted count and sums of x, y and v of the samples under each plane.
+    plane_terms : tuple of 6 ndarray, shape (c,)
+        Weighted sums of x*x, x*y, y*y, x*v, y*v and v*v.
+    scale : ndarray, shape (c,)
+        Factor of each model's RSS (samples near facet edges left out).
+    """
+
+    g_up: np.ndarray
+    cnt: np.ndarray
+    sx: np.ndarray
+    sy: np.ndarray
+    sv: np.ndarray
+    plane_terms: tuple
+    scale: np.ndarray
+
+
+def facet_equations(parts) -> NormalEquations:
+    """The facet-mode :class:`NormalEquations` of the models of several :class:`FacetSums`, in their order.
+
+    The chunks' models are stacked and their equations formed together: every entry is a product of a
+    model's own sums and plane factors, or a sum of such products over that model's planes, so each
+    model gets the bits of forming its chunk alone (``tests/test_habit_speed21.py`` checks it on the
+    placements of rendered fields). All parts must have the same number of planes M.
+    """
+    if len(parts) == 1:
+        g_up, cnt, sx, sy, sv, terms, scale = parts[0]
+    else:
+        g_up, cnt, sx, sy, sv = (np.concatenate([q[k] for q in parts]) for k in range(5))
+        terms = tuple(np.concatenate([q.plane_terms[k] for q in parts]) for k in range(6))
+        scale = np.concatenate([q.scale for q in parts])
+    c, m = cnt.shape
+    xx, xy, yy, xv, yv, vv = terms
+    nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
+    sec = 1.0 / nz - 1.0
+    f = np.empty((c, m, 4))                                              # (1, sec, -g nz) per plane
+    f[..., 0] = 1.0
+    f[..., 1] = sec
+    np.multiply(-g_up[..., 0], nz, out=f[..., 2])
+    np.multiply(-g_up[..., 1], nz, out=f[..., 3])
+    # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
+    nm = np.zeros((c, 6, 6))
+    nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
+    nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
+    nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
+    nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
+    rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
+    return NormalEquations("facets", nm, rhs, vv, scale)
+
+
 def rss_requests(requests, max_elements: int = 1_000_000) -> list:
     """:func:`interior_rss_batch` of several requests (e.g. of many grains), the solves in one call per mode.
 
@@ -581,7 +638,7 @@ def rss_requests(requests, max_elements: int = 1_000_000) -> list:
         call per request: the normal equations are built per request, and the small
         least-squares systems of all requests are solved together (each system on its own).
     """
-    eqs, owner = [], []
+    eqs, owner, sums = [], [], {}
     for r, (interior, g_up, z_up, g_dn, z_dn, edge_px, tem, gap_inv) in enumerate(requests):
         g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
         c, m = z_up.shape
@@ -589,12 +646,32 @@ def rss_requests(requests, max_elements: int = 1_000_000) -> list:
             continue
         step = max(1, int(max_elements // max(interior.value.size * max(m, 1), 1)))
         for i in range(0, c, step):
-            eqs.append(normal_equations(interior, g_up[i:i + step], z_up[i:i + step],
-                                        None if g_dn is None else g_dn[i:i + step],
-                                        None if z_dn is None else z_dn[i:i + step], edge_px, tem,
-                                        None if gap_inv is None else gap_inv[i:i + step]))
+            got = normal_equations(interior, g_up[i:i + step], z_up[i:i + step],
+                                   None if g_dn is None else g_dn[i:i + step],
+                                   None if z_dn is None else z_dn[i:i + step], edge_px, tem,
+                                   None if gap_inv is None else gap_inv[i:i + step],
+                                   sums_only=interior.mode == "facets")
+            if isinstance(got, FacetSums):
+                # facet chunks: their equations are formed together, per number of planes (below)
+                sums.setdefault(m, []).append((len(eqs), got))
+                eqs.append(None)
+            else:
+                eqs.append(got)
             owner.append(r)
-    got = solve_normal_equations(eqs)
+    # the facet chunks' equations, one stack per number of planes, each handed to the solve as one
+    # entry and split again
+    stacks = [facet_equations([q for _, q in parts]) for parts in sums.values()]
+    whole = [e for e in eqs if e is not None]
+    solved = solve_normal_equations(whole + stacks)
+    got = [None] * len(eqs)
+    it_whole = iter(solved[:len(whole)])
+    for k, e in enumerate(eqs):
+        if e is not None:
+            got[k] = next(it_whole)
+    for parts, stacked in zip(sums.values(), solved[len(whole):]):
+        cut = np.cumsum([q.scale.size for _, q in parts])[:-1]
+        for (k, _), g in zip(parts, np.split(stacked, cut)):
+            got[k] = g
     out = [[] for _ in requests]
     for r, g in zip(owner, got):
         out[r].append(g)
@@ -671,8 +748,12 @@ def _solve_thickness(nm, rhs, vv, amax):
 
 
 def normal_equations(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
-                     tem_offset_max: float = 0.5, gap_inv=None) -> NormalEquations:
-    """The normal equations of :func:`interior_rss_batch` (one chunk of models), not yet solved."""
+                     tem_offset_max: float = 0.5, gap_inv=None, sums_only: bool = False):
+    """The normal equations of :func:`interior_rss_batch` (one chunk of models), not yet solved.
+
+    ``sums_only`` (facet mode): return the chunk's :class:`FacetSums` instead, for
+    :func:`facet_equations` to make the equations of many chunks at once.
+    """
     g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
     c, m = z_up.shape
     p = interior.value.size
@@ -717,22 +798,8 @@ def normal_equations(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_
         sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
         sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
         sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
-        xx, xy, yy, xv, yv, vv = (wt @ q for q in interior.products)
-        nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
-        sec = 1.0 / nz - 1.0
-        f = np.empty((c, m, 4))                                              # (1, sec, -g nz) per plane
-        f[..., 0] = 1.0
-        f[..., 1] = sec
-        np.multiply(-g_up[..., 0], nz, out=f[..., 2])
-        np.multiply(-g_up[..., 1], nz, out=f[..., 3])
-        # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
-        nm = np.zeros((c, 6, 6))
-        nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
-        nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
-        nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
-        nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
-        rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
-        return NormalEquations("facets", nm, rhs, vv, scale)
+        sums = FacetSums(g_up, cnt, sx, sy, sv, tuple(wt @ q for q in interior.products), scale)
+        return sums if sums_only else facet_equations([sums])
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
     t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)   # (c, p)
@@ -794,7 +861,14 @@ def smooth_rss(interior: Interior, degree: int = SMOOTH_INTERIOR_DEGREE) -> floa
     Facet evidence is counted against the best of this, :func:`round_rss` and :func:`flat_rss`.
     """
     x, y = interior.x, interior.y
-    return _surface_rss([x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)], interior.value)
+    if degree == SMOOTH_INTERIOR_DEGREE == 3:
+        # the columns x ** i * y ** j in the same order and to the same bits, each power taken once: numpy
+        # gives x ** 0 as ones, x ** 1 as x and x ** 2 as x * x, and a product with ones is its other factor
+        x2, y2 = x * x, y * y
+        cols = [np.ones_like(x), y, y2, y ** 3, x, x * y, x * y2, x2, x2 * y, x ** 3]
+    else:
+        cols = [x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
+    return _surface_rss(cols, interior.value)
 
 
 def flat_rss(interior: Interior) -> float:
