@@ -477,7 +477,7 @@ def _spectrum_of(match):
 OUTLINES_AT_ONCE = 64
 
 
-def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
+def outline_evidence_many(contours, params, pixel_scale=1.0, geometry=None) -> list:
     """:func:`outline_evidence` of many outlines (the same numbers; :func:`outline_batch.match_outlines`).
 
     Parameters
@@ -488,6 +488,8 @@ def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
         Resolved parameters of this step.
     pixel_scale : float
         Pixel length in the contours' unit.
+    geometry : sequence of (ndarray, float), optional
+        ``engine.polygon_centroid`` of each outline where the caller has it (the same numbers).
 
     Returns
     -------
@@ -500,7 +502,8 @@ def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
     for start in range(0, len(contours), OUTLINES_AT_ONCE):
         matches = outline_batch.match_outlines(contours[start:start + OUTLINES_AT_ONCE], lib, pixel_scale,
                                                p["outline_noise_px"], p["outline_noise_floor"],
-                                               p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS)
+                                               p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS,
+                                               None if geometry is None else geometry[start:start + OUTLINES_AT_ONCE])
         out += [(m, best_families(m.signature, m.level, _spectrum_of(m))) for m in matches]
     return out
 
@@ -910,12 +913,33 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p,
     return habit, score, ev, fit
 
 
-def outline_ecd_px(contour) -> float:
+def outline_ecd_px(contour, geometry=None) -> float:
     """Equivalent circle diameter (px) of the area a grain's outline polygon encloses (ISO 9276-6); inf for a
-    missing outline or one of under 3 points (never judged too small here: it has no habit to judge)."""
+    missing outline or one of under 3 points (never judged too small here: it has no habit to judge).
+    ``geometry`` is ``engine.polygon_centroid(contour)`` where the caller has it."""
     if contour is None or len(contour) < 3:
         return math.inf
-    return math.sqrt(4.0 * abs(en.polygon_centroid(contour)[1]) / math.pi)
+    return math.sqrt(4.0 * abs((en.polygon_centroid(contour) if geometry is None else geometry)[1]) / math.pi)
+
+
+def outline_geometry(contour):
+    """``engine.polygon_centroid`` of a grain's outline (pixel coordinates), None for a missing outline or one of
+    under 3 points."""
+    if contour is None or len(contour) < 3:
+        return None
+    return en.polygon_centroid(contour)
+
+
+def lab_geometry(geometry):
+    """The ``polygon_centroid`` of an outline with y turned over (lab axes, :func:`engine.grain_evidence`), from
+    that of the outline in pixel coordinates: the centroid's y turned over, the same area.
+
+    Negating y negates every cross product, every sum of them and the signed area exactly (rounding to
+    nearest is symmetric), so the centroid's x is the same quotient and its y the negated one, bit for bit
+    (``tests/test_habit_speed21.py``).
+    """
+    cen, area = geometry
+    return np.array([cen[0], -cen[1]]), area
 
 
 def classify_frame(frame, params=None) -> dict:
@@ -944,13 +968,17 @@ def classify_frame(frame, params=None) -> dict:
     for start in range(0, n, GRAINS_IN_STEP):
         rows = range(start, min(start + GRAINS_IN_STEP, n))
         # a grain under min_resolved_px is not judged: no evidence is read for it
-        small = {k for k, i in enumerate(rows) if outline_ecd_px(contours[i]) < p["min_resolved_px"]}
+        # each outline's centroid and area once: its size, its interior and (y turned over) its match
+        geo = [outline_geometry(contours[i]) for i in rows]
+        small = {k for k, i in enumerate(rows) if outline_ecd_px(contours[i], geo[k]) < p["min_resolved_px"]}
         unresolved.update(start + k for k in small)
         evidence = [(None, None) if k in small else
-                    en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"])
+                    en.grain_evidence_lazy(labels, signal, mode, contours[i], int(g["label"][i]), p["erode_px"],
+                                           geo[k])
                     for k, i in enumerate(rows)]
         usable = [k for k, (contour, _) in enumerate(evidence) if contour is not None and len(contour) >= 8]
-        found = outline_evidence_many([evidence[k][0] for k in usable], p)
+        found = outline_evidence_many([evidence[k][0] for k in usable], p,
+                                      geometry=[lab_geometry(geo[k]) for k in usable])
         outlines = dict(zip(usable, found))
         # and their outline-only fits (outline_batch.outline_fits: the same fits as one at a time)
         fits = {} if any(o is None for o in found) else \

@@ -918,13 +918,17 @@ def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
     return contour_lab, get_interior()
 
 
-def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2):
+def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2, geometry=None):
     """:func:`grain_evidence` with the interior collected only when it is asked for.
 
     Parameters
     ----------
     labels, signal, mode, contour_px, label, erode_px
         As in :func:`grain_evidence`.
+
+    geometry : (ndarray, float), optional
+        ``polygon_centroid(contour_px)`` where the caller has it (the same numbers; else computed
+        when the interior is collected).
 
     Returns
     -------
@@ -943,7 +947,7 @@ def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2):
 
     @functools.lru_cache(maxsize=1)
     def get_interior():
-        return _collect_interior(labels, signal, mode, c, label, erode_px)
+        return _collect_interior(labels, signal, mode, c, label, erode_px, geometry)
 
     return contour_lab, get_interior
 
@@ -966,9 +970,10 @@ def median_of(values) -> float:
     return float(part[h]) if k % 2 else float((part[h - 1] + part[h]) / 2)
 
 
-def _collect_interior(labels, signal, mode, c, label, erode_px):
-    """The interior samples of :func:`grain_evidence` (outline ``c`` in pixel coordinates, >= 3 vertices)."""
-    cen, area = polygon_centroid(c)
+def _collect_interior(labels, signal, mode, c, label, erode_px, geometry=None):
+    """The interior samples of :func:`grain_evidence` (outline ``c`` in pixel coordinates, >= 3 vertices;
+    ``geometry`` its :func:`polygon_centroid` where known)."""
+    cen, area = polygon_centroid(c) if geometry is None else geometry
     ecd = math.sqrt(4 * area / math.pi)
     rows, cols = labels.shape
     pad = 4
