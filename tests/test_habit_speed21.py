@@ -293,3 +293,44 @@ def test_evidence_and_matches_given_the_geometry_equal_those_computed_alone():
         assert f1 == f2
         for f in ("signature", "shifts", "dist", "valid", "tau", "area", "level"):
             assert np.array_equal(getattr(m1, f), getattr(m2, f)), f
+
+
+def _previous_free_edge(labels, contour_px, label, reach_px=2):
+    """scipy's iterated binary dilation of the other grains' pixels."""
+    from scipy import ndimage as ndi
+
+    c = np.asarray(contour_px, float)
+    r0 = max(int(np.floor(c[:, 1].min())) - reach_px - 1, 0)
+    c0 = max(int(np.floor(c[:, 0].min())) - reach_px - 1, 0)
+    r1 = min(int(np.ceil(c[:, 1].max())) + reach_px + 2, labels.shape[0])
+    c1 = min(int(np.ceil(c[:, 0].max())) + reach_px + 2, labels.shape[1])
+    crop = labels[r0:r1, c0:c1]
+    near = ndi.binary_dilation((crop != label) & (crop != 0), iterations=reach_px)
+    rr = np.clip(np.floor(c[:, 1]).astype(int) - r0, 0, crop.shape[0] - 1)
+    cc = np.clip(np.floor(c[:, 0]).astype(int) - c0, 0, crop.shape[1] - 1)
+    return ~near[rr, cc]
+
+
+@pytest.mark.parametrize("seed", [0, 4])
+def test_free_edge_and_the_signature_of_split_grains_equal_the_previous_forms(seed):
+    # touching grains of a rendered field (invented): the true-edge flags by the one-step diamond dilation,
+    # and the signature and area a split grain's smoothness test takes from its outline match
+    from grainhabit.plugins.habit import signature as sg
+
+    frame = habit_chain_frame(12, "bright", seed=seed)
+    contours = cl.frame_contours(frame)
+    labs = np.asarray(frame.grains["label"], int)
+    p = cl.STEP.resolve({})
+    checked = 0
+    for i, c in enumerate(contours):
+        if len(c) < 8:
+            continue
+        for reach in (1, 2, 3):
+            assert np.array_equal(cl.free_edge(frame.labels, c, int(labs[i]), reach),
+                                  _previous_free_edge(frame.labels, c, int(labs[i]), reach))
+        lab_c = np.column_stack([c[:, 0], -c[:, 1]])
+        match = cl.outline_evidence_many([lab_c], p, geometry=[cl.lab_geometry(gr.polygon_centroid(c))])[0][0]
+        assert np.array_equal(match.signature, sg.radial_signature(lab_c, p["n_angles"]))
+        assert match.area == gr.polygon_centroid(lab_c)[1]
+        checked += 1
+    assert checked >= 5
