@@ -334,3 +334,17 @@ def test_free_edge_and_the_signature_of_split_grains_equal_the_previous_forms(se
         assert match.area == gr.polygon_centroid(lab_c)[1]
         checked += 1
     assert checked >= 5
+
+
+def test_mean_and_std_equal_numpys():
+    # reference: numpy.mean and numpy.std
+    rng = np.random.default_rng(17)
+    arrays = [rng.normal(rng.uniform(-3, 3), rng.uniform(1e-3, 5), int(rng.integers(1, 5000))) for _ in range(500)]
+    arrays += [np.full(40, 0.25), rng.normal(size=(300, 2))[:, 1], rng.normal(size=50).astype(np.float32),
+               np.arange(60)]
+    for v in arrays:
+        m, s = it.mean_and_std(v)
+        assert m == float(np.mean(v)) and s == float(np.std(v))
+        assert it.mean_of(v) == float(np.mean(v))
+    for inner in _rendered_interiors("bright", seed=4, count=6):
+        assert inner.spread == abs(float(np.mean(inner.value))) + float(np.std(inner.value))

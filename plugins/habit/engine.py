@@ -79,7 +79,7 @@ import numpy as np
 from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache, outline_bound
-from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
+from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss, mean_of,
                                                grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_request, round_rss, rss_requests, smooth_rss,
                                                subsample_interior)
@@ -1146,7 +1146,7 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
         notes.append("outline only")
     fchi, level, relief = float("nan"), float("nan"), float("nan")
     if interior is not None and interior.value.size >= 30:
-        level = float(np.mean(interior.value))
+        level = mean_of(interior.value)
         if evidence:
             # the round body's RSS (:func:`round_rss`) as one more request
             flat, rnd = flat_rss(full), float((yield round_request(full, tem_offset_max))[0])

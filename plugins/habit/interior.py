@@ -79,13 +79,43 @@ class Interior:
     def sums(self) -> tuple:
         """sum x, sum y, sum v, x.x, x.y, y.y, x.v, y.v, v.v and mean v (the plane and level terms)."""
         x, y, v = self.x, self.y, self.value
-        return x.sum(), y.sum(), v.sum(), x @ x, x @ y, y @ y, x @ v, y @ v, v @ v, float(np.mean(v))
+        return x.sum(), y.sum(), v.sum(), x @ x, x @ y, y @ y, x @ v, y @ v, v @ v, mean_of(v)
 
     @cached_property
     def spread(self) -> float:
-        """|mean| + standard deviation of the values (the scale of the interior noise floor)."""
-        v = self.value
-        return abs(float(np.mean(v))) + float(np.std(v))
+        """|mean| + standard deviation of the values (the scale of the interior noise floor).
+
+        ``abs(float(np.mean(v))) + float(np.std(v))``, by the operations numpy's mean and std make
+        (one pairwise sum, the quotient by the count; the squared deviations from that mean summed,
+        divided and rooted) without their per-call set-up (:func:`mean_and_std`).
+        """
+        mean, std = mean_and_std(self.value)
+        return abs(mean) + std
+
+
+def mean_and_std(values) -> tuple[float, float]:
+    """``float(np.mean(values))`` and ``float(np.std(values))`` of a 1-D float64 array, the same numbers.
+
+    numpy's mean is the pairwise sum (``np.add.reduce``) divided by the count; its std subtracts
+    that mean, squares in place, sums the same way, divides by the count and takes the square root.
+    Other arrays go to numpy itself.
+    """
+    v = np.asarray(values)
+    if v.ndim != 1 or v.dtype != np.float64 or v.size == 0:
+        return float(np.mean(v)), float(np.std(v))
+    n = v.size
+    mean = np.add.reduce(v) / n
+    d = v - mean
+    np.multiply(d, d, out=d)
+    return float(mean), float(np.sqrt(np.add.reduce(d) / n))
+
+
+def mean_of(values) -> float:
+    """``float(np.mean(values))`` of a 1-D float64 array (the pairwise sum over the count), numpy's otherwise."""
+    v = np.asarray(values)
+    if v.ndim != 1 or v.dtype != np.float64 or v.size == 0:
+        return float(np.mean(v))
+    return float(np.add.reduce(v) / v.size)
 
 
 def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
