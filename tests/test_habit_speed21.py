@@ -348,3 +348,29 @@ def test_mean_and_std_equal_numpys():
         assert it.mean_of(v) == float(np.mean(v))
     for inner in _rendered_interiors("bright", seed=4, count=6):
         assert inner.spread == abs(float(np.mean(inner.value))) + float(np.std(inner.value))
+
+
+def _previous_first_lowest(z, zmin):
+    """A new score array per call, the comparison times the scores, then their maximum."""
+    m = z.shape[0]
+    if m > 255:
+        return z.argmin(axis=0)
+    score = np.arange(m, 0, -1, dtype=np.uint8)[:, None, None]
+    top = np.max((z == zmin) * score, axis=0)
+    return m - top.astype(np.intp)
+
+
+def test_first_lowest_scored_in_place_equals_the_previous_form_and_argmin():
+    # reference: the previous kernel and numpy's argmin (the first index of the least value)
+    rng = np.random.default_rng(9)
+    for m in (1, 2, 7, 60, 255, 300):
+        z = rng.integers(0, 4, (m, 5, 37)).astype(np.float32)          # many ties
+        z[:, 0, 0] = 1.0                                                # all planes tied
+        zmin = z.min(axis=0)
+        got = it.first_lowest(z, zmin)
+        assert np.array_equal(got, _previous_first_lowest(z, zmin))
+        assert np.array_equal(got, z.argmin(axis=0))
+    z = rng.normal(size=(7, 3, 50)).astype(np.float32)
+    zc = z.copy()
+    it.first_lowest(z, z.min(axis=0))
+    assert np.array_equal(z, zc)                                        # the heights are left alone

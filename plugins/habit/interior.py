@@ -496,9 +496,18 @@ def first_lowest(z, zmin) -> np.ndarray:
     m = z.shape[0]
     if m > 255:
         return z.argmin(axis=0)
-    score = np.arange(m, 0, -1, dtype=np.uint8)[:, None, None]
-    top = np.max((z == zmin) * score, axis=0)
-    return m - top.astype(np.intp)
+    score = _PLANE_SCORES.get(m)
+    if score is None:
+        score = _PLANE_SCORES[m] = np.arange(m, 0, -1, dtype=np.uint8)[:, None, None]
+        score.setflags(write=False)
+    # the comparison's bytes scored in place (a bool is the byte 0 or 1), then their maximum over the planes
+    at_min = np.equal(z, zmin).view(np.uint8)
+    np.multiply(at_min, score, out=at_min)
+    return m - np.maximum.reduce(at_min, axis=0).astype(np.intp)
+
+
+#: Descending uint8 scores of the planes of :func:`first_lowest`, per plane count.
+_PLANE_SCORES = {}
 
 
 def plane_gap_inverse(g_up) -> np.ndarray:
