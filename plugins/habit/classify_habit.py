@@ -478,7 +478,7 @@ def _spectrum_of(match):
 OUTLINES_AT_ONCE = 64
 
 
-def outline_evidence_many(contours, params, pixel_scale=1.0, geometry=None) -> list:
+def outline_evidence_many(contours, params, pixel_scale=1.0) -> list:
     """:func:`outline_evidence` of many outlines (the same numbers; :func:`outline_batch.match_outlines`).
 
     Parameters
@@ -489,8 +489,6 @@ def outline_evidence_many(contours, params, pixel_scale=1.0, geometry=None) -> l
         Resolved parameters of this step.
     pixel_scale : float
         Pixel length in the contours' unit.
-    geometry : sequence of (ndarray, float), optional
-        ``engine.polygon_centroid`` of each outline where the caller has it (the same numbers).
 
     Returns
     -------
@@ -503,8 +501,7 @@ def outline_evidence_many(contours, params, pixel_scale=1.0, geometry=None) -> l
     for start in range(0, len(contours), OUTLINES_AT_ONCE):
         matches = outline_batch.match_outlines(contours[start:start + OUTLINES_AT_ONCE], lib, pixel_scale,
                                                p["outline_noise_px"], p["outline_noise_floor"],
-                                               p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS,
-                                               None if geometry is None else geometry[start:start + OUTLINES_AT_ONCE])
+                                               p["corner_radius_px"], en.outline_reach(p["tolerance"]), en.VIEWS)
         out += [(m, best_families(m.signature, m.level, _spectrum_of(m))) for m in matches]
     return out
 
@@ -940,18 +937,6 @@ def outline_geometry(contour):
     return en.polygon_centroid(contour)
 
 
-def lab_geometry(geometry):
-    """The ``polygon_centroid`` of an outline with y turned over (lab axes, :func:`engine.grain_evidence`), from
-    that of the outline in pixel coordinates: the centroid's y turned over, the same area.
-
-    Negating y negates every cross product, every sum of them and the signed area exactly (rounding to
-    nearest is symmetric), so the centroid's x is the same quotient and its y the negated one, bit for bit
-    (``tests/test_habit_speed21.py``).
-    """
-    cen, area = geometry
-    return np.array([cen[0], -cen[1]]), area
-
-
 def classify_frame(frame, params=None) -> dict:
     """Habit, evidence and fit columns for every grain of a frame (see the module docstring)."""
     p = STEP.resolve(params)
@@ -978,7 +963,7 @@ def classify_frame(frame, params=None) -> dict:
     for start in range(0, n, GRAINS_IN_STEP):
         rows = range(start, min(start + GRAINS_IN_STEP, n))
         # a grain under min_resolved_px is not judged: no evidence is read for it
-        # each outline's centroid and area once: its size, its interior and (y turned over) its match
+        # each outline's centroid and area once, for its size and its interior
         geo = [outline_geometry(contours[i]) for i in rows]
         small = {k for k, i in enumerate(rows) if outline_ecd_px(contours[i], geo[k]) < p["min_resolved_px"]}
         unresolved.update(start + k for k in small)
@@ -987,8 +972,7 @@ def classify_frame(frame, params=None) -> dict:
                                            geo[k])
                     for k, i in enumerate(rows)]
         usable = [k for k, (contour, _) in enumerate(evidence) if contour is not None and len(contour) >= 8]
-        found = outline_evidence_many([evidence[k][0] for k in usable], p,
-                                      geometry=[lab_geometry(geo[k]) for k in usable])
+        found = outline_evidence_many([evidence[k][0] for k in usable], p)
         outlines = dict(zip(usable, found))
         # and their outline-only fits (outline_batch.outline_fits: the same fits as one at a time)
         fits = {} if any(o is None for o in found) else \

@@ -161,7 +161,7 @@ def choose_and_compare(lb, tau2, within: float, plan, compare, margin):
 
 
 def match_outlines(contours, library, pixel_scale: float, outline_noise_px: float, outline_noise_floor: float,
-                   corner_radius_px: float, within: float, faces, geometry=None) -> list:
+                   corner_radius_px: float, within: float, faces) -> list:
     """:func:`engine.match_outline` (with ``within``) of many outlines: the same matches, fewer array calls.
 
     Parameters
@@ -170,8 +170,6 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
         Closed outlines in lab axes.
     library, pixel_scale, outline_noise_px, outline_noise_floor, corner_radius_px, within, faces
         As for :func:`engine.match_outline` (the same for all outlines; ``within`` a number).
-    geometry : sequence of (ndarray, float), optional
-        ``polygon_centroid`` of each outline where the caller has it (the same numbers).
 
     Returns
     -------
@@ -183,7 +181,7 @@ def match_outlines(contours, library, pixel_scale: float, outline_noise_px: floa
         return []
     n = library.signatures.shape[-1]
     polys = [check_polygon(c, "contour_xy") for c in contours]
-    cen_area = [polygon_centroid(c) for c in polys] if geometry is None else list(geometry)
+    cen_area = [polygon_centroid(c) for c in polys]
     sigs = radial_signatures_about(polys, [ca[0] for ca in cen_area], [ca[1] for ca in cen_area], n)
     g = len(polys)
     areas = [ca[1] for ca in cen_area]
