@@ -630,9 +630,11 @@ def facet_equations(parts) -> NormalEquations:
     """The facet-mode :class:`NormalEquations` of the models of several :class:`FacetSums`, in their order.
 
     The chunks' models are stacked and their equations formed together: every entry is a product of a
-    model's own sums and plane factors, or a sum of such products over that model's planes, so each
-    model gets the bits of forming its chunk alone (``tests/test_habit_speed21.py`` checks it on the
-    placements of rendered fields). All parts must have the same number of planes M.
+    model's own sums and plane factors, or a sum of such products over that model's planes (einsum
+    adds each model's planes in their order whatever the number of models stacked), so each model
+    gets the bits of forming its chunk alone; ``tests/test_habit_speed21.py`` checks it against the
+    previous per-chunk form on drawn grains and the grains of rendered fields, cut into chunks or
+    not. All parts must have the same number of planes M.
     """
     if len(parts) == 1:
         g_up, cnt, sx, sy, sv, terms, scale = parts[0]
@@ -674,8 +676,10 @@ def rss_requests(requests, max_elements: int = 1_000_000) -> list:
     -------
     list of ndarray
         The RSS of each request's models, the same numbers as one :func:`interior_rss_batch`
-        call per request: the normal equations are built per request, and the small
-        least-squares systems of all requests are solved together (each system on its own).
+        call per request: the per-facet sums are taken per request (chunk), the facet-mode
+        equations of all chunks are then formed in one stack per number of planes
+        (:func:`facet_equations`), and the small least-squares systems of all requests are
+        solved together (each system on its own).
     """
     eqs, owner, sums = [], [], {}
     for r, (interior, g_up, z_up, g_dn, z_dn, edge_px, tem, gap_inv) in enumerate(requests):
