@@ -79,7 +79,7 @@ import numpy as np
 from grainhabit.params import Param
 from grainhabit.plugins.habit import crystal as cr
 from grainhabit.plugins.habit import disk_cache, outline_bound
-from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss,
+from grainhabit.plugins.habit.interior import (FAR_HEIGHT, TILT_GAIN_RANGE, Interior, face_planes, flat_rss, mean_of,
                                                grain_evidence, grain_evidence_lazy, grain_interior, interior_rss, interior_rss_batch,
                                                plane_gap_inverse, round_request, round_rss, rss_requests, smooth_rss,
                                                subsample_interior)
@@ -1146,14 +1146,42 @@ def fit_alpha_steps(contour_xy, interior: Interior | None = None, *, pixel_scale
         notes.append("outline only")
     fchi, level, relief = float("nan"), float("nan"), float("nan")
     if interior is not None and interior.value.size >= 30:
-        level = float(np.mean(interior.value))
+        level = mean_of(interior.value)
         if evidence:
             # the round body's RSS (:func:`round_rss`) as one more request
             flat, rnd = flat_rss(full), float((yield round_request(full, tem_offset_max))[0])
-            fchi = max(w_eff * (min(flat, rnd, smooth_rss(full)) - rmin) / s2, 0.0)
+            fchi = facet_evidence(flat, rnd, lambda: smooth_rss(full), rmin, s2, w_eff)
             relief = max(w_eff * (flat - min(rnd, rmin)) / s2, 0.0)
     return AlphaFit(float("nan") if bounded else alpha, lo, hi, alpha, lib.faces[mbest], 360.0 * kbest / n,
                     dbest, "; ".join(notes), score, fchi, level, sig, relief)
+
+
+def facet_evidence(flat: float, rnd: float, smooth, rmin: float, s2: float, w_eff: float) -> float:
+    """Facet evidence of a fit: how much better its best placed model explains the interior than any featureless one.
+
+    Parameters
+    ----------
+    flat, rnd : float
+        RSS of the flat interior (:func:`flat_rss`) and of the round body (:func:`round_rss`).
+    smooth : callable
+        ``smooth()`` gives the RSS of the smooth surface (:func:`smooth_rss`); called only where it can
+        matter.
+    rmin, s2, w_eff : float
+        Least RSS of the placed models, the residual variance and the evidence weight of the fit.
+
+    Returns
+    -------
+    float
+        ``max(w_eff * (min(flat, rnd, smooth()) - rmin) / s2, 0)``, in chi-square units. Where the flat
+        or the round interior fits at least as well as the best model (``min(flat, rnd) <= rmin``) the
+        value is 0 whatever the smooth surface gives (a lower RSS only lowers the difference further),
+        and ``smooth`` is not called: the same number, without the surface fit.
+    """
+    featureless = min(flat, rnd)
+    if featureless > rmin or not w_eff > 0:
+        # (with no positive weight a smaller difference could give -0.0 instead of 0.0)
+        featureless = min(flat, rnd, smooth())
+    return max(w_eff * (featureless - rmin) / s2, 0.0)
 
 
 _QUICK_MODELS = 8

@@ -79,13 +79,43 @@ class Interior:
     def sums(self) -> tuple:
         """sum x, sum y, sum v, x.x, x.y, y.y, x.v, y.v, v.v and mean v (the plane and level terms)."""
         x, y, v = self.x, self.y, self.value
-        return x.sum(), y.sum(), v.sum(), x @ x, x @ y, y @ y, x @ v, y @ v, v @ v, float(np.mean(v))
+        return x.sum(), y.sum(), v.sum(), x @ x, x @ y, y @ y, x @ v, y @ v, v @ v, mean_of(v)
 
     @cached_property
     def spread(self) -> float:
-        """|mean| + standard deviation of the values (the scale of the interior noise floor)."""
-        v = self.value
-        return abs(float(np.mean(v))) + float(np.std(v))
+        """|mean| + standard deviation of the values (the scale of the interior noise floor).
+
+        ``abs(float(np.mean(v))) + float(np.std(v))``, by the operations numpy's mean and std make
+        (one pairwise sum, the quotient by the count; the squared deviations from that mean summed,
+        divided and rooted) without their per-call set-up (:func:`mean_and_std`).
+        """
+        mean, std = mean_and_std(self.value)
+        return abs(mean) + std
+
+
+def mean_and_std(values) -> tuple[float, float]:
+    """``float(np.mean(values))`` and ``float(np.std(values))`` of a 1-D float64 array, the same numbers.
+
+    numpy's mean is the pairwise sum (``np.add.reduce``) divided by the count; its std subtracts
+    that mean, squares in place, sums the same way, divides by the count and takes the square root.
+    Other arrays go to numpy itself.
+    """
+    v = np.asarray(values)
+    if v.ndim != 1 or v.dtype != np.float64 or v.size == 0:
+        return float(np.mean(v)), float(np.std(v))
+    n = v.size
+    mean = np.add.reduce(v) / n
+    d = v - mean
+    np.multiply(d, d, out=d)
+    return float(mean), float(np.sqrt(np.add.reduce(d) / n))
+
+
+def mean_of(values) -> float:
+    """``float(np.mean(values))`` of a 1-D float64 array (the pairwise sum over the count), numpy's otherwise."""
+    v = np.asarray(values)
+    if v.ndim != 1 or v.dtype != np.float64 or v.size == 0:
+        return float(np.mean(v))
+    return float(np.add.reduce(v) / v.size)
 
 
 def grain_interior(signal, mask, centroid_xy_px, ecd_px, mode, erode_px=2):
@@ -466,9 +496,18 @@ def first_lowest(z, zmin) -> np.ndarray:
     m = z.shape[0]
     if m > 255:
         return z.argmin(axis=0)
-    score = np.arange(m, 0, -1, dtype=np.uint8)[:, None, None]
-    top = np.max((z == zmin) * score, axis=0)
-    return m - top.astype(np.intp)
+    score = _PLANE_SCORES.get(m)
+    if score is None:
+        score = _PLANE_SCORES[m] = np.arange(m, 0, -1, dtype=np.uint8)[:, None, None]
+        score.setflags(write=False)
+    # the comparison's bytes scored in place (a bool is the byte 0 or 1), then their maximum over the planes
+    at_min = np.equal(z, zmin).view(np.uint8)
+    np.multiply(at_min, score, out=at_min)
+    return m - np.maximum.reduce(at_min, axis=0).astype(np.intp)
+
+
+#: Descending uint8 scores of the planes of :func:`first_lowest`, per plane count.
+_PLANE_SCORES = {}
 
 
 def plane_gap_inverse(g_up) -> np.ndarray:
@@ -563,6 +602,65 @@ class NormalEquations(NamedTuple):
     extra: np.ndarray
 
 
+class FacetSums(NamedTuple):
+    """What the facet-mode normal equations of c placed models take from their samples (:func:`normal_equations`).
+
+    Attributes
+    ----------
+    g_up : ndarray, shape (c, M, 2)
+        Height gradients of the models' upward planes.
+    cnt, sx, sy, sv : ndarray, shape (c, M)
+        Weighted count and sums of x, y and v of the samples under each plane.
+    plane_terms : tuple of 6 ndarray, shape (c,)
+        Weighted sums of x*x, x*y, y*y, x*v, y*v and v*v.
+    scale : ndarray, shape (c,)
+        Factor of each model's RSS (samples near facet edges left out).
+    """
+
+    g_up: np.ndarray
+    cnt: np.ndarray
+    sx: np.ndarray
+    sy: np.ndarray
+    sv: np.ndarray
+    plane_terms: tuple
+    scale: np.ndarray
+
+
+def facet_equations(parts) -> NormalEquations:
+    """The facet-mode :class:`NormalEquations` of the models of several :class:`FacetSums`, in their order.
+
+    The chunks' models are stacked and their equations formed together: every entry is a product of a
+    model's own sums and plane factors, or a sum of such products over that model's planes (einsum
+    adds each model's planes in their order whatever the number of models stacked), so each model
+    gets the bits of forming its chunk alone; ``tests/test_habit_speed21.py`` checks it against the
+    previous per-chunk form on drawn grains and the grains of rendered fields, cut into chunks or
+    not. All parts must have the same number of planes M.
+    """
+    if len(parts) == 1:
+        g_up, cnt, sx, sy, sv, terms, scale = parts[0]
+    else:
+        g_up, cnt, sx, sy, sv = (np.concatenate([q[k] for q in parts]) for k in range(5))
+        terms = tuple(np.concatenate([q.plane_terms[k] for q in parts]) for k in range(6))
+        scale = np.concatenate([q.scale for q in parts])
+    c, m = cnt.shape
+    xx, xy, yy, xv, yv, vv = terms
+    nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
+    sec = 1.0 / nz - 1.0
+    f = np.empty((c, m, 4))                                              # (1, sec, -g nz) per plane
+    f[..., 0] = 1.0
+    f[..., 1] = sec
+    np.multiply(-g_up[..., 0], nz, out=f[..., 2])
+    np.multiply(-g_up[..., 1], nz, out=f[..., 3])
+    # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
+    nm = np.zeros((c, 6, 6))
+    nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
+    nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
+    nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
+    nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
+    rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
+    return NormalEquations("facets", nm, rhs, vv, scale)
+
+
 def rss_requests(requests, max_elements: int = 1_000_000) -> list:
     """:func:`interior_rss_batch` of several requests (e.g. of many grains), the solves in one call per mode.
 
@@ -578,10 +676,12 @@ def rss_requests(requests, max_elements: int = 1_000_000) -> list:
     -------
     list of ndarray
         The RSS of each request's models, the same numbers as one :func:`interior_rss_batch`
-        call per request: the normal equations are built per request, and the small
-        least-squares systems of all requests are solved together (each system on its own).
+        call per request: the per-facet sums are taken per request (chunk), the facet-mode
+        equations of all chunks are then formed in one stack per number of planes
+        (:func:`facet_equations`), and the small least-squares systems of all requests are
+        solved together (each system on its own).
     """
-    eqs, owner = [], []
+    eqs, owner, sums = [], [], {}
     for r, (interior, g_up, z_up, g_dn, z_dn, edge_px, tem, gap_inv) in enumerate(requests):
         g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
         c, m = z_up.shape
@@ -589,12 +689,32 @@ def rss_requests(requests, max_elements: int = 1_000_000) -> list:
             continue
         step = max(1, int(max_elements // max(interior.value.size * max(m, 1), 1)))
         for i in range(0, c, step):
-            eqs.append(normal_equations(interior, g_up[i:i + step], z_up[i:i + step],
-                                        None if g_dn is None else g_dn[i:i + step],
-                                        None if z_dn is None else z_dn[i:i + step], edge_px, tem,
-                                        None if gap_inv is None else gap_inv[i:i + step]))
+            got = normal_equations(interior, g_up[i:i + step], z_up[i:i + step],
+                                   None if g_dn is None else g_dn[i:i + step],
+                                   None if z_dn is None else z_dn[i:i + step], edge_px, tem,
+                                   None if gap_inv is None else gap_inv[i:i + step],
+                                   sums_only=interior.mode == "facets")
+            if isinstance(got, FacetSums):
+                # facet chunks: their equations are formed together, per number of planes (below)
+                sums.setdefault(m, []).append((len(eqs), got))
+                eqs.append(None)
+            else:
+                eqs.append(got)
             owner.append(r)
-    got = solve_normal_equations(eqs)
+    # the facet chunks' equations, one stack per number of planes, each handed to the solve as one
+    # entry and split again
+    stacks = [facet_equations([q for _, q in parts]) for parts in sums.values()]
+    whole = [e for e in eqs if e is not None]
+    solved = solve_normal_equations(whole + stacks)
+    got = [None] * len(eqs)
+    it_whole = iter(solved[:len(whole)])
+    for k, e in enumerate(eqs):
+        if e is not None:
+            got[k] = next(it_whole)
+    for parts, stacked in zip(sums.values(), solved[len(whole):]):
+        cut = np.cumsum([q.scale.size for _, q in parts])[:-1]
+        for (k, _), g in zip(parts, np.split(stacked, cut)):
+            got[k] = g
     out = [[] for _ in requests]
     for r, g in zip(owner, got):
         out[r].append(g)
@@ -671,8 +791,12 @@ def _solve_thickness(nm, rhs, vv, amax):
 
 
 def normal_equations(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_px: float = 2.0,
-                     tem_offset_max: float = 0.5, gap_inv=None) -> NormalEquations:
-    """The normal equations of :func:`interior_rss_batch` (one chunk of models), not yet solved."""
+                     tem_offset_max: float = 0.5, gap_inv=None, sums_only: bool = False):
+    """The normal equations of :func:`interior_rss_batch` (one chunk of models), not yet solved.
+
+    ``sums_only`` (facet mode): return the chunk's :class:`FacetSums` instead, for
+    :func:`facet_equations` to make the equations of many chunks at once.
+    """
     g_up, z_up = np.asarray(g_up, float), np.asarray(z_up, float)
     c, m = z_up.shape
     p = interior.value.size
@@ -717,22 +841,8 @@ def normal_equations(interior: Interior, g_up, z_up, g_dn=None, z_dn=None, edge_
         sx = np.bincount(bins, (wt * x).ravel(), minlength=c * m).reshape(c, m)
         sy = np.bincount(bins, (wt * y).ravel(), minlength=c * m).reshape(c, m)
         sv = np.bincount(bins, (wt * v).ravel(), minlength=c * m).reshape(c, m)
-        xx, xy, yy, xv, yv, vv = (wt @ q for q in interior.products)
-        nz = 1.0 / np.sqrt(1.0 + np.einsum("cmi,cmi->cm", g_up, g_up))
-        sec = 1.0 / nz - 1.0
-        f = np.empty((c, m, 4))                                              # (1, sec, -g nz) per plane
-        f[..., 0] = 1.0
-        f[..., 1] = sec
-        np.multiply(-g_up[..., 0], nz, out=f[..., 2])
-        np.multiply(-g_up[..., 1], nz, out=f[..., 3])
-        # unknowns (a, b, c_x, c_y, p_x, p_y) with b = k a: normal equations from per-facet sums
-        nm = np.zeros((c, 6, 6))
-        nm[:, :4, :4] = np.einsum("cm,cma,cmb->cab", cnt, f, f)
-        nm[:, :4, 4] = nm[:, 4, :4] = np.einsum("cm,cma->ca", sx, f)
-        nm[:, :4, 5] = nm[:, 5, :4] = np.einsum("cm,cma->ca", sy, f)
-        nm[:, 4, 4], nm[:, 4, 5], nm[:, 5, 4], nm[:, 5, 5] = xx, xy, xy, yy
-        rhs = np.concatenate([np.einsum("cm,cma->ca", sv, f), xv[:, None], yv[:, None]], axis=1)
-        return NormalEquations("facets", nm, rhs, vv, scale)
+        sums = FacetSums(g_up, cnt, sx, sy, sv, tuple(wt @ q for q in interior.products), scale)
+        return sums if sums_only else facet_equations([sums])
     if g_dn is None or z_dn is None:
         raise ValueError("thickness mode needs the downward planes g_dn, z_dn")
     t = np.maximum(ztop - heights(g_dn, z_dn).max(axis=0), 0.0).astype(float)   # (c, p)
@@ -794,7 +904,14 @@ def smooth_rss(interior: Interior, degree: int = SMOOTH_INTERIOR_DEGREE) -> floa
     Facet evidence is counted against the best of this, :func:`round_rss` and :func:`flat_rss`.
     """
     x, y = interior.x, interior.y
-    return _surface_rss([x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)], interior.value)
+    if degree == SMOOTH_INTERIOR_DEGREE == 3:
+        # the columns x ** i * y ** j in the same order and to the same bits, each power taken once: numpy
+        # gives x ** 0 as ones, x ** 1 as x and x ** 2 as x * x, and a product with ones is its other factor
+        x2, y2 = x * x, y * y
+        cols = [np.ones_like(x), y, y2, y ** 3, x, x * y, x * y2, x2, x2 * y, x ** 3]
+    else:
+        cols = [x ** i * y ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
+    return _surface_rss(cols, interior.value)
 
 
 def flat_rss(interior: Interior) -> float:
@@ -844,13 +961,17 @@ def grain_evidence(labels, signal, mode, contour_px, label, erode_px=2):
     return contour_lab, get_interior()
 
 
-def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2):
+def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2, geometry=None):
     """:func:`grain_evidence` with the interior collected only when it is asked for.
 
     Parameters
     ----------
     labels, signal, mode, contour_px, label, erode_px
         As in :func:`grain_evidence`.
+
+    geometry : (ndarray, float), optional
+        ``polygon_centroid(contour_px)`` where the caller has it (the same numbers; else computed
+        when the interior is collected).
 
     Returns
     -------
@@ -869,7 +990,7 @@ def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2):
 
     @functools.lru_cache(maxsize=1)
     def get_interior():
-        return _collect_interior(labels, signal, mode, c, label, erode_px)
+        return _collect_interior(labels, signal, mode, c, label, erode_px, geometry)
 
     return contour_lab, get_interior
 
@@ -892,9 +1013,10 @@ def median_of(values) -> float:
     return float(part[h]) if k % 2 else float((part[h - 1] + part[h]) / 2)
 
 
-def _collect_interior(labels, signal, mode, c, label, erode_px):
-    """The interior samples of :func:`grain_evidence` (outline ``c`` in pixel coordinates, >= 3 vertices)."""
-    cen, area = polygon_centroid(c)
+def _collect_interior(labels, signal, mode, c, label, erode_px, geometry=None):
+    """The interior samples of :func:`grain_evidence` (outline ``c`` in pixel coordinates, >= 3 vertices;
+    ``geometry`` its :func:`polygon_centroid` where known)."""
+    cen, area = polygon_centroid(c) if geometry is None else geometry
     ecd = math.sqrt(4 * area / math.pi)
     rows, cols = labels.shape
     pad = 4
