@@ -659,30 +659,58 @@ def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
 
 def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict,
                    noise_sd: float | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Faint grains' dents filled, cuts onto the edges between levels, outlines to the foot where asked.
+    """Outlines refined (:func:`refine_outlines`, with ``noise_sd``), then out to the edge's foot where asked.
 
-    Faint grains (with ``noise_sd``, the background's standard deviation):
-    :func:`~grainhabit.plugins.segment.faint_outline.fill_faint_dents`. The cuts:
-    :func:`~grainhabit.plugins.segment.cut_edges.snap_cuts`. The labels are numbered again in raster
-    order of their first pixels where either moved a pixel. The foot: where ``outline`` is ``outer``
-    (:mod:`~grainhabit.plugins.segment.outer_edge`).
+    The foot: where ``outline`` is ``outer`` (:mod:`~grainhabit.plugins.segment.outer_edge`).
     """
-    filled = 0
     if noise_sd is not None:
-        labels, filled = faint_outline.fill_faint_dents(arr, labels, noise_sd)
-        if filled:
-            notes.append(f"segment-grains: the dents of {filled} faint grain(s) filled from the image smoothed by "
-                         f"{faint_outline.SMOOTH_PX:g} px")
+        labels, split, old = refine_outlines(arr, labels, split, noise_sd, notes)
+    if p["outline"] == "outer":
+        labels = outer_edge.grow_to_level(arr, labels)
+    return labels, split, notes
+
+
+def refine_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, noise_sd: float, notes: list
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Faint grains' dents filled, then the cuts between grains of different levels moved onto their edge.
+
+    Parameters
+    ----------
+    arr : ndarray of float, shape (rows, cols)
+        Preprocessed frame (grains bright).
+    labels : ndarray of int32, shape (rows, cols)
+        Grains 1..n in raster order of their first pixels.
+    split : ndarray of bool, shape (n,)
+    noise_sd : float
+        The background's standard deviation (image units).
+    notes : list of str
+        A note is appended for each refinement that changed a grain.
+
+    Returns
+    -------
+    labels, split
+        The grains numbered again in raster order of their first pixels where a pixel moved.
+    old : ndarray of int, shape (n,), or None
+        ``old[k - 1]`` is the label that became ``k``; None where nothing moved.
+
+    Notes
+    -----
+    :func:`~grainhabit.plugins.segment.faint_outline.fill_faint_dents` and
+    :func:`~grainhabit.plugins.segment.cut_edges.snap_cuts`; both read pixels within a few tens of px of
+    a grain only, so a frame processed by tiles gives the same grains (``tiling.segment_tile``).
+    """
+    labels, filled = faint_outline.fill_faint_dents(arr, labels, noise_sd)
+    if filled:
+        notes.append(f"segment-grains: the dents of {filled} faint grain(s) filled from the image smoothed by "
+                     f"{faint_outline.SMOOTH_PX:g} px")
     labels, moved = cut_edges.snap_cuts(arr, labels, split)
     if moved:
         notes.append(f"segment-grains: {moved} cut(s) between grains of different levels moved onto the edge "
                      "between them")
-    if filled or moved:
-        labels, old = tiling.renumber_raster(labels)
-        split = split[old - 1]
-    if p["outline"] == "outer":
-        labels = outer_edge.grow_to_level(arr, labels)
-    return labels, split, notes
+    if not (filled or moved):
+        return labels, split, None
+    labels, old = tiling.renumber_raster(labels)
+    return labels, split[old - 1], old
 
 
 def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, boxes: list | None, p: dict

@@ -372,11 +372,24 @@ def segment_tile(frame, params):
         kw["method"] = p["threshold"]
         labels, clusters, flags = sg.label_grains(frame.image, frame.pixel_size_nm, shared["levels"], **kw)
     n = int(labels.max()) if labels.size else 0
+    split = np.asarray(flags["split"], bool)[1:n + 1]
+    notes = []
+    if n:
+        # the outlines refined as an untiled frame's are (segment_grains.refine_outlines); a pixel a grain
+        # takes from the background joins its grain's cluster
+        refined, split, old = sg.refine_outlines(frame.image, labels, split, shared["levels"]["sigma"], notes)
+        if old is not None:
+            cluster_of = np.zeros(n + 1, np.asarray(clusters).dtype)
+            first = first_pixels(labels)
+            cluster_of[1:] = np.asarray(clusters).ravel()[np.maximum(first, 0)]
+            clusters = np.where(refined > 0, cluster_of[np.r_[0, old][refined]], 0).astype(np.asarray(clusters).dtype)
+            labels = refined
     new = frame.replace(labels=labels.astype(np.int32), grains={}, meta={**frame.meta, "clusters": clusters})
-    new = new.with_columns(label=np.arange(1, n + 1, dtype=np.int64),
-                           split=np.asarray(flags["split"], bool)[1:n + 1], edge_cut=sg.edge_cut(labels))
+    new = new.with_columns(label=np.arange(1, n + 1, dtype=np.int64), split=split, edge_cut=sg.edge_cut(labels))
     rej = flags.get("rejected", {})
     if rej.get("line") or rej.get("stroke"):
         new = new.with_note(f"segment-grains: {rej.get('line', 0)} line-like and {rej.get('stroke', 0)} "
                             "stroke-like object(s) dropped as drawn marks (scale bars, letters, text, streaks)")
+    for note in notes:
+        new = new.with_note(note)
     return new
