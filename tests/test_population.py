@@ -10,7 +10,7 @@ import pytest
 from scipy import ndimage as ndi
 from skimage.draw import disk
 
-from grainhabit.plugins.segment.population import below_population, drop_below_population, typical_area
+from grainhabit.plugins.segment.population import below_population, drop_below_population, edge_strips, typical_area
 from grainhabit.plugins.segment.segment_grains import segment_image
 
 
@@ -30,6 +30,29 @@ def test_many_specks_do_not_pull_the_reference_down():
     assert typical_area(areas) == 700.0
     drop = below_population(areas, 0.02)
     assert drop[:200].all() and not drop[200:].any()
+
+
+def test_a_strip_along_the_frame_edge_sets_no_typical_area():
+    # a bright strip along the right edge (charging, the scan's border), cut into long pieces, and small
+    # particles of 25 px: with the strip as reference the particles are under 2 % of it and dropped; the
+    # strip left out, they are the frame's grains and kept (a grain cut by the edge keeps counting)
+    labels = np.zeros((512, 685), np.int32)
+    labels[0:176, 662:685] = 1                  # 176 x 23 px along the right edge
+    labels[201:339, 664:685] = 2                # 138 x 21
+    k = 3
+    for r in range(40, 480, 40):
+        for c in range(40, 600, 80):
+            labels[r:r + 5, c:c + 5] = k        # 25 px particles
+            k += 1
+    labels[300:320, 0:15] = k                   # a grain cut by the left edge: 20 along it, 15 deep
+    areas = np.bincount(labels.ravel())[1:]
+    boxes = ndi.find_objects(labels)
+    strips = edge_strips(boxes, labels.shape)
+    assert strips[:2].all() and not strips[2:].any()
+    assert below_population(areas, 0.02)[2:-1].all()
+    assert not below_population(areas, 0.02, ~strips)[2:-1].any()
+    out, _, n = drop_below_population(labels, np.zeros(k, bool))
+    assert n == 0
 
 
 def test_share_zero_or_an_empty_frame_drops_nothing():

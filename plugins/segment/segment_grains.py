@@ -99,7 +99,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.20",
+    version="2.21",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -754,7 +754,8 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
     n = len(boxes)
     if n == 0 or share <= 0:
         return labels, split, 0
-    drop = population.below_population(population.box_areas(labels, boxes), share)
+    drop = population.below_population(population.box_areas(labels, boxes), share,
+                                       ~population.edge_strips(boxes, labels.shape))
     if not drop.any():
         return labels, split, 0
     keep = np.r_[False, ~drop]
