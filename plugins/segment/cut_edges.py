@@ -40,6 +40,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.disk_morphology import erode_disk
+from grainhabit.plugins.segment.distance import distance_map
 
 #: Widest band (px) each side of a cut in which pixels may change part ...
 BAND_PX = 12.0
@@ -60,7 +61,7 @@ _EIGHT = np.ones((3, 3), bool)
 
 def _inside_distance(mask: np.ndarray) -> np.ndarray:
     """Euclidean distance (px) of each pixel of ``mask`` to the nearest pixel outside it (the box's edge outside)."""
-    return ndi.distance_transform_edt(np.pad(mask, 1))[1:-1, 1:-1]
+    return distance_map(np.pad(mask, 1))[1:-1, 1:-1]
 
 
 def part_level(smooth: np.ndarray, mask: np.ndarray) -> float:
@@ -107,8 +108,7 @@ def snap_pair(grad: np.ndarray, smooth: np.ndarray, a_mask: np.ndarray, b_mask: 
     if band < 1.0:
         return None
     # the band: pixels of either part within `band` of the other one (the cut is where they meet)
-    near = (a_mask & (ndi.distance_transform_edt(~b_mask) <= band)) | \
-           (b_mask & (ndi.distance_transform_edt(~a_mask) <= band))
+    near = (a_mask & (distance_map(~b_mask) <= band)) | (b_mask & (distance_map(~a_mask) <= band))
     markers = np.zeros(a_mask.shape, np.int32)
     markers[a_mask & ~near] = 1
     markers[b_mask & ~near] = 2
@@ -159,7 +159,7 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
     def level(k):
         # on the grain's box grown by SMOOTH_MARGIN_PX: the smoothing there is the whole frame's
         if k not in levels:
-            box = _grown(boxes[k - 1], labels.shape, SMOOTH_MARGIN_PX)
+            box = grown_box(boxes[k - 1], labels.shape, SMOOTH_MARGIN_PX)
             levels[k] = part_level(ndi.gaussian_filter(img[box], 1.0), labels[box] == k)
         return levels[k]
 
@@ -170,13 +170,10 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
     for a, b in pairs:
         if not levels_differ(level(a), level(b)):
             continue
-        box_a, box_b = boxes[a - 1], boxes[b - 1]
-        r0 = max(min(box_a[0].start, box_b[0].start) - PAD_PX, 0)
-        r1 = min(max(box_a[0].stop, box_b[0].stop) + PAD_PX, labels.shape[0])
-        c0 = max(min(box_a[1].start, box_b[1].start) - PAD_PX, 0)
-        c1 = min(max(box_a[1].stop, box_b[1].stop) + PAD_PX, labels.shape[1])
-        window = out[r0:r1, c0:c1]
-        patch = img[r0:r1, c0:c1]
+        pair_box = tuple(slice(min(u.start, v.start), max(u.stop, v.stop)) for u, v in zip(boxes[a - 1], boxes[b - 1]))
+        box = grown_box(pair_box, labels.shape, PAD_PX)
+        window = out[box]
+        patch = img[box]
         a_mask, b_mask = window == a, window == b
         res = snap_pair(ndi.gaussian_gradient_magnitude(patch, 1.0), ndi.gaussian_filter(patch, 1.0), a_mask, b_mask,
                         level(a), level(b))
@@ -184,14 +181,14 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
             continue
         if out is labels:  # the caller's labels are left as they are
             out = labels.copy()
-            window = out[r0:r1, c0:c1]
+            window = out[box]
         window[res[0]] = a
         window[res[1]] = b
         moved += 1
     return out, moved
 
 
-def _grown(box: tuple, shape: tuple, margin: int) -> tuple:
+def grown_box(box: tuple, shape: tuple, margin: int) -> tuple:
     """A box grown by ``margin`` px each side, clipped to the frame."""
     return tuple(slice(max(b.start - margin, 0), min(b.stop + margin, size)) for b, size in zip(box, shape))
 
@@ -210,7 +207,7 @@ def neighbours(labels: np.ndarray, k: int, box: tuple) -> list[int]:
     -------
     list of int
     """
-    grown = _grown(box, labels.shape, 1)
+    grown = grown_box(box, labels.shape, 1)
     window = labels[grown]
     around = ndi.binary_dilation(window == k, structure=_EIGHT)
     found = np.unique(window[around])

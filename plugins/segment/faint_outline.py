@@ -30,6 +30,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.cut_edges import grown_box
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.foreground import fill_holes
 
@@ -77,8 +78,7 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> 
     for k, box in enumerate(ndi.find_objects(labels), start=1):
         if box is None:
             continue
-        grown = tuple(slice(max(b.start - MARGIN_PX, 0), min(b.stop + MARGIN_PX, size))
-                      for b, size in zip(box, labels.shape))
+        grown = grown_box(box, labels.shape, MARGIN_PX)
         window = out[grown]
         own = window == k
         inner = erode_disk(own, INNER_PX, 0)

@@ -301,6 +301,7 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
     if len(items) < TEXT_MIN_GLYPHS:
         return np.zeros(0, np.int64)
     height = (bottom - top).astype(float)
+    width = right - left
     drop = set()
     solid = {}
 
@@ -329,7 +330,7 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
                 continue
             if (sum(solidity(i) < TEXT_SOLIDITY for i in group) * 2 > len(group)
                     or (len(group) >= TEXT_LINE_GLYPHS
-                        and (right - left)[group].max() >= TEXT_WIDTH_SPREAD * max((right - left)[group].min(), 1)
+                        and width[group].max() >= TEXT_WIDTH_SPREAD * max(width[group].min(), 1)
                         and alone_in_band(group, top, bottom, left, right))):
                 drop.update(int(ids[i]) for i in group)
                 # pieces of glyphs (a split letter, a dot) inside the line's band go with it

@@ -586,7 +586,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
             split_by_label = np.r_[False, split]
     labels, split, notes = place_outlines(arr, *drop_debris(*drop_drawn_marks(
         arr, raw, levels, p, labels, split, clusters, split_by_label, dropped, notes, boxes, cluster_of), p), p,
-        noise_sd=levels["sigma"])
+        levels["sigma"])
     if no_background and int(labels.max()) < FEW_GRAINS_MIN:
         # one or two objects do not show a background under grains (few_above_noise): the error stands
         raise ValueError(no_background)
@@ -599,7 +599,7 @@ def finish_field(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict,
     n = int(labels.max())
     return place_outlines(arr, *drop_debris(*drop_drawn_marks(
         arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p), p,
-        noise_sd=levels["sigma"])
+        levels["sigma"])
 
 
 def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
@@ -658,13 +658,10 @@ def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
 
 
 def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict,
-                   noise_sd: float | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Outlines refined (:func:`refine_outlines`, with ``noise_sd``), then out to the edge's foot where asked.
-
-    The foot: where ``outline`` is ``outer`` (:mod:`~grainhabit.plugins.segment.outer_edge`).
-    """
-    if noise_sd is not None:
-        labels, split, old = refine_outlines(arr, labels, split, noise_sd, notes)
+                   noise_sd: float) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Outlines refined (:func:`refine_outlines`; ``noise_sd`` the background's standard deviation), then
+    out to the edge's foot where ``outline`` is ``outer`` (:mod:`~grainhabit.plugins.segment.outer_edge`)."""
+    labels, split, _ = refine_outlines(arr, labels, split, noise_sd, notes)
     if p["outline"] == "outer":
         labels = outer_edge.grow_to_level(arr, labels)
     return labels, split, notes

@@ -379,10 +379,10 @@ def segment_tile(frame, params):
         # takes from the background joins its grain's cluster
         refined, split, old = sg.refine_outlines(frame.image, labels, split, shared["levels"]["sigma"], notes)
         if old is not None:
-            cluster_of = np.zeros(n + 1, np.asarray(clusters).dtype)
-            first = first_pixels(labels)
-            cluster_of[1:] = np.asarray(clusters).ravel()[np.maximum(first, 0)]
-            clusters = np.where(refined > 0, cluster_of[np.r_[0, old][refined]], 0).astype(np.asarray(clusters).dtype)
+            clusters = np.asarray(clusters)
+            cluster_of = np.zeros(n + 1, clusters.dtype)
+            cluster_of[labels] = clusters          # one cluster per grain (entry 0 is never read below)
+            clusters = np.where(refined > 0, cluster_of[np.r_[0, old][refined]], clusters)
             labels = refined
     new = frame.replace(labels=labels.astype(np.int32), grains={}, meta={**frame.meta, "clusters": clusters})
     new = new.with_columns(label=np.arange(1, n + 1, dtype=np.int64), split=split, edge_cut=sg.edge_cut(labels))
