@@ -78,6 +78,11 @@ SEAM_DIP = 0.15
 EDGE_PX = 2.0
 #: Pixels of a part nearer the cut than this (px) are left out of its interior level.
 SEAM_CLEAR_PX = 3.0
+#: A seam is also darker than the lines beside it, this far (px) from the cut on either side, by ...
+SEAM_SIDE_PX = 4.0
+#: ... at least this fraction of their level (the same darkest-of-3 x 3 measure on both): a dark line of
+#: a textured grain's own surface is as dark as its neighbours.
+SEAM_SIDE_DIP = 0.05
 #: A cut between notches crosses a neck when at most this fraction of the thicker part's inscribed diameter.
 NECK_WIDTH = 1.2
 #: A cut from one notch to the nearest outline point crosses a neck when the notch is this many times its length.
@@ -420,6 +425,40 @@ def _cut(mask: np.ndarray, p: np.ndarray, q: np.ndarray, min_area: float) -> lis
     return [ws == 1, ws == 2]
 
 
+def _darkest_3x3(smooth: np.ndarray, r: np.ndarray, c: np.ndarray) -> np.ndarray:
+    """The least of each pixel's 3 x 3 neighbours (scipy.ndimage.grey_erosion with a 3 x 3 footprint, the
+    array's edge mirrored, read at the given pixels only)."""
+    h, w = smooth.shape
+    return np.min([smooth[np.clip(r + dr, 0, h - 1), np.clip(c + dc, 0, w - 1)]
+                   for dr in (-1, 0, 1) for dc in (-1, 0, 1)], axis=0)
+
+
+def _side_lines_level(smooth: np.ndarray, deep: np.ndarray, rr: np.ndarray, cc: np.ndarray,
+                      on: np.ndarray) -> float | None:
+    """The darker of the two lines beside a cut, :data:`SEAM_SIDE_PX` off it on either side.
+
+    Each line's level is the mean of the darkest-of-3 x 3 values at the cut's inner pixels shifted along
+    the cut's normal, counted where the shifted pixel lies inside the shape clear of its edge. None
+    where either line has fewer than 3 such pixels (a cut through a thin shape).
+    """
+    dr, dc = float(rr[-1] - rr[0]), float(cc[-1] - cc[0])
+    norm = np.hypot(dr, dc)
+    if norm == 0:
+        return None
+    h, w = deep.shape
+    levels = []
+    for sign in (1.0, -1.0):
+        r = np.rint(rr[on] + sign * SEAM_SIDE_PX * -dc / norm).astype(np.intp)
+        c = np.rint(cc[on] + sign * SEAM_SIDE_PX * dr / norm).astype(np.intp)
+        inside = (r >= 0) & (r < h) & (c >= 0) & (c < w)
+        r, c = r[inside], c[inside]
+        keep = deep[r, c]
+        if np.count_nonzero(keep) < 3:
+            return None
+        levels.append(float(_darkest_3x3(smooth, r[keep], c[keep]).mean()))
+    return min(levels)
+
+
 def seam_contrast(image: np.ndarray, mask: np.ndarray, parts: list[np.ndarray], rr: np.ndarray,
                   cc: np.ndarray) -> float:
     """How much darker the image is along a cut than inside the two parts it leaves.
@@ -464,11 +503,11 @@ def seam_contrast(image: np.ndarray, mask: np.ndarray, parts: list[np.ndarray], 
         return 0.0
     # scipy.ndimage.grey_erosion(smooth, footprint=3x3) read at the cut's pixels only: the least of the
     # 3 x 3 neighbours, the box's edge mirrored ('reflect': a pixel beyond the edge is the edge pixel)
-    r_on, c_on = rr[on], cc[on]
-    h, w = mask.shape
-    darkest = np.min([smooth[np.clip(r_on + dr, 0, h - 1), np.clip(c_on + dc, 0, w - 1)]
-                      for dr in (-1, 0, 1) for dc in (-1, 0, 1)], axis=0)
+    darkest = _darkest_3x3(smooth, rr[on], cc[on])
     seam = float(darkest.mean())
+    side = _side_lines_level(smooth, deep, rr, cc, on)
+    if side is not None and side > 0 and 1.0 - seam / side < SEAM_SIDE_DIP:
+        return 1.0 - seam / side
     cut = np.zeros(mask.shape, bool)
     cut[rr, cc] = True
     clear = ~dilate_disk(cut, SEAM_CLEAR_PX)  # distance_transform_edt(~cut) > SEAM_CLEAR_PX (disk_morphology)
