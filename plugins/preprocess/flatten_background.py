@@ -65,7 +65,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="flatten-background",
     stage="preprocess",
-    version="1.8",
+    version="1.9",
     summary="Variance-stabilised denoising, masked large-scale background removal, automatic polarity.",
     params=(
         Param("background_nm", float, 4000.0, unit="nm", low=0.0,
@@ -89,6 +89,9 @@ NOISE_FLOOR_SIGMAS = 10.0
 #: The surface fitted with the narrow clip and Otsu's cut is kept when it leaves a background peak narrower
 #: than this fraction of the other's (see fit_surface).
 NARROWER_PEAK = 0.5
+#: The narrow clip's surface is refused where a plane explains this share of its change from the wide one's
+#: and the wide one keeps more blocks at the background (see tilted_away).
+TILT_SHARE = 0.95
 #: Lower clip of the output: background noise stays visible around 0.
 LOW_CLIP = -0.25
 #: Pixel differences used by the noise model, and pixels used for a background mode and sigma (regular
@@ -531,16 +534,55 @@ def fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int = 0) -> 
     """
     if not grain_sign:
         return _fit_surface(small, scale_blocks, 0, False)
-    widths = []
-    surfaces = []
+    widths, surfaces, residuals = [], [], []
     for otsu_cut in (False, True):
         surfaces.append(_fit_surface(small, scale_blocks, grain_sign, otsu_cut))
         r = small - surfaces[-1]
         m, sd = background_peak(r, grain_sign)
         widths.append(min(sd, peak_sigma(r, m, -grain_sign)))
+        residuals.append(r - m)
     # the narrow clip cuts a peak's top narrower wherever it leaves the rest of the background: it must
     # halve the width to be taken
-    return surfaces[1] if widths[1] < NARROWER_PEAK * widths[0] else surfaces[0]
+    if not widths[1] < NARROWER_PEAK * widths[0]:
+        return surfaces[0]
+    # ... and it must not merely tilt the wide clip's surface away from most of the background: Otsu's
+    # class can be one side of an illumination gradient (few or small grains), and the narrow fit to the
+    # other side then leaves that one drifting off by a plane
+    if tilted_away(residuals[0], residuals[1], surfaces[1] - surfaces[0], CLIP_SIGMAS * widths[1]):
+        return surfaces[0]
+    return surfaces[1]
+
+
+def tilted_away(wide: np.ndarray, narrow: np.ndarray, change: np.ndarray, band: float) -> bool:
+    """Whether the narrow clip's surface is the wide one tilted off most of the background.
+
+    Parameters
+    ----------
+    wide, narrow : ndarray, shape (r, c)
+        Block residuals of the two surfaces, each less its background peak's mode.
+    change : ndarray, shape (r, c)
+        Narrow surface minus wide surface.
+    band : float
+        Half width of the band round the mode that counts a block as background.
+
+    Returns
+    -------
+    bool
+        True when a plane explains at least :data:`TILT_SHARE` of the change's variance and the wide
+        surface leaves more blocks within ``band`` than the narrow one. Grains that pull the wide surface
+        up (packed frames) bend it under themselves, not by a plane over the frame, and leave fewer
+        blocks at the background than the narrow fit does.
+    """
+    kept_wide = int(np.count_nonzero(np.abs(wide) < band))
+    kept_narrow = int(np.count_nonzero(np.abs(narrow) < band))
+    if kept_wide <= kept_narrow:
+        return False
+    d = change.ravel()
+    if d.var() <= 0:
+        return False
+    plane = _poly_design(change.shape)[:, :3]
+    rest = d - plane @ least_squares(plane, d)
+    return bool(1.0 - rest.var() / d.var() >= TILT_SHARE)
 
 
 def _fit_surface(small: np.ndarray, scale_blocks: float, grain_sign: int, otsu_cut: bool) -> np.ndarray:
