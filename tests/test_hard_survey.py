@@ -250,3 +250,14 @@ def test_cli_hard_survey_prints_and_writes(tmp_path, capsys):
     assert set(fig) == {"dark"} and 0 <= fig["dark"]["recall"] <= 1 and fig["dark"]["n_truth"] == 12
     with pytest.raises(SystemExit):
         accuracy.run(["--contrast", "photo"])
+
+
+def test_habit_accuracy_by_size_band_adds_up_to_the_confusion_matrix(frame):
+    # The bands' counts are a partition of the matched grains scored for habit: they add up to the
+    # confusion matrix's total, and for the truth's own labels and habits every grain is right.
+    assert accuracy.size_band(5.0) == "under 20 px" and accuracy.size_band(20.0) == "20-40 px"
+    assert accuracy.size_band(79.9) == "40-80 px" and accuracy.size_band(300.0) == "80 px and over"
+    s = accuracy.score_hard_frame(frame, _perfect(frame))
+    cells = list(s["habit_by_size"].values())
+    assert sum(c[1] for c in cells) == int(s["confusion"].sum()) > 0
+    assert sum(c[0] for c in cells) == int(np.trace(s["confusion"])) == sum(c[1] for c in cells)

@@ -367,6 +367,7 @@ def score_hard_frame(hf, found) -> dict:
 
     conf = np.zeros((len(HABITS), len(HABITS)), int)
     err_cubo, err_poly, ecd_found, ecd_matched = [], [], [], []
+    by_size: dict = {}
     if found is not None and found.grains and "label" in found.grains:
         g = found.grains
         row = {int(v): i for i, v in enumerate(np.asarray(g["label"]))}
@@ -381,6 +382,10 @@ def score_hard_frame(hf, found) -> dict:
                 continue
             spec = f.grains[t - 1]
             conf[HABITS.index(spec.habit), HABITS.index(str(g["habit"][i]))] += 1
+            band = size_band(spec.ecd_nm / f.pixel_size_nm)
+            cell = by_size.setdefault(band, [0, 0])
+            cell[0] += spec.habit == str(g["habit"][i])
+            cell[1] += 1
             if spec.habit in POLYHEDRAL_HABITS and "alpha" in g:
                 est = float(g["alpha"][i])
                 a = float(spec.alpha) if np.isfinite(spec.alpha) else TYPICAL_ALPHA[spec.habit]
@@ -392,6 +397,7 @@ def score_hard_frame(hf, found) -> dict:
         if ecd.size:
             ecd_found = list(ecd[np.isfinite(ecd) & (ecd > 0) & ~edge])
     out["confusion"] = conf
+    out["habit_by_size"] = by_size
     out["alpha_err_cubo"], out["alpha_err_poly"] = err_cubo, err_poly
     keep = [t for t in range(1, len(at)) if t not in t_edge and at[t] > 0]
     out["ecd_truth_nm"] = list(np.sqrt(4 * at[keep] / np.pi) * f.pixel_size_nm)
@@ -403,6 +409,19 @@ def score_hard_frame(hf, found) -> dict:
     out["qc"] = int(bool(codes))
     out["qc_codes"] = {c: 1 for c in codes}
     return out
+
+
+#: Bands of the truth's ECD (px) the habit accuracy is also given for: (label, lower bound), upper bound the next one's.
+SIZE_BANDS = (("under 20 px", 0.0), ("20-40 px", 20.0), ("40-80 px", 40.0), ("80 px and over", 80.0))
+
+
+def size_band(ecd_px: float) -> str:
+    """The :data:`SIZE_BANDS` label of an ECD in pixels."""
+    label = SIZE_BANDS[0][0]
+    for name, low in SIZE_BANDS:
+        if ecd_px >= low:
+            label = name
+    return label
 
 
 def _add(tot: dict, s: dict) -> None:
@@ -464,6 +483,7 @@ def summarise_hard(tot: dict) -> dict:
         "debris": tot.get("debris", [0, 0]),
         "annotations": tot.get("annotations", {}), "extras": tot.get("extras", {}),
         "confusion": conf.tolist() if conf is not None else [],
+        "habit_by_size": {name: tot.get("habit_by_size", {}).get(name, [0, 0]) for name, _ in SIZE_BANDS},
         "qc_frames": tot.get("qc", 0), "qc_codes": tot.get("qc_codes", {}),
         "failed_frames": tot.get("failed", 0),
     }
@@ -557,6 +577,8 @@ def format_hard(kind: str, r: dict) -> str:
         + (f"; alpha MAE cuboctahedra {r['alpha_mae_cubo']:.3f} ({r['n_alpha_cubo']} with alpha "
            f"determined), all polyhedra {r['alpha_mae_poly']:.3f} ({r['n_alpha_poly']}; truth clipped to "
            "[1, 3])" if r["n_alpha_poly"] else ""),
+        "  habit accuracy by the truth's ECD: " + ", ".join(
+            f"{name} {_frac(cell)}" for name, cell in r.get("habit_by_size", {}).items() if cell[1]),
         f"  COV of ECD (sample = the {kind} frames): truth {r['cov_truth_pct']:.1f} %, found "
         f"{r['cov_found_pct']:.1f} %, error {r['cov_err_pp']:+.1f} percentage points (matched grains alone: "
         f"{r['cov_matched_pct']:.1f} %)",
