@@ -53,7 +53,10 @@ Decision
    projections along [100] and [111] are centrally symmetric; a triangle or
    a hexagon with three long and three short edges is not):
    ``tabular_triangle`` where the fitted edge ratio is below
-   ``triangle_edge_ratio``, else ``tabular_hexagon``.
+   ``triangle_edge_ratio`` or a plate of such a ratio fits within ``tolerance``
+   of the best plate (the triangle is the plate family's end member: a
+   hexagonal plate needs evidence of its truncation, as a cuboctahedron does;
+   :func:`triangle_within_tolerance`), else ``tabular_hexagon``.
 6. A hexagonal outline with a flat interior (no facets, and no relief:
    ``relief_chi2``, the evidence against one level plus a plane, below
    ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``. An
@@ -166,7 +169,7 @@ MIN_RESOLVED_PX = 8.0
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.5",
+    version="2.6",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -333,6 +336,57 @@ def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int,
     else:
         d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
     return family_minima(d2, cut)
+
+
+def plate_distances(sig, level: int = 0, spectrum=None) -> tuple[np.ndarray, np.ndarray]:
+    """Least squared signature distance of every member of the plate family (over all rotations).
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature (unit ECD).
+    level : int
+        Corner rounding of the family outlines (:func:`family_signatures`).
+    spectrum : ndarray, shape (n // 2 + 1,), optional
+        ``numpy.fft.rfft(sig)`` where the caller has it.
+
+    Returns
+    -------
+    edge_ratio : ndarray, shape (p,)
+        Short/long edge ratio of each plate (0 triangle ... 1 regular hexagon).
+    d2 : ndarray, shape (p,)
+        Its least squared distance (mean over the signature's angles, unit ECD squared); the
+        least of them is the square of :func:`best_families`' plate distance.
+    """
+    a = np.asarray(sig, float)
+    n = a.size
+    pe, plate, _, _ = family_signatures(n, int(level))
+    cc = np.fft.irfft((np.fft.rfft(a) if spectrum is None else spectrum)[None, :] * plate[1], n, axis=1)
+    return pe, np.maximum(((a @ a + plate[2][:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
+
+
+def triangle_within_tolerance(match, params) -> bool:
+    """Whether a triangular plate (edge ratio below ``triangle_edge_ratio``) explains the outline
+    within ``tolerance`` of the best plate.
+
+    A triangle is the end member of the plate family as the octahedron is of the Wulff bodies:
+    a hexagonal plate needs evidence of its truncation. Blur and thresholding round a triangle's
+    tips, and a tip rounded more than the models' rounding level (a defocused frame) or cut by a
+    neighbour reads as a short edge: the best edge ratio of such a triangle lies above the
+    threshold while the triangles fit within the outline noise.
+
+    Parameters
+    ----------
+    match : engine.OutlineMatch
+        The outline's match (signature, rounding level, misfit unit ``tau``).
+    params : dict
+        Resolved parameters of this step (``triangle_edge_ratio``, ``tolerance``).
+    """
+    pe, d2 = plate_distances(match.signature, match.level, _spectrum_of(match))
+    tri = pe < params["triangle_edge_ratio"]
+    if not tri.any():
+        return False
+    return bool((d2[tri].min() - d2.min()) / match.tau ** 2 < params["tolerance"])
 
 
 def family_minima(d2: np.ndarray, cut) -> tuple:
@@ -622,7 +676,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     plate_gain = ratios[0] ** 2 - ratios[1] ** 2       # how much better the plate outline fits
     if plate_gain > p["plate_margin"]:
         s = _margin(plate_gain, p["plate_margin"], 2.0)
-        if edge_ratio < p["triangle_edge_ratio"]:
+        if edge_ratio < p["triangle_edge_ratio"] or triangle_within_tolerance(match, p):
             return "tabular_triangle", s, cols, fit
         return "tabular_hexagon", s, cols, fit
     relief = fit.relief_chi2 if np.isfinite(fit.relief_chi2) else 0.0
