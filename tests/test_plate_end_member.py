@@ -91,3 +91,36 @@ def test_blurred_truncated_plate_with_a_resolved_short_edge_stays_a_hexagon(e):
     cols = cl.classify_frame(blurred_plate_frame(truncated_triangle(80.0, e), 4.0, "bright"))
     assert cols["habit"][0] == "tabular_hexagon"
     assert cols["plate_edge_ratio"][0] == pytest.approx(e, abs=0.04)
+
+
+# ------------------------------------------------------------ flat hexagons best fitted along [110]
+
+def stretched_hexagon(radius, stretch, rot_deg=0.0):
+    """A hexagon of circumradius ``radius`` (px) stretched by ``stretch`` along one axis, turned 25 deg."""
+    t = np.deg2rad(rot_deg + 60.0 * np.arange(6))
+    p = np.column_stack([radius * np.cos(t) * stretch, radius * np.sin(t)])
+    c, s = math.cos(math.radians(25.0)), math.sin(math.radians(25.0))
+    return p @ np.array([[c, -s], [s, c]]).T
+
+
+@pytest.mark.parametrize("rot_deg,stretch", [(0.0, 1.05), (30.0, 1.1)])
+def test_flat_hexagon_whose_best_wulff_view_is_110_is_a_plate(rot_deg, stretch):
+    # a plate a little out of the regular shape, uniform in transmission: the Wulff outline that fits
+    # it best is a cuboctahedron seen along [110], a body on an edge whose projected thickness falls to
+    # zero at its rim (Beer-Lambert, exp(-mu t)); a flat interior contradicts that view as it does an
+    # octahedron on {111}
+    cols = cl.classify_frame(blurred_plate_frame(stretched_hexagon(34.0, stretch, rot_deg), 1.5, "dark"))
+    assert cols["rest_face"][0] == "110"
+    assert cols["habit"][0] == "tabular_hexagon"
+
+
+@pytest.mark.parametrize("contrast", ["bright", "dark"])
+@pytest.mark.parametrize("alpha,habit", [(1.3, "cube"), (1.8, "cuboctahedron"), (2.6, "cuboctahedron"),
+                                         (3.0, "octahedron")])
+def test_shaded_bodies_seen_along_110_keep_their_habit(contrast, alpha, habit):
+    # the Wulff bodies themselves along [110], with facet shading or thickness contrast: not flat
+    from builders import body_and_rotation, draw_crystal_frame
+
+    body, rot = body_and_rotation(alpha, "110", 40.0)
+    cols = cl.classify_frame(draw_crystal_frame(body, rot, contrast=contrast))
+    assert cols["habit"][0] == habit

@@ -59,7 +59,9 @@ Decision
    :func:`triangle_within_tolerance`), else ``tabular_hexagon``.
 6. A hexagonal outline with a flat interior (no facets, and no relief:
    ``relief_chi2``, the evidence against one level plus a plane, below
-   ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``. An
+   ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``
+   where the best Wulff view is along [111] or [110] (a body seen along
+   [110] lies on an edge: inclined facets on both sides; classify-habit 2.6). An
    octahedron on {111} shows inclined facets in secondary-electron contrast;
    in transmission its projected thickness falls to zero at the rim over two
    thirds of its area, a dome that the round body explains as well as the
@@ -684,9 +686,10 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     if lazy and not faceted and relief < p["facet_chi2_min"]:
         interior = interior()
     if not faceted and relief < p["facet_chi2_min"] and interior is not None \
-            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face == "111":
+            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face in ("111", "110"):
         # a featureless, flat hexagon: a plate (an octahedron shows its facets, or in
-        # transmission the thickness falling towards its rim)
+        # transmission the thickness falling towards its rim; so does any body seen along [110],
+        # which rests on an edge, not a face)
         return "tabular_hexagon", flat_score, cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
