@@ -168,6 +168,12 @@ GRAINHABIT_API = 1
 #: 4 px for their number and size; their habit is left undetermined.
 MIN_RESOLVED_PX = 8.0
 
+#: Best Wulff views whose bodies cannot look flat: an octahedron or truncated body on {111} shows inclined
+#: facets (in transmission a thickness falling to its rim), and so does any body seen along [110], which
+#: rests on an edge. A featureless, flat hexagon the plate family fits is a plate where the best view is one
+#: of these (a view along [100] is a cube's flat top face).
+FLAT_PLATE_VIEWS = ("111", "110")
+
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
@@ -686,7 +692,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     if lazy and not faceted and relief < p["facet_chi2_min"]:
         interior = interior()
     if not faceted and relief < p["facet_chi2_min"] and interior is not None \
-            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face in ("111", "110"):
+            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face in FLAT_PLATE_VIEWS:
         # a featureless, flat hexagon: a plate (an octahedron shows its facets, or in
         # transmission the thickness falling towards its rim; so does any body seen along [110],
         # which rests on an edge, not a face)
