@@ -124,3 +124,23 @@ def test_shaded_bodies_seen_along_110_keep_their_habit(contrast, alpha, habit):
     body, rot = body_and_rotation(alpha, "110", 40.0)
     cols = cl.classify_frame(draw_crystal_frame(body, rot, contrast=contrast))
     assert cols["habit"][0] == habit
+
+
+# ------------------------------------------------------------ cut plates completed by central symmetry
+
+@pytest.mark.parametrize("contrast", ["dark", "bright"])
+@pytest.mark.parametrize("rot_deg,front", [(0.0, "cube"), (0.0, "irregular"), (15.0, "irregular"),
+                                           (45.0, "irregular")])
+def test_cut_hexagonal_plate_is_not_completed_into_a_body_on_an_edge(contrast, rot_deg, front):
+    # a plate with three long and three short edges (ratio 0.7) loses a corner to a grain lying over it;
+    # made centrally symmetric (two-fold completion) it fitted a cuboctahedron seen along [110], a body on
+    # an edge whose flat interior the image rules out; the three-fold completion, a plate, is taken instead
+    # (renderer: synthetic.render, classified on its own labels)
+    from builders import classified_on_truth
+    from grainhabit.plugins.synthetic import render as sy
+
+    a = sy.GrainSpec("tabular_hexagon", 300.0, 330.0, 400.0, rotation_deg=rot_deg, edge_ratio=0.7, aspect=10.0)
+    b = sy.GrainSpec(front, 300.0, 330.0 + 0.8 * 300.0, 400.0, z_order=1, shape_seed=7,
+                     alpha=1.0 if front == "cube" else float("nan"))
+    cols = classified_on_truth([a, b], (180, 260), contrast, 5.0, 3)
+    assert cols["habit"][0] == "tabular_hexagon"

@@ -824,7 +824,10 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
       ``smooth_margin``; a lumpy grain completed by symmetry looks polyhedral);
     - a three-fold completion is a plate with a flat interior (a twinned plate), a six-fold one a
       truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
-      outlines of six-fold symmetry; a cube has no {111} face to rest on).
+      outlines of six-fold symmetry; a cube has no {111} face to rest on);
+    - a two-fold completion is no body on {111} or along [110] (:data:`FLAT_PLATE_VIEWS`) with a
+      flat interior (classify-habit 2.6: a cut plate with three long and three short edges, made
+      centrally symmetric, fitted a cuboctahedron on an edge; its three-fold completion comes next).
 
     The two-fold and three-fold completions are tried in order of area, the clearly smaller one
     (by ``COMPLETION_AREA_MARGIN``) first: a cut square completed three-fold, or a cut triangle
@@ -859,6 +862,13 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
             return None
         if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None
                               and (yield from _flat_steps(contour2, interior2, p))):
+            return None
+        if fold == 2 and res[0] in POLYHEDRAL_HABITS and res[3].face in FLAT_PLATE_VIEWS \
+                and np.isfinite(res[3].relief_chi2) and res[3].relief_chi2 < p["facet_chi2_min"] \
+                and not (res[3].facet_chi2 >= p["facet_chi2_min"]):
+            # a flat interior rules out a body on {111} or on an edge ([110]): the two-fold completion of a
+            # cut plate (three long and three short edges made centrally symmetric) is no such body; the
+            # three-fold completion comes next
             return None
         if fold == 6 and not ((res[0] in ("cuboctahedron", "octahedron") and res[3].face == "111")
                               or res[0] == "tabular_hexagon"):
