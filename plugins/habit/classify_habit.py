@@ -53,10 +53,15 @@ Decision
    projections along [100] and [111] are centrally symmetric; a triangle or
    a hexagon with three long and three short edges is not):
    ``tabular_triangle`` where the fitted edge ratio is below
-   ``triangle_edge_ratio``, else ``tabular_hexagon``.
+   ``triangle_edge_ratio`` or a plate of such a ratio fits within ``tolerance``
+   of the best plate (the triangle is the plate family's end member: a
+   hexagonal plate needs evidence of its truncation, as a cuboctahedron does;
+   :func:`triangle_within_tolerance`), else ``tabular_hexagon``.
 6. A hexagonal outline with a flat interior (no facets, and no relief:
    ``relief_chi2``, the evidence against one level plus a plane, below
-   ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``. An
+   ``facet_chi2_min``) that the plate family fits is ``tabular_hexagon``
+   where the best Wulff view is along [111] or [110] (a body seen along
+   [110] lies on an edge: inclined facets on both sides; classify-habit 2.6). An
    octahedron on {111} shows inclined facets in secondary-electron contrast;
    in transmission its projected thickness falls to zero at the rim over two
    thirds of its area, a dome that the round body explains as well as the
@@ -163,10 +168,16 @@ GRAINHABIT_API = 1
 #: 4 px for their number and size; their habit is left undetermined.
 MIN_RESOLVED_PX = 8.0
 
+#: Best Wulff views whose bodies cannot look flat: an octahedron or truncated body on {111} shows inclined
+#: facets (in transmission a thickness falling to its rim), and so does any body seen along [110], which
+#: rests on an edge. A featureless, flat hexagon the plate family fits is a plate where the best view is one
+#: of these (a view along [100] is a cube's flat top face).
+FLAT_PLATE_VIEWS = ("111", "110")
+
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.5",
+    version="2.6",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -333,6 +344,57 @@ def best_families(sig, level: int = 0, spectrum=None) -> tuple[tuple[float, int,
     else:
         d2 = np.maximum(((a @ a + sq[:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
     return family_minima(d2, cut)
+
+
+def plate_distances(sig, level: int = 0, spectrum=None) -> tuple[np.ndarray, np.ndarray]:
+    """Least squared signature distance of every member of the plate family (over all rotations).
+
+    Parameters
+    ----------
+    sig : ndarray, shape (n,)
+        Observed radial signature (unit ECD).
+    level : int
+        Corner rounding of the family outlines (:func:`family_signatures`).
+    spectrum : ndarray, shape (n // 2 + 1,), optional
+        ``numpy.fft.rfft(sig)`` where the caller has it.
+
+    Returns
+    -------
+    edge_ratio : ndarray, shape (p,)
+        Short/long edge ratio of each plate (0 triangle ... 1 regular hexagon).
+    d2 : ndarray, shape (p,)
+        Its least squared distance (mean over the signature's angles, unit ECD squared); the
+        least of them is the square of :func:`best_families`' plate distance.
+    """
+    a = np.asarray(sig, float)
+    n = a.size
+    pe, plate, _, _ = family_signatures(n, int(level))
+    cc = np.fft.irfft((np.fft.rfft(a) if spectrum is None else spectrum)[None, :] * plate[1], n, axis=1)
+    return pe, np.maximum(((a @ a + plate[2][:, None] - 2.0 * cc) / n).min(axis=1), 0.0)
+
+
+def triangle_within_tolerance(match, params) -> bool:
+    """Whether a triangular plate (edge ratio below ``triangle_edge_ratio``) explains the outline
+    within ``tolerance`` of the best plate.
+
+    A triangle is the end member of the plate family as the octahedron is of the Wulff bodies:
+    a hexagonal plate needs evidence of its truncation. Blur and thresholding round a triangle's
+    tips, and a tip rounded more than the models' rounding level (a defocused frame) or cut by a
+    neighbour reads as a short edge: the best edge ratio of such a triangle lies above the
+    threshold while the triangles fit within the outline noise.
+
+    Parameters
+    ----------
+    match : engine.OutlineMatch
+        The outline's match (signature, rounding level, misfit unit ``tau``).
+    params : dict
+        Resolved parameters of this step (``triangle_edge_ratio``, ``tolerance``).
+    """
+    pe, d2 = plate_distances(match.signature, match.level, _spectrum_of(match))
+    tri = pe < params["triangle_edge_ratio"]
+    if not tri.any():
+        return False
+    return bool((d2[tri].min() - d2.min()) / match.tau ** 2 < params["tolerance"])
 
 
 def family_minima(d2: np.ndarray, cut) -> tuple:
@@ -622,7 +684,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     plate_gain = ratios[0] ** 2 - ratios[1] ** 2       # how much better the plate outline fits
     if plate_gain > p["plate_margin"]:
         s = _margin(plate_gain, p["plate_margin"], 2.0)
-        if edge_ratio < p["triangle_edge_ratio"]:
+        if edge_ratio < p["triangle_edge_ratio"] or triangle_within_tolerance(match, p):
             return "tabular_triangle", s, cols, fit
         return "tabular_hexagon", s, cols, fit
     relief = fit.relief_chi2 if np.isfinite(fit.relief_chi2) else 0.0
@@ -630,9 +692,10 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     if lazy and not faceted and relief < p["facet_chi2_min"]:
         interior = interior()
     if not faceted and relief < p["facet_chi2_min"] and interior is not None \
-            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face == "111":
+            and ratios[1] <= p["irregular_misfit"] and plate_gain > -p["plate_margin"] and fit.face in FLAT_PLATE_VIEWS:
         # a featureless, flat hexagon: a plate (an octahedron shows its facets, or in
-        # transmission the thickness falling towards its rim)
+        # transmission the thickness falling towards its rim; so does any body seen along [110],
+        # which rests on an edge, not a face)
         return "tabular_hexagon", flat_score, cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
@@ -761,7 +824,10 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
       ``smooth_margin``; a lumpy grain completed by symmetry looks polyhedral);
     - a three-fold completion is a plate with a flat interior (a twinned plate), a six-fold one a
       truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
-      outlines of six-fold symmetry; a cube has no {111} face to rest on).
+      outlines of six-fold symmetry; a cube has no {111} face to rest on);
+    - a two-fold completion is no body on {111} or along [110] (:data:`FLAT_PLATE_VIEWS`) with a
+      flat interior (classify-habit 2.6: a cut plate with three long and three short edges, made
+      centrally symmetric, fitted a cuboctahedron on an edge; its three-fold completion comes next).
 
     The two-fold and three-fold completions are tried in order of area, the clearly smaller one
     (by ``COMPLETION_AREA_MARGIN``) first: a cut square completed three-fold, or a cut triangle
@@ -796,6 +862,13 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
             return None
         if fold == 3 and not (res[0] in TABULAR_HABITS and interior2 is not None
                               and (yield from _flat_steps(contour2, interior2, p))):
+            return None
+        if fold == 2 and res[0] in POLYHEDRAL_HABITS and res[3].face in FLAT_PLATE_VIEWS \
+                and np.isfinite(res[3].relief_chi2) and res[3].relief_chi2 < p["facet_chi2_min"] \
+                and not (res[3].facet_chi2 >= p["facet_chi2_min"]):
+            # a flat interior rules out a body on {111} or on an edge ([110]): the two-fold completion of a
+            # cut plate (three long and three short edges made centrally symmetric) is no such body; the
+            # three-fold completion comes next
             return None
         if fold == 6 and not ((res[0] in ("cuboctahedron", "octahedron") and res[3].face == "111")
                               or res[0] == "tabular_hexagon"):
