@@ -41,6 +41,7 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment.disk_morphology import erode_disk
 from grainhabit.plugins.segment.distance import distance_map
+from grainhabit.plugins.segment.overlap_front import complete_front
 
 #: Widest band (px) each side of a cut in which pixels may change part ...
 BAND_PX = 12.0
@@ -168,15 +169,18 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
     out = labels
     moved = 0
     for a, b in pairs:
-        if not levels_differ(level(a), level(b)):
-            continue
         pair_box = tuple(slice(min(u.start, v.start), max(u.stop, v.stop)) for u, v in zip(boxes[a - 1], boxes[b - 1]))
         box = grown_box(pair_box, labels.shape, PAD_PX)
         window = out[box]
         patch = img[box]
         a_mask, b_mask = window == a, window == b
-        res = snap_pair(ndi.gaussian_gradient_magnitude(patch, 1.0), ndi.gaussian_filter(patch, 1.0), a_mask, b_mask,
-                        level(a), level(b))
+        grad = ndi.gaussian_gradient_magnitude(patch, 1.0)
+        # a grain lying partly over the other: the front one's edges carried on across it
+        res = complete_front(grad, a_mask, b_mask)
+        if res is None:
+            if not levels_differ(level(a), level(b)):
+                continue
+            res = snap_pair(grad, ndi.gaussian_filter(patch, 1.0), a_mask, b_mask, level(a), level(b))
         if res is None or not (res[0] != a_mask).any():
             continue
         if out is labels:  # the caller's labels are left as they are
