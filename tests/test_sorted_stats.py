@@ -23,7 +23,8 @@ def _samples(seed):
     with_nan = normal.copy()
     with_nan[17] = np.nan
     signed_zero = np.concatenate([np.zeros(n // 2), -np.zeros(n // 2), rng.normal(size=n)])
-    return [normal, normal[:-1], ties, skewed, with_nan, signed_zero, normal.astype(np.float32),
+    return [normal, normal[:-1], ties, skewed, with_nan, signed_zero, normal.astype(np.float32), normal[:1500],
+            normal[:1501], np.ones(st.SELECT_MIN), np.arange(st.SELECT_MIN + 1, dtype=np.uint8),
             (normal * 4000).astype(np.uint16), (normal * 4000 - 1000).astype(np.int32), normal[:100],
             normal.reshape(1, -1), skewed.reshape(-1, 16), np.full(n, 2.5)]
 
@@ -36,15 +37,24 @@ def _frame():
 
 
 @pytest.mark.parametrize("seed", range(3))
-def test_sorted_median_equals_numpy_median(seed):
+def test_select_median_equals_numpy_median(seed):
     # reference library: numpy.median on the unsorted sample
     for a in _samples(seed) + [_frame()]:
-        want, got = np.median(a), st.sorted_median(a)
+        want, got = np.median(a), st.select_median(a)
         assert got.dtype == want.dtype
         np.testing.assert_array_equal(got, want)
         assert np.signbit(got) == np.signbit(want)
         if a.dtype.kind in "fiu" and not np.isnan(a).any():
             assert st.median(a) == float(want)
+
+
+def test_select_ranks_equal_numpy_sort():
+    # reference library: numpy.sort
+    rng = np.random.default_rng(9)
+    for a in (rng.normal(size=5000), np.round(rng.normal(size=5001) * 4), rng.integers(0, 9, 4003)):
+        ref = np.sort(a)
+        for ranks in ([0], [a.size - 1], [10, 11, 12, 13], [7, 8, 400, 401, 402, 4000], list(range(a.size - 3, a.size))):
+            assert [float(x) for x in st.select_ranks(a, ranks)] == [float(ref[k]) for k in ranks]
 
 
 @pytest.mark.parametrize("seed", range(3))

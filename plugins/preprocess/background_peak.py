@@ -35,7 +35,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.common.image_stats import (
-    SORTED_MIN, SortedSample, clipped_sigma, histogram_mode, sorted_histogram, sorted_histogram_mode, sorted_median,
+    SORTED_MIN, SortedSample, clipped_sigma, histogram_mode, sorted_histogram, sorted_histogram_mode, select_median,
 )
 
 #: Least share of the values below Otsu's threshold for them to be the background.
@@ -70,7 +70,7 @@ def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
     d = d[d > 0]
     if d.size < 10:
         return float("inf")
-    return max(1.4826 * float(sorted_median(d)), 1e-9)  # np.median's number (image_stats.sorted_median)
+    return max(1.4826 * float(select_median(d)), 1e-9)  # np.median's number (image_stats.select_median)
 
 
 def half_width_sigma(r: np.ndarray, centre: float, side: int, guess: float) -> float:

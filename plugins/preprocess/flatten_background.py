@@ -57,7 +57,7 @@ from grainhabit.plugins.preprocess import smoothing_scale
 from grainhabit.plugins.preprocess.plateau_edges import decide_polarity
 from grainhabit.plugins.common.drawn_panels import drawn_panels
 from grainhabit.plugins.common.image_stats import (
-    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, percentiles, regular_subsample, sorted_median,
+    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, percentiles, regular_subsample, select_median,
 )
 
 GRAINHABIT_API = 1
@@ -206,7 +206,7 @@ def noise_model_from_pairs(top: np.ndarray, bottom: np.ndarray, n_bins: int = 16
     top, bottom = np.asarray(top, float), np.asarray(bottom, float)
     d = ((bottom - top) / np.sqrt(2.0)).ravel()
     m = (0.5 * (bottom + top)).ravel()
-    # numpy's quantiles of the sorted copy: the same order statistics, so the same edges (image_stats.sorted_median)
+    # numpy's quantiles of the sorted copy: the same order statistics, so the same edges (image_stats.percentiles)
     edges = np.unique(np.quantile(np.sort(m), np.linspace(0, 1, n_bins + 1)))
     if len(edges) < 3:
         return 0.0, float(np.var(d))
@@ -220,7 +220,7 @@ def noise_model_from_pairs(top: np.ndarray, bottom: np.ndarray, n_bins: int = 16
         dk = d_sorted[bounds[k]:bounds[k + 1]]
         if dk.size < 50:
             continue
-        mad = sorted_median(np.abs(dk - sorted_median(dk)))  # np.median's numbers, from sorted copies
+        mad = select_median(np.abs(dk - select_median(dk)))  # np.median's numbers, by selection
         means.append(np.mean(m_sorted[bounds[k]:bounds[k + 1]]))
         variances.append((1.4826 * mad) ** 2)
     if len(means) < 2:
