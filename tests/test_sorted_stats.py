@@ -155,6 +155,7 @@ def _peak_cases():
                                     seed=seed).image, float)
         out.append((img, None))
         out.append((img, rng.random(img.shape) > 0.2))
+        out.append((img[100:164, 30:94], None))  # a block of the surface fit's size
     # grains covering most of the frame: their mode above Otsu's threshold (the caller's own steps)
     packed = rng.normal(0, 0.02, (200, 200))
     packed[20:190, 15:195] += 1.0

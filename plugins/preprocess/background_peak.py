@@ -35,7 +35,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.common.image_stats import (
-    SORTED_MIN, SortedSample, clipped_sigma, histogram_mode, sorted_histogram, sorted_histogram_mode, select_median,
+    SortedSample, clipped_sigma, histogram_mode, select_median, sorted_histogram, sorted_histogram_mode,
 )
 
 #: Least share of the values below Otsu's threshold for them to be the background.
@@ -44,6 +44,9 @@ MIN_BACKGROUND_FRACTION = 0.02
 MIN_SPREAD = 0.5
 #: Least distance, in noise sds of the lower peak, between the grains' mode and the lower peak's mode.
 MIN_SEPARATION = 4.0
+#: From this many values on, background_peak takes its statistics from one sorted copy (_sorted_background_peak):
+#: the same numbers, and fewer passes; the 64 x 64 px blocks of the surface fit too (8.7 -> 5.0 ms a frame).
+SORTED_MIN = 1024
 
 
 def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
