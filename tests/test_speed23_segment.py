@@ -1,8 +1,9 @@
-"""Issue 19 (branch speed23): tiling.renumber_raster's shortcut for labels already in raster order.
+"""Issue 19 (branch speed23): segmentation kernels against the forms they replaced.
 
-Reference: the lookup-table form it replaces there (``lut[labels]``, written out here), and
-scikit-image's ``measure.label``, whose numbering (row-major order of each component's first pixel)
-the function follows.
+tiling.renumber_raster's shortcut for labels already in raster order, against the lookup-table form
+(``lut[labels]``, written out here) and scikit-image's ``measure.label``, whose numbering (row-major
+order of each component's first pixel) the function follows; packed.block_average of integer frames
+against its reshape-and-sum form.
 """
 
 from __future__ import annotations
@@ -45,3 +46,19 @@ def test_renumber_raster_equals_lookup_and_skimage_order():
             # skimage numbers the same components the same way
             np.testing.assert_array_equal(got, sk_label(lab > 0, connectivity=1))
     assert shortcut >= 3
+
+
+def test_block_average_of_integers_equals_reshape_sums():
+    # reference: the reshape-and-sum form (int64 accumulators) packed.block_average used before
+    from grainhabit.plugins.segment.packed import block_average
+
+    rng = np.random.default_rng(5)
+    for dtype in (np.uint16, np.int16, np.uint8, np.int32, bool):
+        for shape, f in (((64, 48), 4), ((101, 77), 3), ((40, 40), 1), ((300, 128), 16)):
+            a = (rng.integers(-2**15, 2**15, size=shape) if dtype is not bool else rng.random(shape) > 0.5).astype(dtype)
+            rows, cols = (shape[0] // f) * f, (shape[1] // f) * f
+            s = a[:rows, :cols].reshape(rows // f, f, cols).sum(axis=1, dtype=np.int64)
+            want = s.reshape(rows // f, cols // f, f).sum(axis=2) / float(f * f)
+            got = block_average(a, f)
+            assert got.dtype == want.dtype
+            np.testing.assert_array_equal(got, want)
