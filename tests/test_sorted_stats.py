@@ -1,4 +1,4 @@
-"""Issue 19 (branch speed23): robust statistics taken on sorted copies, against numpy's own functions.
+"""Issue 19 (branch speed23): robust statistics by selection and from sorted copies, against numpy's own functions.
 
 References: ``numpy.median``, ``numpy.percentile``, ``numpy.quantile`` and ``numpy.histogram`` on the
 samples as they are, and the previous forms of the project's estimators (written out here), on invented
