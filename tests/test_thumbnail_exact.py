@@ -43,10 +43,31 @@ def test_integer_block_mean_equals_numpy_float32_mean(dtype):
             np.testing.assert_array_equal(got, want)
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_block_mean_of_whole_float_values_equals_numpy_float32_mean(dtype):
+    # what the readers give: float copies of stored 16-bit integers
+    rng = np.random.default_rng(3)
+    for shape, f in (((2048, 2048), 8), ((100, 75), 3), ((160, 160), 16), ((64, 64), 1)):
+        raw = rng.integers(0, 65536, size=shape).astype(dtype)
+        raw[:3, :5] = 65535
+        r, c = (shape[0] // f) * f, (shape[1] // f) * f
+        want = raw.astype(np.float32)[:r, :c].reshape(r // f, f, c // f, f).mean(axis=(1, 3))
+        got = task._integer_block_mean(raw, f)
+        assert got is not None
+        np.testing.assert_array_equal(got, want)
+
+
 def test_integer_block_mean_declines_where_float32_sums_could_round():
     assert task._integer_block_mean(np.zeros((64, 64), np.uint16), 17) is None
-    assert task._integer_block_mean(np.zeros((64, 64), np.float32), 2) is None
     assert task._integer_block_mean(np.zeros((64, 64), np.uint32), 2) is None
+    assert task._integer_block_mean(np.full((64, 64), 65535.0, np.float32), 17) is None
+    frac = np.zeros((64, 64), np.float32)
+    frac[5, 5] = 0.5
+    assert task._integer_block_mean(frac, 2) is None
+    for bad in (np.nan, np.inf, -np.inf, 2.0 ** 40):
+        b = np.zeros((64, 64), np.float32)
+        b[7, 3] = bad
+        assert task._integer_block_mean(b, 2) is None
 
 
 def test_thumbnail_equals_previous_form():
@@ -54,6 +75,7 @@ def test_thumbnail_equals_previous_form():
     frames = [rng.integers(0, 65536, size=(2048, 2048)).astype(np.uint16),
               rng.integers(0, 256, size=(300, 500)).astype(np.uint8),
               rng.normal(size=(200, 300)).astype(np.float32), rng.integers(0, 65536, size=(5000, 90)).astype(np.uint16),
+              rng.integers(0, 65536, size=(2048, 2048)).astype(np.float32), np.round(rng.normal(size=(90, 90)) * 100),
               np.zeros((10, 10), np.uint16)]
     for raw in frames:
         got, want = task.thumbnail(raw), _reference_thumbnail(raw)
