@@ -92,7 +92,7 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> 
         smooth = ndi.gaussian_filter(patch, SMOOTH_PX)
         # half the level the grain has on the smoothed image (a small grain's middle is lowered by the smoothing)
         free = (window == 0) | own
-        above = (smooth > 0.5 * float(np.median(smooth[inner]))) & free & dilate_disk(own, REACH_PX)
+        above = (smooth > 0.5 * float(select_median(smooth[inner]))) & free & dilate_disk(own, REACH_PX)
         parts, count = ndi.label(above)
         if count == 0:
             continue
