@@ -23,3 +23,19 @@ def test_freed_frame_sized_array_is_reused_without_new_page_faults():
     # a fresh mapping would fault in 16384 small pages (or 32 huge ones with their zeroing); a reused heap
     # chunk faults in (almost) none
     assert faults < 16
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="numpy advises huge pages on Linux only")
+def test_numpy_huge_page_advice_is_off_after_keep_freed_memory(monkeypatch):
+    monkeypatch.delenv("NUMPY_MADVISE_HUGEPAGE", raising=False)
+    keep_freed_memory()
+    from grainhabit.executors import _no_hugepage_advice
+
+    assert _no_hugepage_advice() is True
+    try:
+        from numpy._core.multiarray import _get_madvise_hugepage
+    except ImportError:  # pragma: no cover
+        pytest.skip("numpy without _get_madvise_hugepage")
+    assert _get_madvise_hugepage() is False
+    monkeypatch.setenv("NUMPY_MADVISE_HUGEPAGE", "1")
+    assert _no_hugepage_advice() is False  # the environment's choice stands

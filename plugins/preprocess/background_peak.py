@@ -34,7 +34,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.common.image_stats import clipped_sigma, histogram_mode
+from grainhabit.plugins.common.image_stats import (
+    SortedSample, clipped_sigma, histogram_mode, select_median, sorted_histogram, sorted_histogram_mode,
+)
 
 #: Least share of the values below Otsu's threshold for them to be the background.
 MIN_BACKGROUND_FRACTION = 0.02
@@ -42,6 +44,9 @@ MIN_BACKGROUND_FRACTION = 0.02
 MIN_SPREAD = 0.5
 #: Least distance, in noise sds of the lower peak, between the grains' mode and the lower peak's mode.
 MIN_SEPARATION = 4.0
+#: From this many values on, background_peak takes its statistics from one sorted copy (_sorted_background_peak):
+#: the same numbers, and fewer passes; the 64 x 64 px blocks of the surface fit too (8.7 -> 5.0 ms a frame).
+SORTED_MIN = 1024
 
 
 def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
@@ -68,7 +73,7 @@ def one_sided_sigma(r: np.ndarray, centre: float, side: int) -> float:
     d = d[d > 0]
     if d.size < 10:
         return float("inf")
-    return max(1.4826 * float(np.median(d)), 1e-9)
+    return max(1.4826 * float(select_median(d)), 1e-9)  # np.median's number (image_stats.select_median)
 
 
 def half_width_sigma(r: np.ndarray, centre: float, side: int, guess: float) -> float:
@@ -104,10 +109,16 @@ def half_width_sigma(r: np.ndarray, centre: float, side: int, guess: float) -> f
     if not np.isfinite(guess) or guess <= 0:
         return float("inf")
     near = v[np.abs(v - centre) <= 4.0 * guess]
+    return _half_width_of(near, centre, side, guess, lambda a, bins, rng: np.histogram(a, bins=bins, range=rng))
+
+
+def _half_width_of(near, centre, side, guess, histogram) -> float:
+    """:func:`half_width_sigma` from the values within 4 ``guess`` of the centre; ``histogram(values, bins,
+    range)`` gives numpy's counts and edges (``numpy.histogram``, or :func:`sorted_histogram` of sorted values)."""
     if near.size < 64:
         return float("inf")
     bins = int(np.clip(np.sqrt(near.size), 16, 256))
-    hist, edges = np.histogram(near, bins=bins, range=(centre - 4.0 * guess, centre + 4.0 * guess))
+    hist, edges = histogram(near, bins, (centre - 4.0 * guess, centre + 4.0 * guess))
     hist = ndi.gaussian_filter1d(hist.astype(float), 1.0)
     width = edges[1] - edges[0]
     k0 = int(np.clip((centre - edges[0]) // width, 0, bins - 1))
@@ -166,6 +177,10 @@ def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | Non
     arr = np.asarray(values, float)
     ok = np.ones(arr.shape, bool) if valid is None else np.asarray(valid, bool)
     v = arr[ok]
+    if v.size >= SORTED_MIN and grain_sign in (-1, 0, 1) and np.isfinite(v).all():
+        found = _sorted_background_peak(v, grain_sign, half_width)
+        if found is not None:
+            return found
     m = histogram_mode(v)
     if grain_sign == 0:
         return m, clipped_sigma(v, m)
@@ -195,6 +210,62 @@ def background_peak(values: np.ndarray, grain_sign: int, valid: np.ndarray | Non
         s = signed[ok]
     free = peak_sigma(s, ms, -1) if half_width else one_sided_sigma(s, ms, -1)
     return grain_sign * ms, min(clipped_sigma(s, ms), free)
+
+
+def _sorted_background_peak(v: np.ndarray, grain_sign: int, half_width: bool) -> tuple[float, float] | None:
+    """:func:`background_peak` of a large sample whose background mode lies below Otsu's threshold, or None.
+
+    The same numbers as the steps of :func:`background_peak` (tests/test_sorted_stats.py), from one sorted
+    copy of the values (:class:`~grainhabit.plugins.common.image_stats.SortedSample`): the main mode's
+    percentiles and histograms, Otsu's histogram, the medians of the one-sided and absolute deviations and
+    the half-width histogram are order statistics, read off the sorted copy instead of a partition or a
+    pass over all values each (two 2048 px frames' levels: about 45 -> 20 ms). Only the clipped sd's means
+    stay on the values in their own order. None when the grains' mode lies above Otsu's threshold (a lower
+    peak may be the background): the caller then takes its own steps.
+    """
+    srt = np.sort(v)
+    m = sorted_histogram_mode(SortedSample(v, srt))
+    if grain_sign == 0:
+        return m, clipped_sigma(v, m, mad=SortedSample(v, srt).abs_dev_median(m))
+    # grain_sign * v and its sorted copy (negation is exact and reverses the order)
+    s, ss = (v, srt) if grain_sign == 1 else (-v, np.negative(srt[::-1]))
+    sample = SortedSample(s, ss)
+    ms = grain_sign * m
+    t = _sorted_otsu(s, ss)
+    if not ms <= t:
+        return None
+    free = _sorted_one_sided_sigma(ss, ms)
+    if half_width:
+        free = min(free, _sorted_half_width_sigma(sample, ms, free))
+    return grain_sign * ms, min(clipped_sigma(s, ms, mad=sample.abs_dev_median(ms)), free)
+
+
+def _sorted_otsu(s: np.ndarray, ss: np.ndarray) -> float:
+    """:func:`otsu_of` of ``s``, sorted ``ss``: skimage's threshold from the same 256-bin histogram."""
+    from skimage.filters import threshold_otsu
+
+    if float(ss[0]) == float(ss[-1]):
+        return float(s[0])
+    counts, edges = sorted_histogram(ss, 256)  # skimage: numpy.histogram over (min, max)
+    return float(threshold_otsu(hist=(counts, (edges[:-1] + edges[1:]) / 2.0)))
+
+
+def _sorted_one_sided_sigma(ss: np.ndarray, centre: float) -> float:
+    """:func:`one_sided_sigma` ``(s, centre, -1)`` of sorted values ``ss``."""
+    p = int(np.searchsorted(ss, centre, side="left"))  # (x - centre) * -1 > 0 exactly for x < centre
+    if p < 10:
+        return float("inf")
+    # the deviations (x - centre) * -1 of those values, ascending, are the first p sorted values reversed
+    mid = np.array([(ss[p - 1 - k] - centre) * -1 for k in sorted({(p - 1) // 2, p // 2})])
+    return max(1.4826 * float(np.median(mid)), 1e-9)
+
+
+def _sorted_half_width_sigma(sample: SortedSample, centre: float, guess: float) -> float:
+    """:func:`half_width_sigma` ``(s, centre, -1, guess)`` of a sorted sample."""
+    if not np.isfinite(guess) or guess <= 0:
+        return float("inf")
+    near = sample.within(centre, 4.0 * guess)
+    return _half_width_of(near, centre, -1, guess, sorted_histogram)
 
 
 def spread_out(s: np.ndarray, valid: np.ndarray, centre: float, sigma: float) -> bool:

@@ -57,7 +57,7 @@ from grainhabit.plugins.preprocess import smoothing_scale
 from grainhabit.plugins.preprocess.plateau_edges import decide_polarity
 from grainhabit.plugins.common.drawn_panels import drawn_panels
 from grainhabit.plugins.common.image_stats import (
-    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, regular_subsample,
+    CLIP_SIGMAS, LEVEL_SAMPLES, clipped_sigma, percentiles, regular_subsample, select_median,
 )
 
 GRAINHABIT_API = 1
@@ -209,7 +209,8 @@ def noise_model_from_pairs(top: np.ndarray, bottom: np.ndarray, n_bins: int = 16
     top, bottom = np.asarray(top, float), np.asarray(bottom, float)
     d = ((bottom - top) / np.sqrt(2.0)).ravel()
     m = (0.5 * (bottom + top)).ravel()
-    edges = np.unique(np.quantile(m, np.linspace(0, 1, n_bins + 1)))
+    # numpy's quantiles of the sorted copy: the same order statistics, so the same edges (image_stats.percentiles)
+    edges = np.unique(np.quantile(np.sort(m), np.linspace(0, 1, n_bins + 1)))
     if len(edges) < 3:
         return 0.0, float(np.var(d))
     idx = quantile_bins(edges, m)
@@ -222,7 +223,7 @@ def noise_model_from_pairs(top: np.ndarray, bottom: np.ndarray, n_bins: int = 16
         dk = d_sorted[bounds[k]:bounds[k + 1]]
         if dk.size < 50:
             continue
-        mad = np.median(np.abs(dk - np.median(dk)))
+        mad = select_median(np.abs(dk - select_median(dk)))  # np.median's numbers, by selection
         means.append(np.mean(m_sorted[bounds[k]:bounds[k + 1]]))
         variances.append((1.4826 * mad) ** 2)
     if len(means) < 2:
@@ -818,9 +819,9 @@ def raw_levels(regions, shape: tuple) -> dict:
             bottom[r0 // 2:(r1 + 1) // 2, g] = block[1::2, cols][: (r1 - r0) // 2]
     # the output does not depend on the affine scaling (see _normalised): a sparser grid serves, unless
     # it sees one value only (a frame almost all background), when the whole sample decides
-    lo, hi = np.percentile(regular_subsample(raw_s, LEVEL_SAMPLES), [0.1, 99.9])
+    lo, hi = percentiles(regular_subsample(raw_s, LEVEL_SAMPLES), [0.1, 99.9])  # np.percentile's numbers
     if hi <= lo:
-        lo, hi = np.percentile(raw_s, [0.1, 99.9])
+        lo, hi = percentiles(raw_s, [0.1, 99.9])
     span = float(hi - lo)
     if span <= 0:
         lo, span = float(lo), 0.0
@@ -958,7 +959,7 @@ def frame_levels(regions, shape: tuple, pixel_size_nm: float, background_nm: flo
         # a flat drawn box (behind a panel letter, a data bar) is no grain: it must not set the grain level
         grain_side &= ~panels
     fg = r[grain_side]
-    level = float(np.percentile(fg, 95)) if fg.size >= 20 else 0.0
+    level = float(percentiles(fg, [95])[0]) if fg.size >= 20 else 0.0  # np.percentile(fg, 95)
     # how far the grains stand above the background's noise at this smoothing (smoothing_scale)
     lv["grain_snr"] = level / sd if sd > 0 else float("inf")
     # and on how much of the frame they show at segmentation's noise threshold (SEEN_SIGMAS is above

@@ -30,6 +30,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.common.image_stats import select_median
 from grainhabit.plugins.segment.cut_edges import grown_box
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.foreground import fill_holes
@@ -85,13 +86,13 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> 
         if np.count_nonzero(inner) < 20:
             continue
         patch = img[grown]
-        level = float(np.median(patch[inner]))
+        level = float(select_median(patch[inner]))  # np.median's number, by selection
         if level <= 0 or level > FAINT_SNR * noise_sd or not erode_disk(own, MIN_RADIUS_PX, 0).any():
             continue
         smooth = ndi.gaussian_filter(patch, SMOOTH_PX)
         # half the level the grain has on the smoothed image (a small grain's middle is lowered by the smoothing)
         free = (window == 0) | own
-        above = (smooth > 0.5 * float(np.median(smooth[inner]))) & free & dilate_disk(own, REACH_PX)
+        above = (smooth > 0.5 * float(select_median(smooth[inner]))) & free & dilate_disk(own, REACH_PX)
         parts, count = ndi.label(above)
         if count == 0:
             continue

@@ -109,7 +109,12 @@ def renumber_raster(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     first = first_pixels(lab)
     present = np.flatnonzero(first >= 0) + 1
     old_ids = present[np.argsort(first[present - 1], kind="stable")]
-    lut = np.zeros(int(lab.max()) + 1 if lab.size else 1, np.int32)
+    n = int(lab.max()) if lab.size else 0
+    if len(old_ids) == n and n and old_ids[0] == 1 and bool(np.all(np.diff(old_ids) == 1)):
+        # already 1..n in raster order (a refinement moved no first pixel past another's): lut[lab] is the
+        # identity, so a copy of the labels gives its values without the lookup of every pixel
+        return np.array(lab, dtype=np.int32), old_ids
+    lut = np.zeros(n + 1, np.int32)
     lut[old_ids] = np.arange(1, len(old_ids) + 1, dtype=np.int32)
     return lut[lab], old_ids
 
