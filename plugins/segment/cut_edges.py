@@ -174,13 +174,20 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
         window = out[box]
         patch = img[box]
         a_mask, b_mask = window == a, window == b
-        grad = ndi.gaussian_gradient_magnitude(patch, 1.0)
+        grad = []
+
+        def gradient():
+            # asked for only where a move is looked at (the Gaussian derivatives of the pair's box)
+            if not grad:
+                grad.append(ndi.gaussian_gradient_magnitude(patch, 1.0))
+            return grad[0]
+
         # a grain lying partly over the other: the front one's edges carried on across it
-        res = complete_front(grad, a_mask, b_mask)
+        res = complete_front(gradient, a_mask, b_mask)
         if res is None:
             if not levels_differ(level(a), level(b)):
                 continue
-            res = snap_pair(grad, ndi.gaussian_filter(patch, 1.0), a_mask, b_mask, level(a), level(b))
+            res = snap_pair(gradient(), ndi.gaussian_filter(patch, 1.0), a_mask, b_mask, level(a), level(b))
         if res is None or not (res[0] != a_mask).any():
             continue
         if out is labels:  # the caller's labels are left as they are

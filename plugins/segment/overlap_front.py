@@ -28,6 +28,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
+from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+
 #: Pixels of the front grain's outline within this distance (px) of a notch give the edge's direction (the
 #: longest of these reaches over which they lie along a line) ...
 EDGE_REACHES_PX = (10.0, 7.0, 5.0)
@@ -61,15 +63,17 @@ def notch_points(a_mask: np.ndarray, b_mask: np.ndarray) -> list[np.ndarray] | N
     return [np.array(c) for c in ndi.center_of_mass(ends, lab, [1, 2])]
 
 
-def edge_direction(front: np.ndarray, union: np.ndarray, point: np.ndarray) -> np.ndarray | None:
+def edge_direction(front: np.ndarray, union: np.ndarray, point: np.ndarray,
+                   outer: np.ndarray | None = None) -> np.ndarray | None:
     """Unit direction of the front grain's outer edge arriving at a notch, pointing past it.
 
     A line is fitted (principal axis) to the front grain's pixels next to the background between
     :data:`EDGE_SKIP_PX` and the longest of :data:`EDGE_REACHES_PX` of the notch over which they lie along a line (the
     smaller axis at most a quarter of the larger); None where none does or fewer than 3 pixels are there.
     """
-    rim = front & ndi.binary_dilation(~union, _EIGHT)
-    rr, cc = np.nonzero(rim)
+    if outer is None:
+        outer = union & ndi.binary_dilation(~union, _EIGHT)
+    rr, cc = np.nonzero(front & outer)
     d = np.hypot(rr - point[0], cc - point[1])
     for reach in EDGE_REACHES_PX:
         # the longest reach whose pixels lie along one line (a short edge ends in a corner within reach)
@@ -103,20 +107,19 @@ def _line_gradient(grad: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray) -> 
 
 
 def _solidity(mask: np.ndarray) -> float:
-    from skimage.morphology import convex_hull_image
+    """Pixels of ``mask`` over those of its convex hull (scikit-image's convex_hull_image, the same pixels:
+    hull_fill.convex_hull_mask)."""
+    return float(mask.sum()) / max(float(convex_hull_mask(mask).sum()), 1.0)
 
-    hull = convex_hull_image(mask)
-    return float(mask.sum()) / max(float(hull.sum()), 1.0)
 
-
-def complete_front(grad: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray
-                   ) -> tuple[np.ndarray, np.ndarray] | None:
+def complete_front(grad, a_mask: np.ndarray, b_mask: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     """Two touching parts with the front one's edges carried on across the other, or None.
 
     Parameters
     ----------
-    grad : ndarray of float, shape (h, w)
-        Gradient magnitude of the image over the pair's box.
+    grad : ndarray of float, shape (h, w), or callable
+        Gradient magnitude of the image over the pair's box, or a function of no arguments giving it
+        (asked only where a hypothesis passes the shape tests).
     a_mask, b_mask : ndarray of bool, shape (h, w)
         The two parts (disjoint, touching).
 
@@ -131,10 +134,11 @@ def complete_front(grad: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray
     if ends is None:
         return None
     union = a_mask | b_mask
-    straight = _line_gradient(grad, a_mask, b_mask)
+    outer = union & ndi.binary_dilation(~union, _EIGHT)  # the pair's pixels next to the background
+    straight = None
     best, best_gain = None, EDGE_GAIN
     for front, back in ((a_mask, b_mask), (b_mask, a_mask)):
-        dirs = [edge_direction(front, union, p) for p in ends]
+        dirs = [edge_direction(front, union, p, outer) for p in ends]
         if dirs[0] is None or dirs[1] is None:
             continue
         apex = ray_meet(ends[0], dirs[0], ends[1], dirs[1])
@@ -157,6 +161,10 @@ def complete_front(grad: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray
         new_front = front | taken
         if _solidity(new_front) < FRONT_SOLIDITY:
             continue
+        if callable(grad):
+            grad = grad()
+        if straight is None:
+            straight = _line_gradient(grad, a_mask, b_mask)
         gain = _line_gradient(grad, new_front, new_back) / max(straight, 1e-12)
         if gain >= best_gain:
             best_gain = gain
