@@ -42,6 +42,10 @@ from scipy import ndimage as ndi
 
 #: Default smallest area, as a fraction of the frame's area-weighted median grain area.
 MIN_AREA_SHARE = 0.02
+#: An object of at most :data:`SPECK_AREA_PX` (a disc of 6 px ECD: no shape is told at that size) goes already
+#: under this share of the typical area (with ``share`` 0 nothing is dropped).
+SPECK_SHARE = 0.05
+SPECK_AREA_PX = np.pi / 4.0 * 6.0 ** 2
 #: An object touching the frame's edge over this many times its depth from it is no reference for the typical area.
 EDGE_STRIP_RATIO = 2.0
 
@@ -91,13 +95,17 @@ def below_population(areas: np.ndarray, share: float = MIN_AREA_SHARE, reference
     Returns
     -------
     ndarray of bool, shape (n,)
-        True for the objects to drop.
+        True for the objects to drop: under ``share`` of the typical area, or under
+        :data:`SPECK_SHARE` of it and :data:`SPECK_AREA_PX` (specks at the resolution floor in a frame
+        of larger grains; where the grains themselves are that small, the typical area is small too).
     """
     areas = np.asarray(areas, np.float64)
     if share <= 0 or areas.size == 0:
         return np.zeros(areas.shape, bool)
     ref = areas if reference is None or not np.any(reference) else areas[np.asarray(reference, bool)]
-    return areas < share * typical_area(ref)
+    typical = typical_area(ref)
+    # specks at the resolution floor go at a larger share (see SPECK_SHARE)
+    return (areas < share * typical) | ((areas < SPECK_AREA_PX) & (areas < SPECK_SHARE * typical))
 
 
 def edge_strips(boxes: list, shape: tuple) -> np.ndarray:

@@ -99,7 +99,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.23",
+    version="2.24",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -129,8 +129,9 @@ STEP = StepInfo(
                   "their surroundings, the more the smaller they are (specks.py)."),
         Param("min_area_share", float, population.MIN_AREA_SHARE, low=0.0, high=1.0,
               doc="Objects smaller than this fraction of the frame's typical grain area (the area-weighted median: "
-                  "half the grain area lies in larger objects) are dropped as debris or substrate texture (0: off; "
-                  "set 0 for a field that holds grains over 7 times apart in diameter)."),
+                  "half the grain area lies in larger objects) are dropped as debris or substrate texture, and "
+                  "specks under 6 px ECD already under 5 % of it (0: off, both; set 0 for a field that holds grains "
+                  "over 7 times apart in diameter)."),
         Param("min_peak", float, 0.3, low=0.0,
               doc="Objects whose brightest pixel stays below this (image units: background 0, typical grain 1) "
                   "are background texture, not grains."),
