@@ -223,13 +223,13 @@ def _sorted_background_peak(v: np.ndarray, grain_sign: int, half_width: bool) ->
     stay on the values in their own order. None when the grains' mode lies above Otsu's threshold (a lower
     peak may be the background): the caller then takes its own steps.
     """
-    srt = np.sort(v)
-    m = sorted_histogram_mode(SortedSample(v, srt))
+    whole = SortedSample(v)  # the values and one sorted copy, for every order statistic below
+    m = sorted_histogram_mode(whole)
     if grain_sign == 0:
-        return m, clipped_sigma(v, m, mad=SortedSample(v, srt).abs_dev_median(m))
+        return m, clipped_sigma(v, m, mad=whole.abs_dev_median(m))
     # grain_sign * v and its sorted copy (negation is exact and reverses the order)
-    s, ss = (v, srt) if grain_sign == 1 else (-v, np.negative(srt[::-1]))
-    sample = SortedSample(s, ss)
+    sample = whole if grain_sign == 1 else SortedSample(-v, np.negative(whole.srt[::-1]))
+    s, ss = sample.values, sample.srt
     ms = grain_sign * m
     t = _sorted_otsu(s, ss)
     if not ms <= t:

@@ -36,6 +36,8 @@ References
 
 from __future__ import annotations
 
+from functools import cache, partial
+
 import numpy as np
 from scipy import ndimage as ndi
 
@@ -174,14 +176,8 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
         window = out[box]
         patch = img[box]
         a_mask, b_mask = window == a, window == b
-        grad = []
-
-        def gradient():
-            # asked for only where a move is looked at (the Gaussian derivatives of the pair's box)
-            if not grad:
-                grad.append(ndi.gaussian_gradient_magnitude(patch, 1.0))
-            return grad[0]
-
+        # the Gaussian derivatives of the pair's box, taken only where a move is looked at
+        gradient = cache(partial(ndi.gaussian_gradient_magnitude, patch, 1.0))
         # a grain lying partly over the other: the front one's edges carried on across it
         res = complete_front(gradient, a_mask, b_mask)
         if res is None:

@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage as ndi
 
-from grainhabit.plugins.segment.hull_fill import convex_hull_mask
+from grainhabit.plugins.segment.specks import solidity
 
 #: Pixels of the front grain's outline within this distance (px) of a notch give the edge's direction (the
 #: longest of these reaches over which they lie along a line) ...
@@ -106,12 +106,6 @@ def _line_gradient(grad: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray) -> 
     return float(grad[line].mean()) if line.any() else 0.0
 
 
-def _solidity(mask: np.ndarray) -> float:
-    """Pixels of ``mask`` over those of its convex hull (scikit-image's convex_hull_image, the same pixels:
-    hull_fill.convex_hull_mask)."""
-    return float(mask.sum()) / max(float(convex_hull_mask(mask).sum()), 1.0)
-
-
 def complete_front(grad, a_mask: np.ndarray, b_mask: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     """Two touching parts with the front one's edges carried on across the other, or None.
 
@@ -159,7 +153,7 @@ def complete_front(grad, a_mask: np.ndarray, b_mask: np.ndarray) -> tuple[np.nda
             if sizes.max() < 0.95 * new_back.sum():
                 continue
         new_front = front | taken
-        if _solidity(new_front) < FRONT_SOLIDITY:
+        if solidity(new_front) < FRONT_SOLIDITY:
             continue
         if callable(grad):
             grad = grad()
