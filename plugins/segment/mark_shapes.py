@@ -334,12 +334,78 @@ def text_rows(labels: np.ndarray, drawn: np.ndarray, boxes: list | None = None) 
                         and alone_in_band(group, top, bottom, left, right))):
                 drop.update(int(ids[i]) for i in group)
                 # pieces of glyphs (a split letter, a dot) inside the line's band go with it
-                g = np.asarray(group)
-                t0, t1 = top[g].min() - TEXT_BASELINE_PX, bottom[g].max() + TEXT_BASELINE_PX
-                c0, c1 = left[g].min() - height[a], right[g].max() + height[a]
-                inside = (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
-                drop.update(int(k) for k in ids[inside])
+                drop.update(int(k) for k in ids[in_band(group, height[a], top, bottom, left, right)])
     return np.asarray(sorted(drop), np.int64)
+
+
+def in_band(group: list, reach: float, top: np.ndarray, bottom: np.ndarray, left: np.ndarray,
+            right: np.ndarray) -> np.ndarray:
+    """The boxes lying wholly inside the band of a line of text.
+
+    Parameters
+    ----------
+    group : list of int
+        Indices of the line's boxes.
+    reach : float
+        How far (px) the band runs on past the line's first and last box: one line height.
+    top, bottom, left, right : ndarray of int, shape (n,)
+        All boxes (:func:`box_table`), pixel rows and columns, bottom and right exclusive.
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+        Inside the rows of the line (widened by :data:`TEXT_BASELINE_PX`) and its columns widened by
+        ``reach``: pieces of glyphs the splitter cut off (a stroke, the dot of an "i").
+    """
+    g = np.asarray(group)
+    t0, t1 = top[g].min() - TEXT_BASELINE_PX, bottom[g].max() + TEXT_BASELINE_PX
+    c0, c1 = left[g].min() - reach, right[g].max() + reach
+    return (top >= t0) & (bottom <= t1) & (left >= c0) & (right <= c1)
+
+
+def line_pieces(labels: np.ndarray, glyphs: np.ndarray, boxes: list | None = None) -> np.ndarray:
+    """Kept objects inside the band of a line of glyphs already dropped: the pieces of its letters.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Objects 1..n: the kept ones and the glyphs.
+    glyphs : ndarray of int
+        The labels dropped as glyphs, bars or text.
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)``, when the caller has it already.
+
+    Returns
+    -------
+    ndarray of int
+        Kept labels to drop.
+
+    Notes
+    -----
+    A line is a chain of two or more dropped glyphs ending on one baseline
+    (within ``TEXT_BASELINE_PX + 1``) with horizontal gaps under 1.5 of their
+    height, the layout of printed text (common practice); a kept object
+    wholly inside its band (:func:`in_band`) is a piece of one of its glyphs
+    that the splitter cut off and that looked like a grain alone (the upper
+    bowl of a "5", the end of an "m"). Where the ink or shape tests dropped
+    the rest of a caption by then, its pieces went one by one before.
+    """
+    glyphs = np.asarray(glyphs, np.int64)
+    if glyphs.size < 2:
+        return np.zeros(0, np.int64)
+    items, ids, top, bottom, left, right = box_table(labels, boxes)
+    is_glyph = np.isin(ids, glyphs)
+    if is_glyph.sum() < 2 or is_glyph.all():
+        return np.zeros(0, np.int64)
+    height = (bottom - top).astype(float)
+    drop = np.zeros(ids.size, bool)
+    members = np.flatnonzero(is_glyph)
+    for a in members:
+        same = members[np.abs(bottom[members] - bottom[a]) <= TEXT_BASELINE_PX + 1]
+        group = chain_holding(a, same, left, right, 1.5 * max(height[a], 1.0))
+        if len(group) >= 2:
+            drop |= in_band(group, height[a], top, bottom, left, right)
+    return ids[drop & ~is_glyph]
 
 
 def alone_in_band(group: list, top: np.ndarray, bottom: np.ndarray, left: np.ndarray, right: np.ndarray) -> bool:
@@ -507,6 +573,73 @@ def captioned_bars(labels: np.ndarray, glyphs: np.ndarray, boxes: list | None = 
             out.append(int(k))
             frame_boxes.append((int(b_top), int(b_bottom), int(b_left), int(b_right)))
     return np.asarray(out, np.int64), frame_boxes
+
+
+def bars_with_captions(labels: np.ndarray, drawn: np.ndarray | None = None, boxes: list | None = None,
+                       max_width: float = 24.0, aspect: float = 5.0,
+                       fill: float = 0.95, skip: np.ndarray | None = None
+                       ) -> tuple[np.ndarray, list[tuple[int, int, int, int]]]:
+    """Labels of kept bars that carry a caption of their own, and that caption: a scale bar and its "50 nm".
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (rows, cols)
+        Objects 1..n.
+    drawn : ndarray of bool, shape (rows, cols), optional
+        Pixels above the noise threshold (see :func:`bar_captions`).
+    boxes : list of tuple of slice or None, optional
+        ``scipy.ndimage.find_objects(labels)``, when the caller has it already.
+    max_width, aspect, fill : float
+        The bar's shape, as :func:`captioned_bars` takes it.
+    skip : ndarray of int, optional
+        Labels already dropped: no bar among them (they may still be part of a caption).
+
+    Returns
+    -------
+    labels : ndarray of int
+        The bars and their captions' objects.
+    frame_boxes : list of (top, bottom, left, right)
+        The bars' boxes (bottom and right exclusive).
+
+    Notes
+    -----
+    :func:`captioned_bars` needs two glyphs already dropped beside a bar. A
+    scale bar in the particles' own ink (black bars beside black TEM
+    particles pass no ink test) captioned in bold print, whose glyphs run
+    together into two solid blobs ("50" and "nm"), has none. Here the
+    caption is found from the bar: a horizontal bar of the shape above with
+    a caption beside it as :func:`bar_captions` finds one, every object of
+    which is at most half the bar's length wide; a line on the frame's edge
+    (the rim of a data bar) is no scale bar. A row of parallel rods
+    lying along the frame's axis has rods as long as the bar above and
+    below it, no caption.
+    """
+    items, ids, top, bottom, left, right = box_table(labels, boxes)
+    out: set[int] = set()
+    frame_boxes = []
+    if len(items) < 2:
+        return np.zeros(0, np.int64), frame_boxes
+    index = {int(k): i for i, k in enumerate(ids)}
+    height = (bottom - top).astype(float)
+    long = (right - left) >= aspect * np.maximum(height - 2 * BAR_RAGGED_LINES, 1)
+    if skip is not None:
+        long &= ~np.isin(ids, skip)
+    for i in np.flatnonzero(long):
+        k, b = items[i]
+        bar = aligned_bar(labels[b] == k, max_width, aspect, trim=True, fill=fill)
+        if bar is None:
+            continue
+        frame_box = (int(top[i] + bar[0]), int(top[i] + bar[1]), int(left[i] + bar[2]), int(left[i] + bar[3]))
+        length = frame_box[3] - frame_box[2]
+        if (length <= frame_box[1] - frame_box[0] or min(frame_box[:3]) <= 0 or frame_box[1] >= labels.shape[0]
+                or frame_box[3] >= labels.shape[1]):
+            continue  # upright, or on the frame's edge (the rim of a data bar, a strip along the frame)
+        caption = [int(c) for c in bar_captions(labels, [frame_box], drawn, boxes) if int(c) != k]
+        if caption and all(right[index[c]] - left[index[c]] <= 0.5 * length for c in caption):
+            out.add(int(k))
+            out.update(caption)
+            frame_boxes.append(frame_box)
+    return np.asarray(sorted(out), np.int64), frame_boxes
 
 
 def box_table(labels: np.ndarray, boxes: list | None = None) -> tuple[list, np.ndarray, np.ndarray, np.ndarray,

@@ -43,7 +43,11 @@
    letter cut into convex pieces looks like grains), on the pieces after, and by their ink on
    the raw frame (:mod:`grainhabit.plugins.segment.annotations`); rows of text are looked for
    among the grains, the whole components and the marks already dropped, and the caption
-   beside a dropped scale bar goes with it (:func:`~grainhabit.plugins.segment.mark_shapes.bar_captions`).
+   beside a dropped scale bar goes with it (:func:`~grainhabit.plugins.segment.mark_shapes.bar_captions`);
+   a bar in the particles' own ink goes with its caption
+   (:func:`~grainhabit.plugins.segment.mark_shapes.bars_with_captions`), and the pieces of
+   letters inside the band of a dropped line with it
+   (:func:`~grainhabit.plugins.segment.mark_shapes.line_pieces`, segment-grains 2.25).
 4. Packed fields (:mod:`grainhabit.plugins.segment.packed`): before all of
    this, a frame of at most ``tile_px`` per side is tested, on the frame as
    read, for particles covering most of it with thin gaps between them (a
@@ -90,7 +94,8 @@ from grainhabit.plugins.segment.dark_seams import split_at_dark_seams
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
 from grainhabit.plugins.segment.packed import packed_field, split_rafts
-from grainhabit.plugins.segment.mark_shapes import aligned_bar, annotation_kind, bar_captions, captioned_bars, text_rows
+from grainhabit.plugins.segment.mark_shapes import (aligned_bar, annotation_kind, bar_captions, bars_with_captions,
+                                                    captioned_bars, line_pieces, text_rows)
 from grainhabit.plugins.segment.rim_interior import fill_rim_interiors
 from grainhabit.plugins.segment.touching import split_component
 
@@ -99,7 +104,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.24",
+    version="2.25",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -362,6 +367,13 @@ def label_grains(image: np.ndarray, pixel_size_nm: float, levels: dict, *, metho
         gone = np.union1d(gone, captioned).astype(np.int64)
         bars += captioned_boxes
         gone = np.union1d(gone, bar_captions(page, bars, above, page_boxes)).astype(np.int64)
+        # a bar in the particles' own ink with a caption in bold print (glyphs run together, none dropped)
+        shaped, _ = bars_with_captions(page, above, page_boxes, annotations.BAR_MAX_WIDTH_PX,
+                                       annotations.BAR_ASPECT, annotations.BOX_FILL, skip=gone)
+        gone = np.union1d(gone, shaped).astype(np.int64)
+        # pieces of letters beside the glyphs dropped: the splitter cut them off, alone they look like grains
+        gone = np.union1d(gone, line_pieces(page, np.union1d(gone, np.arange(nxt, nxt + n_marks)),
+                                            page_boxes)).astype(np.int64)
         gone = gone[(gone > 0) & (gone < nxt)]
         if gone.size:
             rejected["stroke"] += int(gone.size)
@@ -968,6 +980,7 @@ def drop_drawn_marks(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: d
                     if b is not None]
             if bars:
                 inked = np.union1d(inked, bar_captions(labels, bars, arr > levels["noise"])).astype(np.int64)
+            inked = np.union1d(inked, line_pieces(labels, inked, boxes)).astype(np.int64)
             n_stroke += int(inked.size)
             keep = np.ones(n_labels + 1, bool)
             keep[inked] = False
