@@ -25,11 +25,16 @@ is not convex is looked at once more:
    than both parts by ``SEAM_DIP`` (as
    :func:`~grainhabit.plugins.segment.touching.seam_contrast` measures a
    cut) and meets the outline at a notch (:data:`NOTCH_PX` deep, within
-   :data:`NOTCH_REACH_PX`), and every part is convex (solidity at least
+   :data:`NOTCH_REACH_PX`; a notch's depth is taken from the convex hull's
+   edge, so the narrow V between the round ends of two rods side by side
+   counts), and every part is convex (solidity at least
    :data:`PART_SOLIDITY`): the texture inside one grain gives wandering
    boundaries and parts that are not convex, and the edges between the
    facets of one crystal, dark as they may be, meet its outline at corners,
-   not in notches;
+   not in notches. A division into :data:`HEAP_PARTS` parts or more (a
+   heap, a bundle of rods) is kept where :data:`HEAP_CONVEX_SHARE` of its
+   parts are convex (segment-grains 2.26: two rods crossing make one part
+   that is not, and kept the whole bundle one grain before);
 5. each part is looked at again by the same steps, as a grain of its own, up
    to :data:`ROUNDS` levels (:func:`divide_again`).
 
@@ -68,6 +73,10 @@ from grainhabit.plugins.segment.touching import SEAM_DIP
 GRAIN_SOLIDITY = 0.92
 #: Every part of a division is at least this solid.
 PART_SOLIDITY = 0.85
+#: A division into this many parts or more (a heap, a bundle of rods side by side) is kept where this share of
+#: its parts is convex: two crossing rods make one part that is not, and the rest of the heap still divides.
+HEAP_PARTS = 4
+HEAP_CONVEX_SHARE = 0.75
 #: Radius (px) of the disc of the black top-hat: seams up to about twice as wide stand out.
 SEAM_RADIUS_PX = 3
 #: h of the h-maxima of the seam-free distance map, as a share of its deepest distance.
@@ -165,8 +174,11 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
         return k
 
     # where the outline is notched: pixels of the convex hull outside the grain, NOTCH_PX deep or more
-    notched = convex_hull_mask(mask) & ~mask
-    notched &= distance_map(~mask) >= NOTCH_PX
+    hull = convex_hull_mask(mask)
+    notched = hull & ~mask
+    # deep by the hull's edge (a narrow V between the round ends of two rods side by side is only a pixel or
+    # two from the grain everywhere, but it runs far in from the hull)
+    notched &= distance_map(hull) > NOTCH_PX
     near_notch = distance_map(~notched) <= NOTCH_REACH_PX if notched.any() else notched
     for i, a in enumerate(big):
         grown = ndi.binary_dilation(flooded == a, structure=_EIGHT)
@@ -187,7 +199,8 @@ def divide_at_seams(image: np.ndarray, mask: np.ndarray, min_area: float,
     if len(groups) < 2:
         return None
     parts = [np.isin(flooded, g) for g in groups.values()]
-    if any(np.count_nonzero(p) < PART_SOLIDITY * hull_pixel_count(p) for p in parts):
+    convex = sum(np.count_nonzero(p) >= PART_SOLIDITY * hull_pixel_count(p) for p in parts)
+    if convex < len(parts) and (len(parts) < HEAP_PARTS or convex < HEAP_CONVEX_SHARE * len(parts)):
         return None
     return parts
 
