@@ -10,7 +10,8 @@ import pytest
 from scipy import ndimage as ndi
 from skimage.draw import disk
 
-from grainhabit.plugins.segment.population import below_population, drop_below_population, edge_strips, typical_area
+from grainhabit.plugins.segment.population import (below_population, drop_below_population, edge_strips, small_and_dim,
+                                                    typical_area)
 from grainhabit.plugins.segment.segment_grains import segment_image
 
 
@@ -116,3 +117,31 @@ def test_specks_at_the_resolution_floor_go_beside_large_grains_but_not_among_gra
     assert not below_population(small, 0.02).any()
     # share 0 (a blend of a fine and a coarse emulsion) drops nothing, specks included
     assert not below_population(areas, 0.0).any()
+
+
+def test_small_dim_blobs_go_but_small_bright_grains_and_large_faint_ones_stay():
+    # twelve grains of radius 15 px at level 1; beside them blobs of radius 5 px (an area share of
+    # (5/15)^2 = 0.11, handbook disc areas) at level 0.3 (stains of a film), grains of radius 5 px at level 1,
+    # and two large faint grains of radius 15 px at level 0.3 (thin plates)
+    plan = [("grain", 15, 1.0)] * 12 + [("stain", 5, 0.3)] * 4 + [("small grain", 5, 1.0)] * 4 \
+        + [("faint plate", 15, 0.3)] * 2
+    shape = (420, 400)
+    img = np.zeros(shape, np.float32)
+    centres = [(r0, c0) for r0 in range(30, 420, 60) for c0 in range(30, 400, 90)][:len(plan)]
+    for (kind, radius, level), (r0, c0) in zip(plan, centres):
+        rr, cc = disk((r0, c0), radius, shape=shape)
+        img[rr, cc] = level
+    labels, n = ndi.label(img > 0)  # raster order, as the step numbers grains
+    assert n == len(plan)
+    kind_of = {int(labels[r0, c0]): kind for (kind, _, _), (r0, c0) in zip(plan, centres)}
+    kept, _, dropped = drop_below_population(labels, np.zeros(n, bool), 0.02, image=img)
+    assert dropped == 4
+    left = sorted(kind_of[int(k)] for k in np.unique(labels[kept > 0]))
+    assert left.count("stain") == 0 and left.count("small grain") == 4 and left.count("faint plate") == 2
+    # without the image (or with min_area_share 0) the area rule alone drops none of them
+    assert drop_below_population(labels, np.zeros(n, bool), 0.02)[2] == 0
+    assert drop_below_population(labels, np.zeros(n, bool), 0.0, image=img)[2] == 0
+    # the rule on its own: the same four
+    areas = np.bincount(labels.ravel())[1:]
+    levels = ndi.mean(img, labels, np.arange(1, n + 1))
+    assert sorted(kind_of[int(k) + 1] for k in np.flatnonzero(small_and_dim(areas, levels))) == ["stain"] * 4

@@ -104,7 +104,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.26",
+    version="2.27",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -598,7 +598,7 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         if clusters is not None:
             split_by_label = np.r_[False, split]
     labels, split, notes = place_outlines(arr, *drop_debris(*drop_drawn_marks(
-        arr, raw, levels, p, labels, split, clusters, split_by_label, dropped, notes, boxes, cluster_of), p), p,
+        arr, raw, levels, p, labels, split, clusters, split_by_label, dropped, notes, boxes, cluster_of), p, arr), p,
         levels["sigma"])
     if no_background and int(labels.max()) < FEW_GRAINS_MIN:
         # one or two objects do not show a background under grains (few_above_noise): the error stands
@@ -611,7 +611,7 @@ def finish_field(arr: np.ndarray, raw: np.ndarray | None, levels: dict, p: dict,
     """The last steps for the parts of a packed field (its own or a second look's): marks, debris, outlines."""
     n = int(labels.max())
     return place_outlines(arr, *drop_debris(*drop_drawn_marks(
-        arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p), p,
+        arr, raw, levels, p, labels, np.zeros(n, bool), None, np.zeros(n + 1, bool), [], notes), p, arr), p,
         levels["sigma"])
 
 
@@ -723,26 +723,28 @@ def refine_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, nois
     return labels, split[old - 1], old
 
 
-def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, boxes: list | None, p: dict
-                ) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Drop objects under ``min_area_share`` of the frame's typical grain area and note how many.
+def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, boxes: list | None, p: dict,
+                arr: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Drop objects under ``min_area_share`` of the frame's typical grain area, or small and dim, and note how many.
 
     See :mod:`grainhabit.plugins.segment.population`. The first four arguments are what
     :func:`drop_drawn_marks` returns: ``boxes`` (``find_objects(labels)``, labels numbered in row-major
     order of their first pixel), when known, confine the work to them; None: the whole-frame path.
+    ``arr``, the preprocessed frame, gives the objects' levels (:func:`population.small_and_dim`).
     """
     if boxes is not None and all(b is not None for b in boxes):
-        labels, split, n = drop_below_population_boxed(labels, split, boxes, p["min_area_share"])
+        labels, split, n = drop_below_population_boxed(labels, split, boxes, p["min_area_share"], arr)
     else:
-        labels, split, n = population.drop_below_population(labels, split, p["min_area_share"])
+        labels, split, n = population.drop_below_population(labels, split, p["min_area_share"], arr)
     if n:
         notes.append(f"segment-grains: {n} object(s) under {100 * p['min_area_share']:g} % of the frame's typical "
-                     "grain area dropped (debris, substrate texture)")
+                     f"grain area dropped (debris, substrate texture; also under {100 * population.DIM_AREA_SHARE:g} % "
+                     f"of it and {100 * population.DIM_LEVEL:g} % of the grains' level: stains)")
     return labels, split, notes
 
 
-def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: list, share: float
-                                 ) -> tuple[np.ndarray, np.ndarray, int]:
+def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: list, share: float,
+                                 image: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """:func:`~grainhabit.plugins.segment.population.drop_below_population`, box by box.
 
     Parameters
@@ -753,6 +755,8 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
     boxes : list of tuple of slice
         ``scipy.ndimage.find_objects(labels)`` (every label present).
     share : float
+    image : ndarray, optional
+        The preprocessed frame, as ``drop_below_population`` takes it.
 
     Returns
     -------
@@ -764,8 +768,12 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
     n = len(boxes)
     if n == 0 or share <= 0:
         return labels, split, 0
-    drop = population.below_population(population.box_areas(labels, boxes), share,
-                                       ~population.edge_strips(boxes, labels.shape))
+    areas = population.box_areas(labels, boxes)
+    reference = ~population.edge_strips(boxes, labels.shape)
+    drop = population.below_population(areas, share, reference)
+    if image is not None:
+        levels = np.array([float(image[b][labels[b] == k].mean()) for k, b in enumerate(boxes, start=1)])
+        drop |= population.small_and_dim(areas, levels, reference)
     if not drop.any():
         return labels, split, 0
     keep = np.r_[False, ~drop]
