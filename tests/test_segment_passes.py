@@ -249,3 +249,22 @@ def test_stain_test_at_its_pixels_equals_the_whole_frame_test(seed):
     ref = _half_height_mask_reference(img, 0.05, 0.5, 0.04, 30.0)
     np.testing.assert_array_equal(got, ref)
     assert (got != (img > 0.05)).any()  # the skirts and stains were cut
+
+
+def test_small_and_dim_box_by_box_is_the_whole_frame_rule():
+    # reference: population.drop_below_population with the image (scipy.ndimage.mean over the whole frame)
+    rng = np.random.default_rng(11)
+    shape = (300, 300)
+    img = np.zeros(shape, np.float32)
+    yy, xx = np.ogrid[:shape[0], :shape[1]]
+    for r in range(20, 300, 40):
+        for c in range(20, 300, 40):
+            rad, level = (14, 1.0) if rng.random() < 0.7 else (4, rng.choice([0.2, 0.35, 0.9]))
+            img[(yy - r) ** 2 + (xx - c) ** 2 <= rad ** 2] = level + rng.normal(0, 0.02)
+    lab, n = ndi.label(img > 0)
+    boxes = ndi.find_objects(lab)
+    split = np.zeros(n, bool)
+    got = sg.drop_below_population_boxed(lab.astype(np.int32), split, boxes, 0.02, img)
+    ref = population.drop_below_population(lab.astype(np.int32), split, 0.02, img)
+    assert got[2] == ref[2] > 0
+    assert np.array_equal(got[0], ref[0])

@@ -772,7 +772,7 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
     reference = ~population.edge_strips(boxes, labels.shape)
     drop = population.below_population(areas, share, reference)
     if image is not None:
-        levels = np.array([float(image[b][labels[b] == k].mean()) for k, b in enumerate(boxes, start=1)])
+        levels = np.array([float(image[b][labels[b] == k].mean(dtype=np.float64)) for k, b in enumerate(boxes, start=1)])
         drop |= population.small_and_dim(areas, levels, reference)
     if not drop.any():
         return labels, split, 0
