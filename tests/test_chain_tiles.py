@@ -258,6 +258,11 @@ def test_a_noisy_frame_gets_the_same_smoothing_scale_and_grains_by_tiles(tmp_pat
     a, b = whole["record"], tiled["record"]
     assert a["status"] == b["status"] == "ok", (a["error"], b["error"])
     assert "tiles of 256 px" in b["notes"]
-    assert b["grain_count"] == a["grain_count"] >= 40
-    np.testing.assert_allclose(np.sort(tiled["columns"]["ecd_nm"]), np.sort(whole["columns"]["ecd_nm"]),
-                               rtol=TOL, atol=TOL)
+    # the whole frame: the 49 discs drawn (since segment-grains 2.27 a blob of the noise, a fifth of a disc's
+    # area and dim, goes with the debris); a frame processed tile by tile through the chain goes without the
+    # frame-wide population rules (README, "Frames larger than a worker's memory") and may keep such a blob
+    assert a["grain_count"] == 49
+    assert b["grain_count"] in (49, 50)
+    ecd_whole = np.sort(whole["columns"]["ecd_nm"])
+    ecd_tiled = np.sort(tiled["columns"]["ecd_nm"])[-49:]  # the discs: the blob is the smallest object
+    np.testing.assert_allclose(ecd_tiled, ecd_whole, rtol=TOL, atol=TOL)
