@@ -89,7 +89,8 @@ from scipy import ndimage as ndi
 from grainhabit import hookimpl
 from grainhabit.params import Param, StepInfo
 
-from grainhabit.plugins.segment import annotations, cut_edges, faint_outline, outer_edge, population, specks, tiling
+from grainhabit.plugins.segment import (annotations, cut_edges, faint_outline, outer_edge, population, rimmed_discs,
+                                        specks, tiling)
 from grainhabit.plugins.segment.dark_seams import split_at_dark_seams
 from grainhabit.plugins.segment.foreground import foreground_labels
 from grainhabit.plugins.segment.levels import check_image, frame_levels
@@ -104,7 +105,7 @@ GRAINHABIT_API = 1
 STEP = StepInfo(
     name="segment-grains",
     stage="segment",
-    version="2.27",
+    version="2.28",
     summary="Noise, Otsu or local threshold, gradient-snapped outlines, convexity-checked splitting.",
     params=(
         Param("threshold", str, "auto", choices=("auto", "noise", "otsu", "local", "sauvola"),
@@ -159,6 +160,10 @@ STEP = StepInfo(
         Param("packed_fields", bool, True,
               doc="Look for a packed field (particles covering the frame, thin gaps between them) and divide it "
                   "at the saddles of its distance map (frames of at most tile_px per side; see packed.py)."),
+        Param("rimmed_discs", bool, True,
+              doc="Where the grains found are mostly ring-like, or none or no background was found, look for round "
+                  "particles seen by their bright rims by the circular Hough transform (frames of at most tile_px "
+                  "per side; see rimmed_discs.py)."),
         Param("min_contrast", float, 0.0, low=0.0,
               doc="Below this difference of the Otsu class means (image units) the frame holds no grains "
                   "(0: no such test; a frame without grains is flagged in any case)."),
@@ -528,6 +533,15 @@ def segment_image(image: np.ndarray, pixel_size_nm: float, params: dict | None =
         See :func:`check_frame` (grains everywhere, no background).
     """
     p = STEP.resolve(params)
+    labels, split, notes = first_look(image, pixel_size_nm, p, raw)
+    if p["rimmed_discs"] and max(np.shape(image)) <= p["tile_px"]:
+        labels, split, notes = rimmed_discs.second_look(check_image(image), labels, split, notes)
+    return labels, split, notes
+
+
+def first_look(image: np.ndarray, pixel_size_nm: float, p: dict,
+               raw: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """The segmentation before the look for rimmed discs; see :func:`segment_image`."""
     arr = check_image(image)
     notes = []
     levels = frame_levels(arr, p["noise_k"], faint_k=p["faint_k"])
