@@ -17,7 +17,10 @@ Canny edges [2]_ of the preprocessed frame (scikit-image [3]_
    frame the gradient of the frame smoothed at a scale proportional to the
    radius (so a textured face does not count) is stronger than the frame's
    75th percentile and points along the radius (``|cos|`` above 0.85),
-   all with the same sign (brighter inside, or darker inside);
+   all pointing to the centre (brighter inside: the rim's outer edge; the
+   radius is moved out, up to ``OUTER_REACH`` times the peak's, to the best
+   supported one where the peak's circle is the rim's inner edge: darker
+   inside on ``MIN_SUPPORT`` of its perimeter);
 3. larger, better supported circles first (accumulator times radius), a
    circle overlapping an accepted one by more than 20 % of the smaller
    circle's area is dropped (non-maximum suppression);
@@ -55,6 +58,8 @@ MIN_SUPPORT = 0.6
 #: smallest radius looked for (px): six times the Canny blur (sigma 2 px); smaller circles are
 #: drawn by the texture of the particles' faces as often as by particles (measured on EMPS)
 MIN_RADIUS = 12.0
+#: the outline looked for out to this many times a peak's radius (its rim's outer edge)
+OUTER_REACH = 1.35
 #: normalised Hough accumulator threshold
 PEAK_THRESHOLD = 0.4
 #: at most this share of the smaller circle's area may overlap an accepted circle
@@ -191,10 +196,18 @@ def find_circles(arr: np.ndarray) -> list[tuple[float, float, float, float]]:
     grads = _gradients(arr, radii)
     cands = []
     for v, cx, cy, r in zip(vals, cxs, cys, rs):
-        # grains are bright in the preprocessed frame: the rim's gradient points to the centre
-        s = rim_support(grads, cy, cx, r, arr.shape)[0]
-        if s >= MIN_SUPPORT:
-            cands.append((float(v) * r * s, float(cy), float(cx), float(r), s))
+        # grains are bright in the preprocessed frame: the rim's outer edge has its gradient pointing to the
+        # centre. The peak may sit on the rim's inner edge (a concentric circle suppresses the other), so the
+        # radius is moved out to the best supported one up to OUTER_REACH times the peak's where the peak's own
+        # circle is seen darker inside all round (the inner edge of a bright rim).
+        best_s, best_r = -1.0, r
+        inner_edge = rim_support(grads, cy, cx, r, arr.shape)[1] >= MIN_SUPPORT   # darker inside: a rim's inner edge
+        for rr in radii[(radii >= r) & (radii <= (OUTER_REACH if inner_edge else 1.0) * r)]:
+            s = rim_support(grads, cy, cx, rr, arr.shape)[0]
+            if s > best_s:
+                best_s, best_r = s, rr
+        if best_s >= MIN_SUPPORT:
+            cands.append((float(v) * best_r * best_s, float(cy), float(cx), float(best_r), best_s))
     cands.sort(key=lambda c: -c[0])
     kept = []
     for _, cy, cx, r, s in cands:
