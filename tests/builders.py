@@ -636,3 +636,19 @@ def faint_objects_reference(low, high, min_area=0.0):
                 continue
         out[r0:r1, c0:c1] |= own
     return out
+
+
+def draw_text(shape, text, xy, size, ink):
+    """A raster of ``text`` drawn with matplotlib's Agg renderer (bold serif), as a bool mask."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig = plt.figure(figsize=(shape[1] / 100, shape[0] / 100), dpi=100)
+    fig.text(xy[0] / shape[1], 1 - xy[1] / shape[0], text, fontsize=size, fontweight="bold", family="serif",
+             va="top", ha="left", color="black")
+    fig.canvas.draw()
+    arr = np.asarray(fig.canvas.buffer_rgba())[..., 0]
+    plt.close(fig)
+    return arr[: shape[0], : shape[1]] < 128
