@@ -174,10 +174,25 @@ MIN_RESOLVED_PX = 8.0
 #: of these (a view along [100] is a cube's flat top face).
 FLAT_PLATE_VIEWS = ("111", "110")
 
+#: Views along which a body rests on an edge, not a face: two inclined facets meet along the edge on top
+#: (in transmission the thickness rises to a ridge). Where only such a view fits a grain's outline (no view
+#: of :data:`FACE_VIEWS` within ``tolerance``) and its placed models explain its interior no better than a
+#: featureless surface does (``facet_chi2`` below ``tolerance``: no trace of the facets), the two pieces of
+#: evidence disagree and the habit is left undetermined (``irregular``, ``habit_score`` <= 0.25;
+#: classify-habit 2.7). Lumps of 20-40 px fitted a cube seen along [110] (a rectangle with rounded corners)
+#: with scores 0.5-1.0. Secondary-electron contrast only: there a facet's brightness follows its tilt and
+#: rendered bodies on an edge show ``facet_chi2`` of 29 and more at 25-80 px; in transmission the facets
+#: show only as kinks of the thickness, and rendered bodies on an edge of 80-100 px give ``facet_chi2``
+#: near 0 (a smooth surface follows their thickness ridge), so the interior says nothing there.
+EDGE_VIEWS = ("110",)
+
+#: Views along which a body rests on one of its faces.
+FACE_VIEWS = ("100", "111")
+
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.6",
+    version="2.7",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -697,6 +712,15 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
         # transmission the thickness falling towards its rim; so does any body seen along [110],
         # which rests on an edge, not a face)
         return "tabular_hexagon", flat_score, cols, fit
+    if fit.face in EDGE_VIEWS and getattr(interior, "mode", None) == "facets" \
+            and np.isfinite(fit.facet_chi2) and fit.facet_chi2 < p["tolerance"] \
+            and min(en.class_scores(fit, lib, f).min() for f in FACE_VIEWS) > p["tolerance"]:
+        # only a body lying on an edge explains the outline, and in secondary-electron contrast such a
+        # body shows the inclined facets meeting along the edge, but the interior is explained as well
+        # (within tolerance) without them: the outline and the interior disagree
+        cols["habit_note"] = ("undetermined: only a body lying on an edge (seen along [110]) fits the outline, "
+                              "and the interior shows no trace of its inclined facets")
+        return "irregular", 0.25 * (1.0 - _margin(fit.facet_chi2, p["tolerance"], 0.5)), cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
     if habit == "octahedron" and cls[1] <= cls[2] + p["tolerance"]:
