@@ -665,6 +665,16 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
         elif unresolved:
             # facet evidence from the outline-best models, for the resolution test
             fit = yield from en.fit_alpha_steps(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+    edge_fchi = fit.facet_chi2
+    if fit.face in EDGE_VIEWS and not np.isfinite(edge_fchi) and interior is not None \
+            and not outline_decides(o_ratios[:3], solidity, feret_ratio, p):
+        # a body on an edge that the outline alone settles: its facet evidence (for the test below) from
+        # the outline-best models, without changing the outline's fit
+        if lazy:
+            interior, lazy = interior(), False
+        if getattr(interior, "mode", None) == "facets":
+            quick = yield from en.fit_alpha_steps(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+            edge_fchi = quick.facet_chi2
     ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
     best = int(np.argmin(ratios[:3]))
     cols = {
@@ -713,14 +723,15 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
         # which rests on an edge, not a face)
         return "tabular_hexagon", flat_score, cols, fit
     if fit.face in EDGE_VIEWS and getattr(interior, "mode", None) == "facets" \
-            and np.isfinite(fit.facet_chi2) and fit.facet_chi2 < p["tolerance"] \
+            and np.isfinite(edge_fchi) and edge_fchi < p["tolerance"] \
             and min(en.class_scores(fit, lib, f).min() for f in FACE_VIEWS) > p["tolerance"]:
         # only a body lying on an edge explains the outline, and in secondary-electron contrast such a
         # body shows the inclined facets meeting along the edge, but the interior is explained as well
         # (within tolerance) without them: the outline and the interior disagree
         cols["habit_note"] = ("undetermined: only a body lying on an edge (seen along [110]) fits the outline, "
                               "and the interior shows no trace of its inclined facets")
-        return "irregular", 0.25 * (1.0 - _margin(fit.facet_chi2, p["tolerance"], 0.5)), cols, fit
+        cols["facet_chi2"] = edge_fchi
+        return "irregular", 0.25 * (1.0 - _margin(edge_fchi, p["tolerance"], 0.5)), cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
     if habit == "octahedron" and cls[1] <= cls[2] + p["tolerance"]:
