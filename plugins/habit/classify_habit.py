@@ -469,6 +469,38 @@ def hull_shape(contour) -> tuple[float, float, float]:
     return float(area / hull.volume), fmin, fmax
 
 
+def solidity_noise(contour, area, pixel_scale, params) -> float:
+    """How far an outline's solidity moves when its points move by the outline noise (the width of the
+    concave test's margin in ``habit_score``).
+
+    Where the outline's points scatter by ``d`` about the true edge, its convex hull runs along their
+    outward excursions and its area along their mean, so the hull exceeds the area by about ``d`` times
+    the perimeter ``P`` (a band of width ``d`` along the edge; the first-order term of Steiner's formula
+    for a parallel body) and the solidity falls by about ``d P / A``. With ``d`` the outline noise
+    (``outline_noise_px``) that is the solidity's uncertainty; it grows as the grain shrinks (``4 d /
+    ECD`` for a disc): a rod of 16 px whose outline dents by a pixel is not confidently concave. At
+    least 0.01 (the width used before classify-habit 2.7). Changes ``habit_score`` only, never a habit.
+
+    Parameters
+    ----------
+    contour : ndarray, shape (k, 2)
+        Closed outline in its unit.
+    area : float
+        Its enclosed area in that unit squared.
+    pixel_scale : float
+        Pixel length in the contour's unit.
+    params : dict
+        Resolved parameters of this step (``outline_noise_px``).
+
+    Returns
+    -------
+    float
+    """
+    c = np.asarray(contour, float)
+    perimeter = float(np.hypot(*(np.roll(c, -1, axis=0) - c).T).sum())
+    return max(0.01, params["outline_noise_px"] * pixel_scale * perimeter / max(area, 1e-12))
+
+
 def _margin(value, threshold, width):
     """Logistic confidence that ``value`` lies above ``threshold``: 1 / (1 + exp(-(v - t) / w))."""
     z = (value - threshold) / width
@@ -689,7 +721,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     fchi = fit.facet_chi2 if np.isfinite(fit.facet_chi2) else 0.0
     faceted = fchi >= p["facet_chi2_min"]
     if solidity < p["min_solidity"] or ratios[best] > p["irregular_misfit"]:
-        s = max(1.0 - _margin(solidity, p["min_solidity"], 0.01),
+        s = max(1.0 - _margin(solidity, p["min_solidity"], solidity_noise(contour_lab, match.area, pixel_scale, p)),
                 _margin(ratios[best], p["irregular_misfit"], 0.5))
         cols["habit_note"] = "concave outline" if solidity < p["min_solidity"] else "fits no model family"
         return "irregular", s, cols, fit
