@@ -878,6 +878,34 @@ def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
     return np.where(d_hi < d_lo, fr[hi], fr[lo])
 
 
+def _square_completion(outline_px, free, three, labels, signal, mode, lab, p):
+    """A cut outline named a plate that is a cut {100} view (a generator of interior-fit requests).
+
+    A square that loses a corner to a neighbour is a pentagon, and the plate family, free in its edge
+    ratio and of three-fold symmetry, fits such an asymmetric outline better than any centrally
+    symmetric Wulff outline; its three-fold completion is a hexagon the plates fit too. Completed by
+    central symmetry it is the square again. As :func:`_completed` takes the clearly smaller of the
+    two- and three-fold completions first (a body of either symmetry that a straight cut took a piece
+    of is the smallest such outline holding its true edges), the two-fold completion is taken here where
+    it is smaller than the three-fold one ``three`` by ``COMPLETION_AREA_MARGIN``, adds no more than a
+    straight cut of a two-fold body could have removed, and is a body seen along [100] (an outline of
+    four-fold symmetry, which no plate has). Returns the habit tuple of
+    :func:`classify_grain_steps` of that completion, or None (classify-habit 2.7).
+    """
+    vis = en.polygon_centroid(outline_px)[1]
+    q = en.complete_by_symmetry(outline_px, free, 2)
+    area = en.polygon_centroid(q)[1]
+    if not (area < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(three)[1] and area <= 2.0 * vis):
+        return None
+    contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
+    if contour2 is None or len(contour2) < 8:
+        return None
+    res = yield from classify_grain_steps(contour2, get_interior() if p["interior"] else None, p)
+    if res[0] in POLYHEDRAL_HABITS and res[3].face == "100":
+        return res
+    return None
+
+
 def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current, plates=True):
     """Habit of a split grain from the outline its true edges imply (a generator of interior-fit requests).
 
@@ -1036,13 +1064,20 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p,
         # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
         # from the outline its true edges imply (three-fold symmetry)
         free = None
-        q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
-        contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
-        if contour2 is not None and len(contour2) >= 8:
-            res = yield from classify_grain_steps(contour2, None, p)
-            if res[0] in TABULAR_HABITS:
-                habit, score, ev, fit = res
-                ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
+        edge = free_edge(labels, outline_px, lab)
+        q = en.complete_by_symmetry(outline_px, edge, 3)
+        square = yield from _square_completion(outline_px, edge, q, labels, signal, mode, lab, p)
+        if square is not None:
+            habit, score, ev, fit = square
+            ev["habit_note"] = ("split grain: outline completed by its 2-fold symmetry, clearly smaller than its "
+                                "3-fold completion" + (f"; {ev['habit_note']}" if ev["habit_note"] else ""))
+        else:
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+            if contour2 is not None and len(contour2) >= 8:
+                res = yield from classify_grain_steps(contour2, None, p)
+                if res[0] in TABULAR_HABITS:
+                    habit, score, ev, fit = res
+                    ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
     else:
         free = None
     if free is not None and habit != "irregular" and (
