@@ -66,6 +66,11 @@ Decision
    in transmission its projected thickness falls to zero at the rim over two
    thirds of its area, a dome that the round body explains as well as the
    facets (so ``facet_chi2`` stays low) but a flat plate does not.
+6b. ``irregular`` with ``habit_score`` <= 0.25 ("undetermined") where only a body seen along [110]
+   fits the outline (no view along [100] or [111] within ``tolerance``) and, in secondary-electron
+   contrast, the placed models explain the interior no better than a featureless surface
+   (``facet_chi2`` below ``tolerance``): such a body rests on an edge where two of its faces meet,
+   lit differently (:data:`EDGE_VIEWS`; classify-habit 2.7).
 7. Everything else is polyhedral and named by alpha (thresholds in
    :mod:`vocabulary`): ``cube`` alpha <= 1.5, ``cuboctahedron``
    1.5 < alpha < 3, ``octahedron`` alpha >= 3; a cuboctahedron needs
@@ -115,7 +120,10 @@ completion does (a grain cut along its true contact keeps the outline it has).
 
 A cut plate that still fits the plate family takes its edge ratio from the
 outline completed three-fold (a corner cut by the neighbour looks like a short
-edge). Its area and ECD stay those of the visible part (measure-grains).
+edge), unless its two-fold completion is clearly smaller and a body seen along
+[100]: a square cut at a corner is a pentagon that the plate family fits
+(:func:`_square_completion`). Its area and ECD stay those of the visible part
+(measure-grains).
 
 The plate and rod family outlines are rounded like the Wulff models (the
 rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
