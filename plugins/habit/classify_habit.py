@@ -908,7 +908,12 @@ def _square_completion(outline_px, free, three, labels, signal, mode, lab, p):
     contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
     if contour2 is None or len(contour2) < 8:
         return None
-    res = yield from classify_grain_steps(contour2, get_interior() if p["interior"] else None, p)
+    # the outline first (no interior read): a completion that is no {100} view by its outline is none
+    outline2 = outline_evidence(contour2, p)
+    first = yield from classify_grain_steps(contour2, None, p, outline=outline2)
+    if not (first[0] in POLYHEDRAL_HABITS and first[3].face == "100"):
+        return None
+    res = yield from classify_grain_steps(contour2, get_interior if p["interior"] else None, p, outline=outline2)
     if res[0] in POLYHEDRAL_HABITS and res[3].face == "100":
         return res
     return None
