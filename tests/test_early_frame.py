@@ -1,0 +1,82 @@
+"""The run's first frame processed in a forked process while the local cluster starts (grainhabit.early)."""
+
+from __future__ import annotations
+
+import sys
+
+import pytest
+import xarray as xr
+
+from builders import run_cli, write_workflow
+from grainhabit.early import EarlyFrame, use_early_frame
+from grainhabit.executors import DaskExecutor, SerialExecutor
+
+WF = """\
+version: 1
+name: early
+input:
+  paths: ["data/**/*.tif"]
+output:
+  results: out/{name}.zarr
+execution:
+  scheduler: local
+  workers: 2
+"""
+
+
+def test_used_only_for_a_local_forked_cluster_with_two_frames(monkeypatch):
+    monkeypatch.delenv("GRAINHABIT_EARLY_FRAME", raising=False)
+    monkeypatch.setattr(sys, "platform", "linux")
+    assert use_early_frame(DaskExecutor(workers=2), 2)
+    assert not use_early_frame(DaskExecutor(workers=2), 1)
+    assert not use_early_frame(DaskExecutor(workers=2, start_method="spawn"), 5)
+    assert not use_early_frame(DaskExecutor(address="tcp://127.0.0.1:8786"), 5)
+    assert not use_early_frame(DaskExecutor(batch=("slurm", {})), 5)
+    assert not use_early_frame(SerialExecutor(), 5)
+    monkeypatch.setenv("GRAINHABIT_EARLY_FRAME", "0")
+    assert not use_early_frame(DaskExecutor(workers=2), 5)
+
+
+def _square(x, sample, job):
+    return {"record": {"status": "ok"}, "value": x * x}
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the early frame forks (Linux only)")
+def test_a_lost_early_frame_goes_to_the_executor(monkeypatch):
+    import time
+
+    from grainhabit import runner, task
+
+    monkeypatch.setattr(runner, "process_frame", _square)
+    monkeypatch.setattr(task, "prepare_worker", lambda job: time.sleep(60))  # the forked process waits ...
+    early = EarlyFrame("a", (3, "sample", None))
+    early._proc.kill()  # ... and dies without an answer
+    early._proc.join()
+    got = dict(runner._with_early(SerialExecutor(), [("a", (3, "sample", None)), ("b", (4, "sample", None))], early))
+    assert sorted(got) == ["a", "b"]
+    assert got["a"]["value"] == 9 and got["b"]["value"] == 16
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the early frame forks (Linux only)")
+def test_same_results_with_and_without_the_early_frame(tmp_path):
+    from builders import draw_frame, write_tiff
+
+    for s, sample in enumerate(("alpha-batch", "beta-batch")):
+        for i in range(2):
+            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
+                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
+            write_tiff(tmp_path / "data" / sample / f"f{i}.tif", img, 5.0)
+    with_early = run_cli("run", write_workflow(tmp_path / "a.yaml", WF.format(name="early")),
+                         env={"GRAINHABIT_EARLY_FRAME": "1"})
+    assert with_early.returncode == 0, with_early.stderr
+    assert "first frame processing in process" in with_early.stderr
+    without = run_cli("run", write_workflow(tmp_path / "b.yaml", WF.format(name="cluster")),
+                      env={"GRAINHABIT_EARLY_FRAME": "0"})
+    assert without.returncode == 0, without.stderr
+    assert "first frame processing in process" not in without.stderr
+    for group in ("grains", "frames", "summary"):
+        a = xr.open_zarr(tmp_path / "out" / "early.zarr", group=group).load()
+        b = xr.open_zarr(tmp_path / "out" / "cluster.zarr", group=group).load()
+        if group == "frames":
+            a, b = (d.drop_vars([v for v in d.data_vars if "second" in v or "timing" in v]) for d in (a, b))
+        xr.testing.assert_identical(a.drop_attrs(), b.drop_attrs())
