@@ -1,0 +1,93 @@
+"""Kernels of issue 19's speed25 round, each against the scipy form it replaced (same pixels, same numbers).
+
+Reference library: scipy.ndimage (binary_dilation with its default border value 0, label, center_of_mass).
+Masks are random blobs and drawn pairs (invented data).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from grainhabit.plugins.segment import overlap_front
+
+_FOUR = ndi.generate_binary_structure(2, 1)
+_EIGHT = np.ones((3, 3), bool)
+
+
+def _blobs(seed, shape=(61, 47), fill=0.5):
+    rng = np.random.default_rng(seed)
+    return ndi.gaussian_filter(rng.random(shape), 2.0) > fill
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_dilations_are_scipys(seed):
+    m = _blobs(seed, fill=0.5 + 0.01 * seed)
+    m[0, :3] = m[-1, -2:] = m[5:9, 0] = True  # pixels on the border: outside counts as False in both
+    for radius in (1, 2, 3):
+        assert np.array_equal(overlap_front.dilate_square(m, radius), ndi.binary_dilation(m, _EIGHT, iterations=radius))
+    assert np.array_equal(overlap_front.dilate_cross(m), ndi.binary_dilation(m, _FOUR))
+    one = np.zeros((1, 5), bool)
+    one[0, 2] = True
+    assert np.array_equal(overlap_front.dilate_square(one, 2), ndi.binary_dilation(one, _EIGHT, iterations=2))
+
+
+def _notch_points_scipy(a_mask, b_mask):
+    """The form notch_points had before (scipy's dilations, labelling of the whole box, center_of_mass)."""
+    union = a_mask | b_mask
+    contact = a_mask & ndi.binary_dilation(b_mask, _FOUR)
+    ends = contact & ndi.binary_dilation(~union, _EIGHT, iterations=2)
+    lab, n = ndi.label(ends, _EIGHT)
+    if n != 2:
+        return None
+    return [np.array(c) for c in ndi.center_of_mass(ends, lab, [1, 2])]
+
+
+def _pairs():
+    """Touching pairs cut by straight lines through random blobs and discs (some with 1 or 3+ notches)."""
+    out = []
+    rr, cc = np.mgrid[:70, :90]
+    for seed in range(40):
+        rng = np.random.default_rng(100 + seed)
+        if seed % 2:
+            union = _blobs(seed, (70, 90), 0.5)
+        else:
+            union = np.zeros((70, 90), bool)
+            for _ in range(2):
+                r0, c0, rad = rng.uniform(15, 55), rng.uniform(15, 75), rng.uniform(10, 22)
+                union |= (rr - r0) ** 2 + (cc - c0) ** 2 <= rad ** 2
+        angle = rng.uniform(0, np.pi)
+        side = (rr - rng.uniform(20, 50)) * np.cos(angle) + (cc - rng.uniform(25, 65)) * np.sin(angle) > 0
+        out.append((union & side, union & ~side))
+    return out
+
+
+def test_notch_points_are_the_scipy_forms():
+    found = 0
+    for a, b in _pairs():
+        want = _notch_points_scipy(a, b)
+        got = overlap_front.notch_points(a, b)
+        assert (want is None) == (got is None)
+        if want is not None:
+            found += 1
+            for w, g in zip(want, got):
+                assert np.array_equal(w, g)  # bit for bit: the same sums over the same counts
+    assert found >= 10
+
+
+def test_edge_direction_unchanged_by_shared_pixels():
+    # complete_front reads the front grain's border pixels once for both notches
+    for a, b in _pairs():
+        ends = overlap_front.notch_points(a, b)
+        if ends is None:
+            continue
+        union = a | b
+        outer = union & ndi.binary_dilation(~union, _EIGHT)
+        rr, cc = np.nonzero(a & outer)
+        for p in ends:
+            want = overlap_front.edge_direction(a, union, p)
+            got = overlap_front._direction_at(rr, cc, p)
+            assert (want is None) == (got is None)
+            if want is not None:
+                assert np.array_equal(want, got)
