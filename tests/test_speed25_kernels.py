@@ -91,3 +91,53 @@ def test_edge_direction_unchanged_by_shared_pixels():
             assert (want is None) == (got is None)
             if want is not None:
                 assert np.array_equal(want, got)
+
+
+def _refinement_frame(seed):
+    """A faint hexagon (its dents filled) beside a square lying over a disc (its cut moved), invented."""
+    from test_faint_outline import faint_hexagon
+    from test_overlap_front import chord_split, square_over_disc
+
+    img = np.zeros((130, 250), np.float32)
+    labels = np.zeros((130, 250), np.int32)
+    hexagon, hex_labels, _ = faint_hexagon(level=0.25, seed=seed)
+    img[5:125, 0:120] = hexagon
+    labels[5:125, 0:120] = hex_labels
+    pair, disc, square = square_over_disc()
+    a, b = chord_split(disc, square)
+    img[10:120, 130:240] = np.maximum(img[10:120, 130:240], pair.astype(np.float32) * 0.3)
+    labels[10:120, 130:240][a] = 2
+    labels[10:120, 130:240][b] = 3
+    return img, labels, np.array([False, True, True])
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_refinements_keep_the_boxes_scipy_finds(seed):
+    # reference: scipy.ndimage.find_objects of the refined labels; the refinements give the same labels
+    # whether they are handed the boxes or find them
+    from grainhabit.plugins.segment import cut_edges, faint_outline, segment_grains
+
+    img, labels, split = _refinement_frame(seed)
+    boxes = ndi.find_objects(labels)
+    filled, n_filled = faint_outline.fill_faint_dents(img, labels, 0.05, boxes)
+    assert n_filled >= 1 and boxes == ndi.find_objects(filled)
+    assert np.array_equal(filled, faint_outline.fill_faint_dents(img, labels, 0.05)[0])
+    snapped, moved = cut_edges.snap_cuts(img, filled, split, boxes)
+    assert moved >= 1 and boxes == ndi.find_objects(snapped)
+    assert np.array_equal(snapped, cut_edges.snap_cuts(img, filled, split)[0])
+    given = ndi.find_objects(labels)
+    notes_a, notes_b = [], []
+    got = segment_grains.refine_outlines(img, labels, split, 0.05, notes_a, given)
+    want = segment_grains.refine_outlines(img, labels, split, 0.05, notes_b)
+    assert given == ndi.find_objects(labels)  # the caller's list is left as it was
+    for g, w in zip(got, want):
+        assert np.array_equal(g, w)
+    assert notes_a == notes_b and len(notes_a) == 2
+
+
+def test_first_pixels_from_given_boxes():
+    from grainhabit.chain_tiles import first_pixels
+
+    lab, n = ndi.label(_blobs(3, (80, 90), 0.55))
+    assert n > 3
+    assert np.array_equal(first_pixels(lab, boxes=ndi.find_objects(lab)), first_pixels(lab))
