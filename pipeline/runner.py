@@ -33,7 +33,7 @@ import numpy as np
 
 from . import __version__
 from . import chain_tiles
-from .early import EarlyFrame, use_early_frame
+from .early import EarlyFrames, early_frame_count
 from .executors import WorkerDied, make_executor
 from .frame import FrameRef
 from .lock import RunLock, describe
@@ -280,10 +280,11 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 items.append((key, (f.ref, f.sample, job)))
             early = None
             try:
-                # the first frame in a forked process while the cluster starts (a core is idle meanwhile)
-                if use_early_frame(executor, len(items)) and not _over_budget(items[0][1][0], job):
-                    early = EarlyFrame(*items[0])
-                    log.info("first frame processing in process %d while the cluster starts", early.pid)
+                # the first frames in a forked process while the cluster starts (a core is idle meanwhile)
+                n_early = early_frame_count(executor, len(items))
+                if n_early and not any(_over_budget(args[0], job) for _, args in items[:n_early]):
+                    early = EarlyFrames(items[:n_early])
+                    log.info("first %d frames processing in process %d while the cluster starts", n_early, early.pid)
                 executor.start()
                 log.info("processing %d frames on %s", len(todo), executor.description)
                 for line in executor.advice:
@@ -439,31 +440,23 @@ def _over_budget(ref: FrameRef, job: FrameJob) -> bool:
     return bool(budget) and chain_tiles.estimate_bytes(ref.shape, ref.dtype) > budget
 
 
-def _with_early(executor, items: list, early: EarlyFrame | None):
-    """``executor.map_unordered(process_frame, items)``, the first item's result taken from ``early`` instead.
+def _with_early(executor, items: list, early: EarlyFrames | None):
+    """``executor.map_unordered(process_frame, items)``, the first items' results taken from ``early`` instead.
 
-    The early frame's result is given as soon as it is there, between the
-    cluster's results; where its process died without one, the frame goes
-    to the cluster after the others.
+    The early frames' results are given as they come, between the cluster's
+    results; those whose process died without answering go to the cluster
+    after the others.
     """
     if early is None:
         yield from executor.map_unordered(process_frame, items)
         return
-    lost = False
-    for key, res in executor.map_unordered(process_frame, items[1:]):
+    for key, res in executor.map_unordered(process_frame, items[len(early.items):]):
         yield key, res
-        if early.ready():
-            got = early.take()
-            lost = got is None
-            if not lost:
-                yield early.key, got
-    if early.pending:
-        got = early.take()
-        lost = got is None
-        if not lost:
-            yield early.key, got
+        yield from early.results(wait=False)
+    yield from early.results(wait=True)
+    lost = early.lost()
     if lost:
-        yield from executor.map_unordered(process_frame, items[:1])
+        yield from executor.map_unordered(process_frame, lost)
 
 
 def _warm_for_consolidation(host: Host, snapshot: StoreSnapshot | None = None) -> None:

@@ -8,7 +8,7 @@ import pytest
 import xarray as xr
 
 from builders import run_cli, write_workflow
-from grainhabit.early import EarlyFrame, use_early_frame
+from grainhabit.early import EarlyFrames, early_frame_count
 from grainhabit.executors import DaskExecutor, SerialExecutor
 
 WF = """\
@@ -24,17 +24,18 @@ execution:
 """
 
 
-def test_used_only_for_a_local_forked_cluster_with_two_frames(monkeypatch):
+def test_one_frame_per_worker_of_a_local_forked_cluster(monkeypatch):
     monkeypatch.delenv("GRAINHABIT_EARLY_FRAME", raising=False)
     monkeypatch.setattr(sys, "platform", "linux")
-    assert use_early_frame(DaskExecutor(workers=2), 2)
-    assert not use_early_frame(DaskExecutor(workers=2), 1)
-    assert not use_early_frame(DaskExecutor(workers=2, start_method="spawn"), 5)
-    assert not use_early_frame(DaskExecutor(address="tcp://127.0.0.1:8786"), 5)
-    assert not use_early_frame(DaskExecutor(batch=("slurm", {})), 5)
-    assert not use_early_frame(SerialExecutor(), 5)
+    assert early_frame_count(DaskExecutor(workers=2), 4) == 2
+    assert early_frame_count(DaskExecutor(workers=3), 12) == 3
+    assert early_frame_count(DaskExecutor(workers=2), 3) == 0  # the cluster would have too little left
+    assert early_frame_count(DaskExecutor(workers=2, start_method="spawn"), 12) == 0
+    assert early_frame_count(DaskExecutor(address="tcp://127.0.0.1:8786"), 12) == 0
+    assert early_frame_count(DaskExecutor(batch=("slurm", {})), 12) == 0
+    assert early_frame_count(SerialExecutor(), 12) == 0
     monkeypatch.setenv("GRAINHABIT_EARLY_FRAME", "0")
-    assert not use_early_frame(DaskExecutor(workers=2), 5)
+    assert early_frame_count(DaskExecutor(workers=2), 12) == 0
 
 
 def _square(x, sample, job):
@@ -42,19 +43,27 @@ def _square(x, sample, job):
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the early frame forks (Linux only)")
-def test_a_lost_early_frame_goes_to_the_executor(monkeypatch):
+def test_lost_early_frames_go_to_the_executor(monkeypatch):
     import time
 
     from grainhabit import runner, task
 
     monkeypatch.setattr(runner, "process_frame", _square)
-    monkeypatch.setattr(task, "prepare_worker", lambda job: time.sleep(60))  # the forked process waits ...
-    early = EarlyFrame("a", (3, "sample", None))
-    early._proc.kill()  # ... and dies without an answer
-    early._proc.join()
-    got = dict(runner._with_early(SerialExecutor(), [("a", (3, "sample", None)), ("b", (4, "sample", None))], early))
-    assert sorted(got) == ["a", "b"]
-    assert got["a"]["value"] == 9 and got["b"]["value"] == 16
+    monkeypatch.setattr(task, "process_frame", _square)
+    monkeypatch.setattr(task, "prepare_worker", lambda job: time.sleep(60) if job == "slow" else None)
+    items = [("a", (2, "s", None)), ("b", (3, "s", "slow")), ("c", (4, "s", None)), ("d", (5, "s", None))]
+    early = EarlyFrames(items[:2])  # answers for "a", then waits at "b" ...
+    first = dict(early.results(wait=False))
+    deadline = time.monotonic() + 30
+    while "a" not in first and time.monotonic() < deadline:
+        time.sleep(0.05)
+        first.update(early.results(wait=False))
+    assert first == {"a": {"record": {"status": "ok"}, "value": 4}}
+    early._proc.kill()  # ... and dies there
+    got = dict(runner._with_early(SerialExecutor(), items[:1] + items[1:], early))
+    got.update(first)
+    assert sorted(got) == ["a", "b", "c", "d"]
+    assert [got[k]["value"] for k in "abcd"] == [4, 9, 16, 25]
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the early frame forks (Linux only)")
@@ -69,11 +78,11 @@ def test_same_results_with_and_without_the_early_frame(tmp_path):
     with_early = run_cli("run", write_workflow(tmp_path / "a.yaml", WF.format(name="early")),
                          env={"GRAINHABIT_EARLY_FRAME": "1"})
     assert with_early.returncode == 0, with_early.stderr
-    assert "first frame processing in process" in with_early.stderr
+    assert "first 2 frames processing in process" in with_early.stderr
     without = run_cli("run", write_workflow(tmp_path / "b.yaml", WF.format(name="cluster")),
                       env={"GRAINHABIT_EARLY_FRAME": "0"})
     assert without.returncode == 0, without.stderr
-    assert "first frame processing in process" not in without.stderr
+    assert "frames processing in process" not in without.stderr
     for group in ("grains", "frames", "summary"):
         a = xr.open_zarr(tmp_path / "out" / "early.zarr", group=group).load()
         b = xr.open_zarr(tmp_path / "out" / "cluster.zarr", group=group).load()

@@ -93,18 +93,50 @@ def test_edge_direction_unchanged_by_shared_pixels():
                 assert np.array_equal(want, got)
 
 
+def _faint_hexagon(level, seed, noise_sd=0.05, side=30):
+    """A regular hexagon at ``level`` in smoothed noise, and its largest half-level component (label 1)."""
+    from skimage.draw import polygon
+
+    angles = np.deg2rad(np.arange(0, 360, 60))
+    rr, cc = polygon(60 + side * np.sin(angles), 60 + side * np.cos(angles), (120, 120))
+    img = np.zeros((120, 120), np.float32)
+    img[rr, cc] = level
+    rng = np.random.default_rng(seed)
+    img = ndi.gaussian_filter(img, 1.0) + ndi.gaussian_filter(rng.normal(0, 1, img.shape), 1.0).astype(np.float32) \
+        * np.float32(noise_sd / 0.282)
+    lab, _ = ndi.label(img > 0.5 * level)
+    sizes = np.bincount(lab.ravel())
+    sizes[0] = 0
+    return img, (lab == sizes.argmax()).astype(np.int32)
+
+
+def _square_over_disc():
+    """A 40 px square at 1.0 over a disc of radius 25 px at 0.5, blurred; the pair cut along the straight line
+    between the notches (the circle crosses the square's sides at (72.9, 55) and (40, 67.9))."""
+    from skimage.draw import disk
+
+    shape = (110, 110)
+    disc = np.zeros(shape, bool)
+    disc[disk((50, 45), 25, shape=shape)] = True
+    square = np.zeros(shape, bool)
+    square[40:80, 55:95] = True
+    img = ndi.gaussian_filter(np.where(square, 1.0, np.where(disc, 0.5, 0.0)), 1.0)
+    union = disc | square
+    (r1, c1), (r2, c2) = (72.9, 55.0), (40.0, 67.9)
+    rr, cc = np.mgrid[:110, :110]
+    side = np.sign((c2 - c1) * (rr - r1) - (r2 - r1) * (cc - c1))
+    b = union & (side == side[60, 90])
+    return img, union & ~b, b
+
+
 def _refinement_frame(seed):
     """A faint hexagon (its dents filled) beside a square lying over a disc (its cut moved), invented."""
-    from test_faint_outline import faint_hexagon
-    from test_overlap_front import chord_split, square_over_disc
-
     img = np.zeros((130, 250), np.float32)
     labels = np.zeros((130, 250), np.int32)
-    hexagon, hex_labels, _ = faint_hexagon(level=0.25, seed=seed)
+    hexagon, hex_labels = _faint_hexagon(0.25, seed)
     img[5:125, 0:120] = hexagon
     labels[5:125, 0:120] = hex_labels
-    pair, disc, square = square_over_disc()
-    a, b = chord_split(disc, square)
+    pair, a, b = _square_over_disc()
     img[10:120, 130:240] = np.maximum(img[10:120, 130:240], pair.astype(np.float32) * 0.3)
     labels[10:120, 130:240][a] = 2
     labels[10:120, 130:240][b] = 3
