@@ -173,3 +173,23 @@ def test_first_pixels_from_given_boxes():
     lab, n = ndi.label(_blobs(3, (80, 90), 0.55))
     assert n > 3
     assert np.array_equal(first_pixels(lab, boxes=ndi.find_objects(lab)), first_pixels(lab))
+
+
+def test_lazy_interior_is_collected_once():
+    # interior._Once stands for functools.lru_cache(maxsize=1) of a closure: one call, the value kept; a call
+    # that raises is not kept (the next call tries again), as with lru_cache
+    from grainhabit.plugins.habit.interior import _Once
+
+    calls = []
+
+    def collect(x, y):
+        calls.append((x, y))
+        if len(calls) == 1:
+            raise RuntimeError("first call fails")
+        return {"sum": x + y}
+
+    once = _Once(collect, 2, 3)
+    with pytest.raises(RuntimeError):
+        once()
+    first = once()
+    assert first == {"sum": 5} and once() is first and len(calls) == 2
