@@ -495,6 +495,21 @@ def worker_malloc_trim(value: int | None):
             os.environ["MALLOC_TRIM_THRESHOLD_"] = old
 
 
+@contextlib.contextmanager
+def without_early_frames():
+    """Runs inside the block process every frame on their cluster (``GRAINHABIT_EARLY_FRAME=0``, see
+    :mod:`grainhabit.early`): one worker is then one process, as the serial loop it is compared with."""
+    old = os.environ.get("GRAINHABIT_EARLY_FRAME")
+    os.environ["GRAINHABIT_EARLY_FRAME"] = "0"
+    try:
+        yield
+    finally:
+        if old is None:
+            os.environ.pop("GRAINHABIT_EARLY_FRAME", None)
+        else:
+            os.environ["GRAINHABIT_EARLY_FRAME"] = old
+
+
 def mib(nbytes: float) -> float:
     """Bytes to MiB."""
     return nbytes / 2 ** 20 if nbytes == nbytes else float("nan")
