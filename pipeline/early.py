@@ -14,8 +14,9 @@ the other frames. Each result is the same to the bit as a worker's
 (``tests/test_early_frame.py`` compares the results stores of a run with and
 without it).
 
-It takes one frame per worker of the cluster (:func:`early_frame_count`):
-the rest then divides among the workers as the whole list would have. With
+It takes one frame per worker of the cluster, but no more than each worker
+gets (:func:`early_frame_count`): the rest then divides among the workers as
+the whole list would have. With
 one early frame on two workers, eleven frames of twelve left one worker a
 frame more than the other, and that frame's time at the end cost what the
 start had saved (a model of the run with the benchmark's frame times: 5.44
@@ -46,8 +47,9 @@ ENV_SWITCH = "GRAINHABIT_EARLY_FRAME"
 def early_frame_count(executor, n_items: int) -> int:
     """How many of a run's first frames to process in a forked process while ``executor`` starts.
 
-    As many as the cluster will have workers (one frame per worker: the rest then divides among the
-    workers as all of it would have), where at least twice that many frames are to be processed.
+    One per worker of the cluster (the rest then divides among the workers as all of it would have),
+    but no more than each worker gets: ``min(workers, n_items // (workers + 1))``, so that on a
+    machine of many cores the early process, one of them, does not finish last.
 
     Parameters
     ----------
@@ -75,7 +77,7 @@ def early_frame_count(executor, n_items: int) -> int:
     workers = getattr(executor, "workers", "auto")
     n = (os.cpu_count() or 1) if workers in ("auto", None) else int(workers)
     n = max(1, n)
-    return n if n_items >= 2 * n else 0
+    return max(0, min(n, int(n_items) // (n + 1)))
 
 
 def _child(conn, items) -> None:

@@ -284,7 +284,7 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 n_early = early_frame_count(executor, len(items))
                 if n_early and not any(_over_budget(args[0], job) for _, args in items[:n_early]):
                     early = EarlyFrames(items[:n_early])
-                    log.info("first %d frames processing in process %d while the cluster starts", n_early, early.pid)
+                    log.info("first %d frame(s) processing in process %d while the cluster starts", n_early, early.pid)
                 executor.start()
                 log.info("processing %d frames on %s", len(todo), executor.description)
                 for line in executor.advice:

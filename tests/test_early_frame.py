@@ -27,9 +27,11 @@ execution:
 def test_one_frame_per_worker_of_a_local_forked_cluster(monkeypatch):
     monkeypatch.delenv("GRAINHABIT_EARLY_FRAME", raising=False)
     monkeypatch.setattr(sys, "platform", "linux")
-    assert early_frame_count(DaskExecutor(workers=2), 4) == 2
+    assert early_frame_count(DaskExecutor(workers=2), 12) == 2
     assert early_frame_count(DaskExecutor(workers=3), 12) == 3
-    assert early_frame_count(DaskExecutor(workers=2), 3) == 0  # the cluster would have too little left
+    assert early_frame_count(DaskExecutor(workers=2), 4) == 1  # no more than each worker gets
+    assert early_frame_count(DaskExecutor(workers=64), 128) == 1
+    assert early_frame_count(DaskExecutor(workers=2), 2) == 0
     assert early_frame_count(DaskExecutor(workers=2, start_method="spawn"), 12) == 0
     assert early_frame_count(DaskExecutor(address="tcp://127.0.0.1:8786"), 12) == 0
     assert early_frame_count(DaskExecutor(batch=("slurm", {})), 12) == 0
@@ -78,11 +80,11 @@ def test_same_results_with_and_without_the_early_frame(tmp_path):
     with_early = run_cli("run", write_workflow(tmp_path / "a.yaml", WF.format(name="early")),
                          env={"GRAINHABIT_EARLY_FRAME": "1"})
     assert with_early.returncode == 0, with_early.stderr
-    assert "first 2 frames processing in process" in with_early.stderr
+    assert "first 1 frame(s) processing in process" in with_early.stderr
     without = run_cli("run", write_workflow(tmp_path / "b.yaml", WF.format(name="cluster")),
                       env={"GRAINHABIT_EARLY_FRAME": "0"})
     assert without.returncode == 0, without.stderr
-    assert "frames processing in process" not in without.stderr
+    assert "frame(s) processing in process" not in without.stderr
     for group in ("grains", "frames", "summary"):
         a = xr.open_zarr(tmp_path / "out" / "early.zarr", group=group).load()
         b = xr.open_zarr(tmp_path / "out" / "cluster.zarr", group=group).load()
