@@ -303,12 +303,11 @@ class _TimedExecutor:
             kids1 = descendants_cpu()
             user = sum(u - kids0.get(pid, (0.0, 0.0))[0] for pid, (u, _) in kids1.items())
             system = sum(v - kids0.get(pid, (0.0, 0.0))[1] for pid, (_, v) in kids1.items())
-            # children that ended meanwhile (the run's early-frame process): their whole CPU, less what they
-            # had used before the clock started
+            # children that ended meanwhile (the run's early-frame process, grainhabit.early): their whole CPU,
+            # that before the clock started too (it processed frames, which the run's CPU per frame holds)
             reaped1 = _reaped_cpu()
-            gone = [t for pid, t in kids0.items() if pid not in kids1]
-            user += reaped1[0] - reaped0[0] - sum(t[0] for t in gone)
-            system += reaped1[1] - reaped0[1] - sum(t[1] for t in gone)
+            user += reaped1[0] - reaped0[0]
+            system += reaped1[1] - reaped0[1]
             own1 = _own_cpu()
             c.cpu.update(workers=user + system, workers_system=system,
                          main=own1[0] + own1[1] - own0[0] - own0[1], main_system=own1[1] - own0[1])
