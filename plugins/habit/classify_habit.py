@@ -100,7 +100,8 @@ judged by the outline its true edges imply (:func:`free_edge`):
   about as well as a smooth curve explains the true edges (within
   ``smooth_margin``), if it adds no more than a straight cut of a body of that
   symmetry could have removed (at most fold / (fold - 1) times the visible
-  area), and a three-fold one only for a plate with a flat interior;
+  area), and a three-fold one only for a plate with a flat interior whose true edges do not meet at
+  right angles (:func:`right_angled_edges`, classify-habit 2.8: cubes left joined);
 - a body seen along [111] projects to an outline of six-fold symmetry (a
   three-fold axis and a centre of inversion): the regular hexagon of the
   octahedron, the 12-gon of a cuboctahedron. A cut octahedron completed by
@@ -200,7 +201,7 @@ FACE_VIEWS = ("100", "111")
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.7",
+    version="2.8",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -251,6 +252,13 @@ GRAINS_IN_STEP = 256
 #: Relative area by which the three-fold completion of a split grain must be smaller than the
 #: central-symmetric one to be tried first (:func:`classify_frame`).
 COMPLETION_AREA_MARGIN = 0.05
+#: A split grain is not completed three-fold where its true edges meet at right angles: at least this share
+#: of their length runs at 90 degrees to the dominant direction (within EDGE_FAMILY_DEG), more than runs at 60
+#: or 120 degrees to it (:func:`right_angled_edges`).
+RIGHT_ANGLE_SHARE = 0.15
+EDGE_FAMILY_DEG = 12.0
+#: Spacing (px) of the outline samples whose chords give the edges' directions (pixel steps averaged out).
+EDGE_CHORD_PX = 4.0
 
 
 # --------------------------------------------------------------- model families
@@ -919,6 +927,60 @@ def _square_completion(outline_px, free, three, labels, signal, mode, lab, p):
     return None
 
 
+def right_angled_edges(outline_px, free) -> bool:
+    """Whether a split grain's true edges meet at right angles rather than at 60 or 120 degrees.
+
+    Parameters
+    ----------
+    outline_px : array_like, shape (k, 2)
+        Closed outline (px).
+    free : array_like of bool, shape (k,)
+        Vertices on the grain's true edges (:func:`free_edge`).
+
+    Returns
+    -------
+    bool
+        The outline, sampled every :data:`EDGE_CHORD_PX` along its length, gives chords on the true
+        edges; weighted by length, their directions (modulo 180 degrees) are histogrammed and the
+        dominant one found (1-degree bins summed over +-6). True where the chords within
+        :data:`EDGE_FAMILY_DEG` of the dominant direction + 90 degrees hold at least
+        :data:`RIGHT_ANGLE_SHARE` of the length and more than those within it of + 60 and + 120.
+
+    Notes
+    -----
+    A twinned {111} plate's edges run in three directions 60 degrees apart (a triangle, a hexagon with
+    alternating edges), a {100} face's in two at right angles. Two or three cubes left joined (EMPS
+    f664201c62, a packed SEM field) made an outline whose three-fold completion a triangular plate
+    fitted at score 1.0; their edges meet at right angles. On the hard survey's split plates completed
+    three-fold the right-angle share is 0-0.16 against 0.2-0.6 at 60/120 degrees.
+    """
+    c = np.asarray(outline_px, float)
+    f = np.asarray(free, bool)
+    seg = np.diff(np.vstack([c, c[:1]]), axis=0)
+    s = np.r_[0.0, np.cumsum(np.hypot(seg[:, 0], seg[:, 1]))]
+    if s[-1] <= 0:
+        return False
+    n = max(int(s[-1] / EDGE_CHORD_PX), 8)
+    t = np.linspace(0.0, s[-1], n, endpoint=False)
+    x = np.interp(t, s, np.r_[c[:, 0], c[0, 0]])
+    y = np.interp(t, s, np.r_[c[:, 1], c[0, 1]])
+    on = f[np.minimum(np.searchsorted(s, t, side="right") - 1, len(c) - 1)]
+    dx, dy = np.roll(x, -1) - x, np.roll(y, -1) - y
+    w = np.hypot(dx, dy) * (on & np.roll(on, -1))
+    if not w.sum() > 0:
+        return False
+    ang = np.degrees(np.arctan2(dy, dx)) % 180.0
+    hist = np.bincount(ang.astype(int) % 180, weights=w, minlength=180)
+    dominant = int(np.argmax(sum(np.roll(hist, k) for k in range(-6, 7))))
+
+    def share(offset):
+        d = np.abs((ang - dominant - offset + 90.0) % 180.0 - 90.0)
+        return float(w[d <= EDGE_FAMILY_DEG].sum() / w.sum())
+
+    right = share(90.0)
+    return right >= RIGHT_ANGLE_SHARE and right > share(60.0) + share(120.0)
+
+
 def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current, plates=True):
     """Habit of a split grain from the outline its true edges imply (a generator of interior-fit requests).
 
@@ -930,7 +992,8 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
       1 - s of its area, so the completed area is below fold / (fold - 1) times the visible one;
     - its model explains it about as well as a smooth curve explains the true edges (within
       ``smooth_margin``; a lumpy grain completed by symmetry looks polyhedral);
-    - a three-fold completion is a plate with a flat interior (a twinned plate), a six-fold one a
+    - a three-fold completion is a plate with a flat interior (a twinned plate) whose true edges do not
+      meet at right angles (:func:`right_angled_edges`), a six-fold one a
       truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
       outlines of six-fold symmetry; a cube has no {111} face to rest on);
     - a two-fold completion is no body on {111} or along [110] (:data:`FLAT_PLATE_VIEWS`) with a
@@ -956,6 +1019,8 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
     def candidate(fold, q, beat):
         if en.polygon_centroid(q)[1] > vis * fold / (fold - 1):
             return None
+        if fold == 3 and right_angled_edges(outline_px, free):
+            return None  # edges at right angles: cubes left joined, no twinned plate
         contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
         if contour2 is None or len(contour2) < 8:
             return None
