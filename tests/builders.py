@@ -652,3 +652,23 @@ def draw_text(shape, text, xy, size, ink):
     arr = np.asarray(fig.canvas.buffer_rgba())[..., 0]
     plt.close(fig)
     return arr[: shape[0], : shape[1]] < 128
+
+
+def faint_hexagon(level, noise_sd=0.05, side=30, seed=0):
+    """A regular hexagon of ``side`` px at ``level`` in noise smoothed by 1 px; its largest half-level component
+    (label 1); and its handbook area 3 sqrt(3) / 2 side^2."""
+    from skimage.draw import polygon
+
+    angles = np.deg2rad(np.arange(0, 360, 60))
+    rr, cc = polygon(60 + side * np.sin(angles), 60 + side * np.cos(angles), (120, 120))
+    img = np.zeros((120, 120), np.float32)
+    img[rr, cc] = level
+    rng = np.random.default_rng(seed)
+    img = ndi.gaussian_filter(img, 1.0) + ndi.gaussian_filter(rng.normal(0, 1, img.shape), 1.0).astype(np.float32) \
+        * np.float32(noise_sd / 0.282)          # noise smoothed by 1 px, scaled to noise_sd (1 / (2 sqrt(pi)) = 0.282)
+    half = img > 0.5 * level
+    lab, _ = ndi.label(half)
+    sizes = np.bincount(lab.ravel())
+    sizes[0] = 0
+    labels = (lab == sizes.argmax()).astype(np.int32)
+    return img, labels, 3 * np.sqrt(3) / 2 * side ** 2

@@ -12,6 +12,8 @@ from scipy import ndimage as ndi
 
 from grainhabit.plugins.segment import overlap_front
 
+from builders import faint_hexagon
+
 _FOUR = ndi.generate_binary_structure(2, 1)
 _EIGHT = np.ones((3, 3), bool)
 
@@ -93,23 +95,6 @@ def test_edge_direction_unchanged_by_shared_pixels():
                 assert np.array_equal(want, got)
 
 
-def _faint_hexagon(level, seed, noise_sd=0.05, side=30):
-    """A regular hexagon at ``level`` in smoothed noise, and its largest half-level component (label 1)."""
-    from skimage.draw import polygon
-
-    angles = np.deg2rad(np.arange(0, 360, 60))
-    rr, cc = polygon(60 + side * np.sin(angles), 60 + side * np.cos(angles), (120, 120))
-    img = np.zeros((120, 120), np.float32)
-    img[rr, cc] = level
-    rng = np.random.default_rng(seed)
-    img = ndi.gaussian_filter(img, 1.0) + ndi.gaussian_filter(rng.normal(0, 1, img.shape), 1.0).astype(np.float32) \
-        * np.float32(noise_sd / 0.282)
-    lab, _ = ndi.label(img > 0.5 * level)
-    sizes = np.bincount(lab.ravel())
-    sizes[0] = 0
-    return img, (lab == sizes.argmax()).astype(np.int32)
-
-
 def _square_over_disc():
     """A 40 px square at 1.0 over a disc of radius 25 px at 0.5, blurred; the pair cut along the straight line
     between the notches (the circle crosses the square's sides at (72.9, 55) and (40, 67.9))."""
@@ -133,7 +118,7 @@ def _refinement_frame(seed):
     """A faint hexagon (its dents filled) beside a square lying over a disc (its cut moved), invented."""
     img = np.zeros((130, 250), np.float32)
     labels = np.zeros((130, 250), np.int32)
-    hexagon, hex_labels = _faint_hexagon(0.25, seed)
+    hexagon, hex_labels, _ = faint_hexagon(0.25, seed=seed)
     img[5:125, 0:120] = hexagon
     labels[5:125, 0:120] = hex_labels
     pair, a, b = _square_over_disc()

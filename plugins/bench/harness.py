@@ -472,6 +472,20 @@ class TreeRssSampler:
 
 
 @contextlib.contextmanager
+def environment_variable(name: str, value: str):
+    """Set the environment variable ``name`` to ``value`` inside the block, as it was after it."""
+    old = os.environ.get(name)
+    os.environ[name] = value
+    try:
+        yield
+    finally:
+        if old is None:
+            os.environ.pop(name, None)
+        else:
+            os.environ[name] = old
+
+
+@contextlib.contextmanager
 def worker_malloc_trim(value: int | None):
     """Give local workers started inside the block ``MALLOC_TRIM_THRESHOLD_=value``.
 
@@ -483,30 +497,14 @@ def worker_malloc_trim(value: int | None):
     if value is None:
         yield
         return
-    old = os.environ.get("MALLOC_TRIM_THRESHOLD_")
-    os.environ["MALLOC_TRIM_THRESHOLD_"] = str(int(value))
-    try:
+    with environment_variable("MALLOC_TRIM_THRESHOLD_", str(int(value))):
         yield
-    finally:
-        if old is None:
-            os.environ.pop("MALLOC_TRIM_THRESHOLD_", None)
-        else:
-            os.environ["MALLOC_TRIM_THRESHOLD_"] = old
 
 
-@contextlib.contextmanager
 def without_early_frames():
     """Runs inside the block process every frame on their cluster (``GRAINHABIT_EARLY_FRAME=0``, see
     :mod:`grainhabit.early`): one worker is then one process, as the serial loop it is compared with."""
-    old = os.environ.get("GRAINHABIT_EARLY_FRAME")
-    os.environ["GRAINHABIT_EARLY_FRAME"] = "0"
-    try:
-        yield
-    finally:
-        if old is None:
-            os.environ.pop("GRAINHABIT_EARLY_FRAME", None)
-        else:
-            os.environ["GRAINHABIT_EARLY_FRAME"] = old
+    return environment_variable("GRAINHABIT_EARLY_FRAME", "0")
 
 
 def mib(nbytes: float) -> float:
