@@ -672,3 +672,15 @@ def faint_hexagon(level, noise_sd=0.05, side=30, seed=0):
     sizes[0] = 0
     labels = (lab == sizes.argmax()).astype(np.int32)
     return img, labels, 3 * np.sqrt(3) / 2 * side ** 2
+
+
+def write_two_batches(data: Path, frames: int = 2) -> Path:
+    """Invented frames of two samples, ``alpha-batch`` and ``beta-batch``, ``frames`` TIFFs each (5 nm/px),
+    under ``data/<sample>/f<i>.tif``: discs and squares whose sizes differ a little by sample and frame."""
+    for s, sample in enumerate(("alpha-batch", "beta-batch")):
+        for i in range(frames):
+            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
+                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
+            write_tiff(data / sample / f"f{i}.tif", img, 5.0)
+    return data
+

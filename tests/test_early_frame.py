@@ -70,13 +70,9 @@ def test_lost_early_frames_go_to_the_executor(monkeypatch):
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the early frame forks (Linux only)")
 def test_same_results_with_and_without_the_early_frame(tmp_path):
-    from builders import draw_frame, write_tiff
+    from builders import write_two_batches
 
-    for s, sample in enumerate(("alpha-batch", "beta-batch")):
-        for i in range(2):
-            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
-                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
-            write_tiff(tmp_path / "data" / sample / f"f{i}.tif", img, 5.0)
+    write_two_batches(tmp_path / "data")
     with_early = run_cli("run", write_workflow(tmp_path / "a.yaml", WF.format(name="early")),
                          env={"GRAINHABIT_EARLY_FRAME": "1"})
     assert with_early.returncode == 0, with_early.stderr
