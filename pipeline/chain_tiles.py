@@ -290,7 +290,7 @@ def _clusters(frame: FrameData) -> np.ndarray:
     return lab
 
 
-def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
+def first_pixels(labels: np.ndarray, n: int | None = None, boxes: list | None = None) -> np.ndarray:
     """Row-major index of the first pixel of every label 1..n (-1 for an absent label).
 
     Parameters
@@ -299,6 +299,9 @@ def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
         0 background, positive ids.
     n : int, optional
         Largest id (default ``labels.max()``).
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels, max_label=n)`` where the caller already has it (the pass
+        over the frame is then skipped).
 
     Returns
     -------
@@ -320,7 +323,7 @@ def first_pixels(labels: np.ndarray, n: int | None = None) -> np.ndarray:
     if n == 0:
         return out
     cols = lab.shape[1]
-    for k, box in enumerate(ndi.find_objects(lab, max_label=n), start=1):
+    for k, box in enumerate(ndi.find_objects(lab, max_label=n) if boxes is None else boxes[:n], start=1):
         if box is None:
             continue
         r, c = box[0].start, box[1]

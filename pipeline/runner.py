@@ -32,6 +32,8 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
+from . import chain_tiles
+from .early import EarlyFrames, early_frame_count
 from .executors import WorkerDied, make_executor
 from .frame import FrameRef
 from .lock import RunLock, describe
@@ -271,7 +273,18 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             executor = obs.executor(make_executor(plan.config["execution"], upload=upload))
             progress = Progress(len(todo), log, tty=tty)
             by_key = {}
+            items = []
+            for f in todo:
+                by_key.setdefault(f.key, f)
+            for key, f in by_key.items():
+                items.append((key, (f.ref, f.sample, job)))
+            early = None
             try:
+                # the first frames in a forked process while the cluster starts (a core is idle meanwhile)
+                n_early = early_frame_count(executor, len(items))
+                if n_early and not any(_over_budget(args[0], job) for _, args in items[:n_early]):
+                    early = EarlyFrames(items[:n_early])
+                    log.info("first %d frame(s) processing in process %d while the cluster starts", n_early, early.pid)
                 executor.start()
                 log.info("processing %d frames on %s", len(todo), executor.description)
                 for line in executor.advice:
@@ -284,18 +297,13 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 log.info("%d of %d workers ready (imports and plugin tables: %.1f s at most)", len(took),
                          len(ready), max(took, default=0.0))
                 progress.t0 = time.monotonic()
-                items = []
-                for f in todo:
-                    by_key.setdefault(f.key, f)
-                for key, f in by_key.items():
-                    items.append((key, (f.ref, f.sample, job)))
                 # once fewer frames are left than the workers can run at once, a core is idle until the last
                 # frame ends: the main process warms up for the consolidation there (never in-process frames)
                 slots = max(1, int(getattr(executor, "n_workers", 1) or 1) * int(getattr(executor, "threads", 1) or 1))
                 warm_after = None if getattr(executor, "in_process", True) else max(0, len(items) - slots + 1)
                 if warm_after == 0:
                     warm = _Background(_warm_for_consolidation, host, snapshot)
-                for done, (key, res) in enumerate(executor.map_unordered(process_frame, items), start=1):
+                for done, (key, res) in enumerate(_with_early(executor, items, early), start=1):
                     if done == warm_after:
                         warm = _Background(_warm_for_consolidation, host, snapshot)
                     f = by_key[key]
@@ -318,6 +326,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                             log.debug("traceback of %s:\n%s", f.ref.source, res["traceback"])
                     progress.update(rec["status"] == "ok", rec.get("grain_count", 0))
             finally:
+                if early is not None:
+                    early.stop()
                 progress.close()
                 closer.close(executor)  # beside consolidation; the run waits for it before it returns
 
@@ -422,6 +432,31 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 log.info("report written to %s", outcome.report)
     outcome.seconds = time.monotonic() - t_start
     return outcome
+
+
+def _over_budget(ref: FrameRef, job: FrameJob) -> bool:
+    """Whether a frame is processed by tiles spread over the cluster (never in the early process)."""
+    budget = chain_tiles.frame_budget(job.frame_memory)
+    return bool(budget) and chain_tiles.estimate_bytes(ref.shape, ref.dtype) > budget
+
+
+def _with_early(executor, items: list, early: EarlyFrames | None):
+    """``executor.map_unordered(process_frame, items)``, the first items' results taken from ``early`` instead.
+
+    The early frames' results are given as they come, between the cluster's
+    results; those whose process died without answering go to the cluster
+    after the others.
+    """
+    if early is None:
+        yield from executor.map_unordered(process_frame, items)
+        return
+    for key, res in executor.map_unordered(process_frame, items[len(early.items):]):
+        yield key, res
+        yield from early.results(wait=False)
+    yield from early.results(wait=True)
+    lost = early.lost()
+    if lost:
+        yield from executor.map_unordered(process_frame, lost)
 
 
 def _warm_for_consolidation(host: Host, snapshot: StoreSnapshot | None = None) -> None:

@@ -636,3 +636,51 @@ def faint_objects_reference(low, high, min_area=0.0):
                 continue
         out[r0:r1, c0:c1] |= own
     return out
+
+
+def draw_text(shape, text, xy, size, ink):
+    """A raster of ``text`` drawn with matplotlib's Agg renderer (bold serif), as a bool mask."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig = plt.figure(figsize=(shape[1] / 100, shape[0] / 100), dpi=100)
+    fig.text(xy[0] / shape[1], 1 - xy[1] / shape[0], text, fontsize=size, fontweight="bold", family="serif",
+             va="top", ha="left", color="black")
+    fig.canvas.draw()
+    arr = np.asarray(fig.canvas.buffer_rgba())[..., 0]
+    plt.close(fig)
+    return arr[: shape[0], : shape[1]] < 128
+
+
+def faint_hexagon(level, noise_sd=0.05, side=30, seed=0):
+    """A regular hexagon of ``side`` px at ``level`` in noise smoothed by 1 px; its largest half-level component
+    (label 1); and its handbook area 3 sqrt(3) / 2 side^2."""
+    from skimage.draw import polygon
+
+    angles = np.deg2rad(np.arange(0, 360, 60))
+    rr, cc = polygon(60 + side * np.sin(angles), 60 + side * np.cos(angles), (120, 120))
+    img = np.zeros((120, 120), np.float32)
+    img[rr, cc] = level
+    rng = np.random.default_rng(seed)
+    img = ndi.gaussian_filter(img, 1.0) + ndi.gaussian_filter(rng.normal(0, 1, img.shape), 1.0).astype(np.float32) \
+        * np.float32(noise_sd / 0.282)          # noise smoothed by 1 px, scaled to noise_sd (1 / (2 sqrt(pi)) = 0.282)
+    half = img > 0.5 * level
+    lab, _ = ndi.label(half)
+    sizes = np.bincount(lab.ravel())
+    sizes[0] = 0
+    labels = (lab == sizes.argmax()).astype(np.int32)
+    return img, labels, 3 * np.sqrt(3) / 2 * side ** 2
+
+
+def write_two_batches(data: Path, frames: int = 2) -> Path:
+    """Invented frames of two samples, ``alpha-batch`` and ``beta-batch``, ``frames`` TIFFs each (5 nm/px),
+    under ``data/<sample>/f<i>.tif``: discs and squares whose sizes differ a little by sample and frame."""
+    for s, sample in enumerate(("alpha-batch", "beta-batch")):
+        for i in range(frames):
+            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
+                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
+            write_tiff(data / sample / f"f{i}.tif", img, 5.0)
+    return data
+

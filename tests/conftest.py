@@ -9,7 +9,7 @@ import tempfile
 
 import pytest
 
-from builders import draw_frame, write_tiff
+from builders import write_two_batches
 
 # model tables cached on disk (plugins/habit/disk_cache.py) go to a folder of this test session, shared by
 # the workers and command-line runs it starts, never to the user's own cache
@@ -21,9 +21,5 @@ atexit.register(shutil.rmtree, os.environ["GRAINHABIT_CACHE"], True)
 def small_survey(tmp_path):
     """Two samples of two frames each: discs and squares of known size, 5 nm pixels."""
     data = tmp_path / "data"
-    for s, sample in enumerate(("alpha-batch", "beta-batch")):
-        for i in range(2):
-            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
-                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
-            write_tiff(data / sample / f"f{i}.tif", img, 5.0)
+    write_two_batches(data)
     return tmp_path

@@ -11,7 +11,7 @@ from grainhabit.plugins.preprocess import flatten_background
 from grainhabit.plugins.segment import segment_grains
 from grainhabit.plugins.segment.mark_shapes import bars_with_captions, line_pieces
 
-from test_polarity_ink import draw_text
+from builders import draw_text
 
 
 def particle_ink_frame(caption=True, seed=5, size=20, blur=1.0):

@@ -28,11 +28,20 @@ def test_damaged_file_is_rebuilt_and_stale_files_go(tmp_path, monkeypatch):
     path = disk_cache.file_for("classify_habit.family_signatures", (32, 0))
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_bytes(b"not a pickle")
-    stale = path.with_name(path.name.rsplit("-", 1)[0] + "-0000000000000000.pickle")
-    stale.write_bytes(b"old code")
+    import os
+    import time
+
+    # files of the same table built by other code: the KEEP_VERSIONS - 1 newest stay (another checkout may
+    # use them), the older go
+    stale = [path.with_name(path.name.rsplit("-", 1)[0] + f"-{i:016d}.pickle") for i in range(disk_cache.KEEP_VERSIONS)]
+    now = time.time()
+    for age, f in enumerate(stale):
+        f.write_bytes(b"old code")
+        os.utime(f, (now - 100 - age, now - 100 - age))  # stale[0] the newest
     got = build(32, 0)
     np.testing.assert_array_equal(got[1][0], want[1][0])
-    assert path.is_file() and not stale.exists()
+    assert path.is_file()
+    assert [f.exists() for f in stale] == [True] * (disk_cache.KEEP_VERSIONS - 1) + [False]
     assert build(32, 0)[0].tolist() == want[0].tolist()
 
 

@@ -6,27 +6,11 @@ checked against handbook geometry (3 sqrt(3) / 2 s^2 for side s); solidity = are
 """
 
 import numpy as np
-from scipy import ndimage as ndi
-from skimage.draw import polygon
 from skimage.morphology import convex_hull_image
 
 from grainhabit.plugins.segment import faint_outline
 
-
-def faint_hexagon(level, noise_sd=0.05, side=30, seed=0):
-    angles = np.deg2rad(np.arange(0, 360, 60))
-    rr, cc = polygon(60 + side * np.sin(angles), 60 + side * np.cos(angles), (120, 120))
-    img = np.zeros((120, 120), np.float32)
-    img[rr, cc] = level
-    rng = np.random.default_rng(seed)
-    img = ndi.gaussian_filter(img, 1.0) + ndi.gaussian_filter(rng.normal(0, 1, img.shape), 1.0).astype(np.float32) \
-        * np.float32(noise_sd / 0.282)          # noise smoothed by 1 px, scaled to noise_sd (1 / (2 sqrt(pi)) = 0.282)
-    half = img > 0.5 * level
-    lab, _ = ndi.label(half)
-    sizes = np.bincount(lab.ravel())
-    sizes[0] = 0
-    labels = (lab == sizes.argmax()).astype(np.int32)
-    return img, labels, 3 * np.sqrt(3) / 2 * side ** 2
+from builders import faint_hexagon
 
 
 def solidity(mask):

@@ -261,3 +261,30 @@ def test_habit_accuracy_by_size_band_adds_up_to_the_confusion_matrix(frame):
     cells = list(s["habit_by_size"].values())
     assert sum(c[1] for c in cells) == int(s["confusion"].sum()) > 0
     assert sum(c[0] for c in cells) == int(np.trace(s["confusion"])) == sum(c[1] for c in cells)
+
+
+def test_habit_errors_are_split_by_confidence(frame):
+    # A wrong habit named with habit_score above 0.5 is a confident error, one at or below 0.5 a
+    # hedged one, a faceted grain left irregular is counted apart; right habits count in none, and
+    # the three add up to the errors of the confusion matrix.
+    from dataclasses import replace
+
+    found = _perfect(frame)
+    g = dict(found.grains)
+    n = len(g["label"])
+    g["habit"] = g["habit"].copy()
+    g["habit_score"] = np.full(n, 0.9)
+    inside = [t for t in range(1, n + 1) if t not in accuracy.border_labels(frame.field.labels)]
+    faceted = [t for t in inside if g["habit"][t - 1] != "irregular"]
+    for t, score in ((faceted[0], 0.9), (faceted[1], 0.25)):
+        g["habit"][t - 1] = "rod" if g["habit"][t - 1] != "rod" else "cube"
+        g["habit_score"][t - 1] = score
+    g["habit"][faceted[2] - 1] = "irregular"                      # left undetermined, whatever its score
+    s = accuracy.score_hard_frame(frame, replace(found, grains=g))
+    assert s["habit_errors"] == {"confident": 1, "low_score": 1, "irregular": 1}
+    assert sum(s["habit_errors"].values()) == int(s["confusion"].sum() - np.trace(s["confusion"]))
+    r = accuracy.summarise_hard(s)
+    assert r["habit_errors"] == {"confident": 1, "low_score": 1, "irregular": 1}
+    text = accuracy.format_hard("bright", {**r, "seconds": 0.0, "focused": {}, "defocused": {"frames": 0}})
+    assert "1 another habit named with habit_score > 0.5" in text and "1 named at or below" in text
+    assert "1 left irregular" in text

@@ -341,7 +341,10 @@ def test_every_worker_is_prepared_once_before_its_frames(tmp_path):
     assert res.returncode == 0, res.stderr
     assert "2 of 2 workers ready" in res.stderr
     files = sorted(marks.iterdir())
-    assert len(files) == 2 and all(f.read_text() == "x" for f in files)  # one per worker process, once
+    # one per worker process, once, and one for the process that runs the first frames while the cluster
+    # starts (grainhabit.early: one frame per worker, 2 of these 6)
+    assert "first 2 frame(s) processing in process" in res.stderr
+    assert len(files) == 3 and all(f.read_text() == "x" for f in files)
     frames = xr.open_zarr(tmp_path / "out" / "r.zarr", group="frames").load()
     assert set(frames["status"].values.tolist()) == {"ok"}  # needs-ready raises in an unprepared process
 

@@ -9,6 +9,8 @@ from scipy import ndimage as ndi
 from grainhabit.plugins.preprocess import flatten_background, polarity
 from grainhabit.plugins.segment import annotations, segment_grains
 
+from builders import draw_text
+
 REALDATA = Path(__file__).resolve().parents[1].parent / "shared" / "realdata" / "emps_train"
 
 
@@ -53,22 +55,6 @@ def test_polarity_of_grains_that_cover_most_of_the_frame(dark):
 
     fg = out > threshold_otsu(out)
     assert (fg == mask).mean() > 0.9
-
-
-def draw_text(shape, text, xy, size, ink):
-    """A raster of ``text`` drawn with matplotlib's Agg renderer (bold serif), as a bool mask."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig = plt.figure(figsize=(shape[1] / 100, shape[0] / 100), dpi=100)
-    fig.text(xy[0] / shape[1], 1 - xy[1] / shape[0], text, fontsize=size, fontweight="bold", family="serif",
-             va="top", ha="left", color="black")
-    fig.canvas.draw()
-    arr = np.asarray(fig.canvas.buffer_rgba())[..., 0]
-    plt.close(fig)
-    return arr[: shape[0], : shape[1]] < 128
 
 
 def test_bold_label_and_thick_scale_bar_are_dropped_grains_kept():

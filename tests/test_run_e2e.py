@@ -36,14 +36,10 @@ SUMMARY_VARS = ["grain_count", "ecd_mean_nm", "ecd_cov_pct", "ecd_d10_nm", "ecd_
 @pytest.fixture(scope="module")
 def local_run(tmp_path_factory):
     """One run on a real local dask cluster (2 worker processes)."""
-    from builders import draw_frame, write_tiff
+    from builders import write_two_batches
 
     root = tmp_path_factory.mktemp("e2e")
-    for s, sample in enumerate(("alpha-batch", "beta-batch")):
-        for i in range(2):
-            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
-                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
-            write_tiff(root / "data" / sample / f"f{i}.tif", img, 5.0)
+    write_two_batches(root / "data")
     wf = write_workflow(root / "wf.yaml", WF.format(scheduler="local"))
     proc = run_cli("run", wf)
     return root, proc

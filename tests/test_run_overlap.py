@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from builders import draw_frame, run_cli, write_tiff, write_workflow
+from builders import run_cli, write_two_batches, write_workflow
 
 WF = """\
 version: 1
@@ -44,11 +44,7 @@ def _root_without_runs(doc: bytes) -> dict:
 
 
 def test_store_from_memory_equals_store_from_staging_files(tmp_path):
-    for s, sample in enumerate(("alpha-batch", "beta-batch")):
-        for i in range(3):
-            img = draw_frame(discs=[(60, 60, 20), (60, 180, 15 + 3 * s)],
-                             squares=[(150, 40, 40), (150, 160, 30 + 2 * i)], seed=10 * s + i)
-            write_tiff(tmp_path / "data" / sample / f"f{i}.tif", img, 5.0)
+    write_two_batches(tmp_path / "data", frames=3)
     wf = write_workflow(tmp_path / "wf.yaml", WF)
     first = run_cli("run", wf, cwd=tmp_path)
     assert first.returncode == 0, first.stderr

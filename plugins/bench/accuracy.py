@@ -368,6 +368,7 @@ def score_hard_frame(hf, found) -> dict:
     conf = np.zeros((len(HABITS), len(HABITS)), int)
     err_cubo, err_poly, ecd_found, ecd_matched = [], [], [], []
     by_size: dict = {}
+    wrong = {"confident": 0, "low_score": 0, "irregular": 0}
     if found is not None and found.grains and "label" in found.grains:
         g = found.grains
         row = {int(v): i for i, v in enumerate(np.asarray(g["label"]))}
@@ -386,6 +387,11 @@ def score_hard_frame(hf, found) -> dict:
             cell = by_size.setdefault(band, [0, 0])
             cell[0] += spec.habit == str(g["habit"][i])
             cell[1] += 1
+            if spec.habit != str(g["habit"][i]):
+                score = float(g["habit_score"][i]) if "habit_score" in g else float("nan")
+                kind = ("irregular" if str(g["habit"][i]) == "irregular"
+                        else "confident" if score > CONFIDENT_SCORE else "low_score")
+                wrong[kind] += 1
             if spec.habit in POLYHEDRAL_HABITS and "alpha" in g:
                 est = float(g["alpha"][i])
                 a = float(spec.alpha) if np.isfinite(spec.alpha) else TYPICAL_ALPHA[spec.habit]
@@ -398,6 +404,7 @@ def score_hard_frame(hf, found) -> dict:
             ecd_found = list(ecd[np.isfinite(ecd) & (ecd > 0) & ~edge])
     out["confusion"] = conf
     out["habit_by_size"] = by_size
+    out["habit_errors"] = wrong
     out["alpha_err_cubo"], out["alpha_err_poly"] = err_cubo, err_poly
     keep = [t for t in range(1, len(at)) if t not in t_edge and at[t] > 0]
     out["ecd_truth_nm"] = list(np.sqrt(4 * at[keep] / np.pi) * f.pixel_size_nm)
@@ -410,6 +417,12 @@ def score_hard_frame(hf, found) -> dict:
     out["qc_codes"] = {c: 1 for c in codes}
     return out
 
+
+#: habit_score above which a wrong habit other than ``irregular`` counts as a confident error in the hard survey's
+#: printout (0.5 or less is the step's way of hedging: an octahedron a truncated body fits as well is named at
+#: <= 0.5). A faceted grain left ``irregular`` (the step's undetermined label: "unresolved", "undetermined",
+#: concave, rounded, fitting no family) is counted apart, whatever its score.
+CONFIDENT_SCORE = 0.5
 
 #: Bands of the truth's ECD (px) the habit accuracy is also given for: (label, lower bound), upper bound the next one's.
 SIZE_BANDS = (("under 20 px", 0.0), ("20-40 px", 20.0), ("40-80 px", 40.0), ("80 px and over", 80.0))
@@ -484,6 +497,7 @@ def summarise_hard(tot: dict) -> dict:
         "annotations": tot.get("annotations", {}), "extras": tot.get("extras", {}),
         "confusion": conf.tolist() if conf is not None else [],
         "habit_by_size": {name: tot.get("habit_by_size", {}).get(name, [0, 0]) for name, _ in SIZE_BANDS},
+        "habit_errors": {k: tot.get("habit_errors", {}).get(k, 0) for k in ("confident", "low_score", "irregular")},
         "qc_frames": tot.get("qc", 0), "qc_codes": tot.get("qc_codes", {}),
         "failed_frames": tot.get("failed", 0),
     }
@@ -577,6 +591,9 @@ def format_hard(kind: str, r: dict) -> str:
         + (f"; alpha MAE cuboctahedra {r['alpha_mae_cubo']:.3f} ({r['n_alpha_cubo']} with alpha "
            f"determined), all polyhedra {r['alpha_mae_poly']:.3f} ({r['n_alpha_poly']}; truth clipped to "
            "[1, 3])" if r["n_alpha_poly"] else ""),
+        f"  habit errors: {r['habit_errors']['confident']} another habit named with habit_score > {CONFIDENT_SCORE:g} "
+        f"(confidently wrong), {r['habit_errors']['low_score']} named at or below (hedged), "
+        f"{r['habit_errors']['irregular']} left irregular",
         "  habit accuracy by the truth's ECD: " + ", ".join(
             f"{name} {_frac(cell)}" for name, cell in r.get("habit_by_size", {}).items() if cell[1]),
         f"  COV of ECD (sample = the {kind} frames): truth {r['cov_truth_pct']:.1f} %, found "

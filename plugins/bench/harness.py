@@ -246,6 +246,12 @@ def _own_cpu() -> tuple[float, float]:
     return r.ru_utime, r.ru_stime
 
 
+def _reaped_cpu() -> tuple[float, float]:
+    """(user, system) CPU seconds of this process's children that have ended and been waited for."""
+    r = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return r.ru_utime, r.ru_stime
+
+
 class _TimedExecutor:
     """Wraps an executor: times start/close, first/last result, CPU of its processes."""
 
@@ -263,7 +269,7 @@ class _TimedExecutor:
         c.marks["processing_start"] = time.perf_counter()
         c.marks["processing_start_wall"] = time.time()
         c.workers = int(getattr(self.inner, "n_workers", 0) or 0)
-        c._cpu0 = (descendants_cpu(), _own_cpu())
+        c._cpu0 = (descendants_cpu(), _own_cpu(), _reaped_cpu())
 
     def prepare(self, func, *args):
         t0 = time.perf_counter()
@@ -275,7 +281,7 @@ class _TimedExecutor:
             # the frames' span, and the CPU beside it, start once the workers are ready
             c.marks["processing_start"] = time.perf_counter()
             c.marks["processing_start_wall"] = time.time()
-            c._cpu0 = (descendants_cpu(), _own_cpu())
+            c._cpu0 = (descendants_cpu(), _own_cpu(), _reaped_cpu())
 
     def map_unordered(self, func, items):
         for key, res in self.inner.map_unordered(func, items):
@@ -293,10 +299,15 @@ class _TimedExecutor:
         c.marks["processing_end"] = time.perf_counter()
         c.marks["processing_end_wall"] = time.time()
         if c._cpu0 is not None:
-            kids0, own0 = c._cpu0
+            kids0, own0, reaped0 = c._cpu0
             kids1 = descendants_cpu()
             user = sum(u - kids0.get(pid, (0.0, 0.0))[0] for pid, (u, _) in kids1.items())
             system = sum(v - kids0.get(pid, (0.0, 0.0))[1] for pid, (_, v) in kids1.items())
+            # children that ended meanwhile (the run's early-frame process, grainhabit.early): their whole CPU,
+            # that before the clock started too (it processed frames, which the run's CPU per frame holds)
+            reaped1 = _reaped_cpu()
+            user += reaped1[0] - reaped0[0]
+            system += reaped1[1] - reaped0[1]
             own1 = _own_cpu()
             c.cpu.update(workers=user + system, workers_system=system,
                          main=own1[0] + own1[1] - own0[0] - own0[1], main_system=own1[1] - own0[1])
@@ -461,6 +472,20 @@ class TreeRssSampler:
 
 
 @contextlib.contextmanager
+def environment_variable(name: str, value: str):
+    """Set the environment variable ``name`` to ``value`` inside the block, as it was after it."""
+    old = os.environ.get(name)
+    os.environ[name] = value
+    try:
+        yield
+    finally:
+        if old is None:
+            os.environ.pop(name, None)
+        else:
+            os.environ[name] = old
+
+
+@contextlib.contextmanager
 def worker_malloc_trim(value: int | None):
     """Give local workers started inside the block ``MALLOC_TRIM_THRESHOLD_=value``.
 
@@ -472,15 +497,14 @@ def worker_malloc_trim(value: int | None):
     if value is None:
         yield
         return
-    old = os.environ.get("MALLOC_TRIM_THRESHOLD_")
-    os.environ["MALLOC_TRIM_THRESHOLD_"] = str(int(value))
-    try:
+    with environment_variable("MALLOC_TRIM_THRESHOLD_", str(int(value))):
         yield
-    finally:
-        if old is None:
-            os.environ.pop("MALLOC_TRIM_THRESHOLD_", None)
-        else:
-            os.environ["MALLOC_TRIM_THRESHOLD_"] = old
+
+
+def without_early_frames():
+    """Runs inside the block process every frame on their cluster (``GRAINHABIT_EARLY_FRAME=0``, see
+    :mod:`grainhabit.early`): one worker is then one process, as the serial loop it is compared with."""
+    return environment_variable("GRAINHABIT_EARLY_FRAME", "0")
 
 
 def mib(nbytes: float) -> float:

@@ -422,7 +422,8 @@ def run(argv: list[str]) -> int:
             a = serial_loop(paths)
             a.update(load_before=l0, load_after=bu.load_average())
             rounds["a"].append(a)
-            rounds["b"].append(pipeline_case(one, host, 1, args.malloc_trim))
+            with bu.without_early_frames():  # (b) is one process against the loop: the overhead per worker
+                rounds["b"].append(pipeline_case(one, host, 1, args.malloc_trim))
             if workers > 1:  # else (c) would repeat (b)
                 rounds["c"].append(pipeline_case(every, host, workers, args.malloc_trim))
                 l0 = bu.load_average()

@@ -66,6 +66,11 @@ Decision
    in transmission its projected thickness falls to zero at the rim over two
    thirds of its area, a dome that the round body explains as well as the
    facets (so ``facet_chi2`` stays low) but a flat plate does not.
+6b. ``irregular`` with ``habit_score`` <= 0.25 ("undetermined") where only a body seen along [110]
+   fits the outline (no view along [100] or [111] within ``tolerance``) and, in secondary-electron
+   contrast, the placed models explain the interior no better than a featureless surface
+   (``facet_chi2`` below ``tolerance``): such a body rests on an edge where two of its faces meet,
+   lit differently (:data:`EDGE_VIEWS`; classify-habit 2.7).
 7. Everything else is polyhedral and named by alpha (thresholds in
    :mod:`vocabulary`): ``cube`` alpha <= 1.5, ``cuboctahedron``
    1.5 < alpha < 3, ``octahedron`` alpha >= 3; a cuboctahedron needs
@@ -95,7 +100,8 @@ judged by the outline its true edges imply (:func:`free_edge`):
   about as well as a smooth curve explains the true edges (within
   ``smooth_margin``), if it adds no more than a straight cut of a body of that
   symmetry could have removed (at most fold / (fold - 1) times the visible
-  area), and a three-fold one only for a plate with a flat interior;
+  area), and a three-fold one only for a plate with a flat interior whose true edges do not meet at
+  right angles (:func:`right_angled_edges`, classify-habit 2.8: cubes left joined);
 - a body seen along [111] projects to an outline of six-fold symmetry (a
   three-fold axis and a centre of inversion): the regular hexagon of the
   octahedron, the 12-gon of a cuboctahedron. A cut octahedron completed by
@@ -115,7 +121,10 @@ completion does (a grain cut along its true contact keeps the outline it has).
 
 A cut plate that still fits the plate family takes its edge ratio from the
 outline completed three-fold (a corner cut by the neighbour looks like a short
-edge). Its area and ECD stay those of the visible part (measure-grains).
+edge), unless its two-fold completion is clearly smaller and a body seen along
+[100]: a square cut at a corner is a pentagon that the plate family fits
+(:func:`_square_completion`). Its area and ECD stay those of the visible part
+(measure-grains).
 
 The plate and rod family outlines are rounded like the Wulff models (the
 rounding level of :func:`engine.match_outline`), and the plate's edge ratio is
@@ -174,10 +183,25 @@ MIN_RESOLVED_PX = 8.0
 #: of these (a view along [100] is a cube's flat top face).
 FLAT_PLATE_VIEWS = ("111", "110")
 
+#: Views along which a body rests on an edge, not a face: two inclined facets meet along the edge on top
+#: (in transmission the thickness rises to a ridge). Where only such a view fits a grain's outline (no view
+#: of :data:`FACE_VIEWS` within ``tolerance``) and its placed models explain its interior no better than a
+#: featureless surface does (``facet_chi2`` below ``tolerance``: no trace of the facets), the two pieces of
+#: evidence disagree and the habit is left undetermined (``irregular``, ``habit_score`` <= 0.25;
+#: classify-habit 2.7). Lumps of 20-40 px fitted a cube seen along [110] (a rectangle with rounded corners)
+#: with scores 0.5-1.0. Secondary-electron contrast only: there a facet's brightness follows its tilt and
+#: rendered bodies on an edge show ``facet_chi2`` of 29 and more at 25-80 px; in transmission the facets
+#: show only as kinks of the thickness, and rendered bodies on an edge of 80-100 px give ``facet_chi2``
+#: near 0 (a smooth surface follows their thickness ridge), so the interior says nothing there.
+EDGE_VIEWS = ("110",)
+
+#: Views along which a body rests on one of its faces.
+FACE_VIEWS = ("100", "111")
+
 STEP = StepInfo(
     name="classify-habit",
     stage="classify",
-    version="2.6",
+    version="2.8",
     summary="Crystal habit from outline shape and interior facets or thickness contrast, with the alpha fit.",
     params=(
         Param("min_solidity", float, 0.93, low=0.0, high=1.0,
@@ -228,6 +252,13 @@ GRAINS_IN_STEP = 256
 #: Relative area by which the three-fold completion of a split grain must be smaller than the
 #: central-symmetric one to be tried first (:func:`classify_frame`).
 COMPLETION_AREA_MARGIN = 0.05
+#: A split grain is not completed three-fold where its true edges meet at right angles: at least this share
+#: of their length runs at 90 degrees to the dominant direction (within EDGE_FAMILY_DEG), more than runs at 60
+#: or 120 degrees to it (:func:`right_angled_edges`).
+RIGHT_ANGLE_SHARE = 0.15
+EDGE_FAMILY_DEG = 12.0
+#: Spacing (px) of the outline samples whose chords give the edges' directions (pixel steps averaged out).
+EDGE_CHORD_PX = 4.0
 
 
 # --------------------------------------------------------------- model families
@@ -454,6 +485,38 @@ def hull_shape(contour) -> tuple[float, float, float]:
     return float(area / hull.volume), fmin, fmax
 
 
+def solidity_noise(contour, area, pixel_scale, params) -> float:
+    """How far an outline's solidity moves when its points move by the outline noise (the width of the
+    concave test's margin in ``habit_score``).
+
+    Where the outline's points scatter by ``d`` about the true edge, its convex hull runs along their
+    outward excursions and its area along their mean, so the hull exceeds the area by about ``d`` times
+    the perimeter ``P`` (a band of width ``d`` along the edge; the first-order term of Steiner's formula
+    for a parallel body) and the solidity falls by about ``d P / A``. With ``d`` the outline noise
+    (``outline_noise_px``) that is the solidity's uncertainty; it grows as the grain shrinks (``4 d /
+    ECD`` for a disc): a rod of 16 px whose outline dents by a pixel is not confidently concave. At
+    least 0.01 (the width used before classify-habit 2.7). Changes ``habit_score`` only, never a habit.
+
+    Parameters
+    ----------
+    contour : ndarray, shape (k, 2)
+        Closed outline in its unit.
+    area : float
+        Its enclosed area in that unit squared.
+    pixel_scale : float
+        Pixel length in the contour's unit.
+    params : dict
+        Resolved parameters of this step (``outline_noise_px``).
+
+    Returns
+    -------
+    float
+    """
+    c = np.asarray(contour, float)
+    perimeter = float(np.hypot(*(np.roll(c, -1, axis=0) - c).T).sum())
+    return max(0.01, params["outline_noise_px"] * pixel_scale * perimeter / max(area, 1e-12))
+
+
 def _margin(value, threshold, width):
     """Logistic confidence that ``value`` lies above ``threshold``: 1 / (1 + exp(-(v - t) / w))."""
     z = (value - threshold) / width
@@ -650,6 +713,16 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
         elif unresolved:
             # facet evidence from the outline-best models, for the resolution test
             fit = yield from en.fit_alpha_steps(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+    edge_fchi = fit.facet_chi2
+    if fit.face in EDGE_VIEWS and not np.isfinite(edge_fchi) and interior is not None \
+            and not outline_decides(o_ratios[:3], solidity, feret_ratio, p):
+        # a body on an edge that the outline alone settles: its facet evidence (for the test below) from
+        # the outline-best models, without changing the outline's fit
+        if lazy:
+            interior, lazy = interior(), False
+        if getattr(interior, "mode", None) == "facets":
+            quick = yield from en.fit_alpha_steps(contour_lab, interior, **{**kw, "search": "quick"}, match=match)
+            edge_fchi = quick.facet_chi2
     ratios = np.array([fit.outline_misfit, d_plate, d_rod, d_disc]) / tau
     best = int(np.argmin(ratios[:3]))
     cols = {
@@ -664,7 +737,7 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
     fchi = fit.facet_chi2 if np.isfinite(fit.facet_chi2) else 0.0
     faceted = fchi >= p["facet_chi2_min"]
     if solidity < p["min_solidity"] or ratios[best] > p["irregular_misfit"]:
-        s = max(1.0 - _margin(solidity, p["min_solidity"], 0.01),
+        s = max(1.0 - _margin(solidity, p["min_solidity"], solidity_noise(contour_lab, match.area, pixel_scale, p)),
                 _margin(ratios[best], p["irregular_misfit"], 0.5))
         cols["habit_note"] = "concave outline" if solidity < p["min_solidity"] else "fits no model family"
         return "irregular", s, cols, fit
@@ -697,6 +770,16 @@ def classify_grain_steps(contour_lab, interior, params, pixel_scale=1.0, hull=No
         # transmission the thickness falling towards its rim; so does any body seen along [110],
         # which rests on an edge, not a face)
         return "tabular_hexagon", flat_score, cols, fit
+    if fit.face in EDGE_VIEWS and getattr(interior, "mode", None) == "facets" \
+            and np.isfinite(edge_fchi) and edge_fchi < p["tolerance"] \
+            and min(en.class_scores(fit, lib, f).min() for f in FACE_VIEWS) > p["tolerance"]:
+        # only a body lying on an edge explains the outline, and in secondary-electron contrast such a
+        # body shows the inclined facets meeting along the edge, but the interior is explained as well
+        # (within tolerance) without them: the outline and the interior disagree
+        cols["habit_note"] = ("undetermined: only a body lying on an edge (seen along [110]) fits the outline, "
+                              "and the interior shows no trace of its inclined facets")
+        cols["facet_chi2"] = edge_fchi
+        return "irregular", 0.25 * (1.0 - _margin(edge_fchi, p["tolerance"], 0.5)), cols, fit
     habit, share = en.polyhedral_class(fit, lib, p["tolerance"])
     cls = en.class_scores(fit, lib)
     if habit == "octahedron" and cls[1] <= cls[2] + p["tolerance"]:
@@ -811,6 +894,93 @@ def free_samples(contour_lab, free, n_angles: int) -> np.ndarray:
     return np.where(d_hi < d_lo, fr[hi], fr[lo])
 
 
+def _square_completion(outline_px, free, three, labels, signal, mode, lab, p):
+    """A cut outline named a plate that is a cut {100} view (a generator of interior-fit requests).
+
+    A square that loses a corner to a neighbour is a pentagon, and the plate family, free in its edge
+    ratio and of three-fold symmetry, fits such an asymmetric outline better than any centrally
+    symmetric Wulff outline; its three-fold completion is a hexagon the plates fit too. Completed by
+    central symmetry it is the square again. As :func:`_completed` takes the clearly smaller of the
+    two- and three-fold completions first (a body of either symmetry that a straight cut took a piece
+    of is the smallest such outline holding its true edges), the two-fold completion is taken here where
+    it is smaller than the three-fold one ``three`` by ``COMPLETION_AREA_MARGIN``, adds no more than a
+    straight cut of a two-fold body could have removed, and is a body seen along [100] (an outline of
+    four-fold symmetry, which no plate has). Returns the habit tuple of
+    :func:`classify_grain_steps` of that completion, or None (classify-habit 2.7).
+    """
+    vis = en.polygon_centroid(outline_px)[1]
+    q = en.complete_by_symmetry(outline_px, free, 2)
+    area = en.polygon_centroid(q)[1]
+    if not (area < (1.0 - COMPLETION_AREA_MARGIN) * en.polygon_centroid(three)[1] and area <= 2.0 * vis):
+        return None
+    contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
+    if contour2 is None or len(contour2) < 8:
+        return None
+    # the outline first (no interior read): a completion that is no {100} view by its outline is none
+    outline2 = outline_evidence(contour2, p)
+    first = yield from classify_grain_steps(contour2, None, p, outline=outline2)
+    if not (first[0] in POLYHEDRAL_HABITS and first[3].face == "100"):
+        return None
+    res = yield from classify_grain_steps(contour2, get_interior if p["interior"] else None, p, outline=outline2)
+    if res[0] in POLYHEDRAL_HABITS and res[3].face == "100":
+        return res
+    return None
+
+
+def right_angled_edges(outline_px, free) -> bool:
+    """Whether a split grain's true edges meet at right angles rather than at 60 or 120 degrees.
+
+    Parameters
+    ----------
+    outline_px : array_like, shape (k, 2)
+        Closed outline (px).
+    free : array_like of bool, shape (k,)
+        Vertices on the grain's true edges (:func:`free_edge`).
+
+    Returns
+    -------
+    bool
+        The outline, sampled every :data:`EDGE_CHORD_PX` along its length, gives chords on the true
+        edges; weighted by length, their directions (modulo 180 degrees) are histogrammed and the
+        dominant one found (1-degree bins summed over +-6). True where the chords within
+        :data:`EDGE_FAMILY_DEG` of the dominant direction + 90 degrees hold at least
+        :data:`RIGHT_ANGLE_SHARE` of the length and more than those within it of + 60 and + 120.
+
+    Notes
+    -----
+    A twinned {111} plate's edges run in three directions 60 degrees apart (a triangle, a hexagon with
+    alternating edges), a {100} face's in two at right angles. Two or three cubes left joined (EMPS
+    f664201c62, a packed SEM field) made an outline whose three-fold completion a triangular plate
+    fitted at score 1.0; their edges meet at right angles. On the hard survey's split plates completed
+    three-fold the right-angle share is 0-0.16 against 0.2-0.6 at 60/120 degrees.
+    """
+    c = np.asarray(outline_px, float)
+    f = np.asarray(free, bool)
+    seg = np.diff(np.vstack([c, c[:1]]), axis=0)
+    s = np.r_[0.0, np.cumsum(np.hypot(seg[:, 0], seg[:, 1]))]
+    if s[-1] <= 0:
+        return False
+    n = max(int(s[-1] / EDGE_CHORD_PX), 8)
+    t = np.linspace(0.0, s[-1], n, endpoint=False)
+    x = np.interp(t, s, np.r_[c[:, 0], c[0, 0]])
+    y = np.interp(t, s, np.r_[c[:, 1], c[0, 1]])
+    on = f[np.minimum(np.searchsorted(s, t, side="right") - 1, len(c) - 1)]
+    dx, dy = np.roll(x, -1) - x, np.roll(y, -1) - y
+    w = np.hypot(dx, dy) * (on & np.roll(on, -1))
+    if not w.sum() > 0:
+        return False
+    ang = np.degrees(np.arctan2(dy, dx)) % 180.0
+    hist = np.bincount(ang.astype(int) % 180, weights=w, minlength=180)
+    dominant = int(np.argmax(sum(np.roll(hist, k) for k in range(-6, 7))))
+
+    def share(offset):
+        d = np.abs((ang - dominant - offset + 90.0) % 180.0 - 90.0)
+        return float(w[d <= EDGE_FAMILY_DEG].sum() / w.sum())
+
+    right = share(90.0)
+    return right >= RIGHT_ANGLE_SHARE and right > share(60.0) + share(120.0)
+
+
 def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, current, plates=True):
     """Habit of a split grain from the outline its true edges imply (a generator of interior-fit requests).
 
@@ -822,7 +992,8 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
       1 - s of its area, so the completed area is below fold / (fold - 1) times the visible one;
     - its model explains it about as well as a smooth curve explains the true edges (within
       ``smooth_margin``; a lumpy grain completed by symmetry looks polyhedral);
-    - a three-fold completion is a plate with a flat interior (a twinned plate), a six-fold one a
+    - a three-fold completion is a plate with a flat interior (a twinned plate) whose true edges do not
+      meet at right angles (:func:`right_angled_edges`), a six-fold one a
       truncated octahedron or an octahedron resting on a {111} face, or a hexagonal plate (the
       outlines of six-fold symmetry; a cube has no {111} face to rest on);
     - a two-fold completion is no body on {111} or along [110] (:data:`FLAT_PLATE_VIEWS`) with a
@@ -848,6 +1019,8 @@ def _completed(outline_px, free, smooth_free, labels, signal, mode, lab, p, curr
     def candidate(fold, q, beat):
         if en.polygon_centroid(q)[1] > vis * fold / (fold - 1):
             return None
+        if fold == 3 and right_angled_edges(outline_px, free):
+            return None  # edges at right angles: cubes left joined, no twinned plate
         contour2, get_interior = en.grain_evidence_lazy(labels, signal, mode, q, lab, p["erode_px"])
         if contour2 is None or len(contour2) < 8:
             return None
@@ -969,13 +1142,20 @@ def _grain_steps(frame, i, outline_px, labels, signal, mode, split, measured, p,
         # a plate cut from a neighbour: a cut corner looks like a short edge; take the edge ratio
         # from the outline its true edges imply (three-fold symmetry)
         free = None
-        q = en.complete_by_symmetry(outline_px, free_edge(labels, outline_px, lab), 3)
-        contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
-        if contour2 is not None and len(contour2) >= 8:
-            res = yield from classify_grain_steps(contour2, None, p)
-            if res[0] in TABULAR_HABITS:
-                habit, score, ev, fit = res
-                ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
+        edge = free_edge(labels, outline_px, lab)
+        q = en.complete_by_symmetry(outline_px, edge, 3)
+        square = yield from _square_completion(outline_px, edge, q, labels, signal, mode, lab, p)
+        if square is not None:
+            habit, score, ev, fit = square
+            ev["habit_note"] = ("split grain: outline completed by its 2-fold symmetry, clearly smaller than its "
+                                "3-fold completion" + (f"; {ev['habit_note']}" if ev["habit_note"] else ""))
+        else:
+            contour2, interior2 = en.grain_evidence(labels, signal, mode, q, lab, p["erode_px"])
+            if contour2 is not None and len(contour2) >= 8:
+                res = yield from classify_grain_steps(contour2, None, p)
+                if res[0] in TABULAR_HABITS:
+                    habit, score, ev, fit = res
+                    ev["habit_note"] = "split plate: edge ratio of the outline completed by its 3-fold symmetry"
     else:
         free = None
     if free is not None and habit != "irregular" and (

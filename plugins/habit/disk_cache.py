@@ -12,7 +12,9 @@ files of the habit plugins and the numpy version, so a changed model or
 library never reads a stale table. Files are written to a temporary name and
 renamed into place (``os.replace``, atomic on one file system): two workers
 building at once both write a whole file and one wins. A file that cannot be
-read (truncated, foreign) is ignored and rebuilt.
+read (truncated, foreign) is ignored and rebuilt. Of the files of one table
+built by different code, the :data:`KEEP_VERSIONS` newest are kept (two
+checkouts of different code on one machine do not remove each other's).
 
 Where: ``$GRAINHABIT_CACHE`` if set, else ``$XDG_CACHE_HOME/grainhabit``,
 else ``~/.cache/grainhabit``. ``GRAINHABIT_CACHE=off`` turns the cache off
@@ -32,6 +34,8 @@ from pathlib import Path
 
 import numpy as np
 
+#: Files of one table (one function and arguments) kept, each from other code (the newest written first).
+KEEP_VERSIONS = 4
 #: Source files whose change makes every cached table stale.
 SOURCES = ("crystal.py", "signature.py", "engine.py", "interior.py", "classify_habit.py", "disk_cache.py")
 
@@ -113,14 +117,22 @@ def write(path: Path, value) -> bool:
         with os.fdopen(fd, "wb") as fh:
             pickle.dump(value, fh, protocol=pickle.HIGHEST_PROTOCOL)
         os.replace(tmp, path)
-        # the same table built by older code is stale for good: one file per function and arguments
+        # the same table built by other code: kept for the KEEP_VERSIONS - 1 most recent other versions (two
+        # installs or checkouts of different code on one machine would else remove each other's tables, and
+        # every worker of each would build them again, seconds of CPU), the older ones removed
         stem = path.name.rsplit("-", 1)[0]
+        others = []
         for old in path.parent.glob(f"{stem}-*.pickle"):
             if old != path:
                 try:
-                    old.unlink()
+                    others.append((old.stat().st_mtime, str(old), old))
                 except OSError:
                     pass
+        for _, _, old in sorted(others, reverse=True)[KEEP_VERSIONS - 1:]:
+            try:
+                old.unlink()
+            except OSError:
+                pass
         return True
     except Exception:  # noqa: BLE001 - a read-only home, a full disk: the run goes on without the cache
         if tmp is not None:

@@ -987,12 +987,23 @@ def grain_evidence_lazy(labels, signal, mode, contour_px, label, erode_px=2, geo
     if len(c) < 3:
         return None, lambda: None
     contour_lab = np.column_stack([c[:, 0], -c[:, 1]])
+    return contour_lab, _Once(_collect_interior, labels, signal, mode, c, label, erode_px, geometry)
 
-    @functools.lru_cache(maxsize=1)
-    def get_interior():
-        return _collect_interior(labels, signal, mode, c, label, erode_px, geometry)
 
-    return contour_lab, get_interior
+class _Once:
+    """``func(*args)`` on the first call, kept for the later ones (as ``functools.lru_cache(maxsize=1)`` of a
+    closure, whose wrapper cost more to build than a grain's call of it)."""
+
+    __slots__ = ("_func", "_args", "_value")
+
+    def __init__(self, func, *args):
+        self._func, self._args = func, args
+
+    def __call__(self):
+        if self._func is not None:
+            self._value = self._func(*self._args)
+            self._func = self._args = None
+        return self._value
 
 
 def median_of(values) -> float:

@@ -132,7 +132,8 @@ def snap_pair(grad: np.ndarray, smooth: np.ndarray, a_mask: np.ndarray, b_mask: 
     return new_a, new_b
 
 
-def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple[np.ndarray, int]:
+def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray,
+              boxes: list | None = None) -> tuple[np.ndarray, int]:
     """Move the cuts between touching grains of different levels onto the edge between them.
 
     Parameters
@@ -143,6 +144,9 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
         Grains 1..n.
     split : ndarray of bool, shape (n,)
         Which grains were cut from a cluster; only touching pairs with a cut grain are looked at.
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)`` where the caller has it; it is then updated in place to
+        the boxes of the labels returned.
 
     Returns
     -------
@@ -155,7 +159,9 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
     n = int(labels.max()) if labels.size else 0
     if n < 2 or not np.any(split):
         return labels, 0
-    boxes = ndi.find_objects(labels)
+    given = boxes
+    boxes = ndi.find_objects(labels) if given is None else list(given)
+    written: dict[int, list] = {}  # label -> windows where its pixels were rewritten
     img = np.asarray(image, np.float32)
     levels = {}
 
@@ -192,7 +198,31 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray) -> tuple
         window[res[0]] = a
         window[res[1]] = b
         moved += 1
+        written.setdefault(a, []).append(box)
+        written.setdefault(b, []).append(box)
+    if given is not None:
+        # a label's pixels lie in its first box or where it was rewritten: its box over those windows
+        for k, windows in written.items():
+            given[k - 1] = _union_box(out, k, ([boxes[k - 1]] if boxes[k - 1] is not None else []) + windows)
     return out, moved
+
+
+def _union_box(labels: np.ndarray, k: int, windows: list) -> tuple | None:
+    """The box (``find_objects`` form) of label ``k``'s pixels within the union of ``windows``; None if none."""
+    r0 = c0 = None
+    for win in windows:
+        m = labels[win] == k
+        rows = np.flatnonzero(m.any(axis=1))
+        if rows.size == 0:
+            continue
+        cols = np.flatnonzero(m.any(axis=0))
+        lo_r, hi_r = win[0].start + int(rows[0]), win[0].start + int(rows[-1]) + 1
+        lo_c, hi_c = win[1].start + int(cols[0]), win[1].start + int(cols[-1]) + 1
+        if r0 is None:
+            r0, r1, c0, c1 = lo_r, hi_r, lo_c, hi_c
+        else:
+            r0, r1, c0, c1 = min(r0, lo_r), max(r1, hi_r), min(c0, lo_c), max(c1, hi_c)
+    return None if r0 is None else (slice(r0, r1), slice(c0, c1))
 
 
 def grown_box(box: tuple, shape: tuple, margin: int) -> tuple:

@@ -51,7 +51,8 @@ INNER_PX = 2.0
 MARGIN_PX = int(REACH_PX + 4 * SMOOTH_PX) + 1
 
 
-def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> tuple[np.ndarray, int]:
+def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float,
+                     boxes: list | None = None) -> tuple[np.ndarray, int]:
     """Faint grains grown into the pixels above half their level on the image smoothed by :data:`SMOOTH_PX`.
 
     Parameters
@@ -62,6 +63,9 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> 
         Grains 1..n.
     noise_sd : float
         Standard deviation of the background (image units).
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)`` where the caller has it; it is then updated in place to
+        the boxes of the labels returned (a grain only grows, into background pixels of its grown box).
 
     Returns
     -------
@@ -76,7 +80,7 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> 
     img = np.asarray(image, np.float32)
     out = labels
     filled = 0
-    for k, box in enumerate(ndi.find_objects(labels), start=1):
+    for k, box in enumerate(ndi.find_objects(labels) if boxes is None else list(boxes), start=1):
         if box is None:
             continue
         grown = grown_box(box, labels.shape, MARGIN_PX)
@@ -109,4 +113,24 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float) -> 
             window = out[grown]
         window[new] = k
         filled += 1
+        if boxes is not None:  # its pixels all lie in the grown box now: their box there
+            boxes[k - 1] = mask_box(window == k, grown)
     return out, filled
+
+
+def mask_box(mask: np.ndarray, window: tuple) -> tuple | None:
+    """The box (``scipy.ndimage.find_objects`` form) of a mask's pixels, in the frame; None where it has none.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        Pixels of the window ``window`` of the frame.
+    window : tuple of slice
+        Where the mask lies in the frame (starts given).
+    """
+    rows = np.flatnonzero(mask.any(axis=1))
+    if rows.size == 0:
+        return None
+    cols = np.flatnonzero(mask.any(axis=0))
+    r0, c0 = window[0].start, window[1].start
+    return (slice(r0 + int(rows[0]), r0 + int(rows[-1]) + 1), slice(c0 + int(cols[0]), c0 + int(cols[-1]) + 1))

@@ -45,6 +45,39 @@ _FOUR = ndi.generate_binary_structure(2, 1)
 _EIGHT = np.ones((3, 3), bool)
 
 
+def dilate_square(mask: np.ndarray, radius: int) -> np.ndarray:
+    """Dilation of a boolean image by the square of side ``2 radius + 1`` (outside the image counts as False).
+
+    The same pixels as ``scipy.ndimage.binary_dilation(mask, np.ones((3, 3)), iterations=radius)``
+    (border value 0), by ORs of shifted slices, rows then columns.
+    """
+    out = mask.copy()
+    for _ in range(radius):  # rows: each pass widens by one pixel up and down
+        grown = out.copy()
+        grown[1:] |= out[:-1]
+        grown[:-1] |= out[1:]
+        out = grown
+    for _ in range(radius):
+        grown = out.copy()
+        grown[:, 1:] |= out[:, :-1]
+        grown[:, :-1] |= out[:, 1:]
+        out = grown
+    return out
+
+
+def dilate_cross(mask: np.ndarray) -> np.ndarray:
+    """One dilation of a boolean image by the 4-connected cross (outside the image counts as False).
+
+    The same pixels as ``scipy.ndimage.binary_dilation(mask, generate_binary_structure(2, 1))``.
+    """
+    out = mask.copy()
+    out[1:] |= mask[:-1]
+    out[:-1] |= mask[1:]
+    out[:, 1:] |= mask[:, :-1]
+    out[:, :-1] |= mask[:, 1:]
+    return out
+
+
 def notch_points(a_mask: np.ndarray, b_mask: np.ndarray) -> list[np.ndarray] | None:
     """The two ends of the line between two touching parts, where it meets the background.
 
@@ -55,12 +88,23 @@ def notch_points(a_mask: np.ndarray, b_mask: np.ndarray) -> list[np.ndarray] | N
         None unless the contact meets the background at exactly two places.
     """
     union = a_mask | b_mask
-    contact = a_mask & ndi.binary_dilation(b_mask, _FOUR)
-    ends = contact & ndi.binary_dilation(~union, _EIGHT, iterations=2)
-    lab, n = ndi.label(ends, _EIGHT)
+    contact = a_mask & dilate_cross(b_mask)
+    ends = contact & dilate_square(~union, 2)
+    rows, cols = np.nonzero(ends)
+    if rows.size < 2:
+        return None
+    # label only the box of the end pixels: the same components, numbered in the same (raster) order
+    r0, c0 = int(rows[0]), int(cols.min())
+    lab, n = ndi.label(ends[r0:int(rows[-1]) + 1, c0:int(cols.max()) + 1], _EIGHT)
     if n != 2:
         return None
-    return [np.array(c) for c in ndi.center_of_mass(ends, lab, [1, 2])]
+    which = lab[rows - r0, cols - c0]
+    # scipy.ndimage.center_of_mass: per label, the sums of the row and column indices over the count (all exact
+    # whole numbers in float64 before the one division)
+    count = np.bincount(which, minlength=3)[1:].astype(float)
+    sum_r = np.bincount(which, weights=rows.astype(float), minlength=3)[1:]
+    sum_c = np.bincount(which, weights=cols.astype(float), minlength=3)[1:]
+    return [np.array([sum_r[i] / count[i], sum_c[i] / count[i]]) for i in range(2)]
 
 
 def edge_direction(front: np.ndarray, union: np.ndarray, point: np.ndarray,
@@ -72,8 +116,13 @@ def edge_direction(front: np.ndarray, union: np.ndarray, point: np.ndarray,
     smaller axis at most a quarter of the larger); None where none does or fewer than 3 pixels are there.
     """
     if outer is None:
-        outer = union & ndi.binary_dilation(~union, _EIGHT)
+        outer = union & dilate_square(~union, 1)
     rr, cc = np.nonzero(front & outer)
+    return _direction_at(rr, cc, point)
+
+
+def _direction_at(rr: np.ndarray, cc: np.ndarray, point: np.ndarray) -> np.ndarray | None:
+    """:func:`edge_direction` from the rows and columns of the front grain's pixels next to the background."""
     d = np.hypot(rr - point[0], cc - point[1])
     for reach in EDGE_REACHES_PX:
         # the longest reach whose pixels lie along one line (a short edge ends in a corner within reach)
@@ -102,7 +151,7 @@ def ray_meet(p1: np.ndarray, d1: np.ndarray, p2: np.ndarray, d2: np.ndarray) -> 
 
 def _line_gradient(grad: np.ndarray, a_mask: np.ndarray, b_mask: np.ndarray) -> float:
     """Mean gradient magnitude over the pixels of ``a_mask`` 4-adjacent to ``b_mask``."""
-    line = a_mask & ndi.binary_dilation(b_mask, _FOUR)
+    line = a_mask & dilate_cross(b_mask)
     return float(grad[line].mean()) if line.any() else 0.0
 
 
@@ -128,11 +177,12 @@ def complete_front(grad, a_mask: np.ndarray, b_mask: np.ndarray) -> tuple[np.nda
     if ends is None:
         return None
     union = a_mask | b_mask
-    outer = union & ndi.binary_dilation(~union, _EIGHT)  # the pair's pixels next to the background
+    outer = union & dilate_square(~union, 1)  # the pair's pixels next to the background
     straight = None
     best, best_gain = None, EDGE_GAIN
     for front, back in ((a_mask, b_mask), (b_mask, a_mask)):
-        dirs = [edge_direction(front, union, p, outer) for p in ends]
+        rr, cc = np.nonzero(front & outer)  # as edge_direction(front, union, p, outer) takes them, once for both
+        dirs = [_direction_at(rr, cc, p) for p in ends]
         if dirs[0] is None or dirs[1] is None:
             continue
         apex = ray_meet(ends[0], dirs[0], ends[1], dirs[1])

@@ -684,18 +684,19 @@ def interiors_rejoined(parts: list, kept: list, component: np.ndarray) -> list:
     return grown
 
 
-def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, p: dict,
-                   noise_sd: float) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Outlines refined (:func:`refine_outlines`; ``noise_sd`` the background's standard deviation), then
-    out to the edge's foot where ``outline`` is ``outer`` (:mod:`~grainhabit.plugins.segment.outer_edge`)."""
-    labels, split, _ = refine_outlines(arr, labels, split, noise_sd, notes)
+def place_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, notes: list, boxes: list | None,
+                   p: dict, noise_sd: float) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Outlines refined (:func:`refine_outlines`; ``noise_sd`` the background's standard deviation, ``boxes``
+    the grains' boxes where known), then out to the edge's foot where ``outline`` is ``outer``
+    (:mod:`~grainhabit.plugins.segment.outer_edge`)."""
+    labels, split, _ = refine_outlines(arr, labels, split, noise_sd, notes, boxes)
     if p["outline"] == "outer":
         labels = outer_edge.grow_to_level(arr, labels)
     return labels, split, notes
 
 
-def refine_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, noise_sd: float, notes: list
-                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+def refine_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, noise_sd: float, notes: list,
+                    boxes: list | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     """Faint grains' dents filled, then the cuts between grains of different levels moved onto their edge.
 
     Parameters
@@ -709,6 +710,9 @@ def refine_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, nois
         The background's standard deviation (image units).
     notes : list of str
         A note is appended for each refinement that changed a grain.
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)`` where known: the refinements and the renumbering then
+        keep it up to date instead of passing over the frame again (the same boxes; not changed here).
 
     Returns
     -------
@@ -723,42 +727,46 @@ def refine_outlines(arr: np.ndarray, labels: np.ndarray, split: np.ndarray, nois
     :func:`~grainhabit.plugins.segment.cut_edges.snap_cuts`; both read pixels within a few tens of px of
     a grain only, so a frame processed by tiles gives the same grains (``tiling.segment_tile``).
     """
-    labels, filled = faint_outline.fill_faint_dents(arr, labels, noise_sd)
+    boxes = list(boxes) if boxes is not None else None  # kept up to date below (the caller's list untouched)
+    labels, filled = faint_outline.fill_faint_dents(arr, labels, noise_sd, boxes)
     if filled:
         notes.append(f"segment-grains: the dents of {filled} faint grain(s) filled from the image smoothed by "
                      f"{faint_outline.SMOOTH_PX:g} px")
-    labels, moved = cut_edges.snap_cuts(arr, labels, split)
+    labels, moved = cut_edges.snap_cuts(arr, labels, split, boxes)
     if moved:
         notes.append(f"segment-grains: {moved} cut(s) between grains of different levels moved onto the edge "
                      "between them")
     if not (filled or moved):
         return labels, split, None
-    labels, old = tiling.renumber_raster(labels)
+    labels, old = tiling.renumber_raster(labels, boxes)
     return labels, split[old - 1], old
 
 
 def drop_debris(labels: np.ndarray, split: np.ndarray, notes: list, boxes: list | None, p: dict,
-                arr: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, list[str]]:
+                arr: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, list[str], list | None]:
     """Drop objects under ``min_area_share`` of the frame's typical grain area, or small and dim, and note how many.
 
     See :mod:`grainhabit.plugins.segment.population`. The first four arguments are what
     :func:`drop_drawn_marks` returns: ``boxes`` (``find_objects(labels)``, labels numbered in row-major
     order of their first pixel), when known, confine the work to them; None: the whole-frame path.
     ``arr``, the preprocessed frame, gives the objects' levels (:func:`population.small_and_dim`).
+    Returns the labels, split flags and notes, and the kept grains' boxes (None on the whole-frame path).
     """
     if boxes is not None and all(b is not None for b in boxes):
-        labels, split, n = drop_below_population_boxed(labels, split, boxes, p["min_area_share"], arr)
+        labels, split, n, boxes = drop_below_population_boxed(labels, split, boxes, p["min_area_share"], arr,
+                                                              with_boxes=True)
     else:
         labels, split, n = population.drop_below_population(labels, split, p["min_area_share"], arr)
+        boxes = None
     if n:
         notes.append(f"segment-grains: {n} object(s) under {100 * p['min_area_share']:g} % of the frame's typical "
                      f"grain area dropped (debris, substrate texture; also under {100 * population.DIM_AREA_SHARE:g} % "
                      f"of it and {100 * population.DIM_LEVEL:g} % of the grains' level: stains)")
-    return labels, split, notes
+    return labels, split, notes, boxes
 
 
 def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: list, share: float,
-                                 image: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, int]:
+                                 image: np.ndarray | None = None, with_boxes: bool = False) -> tuple:
     """:func:`~grainhabit.plugins.segment.population.drop_below_population`, box by box.
 
     Parameters
@@ -771,6 +779,8 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
     share : float
     image : ndarray, optional
         The preprocessed frame, as ``drop_below_population`` takes it.
+    with_boxes : bool
+        Also return the boxes of the labels returned (the kept grains' boxes, renumbered).
 
     Returns
     -------
@@ -778,10 +788,12 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
         As ``drop_below_population``, bit for bit: the areas are counted in each box and the kept
         labels painted box by box (a 2048 px frame of ~150 grains: its whole-frame ``bincount``
         and ``lut[labels]`` cost ~50 ms).
+    boxes : list of tuple of slice
+        With ``with_boxes``: ``scipy.ndimage.find_objects`` of the labels returned.
     """
     n = len(boxes)
     if n == 0 or share <= 0:
-        return labels, split, 0
+        return (labels, split, 0) + ((list(boxes),) if with_boxes else ())
     areas = population.box_areas(labels, boxes)
     reference = ~population.edge_strips(boxes, labels.shape)
     drop = population.below_population(areas, share, reference)
@@ -789,11 +801,12 @@ def drop_below_population_boxed(labels: np.ndarray, split: np.ndarray, boxes: li
         levels = np.array([float(image[b][labels[b] == k].mean(dtype=np.float64)) for k, b in enumerate(boxes, start=1)])
         drop |= population.small_and_dim(areas, levels, reference)
     if not drop.any():
-        return labels, split, 0
+        return (labels, split, 0) + ((list(boxes),) if with_boxes else ())
     keep = np.r_[False, ~drop]
     lut = np.zeros(n + 1, np.int32)
     lut[keep] = np.arange(1, int(keep.sum()) + 1, dtype=np.int32)
-    return paint_boxes(labels, [None] + list(boxes), lut, keep), np.asarray(split, bool)[~drop], int(drop.sum())
+    out = (paint_boxes(labels, [None] + list(boxes), lut, keep), np.asarray(split, bool)[~drop], int(drop.sum()))
+    return out + (([b for b, d in zip(boxes, drop) if not d],) if with_boxes else ())
 
 
 def smallest_grain_area(p: dict, pixel_size_nm: float) -> float:

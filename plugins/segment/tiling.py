@@ -86,13 +86,15 @@ def tile_grid(shape: tuple, tile_px: int, halo_px: int) -> list[tuple[tuple, tup
     return out
 
 
-def renumber_raster(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def renumber_raster(labels: np.ndarray, boxes: list | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Relabel 1..n in the row-major order of each label's first pixel.
 
     Parameters
     ----------
     labels : ndarray of int, shape (rows, cols)
         0 background, any positive ids.
+    boxes : list of tuple of slice, optional
+        ``scipy.ndimage.find_objects(labels)``, where known (:func:`~grainhabit.chain_tiles.first_pixels`).
 
     Returns
     -------
@@ -106,7 +108,7 @@ def renumber_raster(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     components, and it does not depend on how the frame was tiled.
     """
     lab = np.asarray(labels)
-    first = first_pixels(lab)
+    first = first_pixels(lab, boxes=boxes)
     present = np.flatnonzero(first >= 0) + 1
     old_ids = present[np.argsort(first[present - 1], kind="stable")]
     n = int(lab.max()) if lab.size else 0
