@@ -125,7 +125,9 @@ def test_wide_grains_in_correlated_noise_get_the_scale_at_which_they_show(seed):
     assert np.all(np.abs(areas - 1) < 0.12) and abs(np.median(areas) - 1) < 0.05
     # at one pixel of smoothing, as before, some discs were lost on every one of these frames
     one, _, _ = fb.flatten(frame, 1.0, smooth_px=1.0)
-    labels_one, _, _ = segment_image(one, 1.0, {})
+    # (the first look alone: on seed 3 its grains at one pixel are ragged enough for the second look of
+    # segment-grains 2.28, rimmed_discs.py, to take the frame and place the lost disc among nine circles)
+    labels_one, _, _ = segment_image(one, 1.0, {"rimmed_discs": False})
     assert len({int(labels_one[cy, cx]) for cy, cx in centres} - {0}) < len(centres)
 
 
