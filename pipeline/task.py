@@ -18,6 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import chain_tiles
+from .blocks import block_sums
 from .executors import keep_freed_memory
 from .frame import FrameData, FrameRef
 from .manager import worker_host
@@ -105,13 +106,7 @@ def _integer_block_mean(raw: np.ndarray, f: int) -> np.ndarray | None:
         return None
     if f * f * bound >= 1 << 24:
         return None
-    acc = x[0::f].astype(np.int32)
-    for i in range(1, f):
-        acc += x[i::f]
-    sums = acc[:, 0::f].copy()
-    for j in range(1, f):
-        sums += acc[:, j::f]
-    ret = sums.astype(np.float32)
+    ret = block_sums(x, f, np.int32).astype(np.float32)
     return np.true_divide(ret, np.intp(f * f), out=ret, casting="unsafe")
 
 
