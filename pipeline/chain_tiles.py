@@ -115,6 +115,17 @@ def worker_memory_limit() -> int:
     return int(limit or 0)
 
 
+def tile_budget(ref, frame_memory) -> int:
+    """The frame budget (bytes) where a frame must be processed by tiles, else 0.
+
+    ``ref`` is a :class:`~grainhabit.frame.FrameRef` (its declared shape and dtype), ``frame_memory``
+    a job's ``frame_memory`` (see :func:`frame_budget`); the frame goes by tiles when its
+    :func:`estimate_bytes` exceed a budget that is set.
+    """
+    budget = frame_budget(frame_memory)
+    return budget if budget and estimate_bytes(ref.shape, ref.dtype) > budget else 0
+
+
 def frame_budget(frame_memory: int = 0) -> int:
     """Bytes one frame task may plan to use; 0 means no limit.
 

@@ -35,7 +35,6 @@ import logging
 import multiprocessing
 import os
 import queue
-import signal
 import threading
 
 log = logging.getLogger("grainhabit")
@@ -82,20 +81,17 @@ def early_frame_count(executor, n_items: int) -> int:
 
 def _child(conn, items) -> None:
     """Entry of the forked process: prepare as a worker, process the frames one by one, send each result."""
-    if hasattr(signal, "SIGINT"):
-        signal.signal(signal.SIGINT, signal.SIG_IGN)  # as a local worker (grainhabit.quiet_worker)
-    from threadpoolctl import threadpool_limits
-
+    from .quiet_worker import dask_setup
     from .task import prepare_worker, process_frame
 
-    with threadpool_limits(limits=1):
-        for key, args in items:
-            try:
-                prepare_worker(args[2])  # once per process (the job's own check)
-                res = process_frame(*args)
-            except BaseException as exc:  # process_frame catches a plugin's errors itself; this is the host's own
-                res = RuntimeError(f"{exc.__class__.__name__}: {exc}")
-            conn.send((key, res))
+    dask_setup()  # as a local worker: SIGINT ignored, one BLAS and OpenMP thread
+    for key, args in items:
+        try:
+            prepare_worker(args[2])  # once per process (the job's own check)
+            res = process_frame(*args)
+        except BaseException as exc:  # process_frame catches a plugin's errors itself; this is the host's own
+            res = RuntimeError(f"{exc.__class__.__name__}: {exc}")
+        conn.send((key, res))
     conn.close()
 
 

@@ -282,7 +282,8 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
             try:
                 # the first frames in a forked process while the cluster starts (a core is idle meanwhile)
                 n_early = early_frame_count(executor, len(items))
-                if n_early and not any(_over_budget(args[0], job) for _, args in items[:n_early]):
+                tiled = any(chain_tiles.tile_budget(args[0], job.frame_memory) for _, args in items[:n_early])
+                if n_early and not tiled:
                     early = EarlyFrames(items[:n_early])
                     log.info("first %d frame(s) processing in process %d while the cluster starts", n_early, early.pid)
                 executor.start()
@@ -432,12 +433,6 @@ def run(plan: Plan, host: Host, fresh: bool = False, tty: bool | None = None,
                 log.info("report written to %s", outcome.report)
     outcome.seconds = time.monotonic() - t_start
     return outcome
-
-
-def _over_budget(ref: FrameRef, job: FrameJob) -> bool:
-    """Whether a frame is processed by tiles spread over the cluster (never in the early process)."""
-    budget = chain_tiles.frame_budget(job.frame_memory)
-    return bool(budget) and chain_tiles.estimate_bytes(ref.shape, ref.dtype) > budget
 
 
 def _with_early(executor, items: list, early: EarlyFrames | None):

@@ -239,8 +239,8 @@ def process_frame(ref: FrameRef, sample: str, job: FrameJob) -> dict:
               "thumb_factor": 1.0, "traceback": ""}
     t_start = time.perf_counter()
     timings, cpu = record["timings"], record["cpu_timings"]  # wall and CPU seconds (this thread) per stage
-    budget = chain_tiles.frame_budget(job.frame_memory)
-    if budget and chain_tiles.estimate_bytes(ref.shape, ref.dtype) > budget:
+    budget = chain_tiles.tile_budget(ref, job.frame_memory)
+    if budget:
         return chain_tiles.run_by_tiles(ref, sample, job, host, budget, record, result, t_start)
     try:
         t0, c0 = time.perf_counter(), time.thread_time()

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 from scipy import ndimage as ndi
 from skimage.draw import disk
 from skimage.feature import canny
@@ -119,3 +120,27 @@ def test_solidity_matches_scikit_image():
     labels[disk((60, 150), 28, shape=labels.shape)] = 0         # a ring
     for p in regionprops(labels):
         assert abs(rimmed_discs.solidity(labels == p.label) - p.solidity) < 0.03
+
+
+def test_octagon_area_bounds_the_hull_of_the_pixel_corners():
+    # the hull of the pixels' corners lies in the octagon of the four slabs (scipy's Qhull as the reference);
+    # an axis-aligned rectangle fills its octagon (its box), a disc about pi / (8 tan 22.5 deg) = 0.95 of it
+    from scipy.spatial import ConvexHull
+
+    from grainhabit.plugins.segment.rimmed_discs import octagon_area
+
+    rng = np.random.default_rng(4)
+    for _ in range(100):
+        m = np.zeros((40, 40), bool)
+        for r, c in rng.integers(5, 35, (rng.integers(1, 5), 2)):
+            top, left = max(r - rng.integers(0, 6), 0), max(c - rng.integers(0, 6), 0)
+            m[top:r + rng.integers(1, 6), left:c + rng.integers(1, 6)] = True
+        rr, cc = np.nonzero(m)
+        corners = np.concatenate([np.c_[rr + dy, cc + dx] for dy in (-0.5, 0.5) for dx in (-0.5, 0.5)])
+        assert octagon_area(m) >= ConvexHull(corners).volume - 1e-9
+    box = np.zeros((30, 30), bool)
+    box[5:15, 3:25] = True
+    assert octagon_area(box) == 10 * 22
+    yy, xx = np.mgrid[:101, :101]
+    disc = (yy - 50) ** 2 + (xx - 50) ** 2 <= 40 ** 2
+    assert disc.sum() / octagon_area(disc) == pytest.approx(np.pi / (8 * np.tan(np.pi / 8)), abs=0.02)

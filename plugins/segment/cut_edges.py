@@ -209,20 +209,29 @@ def snap_cuts(image: np.ndarray, labels: np.ndarray, split: np.ndarray,
 
 def _union_box(labels: np.ndarray, k: int, windows: list) -> tuple | None:
     """The box (``find_objects`` form) of label ``k``'s pixels within the union of ``windows``; None if none."""
-    r0 = c0 = None
-    for win in windows:
-        m = labels[win] == k
-        rows = np.flatnonzero(m.any(axis=1))
-        if rows.size == 0:
-            continue
-        cols = np.flatnonzero(m.any(axis=0))
-        lo_r, hi_r = win[0].start + int(rows[0]), win[0].start + int(rows[-1]) + 1
-        lo_c, hi_c = win[1].start + int(cols[0]), win[1].start + int(cols[-1]) + 1
-        if r0 is None:
-            r0, r1, c0, c1 = lo_r, hi_r, lo_c, hi_c
-        else:
-            r0, r1, c0, c1 = min(r0, lo_r), max(r1, hi_r), min(c0, lo_c), max(c1, hi_c)
-    return None if r0 is None else (slice(r0, r1), slice(c0, c1))
+    found = [b for b in (mask_box(labels[win] == k, win) for win in windows) if b is not None]
+    if not found:
+        return None
+    return (slice(min(b[0].start for b in found), max(b[0].stop for b in found)),
+            slice(min(b[1].start for b in found), max(b[1].stop for b in found)))
+
+
+def mask_box(mask: np.ndarray, window: tuple) -> tuple | None:
+    """The box (``scipy.ndimage.find_objects`` form) of a mask's pixels, in the frame; None where it has none.
+
+    Parameters
+    ----------
+    mask : ndarray of bool, shape (h, w)
+        Pixels of the window ``window`` of the frame.
+    window : tuple of slice
+        Where the mask lies in the frame (starts given).
+    """
+    rows = np.flatnonzero(mask.any(axis=1))
+    if rows.size == 0:
+        return None
+    cols = np.flatnonzero(mask.any(axis=0))
+    r0, c0 = window[0].start, window[1].start
+    return (slice(r0 + int(rows[0]), r0 + int(rows[-1]) + 1), slice(c0 + int(cols[0]), c0 + int(cols[-1]) + 1))
 
 
 def grown_box(box: tuple, shape: tuple, margin: int) -> tuple:

@@ -31,7 +31,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from grainhabit.plugins.common.image_stats import select_median
-from grainhabit.plugins.segment.cut_edges import grown_box
+from grainhabit.plugins.segment.cut_edges import grown_box, mask_box
 from grainhabit.plugins.segment.disk_morphology import dilate_disk, erode_disk
 from grainhabit.plugins.segment.foreground import fill_holes
 
@@ -116,21 +116,3 @@ def fill_faint_dents(image: np.ndarray, labels: np.ndarray, noise_sd: float,
         if boxes is not None:  # its pixels all lie in the grown box now: their box there
             boxes[k - 1] = mask_box(window == k, grown)
     return out, filled
-
-
-def mask_box(mask: np.ndarray, window: tuple) -> tuple | None:
-    """The box (``scipy.ndimage.find_objects`` form) of a mask's pixels, in the frame; None where it has none.
-
-    Parameters
-    ----------
-    mask : ndarray of bool, shape (h, w)
-        Pixels of the window ``window`` of the frame.
-    window : tuple of slice
-        Where the mask lies in the frame (starts given).
-    """
-    rows = np.flatnonzero(mask.any(axis=1))
-    if rows.size == 0:
-        return None
-    cols = np.flatnonzero(mask.any(axis=0))
-    r0, c0 = window[0].start, window[1].start
-    return (slice(r0 + int(rows[0]), r0 + int(rows[-1]) + 1), slice(c0 + int(cols[0]), c0 + int(cols[-1]) + 1))
